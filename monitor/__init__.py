@@ -1,0 +1,1 @@
+"""Station monitor: configuration, feeds, store, quality control, daemon and command line."""

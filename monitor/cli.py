@@ -1,0 +1,67 @@
+"""The ``quaywatch`` command line.
+
+Each group of verbs lives in its own ``cli_*`` module with a ``register(subparsers)``
+function; this module only assembles them and turns expected errors into one-line
+messages (a user never sees a traceback for bad input).
+"""
+from __future__ import annotations
+
+import argparse
+import importlib
+import logging
+import sys
+
+from monitor.errors import UserError
+
+# Verb groups, each owning its own module; order is the order shown in --help.
+_GROUPS = (
+    "monitor.cli_tide",      # fit, predict, table, datums
+    "monitor.cli_station",   # check, run, status, ingest, export
+    "monitor.cli_qc",        # qc, staff, flag
+    "monitor.cli_alerts",    # alerts (list, outbox, test-mail)
+    "monitor.cli_report",    # report
+)
+
+
+def build_parser() -> argparse.ArgumentParser:
+    parser = argparse.ArgumentParser(
+        prog="quaywatch",
+        description="Tide-gauge station monitor: predicted tide, surge residual, quality "
+        "control, alerts and reports. Automated and unofficial: official warnings and "
+        "local emergency authorities come first.",
+    )
+    parser.add_argument("-v", "--verbose", action="count", default=0, help="more log output")
+    sub = parser.add_subparsers(dest="verb", metavar="VERB")
+    sub.required = True
+    for name in _GROUPS:
+        try:
+            module = importlib.import_module(name)
+        except ModuleNotFoundError as exc:
+            if exc.name == name:
+                continue  # a verb group not built yet
+            raise
+        module.register(sub)
+    return parser
+
+
+def main(argv: list[str] | None = None) -> int:
+    parser = build_parser()
+    args = parser.parse_args(argv)
+    logging.basicConfig(
+        level=logging.DEBUG if args.verbose > 1 else logging.INFO if args.verbose else logging.WARNING,
+        format="%(asctime)s %(levelname)s %(name)s: %(message)s",
+        stream=sys.stderr,
+    )
+    try:
+        return int(args.func(args) or 0)
+    except UserError as exc:
+        print(f"quaywatch {args.verb}: {exc}", file=sys.stderr)
+        return 2
+    except BrokenPipeError:
+        return 0
+    except KeyboardInterrupt:
+        return 130
+
+
+if __name__ == "__main__":
+    sys.exit(main())
