@@ -225,14 +225,14 @@ def build(port: dict) -> dict:
     surge = ib + wind + weather
     sea = astro + surge
 
-    quay_watch_sd = lv["quay_watch"] + cd
+    boards_out_sd = lv["boards_out"] + cd
     quay_top_sd = lv["quay_top"] + cd
 
     # --- primary: pressure sensor, metres above its own zero, one-minute
     primary_true = sea + rng.normal(0.0, 0.004, ts.size)
     primary = primary_true.copy()
     # Spikes: single samples. The first rides a normal high water and on its own would
-    # cross the quay watch level; it must not raise an alert.
+    # cross the boards-out level; it must not raise an alert.
     hw_before_t1 = highs[highs < i1][-1]
     spike_at = [
         int(hw_before_t1),
@@ -298,7 +298,7 @@ def build(port: dict) -> dict:
         "storm_week": {"start": iso1(ts_s[0]), "end": iso1(ts_s[-1]), "step_s": STORM_STEP_S},
         "short_window": {"start": iso1(short0), "end": iso1(short1)},
         "datums": {"chart_datum_above_station_datum": cd,
-                   "quay_watch_sd": quay_watch_sd, "quay_top_sd": quay_top_sd},
+                   "boards_out_sd": boards_out_sd, "quay_top_sd": quay_top_sd},
         "storm": {
             "first_peak": {"time": iso1(t1), "near": "low water",
                            "surge": round(float(surge_clean[i1]), 3),
@@ -310,7 +310,7 @@ def build(port: dict) -> dict:
             "highest_level": {"time": iso1(ts_s[peak_i]), "level": round(float(sea[peak_i]), 3)},
             "min_pressure_hpa": round(float(pressure.min()), 1),
             "inverse_barometer_m_per_hpa": 0.01,
-            "quay_watch_crossed": crossing(quay_watch_sd),
+            "boards_out_crossed": crossing(boards_out_sd),
             "quay_top_crossed": crossing(quay_top_sd),
             "highest_normal_high_water_sd": round(normal_hw_max, 3),
         },
@@ -347,11 +347,14 @@ def write_csv(path: Path, header: str, secs: np.ndarray, values: np.ndarray, fmt
 
 
 def write_backup_lines(path: Path, station_code: str, secs: np.ndarray, cm: np.ndarray) -> None:
-    """The backup logger's line format: ``QW1 STATION YYYYMMDDhhmmss LEVEL cm``."""
+    """The backup logger's line format: ``QW1 STATION YYYYMMDDThhmmssZ LEVEL cm``.
+
+    The time is ISO 8601 basic format, UTC.
+    """
     stamps = np.datetime_as_string(secs.astype("datetime64[s]"), unit="s")
     with open(path, "w", newline="\n") as fh:
         for s, v in zip(stamps, cm):
-            compact = s.replace("-", "").replace(":", "").replace("T", "")
+            compact = s.replace("-", "").replace(":", "") + "Z"
             fh.write(f"QW1 {station_code} {compact} {v:.1f} cm\n")
 
 
