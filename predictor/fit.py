@@ -1,0 +1,548 @@
+"""Harmonic analysis: least-squares fit of tidal constants to a record of levels.
+
+The model is ``h(t) = Z0 [+ trend * years] + sum_k f_k(t) H_k cos(V_k(t) + u_k(t) - g_k)``.
+Each constituent contributes two columns, ``f cos(V+u)`` and ``f sin(V+u)``, whose
+coefficients are ``a = H cos g`` and ``b = H sin g``. The normal equations ``X'WX`` and
+``X'Wy`` are accumulated over chunks of rows, so decades of one-minute data fit in bounded
+memory, and solved by Cholesky after a conditioning check.
+
+References
+----------
+Foreman, M. G. G. (1977, revised 2004). Manual for Tidal Heights Analysis and Prediction.
+Pacific Marine Science Report 77-10 (least squares with gaps; Rayleigh selection).
+Godin, G. (1972). The Analysis of Tides. University of Toronto Press (Rayleigh criterion).
+Pawlowicz, R., Beardsley, B., Lentz, S. (2002). Computers & Geosciences 28 (coloured-noise
+confidence intervals; see :mod:`predictor.confidence`).
+Leffler, K. E., Jay, D. A. (2009). Enhancing tidal harmonic analysis: robust (hybrid L1/L2)
+solutions. Continental Shelf Research 29, 78-88 (IRLS with Cauchy weights).
+"""
+from __future__ import annotations
+
+import math
+import warnings
+from dataclasses import dataclass
+
+import numpy as np
+import pandas as pd
+from scipy import linalg
+
+from predictor import confidence as _ci
+
+__all__ = [
+    "FitInputError",
+    "RecordTooShortError",
+    "FitConditioningWarning",
+    "PRIORITY",
+    "CAUCHY_TUNING",
+    "harmonic_fit",
+    "select_constituents",
+    "required_days",
+    "to_unix_seconds",
+]
+
+SECONDS_PER_HOUR = 3600.0
+SECONDS_PER_DAY = 86400.0
+SECONDS_PER_YEAR = 365.25 * SECONDS_PER_DAY  # Julian year, the unit of the trend
+
+# Cauchy weight tuning constant giving 95 % efficiency for Gaussian errors
+# (Holland & Welsch 1977; the value used by Leffler & Jay 2009).
+CAUCHY_TUNING = 2.385
+# MAD / 0.6745 estimates the standard deviation of Gaussian errors (common practice).
+_MAD_TO_SIGMA = 0.6745
+
+# Order in which constituents are considered for inclusion: roughly by their typical
+# amplitude at mid-latitude ports, major astronomical ones first, then minor astronomical,
+# then long-period and shallow-water ones, after the ordering idea of Foreman (1977). A
+# constituent is kept only if it is resolved from every one already kept. Catalogue entries
+# not named here follow in catalogue order.
+PRIORITY = (
+    "M2", "K1", "S2", "O1", "N2", "P1", "K2", "Q1",
+    "Sa", "Ssa", "M4", "Mf", "Mm", "MS4", "NU2", "L2", "MU2", "2N2", "J1", "M1", "NO1",
+    "OO1", "T2", "S1", "MSf", "MN4", "M3", "S4", "M6", "2MS6", "MK3", "2Q1", "SIG1",
+    "RHO1", "LDA2", "R2", "EPS2", "ETA2", "MSN2", "2SM2", "MO3", "2MK3", "SO1", "SK3",
+    "M8", "2MN6", "MSK6", "SN4", "SK4", "MK4", "2MK5", "2SK5", "3MK7", "MKS2", "MNS2", "OQ2",
+    "ALP1", "TAU1", "BET1", "CHI1", "PI1", "PHI1", "THE1", "PSI1", "UPS1", "SO3", "Msm",
+    "Mtm", "MSqm", "S3", "2MK6", "2SM6",
+)
+
+
+class FitInputError(ValueError):
+    """The record cannot be fitted as given (too few samples, unknown constituent, ...)."""
+
+
+class RecordTooShortError(FitInputError):
+    """The record is too short to resolve the constituents a useful fit needs."""
+
+
+class FitConditioningWarning(UserWarning):
+    """The normal equations are ill-conditioned; a minimum-norm solution was used."""
+
+
+# --------------------------------------------------------------------------- times
+
+
+def to_unix_seconds(times) -> np.ndarray:
+    """Convert times to Unix seconds UTC.
+
+    Parameters
+    ----------
+    times : array_like
+        ``datetime64`` array (taken as UTC), pandas DatetimeIndex or Series (tz-aware is
+        converted to UTC, naive is taken as UTC), a sequence of ``datetime`` objects, or
+        numbers already in Unix seconds.
+
+    Returns
+    -------
+    ndarray of float
+        Unix seconds UTC [s]; NaT becomes NaN.
+    """
+    if isinstance(times, pd.Series):
+        times = pd.DatetimeIndex(times)
+    if isinstance(times, np.ndarray) and np.issubdtype(times.dtype, np.number):
+        return times.astype(float)
+    if not isinstance(times, pd.DatetimeIndex):
+        arr = np.asarray(times)
+        if np.issubdtype(arr.dtype, np.number):
+            return arr.astype(float)
+        if np.issubdtype(arr.dtype, np.datetime64):
+            times = pd.DatetimeIndex(arr)
+        else:
+            times = pd.DatetimeIndex(pd.to_datetime(list(arr), utc=True))
+    if times.tz is not None:
+        times = times.tz_convert("UTC").tz_localize(None)
+    ns = times.as_unit("ns").asi8.astype(float)
+    ns[np.asarray(times.isna())] = np.nan
+    return ns / 1e9
+
+
+def _iso(t: float) -> str:
+    return pd.Timestamp(t, unit="s").strftime("%Y-%m-%dT%H:%M:%SZ")
+
+
+# --------------------------------------------------------------------------- selection
+
+
+def _catalogue():
+    from predictor import constituents as cat
+
+    return cat.CATALOGUE
+
+
+def _speed(c) -> float:
+    return float(c.speed)
+
+
+def _priority_order(catalogue) -> list[str]:
+    by_upper = {name.upper(): name for name in catalogue}
+    order, seen = [], set()
+    for name in PRIORITY:
+        real = by_upper.get(name.upper())
+        if real is not None and real not in seen:
+            order.append(real)
+            seen.add(real)
+    order += [name for name in catalogue if name not in seen]
+    return order
+
+
+def required_days(speed_a: float, speed_b: float, rayleigh: float = 1.0) -> float:
+    """Record length needed to resolve two speeds by the Rayleigh criterion.
+
+    Parameters
+    ----------
+    speed_a, speed_b : float
+        Speeds [deg/h].
+    rayleigh : float
+        Rayleigh factor (1 is the classical criterion).
+
+    Returns
+    -------
+    float
+        ``rayleigh * 360 / |speed_a - speed_b|`` expressed in days [d].
+
+    References
+    ----------
+    Godin (1972); Foreman (1977), section 2.
+    """
+    diff = abs(float(speed_a) - float(speed_b))
+    if diff == 0.0:
+        return math.inf
+    return rayleigh * 360.0 / diff / 24.0
+
+
+def select_constituents(duration_hours: float, step_hours: float | None = None,
+                        rayleigh: float = 1.0, candidates=None):
+    """Choose constituents resolvable in a record, by priority, Rayleigh and Nyquist.
+
+    A constituent is kept if its speed is below the Nyquist speed of the sampling interval
+    and differs from the mean (speed 0) and from every more important constituent already
+    kept by at least ``rayleigh * 360 / T`` [deg/h].
+
+    Parameters
+    ----------
+    duration_hours : float
+        Record length T, last sample minus first [h].
+    step_hours : float, optional
+        Typical (median) sampling interval [h]; no Nyquist limit if None.
+    rayleigh : float
+        Rayleigh factor.
+    candidates : sequence of str, optional
+        Names to consider, in priority order; default the whole catalogue in
+        :data:`PRIORITY` order.
+
+    Returns
+    -------
+    chosen : list of str
+        Names kept, in priority order.
+    dropped : list of dict
+        ``{"name", "reason"}`` for every candidate left out.
+
+    References
+    ----------
+    Foreman (1977), section 2.1; Godin (1972).
+    """
+    catalogue = _catalogue()
+    names = list(candidates) if candidates is not None else _priority_order(catalogue)
+    nyquist = 180.0 / step_hours if step_hours else math.inf  # deg/h
+    min_sep = rayleigh * 360.0 / duration_hours if duration_hours > 0 else math.inf
+    chosen: list[str] = []
+    chosen_speeds: list[float] = [0.0]
+    chosen_names: list[str] = ["the mean"]
+    dropped: list[dict] = []
+    for name in names:
+        s = _speed(catalogue[name])
+        if s >= nyquist:
+            dropped.append({"name": name, "reason": f"above the Nyquist speed {nyquist:.4g} deg/h "
+                            f"of the {step_hours:.4g} h sampling"})
+            continue
+        seps = np.abs(np.asarray(chosen_speeds) - s)
+        j = int(np.argmin(seps))
+        if seps[j] < min_sep:
+            need = required_days(s, chosen_speeds[j], rayleigh)
+            dropped.append({"name": name, "reason": f"not resolved from {chosen_names[j]} "
+                            f"(needs {need:.2f} days)"})
+            continue
+        chosen.append(name)
+        chosen_speeds.append(s)
+        chosen_names.append(name)
+    return chosen, dropped
+
+
+def _too_short_message(duration_hours: float, chosen, rayleigh: float, min_constituents: int) -> str:
+    catalogue = _catalogue()
+
+    def sp(name):
+        for real in catalogue:
+            if real.upper() == name:
+                return _speed(catalogue[real])
+        return None
+
+    parts = []
+    m2, k1, o1, s2, k2 = (sp(n) for n in ("M2", "K1", "O1", "S2", "K2"))
+    if m2 is not None:
+        parts.append(f"{required_days(m2, 0.0, rayleigh):.2f} days for M2 alone")
+        if k1 is not None:
+            parts.append(f"{max(required_days(m2, k1, rayleigh), required_days(k1, 0.0, rayleigh)):.2f}"
+                         " days for M2 and K1 together")
+    if k1 is not None and o1 is not None:
+        parts.append(f"{required_days(k1, o1, rayleigh):.2f} days to separate K1 from O1")
+    if s2 is not None and k2 is not None:
+        parts.append(f"{required_days(s2, k2, rayleigh):.2f} days to separate S2 from K2")
+    got = ", ".join(chosen) if chosen else "nothing but the mean"
+    return (f"record too short: {duration_hours / 24.0:.2f} days ({duration_hours:.1f} h) resolves "
+            f"{got}, and at least {min_constituents} constituent(s) are needed; with Rayleigh "
+            f"factor {rayleigh:g} a fit needs " + ", ".join(parts))
+
+
+# --------------------------------------------------------------------------- design
+
+
+@dataclass
+class _Design:
+    """What is needed to build rows of the design matrix for any chunk of times."""
+
+    names: list[str]
+    omega: np.ndarray      # [rad/s]
+    t_ref: float           # first daily node [s]
+    phi: np.ndarray        # (days, k) slowly varying phase V+u - omega (t - t_ref) [rad]
+    f: np.ndarray          # (days, k) nodal factor [1]
+    trend: bool
+    trend_epoch: float     # [s]
+
+    @property
+    def n_params(self) -> int:
+        return 1 + int(self.trend) + 2 * len(self.names)
+
+    def rows(self, t: np.ndarray) -> np.ndarray:
+        pos = (t - self.t_ref) / SECONDS_PER_DAY
+        i = np.clip(np.floor(pos).astype(np.int64), 0, self.phi.shape[0] - 2)
+        w = (pos - i)[:, None]
+        phi = self.phi[i] * (1.0 - w) + self.phi[i + 1] * w
+        f = self.f[i] * (1.0 - w) + self.f[i + 1] * w
+        arg = (t - self.t_ref)[:, None] * self.omega[None, :] + phi
+        off = 1 + int(self.trend)
+        X = np.empty((t.size, self.n_params))
+        X[:, 0] = 1.0
+        if self.trend:
+            X[:, 1] = (t - self.trend_epoch) / SECONDS_PER_YEAR
+        X[:, off::2] = f * np.cos(arg)
+        X[:, off + 1::2] = f * np.sin(arg)
+        return X
+
+
+def _build_design(names, t_min, t_max, nodal, trend, trend_epoch) -> _Design:
+    from predictor import nodal as nod
+
+    catalogue = _catalogue()
+    speeds = np.array([_speed(catalogue[n]) for n in names])
+    omega = np.radians(speeds) / SECONDS_PER_HOUR
+    # f and u vary over months to years; V is linear in time to far below a millimetre's
+    # worth of phase within a day. Evaluate them on a daily grid and interpolate.
+    d0 = math.floor(t_min / SECONDS_PER_DAY) * SECONDS_PER_DAY
+    d1 = (math.floor(t_max / SECONDS_PER_DAY) + 2) * SECONDS_PER_DAY
+    nodes = np.arange(d0, d1 + 1.0, SECONDS_PER_DAY)
+    if names:
+        if nodal:
+            vu, f = nod.arguments(nodes, list(names), daily=False)
+        else:
+            vu = nod.equilibrium_arguments(nodes, list(names))
+            f = np.ones_like(vu)
+        vu = np.asarray(vu, dtype=float).reshape(nodes.size, len(names))
+        f = np.asarray(f, dtype=float).reshape(nodes.size, len(names))
+        phi = np.unwrap(np.radians(vu) - (nodes - d0)[:, None] * omega[None, :], axis=0)
+    else:
+        phi = np.zeros((nodes.size, 0))
+        f = np.zeros((nodes.size, 0))
+    return _Design(list(names), omega, d0, phi, f, bool(trend), float(trend_epoch))
+
+
+def _accumulate(design: _Design, t, y, w, chunk_size):
+    p = design.n_params
+    A = np.zeros((p, p))
+    rhs = np.zeros(p)
+    for s in range(0, t.size, chunk_size):
+        X = design.rows(t[s:s + chunk_size])
+        Xw = X * w[s:s + chunk_size, None] if w is not None else X
+        A += Xw.T @ X
+        rhs += Xw.T @ y[s:s + chunk_size]
+    return A, rhs
+
+
+def _solve(A, rhs, max_condition=1e12):
+    # Jacobi scaling so that the condition number reflects the geometry, not the units.
+    d = np.sqrt(np.diag(A))
+    d[d == 0] = 1.0
+    As = A / d[:, None] / d[None, :]
+    cond = float(np.linalg.cond(As))
+    if np.isfinite(cond) and cond < max_condition:
+        try:
+            x = linalg.cho_solve(linalg.cho_factor(As, lower=True), rhs / d)
+            return x / d, cond
+        except linalg.LinAlgError:
+            pass
+    warnings.warn(f"normal equations ill-conditioned (condition number {cond:.3g}); using a "
+                  "minimum-norm solution - gaps may leave some constituents undetermined, "
+                  "consider fewer constituents or a larger Rayleigh factor",
+                  FitConditioningWarning, stacklevel=3)
+    x, *_ = np.linalg.lstsq(As, rhs / d, rcond=1e-12)
+    return x / d, cond
+
+
+def _residual(design, beta, t, y, chunk_size):
+    r = np.empty_like(y)
+    for s in range(0, t.size, chunk_size):
+        r[s:s + chunk_size] = y[s:s + chunk_size] - design.rows(t[s:s + chunk_size]) @ beta
+    return r
+
+
+def _cauchy_weights(r, tuning):
+    mad = float(np.median(np.abs(r - np.median(r))))
+    scale = mad / _MAD_TO_SIGMA
+    if scale <= 0.0:
+        return np.ones_like(r)
+    return 1.0 / (1.0 + (r / (tuning * scale)) ** 2)
+
+
+# --------------------------------------------------------------------------- the fit
+
+
+def harmonic_fit(times, levels, constituents="auto", rayleigh: float = 1.0, trend: bool = False,
+                 robust: bool = False, nodal="auto", chunk_size: int | None = 20_000,
+                 min_constituents: int = 2, confidence: float | None = 0.95, weights=None,
+                 robust_iterations: int = 10, robust_tuning: float = CAUCHY_TUNING,
+                 trend_epoch=None, metadata: dict | None = None):
+    """Fit harmonic constants to a record of sea levels by least squares.
+
+    Parameters
+    ----------
+    times : array_like
+        Sample times: ``datetime64`` (UTC), pandas DatetimeIndex (tz-aware converted,
+        naive taken as UTC), or Unix seconds. Gaps and irregular sampling are fine.
+    levels : array_like
+        Observed levels [m]. Samples with NaN level or time are dropped.
+    constituents : "auto" or sequence of str
+        "auto" chooses by priority, Rayleigh criterion and Nyquist speed
+        (:func:`select_constituents`); a list of names is used exactly as given.
+    rayleigh : float
+        Rayleigh factor for "auto" [1].
+    trend : bool
+        Also fit a linear trend [m/year] about ``trend_epoch``.
+    robust : bool
+        Iteratively reweighted least squares with Cauchy weights, starting from the
+        ordinary solution (Leffler & Jay 2009), so that storms bias the constants less.
+    nodal : "auto", True or False
+        Apply nodal factors f and corrections u, evaluated daily and interpolated
+        ("auto" and True). False fits plain V only; for comparisons, not prediction.
+    chunk_size : int or None
+        Rows of the design matrix built at a time [samples]; None builds them all at once.
+    min_constituents : int
+        Fewest constituents a useful fit must resolve; with fewer, :class:`RecordTooShortError`.
+        The default 2 asks the record to separate M2 from K1 (about 1.1 days).
+    confidence : float or None
+        Level of the confidence intervals; None skips them.
+    weights : array_like, optional
+        Non-negative weight per sample [1].
+    robust_iterations : int
+        Most IRLS iterations.
+    robust_tuning : float
+        Cauchy tuning constant on residuals scaled by MAD/0.6745.
+    trend_epoch : time, optional
+        Reference time of the trend (the mean is the level there); default the record
+        midpoint.
+    metadata : dict, optional
+        Extra entries for the model's metadata.
+
+    Returns
+    -------
+    TideModel
+        ``mean`` [m]; constituents with ``name``, ``amplitude`` [m], ``phase`` (Greenwich
+        phase lag g, UTC) [deg], ``speed`` [deg/h], and when ``confidence`` is set
+        ``amplitude_ci`` [m], ``phase_ci`` [deg] (half-widths) and ``snr`` [1]; ``trend``
+        [m/year]; ``metadata`` with ``rms`` [m], ``variance_explained`` [1],
+        ``record_start``/``record_end`` (ISO 8601 UTC), ``n_samples``, ``rayleigh``,
+        ``dropped`` (name and reason) and the method used.
+
+    Raises
+    ------
+    RecordTooShortError
+        The record resolves fewer than ``min_constituents`` constituents; the message says
+        the lengths needed for M2 alone, M2 with K1, K1/O1 and S2/K2.
+    FitInputError
+        Too few samples, unknown constituent names, or bad weights.
+
+    References
+    ----------
+    Foreman (1977); Godin (1972); Pawlowicz, Beardsley & Lentz (2002); Leffler & Jay (2009).
+    """
+    from predictor.model import TideModel
+
+    t = to_unix_seconds(times)
+    y = np.asarray(levels, dtype=float).ravel()
+    if t.shape != y.shape:
+        raise FitInputError(f"times and levels differ in length ({t.size} and {y.size})")
+    w = None
+    if weights is not None:
+        w = np.asarray(weights, dtype=float).ravel()
+        if w.shape != y.shape or np.any(w[np.isfinite(w)] < 0):
+            raise FitInputError("weights must be non-negative, one per sample")
+    ok = np.isfinite(t) & np.isfinite(y)
+    if w is not None:
+        ok &= np.isfinite(w) & (w > 0)
+    order = np.argsort(t[ok], kind="stable")
+    t, y = t[ok][order], y[ok][order]
+    if w is not None:
+        w = w[ok][order]
+    if t.size < 3:
+        raise FitInputError(f"only {t.size} valid sample(s); a fit needs a record of levels")
+
+    duration_h = (t[-1] - t[0]) / SECONDS_PER_HOUR
+    steps = np.diff(t)
+    steps = steps[steps > 0]
+    step_h = float(np.median(steps)) / SECONDS_PER_HOUR if steps.size else None
+
+    catalogue = _catalogue()
+    if isinstance(constituents, str):
+        if constituents != "auto":
+            raise FitInputError(f"constituents must be 'auto' or a list of names, got {constituents!r}")
+        names, dropped = select_constituents(duration_h, step_h, rayleigh)
+        if len(names) < min_constituents:
+            raise RecordTooShortError(_too_short_message(duration_h, names, rayleigh, min_constituents))
+    else:
+        from predictor.constituents import get
+
+        names, unknown = [], []
+        for n in constituents:
+            try:
+                names.append(get(n).name)
+            except KeyError:
+                unknown.append(str(n))
+        if unknown:
+            raise FitInputError("unknown constituent(s): " + ", ".join(unknown))
+        names = list(dict.fromkeys(names))
+        dropped = []
+
+    epoch = 0.5 * (t[0] + t[-1]) if trend_epoch is None else float(to_unix_seconds([trend_epoch])[0]) \
+        if not isinstance(trend_epoch, (int, float)) else float(trend_epoch)
+    design = _build_design(names, t[0], t[-1], nodal, trend, epoch)
+    if t.size < design.n_params + 2:
+        raise FitInputError(f"only {t.size} valid samples for {design.n_params} unknowns; "
+                            "the record needs more samples")
+    chunk = int(chunk_size) if chunk_size else t.size
+    if chunk < 1:
+        raise FitInputError("chunk_size must be a positive number of samples")
+
+    A, rhs = _accumulate(design, t, y, w, chunk)
+    beta, cond = _solve(A, rhs)
+    iterations = 0
+    if robust:
+        for iterations in range(1, robust_iterations + 1):
+            r = _residual(design, beta, t, y, chunk)
+            rw = _cauchy_weights(r, robust_tuning)
+            A, rhs = _accumulate(design, t, y, rw if w is None else rw * w, chunk)
+            new, cond = _solve(A, rhs)
+            change = float(np.max(np.abs(new - beta)))
+            beta = new
+            if change < 1e-6:  # metres: a thousandth of a millimetre
+                break
+    r = _residual(design, beta, t, y, chunk)
+
+    off = 1 + int(trend)
+    a, b = beta[off::2], beta[off + 1::2]
+    amp = np.hypot(a, b)
+    phase = np.degrees(np.arctan2(b, a)) % 360.0
+    speeds = np.array([_speed(catalogue[n]) for n in names])
+    cons = [{"name": n, "amplitude": float(amp[i]), "phase": float(phase[i]), "speed": float(speeds[i])}
+            for i, n in enumerate(names)]
+    if confidence is not None and names:
+        spec = _ci.residual_band_spectrum(t, r, None if step_h is None else step_h * SECONDS_PER_HOUR)
+        var = _ci.coefficient_variance(spec, speeds)
+        amp_ci, ph_ci, snr = _ci.amplitude_phase_intervals(a, b, var, confidence)
+        for i, c in enumerate(cons):
+            c.update(amplitude_ci=float(amp_ci[i]), phase_ci=float(ph_ci[i]), snr=float(snr[i]))
+
+    var_y = float(np.var(y))
+    meta = {
+        "method": "robust least squares (IRLS, Cauchy weights)" if robust else "least squares",
+        "record_start": _iso(t[0]),
+        "record_end": _iso(t[-1]),
+        "n_samples": int(t.size),
+        "duration_days": float(duration_h / 24.0),
+        "sample_interval_s": float(step_h * SECONDS_PER_HOUR) if step_h else 0.0,
+        "rayleigh": float(rayleigh),
+        "constituent_selection": "auto" if isinstance(constituents, str) else "given",
+        "nodal": "daily f and u, interpolated" if nodal else "none",
+        "rms": float(np.sqrt(np.mean(r**2))),
+        "variance_explained": float(1.0 - np.var(r) / var_y) if var_y > 0 else 0.0,
+        "condition_number": float(cond),
+        "dropped": dropped,
+    }
+    if robust:
+        meta["robust_iterations"] = int(iterations)
+        meta["robust_tuning"] = float(robust_tuning)
+    if confidence is not None:
+        meta["confidence"] = float(confidence)
+    if trend:
+        meta["trend_epoch"] = _iso(epoch)
+    if metadata:
+        meta.update(metadata)
+    kwargs = {"trend": float(beta[1])} if trend else {}
+    return TideModel(mean=float(beta[0]), constituents=cons, metadata=meta, **kwargs)
