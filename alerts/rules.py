@@ -1,0 +1,464 @@
+"""Alert rule configuration and the per-rule episode state machine.
+
+A rule watches one quantity at one station (the surge residual, the water level on a
+named datum, the next high water forecast, the age of the feed, or the count of active
+equipment faults) against one or more named steps. The state machine here is pure: it
+takes the state and one value and returns the new state and the events to announce;
+``alerts.engine`` keeps the state in the store and turns events into messages.
+
+Configuration keys (a list of tables under a station, ``[[stations.rules]]``)::
+
+    id       = "surge"            # unique per station; episodes are keyed by station + id
+    watch    = "residual_above"   # residual_above | residual_below | level_above |
+                                  # level_below | next_high_water_above | feed_silent |
+                                  # equipment_fault
+    datum    = "chart"            # level_* and next_high_water_above: a named datum
+    series   = "residual"         # residual_* only: "residual" or "smoothed"
+    hold     = "10min"            # minimum time beyond a step before it counts
+    settle   = "20min"            # minimum time back inside the band before a step clears
+                                  # (default: same as hold)
+    band     = 0.05               # hysteresis [m] (feed_silent: [s]) below a step to clear it
+    notify   = ["duty@port.example"]   # recipients for every step (added to per-step lists)
+    all_clear = true              # send a message when the episode ends
+    use_suspect = true            # count QARTOD-suspect samples (3); fail (4) and missing (9)
+                                  # never count
+    note     = "free text shown in the message"
+    [[stations.rules.steps]]
+    name   = "raised"             # operator's own names
+    at     = 0.30                 # metres on the datum (feed_silent: a duration)
+    notify = ["volunteers@port.example"]
+"""
+from __future__ import annotations
+
+import math
+import re
+from dataclasses import dataclass, field, replace
+from typing import Any
+
+# Kinds of rule, and the sign that turns each into an "above" comparison.
+KINDS = {
+    "residual_above": +1,
+    "residual_below": -1,
+    "level_above": +1,
+    "level_below": -1,
+    "next_high_water_above": +1,
+    "feed_silent": +1,
+    "equipment_fault": +1,
+}
+SAMPLE_KINDS = {"residual_above", "residual_below", "level_above", "level_below"}
+CONTEXT_KINDS = {"next_high_water_above", "feed_silent", "equipment_fault"}
+
+# Our own step names; they deliberately avoid the vocabulary of official warning services.
+DEFAULT_STEP_NAMES = ("raised", "high", "very high", "extreme high")
+DEFAULT_LOW_STEP_NAMES = ("low", "very low", "extreme low")
+
+# Words official weather and flood services use for their own warnings; a configured step
+# name containing one is refused so that an email can never be mistaken for an official one.
+RESERVED_WORDS = ("watch", "warning", "advisory", "alert", "severe", "emergency",
+                  "red", "amber", "orange", "yellow")
+
+_STATION_DATUM_NAMES = ("station", "station_datum", "sd")
+_ADDR_RE = re.compile(r"^[^@\s<>,;\"\r\n]+@[^@\s<>,;\"\r\n]+\.[^@\s<>,;\"\r\n]+$")
+_DURATION_RE = re.compile(r"^\s*(\d+(?:\.\d+)?)\s*(s|sec|min|m|h|hr|d|day|days)?\s*$")
+_DURATION_UNITS = {None: 1, "s": 1, "sec": 1, "min": 60, "m": 60, "h": 3600, "hr": 3600,
+                   "d": 86400, "day": 86400, "days": 86400}
+
+
+@dataclass(frozen=True)
+class StationView:
+    """What the alert engine needs to know of a station (built by the daemon).
+
+    Attributes
+    ----------
+    id : str
+        Station identifier used as a key in the store.
+    name : str
+        Display name.
+    tz : str
+        IANA time zone name for local times in messages.
+    datums : dict[str, float]
+        Datum name -> height of that datum above the station datum [m].
+    notes, url : str
+        Optional text and link shown in messages.
+    """
+
+    id: str
+    name: str
+    tz: str = "UTC"
+    datums: dict = field(default_factory=dict)
+    notes: str = ""
+    url: str = ""
+
+
+@dataclass(frozen=True)
+class Step:
+    """One named step of a rule: a threshold and who hears about it."""
+
+    name: str
+    at: float
+    notify: tuple[str, ...] = ()
+
+
+@dataclass(frozen=True)
+class Rule:
+    """A validated alert rule.
+
+    ``steps`` are sorted from the mildest to the most extreme. ``at`` values are in the
+    rule's own units: metres on ``datum`` for level rules, metres for residual rules,
+    seconds for ``feed_silent``, a count of faults for ``equipment_fault``.
+    """
+
+    id: str
+    watch: str
+    steps: tuple[Step, ...]
+    datum: str = "station"
+    datum_offset: float = 0.0
+    series: str = "residual"
+    hold: float = 0.0
+    settle: float = 0.0
+    band: float = 0.0
+    notify: tuple[str, ...] = ()
+    all_clear: bool = True
+    use_suspect: bool = True
+    fault_kinds: tuple[str, ...] = ()
+    note: str = ""
+
+    @property
+    def sign(self) -> int:
+        return KINDS[self.watch]
+
+    @property
+    def unit(self) -> str:
+        return {"feed_silent": "s", "equipment_fault": ""}.get(self.watch, "m")
+
+    def recipients_up_to(self, index: int) -> tuple[str, ...]:
+        """Recipients of every step up to and including ``index``, rule-wide ones first."""
+        seen: dict[str, None] = dict.fromkeys(self.notify)
+        for step in self.steps[: index + 1]:
+            seen.update(dict.fromkeys(step.notify))
+        return tuple(seen)
+
+
+def parse_duration(value: Any) -> float:
+    """Parse a duration: a number of seconds or text like ``"90s"``, ``"10min"``, ``"2h"``, ``"1d"``.
+
+    Returns
+    -------
+    float
+        Seconds [s]. Raises ``ValueError`` on anything else.
+    """
+    if isinstance(value, bool):
+        raise ValueError(f"expected a duration like '10min', got {value!r}")
+    if isinstance(value, (int, float)):
+        if not math.isfinite(value) or value < 0:
+            raise ValueError(f"expected a non-negative duration, got {value!r}")
+        return float(value)
+    if isinstance(value, str):
+        m = _DURATION_RE.match(value.lower())
+        if m:
+            return float(m.group(1)) * _DURATION_UNITS[m.group(2)]
+    raise ValueError(f"expected a duration like '90s', '10min', '2h' or '1d', got {value!r}")
+
+
+def _as_addresses(value: Any, where: str, errors: list[str]) -> tuple[str, ...]:
+    if value is None:
+        return ()
+    if isinstance(value, str):
+        value = [value]
+    if not isinstance(value, list):
+        errors.append(f"{where}: expected a list of email addresses, got {value!r}")
+        return ()
+    out = []
+    for i, addr in enumerate(value):
+        if not isinstance(addr, str) or not _ADDR_RE.match(addr.strip()):
+            errors.append(f"{where}[{i}]: not a plain email address: {addr!r}")
+        else:
+            out.append(addr.strip())
+    return tuple(out)
+
+
+def _reserved_word(name: str) -> str | None:
+    words = re.findall(r"[a-z]+", name.lower())
+    for w in RESERVED_WORDS:
+        if w in words:
+            return w
+    return None
+
+
+def _default_steps(watch: str) -> list[dict]:
+    if watch == "feed_silent":
+        return [{"name": "feed silent", "at": "30min"}]
+    if watch == "equipment_fault":
+        return [{"name": "equipment fault", "at": 1}]
+    return []
+
+
+def _one_rule(raw: Any, kp: str, datums: dict[str, float], errors: list[str]) -> Rule | None:
+    if not isinstance(raw, dict):
+        errors.append(f"{kp}: expected a table, got {type(raw).__name__}")
+        return None
+    n_before = len(errors)
+    known = {"id", "watch", "datum", "series", "hold", "settle", "band", "notify", "all_clear",
+             "use_suspect", "faults", "note", "steps"}
+    for key in raw:
+        if key not in known:
+            errors.append(f"{kp}.{key}: unknown key (known: {', '.join(sorted(known))})")
+
+    rid = raw.get("id")
+    if not isinstance(rid, str) or not re.fullmatch(r"[A-Za-z0-9_.-]{1,64}", rid or ""):
+        errors.append(f"{kp}.id: required; letters, digits, '_', '-', '.' (got {rid!r})")
+        rid = None
+    watch = raw.get("watch")
+    if not isinstance(watch, str) or watch not in KINDS:
+        errors.append(f"{kp}.watch: one of {', '.join(KINDS)} (got {watch!r})")
+        return None
+
+    datum, offset = "station", 0.0
+    if watch in ("level_above", "level_below", "next_high_water_above"):
+        datum = raw.get("datum", "station")
+        if not isinstance(datum, str):
+            errors.append(f"{kp}.datum: expected a datum name, got {datum!r}")
+        elif datum in datums:
+            offset = float(datums[datum])
+        elif datum.lower() in _STATION_DATUM_NAMES:
+            datum = "station"
+        else:
+            names = ", ".join(sorted(set(datums) | {"station"}))
+            errors.append(f"{kp}.datum: {datum!r} is not a datum of this station (known: {names})")
+    elif "datum" in raw:
+        errors.append(f"{kp}.datum: only level_above, level_below and next_high_water_above use a datum")
+
+    series = raw.get("series", "residual")
+    if series not in ("residual", "smoothed"):
+        errors.append(f"{kp}.series: 'residual' or 'smoothed' (got {series!r})")
+
+    def duration(key: str, default: float) -> float:
+        if key not in raw:
+            return default
+        try:
+            return parse_duration(raw[key])
+        except ValueError as exc:
+            errors.append(f"{kp}.{key}: {exc}")
+            return default
+
+    hold = duration("hold", 0.0 if watch in CONTEXT_KINDS else 600.0)
+    settle = duration("settle", hold)
+    if watch == "feed_silent":
+        band = duration("band", 0.0)
+    else:
+        band = raw.get("band", 0.0)
+        if isinstance(band, bool) or not isinstance(band, (int, float)) or not math.isfinite(band) or band < 0:
+            errors.append(f"{kp}.band: expected a non-negative number of metres, got {band!r}")
+            band = 0.0
+    notify = _as_addresses(raw.get("notify"), f"{kp}.notify", errors)
+    flags = {}
+    for key, default in (("all_clear", True), ("use_suspect", True)):
+        v = raw.get(key, default)
+        if not isinstance(v, bool):
+            errors.append(f"{kp}.{key}: expected true or false, got {v!r}")
+            v = default
+        flags[key] = v
+    faults = raw.get("faults", [])
+    if watch != "equipment_fault" and "faults" in raw:
+        errors.append(f"{kp}.faults: only equipment_fault rules filter by fault kind")
+    if not (isinstance(faults, list) and all(isinstance(f, str) for f in faults)):
+        errors.append(f"{kp}.faults: expected a list of fault kinds, got {faults!r}")
+        faults = []
+    note = raw.get("note", "")
+    if not isinstance(note, str):
+        errors.append(f"{kp}.note: expected text, got {note!r}")
+        note = ""
+
+    raw_steps = raw.get("steps", _default_steps(watch))
+    if not isinstance(raw_steps, list) or not raw_steps:
+        errors.append(f"{kp}.steps: at least one step, e.g. {{ name = \"high\", at = 0.5 }}")
+        raw_steps = []
+    steps: list[Step] = []
+    sign = KINDS[watch]
+    defaults = DEFAULT_LOW_STEP_NAMES if sign < 0 or watch == "residual_below" else DEFAULT_STEP_NAMES
+    for i, rs in enumerate(raw_steps):
+        skp = f"{kp}.steps[{i}]"
+        if not isinstance(rs, dict):
+            errors.append(f"{skp}: expected a table with name and at")
+            continue
+        for key in rs:
+            if key not in ("name", "at", "notify"):
+                errors.append(f"{skp}.{key}: unknown key (known: at, name, notify)")
+        name = rs.get("name", defaults[i] if i < len(defaults) else f"step {i + 1}")
+        if not isinstance(name, str) or not name.strip() or len(name) > 40 or re.search(r"[\x00-\x1f\x7f]", name):
+            errors.append(f"{skp}.name: a short single-line name (got {name!r})")
+            name = f"step {i + 1}"
+        elif (word := _reserved_word(name)) is not None:
+            errors.append(f"{skp}.name: {name!r} uses {word!r}, a word official warning "
+                          f"services use; choose a name of your own (e.g. 'raised', 'high')")
+        at = rs.get("at")
+        if at is None:
+            errors.append(f"{skp}.at: required")
+            continue
+        if watch == "feed_silent":
+            try:
+                at = parse_duration(at)
+            except ValueError as exc:
+                errors.append(f"{skp}.at: {exc}")
+                continue
+        elif isinstance(at, bool) or not isinstance(at, (int, float)) or not math.isfinite(at):
+            errors.append(f"{skp}.at: expected a number (metres), got {at!r}")
+            continue
+        if watch == "equipment_fault" and at < 1:
+            errors.append(f"{skp}.at: a count of active faults, at least 1 (got {at!r})")
+        steps.append(Step(name=name.strip(), at=float(at),
+                          notify=_as_addresses(rs.get("notify"), f"{skp}.notify", errors)))
+    steps.sort(key=lambda s: sign * s.at)
+    for a, b in zip(steps, steps[1:]):
+        if a.at == b.at:
+            errors.append(f"{kp}.steps: {a.name!r} and {b.name!r} share the level {a.at}")
+        if a.name == b.name:
+            errors.append(f"{kp}.steps: the name {a.name!r} is used twice")
+    if steps and not notify and not any(s.notify for s in steps):
+        errors.append(f"{kp}.notify: nobody to tell; give notify on the rule or on a step")
+    if len(errors) > n_before or rid is None:
+        return None
+    return Rule(id=rid, watch=watch, steps=tuple(steps), datum=datum, datum_offset=offset,
+                series=series, hold=hold, settle=settle, band=float(band), notify=notify,
+                all_clear=flags["all_clear"], use_suspect=flags["use_suspect"],
+                fault_kinds=tuple(faults), note=note)
+
+
+def rules_from_config(raw_list: Any, keypath: str, datums: dict[str, float]) -> tuple[list[Rule], list[str]]:
+    """Validate a station's list of rule tables.
+
+    Parameters
+    ----------
+    raw_list : list of dict
+        The parsed TOML array of tables (``[[stations.rules]]``).
+    keypath : str
+        Where the list sits in the configuration, e.g. ``"stations[0].rules"``.
+    datums : dict[str, float]
+        The station's datum name -> height above station datum [m].
+
+    Returns
+    -------
+    rules : list of Rule
+        The valid rules.
+    errors : list of str
+        Each starts with the key path of the problem; empty when all is well.
+    """
+    if raw_list is None:
+        return [], []
+    if not isinstance(raw_list, list):
+        return [], [f"{keypath}: expected an array of tables ([[...rules]]), got {type(raw_list).__name__}"]
+    rules: list[Rule] = []
+    errors: list[str] = []
+    seen: set[str] = set()
+    for i, raw in enumerate(raw_list):
+        rule = _one_rule(raw, f"{keypath}[{i}]", datums, errors)
+        if rule is None:
+            continue
+        if rule.id in seen:
+            errors.append(f"{keypath}[{i}].id: {rule.id!r} is used by another rule of this station")
+            continue
+        seen.add(rule.id)
+        rules.append(rule)
+    return rules, errors
+
+
+# --------------------------------------------------------------------------- state machine
+
+@dataclass(frozen=True)
+class RuleState:
+    """Persisted state of one rule at one station.
+
+    ``level`` is the index of the step in force (-1 for none). ``above_since[i]`` is the
+    start of the current unbroken run beyond step ``i``; ``inside_since[i]`` the start of
+    the current unbroken run back inside the band of step ``i``. Times are Unix seconds UTC.
+    """
+
+    level: int = -1
+    top_sent: int = -1
+    above_since: tuple = ()
+    inside_since: tuple = ()
+    watermark: int | None = None
+
+
+@dataclass(frozen=True)
+class Event:
+    """Something to announce: an episode ``opened``, ``escalated`` or ``cleared``."""
+
+    kind: str
+    level: int
+    t: int
+    value: float
+
+
+def _fit(seq: tuple, n: int) -> tuple:
+    return tuple(seq[:n]) + (None,) * max(0, n - len(seq))
+
+
+def advance(rule: Rule, state: RuleState, t: int, value: float) -> tuple[RuleState, list[Event]]:
+    """Advance a rule's state machine by one counted value.
+
+    Parameters
+    ----------
+    rule : Rule
+    state : RuleState
+    t : int
+        Time of the value, Unix seconds UTC [s]; must be later than ``state.watermark``.
+    value : float
+        The watched quantity in the rule's units (already on the rule's datum).
+
+    Returns
+    -------
+    state : RuleState
+        The new state (watermark set to ``t``).
+    events : list of Event
+        At most one: an episode opened, escalated past every step announced so far, or
+        cleared (back inside the band of the lowest step for ``settle`` seconds).
+
+    Notes
+    -----
+    A step is reached when the value has stayed at or beyond it for ``hold`` seconds; it
+    is left when the value has stayed beyond the hysteresis band (``band`` inside the
+    step) for ``settle`` seconds. Stepping down within an episode is quiet, and
+    returning to a step already announced in the same episode is not announced again.
+    Hysteresis with a minimum dwell time is common practice in alarm handling (no
+    single published source).
+    """
+    n = len(rule.steps)
+    x = rule.sign * value
+    above = list(_fit(state.above_since, n))
+    inside = list(_fit(state.inside_since, n))
+    for i, step in enumerate(rule.steps):
+        thr = rule.sign * step.at
+        if x >= thr:
+            above[i] = above[i] if above[i] is not None else t
+        else:
+            above[i] = None
+        if x < thr - rule.band:
+            inside[i] = inside[i] if inside[i] is not None else t
+        else:
+            inside[i] = None
+    level = min(state.level, n - 1)
+    top = min(state.top_sent, n - 1)
+    events: list[Event] = []
+    reached = max((i for i in range(n) if above[i] is not None and t - above[i] >= rule.hold), default=-1)
+    if reached > level:
+        if level < 0:
+            events.append(Event("opened", reached, t, value))
+            top = reached
+        elif reached > top:
+            events.append(Event("escalated", reached, t, value))
+            top = reached
+        level = reached
+    else:
+        while level >= 0 and inside[level] is not None and t - inside[level] >= rule.settle:
+            level -= 1
+        if level < 0 and state.level >= 0:
+            events.append(Event("cleared", top, t, value))
+            top = -1
+    return RuleState(level=level, top_sent=top, above_since=tuple(above),
+                     inside_since=tuple(inside), watermark=t), events
+
+
+def with_watermark(state: RuleState, t: int) -> RuleState:
+    """The same state with the watermark moved to ``t`` (a skipped, uncounted sample)."""
+    return replace(state, watermark=t)
