@@ -1,0 +1,267 @@
+"""Follow a growing text file by name, the way ``tail`` does with its retry-by-name mode.
+
+Behaviour
+---------
+- The file need not exist yet; the feed waits for it.
+- Only complete lines (ending in ``\\n``) are returned; an unterminated last line waits until
+  the writer completes it. Lines are numbered from 1 in each file.
+- Rotation (the file renamed away and a new one created under the name): the old file is read
+  to its end first, and once it has stopped growing its unterminated last line, if any, is
+  taken as complete; then the new file is followed from its start.
+- Truncation (the file shrinks below the position read, or its first bytes change): reading
+  starts again at byte 0.
+- Bytes that do not decode are replaced (U+FFFD) and left for the parser to reject.
+
+The checkpoint (:meth:`FileFeed.state`) holds the identity of the file being read (device,
+inode, a hash of its first bytes), the byte offset just past the last line returned, and its
+line number. After a restart, if the name now points to a different file, the feed looks in the
+same directory for the file it was reading (rotated under another name) and finishes that
+first; if it cannot be found, the new file is read from its start.
+"""
+from __future__ import annotations
+
+import os
+import stat
+import time
+from typing import Any
+
+from monitor.feeds.base import (
+    CHUNK_BYTES,
+    MAX_LINE_BYTES,
+    Feed,
+    FileIdentity,
+    RawLine,
+    decode_line,
+    int_field,
+    log,
+    split_lines,
+)
+
+
+class FileCursor:
+    """An open file with a read position, the pending partial line and a line count.
+
+    ``offset`` is the byte just past the last complete line handed out; ``pos`` is how far
+    the file has been read (``offset`` plus the pending bytes).
+    """
+
+    def __init__(self, path: str, fd: int, encoding: str):
+        self.path = path
+        self.fd = fd
+        self.encoding = encoding
+        self.identity = FileIdentity.of_fd(fd)
+        self.offset = 0
+        self.pos = 0
+        self.pending = b""
+        self.lineno = 0
+
+    @classmethod
+    def open(cls, path: str, encoding: str) -> "FileCursor":
+        fd = os.open(path, os.O_RDONLY | getattr(os, "O_CLOEXEC", 0))
+        try:
+            if not stat.S_ISREG(os.fstat(fd).st_mode):
+                raise IsADirectoryError(f"{path} is not a regular file")
+            return cls(path, fd, encoding)
+        except BaseException:
+            os.close(fd)
+            raise
+
+    def seek(self, offset: int, lineno: int) -> None:
+        self.offset = self.pos = offset
+        self.lineno = lineno
+        self.pending = b""
+
+    def check_reset(self) -> bool:
+        """Start again at 0 if the file was truncated or rewritten; True if it was."""
+        size = os.fstat(self.fd).st_size
+        if size < self.pos or not self.identity.still_same(self.fd):
+            self.identity = FileIdentity.of_fd(self.fd)
+            self.seek(0, 0)
+            return True
+        return False
+
+    def read(self, budget: int, received: float, out: list[RawLine]) -> int:
+        """Read up to ``budget`` bytes, append the complete lines to ``out``; bytes read."""
+        data = os.pread(self.fd, budget, self.pos)
+        if not data:
+            return 0
+        self.pos += len(data)
+        lines, rest = split_lines(self.pending + data)
+        start = self.offset
+        for raw in lines:
+            self._emit(raw, start, received, out)
+            start += len(raw) + 1
+        self.offset = start
+        self.pending = rest
+        if len(rest) > MAX_LINE_BYTES:
+            self.finish(received, out)
+        return len(data)
+
+    def finish(self, received: float, out: list[RawLine]) -> None:
+        """Take the pending unterminated bytes as a complete last line."""
+        if self.pending:
+            self._emit(self.pending, self.offset, received, out)
+            self.offset += len(self.pending)
+            self.pending = b""
+
+    def _emit(self, raw: bytes, start: int, received: float, out: list[RawLine]) -> None:
+        self.lineno += 1
+        text = decode_line(raw, self.encoding, first=start == 0)
+        out.append(RawLine(text, self.lineno, self.path, received))
+
+    def checkpoint(self) -> dict[str, Any]:
+        return {**self.identity.as_state(), "file": self.path, "offset": self.offset,
+                "lineno": self.lineno}
+
+    def resume(self, state: dict[str, Any]) -> bool:
+        """Move to a checkpoint if it describes this file; False if it does not."""
+        if not FileIdentity.matches_state(self.fd, state):
+            return False
+        offset, lineno = int_field(state, "offset"), int_field(state, "lineno")
+        if os.fstat(self.fd).st_size < offset:
+            return False  # truncated while we were away
+        self.seek(offset, lineno)
+        return True
+
+    def close(self) -> None:
+        if self.fd >= 0:
+            os.close(self.fd)
+            self.fd = -1
+
+
+class FileFeed(Feed):
+    """Follow the file at ``path``; see the module docstring for the behaviour.
+
+    Parameters
+    ----------
+    name : str
+        Feed name, for messages.
+    path : str
+        The file to follow, by name.
+    encoding : str
+        ASCII-compatible text encoding of the file.
+    chunk : int
+        Most bytes read in one poll [bytes].
+    """
+
+    kind = "file"
+
+    def __init__(self, name: str, path: str, encoding: str = "utf-8",
+                 chunk: int = CHUNK_BYTES):
+        super().__init__(name)
+        self.path = os.fspath(path)
+        self.encoding = encoding
+        self.chunk = chunk
+        self._cur: FileCursor | None = None
+        self._resume: dict[str, Any] | None = None
+
+    # -- opening ---------------------------------------------------------------------------
+    def _open_name(self) -> FileCursor | None:
+        try:
+            cur = FileCursor.open(self.path, self.encoding)
+        except FileNotFoundError:
+            self._problem(f"waiting for {self.path} to appear")
+            return None
+        except OSError as exc:
+            self._problem(f"cannot read {self.path}: {exc.strerror or exc}")
+            return None
+        self._problem(None)
+        state, self._resume = self._resume, None
+        if state is None or cur.resume(state):
+            return cur
+        # The name points elsewhere now: finish the file we were reading if it was only renamed.
+        old = self._find_renamed(state)
+        if old is not None:
+            cur.close()
+            return old
+        log.info("feed %s: %s is a different file than at the checkpoint; reading it from "
+                 "the start", self.name, self.path)
+        return cur
+
+    def _find_renamed(self, state: dict[str, Any]) -> FileCursor | None:
+        folder = os.path.dirname(os.path.abspath(self.path))
+        try:
+            entries = list(os.scandir(folder))
+        except OSError:
+            return None
+        for entry in entries:
+            try:
+                st = entry.stat(follow_symlinks=False)
+                if (st.st_dev, st.st_ino) != (state.get("dev"), state.get("ino")):
+                    continue
+                cur = FileCursor.open(entry.path, self.encoding)
+            except OSError:
+                continue
+            try:
+                if cur.resume(state):
+                    log.info("feed %s: finishing rotated file %s", self.name, entry.path)
+                    return cur
+            except ValueError:
+                pass
+            cur.close()
+        return None
+
+    def _name_moved_on(self, cur: FileCursor) -> bool:
+        try:
+            st = os.stat(self.path)
+        except OSError:
+            return False  # gone without a successor yet: keep the file we have
+        return (st.st_dev, st.st_ino) != (cur.identity.dev, cur.identity.ino)
+
+    # -- the Feed interface ------------------------------------------------------------------
+    def poll(self) -> list[RawLine]:
+        out: list[RawLine] = []
+        received = time.time()
+        budget = self.chunk
+        while budget > 0:
+            if self._cur is None:
+                self._cur = self._open_name()
+                if self._cur is None:
+                    break
+            cur = self._cur
+            try:
+                if cur.check_reset():
+                    log.warning("feed %s: %s was truncated or rewritten; reading it again "
+                                "from the start", self.name, cur.path)
+                want = budget
+                got = cur.read(want, received, out)
+            except OSError as exc:
+                self._problem(f"error reading {cur.path}: {exc.strerror or exc}")
+                cur.close()
+                self._cur = None
+                self._resume = None
+                break
+            budget -= got
+            if got == want or not self._name_moved_on(cur):
+                break
+            if got:
+                break  # the old file was still growing: finish it on a later poll
+            cur.finish(received, out)
+            cur.close()
+            self._cur = None  # and go round to open the new file under the name
+        return out
+
+    def state(self) -> dict[str, Any]:
+        if self._cur is not None:
+            return {"kind": self.kind, "path": self.path, **self._cur.checkpoint()}
+        if self._resume is not None:
+            return dict(self._resume)
+        return {"kind": self.kind, "path": self.path, "offset": 0, "lineno": 0}
+
+    def restore(self, state: dict[str, Any] | None) -> None:
+        self.close()
+        self._resume = None
+        if not state or "dev" not in state:
+            return
+        try:
+            int_field(state, "offset"), int_field(state, "lineno")
+        except ValueError as exc:
+            log.warning("feed %s: ignoring unusable checkpoint (%s); reading from the start",
+                        self.name, exc)
+            return
+        self._resume = dict(state)
+
+    def close(self) -> None:
+        if self._cur is not None:
+            self._cur.close()
+            self._cur = None
