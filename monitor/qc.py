@@ -1,0 +1,915 @@
+"""Per-sample quality control of water-level records on the QARTOD flag scale.
+
+Flags (U.S. IOOS QARTOD): 1 pass, 2 not evaluated, 3 suspect, 4 fail, 9 missing.
+Each test is a pure, vectorised function of a pandas Series indexed by a UTC
+``DatetimeIndex`` (a naive index is taken as UTC) and returns an ``int8`` Series of
+flags on the same index. :func:`run_tests` runs them all for one sensor and adds the
+aggregate (the worst evaluated flag). The last part of this module is the thin glue to
+the store (:func:`ensure_qc_schema`, :func:`run_station_qc`, overrides, staff readings).
+
+Tests that look for sudden changes (spike, rate of change, residual outlier) work on
+the *residual* (observed minus predicted tide) so the tide's own curvature is never
+taken for a fault, and a storm surge -- a smooth rise over hours -- passes.
+
+Samples flagged fail (4) or missing (9) are kept in the store but never used for
+alerts, fits or statistics: select with :func:`usable_mask` / :data:`USABLE_SQL`.
+Suspect (3) samples stay usable but are marked.
+
+The output is an automated, unofficial aid for gauge technicians: official warnings
+and local emergency authorities come first; defer to local codes and licensed practice.
+
+References
+----------
+U.S. IOOS (2021). Manual for Real-Time Quality Control of Water Level Data (QARTOD),
+version 2.1. IOC (1985-2016). Manual on Sea Level Measurement and Interpretation,
+Vols I-V. IOC Manuals and Guides 14.
+"""
+from __future__ import annotations
+
+import math
+import time as _time
+from dataclasses import dataclass, fields
+from typing import Any, Iterable, Mapping
+
+import numpy as np
+import pandas as pd
+
+from monitor.errors import UserError
+
+PASS, NOT_EVALUATED, SUSPECT, FAIL, MISSING = 1, 2, 3, 4, 9
+FLAG_NAMES = {PASS: "pass", NOT_EVALUATED: "not evaluated", SUSPECT: "suspect", FAIL: "fail", MISSING: "missing"}
+#: Test names, in order; also the columns of the ``qc_tests`` table.
+TESTS = ("gap", "syntax", "gross", "expected", "spike", "roc", "flat", "multi", "resid")
+#: Flags a sample may carry and still be used for alerts, fits and statistics.
+USABLE_FLAGS = (PASS, NOT_EVALUATED, SUSPECT)
+#: The same as an SQL condition on ``observations.flag``.
+USABLE_SQL = "flag IN (1, 2, 3)"
+#: Flags a technician may set by hand.
+OVERRIDE_FLAGS = (PASS, SUSPECT, FAIL)
+
+
+# --------------------------------------------------------------------------- settings
+
+@dataclass(frozen=True)
+class QcSettings:
+    """Thresholds of every test and equipment-fault limit, per station.
+
+    Levels in metres, durations in seconds (written in TOML as ``"30min"``, ``"25h"``
+    or a number of seconds). The source of each default is given beside it.
+    """
+
+    # Timing/gap: a sample following a silence longer than this is suspect (it cannot be
+    # checked for continuity). QARTOD Test 1 leaves TIM_INC to the operator; five missed
+    # one-minute samples: common practice, no source.
+    gap_limit: float = 300.0
+    # A time stamp this far ahead of the processing clock fails (QARTOD Test 1, TIM_STMP;
+    # two minutes: common practice, no source).
+    future_tolerance: float = 120.0
+    # Gross range, QARTOD Test 3: outside the sensor's measuring range fails, outside
+    # the operator's range is suspect. Defaults wide on purpose -- set them to your
+    # sensor's range (common practice, no source).
+    gross_fail_min: float = -10.0
+    gross_fail_max: float = 20.0
+    gross_suspect_min: float | None = None
+    gross_suspect_max: float | None = None
+    # Expected range (QARTOD Test 4, climatology, which gives suspect only): observed
+    # further than this from the predicted tide is suspect. Set above the largest
+    # surge on record (common practice, no source).
+    expected_margin: float = 1.5
+    # Spike, QARTOD Test 5 formula |V(n) - (V(n-1)+V(n+1))/2| on the residual; QARTOD
+    # leaves the two thresholds to the operator. 8 cm / 20 cm: common practice, no source
+    # (well above the noise of a stilling well or radar one-minute mean).
+    spike_suspect: float = 0.08
+    spike_fail: float = 0.20
+    # Rate of change, QARTOD Test 6: |V(n) - V(n-1)| above N_DEV standard deviations
+    # of the previous TIM_DEV is suspect. QARTOD example N_DEV = 3, TIM_DEV = 25 h
+    # (from memory). The floor keeps a very calm residual from making every ripple
+    # suspect; the absolute fail rate is our addition (both common practice, no source).
+    roc_n_dev: float = 3.0
+    roc_window: float = 25 * 3600.0
+    roc_floor: float = 0.05
+    roc_fail_m_per_min: float = 0.20
+    # Flat line, QARTOD Test 7: the last values within EPS of the current one for this
+    # long (QARTOD counts repeats; we use durations so any sampling step works).
+    # Half the usual 1 mm resolution; 30 min / 1 h: common practice, no source.
+    flat_tolerance: float = 0.0005
+    flat_suspect_after: float = 1800.0
+    flat_fail_after: float = 3600.0
+    # Multi-sensor comparison (QARTOD's multi-variate idea; suspect only since the
+    # difference cannot tell which sensor is wrong). IOC Manual Vol. IV asks for
+    # 1 cm accuracy (from memory); 5 cm between two sensors: common practice, no source.
+    multi_suspect: float = 0.05
+    # Residual outlier: |r - rolling median| against a rolling robust sigma
+    # (1.4826 MAD). Window lengths and multiples: common practice, no source.
+    resid_window: float = 3600.0
+    resid_noise_window: float = 25 * 3600.0
+    resid_suspect_k: float = 6.0
+    resid_fail_k: float = 12.0
+    resid_suspect_floor: float = 0.05
+    resid_fail_floor: float = 0.20
+    # Equipment faults for the alerts engine.
+    # No sample for this long: silent feed (common practice, no source).
+    silent_after: float = 1800.0
+    # Primary-backup drift past this many mm/day (IOC Manual Vol. IV asks for 1 cm
+    # accuracy over long periods, from memory; 1 mm/day: common practice, no source).
+    drift_limit_mm_per_day: float = 1.0
+    # Window over which the drift is estimated (common practice, no source).
+    drift_window: float = 30 * 86400.0
+    # Clock offset against the predicted tide past this many minutes. IOC Manual
+    # Vol. IV asks for timing to within 1 minute (from memory).
+    clock_limit_min: float = 1.0
+    # Datum step in the residual reported from this size (common practice, no source).
+    step_min_mm: float = 20.0
+
+    def context_seconds(self) -> float:
+        """Record before a window needed to evaluate its first sample [s]."""
+        return max(self.roc_window, self.resid_noise_window / 2, self.flat_fail_after, self.gap_limit) + 600.0
+
+
+_DURATION_KEYS = {"gap_limit", "future_tolerance", "roc_window", "flat_suspect_after", "flat_fail_after",
+                  "resid_window", "resid_noise_window", "silent_after", "drift_window"}
+_OPTIONAL_KEYS = {"gross_suspect_min", "gross_suspect_max"}
+# Keys that may be zero or negative (levels on the station datum).
+_SIGNED_KEYS = {"gross_fail_min", "gross_fail_max", "gross_suspect_min", "gross_suspect_max"}
+# (smaller, larger): the first must be below the second.
+_ORDERED = (("spike_suspect", "spike_fail"), ("flat_suspect_after", "flat_fail_after"),
+            ("resid_suspect_k", "resid_fail_k"), ("resid_suspect_floor", "resid_fail_floor"),
+            ("gross_fail_min", "gross_fail_max"), ("gross_suspect_min", "gross_suspect_max"),
+            ("gross_fail_min", "gross_suspect_min"), ("gross_suspect_max", "gross_fail_max"))
+
+
+def parse_duration(value: Any) -> float | None:
+    """Seconds from a number of seconds or a text like ``"30min"``, ``"25h"``, ``"2d"``.
+
+    Returns None when the value is not a positive, finite duration.
+    """
+    if isinstance(value, bool):
+        return None
+    if isinstance(value, (int, float)):
+        secs = float(value)
+    elif isinstance(value, str):
+        text = value.strip()
+        if not text or text[0] in "+-" or not any(ch.isalpha() for ch in text):
+            return None
+        try:
+            secs = pd.Timedelta(text).total_seconds()
+        except (ValueError, TypeError, OverflowError):
+            return None
+    else:
+        return None
+    if not math.isfinite(secs) or secs <= 0 or secs > 3650 * 86400:
+        return None
+    return secs
+
+
+def qc_settings_from(raw: Mapping[str, Any] | None, keypath: str) -> tuple[QcSettings, list[str]]:
+    """Validate a station's ``qc`` table.
+
+    Parameters
+    ----------
+    raw : dict
+        The parsed TOML table (may be empty or None: all defaults).
+    keypath : str
+        Where the table sits, e.g. ``"stations[0].qc"``; every message starts with it.
+
+    Returns
+    -------
+    (QcSettings, list of str)
+        The settings (defaults where a value was bad) and the problems found.
+    """
+    errors: list[str] = []
+    if raw is None:
+        raw = {}
+    if not isinstance(raw, Mapping):
+        return QcSettings(), [f"{keypath}: expected a table of quality-control settings, got {type(raw).__name__}"]
+    known = [f.name for f in fields(QcSettings)]
+    values: dict[str, Any] = {}
+    for key, val in raw.items():
+        kp = f"{keypath}.{key}"
+        if key not in known:
+            import difflib
+            near = difflib.get_close_matches(str(key), known, n=1)
+            hint = f" (did you mean {near[0]!r}?)" if near else ""
+            errors.append(f"{kp}: unknown key{hint}")
+            continue
+        if key in _DURATION_KEYS:
+            secs = parse_duration(val)
+            if secs is None:
+                errors.append(f"{kp}: expected a positive duration such as \"30min\", \"25h\" or a number "
+                              f"of seconds, got {val!r}")
+            else:
+                values[key] = secs
+            continue
+        if isinstance(val, bool) or not isinstance(val, (int, float)) or not math.isfinite(float(val)):
+            errors.append(f"{kp}: expected a number, got {val!r}")
+            continue
+        val = float(val)
+        if key in _SIGNED_KEYS:
+            if abs(val) > 1000:
+                errors.append(f"{kp}: expected metres on the station datum within +-1000, got {val!r}")
+                continue
+        elif val <= 0:
+            errors.append(f"{kp}: expected a positive number, got {val!r}")
+            continue
+        values[key] = val
+    settings = QcSettings(**values)
+    for lo, hi in _ORDERED:
+        a, b = getattr(settings, lo), getattr(settings, hi)
+        if a is not None and b is not None and not a < b:
+            which = hi if hi in values else lo
+            errors.append(f"{keypath}.{which}: {lo} ({a:g}) must be below {hi} ({b:g})")
+    if errors:
+        # A bad value must not leave inconsistent thresholds behind.
+        good = {k: v for k, v in values.items() if not any(e.startswith(f"{keypath}.{k}:") for e in errors)}
+        try:
+            settings = QcSettings(**good)
+        except TypeError:
+            settings = QcSettings()
+    return settings, errors
+
+
+# --------------------------------------------------------------------------- helpers
+
+def utc_index(index: pd.Index) -> pd.DatetimeIndex:
+    """The index as a UTC DatetimeIndex (naive taken as UTC)."""
+    if not isinstance(index, pd.DatetimeIndex):
+        raise TypeError("quality-control series need a DatetimeIndex")
+    return index.tz_localize("UTC") if index.tz is None else index.tz_convert("UTC")
+
+
+def seconds(index: pd.Index) -> np.ndarray:
+    """Unix seconds (float) of a DatetimeIndex."""
+    return utc_index(index).as_unit("ns").asi8 / 1e9
+
+
+def _flags(index: pd.Index, values: np.ndarray, name: str) -> pd.Series:
+    return pd.Series(np.asarray(values, dtype=np.int8), index=index, name=name)
+
+
+def _neighbour_ok(t: np.ndarray, limit: float) -> tuple[np.ndarray, np.ndarray]:
+    """Whether the previous / next sample exists within ``limit`` seconds."""
+    dt = np.diff(t)
+    close = (dt > 0) & (dt <= limit)
+    prev_ok = np.concatenate([[False], close])
+    next_ok = np.concatenate([close, [False]])
+    return prev_ok, next_ok
+
+
+def _window(seconds_: float) -> str:
+    return f"{int(round(seconds_))}s"
+
+
+# --------------------------------------------------------------------------- tests
+
+def gap_test(level: pd.Series, gap_limit: float, now: float | None = None,
+             future_tolerance: float = 120.0) -> pd.Series:
+    """Timing/gap test (QARTOD Test 1).
+
+    Parameters
+    ----------
+    level : Series
+        Levels [m] on a UTC DatetimeIndex, sorted.
+    gap_limit : float
+        A sample that follows a silence longer than this [s] is suspect.
+    now : float, optional
+        Processing time [Unix s]; samples stamped later than ``now + future_tolerance``
+        fail (a wrong clock). Not checked when None.
+    future_tolerance : float
+        [s].
+
+    Returns
+    -------
+    Series of int8 flags. Time stamps that do not increase fail.
+
+    References
+    ----------
+    U.S. IOOS (2021), QARTOD water level manual v2.1, Test 1 (timing/gap).
+    """
+    t = seconds(level.index)
+    flags = np.full(len(t), PASS, dtype=np.int8)
+    if len(t):
+        dt = np.diff(t)
+        after_gap = np.concatenate([[False], dt > gap_limit])
+        flags[after_gap] = SUSPECT
+        flags[np.concatenate([[False], dt <= 0])] = FAIL
+        if now is not None:
+            flags[t > now + future_tolerance] = FAIL
+    return _flags(level.index, flags, "gap")
+
+
+def find_gaps(index: pd.Index, gap_limit: float) -> pd.DataFrame:
+    """Silences longer than ``gap_limit`` [s]: columns ``start`` (last sample before),
+    ``end`` (first sample after) as UTC Timestamps and ``seconds``."""
+    t = seconds(index)
+    dt = np.diff(t)
+    at = np.flatnonzero(dt > gap_limit)
+    idx = utc_index(index)
+    return pd.DataFrame({"start": idx[at], "end": idx[at + 1], "seconds": dt[at]})
+
+
+def syntax_test(level: pd.Series) -> pd.Series:
+    """Syntax (QARTOD Test 2): a stored sample already passed the parser; a missing
+    value (NaN) is 9.
+
+    References
+    ----------
+    U.S. IOOS (2021), QARTOD water level manual v2.1, Test 2 (syntax).
+    """
+    v = level.to_numpy(dtype=float)
+    return _flags(level.index, np.where(np.isfinite(v), PASS, MISSING), "syntax")
+
+
+def gross_range_test(level: pd.Series, fail_min: float, fail_max: float,
+                     suspect_min: float | None = None, suspect_max: float | None = None) -> pd.Series:
+    """Gross range (QARTOD Test 3): outside the sensor limits fails, outside the
+    operator's limits is suspect.
+
+    Parameters
+    ----------
+    level : Series
+        [m] on the station datum.
+    fail_min, fail_max : float
+        Sensor measuring range [m].
+    suspect_min, suspect_max : float, optional
+        Operator's range [m]; not checked when None.
+
+    References
+    ----------
+    U.S. IOOS (2021), QARTOD water level manual v2.1, Test 3 (gross range).
+    """
+    v = level.to_numpy(dtype=float)
+    flags = np.full(len(v), PASS, dtype=np.int8)
+    if suspect_min is not None:
+        flags[v < suspect_min] = SUSPECT
+    if suspect_max is not None:
+        flags[v > suspect_max] = SUSPECT
+    flags[(v < fail_min) | (v > fail_max)] = FAIL
+    flags[~np.isfinite(v)] = NOT_EVALUATED
+    return _flags(level.index, flags, "gross")
+
+
+def expected_range_test(level: pd.Series, predicted: pd.Series | None, margin: float) -> pd.Series:
+    """Expected range: further than ``margin`` [m] from the predicted tide is suspect.
+
+    Not evaluated (2) without a prediction.
+
+    References
+    ----------
+    U.S. IOOS (2021), QARTOD water level manual v2.1, Test 4 (climatology), with the
+    predicted tide as the expected value.
+    """
+    if predicted is None:
+        return _flags(level.index, np.full(len(level), NOT_EVALUATED), "expected")
+    d = level.to_numpy(dtype=float) - np.asarray(predicted, dtype=float)
+    flags = np.where(np.abs(d) > margin, SUSPECT, PASS)
+    flags = np.where(np.isfinite(d), flags, NOT_EVALUATED)
+    return _flags(level.index, flags, "expected")
+
+
+def spike_test(resid: pd.Series, suspect: float, fail: float, gap_limit: float) -> pd.Series:
+    """Spike test (QARTOD Test 5) on the residual.
+
+    The statistic is ``|r(n) - (r(n-1) + r(n+1)) / 2|`` [m]; above ``suspect`` the
+    sample is suspect, above ``fail`` it fails. A sample without both neighbours
+    within ``gap_limit`` [s] (the newest one, say) is not evaluated (2).
+
+    References
+    ----------
+    U.S. IOOS (2021), QARTOD water level manual v2.1, Test 5 (spike); applied to the
+    residual rather than the level so the tide's curvature is not taken for a spike.
+    """
+    r = resid.to_numpy(dtype=float)
+    t = seconds(resid.index)
+    prev_ok, next_ok = _neighbour_ok(t, gap_limit)
+    flags = np.full(len(r), NOT_EVALUATED, dtype=np.int8)
+    if len(r) >= 3:
+        stat = np.full(len(r), np.nan)
+        stat[1:-1] = np.abs(r[1:-1] - 0.5 * (r[:-2] + r[2:]))
+        ok = prev_ok & next_ok & np.isfinite(stat)
+        flags[ok] = PASS
+        flags[ok & (stat > suspect)] = SUSPECT
+        flags[ok & (stat > fail)] = FAIL
+    return _flags(resid.index, flags, "spike")
+
+
+def rate_of_change_test(resid: pd.Series, n_dev: float, window: float, floor: float,
+                        fail_m_per_min: float, gap_limit: float,
+                        exclude: np.ndarray | None = None) -> pd.Series:
+    """Rate of change (QARTOD Test 6) on the residual.
+
+    The change from the previous usable sample is suspect when it exceeds
+    ``max(n_dev * sd, floor)`` [m], ``sd`` the standard deviation of the residual over
+    the previous ``window`` [s]; it fails when the rate exceeds ``fail_m_per_min``.
+    Samples in ``exclude`` (already failed as spikes, say) are skipped as "previous
+    sample", so the good sample after a spike is not blamed for the jump back.
+
+    References
+    ----------
+    U.S. IOOS (2021), QARTOD water level manual v2.1, Test 6 (rate of change).
+    """
+    r = resid.to_numpy(dtype=float)
+    t = seconds(resid.index)
+    n = len(r)
+    flags = np.full(n, NOT_EVALUATED, dtype=np.int8)
+    if n < 2:
+        return _flags(resid.index, flags, "roc")
+    ok = np.isfinite(r)
+    if exclude is not None:
+        ok &= ~np.asarray(exclude, dtype=bool)
+    # Last usable value strictly before each sample.
+    pos = np.where(ok, np.arange(n), -1)
+    last = np.maximum.accumulate(pos)
+    prev = np.concatenate([[-1], last[:-1]])
+    has_prev = prev >= 0
+    pi = np.where(has_prev, prev, 0)
+    dv = r - r[pi]
+    dt = t - t[pi]
+    evaluated = has_prev & (dt > 0) & (dt <= gap_limit) & np.isfinite(r)
+    sd = pd.Series(np.where(ok, r, np.nan), index=utc_index(resid.index)).rolling(
+        _window(window), min_periods=10).std().to_numpy()
+    sd = np.concatenate([[np.nan], sd[:-1]])  # of the previous samples only
+    limit = np.maximum(np.nan_to_num(n_dev * sd, nan=0.0), floor)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        rate = np.abs(dv) / np.where(dt > 0, dt, np.nan) * 60.0
+    flags[evaluated] = PASS
+    flags[evaluated & (np.abs(dv) > limit)] = SUSPECT
+    flags[evaluated & (rate > fail_m_per_min)] = FAIL
+    return _flags(resid.index, flags, "roc")
+
+
+def flat_line_test(level: pd.Series, tolerance: float, suspect_after: float, fail_after: float,
+                   gap_limit: float) -> pd.Series:
+    """Flat line (QARTOD Test 7): a stuck float or frozen logger.
+
+    A sample is suspect when every sample of the last ``suspect_after`` [s] lies
+    within ``tolerance`` [m] of it, and fails after ``fail_after`` [s]. Runs on the
+    level itself: a stuck sensor repeats its reading whatever the tide does.
+
+    References
+    ----------
+    U.S. IOOS (2021), QARTOD water level manual v2.1, Test 7 (flat line); durations in
+    place of repeat counts.
+    """
+    v = level.to_numpy(dtype=float)
+    t = seconds(level.index)
+    idx = utc_index(level.index)
+    flags = np.full(len(v), PASS, dtype=np.int8)
+    frame = pd.DataFrame({"v": v, "t": t}, index=idx)
+    for duration, code in ((suspect_after, SUSPECT), (fail_after, FAIL)):
+        roll = frame.rolling(_window(duration + gap_limit), min_periods=2)
+        vmax = roll["v"].max().to_numpy()
+        vmin = roll["v"].min().to_numpy()
+        tmin = roll["t"].min().to_numpy()
+        flat = (vmax - v < tolerance) & (v - vmin < tolerance) & (t - tmin >= duration)
+        flags[flat] = code
+    flags[~np.isfinite(v)] = NOT_EVALUATED
+    return _flags(level.index, flags, "flat")
+
+
+def multi_sensor_test(level: pd.Series, other: pd.Series | None, suspect: float,
+                      gap_limit: float) -> pd.Series:
+    """Multi-sensor difference: suspect where this sensor and the other differ by more
+    than ``suspect`` [m].
+
+    The other sensor is interpolated to this one's times when it has samples on both
+    sides within ``gap_limit`` [s]; elsewhere, or without another sensor, the test is
+    not evaluated (2). Pass the other sensor's usable samples only.
+
+    References
+    ----------
+    U.S. IOOS (2021), QARTOD water level manual v2.1 (multi-variate comparison);
+    IOC Manual Vol. IV on redundant sensors.
+    """
+    flags = np.full(len(level), NOT_EVALUATED, dtype=np.int8)
+    if other is None or other.dropna().empty:
+        return _flags(level.index, flags, "multi")
+    d = difference_at(level, other, gap_limit)
+    ok = np.isfinite(d)
+    flags[ok] = PASS
+    flags[ok & (np.abs(d) > suspect)] = SUSPECT
+    return _flags(level.index, flags, "multi")
+
+
+def difference_at(level: pd.Series, other: pd.Series, gap_limit: float) -> np.ndarray:
+    """``level - other`` at ``level``'s times [m]; NaN where ``other`` has no sample on
+    both sides within ``gap_limit`` [s] (an exact time match is always used)."""
+    other = other.dropna()
+    t = seconds(level.index)
+    to = seconds(other.index)
+    vo = other.to_numpy(dtype=float)
+    if len(to) == 0:
+        return np.full(len(t), np.nan)
+    j = np.searchsorted(to, t)
+    jl = np.clip(j - 1, 0, len(to) - 1)
+    jr = np.clip(j, 0, len(to) - 1)
+    exact = to[jr] == t
+    bracket = (j > 0) & (j < len(to)) & (t - to[jl] <= gap_limit) & (to[jr] - t <= gap_limit)
+    interp = np.interp(t, to, vo)
+    d = level.to_numpy(dtype=float) - interp
+    return np.where(exact | bracket, d, np.nan)
+
+
+def residual_outlier_test(resid: pd.Series, window: float, noise_window: float, k_suspect: float,
+                          k_fail: float, floor_suspect: float, floor_fail: float,
+                          exclude: np.ndarray | None = None) -> pd.Series:
+    """Residual outlier: robust statistics of the residual in rolling windows.
+
+    ``d = r - median(r over a centred window [s])``; its scale is
+    ``sigma = 1.4826 * median(|d|)`` over a longer centred ``noise_window`` [s]. A
+    sample is suspect when ``|d| > max(k_suspect * sigma, floor_suspect)`` and fails
+    when ``|d| > max(k_fail * sigma, floor_fail)`` [m]. Centred windows follow a
+    surge's rise; only a departure from the neighbouring samples counts.
+
+    References
+    ----------
+    Hampel filter: Hampel, F. R. (1974). The influence curve and its role in robust
+    estimation. JASA 69; MAD scale factor 1.4826 for a normal distribution.
+    """
+    idx = utc_index(resid.index)
+    r = resid.to_numpy(dtype=float)
+    ok = np.isfinite(r)
+    if exclude is not None:
+        ok &= ~np.asarray(exclude, dtype=bool)
+    clean = pd.Series(np.where(ok, r, np.nan), index=idx)
+    med = clean.rolling(_window(window), center=True, min_periods=5).median().to_numpy()
+    d = r - med
+    sigma = 1.4826 * pd.Series(np.abs(np.where(ok, d, np.nan)), index=idx).rolling(
+        _window(noise_window), center=True, min_periods=10).median().to_numpy()
+    flags = np.full(len(r), NOT_EVALUATED, dtype=np.int8)
+    ev = np.isfinite(d) & np.isfinite(sigma)
+    flags[ev] = PASS
+    flags[ev & (np.abs(d) > np.maximum(k_suspect * sigma, floor_suspect))] = SUSPECT
+    flags[ev & (np.abs(d) > np.maximum(k_fail * sigma, floor_fail))] = FAIL
+    return _flags(resid.index, flags, "resid")
+
+
+def aggregate_flags(tests: pd.DataFrame) -> pd.Series:
+    """Aggregate flag per sample: the worst evaluated test (4 > 3 > 1); 2 when no test
+    was evaluated; 9 when the value is missing (any test says 9).
+
+    References
+    ----------
+    U.S. IOOS (2021), QARTOD water level manual v2.1 (aggregate flag).
+    """
+    cols = [c for c in TESTS if c in tests.columns]
+    a = tests[cols].to_numpy(dtype=np.int16)
+    a = np.where(a == NOT_EVALUATED, 0, a)
+    worst = a.max(axis=1) if a.shape[1] else np.zeros(len(tests), dtype=np.int16)
+    worst = np.where(worst == 0, NOT_EVALUATED, worst)
+    return pd.Series(worst.astype(np.int8), index=tests.index, name="flag")
+
+
+def apply_overrides(flags: pd.Series, overrides: pd.Series | None) -> pd.Series:
+    """Flags with the technician's overrides (indexed by the same times) winning."""
+    if overrides is None or overrides.empty:
+        return flags
+    out = flags.copy()
+    ov = overrides.copy()
+    ov.index = utc_index(ov.index)
+    out.index = utc_index(out.index)
+    common = out.index.intersection(ov.index)
+    out.loc[common] = ov.loc[common].astype(np.int8).to_numpy()
+    out.index = flags.index
+    return out
+
+
+def usable_mask(flags: Iterable[int] | pd.Series | np.ndarray) -> np.ndarray:
+    """True where a sample may feed alerts, fits and statistics (flag 1, 2 or 3).
+
+    Fail (4) and missing (9) are excluded; suspect (3) is kept but stays marked.
+    """
+    return np.isin(np.asarray(flags), USABLE_FLAGS)
+
+
+def select_usable(frame: pd.DataFrame | pd.Series, flag_column: str = "flag"):
+    """The rows of ``frame`` whose ``flag_column`` is usable (see :func:`usable_mask`)."""
+    if isinstance(frame, pd.Series):
+        raise TypeError("select_usable needs a DataFrame with a flag column")
+    return frame[usable_mask(frame[flag_column].to_numpy())]
+
+
+def run_tests(level: pd.Series, settings: QcSettings | None = None, predicted: Any = None,
+              other: pd.Series | None = None, now: float | None = None) -> pd.DataFrame:
+    """All tests for one sensor.
+
+    Parameters
+    ----------
+    level : Series
+        Observed levels [m] on a sorted UTC DatetimeIndex (NaN = missing).
+    settings : QcSettings
+        Thresholds (defaults when None).
+    predicted : array-like or Series, optional
+        Predicted tide [m] at the same times. Without it the residual tests run on the
+        level itself (fine at one-minute steps, coarse at longer ones) and the expected
+        range is not evaluated.
+    other : Series, optional
+        Usable levels of a co-located sensor [m] for the multi-sensor test.
+    now : float, optional
+        Processing time [Unix s] for the future-time-stamp check.
+
+    Returns
+    -------
+    DataFrame with one int8 column per test in :data:`TESTS` and ``flag`` (aggregate).
+    """
+    s = settings or QcSettings()
+    level = level.astype(float)
+    pred = None
+    if predicted is not None:
+        pred = np.asarray(predicted, dtype=float)
+        resid = level - pred
+    else:
+        resid = level
+    out = pd.DataFrame(index=level.index)
+    out["gap"] = gap_test(level, s.gap_limit, now, s.future_tolerance)
+    out["syntax"] = syntax_test(level)
+    out["gross"] = gross_range_test(level, s.gross_fail_min, s.gross_fail_max,
+                                    s.gross_suspect_min, s.gross_suspect_max)
+    out["expected"] = expected_range_test(level, pred, s.expected_margin)
+    gross_fail = out["gross"].to_numpy() == FAIL
+    # Gross failures would make their neighbours look like spikes: leave them out.
+    resid_clean = resid.where(~gross_fail)
+    out["spike"] = spike_test(resid_clean, s.spike_suspect, s.spike_fail, s.gap_limit)
+    bad = gross_fail | (out["spike"].to_numpy() == FAIL)
+    out["roc"] = rate_of_change_test(resid_clean, s.roc_n_dev, s.roc_window, s.roc_floor,
+                                     s.roc_fail_m_per_min, s.gap_limit, exclude=bad)
+    out["flat"] = flat_line_test(level, s.flat_tolerance, s.flat_suspect_after, s.flat_fail_after, s.gap_limit)
+    out["multi"] = multi_sensor_test(level, other, s.multi_suspect, s.gap_limit)
+    out["resid"] = residual_outlier_test(resid_clean, s.resid_window, s.resid_noise_window, s.resid_suspect_k,
+                                         s.resid_fail_k, s.resid_suspect_floor, s.resid_fail_floor, exclude=bad)
+    missing = out["syntax"].to_numpy() == MISSING
+    for c in TESTS:
+        if c != "syntax":
+            out.loc[missing, c] = NOT_EVALUATED
+    out["flag"] = aggregate_flags(out)
+    return out
+
+
+def episodes(flags: pd.Series, at_least: int = SUSPECT, join_gap: float = 0.0) -> pd.DataFrame:
+    """Runs of consecutive samples flagged ``at_least`` or worse (9 excluded).
+
+    Returns a DataFrame with ``start``, ``end`` (UTC), ``samples`` and ``worst``,
+    ordered by ``worst`` then length (longest first). Runs closer than ``join_gap`` [s]
+    are joined.
+    """
+    f = flags.to_numpy()
+    bad = (f >= at_least) & (f != MISSING) & (f != NOT_EVALUATED)
+    idx = utc_index(flags.index)
+    cols = ["start", "end", "samples", "worst"]
+    if not bad.any():
+        return pd.DataFrame(columns=cols)
+    pos = np.flatnonzero(bad)
+    t = seconds(flags.index)[pos]
+    brk = np.concatenate([[True], (np.diff(pos) > 1) & (np.diff(t) > join_gap)])
+    gid = np.cumsum(brk) - 1
+    df = pd.DataFrame({"i": pos, "g": gid, "f": f[pos]})
+    agg = df.groupby("g").agg(first=("i", "min"), last=("i", "max"), samples=("i", "size"), worst=("f", "max"))
+    out = pd.DataFrame({"start": idx[agg["first"].to_numpy()], "end": idx[agg["last"].to_numpy()],
+                        "samples": agg["samples"].to_numpy(), "worst": agg["worst"].to_numpy()})
+    return out.sort_values(["worst", "samples"], ascending=[False, False]).reset_index(drop=True)
+
+
+# --------------------------------------------------------------------------- store glue
+
+def _db(store: Any):
+    """The sqlite_utils Database behind a Store (or the Database itself)."""
+    return getattr(store, "db", store)
+
+
+def ensure_qc_schema(db: Any) -> None:
+    """Create the quality-control tables if missing (idempotent).
+
+    ``qc_tests`` (station, sensor, t) with one INTEGER flag per test;
+    ``qc_overrides`` (station, sensor, t) with flag, who, why, at;
+    ``staff_readings`` (station, t) with reading [m], who, note.
+    """
+    db = _db(db)
+    db["qc_tests"].create({"station": str, "sensor": str, "t": int, **{c: int for c in TESTS}},
+                          pk=("station", "sensor", "t"), if_not_exists=True)
+    db["qc_overrides"].create({"station": str, "sensor": str, "t": int, "flag": int, "who": str,
+                               "why": str, "at": int}, pk=("station", "sensor", "t"), if_not_exists=True)
+    db["staff_readings"].create({"station": str, "t": int, "reading": float, "who": str, "note": str},
+                                pk=("station", "t"), if_not_exists=True)
+
+
+def read_observations(store: Any, station: str, sensor: str, start_t: float | None = None,
+                      end_t: float | None = None) -> pd.DataFrame:
+    """Observations of one sensor as a DataFrame indexed by UTC time with columns
+    ``value`` [m], ``flag``, ``time_source``."""
+    conn = _db(store).conn
+    sql = "SELECT t, value, flag, time_source FROM observations WHERE station = ? AND sensor = ?"
+    args: list[Any] = [station, sensor]
+    if start_t is not None:
+        sql += " AND t >= ?"
+        args.append(int(math.floor(start_t)))
+    if end_t is not None:
+        sql += " AND t <= ?"
+        args.append(int(math.ceil(end_t)))
+    rows = conn.execute(sql + " ORDER BY t", args).fetchall()
+    if rows:
+        t, v, f, src = zip(*rows)
+    else:
+        t, v, f, src = (), (), (), ()
+    idx = pd.DatetimeIndex(pd.to_datetime(np.asarray(t, dtype=np.int64), unit="s", utc=True), name="time")
+    return pd.DataFrame({"value": np.asarray([np.nan if x is None else x for x in v], dtype=float),
+                         "flag": np.asarray([NOT_EVALUATED if x is None else x for x in f], dtype=np.int16),
+                         "time_source": list(src)}, index=idx)
+
+
+def read_overrides(store: Any, station: str, sensor: str, start_t: float | None = None,
+                   end_t: float | None = None) -> pd.Series:
+    """Manual flags of one sensor, indexed by UTC time."""
+    db = _db(store)
+    ensure_qc_schema(db)
+    sql = "SELECT t, flag FROM qc_overrides WHERE station = ? AND sensor = ?"
+    args: list[Any] = [station, sensor]
+    if start_t is not None:
+        sql += " AND t >= ?"
+        args.append(int(math.floor(start_t)))
+    if end_t is not None:
+        sql += " AND t <= ?"
+        args.append(int(math.ceil(end_t)))
+    rows = db.conn.execute(sql + " ORDER BY t", args).fetchall()
+    t = np.asarray([r[0] for r in rows], dtype=np.int64)
+    return pd.Series(np.asarray([r[1] for r in rows], dtype=np.int8),
+                     index=pd.to_datetime(t, unit="s", utc=True), name="override")
+
+
+def _station_parts(station_cfg: Any) -> tuple[str, list[str]]:
+    """Station id and its level sensors (primary first) from a StationConfig."""
+    sid = getattr(station_cfg, "id", station_cfg)
+    sensors = getattr(station_cfg, "sensors", None)
+    if isinstance(sensors, Mapping):
+        roles = [r for r in sensors if getattr(sensors[r], "is_level", r != "barometer")]
+        roles.sort(key=lambda r: (r != "primary", r))
+    else:
+        roles = ["primary", "backup"]
+    return str(sid), roles
+
+
+def _predict(model: Any, index: pd.DatetimeIndex) -> np.ndarray | None:
+    if model is None or len(index) == 0:
+        return None
+    if callable(model) and not hasattr(model, "predict"):
+        return np.asarray(model(index), dtype=float)
+    return np.asarray(model.predict(index), dtype=float)
+
+
+def run_station_qc(store: Any, station_cfg: Any, settings: QcSettings | None, start_t: float, end_t: float,
+                   model: Any = None, now: float | None = None) -> dict[str, pd.DataFrame]:
+    """Run every test for a station's level sensors over ``[start_t, end_t]`` and store
+    the results.
+
+    Reads the observations from ``start_t - settings.context_seconds()`` (so rolling
+    statistics have their history), runs :func:`run_tests` per sensor (each sensor's
+    usable samples serve as the other's comparison), applies the technician's
+    overrides, and writes ``qc_tests`` and ``observations.flag`` for samples from
+    ``start_t - settings.resid_window`` (samples whose centred windows were incomplete
+    on the previous pass are re-evaluated) to ``end_t``.
+
+    Parameters
+    ----------
+    store : Store or sqlite_utils.Database
+        Anything with a ``db`` attribute (a sqlite_utils Database), or the Database.
+    station_cfg : StationConfig or str
+        The station (its ``id`` and ``sensors``), or a station id (sensors
+        ``primary`` and ``backup``).
+    settings : QcSettings or None
+        Thresholds; defaults when None.
+    start_t, end_t : float
+        Window to (re)evaluate [Unix s, UTC].
+    model : TideModel or callable, optional
+        ``model.predict(DatetimeIndex) -> m``; without it the residual tests run on
+        the level itself.
+    now : float, optional
+        Processing time [Unix s]; defaults to the wall clock.
+
+    Returns
+    -------
+    dict sensor -> DataFrame of the written rows (tests, ``flag`` after overrides).
+    """
+    s = settings or QcSettings()
+    db = _db(store)
+    ensure_qc_schema(db)
+    station, sensors = _station_parts(station_cfg)
+    now = _time.time() if now is None else now
+    read_from = start_t - s.context_seconds()
+    write_from = start_t - s.resid_window
+    obs = {sn: read_observations(db, station, sn, read_from, end_t) for sn in sensors}
+    obs = {sn: df for sn, df in obs.items() if not df.empty}
+    single: dict[str, pd.DataFrame] = {}
+    preds: dict[str, np.ndarray | None] = {}
+    for sn, df in obs.items():
+        preds[sn] = _predict(model, df.index)
+        single[sn] = run_tests(df["value"], s, preds[sn], None, now)
+    results: dict[str, pd.DataFrame] = {}
+    for sn, df in obs.items():
+        tests = single[sn]
+        others = [o for o in obs if o != sn]
+        if others:
+            o = others[0]
+            other_ok = obs[o]["value"].where(single[o]["flag"].to_numpy() != FAIL)
+            tests = tests.copy()
+            tests["multi"] = multi_sensor_test(df["value"], other_ok, s.multi_suspect, s.gap_limit)
+            tests["multi"] = tests["multi"].where(tests["syntax"] != MISSING, NOT_EVALUATED)
+            tests["flag"] = aggregate_flags(tests)
+        t = seconds(tests.index)
+        sel = (t >= write_from) & (t <= end_t)
+        part = tests[sel].copy()
+        ov = read_overrides(db, station, sn, write_from, end_t)
+        part["flag"] = apply_overrides(part["flag"], ov)
+        _write(db, station, sn, part)
+        results[sn] = part
+    return results
+
+
+def _write(db: Any, station: str, sensor: str, part: pd.DataFrame) -> None:
+    if part.empty:
+        return
+    t = (seconds(part.index)).round().astype(np.int64)
+    cols = [part[c].to_numpy(dtype=np.int64) for c in TESTS]
+    rows = [(station, sensor, int(ti), *map(int, vals)) for ti, *vals in zip(t, *cols)]
+    flags = [(int(f), station, sensor, int(ti)) for ti, f in zip(t, part["flag"].to_numpy())]
+    names = ", ".join(TESTS)
+    marks = ", ".join("?" * len(TESTS))
+    with db.conn:
+        db.conn.executemany(
+            f"INSERT OR REPLACE INTO qc_tests (station, sensor, t, {names}) VALUES (?, ?, ?, {marks})", rows)
+        db.conn.executemany("UPDATE observations SET flag = ? WHERE station = ? AND sensor = ? AND t = ?", flags)
+
+
+def set_override(store: Any, station: str, sensor: str, start_t: float, end_t: float | None, flag: int,
+                 who: str, why: str, at: float | None = None) -> int:
+    """Record a technician's flag for the samples of one sensor in ``[start_t, end_t]``.
+
+    With ``end_t`` None the single sample at ``start_t`` is meant; when no sample is
+    stamped exactly then, a UserError names the nearest one. The override wins over
+    automatic flags now and whenever QC is re-run. Returns the number of samples.
+    """
+    if flag not in OVERRIDE_FLAGS:
+        raise UserError(f"--set: expected one of {', '.join(map(str, OVERRIDE_FLAGS))} "
+                        f"(1 pass, 3 suspect, 4 fail), got {flag}")
+    if not who.strip():
+        raise UserError("--who: say who sets the flag")
+    if not why.strip():
+        raise UserError("--why: say why the flag is set")
+    db = _db(store)
+    ensure_qc_schema(db)
+    conn = db.conn
+    lo = int(math.floor(start_t))
+    hi = int(math.ceil(end_t)) if end_t is not None else lo
+    if hi < lo:
+        raise UserError("--to: is before --at")
+    ts = [r[0] for r in conn.execute(
+        "SELECT t FROM observations WHERE station = ? AND sensor = ? AND t BETWEEN ? AND ? ORDER BY t",
+        (station, sensor, lo, hi))]
+    if not ts:
+        near = conn.execute(
+            "SELECT t FROM observations WHERE station = ? AND sensor = ? ORDER BY abs(t - ?) LIMIT 1",
+            (station, sensor, lo)).fetchone()
+        where = f"{station}/{sensor}"
+        if near is None:
+            raise UserError(f"no observations of {where} in the store")
+        iso = pd.Timestamp(near[0], unit="s", tz="UTC").isoformat().replace("+00:00", "Z")
+        raise UserError(f"no sample of {where} at the time given (nearest: {iso}); "
+                        f"give that time, or a range with --to")
+    stamp = int(at if at is not None else _time.time())
+    with conn:
+        conn.executemany(
+            "INSERT OR REPLACE INTO qc_overrides (station, sensor, t, flag, who, why, at) VALUES (?, ?, ?, ?, ?, ?, ?)",
+            [(station, sensor, t, int(flag), who, why, stamp) for t in ts])
+        conn.execute("UPDATE observations SET flag = ? WHERE station = ? AND sensor = ? AND t BETWEEN ? AND ?",
+                     (int(flag), station, sensor, lo, hi))
+    return len(ts)
+
+
+def add_staff_reading(store: Any, station: str, t: float, reading: float, who: str, note: str = "") -> None:
+    """Store a tide-staff reading [m on the station datum] taken at ``t`` [Unix s]."""
+    if not math.isfinite(reading) or abs(reading) > 1000:
+        raise UserError(f"--reading: expected metres on the station datum, got {reading}")
+    if not who.strip():
+        raise UserError("--who: say who read the staff")
+    db = _db(store)
+    ensure_qc_schema(db)
+    db["staff_readings"].upsert({"station": station, "t": int(round(t)), "reading": float(reading),
+                                 "who": who, "note": note or ""}, pk=("station", "t"))
+
+
+def read_staff_readings(store: Any, station: str, start_t: float | None = None,
+                        end_t: float | None = None) -> pd.DataFrame:
+    """Staff readings of a station: DataFrame indexed by UTC time with ``reading`` [m],
+    ``who``, ``note``."""
+    db = _db(store)
+    ensure_qc_schema(db)
+    sql = "SELECT t, reading, who, note FROM staff_readings WHERE station = ?"
+    args: list[Any] = [station]
+    if start_t is not None:
+        sql += " AND t >= ?"
+        args.append(int(math.floor(start_t)))
+    if end_t is not None:
+        sql += " AND t <= ?"
+        args.append(int(math.ceil(end_t)))
+    rows = db.conn.execute(sql + " ORDER BY t", args).fetchall()
+    t = np.asarray([r[0] for r in rows], dtype=np.int64)
+    return pd.DataFrame({"reading": [r[1] for r in rows], "who": [r[2] for r in rows],
+                         "note": [r[3] for r in rows]},
+                        index=pd.DatetimeIndex(pd.to_datetime(t, unit="s", utc=True), name="time"))
