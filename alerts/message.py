@@ -1,0 +1,252 @@
+"""Email composition for alerts: subject, plain text and HTML bodies, the caution.
+
+Nothing that comes from the configuration or the telemetry is trusted: header text is
+stripped of control characters (no header injection), the HTML is rendered by Jinja2
+with autoescaping, and the MIME structure is built by ``email.message.EmailMessage``.
+"""
+from __future__ import annotations
+
+import math
+import re
+from datetime import datetime, timezone
+from email.message import EmailMessage
+from email.utils import format_datetime
+from pathlib import Path
+from typing import Any, Iterable
+from zoneinfo import ZoneInfo, ZoneInfoNotFoundError
+
+import jinja2
+
+from alerts.rules import Event, Rule, StationView
+
+CAUTION = (
+    "This message is automated and unofficial. It comes from a station monitor and is not "
+    "an official warning. Official warnings and your local emergency authorities come "
+    "first: follow their instructions. Defer to local codes and licensed practice."
+)
+
+SUBJECT_PREFIX = "[quaywatch]"
+
+_TEMPLATES = Path(__file__).with_name("templates")
+_env_html = jinja2.Environment(loader=jinja2.FileSystemLoader(_TEMPLATES), autoescape=True,
+                               undefined=jinja2.StrictUndefined)
+_env_text = jinja2.Environment(loader=jinja2.FileSystemLoader(_TEMPLATES), autoescape=False,
+                               undefined=jinja2.StrictUndefined, keep_trailing_newline=True)
+
+# C0/C1 controls, DEL and the Unicode line and paragraph separators.
+_CONTROL = re.compile(r"[\x00-\x1f\x7f-\x9f\u2028\u2029]+")
+
+_WHAT = {
+    "residual_above": "surge residual above a step",
+    "residual_below": "surge residual below a step",
+    "level_above": "water level above a step",
+    "level_below": "water level below a step",
+    "next_high_water_above": "next high water forecast above a step",
+    "feed_silent": "no data from the gauge",
+    "equipment_fault": "equipment faults reported by quality control",
+}
+
+
+def clean_header(text: Any, limit: int = 200) -> str:
+    """One safe header line: control characters (CR, LF, ...) become spaces, length capped."""
+    s = _CONTROL.sub(" ", str(text))
+    s = re.sub(r"\s+", " ", s).strip()
+    return s[:limit]
+
+
+def clean_line(text: Any, limit: int = 500) -> str:
+    """Configured or telemetry text for a body line: control characters removed."""
+    return clean_header(text, limit)
+
+
+def datum_label(name: str) -> str:
+    """``"chart"`` -> ``"chart datum"``; ``"station"`` -> ``"station datum"``."""
+    name = clean_line(name, 60).replace("_", " ")
+    return name if "datum" in name.lower() else f"{name} datum"
+
+
+def _zone(tz: str):
+    try:
+        return ZoneInfo(tz)
+    except (ZoneInfoNotFoundError, ValueError, TypeError):
+        return timezone.utc
+
+
+def format_times(t: int | float, tz: str) -> tuple[str, str]:
+    """Local time with zone abbreviation and UTC, both to the minute."""
+    dt = datetime.fromtimestamp(float(t), tz=timezone.utc)
+    local = dt.astimezone(_zone(tz))
+    return (local.strftime("%Y-%m-%d %H:%M %Z (UTC%z)").replace("(UTC+0000)", "").strip(),
+            dt.strftime("%Y-%m-%d %H:%M UTC"))
+
+
+def _m(x: float | None, signed: bool = False) -> str:
+    if x is None or (isinstance(x, float) and not math.isfinite(x)):
+        return "n/a"
+    return f"{x:+.2f} m" if signed else f"{x:.2f} m"
+
+
+def _duration(seconds: float) -> str:
+    seconds = max(0.0, float(seconds))
+    if seconds < 120:
+        return f"{seconds:.0f} s"
+    if seconds < 7200:
+        return f"{seconds / 60:.0f} min"
+    return f"{seconds / 3600:.1f} h"
+
+
+def value_text(rule: Rule, value: float) -> str:
+    """The watched quantity in words, e.g. ``"residual +0.62 m"``."""
+    if rule.watch.startswith("residual"):
+        return f"{rule.series} {_m(value, signed=True)}"
+    if rule.watch.startswith("level"):
+        return f"water level {_m(value)} above {datum_label(rule.datum)}"
+    if rule.watch == "next_high_water_above":
+        return f"next high water {_m(value)} above {datum_label(rule.datum)}"
+    if rule.watch == "feed_silent":
+        return f"no data for {_duration(value)}"
+    n = int(value)
+    return f"{n} equipment fault{'s' if n != 1 else ''}"
+
+
+def step_text(rule: Rule, at: float) -> str:
+    if rule.watch == "feed_silent":
+        return _duration(at)
+    if rule.watch == "equipment_fault":
+        return f"{int(at)} fault{'s' if int(at) != 1 else ''}"
+    if rule.watch.startswith("residual"):
+        return _m(at, signed=True)
+    return f"{_m(at)} above {datum_label(rule.datum)}"
+
+
+def _fault_line(f: Any) -> str:
+    if isinstance(f, dict):
+        parts = [str(f.get("kind", "fault"))]
+        if f.get("value") is not None:
+            parts.append(f"value {f.get('value')}")
+        if f.get("limit") is not None:
+            parts.append(f"limit {f.get('limit')}")
+        if f.get("since") is not None:
+            parts.append(f"since {f.get('since')}")
+        return clean_line(", ".join(parts))
+    return clean_line(f)
+
+
+def facts_lines(rule: Rule, station: StationView, facts: dict) -> list[tuple[str, str]]:
+    """Label/text pairs for the readings block; missing facts are left out.
+
+    ``facts`` keys (all optional): ``observed``, ``predicted``, ``residual`` [m, station
+    datum], ``trend`` [m over ``trend_window`` s], ``next_high_water`` (dict with ``time``
+    [Unix s], ``level`` [m, station datum], ``uncertainty`` [m]), ``feed_age`` [s].
+    """
+    offset = rule.datum_offset if rule.watch.startswith("level") or rule.watch == "next_high_water_above" else 0.0
+    dlabel = datum_label(rule.datum if offset or rule.datum != "station" else "station")
+    out: list[tuple[str, str]] = []
+    obs, pred, res = facts.get("observed"), facts.get("predicted"), facts.get("residual")
+    if obs is not None and math.isfinite(obs):
+        out.append(("Observed level", f"{_m(obs - offset)} above {dlabel}"))
+    if pred is not None and math.isfinite(pred):
+        out.append(("Predicted tide", f"{_m(pred - offset)} above {dlabel}"))
+    if res is not None and math.isfinite(res):
+        out.append(("Residual (surge)", _m(res, signed=True)))
+    trend = facts.get("trend")
+    if trend is not None and math.isfinite(trend):
+        window = facts.get("trend_window", 3600)
+        out.append((f"Change over last {_duration(window)}", _m(trend, signed=True)))
+    hw = facts.get("next_high_water")
+    if isinstance(hw, dict) and hw.get("level") is not None and hw.get("time") is not None:
+        loc, _ = format_times(hw["time"], station.tz)
+        unc = hw.get("uncertainty")
+        spread = f" \u00b1 {_m(unc)}" if unc is not None and math.isfinite(unc) else ""
+        out.append(("Next high water forecast",
+                    f"{_m(hw['level'] - offset)}{spread} above {dlabel} at {loc}"))
+    age = facts.get("feed_age")
+    if age is not None and math.isfinite(age):
+        out.append(("Last data received", f"{_duration(age)} ago"))
+    return out
+
+
+def compose_alert(station: StationView, rule: Rule, event: Event, facts: dict | None = None,
+                  step_index: int | None = None) -> tuple[str, str, str]:
+    """Subject, plain text and HTML for an episode event.
+
+    Parameters
+    ----------
+    station : StationView
+    rule : Rule
+    event : Event
+        ``opened``, ``escalated`` or ``cleared``; ``event.value`` in the rule's units.
+    facts : dict, optional
+        Readings to show (see :func:`facts_lines`) and ``faults`` (list of dicts).
+
+    Returns
+    -------
+    subject, text, html : str
+    """
+    facts = facts or {}
+    step = rule.steps[event.level if step_index is None else step_index]
+    sname = clean_header(station.name, 80)
+    vtext = value_text(rule, event.value)
+    if event.kind == "opened":
+        headline = f"{sname}: {step.name} - {vtext}"
+        subject = f"{SUBJECT_PREFIX} {sname}: {step.name} - {vtext}"
+    elif event.kind == "escalated":
+        headline = f"{sname}: now {step.name} - {vtext}"
+        subject = f"{SUBJECT_PREFIX} {sname}: up to {step.name} - {vtext}"
+    elif event.kind == "cleared":
+        headline = f"{sname}: all clear for {rule.id} (highest step was {step.name}) - {vtext}"
+        subject = f"{SUBJECT_PREFIX} {sname}: all clear ({step.name} over) - {vtext}"
+    else:
+        raise ValueError(f"unknown event kind {event.kind!r}")
+    local, utc = format_times(event.t, station.tz)
+    ctx = dict(
+        subject=clean_header(subject), headline=clean_line(headline), caution=CAUTION,
+        station_name=clean_line(station.name, 120), station_id=clean_line(station.id, 80),
+        rule_id=clean_line(rule.id, 80), what=_WHAT[rule.watch], step_name=clean_line(step.name, 60),
+        step_at=step_text(rule, step.at), value_text=clean_line(vtext), local_time=local, utc_time=utc,
+        facts=facts_lines(rule, station, facts),
+        faults=[_fault_line(f) for f in facts.get("faults") or []],
+        note=clean_line(rule.note, 1000), station_notes=clean_line(station.notes, 1000),
+        url=clean_line(station.url, 300),
+    )
+    text = _env_text.get_template("alert_event.txt").render(ctx)
+    html = _env_html.get_template("alert_event.html").render(ctx)
+    return ctx["subject"], text, html
+
+
+def compose_test(now: int | float, host: str = "") -> tuple[str, str, str]:
+    """Subject, plain text and HTML of the mail-settings test message."""
+    _, utc = format_times(now, "UTC")
+    subject = f"{SUBJECT_PREFIX} test message ({utc})"
+    ctx = dict(subject=subject, utc_time=utc, host=clean_line(host, 120), caution=CAUTION)
+    return (subject, _env_text.get_template("alert_test.txt").render(ctx),
+            _env_html.get_template("alert_test.html").render(ctx))
+
+
+def build_email(sender: str, recipient: str, subject: str, text: str, html: str | None,
+                message_id: str, *, date: float | None = None, reply_to: str | None = None,
+                attachments: Iterable[dict] = ()) -> EmailMessage:
+    """A MIME message: plain text, optional HTML alternative, optional attachments.
+
+    Attachments are dicts with ``filename``, ``content_type`` and ``data`` (bytes).
+    Header values are cleaned of control characters first, so nothing configured or
+    received can add a header.
+    """
+    msg = EmailMessage()
+    msg["From"] = clean_header(sender)
+    msg["To"] = clean_header(recipient)
+    if reply_to:
+        msg["Reply-To"] = clean_header(reply_to)
+    msg["Subject"] = clean_header(subject, 250)
+    msg["Message-ID"] = clean_header(message_id)
+    msg["Date"] = format_datetime(datetime.fromtimestamp(date, tz=timezone.utc) if date is not None
+                                  else datetime.now(timezone.utc))
+    msg["Auto-Submitted"] = "auto-generated"  # RFC 3834: keeps auto-responders from replying
+    msg.set_content(text)
+    if html:
+        msg.add_alternative(html, subtype="html")
+    for att in attachments:
+        maintype, _, subtype = (att.get("content_type") or "application/octet-stream").partition("/")
+        msg.add_attachment(att["data"], maintype=maintype, subtype=subtype or "octet-stream",
+                           filename=clean_header(att.get("filename") or "attachment", 120))
+    return msg

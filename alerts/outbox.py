@@ -1,0 +1,510 @@
+"""Store-and-forward outbox and SMTP delivery.
+
+Every message is written to the ``outbox`` table (one row per recipient) before any
+attempt to send it. Delivery takes rows in order per recipient: an undelivered earlier
+message blocks later ones to the same address, so nobody reads an all-clear before the
+alert it closes. Each row carries a Message-ID fixed when it is queued; a row is marked
+``sending`` (with a lease) before the SMTP transaction and ``sent`` after it, so a crash
+in between leads at worst to a resend that mail clients recognise by its Message-ID,
+never to a loss. Failures are retried with exponential back-off until the operator's
+expiry, then the row is marked ``expired``, logged and listed, never dropped silently.
+
+Mail settings (a ``[mail]`` table)::
+
+    sender        = "Quay monitor <gauge@port.example>"
+    host          = "smtp.port.example"
+    port          = 587                    # default: 587 starttls, 465 tls, 25 none
+    security      = "starttls"             # starttls | tls | none (none: loopback hosts only)
+    user          = "gauge"                # omit for no authentication
+    password_env  = "QUAYWATCH_SMTP_PASSWORD"   # or password_file = "/etc/quaywatch/smtp.pw"
+    timeout       = "30s"
+    retry_first   = "1min"                 # first back-off; doubles per failure
+    retry_max     = "30min"                # longest back-off
+    give_up_after = "2d"                   # then the message is marked expired and reported
+    reply_to      = "harbour-office@port.example"   # optional
+    save_dir      = "mail-copies"          # optional: a copy of every sent message as .eml;
+                                           # with no host, messages are only saved there
+"""
+from __future__ import annotations
+
+import base64
+import contextlib
+import ipaddress
+import json
+import logging
+import os
+import re
+import smtplib
+import socket
+import ssl
+import time
+import uuid
+from dataclasses import dataclass, field
+from datetime import datetime
+from email.utils import parseaddr
+from pathlib import Path
+from typing import Any, Iterable, Iterator
+
+from alerts.message import build_email, clean_header
+from alerts.rules import parse_duration
+
+log = logging.getLogger(__name__)
+
+OUTBOX = "outbox"
+FINAL = ("sent", "expired")
+
+
+# --------------------------------------------------------------------------- helpers
+
+def unix_seconds(t: Any = None) -> int:
+    """Unix seconds UTC from None (now), a number, a datetime or a pandas Timestamp."""
+    if t is None:
+        return int(time.time())
+    if isinstance(t, (int, float)):
+        return int(t)
+    if hasattr(t, "timestamp"):
+        if isinstance(t, datetime) and t.tzinfo is None:
+            raise ValueError("naive datetime: give a time zone (UTC)")
+        return int(t.timestamp())
+    raise TypeError(f"not a time: {t!r}")
+
+
+@contextlib.contextmanager
+def transaction(db) -> Iterator[None]:
+    """One write transaction on a ``sqlite_utils.Database`` (joins an open one)."""
+    conn = db.conn
+    if conn.in_transaction:
+        yield
+        return
+    conn.execute("BEGIN IMMEDIATE")
+    try:
+        yield
+    except BaseException:
+        conn.rollback()
+        raise
+    conn.commit()
+
+
+def ensure_outbox_schema(db) -> None:
+    """Create the ``outbox`` table and its indexes if missing."""
+    if OUTBOX not in db.table_names():
+        db[OUTBOX].create({
+            "id": int, "created_at": int, "kind": str, "key": str, "recipient": str,
+            "subject": str, "text": str, "html": str, "attachments": str, "message_id": str,
+            "status": str, "attempts": int, "next_try": int, "claimed_until": int,
+            "last_try": int, "last_error": str, "sent_at": int, "expired_at": int,
+        }, pk="id", not_null={"created_at", "kind", "key", "recipient", "subject", "text",
+                              "message_id", "status"}, defaults={"status": "pending", "attempts": 0},
+            if_not_exists=True)
+        db[OUTBOX].create_index(["key", "recipient"], unique=True, if_not_exists=True)
+        db[OUTBOX].create_index(["status", "recipient", "id"], if_not_exists=True)
+
+
+def _make_message_id(kind: str) -> str:
+    host = re.sub(r"[^A-Za-z0-9.-]", "", socket.gethostname()) or "localhost"
+    kind = re.sub(r"[^A-Za-z0-9-]", "", kind)[:20] or "msg"
+    return f"<{uuid.uuid4().hex}.{kind}@{host}.quaywatch>"
+
+
+def _encode_attachments(attachments: Iterable[Any] | None) -> str | None:
+    if not attachments:
+        return None
+    out = []
+    for att in attachments:
+        if isinstance(att, (str, Path)):
+            p = Path(att)
+            name, data = p.name, p.read_bytes()
+            ctype = {".html": "text/html", ".png": "image/png", ".csv": "text/csv",
+                     ".pdf": "application/pdf", ".txt": "text/plain"}.get(p.suffix.lower(),
+                                                                           "application/octet-stream")
+        elif isinstance(att, dict):
+            name, data, ctype = att["filename"], att["data"], att.get("content_type")
+        else:
+            name, data, ctype = att
+        if isinstance(data, str):
+            data = data.encode("utf-8")
+        out.append({"filename": str(name), "content_type": ctype or "application/octet-stream",
+                    "data": base64.b64encode(data).decode("ascii")})
+    return json.dumps(out)
+
+
+def _decode_attachments(text: str | None) -> list[dict]:
+    if not text:
+        return []
+    return [dict(a, data=base64.b64decode(a["data"])) for a in json.loads(text)]
+
+
+def enqueue(db, recipients: Iterable[str], subject: str, text: str, html: str | None, kind: str,
+            key: str, attachments: Iterable[Any] | None = None, now: Any = None) -> list[int]:
+    """Queue one message for each recipient; idempotent per (``key``, recipient).
+
+    Parameters
+    ----------
+    db : sqlite_utils.Database
+    recipients : iterable of str
+        Addresses; one outbox row (and one Message-ID) each.
+    subject, text, html : str
+        Already composed; ``html`` may be None for plain text only.
+    kind : str
+        What this is, for listing: ``alert``, ``all_clear``, ``report``, ``test``...
+    key : str
+        Caller's identity for the message; queuing the same key to the same recipient
+        again does nothing, so a retried job cannot queue a duplicate.
+    attachments : iterable, optional
+        Paths, ``(filename, bytes, content_type)`` tuples or dicts with those keys.
+    now : time, optional
+        Queue time (default: the clock).
+
+    Returns
+    -------
+    list of int
+        Outbox ids of the rows added (rows already queued under the key are not repeated).
+    """
+    ensure_outbox_schema(db)
+    t = unix_seconds(now)
+    att = _encode_attachments(attachments)
+    ids: list[int] = []
+    with transaction(db):
+        for rcpt in dict.fromkeys(r.strip() for r in recipients if r and r.strip()):
+            cur = db.conn.execute(
+                "INSERT OR IGNORE INTO outbox (created_at, kind, key, recipient, subject, text, html,"
+                " attachments, message_id, status, attempts, next_try) "
+                "VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, 'pending', 0, ?)",
+                (t, kind, key, rcpt, subject, text, html, att, _make_message_id(kind), t))
+            if cur.rowcount == 1:
+                ids.append(cur.lastrowid)
+    return ids
+
+
+# --------------------------------------------------------------------------- settings
+
+@dataclass(frozen=True)
+class MailSettings:
+    """Validated mail settings. Holds where the password is, never the password."""
+
+    sender: str
+    host: str | None = None
+    port: int = 587
+    security: str = "starttls"
+    user: str | None = None
+    password_env: str | None = None
+    password_file: str | None = None
+    timeout: float = 30.0
+    retry_first: float = 60.0
+    retry_max: float = 1800.0
+    give_up_after: float = 2 * 86400.0
+    reply_to: str | None = None
+    save_dir: str | None = None
+
+    def password(self) -> str | None:
+        """Read the password now, from the environment or the file (never stored)."""
+        if self.password_env:
+            value = os.environ.get(self.password_env)
+            if value is None:
+                raise RuntimeError(f"environment variable {self.password_env} is not set")
+            return value
+        if self.password_file:
+            try:
+                return Path(self.password_file).read_text(encoding="utf-8").rstrip("\r\n")
+            except OSError as exc:
+                raise RuntimeError(f"cannot read password file {self.password_file}: {exc.strerror}") from None
+        return None
+
+    def backoff(self, attempts: int) -> float:
+        """Seconds to wait after the ``attempts``-th failure (doubling, capped)."""
+        return min(self.retry_max, self.retry_first * 2 ** max(0, attempts - 1))
+
+
+_LOOPBACK_NAMES = {"localhost", "localhost.localdomain", "ip6-localhost"}
+
+
+def _is_loopback(host: str) -> bool:
+    if host.lower() in _LOOPBACK_NAMES:
+        return True
+    try:
+        return ipaddress.ip_address(host).is_loopback
+    except ValueError:
+        return False
+
+
+def mail_settings_from(raw: Any, keypath: str) -> tuple[MailSettings | None, list[str]]:
+    """Validate the mail settings table.
+
+    Returns
+    -------
+    settings : MailSettings or None
+        None when there are errors.
+    errors : list of str
+        Each starts with the key path.
+    """
+    if not isinstance(raw, dict):
+        return None, [f"{keypath}: expected a table of mail settings"]
+    errors: list[str] = []
+    known = {"sender", "host", "port", "security", "user", "password_env", "password_file",
+             "timeout", "retry_first", "retry_max", "give_up_after", "reply_to", "save_dir"}
+    for key in raw:
+        if key not in known:
+            errors.append(f"{keypath}.{key}: unknown key (known: {', '.join(sorted(known))})")
+
+    def text(key: str, required: bool = False) -> str | None:
+        v = raw.get(key)
+        if v is None:
+            if required:
+                errors.append(f"{keypath}.{key}: required")
+            return None
+        if not isinstance(v, str) or not v.strip() or clean_header(v) != v.strip():
+            errors.append(f"{keypath}.{key}: expected a single line of text, got {v!r}")
+            return None
+        return v.strip()
+
+    sender = text("sender", required=True)
+    if sender and "@" not in parseaddr(sender)[1]:
+        errors.append(f"{keypath}.sender: not an email address: {sender!r}")
+    reply_to = text("reply_to")
+    if reply_to and "@" not in parseaddr(reply_to)[1]:
+        errors.append(f"{keypath}.reply_to: not an email address: {reply_to!r}")
+    host = text("host")
+    save_dir = text("save_dir")
+    if host is None and save_dir is None:
+        errors.append(f"{keypath}.host: required (or save_dir, to only keep messages as files)")
+    security = raw.get("security", "starttls")
+    if security not in ("starttls", "tls", "none"):
+        errors.append(f"{keypath}.security: one of starttls, tls, none (got {security!r})")
+        security = "starttls"
+    if security == "none" and host and not _is_loopback(host):
+        errors.append(f"{keypath}.security: 'none' sends in clear text; only allowed to a loopback "
+                      f"host (127.0.0.1, localhost), not {host!r}")
+    port = raw.get("port", {"starttls": 587, "tls": 465, "none": 25}[security])
+    if isinstance(port, bool) or not isinstance(port, int) or not 0 < port < 65536:
+        errors.append(f"{keypath}.port: expected a port number, got {port!r}")
+        port = 587
+    user = text("user")
+    penv, pfile = text("password_env"), text("password_file")
+    if penv and pfile:
+        errors.append(f"{keypath}.password_file: give password_env or password_file, not both")
+    if user and not (penv or pfile):
+        errors.append(f"{keypath}.user: a user needs password_env or password_file")
+    if (penv or pfile) and not user:
+        errors.append(f"{keypath}.user: required with a password")
+    if (penv or pfile) and security == "none":
+        errors.append(f"{keypath}.security: a password is never sent without TLS; use starttls or tls")
+    if penv and not re.fullmatch(r"[A-Za-z_][A-Za-z0-9_]*", penv):
+        errors.append(f"{keypath}.password_env: the name of an environment variable, got {penv!r}")
+    durations = {}
+    for key, default in (("timeout", 30.0), ("retry_first", 60.0), ("retry_max", 1800.0),
+                         ("give_up_after", 2 * 86400.0)):
+        try:
+            durations[key] = parse_duration(raw[key]) if key in raw else default
+        except ValueError as exc:
+            errors.append(f"{keypath}.{key}: {exc}")
+            durations[key] = default
+        if durations[key] <= 0:
+            errors.append(f"{keypath}.{key}: must be more than zero")
+    if durations["retry_max"] < durations["retry_first"]:
+        errors.append(f"{keypath}.retry_max: shorter than retry_first")
+    if errors:
+        return None, errors
+    return MailSettings(sender=sender, host=host, port=port, security=security, user=user,
+                        password_env=penv, password_file=pfile, reply_to=reply_to,
+                        save_dir=save_dir, **durations), []
+
+
+# --------------------------------------------------------------------------- delivery
+
+@dataclass
+class DeliverySummary:
+    """What one delivery round did. Ids are outbox ids."""
+
+    sent: list[int] = field(default_factory=list)
+    retrying: list[tuple[int, str]] = field(default_factory=list)
+    expired: list[int] = field(default_factory=list)
+    waiting: int = 0
+
+    def as_dict(self) -> dict:
+        return {"sent": self.sent, "retrying": self.retrying, "expired": self.expired,
+                "waiting": self.waiting}
+
+
+class _ConnectionFailed(Exception):
+    """The server could not be reached or refused the session: stop this round."""
+
+
+class _Sender:
+    """A lazily opened SMTP session (or the save-only transport)."""
+
+    def __init__(self, settings: MailSettings):
+        self.s = settings
+        self.smtp: smtplib.SMTP | None = None
+
+    def _open(self) -> smtplib.SMTP:
+        s = self.s
+        try:
+            if s.security == "tls":
+                smtp = smtplib.SMTP_SSL(s.host, s.port, timeout=s.timeout,
+                                        context=ssl.create_default_context())
+            else:
+                smtp = smtplib.SMTP(s.host, s.port, timeout=s.timeout)
+                if s.security == "starttls":
+                    smtp.starttls(context=ssl.create_default_context())
+            if s.user:
+                smtp.login(s.user, s.password() or "")
+        except (OSError, smtplib.SMTPException, RuntimeError, ssl.SSLError) as exc:
+            raise _ConnectionFailed(f"{s.host}:{s.port}: {_describe(exc)}") from None
+        return smtp
+
+    def send(self, msg, sender_addr: str, recipient: str) -> None:
+        if self.s.host is None:
+            return
+        if self.smtp is None:
+            self.smtp = self._open()
+        try:
+            self.smtp.send_message(msg, from_addr=sender_addr, to_addrs=[recipient])
+        except (smtplib.SMTPServerDisconnected, OSError) as exc:
+            self.smtp = None
+            raise _ConnectionFailed(f"{self.s.host}:{self.s.port}: {_describe(exc)}") from None
+
+    def close(self) -> None:
+        if self.smtp is not None:
+            with contextlib.suppress(Exception):
+                self.smtp.quit()
+            self.smtp = None
+
+
+def _describe(exc: BaseException) -> str:
+    if isinstance(exc, smtplib.SMTPResponseException):
+        msg = exc.smtp_error.decode("utf-8", "replace") if isinstance(exc.smtp_error, bytes) else str(exc.smtp_error)
+        return f"{exc.smtp_code} {clean_header(msg, 200)}"
+    if isinstance(exc, smtplib.SMTPRecipientsRefused):
+        return "recipient refused: " + "; ".join(
+            f"{r}: {c} {m.decode('utf-8', 'replace') if isinstance(m, bytes) else m}"
+            for r, (c, m) in exc.recipients.items())
+    return clean_header(f"{type(exc).__name__}: {exc}", 200)
+
+
+def _save_copy(settings: MailSettings, row: dict, msg) -> None:
+    d = Path(settings.save_dir)
+    d.mkdir(parents=True, exist_ok=True)
+    kind = re.sub(r"[^A-Za-z0-9_-]", "", row["kind"]) or "msg"
+    (d / f"{row['id']:06d}-{kind}.eml").write_bytes(msg.as_bytes())
+
+
+def deliver_due(db, settings: MailSettings, now: Any = None, *,
+                recipients: Iterable[str] | None = None) -> DeliverySummary:
+    """Send what is due from the outbox, in order per recipient.
+
+    Parameters
+    ----------
+    db : sqlite_utils.Database
+    settings : MailSettings
+    now : time, optional
+        The delivery round's time (default: the clock); decides back-off and expiry.
+    recipients : iterable of str, optional
+        Only these recipients' queues (the test-mail command uses this).
+
+    Returns
+    -------
+    DeliverySummary
+        Ids sent, ids failed this round with the reason, ids expired, rows still waiting.
+    """
+    ensure_outbox_schema(db)
+    t = unix_seconds(now)
+    only = set(recipients) if recipients is not None else None
+    summary = DeliverySummary()
+
+    rows = [dict(r) for r in db.query(
+        "SELECT * FROM outbox WHERE status NOT IN ('sent', 'expired') ORDER BY id")]
+    if only is not None:
+        rows = [r for r in rows if r["recipient"] in only]
+
+    # Expiry first, so an expired head of a queue does not block the rest.
+    live = []
+    for r in rows:
+        if r["created_at"] + settings.give_up_after <= t and not (
+                r["status"] == "sending" and (r["claimed_until"] or 0) > t):
+            with transaction(db):
+                db.conn.execute("UPDATE outbox SET status = 'expired', expired_at = ? WHERE id = ?"
+                                " AND status NOT IN ('sent', 'expired')", (t, r["id"]))
+            log.error("outbox %d to %s expired undelivered after %d attempts (last error: %s): %s",
+                      r["id"], r["recipient"], r["attempts"] or 0, r["last_error"] or "none",
+                      r["subject"])
+            summary.expired.append(r["id"])
+        else:
+            live.append(r)
+
+    sender_addr = parseaddr(settings.sender)[1]
+    transport = _Sender(settings)
+    blocked: set[str] = set()
+    lease = int(settings.timeout * 4) + 60
+    try:
+        for r in live:
+            if r["recipient"] in blocked:
+                summary.waiting += 1
+                continue
+            busy = r["status"] == "sending" and (r["claimed_until"] or 0) > t
+            if busy or (r["next_try"] or 0) > t:
+                blocked.add(r["recipient"])
+                summary.waiting += 1
+                continue
+            # Claim the row before talking to the server; another process holding a live
+            # lease keeps it.
+            with transaction(db):
+                cur = db.conn.execute(
+                    "UPDATE outbox SET status = 'sending', claimed_until = ?, last_try = ? WHERE id = ?"
+                    " AND (status = 'pending' OR (status = 'sending' AND COALESCE(claimed_until, 0) <= ?))",
+                    (t + lease, t, r["id"], t))
+            if cur.rowcount != 1:
+                blocked.add(r["recipient"])
+                summary.waiting += 1
+                continue
+            msg = build_email(settings.sender, r["recipient"], r["subject"], r["text"], r["html"],
+                              r["message_id"], date=r["created_at"], reply_to=settings.reply_to,
+                              attachments=_decode_attachments(r["attachments"]))
+            try:
+                transport.send(msg, sender_addr, r["recipient"])
+                if settings.save_dir:
+                    _save_copy(settings, r, msg)
+            except _ConnectionFailed as exc:
+                _failed(db, settings, r, t, str(exc), summary)
+                blocked.add(r["recipient"])
+                break  # the server is unreachable: the rest waits for the next round
+            except (smtplib.SMTPException, OSError) as exc:
+                _failed(db, settings, r, t, _describe(exc), summary)
+                blocked.add(r["recipient"])
+                continue
+            with transaction(db):
+                db.conn.execute("UPDATE outbox SET status = 'sent', sent_at = ?, claimed_until = NULL,"
+                                " attempts = COALESCE(attempts, 0) + 1, last_error = NULL WHERE id = ?",
+                                (t, r["id"]))
+            log.info("outbox %d sent to %s: %s", r["id"], r["recipient"], r["subject"])
+            summary.sent.append(r["id"])
+    finally:
+        transport.close()
+    return summary
+
+
+def _failed(db, settings: MailSettings, r: dict, t: int, reason: str, summary: DeliverySummary) -> None:
+    attempts = (r["attempts"] or 0) + 1
+    nxt = t + int(settings.backoff(attempts))
+    with transaction(db):
+        db.conn.execute("UPDATE outbox SET status = 'pending', claimed_until = NULL, attempts = ?,"
+                        " next_try = ?, last_error = ? WHERE id = ?", (attempts, nxt, reason, r["id"]))
+    log.warning("outbox %d to %s not delivered (attempt %d, next try in %ds): %s",
+                r["id"], r["recipient"], attempts, nxt - t, reason)
+    summary.retrying.append((r["id"], reason))
+
+
+def list_outbox(db, limit: int = 50, status: str | None = None) -> list[dict]:
+    """Most recent outbox rows first (without bodies), optionally of one status."""
+    if OUTBOX not in db.table_names():
+        return []
+    where, params = ("WHERE status = ?", [status]) if status else ("", [])
+    return [dict(r) for r in db.query(
+        f"SELECT id, created_at, kind, recipient, subject, status, attempts, next_try, last_error,"
+        f" sent_at, expired_at, message_id FROM outbox {where} ORDER BY id DESC LIMIT ?",
+        params + [limit])]
+
+
+def outbox_row(db, outbox_id: int) -> dict | None:
+    """One outbox row (without the password, which is never stored)."""
+    rows = list(db.query("SELECT * FROM outbox WHERE id = ?", [outbox_id]))
+    return dict(rows[0]) if rows else None

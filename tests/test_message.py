@@ -1,0 +1,115 @@
+"""Email composition (alerts/message.py): content, caution, MIME structure, injection."""
+from __future__ import annotations
+
+import email
+from email import policy
+
+from alerts.message import CAUTION, build_email, clean_header, compose_alert, compose_test
+from alerts.rules import Event, Rule, Step, StationView
+
+STATION = StationView(id="dunmerrow", name="Port Dunmerrow", tz="Europe/Dublin",
+                      datums={"chart_datum": 1.0})
+RULE = Rule(id="surge", watch="residual_above", hold=600, settle=600, band=0.05,
+            notify=("duty@port.example",), steps=(Step("raised", 0.3), Step("high", 0.6)))
+T = 1761220800  # 2025-10-23 12:00 UTC = 13:00 IST (Irish summer time, UTC+1)
+FACTS = {"observed": 4.71, "predicted": 4.05, "residual": 0.66, "trend": 0.12,
+         "next_high_water": {"time": T + 6 * 3600, "level": 5.1, "uncertainty": 0.15}}
+
+
+def opened(value=0.66, level=1):
+    return compose_alert(STATION, RULE, Event("opened", level, T, value), FACTS)
+
+
+def test_subject_names_station_step_and_value():
+    subject, _, _ = opened()
+    assert "Port Dunmerrow" in subject and "high" in subject and "+0.66 m" in subject
+
+
+def test_text_gives_local_time_with_zone_and_utc():
+    # Europe/Dublin keeps IST = UTC+1 in summer until 26 Oct 2025 (tz database).
+    _, text, _ = opened()
+    assert "2025-10-23 13:00 IST" in text
+    assert "2025-10-23 12:00 UTC" in text
+
+
+def test_text_shows_observed_predicted_residual_and_trend():
+    _, text, _ = opened()
+    assert "Observed level" in text and "4.71 m" in text
+    assert "Predicted tide" in text and "4.05 m" in text
+    assert "+0.66 m" in text
+    assert "+0.12 m" in text
+
+
+def test_text_shows_next_high_water_with_its_uncertainty():
+    _, text, _ = opened()
+    assert "Next high water forecast" in text and "5.10 m \u00b1 0.15 m" in text
+
+
+def test_caution_is_in_both_bodies():
+    _, text, html = opened()
+    assert CAUTION in text
+    assert "official warnings" in html.lower() and "unofficial" in html.lower()
+
+
+def test_level_rule_reports_on_its_datum():
+    rule = Rule(id="quay", watch="level_above", datum="chart_datum", datum_offset=1.0,
+                notify=("a@port.example",), steps=(Step("boards out", 4.0),))
+    subject, text, _ = compose_alert(STATION, rule, Event("opened", 0, T, 4.1), FACTS)
+    assert "4.10 m above chart datum" in subject
+    assert "3.71 m above chart datum" in text  # observed 4.71 m on station datum, CD 1.0 m above
+
+
+def test_escalation_and_all_clear_read_differently():
+    s_up, _, _ = compose_alert(STATION, RULE, Event("escalated", 1, T, 0.7), FACTS)
+    s_clear, t_clear, _ = compose_alert(STATION, RULE, Event("cleared", 1, T, 0.1), FACTS)
+    assert "up to high" in s_up
+    assert "all clear" in s_clear and "all clear" in t_clear
+
+
+def test_clean_header_removes_line_breaks():
+    assert clean_header("Port\r\nBcc: x@evil.example") == "Port Bcc: x@evil.example"
+
+
+def test_header_injection_in_station_name_adds_no_header():
+    evil = StationView(id="x", name="Quay\r\nBcc: victim@evil.example\r\n\r\n<b>body</b>", tz="UTC")
+    subject, text, html = compose_alert(evil, RULE, Event("opened", 0, T, 0.4), {})
+    raw = build_email("gauge@port.example", "duty@port.example", subject, text, html, "<1@x>").as_bytes()
+    parsed = email.message_from_bytes(raw, policy=policy.default)
+    assert parsed["Bcc"] is None
+    assert "\n" not in parsed["Subject"]
+
+
+def test_html_in_station_name_is_escaped():
+    evil = StationView(id="x", name="<script>alert(1)</script>", tz="UTC")
+    _, _, html = compose_alert(evil, RULE, Event("opened", 0, T, 0.4), {})
+    assert "<script>" not in html
+    assert "&lt;script&gt;" in html
+
+
+def test_fault_text_from_telemetry_is_escaped_in_html():
+    rule = Rule(id="kit", watch="equipment_fault", notify=("a@port.example",), steps=(Step("equipment fault", 1),))
+    facts = {"faults": [{"kind": "<img src=x onerror=y>", "value": 1, "limit": 0, "since": "t"}]}
+    _, _, html = compose_alert(STATION, rule, Event("opened", 0, T, 1), facts)
+    assert "<img" not in html
+
+
+def test_email_is_multipart_alternative_with_stable_message_id():
+    # RFC 2046 section 5.1.4: multipart/alternative, plain text first.
+    subject, text, html = opened()
+    msg = build_email("Quay monitor <gauge@port.example>", "duty@port.example", subject, text, html,
+                      "<abc.alert@host.quaywatch>", date=T)
+    assert msg.get_content_type() == "multipart/alternative"
+    assert [p.get_content_type() for p in msg.iter_parts()] == ["text/plain", "text/html"]
+    assert msg["Message-ID"] == "<abc.alert@host.quaywatch>"
+
+
+def test_attachment_is_added_as_a_part():
+    msg = build_email("g@port.example", "d@port.example", "s", "t", "<p>h</p>", "<1@x>",
+                      attachments=[{"filename": "report.html", "content_type": "text/html", "data": b"<p>r</p>"}])
+    assert msg.get_content_type() == "multipart/mixed"
+    assert [a.get_filename() for a in msg.iter_attachments()] == ["report.html"]
+
+
+def test_test_message_carries_the_caution():
+    _, text, html = compose_test(T, "127.0.0.1")
+    assert CAUTION in text and "unofficial" in html

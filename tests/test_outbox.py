@@ -1,0 +1,211 @@
+"""Store-and-forward outbox and SMTP delivery (alerts/outbox.py), against a real SMTP
+server on loopback (aiosmtpd)."""
+from __future__ import annotations
+
+import email
+import socket
+from email import policy
+
+import pytest
+import sqlite_utils
+from aiosmtpd.controller import Controller
+
+import alerts.outbox as outbox_mod
+from alerts.outbox import deliver_due, enqueue, list_outbox, mail_settings_from
+
+minute = 60
+hour = 3600
+T0 = 1_761_220_800  # 2025-10-23 12:00 UTC
+
+
+class Catcher:
+    """aiosmtpd handler keeping every accepted message."""
+
+    def __init__(self):
+        self.messages = []
+
+    async def handle_DATA(self, server, session, envelope):
+        msg = email.message_from_bytes(envelope.content, policy=policy.default)
+        self.messages.append((tuple(envelope.rcpt_tos), msg))
+        return "250 OK"
+
+
+def free_port() -> int:
+    with socket.socket() as s:
+        s.bind(("127.0.0.1", 0))
+        return s.getsockname()[1]
+
+
+@pytest.fixture
+def port():
+    return free_port()
+
+
+@pytest.fixture
+def smtp(port):
+    catcher = Catcher()
+    ctl = Controller(catcher, hostname="127.0.0.1", port=port)
+    ctl.start()
+    yield catcher
+    ctl.stop()
+
+
+@pytest.fixture
+def db(tmp_path):
+    d = sqlite_utils.Database(tmp_path / "store.sqlite")
+    d.enable_wal()
+    return d
+
+
+def settings_for(port, **extra):
+    raw = {"sender": "Quay monitor <gauge@port.example>", "host": "127.0.0.1", "port": port,
+           "security": "none", "timeout": "5s", "retry_first": "1min", "retry_max": "10min",
+           "give_up_after": "6h"}
+    raw.update(extra)
+    s, errors = mail_settings_from(raw, "mail")
+    assert errors == []
+    return s
+
+
+def test_message_arrives_with_subject_message_id_and_both_parts(db, smtp, port):
+    [oid] = enqueue(db, ["duty@port.example"], "[quaywatch] test subject", "plain body", "<p>html body</p>",
+                    "alert", "k1", now=T0)
+    summary = deliver_due(db, settings_for(port), now=T0)
+    assert summary.sent == [oid]
+    [(rcpt, msg)] = smtp.messages
+    assert rcpt == ("duty@port.example",)
+    assert msg["Subject"] == "[quaywatch] test subject"
+    assert msg["Message-ID"] == list_outbox(db)[0]["message_id"]
+    assert msg.get_content_type() == "multipart/alternative"
+
+
+def test_same_key_queued_twice_is_one_message(db):
+    enqueue(db, ["a@port.example"], "s", "t", None, "alert", "same", now=T0)
+    assert enqueue(db, ["a@port.example"], "s", "t", None, "alert", "same", now=T0) == []
+
+
+def test_one_row_per_recipient(db):
+    ids = enqueue(db, ["a@port.example", "b@port.example", "a@port.example"], "s", "t", None, "alert", "k", now=T0)
+    assert len(ids) == 2
+
+
+def test_server_down_then_up_every_message_arrives_in_order_once(db, port):
+    s = settings_for(port)
+    for i in range(3):
+        enqueue(db, ["a@port.example", "b@port.example"], f"msg {i}", f"body {i}", None, "alert", f"k{i}",
+                now=T0 + i)
+    down = deliver_due(db, s, now=T0 + 10)       # nothing listens on the port
+    assert down.sent == [] and down.retrying
+    assert all(r["status"] == "pending" for r in list_outbox(db))
+    catcher = Catcher()
+    ctl = Controller(catcher, hostname="127.0.0.1", port=port)
+    ctl.start()
+    try:
+        t = T0 + 10
+        for _ in range(10):                       # delivery rounds, a minute apart
+            t += minute
+            deliver_due(db, s, now=t)
+    finally:
+        ctl.stop()
+    got = [(r[0], m["Subject"]) for r, m in catcher.messages]
+    for addr in ("a@port.example", "b@port.example"):
+        assert [subj for a, subj in got if a == addr] == ["msg 0", "msg 1", "msg 2"]
+    assert len(got) == 6
+
+
+def test_a_failed_earlier_message_blocks_later_ones_to_that_recipient(db, smtp, port):
+    s = settings_for(port)
+    enqueue(db, ["a@port.example"], "first", "t", None, "alert", "k1", now=T0)
+    enqueue(db, ["a@port.example"], "second", "t", None, "alert", "k2", now=T0)
+    enqueue(db, ["b@port.example"], "other", "t", None, "alert", "k3", now=T0)
+    db.conn.execute("UPDATE outbox SET next_try = ? WHERE subject = 'first'", (T0 + hour,))
+    db.conn.commit()
+    summary = deliver_due(db, s, now=T0)
+    assert [m["Subject"] for _, m in smtp.messages] == ["other"]
+    assert summary.waiting == 2
+
+
+def test_back_off_doubles_up_to_the_limit():
+    s, _ = mail_settings_from({"sender": "g@port.example", "host": "localhost", "security": "none",
+                               "retry_first": "1min", "retry_max": "10min"}, "mail")
+    assert [s.backoff(n) for n in (1, 2, 3, 4, 5)] == [60, 120, 240, 480, 600]
+
+
+def test_undeliverable_message_expires_and_is_reported(db, port, caplog):
+    s = settings_for(port, give_up_after="1h")
+    [oid] = enqueue(db, ["a@port.example"], "lost cause", "t", None, "alert", "k", now=T0)
+    deliver_due(db, s, now=T0)
+    summary = deliver_due(db, s, now=T0 + hour)
+    assert summary.expired == [oid]
+    assert list_outbox(db, status="expired")[0]["id"] == oid
+    assert "expired undelivered" in caplog.text
+
+
+def test_crash_between_acceptance_and_mark_resends_with_the_same_message_id(db, smtp, port, tmp_path, monkeypatch):
+    s = settings_for(port, save_dir=str(tmp_path / "copies"))
+    enqueue(db, ["a@port.example"], "once", "t", None, "alert", "k", now=T0)
+
+    def crash(*args):
+        raise SystemExit("killed after the server accepted")
+
+    monkeypatch.setattr(outbox_mod, "_save_copy", crash)
+    with pytest.raises(SystemExit):
+        deliver_due(db, s, now=T0)
+    assert list_outbox(db)[0]["status"] == "sending"
+    monkeypatch.undo()
+    deliver_due(db, s, now=T0 + hour)             # after the lease has run out
+    ids = [m["Message-ID"] for _, m in smtp.messages]
+    assert len(ids) == 2 and ids[0] == ids[1]
+    assert list_outbox(db)[0]["status"] == "sent"
+
+
+def test_a_live_lease_keeps_another_round_off_the_row(db, smtp, port):
+    s = settings_for(port)
+    enqueue(db, ["a@port.example"], "once", "t", None, "alert", "k", now=T0)
+    db.conn.execute("UPDATE outbox SET status = 'sending', claimed_until = ?", (T0 + 300,))
+    db.conn.commit()
+    deliver_due(db, s, now=T0)
+    assert smtp.messages == []
+
+
+def test_password_is_read_from_the_environment_and_never_stored(db, monkeypatch):
+    monkeypatch.setenv("QW_TEST_PW", "s3cret-value")
+    s, errors = mail_settings_from({"sender": "g@port.example", "host": "smtp.port.example", "user": "g",
+                                    "password_env": "QW_TEST_PW"}, "mail")
+    assert errors == [] and s.password() == "s3cret-value"
+    assert "s3cret" not in repr(s)
+
+
+def test_password_file_is_read_without_its_newline(tmp_path):
+    (tmp_path / "pw").write_text("hunter2\n")
+    s, _ = mail_settings_from({"sender": "g@port.example", "host": "smtp.port.example", "user": "g",
+                               "password_file": str(tmp_path / "pw")}, "mail")
+    assert s.password() == "hunter2"
+
+
+def test_plain_text_smtp_to_a_remote_host_is_refused():
+    _, errors = mail_settings_from({"sender": "g@port.example", "host": "smtp.port.example",
+                                    "security": "none"}, "mail")
+    assert any(e.startswith("mail.security:") for e in errors)
+
+
+def test_settings_errors_start_with_the_key_path():
+    _, errors = mail_settings_from({"host": "x", "port": "twenty-five", "retry_first": "soon", "colour": 1}, "mail")
+    assert errors and all(e.startswith("mail.") for e in errors)
+    assert {e.split(":")[0] for e in errors} >= {"mail.sender", "mail.port", "mail.retry_first", "mail.colour"}
+
+
+def test_sent_messages_are_also_saved_as_eml(db, smtp, port, tmp_path):
+    s = settings_for(port, save_dir=str(tmp_path / "mail"))
+    enqueue(db, ["a@port.example"], "kept", "t", "<p>h</p>", "alert", "k", now=T0)
+    deliver_due(db, s, now=T0)
+    [path] = (tmp_path / "mail").glob("*.eml")
+    assert "Subject: kept" in path.read_text()
+
+
+def test_save_only_transport_needs_no_server(db, tmp_path):
+    s, errors = mail_settings_from({"sender": "g@port.example", "save_dir": str(tmp_path / "mail")}, "mail")
+    assert errors == []
+    [oid] = enqueue(db, ["a@port.example"], "kept", "t", None, "alert", "k", now=T0)
+    assert deliver_due(db, s, now=T0).sent == [oid]
+    assert len(list((tmp_path / "mail").glob("*.eml"))) == 1
