@@ -1,0 +1,383 @@
+"""The rule engine: advances every rule over new samples and queues the messages.
+
+State lives in the store, not the process: ``alert_state`` holds each rule's state
+machine (keyed by station and rule id) with a watermark time, and ``alert_episodes``
+one row per episode. Each rule's state change, episode change and queued messages are
+committed in one transaction, so a crash or restart at any instant neither repeats a
+message already queued nor forgets an episode in progress; re-evaluating samples at or
+before the watermark does nothing. Reloading the configuration keeps the state: steps
+are matched by name.
+"""
+from __future__ import annotations
+
+import json
+import logging
+import math
+from dataclasses import dataclass, field
+from typing import Any, Iterable
+
+import numpy as np
+import pandas as pd
+
+from alerts.message import compose_alert
+from alerts.outbox import enqueue, ensure_outbox_schema, transaction, unix_seconds
+from alerts.rules import Event, Rule, RuleState, SAMPLE_KINDS, StationView, advance, with_watermark
+
+log = logging.getLogger(__name__)
+
+# QARTOD flags (IOOS 2021): 1 pass, 2 not evaluated, 3 suspect, 4 fail, 9 missing.
+COUNTED_FLAGS = (1, 2)
+SUSPECT = 3
+
+TREND_WINDOW = 3600  # [s] the "change over the last hour" shown in messages
+_TREND_SLACK = 900   # [s] how far from an hour back the earlier sample may be
+
+
+@dataclass(frozen=True)
+class NextHighWater:
+    """Forecast of the next high water: time [Unix s UTC], level [m, station datum],
+    uncertainty [m] (a half-width, as the forecaster reports it)."""
+
+    time: int
+    level: float
+    uncertainty: float | None = None
+
+
+@dataclass
+class AlertContext:
+    """What the engine cannot read from the samples.
+
+    Attributes
+    ----------
+    next_high_water : NextHighWater or dict or None
+    feed_age : float or None
+        Seconds since the station's last sample arrived [s].
+    faults : list of dict
+        Active equipment faults from quality control (``kind``, ``value``, ``limit``, ``since``).
+    """
+
+    next_high_water: Any = None
+    feed_age: float | None = None
+    faults: list = field(default_factory=list)
+
+    def hw_dict(self) -> dict | None:
+        hw = self.next_high_water
+        if hw is None:
+            return None
+        if isinstance(hw, dict):
+            d = dict(hw)
+        else:
+            d = {"time": hw.time, "level": hw.level, "uncertainty": hw.uncertainty}
+        d["time"] = unix_seconds(d["time"])
+        return d
+
+
+def ensure_alert_schema(db) -> None:
+    """Create ``alert_state``, ``alert_episodes`` and ``outbox`` if missing."""
+    names = set(db.table_names())
+    if "alert_state" not in names:
+        db["alert_state"].create({
+            "station": str, "rule": str, "level": int, "top_sent": int, "steps": str,
+            "above_since": str, "inside_since": str, "watermark": int, "episode_id": int,
+            "updated_at": int,
+        }, pk=("station", "rule"), if_not_exists=True)
+    if "alert_episodes" not in names:
+        db["alert_episodes"].create({
+            "id": int, "station": str, "rule": str, "watch": str, "datum": str, "unit": str,
+            "opened_at": int, "closed_at": int, "top_step": str, "step_now": str,
+            "peak": float, "peak_t": int, "last_value": float, "last_t": int, "messages": int,
+        }, pk="id", if_not_exists=True)
+        db["alert_episodes"].create_index(["station", "rule", "opened_at"], if_not_exists=True)
+    ensure_outbox_schema(db)
+
+
+# --------------------------------------------------------------------------- state I/O
+
+def _load_state(db, station: str, rule: Rule) -> tuple[RuleState, int | None]:
+    rows = list(db.query("SELECT * FROM alert_state WHERE station = ? AND rule = ?", [station, rule.id]))
+    if not rows:
+        return RuleState(), None
+    r = rows[0]
+    old_names = json.loads(r["steps"] or "[]")
+    above_old = json.loads(r["above_since"] or "[]")
+    inside_old = json.loads(r["inside_since"] or "[]")
+    names = [s.name for s in rule.steps]
+
+    def remap_index(i: int) -> int:
+        if i is None or i < 0:
+            return -1
+        if i < len(old_names) and old_names[i] in names:
+            return names.index(old_names[i])
+        return min(i, len(names) - 1)  # a renamed step: keep the position
+
+    def remap_times(old: list) -> tuple:
+        by_name = dict(zip(old_names, old))
+        return tuple(by_name.get(n) for n in names)
+
+    state = RuleState(level=remap_index(r["level"]), top_sent=remap_index(r["top_sent"]),
+                      above_since=remap_times(above_old), inside_since=remap_times(inside_old),
+                      watermark=r["watermark"])
+    return state, r["episode_id"]
+
+
+def _save_state(db, station: str, rule: Rule, state: RuleState, episode_id: int | None, now: int) -> None:
+    db.conn.execute(
+        "INSERT INTO alert_state (station, rule, level, top_sent, steps, above_since, inside_since,"
+        " watermark, episode_id, updated_at) VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?)"
+        " ON CONFLICT (station, rule) DO UPDATE SET level = excluded.level, top_sent = excluded.top_sent,"
+        " steps = excluded.steps, above_since = excluded.above_since, inside_since = excluded.inside_since,"
+        " watermark = excluded.watermark, episode_id = excluded.episode_id, updated_at = excluded.updated_at",
+        (station, rule.id, state.level, state.top_sent, json.dumps([s.name for s in rule.steps]),
+         json.dumps(list(state.above_since)), json.dumps(list(state.inside_since)),
+         state.watermark, episode_id, now))
+
+
+# --------------------------------------------------------------------------- samples
+
+def _times(index: pd.Index) -> np.ndarray:
+    if isinstance(index, pd.DatetimeIndex):
+        if index.tz is not None:
+            index = index.tz_convert(None)
+        return index.values.astype("datetime64[s]").astype(np.int64)
+    return np.asarray(index, dtype=np.int64)
+
+
+def _series(rule: Rule, samples: pd.DataFrame) -> np.ndarray:
+    if rule.watch.startswith("residual"):
+        col = rule.series if rule.series in samples else "residual"
+        return samples[col].to_numpy(dtype=float)
+    return samples["observed"].to_numpy(dtype=float) - rule.datum_offset
+
+
+def _counted(rule: Rule, samples: pd.DataFrame) -> np.ndarray:
+    if "flag" not in samples:
+        return np.ones(len(samples), dtype=bool)
+    flag = samples["flag"].to_numpy(dtype=float)
+    ok = np.isin(flag, COUNTED_FLAGS) | np.isnan(flag)  # no flag yet = not evaluated
+    if rule.use_suspect:
+        ok |= flag == SUSPECT
+    return ok
+
+
+def _facts(samples: pd.DataFrame, t_all: np.ndarray, ok_all: np.ndarray, t: int,
+           context: AlertContext) -> dict:
+    facts: dict[str, Any] = {}
+    if len(samples):
+        usable = ok_all & (t_all <= t)
+        if usable.any():
+            i = np.flatnonzero(usable)[-1]
+            row = samples.iloc[i]
+            for key in ("observed", "predicted", "residual"):
+                if key in samples and pd.notna(row[key]):
+                    facts[key] = float(row[key])
+            if "observed" in samples and pd.notna(row["observed"]):
+                back = usable & (t_all <= t_all[i] - TREND_WINDOW + _TREND_SLACK) & \
+                    (t_all >= t_all[i] - TREND_WINDOW - _TREND_SLACK) & samples["observed"].notna().to_numpy()
+                if back.any():
+                    cand = np.flatnonzero(back)
+                    j = cand[np.argmin(np.abs(t_all[cand] - (t_all[i] - TREND_WINDOW)))]
+                    facts["trend"] = float(row["observed"]) - float(samples["observed"].iloc[j])
+                    facts["trend_window"] = int(t_all[i] - t_all[j])
+    hw = context.hw_dict()
+    if hw is not None:
+        facts["next_high_water"] = hw
+    if context.feed_age is not None:
+        facts["feed_age"] = float(context.feed_age)
+    if context.faults:
+        facts["faults"] = list(context.faults)
+    return facts
+
+
+def _context_value(rule: Rule, context: AlertContext) -> float | None:
+    if rule.watch == "feed_silent":
+        return None if context.feed_age is None else float(context.feed_age)
+    if rule.watch == "equipment_fault":
+        faults = context.faults or []
+        if rule.fault_kinds:
+            faults = [f for f in faults if isinstance(f, dict) and f.get("kind") in rule.fault_kinds]
+        return float(len(faults))
+    hw = context.hw_dict()
+    if hw is None or hw.get("level") is None or not math.isfinite(hw["level"]):
+        return None
+    return float(hw["level"]) - rule.datum_offset
+
+
+# --------------------------------------------------------------------------- engine
+
+def _kind_of(event: Event) -> str:
+    return {"opened": "alert", "escalated": "alert", "cleared": "all_clear"}[event.kind]
+
+
+def _on_event(db, station: StationView, rule: Rule, event: Event, episode_id: int | None,
+              facts: dict, now: int) -> tuple[int | None, dict]:
+    step = rule.steps[event.level]
+    if event.kind == "opened":
+        cur = db.conn.execute(
+            "INSERT INTO alert_episodes (station, rule, watch, datum, unit, opened_at, top_step, step_now,"
+            " peak, peak_t, last_value, last_t, messages) VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, 0)",
+            (station.id, rule.id, rule.watch, rule.datum, rule.unit, event.t, step.name, step.name,
+             event.value, event.t, event.value, event.t))
+        episode_id = cur.lastrowid
+    elif episode_id is None:
+        # State from before this table existed; keep going with a fresh episode row.
+        cur = db.conn.execute(
+            "INSERT INTO alert_episodes (station, rule, watch, datum, unit, opened_at, top_step, step_now,"
+            " messages) VALUES (?, ?, ?, ?, ?, ?, ?, ?, 0)",
+            (station.id, rule.id, rule.watch, rule.datum, rule.unit, event.t, step.name, step.name))
+        episode_id = cur.lastrowid
+    if event.kind == "escalated":
+        db.conn.execute("UPDATE alert_episodes SET top_step = ?, step_now = ? WHERE id = ?",
+                        (step.name, step.name, episode_id))
+    if event.kind == "cleared":
+        db.conn.execute("UPDATE alert_episodes SET closed_at = ?, step_now = NULL WHERE id = ?",
+                        (event.t, episode_id))
+    recipients = rule.recipients_up_to(event.level)
+    ids: list[int] = []
+    if event.kind != "cleared" or rule.all_clear:
+        subject, text, html = compose_alert(station, rule, event, facts)
+        key = f"{station.id}/{rule.id}/episode-{episode_id}/{event.kind}/{step.name}"
+        ids = enqueue(db, recipients, subject, text, html, _kind_of(event), key, now=now)
+        db.conn.execute("UPDATE alert_episodes SET messages = messages + ? WHERE id = ?",
+                        (len(ids), episode_id))
+    log.info("station %s rule %s: %s %s at %d (value %.3f), %d messages queued",
+             station.id, rule.id, event.kind, step.name, event.t, event.value, len(ids))
+    return episode_id, {"station": station.id, "rule": rule.id, "event": event.kind,
+                        "step": step.name, "t": event.t, "value": event.value,
+                        "episode": episode_id, "outbox": ids}
+
+
+def _track_peak(db, rule: Rule, episode_id: int, t: int, value: float) -> None:
+    better = "<" if rule.sign > 0 else ">"
+    db.conn.execute(
+        f"UPDATE alert_episodes SET last_value = ?, last_t = ?,"
+        f" peak_t = CASE WHEN peak IS NULL OR peak {better} ? THEN ? ELSE peak_t END,"
+        f" peak = CASE WHEN peak IS NULL OR peak {better} ? THEN ? ELSE peak END WHERE id = ?",
+        (value, t, value, t, value, value, episode_id))
+
+
+def _idle(state: RuleState) -> bool:
+    # Below every step with no run in progress; the "back inside" timers only matter
+    # while a step is in force, so they may be left as they are.
+    return state.level < 0 and not any(x is not None for x in state.above_since)
+
+
+def evaluate(db, station: StationView, rules: Iterable[Rule], samples: pd.DataFrame | None,
+             now: Any = None, context: AlertContext | None = None) -> list[dict]:
+    """Advance every rule of a station and queue the messages its events call for.
+
+    Parameters
+    ----------
+    db : sqlite_utils.Database
+    station : StationView
+    rules : iterable of Rule
+    samples : pandas.DataFrame or None
+        Indexed by UTC time, columns ``observed``, ``predicted``, ``residual``, ``smoothed``
+        [m, station datum] and ``flag`` (aggregate QARTOD). Samples at or before a rule's
+        watermark are not evaluated again; pass the last hour too so messages can show
+        the trend. Flags 4 (fail) and 9 (missing) never count; 3 (suspect) counts unless
+        the rule says ``use_suspect = false``.
+    now : time, optional
+        The evaluation time (default: the clock); context rules (next high water, feed
+        silence, equipment faults) are evaluated once at ``now``.
+    context : AlertContext, optional
+
+    Returns
+    -------
+    list of dict
+        One per event: station, rule, event (opened/escalated/cleared), step, t, value,
+        episode id, outbox ids queued.
+    """
+    ensure_alert_schema(db)
+    t_now = unix_seconds(now)
+    context = context or AlertContext()
+    if samples is None:
+        samples = pd.DataFrame(columns=["observed", "predicted", "residual", "smoothed", "flag"],
+                               index=pd.DatetimeIndex([], tz="UTC"))
+    if len(samples) and not samples.index.is_monotonic_increasing:
+        samples = samples.sort_index()
+    t_all = _times(samples.index)
+    out: list[dict] = []
+    for rule in rules:
+        with transaction(db):
+            out.extend(_evaluate_rule(db, station, rule, samples, t_all, t_now, context))
+    return out
+
+
+def _evaluate_rule(db, station: StationView, rule: Rule, samples: pd.DataFrame, t_all: np.ndarray,
+                   t_now: int, context: AlertContext) -> list[dict]:
+    state, episode_id = _load_state(db, station.id, rule)
+    wm = state.watermark if state.watermark is not None else -(2 ** 62)
+    results: list[dict] = []
+    before = state
+
+    if rule.watch in SAMPLE_KINDS:
+        ok_all = _counted(rule, samples)
+        values_all = _series(rule, samples) if len(samples) else np.empty(0)
+        new = np.flatnonzero(t_all > wm)
+        if len(new) == 0:
+            return results
+        counted = new[ok_all[new] & np.isfinite(values_all[new])]
+        xs = rule.sign * values_all[counted]
+        first = rule.sign * rule.steps[0].at
+        k = 0
+        while k < len(counted):
+            if _idle(state):
+                # Quiet water: jump straight to the next value beyond the first step.
+                ahead = np.flatnonzero(xs[k:] >= first)
+                if len(ahead) == 0:
+                    break
+                k += int(ahead[0])
+            i = counted[k]
+            t, v = int(t_all[i]), float(values_all[i])
+            state, events = advance(rule, state, t, v)
+            for ev in events:
+                facts = _facts(samples, t_all, ok_all, t, context)
+                episode_id, info = _on_event(db, station, rule, ev, episode_id, facts, t_now)
+                results.append(info)
+                if ev.kind == "cleared":
+                    episode_id = None
+            if episode_id is not None:
+                _track_peak(db, rule, episode_id, t, v)
+            k += 1
+        state = with_watermark(state, int(t_all[new[-1]]))
+    else:
+        if t_now <= wm:
+            return results
+        value = _context_value(rule, context)
+        if value is None:
+            state = with_watermark(state, t_now)
+        else:
+            state, events = advance(rule, state, t_now, value)
+            ok_all = _counted(rule, samples)
+            for ev in events:
+                facts = _facts(samples, t_all, ok_all, t_now, context)
+                episode_id, info = _on_event(db, station, rule, ev, episode_id, facts, t_now)
+                results.append(info)
+                if ev.kind == "cleared":
+                    episode_id = None
+            if episode_id is not None:
+                _track_peak(db, rule, episode_id, t_now, value)
+    if state != before or results:
+        if state.level >= 0 and episode_id is None:
+            # An episode in progress without a row (state from a migration): give it one.
+            cur = db.conn.execute(
+                "INSERT INTO alert_episodes (station, rule, watch, datum, unit, opened_at, top_step,"
+                " step_now, messages) VALUES (?, ?, ?, ?, ?, ?, ?, ?, 0)",
+                (station.id, rule.id, rule.watch, rule.datum, rule.unit, state.watermark,
+                 rule.steps[state.top_sent if state.top_sent >= 0 else state.level].name,
+                 rule.steps[state.level].name))
+            episode_id = cur.lastrowid
+        if episode_id is not None and state.level >= 0:
+            db.conn.execute("UPDATE alert_episodes SET step_now = ? WHERE id = ?",
+                            (rule.steps[state.level].name, episode_id))
+        _save_state(db, station.id, rule, state, episode_id, t_now)
+    return results
+
+
+def list_episodes(db, station: str | None = None, limit: int = 50) -> list[dict]:
+    """Most recent episodes first (open ones have ``closed_at`` None)."""
+    if "alert_episodes" not in db.table_names():
+        return []
+    where, params = ("WHERE station = ?", [station]) if station else ("", [])
+    return [dict(r) for r in db.query(
+        f"SELECT * FROM alert_episodes {where} ORDER BY opened_at DESC, id DESC LIMIT ?", params + [limit])]

@@ -1,0 +1,202 @@
+"""The rule engine (alerts/engine.py): state in the store, idempotence, restarts,
+configuration reloads, QC flags, and end-to-end delivery to a loopback SMTP server."""
+from __future__ import annotations
+
+import email
+import socket
+from email import policy
+
+import numpy as np
+import pandas as pd
+import pytest
+import sqlite_utils
+from aiosmtpd.controller import Controller
+
+from alerts.engine import AlertContext, NextHighWater, evaluate, list_episodes
+from alerts.outbox import deliver_due, list_outbox, mail_settings_from
+from alerts.rules import StationView, rules_from_config
+
+m = 1.0
+mm = 1e-3
+minute = 60
+hour = 3600
+T0 = pd.Timestamp("2025-10-23 00:00", tz="UTC")
+
+STATION = StationView(id="dunmerrow", name="Port Dunmerrow", tz="Europe/Dublin",
+                      datums={"chart_datum": 1.0})
+SURGE = {"id": "surge", "watch": "residual_above", "hold": "10min", "band": 0.05,
+         "notify": ["duty@port.example"],
+         "steps": [{"name": "raised", "at": 0.30},
+                   {"name": "high", "at": 0.60, "notify": ["master@port.example"]}]}
+
+
+def rules(*raw):
+    out, errors = rules_from_config(list(raw) or [SURGE], "stations[0].rules", STATION.datums)
+    assert errors == []
+    return out
+
+
+def frame(residual, start=T0, flags=None, predicted=3.0):
+    residual = np.asarray(residual, dtype=float)
+    idx = pd.date_range(start, periods=len(residual), freq="1min")
+    return pd.DataFrame({"observed": predicted + residual, "predicted": predicted, "residual": residual,
+                         "smoothed": residual, "flag": flags if flags is not None else 1}, index=idx)
+
+
+@pytest.fixture
+def path(tmp_path):
+    return tmp_path / "store.sqlite"
+
+
+@pytest.fixture
+def db(path):
+    d = sqlite_utils.Database(path)
+    d.enable_wal()
+    return d
+
+
+def queued(db):
+    return [(r["recipient"], r["kind"], r["subject"]) for r in reversed(list_outbox(db, limit=1000))]
+
+
+def storm():
+    """Raised for 30 min hovering around 0.30 m, up to 0.7 m for 30 min, then calm."""
+    hover = 0.30 + 0.04 * np.sin(np.arange(40))
+    return np.concatenate([np.zeros(20), [0.35] * 12, hover, [0.7] * 30, np.zeros(30)])
+
+
+def test_a_storm_sends_one_alert_one_escalation_one_all_clear(db):
+    evaluate(db, STATION, rules(), frame(storm()), now=T0 + pd.Timedelta(hours=3))
+    kinds = [(k, s.split(": ")[1].split(" -")[0]) for r, k, s in queued(db) if r == "duty@port.example"]
+    assert kinds == [("alert", "raised"), ("alert", "up to high"), ("all_clear", "all clear (high over)")]
+
+
+def test_higher_step_recipients_hear_from_the_escalation_on(db):
+    evaluate(db, STATION, rules(), frame(storm()), now=T0 + pd.Timedelta(hours=3))
+    assert [k for r, k, _ in queued(db) if r == "master@port.example"] == ["alert", "all_clear"]
+
+
+def test_a_single_spike_flagged_fail_sends_nothing(db):
+    values = np.zeros(60)
+    values[30] = 1.5
+    flags = np.ones(60, dtype=int)
+    flags[30] = 4
+    evaluate(db, STATION, rules({**SURGE, "hold": 0}), frame(values, flags=flags), now=T0 + pd.Timedelta(hours=1))
+    assert queued(db) == []
+
+
+def test_missing_samples_never_count(db):
+    evaluate(db, STATION, rules({**SURGE, "hold": 0}), frame([0.9] * 5, flags=[9] * 5), now=T0 + pd.Timedelta(hours=1))
+    assert queued(db) == []
+
+
+def test_suspect_samples_count_by_default(db):
+    # A surge may well be flagged suspect by the expected-range test; it must still alert.
+    evaluate(db, STATION, rules({**SURGE, "hold": 0}), frame([0.4] * 3, flags=[3] * 3), now=T0 + pd.Timedelta(hours=1))
+    assert len(queued(db)) == 1
+
+
+def test_re_evaluating_the_same_samples_queues_nothing_new(db):
+    f = frame(storm())
+    evaluate(db, STATION, rules(), f, now=T0 + pd.Timedelta(hours=3))
+    before = queued(db)
+    assert evaluate(db, STATION, rules(), f, now=T0 + pd.Timedelta(hours=3)) == []
+    assert queued(db) == before
+
+
+def test_restart_mid_episode_sends_no_duplicate_and_the_all_clear_still_comes(path):
+    f = frame(storm())
+    first = sqlite_utils.Database(path)
+    evaluate(first, STATION, rules(), f.iloc[:60], now=T0 + pd.Timedelta(hours=1))
+    assert [k for _, k, _ in queued(first)] == ["alert"]
+    first.close()
+    again = sqlite_utils.Database(path)             # a new process on the same store
+    evaluate(again, STATION, rules(), f, now=T0 + pd.Timedelta(hours=3))  # overlapping samples
+    kinds = [k for r, k, _ in queued(again) if r == "duty@port.example"]
+    assert kinds == ["alert", "alert", "all_clear"]
+    [episode] = list_episodes(again)
+    assert episode["closed_at"] is not None and episode["top_step"] == "high"
+
+
+def test_reloading_the_configuration_does_not_reopen_an_episode(db):
+    f = frame(storm())
+    evaluate(db, STATION, rules(), f.iloc[:50], now=T0 + pd.Timedelta(hours=1))
+    reloaded = {**SURGE, "steps": SURGE["steps"] + [{"name": "very high", "at": 1.2}], "note": "edited"}
+    evaluate(db, STATION, rules(reloaded), f.iloc[50:60], now=T0 + pd.Timedelta(hours=1))
+    assert [k for r, k, _ in queued(db) if r == "duty@port.example"] == ["alert"]
+    assert len(list_episodes(db)) == 1
+
+
+def test_level_rule_compares_on_the_named_datum(db):
+    quay = {"id": "quay", "watch": "level_above", "datum": "chart_datum", "hold": 0,
+            "notify": ["duty@port.example"], "steps": [{"name": "boards out", "at": 4.0}]}
+    # observed 4.95 m on the station datum is 3.95 m above chart datum (1.0 m higher): below 4.0
+    evaluate(db, STATION, rules(quay), frame([1.95], predicted=3.0), now=T0)
+    assert queued(db) == []
+    evaluate(db, STATION, rules(quay), frame([2.05], start=T0 + pd.Timedelta(minutes=1)), now=T0)
+    [(_, _, subject)] = queued(db)
+    assert "4.05 m above chart datum" in subject
+
+
+def test_next_high_water_forecast_rule_uses_the_context(db):
+    rule = {"id": "next-hw", "watch": "next_high_water_above", "datum": "chart_datum",
+            "notify": ["duty@port.example"], "steps": [{"name": "quay top", "at": 4.25}]}
+    ctx = AlertContext(next_high_water=NextHighWater(time=int((T0 + pd.Timedelta(hours=5)).timestamp()),
+                                                     level=5.40, uncertainty=0.2))
+    evaluate(db, STATION, rules(rule), frame([0.5] * 60), now=T0 + pd.Timedelta(hours=1), context=ctx)
+    [(_, _, subject)] = queued(db)
+    assert "4.40 m above chart datum" in subject
+
+
+def test_feed_silence_alerts_and_clears(db):
+    rule = {"id": "quiet", "watch": "feed_silent", "notify": ["tech@port.example"]}
+    evaluate(db, STATION, rules(rule), None, now=T0, context=AlertContext(feed_age=45 * minute))
+    evaluate(db, STATION, rules(rule), None, now=T0 + pd.Timedelta(minutes=1), context=AlertContext(feed_age=50 * minute))
+    evaluate(db, STATION, rules(rule), None, now=T0 + pd.Timedelta(minutes=2), context=AlertContext(feed_age=1 * minute))
+    assert [k for _, k, _ in queued(db)] == ["alert", "all_clear"]
+
+
+def test_equipment_fault_lists_the_fault(db):
+    rule = {"id": "kit", "watch": "equipment_fault", "notify": ["tech@port.example"]}
+    fault = {"kind": "flat_line", "value": 62, "limit": 30, "since": "2025-10-23T00:00Z"}
+    evaluate(db, STATION, rules(rule), None, now=T0, context=AlertContext(faults=[fault]))
+    row = list(db.query("SELECT text FROM outbox"))[0]
+    assert "flat_line" in row["text"]
+
+
+def test_message_shows_change_over_the_last_hour(db):
+    rising = np.linspace(0.0, 0.6, 121)
+    evaluate(db, STATION, rules({**SURGE, "hold": 0, "steps": [{"name": "raised", "at": 0.55}]}),
+             frame(rising), now=T0 + pd.Timedelta(hours=3))
+    text = list(db.query("SELECT text FROM outbox"))[0]["text"]
+    assert "Change over last 60 min" in text and "+0.30 m" in text  # 0.005 m/min for 60 min
+
+
+class Catcher:
+    def __init__(self):
+        self.messages = []
+
+    async def handle_DATA(self, server, session, envelope):
+        self.messages.append(email.message_from_bytes(envelope.content, policy=policy.default))
+        return "250 OK"
+
+
+def test_alert_reaches_a_loopback_smtp_server_with_the_caution(db):
+    with socket.socket() as s:
+        s.bind(("127.0.0.1", 0))
+        port = s.getsockname()[1]
+    catcher = Catcher()
+    ctl = Controller(catcher, hostname="127.0.0.1", port=port)
+    ctl.start()
+    try:
+        settings, _ = mail_settings_from({"sender": "gauge@port.example", "host": "127.0.0.1", "port": port,
+                                          "security": "none"}, "mail")
+        evaluate(db, STATION, rules(), frame(storm()), now=T0 + pd.Timedelta(hours=3))
+        deliver_due(db, settings, now=T0 + pd.Timedelta(hours=3))
+    finally:
+        ctl.stop()
+    first = catcher.messages[0]
+    assert first["Subject"].startswith("[quaywatch] Port Dunmerrow: raised")
+    assert "automated and unofficial" in first.get_body(("plain",)).get_content()
+    assert "official warnings" in first.get_body(("html",)).get_content().lower()
+    assert len({msg["Message-ID"] for msg in catcher.messages}) == len(catcher.messages) == 5
