@@ -243,9 +243,9 @@ def build(port: dict) -> dict:
     spike_size = [0.38, -0.27, 0.22, 0.31]
     for i, dz in zip(spike_at, spike_size):
         primary[i] += dz
-    # Stuck for an hour on the flood after the first peak: the same value repeated.
+    # Stuck for 70 minutes on the flood after the first peak: the same value repeated.
     stuck0 = int(np.searchsorted(ts_s, t1 + 3 * HOUR))
-    stuck1 = stuck0 + 60
+    stuck1 = stuck0 + 70
     primary[stuck0:stuck1] = primary[stuck0]
     # A gap of 100 minutes on the ebb after the main peak.
     gap0 = int(np.searchsorted(ts_s, t2 + 6 * HOUR))
