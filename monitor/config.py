@@ -1,0 +1,579 @@
+"""Load and validate the quaywatch TOML configuration, listing every problem at once.
+
+The loader is two steps: :func:`load_config` reads the file (a missing file or a TOML
+syntax error is one :class:`~monitor.errors.UserError`), then :func:`validate_config`
+checks the parsed table and returns either a :class:`Config` or a list of messages,
+each starting with the key path (``stations[0].sensors.primary.units``) and saying what
+is expected. It never raises for any input a TOML parser can produce.
+
+Sections owned by other packages (feeds, quality control, alert rules, mail, reports)
+are validated by functions there, called from here when they are installed; their
+messages are merged into the same list.
+
+Relative paths resolve against the folder holding the configuration file.
+See ``config.example.toml`` for every key with a comment and its default.
+"""
+from __future__ import annotations
+
+import difflib
+import importlib
+import math
+import re
+import tomllib
+import zoneinfo
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any, Callable
+
+from monitor.errors import UserError
+
+# Conversion of each accepted unit to metres (levels) or hectopascals (pressure).
+LEVEL_UNITS = {"m": 1.0, "cm": 0.01, "mm": 0.001, "ft": 0.3048}  # 1 ft = 0.3048 m exactly (international foot, 1959)
+PRESSURE_UNITS = {"hPa": 1.0, "mbar": 1.0, "kPa": 10.0}
+SENSOR_ROLES = ("primary", "backup", "barometer")
+TIME_FORMATS = ("iso", "epoch", "epoch_ms")
+HISTORY = "history"  # value of ``constants`` meaning "fit from the station's own history"
+
+_ID_RE = re.compile(r"^[a-z0-9][a-z0-9_-]{0,39}$")
+_REQUIRED = object()
+
+
+@dataclass(frozen=True)
+class LineFormat:
+    """How to read one telemetry line of a sensor.
+
+    Columns are 1-based as a user counts them; ``time_column = 0`` means the line has
+    no time and the receive time is used (stored with ``time_source = 'receive'``).
+    ``scale`` converts the reading to metres (hPa for a barometer); ``offset`` is then
+    added (sensor zero to station datum).
+    """
+
+    delimiter: str = ","
+    time_column: int = 1
+    value_column: int = 2
+    time_format: str = "iso"
+    naive_time_zone: str = ""
+    comment: str = "#"
+    header_lines: int = 0
+    missing_marker: str = ""
+    scale: float = 1.0
+    offset: float = 0.0
+
+
+@dataclass(frozen=True)
+class SensorConfig:
+    """One sensor of a station: its role, units, offset, line format and feed spec."""
+
+    station: str
+    role: str
+    units: str
+    offset: float
+    label: str
+    format: LineFormat
+    feed: Any = None          # spec from monitor.feeds.feed_from_config, or None
+    feed_raw: dict = field(default_factory=dict)
+
+    @property
+    def feed_name(self) -> str:
+        """Name of this sensor's feed, also its checkpoint key in the store."""
+        return f"{self.station}.{self.role}"
+
+    @property
+    def is_level(self) -> bool:
+        return self.role != "barometer"
+
+
+@dataclass(frozen=True)
+class StationConfig:
+    """One station: identity, place, time zone, datums, sensors, constants and settings."""
+
+    id: str
+    name: str
+    latitude: float
+    longitude: float
+    tz: str
+    datums: dict                      # datum name -> height of its zero above station datum [m]
+    constants: Path | None            # constants file, or None when fitted from history
+    fit_min_days: float
+    fit_span_days: float
+    sensors: dict                     # role -> SensorConfig
+    qc: Any = None
+    rules: Any = ()
+    qc_raw: dict = field(default_factory=dict)
+    rules_raw: list = field(default_factory=list)
+
+    @property
+    def fit_from_history(self) -> bool:
+        return self.constants is None
+
+    @property
+    def primary(self) -> SensorConfig:
+        return self.sensors["primary"]
+
+
+@dataclass(frozen=True)
+class DaemonSettings:
+    poll_seconds: float = 10.0
+    process_seconds: float = 60.0
+    outbox_seconds: float = 30.0
+    refit_days: float = 30.0
+    idle_polls: int = 3
+
+
+@dataclass(frozen=True)
+class LogSettings:
+    level: str = "info"
+    file: Path | None = None
+    max_bytes: int = 5_000_000
+    backups: int = 5
+
+
+@dataclass(frozen=True)
+class ResidualSettings:
+    median_minutes: float = 30.0
+    mean_minutes: float = 10.0
+    history_days: float = 90.0
+    min_history_days: float = 14.0
+    reference_pressure: float = 1013.25
+
+
+@dataclass(frozen=True)
+class Config:
+    """A validated configuration. ``raw`` keeps the parsed TOML for other packages."""
+
+    path: Path | None
+    base_dir: Path
+    store_path: Path
+    daemon: DaemonSettings
+    logging: LogSettings
+    residual: ResidualSettings
+    stations: tuple
+    mail: Any = None
+    reports: Any = None
+    raw: dict = field(default_factory=dict)
+
+    def station(self, station_id: str) -> StationConfig:
+        """The station with this id, or a UserError listing the known ones."""
+        for st in self.stations:
+            if st.id == station_id:
+                return st
+        known = ", ".join(s.id for s in self.stations) or "none"
+        raise UserError(f"no station {station_id!r} in {self.path or 'the configuration'} (stations: {known})")
+
+
+# --------------------------------------------------------------------------- helpers
+
+class _Checker:
+    """Collects messages while reading one table; each message starts with its key path."""
+
+    def __init__(self, errors: list[str]):
+        self.errors = errors
+
+    def table(self, raw: Any, keypath: str, required: bool = False) -> dict | None:
+        if raw is None:
+            if required:
+                self.errors.append(f"{keypath}: missing; expected a table")
+            return {} if not required else None
+        if not isinstance(raw, dict):
+            self.errors.append(f"{keypath}: expected a table, got {_show(raw)}")
+            return None
+        return raw
+
+    def unknown(self, raw: dict, keypath: str, known: tuple[str, ...]) -> None:
+        for key in raw:
+            if key not in known:
+                hint = difflib.get_close_matches(str(key), known, n=1)
+                more = f" (did you mean {hint[0]!r}?)" if hint else f" (known keys: {', '.join(known)})"
+                self.errors.append(f"{_join(keypath, key)}: unknown key{more}")
+
+    def value(self, raw: dict, keypath: str, key: str, kind: str, default: Any = _REQUIRED,
+              check: Callable[[Any], bool] | None = None, expect: str = "") -> Any:
+        """Read ``raw[key]`` of ``kind`` (str, number, int, bool); ``None`` when invalid."""
+        path = _join(keypath, key)
+        if key not in raw:
+            if default is _REQUIRED:
+                self.errors.append(f"{path}: missing; expected {expect or _KIND_TEXT[kind]}")
+                return None
+            return default
+        val = raw[key]
+        ok = {
+            "str": isinstance(val, str),
+            "number": isinstance(val, (int, float)) and not isinstance(val, bool),
+            "int": isinstance(val, int) and not isinstance(val, bool),
+            "bool": isinstance(val, bool),
+        }[kind]
+        if ok and kind == "number":
+            val = float(val)
+            ok = math.isfinite(val)
+        if ok and check is not None:
+            try:
+                ok = bool(check(val))
+            except Exception:  # a check on a strange value is a failed check, not a crash
+                ok = False
+        if not ok:
+            self.errors.append(f"{path}: expected {expect or _KIND_TEXT[kind]}, got {_show(raw[key])}")
+            return None
+        return val
+
+
+_KIND_TEXT = {"str": "a string", "number": "a number", "int": "an integer", "bool": "true or false"}
+
+
+def _join(keypath: str, key: Any) -> str:
+    key = str(key)
+    if re.fullmatch(r"[A-Za-z0-9_-]+", key):
+        return f"{keypath}.{key}" if keypath else key
+    return f"{keypath}.{key!r}" if keypath else repr(key)
+
+
+def _show(val: Any) -> str:
+    text = repr(val)
+    if len(text) > 60:
+        text = text[:57] + "..."
+    kind = {dict: "table", list: "array", str: "string", bool: "boolean", int: "integer",
+            float: "number"}.get(type(val), type(val).__name__)
+    return f"{kind} {text}"
+
+
+def _is_zone(name: str) -> bool:
+    if not name or name.startswith("/") or ".." in name:
+        return False
+    try:
+        zoneinfo.ZoneInfo(name)
+    except (zoneinfo.ZoneInfoNotFoundError, ValueError, OSError):
+        return False
+    return True
+
+
+def _resolve(base_dir: Path, value: str) -> Path:
+    p = Path(value).expanduser()
+    return p if p.is_absolute() else (base_dir / p)
+
+
+def _optional_call(module: str, func: str, *args: Any) -> tuple[Any, list[str], bool]:
+    """Call a colleague's validator if installed: (value, errors, present)."""
+    try:
+        mod = importlib.import_module(module)
+    except ModuleNotFoundError as exc:
+        if exc.name and module.startswith(exc.name):
+            return None, [], False
+        raise
+    fn = getattr(mod, func, None)
+    if fn is None:
+        return None, [], False
+    try:
+        value, errs = fn(*args)
+    except Exception as exc:  # a validator must not crash the whole check
+        return None, [f"{args[1]}: could not be checked ({type(exc).__name__}: {exc})"], True
+    return value, [str(e) for e in errs], True
+
+
+# --------------------------------------------------------------------------- sections
+
+_TOP_KEYS = ("store", "daemon", "logging", "residual", "stations", "mail", "reports")
+
+
+def validate_config(raw: Any, base_dir: Path | str = ".", path: Path | None = None) -> tuple[Config | None, list[str]]:
+    """Check a parsed configuration table.
+
+    Parameters
+    ----------
+    raw : dict
+        The parsed TOML document.
+    base_dir : Path
+        Folder that relative paths resolve against (the configuration file's folder).
+    path : Path, optional
+        The configuration file, for messages.
+
+    Returns
+    -------
+    (Config or None, list of str)
+        A configuration and no messages, or ``None`` and every problem found, each message
+        starting with the key path.
+    """
+    base_dir = Path(base_dir)
+    errors: list[str] = []
+    c = _Checker(errors)
+    if not isinstance(raw, dict):
+        return None, [f"configuration: expected a table, got {_show(raw)}"]
+    c.unknown(raw, "", _TOP_KEYS)
+
+    store_path = None
+    st = c.table(raw.get("store"), "store")
+    if st is not None:
+        c.unknown(st, "store", ("path",))
+        sp = c.value(st, "store", "path", "str", "quaywatch.db", check=lambda s: s.strip() != "",
+                     expect="a file path")
+        if sp is not None:
+            store_path = _resolve(base_dir, sp)
+
+    daemon = _daemon(c, raw.get("daemon"))
+    logs = _logging(c, raw.get("logging"), base_dir)
+    resid = _residual(c, raw.get("residual"))
+
+    stations: list[StationConfig] = []
+    raw_st = raw.get("stations")
+    if raw_st is None:
+        errors.append("stations: missing; expected at least one [[stations]] table")
+    elif not isinstance(raw_st, list) or not raw_st:
+        errors.append(f"stations: expected an array of tables ([[stations]]), got {_show(raw_st)}")
+    else:
+        seen_ids: set[str] = set()
+        for i, item in enumerate(raw_st):
+            s = _station(c, item, f"stations[{i}]", base_dir)
+            if s is None:
+                continue
+            if s.id in seen_ids:
+                errors.append(f"stations[{i}].id: {s.id!r} is used by an earlier station; ids must be unique")
+                continue
+            seen_ids.add(s.id)
+            stations.append(s)
+
+    mail = reports = None
+    if "mail" in raw:
+        mt = c.table(raw.get("mail"), "mail")
+        if mt is not None:
+            mail, errs, _ = _optional_call("alerts.outbox", "mail_settings_from", mt, "mail")
+            errors.extend(errs)
+    if "reports" in raw:
+        rt = c.table(raw.get("reports"), "reports")
+        if rt is not None:
+            reports, errs, _ = _optional_call("alerts.report", "report_settings_from", rt, "reports")
+            errors.extend(errs)
+
+    if errors:
+        return None, errors
+    return Config(path=path, base_dir=base_dir, store_path=store_path, daemon=daemon, logging=logs,
+                  residual=resid, stations=tuple(stations), mail=mail, reports=reports, raw=raw), []
+
+
+def _daemon(c: _Checker, raw: Any) -> DaemonSettings:
+    t = c.table(raw, "daemon")
+    if t is None:
+        return DaemonSettings()
+    keys = ("poll_seconds", "process_seconds", "outbox_seconds", "refit_days", "idle_polls")
+    c.unknown(t, "daemon", keys)
+    d = DaemonSettings()
+    pos = lambda v: v > 0  # noqa: E731
+    vals = {
+        "poll_seconds": c.value(t, "daemon", "poll_seconds", "number", d.poll_seconds, pos, "a number of seconds > 0"),
+        "process_seconds": c.value(t, "daemon", "process_seconds", "number", d.process_seconds, pos,
+                                   "a number of seconds > 0"),
+        "outbox_seconds": c.value(t, "daemon", "outbox_seconds", "number", d.outbox_seconds, pos,
+                                  "a number of seconds > 0"),
+        "refit_days": c.value(t, "daemon", "refit_days", "number", d.refit_days, lambda v: v >= 0,
+                              "a number of days >= 0 (0: never refit on a schedule)"),
+        "idle_polls": c.value(t, "daemon", "idle_polls", "int", d.idle_polls, lambda v: 1 <= v <= 1000,
+                              "an integer from 1 to 1000"),
+    }
+    return DaemonSettings(**{k: v for k, v in vals.items() if v is not None})
+
+
+def _logging(c: _Checker, raw: Any, base_dir: Path) -> LogSettings:
+    t = c.table(raw, "logging")
+    if t is None:
+        return LogSettings()
+    c.unknown(t, "logging", ("level", "file", "max_bytes", "backups"))
+    d = LogSettings()
+    level = c.value(t, "logging", "level", "str", d.level,
+                    lambda v: v.lower() in ("debug", "info", "warning", "error"),
+                    "one of debug, info, warning, error")
+    f = c.value(t, "logging", "file", "str", "")
+    mb = c.value(t, "logging", "max_bytes", "int", d.max_bytes, lambda v: v >= 1000, "an integer >= 1000")
+    bk = c.value(t, "logging", "backups", "int", d.backups, lambda v: 0 <= v <= 100, "an integer from 0 to 100")
+    return LogSettings(level=(level or d.level).lower(), file=_resolve(base_dir, f) if f else None,
+                       max_bytes=mb or d.max_bytes, backups=d.backups if bk is None else bk)
+
+
+def _residual(c: _Checker, raw: Any) -> ResidualSettings:
+    t = c.table(raw, "residual")
+    if t is None:
+        return ResidualSettings()
+    keys = ("median_minutes", "mean_minutes", "history_days", "min_history_days", "reference_pressure")
+    c.unknown(t, "residual", keys)
+    d = ResidualSettings()
+    vals = {
+        "median_minutes": c.value(t, "residual", "median_minutes", "number", d.median_minutes,
+                                  lambda v: 0 < v <= 1440, "minutes, more than 0 and at most 1440"),
+        "mean_minutes": c.value(t, "residual", "mean_minutes", "number", d.mean_minutes,
+                                lambda v: 0 <= v <= 1440, "minutes from 0 to 1440 (0: no mean)"),
+        "history_days": c.value(t, "residual", "history_days", "number", d.history_days,
+                                lambda v: 1 <= v <= 36600, "days from 1 to 36600"),
+        "min_history_days": c.value(t, "residual", "min_history_days", "number", d.min_history_days,
+                                    lambda v: 0 <= v <= 36600, "days from 0 to 36600"),
+        "reference_pressure": c.value(t, "residual", "reference_pressure", "number", d.reference_pressure,
+                                      lambda v: 800 <= v <= 1100, "hPa between 800 and 1100"),
+    }
+    return ResidualSettings(**{k: v for k, v in vals.items() if v is not None})
+
+
+_STATION_KEYS = ("id", "name", "latitude", "longitude", "tz", "datums", "constants", "fit_min_days",
+                 "fit_span_days", "sensors", "qc", "rules")
+
+
+def _station(c: _Checker, raw: Any, kp: str, base_dir: Path) -> StationConfig | None:
+    errors = c.errors
+    n0 = len(errors)
+    t = c.table(raw, kp, required=True)
+    if t is None:
+        return None
+    c.unknown(t, kp, _STATION_KEYS)
+    sid = c.value(t, kp, "id", "str", check=lambda v: bool(_ID_RE.match(v)),
+                  expect="an id of 1-40 lower-case letters, digits, '-' or '_', starting with a letter or digit")
+    name = c.value(t, kp, "name", "str", sid or "")
+    lat = c.value(t, kp, "latitude", "number", check=lambda v: -90 <= v <= 90, expect="degrees from -90 to 90")
+    lon = c.value(t, kp, "longitude", "number", check=lambda v: -180 <= v <= 180,
+                  expect="degrees from -180 to 180")
+    tz = c.value(t, kp, "tz", "str", "UTC", check=_is_zone, expect="an IANA time zone name such as 'Europe/Lisbon'")
+
+    datums = {"station": 0.0}
+    dt = c.table(t.get("datums"), f"{kp}.datums", required=True)
+    if dt is not None:
+        for key, val in dt.items():
+            dk = _join(f"{kp}.datums", key)
+            if not isinstance(key, str) or not _ID_RE.match(key):
+                errors.append(f"{dk}: datum names are lower-case letters, digits, '-' or '_'")
+            elif isinstance(val, bool) or not isinstance(val, (int, float)) or not math.isfinite(val) \
+                    or abs(val) > 1000:
+                errors.append(f"{dk}: expected the height of this datum above the station datum in metres "
+                              f"(within +-1000), got {_show(val)}")
+            else:
+                datums[key] = float(val)
+        if "chart" not in dt:
+            errors.append(f"{kp}.datums.chart: missing; expected the height of chart datum above the "
+                          f"station datum in metres (usually negative)")
+
+    const = c.value(t, kp, "constants", "str", check=lambda v: v.strip() != "",
+                    expect=f"a constants file path, or {HISTORY!r} to fit from the station's own history")
+    const_path = None
+    if const is not None and const != HISTORY:
+        const_path = _resolve(base_dir, const)
+        if not const_path.is_file():
+            errors.append(f"{kp}.constants: file {str(const_path)!r} not found "
+                          f"(or use {HISTORY!r} to fit from the station's own history)")
+    fit_min = c.value(t, kp, "fit_min_days", "number", 30.0, lambda v: 1 <= v <= 36600, "days from 1 to 36600")
+    fit_span = c.value(t, kp, "fit_span_days", "number", 365.0, lambda v: 1 <= v <= 36600, "days from 1 to 36600")
+
+    sensors: dict[str, SensorConfig] = {}
+    sk = f"{kp}.sensors"
+    stab = c.table(t.get("sensors"), sk, required=True)
+    if stab is not None:
+        c.unknown(stab, sk, SENSOR_ROLES)
+        if "primary" not in stab:
+            errors.append(f"{sk}.primary: missing; every station needs a primary level sensor")
+        for role in SENSOR_ROLES:
+            if role in stab:
+                s = _sensor(c, stab[role], f"{sk}.{role}", sid or "?", role)
+                if s is not None:
+                    sensors[role] = s
+
+    qc_raw = t.get("qc", {})
+    qc = None
+    qt = c.table(qc_raw, f"{kp}.qc")
+    if qt is not None:
+        qc, errs, _ = _optional_call("monitor.qc", "qc_settings_from", qt, f"{kp}.qc")
+        errors.extend(errs)
+    rules_raw = t.get("rules", [])
+    rules: Any = ()
+    if not isinstance(rules_raw, list):
+        errors.append(f"{kp}.rules: expected an array of tables ([[stations.rules]]), got {_show(rules_raw)}")
+    else:
+        r, errs, present = _optional_call("alerts.rules", "rules_from_config", rules_raw, f"{kp}.rules", datums)
+        errors.extend(errs)
+        rules = r if present and r is not None else ()
+
+    if len(errors) > n0:
+        return None
+    return StationConfig(id=sid, name=name or sid, latitude=lat, longitude=lon, tz=tz, datums=datums,
+                         constants=const_path, fit_min_days=fit_min, fit_span_days=fit_span, sensors=sensors,
+                         qc=qc, rules=rules, qc_raw=qt or {}, rules_raw=rules_raw)
+
+
+_SENSOR_KEYS = ("units", "offset", "label", "line", "feed")
+_LINE_KEYS = ("delimiter", "time_column", "value_column", "time_format", "naive_time_zone", "comment",
+              "header_lines", "missing_marker")
+
+
+def _sensor(c: _Checker, raw: Any, kp: str, station: str, role: str) -> SensorConfig | None:
+    errors = c.errors
+    n0 = len(errors)
+    t = c.table(raw, kp, required=True)
+    if t is None:
+        return None
+    c.unknown(t, kp, _SENSOR_KEYS)
+    table = PRESSURE_UNITS if role == "barometer" else LEVEL_UNITS
+    units = c.value(t, kp, "units", "str", "hPa" if role == "barometer" else "m", lambda v: v in table,
+                    "one of " + ", ".join(table))
+    offset = c.value(t, kp, "offset", "number", 0.0, lambda v: abs(v) <= 1000,
+                     "hPa within +-1000" if role == "barometer" else "metres within +-1000")
+    label = c.value(t, kp, "label", "str", "")
+
+    lk = f"{kp}.line"
+    lt = c.table(t.get("line"), lk)
+    fmt = None
+    if lt is not None:
+        c.unknown(lt, lk, _LINE_KEYS)
+        d = LineFormat()
+        delim = c.value(lt, lk, "delimiter", "str", d.delimiter,
+                        lambda v: v == "whitespace" or (len(v) == 1 and v not in "\r\n"),
+                        "one character, or 'whitespace'")
+        tcol = c.value(lt, lk, "time_column", "int", d.time_column, lambda v: 0 <= v <= 100,
+                       "a column number from 1 to 100, or 0 when lines carry no time")
+        vcol = c.value(lt, lk, "value_column", "int", d.value_column, lambda v: 1 <= v <= 100,
+                       "a column number from 1 to 100")
+        tfmt = c.value(lt, lk, "time_format", "str", d.time_format, lambda v: v in TIME_FORMATS,
+                       "one of " + ", ".join(TIME_FORMATS))
+        naive = c.value(lt, lk, "naive_time_zone", "str", "", lambda v: v == "" or _is_zone(v),
+                        "an IANA time zone name, or '' to refuse times without an offset")
+        comment = c.value(lt, lk, "comment", "str", d.comment, lambda v: len(v) <= 4 and "\n" not in v,
+                          "a prefix of at most 4 characters, or ''")
+        header = c.value(lt, lk, "header_lines", "int", 0, lambda v: 0 <= v <= 1000, "an integer from 0 to 1000")
+        missing = c.value(lt, lk, "missing_marker", "str", "")
+        if tcol is not None and vcol is not None and tcol == vcol:
+            errors.append(f"{lk}.value_column: the same column as time_column ({tcol})")
+        if None not in (delim, tcol, vcol, tfmt, naive, comment, header, missing, units, offset):
+            fmt = LineFormat(delimiter=delim, time_column=tcol, value_column=vcol, time_format=tfmt,
+                             naive_time_zone=naive, comment=comment, header_lines=header,
+                             missing_marker=missing.strip(), scale=table[units], offset=offset)
+
+    feed_raw = t.get("feed")
+    spec = None
+    if feed_raw is not None:
+        ft = c.table(feed_raw, f"{kp}.feed")
+        if ft is not None:
+            spec, errs, _ = _optional_call("monitor.feeds", "feed_from_config", ft, f"{kp}.feed")
+            errors.extend(errs)
+    if len(errors) > n0:
+        return None
+    return SensorConfig(station=station, role=role, units=units, offset=offset, label=label, format=fmt,
+                        feed=spec, feed_raw=feed_raw if isinstance(feed_raw, dict) else {})
+
+
+# --------------------------------------------------------------------------- file
+
+def load_config(path: str | Path) -> Config:
+    """Read and validate a configuration file.
+
+    Raises
+    ------
+    UserError
+        When the file cannot be read, is not valid TOML, or has any problem; the message
+        lists every problem, one per line, each with its key path.
+    """
+    path = Path(path)
+    try:
+        text = path.read_text(encoding="utf-8")
+    except FileNotFoundError:
+        raise UserError(f"{path}: configuration file not found") from None
+    except (OSError, UnicodeDecodeError) as exc:
+        raise UserError(f"{path}: cannot read the configuration ({exc})") from None
+    try:
+        raw = tomllib.loads(text)
+    except tomllib.TOMLDecodeError as exc:
+        raise UserError(f"{path}: not valid TOML: {exc}") from None
+    cfg, errors = validate_config(raw, path.resolve().parent, path)
+    if errors:
+        listing = "\n".join(f"  {e}" for e in errors)
+        n = len(errors)
+        raise UserError(f"{path}: {n} problem{'s' if n > 1 else ''} in the configuration:\n{listing}")
+    return cfg

@@ -1,0 +1,470 @@
+"""The SQLite store: schema and migrations, the one-daemon lock, batches and read helpers.
+
+One file per network of stations, in WAL mode (readers never block the writer). Times
+are integer Unix seconds UTC in column ``t``; levels are metres on the station datum.
+Observations are keyed by (station, sensor, t), so reading the same line twice stores it
+once. A batch of observations, its rejected lines and the feed checkpoint that covers
+them commit in one transaction: after a crash at any instant the store holds exactly
+the lines up to some checkpoint, and the feed resumes from that checkpoint.
+
+Tables are created through sqlite-utils; writes inside a batch use plain SQL in an
+explicit ``BEGIN IMMEDIATE`` transaction (sqlite-utils' own helpers commit as they go).
+"""
+from __future__ import annotations
+
+import contextlib
+import fcntl
+import json
+import os
+import sqlite3
+import time
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Any, Iterator
+
+import numpy as np
+import pandas as pd
+import sqlite_utils
+
+from monitor.errors import UserError
+
+SCHEMA_VERSION = 1
+DERIVED_COLUMNS = ("observed", "predicted", "residual", "smoothed", "barometric")
+
+
+@dataclass(frozen=True)
+class BatchResult:
+    """What one batch did: lines read, observations stored, duplicates ignored, rejects, skipped."""
+
+    read: int
+    stored: int
+    duplicates: int
+    rejected: int
+    skipped: int = 0
+
+    def __add__(self, other: "BatchResult") -> "BatchResult":
+        return BatchResult(self.read + other.read, self.stored + other.stored,
+                           self.duplicates + other.duplicates, self.rejected + other.rejected,
+                           self.skipped + other.skipped)
+
+
+EMPTY_BATCH = BatchResult(0, 0, 0, 0, 0)
+
+
+def _create_v1(db: sqlite_utils.Database) -> None:
+    db["observations"].create(
+        {"station": str, "sensor": str, "t": int, "value": float, "time_source": str, "flag": int},
+        pk=("station", "sensor", "t"), not_null={"station", "sensor", "t", "value"},
+        defaults={"time_source": "sensor", "flag": 2}, if_not_exists=True)
+    db["feed_checkpoints"].create({"feed": str, "state": str, "updated_at": int}, pk="feed", if_not_exists=True)
+    db["rejects"].create(
+        {"id": int, "feed": str, "station": str, "sensor": str, "lineno": int, "text": str, "reason": str,
+         "at": int}, pk="id", if_not_exists=True)
+    db["rejects"].create_index(["station", "feed"], if_not_exists=True)
+    db["derived"].create({"station": str, "t": int, **{c: float for c in DERIVED_COLUMNS}},
+                         pk=("station", "t"), if_not_exists=True)
+    db["skew_surges"].create(
+        {"station": str, "hw_t": int, "predicted_high": float, "observed_high": float, "observed_t": int,
+         "skew_surge": float}, pk=("station", "hw_t"), if_not_exists=True)
+    db["hw_forecasts"].create(
+        {"station": str, "hw_t": int, "made_t": int, "predicted_high": float, "residual_now": float,
+         "forecast": float, "lower": float, "upper": float, "coverage": float, "note": str},
+        pk=("station", "hw_t"), if_not_exists=True)
+    db["fits"].create(
+        {"id": int, "station": str, "fitted_at": int, "start": int, "end": int, "n": int, "rms": float,
+         "variance_explained": float, "constants": str, "in_use": int, "robust": int, "note": str},
+        pk="id", if_not_exists=True)
+    db["fits"].create_index(["station", "fitted_at"], if_not_exists=True)
+
+
+# version -> function that brings a store at (version - 1) to version
+MIGRATIONS = {1: _create_v1}
+
+
+class Store:
+    """A quaywatch store. Open with :meth:`open`; use as a context manager to close it.
+
+    Attributes
+    ----------
+    path : Path
+        The SQLite file.
+    conn : sqlite3.Connection
+        Autocommit connection (explicit transactions through :meth:`transaction`).
+    db : sqlite_utils.Database
+        The same connection through sqlite-utils, for other packages' tables.
+    """
+
+    def __init__(self, path: Path, conn: sqlite3.Connection, lock_file: Any = None):
+        self.path = path
+        self.conn = conn
+        self.db = sqlite_utils.Database(conn)
+        self._lock_file = lock_file
+
+    # ------------------------------------------------------------------ open/close
+    @classmethod
+    def open(cls, path: str | Path, *, lock: bool = False, create: bool = True) -> "Store":
+        """Open (or create) a store, migrating it to this program's schema.
+
+        Parameters
+        ----------
+        path : Path
+            SQLite file.
+        lock : bool
+            Take the one-daemon lock (``PATH.lock``, fcntl.flock); a second holder is refused.
+        create : bool
+            When false, a missing file is a UserError (for read-only verbs).
+
+        Raises
+        ------
+        UserError
+            Missing file (``create=False``), not a SQLite file, a newer schema, or locked.
+        """
+        path = Path(path)
+        if not create and not path.exists():
+            raise UserError(f"store {path} does not exist yet (run 'quaywatch run' or 'quaywatch ingest' first)")
+        if create:
+            try:
+                path.parent.mkdir(parents=True, exist_ok=True)
+            except OSError as exc:
+                raise UserError(f"store folder {path.parent}: cannot be created ({exc})") from None
+        lock_file = _take_lock(path) if lock else None
+        try:
+            conn = sqlite3.connect(str(path), isolation_level=None, check_same_thread=False, timeout=30.0)
+        except sqlite3.Error as exc:
+            _release(lock_file)
+            raise UserError(f"store {path}: cannot be opened ({exc})") from None
+        store = cls(path, conn, lock_file)
+        try:
+            conn.execute("PRAGMA busy_timeout = 30000")
+            conn.execute("PRAGMA journal_mode = WAL")
+            # NORMAL under WAL: a process crash loses nothing committed; see SQLite "WAL" docs.
+            conn.execute("PRAGMA synchronous = NORMAL")
+            store._migrate()
+        except sqlite3.DatabaseError as exc:
+            store.close()
+            raise UserError(f"store {path}: not a quaywatch store or damaged ({exc})") from None
+        except UserError:
+            store.close()
+            raise
+        return store
+
+    def close(self) -> None:
+        with contextlib.suppress(Exception):
+            self.conn.close()
+        _release(self._lock_file)
+        self._lock_file = None
+
+    def __enter__(self) -> "Store":
+        return self
+
+    def __exit__(self, *exc: Any) -> None:
+        self.close()
+
+    def _migrate(self) -> None:
+        self.conn.execute("CREATE TABLE IF NOT EXISTS meta (key TEXT PRIMARY KEY, value TEXT)")
+        version = int(self.get_meta("schema_version") or 0)
+        if version > SCHEMA_VERSION:
+            raise UserError(
+                f"store {self.path} has schema version {version}, newer than this quaywatch understands "
+                f"(version {SCHEMA_VERSION}); upgrade quaywatch, or point store.path at another file")
+        for v in range(version + 1, SCHEMA_VERSION + 1):
+            with self.transaction():
+                MIGRATIONS[v](self.db)
+                self.set_meta("schema_version", str(v))
+
+    @contextlib.contextmanager
+    def transaction(self) -> Iterator[sqlite3.Connection]:
+        """An immediate write transaction: commit on success, roll back on any exception."""
+        if self.conn.in_transaction:  # nested: the outer transaction decides
+            yield self.conn
+            return
+        self.conn.execute("BEGIN IMMEDIATE")
+        try:
+            yield self.conn
+        except BaseException:
+            self.conn.execute("ROLLBACK")
+            raise
+        self.conn.execute("COMMIT")
+
+    # ------------------------------------------------------------------ meta
+    def get_meta(self, key: str, default: str | None = None) -> str | None:
+        row = self.conn.execute("SELECT value FROM meta WHERE key = ?", (key,)).fetchone()
+        return row[0] if row else default
+
+    def set_meta(self, key: str, value: str) -> None:
+        self.conn.execute("INSERT INTO meta(key, value) VALUES (?, ?) "
+                          "ON CONFLICT(key) DO UPDATE SET value = excluded.value", (key, str(value)))
+
+    # ------------------------------------------------------------------ writing
+    def write_batch(self, station: str, sensor: str, t: np.ndarray, value: np.ndarray,
+                    time_source: np.ndarray | None = None, rejects: list | tuple = (), *,
+                    feed: str | None = None, state: dict | None = None, skipped: int = 0,
+                    now: float | None = None) -> BatchResult:
+        """Store parsed observations, their rejected lines and the feed checkpoint atomically.
+
+        Parameters
+        ----------
+        station, sensor : str
+            Keys of the observations.
+        t : array of int
+            Times [s, Unix UTC].
+        value : array of float
+            Levels [m, station datum] or pressure [hPa].
+        time_source : array of str, optional
+            'sensor' or 'receive' per row (default 'sensor').
+        rejects : list of monitor.parse.Reject
+            Lines that could not be read; kept with the feed name and reason.
+        feed : str, optional
+            Feed name; with ``state``, the checkpoint stored in the same transaction.
+        state : dict, optional
+            JSON-able feed state covering every line of this batch.
+
+        Returns
+        -------
+        BatchResult
+            Existing (station, sensor, t) rows are left alone and counted as duplicates.
+        """
+        now = int(time.time() if now is None else now)
+        n = len(t)
+        if time_source is None:
+            time_source = np.full(n, "sensor", dtype=object)
+        rows = zip([station] * n, [sensor] * n, np.asarray(t, dtype=np.int64).tolist(),
+                   np.asarray(value, dtype=float).tolist(), list(time_source))
+        rej_rows = [(feed, station, sensor, int(r.lineno), r.text, r.reason, now) for r in rejects]
+        with self.transaction() as conn:
+            before = conn.total_changes
+            conn.executemany("INSERT OR IGNORE INTO observations (station, sensor, t, value, time_source) "
+                             "VALUES (?, ?, ?, ?, ?)", rows)
+            stored = conn.total_changes - before
+            if rej_rows:
+                conn.executemany("INSERT INTO rejects (feed, station, sensor, lineno, text, reason, at) "
+                                 "VALUES (?, ?, ?, ?, ?, ?, ?)", rej_rows)
+            if feed is not None and state is not None:
+                self._put_checkpoint(feed, state, now)
+        return BatchResult(n + len(rej_rows), stored, n - stored, len(rej_rows), skipped)
+
+    def _put_checkpoint(self, feed: str, state: dict, now: int) -> None:
+        self.conn.execute(
+            "INSERT INTO feed_checkpoints (feed, state, updated_at) VALUES (?, ?, ?) "
+            "ON CONFLICT(feed) DO UPDATE SET state = excluded.state, updated_at = excluded.updated_at",
+            (feed, json.dumps(state, sort_keys=True), now))
+
+    def save_checkpoint(self, feed: str, state: dict, now: float | None = None) -> None:
+        """Store a feed checkpoint alone (a poll that returned only skipped lines)."""
+        with self.transaction():
+            self._put_checkpoint(feed, state, int(time.time() if now is None else now))
+
+    def write_derived(self, station: str, frame: pd.DataFrame) -> int:
+        """Upsert derived rows (index: UTC times; columns from DERIVED_COLUMNS). Returns rows written."""
+        if frame.empty:
+            return 0
+        cols = [c for c in DERIVED_COLUMNS if c in frame.columns]
+        t = _to_unix(frame.index)
+        data = [frame[c].to_numpy(dtype=float) for c in cols]
+        rows = [(station, int(ti), *[None if not np.isfinite(d[i]) else float(d[i]) for d in data])
+                for i, ti in enumerate(t)]
+        sets = ", ".join(f"{c} = excluded.{c}" for c in cols)
+        sql = (f"INSERT INTO derived (station, t, {', '.join(cols)}) VALUES ({', '.join('?' * (len(cols) + 2))}) "
+               f"ON CONFLICT(station, t) DO UPDATE SET {sets}")
+        with self.transaction() as conn:
+            conn.executemany(sql, rows)
+        return len(rows)
+
+    def write_skew_surges(self, station: str, frame: pd.DataFrame) -> int:
+        """Upsert skew surges (columns hw_t, predicted_high, observed_high, observed_t, skew_surge)."""
+        if frame.empty:
+            return 0
+        cols = ["hw_t", "predicted_high", "observed_high", "observed_t", "skew_surge"]
+        rows = [(station, *r) for r in frame[cols].itertuples(index=False, name=None)]
+        with self.transaction() as conn:
+            conn.executemany("INSERT OR REPLACE INTO skew_surges (station, hw_t, predicted_high, observed_high, "
+                             "observed_t, skew_surge) VALUES (?, ?, ?, ?, ?, ?)",
+                             [(s, int(a), float(b), float(c), int(d), float(e)) for s, a, b, c, d, e in rows])
+        return len(rows)
+
+    def write_forecast(self, station: str, fc: dict) -> None:
+        """Store the latest next-high-water forecast (one row per predicted high water)."""
+        keys = ("hw_t", "made_t", "predicted_high", "residual_now", "forecast", "lower", "upper", "coverage", "note")
+        vals = [fc.get(k) for k in keys]
+        with self.transaction() as conn:
+            conn.execute(f"INSERT OR REPLACE INTO hw_forecasts (station, {', '.join(keys)}) "
+                         f"VALUES ({', '.join('?' * (len(keys) + 1))})", (station, *vals))
+
+    def add_fit(self, station: str, *, fitted_at: int, start: int, end: int, n: int, rms: float,
+                variance_explained: float, constants: str, in_use: bool, robust: bool = True,
+                note: str = "") -> int:
+        """Keep a fit; with ``in_use`` it replaces the station's fit in use. Returns its id."""
+        with self.transaction() as conn:
+            if in_use:
+                conn.execute("UPDATE fits SET in_use = 0 WHERE station = ?", (station,))
+            cur = conn.execute(
+                "INSERT INTO fits (station, fitted_at, start, end, n, rms, variance_explained, constants, "
+                "in_use, robust, note) VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?)",
+                (station, int(fitted_at), int(start), int(end), int(n), float(rms), float(variance_explained),
+                 constants, int(bool(in_use)), int(bool(robust)), note))
+            return int(cur.lastrowid)
+
+    # ------------------------------------------------------------------ reading
+    def checkpoint(self, feed: str) -> dict | None:
+        row = self.conn.execute("SELECT state FROM feed_checkpoints WHERE feed = ?", (feed,)).fetchone()
+        return json.loads(row[0]) if row else None
+
+    def checkpoints(self) -> dict[str, tuple[dict, int]]:
+        """Feed name -> (state, updated_at [s])."""
+        return {f: (json.loads(s), u) for f, s, u in
+                self.conn.execute("SELECT feed, state, updated_at FROM feed_checkpoints")}
+
+    def observations(self, station: str, sensor: str = "primary", start_t: int | None = None,
+                     end_t: int | None = None) -> pd.DataFrame:
+        """Observations of one sensor between two times (inclusive).
+
+        Returns
+        -------
+        DataFrame
+            Index ``time`` (UTC DatetimeIndex); columns ``value`` [m or hPa], ``flag``
+            (aggregate QARTOD), ``time_source``.
+        """
+        lo = -(2 ** 62) if start_t is None else int(start_t)
+        hi = 2 ** 62 if end_t is None else int(end_t)
+        cur = self.conn.execute(
+            "SELECT t, value, flag, time_source FROM observations WHERE station = ? AND sensor = ? "
+            "AND t BETWEEN ? AND ? ORDER BY t", (station, sensor, lo, hi))
+        rows = cur.fetchall()
+        t = np.fromiter((r[0] for r in rows), dtype=np.int64, count=len(rows))
+        frame = pd.DataFrame({
+            "value": np.fromiter((r[1] for r in rows), dtype=float, count=len(rows)),
+            "flag": np.fromiter((2 if r[2] is None else r[2] for r in rows), dtype=np.int64, count=len(rows)),
+            "time_source": [r[3] for r in rows],
+        }, index=_from_unix(t))
+        return frame
+
+    def observation_count(self, station: str | None = None, sensor: str | None = None) -> int:
+        sql, args = "SELECT count(*) FROM observations WHERE 1", []
+        if station is not None:
+            sql, args = sql + " AND station = ?", args + [station]
+        if sensor is not None:
+            sql, args = sql + " AND sensor = ?", args + [sensor]
+        return int(self.conn.execute(sql, args).fetchone()[0])
+
+    def last_time(self, station: str, sensor: str = "primary") -> int | None:
+        row = self.conn.execute("SELECT max(t) FROM observations WHERE station = ? AND sensor = ?",
+                                (station, sensor)).fetchone()
+        return None if row[0] is None else int(row[0])
+
+    def first_time(self, station: str, sensor: str = "primary") -> int | None:
+        row = self.conn.execute("SELECT min(t) FROM observations WHERE station = ? AND sensor = ?",
+                                (station, sensor)).fetchone()
+        return None if row[0] is None else int(row[0])
+
+    def derived(self, station: str, start_t: int | None = None, end_t: int | None = None) -> pd.DataFrame:
+        """Derived series (index UTC times; observed, predicted, residual, smoothed [m], barometric [m])."""
+        lo = -(2 ** 62) if start_t is None else int(start_t)
+        hi = 2 ** 62 if end_t is None else int(end_t)
+        rows = self.conn.execute(
+            f"SELECT t, {', '.join(DERIVED_COLUMNS)} FROM derived WHERE station = ? AND t BETWEEN ? AND ? "
+            "ORDER BY t", (station, lo, hi)).fetchall()
+        arr = np.array([[np.nan if v is None else v for v in r] for r in rows], dtype=float).reshape(
+            len(rows), len(DERIVED_COLUMNS) + 1)
+        return pd.DataFrame(arr[:, 1:], columns=list(DERIVED_COLUMNS), index=_from_unix(arr[:, 0].astype(np.int64)))
+
+    def latest_derived(self, station: str) -> dict | None:
+        row = self.conn.execute(f"SELECT t, {', '.join(DERIVED_COLUMNS)} FROM derived WHERE station = ? "
+                                "ORDER BY t DESC LIMIT 1", (station,)).fetchone()
+        return dict(zip(("t", *DERIVED_COLUMNS), row)) if row else None
+
+    def skew_surges(self, station: str, start_t: int | None = None, end_t: int | None = None) -> pd.DataFrame:
+        lo = -(2 ** 62) if start_t is None else int(start_t)
+        hi = 2 ** 62 if end_t is None else int(end_t)
+        return pd.read_sql_query(
+            "SELECT hw_t, predicted_high, observed_high, observed_t, skew_surge FROM skew_surges "
+            "WHERE station = ? AND hw_t BETWEEN ? AND ? ORDER BY hw_t", self.conn, params=(station, lo, hi))
+
+    def latest_forecast(self, station: str) -> dict | None:
+        cur = self.conn.execute("SELECT * FROM hw_forecasts WHERE station = ? ORDER BY made_t DESC, hw_t DESC "
+                                "LIMIT 1", (station,))
+        row = cur.fetchone()
+        return dict(zip([d[0] for d in cur.description], row)) if row else None
+
+    def rejects(self, station: str | None = None, feed: str | None = None, limit: int = 100) -> pd.DataFrame:
+        """The most recent rejected lines (id, feed, station, sensor, lineno, text, reason, at)."""
+        sql, args = "SELECT id, feed, station, sensor, lineno, text, reason, at FROM rejects WHERE 1", []
+        if station is not None:
+            sql, args = sql + " AND station = ?", args + [station]
+        if feed is not None:
+            sql, args = sql + " AND feed = ?", args + [feed]
+        return pd.read_sql_query(sql + " ORDER BY id DESC LIMIT ?", self.conn, params=(*args, int(limit)))
+
+    def reject_counts(self, station: str | None = None) -> dict[str, int]:
+        """Feed (or ingest source) -> number of rejected lines."""
+        sql, args = "SELECT coalesce(feed, '-'), count(*) FROM rejects", ()
+        if station is not None:
+            sql, args = sql + " WHERE station = ?", (station,)
+        return {f: int(n) for f, n in self.conn.execute(sql + " GROUP BY 1 ORDER BY 1", args)}
+
+    def fits(self, station: str) -> pd.DataFrame:
+        """Every fit kept for a station, newest first (without the constants text)."""
+        return pd.read_sql_query(
+            "SELECT id, fitted_at, start, end, n, rms, variance_explained, in_use, robust, note FROM fits "
+            "WHERE station = ? ORDER BY fitted_at DESC, id DESC", self.conn, params=(station,))
+
+    def fit(self, fit_id: int) -> dict | None:
+        cur = self.conn.execute("SELECT * FROM fits WHERE id = ?", (int(fit_id),))
+        row = cur.fetchone()
+        return dict(zip([d[0] for d in cur.description], row)) if row else None
+
+    def fit_in_use(self, station: str) -> dict | None:
+        """The fit in use for a station (all columns, constants as TOML text), or None."""
+        cur = self.conn.execute("SELECT * FROM fits WHERE station = ? AND in_use = 1 ORDER BY id DESC LIMIT 1",
+                                (station,))
+        row = cur.fetchone()
+        return dict(zip([d[0] for d in cur.description], row)) if row else None
+
+
+# ---------------------------------------------------------------------- helpers
+
+def _take_lock(path: Path):
+    lock_path = path.with_name(path.name + ".lock")
+    try:
+        fh = open(lock_path, "a+")
+    except OSError as exc:
+        raise UserError(f"store {path}: cannot create lock file {lock_path} ({exc})") from None
+    try:
+        fcntl.flock(fh.fileno(), fcntl.LOCK_EX | fcntl.LOCK_NB)
+    except OSError:
+        fh.seek(0)
+        holder = fh.read().strip() or "unknown"
+        fh.close()
+        raise UserError(f"store {path} is in use by another quaywatch daemon (pid {holder}, lock {lock_path}); "
+                        f"stop that one first, or point store.path at another file") from None
+    fh.seek(0)
+    fh.truncate()
+    fh.write(f"{os.getpid()}\n")
+    fh.flush()
+    return fh
+
+
+def _release(fh) -> None:
+    if fh is None:
+        return
+    with contextlib.suppress(Exception):
+        fh.seek(0)
+        fh.truncate()
+        fcntl.flock(fh.fileno(), fcntl.LOCK_UN)
+    with contextlib.suppress(Exception):
+        fh.close()
+
+
+def _from_unix(t: np.ndarray) -> pd.DatetimeIndex:
+    return pd.DatetimeIndex(pd.to_datetime(np.asarray(t, dtype=np.int64), unit="s", utc=True), name="time")
+
+
+def _to_unix(index: pd.Index) -> np.ndarray:
+    idx = pd.DatetimeIndex(index)
+    if idx.tz is None:
+        idx = idx.tz_localize("UTC")
+    return (idx.tz_convert("UTC").tz_localize(None).to_numpy(dtype="datetime64[ns]").view(np.int64)
+            // 1_000_000_000)
+
+
+to_unix = _to_unix
+from_unix = _from_unix
