@@ -3,7 +3,6 @@ outbox, and check the mail settings with a test message that goes through the ou
 from __future__ import annotations
 
 import argparse
-import importlib
 import time
 import uuid
 from datetime import datetime, timezone
@@ -56,25 +55,13 @@ def _store_path(cfg) -> Path:
 
 
 def _open(cfg, create: bool = False):
-    """The store as a sqlite_utils.Database (through monitor.store when it offers one)."""
+    """The store's sqlite_utils.Database, without the daemon's lock (it may be running)."""
+    from monitor.store import Store
     path = _store_path(cfg)
     if not create and not path.exists():
         raise UserError(f"{cfg.path or 'configuration'}: store.path {str(path)!r} does not exist yet "
                         f"(the daemon creates it: quaywatch run CONFIG)")
-    try:
-        store = importlib.import_module("monitor.store")
-    except ModuleNotFoundError:
-        store = None
-    opener = getattr(store, "open_db", None) if store else None
-    if opener is not None:
-        try:
-            return opener(path)
-        except TypeError:
-            pass
-    import sqlite_utils
-    db = sqlite_utils.Database(path)
-    db.execute("PRAGMA busy_timeout = 5000")
-    return db
+    return Store.open(path, lock=False, create=create).db
 
 
 def _zone_for(cfg, station: str | None):

@@ -200,3 +200,13 @@ def test_alert_reaches_a_loopback_smtp_server_with_the_caution(db):
     assert "automated and unofficial" in first.get_body(("plain",)).get_content()
     assert "official warnings" in first.get_body(("html",)).get_content().lower()
     assert len({msg["Message-ID"] for msg in catcher.messages}) == len(catcher.messages) == 5
+
+
+def test_works_on_an_autocommit_connection_like_the_stores(path):
+    import sqlite3
+    conn = sqlite3.connect(str(path), isolation_level=None)
+    db = sqlite_utils.Database(conn)
+    evaluate(db, STATION, rules(), frame(storm()), now=T0 + pd.Timedelta(hours=3))
+    conn.close()
+    again = sqlite_utils.Database(path)
+    assert [k for r, k, _ in queued(again) if r == "duty@port.example"] == ["alert", "alert", "all_clear"]
