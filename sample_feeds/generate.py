@@ -47,7 +47,7 @@ HOUR = 3600.0
 DAY = 86400.0
 
 # Doodson numbers on (tau, s, h, p, N', p1) and the phase offset in degrees
-# (Schureman 1958, Table 2; Foreman 1977 Table 1). N' = -N.
+# (Foreman 1977, Table 1, with tau = 15 UT + h - s). N' = -N.
 DOODSON = {
     "M2": ((2, 0, 0, 0, 0, 0), 0.0),
     "S2": ((2, 2, -2, 0, 0, 0), 0.0),
@@ -77,8 +77,10 @@ def astro_arguments(t: np.ndarray) -> dict[str, np.ndarray]:
 
     References
     ----------
-    Meeus (1998), eqs. 47.1-47.7 (s, p, N); Meeus (1998) eq. 25.2 (h); the lunar time
-    tau = 180 + 15 UT[h] + h - s follows Schureman (1958), sec. 28.
+    Meeus (1998), eqs. 47.1-47.7 (s, p, N); Meeus (1998) eq. 25.2 (h). The lunar time
+    tau = 15 UT[h] + h - s goes with the phase offsets of Foreman (1977), Table 1, so that
+    K1's argument tau + s + 90 equals the Greenwich sidereal angle - 90 (Schureman 1958,
+    Table 2, writes the same argument as T + h - 90 with T = 180 + 15 UT).
     """
     secs = unix_seconds(t).astype(float)
     jd = secs / DAY + 2440587.5
@@ -89,7 +91,7 @@ def astro_arguments(t: np.ndarray) -> dict[str, np.ndarray]:
     N = 125.0445479 - 1934.1362891 * T
     p1 = 282.93735 + 1.71946 * T
     ut_hours = (secs % DAY) / HOUR
-    tau = 180.0 + 15.0 * ut_hours + h - s
+    tau = 15.0 * ut_hours + h - s
     return {"tau": tau, "s": s, "h": h, "p": p, "Np": -N, "p1": p1, "N": N}
 
 
@@ -233,9 +235,11 @@ def build(port: dict) -> dict:
     primary = primary_true.copy()
     # Spikes: single samples. The first rides a normal high water and on its own would
     # cross the boards-out level; it must not raise an alert.
-    hw_before_t1 = highs[highs < i1][-1]
+    # The highest high water before the storm's own, surge included.
+    earlier = highs[highs < i2 - 120]
+    hw_near_miss = earlier[np.argmax(sea[earlier])]
     spike_at = [
-        int(hw_before_t1),
+        int(hw_near_miss),
         int(np.searchsorted(ts_s, t1 - 8.5 * HOUR)),
         int(i1 + 25),
         int(np.searchsorted(ts_s, t2 - 3.3 * HOUR)),

@@ -65,6 +65,18 @@ def test_astronomical_arguments_match_erfa():
     np.testing.assert_allclose(_wrap(a["N"] - Om), 0, atol=0.01 * degree)
 
 
+def test_k1_argument_is_the_sidereal_angle_less_90_degrees():
+    # K1's equilibrium argument is the Greenwich sidereal angle - 90 deg (Schureman 1958,
+    # Table 2: T + h - 90 with T = 180 + 15 UT); sidereal angle from ERFA's gmst06 (UT1 and
+    # TT taken as UTC, which moves it by far less than the tolerance).
+    t = np.arange(np.datetime64("2025-08-25T00:00"), np.datetime64("2025-10-27T00:00"), np.timedelta64(5, "h"))
+    a = gen.astro_arguments(t)
+    jd = gen.unix_seconds(t) / 86400.0 + 2440587.5
+    gmst = np.degrees(erfa.gmst06(jd, 0.0, jd, 0.0))
+    v_k1 = a["tau"] + a["s"] + 90.0
+    np.testing.assert_allclose(_wrap(v_k1 - (gmst - 90.0)), 0, atol=0.01 * degree)
+
+
 def test_m2_speed_is_the_published_value():
     # M2 speed 28.9841042 deg/h (Schureman 1958, Table 2; Foreman 1977, Table 1).
     t = np.array(["2025-10-01T00:00", "2025-10-01T01:00"], dtype="datetime64[s]")
@@ -124,6 +136,29 @@ def test_faults_lie_inside_the_short_window(scenario):
                                                  f["gap"]["start"], f["gap"]["end"],
                                                  f["clock_offset"]["start"], f["clock_offset"]["end"]]
     assert all(lo <= x <= hi for x in times)  # ISO 8601 UTC strings sort as times
+
+
+def test_fit_to_the_history_recovers_the_invented_constants(port):
+    # The history is synthesised here from the invented constants with Schureman's and
+    # Foreman's arguments; predictor.harmonic_fit must find them again. Eight weeks resolve
+    # M2, N2, O1, Q1 and M4 (Rayleigh criterion); K2 and P1 need 182 days and fold into S2
+    # and K1, so those two are not compared. Tolerances: 1 cm and 2 deg for the large
+    # constituents against 4.5 cm of red weather noise (our choice).
+    import pandas as pd
+
+    from predictor import harmonic_fit
+
+    df = pd.read_csv(ROOT / "sample_feeds" / "history.csv")
+    model = harmonic_fit(pd.DatetimeIndex(pd.to_datetime(df["time"], utc=True)), df["level"].to_numpy())
+    got = {c["name"] if isinstance(c, dict) else c.name: c for c in model.constituents}
+    for want in port["tide"]["constituents"]:
+        if want["name"] not in ("M2", "N2", "O1"):
+            continue
+        c = got[want["name"]]
+        amp = c["amplitude"] if isinstance(c, dict) else c.amplitude
+        pha = c["phase"] if isinstance(c, dict) else c.phase
+        assert amp == pytest.approx(want["amplitude"], abs=1 * cm), want["name"]
+        assert abs(_wrap(pha - want["phase"])) < 2 * degree, want["name"]
 
 
 def test_committed_feeds_are_what_the_generator_writes(tmp_path):
