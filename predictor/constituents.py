@@ -179,7 +179,7 @@ if len(_FOLDED) != len(CATALOGUE):  # pragma: no cover - guards the table above
     raise RuntimeError("constituent names must be unique ignoring case")
 # Other spellings in common use.
 _ALIASES = {"LAM2": "LDA2", "LAMBDA2": "LDA2", "SIGMA1": "SIG1", "THETA1": "THE1",
-            "RHO": "RHO1", "MSM": "MSM", "NO1": "M1"}
+            "RHO": "RHO1"}
 
 
 def get(name: str) -> Constituent:

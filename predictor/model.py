@@ -1,0 +1,449 @@
+"""TideModel: harmonic constants, the TOML constants file, and fast prediction.
+
+The model is ``h(t) = Z0 + trend * (t - epoch) + sum_k f_k(t) H_k cos(V_k(t) + u_k(t) - g_k)``
+with H in metres, g the Greenwich phase lag in degrees (times UTC), f and u the nodal
+factor and correction (:mod:`predictor.nodal`) and V the equilibrium argument.
+
+Fast prediction (the daemon's and the datum computation's hot path): for uniformly
+spaced times the span is cut into short blocks.  Within a block f and u are constant
+(interpolated linearly between the block's ends; they drift by at most 0.03 deg a day) and every
+argument advances linearly at its speed, so the block values are the real part of
+``A @ E + dA @ (E j/B)`` with ``A[b, k] = f H exp(i (V + u - g))`` at each block start,
+``dA`` the change of ``f exp(iu)`` over the block, and ``E[k, j] = exp(i omega_k j dt)``
+shared by all blocks: two complex matrix products instead of a cosine per constituent
+per sample.
+
+The output of this package is an automated, unofficial aid: official predictions and
+warnings, and the local authorities, come first.
+
+References
+----------
+Foreman, M. G. G. (1977, rev. 2004). Manual for Tidal Heights Analysis and Prediction,
+Pacific Marine Science Report 77-10 (prediction formula).
+Schureman, P. (1958). Special Publication 98 (f and u).
+"""
+from __future__ import annotations
+
+import copy
+import math
+import tomllib
+from dataclasses import dataclass, field
+from pathlib import Path
+
+import numpy as np
+
+from predictor.astro import astronomical_arguments
+from predictor.constituents import doodson_matrix, get
+from predictor.nodal import arguments, nodal_factors
+
+__all__ = ["TideModel", "ConstantsFileError", "to_unix_seconds", "SECONDS_PER_YEAR"]
+
+SECONDS_PER_YEAR = 365.25 * 86400.0  # Julian year, the unit of the trend
+_BLOCK_SECONDS = 86400.0  # block length of the fast path
+_ROWS_PER_CHUNK = 65536  # rows per chunk on the general path (bounds memory)
+_BLOCKS_PER_CHUNK = 512
+
+CAUTION = (
+    "Automated, unofficial prediction. Official tide predictions and warnings and the local "
+    "emergency authorities come first; defer to local codes and licensed practice."
+)
+
+
+class ConstantsFileError(ValueError):
+    """A constants file or constants table that cannot be used; the message says where."""
+
+
+def to_unix_seconds(times) -> np.ndarray:
+    """Convert times to Unix seconds UTC.
+
+    Parameters
+    ----------
+    times : array_like
+        ``datetime64`` array (UTC), pandas DatetimeIndex or Series (tz-aware converted
+        to UTC, naive taken as UTC), a sequence of datetimes or ISO strings, a single
+        time, or numbers already in Unix seconds.
+
+    Returns
+    -------
+    numpy.ndarray
+        Unix seconds [s] as float, 1-D; NaT becomes NaN.
+    """
+    import pandas as pd
+
+    if isinstance(times, (pd.Series,)):
+        times = pd.DatetimeIndex(times)
+    if not isinstance(times, pd.DatetimeIndex):
+        arr = np.atleast_1d(np.asarray(times))
+        if np.issubdtype(arr.dtype, np.number):
+            return arr.astype(float).ravel()
+        if np.issubdtype(arr.dtype, np.datetime64):
+            ns = arr.astype("datetime64[ns]").astype(np.int64).astype(float)
+            ns[np.isnat(arr)] = np.nan
+            return ns.ravel() / 1e9
+        times = pd.DatetimeIndex(pd.to_datetime(list(arr.ravel()), utc=True))
+    if times.tz is not None:
+        times = times.tz_convert("UTC").tz_localize(None)
+    ns = times.as_unit("ns").asi8.astype(float)
+    ns[np.asarray(times.isna())] = np.nan
+    return ns / 1e9
+
+
+def _uniform(times):
+    """(t0 [s], dt [s], n) when ``times`` are strictly uniform, else None."""
+    import pandas as pd
+
+    if isinstance(times, pd.Series):
+        times = pd.DatetimeIndex(times)
+    if isinstance(times, pd.DatetimeIndex):
+        if times.hasnans:
+            return None
+        if times.tz is not None:
+            times = times.tz_convert("UTC").tz_localize(None)
+        ns = times.as_unit("ns").asi8
+    else:
+        arr = np.asarray(times)
+        if arr.ndim != 1 or not np.issubdtype(arr.dtype, np.datetime64) or np.isnat(arr).any():
+            return None
+        ns = arr.astype("datetime64[ns]").astype(np.int64)
+    if ns.size < 64:
+        return None
+    d = np.diff(ns)
+    if d[0] <= 0 or np.any(d != d[0]):
+        return None
+    return ns[0] / 1e9, d[0] / 1e9, ns.size
+
+
+def _canonical_constituents(items, where: str) -> list[dict]:
+    out, seen = [], {}
+    for i, c in enumerate(items):
+        c = dict(c) if isinstance(c, dict) else dict(vars(c))
+        place = f"{where}constituents[{i}]"
+        name = c.get("name")
+        if not isinstance(name, str) or not name.strip():
+            raise ConstantsFileError(f"{place}: missing 'name' (a constituent name such as \"M2\")")
+        try:
+            canon = get(name).name
+        except KeyError as exc:
+            raise ConstantsFileError(f"{place}: {exc.args[0]}") from None
+        if canon in seen:
+            raise ConstantsFileError(f"{place}: {canon} is listed twice (also constituents[{seen[canon]}])")
+        seen[canon] = i
+        for key in ("amplitude", "phase"):
+            v = c.get(key)
+            if isinstance(v, bool) or not isinstance(v, (int, float, np.integer, np.floating)) \
+                    or not math.isfinite(float(v)):
+                raise ConstantsFileError(f"{place} ({canon}): '{key}' must be a number "
+                                         f"({'metres' if key == 'amplitude' else 'degrees'}), got {v!r}")
+        if float(c["amplitude"]) < 0:
+            raise ConstantsFileError(f"{place} ({canon}): 'amplitude' must not be negative")
+        c["name"] = canon
+        c["amplitude"] = float(c["amplitude"])
+        c["phase"] = float(c["phase"]) % 360.0
+        out.append(c)
+    return out
+
+
+@dataclass
+class TideModel:
+    """Harmonic tidal constants and their prediction.
+
+    Parameters
+    ----------
+    mean : float
+        Mean level Z0 [m] (at ``trend_epoch`` when there is a trend).
+    constituents : list of dict
+        Each with ``name``, ``amplitude`` H [m] and ``phase`` g [deg, Greenwich lag,
+        UTC]; further keys (``amplitude_ci``, ``phase_ci``, ``snr``, ``speed``, ...) are
+        kept as given.
+    trend : float
+        Linear trend [m/year] (Julian year).
+    trend_epoch : float or str, optional
+        Reference time of the trend: Unix seconds or ISO 8601; default
+        ``metadata["trend_epoch"]`` or 2000-01-01T00:00Z.
+    metadata : dict
+        Free-form information (record span, fit statistics, station, ...).
+    """
+
+    mean: float
+    constituents: list = field(default_factory=list)
+    trend: float = 0.0
+    trend_epoch: float | None = None
+    metadata: dict = field(default_factory=dict)
+
+    def __post_init__(self):
+        self.mean = float(self.mean)
+        self.trend = float(self.trend or 0.0)
+        self.metadata = dict(self.metadata or {})
+        self.constituents = _canonical_constituents(self.constituents, "")
+        epoch = self.trend_epoch if self.trend_epoch is not None else self.metadata.get("trend_epoch")
+        if epoch is None:
+            self.trend_epoch = 946684800.0  # 2000-01-01T00:00Z
+        elif isinstance(epoch, (int, float)):
+            self.trend_epoch = float(epoch)
+        else:
+            self.trend_epoch = float(to_unix_seconds([epoch])[0])
+
+    # ------------------------------------------------------------------ accessors
+    @property
+    def names(self) -> list[str]:
+        """Constituent names in model order."""
+        return [c["name"] for c in self.constituents]
+
+    def _arrays(self):
+        H = np.array([c["amplitude"] for c in self.constituents], dtype=float)
+        g = np.array([c["phase"] for c in self.constituents], dtype=float)
+        speed = np.array([get(n).speed for n in self.names], dtype=float)
+        omega = np.radians(speed) / 3600.0  # rad/s
+        return H, g, omega
+
+    def without_trend(self) -> "TideModel":
+        """A copy with the trend removed (the astronomical tide about ``mean``)."""
+        m = copy.deepcopy(self)
+        m.trend = 0.0
+        return m
+
+    # ------------------------------------------------------------------ prediction
+    def predict(self, times) -> np.ndarray:
+        """Predicted level.
+
+        Parameters
+        ----------
+        times : numpy.ndarray of datetime64 or pandas.DatetimeIndex
+            Times (UTC; tz-aware converted, naive taken as UTC).  Numbers are taken as
+            Unix seconds.
+
+        Returns
+        -------
+        numpy.ndarray
+            Level [m] on the model's datum, one per time (NaN for NaT).
+
+        References
+        ----------
+        Foreman, M. G. G. (1977). Pacific Marine Science Report 77-10, prediction formula.
+        """
+        return self._evaluate(times, order=0)
+
+    def predict_derivative(self, times) -> np.ndarray:
+        """Analytic rate of change of the predicted level [m/s].
+
+        The slow drift of f and u (18.61 years) is neglected: it changes the rate by
+        less than 1e-6 of its value.
+        """
+        return self._evaluate(times, order=1)
+
+    def predict_second_derivative(self, times) -> np.ndarray:
+        """Analytic second time derivative of the predicted level [m/s^2]."""
+        return self._evaluate(times, order=2)
+
+    def high_low(self, start, end, step="10min"):
+        """High and low waters between ``start`` and ``end``.
+
+        Returns
+        -------
+        pandas.DataFrame
+            Columns ``time`` (UTC, tz-aware), ``level`` [m], ``kind`` (high/low).
+
+        See Also
+        --------
+        predictor.extrema.high_low
+        """
+        from predictor.extrema import high_low
+
+        return high_low(self, start, end, step=step)
+
+    def _evaluate(self, times, order: int) -> np.ndarray:
+        uni = _uniform(times)
+        if uni is not None:
+            t0, dt, n = uni
+            out = self._uniform_path(t0, dt, n, order)
+        else:
+            t = to_unix_seconds(times)
+            out = np.full(t.shape, np.nan)
+            ok = np.isfinite(t)
+            out[ok] = self._general_path(t[ok], order)
+            return out
+        return out
+
+    def _background(self, t, order):
+        if order == 0:
+            return self.mean + self.trend * (t - self.trend_epoch) / SECONDS_PER_YEAR
+        if order == 1:
+            return np.full(np.shape(t), self.trend / SECONDS_PER_YEAR)
+        return np.zeros(np.shape(t))
+
+    def _weights(self, omega, order):
+        # d^n/dt^n Re(A e^{i omega t}) = Re((i omega)^n A e^{i omega t})
+        return (1j * omega) ** order
+
+    def _general_path(self, t: np.ndarray, order: int) -> np.ndarray:
+        return self.evaluate_orders(t, (order,))[0]
+
+    def evaluate_orders(self, t, orders=(0, 1, 2)) -> list:
+        """Level and derivatives at arbitrary times, sharing one argument computation.
+
+        Parameters
+        ----------
+        t : numpy.ndarray
+            Unix seconds [s], UTC, finite.
+        orders : sequence of int
+            0 level [m], 1 rate [m/s], 2 second derivative [m/s^2].
+
+        Returns
+        -------
+        list of numpy.ndarray
+            One array per order, shaped like ``t``.
+        """
+        t = np.asarray(t, dtype=float).ravel()
+        outs = [self._background(t, k).astype(float) for k in orders]
+        if not self.constituents or t.size == 0:
+            return outs
+        H, g, omega = self._arrays()
+        W = np.stack([H * self._weights(omega, k) for k in orders], axis=1)  # (k, orders)
+        for i in range(0, t.size, _ROWS_PER_CHUNK):
+            tc = t[i:i + _ROWS_PER_CHUNK]
+            vu, f = arguments(tc, self.names)
+            res = np.real((f * np.exp(1j * np.radians(vu - g))) @ W)
+            for j in range(len(orders)):
+                outs[j][i:i + _ROWS_PER_CHUNK] += res[:, j]
+        return outs
+
+    def _uniform_path(self, t0: float, dt: float, n: int, order: int) -> np.ndarray:
+        if not self.constituents:
+            return self._background(t0 + dt * np.arange(n), order)
+        H, g, omega = self._arrays()
+        w = self._weights(omega, order)
+        names = self.names
+        B = int(min(n, max(1, round(_BLOCK_SECONDS / dt))))
+        nblocks = -(-n // B)
+        E = np.exp(1j * np.outer(omega, dt * np.arange(B)))  # (k, B)
+        E_ramp = E * (np.arange(B) / B)
+        # Re(A E) = Re(A) Re(E) - Im(A) Im(E): one real product with stacked factors.
+        R = np.concatenate([E.real, E.imag, E_ramp.real, E_ramp.imag])  # (4k, B)
+        D = doodson_matrix(names)
+        out = np.empty(nblocks * B)
+        for b0 in range(0, nblocks, _BLOCKS_PER_CHUNK):
+            b1 = min(nblocks, b0 + _BLOCKS_PER_CHUNK)
+            edges = t0 + dt * B * np.arange(b0, b1 + 1, dtype=float)
+            v = astronomical_arguments(edges[:-1]) @ D[:, :6].T + 90.0 * D[:, 6]
+            # f e^{iu} at both ends of each block, interpolated linearly inside it, so
+            # the slow drift of u (up to 0.03 deg/day for OO1) leaves no steps.
+            f, u = nodal_factors(edges, names)
+            z = f * np.exp(1j * np.radians(u))
+            rot = (H * w) * np.exp(1j * np.radians(np.mod(v - g, 360.0)))
+            A0 = rot * z[:-1]
+            dA = rot * (z[1:] - z[:-1])
+            L = np.concatenate([A0.real, -A0.imag, dA.real, -dA.imag], axis=1)  # (blocks, 4k)
+            out[b0 * B:b1 * B] = (L @ R).ravel()
+        out = out[:n]
+        out += self._background(t0 + dt * np.arange(n), order)
+        return out
+
+    # ------------------------------------------------------------------ file I/O
+    def to_dict(self) -> dict:
+        """Plain data for TOML or JSON: mean, trend, constituents, metadata."""
+        d = {"mean": self.mean}
+        if self.trend:
+            d["trend"] = self.trend
+            d["trend_epoch"] = _iso(self.trend_epoch)
+        d["constituents"] = [dict(c) for c in self.constituents]
+        if self.metadata:
+            d["metadata"] = dict(self.metadata)
+        return d
+
+    @classmethod
+    def from_dict(cls, data: dict, where: str = "") -> "TideModel":
+        """Build from plain data (as read from TOML or JSON); ``where`` prefixes errors."""
+        if not isinstance(data, dict):
+            raise ConstantsFileError(f"{where}expected a table with 'mean' and 'constituents'")
+        if "mean" not in data:
+            raise ConstantsFileError(f"{where}missing top-level key 'mean' (mean level, metres)")
+        mean = data["mean"]
+        if isinstance(mean, bool) or not isinstance(mean, (int, float)):
+            raise ConstantsFileError(f"{where}'mean' must be a number of metres, got {mean!r}")
+        cons = data.get("constituents", [])
+        if not isinstance(cons, list):
+            raise ConstantsFileError(f"{where}'constituents' must be an array of tables ([[constituents]])")
+        trend = data.get("trend", 0.0)
+        if isinstance(trend, bool) or not isinstance(trend, (int, float)):
+            raise ConstantsFileError(f"{where}'trend' must be a number of metres per year, got {trend!r}")
+        epoch = data.get("trend_epoch")
+        if epoch is not None and not isinstance(epoch, (int, float)):
+            try:
+                epoch = float(to_unix_seconds([_aware(epoch)])[0])
+            except (ValueError, TypeError):
+                raise ConstantsFileError(f"{where}'trend_epoch' must be an ISO 8601 time, got {epoch!r}") from None
+        meta = data.get("metadata", {})
+        if not isinstance(meta, dict):
+            raise ConstantsFileError(f"{where}'metadata' must be a table")
+        cons = _canonical_constituents(cons, where)
+        return cls(mean=float(mean), constituents=cons, trend=float(trend), trend_epoch=epoch, metadata=meta)
+
+    @classmethod
+    def load(cls, path) -> "TideModel":
+        """Read a constants file (TOML).
+
+        Raises
+        ------
+        ConstantsFileError
+            Unreadable file, bad TOML, missing keys or an unknown constituent; the
+            message names the file and the entry.
+        """
+        path = Path(path)
+        try:
+            text = path.read_text(encoding="utf-8")
+        except FileNotFoundError:
+            raise ConstantsFileError(f"{path}: no such constants file") from None
+        except (OSError, UnicodeDecodeError) as exc:
+            raise ConstantsFileError(f"{path}: cannot read ({exc})") from None
+        try:
+            data = tomllib.loads(text)
+        except tomllib.TOMLDecodeError as exc:
+            raise ConstantsFileError(f"{path}: not valid TOML: {exc}") from None
+        return cls.from_dict(data, where=f"{path}: ")
+
+    def save(self, path) -> None:
+        """Write the constants file (TOML), with a header saying what it is."""
+        import tomli_w
+
+        data = _plain(self.to_dict())
+        meta = data.pop("metadata", None)
+        cons = data.pop("constituents")
+        body = tomli_w.dumps(data)
+        for c in cons:
+            body += "\n[[constituents]]\n" + tomli_w.dumps(c)
+        if meta:
+            body += "\n" + tomli_w.dumps({"metadata": meta})
+        header = (
+            "# quaywatch harmonic constants: mean [m], amplitude [m], phase = Greenwich phase\n"
+            "# lag g [deg], times UTC.\n"
+            "# Automated, unofficial: official tide predictions and warnings and the local\n"
+            "# emergency authorities come first; defer to local codes and licensed practice.\n\n"
+        )
+        Path(path).write_text(header + body, encoding="utf-8")
+
+
+def _aware(value):
+    import datetime as dt
+
+    if isinstance(value, dt.datetime) and value.tzinfo is None:
+        return value.replace(tzinfo=dt.timezone.utc)
+    return value
+
+
+def _iso(t: float) -> str:
+    import datetime as dt
+
+    return dt.datetime.fromtimestamp(float(t), dt.timezone.utc).strftime("%Y-%m-%dT%H:%M:%SZ")
+
+
+def _plain(x):
+    """Numpy scalars to Python, None dropped, so tomli_w can write it."""
+    if isinstance(x, dict):
+        return {str(k): _plain(v) for k, v in x.items() if v is not None}
+    if isinstance(x, (list, tuple)):
+        return [_plain(v) for v in x if v is not None]
+    if isinstance(x, np.generic):
+        return x.item()
+    if isinstance(x, float) and not math.isfinite(x):
+        return str(x)
+    return x
