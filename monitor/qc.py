@@ -456,11 +456,16 @@ def flat_line_test(level: pd.Series, tolerance: float, suspect_after: float, fai
     flags = np.full(len(v), PASS, dtype=np.int8)
     frame = pd.DataFrame({"v": v, "t": t}, index=idx)
     for duration, code in ((suspect_after, SUSPECT), (fail_after, FAIL)):
-        roll = frame.rolling(_window(duration + gap_limit), min_periods=2)
-        vmax = roll["v"].max().to_numpy()
-        vmin = roll["v"].min().to_numpy()
-        tmin = roll["t"].min().to_numpy()
-        flat = (vmax - v < tolerance) & (v - vmin < tolerance) & (t - tmin >= duration)
+        roll = frame["v"].rolling(_window(duration), closed="both", min_periods=2)
+        vmax = roll.max().to_numpy()
+        vmin = roll.min().to_numpy()
+        # The record must reach back to t - duration: a sample exactly there, or the
+        # one before the window no more than a gap away.
+        first = np.searchsorted(t, t - duration, side="left")
+        exact = t[np.minimum(first, len(t) - 1)] == t - duration
+        before = t[np.maximum(first - 1, 0)]
+        covered = exact | ((first > 0) & (before >= t - duration - gap_limit))
+        flat = (vmax - v < tolerance) & (v - vmin < tolerance) & covered
         flags[flat] = code
     flags[~np.isfinite(v)] = NOT_EVALUATED
     return _flags(level.index, flags, "flat")

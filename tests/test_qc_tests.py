@@ -1,0 +1,216 @@
+"""Per-sample QC tests on synthetic records with known, injected faults.
+
+Each fault must be flagged at the sample where it was injected and nowhere else that
+matters; a clean record with coloured noise and a storm surge must stay clean.
+"""
+from __future__ import annotations
+
+import numpy as np
+import pandas as pd
+import pytest
+
+from monitor import qc
+from test_qc_synthetic import SynthModel, hour, minute, mm, record
+
+FAIL, SUSPECT, PASS, NOT_EVALUATED, MISSING = qc.FAIL, qc.SUSPECT, qc.PASS, qc.NOT_EVALUATED, qc.MISSING
+
+
+@pytest.fixture(scope="module")
+def calm():
+    """Five calm days at one-minute steps: (level, predicted)."""
+    return record(days=5, seed=11)
+
+
+def flagged(out: pd.DataFrame, column: str = "flag", at_least: int = SUSPECT) -> pd.DatetimeIndex:
+    f = out[column]
+    return f.index[(f >= at_least) & (f != MISSING)]
+
+
+def test_single_sample_spike_of_30_cm_fails_at_its_time(calm):
+    level, pred = calm
+    level = level.copy()
+    at = level.index[3000]
+    level.loc[at] += 0.30
+    out = qc.run_tests(level, None, pred)
+    assert list(flagged(out, at_least=FAIL)) == [at]
+
+
+def test_one_sample_jump_of_30_cm_fails_at_the_jump(calm):
+    # A step (the level jumps and stays): the sample after the jump fails on rate of change.
+    level, pred = calm
+    level = level.copy()
+    level.iloc[3000:] += 0.30
+    out = qc.run_tests(level, None, pred)
+    assert out["flag"].iloc[3000] == FAIL
+    assert (out["flag"].iloc[:2999] < FAIL).all()
+
+
+def test_good_sample_after_a_spike_is_not_blamed_for_the_return(calm):
+    level, pred = calm
+    level = level.copy()
+    level.iloc[3000] += 0.30
+    out = qc.run_tests(level, None, pred)
+    assert out["roc"].iloc[3001] == PASS
+
+
+def test_smooth_surge_of_one_metre_over_hours_passes():
+    # A metre in about five hours (Gaussian, e-folding 2 h): the rise is not a spike.
+    level, pred = record(days=4, seed=3, surge_height=1.0, surge_width_h=2.0)
+    out = qc.run_tests(level, None, pred)
+    for test in ("spike", "roc", "resid", "flag"):
+        assert len(flagged(out, test)) == 0, test
+
+
+def test_spike_test_ignores_tide_curvature_on_the_residual():
+    # Hourly samples: the tide's own curvature at high water is ~0.15 m per step pair,
+    # which the raw-level formula would call a spike; on the residual it vanishes.
+    level, pred = record(days=5, step_s=3600, seed=2, red_sigma=0.01)
+    raw = qc.spike_test(level, 0.08, 0.20, 2 * hour)
+    resid = qc.spike_test(level - pred, 0.08, 0.20, 2 * hour)
+    assert (raw >= SUSPECT).sum() > 0
+    assert (resid >= SUSPECT).sum() == 0
+
+
+def test_flat_line_is_suspect_after_30_min_and_fails_after_60_min(calm):
+    level, pred = calm
+    level = level.copy()
+    stuck_from = 2000
+    level.iloc[stuck_from:stuck_from + 120] = level.iloc[stuck_from]
+    out = qc.run_tests(level, None, pred)
+    flat = out["flat"]
+    first_suspect = flat.index[flat == SUSPECT][0]
+    first_fail = flat.index[flat == FAIL][0]
+    t0 = level.index[stuck_from]
+    assert abs((first_suspect - t0).total_seconds() - 30 * minute) <= 1 * minute
+    assert abs((first_fail - t0).total_seconds() - 60 * minute) <= 1 * minute
+    assert (flat.iloc[:stuck_from + 29] == PASS).all()
+
+
+def test_gap_marks_the_first_sample_after_it(calm):
+    level, pred = calm
+    keep = np.ones(len(level), bool)
+    keep[1500:1520] = False  # twenty minutes missing
+    out = qc.run_tests(level[keep], None, pred[keep])
+    after = level.index[1520]
+    assert out.loc[after, "gap"] == SUSPECT
+    assert (out["gap"] == SUSPECT).sum() == 1
+
+
+def test_find_gaps_reports_start_end_and_length(calm):
+    level, _ = calm
+    keep = np.ones(len(level), bool)
+    keep[1500:1520] = False
+    gaps = qc.find_gaps(level[keep].index, 5 * minute)
+    assert len(gaps) == 1
+    assert gaps.loc[0, "start"] == level.index[1499]
+    assert gaps.loc[0, "end"] == level.index[1520]
+    assert gaps.loc[0, "seconds"] == pytest.approx(21 * minute)
+
+
+def test_future_time_stamp_fails(calm):
+    level, pred = calm
+    now = level.index[-10].timestamp()
+    out = qc.gap_test(level, 300, now=now, future_tolerance=120)
+    assert (out.iloc[-7:] == FAIL).all() and (out.iloc[:-8] != FAIL).all()
+
+
+def test_gross_range_fails_outside_sensor_limits_and_suspects_outside_operator_limits():
+    idx = pd.date_range("2031-01-01", periods=4, freq="1min", tz="UTC")
+    level = pd.Series([1.0, 25.0, -0.6, np.nan], index=idx)
+    out = qc.gross_range_test(level, -10, 20, suspect_min=-0.5, suspect_max=6)
+    assert list(out) == [PASS, FAIL, SUSPECT, NOT_EVALUATED]
+
+
+def test_expected_range_suspects_a_level_far_from_the_prediction(calm):
+    level, pred = calm
+    level = level.copy()
+    level.iloc[100:110] += 2.0
+    out = qc.expected_range_test(level, pred, 1.5)
+    assert list(out.index[out == SUSPECT]) == list(level.index[100:110])
+
+
+def test_multi_sensor_suspect_once_backup_drift_passes_the_limit(calm):
+    level, pred = calm
+    rng = np.random.default_rng(4)
+    drift_per_min = 0.02 / 1440  # 20 mm/day
+    backup = level + rng.normal(0, 1 * mm, len(level)) + drift_per_min * np.arange(len(level))
+    out = qc.multi_sensor_test(level, backup, 0.05, 300)
+    first = out.index[out == SUSPECT][0]
+    expected = level.index[0] + pd.Timedelta(days=2.5)  # 50 mm / 20 mm/day
+    # The first crossing comes early by up to ~4.5 sigma of the 1 mm noise: 4.5 mm at 0.83 mm/h.
+    assert abs((first - expected).total_seconds()) <= 6 * hour
+
+
+def test_multi_sensor_not_evaluated_without_another_sensor(calm):
+    level, _ = calm
+    assert (qc.multi_sensor_test(level, None, 0.05, 300) == NOT_EVALUATED).all()
+
+
+def test_residual_outlier_fails_a_three_sample_burst(calm):
+    # Three consecutive bad samples: each looks like a plateau to the spike formula.
+    level, pred = calm
+    level = level.copy()
+    level.iloc[4000:4003] += 0.35
+    out = qc.run_tests(level, None, pred)
+    assert (out["resid"].iloc[4000:4003] == FAIL).all()
+    assert (out["flag"].iloc[4000:4003] == FAIL).all()
+
+
+def test_missing_value_is_9_and_other_tests_not_evaluated(calm):
+    level, pred = calm
+    level = level.copy()
+    level.iloc[50] = np.nan
+    out = qc.run_tests(level, None, pred)
+    assert out["flag"].iloc[50] == MISSING
+    assert out.iloc[50][[c for c in qc.TESTS if c != "syntax"]].eq(NOT_EVALUATED).all()
+
+
+def test_aggregate_is_worst_evaluated_test():
+    tests = pd.DataFrame({c: [PASS, PASS, NOT_EVALUATED, PASS] for c in qc.TESTS})
+    tests.loc[1, "spike"] = SUSPECT
+    tests.loc[1, "roc"] = FAIL
+    tests.loc[2, :] = NOT_EVALUATED
+    tests.loc[3, "flat"] = SUSPECT
+    assert list(qc.aggregate_flags(tests)) == [PASS, FAIL, NOT_EVALUATED, SUSPECT]
+
+
+def test_override_wins_over_automatic_flag(calm):
+    level, pred = calm
+    idx = level.index[:3]
+    flags = pd.Series([FAIL, PASS, PASS], index=idx)
+    out = qc.apply_overrides(flags, pd.Series([PASS, FAIL], index=idx[:2]))
+    assert list(out) == [PASS, FAIL, PASS]
+
+
+def test_usable_excludes_fail_and_missing_but_keeps_suspect():
+    assert list(qc.usable_mask([1, 2, 3, 4, 9])) == [True, True, True, False, False]
+
+
+def test_without_prediction_expected_range_is_not_evaluated(calm):
+    level, _ = calm
+    out = qc.run_tests(level.iloc[:500])
+    assert (out["expected"] == NOT_EVALUATED).all()
+
+
+def test_episodes_orders_worst_first(calm):
+    level, _ = calm
+    f = pd.Series(PASS, index=level.index[:20])
+    f.iloc[3:5] = SUSPECT
+    f.iloc[10] = FAIL
+    ep = qc.episodes(f)
+    assert list(ep["worst"]) == [FAIL, SUSPECT]
+    assert ep.loc[1, "start"] == level.index[3] and ep.loc[1, "samples"] == 2
+
+
+@pytest.mark.parametrize("step_s, days", [(60, 30), (360, 90)])
+def test_clean_record_with_coloured_noise_and_surge_flags_under_a_tenth_of_a_percent(step_s, days):
+    # Coloured noise (AR(1), 3 cm, 6 h memory) + 4 mm white + a 1 m surge + a negative surge.
+    level, pred = record(days=days, step_s=step_s, seed=21, surge_height=1.0, surge_width_h=4.0)
+    level = level + record(days=days, step_s=step_s, seed=22, red_sigma=0.0, white_sigma=0.0,
+                           surge_height=-0.6, surge_peak=level.index[len(level) // 4])[0] - \
+        record(days=days, step_s=step_s, seed=22, red_sigma=0.0, white_sigma=0.0)[0]
+    backup = level + np.random.default_rng(23).normal(0, 3 * mm, len(level)) + 0.004
+    s = qc.QcSettings(gap_limit=5 * step_s)
+    out = qc.run_tests(level, s, pred, other=backup)
+    share = (out["flag"].isin([SUSPECT, FAIL])).mean()
+    assert share < 0.001
