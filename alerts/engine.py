@@ -61,13 +61,23 @@ class AlertContext:
     faults: list = field(default_factory=list)
 
     def hw_dict(self) -> dict | None:
+        """The forecast as ``time, level, uncertainty`` (or ``lower, upper``) in a dict.
+
+        Accepts a :class:`NextHighWater`, a dict with those keys, or the forecast dict of
+        ``monitor.residual.forecast_high_water`` (``hw_t, forecast, lower, upper, ...``).
+        """
         hw = self.next_high_water
         if hw is None:
             return None
         if isinstance(hw, dict):
             d = dict(hw)
+            if "hw_t" in d:
+                d.setdefault("time", d["hw_t"])
+                d.setdefault("level", d.get("forecast"))
         else:
             d = {"time": hw.time, "level": hw.level, "uncertainty": hw.uncertainty}
+        if d.get("time") is None:
+            return None
         d["time"] = unix_seconds(d["time"])
         return d
 

@@ -119,17 +119,25 @@ def step_text(rule: Rule, at: float) -> str:
     return f"{_m(at)} above {datum_label(rule.datum)}"
 
 
-def _fault_line(f: Any) -> str:
-    if isinstance(f, dict):
-        parts = [str(f.get("kind", "fault"))]
-        if f.get("value") is not None:
-            parts.append(f"value {f.get('value')}")
-        if f.get("limit") is not None:
-            parts.append(f"limit {f.get('limit')}")
-        if f.get("since") is not None:
-            parts.append(f"since {f.get('since')}")
-        return clean_line(", ".join(parts))
-    return clean_line(f)
+def _fault_line(f: Any, tz: str = "UTC") -> str:
+    """``stuck_sensor on primary: 62 min (limit 30 min), since 2025-10-23 01:00 IST``."""
+    if not isinstance(f, dict):
+        return clean_line(f)
+    text = str(f.get("kind", "fault")).replace("_", " ")
+    if f.get("sensor"):
+        text += f" on {f['sensor']}"
+    unit = f" {f['unit']}" if f.get("unit") else ""
+    if f.get("value") is not None:
+        text += f": {f['value']}{unit}"
+    if f.get("limit") is not None:
+        text += f" (limit {f['limit']}{unit})"
+    since = f.get("since")
+    if since is not None:
+        try:
+            text += f", since {format_times(float(since), tz)[0]}"
+        except (TypeError, ValueError, OverflowError, OSError):
+            text += f", since {since}"
+    return clean_line(text)
 
 
 def facts_lines(rule: Rule, station: StationView, facts: dict) -> list[tuple[str, str]]:
@@ -156,10 +164,18 @@ def facts_lines(rule: Rule, station: StationView, facts: dict) -> list[tuple[str
     hw = facts.get("next_high_water")
     if isinstance(hw, dict) and hw.get("level") is not None and hw.get("time") is not None:
         loc, _ = format_times(hw["time"], station.tz)
-        unc = hw.get("uncertainty")
-        spread = f" \u00b1 {_m(unc)}" if unc is not None and math.isfinite(unc) else ""
+        unc, lo, hi = hw.get("uncertainty"), hw.get("lower"), hw.get("upper")
+        if lo is not None and hi is not None and math.isfinite(lo) and math.isfinite(hi):
+            cover = f"{hw['coverage']:.0%} " if hw.get("coverage") else ""
+            spread = f" ({cover}range {_m(lo - offset)} to {_m(hi - offset)})"
+        elif unc is not None and math.isfinite(unc):
+            spread = f" \u00b1 {_m(unc)}"
+        else:
+            spread = " (no uncertainty range available)"
         out.append(("Next high water forecast",
-                    f"{_m(hw['level'] - offset)}{spread} above {dlabel} at {loc}"))
+                    f"{_m(hw['level'] - offset)} above {dlabel} at {loc}{spread}"))
+        if hw.get("note"):
+            out.append(("Forecast method", clean_line(hw["note"], 300)))
     age = facts.get("feed_age")
     if age is not None and math.isfinite(age):
         out.append(("Last data received", f"{_duration(age)} ago"))
@@ -205,7 +221,7 @@ def compose_alert(station: StationView, rule: Rule, event: Event, facts: dict | 
         rule_id=clean_line(rule.id, 80), what=_WHAT[rule.watch], step_name=clean_line(step.name, 60),
         step_at=step_text(rule, step.at), value_text=clean_line(vtext), local_time=local, utc_time=utc,
         facts=facts_lines(rule, station, facts),
-        faults=[_fault_line(f) for f in facts.get("faults") or []],
+        faults=[_fault_line(f, station.tz) for f in facts.get("faults") or []],
         note=clean_line(rule.note, 1000), station_notes=clean_line(station.notes, 1000),
         url=clean_line(station.url, 300),
     )

@@ -158,10 +158,12 @@ def test_feed_silence_alerts_and_clears(db):
 
 def test_equipment_fault_lists_the_fault(db):
     rule = {"id": "kit", "watch": "equipment_fault", "notify": ["tech@port.example"]}
-    fault = {"kind": "flat_line", "value": 62, "limit": 30, "since": "2025-10-23T00:00Z"}
+    # the shape monitor.diagnostics.equipment_faults hands over
+    fault = {"kind": "stuck_sensor", "station": "dunmerrow", "sensor": "primary", "value": 62.0,
+             "limit": 30.0, "unit": "min", "since": int(T0.timestamp())}
     evaluate(db, STATION, rules(rule), None, now=T0, context=AlertContext(faults=[fault]))
     row = list(db.query("SELECT text FROM outbox"))[0]
-    assert "flat_line" in row["text"]
+    assert "stuck sensor on primary: 62.0 min (limit 30.0 min)" in row["text"]
 
 
 def test_message_shows_change_over_the_last_hour(db):

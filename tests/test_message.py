@@ -42,7 +42,8 @@ def test_text_shows_observed_predicted_residual_and_trend():
 
 def test_text_shows_next_high_water_with_its_uncertainty():
     _, text, _ = opened()
-    assert "Next high water forecast" in text and "5.10 m \u00b1 0.15 m" in text
+    line = next(ln for ln in text.splitlines() if "Next high water forecast" in ln)
+    assert "5.10 m above station datum at 2025-10-23 19:00 IST" in line and "\u00b1 0.15 m" in line
 
 
 def test_caution_is_in_both_bodies():
@@ -113,3 +114,17 @@ def test_attachment_is_added_as_a_part():
 def test_test_message_carries_the_caution():
     _, text, html = compose_test(T, "127.0.0.1")
     assert CAUTION in text and "unofficial" in html
+
+
+def test_forecast_range_from_the_residual_module_is_shown():
+    hw = {"hw_t": T + 3600, "forecast": 5.2, "lower": 5.0, "upper": 5.45, "coverage": 0.9,
+          "time": T + 3600, "level": 5.2, "note": "90% range from history"}
+    _, text, _ = compose_alert(STATION, RULE, Event("opened", 0, T, 0.4), {"next_high_water": hw})
+    assert "5.20 m above station datum" in text and "(90% range 5.00 m to 5.45 m)" in text
+
+
+def test_fault_line_names_sensor_value_limit_and_local_since():
+    rule = Rule(id="kit", watch="equipment_fault", notify=("a@port.example",), steps=(Step("equipment fault", 1),))
+    fault = {"kind": "stuck_sensor", "sensor": "primary", "value": 62.0, "limit": 30.0, "unit": "min", "since": T}
+    _, text, _ = compose_alert(STATION, rule, Event("opened", 0, T, 1), {"faults": [fault]})
+    assert "stuck sensor on primary: 62.0 min (limit 30.0 min), since 2025-10-23 13:00 IST" in text
