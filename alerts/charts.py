@@ -1,0 +1,220 @@
+"""Charts for the daily report, drawn with matplotlib (Agg backend) and returned as PNG bytes.
+
+The day chart has two panels sharing a local-time axis: the water level (observed and
+predicted, the operator's level lines, flagged samples marked, gaps shaded) and the
+residual (observed minus predicted, with the residual lines). Colours are paired with line
+styles and marker shapes so the chart still reads in greyscale print and for colour-blind
+readers.
+"""
+from __future__ import annotations
+
+import io
+from typing import TYPE_CHECKING, Sequence
+from zoneinfo import ZoneInfo
+
+import matplotlib
+
+matplotlib.use("Agg")  # no display, and no GUI toolkit import, in a daemon
+import matplotlib.dates as mdates  # noqa: E402
+import numpy as np  # noqa: E402
+import pandas as pd  # noqa: E402
+from matplotlib.figure import Figure  # noqa: E402
+
+if TYPE_CHECKING:
+    from alerts.report import AlertLevel, DayReport, Diagnostic
+
+# Palette of our own; each role also has a line style or marker shape.
+OBSERVED = "#0b4f71"
+PREDICTED = "#8a8f98"
+RESIDUAL = "#6a3d9a"
+SUSPECT = "#d98c00"
+FAILED = "#c0262d"
+LEVEL_ABOVE = "#b23a48"
+LEVEL_BELOW = "#2f7d4a"
+GAP = "#e9e4d8"
+
+
+def _naive_utc(index: pd.DatetimeIndex) -> np.ndarray:
+    """datetime64 values in UTC, which matplotlib takes as UTC."""
+    if index.tz is not None:
+        index = index.tz_convert("UTC").tz_localize(None)
+    return index.to_numpy()
+
+
+def _broken(series: pd.Series, interval: float | None) -> tuple[np.ndarray, np.ndarray]:
+    """x, y with a NaN wherever samples are more than two intervals apart, so lines break at gaps."""
+    series = series.dropna()
+    x = _naive_utc(series.index)
+    y = series.to_numpy(dtype=float)
+    if len(x) < 2 or not interval:
+        return x, y
+    jumps = np.flatnonzero(np.diff(x).astype("timedelta64[ns]").astype(np.int64) > 2 * interval * 1e9)
+    if len(jumps) == 0:
+        return x, y
+    x = np.insert(x, jumps + 1, x[jumps] + np.timedelta64(int(interval * 1e9), "ns"))
+    y = np.insert(y, jumps + 1, np.nan)
+    return x, y
+
+
+def _draw_levels(ax, levels: Sequence["AlertLevel"]) -> None:
+    for level in levels:
+        colour = LEVEL_ABOVE if level.direction == "above" else LEVEL_BELOW
+        ax.axhline(level.value, color=colour, linestyle=(0, (6, 3)), linewidth=1.1, zorder=1)
+        ax.annotate(
+            f"{level.name} {level.value:+.2f} m" if level.quantity == "residual" else f"{level.name} {level.value:.2f} m",
+            xy=(1.0, level.value), xycoords=("axes fraction", "data"), xytext=(-4, 3),
+            textcoords="offset points", ha="right", va="bottom", fontsize=8, color=colour,
+        )
+
+
+def _limits(values: list[np.ndarray], margin: float = 0.08) -> tuple[float, float] | None:
+    finite = np.concatenate([np.asarray(v, dtype=float).ravel() for v in values]) if values else np.array([])
+    finite = finite[np.isfinite(finite)]
+    if finite.size == 0:
+        return None
+    lo, hi = float(finite.min()), float(finite.max())
+    pad = max((hi - lo) * margin, 0.05)
+    return lo - pad, hi + pad
+
+
+def _clock_change(start: pd.Timestamp, end: pd.Timestamp, zone: ZoneInfo) -> pd.Timestamp | None:
+    """The instant the UTC offset changes within [start, end), to the minute, or ``None``."""
+    grid = pd.date_range(start, end, freq="1min", inclusive="left")
+    if len(grid) == 0:
+        return None
+    offsets = (grid.tz_convert(zone).tz_localize(None) - grid.tz_localize(None)).to_numpy()
+    changed = np.flatnonzero(offsets != offsets[0])
+    return grid[int(changed[0])] if len(changed) else None
+
+
+def day_chart(report: "DayReport", width: float = 9.6, height: float = 6.0, dpi: int = 110) -> bytes:
+    """Draw the day's level and residual chart and return it as PNG bytes.
+
+    Samples flagged fail (QARTOD 4) are marked but never set the axis range: a wild spike
+    is drawn clipped at the panel's edge rather than squashing the tide flat.
+    """
+    from alerts.report import day_bounds, day_figures
+
+    start, end = day_bounds(report.day, report.tz)
+    zone = ZoneInfo(report.tz)
+    figures = day_figures(report)
+    interval = figures.interval
+    samples = report.samples
+    if len(samples):
+        samples = samples[(samples.index >= start) & (samples.index < end)]
+    flags = samples["flag"].fillna(2).astype(int) if len(samples) else pd.Series(dtype=int)
+    good = samples[flags.isin([1, 2, 3])] if len(samples) else samples
+    predicted = report.predicted.dropna()
+    if len(predicted):
+        predicted = predicted[(predicted.index >= start - pd.Timedelta(minutes=30))
+                              & (predicted.index <= end + pd.Timedelta(minutes=30))]
+
+    # A fixed layout: constrained layout doubles the drawing time for no gain on a fixed design.
+    fig = Figure(figsize=(width, height), dpi=dpi)
+    ax_level, ax_resid = fig.subplots(2, 1, sharex=True, height_ratios=[2.2, 1])
+    fig.subplots_adjust(left=0.08, right=0.985, top=0.93, bottom=0.085, hspace=0.07)
+    x0, x1 = _naive_utc(pd.DatetimeIndex([start, end]))
+
+    for gap in figures.gaps:
+        for ax in (ax_level, ax_resid):
+            ax.axvspan(*_naive_utc(pd.DatetimeIndex([gap.start, gap.end])), color=GAP, zorder=0,
+                       label="no data" if ax is ax_level and gap is figures.gaps[0] else None)
+
+    if len(predicted):
+        ax_level.plot(_naive_utc(predicted.index), predicted.to_numpy(dtype=float), color=PREDICTED,
+                      linestyle=(0, (4, 2)), linewidth=1.6, label="predicted tide")
+    if len(good):
+        ax_level.plot(*_broken(good["observed"], interval), color=OBSERVED, linewidth=1.8, label="observed")
+        ax_resid.plot(*_broken(good["residual"], interval), color=RESIDUAL, linewidth=1.4, label="residual")
+
+    level_lines = [lv for lv in report.alert_levels if lv.quantity == "level"]
+    resid_lines = [lv for lv in report.alert_levels if lv.quantity == "residual"]
+    level_range = _limits([good["observed"].to_numpy() if len(good) else np.array([]),
+                           predicted.to_numpy(dtype=float), np.array([lv.value for lv in level_lines])])
+    resid_range = _limits([good["residual"].to_numpy() if len(good) else np.array([]),
+                           np.array([lv.value for lv in resid_lines]), np.array([0.0])])
+    if level_range:
+        ax_level.set_ylim(*level_range)
+    if resid_range:
+        ax_resid.set_ylim(*resid_range)
+    _draw_levels(ax_level, level_lines)
+    _draw_levels(ax_resid, resid_lines)
+    ax_resid.axhline(0.0, color="#444444", linewidth=0.7, zorder=1)
+
+    for flag, colour, marker, label in ((3, SUSPECT, "o", "suspect (QC)"), (4, FAILED, "x", "failed QC")):
+        marked = samples[(flags == flag) & samples["observed"].notna()] if len(samples) else samples
+        if len(marked):
+            for ax, column, rng in ((ax_level, "observed", level_range), (ax_resid, "residual", resid_range)):
+                y = marked[column].to_numpy(dtype=float)
+                if rng:
+                    inset = 0.03 * (rng[1] - rng[0])  # keep an off-scale marker whole
+                    y = np.clip(y, rng[0] + inset, rng[1] - inset)
+                style = {"facecolors": "none", "edgecolors": colour} if marker == "o" else {"c": colour}
+                ax.scatter(_naive_utc(marked.index), y, s=28, marker=marker, linewidths=1.4, zorder=5,
+                           label=label if ax is ax_level else None, **style)
+
+    change = _clock_change(start, end, zone)
+    if change is not None:
+        for ax in (ax_level, ax_resid):
+            ax.axvline(_naive_utc(pd.DatetimeIndex([change]))[0], color="#444444", linewidth=0.8,
+                       linestyle=":", zorder=1)
+        ax_level.annotate("clocks change", xy=(_naive_utc(pd.DatetimeIndex([change]))[0], 1.0),
+                          xycoords=("data", "axes fraction"), xytext=(3, -10), textcoords="offset points",
+                          fontsize=8, color="#444444")
+
+    if not len(good):
+        ax_level.text(0.5, 0.5, "No usable observations for this day", transform=ax_level.transAxes,
+                      ha="center", va="center", fontsize=12, color="#333333",
+                      bbox={"facecolor": "white", "edgecolor": "#999999", "boxstyle": "round"})
+
+    ax_level.set_ylabel(f"Level [m, {report.datum}]")
+    ax_resid.set_ylabel("Residual [m]")
+    ax_resid.set_xlim(x0, x1)
+    hours = (end - start) / pd.Timedelta(hours=1)
+    ax_resid.xaxis.set_major_locator(mdates.HourLocator(byhour=range(0, 24, 3), tz=zone))
+    ax_resid.xaxis.set_minor_locator(mdates.HourLocator(tz=zone))
+    ax_resid.xaxis.set_major_formatter(mdates.DateFormatter("%H:%M", tz=zone))
+    ax_resid.set_xlabel(f"Local time ({report.tz}; a {hours:g}-hour day)" if hours != 24 else f"Local time ({report.tz})")
+    for ax in (ax_level, ax_resid):
+        ax.grid(True, which="major", color="#dddddd", linewidth=0.8)
+        ax.spines[["top", "right"]].set_visible(False)
+    handles, labels = ax_level.get_legend_handles_labels()
+    h2, l2 = ax_resid.get_legend_handles_labels()
+    if handles or h2:
+        fig.legend(handles + h2, labels + l2, loc="upper center", bbox_to_anchor=(0.5, 1.0), fontsize=8, ncols=6,
+                   frameon=False)
+
+    buffer = io.BytesIO()
+    fig.savefig(buffer, format="png", metadata={"Software": None})
+    return buffer.getvalue()
+
+
+def trend_chart(diagnostics: Sequence["Diagnostic"], dpi: int = 110) -> bytes | None:
+    """Small multiples of each diagnostic's recent history; ``None`` when there is none."""
+    with_history = [d for d in diagnostics if d.history is not None and len(d.history.dropna())]
+    if not with_history:
+        return None
+    n = len(with_history)
+    cols = min(n, 2)
+    rows = (n + cols - 1) // cols
+    fig = Figure(figsize=(4.8 * cols, 2.0 * rows), dpi=dpi, layout="tight")
+    axes = np.atleast_1d(fig.subplots(rows, cols, squeeze=False)).ravel()
+    for ax, diag in zip(axes, with_history):
+        history = diag.history.dropna().sort_index()
+        index = pd.DatetimeIndex(history.index)
+        if index.tz is None:
+            index = index.tz_localize("UTC")
+        ax.plot(_naive_utc(index), history.to_numpy(dtype=float), color=OBSERVED, marker="o",
+                markersize=3.5, linewidth=1.3)
+        ax.axhline(0.0, color="#999999", linewidth=0.7)
+        ax.set_title(f"{diag.name} [{diag.unit}]", fontsize=9, loc="left")
+        ax.tick_params(labelsize=7)
+        ax.xaxis.set_major_formatter(mdates.DateFormatter("%d %b"))
+        ax.xaxis.set_major_locator(mdates.AutoDateLocator(maxticks=5))
+        ax.spines[["top", "right"]].set_visible(False)
+        ax.grid(True, color="#eeeeee")
+    for ax in axes[n:]:
+        ax.set_visible(False)
+    buffer = io.BytesIO()
+    fig.savefig(buffer, format="png", metadata={"Software": None})
+    return buffer.getvalue()

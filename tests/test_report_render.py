@@ -1,0 +1,250 @@
+"""Daily report rendering, with no store: DayReport in, HTML / email / index out."""
+from __future__ import annotations
+
+import datetime as dt
+import re
+from email.message import EmailMessage
+
+import pandas as pd
+import pytest
+
+from alerts.report import (
+    CAUTION, ReportSettings, day_bounds, day_figures, prune_reports, read_summary, render_day_email,
+    render_day_html, report_settings_from, write_day_report, write_index, zone_label,
+)
+from report_samples import TZ, sample_report
+
+hour = 3600.0
+minute = 60.0
+mm = 1e-3
+
+# Daylight saving in the sample zone follows the European rule: clocks change at 01:00 UTC on
+# the last Sunday of March (forward) and of October (back). Source: EU Directive 2000/84/EC
+# (from memory), as encoded in the IANA tz database shipped with Python (tzdata).
+SPRING = dt.date(2024, 3, 31)
+AUTUMN = dt.date(2024, 10, 27)
+PLAIN = dt.date(2024, 3, 12)
+
+HOSTILE_NAME = 'Quay <script>alert("x")</script> & <b>Co</b>'
+HOSTILE_NOTE = '<img src="http://example.invalid/x.png" onerror="alert(1)">staff moved'
+
+
+@pytest.fixture(scope="module")
+def plain_html() -> str:
+    return render_day_html(sample_report(PLAIN))
+
+
+@pytest.fixture(scope="module")
+def hostile_html() -> str:
+    return render_day_html(sample_report(PLAIN, name=HOSTILE_NAME, note=HOSTILE_NOTE))
+
+
+@pytest.fixture(scope="module")
+def mail():
+    return render_day_email(sample_report(PLAIN))
+
+
+# --- local days and zones -------------------------------------------------------------
+
+
+@pytest.mark.parametrize("day, hours", [(PLAIN, 24), (SPRING, 23), (AUTUMN, 25)])
+def test_local_day_has_its_true_length(day, hours):
+    start, end = day_bounds(day, TZ)
+    assert (end - start).total_seconds() == pytest.approx(hours * hour)
+
+
+def test_zone_label_names_zone_and_offset_on_a_plain_day():
+    # Faroe winter time is UTC+00:00 (IANA tz database, from memory).
+    assert zone_label(TZ, *day_bounds(PLAIN, TZ)) == "Atlantic/Faroe, UTC+00:00"
+
+
+def test_zone_label_says_when_clocks_go_back():
+    # 01:00 UTC on 27 Oct 2024 is 02:00 summer time (UTC+01:00), which becomes 01:00 (UTC+00:00).
+    label = zone_label(TZ, *day_bounds(AUTUMN, TZ))
+    assert label == ("Atlantic/Faroe, UTC+01:00 until 02:00, then UTC+00:00 from 01:00 "
+                     "(clocks back: a 25-hour day)")
+
+
+def test_zone_label_says_when_clocks_go_forward():
+    label = zone_label(TZ, *day_bounds(SPRING, TZ))
+    assert label == ("Atlantic/Faroe, UTC+00:00 until 01:00, then UTC+01:00 from 02:00 "
+                     "(clocks forward: a 23-hour day)")
+
+
+# --- the day's figures ------------------------------------------------------------------
+
+
+@pytest.mark.parametrize("day, expected", [(SPRING, 230), (AUTUMN, 250)])
+def test_full_record_on_a_clock_change_day_is_complete(day, expected):
+    figures = day_figures(sample_report(day))  # 6-minute samples through the whole local day
+    assert figures.expected == expected
+    assert figures.received == expected
+    assert figures.completeness == pytest.approx(1.0)
+    assert figures.gaps == ()
+
+
+def test_failed_spike_never_sets_the_highest_level():
+    report = sample_report(PLAIN)
+    figures = day_figures(report)
+    assert report.samples["observed"].max() == pytest.approx(9.87)  # the spike, flagged 4
+    assert figures.highest_level < 4.0
+    assert figures.failed == 1 and figures.suspect == 2
+
+
+def test_highest_residual_and_its_time():
+    figures = day_figures(sample_report(PLAIN))
+    # The invented surge is 0.42 m at 15:00 local plus a 1 cm ripple.
+    assert figures.highest_residual == pytest.approx(0.42, abs=15 * mm)
+    local = figures.highest_residual_at.tz_convert(TZ)
+    assert abs((local - pd.Timestamp("2024-03-12 15:00", tz=TZ)).total_seconds()) <= 45 * minute
+
+
+def test_gap_is_found_with_its_bounds():
+    figures = day_figures(sample_report(PLAIN, gap=(9.0, 11.5)))
+    assert len(figures.gaps) == 1
+    gap = figures.gaps[0]
+    assert gap.start == pd.Timestamp("2024-03-12 09:00", tz=TZ)
+    assert gap.end == pd.Timestamp("2024-03-12 11:30", tz=TZ)
+    assert figures.received == 240 - 25
+
+
+def test_day_with_no_data_is_one_gap_and_zero_complete():
+    figures = day_figures(sample_report(PLAIN, empty=True))
+    assert figures.received == 0
+    assert figures.completeness == 0.0
+    assert figures.highest_level is None
+    assert [(g.start, g.end) for g in figures.gaps] == [day_bounds(PLAIN, TZ)]
+
+
+# --- the page -----------------------------------------------------------------------------
+
+
+def test_caution_comes_before_everything_else(plain_html):
+    body = plain_html[plain_html.index("<body>"):]
+    assert body.index(CAUTION) < body.index("<h1>")
+    for phrase in ("automated and unofficial", "Official warnings and the local emergency authorities come first",
+                   "local codes", "licensed practice"):
+        assert phrase in CAUTION
+
+
+def test_page_is_self_contained(plain_html):
+    urls = re.findall(r'(?:src|href)="([^"]*)"', plain_html)
+    assert urls, "expected at least the chart image"
+    assert all(u.startswith("data:") for u in urls), urls
+    assert "<link rel=\"stylesheet\"" not in plain_html and "@import" not in plain_html
+    assert '<meta name="viewport"' in plain_html and "@media print" in plain_html
+
+
+def test_chart_is_an_inline_png(plain_html):
+    assert re.search(r'<img class="chart" src="data:image/png;base64,[A-Za-z0-9+/]{1000,}', plain_html)
+
+
+def test_station_name_with_html_is_shown_as_text(hostile_html):
+    assert "<script>" not in hostile_html and "<b>Co</b>" not in hostile_html
+    assert "Quay &lt;script&gt;alert(&#34;x&#34;)&lt;/script&gt; &amp; &lt;b&gt;Co&lt;/b&gt;" in hostile_html
+
+
+def test_note_with_html_is_shown_as_text(hostile_html):
+    assert "<img src=\"http" not in hostile_html and "onerror=\"" not in hostile_html
+    assert "&lt;img src=&#34;http://example.invalid/x.png&#34;" in hostile_html
+
+
+def test_summary_survives_a_hostile_name(tmp_path, hostile_html):
+    path = tmp_path / "page.html"
+    path.write_text(hostile_html, encoding="utf-8")
+    assert read_summary(path)["name"] == HOSTILE_NAME
+
+
+def test_times_on_the_long_day_carry_their_offset():
+    html = render_day_html(sample_report(AUTUMN))
+    assert "then UTC+00:00 from 01:00" in html
+    # Every high/low water row names its offset, since 01:xx happens twice on this day.
+    tide_rows = re.findall(r"<td>(\d\d:\d\d \(UTC[+\u2212]\d\d:\d\d\))</td>", html)
+    assert len(tide_rows) >= 8
+
+
+def test_day_with_no_data_says_so():
+    html = render_day_html(sample_report(PLAIN, empty=True))
+    assert "No observations were received for this day." in html
+    assert "No alert episode was open during this day." in html
+    assert 'class="chart" src="data:image/png;base64,' in html
+
+
+def test_day_with_a_gap_lists_it():
+    html = render_day_html(sample_report(PLAIN, gap=(9.0, 11.5)))
+    assert "09:00 to 11:30 (2 h 30 min)" in html
+
+
+def test_delivery_trouble_is_shown(plain_html):
+    assert "not sent" in plain_html and "451 try later" in plain_html
+
+
+# --- email ----------------------------------------------------------------------------------
+
+
+def test_email_html_refers_to_its_images_by_content_id(mail):
+    cids = set(re.findall(r'src="cid:([^"]+)"', mail.html))
+    assert cids and cids == set(mail.images)
+    assert "data:image" not in mail.html
+    assert all(png.startswith(b"\x89PNG") for png in mail.images.values())
+
+
+def test_email_builds_as_a_related_mime_message(mail):
+    # Standard library email package (RFC 2387 multipart/related) as the reference composer.
+    msg = EmailMessage()
+    msg["Subject"] = mail.subject
+    msg.set_content(mail.text)
+    msg.add_alternative(mail.html, subtype="html")
+    html_part = msg.get_payload()[1]
+    for cid, png in mail.images.items():
+        html_part.add_related(png, "image", "png", cid=f"<{cid}>")
+    raw = msg.as_bytes()
+    assert b"multipart/alternative" in raw and b"multipart/related" in raw
+
+
+def test_email_text_part_has_caution_and_figures(mail):
+    assert mail.text.startswith("CAUTION: " + CAUTION)
+    assert "Highest residual  +0.42 m" in mail.text
+    assert "NOT SENT: mail server refused: 451 try later" in mail.text
+    assert "unofficial" in mail.subject
+
+
+# --- index, pruning, settings ------------------------------------------------------------------
+
+
+def test_index_lists_days_newest_first_with_links(tmp_path):
+    for day in (dt.date(2024, 3, 10), dt.date(2024, 3, 12)):
+        write_day_report(sample_report(day, empty=day.day != 12), tmp_path)
+    html = write_index(tmp_path).read_text()
+    assert re.findall(r'href="(skq/[^"]+)"', html) == ["skq/2024-03-12.html", "skq/2024-03-10.html"]
+    assert CAUTION in html
+
+
+def test_prune_removes_only_old_reports(tmp_path):
+    for day in (dt.date(2024, 1, 1), dt.date(2024, 3, 1)):
+        path = tmp_path / "skq" / f"{day.isoformat()}.html"
+        path.parent.mkdir(exist_ok=True)
+        path.write_text("x")
+    removed = prune_reports(tmp_path, keep_days=30, today=dt.date(2024, 3, 12))
+    assert [p.name for p in removed] == ["2024-01-01.html"]
+    assert (tmp_path / "skq" / "2024-03-01.html").exists()
+
+
+def test_settings_default_when_absent():
+    assert report_settings_from(None, "report") == (ReportSettings(), [])
+
+
+def test_settings_read_every_key():
+    settings, errors = report_settings_from(
+        {"folder": "out/reports", "write_at": "05:45", "recipients": ["harbour@port.invalid"],
+         "keep_days": 90, "trend_weeks": 6, "email": False}, "report")
+    assert errors == []
+    assert settings.write_at == dt.time(5, 45) and settings.recipients == ("harbour@port.invalid",)
+    assert (settings.keep_days, settings.trend_weeks, settings.email) == (90, 6, False)
+
+
+def test_settings_errors_name_their_key():
+    _, errors = report_settings_from(
+        {"write_at": "25:00", "recipients": ["not-an-address"], "keep_days": -1, "colour": "red"}, "report")
+    assert sorted(e.split(":")[0] for e in errors) == [
+        "report.colour", "report.keep_days", "report.recipients[0]", "report.write_at"]
