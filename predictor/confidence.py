@@ -57,6 +57,9 @@ class BandSpectrum:
         Fraction of grid cells holding data [1].
     step_hours : float
         Grid step [h].
+    usable : ndarray of bool, optional
+        Lines to average; False next to fitted constituents, where the fit itself has
+        removed the noise (the residual is orthogonal to the fitted sinusoids).
     """
 
     freq: np.ndarray
@@ -64,6 +67,7 @@ class BandSpectrum:
     duration_hours: float
     valid_fraction: float
     step_hours: float
+    usable: np.ndarray | None = None
 
     def band_mean(self, species: int) -> float:
         """Mean one-sided PSD over the band of a species [m^2 / (cycle/hour)]."""
@@ -71,6 +75,8 @@ class BandSpectrum:
         lo, hi = lo / 24.0, hi / 24.0
         f = self.freq
         sel = (f >= lo) & (f <= hi) & (f > 0)
+        if self.usable is not None and (sel & self.usable).sum() >= _MIN_LINES:
+            sel &= self.usable
         if sel.sum() < _MIN_LINES:
             # Short record: take the lines nearest the band centre instead.
             centre = species / 24.0
@@ -125,7 +131,8 @@ def _grid(t_seconds: np.ndarray, residual: np.ndarray, step_seconds: float | Non
     return grid, filled, step_seconds
 
 
-def residual_band_spectrum(t_seconds, residual, step_seconds: float | None = None) -> BandSpectrum:
+def residual_band_spectrum(t_seconds, residual, step_seconds: float | None = None,
+                           fitted_speeds=None) -> BandSpectrum:
     """One-sided PSD of a (possibly gappy, irregular) residual, ready for band averages.
 
     The residual is averaged into cells of ``step_seconds`` (default: the median sampling
@@ -141,6 +148,11 @@ def residual_band_spectrum(t_seconds, residual, step_seconds: float | None = Non
         Observed minus fitted level [m].
     step_seconds : float, optional
         Grid step [s].
+    fitted_speeds : array_like, optional
+        Speeds of the fitted constituents [deg/h]. The fit leaves almost no power at
+        these frequencies, so the lines within the Hann main lobe (two lines either side)
+        are left out of the band averages; otherwise the noise would be underestimated
+        by the share of the band they cover.
 
     Returns
     -------
@@ -157,8 +169,14 @@ def residual_band_spectrum(t_seconds, residual, step_seconds: float | None = Non
     # tidal bands.
     freq, psd = _hann_periodogram(grid, 1.0 / step_h)
     psd = psd / p
+    usable = None
+    if fitted_speeds is not None:
+        df = freq[1] - freq[0] if freq.size > 1 else np.inf
+        usable = np.ones(freq.size, dtype=bool)
+        for fc in np.asarray(fitted_speeds, dtype=float).ravel() / 360.0:  # cycles/hour
+            usable &= np.abs(freq - fc) > 2.0 * df
     return BandSpectrum(freq=freq, psd=psd, duration_hours=float(filled.sum()) * step_h,
-                        valid_fraction=p, step_hours=step_h)
+                        valid_fraction=p, step_hours=step_h, usable=usable)
 
 
 def _hann_periodogram(x: np.ndarray, fs: float):
@@ -178,7 +196,7 @@ def _hann_periodogram(x: np.ndarray, fs: float):
     return np.fft.rfftfreq(n, d=1.0 / fs), spec
 
 
-def coefficient_variance(spectrum: BandSpectrum, speeds_deg_per_hour) -> np.ndarray:
+def coefficient_variance(spectrum: BandSpectrum, speeds_deg_per_hour, inverse_diagonal=None):
     """Variance of each constituent's cosine and sine coefficients from the band noise.
 
     Parameters
@@ -186,42 +204,53 @@ def coefficient_variance(spectrum: BandSpectrum, speeds_deg_per_hour) -> np.ndar
     spectrum : BandSpectrum
         From :func:`residual_band_spectrum`.
     speeds_deg_per_hour : array_like
-        Constituent speeds [deg/h].
+        Constituent speeds [deg/h], shape (k,).
+    inverse_diagonal : array_like, optional
+        Diagonal elements of ``(X'X)^-1`` for the cosine and sine columns, shape (k, 2)
+        [1]. With them the band noise is treated as white noise of the same density,
+        ``sigma_b^2 = S_b / (2 dt)``, so that gaps and nearly-aliased neighbours widen the
+        intervals as they should; without them the orthogonal approximation is used.
 
     Returns
     -------
-    ndarray
-        ``var(a) = var(b) = S_b / T`` for each constituent [m^2], with ``S_b`` the mean
-        one-sided density in the constituent's species band [m^2 h] and ``T`` the
-        effective record length [h].
+    var_a, var_b : ndarray
+        Variances of the cosine and sine coefficients [m^2], shape (k,). Orthogonal
+        approximation: ``S_b / T`` with ``S_b`` the mean one-sided density in the
+        constituent's species band [m^2 h] and ``T`` the effective record length [h].
 
     References
     ----------
-    Pawlowicz, Beardsley & Lentz (2002), eq. for the coloured-noise case.
+    Pawlowicz, Beardsley & Lentz (2002), coloured-noise case; for N evenly spaced samples
+    ``(X'X)^-1`` has diagonal 2/N and both forms agree.
     """
     speeds = np.atleast_1d(np.asarray(speeds_deg_per_hour, dtype=float))
     species = np.rint(speeds / 15.0).astype(int)  # 15 deg/h = one cycle per day
     cache: dict[int, float] = {}
-    out = np.empty(speeds.size)
+    density = np.empty(speeds.size)
     for i, s in enumerate(species):
         if s not in cache:
             cache[s] = spectrum.band_mean(s)
-        out[i] = cache[s] / spectrum.duration_hours
-    return out
+        density[i] = cache[s]
+    if inverse_diagonal is None:
+        var = density / spectrum.duration_hours
+        return var, var.copy()
+    inv = np.asarray(inverse_diagonal, dtype=float).reshape(speeds.size, 2)
+    white = density / (2.0 * spectrum.step_hours)
+    return white * inv[:, 0], white * inv[:, 1]
 
 
-def amplitude_phase_intervals(a, b, variance, confidence: float = 0.95):
+def amplitude_phase_intervals(a, b, var_a, var_b=None, *, confidence: float = 0.95):
     """Amplitude and phase confidence half-widths from coefficient noise.
 
-    Linearised propagation of independent, equal-variance errors in ``a = H cos g`` and
-    ``b = H sin g``: ``var(H) = var`` and ``var(g) = var / H^2``.
+    Linearised propagation of independent errors in ``a = H cos g`` and ``b = H sin g``:
+    ``var(H) = (a^2 var_a + b^2 var_b) / H^2`` and ``var(g) = (b^2 var_a + a^2 var_b) / H^4``.
 
     Parameters
     ----------
     a, b : array_like
         Cosine and sine coefficients [m].
-    variance : array_like
-        Variance of each of ``a`` and ``b`` [m^2].
+    var_a, var_b : array_like
+        Variances of ``a`` and ``b`` [m^2]; ``var_b`` defaults to ``var_a``.
     confidence : float
         Two-sided confidence level, e.g. 0.95.
 
@@ -232,7 +261,8 @@ def amplitude_phase_intervals(a, b, variance, confidence: float = 0.95):
     phase_ci : ndarray
         Half-width of the phase interval [deg], at most 180 (phase unknown).
     snr : ndarray
-        Signal-to-noise ratio ``H^2 / var`` [1]; below about 2 the constituent is noise
+        Signal-to-noise ratio ``H^2 / var`` with ``var`` the mean of ``var_a`` and
+        ``var_b`` [1]; below about 2 the constituent is indistinguishable from noise
         (Pawlowicz, Beardsley & Lentz 2002 use the same cut).
 
     References
@@ -243,14 +273,16 @@ def amplitude_phase_intervals(a, b, variance, confidence: float = 0.95):
         raise ValueError(f"confidence must be between 0 and 1, got {confidence}")
     a = np.asarray(a, dtype=float)
     b = np.asarray(b, dtype=float)
-    var = np.asarray(variance, dtype=float)
+    va = np.asarray(var_a, dtype=float)
+    vb = va if var_b is None else np.asarray(var_b, dtype=float)
     z = NormalDist().inv_cdf(0.5 + confidence / 2.0)
     amp = np.hypot(a, b)
-    sd = np.sqrt(var)
-    amplitude_ci = z * sd
     with np.errstate(divide="ignore", invalid="ignore"):
-        phase_ci = np.degrees(z * sd / amp)
-        snr = amp**2 / var
+        var_h = np.where(amp > 0, (a**2 * va + b**2 * vb) / amp**2, 0.5 * (va + vb))
+        var_g = (b**2 * va + a**2 * vb) / amp**4
+        amplitude_ci = z * np.sqrt(var_h)
+        phase_ci = np.degrees(z * np.sqrt(var_g))
+        snr = amp**2 / (0.5 * (va + vb))
     phase_ci = np.where(np.isfinite(phase_ci), np.minimum(phase_ci, 180.0), 180.0)
     snr = np.where(np.isfinite(snr), snr, 0.0)
     return amplitude_ci, phase_ci, snr

@@ -249,7 +249,8 @@ def _too_short_message(duration_hours: float, chosen, rayleigh: float, min_const
         parts.append(f"{required_days(s2, k2, rayleigh):.2f} days to separate S2 from K2")
     got = ", ".join(chosen) if chosen else "nothing but the mean"
     return (f"record too short: {duration_hours / 24.0:.2f} days ({duration_hours:.1f} h) resolves "
-            f"{got}, and at least {min_constituents} constituent(s) are needed; with Rayleigh "
+            f"{got}, and a fit needs at least the {min_constituents} most important constituent(s); "
+            f"with Rayleigh "
             f"factor {rayleigh:g} a fit needs " + ", ".join(parts))
 
 
@@ -327,7 +328,13 @@ def _accumulate(design: _Design, t, y, w, chunk_size):
     return A, rhs
 
 
-def _solve(A, rhs, max_condition=1e12):
+# Largest condition number of the scaled normal equations accepted for a Cholesky solve.
+# X'X squares the condition of X, so 1e6 means errors amplified up to a thousandfold:
+# beyond that the record cannot tell some constituents apart (common practice, no source).
+MAX_CONDITION = 1e6
+
+
+def _solve(A, rhs, max_condition=MAX_CONDITION):
     # Jacobi scaling so that the condition number reflects the geometry, not the units.
     d = np.sqrt(np.diag(A))
     d[d == 0] = 1.0
@@ -343,7 +350,8 @@ def _solve(A, rhs, max_condition=1e12):
                   "minimum-norm solution - gaps may leave some constituents undetermined, "
                   "consider fewer constituents or a larger Rayleigh factor",
                   FitConditioningWarning, stacklevel=3)
-    x, *_ = np.linalg.lstsq(As, rhs / d, rcond=1e-12)
+    # Directions weaker than 1/max_condition are not determined by the data: drop them.
+    x, *_ = np.linalg.lstsq(As, rhs / d, rcond=1.0 / max_condition)
     return x / d, cond
 
 
@@ -395,8 +403,10 @@ def harmonic_fit(times, levels, constituents="auto", rayleigh: float = 1.0, tren
     chunk_size : int or None
         Rows of the design matrix built at a time [samples]; None builds them all at once.
     min_constituents : int
-        Fewest constituents a useful fit must resolve; with fewer, :class:`RecordTooShortError`.
-        The default 2 asks the record to separate M2 from K1 (about 1.1 days).
+        With "auto", the first ``min_constituents`` names of :data:`PRIORITY` below the
+        Nyquist speed must all be resolved, else :class:`RecordTooShortError`. The default
+        2 asks the record to separate M2 from K1 and both from the mean (about 1.1 days):
+        a fit that cannot tell the diurnal from the semidiurnal tide is of no use.
     confidence : float or None
         Level of the confidence intervals; None skips them.
     weights : array_like, optional
@@ -424,7 +434,7 @@ def harmonic_fit(times, levels, constituents="auto", rayleigh: float = 1.0, tren
     Raises
     ------
     RecordTooShortError
-        The record resolves fewer than ``min_constituents`` constituents; the message says
+        The record does not resolve the ``min_constituents`` most important constituents; it says
         the lengths needed for M2 alone, M2 with K1, K1/O1 and S2/K2.
     FitInputError
         Too few samples, unknown constituent names, or bad weights.
@@ -464,7 +474,9 @@ def harmonic_fit(times, levels, constituents="auto", rayleigh: float = 1.0, tren
         if constituents != "auto":
             raise FitInputError(f"constituents must be 'auto' or a list of names, got {constituents!r}")
         names, dropped = select_constituents(duration_h, step_h, rayleigh)
-        if len(names) < min_constituents:
+        must = [n for n in _priority_order(catalogue)
+                if step_h is None or _speed(catalogue[n]) < 180.0 / step_h][:max(0, int(min_constituents))]
+        if any(n not in names for n in must):
             raise RecordTooShortError(_too_short_message(duration_h, names, rayleigh, min_constituents))
     else:
         from predictor.constituents import get
@@ -513,9 +525,16 @@ def harmonic_fit(times, levels, constituents="auto", rayleigh: float = 1.0, tren
     cons = [{"name": n, "amplitude": float(amp[i]), "phase": float(phase[i]), "speed": float(speeds[i])}
             for i, n in enumerate(names)]
     if confidence is not None and names:
-        spec = _ci.residual_band_spectrum(t, r, None if step_h is None else step_h * SECONDS_PER_HOUR)
-        var = _ci.coefficient_variance(spec, speeds)
-        amp_ci, ph_ci, snr = _ci.amplitude_phase_intervals(a, b, var, confidence)
+        spec = _ci.residual_band_spectrum(t, r, None if step_h is None else step_h * SECONDS_PER_HOUR,
+                                          fitted_speeds=speeds)
+        # (X'WX)^-1 of the final solve: the same scaled system, pseudo-inverted so that an
+        # undetermined direction shows as a wide interval rather than an error.
+        dsc = np.sqrt(np.diag(A))
+        dsc[dsc == 0] = 1.0
+        inv = np.diag(np.linalg.pinv(A / dsc[:, None] / dsc[None, :], rcond=1.0 / MAX_CONDITION)) / dsc**2
+        inv_ab = np.column_stack([inv[off::2], inv[off + 1::2]])
+        var_a, var_b = _ci.coefficient_variance(spec, speeds, inv_ab)
+        amp_ci, ph_ci, snr = _ci.amplitude_phase_intervals(a, b, var_a, var_b, confidence=confidence)
         for i, c in enumerate(cons):
             c.update(amplitude_ci=float(amp_ci[i]), phase_ci=float(ph_ci[i]), snr=float(snr[i]))
 
@@ -544,5 +563,5 @@ def harmonic_fit(times, levels, constituents="auto", rayleigh: float = 1.0, tren
         meta["trend_epoch"] = _iso(epoch)
     if metadata:
         meta.update(metadata)
-    kwargs = {"trend": float(beta[1])} if trend else {}
+    kwargs = {"trend": float(beta[1]), "trend_epoch": float(epoch)} if trend else {}
     return TideModel(mean=float(beta[0]), constituents=cons, metadata=meta, **kwargs)
