@@ -195,3 +195,32 @@ def test_below_rule_opens_when_the_value_falls_under_the_step():
                 notify=("a@port.example",), steps=(Step("low", -0.40),))
     _, events = run([-0.1, -0.45, -0.38, -0.30], rule=rule)
     assert [(e.kind, e.t) for e in events] == [("opened", 1 * minute), ("cleared", 3 * minute)]
+
+
+@settings(max_examples=200, deadline=None)
+@given(st.lists(st.floats(-0.2, 1.2), max_size=120), st.integers(0, 15))
+def test_events_always_form_episodes_open_escalate_clear(values, hold_min):
+    rule = Rule(id="r", watch="residual_above", hold=hold_min * minute, settle=hold_min * minute, band=0.05,
+                notify=("a@port.example",),
+                steps=(Step("raised", 0.30), Step("high", 0.60), Step("very high", 0.90)))
+    _, events = run(values, rule=rule)
+    open_, top = False, -1
+    for e in events:
+        if e.kind == "opened":
+            assert not open_
+            open_, top = True, e.level
+            assert e.value >= rule.steps[e.level].at
+        elif e.kind == "escalated":
+            assert open_ and e.level > top
+            top = e.level
+        else:
+            assert open_ and e.level == top
+            assert e.value < rule.steps[0].at - rule.band
+            open_ = False
+
+
+@settings(max_examples=100, deadline=None)
+@given(st.lists(st.floats(-0.2, 0.2999), max_size=60))
+def test_values_below_every_step_never_raise_anything(values):
+    _, events = run(values, rule=RULE)
+    assert events == []

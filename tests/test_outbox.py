@@ -209,3 +209,20 @@ def test_save_only_transport_needs_no_server(db, tmp_path):
     [oid] = enqueue(db, ["a@port.example"], "kept", "t", None, "alert", "k", now=T0)
     assert deliver_due(db, s, now=T0).sent == [oid]
     assert len(list((tmp_path / "mail").glob("*.eml"))) == 1
+
+
+from hypothesis import given, settings as hsettings, strategies as st  # noqa: E402
+
+
+@hsettings(max_examples=150, deadline=None)
+@given(st.dictionaries(
+    st.sampled_from(["sender", "host", "port", "security", "user", "password_env", "password_file",
+                     "timeout", "retry_first", "retry_max", "give_up_after", "save_dir", "other"]),
+    st.one_of(st.none(), st.booleans(), st.integers(-10, 70000), st.floats(allow_nan=True), st.text(max_size=12),
+              st.sampled_from(["starttls", "tls", "none", "127.0.0.1", "g@port.example", "10min", "X_PW"]),
+              st.lists(st.integers(), max_size=2)),
+    max_size=8))
+def test_any_mail_table_gives_settings_or_keyed_errors(raw):
+    s, errors = mail_settings_from(raw, "mail")
+    assert (s is None) == bool(errors)
+    assert all(e.startswith("mail.") for e in errors)
