@@ -26,6 +26,7 @@ Vols I-V. IOC Manuals and Guides 14.
 """
 from __future__ import annotations
 
+import contextlib
 import math
 import time as _time
 from dataclasses import dataclass, fields
@@ -680,6 +681,21 @@ def _db(store: Any):
     return getattr(store, "db", store)
 
 
+@contextlib.contextmanager
+def _transaction(conn):
+    """One write transaction, also on an autocommit connection (the Store's)."""
+    if conn.in_transaction:
+        yield conn
+        return
+    conn.execute("BEGIN IMMEDIATE")
+    try:
+        yield conn
+    except BaseException:
+        conn.execute("ROLLBACK")
+        raise
+    conn.execute("COMMIT")
+
+
 def ensure_qc_schema(db: Any) -> None:
     """Create the quality-control tables if missing (idempotent).
 
@@ -836,7 +852,7 @@ def _write(db: Any, station: str, sensor: str, part: pd.DataFrame) -> None:
     flags = [(int(f), station, sensor, int(ti)) for ti, f in zip(t, part["flag"].to_numpy())]
     names = ", ".join(TESTS)
     marks = ", ".join("?" * len(TESTS))
-    with db.conn:
+    with _transaction(db.conn):
         db.conn.executemany(
             f"INSERT OR REPLACE INTO qc_tests (station, sensor, t, {names}) VALUES (?, ?, ?, {marks})", rows)
         db.conn.executemany("UPDATE observations SET flag = ? WHERE station = ? AND sensor = ? AND t = ?", flags)
@@ -878,7 +894,7 @@ def set_override(store: Any, station: str, sensor: str, start_t: float, end_t: f
         raise UserError(f"no sample of {where} at the time given (nearest: {iso}); "
                         f"give that time, or a range with --to")
     stamp = int(at if at is not None else _time.time())
-    with conn:
+    with _transaction(conn):
         conn.executemany(
             "INSERT OR REPLACE INTO qc_overrides (station, sensor, t, flag, who, why, at) VALUES (?, ?, ?, ?, ?, ?, ?)",
             [(station, sensor, t, int(flag), who, why, stamp) for t in ts])
