@@ -89,7 +89,7 @@ def ensure_alert_schema(db) -> None:
         db["alert_state"].create({
             "station": str, "rule": str, "level": int, "top_sent": int, "steps": str,
             "above_since": str, "inside_since": str, "watermark": int, "episode_id": int,
-            "updated_at": int,
+            "announced": str, "updated_at": int,
         }, pk=("station", "rule"), if_not_exists=True)
     if "alert_episodes" not in names:
         db["alert_episodes"].create({
@@ -215,11 +215,11 @@ def _context_value(rule: Rule, context: AlertContext) -> float | None:
 # --------------------------------------------------------------------------- engine
 
 def _kind_of(event: Event) -> str:
-    return {"opened": "alert", "escalated": "alert", "cleared": "all_clear"}[event.kind]
+    return {"opened": "alert", "escalated": "alert", "changed": "alert", "cleared": "all_clear"}[event.kind]
 
 
 def _on_event(db, station: StationView, rule: Rule, event: Event, episode_id: int | None,
-              facts: dict, now: int) -> tuple[int | None, dict]:
+              facts: dict, now: int, key_suffix: str = "") -> tuple[int | None, dict]:
     step = rule.steps[event.level]
     if event.kind == "opened":
         cur = db.conn.execute(
@@ -246,6 +246,8 @@ def _on_event(db, station: StationView, rule: Rule, event: Event, episode_id: in
     if event.kind != "cleared" or rule.all_clear:
         subject, text, html = compose_alert(station, rule, event, facts)
         key = f"{station.id}/{rule.id}/episode-{episode_id}/{event.kind}/{step.name}"
+        if key_suffix:
+            key += f"/{key_suffix}"
         ids = enqueue(db, recipients, subject, text, html, _kind_of(event), key, now=now)
         db.conn.execute("UPDATE alert_episodes SET messages = messages + ? WHERE id = ?",
                         (len(ids), episode_id))
@@ -263,6 +265,39 @@ def _track_peak(db, rule: Rule, episode_id: int, t: int, value: float) -> None:
         f" peak_t = CASE WHEN peak IS NULL OR peak {better} ? THEN ? ELSE peak_t END,"
         f" peak = CASE WHEN peak IS NULL OR peak {better} ? THEN ? ELSE peak END WHERE id = ?",
         (value, t, value, t, value, value, episode_id))
+
+
+def _fault_key(f: Any) -> str:
+    return f"{f.get('kind')}/{f.get('sensor') or ''}" if isinstance(f, dict) else str(f)
+
+
+def _fault_changes(db, station: StationView, rule: Rule, state: RuleState, events: list[Event],
+                   episode_id: int | None, samples: pd.DataFrame, t_all: np.ndarray, ok_all: np.ndarray,
+                   t_now: int, context: AlertContext) -> tuple[list[dict], list[str]]:
+    """During an equipment-fault episode, one more message when a new kind of fault appears.
+
+    Returns the events and the fault keys announced so far in the episode."""
+    faults = [f for f in context.faults or []
+              if not rule.fault_kinds or (isinstance(f, dict) and f.get("kind") in rule.fault_kinds)]
+    keys = sorted({_fault_key(f) for f in faults})
+    row = list(db.query("SELECT announced FROM alert_state WHERE station = ? AND rule = ?",
+                        [station.id, rule.id]))
+    announced = set(json.loads(row[0]["announced"] or "[]")) if row else set()
+    results: list[dict] = []
+    kinds = {e.kind for e in events}
+    if "cleared" in kinds or state.level < 0:
+        announced = set()
+    elif "opened" in kinds:
+        announced = set(keys)
+    elif set(keys) - announced and episode_id is not None:
+        ev = Event("changed", state.level, t_now, float(len(faults)))
+        facts = _facts(samples, t_all, ok_all, t_now, context)
+        facts["new_faults"] = [f for f in faults if _fault_key(f) not in announced]
+        _, info = _on_event(db, station, rule, ev, episode_id, facts, t_now,
+                            key_suffix="+".join(sorted(set(keys) - announced)))
+        results.append(info)
+        announced |= set(keys)
+    return results, sorted(announced)
 
 
 def _idle(state: RuleState) -> bool:
@@ -319,6 +354,7 @@ def _evaluate_rule(db, station: StationView, rule: Rule, samples: pd.DataFrame, 
     wm = state.watermark if state.watermark is not None else -(2 ** 62)
     results: list[dict] = []
     before = state
+    announced: list[str] | None = None  # equipment faults told of in the open episode
 
     if rule.watch in SAMPLE_KINDS:
         ok_all = _counted(rule, samples)
@@ -365,6 +401,10 @@ def _evaluate_rule(db, station: StationView, rule: Rule, samples: pd.DataFrame, 
                 results.append(info)
                 if ev.kind == "cleared":
                     episode_id = None
+            if rule.watch == "equipment_fault":
+                more, announced = _fault_changes(db, station, rule, state, events, episode_id, samples,
+                                                 t_all, ok_all, t_now, context)
+                results += more
             if episode_id is not None:
                 _track_peak(db, rule, episode_id, t_now, value)
     if state != before or results:
@@ -381,6 +421,9 @@ def _evaluate_rule(db, station: StationView, rule: Rule, samples: pd.DataFrame, 
             db.conn.execute("UPDATE alert_episodes SET step_now = ? WHERE id = ?",
                             (rule.steps[state.level].name, episode_id))
         _save_state(db, station.id, rule, state, episode_id, t_now)
+    if announced is not None:
+        db.conn.execute("UPDATE alert_state SET announced = ? WHERE station = ? AND rule = ?",
+                        (json.dumps(announced), station.id, rule.id))
     return results
 
 

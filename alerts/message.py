@@ -209,6 +209,10 @@ def compose_alert(station: StationView, rule: Rule, event: Event, facts: dict | 
     elif event.kind == "escalated":
         headline = f"{sname}: now {step.name} - {vtext}"
         subject = f"{SUBJECT_PREFIX} {sname}: up to {step.name} - {vtext}"
+    elif event.kind == "changed":
+        new = ", ".join(_fault_line(f, station.tz).split(":")[0] for f in facts.get("new_faults") or [])
+        headline = f"{sname}: {step.name} continues - new: {new} ({vtext})"
+        subject = f"{SUBJECT_PREFIX} {sname}: {step.name} - new: {new} ({vtext})"
     elif event.kind == "cleared":
         headline = f"{sname}: all clear for {rule.id} (highest step was {step.name}) - {vtext}"
         subject = f"{SUBJECT_PREFIX} {sname}: all clear ({step.name} over) - {vtext}"

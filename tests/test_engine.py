@@ -212,3 +212,15 @@ def test_works_on_an_autocommit_connection_like_the_stores(path):
     conn.close()
     again = sqlite_utils.Database(path)
     assert [k for r, k, _ in queued(again) if r == "duty@port.example"] == ["alert", "alert", "all_clear"]
+
+
+def test_a_new_kind_of_fault_during_an_episode_is_one_more_message(db):
+    rule = {"id": "kit", "watch": "equipment_fault", "notify": ["tech@port.example"]}
+    stuck = {"kind": "stuck_sensor", "sensor": "primary", "value": 62.0, "limit": 30.0, "unit": "min"}
+    drift = {"kind": "sensor_drift", "sensor": "primary-backup", "value": 3.1, "limit": 2.0, "unit": "mm/day"}
+    for i, faults in enumerate([[stuck], [stuck], [stuck, drift], [stuck, drift], [drift], []]):
+        evaluate(db, STATION, rules(rule), None, now=T0 + pd.Timedelta(minutes=i), context=AlertContext(faults=faults))
+    subjects = [s for _, _, s in queued(db)]
+    assert len(subjects) == 3
+    assert "new: sensor drift on primary-backup" in subjects[1]
+    assert "all clear" in subjects[2]
