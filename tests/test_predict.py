@@ -1,0 +1,149 @@
+"""TideModel: prediction against a direct per-constituent evaluation; constants file.
+
+The reference evaluation is the textbook formula h = Z0 + sum f H cos(V + u - g)
+(Foreman 1977, eq. for prediction) with f and u evaluated exactly at every sample.
+"""
+import numpy as np
+import pandas as pd
+import pytest
+
+from predictor import TideModel
+from predictor.constituents import CATALOGUE
+from predictor.model import SECONDS_PER_YEAR, ConstantsFileError
+from predictor.nodal import arguments
+
+mm = 1e-3
+second = 1.0
+minute = 60.0
+
+
+@pytest.fixture(scope="module")
+def model():
+    # every catalogue constituent, invented amplitudes up to 0.5 m
+    rng = np.random.default_rng(7)
+    cons = [{"name": n, "amplitude": float(rng.uniform(0.002, 0.5)), "phase": float(rng.uniform(0, 360))}
+            for n in CATALOGUE]
+    return TideModel(mean=1.7, constituents=cons, trend=0.004, trend_epoch="2020-01-01T00:00:00Z")
+
+
+def _direct(model, t):
+    vu, f = arguments(t, model.names, daily=False)
+    H = np.array([c["amplitude"] for c in model.constituents])
+    g = np.array([c["phase"] for c in model.constituents])
+    level = model.mean + model.trend * (t - model.trend_epoch) / SECONDS_PER_YEAR
+    for k in range(len(H)):
+        level = level + f[:, k] * H[k] * np.cos(np.radians(vu[:, k] - g[k]))
+    return level
+
+
+def _unix(times):
+    return np.asarray(times).astype("datetime64[ns]").astype(np.int64) / 1e9
+
+
+def test_uniform_times_match_direct_evaluation_across_many_blocks(model):
+    times = np.arange(np.datetime64("2033-02-20T03:00"), np.datetime64("2033-03-15T00:00"),
+                      np.timedelta64(7, "m"))
+    assert np.max(np.abs(model.predict(times) - _direct(model, _unix(times)))) < 0.005 * mm
+
+
+def test_irregular_times_match_direct_evaluation(model):
+    rng = np.random.default_rng(3)
+    t = np.sort(1.9e9 + rng.uniform(0, 40 * 86400, 3000))
+    times = (t * 1e9).astype(np.int64).astype("datetime64[ns]")
+    assert np.max(np.abs(model.predict(times) - _direct(model, t))) < 0.005 * mm
+
+
+def test_uniform_fast_path_equals_general_path(model):
+    times = pd.date_range("2026-01-01", periods=5000, freq="1min", tz="UTC")
+    fast = model.predict(times)
+    general = model.predict(times[::-1])[::-1]  # descending times take the general path
+    assert np.max(np.abs(fast - general)) < 0.001 * mm
+
+
+def test_tz_aware_index_is_converted_and_naive_is_utc(model):
+    local = pd.date_range("2026-06-01 12:00", periods=100, freq="10min", tz="Europe/Dublin")
+    naive_utc = local.tz_convert("UTC").tz_localize(None)
+    assert np.allclose(model.predict(local), model.predict(naive_utc), atol=1e-12)
+
+
+def test_derivative_matches_finite_difference(model):
+    t = np.array([1.8e9, 1.8e9 + 3333.0])
+    h = 1.0 * second
+    fd = (_direct(model, t + h) - _direct(model, t - h)) / (2 * h)
+    assert np.allclose(model.predict_derivative(t), fd, atol=1e-9)
+
+
+def test_nat_gives_nan(model):
+    times = np.array(["2026-01-01T00:00", "NaT"], dtype="datetime64[ns]")
+    out = model.predict(times)
+    assert np.isfinite(out[0]) and np.isnan(out[1])
+
+
+def test_pure_m2_is_cosine_of_twice_lunar_time():
+    # Foreman (1977) convention: V(M2) = 2 tau, and with g = 0, f = 1 model and
+    # u removed the level is f H cos(2 tau + u).
+    from predictor.astro import astronomical_arguments
+    from predictor.nodal import nodal_factors
+
+    t = np.array([1.5e9, 1.5e9 + 4000.0])
+    m = TideModel(mean=0.0, constituents=[{"name": "M2", "amplitude": 1.0, "phase": 0.0}])
+    f, u = nodal_factors(t, ["M2"], daily=False)
+    tau = astronomical_arguments(t)[:, 0]
+    assert np.allclose(m.predict(t), f[:, 0] * np.cos(np.radians(2 * tau + u[:, 0])), atol=1e-9)
+
+
+HAND_TYPED = """\
+# constants typed by hand from a (here invented) station sheet
+mean = 2.2
+
+[[constituents]]
+name = "M2"
+amplitude = 0.9
+phase = 312
+
+[[constituents]]
+name = "k1"          # any case
+amplitude = 0.35
+phase = 78.0
+note = "kept as given"
+"""
+
+
+def test_hand_typed_file_loads(tmp_path):
+    path = tmp_path / "c.toml"
+    path.write_text(HAND_TYPED)
+    m = TideModel.load(path)
+    assert m.mean == 2.2
+    assert m.names == ["M2", "K1"]
+    assert m.constituents[1]["note"] == "kept as given"
+
+
+def test_save_then_load_round_trips(tmp_path, model):
+    m = TideModel(mean=1.0, constituents=model.constituents[:5], trend=0.002,
+                  trend_epoch="2010-01-01T00:00:00Z", metadata={"rms": 0.05, "dropped": [{"name": "S2"}]})
+    m.save(tmp_path / "c.toml")
+    back = TideModel.load(tmp_path / "c.toml")
+    t = np.array([1.6e9, 1.7e9])
+    assert np.allclose(back.predict(t), m.predict(t), atol=1e-12)
+    assert back.metadata["rms"] == 0.05
+
+
+def test_unknown_constituent_names_file_and_entry(tmp_path):
+    path = tmp_path / "bad.toml"
+    path.write_text('mean = 0.0\n[[constituents]]\nname = "M22"\namplitude = 0.1\nphase = 0\n')
+    with pytest.raises(ConstantsFileError, match=r"bad\.toml: constituents\[0\].*M22.*did you mean M2"):
+        TideModel.load(path)
+
+
+@pytest.mark.parametrize("text,needle", [
+    ('[[constituents]]\nname = "M2"\namplitude = 0.1\nphase = 0\n', "missing top-level key 'mean'"),
+    ('mean = 0\n[[constituents]]\nname = "M2"\nphase = 0\n', "'amplitude' must be a number"),
+    ('mean = 0\n[[constituents]]\nname = "M2"\namplitude = 0.1\nphase = 0\n'
+     '[[constituents]]\nname = "m2"\namplitude = 0.1\nphase = 0\n', "listed twice"),
+    ("mean = = 1\n", "not valid TOML"),
+])
+def test_bad_files_give_clear_errors(tmp_path, text, needle):
+    path = tmp_path / "c.toml"
+    path.write_text(text)
+    with pytest.raises(ConstantsFileError, match=needle):
+        TideModel.load(path)
