@@ -104,16 +104,27 @@ def test_speedup_zero_gives_everything_and_is_exhausted(record):
     assert feed.poll() == [] and feed.exhausted
 
 
-def test_speedup_zero_in_batches(record):
-    feed = ReplayFeed("demo", str(record), speedup=0, batch=4)
-    sizes = []
+def test_speedup_zero_reads_in_chunks_without_splitting_lines(record):
+    feed = ReplayFeed("demo", str(record), speedup=0, chunk=64)
+    polls = []
     while not feed.exhausted:
-        sizes.append(len(feed.poll()))
-    assert sizes[:3] == [4, 4, 3]
+        polls.append(texts(feed.poll()))
+    assert len([p for p in polls if p]) > 1
+    assert [t for p in polls for t in p] == RECORD.splitlines()
+
+
+def test_speedup_zero_unterminated_last_line_is_returned(tmp_path):
+    path = tmp_path / "r.csv"
+    path.write_bytes(b"a\r\nb")
+    feed = ReplayFeed("demo", str(path), speedup=0)
+    got = []
+    while not feed.exhausted:
+        got += texts(feed.poll())
+    assert got == ["a", "b"]
 
 
 def test_restart_resumes_without_repeats(record):
-    feed = ReplayFeed("demo", str(record), speedup=0, batch=5)
+    feed = ReplayFeed("demo", str(record), speedup=0, chunk=100)
     first = texts(feed.poll())
     state = json.loads(json.dumps(feed.state()))
     feed.close()
@@ -121,7 +132,7 @@ def test_restart_resumes_without_repeats(record):
     again.restore(state)
     lines = again.poll()
     assert first + texts(lines) == RECORD.splitlines()
-    assert lines[0].lineno == 6
+    assert lines[0].lineno == len(first) + 1
 
 
 def test_restart_keeps_header_named_time_column(record):
@@ -137,7 +148,7 @@ def test_restart_keeps_header_named_time_column(record):
 
 
 def test_changed_file_is_played_from_start(record):
-    feed = ReplayFeed("demo", str(record), speedup=0, batch=3)
+    feed = ReplayFeed("demo", str(record), speedup=0, chunk=50)
     feed.poll()
     state = feed.state()
     feed.close()

@@ -26,9 +26,9 @@ MAX_LINE_BYTES = 1 << 20
 _UTF8_BOM = b"\xef\xbb\xbf"
 
 
-@dataclass(frozen=True, slots=True)
+@dataclass(slots=True)
 class RawLine:
-    """One complete line of telemetry, before parsing.
+    """One complete line of telemetry, before parsing (treat as read-only).
 
     Attributes
     ----------
@@ -118,11 +118,20 @@ def decode_line(raw: bytes, encoding: str, *, first: bool = False) -> str:
     return raw.decode(encoding, errors="replace")
 
 
-def split_lines(buf: bytes) -> tuple[list[bytes], bytes]:
-    """Split at ``\\n`` into complete lines and the unterminated rest."""
-    parts = buf.split(b"\n")
-    rest = parts.pop()
-    return parts, rest
+def decode_block(body: bytes, encoding: str, *, first: bool = False) -> list[str]:
+    """Bytes of several whole lines (joined by ``\\n``, without the last ``\\n``) to texts.
+
+    The same as :func:`decode_line` on each line, decoded in one go because that is several
+    times faster; a line end is never part of a multi-byte character in an ASCII-compatible
+    encoding, so the replacement of undecodable bytes does not depend on the split.
+    """
+    text = body.decode(encoding, errors="replace")
+    if first and text.startswith("\ufeff") and body.startswith(_UTF8_BOM):
+        text = text[1:]
+    lines = text.split("\n")
+    if "\r" in text:
+        lines = [line[:-1] if line.endswith("\r") else line for line in lines]
+    return lines
 
 
 @dataclass

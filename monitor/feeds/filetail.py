@@ -31,10 +31,9 @@ from monitor.feeds.base import (
     Feed,
     FileIdentity,
     RawLine,
-    decode_line,
+    decode_block,
     int_field,
     log,
-    split_lines,
 )
 
 
@@ -86,28 +85,31 @@ class FileCursor:
         if not data:
             return 0
         self.pos += len(data)
-        lines, rest = split_lines(self.pending + data)
-        start = self.offset
-        for raw in lines:
-            self._emit(raw, start, received, out)
-            start += len(raw) + 1
-        self.offset = start
-        self.pending = rest
-        if len(rest) > MAX_LINE_BYTES:
+        buf = self.pending + data if self.pending else data
+        cut = buf.rfind(b"\n")
+        if cut >= 0:
+            self.emit_block(buf[:cut], received, out)
+            self.offset += cut + 1
+            self.pending = buf[cut + 1:]
+        else:
+            self.pending = buf
+        if len(self.pending) > MAX_LINE_BYTES:
             self.finish(received, out)
         return len(data)
+
+    def emit_block(self, body: bytes, received: float, out: list[RawLine]) -> None:
+        """Hand out the whole lines in ``body``, which starts at ``offset``."""
+        texts = decode_block(body, self.encoding, first=self.offset == 0)
+        n, path = self.lineno, self.path
+        out.extend([RawLine(text, n + i, path, received) for i, text in enumerate(texts, 1)])
+        self.lineno = n + len(texts)
 
     def finish(self, received: float, out: list[RawLine]) -> None:
         """Take the pending unterminated bytes as a complete last line."""
         if self.pending:
-            self._emit(self.pending, self.offset, received, out)
+            self.emit_block(self.pending, received, out)
             self.offset += len(self.pending)
             self.pending = b""
-
-    def _emit(self, raw: bytes, start: int, received: float, out: list[RawLine]) -> None:
-        self.lineno += 1
-        text = decode_line(raw, self.encoding, first=start == 0)
-        out.append(RawLine(text, self.lineno, self.path, received))
 
     def checkpoint(self) -> dict[str, Any]:
         return {**self.identity.as_state(), "file": self.path, "offset": self.offset,

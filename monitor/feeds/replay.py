@@ -26,9 +26,18 @@ from datetime import datetime, timezone
 from typing import Any, Callable
 
 from monitor.errors import UserError
-from monitor.feeds.base import Feed, FileIdentity, RawLine, decode_line, int_field, log
+from monitor.feeds.base import (
+    CHUNK_BYTES,
+    Feed,
+    FileIdentity,
+    RawLine,
+    decode_block,
+    decode_line,
+    int_field,
+    log,
+)
 
-#: Most lines one poll returns when playing as fast as possible.
+#: Most lines one poll returns when paced (as fast as possible, a poll reads ``chunk`` bytes).
 BATCH_LINES = 20000
 
 
@@ -77,6 +86,8 @@ class ReplayFeed(Feed):
         Longest wait between two lines [s].
     encoding : str
         ASCII-compatible text encoding.
+    chunk : int
+        Most bytes read in one poll when playing as fast as possible [bytes].
     clock : callable
         Monotonic clock [s]; replaceable in tests.
     """
@@ -86,7 +97,7 @@ class ReplayFeed(Feed):
     def __init__(self, name: str, path: str, speedup: float = 1.0, rate: float | None = None,
                  time_column: int | str | None = None, time_format: str = "iso",
                  delimiter: str = ",", max_pause: float | None = None,
-                 encoding: str = "utf-8", batch: int = BATCH_LINES,
+                 encoding: str = "utf-8", chunk: int = CHUNK_BYTES,
                  clock: Callable[[], float] = time.monotonic):
         super().__init__(name)
         self.path = os.fspath(path)
@@ -97,7 +108,7 @@ class ReplayFeed(Feed):
         self.delimiter = delimiter
         self.max_pause = max_pause
         self.encoding = encoding
-        self.batch = batch
+        self.chunk = chunk
         self.clock = clock
         try:
             self._f = open(self.path, "rb")
@@ -139,8 +150,6 @@ class ReplayFeed(Feed):
         return parse_time(fields[self._column], self.time_format)
 
     def _due(self, t: float | None, now: float) -> float:
-        if self.rate is None and self.speedup == 0:
-            return float("-inf")
         if self._last_due is None:
             return now
         if self.rate is not None:
@@ -153,11 +162,31 @@ class ReplayFeed(Feed):
             gap = min(gap, self.max_pause)
         return self._last_due + gap
 
+    def _poll_unpaced(self, received: float) -> list[RawLine]:
+        # Whole blocks of lines at once: backfill speed matters here.
+        data = os.pread(self._f.fileno(), self.chunk, self._offset)
+        if not data:
+            self._eof = True
+            return []
+        cut = data.rfind(b"\n")
+        if cut >= 0:
+            body, used = data[:cut], cut + 1
+        else:  # the unterminated last line of the file, or a piece of an overlong line
+            body, used = data, len(data)
+        texts = decode_block(body, self.encoding, first=self._offset == 0)
+        n = self._lineno
+        out = [RawLine(text, n + i, self.path, received) for i, text in enumerate(texts, 1)]
+        self._lineno = n + len(texts)
+        self._offset += used
+        return out
+
     def poll(self) -> list[RawLine]:
+        received = time.time()
+        if self.rate is None and self.speedup == 0:
+            return self._poll_unpaced(received)
         out: list[RawLine] = []
         now = self.clock()
-        received = time.time()
-        while len(out) < self.batch:
+        while len(out) < BATCH_LINES:
             if self._next is None:
                 raw = self._f.readline()
                 if not raw:
