@@ -285,3 +285,21 @@ def test_linearised_intervals_use_the_normal_quantile():
 def test_phase_interval_of_a_noise_constituent_is_capped_at_180_degrees():
     _, ph_ci, snr = ci.amplitude_phase_intervals([1e-4], [0.0], [1e-4], confidence=0.95)
     assert ph_ci[0] == 180.0 and snr[0] < 1
+
+
+def test_fitted_model_predicts_the_record():
+    # Conventions of fit and prediction agree: TideModel.predict reproduces noise-free data.
+    t = hourly(60)
+    y = synthesise(t, SHORT)
+    model = harmonic_fit(t.astype("datetime64[s]"), y, constituents=list(SHORT))
+    np.testing.assert_allclose(model.predict(t.astype("datetime64[s]")), y, atol=0.1 * mm)
+
+
+def test_linear_trend_is_recovered_and_predicted():
+    # 3 mm/year, a typical modern rate of relative sea-level rise (common practice, no source).
+    t = hourly(3 * 365)[::3]
+    rate = 3.0 * mm  # per Julian year
+    y = synthesise(t, SHORT) + rate * (t - t[0]) / (365.25 * day)
+    model = harmonic_fit(t, y, constituents=list(SHORT), trend=True, confidence=None)
+    assert model.trend == pytest.approx(rate, abs=0.01 * mm)
+    np.testing.assert_allclose(model.predict(t.astype("datetime64[s]")), y, atol=0.1 * mm)

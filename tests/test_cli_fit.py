@@ -1,0 +1,185 @@
+"""``quaywatch fit`` and its CSV reader: messages name file and line; JSON shape; TOML output."""
+from __future__ import annotations
+
+import argparse
+import json
+
+import numpy as np
+import pandas as pd
+import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
+
+from monitor.cli_fit_verb import CAUTION, read_level_csv, register
+from monitor.errors import UserError
+from predictor import TideModel
+
+mm = 1e-3
+minute = 60.0
+
+# Invented port: amplitude [m] and Greenwich phase lag [deg].
+PORT = TideModel(mean=2.45, constituents=[
+    {"name": "M2", "amplitude": 1.10, "phase": 95.0},
+    {"name": "S2", "amplitude": 0.38, "phase": 128.0},
+    {"name": "K1", "amplitude": 0.12, "phase": 205.0},
+    {"name": "O1", "amplitude": 0.09, "phase": 350.0},
+])
+
+
+def run(argv):
+    """Parse and run like ``monitor.cli.main``: a UserError becomes exit code 2."""
+    parser = argparse.ArgumentParser(prog="quaywatch")
+    register(parser.add_subparsers(dest="verb"))
+    args = parser.parse_args(argv)
+    try:
+        return args.func(args)
+    except UserError as exc:
+        print(f"quaywatch {args.verb}: {exc}", file=__import__("sys").stderr)
+        return 2
+
+
+def write_csv(path, days=30, step="1h"):
+    times = pd.date_range("2031-03-01", periods=int(pd.Timedelta(days=days) / pd.Timedelta(step)),
+                          freq=step, tz="UTC")
+    levels = PORT.predict(times)
+    lines = ["time,level"] + [f"{t:%Y-%m-%dT%H:%M:%SZ},{v:.4f}" for t, v in zip(times, levels)]
+    path.write_text("\n".join(lines) + "\n")
+    return path
+
+
+# ----------------------------------------------------------------- the reader
+
+
+def test_reader_returns_utc_times_and_levels(tmp_path):
+    p = tmp_path / "obs.csv"
+    p.write_text("time,level\n2031-01-01T00:00:00Z,1.25\n2031-01-01T01:00:00+01:00,1.5\n")
+    times, levels, notes = read_level_csv(p)
+    # +01:00 local 01:00 is 00:00Z (ISO 8601 offsets); it duplicates the first row
+    assert list(times) == [pd.Timestamp("2031-01-01T00:00Z")]
+    assert "1 row(s) repeating" in notes[0]
+    np.testing.assert_allclose(levels, [1.25])
+
+
+def test_reader_sorts_and_says_so(tmp_path):
+    p = tmp_path / "obs.csv"
+    p.write_text("time,level\n2031-01-01T02:00Z,3\n2031-01-01T00:00Z,1\n2031-01-01T01:00Z,2\n")
+    times, levels, notes = read_level_csv(p)
+    np.testing.assert_allclose(levels, [1, 2, 3])
+    assert any("out of time order; sorted" in n for n in notes)
+
+
+def test_malformed_line_is_named_by_number(tmp_path):
+    p = tmp_path / "obs.csv"
+    p.write_text("time,level\n2031-01-01T00:00Z,1.0\n2031-01-01T01:00Z,1.1,extra\n")
+    with pytest.raises(UserError, match=r"obs\.csv line 3: expected two fields"):
+        read_level_csv(p)
+
+
+def test_non_numeric_level_is_named_by_line(tmp_path):
+    p = tmp_path / "obs.csv"
+    p.write_text("time,level\n2031-01-01T00:00Z,1.0\n\n2031-01-01T01:00Z,abc\n")
+    with pytest.raises(UserError, match=r"obs\.csv line 4: level 'abc' is not a number"):
+        read_level_csv(p)
+
+
+def test_bad_time_is_named_by_line(tmp_path):
+    p = tmp_path / "obs.csv"
+    p.write_text("time,level\n2031-13-01T00:00Z,1.0\n")
+    with pytest.raises(UserError, match=r"obs\.csv line 2: time '2031-13-01T00:00Z'"):
+        read_level_csv(p)
+
+
+def test_naive_times_are_refused_without_tz(tmp_path):
+    p = tmp_path / "obs.csv"
+    p.write_text("time,level\n2031-07-01T12:00:00,1.0\n")
+    with pytest.raises(UserError, match=r"obs\.csv line 2: .*has no zone.*--tz"):
+        read_level_csv(p)
+
+
+def test_naive_times_take_the_given_zone(tmp_path):
+    # Lisbon keeps UTC+1 in July (summer time; from memory of the EU clock rules).
+    p = tmp_path / "obs.csv"
+    p.write_text("time,level\n2031-07-01T12:00:00,1.0\n")
+    times, _, _ = read_level_csv(p, tz="Europe/Lisbon")
+    assert times[0] == pd.Timestamp("2031-07-01T11:00Z")
+
+
+def test_wrong_header_is_named(tmp_path):
+    p = tmp_path / "obs.csv"
+    p.write_text("when,height\n2031-01-01T00:00Z,1.0\n")
+    with pytest.raises(UserError, match=r"obs\.csv line 1: expected the header 'time,level'"):
+        read_level_csv(p)
+
+
+def test_missing_file_is_a_user_error(tmp_path):
+    with pytest.raises(UserError, match="no such file"):
+        read_level_csv(tmp_path / "absent.csv")
+
+
+@settings(max_examples=30, deadline=None)
+@given(st.lists(st.tuples(st.integers(0, 10**9), st.floats(-10, 10, allow_nan=False)),
+                min_size=1, max_size=30, unique_by=lambda r: r[0]))
+def test_written_rows_read_back(tmp_path_factory, rows):
+    p = tmp_path_factory.mktemp("csv") / "obs.csv"
+    base = pd.Timestamp("2000-01-01T00:00Z")
+    text = "time,level\n" + "".join(
+        f"{(base + pd.Timedelta(seconds=s)).isoformat()},{v!r}\n" for s, v in rows)
+    p.write_text(text)
+    times, levels, _ = read_level_csv(p)
+    rows = sorted(rows)
+    assert [int((t - base).total_seconds()) for t in times] == [s for s, _ in rows]
+    np.testing.assert_array_equal(levels, [v for _, v in rows])
+
+
+# ----------------------------------------------------------------- the verb
+
+
+def test_json_output_shape_and_values(tmp_path, capsys):
+    obs = write_csv(tmp_path / "obs.csv", days=30)
+    assert run(["fit", str(obs), "--json"]) == 0
+    out = json.loads(capsys.readouterr().out)
+    assert out["mean"] == pytest.approx(2.45, abs=1 * mm)
+    m2 = next(c for c in out["constituents"] if c["name"] == "M2")
+    assert {"name", "amplitude", "phase", "amplitude_ci", "phase_ci", "snr"} <= set(m2)
+    assert m2["amplitude"] == pytest.approx(1.10, abs=1 * mm)
+    assert {"rms", "variance_explained", "record_start", "record_end", "n_samples"} <= set(out)
+    assert out["caution"] == CAUTION
+
+
+def test_table_output_has_units_and_the_caution(tmp_path, capsys):
+    obs = write_csv(tmp_path / "obs.csv", days=30)
+    assert run(["fit", str(obs)]) == 0
+    text = capsys.readouterr().out
+    assert "amplitude[m]" in text and "phase[deg]" in text
+    assert "unofficial" in text
+
+
+def test_constants_file_loads_back(tmp_path, capsys):
+    obs = write_csv(tmp_path / "obs.csv", days=30)
+    toml = tmp_path / "port.toml"
+    assert run(["fit", str(obs), "-o", str(toml), "--robust"]) == 0
+    model = TideModel.load(toml)
+    m2 = next(c for c in model.constituents if c["name"] == "M2")
+    assert m2["amplitude"] == pytest.approx(1.10, abs=1 * mm)
+
+
+def test_too_short_record_gives_needed_lengths(tmp_path, capsys):
+    obs = write_csv(tmp_path / "obs.csv", days=0.5, step="10min")
+    assert run(["fit", str(obs)]) == 2
+    err = capsys.readouterr().err
+    assert "obs.csv" in err and "record too short" in err and "days for M2 alone" in err
+
+
+def test_duplicates_are_reported_on_stderr(tmp_path, capsys):
+    obs = write_csv(tmp_path / "obs.csv", days=30)
+    lines = obs.read_text().splitlines()
+    obs.write_text("\n".join(lines + lines[5:8]) + "\n")
+    assert run(["fit", str(obs), "--json"]) == 0
+    err = capsys.readouterr().err
+    assert "3 row(s) repeating an earlier time dropped" in err
+
+
+def test_unknown_zone_is_refused(tmp_path, capsys):
+    obs = write_csv(tmp_path / "obs.csv", days=30)
+    assert run(["fit", str(obs), "--tz", "Mars/Olympus"]) == 2
+    assert "unknown time zone" in capsys.readouterr().err
