@@ -1,0 +1,263 @@
+"""Tide verbs: ``predict``, ``table`` (high and low waters) and ``datums``.
+
+The ``fit`` verb lives in :mod:`monitor.cli_fit_verb` and is registered from here when
+that module is present.  Each verb function takes the parsed ``args`` and returns an
+exit code; bad input raises :class:`monitor.errors.UserError`.
+"""
+from __future__ import annotations
+
+import argparse
+import datetime as dt
+import json
+import sys
+import zoneinfo
+
+import numpy as np
+import pandas as pd
+
+from monitor.errors import UserError
+
+__all__ = ["register", "run_predict", "run_table", "run_datums", "CAUTION", "parse_time", "parse_step"]
+
+CAUTION = ("Automated, unofficial prediction of the astronomical tide only (no weather effects). "
+           "Official tide tables, official warnings and the local emergency authorities come first; "
+           "defer to local codes and licensed practice.")
+
+_ROWS_PER_WRITE = 200_000
+
+
+def _zone(name: str | None, option: str = "--tz"):
+    if name is None:
+        return None
+    try:
+        return zoneinfo.ZoneInfo(name)
+    except (zoneinfo.ZoneInfoNotFoundError, ValueError):
+        raise UserError(f"{option} {name!r}: unknown time zone (use an IANA name such as Europe/Dublin or UTC)") \
+            from None
+
+
+def parse_time(text: str, option: str, tz=None) -> pd.Timestamp:
+    """An ISO 8601 time as a UTC Timestamp; naive times need ``tz`` (a ZoneInfo)."""
+    try:
+        ts = pd.Timestamp(text)
+    except (ValueError, TypeError):
+        raise UserError(f"{option} {text!r}: not an ISO 8601 time (example: 2025-03-01T06:00Z)") from None
+    if ts is pd.NaT:
+        raise UserError(f"{option} {text!r}: not a time")
+    if ts.tzinfo is None:
+        if tz is None:
+            raise UserError(f"{option} {text!r}: no time zone; add Z or an offset such as +01:00, or give --tz")
+        try:
+            ts = ts.tz_localize(tz, ambiguous="raise", nonexistent="raise")
+        except Exception:
+            raise UserError(f"{option} {text!r}: this local time is skipped or repeated by a clock change "
+                            f"in {tz.key}; give an offset instead") from None
+    return ts.tz_convert("UTC")
+
+
+def parse_step(text: str) -> pd.Timedelta:
+    """A positive step such as 60s, 6min, 10min or 1h."""
+    try:
+        step = pd.Timedelta(text)
+    except (ValueError, TypeError):
+        raise UserError(f"--step {text!r}: not a time step (examples: 60s, 6min, 10min, 1h)") from None
+    if step <= pd.Timedelta(0):
+        raise UserError(f"--step {text!r}: the step must be positive")
+    if step.value % 1_000_000_000:
+        raise UserError(f"--step {text!r}: the step must be a whole number of seconds")
+    return step
+
+
+def _load(path):
+    from predictor.model import ConstantsFileError, TideModel
+
+    try:
+        return TideModel.load(path)
+    except ConstantsFileError as exc:
+        raise UserError(str(exc)) from None
+
+
+# --------------------------------------------------------------------------- predict
+
+
+def run_predict(args) -> int:
+    """``quaywatch predict``: CSV ``time,level`` (UTC, Z) from start to end, both included."""
+    tz = _zone(args.tz)
+    start = parse_time(args.start, "--start", tz)
+    end = parse_time(args.end, "--end", tz)
+    if start > end:
+        raise UserError(f"--start {args.start} is after --end {args.end}")
+    step = parse_step(args.step)
+    model = _load(args.constants)
+    step_ns = np.int64(step.value)
+    start_ns = np.int64(start.value)
+    n = int((end.value - start.value) // step.value) + 1
+    whole = start.value % 1_000_000_000 == 0
+    out = sys.stdout
+    out.write("time,level\n")
+    for i in range(0, n, _ROWS_PER_WRITE):
+        k = np.arange(i, min(n, i + _ROWS_PER_WRITE), dtype=np.int64)
+        times = (start_ns + k * step_ns).astype("datetime64[ns]")
+        level = model.predict(times)
+        stamps = np.datetime_as_string(times, unit="s" if whole else "ms")
+        out.write("".join(f"{s}Z,{v:.4f}\n" for s, v in zip(stamps, level)))
+    out.flush()
+    return 0
+
+
+# --------------------------------------------------------------------------- table
+
+
+def _offset_text(ts: pd.Timestamp) -> str:
+    off = ts.utcoffset() or dt.timedelta(0)
+    minutes = int(off.total_seconds() // 60)
+    sign = "+" if minutes >= 0 else "-"
+    return f"{sign}{abs(minutes) // 60:02d}:{abs(minutes) % 60:02d}"
+
+
+def run_table(args) -> int:
+    """``quaywatch table``: high and low waters in local time, aligned, with units."""
+    tz = _zone(args.tz or "UTC")
+    if args.days <= 0 or args.days > 400:
+        raise UserError(f"--days {args.days}: give a number of days from 1 to 400")
+    if args.start:
+        try:
+            day = pd.Timestamp(args.start)
+        except (ValueError, TypeError):
+            raise UserError(f"--start {args.start!r}: not a date (example: 2025-03-01)") from None
+        if day.tzinfo is None:
+            try:
+                day = day.tz_localize(tz, nonexistent="shift_forward", ambiguous=True)
+            except Exception:
+                raise UserError(f"--start {args.start!r}: not a local time in {tz.key}") from None
+    else:
+        day = pd.Timestamp.now(tz=tz).normalize()
+    start = day.tz_convert("UTC")
+    end = (day.tz_convert(tz) + pd.DateOffset(days=args.days)).tz_convert("UTC")
+    model = _load(args.constants)
+    try:
+        events = model.high_low(start, end, step="10min")
+    except ValueError as exc:
+        raise UserError(str(exc)) from None
+    offset = float(args.datum_offset or 0.0)
+    datum = args.datum_name or ("the constants' datum" if not offset else "the chosen datum")
+
+    lines = [
+        f"High and low waters from {args.constants}",
+        f"times: local, {tz.key} (UTC offset shown); heights [m] above {datum}"
+        + (f" (constants' levels {offset:+.3f} m)" if offset else ""),
+        "",
+        f"{'date':<15} {'time':>5} {'UTC':>6}  {'tide':<4} {'height [m]':>10}",
+    ]
+    last_date = None
+    for row in events.itertuples():
+        local = row.time.tz_convert(tz)
+        date = local.strftime("%a %Y-%m-%d")
+        shown = date if date != last_date else ""
+        last_date = date
+        lines.append(f"{shown:<15} {local.strftime('%H:%M'):>5} {_offset_text(local):>6}  "
+                     f"{('HW' if row.kind == 'high' else 'LW'):<4} {row.level + offset:>10.2f}")
+    if events.empty:
+        lines.append("(no high or low water in this period)")
+    lines += ["", "HW high water, LW low water; astronomical tide only: weather can change levels and times a lot.",
+              CAUTION]
+    sys.stdout.write("\n".join(lines) + "\n")
+    return 0
+
+
+# --------------------------------------------------------------------------- datums
+
+
+def run_datums(args) -> int:
+    """``quaywatch datums``: tidal datums from an 18.61-year prediction."""
+    from predictor.datums import DATUM_DESCRIPTIONS, DATUM_ORDER, tidal_datums
+
+    model = _load(args.constants)
+    start = parse_time(args.start, "--start", zoneinfo.ZoneInfo("UTC")) if args.start else None
+    if not 0 < args.years <= 100:
+        raise UserError(f"--years {args.years}: give a period from 0 to 100 years (18.61 is the nodal cycle)")
+    d = tidal_datums(model, start=start, years=args.years)
+    offset = float(args.datum_offset or 0.0)
+    levels = {k: d[k] + (offset if k not in ("MN", "GT") else 0.0) for k in DATUM_ORDER}
+    if args.json:
+        doc = {
+            "datums": levels,
+            "units": "m",
+            "reference": args.datum_name or "constants' datum",
+            "datum_offset": offset,
+            "period": {"start": d["start"], "end": d["end"], "years": args.years},
+            "method": "turning points of the predicted astronomical tide (NOAA 2003 definitions)",
+            "caution": CAUTION,
+        }
+        sys.stdout.write(json.dumps(doc, indent=2) + "\n")
+        return 0
+    ref = args.datum_name or "the constants' datum"
+    lines = [
+        f"Tidal datums from {args.constants}",
+        f"prediction {d['start']} to {d['end']} ({args.years:g} years); heights [m] above {ref}"
+        + (f" (constants' levels {offset:+.3f} m)" if offset else ""),
+        "",
+        f"{'datum':<6} {'height [m]':>10}  description",
+    ]
+    for k in DATUM_ORDER:
+        if k == "MN":
+            lines.append(f"{'':<6} {'range [m]':>10}")
+        lines.append(f"{k:<6} {levels[k]:>10.3f}  {DATUM_DESCRIPTIONS[k]}")
+    lines += ["", CAUTION]
+    sys.stdout.write("\n".join(lines) + "\n")
+    return 0
+
+
+# --------------------------------------------------------------------------- register
+
+
+def register(subparsers) -> None:
+    """Add ``predict``, ``table``, ``datums`` (and ``fit`` when present)."""
+    try:
+        from monitor import cli_fit_verb
+    except ModuleNotFoundError as exc:
+        if exc.name != "monitor.cli_fit_verb":
+            raise
+    else:
+        cli_fit_verb.register(subparsers)
+
+    p = subparsers.add_parser(
+        "predict", help="predicted tide as CSV time,level",
+        description="Predict the astronomical tide from a constants file: CSV 'time,level' with UTC "
+        "ISO 8601 times ending in Z, one row per step, both ends included. " + CAUTION)
+    p.add_argument("constants", metavar="CONSTANTS.toml", help="harmonic constants (TOML)")
+    p.add_argument("--start", required=True, metavar="ISO", help="first time, with Z or an offset")
+    p.add_argument("--end", required=True, metavar="ISO", help="last time, with Z or an offset")
+    p.add_argument("--step", default="10min", metavar="STEP", help="time step: 60s, 6min, 10min, 1h (default 10min)")
+    p.add_argument("--tz", metavar="ZONE", help="IANA time zone for --start/--end written without one")
+    p.set_defaults(func=run_predict)
+
+    p = subparsers.add_parser(
+        "table", help="high and low waters in local time",
+        description="High and low water times and heights in local time. " + CAUTION)
+    p.add_argument("constants", metavar="CONSTANTS.toml", help="harmonic constants (TOML)")
+    p.add_argument("--days", type=int, default=7, help="number of days (default 7)")
+    p.add_argument("--start", metavar="DATE", help="first local day, e.g. 2025-03-01 (default today)")
+    p.add_argument("--tz", metavar="ZONE", help="IANA time zone for the times shown (default UTC)")
+    p.add_argument("--datum-offset", type=float, default=0.0, metavar="M",
+                   help="metres added to every height, e.g. the constants' datum above chart datum")
+    p.add_argument("--datum-name", metavar="NAME", help="name of the datum the heights refer to, e.g. 'chart datum'")
+    p.set_defaults(func=run_table)
+
+    p = subparsers.add_parser(
+        "datums", help="tidal datums (HAT, MHHW, MHW, MSL, MLW, MLLW, LAT, ...)",
+        description="Tidal datums from an 18.61-year prediction of the astronomical tide. " + CAUTION)
+    p.add_argument("constants", metavar="CONSTANTS.toml", help="harmonic constants (TOML)")
+    p.add_argument("--json", action="store_true", help="print JSON")
+    p.add_argument("--start", metavar="ISO", help="start of the period (default 2000-01-01, UTC)")
+    p.add_argument("--years", type=float, default=18.61, help="length of the period in years (default 18.61)")
+    p.add_argument("--datum-offset", type=float, default=0.0, metavar="M", help="metres added to every level")
+    p.add_argument("--datum-name", metavar="NAME", help="name of the datum the heights refer to")
+    p.set_defaults(func=run_datums)
+
+
+if __name__ == "__main__":  # pragma: no cover
+    parser = argparse.ArgumentParser(prog="quaywatch")
+    register(parser.add_subparsers(dest="verb", required=True))
+    a = parser.parse_args()
+    sys.exit(a.func(a))
