@@ -15,6 +15,7 @@ See ``config.example.toml`` for every key with a comment and its default.
 """
 from __future__ import annotations
 
+import dataclasses
 import difflib
 import importlib
 import math
@@ -250,6 +251,22 @@ def _resolve(base_dir: Path, value: str) -> Path:
     return p if p.is_absolute() else (base_dir / p)
 
 
+def _resolve_fields(obj: Any, base_dir: Path, names: tuple[str, ...]) -> Any:
+    """Copy of a settings dataclass with its relative path fields resolved against base_dir."""
+    if obj is None or not dataclasses.is_dataclass(obj):
+        return obj
+    changes = {}
+    for name in names:
+        val = getattr(obj, name, None)
+        if val:
+            p = _resolve(base_dir, str(val))
+            changes[name] = p if isinstance(val, Path) else str(p)
+    try:
+        return dataclasses.replace(obj, **changes) if changes else obj
+    except (TypeError, ValueError):
+        return obj
+
+
 def _optional_call(module: str, func: str, *args: Any) -> tuple[Any, list[str], bool]:
     """Call a colleague's validator if installed: (value, errors, present)."""
     try:
@@ -341,6 +358,8 @@ def validate_config(raw: Any, base_dir: Path | str = ".", path: Path | None = No
             reports, errs, _ = _optional_call("alerts.report", "report_settings_from", rt, "reports")
             errors.extend(errs)
 
+    mail = _resolve_fields(mail, base_dir, ("password_file", "save_dir"))
+    reports = _resolve_fields(reports, base_dir, ("folder",))
     if errors:
         return None, errors
     return Config(path=path, base_dir=base_dir, store_path=store_path, daemon=daemon, logging=logs,
@@ -441,7 +460,7 @@ def _station(c: _Checker, raw: Any, kp: str, base_dir: Path) -> StationConfig | 
                 datums[key] = float(val)
         if "chart" not in dt:
             errors.append(f"{kp}.datums.chart: missing; expected the height of chart datum above the "
-                          f"station datum in metres (usually negative)")
+                          f"station datum in metres")
 
     const = c.value(t, kp, "constants", "str", check=lambda v: v.strip() != "",
                     expect=f"a constants file path, or {HISTORY!r} to fit from the station's own history")

@@ -155,7 +155,7 @@ def _parse_lines(texts, fmt, received, linenos) -> ParsedLines:
         for i, s in enumerate(stripped):
             if s is None:
                 rejects.append(Reject(int(linenos[i]), _clean_text(texts[i])[1], "not valid UTF-8 text"))
-            elif s and not (comment and s.startswith(comment)) and not (header and linenos[i] <= header):
+            elif s and not (comment and s.startswith(comment)) and not (header and 0 < linenos[i] <= header):
                 keep.append(i)
     skipped = n - len(keep) - len(rejects)
     parts = [stripped[i].split(delim) for i in keep]

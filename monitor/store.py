@@ -230,7 +230,8 @@ class Store:
             time_source = np.full(n, "sensor", dtype=object)
         rows = zip([station] * n, [sensor] * n, np.asarray(t, dtype=np.int64).tolist(),
                    np.asarray(value, dtype=float).tolist(), list(time_source))
-        rej_rows = [(feed, station, sensor, int(r.lineno), r.text, r.reason, now) for r in rejects]
+        rej_rows = [(feed, station, sensor, int(r.lineno) if r.lineno and r.lineno > 0 else None, r.text, r.reason, now)
+                    for r in rejects]
         with self.transaction() as conn:
             before = conn.total_changes
             conn.executemany("INSERT OR IGNORE INTO observations (station, sensor, t, value, time_source) "

@@ -1,0 +1,415 @@
+"""Station verbs: check, run, status, ingest, export, refit.
+
+Every verb takes the configuration file first; bad input raises UserError (one line,
+naming the file, option or key). Output is automated and unofficial: official warnings
+and the local emergency authorities come first.
+"""
+from __future__ import annotations
+
+import argparse
+import csv
+import datetime as dt
+import math
+import sys
+import time
+from pathlib import Path
+from zoneinfo import ZoneInfo
+
+import numpy as np
+import pandas as pd
+
+from monitor.errors import UserError
+
+CAUTION = ("Automated and unofficial. Official warnings and the local emergency authorities come first; "
+           "defer to local codes and licensed practice.")
+INGEST_BATCH = 100_000  # lines per transaction in a backfill
+
+
+def register(subparsers) -> None:
+    p = subparsers.add_parser("check", help="validate a configuration file and stop",
+                              description="Validate CONFIG: every problem is listed with its key path.")
+    p.add_argument("config", metavar="CONFIG")
+    p.set_defaults(func=cmd_check)
+
+    p = subparsers.add_parser("run", help="run the monitor daemon",
+                              description="Poll the feeds, process each station, send alerts and reports "
+                                          "until SIGTERM or SIGINT. " + CAUTION)
+    p.add_argument("config", metavar="CONFIG")
+    p.add_argument("--until-exhausted", "--until-idle", dest="until_exhausted", action="store_true",
+                   help="stop once every feed is played out (replays) or idle for daemon.idle_polls polls, "
+                        "processing has caught up and the outbox is drained")
+    p.set_defaults(func=cmd_run)
+
+    p = subparsers.add_parser("status", help="per station: latest level, residual, feeds, rejects, constants")
+    p.add_argument("config", metavar="CONFIG")
+    p.add_argument("--station", metavar="ID", help="only this station")
+    p.add_argument("--rejects", type=int, default=0, metavar="N", help="also show the last N rejected lines")
+    p.set_defaults(func=cmd_status)
+
+    p = subparsers.add_parser("ingest", help="backfill a station from telemetry files",
+                              description="Read FILEs in the sensor's configured line format into the store. "
+                                          "Rows already stored are left alone; bad lines go to the reject log.")
+    p.add_argument("config", metavar="CONFIG")
+    p.add_argument("--station", required=True, metavar="ID")
+    p.add_argument("--sensor", default="primary", choices=("primary", "backup", "barometer"))
+    p.add_argument("files", nargs="+", metavar="FILE")
+    p.set_defaults(func=cmd_ingest)
+
+    p = subparsers.add_parser("export", help="CSV of level, predicted tide, residual and flag",
+                              description="Write time,level,predicted,residual,flag (UTC, metres on the "
+                                          "station datum). Times without an offset are the station's local time.")
+    p.add_argument("config", metavar="CONFIG")
+    p.add_argument("--station", required=True, metavar="ID")
+    p.add_argument("--from", dest="start", required=True, metavar="ISO")
+    p.add_argument("--to", dest="end", required=True, metavar="ISO")
+    p.add_argument("-o", "--output", metavar="FILE", help="write here instead of standard output")
+    p.set_defaults(func=cmd_export)
+
+    p = subparsers.add_parser("refit", help="fit constants to a station's own quality-controlled history",
+                              description="Fit harmonic constants to the station's stored primary record "
+                                          "(fail-flagged samples left out), keep the fit with its date and "
+                                          "quality, and compare it with the constants in use.")
+    p.add_argument("config", metavar="CONFIG")
+    p.add_argument("--station", required=True, metavar="ID")
+    p.add_argument("--days", type=float, metavar="N", help="fit the last N days (default stations[].fit_span_days)")
+    p.add_argument("--use", dest="use", action="store_true", default=None,
+                   help="put the new fit in use (default: only for stations with constants = \"history\")")
+    p.add_argument("--keep", dest="use", action="store_false", help="keep the fit for comparison only")
+    p.add_argument("--list", action="store_true", help="list the kept fits and stop")
+    p.set_defaults(func=cmd_refit)
+
+
+# --------------------------------------------------------------------------- helpers
+
+def _config(path: str):
+    from monitor.config import load_config
+
+    return load_config(path)
+
+
+def _store(cfg, create: bool = False, lock: bool = False):
+    from monitor.store import Store
+
+    return Store.open(cfg.store_path, create=create, lock=lock)
+
+
+def _local(t: float | None, tz: str) -> str:
+    if t is None:
+        return "-"
+    when = dt.datetime.fromtimestamp(int(t), dt.timezone.utc)
+    loc = when.astimezone(ZoneInfo(tz))
+    return f"{loc:%Y-%m-%d %H:%M %Z} ({when:%H:%MZ})"
+
+
+def _age(seconds: float) -> str:
+    if seconds < 0:
+        return "in the future"
+    if seconds < 120:
+        return f"{seconds:.0f} s ago"
+    if seconds < 7200:
+        return f"{seconds / 60:.0f} min ago"
+    if seconds < 172800:
+        return f"{seconds / 3600:.1f} h ago"
+    return f"{seconds / 86400:.1f} days ago"
+
+
+def _m(v: float | None, signed: bool = False) -> str:
+    if v is None or (isinstance(v, float) and not math.isfinite(v)):
+        return "-"
+    return f"{v:+.3f} m" if signed else f"{v:.3f} m"
+
+
+# --------------------------------------------------------------------------- check
+
+def cmd_check(args: argparse.Namespace) -> int:
+    cfg = _config(args.config)
+    from monitor.daemon import load_model
+
+    for st in cfg.stations:
+        if st.constants is not None:
+            load_model(None, st)  # a broken constants file is a configuration problem too
+    print(f"{args.config}: configuration is valid")
+    for st in cfg.stations:
+        sensors = ", ".join(f"{r} ({s.units}, feed {getattr(s.feed, 'kind', 'none')})" for r, s in st.sensors.items())
+        const = str(st.constants) if st.constants else "fitted from the station's own history"
+        print(f"  station {st.id}: {st.name}; {st.tz}; sensors: {sensors}; constants: {const}")
+    print(f"  store: {cfg.store_path}")
+    return 0
+
+
+# --------------------------------------------------------------------------- run
+
+def cmd_run(args: argparse.Namespace) -> int:
+    cfg = _config(args.config)
+    from monitor.daemon import run_daemon
+
+    return run_daemon(cfg, until_exhausted=args.until_exhausted, verbose=getattr(args, "verbose", 0))
+
+
+# --------------------------------------------------------------------------- status
+
+def cmd_status(args: argparse.Namespace) -> int:
+    cfg = _config(args.config)
+    stations = [cfg.station(args.station)] if args.station else list(cfg.stations)
+    now = time.time()
+    out = sys.stdout
+    with _store(cfg) as store:
+        from monitor.daemon import load_model
+
+        checkpoints = store.checkpoints()
+        counts = store.reject_counts()
+        for st in stations:
+            print(f"Station {st.id}: {st.name}  (times in {st.tz}; levels in metres)", file=out)
+            rows: list[tuple[str, str]] = []
+            last = store.last_time(st.id, "primary")
+            rows.append(("last observation", "-" if last is None else f"{_local(last, st.tz)}, {_age(now - last)}"))
+            latest = store.latest_derived(st.id)
+            chart = st.datums.get("chart", 0.0)
+            if latest is not None:
+                lvl = latest["observed"]
+                rows.append(("level", f"{_m(lvl)} station datum, {_m(None if lvl is None else lvl - chart)} "
+                                      f"chart datum  at {_local(latest['t'], st.tz)}"))
+                rows.append(("predicted tide", _m(latest["predicted"])))
+                rows.append(("residual", f"{_m(latest['residual'], True)}   smoothed {_m(latest['smoothed'], True)}"))
+                if latest.get("barometric") is not None:
+                    rows.append(("inverse barometer", _m(latest["barometric"], True)))
+            else:
+                rows.append(("level", "- (not processed yet)"))
+            fc = store.latest_forecast(st.id)
+            if fc is not None:
+                rng = "" if fc["lower"] is None else f"  ({fc['coverage']:.0%} range {fc['lower']:.2f} to {fc['upper']:.2f} m)"
+                rows.append(("next high water", f"{_m(fc['forecast'])} station datum at {_local(fc['hw_t'], st.tz)}"
+                                                f"  (predicted {_m(fc['predicted_high'])}){rng}"))
+            try:
+                _, source = load_model(store, st)
+            except UserError as exc:
+                source = f"unreadable: {exc}"
+            rows.append(("constants", source))
+            for role, sensor in st.sensors.items():
+                name = sensor.feed_name
+                ck = checkpoints.get(name)
+                kind = getattr(sensor.feed, "kind", "none")
+                when = "never read" if ck is None else f"checkpoint {_local(ck[1], st.tz)}, {_age(now - ck[1])}"
+                lt = store.last_time(st.id, role)
+                n_obs = store.observation_count(st.id, role)
+                rows.append((f"feed {role}", f"{kind}; {when}; {n_obs:,} rows, last {_local(lt, st.tz)}; "
+                                             f"{counts.get(name, 0):,} rejected"))
+            ingest_rejects = sum(n for f, n in counts.items() if f.startswith(f"ingest:{st.id}:"))
+            if ingest_rejects:
+                rows.append(("ingest rejects", f"{ingest_rejects:,}"))
+            width = max(len(k) for k, _ in rows)
+            for k, v in rows:
+                print(f"  {k.ljust(width)}  {v}", file=out)
+            if args.rejects:
+                rej = store.rejects(station=st.id, limit=args.rejects)
+                for r in rej.itertuples():
+                    print(f"    {r.feed} line {r.lineno}: {r.reason}: {r.text!r}", file=out)
+            print(file=out)
+    print(CAUTION, file=out)
+    return 0
+
+
+# --------------------------------------------------------------------------- ingest
+
+def _read_batches(path: Path, size: int):
+    """(lines, bytes read so far) in batches, line endings removed; undecodable bytes become U+FFFD."""
+    try:
+        fh = open(path, encoding="utf-8", errors="replace", newline="")
+    except OSError as exc:
+        raise UserError(f"{path}: cannot be read ({exc.strerror or exc})") from None
+    with fh:
+        batch: list[str] = []
+        for line in fh:
+            batch.append(line.rstrip("\r\n"))
+            if len(batch) >= size:
+                yield batch, fh.buffer.tell() if hasattr(fh, "buffer") else 0
+                batch = []
+        if batch:
+            yield batch, path.stat().st_size
+
+
+def ingest_file(store, sensor, path: Path, progress=None, batch_size: int = INGEST_BATCH):
+    """Backfill one file into the store.
+
+    Returns
+    -------
+    (BatchResult, int or None)
+        Summed counts, and the earliest time read [s] (None when no line was read).
+    """
+    from monitor.parse import parse_lines
+    from monitor.store import EMPTY_BATCH
+
+    total = EMPTY_BATCH
+    lineno = 0
+    first_t = None
+    label = f"ingest:{sensor.station}:{path.name}"
+    for lines, pos in _read_batches(path, batch_size):
+        parsed = parse_lines(lines, sensor.format, time.time(), range(lineno + 1, lineno + 1 + len(lines)))
+        lineno += len(lines)
+        res = store.write_batch(sensor.station, sensor.role, parsed.t, parsed.value, parsed.time_source,
+                                parsed.rejects, feed=label, skipped=parsed.skipped)
+        if len(parsed):
+            lo = int(parsed.t.min())
+            first_t = lo if first_t is None else min(first_t, lo)
+        total = total + res
+        if progress:
+            progress(path, lineno, pos, total)
+    return total, first_t
+
+
+def cmd_ingest(args: argparse.Namespace) -> int:
+    cfg = _config(args.config)
+    st = cfg.station(args.station)
+    if args.sensor not in st.sensors:
+        raise UserError(f"--sensor {args.sensor}: station {st.id} has no {args.sensor} sensor "
+                        f"(it has {', '.join(st.sensors)})")
+    sensor = st.sensors[args.sensor]
+    if sensor.format is None:
+        raise UserError(f"stations[{st.id}].sensors.{args.sensor}.line: no line format configured")
+    paths = [Path(f) for f in args.files]
+    for p in paths:
+        if not p.is_file():
+            raise UserError(f"{p}: no such file")
+    tty = sys.stderr.isatty()
+    last_print = [0.0]
+
+    def progress(path: Path, lines: int, pos: int, total) -> None:
+        size = max(1, path.stat().st_size)
+        if tty:
+            sys.stderr.write(f"\r{path.name}: {min(1.0, pos / size):4.0%}  {lines:,} lines, "
+                             f"{total.stored:,} stored, {total.rejected:,} rejected   ")
+            sys.stderr.flush()
+        elif time.monotonic() - last_print[0] > 5:
+            last_print[0] = time.monotonic()
+            print(f"{path.name}: {lines:,} lines read", file=sys.stderr)
+
+    from monitor.store import EMPTY_BATCH
+
+    grand = EMPTY_BATCH
+    with _store(cfg, create=True) as store:
+        for p in paths:
+            res, first_t = ingest_file(store, sensor, p, progress)
+            if tty:
+                sys.stderr.write("\n")
+            print(f"{p}: {res.read:,} rows read, {res.stored:,} stored, {res.duplicates:,} duplicates, "
+                  f"{res.rejected:,} rejected ({res.skipped:,} blank, comment or header lines skipped)")
+            grand = grand + res
+            mark = store.get_meta(f"processed.{st.id}")
+            if res.stored and mark is not None and first_t is not None and first_t <= int(mark):
+                # older rows were added: the daemon processes again from there
+                store.set_meta(f"processed.{st.id}", str(first_t - 1))
+    if len(paths) > 1:
+        print(f"total: {grand.read:,} rows read, {grand.stored:,} stored, {grand.duplicates:,} duplicates, "
+              f"{grand.rejected:,} rejected")
+    if grand.rejected:
+        print(f"see the rejected lines with: quaywatch status {args.config} --station {st.id} --rejects 20",
+              file=sys.stderr)
+    return 0
+
+
+# --------------------------------------------------------------------------- export
+
+def _when(text: str, tz: str, opt: str) -> pd.Timestamp:
+    try:
+        ts = pd.Timestamp(text)
+    except (ValueError, TypeError):
+        raise UserError(f"{opt} {text!r}: expected an ISO 8601 date or time, e.g. 2025-10-20T06:00Z") from None
+    if ts is pd.NaT:
+        raise UserError(f"{opt} {text!r}: expected an ISO 8601 date or time")
+    if ts.tzinfo is None:
+        ts = ts.tz_localize(tz, ambiguous="raise", nonexistent="raise")
+    return ts.tz_convert("UTC")
+
+
+def cmd_export(args: argparse.Namespace) -> int:
+    cfg = _config(args.config)
+    st = cfg.station(args.station)
+    try:
+        start = _when(args.start, st.tz, "--from")
+        end = _when(args.end, st.tz, "--to")
+    except Exception as exc:  # ambiguous local times at a clock change
+        if isinstance(exc, UserError):
+            raise
+        raise UserError(f"--from/--to: {exc}; give a UTC offset or Z") from None
+    if end < start:
+        raise UserError(f"--to {args.end} is before --from {args.start}")
+    from monitor.daemon import load_model
+
+    with _store(cfg) as store:
+        obs = store.observations(st.id, "primary", int(start.timestamp()), int(end.timestamp()))
+        model, _ = load_model(store, st)
+    pred = model.predict(obs.index) if (model is not None and len(obs)) else np.full(len(obs), np.nan)
+    out = open(args.output, "w", newline="") if args.output else sys.stdout
+    try:
+        w = csv.writer(out, lineterminator="\n")
+        w.writerow(["time", "level", "predicted", "residual", "flag"])
+        times = obs.index.strftime("%Y-%m-%dT%H:%M:%SZ")
+        for t, v, p, f in zip(times, obs["value"].to_numpy(), pred, obs["flag"].to_numpy()):
+            pf = "" if not np.isfinite(p) else f"{p:.4f}"
+            rf = "" if not np.isfinite(p) else f"{v - p:.4f}"
+            w.writerow([t, f"{v:.4f}", pf, rf, int(f)])
+    except OSError as exc:
+        raise UserError(f"{args.output}: cannot write ({exc.strerror or exc})") from None
+    finally:
+        if args.output:
+            out.close()
+    if args.output:
+        print(f"{args.output}: {len(obs):,} rows", file=sys.stderr)
+    return 0
+
+
+# --------------------------------------------------------------------------- refit
+
+_COMPARE = ("M2", "S2", "N2", "K1", "O1")
+
+
+def cmd_refit(args: argparse.Namespace) -> int:
+    cfg = _config(args.config)
+    st = cfg.station(args.station)
+    from monitor.daemon import load_model, refit_station
+
+    with _store(cfg, create=False) as store:
+        if args.list:
+            fits = store.fits(st.id)
+            if fits.empty:
+                print(f"station {st.id}: no fits kept yet")
+                return 0
+            print(f"{'id':>4}  {'fitted (UTC)':16}  {'record from':10}  {'to':10}  {'samples':>9}  "
+                  f"{'rms m':>7}  {'var expl':>8}  in use")
+            for r in fits.itertuples():
+                print(f"{r.id:>4}  {_utc(r.fitted_at, '%Y-%m-%d %H:%M')}  {_utc(r.start, '%Y-%m-%d')}  "
+                      f"{_utc(r.end, '%Y-%m-%d')}  {r.n:>9,}  {r.rms:7.3f}  {r.variance_explained:8.1%}  "
+                      f"{'yes' if r.in_use else ''}")
+            return 0
+        try:
+            old, old_source = load_model(store, st)
+        except UserError:
+            old, old_source = None, "unreadable"
+        if args.days is not None and args.days <= 0:
+            raise UserError(f"--days {args.days:g}: expected a number of days above 0")
+        fit = refit_station(store, st, use=args.use, span_days=args.days)
+    model = fit["model"]
+    print(f"station {st.id}: fit #{fit['id']} of {fit['n']:,} samples, {_utc(fit['start'], '%Y-%m-%d')} to "
+          f"{_utc(fit['end'], '%Y-%m-%d')}; rms {fit['rms']:.3f} m; variance explained "
+          f"{fit['variance_explained']:.1%}; {'in use' if fit['in_use'] else 'kept for comparison'}")
+    new = {c["name"]: c for c in model.constituents}
+    prev = {c["name"]: c for c in (old.constituents if old is not None else [])}
+    print(f"compared with the constants in use ({old_source}):")
+    print(f"  {'':4} {'amplitude m':>12} {'change mm':>10} {'phase deg':>10} {'change deg':>11}")
+    for name in _COMPARE:
+        if name not in new:
+            continue
+        a, g = new[name]["amplitude"], new[name]["phase"]
+        if name in prev:
+            da = (a - prev[name]["amplitude"]) * 1000
+            dg = (g - prev[name]["phase"] + 180) % 360 - 180
+            print(f"  {name:4} {a:12.4f} {da:+10.1f} {g:10.2f} {dg:+11.2f}")
+        else:
+            print(f"  {name:4} {a:12.4f} {'-':>10} {g:10.2f} {'-':>11}")
+    if fit["in_use"]:
+        print("a running daemon picks the new fit up within the hour")
+    return 0
+
+
+def _utc(t: float, fmt: str) -> str:
+    return dt.datetime.fromtimestamp(int(t), dt.timezone.utc).strftime(fmt)

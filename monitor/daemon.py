@@ -1,0 +1,613 @@
+"""The daemon: polls the feeds, stores what they give, and processes each station.
+
+apscheduler (3.x, BackgroundScheduler with one worker thread, so jobs never overlap)
+runs these jobs:
+
+- ``poll``: each feed's new lines are parsed and stored with the feed's checkpoint in one
+  transaction (:func:`ingest_lines`);
+- ``process``: per station, :meth:`Daemon.process_station` -- quality control, residual,
+  skew surge, next high water forecast, then the alert rules (one pipeline, in order);
+- ``outbox``: deliver queued email;
+- ``reports``: daily reports, when the report writer is installed;
+- ``refit``: refit stations whose constants come from their own history.
+
+SIGTERM and SIGINT stop it cleanly: the batch in hand is finished and committed, then
+the feeds and the store are closed and the process exits 0. A second daemon on the same
+store is refused by the store's lock.
+"""
+from __future__ import annotations
+
+import importlib
+import logging
+import logging.handlers
+import math
+import os
+import signal
+import tempfile
+import threading
+import time
+import tomllib
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any, Sequence
+
+import numpy as np
+import pandas as pd
+
+from monitor import residual as R
+from monitor.config import Config, SensorConfig, StationConfig
+from monitor.errors import UserError
+from monitor.parse import parse_lines
+from monitor.store import EMPTY_BATCH, BatchResult, Store
+
+log = logging.getLogger("monitor.daemon")
+
+PROCESS_CHUNK = 7 * 86400   # [s] most data time processed in one pass (bounds memory in a backfill)
+REWRITE_BACK = 3600         # [s] derived rows before a window that are recomputed (QC may revise flags)
+OUTBOX_DRAIN_WAIT = 30.0    # [s] with --until-exhausted, longest wait for the outbox after the feeds end
+HISTORY_REFRESH = 6 * 3600  # [s, data time] how often the forecast's residual history is re-read
+
+
+def _optional(module: str):
+    """A colleague's module if installed (None while it is not written yet)."""
+    try:
+        return importlib.import_module(module)
+    except ModuleNotFoundError as exc:
+        if exc.name and module.startswith(exc.name):
+            return None
+        raise
+
+
+# --------------------------------------------------------------------------- ingest
+
+def ingest_lines(store: Store, sensor: SensorConfig, lines: Sequence[Any], feed: str | None = None,
+                 state: dict | None = None, received: float | None = None) -> BatchResult:
+    """Parse lines of one sensor and store them (with the feed checkpoint) in one transaction.
+
+    Parameters
+    ----------
+    store : Store
+    sensor : SensorConfig
+        Line format, station and role (the sensor key in the store).
+    lines : sequence of RawLine or str
+        Raw lines from a feed, or plain text lines (then ``received`` is their receive time).
+    feed : str, optional
+        Feed name (or ingest source) recorded with the rejects; with ``state`` the checkpoint key.
+    state : dict, optional
+        The feed's checkpoint covering these lines.
+    """
+    if not lines and state is None:
+        return EMPTY_BATCH
+    now = time.time() if received is None else received
+    if lines and hasattr(lines[0], "text"):
+        texts = [ln.text for ln in lines]
+        linenos = [ln.lineno if ln.lineno is not None else -1 for ln in lines]
+        recv = np.array([ln.received for ln in lines], dtype=float)
+    else:
+        texts = list(lines)
+        linenos = None
+        recv = now
+    parsed = parse_lines(texts, sensor.format, recv, linenos)
+    return store.write_batch(sensor.station, sensor.role, parsed.t, parsed.value, parsed.time_source,
+                             parsed.rejects, feed=feed, state=state, skipped=parsed.skipped, now=now)
+
+
+# --------------------------------------------------------------------------- constants
+
+def model_from_text(text: str, where: str):
+    """A TideModel from constants TOML text kept in the store."""
+    from predictor import TideModel
+
+    try:
+        return TideModel.from_dict(tomllib.loads(text), where=f"{where}: ")
+    except (tomllib.TOMLDecodeError, ValueError) as exc:
+        raise UserError(f"{where}: stored constants cannot be read ({exc})") from None
+
+
+def model_to_text(model) -> str:
+    """Constants TOML text of a TideModel (the same text as its constants file)."""
+    with tempfile.TemporaryDirectory() as tmp:
+        path = Path(tmp) / "constants.toml"
+        model.save(path)
+        return path.read_text(encoding="utf-8")
+
+
+def load_model(store: Store | None, station: StationConfig) -> tuple[Any, str]:
+    """The station's tide model and where it came from; (None, reason) when there is none yet.
+
+    Raises
+    ------
+    UserError
+        A configured constants file that cannot be read.
+    """
+    if station.constants is not None:
+        from predictor import TideModel
+
+        try:
+            return TideModel.load(station.constants), f"file {station.constants}"
+        except ValueError as exc:
+            raise UserError(f"station {station.id} constants: {exc}") from None
+    if store is None:
+        return None, "fitted from history (no store)"
+    fit = store.fit_in_use(station.id)
+    if fit is None:
+        return None, "none yet: to be fitted from the station's own history"
+    when = pd.Timestamp(fit["fitted_at"], unit="s", tz="UTC").strftime("%Y-%m-%d %H:%MZ")
+    return model_from_text(fit["constants"], f"fit {fit['id']}"), f"fit #{fit['id']} of {when}"
+
+
+def refit_station(store: Store, station: StationConfig, now: float | None = None, use: bool | None = None,
+                  span_days: float | None = None, robust: bool = True) -> dict:
+    """Fit constants to a station's quality-controlled primary record and keep the fit.
+
+    Samples flagged fail (4) or missing (9) never enter the fit (design rule). The fit is
+    put in use when ``use`` (default: when the station's constants come from its history).
+
+    Returns
+    -------
+    dict
+        The fit's row: id, fitted_at, start, end, n, rms, variance_explained, in_use, model.
+
+    Raises
+    ------
+    UserError
+        Too little history, or a fit that fails.
+    """
+    from predictor import harmonic_fit
+
+    now = time.time() if now is None else now
+    end = store.last_time(station.id, "primary")
+    if end is None:
+        raise UserError(f"station {station.id}: no observations in {store.path} to fit")
+    span = (station.fit_span_days if span_days is None else span_days) * 86400
+    obs = store.observations(station.id, "primary", end - span, end)
+    obs = obs[~obs["flag"].isin((4, 9))]
+    have = (obs.index[-1] - obs.index[0]).total_seconds() / 86400 if len(obs) > 1 else 0.0
+    if have < station.fit_min_days:
+        raise UserError(f"station {station.id}: {have:.1f} days of usable history, "
+                        f"stations[].fit_min_days = {station.fit_min_days:g} needed for a fit")
+    try:
+        model = harmonic_fit(obs.index, obs["value"].to_numpy(), robust=robust,
+                             metadata={"station": station.id})
+    except ValueError as exc:
+        raise UserError(f"station {station.id}: fit failed: {exc}") from None
+    md = model.metadata or {}
+    in_use = station.fit_from_history if use is None else use
+    start_t, end_t = int(obs.index[0].timestamp()), int(obs.index[-1].timestamp())
+    fid = store.add_fit(station.id, fitted_at=int(now), start=start_t, end=end_t, n=len(obs),
+                        rms=float(md.get("rms", float("nan"))),
+                        variance_explained=float(md.get("variance_explained", float("nan"))),
+                        constants=model_to_text(model), in_use=in_use, robust=robust)
+    log.info("station %s: fit #%d over %.1f days, rms %.3f m%s", station.id, fid, have,
+             md.get("rms", float("nan")), " (in use)" if in_use else "")
+    return {"id": fid, "fitted_at": int(now), "start": start_t, "end": end_t, "n": len(obs),
+            "rms": md.get("rms"), "variance_explained": md.get("variance_explained"), "in_use": in_use,
+            "model": model}
+
+
+# --------------------------------------------------------------------------- runtime
+
+@dataclass
+class FeedRuntime:
+    name: str
+    sensor: SensorConfig
+    feed: Any
+
+
+@dataclass
+class StationRuntime:
+    cfg: StationConfig
+    model: Any = None
+    model_source: str = ""
+    view: Any = None
+    extremes: pd.DataFrame | None = None
+    extremes_span: tuple[float, float] = (math.inf, -math.inf)
+    history: pd.Series | None = None
+    history_at: float = -math.inf
+    replay_clock: bool = False
+    last_fit_try: float = -math.inf
+    faults_mod: Any = field(default=None, repr=False)
+
+
+class Daemon:
+    """The running monitor: feeds, store, stations and the jobs that drive them."""
+
+    def __init__(self, cfg: Config, store: Store, feeds: list[FeedRuntime] | None = None):
+        self.cfg = cfg
+        self.store = store
+        self.feeds = feeds or []
+        self.stop = threading.Event()
+        self.done = threading.Event()
+        self.empty_polls = 0
+        self.feeds_done_at: float | None = None
+        self.until_exhausted = False
+        self.qc = _optional("monitor.qc")
+        self.diag = _optional("monitor.diagnostics")
+        self.engine = _optional("alerts.engine")
+        self.outbox = _optional("alerts.outbox")
+        self.rules_mod = _optional("alerts.rules")
+        self.stations = {st.id: self._station_runtime(st) for st in cfg.stations}
+        # Replay feeds run on the replayed clock: alert times, outbox back-off and expiry all
+        # follow the data's own time, so a replayed storm reads as it would have live.
+        self.replay_clock = bool(self.stations) and all(rt.replay_clock for rt in self.stations.values())
+        self.data_now: float | None = None
+
+    def _station_runtime(self, st: StationConfig) -> StationRuntime:
+        model, source = load_model(self.store, st)
+        view = None
+        if self.rules_mod is not None and hasattr(self.rules_mod, "StationView"):
+            view = self.rules_mod.StationView(id=st.id, name=st.name, tz=st.tz, datums=dict(st.datums))
+        kinds = [getattr(s.feed, "kind", None) for s in st.sensors.values() if s.feed is not None]
+        rt = StationRuntime(cfg=st, model=model, model_source=source, view=view,
+                            replay_clock=bool(kinds) and all(k == "replay" for k in kinds))
+        log.info("station %s: constants %s", st.id, source)
+        return rt
+
+    # ------------------------------------------------------------------ feeds
+    def open_feeds(self) -> None:
+        """Open every configured feed and restore it from its stored checkpoint."""
+        feeds_mod = _optional("monitor.feeds")
+        for st in self.cfg.stations:
+            for sensor in st.sensors.values():
+                if sensor.feed is None:
+                    continue
+                if feeds_mod is None:
+                    raise UserError("feeds are configured but monitor.feeds is not installed")
+                feed = feeds_mod.open_feed(sensor.feed, sensor.feed_name)
+                feed.restore(self.store.checkpoint(sensor.feed_name))
+                self.feeds.append(FeedRuntime(sensor.feed_name, sensor, feed))
+
+    def close_feeds(self) -> None:
+        for fr in self.feeds:
+            try:
+                fr.feed.close()
+            except Exception:  # closing must not stop the rest from closing
+                log.exception("feed %s: close failed", fr.name)
+
+    def poll(self) -> int:
+        """Poll every feed once; each feed's lines and checkpoint commit together. Returns lines read."""
+        total = 0
+        for fr in self.feeds:
+            if self.stop.is_set():
+                break
+            try:
+                lines = fr.feed.poll()
+                if not lines:
+                    continue
+                res = ingest_lines(self.store, fr.sensor, lines, fr.name, fr.feed.state())
+            except UserError as exc:
+                log.error("feed %s: %s", fr.name, exc)
+                continue
+            except Exception:
+                log.exception("feed %s: poll failed; will retry", fr.name)
+                continue
+            total += len(lines)
+            if res.rejected:
+                log.warning("feed %s: %d line(s) rejected (see 'quaywatch status')", fr.name, res.rejected)
+            log.debug("feed %s: %s", fr.name, res)
+        self.empty_polls = 0 if total else self.empty_polls + 1
+        return total
+
+    def feeds_exhausted(self) -> bool:
+        """All feeds finished (replays played out) or silent for ``daemon.idle_polls`` polls."""
+        if not self.feeds:
+            return True
+        if all(getattr(fr.feed, "exhausted", False) for fr in self.feeds):
+            return self.empty_polls >= 1
+        return self.empty_polls >= self.cfg.daemon.idle_polls
+
+    # ------------------------------------------------------------------ processing
+    def process(self) -> int:
+        """Process new data of every station. Returns the number of stations with new data."""
+        n = 0
+        for rt in self.stations.values():
+            if self.stop.is_set():
+                break
+            try:
+                n += bool(self.process_station(rt))
+            except Exception:
+                log.exception("station %s: processing failed; will retry", rt.cfg.id)
+        return n
+
+    def process_station(self, rt: StationRuntime, now: float | None = None) -> int:
+        """Process a station's data newer than its mark; returns samples processed."""
+        st = rt.cfg
+        levels = [r for r in st.sensors if r != "barometer"]
+        ends = [t for t in (self.store.last_time(st.id, r) for r in levels) if t is not None]
+        if not ends:
+            return 0
+        end_t = max(ends)
+        mark = self.store.get_meta(f"processed.{st.id}")
+        if mark is not None and end_t <= int(mark):
+            return 0
+        if mark is None:
+            starts = [t for t in (self.store.first_time(st.id, r) for r in levels) if t is not None]
+            start_t = min(starts)
+        else:
+            start_t = int(mark) + 1
+        done = 0
+        while start_t <= end_t and not self.stop.is_set():
+            chunk_end = min(end_t, start_t + PROCESS_CHUNK - 1)
+            done += self.process_window(rt, start_t, chunk_end, now)
+            self.store.set_meta(f"processed.{st.id}", str(chunk_end))
+            start_t = chunk_end + 1
+        return done
+
+    def process_window(self, rt: StationRuntime, start_t: int, end_t: int, now: float | None = None) -> int:
+        """The processing pipeline for one station over [start_t, end_t] (data time), in order:
+        quality control, residual and smoothed residual (into ``derived``), skew surge of
+        completed cycles, next high water forecast, alert rules."""
+        st, store = rt.cfg, self.store
+        now = (end_t if rt.replay_clock else time.time()) if now is None else now
+        self.data_now = end_t if self.data_now is None else max(self.data_now, end_t)
+        self._maybe_fit(rt, now)
+        model = rt.model
+
+        # 1. quality control (writes per-test flags and observations.flag)
+        qc_results: dict = {}
+        if self.qc is not None and hasattr(self.qc, "run_station_qc"):
+            try:
+                qc_results = self.qc.run_station_qc(store, st, st.qc, start_t, end_t, model, now=now) or {}
+            except Exception:
+                log.exception("station %s: quality control failed for this window", st.id)
+
+        # 2. residual, smoothed residual, inverse barometer
+        rs = self.cfg.residual
+        lookback = int((rs.median_minutes + rs.mean_minutes) * 60) + REWRITE_BACK
+        obs = store.observations(st.id, "primary", start_t - lookback, end_t)
+        if obs.empty:
+            return 0
+        pred = model.predict(obs.index) if model is not None else None
+        pressure = None
+        if "barometer" in st.sensors:
+            pressure = store.observations(st.id, "barometer", start_t - lookback - 3600, end_t + 3600)["value"]
+        d = R.derive(obs, pred, pressure, rs.median_minutes, rs.mean_minutes, rs.reference_pressure)
+        d = d[d.index >= pd.Timestamp(start_t - REWRITE_BACK, unit="s", tz="UTC")]
+        store.write_derived(st.id, d)
+        new = int((d.index >= pd.Timestamp(start_t, unit="s", tz="UTC")).sum())
+
+        context = None
+        if model is not None:
+            self._ensure_extremes(rt, start_t, end_t)
+            # 3. skew surge, for cycles whose closing low water fell in this window
+            ext = rt.extremes
+            lows = ext[ext["kind"] == "low"]
+            lt = lows["time"].map(pd.Timestamp.timestamp).to_numpy() if len(lows) else np.empty(0)
+            closing = lt[(lt > start_t - REWRITE_BACK) & (lt <= end_t)]
+            if len(closing):
+                a = int(closing.min() - 2 * R.HALF_M2 - 3600)
+                o = store.observations(st.id, "primary", a, end_t)
+                o = o[~o["flag"].isin((4, 9))]["value"]
+                ss = R.skew_surges(o, ext)
+                if len(ss):
+                    store.write_skew_surges(st.id, ss[ss["hw_t"] >= a + 3600])
+            # 4. next high water forecast
+            context = self._forecast(rt, d, end_t)
+
+        # 5. alert rules
+        if self.engine is not None and st.rules and rt.view is not None:
+            ctx = self._alert_context(rt, context, qc_results, now)
+            samples = d[["observed", "predicted", "residual", "smoothed", "flag"]]
+            try:
+                self.engine.evaluate(store.db, rt.view, st.rules, samples, now=now, context=ctx)
+            except Exception:
+                log.exception("station %s: alert rules failed for this window", st.id)
+        return new
+
+    def _ensure_extremes(self, rt: StationRuntime, start_t: float, end_t: float) -> None:
+        lo, hi = rt.extremes_span
+        if rt.extremes is not None and lo <= start_t - 2 * 86400 and hi >= end_t + 2 * 86400:
+            return
+        a, b = start_t - 3 * 86400, max(end_t, start_t + PROCESS_CHUNK) + 10 * 86400
+        rt.extremes = rt.model.high_low(pd.Timestamp(a, unit="s", tz="UTC"), pd.Timestamp(b, unit="s", tz="UTC"))
+        rt.extremes_span = (a, b)
+
+    def _forecast(self, rt: StationRuntime, d: pd.DataFrame, end_t: int) -> dict | None:
+        st, rs = rt.cfg, self.cfg.residual
+        sm = d["smoothed"].dropna()
+        if sm.empty:
+            return None
+        ext = rt.extremes
+        highs = ext[(ext["kind"] == "high") & (ext["time"] > pd.Timestamp(end_t, unit="s", tz="UTC"))]
+        if highs.empty:
+            return None
+        if rt.history is None or end_t - rt.history_at > HISTORY_REFRESH:
+            h = self.store.derived(st.id, end_t - int(rs.history_days * 86400), end_t)["smoothed"].dropna()
+            rt.history = h.resample("10min").mean() if len(h) else h
+            rt.history_at = end_t
+        hw = highs.iloc[0]
+        fc = R.forecast_high_water(sm.index[-1].timestamp(), float(sm.iloc[-1]), hw["time"].timestamp(),
+                                   float(hw["level"]), rt.history, rs.min_history_days)
+        self.store.write_forecast(st.id, fc)
+        return fc
+
+    def _alert_context(self, rt: StationRuntime, fc: dict | None, qc_results: dict, now: float):
+        ctx_cls = getattr(self.engine, "AlertContext", None)
+        if ctx_cls is None:
+            return None
+        hw = None
+        if fc is not None and hasattr(self.engine, "NextHighWater"):
+            unc = None if fc["lower"] is None else (fc["upper"] - fc["lower"]) / 2
+            hw = self.engine.NextHighWater(time=fc["hw_t"], level=fc["forecast"], uncertainty=unc)
+        st = rt.cfg
+        last = {r: self.store.last_time(st.id, r) for r in st.sensors}
+        age = None if last.get("primary") is None else max(0.0, now - last["primary"])
+        faults: list = []
+        if self.diag is not None and hasattr(self.diag, "equipment_faults"):
+            try:
+                flat = {}
+                for sn, part in (qc_results or {}).items():
+                    if "flat" in getattr(part, "columns", ()):
+                        flat[sn] = self.diag.flat_since(part["flat"])
+                faults = self.diag.equipment_faults(now, st.qc, station=st.id, last_sample=last, flat=flat)
+            except Exception:
+                log.exception("station %s: equipment fault check failed", st.id)
+        return ctx_cls(next_high_water=hw, feed_age=age, faults=faults)
+
+    def _maybe_fit(self, rt: StationRuntime, now: float) -> None:
+        """A station fitted from history gets its first fit as soon as it has enough data."""
+        st = rt.cfg
+        if not st.fit_from_history or rt.model is not None or now - rt.last_fit_try < 3600:
+            return
+        rt.last_fit_try = now
+        first, last = self.store.first_time(st.id), self.store.last_time(st.id)
+        if first is None or (last - first) / 86400 < st.fit_min_days:
+            return
+        self.refit(rt, now)
+
+    def refit(self, rt: StationRuntime, now: float | None = None) -> None:
+        try:
+            fit = refit_station(self.store, rt.cfg, now=now, use=True)
+        except UserError as exc:
+            log.warning("%s", exc)
+            return
+        rt.model, rt.model_source = load_model(self.store, rt.cfg)
+        rt.extremes, rt.extremes_span = None, (math.inf, -math.inf)
+
+    def refit_due(self) -> None:
+        """Refit stations whose constants come from their history, every ``daemon.refit_days``."""
+        days = self.cfg.daemon.refit_days
+        for rt in self.stations.values():
+            if self.stop.is_set() or not rt.cfg.fit_from_history:
+                continue
+            fit = self.store.fit_in_use(rt.cfg.id)
+            if fit is not None and not rt.model_source.startswith(f"fit #{fit['id']} "):
+                # a fit put in use from the command line ('quaywatch refit')
+                rt.model, rt.model_source = load_model(self.store, rt.cfg)
+                rt.extremes, rt.extremes_span = None, (math.inf, -math.inf)
+                log.info("station %s: constants now %s", rt.cfg.id, rt.model_source)
+            if fit is None or (days > 0 and time.time() - fit["fitted_at"] >= days * 86400):
+                self.refit(rt)
+
+    # ------------------------------------------------------------------ outbox and reports
+    def outbox_pending(self) -> int:
+        if self.cfg.mail is None:
+            return 0
+        try:
+            return int(self.store.conn.execute(
+                "SELECT count(*) FROM outbox WHERE status NOT IN ('sent', 'expired')").fetchone()[0])
+        except Exception:  # no outbox table yet: nothing queued
+            return 0
+
+    def deliver(self) -> None:
+        if self.cfg.mail is None or self.outbox is None:
+            return
+        try:
+            now = self.data_now if (self.replay_clock and self.data_now is not None) else None
+            summary = self.outbox.deliver_due(self.store.db, self.cfg.mail, now)
+            log.debug("outbox: %s", summary)
+        except Exception:
+            log.exception("outbox delivery failed; will retry")
+
+    def reports(self) -> None:
+        """Write due daily reports through the report writer, when installed."""
+        mod = _optional("monitor.cli_report")
+        fn = getattr(mod, "write_due_reports", None) if mod is not None else None
+        if fn is None or self.cfg.reports is None:
+            return
+        try:
+            fn(self.cfg, self.store)
+        except Exception:
+            log.exception("daily reports failed; will retry")
+
+    # ------------------------------------------------------------------ jobs
+    def job_poll(self) -> None:
+        self.poll()
+
+    def job_process(self) -> None:
+        n = self.process()
+        if self.until_exhausted and n == 0 and self.feeds_exhausted():
+            if self.feeds_done_at is None:
+                self.feeds_done_at = time.monotonic()
+                self.deliver()
+            pending = self.outbox_pending()
+            if pending == 0 or time.monotonic() - self.feeds_done_at > OUTBOX_DRAIN_WAIT:
+                if pending:
+                    log.warning("leaving %d message(s) queued in the outbox for the next run", pending)
+                log.info("feeds exhausted and processing caught up: stopping")
+                self.done.set()
+        else:
+            self.feeds_done_at = None
+
+    def run(self, until_exhausted: bool = False) -> int:
+        """Run the jobs until SIGTERM/SIGINT (or, with ``until_exhausted``, until the feeds end)."""
+        from apscheduler.executors.pool import ThreadPoolExecutor
+        from apscheduler.schedulers.background import BackgroundScheduler
+
+        self.until_exhausted = until_exhausted
+        d = self.cfg.daemon
+        sched = BackgroundScheduler(executors={"default": ThreadPoolExecutor(1)},
+                                    job_defaults={"coalesce": True, "max_instances": 1,
+                                                  "misfire_grace_time": None},
+                                    timezone="UTC")
+        sched.add_job(self.job_poll, "interval", seconds=d.poll_seconds, id="poll", next_run_time=_now_dt())
+        sched.add_job(self.job_process, "interval", seconds=d.process_seconds, id="process")
+        sched.add_job(self.deliver, "interval", seconds=d.outbox_seconds, id="outbox")
+        sched.add_job(self.reports, "interval", minutes=10, id="reports")
+        sched.add_job(self.refit_due, "interval", hours=1, id="refit", next_run_time=_now_dt())
+
+        def on_signal(signum, _frame):
+            log.info("signal %d: finishing the current batch, then stopping", signum)
+            self.stop.set()
+
+        old = {s: signal.signal(s, on_signal) for s in (signal.SIGTERM, signal.SIGINT)}
+        sched.start()
+        log.info("quaywatch daemon running (pid %d, store %s, %d feed(s), %d station(s))",
+                 os.getpid(), self.store.path, len(self.feeds), len(self.stations))
+        try:
+            while not self.stop.is_set() and not self.done.is_set():
+                self.stop.wait(0.2)
+        finally:
+            sched.shutdown(wait=True)  # lets the job in hand finish its batch
+            for s, h in old.items():
+                signal.signal(s, h)
+        log.info("quaywatch daemon stopped")
+        return 0
+
+
+def _now_dt():
+    import datetime as dt
+
+    return dt.datetime.now(dt.timezone.utc)
+
+
+# --------------------------------------------------------------------------- logging and entry
+
+def setup_logging(cfg: Config, verbose: int = 0) -> None:
+    """Log to stderr (set up by the command line) and, if configured, a rotating file."""
+    root = logging.getLogger()
+    level = getattr(logging, cfg.logging.level.upper(), logging.INFO)
+    if verbose:
+        level = min(level, logging.DEBUG if verbose > 1 else logging.INFO)
+    root.setLevel(level)
+    # the scheduler's own per-job lines drown the monitor's; show them only with -vv
+    logging.getLogger("apscheduler").setLevel(logging.DEBUG if verbose > 1 else logging.ERROR)
+    fmt = logging.Formatter("%(asctime)s %(levelname)s %(name)s: %(message)s")
+    if not root.handlers:
+        h = logging.StreamHandler()
+        h.setFormatter(fmt)
+        root.addHandler(h)
+    if cfg.logging.file is not None:
+        try:
+            cfg.logging.file.parent.mkdir(parents=True, exist_ok=True)
+            fh = logging.handlers.RotatingFileHandler(cfg.logging.file, maxBytes=cfg.logging.max_bytes,
+                                                      backupCount=cfg.logging.backups, encoding="utf-8")
+        except OSError as exc:
+            raise UserError(f"logging.file: cannot open {cfg.logging.file} ({exc})") from None
+        fh.setFormatter(fmt)
+        root.addHandler(fh)
+
+
+def run_daemon(cfg: Config, until_exhausted: bool = False, verbose: int = 0) -> int:
+    """``quaywatch run``: lock the store, open the feeds, run the jobs, close everything."""
+    setup_logging(cfg, verbose)
+    store = Store.open(cfg.store_path, lock=True)
+    daemon = None
+    try:
+        daemon = Daemon(cfg, store)
+        daemon.open_feeds()
+        return daemon.run(until_exhausted=until_exhausted)
+    finally:
+        if daemon is not None:
+            daemon.close_feeds()
+        store.close()

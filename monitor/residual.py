@@ -1,0 +1,278 @@
+"""The live residual: observed minus predicted tide, its smoothed form, skew surge,
+the next high water forecast, and the inverse-barometer part of the residual.
+
+Pure functions on numpy/pandas (UTC DatetimeIndex, metres); the daemon reads the store,
+calls these, and writes table ``derived`` (plus ``skew_surges`` and ``hw_forecasts``).
+"""
+from __future__ import annotations
+
+import numpy as np
+import pandas as pd
+
+# QARTOD flags (U.S. IOOS 2021): 4 fail and 9 missing never enter the smoothed residual.
+_UNUSABLE = (4, 9)
+#: Inverse-barometer response [m/hPa]: about 1 cm of sea level per hPa (Pugh & Woodworth 2014,
+#: ch. 7); the hydrostatic value 1/(rho g) with rho = 1025 kg/m^3 is 0.0099 m/hPa.
+IB_M_PER_HPA = 0.01
+#: Standard sea-level pressure [hPa] (ICAO standard atmosphere), the default reference.
+REFERENCE_HPA = 1013.25
+#: Half the M2 period [s] (12.4206 h / 2): the half-width of a tidal cycle when a
+#: neighbouring low water is not known.
+HALF_M2 = 12.420601 * 3600 / 2
+
+
+def residual(observed: np.ndarray, predicted: np.ndarray) -> np.ndarray:
+    """Residual = observed - predicted [m].
+
+    References
+    ----------
+    Pugh, D., Woodworth, P. (2014). Sea-Level Science, ch. 6 (non-tidal residual).
+    """
+    return np.asarray(observed, dtype=float) - np.asarray(predicted, dtype=float)
+
+
+def smooth_residual(resid: pd.Series, median_minutes: float = 30.0, mean_minutes: float = 10.0,
+                    usable: np.ndarray | None = None) -> pd.Series:
+    """Smoothed residual for alerting: a trailing running median, then a trailing running mean.
+
+    Trailing (causal) windows, so a live value never waits for future samples: the median
+    over the last ``median_minutes`` removes single-sample spikes, the mean over the last
+    ``mean_minutes`` of those medians removes the remaining sensor noise. A step change
+    shows fully after about ``median_minutes / 2 + mean_minutes``.
+
+    Parameters
+    ----------
+    resid : Series
+        Residual [m], UTC DatetimeIndex in time order.
+    median_minutes, mean_minutes : float
+        Window lengths [min]; ``mean_minutes = 0`` skips the mean.
+    usable : array of bool, optional
+        Samples that may enter (QC flag not fail or missing); others are ignored and get
+        the smoothed value of the usable samples before them.
+
+    Returns
+    -------
+    Series
+        Smoothed residual [m] on the same index (NaN before the first usable sample).
+
+    References
+    ----------
+    Tukey, J. W. (1977). Exploratory Data Analysis (running medians); common practice for
+    de-spiking tide-gauge residuals, no single source.
+    """
+    if resid.empty:
+        return resid.astype(float)
+    r = resid.astype(float)
+    if usable is not None:
+        r = r.where(np.asarray(usable, dtype=bool))
+    valid = r.dropna()
+    if valid.empty:
+        return pd.Series(np.nan, index=resid.index, name="smoothed")
+    med = valid.rolling(pd.Timedelta(minutes=median_minutes), min_periods=1).median()
+    if mean_minutes > 0:
+        med = med.rolling(pd.Timedelta(minutes=mean_minutes), min_periods=1).mean()
+    out = med.reindex(resid.index.union(med.index)).ffill().reindex(resid.index)
+    # a value carried forward over a long gap is not a live value
+    last_t = pd.Series(valid.index, index=valid.index).reindex(resid.index.union(valid.index)).ffill()
+    last_t = last_t.reindex(resid.index)
+    stale = (resid.index - pd.DatetimeIndex(last_t)) > pd.Timedelta(minutes=max(median_minutes, 1.0))
+    out[np.asarray(stale, dtype=bool)] = np.nan
+    out.name = "smoothed"
+    return out
+
+
+def inverse_barometer(pressure_hpa: np.ndarray, reference_hpa: float = REFERENCE_HPA,
+                      m_per_hpa: float = IB_M_PER_HPA) -> np.ndarray:
+    """Inverse-barometer sea level [m]: -m_per_hpa x (pressure - reference).
+
+    Parameters
+    ----------
+    pressure_hpa : array
+        Air pressure at sea level [hPa].
+    reference_hpa : float
+        Reference pressure [hPa] (default 1013.25, the standard atmosphere).
+    m_per_hpa : float
+        Response [m/hPa] (default 0.01: about -1 cm per hPa).
+
+    References
+    ----------
+    Pugh, D., Woodworth, P. (2014). Sea-Level Science, Cambridge University Press, ch. 7
+    (the inverted barometer effect).
+    """
+    return -m_per_hpa * (np.asarray(pressure_hpa, dtype=float) - reference_hpa)
+
+
+def pressure_at(times: pd.DatetimeIndex, pressure: pd.Series, max_gap_s: float = 3600.0) -> np.ndarray:
+    """Pressure [hPa] linearly interpolated to ``times``; NaN farther than ``max_gap_s``
+    from a barometer sample or outside the barometer record."""
+    if pressure is None or pressure.empty or len(times) == 0:
+        return np.full(len(times), np.nan)
+    p = pressure.dropna()
+    if p.empty:
+        return np.full(len(times), np.nan)
+    tp = _secs(p.index)
+    tt = _secs(times)
+    out = np.interp(tt, tp, p.to_numpy(dtype=float), left=np.nan, right=np.nan)
+    j = np.searchsorted(tp, tt)
+    left = tp[np.clip(j - 1, 0, len(tp) - 1)]
+    right = tp[np.clip(j, 0, len(tp) - 1)]
+    exact = right == tt
+    out[(right - left > max_gap_s) & ~exact] = np.nan
+    return out
+
+
+def derive(observed: pd.DataFrame, predicted: np.ndarray | None, pressure: pd.Series | None = None,
+           median_minutes: float = 30.0, mean_minutes: float = 10.0,
+           reference_hpa: float = REFERENCE_HPA) -> pd.DataFrame:
+    """The derived series of a station's primary sensor.
+
+    Parameters
+    ----------
+    observed : DataFrame
+        Index UTC times; ``value`` [m, station datum] and ``flag`` (aggregate QARTOD).
+    predicted : array or None
+        Predicted tide at the same times [m, station datum]; None without a model.
+    pressure : Series, optional
+        Barometer [hPa], UTC index.
+
+    Returns
+    -------
+    DataFrame
+        ``observed, predicted, residual, smoothed, barometric`` [m] and ``flag``.
+    """
+    idx = observed.index
+    obs = observed["value"].to_numpy(dtype=float)
+    flag = observed["flag"].to_numpy() if "flag" in observed else np.full(len(idx), 2)
+    pred = np.full(len(idx), np.nan) if predicted is None else np.asarray(predicted, dtype=float)
+    res = residual(obs, pred)
+    usable = ~np.isin(flag, _UNUSABLE) & np.isfinite(res)
+    sm = smooth_residual(pd.Series(res, index=idx), median_minutes, mean_minutes, usable)
+    ib = inverse_barometer(pressure_at(idx, pressure), reference_hpa) if pressure is not None \
+        else np.full(len(idx), np.nan)
+    return pd.DataFrame({"observed": obs, "predicted": pred, "residual": res, "smoothed": sm.to_numpy(),
+                         "barometric": ib, "flag": flag}, index=idx)
+
+
+def skew_surges(observed: pd.Series, extremes: pd.DataFrame, max_gap_s: float = 3600.0) -> pd.DataFrame:
+    """Skew surge of every complete tidal cycle.
+
+    A cycle runs from the predicted low water before a predicted high water to the one
+    after it (half an M2 period either side when a low water is not given). It is complete
+    when the observations reach its end, start within ``max_gap_s`` of its start, and have
+    no gap longer than ``max_gap_s`` inside it. Skew surge = highest observed level within
+    the cycle - the predicted high water (whatever their times).
+
+    Parameters
+    ----------
+    observed : Series
+        Usable observed levels [m], UTC index (fail and missing samples removed).
+    extremes : DataFrame
+        Predicted turning points: ``time`` (UTC), ``level`` [m], ``kind`` ('high'/'low').
+
+    Returns
+    -------
+    DataFrame
+        ``hw_t`` [s], ``predicted_high`` [m], ``observed_high`` [m], ``observed_t`` [s],
+        ``skew_surge`` [m]; one row per complete cycle.
+
+    References
+    ----------
+    Williams, J., Horsburgh, K. J., Williams, J. A., Proctor, R. N. F. (2016). Tide and skew
+    surge independence: new insights for flood risk. Geophys. Res. Lett. 43.
+    """
+    cols = ["hw_t", "predicted_high", "observed_high", "observed_t", "skew_surge"]
+    obs = observed.dropna()
+    if obs.empty or extremes is None or extremes.empty:
+        return pd.DataFrame(columns=cols)
+    t_obs = _secs(obs.index)
+    v_obs = obs.to_numpy(dtype=float)
+    ext_t = _secs(pd.DatetimeIndex(extremes["time"]))
+    kinds = extremes["kind"].to_numpy()
+    levels = extremes["level"].to_numpy(dtype=float)
+    lows = ext_t[kinds == "low"]
+    rows = []
+    for tk, lv in zip(ext_t[kinds == "high"], levels[kinds == "high"]):
+        before = lows[lows < tk]
+        after = lows[lows > tk]
+        start = before[-1] if len(before) and tk - before[-1] < 2 * HALF_M2 else tk - HALF_M2
+        end = after[0] if len(after) and after[0] - tk < 2 * HALF_M2 else tk + HALF_M2
+        i0, i1 = np.searchsorted(t_obs, [start, end], side="left")
+        i1 = np.searchsorted(t_obs, end, side="right")
+        if i1 - i0 < 2 or t_obs[-1] < end:
+            continue
+        seg = t_obs[i0:i1]
+        edges = np.concatenate([[start], seg, [end]])
+        if np.max(np.diff(edges)) > max_gap_s:
+            continue
+        k = i0 + int(np.argmax(v_obs[i0:i1]))
+        rows.append((int(round(tk)), float(lv), float(v_obs[k]), int(t_obs[k]), float(v_obs[k] - lv)))
+    return pd.DataFrame(rows, columns=cols)
+
+
+def forecast_high_water(now_t: float, residual_now: float, hw_t: float, hw_level: float,
+                        history: pd.Series, min_history_days: float = 14.0,
+                        coverage: float = 0.90, grid_minutes: float = 10.0) -> dict:
+    """Next high water forecast: predicted high water + the current residual (persisted),
+    with a range from the station's own history.
+
+    The range is the spread of the residual's change over the same lead time in the
+    history: the ``(1 - coverage)/2`` and ``(1 + coverage)/2`` quantiles of
+    ``r(t + lead) - r(t)`` over every t, added to the forecast. With less history than
+    ``min_history_days`` (or too few pairs) no range is given and the note says so.
+
+    Parameters
+    ----------
+    now_t : float
+        Time of the current residual [s, Unix UTC].
+    residual_now : float
+        Current (smoothed) residual [m].
+    hw_t, hw_level : float
+        Time [s] and level [m] of the next predicted high water.
+    history : Series
+        Past (smoothed) residual [m], UTC index.
+
+    Returns
+    -------
+    dict
+        ``hw_t, made_t, predicted_high, residual_now, forecast, lower, upper, coverage``
+        (lower/upper/coverage None when history is too short) and ``note`` (plain words).
+
+    References
+    ----------
+    Persistence forecast of the surge: common practice, no source. Empirical quantiles of
+    the residual's change: Hyndman, R. J., Fan, Y. (1996), Sample quantiles in statistical
+    packages, Am. Stat. 50 (type 7, numpy's default).
+    """
+    lead = max(0.0, float(hw_t) - float(now_t))
+    fc = float(hw_level) + float(residual_now)
+    out = {"hw_t": int(round(hw_t)), "made_t": int(round(now_t)), "predicted_high": float(hw_level),
+           "residual_now": float(residual_now), "forecast": fc, "lower": None, "upper": None,
+           "coverage": None}
+    h = history.dropna() if history is not None else pd.Series(dtype=float)
+    span_days = 0.0 if len(h) < 2 else (_secs(h.index[-1:])[0] - _secs(h.index[:1])[0]) / 86400
+    lead_txt = f"{lead / 3600:.1f} h"
+    if span_days < min_history_days:
+        out["note"] = (f"no uncertainty range: only {span_days:.1f} days of residual history, "
+                       f"{min_history_days:g} needed; forecast = predicted high water + current surge")
+        return out
+    grid = h.resample(f"{grid_minutes:g}min").mean()
+    steps = int(round(lead / (grid_minutes * 60)))
+    vals = grid.to_numpy(dtype=float)
+    diff = vals[steps:] - vals[:len(vals) - steps] if steps > 0 else np.zeros(np.isfinite(vals).sum())
+    diff = diff[np.isfinite(diff)]
+    if len(diff) < 100:
+        out["note"] = (f"no uncertainty range: only {len(diff)} pairs of residual {lead_txt} apart in the "
+                       f"history; forecast = predicted high water + current surge")
+        return out
+    q = np.quantile(diff, [(1 - coverage) / 2, (1 + coverage) / 2])
+    out.update(lower=fc + float(q[0]), upper=fc + float(q[1]), coverage=coverage)
+    out["note"] = (f"{coverage:.0%} range from how the residual changed over {lead_txt} in "
+                   f"{span_days:.0f} days of this station's history")
+    return out
+
+
+def _secs(index: pd.DatetimeIndex) -> np.ndarray:
+    idx = pd.DatetimeIndex(index)
+    if idx.tz is not None:
+        idx = idx.tz_convert("UTC").tz_localize(None)
+    return idx.to_numpy(dtype="datetime64[ns]").astype(np.int64) / 1e9
