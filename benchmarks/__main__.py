@@ -1,0 +1,49 @@
+"""Run every ``benchmarks/bench_*.py`` ``main()`` in name order.
+
+A failing benchmark is reported and the rest still run; the exit status is non-zero
+if any failed.  ``python -m benchmarks NAME ...`` runs only the named ones
+(``predict`` or ``bench_predict``).
+"""
+from __future__ import annotations
+
+import importlib
+import sys
+import time
+import traceback
+from pathlib import Path
+
+
+def _names(selected: list[str]) -> list[str]:
+    here = Path(__file__).resolve().parent
+    names = sorted(p.stem for p in here.glob("bench_*.py"))
+    if selected:
+        wanted = {s if s.startswith("bench_") else f"bench_{s}" for s in selected}
+        unknown = wanted - set(names)
+        if unknown:
+            raise SystemExit(f"no such benchmark: {', '.join(sorted(unknown))} (have: {', '.join(names)})")
+        names = [n for n in names if n in wanted]
+    return names
+
+
+def main(argv: list[str] | None = None) -> int:
+    failed = []
+    for name in _names(list(sys.argv[1:] if argv is None else argv)):
+        print(f"== {name}", flush=True)
+        t0 = time.perf_counter()
+        try:
+            module = importlib.import_module(f"benchmarks.{name}")
+            module.main()
+        except Exception:  # one failure must not hide the others
+            traceback.print_exc()
+            failed.append(name)
+            print(f"-- {name} FAILED", flush=True)
+        else:
+            print(f"-- {name} done in {time.perf_counter() - t0:.1f} s", flush=True)
+    if failed:
+        print(f"failed: {', '.join(failed)}", file=sys.stderr)
+        return 1
+    return 0
+
+
+if __name__ == "__main__":
+    sys.exit(main())
