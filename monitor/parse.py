@@ -205,7 +205,7 @@ def _parse_lines(texts, fmt, received, linenos) -> ParsedLines:
     empty = tarr == ""
     recv_sel = recv[idx_a]
     if empty.any():
-        t[empty] = np.round(recv_sel[empty]).astype(np.int64)
+        t[empty] = np.floor(recv_sel[empty] + 0.5).astype(np.int64)
         source[empty] = "receive"
     has = ~empty
     if has.any():
@@ -244,7 +244,7 @@ def _parse_times(tarr: np.ndarray, fmt: LineFormat) -> tuple[np.ndarray, dict[in
         if fmt.time_format == "epoch_ms":
             num = num / 1000.0
         ok = np.isfinite(num) & (num >= _T_MIN) & (num <= _T_MAX)
-        out[ok] = np.round(num[ok]).astype(np.int64)
+        out[ok] = np.floor(num[ok] + 0.5).astype(np.int64)
         for j in np.flatnonzero(~ok):
             what = "seconds" if fmt.time_format == "epoch" else "milliseconds"
             if np.isfinite(num[j]):

@@ -1,0 +1,166 @@
+"""Configuration loading and validation (monitor.config)."""
+from __future__ import annotations
+
+import copy
+import math
+import tomllib
+from pathlib import Path
+
+import pytest
+from hypothesis import HealthCheck, given, settings
+from hypothesis import strategies as st
+
+from monitor.config import Config, load_config, validate_config
+from monitor.errors import UserError
+
+ROOT = Path(__file__).resolve().parent.parent
+
+
+def base_raw() -> dict:
+    """A small valid configuration (invented station)."""
+    return {
+        "store": {"path": "q.db"},
+        "stations": [{
+            "id": "testport", "name": "Test Port (invented)", "latitude": 50.0, "longitude": -4.0,
+            "tz": "Europe/Lisbon", "constants": "history", "datums": {"chart": -1.5},
+            "sensors": {"primary": {"units": "cm", "offset": 0.25,
+                                    "line": {"delimiter": ",", "time_column": 1, "value_column": 2}}},
+        }],
+    }
+
+
+def test_example_configuration_is_valid():
+    cfg = load_config(ROOT / "config.example.toml")
+    assert isinstance(cfg, Config)
+    assert cfg.stations[0].datums["chart"] == pytest.approx(1.0)
+
+
+def test_units_become_a_scale_factor_and_offset_is_kept():
+    cfg, errors = validate_config(base_raw(), "/tmp")
+    assert errors == []
+    fmt = cfg.stations[0].primary.format
+    assert fmt.scale == 0.01 and fmt.offset == 0.25
+
+
+def test_several_problems_are_listed_at_once_with_key_paths():
+    raw = base_raw()
+    raw["colour"] = "blue"                                   # unknown key
+    raw["stations"][0]["latitude"] = 123.0                   # impossible value
+    raw["stations"][0]["tz"] = 5                             # wrong type
+    del raw["stations"][0]["longitude"]                      # missing required key
+    raw["stations"][0]["sensors"]["primary"]["unit"] = "m"   # misspelt key
+    cfg, errors = validate_config(raw, "/tmp")
+    assert cfg is None
+    text = "\n".join(errors)
+    assert "colour: unknown key" in text
+    assert "stations[0].latitude: expected degrees from -90 to 90" in text
+    assert "stations[0].tz: expected an IANA time zone" in text
+    assert "stations[0].longitude: missing" in text
+    assert "stations[0].sensors.primary.unit: unknown key (did you mean 'units'?)" in text
+    assert len(errors) == 5
+
+
+def test_load_config_raises_one_user_error_listing_every_problem(tmp_path):
+    path = tmp_path / "bad.toml"
+    path.write_text('[daemon]\npoll_seconds = -1\nidle_polls = "x"\n')
+    with pytest.raises(UserError) as exc:
+        load_config(path)
+    msg = str(exc.value)
+    assert "daemon.poll_seconds" in msg and "daemon.idle_polls" in msg and "stations: missing" in msg
+
+
+def test_bad_toml_names_the_file(tmp_path):
+    path = tmp_path / "broken.toml"
+    path.write_text("[store\npath = 1\n")
+    with pytest.raises(UserError, match="broken.toml: not valid TOML"):
+        load_config(path)
+
+
+def test_relative_paths_resolve_against_the_config_folder(tmp_path):
+    (tmp_path / "sub").mkdir()
+    (tmp_path / "sub" / "c.toml").write_text("mean = 0.0\n")
+    raw = base_raw()
+    raw["stations"][0]["constants"] = "sub/c.toml"
+    raw["logging"] = {"file": "logs/q.log"}
+    cfg, errors = validate_config(raw, tmp_path)
+    assert errors == []
+    assert cfg.store_path == tmp_path / "q.db"
+    assert cfg.stations[0].constants == tmp_path / "sub" / "c.toml"
+    assert cfg.logging.file == tmp_path / "logs" / "q.log"
+
+
+def test_missing_constants_file_is_reported(tmp_path):
+    raw = base_raw()
+    raw["stations"][0]["constants"] = "nowhere.toml"
+    _, errors = validate_config(raw, tmp_path)
+    assert any(e.startswith("stations[0].constants: file") for e in errors)
+
+
+def test_duplicate_station_ids_are_refused():
+    raw = base_raw()
+    raw["stations"].append(copy.deepcopy(raw["stations"][0]))
+    _, errors = validate_config(raw, "/tmp")
+    assert errors == ["stations[1].id: 'testport' is used by an earlier station; ids must be unique"]
+
+
+# -- property tests: any TOML-ish value gives a Config or messages, never an exception
+
+toml_scalars = st.one_of(
+    st.none(), st.booleans(), st.integers(min_value=-2**63, max_value=2**63 - 1),
+    st.floats(allow_nan=True, allow_infinity=True), st.text(max_size=20),
+    st.sampled_from(["m", "cm", "ft", "hPa", "iso", "epoch", "whitespace", "history", "UTC", "Europe/Dublin",
+                     "primary", "", "../../etc", "chart"]),
+)
+toml_values = st.recursive(
+    toml_scalars,
+    lambda inner: st.one_of(st.lists(inner, max_size=4),
+                            st.dictionaries(st.text(max_size=12), inner, max_size=4)),
+    max_leaves=12,
+)
+KEYS = ["store", "daemon", "logging", "residual", "stations", "mail", "reports", "id", "name", "latitude",
+        "longitude", "tz", "datums", "constants", "sensors", "primary", "backup", "barometer", "units",
+        "offset", "line", "feed", "time_column", "value_column", "delimiter", "chart", "qc", "rules", "kind",
+        "path"]
+
+
+def _paths(obj, prefix=()):
+    yield prefix
+    if isinstance(obj, dict):
+        for k, v in obj.items():
+            yield from _paths(v, prefix + (k,))
+    elif isinstance(obj, list):
+        for i, v in enumerate(obj):
+            yield from _paths(v, prefix + (i,))
+
+
+def _outcome_is_well_formed(result):
+    cfg, errors = result
+    assert isinstance(errors, list)
+    if cfg is None:
+        assert errors and all(isinstance(e, str) and e for e in errors)
+    else:
+        assert isinstance(cfg, Config) and errors == []
+
+
+@settings(max_examples=150, deadline=None, suppress_health_check=[HealthCheck.too_slow])
+@given(data=st.data())
+def test_mutated_configuration_never_crashes(data, tmp_path_factory):
+    raw = base_raw()
+    paths = [p for p in _paths(raw) if p]
+    for _ in range(data.draw(st.integers(1, 3))):
+        path = data.draw(st.sampled_from(paths))
+        parent = raw
+        for k in path[:-1]:
+            parent = parent[k]
+        if data.draw(st.booleans()):
+            parent[path[-1]] = data.draw(toml_values)
+        elif isinstance(parent, dict):
+            parent[data.draw(st.sampled_from(KEYS))] = data.draw(toml_values)
+        paths = [p for p in _paths(raw) if p]
+    _outcome_is_well_formed(validate_config(raw, "/tmp"))
+
+
+@settings(max_examples=150, deadline=None)
+@given(raw=st.dictionaries(st.sampled_from(KEYS) | st.text(max_size=8), toml_values, max_size=6))
+def test_arbitrary_tables_never_crash(raw):
+    _outcome_is_well_formed(validate_config(raw, "/tmp"))

@@ -1,0 +1,123 @@
+"""Live residual, smoothing, skew surge, forecast and inverse barometer (monitor.residual)."""
+from __future__ import annotations
+
+import numpy as np
+import pandas as pd
+import pytest
+
+from monitor import residual as R
+
+mm = 1e-3
+minute = 60
+hour = 3600
+M2_PERIOD = 12.4206012 * hour  # 360 / 28.9841042 deg/h (Schureman 1958, table 2)
+
+
+def _index(n, step_min=1, start="2025-01-01"):
+    return pd.date_range(start, periods=n, freq=f"{step_min}min", tz="UTC")
+
+
+def test_inverse_barometer_is_minus_one_centimetre_per_hectopascal():
+    # Pugh & Woodworth (2014), ch. 7: about -1 cm per hPa above the reference
+    assert R.inverse_barometer(1023.25) == pytest.approx(-0.10, abs=0.01 * mm)
+    assert R.inverse_barometer(1003.25) == pytest.approx(+0.10, abs=0.01 * mm)
+
+
+def test_inverse_barometer_agrees_with_hydrostatic_balance():
+    # 1 / (rho g) with rho = 1025 kg/m^3 (sea water) and g = 9.80665 m/s^2 (standard gravity):
+    # 100 Pa / (1025 * 9.80665) = 9.95 mm per hPa; our 10 mm/hPa is within 0.1 mm/hPa
+    hydro = 100 / (1025 * 9.80665)
+    assert -R.inverse_barometer(1014.25) == pytest.approx(hydro, abs=0.1 * mm)
+
+
+def test_residual_is_observed_minus_predicted():
+    assert R.residual([3.0, 2.5], [2.75, 2.75]) == pytest.approx([0.25, -0.25])
+
+
+def test_smoothing_removes_a_single_sample_spike():
+    r = pd.Series(0.2, index=_index(120))
+    r.iloc[60] = 3.0
+    sm = R.smooth_residual(r, 30, 10)
+    assert sm.max() == pytest.approx(0.2, abs=0.1 * mm)
+
+
+def test_smoothing_follows_a_step_after_its_windows():
+    r = pd.Series(np.r_[np.zeros(60), np.full(120, 0.5)], index=_index(180))
+    sm = R.smooth_residual(r, 30, 10)
+    assert sm.iloc[59] == pytest.approx(0.0) and sm.iloc[60 + 15 + 10 + 1] == pytest.approx(0.5)
+
+
+def test_smoothing_is_causal():
+    r = pd.Series(np.sin(np.arange(200) / 7.0), index=_index(200))
+    full = R.smooth_residual(r, 30, 10)
+    part = R.smooth_residual(r.iloc[:100], 30, 10)
+    assert np.allclose(full.iloc[:100], part)
+
+
+def test_failed_samples_do_not_enter_the_smoothed_residual():
+    r = pd.Series(0.1, index=_index(60))
+    r.iloc[30:40] = 5.0
+    usable = np.ones(60, bool)
+    usable[30:40] = False
+    assert R.smooth_residual(r, 30, 10, usable).max() == pytest.approx(0.1)
+
+
+def _tide(t_s, amp=1.0):
+    return amp * np.cos(2 * np.pi * t_s / M2_PERIOD)
+
+
+def _extremes(t0, t1):
+    k = np.arange(np.ceil(t0 / (M2_PERIOD / 2)), np.floor(t1 / (M2_PERIOD / 2)) + 1)
+    t = k * M2_PERIOD / 2
+    return pd.DataFrame({"time": pd.to_datetime(t, unit="s", utc=True), "level": np.where(k % 2 == 0, 1.0, -1.0),
+                         "kind": np.where(k % 2 == 0, "high", "low")})
+
+
+def test_skew_surge_of_a_shifted_raised_tide():
+    # Definition (Williams et al. 2016): highest observed level in the cycle minus predicted high water,
+    # whatever the timing. A tide raised by 0.3 m and 40 min late has a skew surge of 0.3 m.
+    t = np.arange(0, 3 * M2_PERIOD, 60.0)
+    obs = pd.Series(_tide(t - 40 * minute) + 0.3, index=pd.to_datetime(t, unit="s", utc=True))
+    ss = R.skew_surges(obs, _extremes(0, 3 * M2_PERIOD))
+    assert len(ss) >= 1
+    assert ss["skew_surge"].to_numpy() == pytest.approx(0.3, abs=1 * mm)
+
+
+def test_incomplete_cycle_has_no_skew_surge():
+    t = np.arange(0, M2_PERIOD * 1.2, 60.0)  # ends before the low water that closes the second cycle
+    obs = pd.Series(_tide(t), index=pd.to_datetime(t, unit="s", utc=True))
+    ss = R.skew_surges(obs, _extremes(0, 3 * M2_PERIOD))
+    assert all(ss["hw_t"] < M2_PERIOD)
+
+
+def test_cycle_with_a_long_gap_has_no_skew_surge():
+    t = np.arange(0, 3 * M2_PERIOD, 60.0)
+    keep = (t < M2_PERIOD - 2 * hour) | (t > M2_PERIOD + 2 * hour)
+    obs = pd.Series(_tide(t[keep]), index=pd.to_datetime(t[keep], unit="s", utc=True))
+    ss = R.skew_surges(obs, _extremes(0, 3 * M2_PERIOD))
+    assert not np.any(np.isclose(ss["hw_t"], round(2 * M2_PERIOD / 2)))
+
+
+def test_forecast_without_enough_history_says_so():
+    hist = pd.Series(0.1, index=_index(3 * 144, 10))  # three days
+    fc = R.forecast_high_water(0, 0.4, 3 * hour, 2.0, hist, min_history_days=14)
+    assert fc["forecast"] == pytest.approx(2.4) and fc["lower"] is None
+    assert "only 3.0 days" in fc["note"]
+
+
+def test_forecast_range_is_the_quantiles_of_the_residual_change():
+    rng = np.random.default_rng(1)
+    n = 60 * 144
+    hist = pd.Series(np.cumsum(rng.normal(0, 0.01, n)), index=_index(n, 10))
+    fc = R.forecast_high_water(0, 0.2, 2 * hour, 2.0, hist, min_history_days=14, coverage=0.9)
+    d = hist.to_numpy()[12:] - hist.to_numpy()[:-12]
+    lo, hi = np.quantile(d, [0.05, 0.95])  # numpy quantile, type 7 (Hyndman & Fan 1996)
+    assert fc["lower"] == pytest.approx(2.2 + lo, abs=0.01 * mm) and fc["upper"] == pytest.approx(2.2 + hi, abs=0.01 * mm)
+
+
+def test_pressure_is_interpolated_and_not_carried_across_gaps():
+    p = pd.Series([1000.0, 1010.0, 1020.0], index=pd.DatetimeIndex(["2025-01-01T00:00Z", "2025-01-01T00:30Z",
+                                                                     "2025-01-01T06:00Z"]))
+    got = R.pressure_at(_index(2, 15), p)
+    assert got == pytest.approx([1000.0, 1005.0])
+    assert np.isnan(R.pressure_at(pd.DatetimeIndex(["2025-01-01T03:00Z"]), p))[0]

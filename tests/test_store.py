@@ -1,0 +1,102 @@
+"""The SQLite store (monitor.store): batches, duplicates, checkpoints, lock, migrations."""
+from __future__ import annotations
+
+import numpy as np
+import pytest
+
+from monitor.config import LineFormat
+from monitor.errors import UserError
+from monitor.parse import parse_lines
+from monitor.store import SCHEMA_VERSION, Store
+
+LINES = ["2025-01-01T00:00:00Z,1.00", "2025-01-01T00:01:00Z,1.01", "bad line", "2025-01-01T00:02:00Z,1.02"]
+
+
+@pytest.fixture
+def store(tmp_path):
+    s = Store.open(tmp_path / "q.db")
+    yield s
+    s.close()
+
+
+def _write(store, lines=LINES, state=None):
+    p = parse_lines(lines, LineFormat(), 0)
+    return store.write_batch("st", "primary", p.t, p.value, p.time_source, p.rejects, feed="st.primary",
+                             state=state or {"offset": len(lines)})
+
+
+def test_wal_mode(store):
+    assert store.conn.execute("PRAGMA journal_mode").fetchone()[0] == "wal"
+
+
+def test_batch_counts(store):
+    res = _write(store)
+    assert (res.read, res.stored, res.duplicates, res.rejected) == (4, 3, 0, 1)
+
+
+def test_reading_the_same_lines_again_duplicates_nothing(store):
+    _write(store)
+    res = _write(store)
+    assert (res.stored, res.duplicates) == (0, 3)
+    assert store.observation_count("st", "primary") == 3
+
+
+def test_checkpoint_is_stored_with_the_batch(store):
+    _write(store, state={"offset": 99})
+    assert store.checkpoint("st.primary") == {"offset": 99}
+
+
+def test_failed_transaction_keeps_neither_rows_nor_checkpoint(store):
+    with pytest.raises(RuntimeError):
+        with store.transaction():
+            _write(store, state={"offset": 5})
+            raise RuntimeError("crash inside the batch")
+    assert store.observation_count() == 0 and store.checkpoint("st.primary") is None
+
+
+def test_observations_frame_has_a_utc_index(store):
+    _write(store)
+    df = store.observations("st", "primary")
+    assert str(df.index.tz) == "UTC" and list(df.columns) == ["value", "flag", "time_source"]
+    assert np.allclose(df["value"], [1.00, 1.01, 1.02]) and set(df["flag"]) == {2}
+
+
+def test_rejects_are_kept_with_feed_line_and_reason(store):
+    _write(store)
+    rej = store.rejects(station="st")
+    assert list(rej[["feed", "lineno", "text"]].iloc[0]) == ["st.primary", 3, "bad line"]
+    assert "columns" in rej["reason"].iloc[0]
+    assert store.reject_counts() == {"st.primary": 1}
+
+
+def test_second_lock_holder_is_refused(tmp_path):
+    first = Store.open(tmp_path / "q.db", lock=True)
+    try:
+        with pytest.raises(UserError, match="in use by another quaywatch daemon"):
+            Store.open(tmp_path / "q.db", lock=True)
+    finally:
+        first.close()
+    Store.open(tmp_path / "q.db", lock=True).close()  # released on close
+
+
+def test_newer_schema_is_refused_with_a_clear_message(tmp_path):
+    s = Store.open(tmp_path / "q.db")
+    s.set_meta("schema_version", str(SCHEMA_VERSION + 1))
+    s.close()
+    with pytest.raises(UserError, match="newer than this quaywatch understands"):
+        Store.open(tmp_path / "q.db")
+
+
+def test_a_file_that_is_not_a_store_is_refused(tmp_path):
+    (tmp_path / "x.db").write_bytes(b"not sqlite at all" * 100)
+    with pytest.raises(UserError, match="not a quaywatch store"):
+        Store.open(tmp_path / "x.db")
+
+
+def test_fits_keep_history_and_one_in_use(store):
+    a = store.add_fit("st", fitted_at=1, start=0, end=10, n=5, rms=0.1, variance_explained=0.9,
+                      constants="mean = 0.0\n", in_use=True)
+    b = store.add_fit("st", fitted_at=2, start=0, end=20, n=9, rms=0.08, variance_explained=0.95,
+                      constants="mean = 0.1\n", in_use=True)
+    assert store.fit_in_use("st")["id"] == b
+    assert list(store.fits("st")["id"]) == [b, a]
