@@ -117,14 +117,14 @@ def test_monthly_constants_show_a_clock_error_as_the_same_time_shift():
 
     ref = TideModel(mean=MEAN, constituents=[{"name": k, "amplitude": AMPS[k], "phase": PHASES[k]}
                                              for k in AMPS])
-    idx = pd.date_range("2031-01-01", "2031-03-01", freq="10min", tz="UTC", inclusive="left")
+    idx = pd.date_range("2024-01-01", "2024-03-01", freq="10min", tz="UTC", inclusive="left")
     obs = ref.predict(idx)
-    late = idx >= pd.Timestamp("2031-02-01", tz="UTC")
+    late = idx >= pd.Timestamp("2024-02-01", tz="UTC")
     obs[late] = ref.predict(idx[late] - pd.Timedelta(minutes=6))
     rng = np.random.default_rng(50)
     out = dg.monthly_constants(pd.Series(obs + rng.normal(0, 5 * mm, len(idx)), index=idx), ref)
-    jan = out[out["month"] == "2031-01"].set_index("name")
-    feb = out[out["month"] == "2031-02"].set_index("name")
+    jan = out[out["month"] == "2024-01"].set_index("name")
+    feb = out[out["month"] == "2024-02"].set_index("name")
     assert set(jan.index) == {"M2", "S2", "K1", "O1"}
     assert np.allclose(jan["d_time_min"], 0, atol=0.5)
     assert feb.loc["M2", "d_time_min"] == pytest.approx(6, abs=0.2)

@@ -19,7 +19,7 @@ SPEEDS = {"M2": 28.9841042, "S2": 30.0, "K1": 15.0410686, "O1": 13.9430356}  # d
 AMPS = {"M2": 1.20, "S2": 0.40, "K1": 0.12, "O1": 0.09}                     # invented port, m
 PHASES = {"M2": 95.0, "S2": 130.0, "K1": 210.0, "O1": 190.0}                 # invented, deg
 MEAN = 2.50                                                                   # m above station datum
-START = pd.Timestamp("2031-03-01T00:00:00Z")
+START = pd.Timestamp("2024-03-01T00:00:00Z")
 
 
 class SynthModel:

@@ -1,0 +1,309 @@
+"""``quaywatch qc``, ``quaywatch staff add|list`` and ``quaywatch flag``.
+
+``qc`` re-evaluates the quality flags of a station for a period (writing them, as the
+daemon does), then prints a summary per sensor and test, the worst episodes, and the
+diagnostics a gauge technician needs, in the station's local time. ``staff`` keeps
+tide-staff readings; ``flag`` records a technician's own verdict on samples.
+
+Output is automated and unofficial: official warnings and the local emergency
+authorities come first; defer to local codes and licensed practice.
+"""
+from __future__ import annotations
+
+import argparse
+import math
+import sys
+from typing import Any
+from zoneinfo import ZoneInfo
+
+import numpy as np
+import pandas as pd
+
+from monitor import qc
+from monitor.errors import UserError
+
+CAUTION = ("Automated and unofficial: official warnings and the local emergency authorities come first; "
+           "defer to local codes and licensed practice.")
+
+
+def register(subparsers) -> None:
+    p = subparsers.add_parser("qc", help="quality flags and gauge diagnostics of a station for a period",
+                              description="Re-run quality control for a period and summarise it: flags per "
+                              "test, worst episodes, sensor drift, clock offset, datum steps, staff "
+                              "comparison. " + CAUTION)
+    p.add_argument("config", help="configuration file (TOML)")
+    p.add_argument("--station", required=True, help="station id")
+    p.add_argument("--from", dest="start", required=True,
+                   help="start, ISO 8601 (no offset: the station's local time)")
+    p.add_argument("--to", dest="end", required=True, help="end, ISO 8601 (no offset: the station's local time)")
+    p.add_argument("--episodes", type=int, default=5, help="worst episodes shown per sensor (default 5)")
+    p.set_defaults(func=cmd_qc)
+
+    p = subparsers.add_parser("staff", help="tide-staff readings: add or list",
+                              description="Tide-staff readings entered by a technician, used to check the "
+                              "gauge's offset, scale and timing. " + CAUTION)
+    sub = p.add_subparsers(dest="staff_verb", metavar="ACTION")
+    sub.required = True
+    a = sub.add_parser("add", help="record one staff reading")
+    a.add_argument("config")
+    a.add_argument("--station", required=True)
+    a.add_argument("--at", required=True, help="time of the reading, ISO 8601 (no offset: local time)")
+    a.add_argument("--reading", required=True, type=float, help="staff reading in metres on the station datum")
+    a.add_argument("--who", required=True, help="who read the staff")
+    a.add_argument("--note", default="", help="free text (sea state, staff used)")
+    a.set_defaults(func=cmd_staff_add)
+    ls = sub.add_parser("list", help="list staff readings with the gauge beside them")
+    ls.add_argument("config")
+    ls.add_argument("--station", required=True)
+    ls.set_defaults(func=cmd_staff_list)
+
+    p = subparsers.add_parser("flag", help="set a quality flag by hand (recorded with who and why)",
+                              description="Override the automatic flag of one sample or a range; the "
+                              "override wins whenever quality control is re-run. " + CAUTION)
+    p.add_argument("config")
+    p.add_argument("--station", required=True)
+    p.add_argument("--sensor", required=True, help="sensor role: primary or backup")
+    p.add_argument("--at", required=True, help="sample time, ISO 8601 (no offset: local time)")
+    p.add_argument("--to", dest="end", help="end of a range, ISO 8601 (inclusive)")
+    p.add_argument("--set", dest="flag", required=True, type=int, choices=qc.OVERRIDE_FLAGS,
+                   help="1 pass, 3 suspect, 4 fail")
+    p.add_argument("--who", required=True)
+    p.add_argument("--why", required=True)
+    p.set_defaults(func=cmd_flag)
+
+
+# --------------------------------------------------------------------------- helpers
+
+def _open(config: str, create: bool = False):
+    from monitor.config import load_config
+    from monitor.store import Store
+
+    cfg = load_config(config)
+    return cfg, Store.open(cfg.store_path, create=create, lock=False)
+
+
+def _when(text: str, tz: str, opt: str) -> pd.Timestamp:
+    try:
+        ts = pd.Timestamp(text)
+    except (ValueError, TypeError):
+        ts = pd.NaT
+    if ts is pd.NaT or not isinstance(ts, pd.Timestamp):
+        raise UserError(f"{opt} {text!r}: expected an ISO 8601 date or time, e.g. 2031-03-04T06:00Z")
+    if ts.tzinfo is None:
+        try:
+            ts = ts.tz_localize(tz, ambiguous="raise", nonexistent="raise")
+        except Exception:
+            raise UserError(f"{opt} {text!r}: this local time is ambiguous or skipped in {tz} "
+                            f"(clock change); give an offset or Z") from None
+    return ts.tz_convert("UTC")
+
+
+def _local(t: Any, tz: str) -> str:
+    if t is None or (isinstance(t, float) and math.isnan(t)):
+        return "-"
+    ts = t if isinstance(t, pd.Timestamp) else pd.Timestamp(t, unit="s", tz="UTC")
+    return ts.tz_convert(ZoneInfo(tz)).strftime("%Y-%m-%d %H:%M %Z")
+
+
+def _sensor(st, sensor: str) -> str:
+    levels = [r for r, s in st.sensors.items() if getattr(s, "is_level", r != "barometer")]
+    if sensor not in levels:
+        raise UserError(f"--sensor {sensor!r}: station {st.id} has level sensors {', '.join(levels)}")
+    return sensor
+
+
+def _model(store, st):
+    try:
+        from monitor.daemon import load_model
+    except ImportError:
+        return None, "no tide model available"
+    model, source = load_model(store, st)
+    return model, source
+
+
+def _table(rows: list[list[str]], head: list[str], right: set[int] = frozenset()) -> str:
+    w = [max(len(str(r[i])) for r in [head] + rows) for i in range(len(head))]
+    fmt = lambda r: "  ".join(str(c).rjust(w[i]) if i in right else str(c).ljust(w[i]) for i, c in enumerate(r))
+    return "\n".join([fmt(head), fmt(["-" * x for x in w])] + [fmt(r) for r in rows])
+
+
+def _pm(v: float, se: float, unit: str, digits: int = 1) -> str:
+    if v is None or not np.isfinite(v):
+        return "-"
+    return f"{v:+.{digits}f} +- {se:.{digits}f} {unit}" if np.isfinite(se) else f"{v:+.{digits}f} {unit}"
+
+
+# --------------------------------------------------------------------------- qc
+
+def flag_summary(tests: pd.DataFrame) -> list[list[str]]:
+    """Rows ``test, pass, not evaluated, suspect, fail, missing`` as 'count (share)'."""
+    rows = []
+    n = max(len(tests), 1)
+    for col in list(qc.TESTS) + ["flag"]:
+        vals = tests[col].to_numpy()
+        cells = []
+        for code in (qc.PASS, qc.NOT_EVALUATED, qc.SUSPECT, qc.FAIL, qc.MISSING):
+            k = int((vals == code).sum())
+            cells.append(f"{k} ({k / n:.1%})" if k else "0")
+        rows.append(["aggregate" if col == "flag" else col] + cells)
+    return rows
+
+
+def summarise(st, settings: qc.QcSettings, results: dict[str, pd.DataFrame], obs: dict[str, pd.DataFrame],
+              model, model_source: str, staff: pd.DataFrame, start: pd.Timestamp, end: pd.Timestamp,
+              n_episodes: int = 5) -> str:
+    """The text report of ``quaywatch qc`` (pure: frames in, text out)."""
+    from monitor import diagnostics as dg
+
+    tz = st.tz
+    out = [f"Quality control, station {st.id} ({st.name}), {_local(start, tz)} to {_local(end, tz)}",
+           f"times in {tz} (local); levels in metres; tide model: {model_source}", ""]
+    usable = {}
+    for sn, tests in results.items():
+        tests = tests[(tests.index >= start) & (tests.index <= end)]
+        out.append(f"Sensor {sn}: {len(tests)} samples")
+        if tests.empty:
+            out.append("")
+            continue
+        out.append(_table(flag_summary(tests), ["test", "pass", "not evaluated", "suspect", "fail", "missing"],
+                          right={1, 2, 3, 4, 5}))
+        ep = qc.episodes(tests["flag"], join_gap=2 * settings.gap_limit).head(n_episodes)
+        if len(ep):
+            rows = []
+            for _, e in ep.iterrows():
+                seg = tests[(tests.index >= e["start"]) & (tests.index <= e["end"])]
+                which = [c for c in qc.TESTS if (seg[c] >= qc.SUSPECT).any() and (seg[c] != qc.MISSING).any()]
+                rows.append([_local(e["start"], tz), _local(e["end"], tz), str(e["samples"]),
+                             qc.FLAG_NAMES[int(e["worst"])], ", ".join(which)])
+            out += ["", "worst episodes:", _table(rows, ["from", "to", "samples", "worst", "tests"], right={2})]
+        gaps = qc.find_gaps(tests.index, settings.gap_limit)
+        if len(gaps):
+            rows = [[_local(g.start, tz), _local(g.end, tz), f"{g.seconds / 60:.0f} min"]
+                    for g in gaps.sort_values("seconds", ascending=False).head(n_episodes).itertuples()]
+            out += ["", f"gaps longer than {settings.gap_limit / 60:g} min: {len(gaps)}",
+                    _table(rows, ["last sample", "next sample", "silent"], right={2})]
+        o = obs[sn]
+        o = o[(o.index >= start) & (o.index <= end)]
+        usable[sn] = o["value"][qc.usable_mask(tests["flag"].reindex(o.index).fillna(qc.PASS).to_numpy())]
+        out.append("")
+
+    out.append("Diagnostics (value +- standard error):")
+    diag: list[list[str]] = []
+    prim = usable.get("primary")
+    if prim is not None and "backup" in usable and len(prim) and len(usable["backup"]):
+        d = dg.sensor_drift(prim, usable["backup"], gap_limit=settings.gap_limit)
+        diag.append(["primary - backup offset", _pm(d["offset_mm"], d["offset_se_mm"], "mm")])
+        if np.isfinite(d["drift_mm_per_day"]):
+            diag.append(["primary - backup drift",
+                         f"{d['drift_mm_per_day']:+.2f} mm/day (95% {d['drift_low']:+.2f} to {d['drift_high']:+.2f})"])
+        steps = dg.datum_steps(pd.Series(qc.difference_at(prim, usable["backup"], settings.gap_limit),
+                                         index=prim.index), min_step=settings.step_min_mm * 1e-3,
+                               gap_limit=settings.gap_limit)
+        for s in steps.itertuples():
+            diag.append(["step primary - backup", f"{_pm(s.step_mm, s.se_mm, 'mm')} at {_local(s.time, tz)}"])
+    if prim is not None and len(prim) > 100 and model is not None:
+        c = dg.clock_offset(prim, model)
+        diag.append(["clock offset vs predicted tide",
+                     _pm(c["offset_min"], c["offset_se_min"], "min", 2) + "  (+ = record lags the tide)"])
+        resid = prim - np.asarray(model.predict(prim.index), dtype=float)
+        steps = dg.datum_steps(resid, min_step=settings.step_min_mm * 1e-3, gap_limit=settings.gap_limit)
+        if steps.empty:
+            diag.append(["datum steps in residual", f"none above {settings.step_min_mm:g} mm"])
+        for s in steps.itertuples():
+            diag.append(["datum step in residual", f"{_pm(s.step_mm, s.se_mm, 'mm')} at {_local(s.time, tz)}"])
+        if (end - start).total_seconds() >= 25 * 86400:
+            mc = dg.monthly_constants(prim, model)
+            for r in mc.itertuples():
+                diag.append([f"{r.month} {r.name}", f"amplitude {r.d_amplitude_mm:+.0f} mm, phase "
+                             f"{r.d_phase_deg:+.1f} deg ({r.d_time_min:+.1f} min) against the reference"])
+    if prim is not None and not staff.empty and len(prim):
+        sess = dg.staff_sessions(staff["reading"], prim, min_readings=4)
+        for t, r in sess.iterrows():
+            diag.append([f"staff {_local(t, tz)} ({int(r['n'])} readings)",
+                         f"offset {_pm(r['offset_mm'], r['offset_se_mm'], 'mm')}, scale "
+                         f"{_pm(100 * r['scale_error'], 100 * r['scale_se'], '%', 2)}, timing "
+                         f"{_pm(r['timing_error_s'] / 60, r['timing_se_s'] / 60, 'min', 2)}"])
+    if not diag:
+        diag.append(["-", "not enough usable data for diagnostics"])
+    out.append(_table(diag, ["diagnostic", "value"]))
+    out += ["", CAUTION]
+    return "\n".join(out)
+
+
+def cmd_qc(args: argparse.Namespace) -> int:
+    cfg, store = _open(args.config)
+    with store:
+        st = cfg.station(args.station)
+        start, end = _when(args.start, st.tz, "--from"), _when(args.end, st.tz, "--to")
+        if end <= start:
+            raise UserError("--to: must be after --from")
+        settings = st.qc or qc.QcSettings()
+        model, source = _model(store, st)
+        results = qc.run_station_qc(store, st, settings, start.timestamp(), end.timestamp(), model)
+        obs = {sn: qc.read_observations(store, st.id, sn, start.timestamp(), end.timestamp()) for sn in results}
+        staff = qc.read_staff_readings(store, st.id, start.timestamp(), end.timestamp())
+        print(summarise(st, settings, results, obs, model, source, staff, start, end, args.episodes))
+    return 0
+
+
+# --------------------------------------------------------------------------- staff, flag
+
+def cmd_staff_add(args: argparse.Namespace) -> int:
+    cfg, store = _open(args.config, create=True)
+    with store:
+        st = cfg.station(args.station)
+        at = _when(args.at, st.tz, "--at")
+        qc.add_staff_reading(store, st.id, at.timestamp(), args.reading, args.who, args.note)
+        print(f"staff reading {args.reading:.3f} m at {_local(at, st.tz)} recorded for {st.id} by {args.who}")
+    return 0
+
+
+def cmd_staff_list(args: argparse.Namespace) -> int:
+    cfg, store = _open(args.config)
+    with store:
+        st = cfg.station(args.station)
+        staff = qc.read_staff_readings(store, st.id)
+        if staff.empty:
+            print(f"no staff readings for {st.id}; add one with: quaywatch staff add {args.config} "
+                  f"--station {st.id} --at TIME --reading M --who NAME")
+            return 0
+        gauge = qc.read_observations(store, st.id, "primary", staff.index[0].timestamp() - 3600,
+                                     staff.index[-1].timestamp() + 3600)
+        g = gauge["value"][qc.usable_mask(gauge["flag"].to_numpy())]
+        rows = []
+        for t, r in staff.iterrows():
+            gv = np.nan
+            if len(g):
+                tg = qc.seconds(g.index)
+                ts = t.timestamp()
+                j = np.searchsorted(tg, ts)
+                if 0 < j < len(tg) and tg[j] - tg[j - 1] <= 600 or (j < len(tg) and tg[j] == ts):
+                    gv = float(np.interp(ts, tg, g.to_numpy()))
+            diff = "-" if not np.isfinite(gv) else f"{(gv - r['reading']) * 1000:+.0f}"
+            rows.append([_local(t, st.tz), f"{r['reading']:.3f}", "-" if not np.isfinite(gv) else f"{gv:.3f}",
+                         diff, r["who"], r["note"] or ""])
+        print(f"Staff readings, station {st.id} (times in {st.tz}; metres on the station datum)")
+        print(_table(rows, ["time", "staff", "gauge", "gauge-staff mm", "who", "note"], right={1, 2, 3}))
+        print(CAUTION)
+    return 0
+
+
+def cmd_flag(args: argparse.Namespace) -> int:
+    cfg, store = _open(args.config)
+    with store:
+        st = cfg.station(args.station)
+        sensor = _sensor(st, args.sensor)
+        at = _when(args.at, st.tz, "--at")
+        end = _when(args.end, st.tz, "--to") if args.end else None
+        n = qc.set_override(store, st.id, sensor, at.timestamp(), None if end is None else end.timestamp(),
+                            args.flag, args.who, args.why)
+        span = _local(at, st.tz) + ("" if end is None else f" to {_local(end, st.tz)}")
+        print(f"{n} sample{'s' if n != 1 else ''} of {st.id}/{sensor} at {span} flagged "
+              f"{args.flag} ({qc.FLAG_NAMES[args.flag]}) by {args.who}: {args.why}")
+    return 0
+
+
+if __name__ == "__main__":  # pragma: no cover
+    from monitor.cli import main
+
+    sys.exit(main(["qc", *sys.argv[1:]]))
