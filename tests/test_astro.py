@@ -66,3 +66,28 @@ def test_rates_match_schureman_table_1():
     # N' 0.0022064 deg/h; tau 14.4920521 deg/h.
     ref = [14.4920521, 0.5490165, 0.0410686, 0.0046418, 0.0022064]
     assert np.allclose(ARGUMENT_RATES[:5], ref, atol=1e-7)
+
+
+def test_tau_is_180_deg_at_the_moons_upper_transit():
+    # pyerfa moon98 (Meeus-based lunar ephemeris) and gmst06: the true Moon's Greenwich
+    # hour angle is tau - 180 deg (tau counts from lower transit) to within the Moon's
+    # inequalities and the reduction to the equator (up to about 11 deg); the mean over
+    # two months is within 2 deg.  A convention error would show as 90 or 180 deg.
+    t = 1.6e9 + 3600.0 * 7 * np.arange(200)
+    jd = 2440587.5 + t / 86400.0
+    p = erfa.moon98(jd, 0.0)["p"]
+    ra = np.degrees(np.arctan2(p[:, 1], p[:, 0]))
+    gmst = np.degrees(erfa.gmst06(jd, 0.0, jd, 0.0))
+    diff = _wrap(astronomical_arguments(t)[:, 0] - (gmst - ra + 180.0))
+    assert np.max(np.abs(diff)) < 12 * degree
+    assert abs(np.mean(diff)) < 2 * degree
+
+
+def test_k1_argument_is_sidereal_angle_minus_90():
+    # pyerfa gmst06 (IAU 2006): V(K1) = tau + s + 90 = 15 UT + h + 90 = GMST - 90 deg,
+    # up to the aberration constant (0.0057 deg) in the mean sun's position.
+    from predictor.nodal import equilibrium_arguments
+
+    jd = 2440587.5 + DATES / 86400.0
+    gmst = np.degrees([erfa.gmst06(j, 0.0, j, 0.0) for j in jd])
+    assert np.max(np.abs(_wrap(equilibrium_arguments(DATES, ["K1"])[:, 0] - (gmst - 90.0)))) < 0.01 * degree
