@@ -175,8 +175,27 @@ def quaywatch(args: list[str], log: Path | None = None, timeout: float = 600,
                               cwd=cwd, env=env)
 
 
+def _has_verb(verb: str) -> bool:
+    from monitor.cli import build_parser
+
+    sub = next(a for a in build_parser()._actions if a.dest == "verb")
+    return verb in sub.choices
+
+
 def fit_constants(history: Path, out: Path, log: Path) -> dict:
-    """Fit constants to the history with ``quaywatch fit``; returns its JSON summary."""
+    """Fit constants to the history with ``quaywatch fit``; returns its JSON summary.
+
+    Where the ``fit`` verb is not installed, ``predictor.harmonic_fit`` is called directly.
+    """
+    if not _has_verb("fit"):
+        import pandas as pd
+
+        from predictor import harmonic_fit
+
+        df = pd.read_csv(history)
+        model = harmonic_fit(pd.DatetimeIndex(pd.to_datetime(df["time"], utc=True)), df["level"].to_numpy())
+        model.save(out)
+        return {"mean": model.mean}
     res = quaywatch(["fit", str(history), "-o", str(out), "--json"])
     with open(log, "a") as fh:
         fh.write(f"$ quaywatch fit {history} -o {out} --json\n{res.stderr}")
@@ -212,9 +231,20 @@ def write_config(template: Path, out_dir: Path, smtp_port: int, feeds: dict[str,
 
 def run_daemon(config: Path, log: Path, timeout: float) -> None:
     """Run ``quaywatch run CONFIG`` until its replay feeds are exhausted."""
+    args = ["run", str(config), "--until-exhausted"]
+    if not _has_verb("run"):
+        # The command line's run verb not installed yet: the same entry point, directly.
+        args = None
     try:
-        res = quaywatch(["run", str(config), "--until-exhausted"], log=log, timeout=timeout,
-                        cwd=config.parent)
+        if args is None:
+            code = ("import sys; from monitor.config import load_config; from monitor.daemon import run_daemon; "
+                    "sys.exit(run_daemon(load_config(sys.argv[1]), until_exhausted=True))")
+            with open(log, "a") as fh:
+                res = subprocess.run([sys.executable, "-c", code, str(config)], stdout=fh,
+                                     stderr=subprocess.STDOUT, timeout=timeout, cwd=config.parent,
+                                     env=dict(os.environ, PYTHONPATH=str(ROOT)))
+        else:
+            res = quaywatch(args, log=log, timeout=timeout, cwd=config.parent)
     except subprocess.TimeoutExpired:
         raise DemoError(f"the daemon did not finish within {timeout:.0f} s; see {log}") from None
     if res.returncode != 0:
@@ -236,6 +266,110 @@ def write_reports(config: Path, station: str, days: list[dt.date], log: Path) ->
                         log=log, cwd=config.parent)
         if res.returncode != 0:
             raise DemoError(f"quaywatch report for {day} failed (exit {res.returncode}); see {log}")
+
+
+# --------------------------------------------------------------------------- technician checks
+
+
+def sensor_timing(primary, backup, window_s: float = 6 * 3600, step_s: float = 3 * 3600,
+                  max_lag_s: float = 900, lag_step_s: float = 15):
+    """Timing of the backup against the primary, window by window.
+
+    For each window, the lag L that makes ``backup(t) - primary(t + L)`` most nearly constant
+    (smallest median absolute deviation) over a grid of lags. Both sensors see the same sea,
+    so their difference cancels the tide and the weather and leaves offset, drift and timing
+    (design notes, "two co-located sensors"); the median keeps spikes and a stuck spell from
+    steering it. ``L`` > 0: the backup's stamp T holds the sea of T + L (its clock is late).
+
+    Parameters
+    ----------
+    primary, backup : pandas.Series
+        Usable levels [m] on UTC DatetimeIndexes.
+
+    Returns
+    -------
+    pandas.DataFrame
+        ``start``, ``end`` (UTC), ``lag_min`` [min], ``mad_mm`` [mm] per window.
+
+    References
+    ----------
+    IOC (1985-2016), Manual on Sea Level Measurement and Interpretation, Vol. IV (a second
+    sensor to check the first). Robust lag search by median absolute deviation: common
+    practice, no source.
+    """
+    import numpy as np
+    import pandas as pd
+
+    ps = primary.index.as_unit("s").asi8.astype(float)
+    pv = primary.to_numpy(dtype=float)
+    bs = backup.index.as_unit("s").asi8.astype(float)
+    bv = backup.to_numpy(dtype=float)
+    lags = np.arange(-max_lag_s, max_lag_s + lag_step_s / 2, lag_step_s)
+    rows = []
+    if len(ps) < 2 or len(bs) < 2:
+        return pd.DataFrame(columns=["start", "end", "lag_min", "mad_mm"])
+    t0 = max(ps[0], bs[0])
+    while t0 + window_s <= min(ps[-1], bs[-1]):
+        m = (bs >= t0) & (bs < t0 + window_s)
+        if m.sum() >= 60:
+            tt, yy = bs[m], bv[m]
+            d = yy[None, :] - np.interp(tt[None, :] + lags[:, None], ps, pv)
+            mad = np.median(np.abs(d - np.median(d, axis=1, keepdims=True)), axis=1)
+            i = int(np.argmin(mad))
+            rows.append({"start": pd.Timestamp(t0, unit="s", tz="UTC"),
+                         "end": pd.Timestamp(t0 + window_s, unit="s", tz="UTC"),
+                         "lag_min": lags[i] / 60, "mad_mm": mad[i] * 1000})
+        t0 += step_s
+    return pd.DataFrame(rows, columns=["start", "end", "lag_min", "mad_mm"])
+
+
+def clock_episodes(timing, limit_min: float = 1.5) -> list[dict]:
+    """Spans where the backup's timing is off by more than ``limit_min`` [min].
+
+    Consecutive windows past the limit are joined; each span reports its start and end
+    (UTC) and the median lag [min]. The limit is IOC's one-minute timing accuracy (Manual
+    Vol. IV, from memory) plus half a minute for the lag grid and noise (our choice).
+    """
+    out: list[dict] = []
+    cur: list = []
+    for row in list(timing.itertuples()) + [None]:
+        if row is not None and abs(row.lag_min) > limit_min:
+            cur.append(row)
+            continue
+        if cur:
+            import numpy as np
+
+            out.append({"start": cur[0].start, "end": cur[-1].end,
+                        "lag_min": float(np.median([r.lag_min for r in cur])), "windows": len(cur)})
+            cur = []
+    return out
+
+
+def technician_checks(store: Path, station: str) -> dict:
+    """Drift and timing of the backup against the primary, from usable samples in the store."""
+    import pandas as pd
+
+    from monitor.diagnostics import sensor_drift
+
+    con = sqlite3.connect(f"file:{store}?mode=ro", uri=True)
+
+    def series(sensor: str, flags: tuple[int, ...]) -> pd.Series:
+        q = (f"select t, value from observations where station=? and sensor=? "
+             f"and flag in ({','.join('?' * len(flags))}) order by t")
+        df = pd.read_sql_query(q, con, params=(station, sensor, *flags))
+        return pd.Series(df["value"].to_numpy(), index=pd.to_datetime(df["t"], unit="s", utc=True))
+
+    try:
+        # Pass and not-evaluated only: a stuck spell is suspect for its first hour.
+        primary = series("primary", (1, 2))
+        backup = series("backup", (1, 2, 3))
+    finally:
+        con.close()
+    if primary.empty or backup.empty:
+        return {}
+    drift = sensor_drift(primary, backup)
+    timing = sensor_timing(primary, backup)
+    return {"drift": drift, "timing": timing, "clock": clock_episodes(timing)}
 
 
 # --------------------------------------------------------------------------- summary

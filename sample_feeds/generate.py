@@ -35,8 +35,8 @@ HERE = Path(__file__).resolve().parent
 PORT_FILE = HERE.parent / "demo" / "port.toml"
 SEED = 20251022
 
-HISTORY_START = np.datetime64("2025-08-25T00:00:00")
-HISTORY_END = np.datetime64("2025-10-20T00:00:00")    # exclusive; 56 days
+HISTORY_START = np.datetime64("2025-04-13T00:00:00")  # 190 days: resolves K1-P1 and S2-K2
+HISTORY_END = np.datetime64("2025-10-20T00:00:00")    # exclusive
 HISTORY_STEP_S = 360
 STORM_START = HISTORY_END
 STORM_END = np.datetime64("2025-10-27T00:00:00")      # exclusive; 7 days
@@ -286,9 +286,9 @@ def build(port: dict) -> dict:
             return None
         return {"level_sd": round(level_sd, 3), "first": iso1(ts_s[idx[0]]),
                 "last": iso1(ts_s[idx[-1]]), "minutes_above": int(above.sum())}
-    # Short window for the quick test: from 12 h before the first peak to 12 h after the main one.
+    # Short window for the quick test: from 12 h before the first peak to 11.5 h after the main one.
     short0 = t1 - 12 * HOUR
-    short1 = t2 + 12 * HOUR
+    short1 = t2 + 11.5 * HOUR  # ends before local midnight: three local days
     normal_hw_max = float(astro[highs].max() + 0.0)
 
     truth = {
