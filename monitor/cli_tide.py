@@ -102,6 +102,8 @@ def run_predict(args) -> int:
         stamps = np.datetime_as_string(times, unit="s" if whole else "ms")
         out.write("".join(f"{s}Z,{v:.4f}\n" for s, v in zip(stamps, level)))
     out.flush()
+    # stdout stays pure CSV for scripts; the caution goes to the terminal
+    print(CAUTION, file=sys.stderr)
     return 0
 
 
