@@ -25,6 +25,7 @@ from dataclasses import dataclass
 import numpy as np
 import pandas as pd
 from scipy import linalg
+from scipy.linalg import blas
 
 from predictor import confidence as _ci
 
@@ -281,13 +282,16 @@ class _Design:
         f = self.f[i] * (1.0 - w) + self.f[i + 1] * w
         arg = (t - self.t_ref)[:, None] * self.omega[None, :] + phi
         off = 1 + int(self.trend)
-        X = np.empty((t.size, self.n_params))
+        X = np.empty((t.size, self.n_params), order="F")  # column-major suits BLAS syrk
         X[:, 0] = 1.0
         if self.trend:
             X[:, 1] = (t - self.trend_epoch) / SECONDS_PER_YEAR
         X[:, off::2] = f * np.cos(arg)
         X[:, off + 1::2] = f * np.sin(arg)
         return X
+
+
+_NODE_BLOCK = 512  # daily nodes evaluated at a time
 
 
 def _build_design(names, t_min, t_max, nodal, trend, trend_epoch) -> _Design:
@@ -302,13 +306,16 @@ def _build_design(names, t_min, t_max, nodal, trend, trend_epoch) -> _Design:
     d1 = (math.floor(t_max / SECONDS_PER_DAY) + 2) * SECONDS_PER_DAY
     nodes = np.arange(d0, d1 + 1.0, SECONDS_PER_DAY)
     if names:
-        if nodal:
-            vu, f = nod.arguments(nodes, list(names), daily=False)
-        else:
-            vu = nod.equilibrium_arguments(nodes, list(names))
-            f = np.ones_like(vu)
-        vu = np.asarray(vu, dtype=float).reshape(nodes.size, len(names))
-        f = np.asarray(f, dtype=float).reshape(nodes.size, len(names))
+        vu = np.empty((nodes.size, len(names)))
+        f = np.ones((nodes.size, len(names)))
+        for s in range(0, nodes.size, _NODE_BLOCK):  # bounded temporaries for long records
+            blk = nodes[s:s + _NODE_BLOCK]
+            if nodal:
+                v, fb = nod.arguments(blk, list(names), daily=False)
+                f[s:s + _NODE_BLOCK] = np.asarray(fb, dtype=float).reshape(blk.size, len(names))
+            else:
+                v = nod.equilibrium_arguments(blk, list(names))
+            vu[s:s + _NODE_BLOCK] = np.asarray(v, dtype=float).reshape(blk.size, len(names))
         phi = np.unwrap(np.radians(vu) - (nodes - d0)[:, None] * omega[None, :], axis=0)
     else:
         phi = np.zeros((nodes.size, 0))
@@ -322,10 +329,15 @@ def _accumulate(design: _Design, t, y, w, chunk_size):
     rhs = np.zeros(p)
     for s in range(0, t.size, chunk_size):
         X = design.rows(t[s:s + chunk_size])
-        Xw = X * w[s:s + chunk_size, None] if w is not None else X
-        A += Xw.T @ X
-        rhs += Xw.T @ y[s:s + chunk_size]
-    return A, rhs
+        yc = y[s:s + chunk_size]
+        if w is not None:
+            sw = np.sqrt(w[s:s + chunk_size])
+            X *= sw[:, None]
+            yc = yc * sw
+        # X'X is symmetric: syrk computes one triangle, half the work of a product.
+        A += blas.dsyrk(1.0, X, trans=1, lower=0)
+        rhs += X.T @ yc
+    return np.triu(A) + np.triu(A, 1).T, rhs
 
 
 # Largest condition number of the scaled normal equations accepted for a Cholesky solve.
@@ -374,7 +386,7 @@ def _cauchy_weights(r, tuning):
 
 
 def harmonic_fit(times, levels, constituents="auto", rayleigh: float = 1.0, trend: bool = False,
-                 robust: bool = False, nodal="auto", chunk_size: int | None = 20_000,
+                 robust: bool = False, nodal="auto", chunk_size: int | None = 4096,
                  min_constituents: int = 2, confidence: float | None = 0.95, weights=None,
                  robust_iterations: int = 10, robust_tuning: float = CAUCHY_TUNING,
                  trend_epoch=None, metadata: dict | None = None):
