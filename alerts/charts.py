@@ -191,7 +191,8 @@ def day_chart(report: "DayReport", width: float = 9.6, height: float = 6.0, dpi:
 
 def trend_chart(diagnostics: Sequence["Diagnostic"], dpi: int = 110) -> bytes | None:
     """Small multiples of each diagnostic's recent history; ``None`` when there is none."""
-    with_history = [d for d in diagnostics if d.history is not None and len(d.history.dropna())]
+    # A trend needs two points at least.
+    with_history = [d for d in diagnostics if d.history is not None and len(d.history.dropna()) >= 2]
     if not with_history:
         return None
     n = len(with_history)

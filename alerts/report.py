@@ -396,7 +396,7 @@ def infer_interval(index: pd.DatetimeIndex) -> float | None:
     """The typical spacing of samples [s]: the median of their differences."""
     if len(index) < 2:
         return None
-    diffs = np.diff(index.asi8) / 1e9
+    diffs = np.diff(index.as_unit("ns").asi8) / 1e9
     diffs = diffs[diffs > 0]
     return float(np.median(diffs)) if len(diffs) else None
 

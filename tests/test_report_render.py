@@ -5,11 +5,12 @@ import datetime as dt
 import re
 from email.message import EmailMessage
 
+import numpy as np
 import pandas as pd
 import pytest
 
 from alerts.report import (
-    CAUTION, ReportSettings, day_bounds, day_figures, prune_reports, read_summary, render_day_email,
+    CAUTION, ReportSettings, day_bounds, day_figures, infer_interval, prune_reports, read_summary, render_day_email,
     render_day_html, report_settings_from, write_day_report, write_index, zone_label,
 )
 from report_samples import TZ, sample_report
@@ -106,6 +107,12 @@ def test_gap_is_found_with_its_bounds():
     assert gap.start == pd.Timestamp("2024-03-12 09:00", tz=TZ)
     assert gap.end == pd.Timestamp("2024-03-12 11:30", tz=TZ)
     assert figures.received == 240 - 25
+
+
+def test_interval_is_inferred_from_a_second_resolution_index():
+    # The store hands back indexes in whole seconds; pandas 3 keeps that resolution.
+    index = pd.to_datetime(np.arange(0, 3600, 360), unit="s", utc=True)
+    assert infer_interval(index) == pytest.approx(6 * minute)
 
 
 def test_day_with_no_data_is_one_gap_and_zero_complete():
