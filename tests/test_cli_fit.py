@@ -183,3 +183,15 @@ def test_unknown_zone_is_refused(tmp_path, capsys):
     obs = write_csv(tmp_path / "obs.csv", days=30)
     assert run(["fit", str(obs), "--tz", "Mars/Olympus"]) == 2
     assert "unknown time zone" in capsys.readouterr().err
+
+
+def test_the_installed_command_line_has_the_fit_verb(tmp_path, capsys):
+    from monitor.cli import main
+
+    obs = write_csv(tmp_path / "obs.csv", days=30)
+    assert main(["fit", str(obs), "--json"]) == 0
+    assert json.loads(capsys.readouterr().out)["constituents"][0]["name"] == "M2"
+    bad = tmp_path / "bad.csv"
+    bad.write_text("time,level\n2031-01-01T00:00Z,x\n")
+    assert main(["fit", str(bad)]) == 2
+    assert "quaywatch fit: " in capsys.readouterr().err
