@@ -838,18 +838,21 @@ def run_station_qc(store: Any, station_cfg: Any, settings: QcSettings | None, st
         part = tests[sel].copy()
         ov = read_overrides(db, station, sn, write_from, end_t)
         part["flag"] = apply_overrides(part["flag"], ov)
-        _write(db, station, sn, part)
+        _write(db, station, sn, part, df["flag"].to_numpy()[sel])
         results[sn] = part
     return results
 
 
-def _write(db: Any, station: str, sensor: str, part: pd.DataFrame) -> None:
+def _write(db: Any, station: str, sensor: str, part: pd.DataFrame, stored: np.ndarray | None = None) -> None:
+    """Upsert the test rows; update ``observations.flag`` where it changed."""
     if part.empty:
         return
     t = (seconds(part.index)).round().astype(np.int64)
     cols = [part[c].to_numpy(dtype=np.int64) for c in TESTS]
     rows = [(station, sensor, int(ti), *map(int, vals)) for ti, *vals in zip(t, *cols)]
-    flags = [(int(f), station, sensor, int(ti)) for ti, f in zip(t, part["flag"].to_numpy())]
+    new = part["flag"].to_numpy()
+    changed = np.ones(len(new), bool) if stored is None else (np.asarray(stored) != new)
+    flags = [(int(f), station, sensor, int(ti)) for ti, f in zip(t[changed], new[changed])]
     names = ", ".join(TESTS)
     marks = ", ".join("?" * len(TESTS))
     with _transaction(db.conn):
