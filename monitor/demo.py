@@ -260,10 +260,21 @@ def local_days(start: dt.datetime, end: dt.datetime, tz: str) -> list[dt.date]:
 
 
 def write_reports(config: Path, station: str, days: list[dt.date], log: Path) -> None:
-    """One report per local day with ``quaywatch report``."""
-    for day in days:
-        res = quaywatch(["report", str(config), "--station", station, "--day", day.isoformat()],
-                        log=log, cwd=config.parent)
+    """One report per local day with ``quaywatch report``, two at a time."""
+    from concurrent.futures import ThreadPoolExecutor
+
+    def one(day: dt.date) -> tuple[dt.date, subprocess.CompletedProcess]:
+        return day, quaywatch(["report", str(config), "--station", station, "--day", day.isoformat()],
+                              cwd=config.parent)
+
+    # Two at a time: the index page is rewritten by each, so the last one runs alone.
+    with ThreadPoolExecutor(2) as pool:
+        done = list(pool.map(one, days[:-1]))
+    done += [one(days[-1])]
+    with open(log, "a") as fh:
+        for day, res in done:
+            fh.write(f"\n$ quaywatch report {config} --station {station} --day {day}\n{res.stdout}{res.stderr}")
+    for day, res in done:
         if res.returncode != 0:
             raise DemoError(f"quaywatch report for {day} failed (exit {res.returncode}); see {log}")
 
@@ -375,77 +386,149 @@ def technician_checks(store: Path, station: str) -> dict:
 # --------------------------------------------------------------------------- summary
 
 
-def _local(t: int | float, tz: str) -> str:
-    when = dt.datetime.fromtimestamp(int(t), dt.timezone.utc).astimezone(ZoneInfo(tz))
-    return when.strftime("%a %d %b %H:%M %Z")
+def _local(t, tz: str) -> str:
+    import pandas as pd
+
+    when = pd.Timestamp(t, unit="s", tz="UTC") if isinstance(t, (int, float)) else pd.Timestamp(t)
+    return when.tz_convert(tz).strftime("%a %d %b %H:%M %Z")
 
 
 @dataclass
 class Summary:
-    """What the demo found, read back from the store and the mail folder."""
+    """What the demo found, read back from the store, the mail folder and the reports.
 
-    peak_time: int | None = None
-    peak_level: float | None = None          # station datum [m]
-    peak_residual: float | None = None       # [m]
-    peak_residual_time: int | None = None
+    Times are UTC pandas Timestamps; levels metres on chart datum; residuals metres.
+    """
+
+    highest: tuple | None = None              # (time, level above chart datum)
+    surge_peak: tuple | None = None           # (time, smoothed residual)
+    surge_at_highest: float | None = None     # smoothed residual at the highest water
     episodes: list[dict] = field(default_factory=list)
-    qc_counts: dict[str, dict[int, int]] = field(default_factory=dict)
     mail: list[CaughtMail] = field(default_factory=list)
     reports: list[Path] = field(default_factory=list)
+    spikes: list = field(default_factory=list)        # times of samples failed by the spike test
+    flat: list[tuple] = field(default_factory=list)   # (start, end) of flat-line runs
+    gaps: list[tuple] = field(default_factory=list)   # (last sample before, first after)
+    multi: int = 0                                    # samples the two sensors disagree on
+    drift: dict = field(default_factory=dict)         # primary - backup, from sensor_drift
+    clock: list[dict] = field(default_factory=list)   # spans where the backup's clock is off
+    caution_missing: list[Path] = field(default_factory=list)
 
 
-def read_summary(store: Path, station: str, mail: list[CaughtMail], reports_dir: Path) -> Summary:
-    """Read the surge peak, the alert episodes and the QC flag counts from the store."""
-    s = Summary(mail=list(mail), reports=sorted(reports_dir.rglob("*.html")))
+CAUTION_WORDS = ("unofficial", "official warnings")
+
+
+def _has_caution(text: str) -> bool:
+    low = " ".join(text.lower().split())
+    return all(w in low for w in CAUTION_WORDS)
+
+
+def read_summary(out: Path, station: str, chart: float, mail: list[CaughtMail]) -> Summary:
+    """Read what the run produced: peaks, episodes and quality-control findings."""
+    import pandas as pd
+
+    from monitor import qc
+
+    store = out / "quaywatch.db"
+    s = Summary(mail=list(mail), reports=sorted((out / "reports").rglob("*.html")))
+    for m in s.mail:
+        msg = email.message_from_bytes(m.path.read_bytes(), policy=email.policy.default)
+        texts = [part.get_content() for part in msg.walk() if part.get_content_maintype() == "text"]
+        if not _has_caution(" ".join(texts)):
+            s.caution_missing.append(m.path)
+    for r in s.reports:
+        if r.name != "index.html" and not _has_caution(r.read_text(errors="replace")):
+            s.caution_missing.append(r)
     if not store.exists():
         return s
     con = sqlite3.connect(f"file:{store}?mode=ro", uri=True)
     con.row_factory = sqlite3.Row
-    tables = {r[0] for r in con.execute("select name from sqlite_master where type='table'")}
-    if "derived" in tables:
-        row = con.execute("select t, observed from derived where station=? and observed is not null "
-                          "order by observed desc limit 1", (station,)).fetchone()
-        if row:
-            s.peak_time, s.peak_level = row["t"], row["observed"]
-        row = con.execute("select t, residual from derived where station=? and residual is not null "
-                          "order by residual desc limit 1", (station,)).fetchone()
-        if row:
-            s.peak_residual_time, s.peak_residual = row["t"], row["residual"]
-    if "alert_episodes" in tables:
-        s.episodes = [dict(r) for r in con.execute("select * from alert_episodes where station=?", (station,))]
-    if "qc_tests" in tables:
-        cols = [r[1] for r in con.execute("pragma table_info(qc_tests)")]
-        for test in [c for c in cols if c not in ("station", "sensor", "t")]:
-            counts = {}
-            for flag, n in con.execute(f'select "{test}", count(*) from qc_tests where station=? '
-                                       f'and "{test}" in (3, 4) group by 1', (station,)):
-                counts[int(flag)] = n
-            if counts:
-                s.qc_counts[test] = counts
-    con.close()
+    try:
+        def frame(sql: str, *params) -> pd.DataFrame:
+            df = pd.read_sql_query(sql, con, params=params)
+            if "t" in df:
+                df.index = pd.to_datetime(df.pop("t"), unit="s", utc=True)
+            return df
+
+        obs = frame("select t, value, flag from observations where station=? and sensor='primary' order by t",
+                    station)
+        good = obs[~obs["flag"].isin((4, 9))]
+        der = frame("select t, smoothed from derived where station=? order by t", station)
+        if len(good):
+            t = good["value"].idxmax()
+            s.highest = (t, float(good.loc[t, "value"]) - chart)
+            sm = der["smoothed"].dropna()
+            if len(sm):
+                s.surge_peak = (sm.idxmax(), float(sm.max()))
+                near = sm[(sm.index >= t - pd.Timedelta("5min")) & (sm.index <= t + pd.Timedelta("5min"))]
+                s.surge_at_highest = float(near.mean()) if len(near) else None
+        s.episodes = [dict(r) for r in con.execute(
+            "select * from alert_episodes where station=? order by opened_at", (station,))] \
+            if _table(con, "alert_episodes") else []
+        if _table(con, "qc_tests"):
+            tests = frame("select t, spike, flat, multi from qc_tests where station=? and sensor='primary' "
+                          "order by t", station)
+            s.spikes = list(tests.index[tests["spike"] == qc.FAIL])
+            fl = qc.episodes(tests["flat"], at_least=qc.SUSPECT)
+            s.flat = sorted(zip(fl["start"], fl["end"]))
+            s.multi = int((tests["multi"] == qc.SUSPECT).sum())
+        gaps = qc.find_gaps(obs.index, 300.0)
+        s.gaps = list(zip(gaps["start"], gaps["end"]))
+    finally:
+        con.close()
+    checks = technician_checks(store, station)
+    s.drift = checks.get("drift", {})
+    s.clock = checks.get("clock", [])
     return s
 
 
-def print_summary(s: Summary, out: Path, tz: str, chart: float, truth: dict) -> None:
-    """The short summary the demo ends with."""
+def _table(con, name: str) -> bool:
+    return con.execute("select 1 from sqlite_master where type='table' and name=?", (name,)).fetchone() is not None
+
+
+def print_summary(s: Summary, out: Path, tz: str) -> None:
+    """The short summary the demo ends with, in the port's local time."""
     p = print
     p("")
-    p("Port Dunmerrow (invented) -- storm week summary")
-    p("=" * 48)
-    if s.peak_level is not None:
-        p(f"Highest water:  {s.peak_level - chart:.2f} m above chart datum at {_local(s.peak_time, tz)}")
-    if s.peak_residual is not None:
-        p(f"Largest surge:  {s.peak_residual:+.2f} m (observed - predicted) at {_local(s.peak_residual_time, tz)}")
-    p(f"Emails sent:    {len(s.mail)}")
+    p("Port Dunmerrow (invented port, invented storm): what the monitor saw")
+    p("=" * 68)
+    if s.highest:
+        extra = f", surge {s.surge_at_highest:+.2f} m" if s.surge_at_highest is not None else ""
+        p(f"Highest water   {s.highest[1]:.2f} m above chart datum at {_local(s.highest[0], tz)}{extra}")
+    if s.surge_peak:
+        p(f"Largest surge   {s.surge_peak[1]:+.2f} m (smoothed residual) at {_local(s.surge_peak[0], tz)}")
+    p("")
+    p(f"Alert episodes  {len(s.episodes)} ({sum(1 for e in s.episodes if e.get('closed_at'))} closed "
+      f"with an all-clear)")
+    for e in s.episodes:
+        closed = _local(e["closed_at"], tz) if e.get("closed_at") else "still open"
+        p(f"  {e['rule']:7s} {e['top_step']:15s} {_local(e['opened_at'], tz)} -> {closed}")
+    p(f"Emails sent     {len(s.mail)} (all captured by the demo's own SMTP server)")
     for m in s.mail:
-        p(f"  {m.path.name}")
-    if s.qc_counts:
-        p("Quality control found (samples flagged suspect / fail):")
-        for test, counts in s.qc_counts.items():
-            p(f"  {test:10s} {counts.get(3, 0):5d} / {counts.get(4, 0):5d}")
+        p(f"  {m.path.name[:4]} {m.subject}  -> {', '.join(m.recipients)}")
+    p("")
+    p("For the technician (quality control and diagnostics):")
+    p(f"  spikes          {len(s.spikes)} sample(s) failed: " + ", ".join(_local(t, tz)[4:] for t in s.spikes))
+    for a, b in s.flat:
+        p(f"  flat line       {_local(a, tz)} to {_local(b, tz)[-9:]}")
+    for a, b in s.gaps:
+        p(f"  gap             no data between {_local(a, tz)} and {_local(b, tz)[-9:]}")
+    if s.drift and s.drift.get("bins"):
+        p(f"  sensor drift    primary - backup {s.drift['drift_mm_per_day']:+.1f} mm/day "
+          f"({s.drift['drift_low']:+.1f} to {s.drift['drift_high']:+.1f}, 95%)")
+    for c in s.clock:
+        p(f"  backup clock    {abs(c['lag_min']):.1f} min {'late' if c['lag_min'] > 0 else 'early'} "
+          f"from about {_local(c['start'], tz)} to {_local(c['end'], tz)[-9:]}")
+    p(f"  sensors differ  {s.multi} primary sample(s) more than 5 cm from the backup")
+    p("")
+    if s.caution_missing:
+        p("CAUTION MISSING from: " + ", ".join(str(x) for x in s.caution_missing))
+    else:
+        p(f"Caution present in all {len(s.mail)} emails and {len(s.reports)} report pages.")
     p("Open:")
-    p(f"  {out / 'reports'}  (daily reports, index.html)")
-    p(f"  {out / 'mail'}  (every email, .eml)")
+    p(f"  {out / 'reports' / 'index.html'}")
+    p(f"  {out / 'mail'}/  (each .eml opens in a mail client)")
+    p(f"  {out / 'qc.txt'}  (the technician's quality-control summary)")
     p(f"  {out / 'daemon.log'}")
     p("")
     p(CAUTION)
@@ -454,9 +537,12 @@ def print_summary(s: Summary, out: Path, tz: str, chart: float, truth: dict) -> 
 # --------------------------------------------------------------------------- main
 
 
-def run_demo(out: Path = DEFAULT_OUT, short: bool = False, timeout: float = 900,
-             quiet: bool = False) -> Summary:
-    """Run the whole demo into ``out`` and return what it found."""
+def run_demo(out: Path = DEFAULT_OUT, short: bool = False, speedup: float | None = None,
+             timeout: float = 900, quiet: bool = False) -> Summary:
+    """Run the whole demo into ``out`` and return what it found.
+
+    ``speedup`` overrides the replay pace of ``demo/config.toml`` (0: as fast as possible).
+    """
     say = (lambda *a: None) if quiet else (lambda *a: print(*a, flush=True))
     truth = load_truth()
     with open(DEMO / "port.toml", "rb") as fh:
@@ -470,50 +556,70 @@ def run_demo(out: Path = DEFAULT_OUT, short: bool = False, timeout: float = 900,
     (out / "feeds").mkdir(parents=True)
     (out / "reports").mkdir()
     log = out / "demo.log"
+    t_start = time.monotonic()
+
+    def step(text: str) -> None:
+        say(f"[{time.monotonic() - t_start:5.0f} s] {text}")
 
     start, end = replay_window(truth, short)
-    say(f"Replaying {start:%d %b %H:%M} to {end:%d %b %H:%M} UTC ({'short' if short else 'whole week'})")
+    step(f"Storm feeds from {_local(start, tz)} to {_local(end, tz)} "
+         f"({'the days around the storm' if short else 'the whole week'})")
     feeds = {}
     for role, (name, header, time_of) in FEED_FILES.items():
         dst = out / "feeds" / Path(name).name
         trim_feed(SAMPLES / name, dst, header, time_of, start, end)
         feeds[role] = dst
 
-    say("Fitting harmonic constants to eight weeks of history ...")
+    step("Fitting harmonic constants to 190 days of history (quaywatch fit) ...")
     constants = out / "constants.toml"
     fit_constants(SAMPLES / "history.csv", constants, log)
 
     catcher = MailCatcher(out / "mail")
     port_no = catcher.start()
     try:
-        config = write_config(DEMO / "config.toml", out, port_no, feeds, constants)
-        say(f"Running the daemon (mail to 127.0.0.1:{port_no}) ...")
-        t0 = time.monotonic()
-        run_daemon(config, log, timeout)
-        say(f"  daemon finished in {time.monotonic() - t0:.0f} s")
-        # Let the last deliveries land.
-        time.sleep(0.5)
+        config = write_config(DEMO / "config.toml", out, port_no, feeds, constants, speedup)
+        step(f"Running the daemon (quaywatch run) on the replay feeds; mail to 127.0.0.1:{port_no} ...")
+        run_daemon(config, out / "daemon.log", timeout)
+        time.sleep(0.5)  # the last SMTP transaction may still be closing
     finally:
         catcher.stop()
 
-    say("Writing the daily reports ...")
-    write_reports(config, station, local_days(start, end, tz), log)
+    days = local_days(start, end, tz)
+    if short:
+        # The quick run writes the storm day's report only, and no technician text.
+        peak = parse_utc(truth["storm"]["main_peak"]["time"])
+        days = local_days(peak, peak + dt.timedelta(seconds=1), tz)
+    step(f"Writing {len(days)} daily report(s) (quaywatch report) ...")
+    write_reports(config, station, days, log)
+    if not short:
+        step("Quality-control summary for the technician (quaywatch qc) ...")
+        write_qc(config, station, start, end, out / "qc.txt")
 
-    summary = read_summary(out / "quaywatch.db", station, catcher.caught, out / "reports")
+    step("Reading back what was found ...")
+    summary = read_summary(out, station, chart, catcher.caught)
     if not quiet:
-        print_summary(summary, out, tz, chart, truth)
+        print_summary(summary, out, tz)
     return summary
+
+
+def write_qc(config: Path, station: str, start: dt.datetime, end: dt.datetime, path: Path) -> None:
+    """``quaywatch qc`` over the replayed span, kept as text."""
+    res = quaywatch(["qc", str(config), "--station", station, "--from", start.isoformat(),
+                     "--to", end.isoformat()], cwd=config.parent)
+    path.write_text(res.stdout + (f"\n{res.stderr}" if res.returncode else ""))
 
 
 def main(argv: list[str] | None = None) -> int:
     ap = argparse.ArgumentParser(prog="python -m monitor.demo", description=__doc__.splitlines()[0])
     ap.add_argument("--out", type=Path, default=DEFAULT_OUT, help="output folder (default demo-output/)")
     ap.add_argument("--short", action="store_true", default=os.environ.get("QUAYWATCH_DEMO_SHORT") == "1",
-                    help="replay only the 2.5 days around the storm (for tests)")
+                    help="replay only the days around the storm (for tests)")
+    ap.add_argument("--speedup", type=float, default=None,
+                    help="replay pace: 3600 plays an hour a second (demo/config.toml); 0 as fast as possible")
     ap.add_argument("--timeout", type=float, default=900, help="longest wait for the daemon [s]")
     args = ap.parse_args(argv)
     try:
-        run_demo(args.out, short=args.short, timeout=args.timeout)
+        run_demo(args.out.resolve(), short=args.short, speedup=args.speedup, timeout=args.timeout)
     except DemoError as exc:
         print(f"demo: {exc}", file=sys.stderr)
         return 1

@@ -167,3 +167,182 @@ def test_committed_feeds_are_what_the_generator_writes(tmp_path):
 def test_sample_feeds_stay_small():
     total = sum(p.stat().st_size for p in (ROOT / "sample_feeds").rglob("*") if p.is_file())
     assert total < 15e6
+
+
+# --------------------------------------------------------------------------- the demo's own run
+# One quick run (the days around the storm, replayed as fast as the daemon takes them), shared
+# by the tests below. Each test compares what the monitor found with what the generator
+# injected (sample_feeds/truth.json), within the tolerances stated beside it.
+
+
+def _utc(text):
+    import pandas as pd
+
+    return pd.Timestamp(text)
+
+
+@pytest.fixture(scope="module")
+def demo(tmp_path_factory):
+    from monitor.demo import load_truth, run_demo
+
+    out = tmp_path_factory.mktemp("demo-output")
+    summary = run_demo(out, short=True, speedup=0, timeout=240, quiet=True)
+    return {"summary": summary, "truth": load_truth(), "out": out}
+
+
+def _episodes(demo, rule):
+    return [e for e in demo["summary"].episodes if e["rule"] == rule]
+
+
+@pytest.mark.slow
+def test_demo_opens_one_quay_episode_at_the_storm_high_water(demo):
+    import pandas as pd
+
+    crossed = demo["truth"]["storm"]["boards_out_crossed"]
+    (ep,) = _episodes(demo, "quay")  # one episode: the near-miss spike opened none
+    opened = pd.Timestamp(ep["opened_at"], unit="s", tz="UTC")
+    # Opens after the rule's 10-minute hold (demo/config.toml); 10 minutes more for smoothing.
+    assert _utc(crossed["first"]) <= opened <= _utc(crossed["first"]) + pd.Timedelta(20 * minute, "s")
+    assert ep["top_step"] == "over the quay"
+
+
+@pytest.mark.slow
+def test_demo_closes_the_quay_episode_with_an_all_clear(demo):
+    import pandas as pd
+
+    crossed = demo["truth"]["storm"]["boards_out_crossed"]
+    (ep,) = _episodes(demo, "quay")
+    closed = pd.Timestamp(ep["closed_at"], unit="s", tz="UTC")
+    # After the last minute above, within the 20-minute settle plus an hour of falling
+    # through the 10 cm hysteresis band (demo/config.toml).
+    assert _utc(crossed["last"]) < closed <= _utc(crossed["last"]) + pd.Timedelta(80 * minute, "s")
+    subjects = [m.subject.lower() for m in demo["summary"].mail]
+    assert any("boards out" in s and "all clear" not in s for s in subjects)
+    assert any("all clear" in s and "over the quay" in s for s in subjects)
+
+
+@pytest.mark.slow
+def test_demo_tells_the_volunteers_about_the_quay(demo):
+    to_volunteers = [m for m in demo["summary"].mail if "volunteers@dunmerrow.example" in m.recipients]
+    assert any("boards out" in m.subject.lower() for m in to_volunteers)
+    assert any("all clear" in m.subject.lower() for m in to_volunteers)
+
+
+@pytest.mark.slow
+def test_demo_sends_no_message_for_the_spikes(demo):
+    # The first spike alone reaches above the boards-out level on 21 Oct. Had it opened an
+    # episode there would be two "boards out" openings per recipient; there is one.
+    openings = [m for m in demo["summary"].mail
+                if "boards out" in m.subject.lower() and "all clear" not in m.subject.lower()]
+    assert sorted(r for m in openings for r in m.recipients) == [
+        "harbour-office@dunmerrow.example", "volunteers@dunmerrow.example"]
+
+
+@pytest.mark.slow
+def test_demo_surge_episodes_follow_both_surge_peaks(demo):
+    import pandas as pd
+
+    eps = _episodes(demo, "surge")
+    assert len(eps) == 2 and all(e["closed_at"] for e in eps)
+    for ep, key in zip(eps, ("first_peak", "main_peak")):
+        peak = _utc(demo["truth"]["storm"][key]["time"])
+        opened = pd.Timestamp(ep["opened_at"], unit="s", tz="UTC")
+        closed = pd.Timestamp(ep["closed_at"], unit="s", tz="UTC")
+        assert opened < peak < closed
+
+
+@pytest.mark.slow
+def test_demo_every_email_and_report_carries_the_caution(demo):
+    s = demo["summary"]
+    assert s.mail and s.reports
+    assert s.caution_missing == []
+
+
+@pytest.mark.slow
+def test_demo_writes_the_storm_day_report(demo):
+    names = [p.name for p in demo["summary"].reports]
+    assert "2025-10-22.html" in names and "index.html" in names
+
+
+@pytest.mark.slow
+def test_demo_finds_the_surge_peak(demo):
+    import pandas as pd
+
+    main = demo["truth"]["storm"]["main_peak"]
+    t, value = demo["summary"].surge_peak
+    # Injected weather noise (2 cm) and the fitted tide's error (about 1 cm rms) move the peak:
+    # 10 cm in height; the pulse is 5 h wide and the residual is smoothed, so 90 min in time.
+    assert value == pytest.approx(main["surge"], abs=10 * cm)
+    assert abs(t - _utc(main["time"])) <= pd.Timedelta(90 * minute, "s")
+
+
+@pytest.mark.slow
+def test_demo_finds_the_highest_water(demo):
+    import pandas as pd
+
+    truth = demo["truth"]
+    t, level = demo["summary"].highest
+    want = truth["storm"]["highest_level"]
+    chart = truth["datums"]["chart_datum_above_station_datum"]
+    # Sensor noise 4 mm and one-minute steps (generate.py): 1 cm and 15 minutes.
+    assert level == pytest.approx(want["level"] - chart, abs=1 * cm)
+    assert abs(t - _utc(want["time"])) <= pd.Timedelta(15 * minute, "s")
+
+
+@pytest.mark.slow
+def test_demo_finds_the_injected_spikes(demo):
+    import pandas as pd
+
+    f = demo["truth"]["faults"]
+    found = demo["summary"].spikes
+    for spike in f["spikes"]:
+        assert any(abs(t - _utc(spike["time"])) <= pd.Timedelta(1 * minute, "s") for t in found), spike
+    # Anything else flagged is where the stuck sensor let go: a real jump, not a false alarm.
+    freed = _utc(f["flat_line"]["end"])
+    for t in found:
+        near_spike = any(abs(t - _utc(x["time"])) <= pd.Timedelta(1 * minute, "s") for x in f["spikes"])
+        assert near_spike or abs(t - freed) <= pd.Timedelta(2 * minute, "s"), t
+
+
+@pytest.mark.slow
+def test_demo_finds_the_stuck_sensor(demo):
+    import pandas as pd
+
+    f = demo["truth"]["faults"]["flat_line"]
+    ((start, end),) = demo["summary"].flat
+    # QC calls a run flat once it has lasted 30 minutes (monitor.qc.QcSettings, common practice).
+    assert _utc(f["start"]) + pd.Timedelta(25 * minute, "s") <= start <= _utc(f["start"]) + pd.Timedelta(35 * minute, "s")
+    assert abs(end - _utc(f["end"])) <= pd.Timedelta(2 * minute, "s")
+
+
+@pytest.mark.slow
+def test_demo_finds_the_gap(demo):
+    import pandas as pd
+
+    f = demo["truth"]["faults"]["gap"]
+    ((before, after),) = demo["summary"].gaps
+    assert before == _utc(f["start"]) - pd.Timedelta(1 * minute, "s")
+    assert after == _utc(f["end"]) + pd.Timedelta(1 * minute, "s")
+
+
+@pytest.mark.slow
+def test_demo_finds_the_backup_drift(demo):
+    d = demo["summary"].drift
+    want = -demo["truth"]["faults"]["drift"]["mm_per_day"]  # primary - backup
+    # Two and a half days of 5 mm noise: the 95% interval holds the truth, the estimate
+    # within 1 mm/day.
+    assert d["drift_low"] <= want <= d["drift_high"]
+    assert d["drift_mm_per_day"] == pytest.approx(want, abs=1.0)
+
+
+@pytest.mark.slow
+def test_demo_finds_the_backup_clock_offset(demo):
+    import pandas as pd
+
+    f = demo["truth"]["faults"]["clock_offset"]
+    (span,) = demo["summary"].clock
+    # 15-second lag grid over 6-hour windows stepped by 3 hours (monitor.demo.sensor_timing):
+    # the lag within 1 minute, the span's ends within 3 hours.
+    assert span["lag_min"] == pytest.approx(f["minutes_late"], abs=1.0)
+    assert abs(span["start"] - _utc(f["start"])) <= pd.Timedelta(3 * hour, "s")
+    assert abs(span["end"] - _utc(f["end"])) <= pd.Timedelta(3 * hour, "s")
