@@ -150,7 +150,9 @@ def day_chart(report: "DayReport", width: float = 9.6, height: float = 6.0, dpi:
                     inset = 0.03 * (rng[1] - rng[0])  # keep an off-scale marker whole
                     y = np.clip(y, rng[0] + inset, rng[1] - inset)
                 style = {"facecolors": "none", "edgecolors": colour} if marker == "o" else {"c": colour}
-                ax.scatter(_naive_utc(marked.index), y, s=28, marker=marker, linewidths=1.4, zorder=5,
+                # Many markers would hide the line they mark: draw them smaller.
+                size, width = (28, 1.4) if len(marked) <= 40 else (9, 0.8)
+                ax.scatter(_naive_utc(marked.index), y, s=size, marker=marker, linewidths=width, zorder=5,
                            label=label if ax is ax_level else None, **style)
 
     change = _clock_change(start, end, zone)

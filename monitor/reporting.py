@@ -25,6 +25,8 @@ log = logging.getLogger(__name__)
 WEEK = pd.Timedelta(days=7)
 #: Rejected lines shown in full in a report (all are counted).
 REJECTS_SHOWN = 20
+#: Flag runs closer than this [s] are shown as one episode (common practice, no source).
+EPISODE_JOIN_S = 1800.0
 
 
 # --------------------------------------------------------------------------- pure helpers
@@ -243,7 +245,8 @@ def _qc(store: Any, sid: str, t0: int, t1: int) -> tuple[dict, list[R.QcEpisode]
         index = pd.to_datetime(part["t"].to_numpy(dtype=np.int64), unit="s", utc=True)
         for test in Q.TESTS:
             flags = pd.Series(part[test].fillna(2).astype(int).to_numpy(), index=index)
-            for _, ep in Q.episodes(flags).iterrows():
+            # Runs less than half an hour apart read as one episode to a technician.
+            for _, ep in Q.episodes(flags, join_gap=EPISODE_JOIN_S).iterrows():
                 episodes.append(R.QcEpisode(R.QC_TEST_NAMES.get(test, test), int(ep["worst"]), ep["start"],
                                             ep["end"], int(ep["samples"]), str(sensor)))
     episodes.sort(key=lambda e: (e.start, e.test))
