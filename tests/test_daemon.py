@@ -1,0 +1,143 @@
+"""The daemon as a real subprocess: SIGKILL at random moments loses and doubles nothing;
+SIGTERM stops cleanly; a second daemon on the same store is refused."""
+from __future__ import annotations
+
+import os
+import random
+import signal
+import sqlite3
+import subprocess
+import sys
+import time
+from pathlib import Path
+
+import pytest
+
+ROOT = Path(__file__).resolve().parent.parent
+N_LINES = 3000
+BAD_EVERY = 250  # one rejected line every 250 lines
+
+
+def _write_feed(path: Path) -> tuple[set, int]:
+    """An invented one-minute record with a few bad lines; returns the expected rows and reject count."""
+    t0 = 1_760_000_000
+    rows, bad = set(), 0
+    with open(path, "w") as fh:
+        fh.write("time,level\n")
+        for i in range(N_LINES):
+            if i % BAD_EVERY == 7:
+                fh.write(f"not a line {i}\n")
+                bad += 1
+                continue
+            t = t0 + 60 * i
+            v = round(2.0 + 1.5 * ((i % 745) / 745.0), 3)
+            fh.write(f"{time.strftime('%Y-%m-%dT%H:%M:%SZ', time.gmtime(t))},{v:.3f}\n")
+            rows.add((t, v))
+    return rows, bad
+
+
+def _config(tmp: Path, feed: str) -> Path:
+    cfg = tmp / "config.toml"
+    cfg.write_text(f"""
+[store]
+path = "q.db"
+[daemon]
+poll_seconds = 0.05
+process_seconds = 0.5
+idle_polls = 3
+[[stations]]
+id = "testport"
+latitude = 50.0
+longitude = -4.0
+constants = "history"
+fit_min_days = 365
+datums = {{ chart = -1.0 }}
+[stations.sensors.primary]
+line = {{ header_lines = 1 }}
+feed = {feed}
+""")
+    return cfg
+
+
+def _start(cfg: Path, *extra: str) -> subprocess.Popen:
+    env = dict(os.environ, PYTHONPATH=str(ROOT) + os.pathsep + os.environ.get("PYTHONPATH", ""))
+    return subprocess.Popen([sys.executable, "-m", "monitor", "run", str(cfg), *extra], cwd=cfg.parent,
+                            env=env, stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
+
+
+def _stored(db: Path) -> tuple[list, int]:
+    if not db.exists():
+        return [], 0
+    con = sqlite3.connect(db)
+    try:
+        rows = con.execute("SELECT t, value FROM observations WHERE station='testport' AND sensor='primary'").fetchall()
+        rejects = con.execute("SELECT count(*) FROM rejects").fetchone()[0]
+    except sqlite3.OperationalError:  # tables not made yet
+        return [], 0
+    finally:
+        con.close()
+    return rows, rejects
+
+
+def _wait_for_rows(db: Path, proc: subprocess.Popen, more_than: int = 0, timeout: float = 30) -> bool:
+    """Wait until the store holds more than ``more_than`` rows; False if the daemon exited first."""
+    end = time.monotonic() + timeout
+    while time.monotonic() < end:
+        if proc.poll() is not None:
+            return False
+        if len(_stored(db)[0]) > more_than:
+            return True
+        time.sleep(0.05)
+    raise AssertionError("the daemon stored nothing new in time")
+
+
+@pytest.mark.slow
+def test_sigkill_at_random_moments_loses_and_doubles_nothing(tmp_path):
+    expected, bad = _write_feed(tmp_path / "gauge.csv")
+    # a paced replay hands out a few dozen lines per poll, so the kills land between and inside batches
+    cfg = _config(tmp_path, '{ kind = "replay", path = "gauge.csv", rate = 300 }')
+    rng = random.Random(20251020)
+    kills = 0
+    for _ in range(10):
+        before = len(_stored(tmp_path / "q.db")[0])
+        if before >= len(expected):
+            break
+        proc = _start(cfg)
+        # kill once this run has made progress, at a random moment of its backfill
+        if not _wait_for_rows(tmp_path / "q.db", proc, before):
+            break
+        time.sleep(rng.uniform(0.0, 0.3))
+        proc.send_signal(signal.SIGKILL)
+        proc.wait()
+        kills += 1
+    partial, _ = _stored(tmp_path / "q.db")
+    proc = _start(cfg, "--until-exhausted")
+    out, err = proc.communicate(timeout=60)
+    assert proc.returncode == 0, err[-2000:]
+    rows, rejects = _stored(tmp_path / "q.db")
+    assert kills >= 8
+    assert 0 < len(partial) < len(expected)  # the kills did interrupt the backfill
+    assert len(rows) == len(expected) and set(rows) == expected  # none lost, none doubled
+    assert rejects == bad  # a replayed batch would have doubled its rejected lines
+
+
+@pytest.mark.slow
+def test_sigterm_stops_cleanly_and_a_second_daemon_is_refused(tmp_path):
+    _write_feed(tmp_path / "gauge.csv")
+    cfg = _config(tmp_path, '{ kind = "file", path = "gauge.csv" }')
+    proc = _start(cfg)
+    try:
+        assert _wait_for_rows(tmp_path / "q.db", proc), proc.communicate()[1][-2000:]
+        second = _start(cfg)
+        _, err2 = second.communicate(timeout=60)
+        assert second.returncode == 2
+        assert "in use by another quaywatch daemon" in err2
+        proc.send_signal(signal.SIGTERM)
+        _, err = proc.communicate(timeout=30)
+        assert proc.returncode == 0, err[-2000:]
+    finally:
+        if proc.poll() is None:
+            proc.kill()
+            proc.wait()
+    rows, _ = _stored(tmp_path / "q.db")
+    assert len(rows) == N_LINES - (N_LINES // BAD_EVERY)
