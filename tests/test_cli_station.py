@@ -1,0 +1,142 @@
+"""Station verbs through the real command line (monitor.cli.main)."""
+from __future__ import annotations
+
+import csv
+import io
+import math
+from pathlib import Path
+
+import numpy as np
+import pytest
+
+from monitor.cli import main
+
+mm = 1e-3
+M2_SPEED = 28.9841042  # deg/h (Schureman 1958, table 2)
+S2_SPEED = 30.0        # deg/h, exactly two cycles per solar day
+T0 = 1_760_000_000     # 2025-10-09T09:06:40Z
+
+
+def _setup(tmp_path: Path, constants: str = "history") -> Path:
+    cfg = tmp_path / "config.toml"
+    cfg.write_text(f"""
+[store]
+path = "q.db"
+[[stations]]
+id = "testport"
+name = "Test Port (invented)"
+latitude = 50.0
+longitude = -4.0
+tz = "Europe/Lisbon"
+constants = "{constants}"
+fit_min_days = 20
+datums = {{ chart = -1.0 }}
+[stations.sensors.primary]
+units = "cm"
+offset = 0.5
+line = {{ header_lines = 1 }}
+""")
+    return cfg
+
+
+def _gauge_file(path: Path, days: float, step_min: int = 10, extra: str = "") -> None:
+    """An invented record: M2 + S2 about a 3 m mean, in centimetres."""
+    t = T0 + np.arange(0, days * 86400, step_min * 60)
+    h = t / 3600.0
+    lvl_m = 2.5 + 1.2 * np.cos(np.radians(M2_SPEED * h - 40)) + 0.4 * np.cos(np.radians(S2_SPEED * h - 80))
+    with open(path, "w") as fh:
+        fh.write("time,level_cm\n")
+        for ti, v in zip(t, lvl_m):
+            fh.write(f"{np.datetime_as_string(np.datetime64(int(ti), 's'))}Z,{v * 100:.1f}\n")
+        fh.write(extra)
+
+
+def test_check_accepts_a_valid_file(tmp_path, capsys):
+    assert main(["check", str(_setup(tmp_path))]) == 0
+    assert "configuration is valid" in capsys.readouterr().out
+
+
+def test_check_lists_every_problem(tmp_path, capsys):
+    cfg = tmp_path / "bad.toml"
+    cfg.write_text('[[stations]]\nid = "Bad Id"\nlatitude = 91\n')
+    assert main(["check", str(cfg)]) == 2
+    err = capsys.readouterr().err
+    for key in ("stations[0].id", "stations[0].latitude", "stations[0].longitude", "stations[0].datums",
+                "stations[0].sensors", "stations[0].constants"):
+        assert key in err
+
+
+def test_ingest_summary_and_second_run_duplicates_everything(tmp_path, capsys):
+    cfg = _setup(tmp_path)
+    data = tmp_path / "gauge.csv"
+    _gauge_file(data, 1, extra="garbage line\n")
+    assert main(["ingest", str(cfg), "--station", "testport", str(data)]) == 0
+    out = capsys.readouterr().out
+    assert "145 rows read, 144 stored, 0 duplicates, 1 rejected" in out
+    assert main(["ingest", str(cfg), "--station", "testport", str(data)]) == 0
+    assert "0 stored, 144 duplicates, 1 rejected" in capsys.readouterr().out
+
+
+def test_ingest_unknown_station_is_a_user_error(tmp_path, capsys):
+    cfg = _setup(tmp_path)
+    assert main(["ingest", str(cfg), "--station", "nowhere", str(cfg)]) == 2
+    assert "no station 'nowhere'" in capsys.readouterr().err
+
+
+def test_export_writes_level_predicted_residual_and_flag(tmp_path, capsys):
+    (tmp_path / "c.toml").write_text(
+        'mean = 2.5\n[[constituents]]\nname = "M2"\namplitude = 1.2\nphase = 0.0\n')
+    cfg = _setup(tmp_path, "c.toml")
+    data = tmp_path / "gauge.csv"
+    _gauge_file(data, 1)
+    main(["ingest", str(cfg), "--station", "testport", str(data)])
+    capsys.readouterr()
+    assert main(["export", str(cfg), "--station", "testport", "--from", "2025-10-09T00:00Z",
+                 "--to", "2025-10-11T00:00Z"]) == 0
+    rows = list(csv.DictReader(io.StringIO(capsys.readouterr().out)))
+    assert list(rows[0]) == ["time", "level", "predicted", "residual", "flag"] and len(rows) == 144
+    assert rows[0]["time"].endswith("Z")
+    for r in rows[:5]:
+        assert float(r["residual"]) == pytest.approx(float(r["level"]) - float(r["predicted"]), abs=0.2 * mm)
+
+
+def test_status_shows_rows_and_rejects(tmp_path, capsys):
+    cfg = _setup(tmp_path)
+    data = tmp_path / "gauge.csv"
+    _gauge_file(data, 1, extra="bad\n")
+    main(["ingest", str(cfg), "--station", "testport", str(data)])
+    capsys.readouterr()
+    assert main(["status", str(cfg), "--rejects", "1"]) == 0
+    out = capsys.readouterr().out
+    assert "Station testport" in out and "144 rows" in out and "expected at least 2 columns" in out
+    assert "unofficial" in out
+
+
+@pytest.mark.slow
+def test_refit_recovers_the_constants_of_an_invented_record(tmp_path, capsys):
+    cfg = _setup(tmp_path)
+    data = tmp_path / "gauge.csv"
+    _gauge_file(data, 30, step_min=30)
+    main(["ingest", str(cfg), "--station", "testport", str(data)])
+    capsys.readouterr()
+    assert main(["refit", str(cfg), "--station", "testport"]) == 0
+    out = capsys.readouterr().out
+    assert "fit #1" in out and "in use" in out
+    m2 = next(line for line in out.splitlines() if line.strip().startswith("M2"))
+    # The record was made with a plain M2 of 1.2 m (invented, no nodal modulation), so the fitted
+    # amplitude is 1.2 m / f, with the M2 nodal factor f between 0.963 and 1.037 (Schureman 1958).
+    assert 1.2 / 1.037 < float(m2.split()[1]) < 1.2 / 0.963
+    rms = float(out.split("rms ")[1].split(" m")[0])
+    assert rms < 5 * mm
+    assert main(["refit", str(cfg), "--station", "testport", "--list"]) == 0
+    assert "yes" in capsys.readouterr().out
+
+
+def test_refit_with_too_little_history_says_how_much_is_needed(tmp_path, capsys):
+    cfg = _setup(tmp_path)
+    data = tmp_path / "gauge.csv"
+    _gauge_file(data, 2)
+    main(["ingest", str(cfg), "--station", "testport", str(data)])
+    capsys.readouterr()
+    assert main(["refit", str(cfg), "--station", "testport"]) == 2
+    assert "fit_min_days = 20 needed" in capsys.readouterr().err
