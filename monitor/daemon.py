@@ -500,13 +500,14 @@ class Daemon:
             log.exception("outbox delivery failed; will retry")
 
     def reports(self) -> None:
-        """Write due daily reports through the report writer, when installed."""
-        mod = _optional("monitor.cli_report")
+        """Write due daily reports (monitor.reporting), on the replayed clock for replay feeds."""
+        mod = _optional("monitor.reporting")
         fn = getattr(mod, "write_due_reports", None) if mod is not None else None
         if fn is None or self.cfg.reports is None:
             return
+        now = self.data_now if (self.replay_clock and self.data_now is not None) else None
         try:
-            fn(self.cfg, self.store)
+            fn(self.cfg, self.store, now)
         except Exception:
             log.exception("daily reports failed; will retry")
 
@@ -522,6 +523,7 @@ class Daemon:
                 self.deliver()
             pending = self.outbox_pending()
             if pending == 0 or time.monotonic() - self.feeds_done_at > OUTBOX_DRAIN_WAIT:
+                self.reports()
                 if pending:
                     log.warning("leaving %d message(s) queued in the outbox for the next run", pending)
                 log.info("feeds exhausted and processing caught up: stopping")
@@ -543,7 +545,9 @@ class Daemon:
         sched.add_job(self.job_poll, "interval", seconds=d.poll_seconds, id="poll", next_run_time=_now_dt())
         sched.add_job(self.job_process, "interval", seconds=d.process_seconds, id="process")
         sched.add_job(self.deliver, "interval", seconds=d.outbox_seconds, id="outbox")
-        sched.add_job(self.reports, "interval", minutes=10, id="reports")
+        # on the replayed clock a day passes in minutes, so reports are looked at more often
+        sched.add_job(self.reports, "interval", seconds=max(2 * d.process_seconds, 5) if self.replay_clock else 600,
+                      id="reports")
         sched.add_job(self.refit_due, "interval", hours=1, id="refit", next_run_time=_now_dt())
 
         def on_signal(signum, _frame):
