@@ -131,7 +131,7 @@ class MailCatcher:
         if isinstance(content, str):
             content = content.encode("utf-8")
         msg = email.message_from_bytes(content, policy=email.policy.default)
-        subject = str(msg.get("Subject", "") or "")
+        subject = " ".join(str(msg.get("Subject", "") or "").split())
         with self._lock:
             n = len(self.caught) + 1
             slug = re.sub(r"[^a-z0-9]+", "-", subject.lower()).strip("-")[:60] or "message"
@@ -205,6 +205,29 @@ def fit_constants(history: Path, out: Path, log: Path) -> dict:
         return json.loads(res.stdout)
     except json.JSONDecodeError:
         return {}
+
+
+def ingest_history(history: Path, config: Path, port: dict, before: dt.datetime, log: Path,
+                   days: float = 35) -> None:
+    """Put the last ``days`` of history before ``before`` into the store as primary samples.
+
+    The history file is on the station datum; the primary's line format adds the sensor's
+    zero, so the lines are written as the sensor would send them. Five weeks give the high
+    water forecast the residual history it needs for its uncertainty (``min_history_days``).
+    """
+    zero = port["datums"]["primary_sensor_zero"]
+    since = before - dt.timedelta(days=days)
+    path = config.parent / "feeds" / "history-primary.csv"
+    with open(history) as fin, open(path, "w", newline="\n") as fout:
+        fout.write(fin.readline())
+        for line in fin:
+            t, level = line.strip().split(",")
+            if since <= parse_utc(t) < before:
+                fout.write(f"{t},{float(level) - zero:.3f}\n")
+    res = quaywatch(["ingest", str(config), "--station", port["port"]["station"], "--sensor", "primary",
+                     str(path)], log=log, cwd=config.parent)
+    if res.returncode != 0:
+        raise DemoError(f"quaywatch ingest failed (exit {res.returncode}); see {log}")
 
 
 def write_config(template: Path, out_dir: Path, smtp_port: int, feeds: dict[str, Path],
@@ -356,8 +379,8 @@ def clock_episodes(timing, limit_min: float = 1.5) -> list[dict]:
     return out
 
 
-def technician_checks(store: Path, station: str) -> dict:
-    """Drift and timing of the backup against the primary, from usable samples in the store."""
+def technician_checks(store: Path, station: str, start: dt.datetime, end: dt.datetime) -> dict:
+    """Drift and timing of the backup against the primary in [start, end), from usable samples."""
     import pandas as pd
 
     from monitor.diagnostics import sensor_drift
@@ -365,9 +388,10 @@ def technician_checks(store: Path, station: str) -> dict:
     con = sqlite3.connect(f"file:{store}?mode=ro", uri=True)
 
     def series(sensor: str, flags: tuple[int, ...]) -> pd.Series:
-        q = (f"select t, value from observations where station=? and sensor=? "
+        q = (f"select t, value from observations where station=? and sensor=? and t >= ? and t < ? "
              f"and flag in ({','.join('?' * len(flags))}) order by t")
-        df = pd.read_sql_query(q, con, params=(station, sensor, *flags))
+        df = pd.read_sql_query(q, con, params=(station, sensor, int(start.timestamp()), int(end.timestamp()),
+                                               *flags))
         return pd.Series(df["value"].to_numpy(), index=pd.to_datetime(df["t"], unit="s", utc=True))
 
     try:
@@ -391,6 +415,12 @@ def _local(t, tz: str) -> str:
 
     when = pd.Timestamp(t, unit="s", tz="UTC") if isinstance(t, (int, float)) else pd.Timestamp(t)
     return when.tz_convert(tz).strftime("%a %d %b %H:%M %Z")
+
+
+def _until(a, b, tz: str) -> str:
+    """The end of a span: its time alone on the same local day, else in full."""
+    la, lb = _local(a, tz), _local(b, tz)
+    return lb[-9:].strip() if la[:10] == lb[:10] else lb
 
 
 @dataclass
@@ -423,8 +453,9 @@ def _has_caution(text: str) -> bool:
     return all(w in low for w in CAUTION_WORDS)
 
 
-def read_summary(out: Path, station: str, chart: float, mail: list[CaughtMail]) -> Summary:
-    """Read what the run produced: peaks, episodes and quality-control findings."""
+def read_summary(out: Path, station: str, chart: float, mail: list[CaughtMail],
+                 start: dt.datetime, end: dt.datetime) -> Summary:
+    """Read what the run produced in [start, end): peaks, episodes and quality-control findings."""
     import pandas as pd
 
     from monitor import qc
@@ -450,10 +481,12 @@ def read_summary(out: Path, station: str, chart: float, mail: list[CaughtMail]) 
                 df.index = pd.to_datetime(df.pop("t"), unit="s", utc=True)
             return df
 
-        obs = frame("select t, value, flag from observations where station=? and sensor='primary' order by t",
-                    station)
+        t0, t1 = int(start.timestamp()), int(end.timestamp())
+        obs = frame("select t, value, flag from observations where station=? and sensor='primary' "
+                    "and t >= ? and t < ? order by t", station, t0, t1)
         good = obs[~obs["flag"].isin((4, 9))]
-        der = frame("select t, smoothed from derived where station=? order by t", station)
+        der = frame("select t, smoothed from derived where station=? and t >= ? and t < ? order by t",
+                    station, t0, t1)
         if len(good):
             t = good["value"].idxmax()
             s.highest = (t, float(good.loc[t, "value"]) - chart)
@@ -467,7 +500,7 @@ def read_summary(out: Path, station: str, chart: float, mail: list[CaughtMail]) 
             if _table(con, "alert_episodes") else []
         if _table(con, "qc_tests"):
             tests = frame("select t, spike, flat, multi from qc_tests where station=? and sensor='primary' "
-                          "order by t", station)
+                          "and t >= ? and t < ? order by t", station, t0, t1)
             s.spikes = list(tests.index[tests["spike"] == qc.FAIL])
             fl = qc.episodes(tests["flat"], at_least=qc.SUSPECT)
             s.flat = sorted(zip(fl["start"], fl["end"]))
@@ -476,7 +509,7 @@ def read_summary(out: Path, station: str, chart: float, mail: list[CaughtMail]) 
         s.gaps = list(zip(gaps["start"], gaps["end"]))
     finally:
         con.close()
-    checks = technician_checks(store, station)
+    checks = technician_checks(store, station, start, end)
     s.drift = checks.get("drift", {})
     s.clock = checks.get("clock", [])
     return s
@@ -510,15 +543,15 @@ def print_summary(s: Summary, out: Path, tz: str) -> None:
     p("For the technician (quality control and diagnostics):")
     p(f"  spikes          {len(s.spikes)} sample(s) failed: " + ", ".join(_local(t, tz)[4:] for t in s.spikes))
     for a, b in s.flat:
-        p(f"  flat line       {_local(a, tz)} to {_local(b, tz)[-9:]}")
+        p(f"  flat line       {_local(a, tz)} to {_until(a, b, tz)}")
     for a, b in s.gaps:
-        p(f"  gap             no data between {_local(a, tz)} and {_local(b, tz)[-9:]}")
+        p(f"  gap             no data between {_local(a, tz)} and {_until(a, b, tz)}")
     if s.drift and s.drift.get("bins"):
         p(f"  sensor drift    primary - backup {s.drift['drift_mm_per_day']:+.1f} mm/day "
           f"({s.drift['drift_low']:+.1f} to {s.drift['drift_high']:+.1f}, 95%)")
     for c in s.clock:
         p(f"  backup clock    {abs(c['lag_min']):.1f} min {'late' if c['lag_min'] > 0 else 'early'} "
-          f"from about {_local(c['start'], tz)} to {_local(c['end'], tz)[-9:]}")
+          f"from about {_local(c['start'], tz)} to {_until(c['start'], c['end'], tz)}")
     p(f"  sensors differ  {s.multi} primary sample(s) more than 5 cm from the backup")
     p("")
     if s.caution_missing:
@@ -574,10 +607,16 @@ def run_demo(out: Path = DEFAULT_OUT, short: bool = False, speedup: float | None
     constants = out / "constants.toml"
     fit_constants(SAMPLES / "history.csv", constants, log)
 
+    # Written once with a placeholder port so that ingest can read it; rewritten below with
+    # the mail server's port.
+    config = write_config(DEMO / "config.toml", out, 25, feeds, constants, speedup)
+    step("Loading the last five weeks of history into the store (quaywatch ingest) ...")
+    ingest_history(SAMPLES / "history.csv", config, port, start, log)
+
     catcher = MailCatcher(out / "mail")
     port_no = catcher.start()
     try:
-        config = write_config(DEMO / "config.toml", out, port_no, feeds, constants, speedup)
+        write_config(DEMO / "config.toml", out, port_no, feeds, constants, speedup)
         step(f"Running the daemon (quaywatch run) on the replay feeds; mail to 127.0.0.1:{port_no} ...")
         run_daemon(config, out / "daemon.log", timeout)
         time.sleep(0.5)  # the last SMTP transaction may still be closing
@@ -596,7 +635,7 @@ def run_demo(out: Path = DEFAULT_OUT, short: bool = False, speedup: float | None
         write_qc(config, station, start, end, out / "qc.txt")
 
     step("Reading back what was found ...")
-    summary = read_summary(out, station, chart, catcher.caught)
+    summary = read_summary(out, station, chart, catcher.caught, start, end)
     if not quiet:
         print_summary(summary, out, tz)
     return summary
