@@ -2,18 +2,23 @@
 
 ``python -m monitor.demo`` (``make demo``):
 
-1. fits harmonic constants to eight weeks of history (``quaywatch fit``);
+1. fits harmonic constants to 190 days of history (``quaywatch fit``) and loads the last
+   five weeks of it into the store (``quaywatch ingest``), so the high water forecast has
+   a residual history for its uncertainty;
 2. starts a local SMTP server on loopback that keeps every message as
    ``demo-output/mail/NNN-*.eml``;
-3. runs the real daemon (``quaywatch run``, a subprocess) on the storm week through its
-   replay feeds, until the feeds are exhausted;
-4. writes a report for each local day (``quaywatch report``) under ``demo-output/reports/``;
+3. runs the real daemon (``quaywatch run --until-exhausted``, a subprocess) on the storm
+   week through its replay feeds;
+4. writes a report for each local day (``quaywatch report``) under ``demo-output/reports/``
+   and the technician's quality-control summary (``quaywatch qc``) as ``demo-output/qc.txt``;
 5. prints a summary: the surge peak, the alerts sent and cleared, the faults that quality
-   control found, and the paths to open.
+   control found, the backup's drift and clock, whether every email and report carries the
+   caution, and the paths to open.
 
 Everything goes under ``demo-output/``, removed and made again on each run. The scenario is
 in ``sample_feeds/`` (made by ``sample_feeds/generate.py``) and ``demo/``. ``--short`` (or
-``QUAYWATCH_DEMO_SHORT=1``) replays only the two and a half days around the storm, for tests.
+``QUAYWATCH_DEMO_SHORT=1``) replays only the days around the storm and writes the storm
+day's report only, for tests; ``--speedup 0`` replays as fast as the daemon reads.
 
 All of it is an automated, unofficial aid: official warnings and the local emergency
 authorities come first.

@@ -3,7 +3,7 @@
 Deterministic (fixed seed): running it twice writes the same bytes. It reads the invented
 port constants from ``demo/port.toml`` and writes, beside this file:
 
-- ``history.csv``: eight weeks of six-minute levels (``time,level``; metres on the station
+- ``history.csv``: 190 days of six-minute levels (``time,level``; metres on the station
   datum) for fitting the harmonic constants;
 - ``storm/``: the storm week at one-minute steps from two sensors, each in its own raw
   format, and a barometer; with faults injected for the technician to find;
