@@ -23,11 +23,8 @@ from pathlib import Path
 from typing import Any, Iterable, Mapping, Sequence
 from zoneinfo import ZoneInfo, ZoneInfoNotFoundError
 
-import jinja2
 import numpy as np
 import pandas as pd
-
-from alerts import charts
 
 CAUTION = (
     "This report is automated and unofficial. Official warnings and the local emergency "
@@ -464,7 +461,11 @@ def day_figures(report: DayReport) -> DayFigures:
 # --------------------------------------------------------------------------- rendering
 
 
-def _environment() -> jinja2.Environment:
+def _environment() -> "jinja2.Environment":
+    # Imported here, like the charts (matplotlib): every command loads the configuration,
+    # which reads this module's settings, and none of those needs a template or a figure.
+    import jinja2
+
     env = jinja2.Environment(
         loader=jinja2.FileSystemLoader(str(TEMPLATES)),
         autoescape=jinja2.select_autoescape(enabled_extensions=("html",), default_for_string=True,
@@ -562,6 +563,8 @@ def _context(report: DayReport, chart_src: str, trend_src: str | None) -> dict[s
 
 def render_day_html(report: DayReport) -> str:
     """Render a station's day as one self-contained HTML page (images inline as data URIs)."""
+    from alerts import charts
+
     chart_src = _data_uri(charts.day_chart(report))
     trend = charts.trend_chart(report.diagnostics)
     return _environment().get_template("report_day.html").render(
@@ -584,6 +587,8 @@ class ReportEmail:
 
 def render_day_email(report: DayReport) -> ReportEmail:
     """Render a station's day for email: HTML part with Content-ID images, plain-text part."""
+    from alerts import charts
+
     stamp = f"{report.station_id}-{report.day.isoformat()}@quaywatch.invalid"
     images = {f"chart-{stamp}": charts.day_chart(report)}
     trend = charts.trend_chart(report.diagnostics)

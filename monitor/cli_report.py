@@ -8,10 +8,19 @@ from __future__ import annotations
 import datetime as dt
 
 from monitor.errors import UserError
-from monitor.reporting import write_due_reports  # noqa: F401  (the daemon's entry point)
 
 CAUTION_LINE = ("Automated and unofficial: official warnings and local emergency authorities "
                 "come first; defer to local codes and licensed practice.")
+
+
+def __getattr__(name: str):
+    # ``write_due_reports`` stays importable from here without loading the reporting
+    # stack (pandas, templates, charts) each time the command line starts.
+    if name == "write_due_reports":
+        from monitor.reporting import write_due_reports
+
+        return write_due_reports
+    raise AttributeError(f"module {__name__!r} has no attribute {name!r}")
 
 
 def register(subparsers) -> None:
