@@ -21,7 +21,7 @@ import pandas as pd  # noqa: E402
 from matplotlib.figure import Figure  # noqa: E402
 
 if TYPE_CHECKING:
-    from alerts.report import AlertLevel, DayReport, Diagnostic
+    from alerts.report import AlertLevel, DayReport, Diagnostic, StaffCheck
 
 # Palette of our own; each role also has a line style or marker shape.
 OBSERVED = "#0b4f71"
@@ -218,6 +218,46 @@ def trend_chart(diagnostics: Sequence["Diagnostic"], dpi: int = 110) -> bytes | 
         ax.grid(True, color="#eeeeee")
     for ax in axes[n:]:
         ax.set_visible(False)
+    buffer = io.BytesIO()
+    fig.savefig(buffer, format="png", metadata={"Software": None})
+    return buffer.getvalue()
+
+
+def staff_chart(staff: "StaffCheck", width: float = 4.2, height: float = 3.4, dpi: int = 110) -> bytes | None:
+    """The Van de Casteele diagram of the latest staff session; ``None`` without points.
+
+    Each staff reading is drawn at (gauge - staff [mm], staff level [m]); rising-tide
+    readings as upward triangles, falling-tide readings as downward ones. A perfect gauge
+    gives a vertical line on zero; an offset shifts it sideways, a scale error slants it,
+    and a timing error opens it into a loop (rising and falling sides apart).
+
+    References
+    ----------
+    IOC (1985, 2006). Manual on Sea Level Measurement and Interpretation, Vols. I and IV
+    (the Van de Casteele test and diagram).
+    """
+    points = staff.points if staff is not None else None
+    if points is None or len(points) == 0:
+        return None
+    fig = Figure(figsize=(width, height), dpi=dpi)
+    ax = fig.subplots()
+    fig.subplots_adjust(left=0.17, right=0.97, top=0.9, bottom=0.15)
+    diff_mm = points["difference"].to_numpy(dtype=float) / 1e-3
+    level = points["staff"].to_numpy(dtype=float)
+    rising = points["rate"].to_numpy(dtype=float) >= 0
+    ax.axvline(0.0, color="#444444", linewidth=0.8, zorder=1)
+    ax.scatter(diff_mm[rising], level[rising], marker="^", s=30, color=OBSERVED, label="rising tide", zorder=3)
+    ax.scatter(diff_mm[~rising], level[~rising], marker="v", s=30, facecolors="none", edgecolors=RESIDUAL,
+               linewidths=1.2, label="falling tide", zorder=3)
+    span = max(20.0, float(np.nanmax(np.abs(diff_mm))) * 1.25) if np.isfinite(diff_mm).any() else 20.0
+    ax.set_xlim(-span, span)
+    ax.set_xlabel("Gauge minus staff [mm]", fontsize=8)
+    ax.set_ylabel("Staff level [m]", fontsize=8)
+    ax.set_title("Van de Casteele diagram, latest session", fontsize=9, loc="left")
+    ax.tick_params(labelsize=7)
+    ax.grid(True, color="#eeeeee")
+    ax.spines[["top", "right"]].set_visible(False)
+    ax.legend(fontsize=7, frameon=False, loc="best")
     buffer = io.BytesIO()
     fig.savefig(buffer, format="png", metadata={"Software": None})
     return buffer.getvalue()

@@ -243,14 +243,65 @@ def compose_test(now: int | float, host: str = "") -> tuple[str, str, str]:
             _env_html.get_template("alert_test.html").render(ctx))
 
 
+def _cid_references(html: str | None) -> list[str]:
+    """The Content-IDs an HTML body cites as ``cid:`` URLs (RFC 2392), in order, once each."""
+    if not html:
+        return []
+    return list(dict.fromkeys(_CID_REF.findall(html)))
+
+
+_CID_REF = re.compile(r"""cid:([^"'\s)>]+)""", re.IGNORECASE)
+
+
+def _inline_id(att: dict, cited: list[str]) -> str | None:
+    """The Content-ID (without brackets) under which an attachment goes inline, or ``None``.
+
+    An explicit ``content_id`` wins. An image without one goes inline when the HTML cites a
+    ``cid:`` whose local part (before ``@``) is its file name, so a message that went through
+    a store which kept only file name, type and data still shows its images in place.
+    """
+    cid = att.get("content_id") or att.get("cid")
+    if cid:
+        return clean_header(cid, 200).strip("<>")
+    if not str(att.get("content_type") or "").lower().startswith("image/"):
+        return None
+    name = att.get("filename")
+    for ref in cited:
+        if name and (ref == name or ref.split("@", 1)[0] == name):
+            return ref
+    return None
+
+
 def build_email(sender: str, recipient: str, subject: str, text: str, html: str | None,
                 message_id: str, *, date: float | None = None, reply_to: str | None = None,
                 attachments: Iterable[dict] = ()) -> EmailMessage:
-    """A MIME message: plain text, optional HTML alternative, optional attachments.
+    """A MIME message: plain text, optional HTML alternative with inline images, attachments.
 
-    Attachments are dicts with ``filename``, ``content_type`` and ``data`` (bytes).
-    Header values are cleaned of control characters first, so nothing configured or
-    received can add a header.
+    Parameters
+    ----------
+    sender, recipient, subject, message_id : str
+        Header values; cleaned of control characters first, so nothing configured or
+        received can add a header.
+    text : str
+        The plain-text body (always the first alternative).
+    html : str or None
+        The HTML alternative; it may cite images as ``cid:<id>``.
+    attachments : iterable of dict
+        ``filename``, ``content_type``, ``data`` (bytes) and optionally ``content_id``
+        (without angle brackets). An attachment with a content id (or an image the HTML
+        cites as ``cid:<filename>@...``) becomes an inline part of a ``multipart/related``
+        around the HTML; every other attachment is a plain attachment.
+
+    Returns
+    -------
+    EmailMessage
+        ``multipart/alternative`` (text, then HTML or ``multipart/related`` of HTML and its
+        images), wrapped in ``multipart/mixed`` when there are plain attachments.
+
+    References
+    ----------
+    RFC 2046 section 5.1.4 (multipart/alternative); RFC 2387 (multipart/related);
+    RFC 2392 (``cid:`` URLs and Content-ID).
     """
     msg = EmailMessage()
     msg["From"] = clean_header(sender)
@@ -263,9 +314,22 @@ def build_email(sender: str, recipient: str, subject: str, text: str, html: str 
                                   else datetime.now(timezone.utc))
     msg["Auto-Submitted"] = "auto-generated"  # RFC 3834: keeps auto-responders from replying
     msg.set_content(text)
+    cited = _cid_references(html)
+    inline: list[tuple[dict, str]] = []
+    plain: list[dict] = []
+    for att in attachments:
+        cid = _inline_id(att, cited) if html else None
+        (inline.append((att, cid)) if cid else plain.append(att))
     if html:
         msg.add_alternative(html, subtype="html")
-    for att in attachments:
+        html_part = msg.get_payload()[1]
+        for att, cid in inline:
+            maintype, _, subtype = (att.get("content_type") or "application/octet-stream").partition("/")
+            # add_related turns the HTML part into multipart/related (HTML first, the root).
+            html_part.add_related(att["data"], maintype=maintype, subtype=subtype or "octet-stream",
+                                  cid=f"<{cid}>", disposition="inline",
+                                  filename=clean_header(att.get("filename") or cid.split("@")[0], 120))
+    for att in plain:
         maintype, _, subtype = (att.get("content_type") or "application/octet-stream").partition("/")
         msg.add_attachment(att["data"], maintype=maintype, subtype=subtype or "octet-stream",
                            filename=clean_header(att.get("filename") or "attachment", 120))

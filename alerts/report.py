@@ -177,6 +177,77 @@ class RejectRow:
     text: str = ""
 
 
+@dataclass(frozen=True)
+class HighWaterForecast:
+    """The next high water forecast: predicted high water plus the current residual.
+
+    Levels in metres on the report's datum; ``lower``/``upper`` bound the range that covers
+    ``coverage`` of the station's past residual changes over the same lead time (``None``
+    when the history is too short, and ``note`` says why).
+    """
+
+    time: pd.Timestamp
+    predicted: float
+    residual_now: float
+    forecast: float
+    made_at: pd.Timestamp
+    lower: float | None = None
+    upper: float | None = None
+    coverage: float | None = None
+    note: str = ""
+
+    @property
+    def lead(self) -> pd.Timedelta:
+        return self.time - self.made_at
+
+
+@dataclass(frozen=True)
+class StaffCheck:
+    """The Van de Casteele check of the gauge against tide-staff readings.
+
+    The figures are those of the latest session of staff readings (``start`` to ``end``);
+    ``sessions`` counts the sessions found in the recent weeks. ``offset_mm`` is gauge minus
+    staff [mm]; ``scale_error`` [1] (0.01: the gauge shows ranges 1 % too large);
+    ``timing_s`` [s] (positive: the gauge lags the sea). ``points`` has one row per reading
+    of the latest session: ``staff`` [m, report datum], ``difference`` (gauge - staff) [m]
+    and ``rate`` [m/s], for the diagram. ``history`` is each session's offset [mm].
+    """
+
+    start: pd.Timestamp
+    end: pd.Timestamp
+    readings: int
+    sessions: int
+    offset_mm: float | None
+    offset_se_mm: float | None
+    scale_error: float | None
+    scale_se: float | None
+    timing_s: float | None
+    timing_se_s: float | None
+    rms_mm: float | None = None
+    points: pd.DataFrame = field(default_factory=lambda: pd.DataFrame(columns=["staff", "difference", "rate"]))
+    history: pd.Series = field(default_factory=lambda: pd.Series(dtype=float))
+    note: str = ""
+
+
+@dataclass(frozen=True)
+class BarometerPart:
+    """How much of the day's residual the inverse barometer explains.
+
+    ``mean_ib`` / ``min_ib`` / ``max_ib`` [m]: the inverse-barometer sea level over the day;
+    ``mean_residual`` [m] over the same samples; ``variance_explained`` [1]:
+    1 - var(residual - IB) / var(residual) (negative when removing the IB adds variance);
+    ``samples``: samples with both a residual and a pressure.
+    """
+
+    samples: int
+    mean_ib: float | None
+    min_ib: float | None
+    max_ib: float | None
+    mean_residual: float | None
+    variance_explained: float | None
+    correlation: float | None = None
+
+
 @dataclass
 class DayReport:
     """Everything a station's daily report shows.
@@ -209,6 +280,9 @@ class DayReport:
     alerts: Sequence[AlertEpisodeRow] = ()
     constants: ConstantsInfo | None = None
     generated_at: pd.Timestamp | None = None
+    forecast: HighWaterForecast | None = None
+    staff: StaffCheck | None = None
+    barometer: BarometerPart | None = None
 
 
 def empty_samples() -> pd.DataFrame:
@@ -477,7 +551,10 @@ def _environment() -> "jinja2.Environment":
     env.filters["m"] = lambda v, d=2: "\u2013" if v is None or _isnan(v) else f"{v:.{d}f} m"
     env.filters["sm"] = lambda v, d=2: "\u2013" if v is None or _isnan(v) else f"{v:+.{d}f} m".replace("-", "\u2212")
     env.filters["num"] = lambda v, d=2: "\u2013" if v is None or _isnan(v) else f"{v:.{d}f}".replace("-", "\u2212")
-    env.filters["pct"] = lambda v: "\u2013" if v is None else f"{100 * v:.1f} %"
+    env.filters["pct"] = lambda v: "\u2013" if v is None or _isnan(v) else f"{100 * v:.1f} %"
+    env.filters["pct0"] = lambda v: "\u2013" if v is None or _isnan(v) else f"{100 * v:.0f} %"
+    env.filters["pct2"] = lambda v: "\u2013" if v is None or _isnan(v) else f"{100 * v:.2f} %"
+    env.filters["pct_signed"] = lambda v: "\u2013" if v is None or _isnan(v) else f"{100 * v:+.2f} %".replace("-", "\u2212")
     env.filters["duration"] = _duration_text
     return env
 
@@ -538,7 +615,22 @@ def _summary(report: DayReport, figures: DayFigures) -> dict[str, Any]:
     }
 
 
-def _context(report: DayReport, chart_src: str, trend_src: str | None) -> dict[str, Any]:
+def _forecast_margins(report: DayReport) -> list[tuple[str, float, float, bool]]:
+    """For each operator level watched upwards: (name, level, forecast - level, reached),
+    ``reached`` when the forecast or the top of its range is at or above the level [m]."""
+    w = report.forecast
+    if w is None:
+        return []
+    out = []
+    for lv in report.alert_levels:
+        if lv.quantity == "level" and lv.direction == "above":
+            top = max(w.forecast, w.upper if w.upper is not None else w.forecast)
+            out.append((lv.name, lv.value, w.forecast - lv.value, top >= lv.value))
+    return out
+
+
+def _context(report: DayReport, chart_src: str, trend_src: str | None,
+             staff_src: str | None = None) -> dict[str, Any]:
     figures = day_figures(report)
     clock = _Clock(report.tz, figures.start, figures.end)
     tests = [t for t in QC_TEST_NAMES if t in report.qc_counts] + sorted(
@@ -553,12 +645,20 @@ def _context(report: DayReport, chart_src: str, trend_src: str | None) -> dict[s
         "day_text": report.day.strftime("%A %d %B %Y"),
         "chart_src": chart_src,
         "trend_src": trend_src,
+        "staff_src": staff_src,
         "flag_words": FLAG_WORDS,
         "qc_tests": [(t, QC_TEST_NAMES.get(t, t)) for t in tests],
         "qc_flags": [3, 4, 9, 2, 1],
         "generated": clock(generated, date=True) + " local, " + pd.Timestamp(generated).tz_convert("UTC").strftime("%Y-%m-%d %H:%M UTC"),
         "summary_json": json.dumps(_summary(report, figures), sort_keys=True),
+        "hw_levels": _forecast_margins(report),
     }
+
+
+def _extra_charts(report: DayReport, charts: Any) -> dict[str, bytes | None]:
+    """The report's smaller charts: diagnostic trends and the staff (Van de Casteele) diagram."""
+    return {"trend": charts.trend_chart(report.diagnostics),
+            "staff": charts.staff_chart(report.staff) if report.staff is not None else None}
 
 
 def render_day_html(report: DayReport) -> str:
@@ -566,9 +666,9 @@ def render_day_html(report: DayReport) -> str:
     from alerts import charts
 
     chart_src = _data_uri(charts.day_chart(report))
-    trend = charts.trend_chart(report.diagnostics)
+    extra = {k: _data_uri(v) if v else None for k, v in _extra_charts(report, charts).items()}
     return _environment().get_template("report_day.html").render(
-        **_context(report, chart_src, _data_uri(trend) if trend else None), for_email=False)
+        **_context(report, chart_src, extra["trend"], extra["staff"]), for_email=False)
 
 
 @dataclass(frozen=True)
@@ -576,7 +676,8 @@ class ReportEmail:
     """A report in the form mail clients show well.
 
     ``html`` refers to its images as ``cid:<key>``; ``images`` maps each key (a Content-ID
-    without angle brackets) to PNG bytes. ``text`` is the plain-text summary part.
+    without angle brackets, ``<file name>@quaywatch.invalid``) to PNG bytes. ``text`` is the
+    plain-text summary part.
     """
 
     subject: str
@@ -584,18 +685,29 @@ class ReportEmail:
     html: str
     images: dict[str, bytes]
 
+    def attachments(self) -> list[dict]:
+        """The images as attachment dicts for :func:`alerts.message.build_email` (through the
+        outbox): ``filename``, ``content_type``, ``data`` and ``content_id``, so they go inline."""
+        return [{"filename": cid.split("@", 1)[0], "content_type": "image/png", "data": png, "content_id": cid}
+                for cid, png in self.images.items()]
+
 
 def render_day_email(report: DayReport) -> ReportEmail:
-    """Render a station's day for email: HTML part with Content-ID images, plain-text part."""
+    """Render a station's day for email: HTML part with Content-ID images, plain-text part.
+
+    The image keys are ``<station>-<day>-<what>.png@quaywatch.invalid``: their local part is
+    the file name, which lets the images go inline even through a queue that keeps only the
+    file name of an attachment (see :func:`alerts.message.build_email`).
+    """
     from alerts import charts
 
-    stamp = f"{report.station_id}-{report.day.isoformat()}@quaywatch.invalid"
-    images = {f"chart-{stamp}": charts.day_chart(report)}
-    trend = charts.trend_chart(report.diagnostics)
-    if trend:
-        images[f"trend-{stamp}"] = trend
+    stem = f"{report.station_id}-{report.day.isoformat()}"
+    domain = "@quaywatch.invalid"
+    pngs = {"chart": charts.day_chart(report), **_extra_charts(report, charts)}
+    images = {f"{stem}-{what}.png{domain}": png for what, png in pngs.items() if png}
+    sources = {what: f"cid:{stem}-{what}.png{domain}" if png else None for what, png in pngs.items()}
     env = _environment()
-    context = _context(report, f"cid:chart-{stamp}", f"cid:trend-{stamp}" if trend else None)
+    context = _context(report, sources["chart"], sources.get("trend"), sources.get("staff"))
     html_part = env.get_template("report_day.html").render(**context, for_email=True)
     text = env.get_template("report_summary.txt").render(**context)
     f = context["f"]
@@ -708,7 +820,7 @@ def check_zone(tz: str) -> str | None:
 
 
 __all__: Iterable[str] = [
-    "AlertEpisodeRow", "AlertLevel", "CAUTION", "ConstantsInfo", "ConstituentRow", "DayFigures",
+    "AlertEpisodeRow", "AlertLevel", "BarometerPart", "CAUTION", "HighWaterForecast", "StaffCheck", "ConstantsInfo", "ConstituentRow", "DayFigures",
     "DayReport", "Delivery", "Diagnostic", "QcEpisode", "RejectRow", "ReportEmail",
     "ReportSettings", "TideRow", "day_bounds", "day_figures", "empty_samples", "prune_reports",
     "read_summary", "render_day_email", "render_day_html", "render_index_html",

@@ -70,6 +70,43 @@ def qc_counts(tests: pd.DataFrame) -> dict[str, dict[int, int]]:
     return out
 
 
+def barometric_share(residual: pd.Series | np.ndarray, barometric: pd.Series | np.ndarray) -> dict:
+    """How much of a residual the inverse barometer explains.
+
+    Parameters
+    ----------
+    residual, barometric : array-like
+        Residual and inverse-barometer sea level at the same instants [m]; samples where
+        either is missing are left out.
+
+    Returns
+    -------
+    dict
+        ``samples``; ``mean_ib``, ``min_ib``, ``max_ib``, ``mean_residual`` [m];
+        ``variance_explained`` = 1 - var(residual - IB) / var(residual) [1] and the
+        correlation of the two (``None`` with fewer than 3 samples or a flat residual).
+
+    References
+    ----------
+    Pugh, D., Woodworth, P. (2014). Sea-Level Science, ch. 7 (the inverted barometer; removing
+    it from the residual). Fraction of variance explained: the usual 1 - SS_res / SS_tot.
+    """
+    r = np.asarray(residual, dtype=float)
+    b = np.asarray(barometric, dtype=float)
+    ok = np.isfinite(r) & np.isfinite(b)
+    r, b = r[ok], b[ok]
+    out: dict[str, Any] = {"samples": int(ok.sum()), "mean_ib": None, "min_ib": None, "max_ib": None,
+                           "mean_residual": None, "variance_explained": None, "correlation": None}
+    if len(r) == 0:
+        return out
+    out.update(mean_ib=float(b.mean()), min_ib=float(b.min()), max_ib=float(b.max()), mean_residual=float(r.mean()))
+    if len(r) >= 3 and np.var(r) > 0:
+        out["variance_explained"] = float(1.0 - np.var(r - b) / np.var(r))
+        if np.var(b) > 0:
+            out["correlation"] = float(np.corrcoef(r, b)[0, 1])
+    return out
+
+
 def _report_datum(station: Any) -> tuple[str, float]:
     datums = dict(getattr(station, "datums", {}) or {})
     if "chart" in datums:
@@ -161,6 +198,22 @@ def gather_day(store: Any, station: Any, day: dt.date, settings: R.ReportSetting
         before = store.observations(sid, "primary", t0 - 7 * 86400, t0 - 1)
         sample_interval = R.infer_interval(before.index)
 
+    barometer = None
+    if len(samples) and len(derived) and derived["barometric"].notna().any():
+        usable = samples[~samples["flag"].isin([4, 9])]
+        share = barometric_share(usable["residual"], derived["barometric"].reindex(usable.index))
+        barometer = R.BarometerPart(**share) if share["samples"] else None
+    now = now or pd.Timestamp.now(tz="UTC")
+    forecast = staff = None
+    try:
+        forecast = _forecast(store, sid, model, start, end, now, shift)
+    except Exception:  # the forecast must never stop the day's report
+        log.exception("station %s: next high water forecast for the report failed", sid)
+    try:
+        staff = _staff(store, sid, end, settings.trend_weeks, shift)
+    except Exception:
+        log.exception("station %s: tide-staff check for the report failed", sid)
+
     rejects, rejected = _rejects(db, sid, t0, t1)
     counts, episodes = _qc(store, sid, t0, t1)
     return R.DayReport(
@@ -171,8 +224,98 @@ def gather_day(store: Any, station: Any, day: dt.date, settings: R.ReportSetting
         rejected_lines=rejected, rejects=rejects, qc_counts=counts, qc_episodes=episodes,
         diagnostics=_diagnostics(store, station, model, end, settings.trend_weeks),
         alerts=_alerts(db, sid, t0, t1), constants=_constants(store, sid, model, model_source),
-        generated_at=now or pd.Timestamp.now(tz="UTC"),
+        generated_at=now, forecast=forecast, staff=staff, barometer=barometer,
     )
+
+
+def _forecast(store: Any, sid: str, model: Any, start: pd.Timestamp, end: pd.Timestamp, now: pd.Timestamp,
+              shift: float) -> R.HighWaterForecast | None:
+    """The next high water forecast as the report is written.
+
+    The daemon's latest forecast (table ``hw_forecasts``) made during the day or since; else,
+    with a model, one computed here from the last smoothed residual before the report's
+    moment (the end of the day, or now if earlier) by :func:`monitor.residual.forecast_high_water`.
+    """
+    from monitor import residual as RS
+
+    db = store.db
+    made_before = int(now.timestamp())
+    if _table(db, "hw_forecasts"):
+        cur = db.conn.execute("SELECT * FROM hw_forecasts WHERE station = ? AND made_t BETWEEN ? AND ? "
+                              "AND hw_t >= made_t ORDER BY made_t DESC, hw_t ASC LIMIT 1",
+                              (sid, int(start.timestamp()), made_before))
+        row = cur.fetchone()
+        if row:
+            fc = dict(zip([d[0] for d in cur.description], row))
+            return _forecast_row(fc, shift)
+    if model is None:
+        return None
+    at = min(now, end)
+    at_t = int(at.timestamp())
+    history = store.derived(sid, at_t - 8 * 7 * 86400, at_t)["smoothed"].dropna()
+    recent = history[history.index >= at - pd.Timedelta(hours=1)]
+    if recent.empty:
+        return None
+    extremes = model.high_low(at, at + pd.Timedelta(hours=14))
+    highs = extremes[extremes["kind"] == "high"]
+    if highs.empty:
+        return None
+    hw = pd.Timestamp(highs["time"].iloc[0])
+    hw = hw.tz_localize("UTC") if hw.tz is None else hw.tz_convert("UTC")
+    fc = RS.forecast_high_water(recent.index[-1].timestamp(), float(recent.iloc[-1]), hw.timestamp(),
+                                float(highs["level"].iloc[0]), history)
+    return _forecast_row(fc, shift)
+
+
+def _forecast_row(fc: dict, shift: float) -> R.HighWaterForecast:
+    """A forecast dict of :func:`monitor.residual.forecast_high_water` on the report's datum."""
+    def level(v: Any) -> float | None:
+        v = _num(v)
+        return None if v is None else v - shift
+
+    return R.HighWaterForecast(
+        time=_ts(fc["hw_t"]), predicted=level(fc["predicted_high"]), residual_now=_num(fc["residual_now"]),
+        forecast=level(fc["forecast"]), made_at=_ts(fc["made_t"]), lower=level(fc.get("lower")),
+        upper=level(fc.get("upper")), coverage=_num(fc.get("coverage")), note=fc.get("note") or "")
+
+
+def _staff(store: Any, sid: str, end: pd.Timestamp, weeks: int, shift: float) -> R.StaffCheck | None:
+    """The Van de Casteele check of the latest staff session in the recent weeks, if any."""
+    from monitor import diagnostics as D
+
+    db = store.db
+    if not _table(db, "staff_readings"):
+        return None
+    t_end = int(end.timestamp())
+    t_start = int((end - weeks * WEEK).timestamp())
+    rows = db.conn.execute("SELECT t, reading FROM staff_readings WHERE station = ? AND t BETWEEN ? AND ? ORDER BY t",
+                           (sid, t_start, t_end)).fetchall()
+    if not rows:
+        return None
+    readings = pd.Series([r[1] for r in rows], dtype=float,
+                         index=pd.to_datetime(np.asarray([r[0] for r in rows], dtype=np.int64), unit="s", utc=True))
+    gauge = _series(store, sid, "primary", t_start - 3600, t_end + 3600)
+    sessions = D.staff_sessions(readings, gauge)
+    if sessions.empty:
+        return None
+    sessions = sessions.dropna(subset=["offset_mm"])
+    if sessions.empty:
+        return None
+    last = sessions.iloc[-1]
+    first_t, last_t = pd.Timestamp(last["start"]), pd.Timestamp(last["end"])
+    first_t = first_t.tz_localize("UTC") if first_t.tz is None else first_t.tz_convert("UTC")
+    last_t = last_t.tz_localize("UTC") if last_t.tz is None else last_t.tz_convert("UTC")
+    part = readings[(readings.index >= first_t) & (readings.index <= last_t)]
+    near = gauge[(gauge.index >= first_t - pd.Timedelta(hours=1)) & (gauge.index <= last_t + pd.Timedelta(hours=1))]
+    points = D.van_de_casteele(part, near)["points"]
+    points = points.assign(staff=points["staff"].astype(float) - shift)
+    history = pd.Series(sessions["offset_mm"].to_numpy(dtype=float), index=pd.DatetimeIndex(sessions.index))
+    return R.StaffCheck(
+        start=first_t, end=last_t, readings=int(last["n"]), sessions=len(sessions),
+        offset_mm=_num(last["offset_mm"]), offset_se_mm=_num(last["offset_se_mm"]),
+        scale_error=_num(last["scale_error"]), scale_se=_num(last["scale_se"]),
+        timing_s=_num(last["timing_error_s"]), timing_se_s=_num(last["timing_se_s"]), rms_mm=_num(last["rms_mm"]),
+        points=points, history=history)
 
 
 def _tides(model: Any, usable: pd.Series, start: pd.Timestamp, end: pd.Timestamp,
@@ -426,21 +569,19 @@ def write_station_day(config: Any, store: Any, station: Any, day: dt.date, *, se
     return path
 
 
-def queue_email(store: Any, report: R.DayReport, recipients: Iterable[str], path: Path,
+def queue_email(store: Any, report: R.DayReport, recipients: Iterable[str], path: Path | None = None,
                 now: pd.Timestamp | None = None) -> list[int]:
     """Queue the report to ``recipients`` through the outbox, once per station and day.
 
-    The HTML part is the self-contained page (chart embedded); the chart also goes as a PNG
-    attachment for mail clients that hide embedded images; the text part is the summary.
+    The HTML part cites its charts by Content-ID and the charts travel as inline images
+    (multipart/related, RFC 2387), which mail clients show in place, unlike data: URIs;
+    the text part is the summary. ``path`` (the written page) is not needed any more.
     """
-    from alerts import charts
     from alerts.outbox import enqueue
 
     mail = R.render_day_email(report)
-    html = path.read_text(encoding="utf-8")
-    attachments = [(f"{report.station_id}-{report.day.isoformat()}.png", charts.day_chart(report), "image/png")]
-    return enqueue(store.db, list(recipients), mail.subject, mail.text, html, kind="report",
-                   key=f"report/{report.station_id}/{report.day.isoformat()}", attachments=attachments,
+    return enqueue(store.db, list(recipients), mail.subject, mail.text, mail.html, kind="report",
+                   key=f"report/{report.station_id}/{report.day.isoformat()}", attachments=mail.attachments(),
                    now=int((now or pd.Timestamp.now(tz="UTC")).timestamp()))
 
 

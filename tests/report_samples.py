@@ -10,8 +10,8 @@ import numpy as np
 import pandas as pd
 
 from alerts.report import (
-    AlertEpisodeRow, AlertLevel, ConstantsInfo, ConstituentRow, DayReport, Delivery, Diagnostic,
-    QcEpisode, RejectRow, TideRow, day_bounds, empty_samples,
+    AlertEpisodeRow, AlertLevel, BarometerPart, ConstantsInfo, ConstituentRow, DayReport, Delivery, Diagnostic,
+    HighWaterForecast, QcEpisode, RejectRow, StaffCheck, TideRow, day_bounds, empty_samples,
 )
 
 # An invented port on a zone with daylight saving (UTC+00:00 in winter, UTC+01:00 in summer).
@@ -28,8 +28,10 @@ def tide(times: pd.DatetimeIndex) -> np.ndarray:
 
 def sample_report(day: dt.date = dt.date(2024, 3, 12), *, tz: str = TZ, name: str = "Skerrin Quay",
                   note: str = "", gap: tuple[float, float] | None = None, empty: bool = False,
-                  step_minutes: int = 6) -> DayReport:
+                  step_minutes: int = 6, extras: bool = True) -> DayReport:
     """A day with a small surge, a spike (failed), two suspect samples and one alert episode.
+
+    With ``extras`` it also has a next high water forecast, a tide-staff session and a barometer.
 
     ``gap`` is (from, to) in hours after local midnight with no samples.
     """
@@ -96,7 +98,35 @@ def sample_report(day: dt.date = dt.date(2024, 3, 12), *, tz: str = TZ, name: st
             fitted_at=pd.Timestamp("2024-02-01", tz="UTC"), record_start=pd.Timestamp("2023-12-01", tz="UTC"),
             record_end=pd.Timestamp("2024-01-31", tz="UTC"), samples=14880, rms=0.071, variance_explained=0.987),
         generated_at=end + 6 * HOUR,
+        forecast=sample_forecast(end + 6 * HOUR) if extras and not empty else None,
+        staff=sample_staff(start + 8 * HOUR) if extras and not empty else None,
+        barometer=BarometerPart(samples=len(samples), mean_ib=0.12, min_ib=0.05, max_ib=0.19, mean_residual=0.15,
+                                variance_explained=0.62, correlation=0.79) if extras and not empty else None,
     )
+
+
+def sample_forecast(made_at: pd.Timestamp) -> HighWaterForecast:
+    """The next high water after ``made_at`` with a 0.12 m residual persisted (invented range)."""
+    hw = next(t for t, kind in _turning_points(made_at, made_at + 14 * HOUR) if kind == "high")
+    predicted = float(tide(pd.DatetimeIndex([hw]))[0])
+    return HighWaterForecast(time=hw, predicted=predicted, residual_now=0.12, forecast=predicted + 0.12,
+                             made_at=made_at, lower=predicted + 0.02, upper=predicted + 0.27, coverage=0.9,
+                             note="90% range from how the residual changed over the lead time in 35 days of history")
+
+
+def sample_staff(first: pd.Timestamp, offset: float = 0.014, scale: float = 0.004, lag_s: float = 150.0) -> StaffCheck:
+    """A staff session of 13 half-hourly readings over a tide, with a gauge that reads
+    ``offset`` [m] high, ``scale`` too large and ``lag_s`` late (invented)."""
+    times = pd.date_range(first, periods=13, freq="30min")
+    staff = tide(times)
+    rate = np.gradient(staff, 1800.0)
+    diff = offset + scale * (staff - staff.mean()) - lag_s * rate
+    points = pd.DataFrame({"staff": staff, "difference": diff, "rate": rate}, index=times)
+    return StaffCheck(start=times[0], end=times[-1], readings=len(times), sessions=3, offset_mm=offset * 1e3,
+                      offset_se_mm=1.2, scale_error=scale, scale_se=0.0015, timing_s=lag_s, timing_se_s=20.0,
+                      rms_mm=2.5, points=points,
+                      history=pd.Series([12.0, 13.1, offset * 1e3], index=times[:1].append(times[:1]).append(times[:1])
+                                        - pd.to_timedelta([14, 7, 0], unit="D")))
 
 
 def _turning_points(start: pd.Timestamp, end: pd.Timestamp) -> list[tuple[pd.Timestamp, str]]:

@@ -128,3 +128,63 @@ def test_fault_line_names_sensor_value_limit_and_local_since():
     fault = {"kind": "stuck_sensor", "sensor": "primary", "value": 62.0, "limit": 30.0, "unit": "min", "since": T}
     _, text, _ = compose_alert(STATION, rule, Event("opened", 0, T, 1), {"faults": [fault]})
     assert "stuck sensor on primary: 62.0 min (limit 30.0 min), since 2025-10-23 13:00 IST" in text
+
+
+# --- inline images (RFC 2387 multipart/related, RFC 2392 cid: URLs) ---------------------------------
+
+PNG = b"\x89PNG\r\n\x1a\n" + b"\x00" * 32  # a PNG signature (PNG spec, ISO/IEC 15948) and filler
+CID = "skq-2024-03-12-chart.png@quaywatch.invalid"
+HTML_WITH_IMAGE = f'<p>Report</p><img src="cid:{CID}" alt="chart">'
+
+
+def _parsed(msg):
+    # Round trip through bytes with the standard library parser, as a mail client would receive it.
+    return email.message_from_bytes(msg.as_bytes(), policy=policy.default)
+
+
+def test_image_with_content_id_goes_inside_a_related_part():
+    msg = _parsed(build_email("g@port.example", "d@port.example", "s", "text", HTML_WITH_IMAGE, "<1@x>",
+                              attachments=[{"filename": "skq-2024-03-12-chart.png", "content_type": "image/png",
+                                            "data": PNG, "content_id": CID}]))
+    assert msg.get_content_type() == "multipart/alternative"
+    text, related = msg.get_payload()
+    assert text.get_content_type() == "text/plain" and related.get_content_type() == "multipart/related"
+    assert [p.get_content_type() for p in related.iter_parts()] == ["text/html", "image/png"]
+
+
+def test_inline_image_carries_the_content_id_the_html_cites():
+    msg = _parsed(build_email("g@port.example", "d@port.example", "s", "text", HTML_WITH_IMAGE, "<1@x>",
+                              attachments=[{"filename": "c.png", "content_type": "image/png", "data": PNG,
+                                            "content_id": CID}]))
+    html_part, image = msg.get_payload()[1].get_payload()
+    assert image["Content-ID"] == f"<{CID}>"
+    assert f"cid:{CID}" in html_part.get_content()
+    assert image.get_content() == PNG and image.get_content_disposition() == "inline"
+
+
+def test_image_keeps_inline_through_the_outbox_store():
+    # The outbox keeps file name, type and data of an attachment; the cid the HTML cites names the file.
+    import sqlite_utils
+
+    from alerts.outbox import _decode_attachments, enqueue
+
+    db = sqlite_utils.Database(memory=True)
+    enqueue(db, ["d@port.example"], "s", "text", HTML_WITH_IMAGE, kind="report", key="k",
+            attachments=[{"filename": "skq-2024-03-12-chart.png", "content_type": "image/png", "data": PNG,
+                          "content_id": CID}], now=T)
+    row = next(db.query("SELECT html, attachments FROM outbox"))
+    msg = _parsed(build_email("g@port.example", "d@port.example", "s", "text", row["html"], "<1@x>",
+                              attachments=_decode_attachments(row["attachments"])))
+    related = msg.get_payload()[1]
+    assert related.get_content_type() == "multipart/related"
+    assert related.get_payload()[1]["Content-ID"] == f"<{CID}>"
+
+
+def test_attachment_not_cited_stays_an_attachment_beside_inline_images():
+    msg = _parsed(build_email("g@port.example", "d@port.example", "s", "text", HTML_WITH_IMAGE, "<1@x>",
+                              attachments=[{"filename": "c.png", "content_type": "image/png", "data": PNG,
+                                            "content_id": CID},
+                                           {"filename": "data.csv", "content_type": "text/csv", "data": b"t,l\n"}]))
+    assert msg.get_content_type() == "multipart/mixed"
+    assert [a.get_filename() for a in msg.iter_attachments()] == ["data.csv"]
+    assert msg.get_payload()[0].get_content_type() == "multipart/alternative"

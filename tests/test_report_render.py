@@ -3,7 +3,8 @@ from __future__ import annotations
 
 import datetime as dt
 import re
-from email.message import EmailMessage
+import email
+import email.policy
 
 import numpy as np
 import pandas as pd
@@ -13,6 +14,7 @@ from alerts.report import (
     CAUTION, ReportSettings, day_bounds, day_figures, infer_interval, prune_reports, read_summary, render_day_email,
     render_day_html, report_settings_from, write_day_report, write_index, zone_label,
 )
+from alerts.message import build_email
 from report_samples import TZ, sample_report
 
 hour = 3600.0
@@ -197,16 +199,14 @@ def test_email_html_refers_to_its_images_by_content_id(mail):
 
 
 def test_email_builds_as_a_related_mime_message(mail):
-    # Standard library email package (RFC 2387 multipart/related) as the reference composer.
-    msg = EmailMessage()
-    msg["Subject"] = mail.subject
-    msg.set_content(mail.text)
-    msg.add_alternative(mail.html, subtype="html")
-    html_part = msg.get_payload()[1]
-    for cid, png in mail.images.items():
-        html_part.add_related(png, "image", "png", cid=f"<{cid}>")
-    raw = msg.as_bytes()
-    assert b"multipart/alternative" in raw and b"multipart/related" in raw
+    # Reference parser: the standard library email package (RFC 2046 alternative, RFC 2387 related).
+    msg = build_email("g@port.invalid", "h@port.invalid", mail.subject, mail.text, mail.html, "<1@x>",
+                      attachments=mail.attachments())
+    parsed = email.message_from_bytes(msg.as_bytes(), policy=email.policy.default)
+    related = parsed.get_payload()[1]
+    assert parsed.get_content_type() == "multipart/alternative" and related.get_content_type() == "multipart/related"
+    ids = {p["Content-ID"].strip("<>") for p in related.iter_parts() if p.get_content_type() == "image/png"}
+    assert ids == set(mail.images) == set(re.findall(r'src="cid:([^"]+)"', related.get_payload()[0].get_content()))
 
 
 def test_email_text_part_has_caution_and_figures(mail):
@@ -255,3 +255,62 @@ def test_settings_errors_name_their_key():
         {"write_at": "25:00", "recipients": ["not-an-address"], "keep_days": -1, "colour": "red"}, "report")
     assert sorted(e.split(":")[0] for e in errors) == [
         "report.colour", "report.keep_days", "report.recipients[0]", "report.write_at"]
+
+
+# --- next high water, air pressure, tide staff -------------------------------------------------------
+
+
+def _section(html: str, name: str) -> str:
+    return html.split(f'<section id="{name}">', 1)[1].split("</section>", 1)[0]
+
+
+def test_next_high_water_comes_before_the_chart(plain_html):
+    assert plain_html.index('id="glance"') < plain_html.index('id="next-hw"') < plain_html.index('id="chart"')
+
+
+def test_next_high_water_shows_forecast_time_and_range(plain_html):
+    # sample_forecast: predicted 3.45 m + 0.12 m, range predicted + 0.02 to + 0.27 m (invented).
+    part = _section(plain_html, "next-hw")
+    assert "3.57 m" in part and "13 Mar 10:53" in part
+    assert "3.47 m to 3.72 m" in part and "90 %" in part
+
+
+def test_next_high_water_range_reaching_an_operator_level_is_marked(plain_html):
+    part = _section(plain_html, "next-hw")
+    assert 'class="bad">Quay apron wet (3.60 m): forecast \u22120.03 m below it, within the range' in part
+
+
+def test_forecast_without_range_says_so():
+    import dataclasses
+
+    report = sample_report(PLAIN)
+    report.forecast = dataclasses.replace(report.forecast, lower=None, upper=None, coverage=None)
+    assert "No uncertainty range" in _section(render_day_html(report), "next-hw")
+
+
+def test_barometer_section_gives_mean_part_and_variance_explained(plain_html):
+    part = _section(plain_html, "barometer")
+    assert "+0.12 m" in part and "62.0 %" in part
+
+
+def test_staff_check_lists_offset_scale_timing_with_uncertainties(plain_html):
+    part = _section(plain_html, "qc")
+    assert "14 mm</td><td class=\"n\">1 mm" in part
+    assert "+0.40 %</td><td class=\"n\">0.15 %" in part
+    assert "150 s</td><td class=\"n\">20 s" in part
+
+
+def test_staff_diagram_is_an_inline_png(plain_html):
+    assert re.search(r'<img class="staff" src="data:image/png;base64,', plain_html)
+
+
+def test_day_without_extras_says_what_is_missing():
+    html = render_day_html(sample_report(PLAIN, extras=False))
+    assert "No high water forecast is available" in html
+    assert "No barometer data for this day" in html
+    assert "No tide-staff session in the recent weeks" in html
+
+
+def test_email_carries_staff_diagram_by_content_id(mail):
+    assert any(cid.endswith("-staff.png@quaywatch.invalid") for cid in mail.images)
+    assert "Next high water forecast\n  3.57 m at 13 Mar 10:53" in mail.text
