@@ -35,6 +35,8 @@ import re
 from dataclasses import dataclass, field, replace
 from typing import Any
 
+from predictor.timeutil import parse_duration  # the one duration parser; re-exported
+
 # Kinds of rule, and the sign that turns each into an "above" comparison.
 KINDS = {
     "residual_above": +1,
@@ -59,9 +61,6 @@ RESERVED_WORDS = ("watch", "warning", "advisory", "alert", "severe", "emergency"
 
 _STATION_DATUM_NAMES = ("station", "station_datum", "sd")
 _ADDR_RE = re.compile(r"^[^@\s<>,;\"\r\n]+@[^@\s<>,;\"\r\n]+\.[^@\s<>,;\"\r\n]+$")
-_DURATION_RE = re.compile(r"^\s*(\d+(?:\.\d+)?)\s*(s|sec|min|m|h|hr|d|day|days)?\s*$")
-_DURATION_UNITS = {None: 1, "s": 1, "sec": 1, "min": 60, "m": 60, "h": 3600, "hr": 3600,
-                   "d": 86400, "day": 86400, "days": 86400}
 
 
 @dataclass(frozen=True)
@@ -137,27 +136,6 @@ class Rule:
         for step in self.steps[: index + 1]:
             seen.update(dict.fromkeys(step.notify))
         return tuple(seen)
-
-
-def parse_duration(value: Any) -> float:
-    """Parse a duration: a number of seconds or text like ``"90s"``, ``"10min"``, ``"2h"``, ``"1d"``.
-
-    Returns
-    -------
-    float
-        Seconds [s]. Raises ``ValueError`` on anything else.
-    """
-    if isinstance(value, bool):
-        raise ValueError(f"expected a duration like '10min', got {value!r}")
-    if isinstance(value, (int, float)):
-        if not math.isfinite(value) or value < 0:
-            raise ValueError(f"expected a non-negative duration, got {value!r}")
-        return float(value)
-    if isinstance(value, str):
-        m = _DURATION_RE.match(value.lower())
-        if m:
-            return float(m.group(1)) * _DURATION_UNITS[m.group(2)]
-    raise ValueError(f"expected a duration like '90s', '10min', '2h' or '1d', got {value!r}")
 
 
 def _as_addresses(value: Any, where: str, errors: list[str]) -> tuple[str, ...]:

@@ -36,6 +36,7 @@ import numpy as np
 import pandas as pd
 
 from monitor.errors import UserError
+from predictor.timeutil import parse_duration as _parse_duration
 
 PASS, NOT_EVALUATED, SUSPECT, FAIL, MISSING = 1, 2, 3, 4, 9
 FLAG_NAMES = {PASS: "pass", NOT_EVALUATED: "not evaluated", SUSPECT: "suspect", FAIL: "fail", MISSING: "missing"}
@@ -140,27 +141,11 @@ _ORDERED = (("spike_suspect", "spike_fail"), ("flat_suspect_after", "flat_fail_a
 
 
 def parse_duration(value: Any) -> float | None:
-    """Seconds from a number of seconds or a text like ``"30min"``, ``"25h"``, ``"2d"``.
-
-    Returns None when the value is not a positive, finite duration.
-    """
-    if isinstance(value, bool):
+    """Seconds [s] from a positive duration of at most ten years, or None when it is not one."""
+    try:
+        return _parse_duration(value, positive=True, maximum=3650 * 86400)
+    except ValueError:
         return None
-    if isinstance(value, (int, float)):
-        secs = float(value)
-    elif isinstance(value, str):
-        text = value.strip()
-        if not text or text[0] in "+-" or not any(ch.isalpha() for ch in text):
-            return None
-        try:
-            secs = pd.Timedelta(text).total_seconds()
-        except (ValueError, TypeError, OverflowError):
-            return None
-    else:
-        return None
-    if not math.isfinite(secs) or secs <= 0 or secs > 3650 * 86400:
-        return None
-    return secs
 
 
 def qc_settings_from(raw: Mapping[str, Any] | None, keypath: str) -> tuple[QcSettings, list[str]]:

@@ -1,0 +1,105 @@
+"""Durations written by people: ``"90s"``, ``"10min"``, ``"2h"``, ``"1d"``, ``"1h30min"``.
+
+The one duration parser of the project. It sits in :mod:`predictor` because imports go
+``monitor -> alerts -> predictor``: every layer can use it from here.
+"""
+from __future__ import annotations
+
+import datetime as dt
+import math
+import re
+from typing import Any
+
+import numpy as np
+
+__all__ = ["parse_duration", "parse_step", "UNIT_SECONDS"]
+
+# Seconds in each unit name a person may write. "m" is minutes (as in "10m"): months and
+# metres never mean a duration here.
+UNIT_SECONDS = {
+    "s": 1.0, "sec": 1.0, "secs": 1.0, "second": 1.0, "seconds": 1.0,
+    "m": 60.0, "min": 60.0, "mins": 60.0, "minute": 60.0, "minutes": 60.0,
+    "h": 3600.0, "hr": 3600.0, "hrs": 3600.0, "hour": 3600.0, "hours": 3600.0,
+    "d": 86400.0, "day": 86400.0, "days": 86400.0,
+    "w": 604800.0, "week": 604800.0, "weeks": 604800.0,
+}
+_NUMBER = r"(?:\d+(?:\.\d*)?|\.\d+)"
+_TERM = re.compile(rf"\s*({_NUMBER})\s*([a-z]+)\s*")
+_BARE = re.compile(rf"^\s*({_NUMBER})\s*$")
+_CLOCK = re.compile(r"^\s*(\d+):([0-5]\d)(?::([0-5]\d(?:\.\d*)?))?\s*$")
+_EXAMPLES = "'90s', '10min', '2h', '1d' or '1h30min'"
+
+
+def _text_seconds(text: str) -> float | None:
+    """Seconds in a written duration, or None when it is not one."""
+    low = text.lower()
+    m = _BARE.match(low)
+    if m:
+        return float(m.group(1))
+    m = _CLOCK.match(low)
+    if m:
+        return int(m.group(1)) * 3600.0 + int(m.group(2)) * 60.0 + float(m.group(3) or 0.0)
+    pos, total, terms = 0, 0.0, 0
+    low = low.strip()
+    while pos < len(low):
+        m = _TERM.match(low, pos)
+        if not m or m.group(2) not in UNIT_SECONDS:
+            return None
+        total += float(m.group(1)) * UNIT_SECONDS[m.group(2)]
+        pos, terms = m.end(), terms + 1
+    return total if terms else None
+
+
+def parse_duration(value: Any, *, positive: bool = False, maximum: float | None = None) -> float:
+    """A duration in seconds from a number, a timedelta, or text a person wrote.
+
+    Parameters
+    ----------
+    value : int, float, str, datetime.timedelta or numpy.timedelta64
+        A number is seconds [s]. Text is one or more ``<number><unit>`` terms (``"90s"``,
+        ``"10min"``, ``"2h"``, ``"1.5d"``, ``"1h30min"``; units s, min or m, h, d, w and
+        their long names), a bare number of seconds (``"600"``) or a clock ``"H:MM[:SS]"``.
+    positive : bool
+        Refuse zero (a step or a period, not a hold time).
+    maximum : float, optional
+        Largest duration accepted [s].
+
+    Returns
+    -------
+    float
+        Seconds [s], finite and not negative.
+
+    Raises
+    ------
+    ValueError
+        With a message that reads well after a key path or an option name.
+    """
+    if isinstance(value, bool):
+        raise ValueError(f"expected a duration such as {_EXAMPLES}, got {value!r}")
+    if isinstance(value, (int, float, np.integer, np.floating)):
+        secs = float(value)
+    elif isinstance(value, dt.timedelta):
+        secs = value.total_seconds()
+    elif isinstance(value, np.timedelta64):
+        if np.isnat(value):
+            raise ValueError(f"expected a duration such as {_EXAMPLES}, got NaT")
+        secs = float(value / np.timedelta64(1, "ns")) * 1e-9
+    elif isinstance(value, str):
+        found = _text_seconds(value)
+        if found is None:
+            raise ValueError(f"expected a duration such as {_EXAMPLES}, got {value!r}")
+        secs = found
+    else:
+        raise ValueError(f"expected a duration such as {_EXAMPLES}, got {value!r}")
+    if not math.isfinite(secs) or secs < 0:
+        raise ValueError(f"expected a finite duration of zero or more, got {value!r}")
+    if positive and secs == 0:
+        raise ValueError(f"expected a duration above zero, got {value!r}")
+    if maximum is not None and secs > maximum:
+        raise ValueError(f"expected a duration of at most {maximum / 86400:g} days, got {value!r}")
+    return secs
+
+
+def parse_step(step: Any) -> float:
+    """A time step [s] above zero (``parse_duration(step, positive=True)``)."""
+    return parse_duration(step, positive=True)
