@@ -29,6 +29,7 @@ from __future__ import annotations
 import contextlib
 import math
 import time as _time
+from itertools import repeat as _repeat
 from dataclasses import dataclass, fields
 from typing import Any, Iterable, Mapping
 
@@ -829,21 +830,43 @@ def run_station_qc(store: Any, station_cfg: Any, settings: QcSettings | None, st
 
 
 def _write(db: Any, station: str, sensor: str, part: pd.DataFrame, stored: np.ndarray | None = None) -> None:
-    """Upsert the test rows; update ``observations.flag`` where it changed."""
+    """Write what changed, in one transaction: ``qc_tests`` rows that are new or differ
+    from the stored ones, and ``observations.flag`` where it differs from ``stored``.
+
+    A re-run over an unchanged record reads the stored rows and writes nothing, and
+    the daemon's incremental pass writes only its newest samples and the few whose
+    centred windows have since completed.
+    """
     if part.empty:
         return
+    conn = db.conn
     t = (seconds(part.index)).round().astype(np.int64)
-    cols = [part[c].to_numpy(dtype=np.int64) for c in TESTS]
-    rows = [(station, sensor, int(ti), *map(int, vals)) for ti, *vals in zip(t, *cols)]
+    tests = np.column_stack([part[c].to_numpy(dtype=np.int64) for c in TESTS])  # (n, tests)
+    names = ", ".join(TESTS)
+    # Compare packed rows (4 bits per flag; QARTOD flags are 1..9) so the read of the
+    # stored rows moves two integers per sample, not ten.  A NULL packs to NULL and is
+    # rewritten.
+    packed = tests @ (16 ** np.arange(len(TESTS), dtype=np.int64))
+    expr = " + ".join(f"{16 ** i} * {c}" for i, c in enumerate(TESTS))
+    old = conn.execute(f"SELECT t, {expr} FROM qc_tests WHERE station = ? AND sensor = ? AND t BETWEEN ? AND ?",
+                       (station, sensor, int(t.min()), int(t.max()))).fetchall()
+    todo = np.ones(len(t), bool)
+    if old and np.all(t[1:] > t[:-1]):
+        old_arr = np.array(old, dtype=float)  # NULL -> NaN, never equal to a flag
+        pos = np.minimum(np.searchsorted(t, old_arr[:, 0]), len(t) - 1)
+        same = (t[pos] == old_arr[:, 0]) & (packed[pos] == old_arr[:, 1])
+        todo[pos[same]] = False
     new = part["flag"].to_numpy()
     changed = np.ones(len(new), bool) if stored is None else (np.asarray(stored) != new)
-    flags = [(int(f), station, sensor, int(ti)) for ti, f in zip(t[changed], new[changed])]
-    names = ", ".join(TESTS)
+    if not todo.any() and not changed.any():
+        return
+    rows = zip(_repeat(station), _repeat(sensor), t[todo].tolist(), *(tests[todo, j].tolist() for j in range(len(TESTS))))
+    flags = zip(new[changed].tolist(), _repeat(station), _repeat(sensor), t[changed].tolist())
     marks = ", ".join("?" * len(TESTS))
-    with _transaction(db.conn):
-        db.conn.executemany(
+    with _transaction(conn):
+        conn.executemany(
             f"INSERT OR REPLACE INTO qc_tests (station, sensor, t, {names}) VALUES (?, ?, ?, {marks})", rows)
-        db.conn.executemany("UPDATE observations SET flag = ? WHERE station = ? AND sensor = ? AND t = ?", flags)
+        conn.executemany("UPDATE observations SET flag = ? WHERE station = ? AND sensor = ? AND t = ?", flags)
 
 
 def set_override(store: Any, station: str, sensor: str, start_t: float, end_t: float | None, flag: int,

@@ -109,3 +109,36 @@ def test_staff_readings_round_trip(store):
     df = qc.read_staff_readings(store, "harbour")
     assert df["reading"].tolist() == [2.345] and df["who"].tolist() == ["tech A"]
     assert df.index[0] == pd.Timestamp(1_900_000_000, unit="s", tz="UTC")
+
+
+def test_rerun_over_an_unchanged_record_writes_nothing(filled):
+    store, level = filled
+    t0, t1 = level.index[0].timestamp(), level.index[-1].timestamp()
+    qc.run_station_qc(store, "harbour", None, t0, t1, SynthModel(), now=t1)
+    before = store.conn.total_changes
+    qc.run_station_qc(store, "harbour", None, t0, t1, SynthModel(), now=t1)
+    assert store.conn.total_changes == before
+
+
+def test_rerun_after_an_override_writes_only_the_overridden_sample(filled):
+    store, level = filled
+    t0, t1 = level.index[0].timestamp(), level.index[-1].timestamp()
+    qc.run_station_qc(store, "harbour", None, t0, t1, SynthModel(), now=t1)
+    qc.set_override(store, "harbour", "primary", level.index[2000].timestamp(), None, qc.PASS, "tech A", "checked",
+                    at=t1)
+    before = store.conn.total_changes
+    qc.run_station_qc(store, "harbour", None, t0, t1, SynthModel(), now=t1)
+    # set_override already wrote the flag, so at most that one observation row changes
+    assert store.conn.total_changes - before <= 1
+
+
+def test_changed_test_results_are_rewritten(filled):
+    store, level = filled
+    t0, t1 = level.index[0].timestamp(), level.index[-1].timestamp()
+    qc.run_station_qc(store, "harbour", None, t0, t1, SynthModel(), now=t1)
+    spike_t = int(level.index[2000].timestamp())
+    store.conn.execute("UPDATE qc_tests SET spike = 1, gross = NULL WHERE sensor = 'primary' AND t = ?", (spike_t,))
+    qc.run_station_qc(store, "harbour", None, t0, t1, SynthModel(), now=t1)
+    row = store.conn.execute("SELECT spike, gross FROM qc_tests WHERE sensor = 'primary' AND t = ?",
+                             (spike_t,)).fetchone()
+    assert row == (qc.FAIL, qc.PASS)
