@@ -119,6 +119,13 @@ class DaemonSettings:
     outbox_seconds: float = 30.0
     refit_days: float = 30.0
     idle_polls: int = 3
+    # Sensor drift and clock offset are costly next to a processing pass: they run when
+    # this much data time has passed since their last run [min].
+    diagnostics_minutes: float = 60.0
+    # Record over which the clock offset against the predicted tide is estimated [days]
+    # (a week averages out the weather while catching a clock fault within days: common
+    # practice, no source). The drift window is the station's qc.drift_window.
+    clock_window_days: float = 7.0
 
 
 @dataclass(frozen=True)
@@ -127,6 +134,9 @@ class LogSettings:
     file: Path | None = None
     max_bytes: int = 5_000_000
     backups: int = 5
+
+
+LOG_KEYS = ("level", "file", "max_bytes", "backups")
 
 
 @dataclass(frozen=True)
@@ -370,7 +380,7 @@ def _daemon(c: _Checker, raw: Any) -> DaemonSettings:
     t = c.table(raw, "daemon")
     if t is None:
         return DaemonSettings()
-    keys = ("poll_seconds", "process_seconds", "outbox_seconds", "refit_days", "idle_polls")
+    keys = tuple(f.name for f in dataclasses.fields(DaemonSettings))
     c.unknown(t, "daemon", keys)
     d = DaemonSettings()
     pos = lambda v: v > 0  # noqa: E731
@@ -384,6 +394,10 @@ def _daemon(c: _Checker, raw: Any) -> DaemonSettings:
                               "a number of days >= 0 (0: never refit on a schedule)"),
         "idle_polls": c.value(t, "daemon", "idle_polls", "int", d.idle_polls, lambda v: 1 <= v <= 1000,
                               "an integer from 1 to 1000"),
+        "diagnostics_minutes": c.value(t, "daemon", "diagnostics_minutes", "number", d.diagnostics_minutes,
+                                       lambda v: 1 <= v <= 10080, "minutes from 1 to 10080"),
+        "clock_window_days": c.value(t, "daemon", "clock_window_days", "number", d.clock_window_days,
+                                     lambda v: 1 <= v <= 366, "days from 1 to 366"),
     }
     return DaemonSettings(**{k: v for k, v in vals.items() if v is not None})
 
@@ -392,7 +406,7 @@ def _logging(c: _Checker, raw: Any, base_dir: Path) -> LogSettings:
     t = c.table(raw, "logging")
     if t is None:
         return LogSettings()
-    c.unknown(t, "logging", ("level", "file", "max_bytes", "backups"))
+    c.unknown(t, "logging", LOG_KEYS)
     d = LogSettings()
     level = c.value(t, "logging", "level", "str", d.level,
                     lambda v: v.lower() in ("debug", "info", "warning", "error"),
@@ -408,7 +422,7 @@ def _residual(c: _Checker, raw: Any) -> ResidualSettings:
     t = c.table(raw, "residual")
     if t is None:
         return ResidualSettings()
-    keys = ("median_minutes", "mean_minutes", "history_days", "min_history_days", "reference_pressure")
+    keys = tuple(f.name for f in dataclasses.fields(ResidualSettings))
     c.unknown(t, "residual", keys)
     d = ResidualSettings()
     vals = {
@@ -596,3 +610,22 @@ def load_config(path: str | Path) -> Config:
         n = len(errors)
         raise UserError(f"{path}: {n} problem{'s' if n > 1 else ''} in the configuration:\n{listing}")
     return cfg
+
+
+def known_keys() -> dict[str, tuple[str, ...]]:
+    """The keys this module accepts in each table it validates itself, by table.
+
+    Tables validated elsewhere (feeds, qc, rules, mail, reports) are listed by their own
+    modules; ``config.example.toml`` documents them all (checked by the tests).
+    """
+    return {
+        "": _TOP_KEYS,
+        "store": ("path",),
+        "daemon": tuple(f.name for f in dataclasses.fields(DaemonSettings)),
+        "logging": LOG_KEYS,
+        "residual": tuple(f.name for f in dataclasses.fields(ResidualSettings)),
+        "stations": _STATION_KEYS,
+        "stations.sensors": SENSOR_ROLES,
+        "stations.sensors.*": _SENSOR_KEYS,
+        "stations.sensors.*.line": _LINE_KEYS,
+    }

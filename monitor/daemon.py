@@ -46,6 +46,9 @@ PROCESS_CHUNK = 7 * 86400   # [s] most data time processed in one pass (bounds m
 REWRITE_BACK = 3600         # [s] derived rows before a window that are recomputed (QC may revise flags)
 OUTBOX_DRAIN_WAIT = 30.0    # [s] with --until-exhausted, longest wait for the outbox after the feeds end
 HISTORY_REFRESH = 6 * 3600  # [s, data time] how often the forecast's residual history is re-read
+# [s] samples before a window handed to the alert rules besides the new ones: messages show the
+# change over the last hour, taken from a sample up to 15 min either side of an hour back
+TREND_BACK = 75 * 60
 
 
 def _optional(module: str):
@@ -207,6 +210,8 @@ class StationRuntime:
     replay_clock: bool = False
     last_fit_try: float = -math.inf
     faults_mod: Any = field(default=None, repr=False)
+    diag_at: float = -math.inf      # data time of the last drift and clock diagnostics [Unix s]
+    diag: dict = field(default_factory=dict)  # their results: "drift", "clock.primary", ...
 
 
 class Daemon:
@@ -310,33 +315,44 @@ class Daemon:
         return n
 
     def process_station(self, rt: StationRuntime, now: float | None = None) -> int:
-        """Process a station's data newer than its mark; returns samples processed."""
+        """Process a station's data newer than its mark; returns samples processed.
+
+        Late data -- rows older than the mark, of any sensor, say a backup whose feed lags
+        the primary's or a gap filled afterwards -- is processed again from the earliest
+        time a batch touched (the store's ``touched.STATION``, folded into the mark here).
+        """
         st = rt.cfg
         levels = [r for r in st.sensors if r != "barometer"]
         ends = [t for t in (self.store.last_time(st.id, r) for r in levels) if t is not None]
         if not ends:
             return 0
         end_t = max(ends)
-        mark = self.store.get_meta(f"processed.{st.id}")
-        if mark is not None and end_t <= int(mark):
+        mark = self.store.take_touched(st.id)
+        if mark is not None and end_t <= mark:
             return 0
         if mark is None:
             starts = [t for t in (self.store.first_time(st.id, r) for r in levels) if t is not None]
             start_t = min(starts)
         else:
-            start_t = int(mark) + 1
+            start_t = mark + 1
         done = 0
         while start_t <= end_t and not self.stop.is_set():
             chunk_end = min(end_t, start_t + PROCESS_CHUNK - 1)
-            done += self.process_window(rt, start_t, chunk_end, now)
+            done += self.process_window(rt, start_t, chunk_end, now, latest=chunk_end == end_t)
             self.store.set_meta(f"processed.{st.id}", str(chunk_end))
             start_t = chunk_end + 1
         return done
 
-    def process_window(self, rt: StationRuntime, start_t: int, end_t: int, now: float | None = None) -> int:
+    def process_window(self, rt: StationRuntime, start_t: int, end_t: int, now: float | None = None,
+                       latest: bool = True) -> int:
         """The processing pipeline for one station over [start_t, end_t] (data time), in order:
         quality control, residual and smoothed residual (into ``derived``), skew surge of
-        completed cycles, next high water forecast, alert rules."""
+        completed cycles, next high water forecast, alert rules.
+
+        ``latest`` is false for the earlier chunks of a backfill or of late data: then
+        no forecast is made and only the rules on samples run (the forecast, feed age
+        and equipment faults describe the present, not that chunk).
+        """
         st, store = rt.cfg, self.store
         now = (end_t if rt.replay_clock else time.time()) if now is None else now
         self.data_now = end_t if self.data_now is None else max(self.data_now, end_t)
@@ -353,7 +369,7 @@ class Daemon:
 
         # 2. residual, smoothed residual, inverse barometer
         rs = self.cfg.residual
-        lookback = int((rs.median_minutes + rs.mean_minutes) * 60) + REWRITE_BACK
+        lookback = int((rs.median_minutes + rs.mean_minutes) * 60) + max(REWRITE_BACK, TREND_BACK)
         obs = store.observations(st.id, "primary", start_t - lookback, end_t)
         if obs.empty:
             return 0
@@ -361,8 +377,8 @@ class Daemon:
         pressure = None
         if "barometer" in st.sensors:
             pressure = store.observations(st.id, "barometer", start_t - lookback - 3600, end_t + 3600)["value"]
-        d = R.derive(obs, pred, pressure, rs.median_minutes, rs.mean_minutes, rs.reference_pressure)
-        d = d[d.index >= pd.Timestamp(start_t - REWRITE_BACK, unit="s", tz="UTC")]
+        full = R.derive(obs, pred, pressure, rs.median_minutes, rs.mean_minutes, rs.reference_pressure)
+        d = full[full.index >= pd.Timestamp(start_t - REWRITE_BACK, unit="s", tz="UTC")]
         store.write_derived(st.id, d)
         new = int((d.index >= pd.Timestamp(start_t, unit="s", tz="UTC")).sum())
 
@@ -382,16 +398,27 @@ class Daemon:
                 if len(ss):
                     store.write_skew_surges(st.id, ss[ss["hw_t"] >= a + 3600])
             # 4. next high water forecast
-            context = self._forecast(rt, d, end_t)
+            if latest:
+                context = self._forecast(rt, d, end_t)
 
-        # 5. alert rules
+        # 5. alert rules, on the new samples and the hour before them (for the trend)
         if self.engine is not None and st.rules and rt.view is not None:
-            ctx = self._alert_context(rt, context, qc_results, now)
-            samples = d[["observed", "predicted", "residual", "smoothed", "flag"]]
+            rules = st.rules
+            if latest:
+                ctx = self._alert_context(rt, context, qc_results, now, end_t)
+            else:
+                ctx = None
+                kinds = getattr(self.rules_mod, "SAMPLE_KINDS", ())
+                rules = [r for r in rules if r.watch in kinds]
+            samples = full.loc[full.index >= pd.Timestamp(start_t - TREND_BACK, unit="s", tz="UTC"),
+                               ["observed", "predicted", "residual", "smoothed", "flag"]]
+            events = []
             try:
-                self.engine.evaluate(store.db, rt.view, st.rules, samples, now=now, context=ctx)
+                events = self.engine.evaluate(store.db, rt.view, rules, samples, now=now, context=ctx)
             except Exception:
                 log.exception("station %s: alert rules failed for this window", st.id)
+            if events:
+                self.deliver()  # at once, not at the outbox job's next turn
         return new
 
     def _ensure_extremes(self, rt: StationRuntime, start_t: float, end_t: float) -> None:
@@ -421,14 +448,13 @@ class Daemon:
         self.store.write_forecast(st.id, fc)
         return fc
 
-    def _alert_context(self, rt: StationRuntime, fc: dict | None, qc_results: dict, now: float):
+    def _alert_context(self, rt: StationRuntime, fc: dict | None, qc_results: dict, now: float,
+                       end_t: int | None = None):
+        """The engine's context: the forecast dict as the residual module made it, the feed's
+        age, and the equipment faults (silent, stuck, drifting, clock off)."""
         ctx_cls = getattr(self.engine, "AlertContext", None)
         if ctx_cls is None:
             return None
-        hw = None
-        if fc is not None and hasattr(self.engine, "NextHighWater"):
-            unc = None if fc["lower"] is None else (fc["upper"] - fc["lower"]) / 2
-            hw = self.engine.NextHighWater(time=fc["hw_t"], level=fc["forecast"], uncertainty=unc)
         st = rt.cfg
         last = {r: self.store.last_time(st.id, r) for r in st.sensors}
         age = None if last.get("primary") is None else max(0.0, now - last["primary"])
@@ -442,7 +468,60 @@ class Daemon:
                 faults = self.diag.equipment_faults(now, st.qc, station=st.id, last_sample=last, flat=flat)
             except Exception:
                 log.exception("station %s: equipment fault check failed", st.id)
-        return ctx_cls(next_high_water=hw, feed_age=age, faults=faults)
+            faults += self._diagnostic_faults(rt, now, end_t)
+        return ctx_cls(next_high_water=fc, feed_age=age, faults=faults)
+
+    def _diagnostic_faults(self, rt: StationRuntime, now: float, end_t: int | None) -> list[dict]:
+        """Sensor drift (primary against backup, over ``qc.drift_window``) and clock offset
+        (each level sensor against the predicted tide, over ``daemon.clock_window_days``)
+        as equipment faults. Both are recomputed once ``daemon.diagnostics_minutes`` of data
+        time have passed since their last run; in between their last results stand."""
+        st, dset = rt.cfg, self.cfg.daemon
+        if end_t is None:
+            end_t = int(now)
+        if end_t - rt.diag_at >= dset.diagnostics_minutes * 60:
+            rt.diag_at = end_t
+            rt.diag = self._run_diagnostics(rt, end_t)
+        faults: list[dict] = []
+        qs = st.qc
+        try:
+            if "drift" in rt.diag:
+                faults += self.diag.equipment_faults(now, qs, station=st.id, drift=rt.diag["drift"])
+            for key, clock in rt.diag.items():
+                if key.startswith("clock."):
+                    faults += self.diag.equipment_faults(now, qs, station=st.id, clock=clock)
+        except Exception:
+            log.exception("station %s: drift and clock fault check failed", st.id)
+        return faults
+
+    def _run_diagnostics(self, rt: StationRuntime, end_t: int) -> dict:
+        st, store = rt.cfg, self.store
+        out: dict = {}
+        if not (hasattr(self.diag, "sensor_drift") and hasattr(self.diag, "clock_offset")):
+            return out
+        usable = lambda o: o.loc[~o["flag"].isin((4, 9)), "value"]  # noqa: E731  fail/missing never count
+        window = getattr(st.qc, "drift_window", 30 * 86400.0)
+        try:
+            if "backup" in st.sensors:
+                p = usable(store.observations(st.id, "primary", int(end_t - window), end_t))
+                b = usable(store.observations(st.id, "backup", int(end_t - window), end_t))
+                if len(p) and len(b):
+                    gap = getattr(st.qc, "gap_limit", 300.0)
+                    out["drift"] = self.diag.sensor_drift(p, b, gap_limit=gap)
+            if rt.model is not None:
+                a = int(end_t - self.cfg.daemon.clock_window_days * 86400)
+                for role in (r for r in st.sensors if r != "barometer"):
+                    o = usable(store.observations(st.id, role, a, end_t))
+                    # a day of record at least: the fit solves one shift across whole days
+                    if len(o) < 2 or (o.index[-1] - o.index[0]).total_seconds() < 86400:
+                        continue
+                    c = self.diag.clock_offset(o, rt.model)
+                    c["sensor"] = role
+                    c["since"] = int(o.index[0].timestamp())
+                    out[f"clock.{role}"] = c
+        except Exception:
+            log.exception("station %s: drift and clock diagnostics failed", st.id)
+        return out
 
     def _maybe_fit(self, rt: StationRuntime, now: float) -> None:
         """A station fitted from history gets its first fit as soon as it has enough data."""

@@ -223,6 +223,12 @@ class Store:
         -------
         BatchResult
             Existing (station, sensor, t) rows are left alone and counted as duplicates.
+
+        Notes
+        -----
+        A batch that stores rows also lowers the station's ``touched.STATION`` meta value
+        to its earliest time, in the same transaction, so rows arriving late (older than
+        what was processed already) are processed again (:meth:`take_touched`).
         """
         now = int(time.time() if now is None else now)
         n = len(t)
@@ -237,12 +243,37 @@ class Store:
             conn.executemany("INSERT OR IGNORE INTO observations (station, sensor, t, value, time_source) "
                              "VALUES (?, ?, ?, ?, ?)", rows)
             stored = conn.total_changes - before
+            if stored:
+                conn.execute("INSERT INTO meta(key, value) VALUES (?, ?) ON CONFLICT(key) DO UPDATE SET "
+                             "value = min(CAST(value AS INTEGER), CAST(excluded.value AS INTEGER))",
+                             (f"touched.{station}", str(int(np.min(t)))))
             if rej_rows:
                 conn.executemany("INSERT INTO rejects (feed, station, sensor, lineno, text, reason, at) "
                                  "VALUES (?, ?, ?, ?, ?, ?, ?)", rej_rows)
             if feed is not None and state is not None:
                 self._put_checkpoint(feed, state, now)
         return BatchResult(n + len(rej_rows), stored, n - stored, len(rej_rows), skipped)
+
+    def take_touched(self, station: str) -> int | None:
+        """The station's processing mark, lowered below the earliest time written since.
+
+        Reads ``processed.STATION`` (the last data time processed [Unix s]) and
+        ``touched.STATION`` (the earliest time a batch stored since it was last taken);
+        in one transaction, lowers the mark to just before that time and clears it.
+        Returns the mark (None: nothing processed yet).
+        """
+        key, tkey = f"processed.{station}", f"touched.{station}"
+        with self.transaction():
+            mark = self.get_meta(key)
+            touched = self.get_meta(tkey)
+            if touched is None:
+                return None if mark is None else int(mark)
+            self.conn.execute("DELETE FROM meta WHERE key = ?", (tkey,))
+            if mark is None:
+                return None
+            mark = min(int(mark), int(touched) - 1)
+            self.set_meta(key, str(mark))
+            return mark
 
     def _put_checkpoint(self, feed: str, state: dict, now: int) -> None:
         self.conn.execute(

@@ -1,5 +1,6 @@
-"""The daemon as a real subprocess: SIGKILL at random moments loses and doubles nothing;
-SIGTERM stops cleanly; a second daemon on the same store is refused."""
+"""The daemon: late data is processed again (in process); as a real subprocess, SIGKILL at
+random moments loses and doubles nothing, SIGTERM stops cleanly, and a second daemon on the
+same store is refused."""
 from __future__ import annotations
 
 import os
@@ -14,6 +15,7 @@ from pathlib import Path
 import pytest
 
 ROOT = Path(__file__).resolve().parent.parent
+minute = 60
 N_LINES = 3000
 BAD_EVERY = 250  # one rejected line every 250 lines
 
@@ -90,6 +92,63 @@ def _wait_for_rows(db: Path, proc: subprocess.Popen, more_than: int = 0, timeout
         time.sleep(0.05)
     raise AssertionError("the daemon stored nothing new in time")
 
+
+# --------------------------------------------------------------------------- late data, in process
+
+T0 = 1_760_000_040  # a whole minute (2025-10-09, invented record)
+
+
+def _lines(minutes, level=2.0):
+    return [f"{time.strftime('%Y-%m-%dT%H:%M:%SZ', time.gmtime(T0 + 60 * m))},{level + 0.001 * m:.3f}"
+            for m in minutes]
+
+
+@pytest.fixture
+def daemon(tmp_path):
+    from monitor.config import validate_config
+    from monitor.daemon import Daemon
+    from monitor.store import Store
+
+    raw = {"store": {"path": "q.db"},
+           "stations": [{"id": "testport", "latitude": 50.0, "longitude": -4.0, "constants": "history",
+                         "datums": {"chart": -1.0},
+                         "sensors": {"primary": {}, "backup": {}}}]}
+    cfg, errors = validate_config(raw, tmp_path)
+    assert errors == []
+    store = Store.open(cfg.store_path)
+    d = Daemon(cfg, store)
+    yield d
+    store.close()
+
+
+def _ingest(d, role, minutes):
+    from monitor.daemon import ingest_lines
+
+    st = d.cfg.stations[0]
+    ingest_lines(d.store, st.sensors[role], _lines(minutes), received=T0 + 60 * 200)
+
+
+def test_late_rows_of_the_primary_are_processed(daemon):
+    rt = daemon.stations["testport"]
+    _ingest(daemon, "primary", [*range(0, 60), *range(90, 180)])
+    daemon.process_station(rt, now=T0 + 60 * 200)
+    _ingest(daemon, "primary", range(60, 90))  # the gap, filled after the newer rows were processed
+    daemon.process_station(rt, now=T0 + 60 * 201)
+    got = daemon.store.derived("testport", T0 + 60 * minute, T0 + 89 * minute)
+    assert len(got) == 30
+
+
+def test_late_rows_of_the_backup_are_quality_controlled(daemon):
+    rt = daemon.stations["testport"]
+    _ingest(daemon, "primary", range(0, 180))
+    daemon.process_station(rt, now=T0 + 60 * 200)
+    _ingest(daemon, "backup", range(0, 180))  # its feed lags the primary's
+    daemon.process_station(rt, now=T0 + 60 * 201)
+    flags = daemon.store.observations("testport", "backup")["flag"]
+    assert len(flags) == 180 and not (flags == 2).any()  # 2: not evaluated
+
+
+# --------------------------------------------------------------------------- the daemon as a subprocess
 
 @pytest.mark.slow
 def test_sigkill_at_random_moments_loses_and_doubles_nothing(tmp_path):

@@ -100,3 +100,22 @@ def test_fits_keep_history_and_one_in_use(store):
                       constants="mean = 0.1\n", in_use=True)
     assert store.fit_in_use("st")["id"] == b
     assert list(store.fits("st")["id"]) == [b, a]
+
+
+def test_a_batch_marks_the_earliest_time_it_stored(store):
+    _write(store)
+    assert store.take_touched("st") is None  # nothing processed yet
+    store.set_meta("processed.st", "1735689720")  # 00:02, the newest row, processed
+    late = ["2024-12-31T23:58:00Z,0.98", "2024-12-31T23:59:00Z,0.99"]
+    _write(store, late)
+    # the mark drops to just before the earliest late row (2024-12-31T23:58Z = 1735689480)
+    assert store.take_touched("st") == 1735689480 - 1
+    assert store.get_meta("processed.st") == str(1735689480 - 1)
+
+
+def test_duplicates_alone_touch_nothing(store):
+    _write(store)
+    store.take_touched("st")
+    store.set_meta("processed.st", "1735689720")
+    _write(store)  # the same lines again (a replay after a crash)
+    assert store.take_touched("st") == 1735689720
