@@ -164,3 +164,112 @@ def test_mutated_configuration_never_crashes(data, tmp_path_factory):
 @given(raw=st.dictionaries(st.sampled_from(KEYS) | st.text(max_size=8), toml_values, max_size=6))
 def test_arbitrary_tables_never_crash(raw):
     _outcome_is_well_formed(validate_config(raw, "/tmp"))
+
+
+# --------------------------------------------------------------------------- the example documents every key
+
+EXAMPLE = ROOT / "config.example.toml"
+
+
+def _example() -> tuple[dict, str]:
+    text = EXAMPLE.read_text(encoding="utf-8")
+    return tomllib.loads(text), text
+
+
+def _commented_keys(text: str) -> set[str]:
+    """Keys shown commented out ("# key = value"): optional keys and alternatives."""
+    import re
+
+    return {m.group(1) for m in re.finditer(r"^\s*#\s*([A-Za-z_][A-Za-z0-9_]*)\s*=", text, re.M)}
+
+
+def _known_from_message(errors: list[str]) -> set[str]:
+    """The key list a validator gives with an unknown key ("... (known: a, b, c)")."""
+    import re
+
+    (m,) = [re.search(r"known(?: keys)?: ([^)]*)\)", e) for e in errors if "unknown key" in e]
+    return {k.strip() for k in m.group(1).split(",")}
+
+
+def test_quaywatch_check_passes_on_the_example():
+    import subprocess
+    import sys
+
+    res = subprocess.run([sys.executable, "-m", "monitor", "check", str(EXAMPLE)], capture_output=True,
+                         text=True, cwd=ROOT, timeout=120)
+    assert res.returncode == 0, res.stderr
+    assert "configuration is valid" in res.stdout
+
+
+def test_example_documents_every_key_of_the_loader():
+    from monitor.config import known_keys
+
+    raw, text = _example()
+    st = raw["stations"][0]
+    tables = {"": raw, "store": raw["store"], "daemon": raw["daemon"], "logging": raw["logging"],
+              "residual": raw["residual"], "stations": st, "stations.sensors": st["sensors"]}
+    shown_sensor = set().union(*(set(s) for s in st["sensors"].values()))
+    shown_line = set().union(*(set(s.get("line", {})) for s in st["sensors"].values()))
+    for table, keys in known_keys().items():
+        shown = {"stations.sensors.*": shown_sensor, "stations.sensors.*.line": shown_line}.get(table)
+        if shown is None:
+            shown = set(tables[table])
+        assert set(keys) <= shown | _commented_keys(text), (table, set(keys) - shown)
+    assert set(known_keys()["stations.sensors.*.line"]) <= set(st["sensors"]["primary"]["line"])
+
+
+def test_example_documents_every_feed_key_and_kind():
+    from monitor.feeds.spec import ALL_KEYS, KINDS
+
+    raw, text = _example()
+    feeds = [s["feed"] for s in raw["stations"][0]["sensors"].values()]
+    shown = set().union(*(set(f) for f in feeds)) | _commented_keys(text)
+    assert ALL_KEYS | {"kind"} <= shown, ALL_KEYS - shown
+    kinds = {f["kind"] for f in feeds} | set(__import__("re").findall(r'#\s*kind = "(\w+)"', text))
+    assert set(KINDS) <= kinds
+
+
+def test_example_documents_every_qc_setting_with_its_default():
+    from dataclasses import fields
+
+    from monitor.qc import QcSettings, qc_settings_from
+
+    raw, text = _example()
+    qc = raw["stations"][0]["qc"]
+    names = {f.name for f in fields(QcSettings)}
+    assert names <= set(qc) | _commented_keys(text), names - set(qc)
+    # the values shown active are the defaults, so the comment "each value below is the default" holds
+    assert qc_settings_from(qc, "qc") == (QcSettings(), [])
+
+
+def test_example_documents_every_mail_key():
+    from alerts.outbox import mail_settings_from
+
+    raw, text = _example()
+    _, errors = mail_settings_from({**raw["mail"], "no_such_key": 1}, "mail")
+    known = _known_from_message(errors)
+    assert known <= set(raw["mail"]) | _commented_keys(text), known - set(raw["mail"])
+
+
+def test_example_documents_every_report_key():
+    from alerts.report import report_settings_from
+
+    raw, text = _example()
+    _, errors = report_settings_from({**raw["reports"], "no_such_key": 1}, "reports")
+    known = _known_from_message(errors)
+    assert known <= set(raw["reports"]), known - set(raw["reports"])
+
+
+def test_example_has_a_rule_of_every_kind_using_every_rule_key():
+    from alerts.rules import KINDS, rules_from_config
+
+    raw, _ = _example()
+    st = raw["stations"][0]
+    rules = st["rules"]
+    assert {r["watch"] for r in rules} == set(KINDS)
+    _, errors = rules_from_config([{**rules[0], "no_such_key": 1}], "rules", st["datums"])
+    known = _known_from_message(errors)
+    assert known <= set().union(*(set(r) for r in rules)), known
+    _, errors = rules_from_config([{**rules[0], "steps": [{"at": 0.5, "no_such_key": 1}]}], "rules", st["datums"])
+    step_known = _known_from_message(errors)
+    assert step_known <= set().union(*(set(s) for r in rules for s in r["steps"]))

@@ -1,0 +1,222 @@
+"""Alerts end to end with real parts: the daemon as a subprocess following a file, an SMTP
+server on loopback (aiosmtpd). A surge held past a rule's hold sends exactly one email; a
+SIGKILL mid-episode and a restart send no duplicate; the residual back below the band sends
+one all-clear; a one-sample spike (QC fail) sends nothing.
+
+The record is invented: a tide of one constituent (M2) on an invented port, plus a surge
+whose shape the test chooses.
+"""
+from __future__ import annotations
+
+import email
+import os
+import signal
+import socket
+import sqlite3
+import subprocess
+import sys
+import time
+from email import policy
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+import pytest
+from aiosmtpd.controller import Controller
+
+from predictor import TideModel
+
+ROOT = Path(__file__).resolve().parent.parent
+minute = 60
+m = 1.0
+
+# Deadlines for a loaded 2-core machine: generous, but bounded.
+START_DEADLINE = 60.0   # [s] a daemon's start (imports) and first processing pass
+STEP_DEADLINE = 30.0    # [s] from appended lines to their processing or their email
+
+# Data time: whole hours, two days back so no sample is ahead of the clock (QC's future check).
+T0 = (int(time.time()) // 3600 - 48) * 3600
+CONSTANTS = """mean = 2.0
+[[constituents]]
+name = "M2"
+amplitude = 1.0
+phase = 40.0
+"""
+STEP = 0.30 * m       # the rule's one step [m of residual]
+SURGE = 0.50 * m      # the plateau of the surge [m]
+
+
+class Catcher:
+    """aiosmtpd handler keeping every accepted message."""
+
+    def __init__(self):
+        self.messages = []
+
+    async def handle_DATA(self, server, session, envelope):
+        self.messages.append(email.message_from_bytes(envelope.content, policy=policy.default))
+        return "250 OK"
+
+
+def _free_port() -> int:
+    with socket.socket() as s:
+        s.bind(("127.0.0.1", 0))
+        return s.getsockname()[1]
+
+
+def _lines(model, minutes, surge) -> str:
+    t = T0 + 60 * np.asarray(minutes)
+    level = model.predict(pd.to_datetime(t, unit="s", utc=True)) + np.asarray(surge, dtype=float)
+    return "".join(f"{time.strftime('%Y-%m-%dT%H:%M:%SZ', time.gmtime(ti))},{v:.3f}\n" for ti, v in zip(t, level))
+
+
+def _config(tmp: Path, smtp_port: int) -> Path:
+    (tmp / "constants.toml").write_text(CONSTANTS)
+    cfg = tmp / "config.toml"
+    cfg.write_text(f"""
+[store]
+path = "q.db"
+[daemon]
+poll_seconds = 0.1
+process_seconds = 0.3
+outbox_seconds = 0.5
+[mail]
+sender = "Test gauge <gauge@testport.example>"
+host = "127.0.0.1"
+port = {smtp_port}
+security = "none"
+retry_first = "1s"
+retry_max = "2s"
+give_up_after = "1000d"
+[[stations]]
+id = "testport"
+name = "Test Port (invented)"
+latitude = 50.0
+longitude = -4.0
+constants = "constants.toml"
+datums = {{ chart = -1.0 }}
+[stations.sensors.primary]
+line = {{ header_lines = 1 }}
+feed = {{ kind = "file", path = "gauge.csv" }}
+[[stations.rules]]
+id = "surge"
+watch = "residual_above"
+hold = "10min"
+settle = "10min"
+band = 0.10
+notify = ["duty@testport.example"]
+steps = [{{ name = "raised", at = {STEP} }}]
+# No hold: a single counted sample past 0.55 m would open an episode at once. Only the
+# spike goes there, and QC fails it, so this rule must stay quiet.
+[[stations.rules]]
+id = "instant"
+watch = "residual_above"
+hold = "0s"
+notify = ["duty@testport.example"]
+steps = [{{ name = "jump", at = 0.55 }}]
+""")
+    return cfg
+
+
+def _start(cfg: Path) -> subprocess.Popen:
+    env = dict(os.environ, PYTHONPATH=str(ROOT) + os.pathsep + os.environ.get("PYTHONPATH", ""))
+    return subprocess.Popen([sys.executable, "-m", "monitor", "run", str(cfg)], cwd=cfg.parent, env=env,
+                            stdout=subprocess.DEVNULL, stderr=subprocess.PIPE, text=True)
+
+
+def _processed(db: Path) -> int:
+    """The daemon's processing mark [Unix s], -1 before it has one."""
+    if not db.exists():
+        return -1
+    con = sqlite3.connect(db, timeout=10)
+    try:
+        row = con.execute("SELECT value FROM meta WHERE key = 'processed.testport'").fetchone()
+    except sqlite3.OperationalError:
+        return -1
+    finally:
+        con.close()
+    return -1 if row is None else int(row[0])
+
+
+def _outbox(db: Path) -> list[tuple]:
+    con = sqlite3.connect(db, timeout=10)
+    try:
+        return con.execute("SELECT kind, subject FROM outbox ORDER BY id").fetchall()
+    except sqlite3.OperationalError:
+        return []
+    finally:
+        con.close()
+
+
+def _wait(what: str, cond, proc: subprocess.Popen, deadline: float) -> None:
+    end = time.monotonic() + deadline
+    while time.monotonic() < end:
+        if cond():
+            return
+        if proc.poll() is not None:
+            raise AssertionError(f"the daemon exited ({proc.returncode}) waiting for {what}: "
+                                 f"{proc.stderr.read()[-2000:]}")
+        time.sleep(0.1)
+    raise AssertionError(f"no {what} within {deadline:.0f} s")
+
+
+def _append(path: Path, text: str) -> None:
+    with open(path, "a") as fh:
+        fh.write(text)
+
+
+@pytest.mark.slow
+def test_one_alert_no_duplicate_after_sigkill_one_all_clear_and_no_mail_for_a_spike(tmp_path):
+    port = _free_port()
+    catcher = Catcher()
+    ctl = Controller(catcher, hostname="127.0.0.1", port=port)
+    ctl.start()
+    cfg = _config(tmp_path, port)
+    model = TideModel.load(tmp_path / "constants.toml")
+    db, feed = tmp_path / "q.db", tmp_path / "gauge.csv"
+    last_t = lambda minutes: T0 + 60 * minutes[-1]  # noqa: E731
+
+    # Phase A: three calm hours with a one-sample spike of +0.8 m in the middle of them.
+    a = np.arange(0, 180)
+    surge_a = np.where(a == 100, 0.8 * m, 0.0)
+    feed.write_text("time,level\n" + _lines(model, a, surge_a))
+    proc = _start(cfg)
+    try:
+        _wait("processing of the calm hours", lambda: _processed(db) >= last_t(a), proc, START_DEADLINE)
+        assert _outbox(db) == [] and catcher.messages == []  # the spike failed QC: nothing sent
+
+        # Phase B: the surge ramps up over an hour and stays up: past the step for over the hold.
+        b = np.arange(180, 300)
+        _append(feed, _lines(model, b, np.clip((b - 180) / 60, 0, 1) * SURGE))
+        _wait("the alert email", lambda: len(catcher.messages) >= 1, proc, STEP_DEADLINE)
+        _wait("processing of the rise", lambda: _processed(db) >= last_t(b), proc, STEP_DEADLINE)
+
+        # SIGKILL mid-episode, restart, and more of the same surge: no second email.
+        proc.send_signal(signal.SIGKILL)
+        proc.wait()
+        proc = _start(cfg)
+        c = np.arange(300, 360)
+        _append(feed, _lines(model, c, np.full(len(c), SURGE)))
+        _wait("processing after the restart", lambda: _processed(db) >= last_t(c), proc, START_DEADLINE)
+
+        # Phase D: the surge falls back below the band and stays there past the settle time.
+        d = np.arange(360, 480)
+        _append(feed, _lines(model, d, np.clip(1 - (d - 360) / 60, 0, 1) * SURGE))
+        _wait("the all-clear email", lambda: len(catcher.messages) >= 2, proc, STEP_DEADLINE)
+        _wait("processing of the fall", lambda: _processed(db) >= last_t(d), proc, STEP_DEADLINE)
+        time.sleep(1.0)  # one more outbox turn: anything queued late would be sent by now
+    finally:
+        if proc.poll() is None:
+            proc.send_signal(signal.SIGTERM)
+            try:
+                proc.wait(timeout=30)
+            except subprocess.TimeoutExpired:
+                proc.kill()
+                proc.wait()
+        ctl.stop()
+
+    kinds = [k for k, _ in _outbox(db)]
+    assert kinds == ["alert", "all_clear"]
+    subjects = [str(msg["subject"]) for msg in catcher.messages]
+    assert len(subjects) == 2, subjects
+    assert "raised" in subjects[0] and "all clear" in subjects[1]
+    assert not any("jump" in s for s in subjects)
