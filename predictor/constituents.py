@@ -32,7 +32,8 @@ import numpy as np
 
 from predictor.astro import ARGUMENT_RATES
 
-__all__ = ["Constituent", "CATALOGUE", "get", "names", "doodson_matrix", "speeds"]
+__all__ = ["Constituent", "CATALOGUE", "EQUILIBRIUM_AMPLITUDE", "get", "names", "doodson_matrix",
+           "speeds", "equilibrium_amplitude"]
 
 
 @dataclass(frozen=True)
@@ -225,3 +226,55 @@ def doodson_matrix(names_) -> np.ndarray:
 def speeds(names_) -> np.ndarray:
     """Speeds of the named constituents [deg/h], shape (k,)."""
     return np.array([get(n).speed for n in names_], dtype=float)
+
+
+# Amplitudes of the degree-2 equilibrium tide [m] for the catalogue's Doodson numbers and
+# phase offsets, all positive in this convention. The equilibrium tide of a constituent of
+# species 0, 1, 2 at geocentric latitude phi and east longitude lam is
+#   A f (1/2 - 3/2 sin^2 phi) cos(V + u),  A f sin(2 phi) cos(V + u + lam),
+#   A f cos^2(phi) cos(V + u + 2 lam).
+# Values from the Cartwright & Tayler (1971) / Cartwright & Edden (1973) tables as
+# tabulated in tidal-model documentation, quoted from memory (not copied from the papers).
+# tests/test_equilibrium.py checks each against a harmonic analysis of the equilibrium tide
+# computed from pyerfa's Moon and Sun (agreement within 3 %, 4 % for L2 and Mf). Used for
+# inference of unresolved constituents (:mod:`predictor.fit`) and for the convention checks.
+EQUILIBRIUM_AMPLITUDE = {
+    # long period
+    "Mm": 0.022026, "Mf": 0.041742, "Ssa": 0.019446,
+    # diurnal
+    "Q1": 0.019256, "O1": 0.100514, "P1": 0.046843, "K1": 0.141565, "J1": 0.007915,
+    # semidiurnal
+    "2N2": 0.006141, "MU2": 0.007408, "N2": 0.046398, "NU2": 0.008811, "M2": 0.242334,
+    "L2": 0.006694, "T2": 0.006588, "S2": 0.112841, "K2": 0.030704,
+}
+
+
+def equilibrium_amplitude(name: str) -> float:
+    """Amplitude of a constituent in the degree-2 equilibrium tide [m].
+
+    Parameters
+    ----------
+    name : str
+        Constituent name (any case).
+
+    Returns
+    -------
+    float
+        Amplitude A [m] before the latitude factor (see :data:`EQUILIBRIUM_AMPLITUDE`).
+
+    Raises
+    ------
+    KeyError
+        The constituent has no tabulated equilibrium amplitude here.
+
+    References
+    ----------
+    Cartwright, D. E., Tayler, R. J. (1971). Geophys. J. R. Astr. Soc. 23, 45-74;
+    Cartwright, D. E., Edden, A. C. (1973). Geophys. J. R. Astr. Soc. 33, 253-264
+    (values from memory).
+    """
+    canon = get(name).name
+    if canon not in EQUILIBRIUM_AMPLITUDE:
+        raise KeyError(f"no equilibrium amplitude tabulated for {canon} "
+                       f"(known: {', '.join(EQUILIBRIUM_AMPLITUDE)})")
+    return EQUILIBRIUM_AMPLITUDE[canon]

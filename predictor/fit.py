@@ -15,6 +15,8 @@ Pawlowicz, R., Beardsley, B., Lentz, S. (2002). Computers & Geosciences 28 (colo
 confidence intervals; see :mod:`predictor.confidence`).
 Leffler, K. E., Jay, D. A. (2009). Enhancing tidal harmonic analysis: robust (hybrid L1/L2)
 solutions. Continental Shelf Research 29, 78-88 (IRLS with Cauchy weights).
+Cartwright, D. E., Tayler, R. J. (1971); Cartwright, D. E., Edden, A. C. (1973) (equilibrium
+amplitudes for inference). Pugh, D., Woodworth, P. (2014). Sea-Level Science, sec. 4.2.4.
 """
 from __future__ import annotations
 
@@ -39,6 +41,9 @@ __all__ = [
     "select_constituents",
     "required_days",
     "to_unix_seconds",
+    "INFERENCE_PAIRS",
+    "AUTO_INFERENCE",
+    "equilibrium_inference",
 ]
 
 SECONDS_PER_HOUR = 3600.0
@@ -255,6 +260,127 @@ def _too_short_message(duration_hours: float, chosen, rayleigh: float, min_const
             f"factor {rayleigh:g} a fit needs " + ", ".join(parts))
 
 
+# --------------------------------------------------------------------------- inference
+
+#: Unresolved constituent -> resolved neighbour it is inferred from, by equilibrium ratios
+#: (the usual pairs of Foreman 1977, sec. 2.3, and Pugh & Woodworth 2014, sec. 4.2.4: each
+#: pair within one species and close in speed, so the ocean's response is nearly the same).
+#: T2 is left out: S2 carries a radiational (weather-driven) part that T2 lacks, so their
+#: equilibrium ratio is a poor guide (common practice, no source); pass it explicitly if wanted.
+INFERENCE_PAIRS = {
+    "P1": "K1", "K2": "S2", "NU2": "N2", "2N2": "N2", "Q1": "O1", "J1": "K1", "L2": "M2",
+}
+#: The pairs ``infer="auto"`` uses: the large neighbours (equilibrium ratios 0.33, 0.27,
+#: 0.19) that need the longest records (182.6, 182.6 and 205 days), hence are the ones
+#: short records most often miss and whose omission biases the reference most. The other
+#: pairs beat within about a month; ``infer="equilibrium"`` adds them.
+AUTO_INFERENCE = ("P1", "K2", "NU2")
+
+
+def equilibrium_inference(name: str, reference: str) -> tuple[float, float]:
+    """Amplitude ratio and phase difference of two constituents in the equilibrium tide.
+
+    Parameters
+    ----------
+    name, reference : str
+        The constituent to infer and the resolved one it is inferred from; same species.
+
+    Returns
+    -------
+    ratio : float
+        ``A_name / A_reference`` [1] of the degree-2 equilibrium amplitudes.
+    dphase : float
+        ``g_name - g_reference`` [deg]: 0, since the catalogue's phase offsets make every
+        equilibrium amplitude positive (checked against pyerfa in tests/test_equilibrium.py).
+
+    References
+    ----------
+    Cartwright & Tayler (1971); Cartwright & Edden (1973) (amplitudes, from memory);
+    Foreman (1977), sec. 2.3 (inference from equilibrium ratios).
+    """
+    from predictor.constituents import equilibrium_amplitude, get
+
+    a, b = get(name), get(reference)
+    if a.species != b.species:
+        raise FitInputError(f"cannot infer {a.name} from {b.name}: different species")
+    return equilibrium_amplitude(a.name) / equilibrium_amplitude(b.name), 0.0
+
+
+def _resolve_inference(infer, auto_selected: bool, names: list, dropped: list,
+                       duration_h: float, rayleigh: float, step_h) -> tuple[list, list]:
+    """Which constituents to infer: list of dict name/from/ratio/dphase/source."""
+    from predictor.constituents import get
+
+    if infer is None or infer is False:
+        return [], dropped
+    catalogue = _catalogue()
+    out: list[dict] = []
+    if isinstance(infer, str):
+        if infer not in ("auto", "equilibrium"):
+            raise FitInputError(f"infer must be 'auto', 'equilibrium', None or a mapping, got {infer!r}")
+        if infer == "auto" and not auto_selected:
+            return [], dropped  # a list given by name is used exactly as given
+        unresolved = {d["name"] for d in dropped if d["reason"].startswith("not resolved")}
+        min_sep = rayleigh * 360.0 / duration_h if duration_h > 0 else math.inf
+        for name, ref in INFERENCE_PAIRS.items():
+            if infer == "auto" and name not in AUTO_INFERENCE:
+                continue
+            if ref not in names or name in names:
+                continue
+            s = _speed(catalogue[name])
+            if step_h and s >= 180.0 / step_h:
+                continue
+            if auto_selected and name not in unresolved:
+                continue
+            if not auto_selected and abs(s - _speed(catalogue[ref])) >= min_sep:
+                continue  # resolvable: the caller left it out on purpose
+            ratio, dphase = equilibrium_inference(name, ref)
+            out.append({"name": name, "from": ref, "ratio": ratio, "dphase": dphase,
+                        "source": "equilibrium tide (Cartwright & Tayler 1971)"})
+    elif isinstance(infer, dict):
+        for key, spec in infer.items():
+            try:
+                name = get(key).name
+                if isinstance(spec, str):
+                    spec = (spec, None, None)
+                ref_raw, ratio, dphase = (tuple(spec) + (None, None))[:3]
+                ref = get(ref_raw).name
+            except KeyError as exc:
+                raise FitInputError(f"infer[{key!r}]: {exc.args[0]}") from None
+            except TypeError:
+                raise FitInputError(f"infer[{key!r}] must be (reference, ratio, phase difference "
+                                    f"[deg]) or a reference name, got {spec!r}") from None
+            if ref not in names:
+                raise FitInputError(f"infer[{key!r}]: reference {ref} is not among the fitted "
+                                    "constituents")
+            if name in names:
+                raise FitInputError(f"infer[{key!r}]: {name} is fitted in its own right; leave it "
+                                    "out of the constituents to infer it")
+            source = "given"
+            if ratio is None or dphase is None:
+                r_eq, d_eq = equilibrium_inference(name, ref)
+                ratio = r_eq if ratio is None else ratio
+                dphase = d_eq if dphase is None else dphase
+                source = "equilibrium tide (Cartwright & Tayler 1971)" if spec[1] is None \
+                    else "given ratio, equilibrium phase"
+            try:
+                ratio, dphase = float(ratio), float(dphase)
+            except (TypeError, ValueError):
+                raise FitInputError(f"infer[{key!r}]: ratio and phase difference must be numbers, "
+                                    f"got {spec!r}") from None
+            if not (math.isfinite(ratio) and ratio >= 0.0 and math.isfinite(dphase)):
+                raise FitInputError(f"infer[{key!r}]: ratio must be a non-negative number and the "
+                                    f"phase difference finite, got {spec!r}")
+            out.append({"name": name, "from": ref, "ratio": ratio, "dphase": dphase, "source": source})
+    else:
+        raise FitInputError(f"infer must be 'auto', 'equilibrium', None or a mapping, got {infer!r}")
+    seen = {d["name"] for d in out}
+    if len(seen) != len(out):
+        raise FitInputError("a constituent is inferred twice")
+    kept = [d for d in dropped if d["name"] not in seen]
+    return out, kept
+
+
 # --------------------------------------------------------------------------- design
 
 
@@ -269,10 +395,17 @@ class _Design:
     f: np.ndarray          # (days, k) nodal factor [1]
     trend: bool
     trend_epoch: float     # [s]
+    # Inferred constituents ride on a fitted one's columns: (fitted column j, column k of
+    # ``names`` beyond the fitted ones, amplitude ratio r [1], phase difference d [rad]).
+    infer: tuple = ()
+
+    @property
+    def n_fit(self) -> int:
+        return len(self.names) - len(self.infer)
 
     @property
     def n_params(self) -> int:
-        return 1 + int(self.trend) + 2 * len(self.names)
+        return 1 + int(self.trend) + 2 * self.n_fit
 
     def rows(self, t: np.ndarray) -> np.ndarray:
         pos = (t - self.t_ref) / SECONDS_PER_DAY
@@ -282,19 +415,26 @@ class _Design:
         f = self.f[i] * (1.0 - w) + self.f[i + 1] * w
         arg = (t - self.t_ref)[:, None] * self.omega[None, :] + phi
         off = 1 + int(self.trend)
+        k = self.n_fit
         X = np.empty((t.size, self.n_params), order="F")  # column-major suits BLAS syrk
         X[:, 0] = 1.0
         if self.trend:
             X[:, 1] = (t - self.trend_epoch) / SECONDS_PER_YEAR
-        X[:, off::2] = f * np.cos(arg)
-        X[:, off + 1::2] = f * np.sin(arg)
+        X[:, off::2] = f[:, :k] * np.cos(arg[:, :k])
+        X[:, off + 1::2] = f[:, :k] * np.sin(arg[:, :k])
+        for j, col, r, d in self.infer:
+            # H_ref [f cos(th - g) + r f' cos(th' - g - d)]: with a = H cos g, b = H sin g
+            # the inferred term adds r f' cos(th' - d) to the a column, r f' sin(th' - d) to b.
+            fk = r * f[:, col]
+            X[:, off + 2 * j] += fk * np.cos(arg[:, col] - d)
+            X[:, off + 2 * j + 1] += fk * np.sin(arg[:, col] - d)
         return X
 
 
 _NODE_BLOCK = 512  # daily nodes evaluated at a time
 
 
-def _build_design(names, t_min, t_max, nodal, trend, trend_epoch) -> _Design:
+def _build_design(names, t_min, t_max, nodal, trend, trend_epoch, infer=()) -> _Design:
     from predictor import nodal as nod
 
     catalogue = _catalogue()
@@ -320,7 +460,7 @@ def _build_design(names, t_min, t_max, nodal, trend, trend_epoch) -> _Design:
     else:
         phi = np.zeros((nodes.size, 0))
         f = np.zeros((nodes.size, 0))
-    return _Design(list(names), omega, d0, phi, f, bool(trend), float(trend_epoch))
+    return _Design(list(names), omega, d0, phi, f, bool(trend), float(trend_epoch), tuple(infer))
 
 
 def _accumulate(design: _Design, t, y, w, chunk_size):
@@ -389,7 +529,7 @@ def harmonic_fit(times, levels, constituents="auto", rayleigh: float = 1.0, tren
                  robust: bool = False, nodal="auto", chunk_size: int | None = 4096,
                  min_constituents: int = 2, confidence: float | None = 0.95, weights=None,
                  robust_iterations: int = 10, robust_tuning: float = CAUCHY_TUNING,
-                 trend_epoch=None, metadata: dict | None = None):
+                 trend_epoch=None, metadata: dict | None = None, infer=None):
     """Fit harmonic constants to a record of sea levels by least squares.
 
     Parameters
@@ -432,6 +572,37 @@ def harmonic_fit(times, levels, constituents="auto", rayleigh: float = 1.0, tren
         midpoint.
     metadata : dict, optional
         Extra entries for the model's metadata.
+    infer : "auto", "equilibrium", None or dict
+        Inference of constituents the record cannot resolve from a resolved neighbour
+        (Foreman 1977, sec. 2.3; Godin 1972; Pugh & Woodworth 2014, sec. 4.2.4). The
+        inferred constituent's amplitude is fixed at ``ratio`` times the reference's and
+        its phase lag at the reference's plus ``dphase``; the pair is solved as one combined
+        column, so the reference's estimate is corrected for its unresolved neighbour
+        instead of absorbing it as a slow beat.
+
+        * "auto": with ``constituents="auto"``, P1 from K1, K2 from S2 and NU2
+          from N2 (:data:`AUTO_INFERENCE`) when the Rayleigh criterion dropped the
+          neighbour and kept its reference, from equilibrium ratios; a list of names is
+          used exactly as given. In practice this acts on records shorter than about
+          half a year (K1-P1 and S2-K2 need 182.6 days, S2-T2 a year); longer records
+          resolve the pairs and nothing is inferred. Recommended for gauge records
+          shorter than about seven months: the neighbours are large (P1 a third of K1,
+          K2 over a quarter of S2 in the equilibrium tide), so leaving them out biases
+          K1 and S2 by up to that much, while real ports usually keep the ratios within
+          some 10-20 % of equilibrium (Pugh & Woodworth 2014, ch. 4; the size of the
+          departure is common practice, no source).
+        * "equilibrium": every pair of :data:`INFERENCE_PAIRS` (adding 2N2, Q1, J1 and L2),
+          also for a list of names: neighbours left out of the list and not resolvable
+          from their reference are inferred.
+        * dict ``{name: (reference, ratio, dphase)}``: explicit ratio [1] and phase
+          difference ``g_name - g_reference`` [deg], e.g. from a nearby station's long
+          record; ``ratio`` or ``dphase`` None takes the equilibrium value; a bare
+          reference name means both.
+        None or False (default): no inference. Not on by default because inference is an
+        assumption about the site that the analyst makes (Foreman 1977 takes the pairs
+        and ratios as input), and because a library default that adds constituents
+        would change the constants existing callers get; applications fitting short
+        records (the daemon's refit, ``quaywatch fit``) should pass "auto".
 
     Returns
     -------
@@ -441,7 +612,10 @@ def harmonic_fit(times, levels, constituents="auto", rayleigh: float = 1.0, tren
         ``amplitude_ci`` [m], ``phase_ci`` [deg] (half-widths) and ``snr`` [1]; ``trend``
         [m/year]; ``metadata`` with ``rms`` [m], ``variance_explained`` [1],
         ``record_start``/``record_end`` (ISO 8601 UTC), ``n_samples``, ``rayleigh``,
-        ``dropped`` (name and reason) and the method used.
+        ``dropped`` (name and reason) and the method used. Inferred constituents follow
+        the fitted ones with ``inferred_from`` (the reference's name), their intervals
+        scaled from the reference's; ``metadata["inferred"]`` lists name, reference,
+        ratio, phase difference and source.
 
     Raises
     ------
@@ -506,7 +680,12 @@ def harmonic_fit(times, levels, constituents="auto", rayleigh: float = 1.0, tren
 
     epoch = 0.5 * (t[0] + t[-1]) if trend_epoch is None else float(to_unix_seconds([trend_epoch])[0]) \
         if not isinstance(trend_epoch, (int, float)) else float(trend_epoch)
-    design = _build_design(names, t[0], t[-1], nodal, trend, epoch)
+    inferred, dropped = _resolve_inference(infer, isinstance(constituents, str), names, dropped,
+                                           duration_h, rayleigh, step_h)
+    infer_cols = tuple((names.index(d["from"]), len(names) + i, d["ratio"], math.radians(d["dphase"]))
+                       for i, d in enumerate(inferred))
+    design = _build_design(names + [d["name"] for d in inferred], t[0], t[-1], nodal, trend, epoch,
+                           infer_cols)
     if t.size < design.n_params + 2:
         raise FitInputError(f"only {t.size} valid samples for {design.n_params} unknowns; "
                             "the record needs more samples")
@@ -549,6 +728,16 @@ def harmonic_fit(times, levels, constituents="auto", rayleigh: float = 1.0, tren
         amp_ci, ph_ci, snr = _ci.amplitude_phase_intervals(a, b, var_a, var_b, confidence=confidence)
         for i, c in enumerate(cons):
             c.update(amplitude_ci=float(amp_ci[i]), phase_ci=float(ph_ci[i]), snr=float(snr[i]))
+    by_fitted = {c["name"]: c for c in cons}
+    for d in inferred:
+        ref = by_fitted[d["from"]]
+        c = {"name": d["name"], "amplitude": d["ratio"] * ref["amplitude"],
+             "phase": (ref["phase"] + d["dphase"]) % 360.0, "speed": _speed(catalogue[d["name"]]),
+             "inferred_from": d["from"]}
+        if "amplitude_ci" in ref:
+            c.update(amplitude_ci=d["ratio"] * ref["amplitude_ci"], phase_ci=ref["phase_ci"],
+                     snr=ref["snr"])
+        cons.append(c)
 
     var_y = float(np.var(y))
     meta = {
@@ -566,6 +755,10 @@ def harmonic_fit(times, levels, constituents="auto", rayleigh: float = 1.0, tren
         "condition_number": float(cond),
         "dropped": dropped,
     }
+    if inferred:
+        meta["inferred"] = [{"name": d["name"], "from": d["from"], "ratio": float(d["ratio"]),
+                             "phase_difference": float(d["dphase"]), "source": d["source"]}
+                            for d in inferred]
     if robust:
         meta["robust_iterations"] = int(iterations)
         meta["robust_tuning"] = float(robust_tuning)
