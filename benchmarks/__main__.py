@@ -4,10 +4,11 @@ A failing benchmark is reported and the rest still run; the exit status is non-z
 if any failed.  ``python -m benchmarks NAME ...`` runs only the named ones
 (``predict`` or ``bench_predict``).
 
-BLAS runs single-threaded unless ``OPENBLAS_NUM_THREADS`` is already set: on the
-two-core machines we share, a second BLAS thread made the prediction's block product
-slower, not faster (9.7 ms against 15.9 ms for the same product, measured while other
-work ran), and it made every timing noisier.
+BLAS runs single-threaded unless ``OPENBLAS_NUM_THREADS`` is already set. Measured on
+the two-core machine we share, while other work ran: the 19-year fit took 24.0 s with
+OpenBLAS's default threads and 4.9 s with one (its one-year lstsq baseline 6.6 s and
+0.4 s), and the prediction's block product 15.9 ms against 9.7 ms.  Oversubscribed
+threads also made every timing noisier.
 """
 from __future__ import annotations
 
