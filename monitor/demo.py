@@ -236,13 +236,17 @@ def ingest_history(history: Path, config: Path, port: dict, before: dt.datetime,
 
 
 def write_config(template: Path, out_dir: Path, smtp_port: int, feeds: dict[str, Path],
-                 constants: Path, speedup: float | None = None) -> Path:
+                 constants: Path, speedup: float | None = None, daemon_reports: bool = True) -> Path:
     """The daemon's configuration: the demo template with this run's port, feeds and constants."""
     import tomli_w
 
     with open(template, "rb") as fh:
         cfg = tomllib.load(fh)
     cfg["mail"]["port"] = smtp_port
+    if not daemon_reports:
+        # Without a [reports] table the daemon writes no scheduled reports; 'quaywatch report'
+        # still writes to the default folder, reports/ beside the configuration.
+        cfg.pop("reports", None)
     station = cfg["stations"][0]
     station["constants"] = str(constants.relative_to(out_dir))
     for role, path in feeds.items():
@@ -614,14 +618,17 @@ def run_demo(out: Path = DEFAULT_OUT, short: bool = False, speedup: float | None
 
     # Written once with a placeholder port so that ingest can read it; rewritten below with
     # the mail server's port.
-    config = write_config(DEMO / "config.toml", out, 25, feeds, constants, speedup)
-    step("Loading the last five weeks of history into the store (quaywatch ingest) ...")
-    ingest_history(SAMPLES / "history.csv", config, port, start, log)
+    # The quick run leaves out the history (only the forecast's uncertainty needs it) and the
+    # daemon's own scheduled reports.
+    config = write_config(DEMO / "config.toml", out, 25, feeds, constants, speedup, not short)
+    if not short:
+        step("Loading the last five weeks of history into the store (quaywatch ingest) ...")
+        ingest_history(SAMPLES / "history.csv", config, port, start, log)
 
     catcher = MailCatcher(out / "mail")
     port_no = catcher.start()
     try:
-        write_config(DEMO / "config.toml", out, port_no, feeds, constants, speedup)
+        write_config(DEMO / "config.toml", out, port_no, feeds, constants, speedup, not short)
         step(f"Running the daemon (quaywatch run) on the replay feeds; mail to 127.0.0.1:{port_no} ...")
         run_daemon(config, out / "daemon.log", timeout)
         time.sleep(0.5)  # the last SMTP transaction may still be closing
