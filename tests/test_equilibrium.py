@@ -189,7 +189,6 @@ def perigee_windows():
     return out
 
 
-@pytest.mark.slow
 @pytest.mark.parametrize("name", ["L2", "M1"])
 def test_l2_and_m1_nodal_terms_make_yearly_constants_steady(perigee_windows, name):
     # Independent route: the ephemeris tide itself. L2 and M1 are groups of lines a few
@@ -202,7 +201,6 @@ def test_l2_and_m1_nodal_terms_make_yearly_constants_steady(perigee_windows, nam
     assert np.max(np.abs(wrap(ph))) < 1.5 * degree
 
 
-@pytest.mark.slow
 @pytest.mark.parametrize("name", ["L2", "M1"])
 def test_without_nodal_terms_the_same_fits_drift(perigee_windows, name):
     # The check above has power: without f and u the yearly constants move by over 10 deg.
