@@ -86,6 +86,26 @@ class BandSpectrum:
         return float(np.mean(self.psd[sel]))
 
 
+    def mean_around(self, freq_cph: float, half_width_cpd: float = BAND_HALF_WIDTH_CPD) -> float:
+        """Mean one-sided PSD over a window centred on one frequency [m^2 / (cycle/hour)].
+
+        The residual's spectrum is red: across a species band it can fall by a factor of
+        two. The band mean describes the band centre, so a constituent on the band's
+        low-frequency side (Q1, O1, N2, M4) would get too little noise and too narrow an
+        interval; a window of the same width centred on the constituent follows the slope.
+        """
+        lo, hi = freq_cph - half_width_cpd / 24.0, freq_cph + half_width_cpd / 24.0
+        f = self.freq
+        sel = (f >= lo) & (f <= hi) & (f > 0)
+        if self.usable is not None and (sel & self.usable).sum() >= _MIN_LINES:
+            sel &= self.usable
+        if sel.sum() < _MIN_LINES:
+            order = np.argsort(np.abs(f - freq_cph) + np.where(f > 0, 0.0, np.inf))
+            sel = np.zeros_like(f, dtype=bool)
+            sel[order[:_MIN_LINES]] = True
+        return float(np.mean(self.psd[sel]))
+
+
 def species_band(species: int) -> tuple[float, float]:
     """Frequency band used for the noise of a tidal species.
 
@@ -168,7 +188,13 @@ def residual_band_spectrum(t_seconds, residual, step_seconds: float | None = Non
     # The Hann window keeps the strong low-frequency surge power from leaking into the
     # tidal bands.
     freq, psd = _hann_periodogram(grid, 1.0 / step_h)
-    psd = psd / p
+    # Zero-filled gaps remove power in proportion to the window's weight where they fall:
+    # a long outage mid-record (where the Hann window is largest) removes more than its
+    # share of the samples, so divide by the window-weighted fill fraction.
+    n = grid.size
+    win2 = (0.5 - 0.5 * np.cos(2.0 * np.pi * np.arange(n) / n)) ** 2
+    p_window = float(np.sum(win2 * filled) / np.sum(win2))
+    psd = psd / p_window
     usable = None
     if fitted_speeds is not None:
         df = freq[1] - freq[0] if freq.size > 1 else np.inf
@@ -228,9 +254,14 @@ def coefficient_variance(spectrum: BandSpectrum, speeds_deg_per_hour, inverse_di
     cache: dict[int, float] = {}
     density = np.empty(speeds.size)
     for i, s in enumerate(species):
-        if s not in cache:
-            cache[s] = spectrum.band_mean(s)
-        density[i] = cache[s]
+        if s <= 0:
+            # long period: the fixed band above zero frequency (a centred window would
+            # reach into the zero-frequency surge power for Sa and Ssa)
+            if s not in cache:
+                cache[s] = spectrum.band_mean(s)
+            density[i] = cache[s]
+        else:
+            density[i] = spectrum.mean_around(speeds[i] / 360.0)
     if inverse_diagonal is None:
         var = density / spectrum.duration_hours
         return var, var.copy()
