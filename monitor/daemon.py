@@ -6,8 +6,13 @@ runs these jobs:
 - ``poll``: each feed's new lines are parsed and stored with the feed's checkpoint in one
   transaction (:func:`ingest_lines`);
 - ``process``: per station, :meth:`Daemon.process_station` -- quality control, residual,
-  skew surge, next high water forecast, then the alert rules (one pipeline, in order);
-- ``outbox``: deliver queued email;
+  skew surge, next high water forecast, then the alert rules (one pipeline, in order).
+  Rows that arrive late (older than what was processed, of any sensor) are processed
+  again from the earliest time stored. The rules get the new samples and the hour before
+  them, the forecast dict, the feed's age and the equipment faults; sensor drift and clock
+  offset, costly, are recomputed every ``daemon.diagnostics_minutes`` of data time. When
+  the rules queue messages the outbox is delivered at once;
+- ``outbox``: deliver queued email (retries and anything queued by other means);
 - ``reports``: daily reports, when the report writer is installed;
 - ``refit``: refit stations whose constants come from their own history.
 
@@ -227,10 +232,13 @@ class Daemon:
         self.feeds_done_at: float | None = None
         self.until_exhausted = False
         self.qc = _optional("monitor.qc")
-        self.diag = _optional("monitor.diagnostics")
-        self.engine = _optional("alerts.engine")
-        self.outbox = _optional("alerts.outbox")
-        self.rules_mod = _optional("alerts.rules")
+        # The alert engine (with its templates) and the diagnostics (with scipy.stats) take
+        # seconds to import on a loaded machine; a daemon without rules does without them.
+        has_rules = any(st.rules for st in cfg.stations)
+        self.diag = _optional("monitor.diagnostics") if has_rules else None
+        self.engine = _optional("alerts.engine") if has_rules else None
+        self.outbox = _optional("alerts.outbox") if cfg.mail is not None else None
+        self.rules_mod = _optional("alerts.rules") if has_rules else None
         self.stations = {st.id: self._station_runtime(st) for st in cfg.stations}
         # Replay feeds run on the replayed clock: alert times, outbox back-off and expiry all
         # follow the data's own time, so a replayed storm reads as it would have live.

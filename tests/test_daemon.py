@@ -81,18 +81,6 @@ def _stored(db: Path) -> tuple[list, int]:
     return rows, rejects
 
 
-def _wait_for_rows(db: Path, proc: subprocess.Popen, more_than: int = 0, timeout: float = 30) -> bool:
-    """Wait until the store holds more than ``more_than`` rows; False if the daemon exited first."""
-    end = time.monotonic() + timeout
-    while time.monotonic() < end:
-        if proc.poll() is not None:
-            return False
-        if len(_stored(db)[0]) > more_than:
-            return True
-        time.sleep(0.05)
-    raise AssertionError("the daemon stored nothing new in time")
-
-
 # --------------------------------------------------------------------------- late data, in process
 
 T0 = 1_760_000_040  # a whole minute (2025-10-09, invented record)
@@ -150,31 +138,84 @@ def test_late_rows_of_the_backup_are_quality_controlled(daemon):
 
 # --------------------------------------------------------------------------- the daemon as a subprocess
 
+def _wait_for_rows(db: Path, proc: subprocess.Popen, more_than: int = 0, timeout: float = 60) -> bool:
+    """Wait until the store holds more than ``more_than`` rows; False if the daemon exited first."""
+    end = time.monotonic() + timeout
+    while time.monotonic() < end:
+        if proc.poll() is not None:
+            return False
+        if len(_stored(db)[0]) > more_than:
+            return True
+        time.sleep(0.02)
+    raise AssertionError(f"the daemon stored nothing new within {timeout:.0f} s")
+
+
+KILLS = 10
+PACE = 100  # [lines/s] of the paced replay the kills interrupt
+
+
+def _fork_daemon(cfg: Path):
+    """``quaywatch run CFG`` in a forked child of this (already imported) interpreter.
+
+    The child is a separate process with its own store connection, lock and feeds, killed
+    for real; forking skips the seconds of imports a fresh interpreter pays on a loaded
+    machine, so the kills come at the pace of the backfill, not of the imports."""
+    import multiprocessing
+
+    def child():
+        os.chdir(cfg.parent)
+        from monitor.cli import main
+
+        os._exit(main(["run", str(cfg)]))
+
+    from monitor.config import load_config
+
+    load_config(cfg)  # imports what the configuration and the daemon need, before the fork
+
+    proc = multiprocessing.get_context("fork").Process(target=child, daemon=False)
+    proc.start()
+    return proc
+
+
+class _Forked:
+    """The subprocess.Popen methods _wait_for_rows uses, for a forked child."""
+
+    def __init__(self, proc):
+        self.proc = proc
+        self.returncode = None
+
+    def poll(self):
+        return None if self.proc.is_alive() else self.proc.exitcode
+
+
 @pytest.mark.slow
 def test_sigkill_at_random_moments_loses_and_doubles_nothing(tmp_path):
     expected, bad = _write_feed(tmp_path / "gauge.csv")
-    # a paced replay hands out a few dozen lines per poll, so the kills land between and inside batches
-    cfg = _config(tmp_path, '{ kind = "replay", path = "gauge.csv", rate = 300 }')
+    db = tmp_path / "q.db"
+    # A paced replay hands out a few lines per poll, so the kills land between and inside
+    # batches. At PACE lines/s even kills held up by a second each on a loaded machine leave
+    # most of the N_LINES for later: the kills cannot finish the backfill.
+    cfg = _config(tmp_path, f'{{ kind = "replay", path = "gauge.csv", rate = {PACE} }}')
     rng = random.Random(20251020)
     kills = 0
-    for _ in range(10):
-        before = len(_stored(tmp_path / "q.db")[0])
-        if before >= len(expected):
-            break
-        proc = _start(cfg)
+    while kills < KILLS:
+        before = len(_stored(db)[0])
+        proc = _fork_daemon(cfg)
         # kill once this run has made progress, at a random moment of its backfill
-        if not _wait_for_rows(tmp_path / "q.db", proc, before):
-            break
-        time.sleep(rng.uniform(0.0, 0.3))
-        proc.send_signal(signal.SIGKILL)
-        proc.wait()
+        if not _wait_for_rows(db, _Forked(proc), before):
+            raise AssertionError(f"the daemon exited with {proc.exitcode} before storing anything")
+        time.sleep(rng.uniform(0.0, 0.2))
+        os.kill(proc.pid, signal.SIGKILL)
+        proc.join()
+        assert proc.exitcode == -signal.SIGKILL
         kills += 1
-    partial, _ = _stored(tmp_path / "q.db")
-    proc = _start(cfg, "--until-exhausted")
-    out, err = proc.communicate(timeout=60)
+    partial, _ = _stored(db)
+    # The rest is played as fast as the daemon takes it: the checkpoint holds no pacing.
+    cfg = _config(tmp_path, '{ kind = "replay", path = "gauge.csv", speedup = 0 }')
+    proc = _start(cfg, "--until-exhausted")  # the real entry point, in a fresh interpreter
+    out, err = proc.communicate(timeout=120)
     assert proc.returncode == 0, err[-2000:]
-    rows, rejects = _stored(tmp_path / "q.db")
-    assert kills >= 8
+    rows, rejects = _stored(db)
     assert 0 < len(partial) < len(expected)  # the kills did interrupt the backfill
     assert len(rows) == len(expected) and set(rows) == expected  # none lost, none doubled
     assert rejects == bad  # a replayed batch would have doubled its rejected lines
