@@ -12,6 +12,7 @@ import sys
 import time
 from pathlib import Path
 
+import numpy as np
 import pytest
 
 ROOT = Path(__file__).resolve().parent.parent
@@ -241,3 +242,33 @@ def test_sigterm_stops_cleanly_and_a_second_daemon_is_refused(tmp_path):
             proc.wait()
     rows, _ = _stored(tmp_path / "q.db")
     assert len(rows) == N_LINES - (N_LINES // BAD_EVERY)
+
+
+def test_primary_backup_drift_reaches_the_rules_as_an_equipment_fault(tmp_path):
+    from monitor.config import validate_config
+    from monitor.daemon import Daemon, ingest_lines
+    from monitor.store import Store
+
+    raw = {"store": {"path": "q.db"},
+           "stations": [{"id": "testport", "latitude": 50.0, "longitude": -4.0, "constants": "history",
+                         "datums": {"chart": -1.0}, "sensors": {"primary": {}, "backup": {}},
+                         "rules": [{"id": "gauge", "watch": "equipment_fault",
+                                    "notify": ["tech@testport.example"]}]}]}
+    cfg, errors = validate_config(raw, tmp_path)
+    assert errors == []
+    with Store.open(cfg.store_path) as store:
+        d = Daemon(cfg, store)
+        st, rt = cfg.stations[0], d.stations["testport"]
+        minutes = np.arange(0, 4 * 1440, 10)  # four days at ten-minute steps
+        day = 86400
+        sea = 2.0 + 0.5 * np.sin(2 * np.pi * minutes / 745)
+        drift = 20e-3 * (60 * minutes / day)  # the backup drifts 20 mm/day (invented)
+        for role, level in (("primary", sea), ("backup", sea - drift)):
+            lines = [f"{time.strftime('%Y-%m-%dT%H:%M:%SZ', time.gmtime(T0 + 60 * m))},{v:.4f}"
+                     for m, v in zip(minutes, level)]
+            ingest_lines(store, st.sensors[role], lines, received=T0 + 5 * day)
+        end = int(T0 + 60 * minutes[-1])
+        faults = d._diagnostic_faults(rt, now=end + 60, end_t=end)
+    (f,) = [f for f in faults if f["kind"] == "sensor_drift"]
+    # primary - backup grows by 20 mm/day (the injected drift); Theil-Sen on hourly medians
+    assert f["value"] == pytest.approx(20.0, abs=1.0)  # mm/day
