@@ -102,6 +102,7 @@ class StationConfig:
     rules: Any = ()
     qc_raw: dict = field(default_factory=dict)
     rules_raw: list = field(default_factory=list)
+    note: str = ""                    # free text shown (as text, never HTML) in reports and emails
 
     @property
     def fit_from_history(self) -> bool:
@@ -440,7 +441,7 @@ def _residual(c: _Checker, raw: Any) -> ResidualSettings:
     return ResidualSettings(**{k: v for k, v in vals.items() if v is not None})
 
 
-_STATION_KEYS = ("id", "name", "latitude", "longitude", "tz", "datums", "constants", "fit_min_days",
+_STATION_KEYS = ("id", "name", "note", "latitude", "longitude", "tz", "datums", "constants", "fit_min_days",
                  "fit_span_days", "sensors", "qc", "rules")
 
 
@@ -454,6 +455,7 @@ def _station(c: _Checker, raw: Any, kp: str, base_dir: Path) -> StationConfig | 
     sid = c.value(t, kp, "id", "str", check=lambda v: bool(_ID_RE.match(v)),
                   expect="an id of 1-40 lower-case letters, digits, '-' or '_', starting with a letter or digit")
     name = c.value(t, kp, "name", "str", sid or "")
+    note = c.value(t, kp, "note", "str", "")
     lat = c.value(t, kp, "latitude", "number", check=lambda v: -90 <= v <= 90, expect="degrees from -90 to 90")
     lon = c.value(t, kp, "longitude", "number", check=lambda v: -180 <= v <= 180,
                   expect="degrees from -180 to 180")
@@ -517,7 +519,7 @@ def _station(c: _Checker, raw: Any, kp: str, base_dir: Path) -> StationConfig | 
 
     if len(errors) > n0:
         return None
-    return StationConfig(id=sid, name=name or sid, latitude=lat, longitude=lon, tz=tz, datums=datums,
+    return StationConfig(id=sid, name=name or sid, note=note or "", latitude=lat, longitude=lon, tz=tz, datums=datums,
                          constants=const_path, fit_min_days=fit_min, fit_span_days=fit_span, sensors=sensors,
                          qc=qc, rules=rules, qc_raw=qt or {}, rules_raw=rules_raw)
 

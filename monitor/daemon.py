@@ -249,7 +249,8 @@ class Daemon:
         model, source = load_model(self.store, st)
         view = None
         if self.rules_mod is not None and hasattr(self.rules_mod, "StationView"):
-            view = self.rules_mod.StationView(id=st.id, name=st.name, tz=st.tz, datums=dict(st.datums))
+            view = self.rules_mod.StationView(id=st.id, name=st.name, tz=st.tz, datums=dict(st.datums),
+                                               notes=st.note)
         kinds = [getattr(s.feed, "kind", None) for s in st.sensors.values() if s.feed is not None]
         rt = StationRuntime(cfg=st, model=model, model_source=source, view=view,
                             replay_clock=bool(kinds) and all(k == "replay" for k in kinds))
