@@ -2,16 +2,25 @@
 by a local SMTP server, through the real daemon (``quaywatch run``) as a subprocess.
 
 Each trial appends one line that takes the residual over a rule's step (hold 0), waits
-for the alert, then appends a line that clears it and waits for the all-clear. The
-polling settings are those of ``config.example.toml`` (``[daemon]``) when it exists,
-otherwise the daemon's defaults. Two baselines are measured in the same run:
+for the alert, then appends a line that clears it and waits for the all-clear; both
+emails count as latencies (line appended -> message accepted). Two daemons run side by
+side: one with the polling of ``config.example.toml`` (``[daemon]``) when it exists,
+otherwise the daemon's defaults, and one with one-second timers (what the design notes'
+"within seconds" needs). Baselines measured in the same run:
 
 - the scheduling bound, poll + process + outbox intervals: what three timers in series
-  allow in the worst case;
+  allow in the worst case (target: worst latency within the bound plus 5 s);
 - the direct path: queuing one message and delivering it to the same server in-process.
 
-Run: ``python -m benchmarks.bench_alert_latency`` (``QW_BENCH_TRIALS=N`` to choose the
-number of trials, ``QW_BENCH_POLL=POLL,PROCESS,OUTBOX`` seconds to override the polling).
+With the example's 10 s / 60 s / 30 s timers each latency is tens of seconds and the
+daemon's first processing pass comes a full interval after its start, so one episode
+(two latencies) is measured to finish within about three minutes.  Each line is
+appended soon after the previous email, that is soon after a processing pass, so the
+figures sit near the worst case of the processing timer rather than at its average.
+
+Run: ``python -m benchmarks.bench_alert_latency`` (``QW_BENCH_TRIALS=N`` episodes with the
+configured polling, ``QW_BENCH_FAST_TRIALS=N`` with one-second timers,
+``QW_BENCH_POLL=POLL,PROCESS,OUTBOX`` seconds to override the configured polling).
 """
 from __future__ import annotations
 
@@ -166,17 +175,37 @@ def _direct_baseline(port: int, catcher: _Catcher, n: int = 20) -> float:
     return statistics.median(times)
 
 
-def main() -> None:
+def _wait_ready(db: Path, timeout: float) -> bool:
+    """True once the daemon has processed the history (rows in ``derived``)."""
+    import sqlite3
+
+    deadline = time.monotonic() + timeout
+    while time.monotonic() < deadline:
+        try:
+            con = sqlite3.connect(f"file:{db}?mode=ro", uri=True, timeout=1.0)
+            try:
+                if con.execute("SELECT count(*) FROM derived").fetchone()[0] > 0:
+                    return True
+            finally:
+                con.close()
+        except sqlite3.Error:
+            pass
+        time.sleep(0.5)
+    return False
+
+
+def _measure(polling: dict, trials: int) -> tuple[list[float], list[float], float]:
+    """Alert and all-clear latencies [s] over ``trials`` episodes through a real daemon,
+    and the direct queue-and-send time [s] to the same server."""
     from aiosmtpd.controller import Controller
 
-    polling, src = _polling()
     bound = sum(polling.values())
-    trials = int(os.environ.get("QW_BENCH_TRIALS", max(5, min(20, int(600 // max(bound, 1.0) // 2)))))
     port = _free_port()
     catcher = _Catcher()
     ctl = Controller(catcher, hostname="127.0.0.1", port=port)
     ctl.start()
-    latencies: list[float] = []
+    alerts: list[float] = []
+    clears: list[float] = []
     try:
         direct = _direct_baseline(port, catcher)
         with tempfile.TemporaryDirectory() as d:
@@ -188,8 +217,11 @@ def main() -> None:
                                         stdout=log, stderr=subprocess.STDOUT, env=env)
             try:
                 wait = 2 * bound + 15
-                time.sleep(min(wait, polling["poll_seconds"] + polling["process_seconds"] + 2))
-                for i in range(trials + 1):  # the first is a warm-up
+                # the first processing pass comes one process interval after the start
+                if not _wait_ready(tmp / "store.sqlite", wait + 30):
+                    tail = (tmp / "daemon.log").read_text()[-2000:]
+                    raise SystemExit(f"daemon never processed its history; daemon log:\n{tail}")
+                for i in range(trials):
                     mark = len(catcher.got)
                     t_data += SPACING
                     with open(tmp / "obs.csv", "a") as fh:
@@ -199,19 +231,21 @@ def main() -> None:
                     if got is None:
                         tail = (tmp / "daemon.log").read_text()[-2000:]
                         raise SystemExit(f"no alert within {wait:.0f} s on trial {i}; daemon log:\n{tail}")
-                    if i > 0:
-                        latencies.append(got[0] - t_append)
+                    alerts.append(got[0] - t_append)
                     mark = len(catcher.got)
                     time.sleep(1.0)
                     t_data += SPACING
                     with open(tmp / "obs.csv", "a") as fh:
+                        t_append = time.time()
                         fh.write(_line(t_data, BELOW))
-                    if catcher.wait_for(lambda s: "all clear" in s, mark, wait) is None:
+                    got = catcher.wait_for(lambda s: "all clear" in s, mark, wait)
+                    if got is None:
                         tail = (tmp / "daemon.log").read_text()[-3000:]
                         if os.environ.get("QW_BENCH_KEEP"):
                             import shutil
                             shutil.copytree(tmp, os.environ["QW_BENCH_KEEP"], dirs_exist_ok=True)
                         raise SystemExit(f"no all-clear within {wait:.0f} s on trial {i}; daemon log:\n{tail}")
+                    clears.append(got[0] - t_append)
                     time.sleep(1.0)
             finally:
                 proc.send_signal(signal.SIGTERM)
@@ -222,13 +256,49 @@ def main() -> None:
                     proc.wait()
     finally:
         ctl.stop()
-    med, worst = statistics.median(latencies), max(latencies)
-    print(f"alert latency over {len(latencies)} trials with the polling of {src} "
-          f"(poll {polling['poll_seconds']:g} s, process {polling['process_seconds']:g} s, "
-          f"outbox {polling['outbox_seconds']:g} s)")
-    print(f"  median {med:.2f} s, worst {worst:.2f} s")
+    return alerts, clears, direct
+
+
+FAST = {"poll_seconds": 1.0, "process_seconds": 1.0, "outbox_seconds": 1.0}
+FAST_TARGET = 10.0   # [s] "within seconds" (design notes), with one-second timers
+OVERHEAD_TARGET = 5.0  # [s] what the pipeline may add on top of its three timers
+
+
+def _report(title: str, polling: dict, alerts: list[float], clears: list[float], direct: float,
+            target: float, target_text: str) -> None:
+    bound = sum(polling.values())
+    both = alerts + clears
+    med, worst = statistics.median(both), max(both)
+    print(f"{title} (poll {polling['poll_seconds']:g} s, process {polling['process_seconds']:g} s, "
+          f"outbox {polling['outbox_seconds']:g} s): {len(alerts)} alerts + {len(clears)} all-clears")
+    print(f"  alert     median {statistics.median(alerts):6.2f} s, worst {max(alerts):6.2f} s")
+    print(f"  all-clear median {statistics.median(clears):6.2f} s, worst {max(clears):6.2f} s")
     print(f"  ratio median / scheduling bound ({bound:g} s): {med / bound:.2f}; worst: {worst / bound:.2f}")
     print(f"  ratio median / direct queue-and-send ({direct * 1000:.1f} ms): {med / direct:.0f}")
+    print(f"  worst {worst:.2f} s, {target_text} {target:g} s: {'PASS' if worst <= target else 'FAIL'}")
+
+
+def main() -> None:
+    from concurrent.futures import ThreadPoolExecutor
+
+    polling, src = _polling()
+    bound = sum(polling.values())
+    # each episode costs two latencies of about half the bound on average; keep the run
+    # to a few minutes (QW_BENCH_TRIALS overrides)
+    trials = int(os.environ.get("QW_BENCH_TRIALS", max(1, min(10, int(120 // max(bound, 1.0))))))
+    fast_trials = int(os.environ.get("QW_BENCH_FAST_TRIALS", 5))
+    # the two daemons mostly wait on their timers, so they run side by side
+    with ThreadPoolExecutor(2) as pool:
+        configured = pool.submit(_measure, polling, trials)
+        fast = pool.submit(_measure, FAST, fast_trials)
+        a1, c1, d1 = configured.result()
+        a2, c2, d2 = fast.result()
+    _report(f"alert latency with the polling of {src}", polling, a1, c1, d1,
+            bound + OVERHEAD_TARGET, f"target <= scheduling bound + {OVERHEAD_TARGET:g} s =")
+    print("  (a line waits for up to one poll, one processing pass and one outbox pass in series; "
+          "shorter intervals in [daemon] give lower latency)")
+    _report("alert latency with one-second timers", FAST, a2, c2, d2, FAST_TARGET,
+            "target (design notes: within seconds) <=")
 
 
 if __name__ == "__main__":
