@@ -5,15 +5,17 @@ from __future__ import annotations
 import argparse
 import time
 import uuid
-from datetime import datetime, timezone
+from datetime import timezone
 from email.utils import parseaddr
 from pathlib import Path
 from zoneinfo import ZoneInfo
 
+from monitor.cli_common import CAUTION, positive_int, store_errors
+from monitor.cli_common import table as _common_table
 from monitor.errors import UserError
+from monitor.timeparse import local_text
 
-CAUTION_LINE = ("Automated and unofficial: official warnings and local emergency authorities "
-                "come first; defer to local codes and licensed practice.")
+CAUTION_LINE = CAUTION
 
 
 def register(subparsers) -> None:
@@ -28,19 +30,19 @@ def register(subparsers) -> None:
     ep = sub.add_parser("episodes", help="recent alert episodes, newest first")
     ep.add_argument("--station", help="only this station")
     ep.add_argument("--open", action="store_true", help="only episodes still in progress")
-    ep.add_argument("--limit", type=int, default=30, help="how many (default 30)")
-    ep.set_defaults(func=cmd_episodes)
+    ep.add_argument("--limit", type=positive_int, default=30, help="how many (default 30)")
+    ep.set_defaults(func=store_errors(cmd_episodes))
 
     ob = sub.add_parser("outbox", help="recent outbox messages and their delivery state")
     ob.add_argument("--status", choices=("pending", "sending", "sent", "expired"), help="only this state")
-    ob.add_argument("--limit", type=int, default=30, help="how many (default 30)")
-    ob.set_defaults(func=cmd_outbox)
+    ob.add_argument("--limit", type=positive_int, default=30, help="how many (default 30)")
+    ob.set_defaults(func=store_errors(cmd_outbox))
 
     tm = sub.add_parser("test-mail", help="send a test email through the outbox and report the result")
     tm.add_argument("--to", metavar="ADDR", help="recipient (default: the sender address)")
     tm.add_argument("--wait", type=float, default=20.0, metavar="SECONDS",
                     help="how long to wait for delivery (default 20)")
-    tm.set_defaults(func=cmd_test_mail)
+    tm.set_defaults(func=store_errors(cmd_test_mail))
 
 
 # --------------------------------------------------------------------------- helpers
@@ -75,17 +77,20 @@ def _zone_for(cfg, station: str | None):
 
 
 def _local(t, zone) -> str:
-    if t is None:
-        return "-"
-    return datetime.fromtimestamp(int(t), timezone.utc).astimezone(zone).strftime("%Y-%m-%d %H:%M %Z")
+    return local_text(t, zone)
 
 
 def _table(headers: list[str], rows: list[list[str]]) -> str:
-    widths = [max(len(h), *(len(r[i]) for r in rows)) if rows else len(h) for i, h in enumerate(headers)]
-    lines = ["  ".join(h.ljust(w) for h, w in zip(headers, widths)).rstrip()]
-    lines.append("  ".join("-" * w for w in widths))
-    lines += ["  ".join(c.ljust(w) for c, w in zip(r, widths)).rstrip() for r in rows]
-    return "\n".join(lines)
+    return _common_table(rows, headers)
+
+
+def _zone_note(cfg, station: str | None) -> str:
+    """Which zone the times are in, said above a table."""
+    stations = list(getattr(cfg, "stations", ()) or ())
+    if station is None and len(stations) > 1:
+        return "times in each station's local zone (abbreviation shown); levels in metres"
+    zone = _zone_for(cfg, station)
+    return f"times in {getattr(zone, 'key', 'UTC')} (abbreviation shown); levels in metres"
 
 
 def _value(v, unit) -> str:
@@ -119,7 +124,9 @@ def cmd_episodes(args: argparse.Namespace) -> int:
                     _local(r["closed_at"], zone) if r["closed_at"] else "in progress",
                     r["top_step"] or "-", r["step_now"] or "-", _value(r["peak"], r["unit"]),
                     str(r["messages"] or 0)])
+    print(_zone_note(cfg, args.station))
     print(_table(["id", "station", "rule", "opened", "closed", "highest step", "now", "peak", "mails"], out))
+    print(CAUTION)
     return 0
 
 
@@ -143,6 +150,7 @@ def cmd_outbox(args: argparse.Namespace) -> int:
         subject = r["subject"] if len(r["subject"]) <= 60 else r["subject"][:57] + "..."
         out.append([str(r["id"]), _local(r["created_at"], zone), r["kind"], r["recipient"], r["status"],
                     str(r["attempts"] or 0), when, subject])
+    print(_zone_note(cfg, None).split(";")[0])
     print(_table(["id", "queued", "kind", "to", "state", "tries", "when", "subject"], out))
     failing = [r for r in rows if r["status"] in ("pending", "expired") and r["last_error"]]
     for r in failing:

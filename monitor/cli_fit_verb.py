@@ -10,13 +10,13 @@ import json
 import re
 import sys
 import warnings
-import zoneinfo
 from pathlib import Path
 
 import numpy as np
 import pandas as pd
 
 from monitor.errors import UserError
+from monitor.timeparse import zone as _zone
 
 __all__ = ["CAUTION", "read_level_csv", "register", "run_fit", "model_summary"]
 
@@ -67,12 +67,7 @@ def read_level_csv(path, tz: str | None = None):
         bad time or level, time without a zone, no data.
     """
     path = Path(path)
-    zone = None
-    if tz is not None:
-        try:
-            zone = zoneinfo.ZoneInfo(tz)
-        except (zoneinfo.ZoneInfoNotFoundError, ValueError):
-            raise UserError(f"--tz {tz!r}: unknown time zone (use an IANA name such as Europe/Lisbon)") from None
+    zone = None if tz is None else _zone(tz)
     try:
         text = path.read_text(encoding="utf-8-sig")
     except FileNotFoundError:

@@ -11,19 +11,18 @@ authorities come first; defer to local codes and licensed practice.
 from __future__ import annotations
 
 import argparse
-import math
 import sys
-from typing import Any
-from zoneinfo import ZoneInfo
 
 import numpy as np
 import pandas as pd
 
 from monitor import qc
+from monitor.cli_common import CAUTION, count, finite_float, store_errors
+from monitor.cli_common import table as _common_table
 from monitor.errors import UserError
+from monitor.timeparse import local_text as _local
+from monitor.timeparse import parse_range, parse_time
 
-CAUTION = ("Automated and unofficial: official warnings and the local emergency authorities come first; "
-           "defer to local codes and licensed practice.")
 
 
 def register(subparsers) -> None:
@@ -36,8 +35,8 @@ def register(subparsers) -> None:
     p.add_argument("--from", dest="start", required=True,
                    help="start, ISO 8601 (no offset: the station's local time)")
     p.add_argument("--to", dest="end", required=True, help="end, ISO 8601 (no offset: the station's local time)")
-    p.add_argument("--episodes", type=int, default=5, help="worst episodes shown per sensor (default 5)")
-    p.set_defaults(func=cmd_qc)
+    p.add_argument("--episodes", type=count, default=5, help="worst episodes shown per sensor (default 5)")
+    p.set_defaults(func=store_errors(cmd_qc))
 
     p = subparsers.add_parser("staff", help="tide-staff readings: add or list",
                               description="Tide-staff readings entered by a technician, used to check the "
@@ -48,14 +47,14 @@ def register(subparsers) -> None:
     a.add_argument("config")
     a.add_argument("--station", required=True)
     a.add_argument("--at", required=True, help="time of the reading, ISO 8601 (no offset: local time)")
-    a.add_argument("--reading", required=True, type=float, help="staff reading in metres on the station datum")
+    a.add_argument("--reading", required=True, type=finite_float, help="staff reading in metres on the station datum")
     a.add_argument("--who", required=True, help="who read the staff")
     a.add_argument("--note", default="", help="free text (sea state, staff used)")
-    a.set_defaults(func=cmd_staff_add)
+    a.set_defaults(func=store_errors(cmd_staff_add))
     ls = sub.add_parser("list", help="list staff readings with the gauge beside them")
     ls.add_argument("config")
     ls.add_argument("--station", required=True)
-    ls.set_defaults(func=cmd_staff_list)
+    ls.set_defaults(func=store_errors(cmd_staff_list))
 
     p = subparsers.add_parser("flag", help="set a quality flag by hand (recorded with who and why)",
                               description="Override the automatic flag of one sample or a range; the "
@@ -69,7 +68,7 @@ def register(subparsers) -> None:
                    help="1 pass, 3 suspect, 4 fail")
     p.add_argument("--who", required=True)
     p.add_argument("--why", required=True)
-    p.set_defaults(func=cmd_flag)
+    p.set_defaults(func=store_errors(cmd_flag))
 
 
 # --------------------------------------------------------------------------- helpers
@@ -80,29 +79,6 @@ def _open(config: str, create: bool = False):
 
     cfg = load_config(config)
     return cfg, Store.open(cfg.store_path, create=create, lock=False)
-
-
-def _when(text: str, tz: str, opt: str) -> pd.Timestamp:
-    try:
-        ts = pd.Timestamp(text)
-    except (ValueError, TypeError):
-        ts = pd.NaT
-    if ts is pd.NaT or not isinstance(ts, pd.Timestamp):
-        raise UserError(f"{opt} {text!r}: expected an ISO 8601 date or time, e.g. 2031-03-04T06:00Z")
-    if ts.tzinfo is None:
-        try:
-            ts = ts.tz_localize(tz, ambiguous="raise", nonexistent="raise")
-        except Exception:
-            raise UserError(f"{opt} {text!r}: this local time is ambiguous or skipped in {tz} "
-                            f"(clock change); give an offset or Z") from None
-    return ts.tz_convert("UTC")
-
-
-def _local(t: Any, tz: str) -> str:
-    if t is None or (isinstance(t, float) and math.isnan(t)):
-        return "-"
-    ts = t if isinstance(t, pd.Timestamp) else pd.Timestamp(t, unit="s", tz="UTC")
-    return ts.tz_convert(ZoneInfo(tz)).strftime("%Y-%m-%d %H:%M %Z")
 
 
 def _sensor(st, sensor: str) -> str:
@@ -122,9 +98,7 @@ def _model(store, st):
 
 
 def _table(rows: list[list[str]], head: list[str], right: set[int] = frozenset()) -> str:
-    w = [max(len(str(r[i])) for r in [head] + rows) for i in range(len(head))]
-    fmt = lambda r: "  ".join(str(c).rjust(w[i]) if i in right else str(c).ljust(w[i]) for i, c in enumerate(r))
-    return "\n".join([fmt(head), fmt(["-" * x for x in w])] + [fmt(r) for r in rows])
+    return _common_table(rows, head, right)
 
 
 def _pm(v: float, se: float, unit: str, digits: int = 1) -> str:
@@ -234,9 +208,7 @@ def cmd_qc(args: argparse.Namespace) -> int:
     cfg, store = _open(args.config)
     with store:
         st = cfg.station(args.station)
-        start, end = _when(args.start, st.tz, "--from"), _when(args.end, st.tz, "--to")
-        if end <= start:
-            raise UserError("--to: must be after --from")
+        start, end = parse_range(args.start, args.end, st.tz, allow_equal=False)
         settings = st.qc or qc.QcSettings()
         model, source = _model(store, st)
         results = qc.run_station_qc(store, st, settings, start.timestamp(), end.timestamp(), model)
@@ -252,7 +224,7 @@ def cmd_staff_add(args: argparse.Namespace) -> int:
     cfg, store = _open(args.config, create=True)
     with store:
         st = cfg.station(args.station)
-        at = _when(args.at, st.tz, "--at")
+        at = parse_time(args.at, "--at", st.tz)
         qc.add_staff_reading(store, st.id, at.timestamp(), args.reading, args.who, args.note)
         print(f"staff reading {args.reading:.3f} m at {_local(at, st.tz)} recorded for {st.id} by {args.who}")
     return 0
@@ -293,8 +265,10 @@ def cmd_flag(args: argparse.Namespace) -> int:
     with store:
         st = cfg.station(args.station)
         sensor = _sensor(st, args.sensor)
-        at = _when(args.at, st.tz, "--at")
-        end = _when(args.end, st.tz, "--to") if args.end else None
+        if args.end:
+            at, end = parse_range(args.at, args.end, st.tz, start_option="--at")
+        else:
+            at, end = parse_time(args.at, "--at", st.tz), None
         n = qc.set_override(store, st.id, sensor, at.timestamp(), None if end is None else end.timestamp(),
                             args.flag, args.who, args.why)
         span = _local(at, st.tz) + ("" if end is None else f" to {_local(end, st.tz)}")

@@ -13,15 +13,13 @@ import math
 import sys
 import time
 from pathlib import Path
-from zoneinfo import ZoneInfo
 
 import numpy as np
-import pandas as pd
 
+from monitor.cli_common import CAUTION, count, finite_float, input_file, store_errors
 from monitor.errors import UserError
+from monitor.timeparse import local_text, parse_range
 
-CAUTION = ("Automated and unofficial. Official warnings and the local emergency authorities come first; "
-           "defer to local codes and licensed practice.")
 INGEST_BATCH = 100_000  # lines per transaction in a backfill
 
 
@@ -29,7 +27,7 @@ def register(subparsers) -> None:
     p = subparsers.add_parser("check", help="validate a configuration file and stop",
                               description="Validate CONFIG: every problem is listed with its key path.")
     p.add_argument("config", metavar="CONFIG")
-    p.set_defaults(func=cmd_check)
+    p.set_defaults(func=store_errors(cmd_check))
 
     p = subparsers.add_parser("run", help="run the monitor daemon",
                               description="Poll the feeds, process each station, send alerts and reports "
@@ -43,8 +41,8 @@ def register(subparsers) -> None:
     p = subparsers.add_parser("status", help="per station: latest level, residual, feeds, rejects, constants")
     p.add_argument("config", metavar="CONFIG")
     p.add_argument("--station", metavar="ID", help="only this station")
-    p.add_argument("--rejects", type=int, default=0, metavar="N", help="also show the last N rejected lines")
-    p.set_defaults(func=cmd_status)
+    p.add_argument("--rejects", type=count, default=0, metavar="N", help="also show the last N rejected lines")
+    p.set_defaults(func=store_errors(cmd_status))
 
     p = subparsers.add_parser("ingest", help="backfill a station from telemetry files",
                               description="Read FILEs in the sensor's configured line format into the store. "
@@ -53,7 +51,7 @@ def register(subparsers) -> None:
     p.add_argument("--station", required=True, metavar="ID")
     p.add_argument("--sensor", default="primary", choices=("primary", "backup", "barometer"))
     p.add_argument("files", nargs="+", metavar="FILE")
-    p.set_defaults(func=cmd_ingest)
+    p.set_defaults(func=store_errors(cmd_ingest))
 
     p = subparsers.add_parser("export", help="CSV of level, predicted tide, residual and flag",
                               description="Write time,level,predicted,residual,flag (UTC, metres on the "
@@ -63,7 +61,7 @@ def register(subparsers) -> None:
     p.add_argument("--from", dest="start", required=True, metavar="ISO")
     p.add_argument("--to", dest="end", required=True, metavar="ISO")
     p.add_argument("-o", "--output", metavar="FILE", help="write here instead of standard output")
-    p.set_defaults(func=cmd_export)
+    p.set_defaults(func=store_errors(cmd_export))
 
     p = subparsers.add_parser("refit", help="fit constants to a station's own quality-controlled history",
                               description="Fit harmonic constants to the station's stored primary record "
@@ -71,12 +69,12 @@ def register(subparsers) -> None:
                                           "quality, and compare it with the constants in use.")
     p.add_argument("config", metavar="CONFIG")
     p.add_argument("--station", required=True, metavar="ID")
-    p.add_argument("--days", type=float, metavar="N", help="fit the last N days (default stations[].fit_span_days)")
+    p.add_argument("--days", type=finite_float, metavar="N", help="fit the last N days (default stations[].fit_span_days)")
     p.add_argument("--use", dest="use", action="store_true", default=None,
                    help="put the new fit in use (default: only for stations with constants = \"history\")")
     p.add_argument("--keep", dest="use", action="store_false", help="keep the fit for comparison only")
     p.add_argument("--list", action="store_true", help="list the kept fits and stop")
-    p.set_defaults(func=cmd_refit)
+    p.set_defaults(func=store_errors(cmd_refit))
 
 
 # --------------------------------------------------------------------------- helpers
@@ -94,11 +92,7 @@ def _store(cfg, create: bool = False, lock: bool = False):
 
 
 def _local(t: float | None, tz: str) -> str:
-    if t is None:
-        return "-"
-    when = dt.datetime.fromtimestamp(int(t), dt.timezone.utc)
-    loc = when.astimezone(ZoneInfo(tz))
-    return f"{loc:%Y-%m-%d %H:%M %Z} ({when:%H:%MZ})"
+    return local_text(t, tz, utc=True)
 
 
 def _age(seconds: float) -> str:
@@ -214,7 +208,7 @@ def cmd_status(args: argparse.Namespace) -> int:
 def _read_batches(path: Path, size: int):
     """(lines, bytes read so far) in batches, line endings removed; undecodable bytes become U+FFFD."""
     try:
-        fh = open(path, encoding="utf-8", errors="replace", newline="")
+        fh = open(path, encoding="utf-8-sig", errors="replace", newline="")  # a leading BOM is not data
     except OSError as exc:
         raise UserError(f"{path}: cannot be read ({exc.strerror or exc})") from None
     with fh:
@@ -228,13 +222,15 @@ def _read_batches(path: Path, size: int):
             yield batch, path.stat().st_size
 
 
-def ingest_file(store, sensor, path: Path, progress=None, batch_size: int = INGEST_BATCH):
+def ingest_file(store, sensor, path: Path, progress=None, batch_size: int = INGEST_BATCH,
+                first_reject: list | None = None):
     """Backfill one file into the store.
 
     Returns
     -------
     (BatchResult, int or None)
         Summed counts, and the earliest time read [s] (None when no line was read).
+        When ``first_reject`` is a list, the first rejected line is appended to it.
     """
     from monitor.parse import parse_lines
     from monitor.store import EMPTY_BATCH
@@ -248,6 +244,8 @@ def ingest_file(store, sensor, path: Path, progress=None, batch_size: int = INGE
         lineno += len(lines)
         res = store.write_batch(sensor.station, sensor.role, parsed.t, parsed.value, parsed.time_source,
                                 parsed.rejects, feed=label, skipped=parsed.skipped)
+        if first_reject is not None and parsed.rejects and not first_reject:
+            first_reject.append(parsed.rejects[0])
         if len(parsed):
             lo = int(parsed.t.min())
             first_t = lo if first_t is None else min(first_t, lo)
@@ -255,6 +253,19 @@ def ingest_file(store, sensor, path: Path, progress=None, batch_size: int = INGE
         if progress:
             progress(path, lineno, pos, total)
     return total, first_t
+
+
+def _telemetry_file(name: str) -> Path:
+    """A readable, non-empty text file; binary data is refused before anything is stored."""
+    path = input_file(name, "telemetry file")
+    with open(path, "rb") as fh:
+        head = fh.read(8192)
+    if not head:
+        raise UserError(f"{path}: empty file, nothing to ingest")
+    nul = head.find(b"\0")
+    if nul >= 0:
+        raise UserError(f"{path}: binary data (a NUL byte at byte {nul}), expected lines of text")
+    return path
 
 
 def cmd_ingest(args: argparse.Namespace) -> int:
@@ -266,10 +277,7 @@ def cmd_ingest(args: argparse.Namespace) -> int:
     sensor = st.sensors[args.sensor]
     if sensor.format is None:
         raise UserError(f"stations[{st.id}].sensors.{args.sensor}.line: no line format configured")
-    paths = [Path(f) for f in args.files]
-    for p in paths:
-        if not p.is_file():
-            raise UserError(f"{p}: no such file")
+    paths = [_telemetry_file(f) for f in args.files]
     tty = sys.stderr.isatty()
     last_print = [0.0]
 
@@ -288,12 +296,19 @@ def cmd_ingest(args: argparse.Namespace) -> int:
     grand = EMPTY_BATCH
     with _store(cfg, create=True) as store:
         for p in paths:
-            res, first_t = ingest_file(store, sensor, p, progress)
+            first_reject: list = []
+            res, first_t = ingest_file(store, sensor, p, progress, first_reject=first_reject)
             if tty:
                 sys.stderr.write("\n")
             print(f"{p}: {res.read:,} rows read, {res.stored:,} stored, {res.duplicates:,} duplicates, "
                   f"{res.rejected:,} rejected ({res.skipped:,} blank, comment or header lines skipped)")
             grand = grand + res
+            if res.rejected and not (res.stored or res.duplicates):
+                r = first_reject[0] if first_reject else None
+                why = f"; first: line {r.lineno}: {r.reason}" if r is not None else ""
+                raise UserError(f"{p}: none of its {res.read:,} lines fit stations[{st.id}].sensors."
+                                f"{args.sensor}.line{why} (rejected lines kept: quaywatch status "
+                                f"{args.config} --station {st.id} --rejects 20)")
             mark = store.get_meta(f"processed.{st.id}")
             if res.stored and mark is not None and first_t is not None and first_t <= int(mark):
                 # older rows were added: the daemon processes again from there
@@ -309,37 +324,20 @@ def cmd_ingest(args: argparse.Namespace) -> int:
 
 # --------------------------------------------------------------------------- export
 
-def _when(text: str, tz: str, opt: str) -> pd.Timestamp:
-    try:
-        ts = pd.Timestamp(text)
-    except (ValueError, TypeError):
-        raise UserError(f"{opt} {text!r}: expected an ISO 8601 date or time, e.g. 2025-10-20T06:00Z") from None
-    if ts is pd.NaT:
-        raise UserError(f"{opt} {text!r}: expected an ISO 8601 date or time")
-    if ts.tzinfo is None:
-        ts = ts.tz_localize(tz, ambiguous="raise", nonexistent="raise")
-    return ts.tz_convert("UTC")
-
-
 def cmd_export(args: argparse.Namespace) -> int:
     cfg = _config(args.config)
     st = cfg.station(args.station)
-    try:
-        start = _when(args.start, st.tz, "--from")
-        end = _when(args.end, st.tz, "--to")
-    except Exception as exc:  # ambiguous local times at a clock change
-        if isinstance(exc, UserError):
-            raise
-        raise UserError(f"--from/--to: {exc}; give a UTC offset or Z") from None
-    if end < start:
-        raise UserError(f"--to {args.end} is before --from {args.start}")
+    start, end = parse_range(args.start, args.end, st.tz)
     from monitor.daemon import load_model
 
     with _store(cfg) as store:
         obs = store.observations(st.id, "primary", int(start.timestamp()), int(end.timestamp()))
         model, _ = load_model(store, st)
     pred = model.predict(obs.index) if (model is not None and len(obs)) else np.full(len(obs), np.nan)
-    out = open(args.output, "w", newline="") if args.output else sys.stdout
+    try:
+        out = open(args.output, "w", newline="") if args.output else sys.stdout
+    except OSError as exc:
+        raise UserError(f"-o {args.output}: cannot write ({exc.strerror or exc})") from None
     try:
         w = csv.writer(out, lineterminator="\n")
         w.writerow(["time", "level", "predicted", "residual", "flag"])
@@ -349,7 +347,7 @@ def cmd_export(args: argparse.Namespace) -> int:
             rf = "" if not np.isfinite(p) else f"{v - p:.4f}"
             w.writerow([t, f"{v:.4f}", pf, rf, int(f)])
     except OSError as exc:
-        raise UserError(f"{args.output}: cannot write ({exc.strerror or exc})") from None
+        raise UserError(f"-o {args.output}: cannot write ({exc.strerror or exc})") from None
     finally:
         if args.output:
             out.close()
@@ -385,7 +383,7 @@ def cmd_refit(args: argparse.Namespace) -> int:
             old, old_source = load_model(store, st)
         except UserError:
             old, old_source = None, "unreadable"
-        if args.days is not None and args.days <= 0:
+        if args.days is not None and not args.days > 0:
             raise UserError(f"--days {args.days:g}: expected a number of days above 0")
         fit = refit_station(store, st, use=args.use, span_days=args.days)
     model = fit["model"]

@@ -7,70 +7,43 @@ exit code; bad input raises :class:`monitor.errors.UserError`.
 from __future__ import annotations
 
 import argparse
-import datetime as dt
 import json
 import sys
-import zoneinfo
 
 import numpy as np
 import pandas as pd
 
+from monitor.cli_common import finite_float, input_file
 from monitor.errors import UserError
+from monitor.timeparse import offset_text, parse_date, parse_range, parse_time, zone
+from predictor.timeutil import parse_duration
 
-__all__ = ["register", "run_predict", "run_table", "run_datums", "CAUTION", "parse_time", "parse_step"]
+__all__ = ["register", "run_predict", "run_table", "run_datums", "CAUTION", "parse_step"]
 
 CAUTION = ("Automated, unofficial prediction of the astronomical tide only (no weather effects). "
            "Official tide tables, official warnings and the local emergency authorities come first; "
            "defer to local codes and licensed practice.")
 
 _ROWS_PER_WRITE = 200_000
-
-
-def _zone(name: str | None, option: str = "--tz"):
-    if name is None:
-        return None
-    try:
-        return zoneinfo.ZoneInfo(name)
-    except (zoneinfo.ZoneInfoNotFoundError, ValueError):
-        raise UserError(f"{option} {name!r}: unknown time zone (use an IANA name such as Europe/Dublin or UTC)") \
-            from None
-
-
-def parse_time(text: str, option: str, tz=None) -> pd.Timestamp:
-    """An ISO 8601 time as a UTC Timestamp; naive times need ``tz`` (a ZoneInfo)."""
-    try:
-        ts = pd.Timestamp(text)
-    except (ValueError, TypeError):
-        raise UserError(f"{option} {text!r}: not an ISO 8601 time (example: 2025-03-01T06:00Z)") from None
-    if ts is pd.NaT:
-        raise UserError(f"{option} {text!r}: not a time")
-    if ts.tzinfo is None:
-        if tz is None:
-            raise UserError(f"{option} {text!r}: no time zone; add Z or an offset such as +01:00, or give --tz")
-        try:
-            ts = ts.tz_localize(tz, ambiguous="raise", nonexistent="raise")
-        except Exception:
-            raise UserError(f"{option} {text!r}: this local time is skipped or repeated by a clock change "
-                            f"in {tz.key}; give an offset instead") from None
-    return ts.tz_convert("UTC")
+_MAX_ROWS = 100_000_000  # about 190 years at one-minute steps
 
 
 def parse_step(text: str) -> pd.Timedelta:
-    """A positive step such as 60s, 6min, 10min or 1h."""
+    """A positive step such as 60s, 6min, 10min or 1h, a whole number of seconds."""
     try:
-        step = pd.Timedelta(text)
-    except (ValueError, TypeError):
-        raise UserError(f"--step {text!r}: not a time step (examples: 60s, 6min, 10min, 1h)") from None
-    if step <= pd.Timedelta(0):
-        raise UserError(f"--step {text!r}: the step must be positive")
-    if step.value % 1_000_000_000:
+        secs = parse_duration(text, positive=True, maximum=366 * 86400)
+    except ValueError:
+        raise UserError(f"--step {text!r}: not a time step above zero and below a year "
+                        "(examples: 60s, 6min, 10min, 1h)") from None
+    if secs != int(secs):
         raise UserError(f"--step {text!r}: the step must be a whole number of seconds")
-    return step
+    return pd.Timedelta(seconds=int(secs))
 
 
 def _load(path):
     from predictor.model import ConstantsFileError, TideModel
 
+    input_file(path, "constants file")
     try:
         return TideModel.load(path)
     except ConstantsFileError as exc:
@@ -82,16 +55,17 @@ def _load(path):
 
 def run_predict(args) -> int:
     """``quaywatch predict``: CSV ``time,level`` (UTC, Z) from start to end, both included."""
-    tz = _zone(args.tz)
-    start = parse_time(args.start, "--start", tz)
-    end = parse_time(args.end, "--end", tz)
-    if start > end:
-        raise UserError(f"--start {args.start} is after --end {args.end}")
+    tz = zone(args.tz) if args.tz else None
+    start, end = parse_range(args.start, args.end, tz, start_option="--start", end_option="--end",
+                             hint="or give --tz")
     step = parse_step(args.step)
+    n = int((end.value - start.value) // step.value) + 1
+    if n > _MAX_ROWS:
+        raise UserError(f"--start/--end/--step: {n:,} rows asked for; at most {_MAX_ROWS:,} at a time "
+                        "(a longer step or a shorter span)")
     model = _load(args.constants)
     step_ns = np.int64(step.value)
     start_ns = np.int64(start.value)
-    n = int((end.value - start.value) // step.value) + 1
     whole = start.value % 1_000_000_000 == 0
     out = sys.stdout
     out.write("time,level\n")
@@ -110,30 +84,18 @@ def run_predict(args) -> int:
 # --------------------------------------------------------------------------- table
 
 
-def _offset_text(ts: pd.Timestamp) -> str:
-    off = ts.utcoffset() or dt.timedelta(0)
-    minutes = int(off.total_seconds() // 60)
-    sign = "+" if minutes >= 0 else "-"
-    return f"{sign}{abs(minutes) // 60:02d}:{abs(minutes) % 60:02d}"
-
-
 def run_table(args) -> int:
     """``quaywatch table``: high and low waters in local time, aligned, with units."""
-    tz = _zone(args.tz or "UTC")
+    tz = zone(args.tz or "UTC")
     if args.days <= 0 or args.days > 400:
         raise UserError(f"--days {args.days}: give a number of days from 1 to 400")
     if args.start:
-        try:
-            day = pd.Timestamp(args.start)
-        except (ValueError, TypeError):
-            raise UserError(f"--start {args.start!r}: not a date (example: 2025-03-01)") from None
-        if day.tzinfo is None:
-            try:
-                day = day.tz_localize(tz, nonexistent="shift_forward", ambiguous=True)
-            except Exception:
-                raise UserError(f"--start {args.start!r}: not a local time in {tz.key}") from None
+        first = parse_date(args.start, "--start")
     else:
-        day = pd.Timestamp.now(tz=tz).normalize()
+        first = pd.Timestamp.now(tz=tz).date()
+    # midnight can be skipped by a clock change in a few zones: the day starts at the first
+    # local time that exists
+    day = pd.Timestamp(first).tz_localize(tz, nonexistent="shift_forward", ambiguous=True)
     start = day.tz_convert("UTC")
     end = (day.tz_convert(tz) + pd.DateOffset(days=args.days)).tz_convert("UTC")
     model = _load(args.constants)
@@ -157,7 +119,7 @@ def run_table(args) -> int:
         date = local.strftime("%a %Y-%m-%d")
         shown = date if date != last_date else ""
         last_date = date
-        lines.append(f"{shown:<15} {local.strftime('%H:%M'):>5} {_offset_text(local):>6}  "
+        lines.append(f"{shown:<15} {local.strftime('%H:%M'):>5} {offset_text(local.utcoffset()):>6}  "
                      f"{('HW' if row.kind == 'high' else 'LW'):<4} {row.level + offset:>10.2f}")
     if events.empty:
         lines.append("(no high or low water in this period)")
@@ -175,7 +137,7 @@ def run_datums(args) -> int:
     from predictor.datums import DATUM_DESCRIPTIONS, DATUM_ORDER, tidal_datums
 
     model = _load(args.constants)
-    start = parse_time(args.start, "--start", zoneinfo.ZoneInfo("UTC")) if args.start else None
+    start = parse_time(args.start, "--start", "UTC") if args.start else None
     if not 0 < args.years <= 100:
         raise UserError(f"--years {args.years}: give a period from 0 to 100 years (18.61 is the nodal cycle)")
     d = tidal_datums(model, start=start, years=args.years)
@@ -241,7 +203,7 @@ def register(subparsers) -> None:
     p.add_argument("--days", type=int, default=7, help="number of days (default 7)")
     p.add_argument("--start", metavar="DATE", help="first local day, e.g. 2025-03-01 (default today)")
     p.add_argument("--tz", metavar="ZONE", help="IANA time zone for the times shown (default UTC)")
-    p.add_argument("--datum-offset", type=float, default=0.0, metavar="M",
+    p.add_argument("--datum-offset", type=finite_float, default=0.0, metavar="M",
                    help="metres added to every height, e.g. the constants' datum above chart datum")
     p.add_argument("--datum-name", metavar="NAME", help="name of the datum the heights refer to, e.g. 'chart datum'")
     p.set_defaults(func=run_table)
@@ -252,8 +214,8 @@ def register(subparsers) -> None:
     p.add_argument("constants", metavar="CONSTANTS.toml", help="harmonic constants (TOML)")
     p.add_argument("--json", action="store_true", help="print JSON")
     p.add_argument("--start", metavar="ISO", help="start of the period (default 2000-01-01, UTC)")
-    p.add_argument("--years", type=float, default=18.61, help="length of the period in years (default 18.61)")
-    p.add_argument("--datum-offset", type=float, default=0.0, metavar="M", help="metres added to every level")
+    p.add_argument("--years", type=finite_float, default=18.61, help="length of the period in years (default 18.61)")
+    p.add_argument("--datum-offset", type=finite_float, default=0.0, metavar="M", help="metres added to every level")
     p.add_argument("--datum-name", metavar="NAME", help="name of the datum the heights refer to")
     p.set_defaults(func=run_datums)
 

@@ -23,7 +23,8 @@ from __future__ import annotations
 
 import numpy as np
 
-from predictor.extrema import parse_step, turning_points
+from predictor.extrema import turning_points
+from predictor.timeutil import parse_step
 
 __all__ = ["tidal_datums", "DATUM_ORDER", "DATUM_DESCRIPTIONS", "TIDAL_DAY_SECONDS"]
 
