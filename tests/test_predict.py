@@ -60,6 +60,20 @@ def test_uniform_fast_path_equals_general_path(model):
     assert np.max(np.abs(fast - general)) < 0.001 * mm
 
 
+def test_uniform_rate_equals_general_path(model):
+    times = pd.date_range("2026-01-01", periods=5000, freq="1min", tz="UTC")
+    fast = model.predict_derivative(times)
+    general = model.predict_derivative(times[::-1])[::-1]
+    assert np.max(np.abs(fast - general)) < 0.001 * mm / minute
+
+
+def test_calendar_frequency_index_matches_direct_evaluation(model):
+    # month starts are not equally spaced: the index must not take the uniform path
+    times = pd.date_range("2026-01-01", periods=80, freq="MS", tz="UTC")
+    t = times.as_unit("ns").asi8 / 1e9
+    assert np.max(np.abs(model.predict(times) - _direct(model, t))) < 0.005 * mm
+
+
 def test_tz_aware_index_is_converted_and_naive_is_utc(model):
     local = pd.date_range("2026-06-01 12:00", periods=100, freq="10min", tz="Europe/Dublin")
     naive_utc = local.tz_convert("UTC").tz_localize(None)
