@@ -279,7 +279,7 @@ def cmd_ingest(args: argparse.Namespace) -> int:
         raise UserError(f"stations[{st.id}].sensors.{args.sensor}.line: no line format configured")
     paths = [_telemetry_file(f) for f in args.files]
     tty = sys.stderr.isatty()
-    last_print = [0.0]
+    last_print = [time.monotonic()]  # quiet for small files; a line every 5 s for long ones
 
     def progress(path: Path, lines: int, pos: int, total) -> None:
         size = max(1, path.stat().st_size)
