@@ -5,13 +5,17 @@ with H in metres, g the Greenwich phase lag in degrees (times UTC), f and u the 
 factor and correction (:mod:`predictor.nodal`) and V the equilibrium argument.
 
 Fast prediction (the daemon's and the datum computation's hot path): for uniformly
-spaced times the span is cut into short blocks.  Within a block f and u are constant
-(interpolated linearly between the block's ends; they drift by at most 0.03 deg a day) and every
-argument advances linearly at its speed, so the block values are the real part of
-``A @ E + dA @ (E j/B)`` with ``A[b, k] = f H exp(i (V + u - g))`` at each block start,
-``dA`` the change of ``f exp(iu)`` over the block, and ``E[k, j] = exp(i omega_k j dt)``
-shared by all blocks: two complex matrix products instead of a cosine per constituent
-per sample.
+spaced times the span is cut into one-day blocks.  Within a block f e^{iu} is
+interpolated linearly between the block's ends (it drifts by at most 0.03 deg a day)
+and every argument advances linearly at its speed, so the block values are the real
+part of ``A @ E + dA @ (E j/B)`` with ``A[b, k] = f H exp(i (V + u - g))`` at each block
+start, ``dA`` the change of ``f exp(iu)`` over the block, and ``E[k, j] =
+exp(i omega_k j dt)`` shared by all blocks (and cached per step).  Both products are
+real: ``Re(A E) = Re A Re E - Im A Im E``.  The ramp product is tiny (below 1e-4 m), so
+it runs in single precision, and constituents whose ramps sum to under 1e-8 m (all
+the solar ones, whose f and u never change) take f e^{iu} at mid-block instead.  For a
+year at one-minute steps with 64 constituents this costs about one ``numpy.cos`` of the
+samples, and stays within 0.001 mm of the direct evaluation.
 
 The output of this package is an automated, unofficial aid: official predictions and
 warnings, and the local authorities, come first.
