@@ -142,3 +142,13 @@ def test_changed_test_results_are_rewritten(filled):
     row = store.conn.execute("SELECT spike, gross FROM qc_tests WHERE sensor = 'primary' AND t = ?",
                              (spike_t,)).fetchone()
     assert row == (qc.FAIL, qc.PASS)
+
+
+@pytest.mark.parametrize("sql", [
+    "UPDATE observations SET flag = 1 WHERE station = 'a' AND sensor = 'b' AND t = 0",
+    "SELECT t, gap FROM qc_tests WHERE station = 'a' AND sensor = 'b' AND t BETWEEN 0 AND 9",
+])
+def test_qc_writes_find_their_rows_through_an_index(store, sql):
+    # a full-table scan per row would make a year's pass quadratic
+    plan = " ".join(str(r[-1]) for r in store.conn.execute("EXPLAIN QUERY PLAN " + sql).fetchall())
+    assert "INDEX" in plan and "SCAN" not in plan
