@@ -35,26 +35,20 @@ def table(rows: Sequence[Sequence[object]], head: Sequence[str], right: Iterable
     return "\n".join(out)
 
 
-def positive_int(text: str) -> int:
-    """argparse type: a whole number of one or more."""
-    try:
-        n = int(text)
-    except ValueError:
-        raise argparse.ArgumentTypeError(f"expected a whole number, got {text!r}") from None
-    if n < 1:
-        raise argparse.ArgumentTypeError(f"expected 1 or more, got {text!r}")
-    return n
+def _whole_number(minimum: int) -> Callable[[str], int]:
+    def parse(text: str) -> int:
+        try:
+            n = int(text)
+        except ValueError:
+            raise argparse.ArgumentTypeError(f"expected a whole number, got {text!r}") from None
+        if n < minimum:
+            raise argparse.ArgumentTypeError(f"expected {minimum} or more, got {text!r}")
+        return n
+    return parse
 
 
-def count(text: str) -> int:
-    """argparse type: a whole number of zero or more."""
-    try:
-        n = int(text)
-    except ValueError:
-        raise argparse.ArgumentTypeError(f"expected a whole number, got {text!r}") from None
-    if n < 0:
-        raise argparse.ArgumentTypeError(f"expected 0 or more, got {text!r}")
-    return n
+positive_int = _whole_number(1)  # argparse type: 1, 2, 3, ...
+count = _whole_number(0)  # argparse type: 0, 1, 2, ...
 
 
 def finite_float(text: str) -> float:

@@ -372,7 +372,7 @@ def cmd_refit(args: argparse.Namespace) -> int:
             if fits.empty:
                 print(f"station {st.id}: no fits kept yet")
                 return 0
-            print(f"{'id':>4}  {'fitted (UTC)':16}  {'record from':10}  {'to':10}  {'samples':>9}  "
+            print(f"{'id':>4}  {'fitted (UTC)':16}  {'from (UTC)':10}  {'to (UTC)':10}  {'samples':>9}  "
                   f"{'rms m':>7}  {'var expl':>8}  in use")
             for r in fits.itertuples():
                 print(f"{r.id:>4}  {_utc(r.fitted_at, '%Y-%m-%d %H:%M')}  {_utc(r.start, '%Y-%m-%d')}  "
@@ -388,11 +388,11 @@ def cmd_refit(args: argparse.Namespace) -> int:
         fit = refit_station(store, st, use=args.use, span_days=args.days)
     model = fit["model"]
     print(f"station {st.id}: fit #{fit['id']} of {fit['n']:,} samples, {_utc(fit['start'], '%Y-%m-%d')} to "
-          f"{_utc(fit['end'], '%Y-%m-%d')}; rms {fit['rms']:.3f} m; variance explained "
+          f"{_utc(fit['end'], '%Y-%m-%d')} (UTC); rms {fit['rms']:.3f} m; variance explained "
           f"{fit['variance_explained']:.1%}; {'in use' if fit['in_use'] else 'kept for comparison'}")
     new = {c["name"]: c for c in model.constituents}
     prev = {c["name"]: c for c in (old.constituents if old is not None else [])}
-    print(f"compared with the constants in use ({old_source}):")
+    print(f"compared with the constants in use ({old_source}); phases are Greenwich lags, UTC:")
     print(f"  {'':4} {'amplitude m':>12} {'change mm':>10} {'phase deg':>10} {'change deg':>11}")
     for name in _COMPARE:
         if name not in new:
