@@ -314,85 +314,11 @@ def write_reports(config: Path, station: str, days: list[dt.date], log: Path) ->
 # --------------------------------------------------------------------------- technician checks
 
 
-def sensor_timing(primary, backup, window_s: float = 6 * 3600, step_s: float = 3 * 3600,
-                  max_lag_s: float = 900, lag_step_s: float = 15):
-    """Timing of the backup against the primary, window by window.
-
-    For each window, the lag L that makes ``backup(t) - primary(t + L)`` most nearly constant
-    (smallest median absolute deviation) over a grid of lags. Both sensors see the same sea,
-    so their difference cancels the tide and the weather and leaves offset, drift and timing
-    (design notes, "two co-located sensors"); the median keeps spikes and a stuck spell from
-    steering it. ``L`` > 0: the backup's stamp T holds the sea of T + L (its clock is late).
-
-    Parameters
-    ----------
-    primary, backup : pandas.Series
-        Usable levels [m] on UTC DatetimeIndexes.
-
-    Returns
-    -------
-    pandas.DataFrame
-        ``start``, ``end`` (UTC), ``lag_min`` [min], ``mad_mm`` [mm] per window.
-
-    References
-    ----------
-    IOC (1985-2016), Manual on Sea Level Measurement and Interpretation, Vol. IV (a second
-    sensor to check the first). Robust lag search by median absolute deviation: common
-    practice, no source.
-    """
-    import numpy as np
-    import pandas as pd
-
-    ps = primary.index.as_unit("s").asi8.astype(float)
-    pv = primary.to_numpy(dtype=float)
-    bs = backup.index.as_unit("s").asi8.astype(float)
-    bv = backup.to_numpy(dtype=float)
-    lags = np.arange(-max_lag_s, max_lag_s + lag_step_s / 2, lag_step_s)
-    rows = []
-    if len(ps) < 2 or len(bs) < 2:
-        return pd.DataFrame(columns=["start", "end", "lag_min", "mad_mm"])
-    t0 = max(ps[0], bs[0])
-    while t0 + window_s <= min(ps[-1], bs[-1]):
-        m = (bs >= t0) & (bs < t0 + window_s)
-        if m.sum() >= 60:
-            tt, yy = bs[m], bv[m]
-            d = yy[None, :] - np.interp(tt[None, :] + lags[:, None], ps, pv)
-            mad = np.median(np.abs(d - np.median(d, axis=1, keepdims=True)), axis=1)
-            i = int(np.argmin(mad))
-            rows.append({"start": pd.Timestamp(t0, unit="s", tz="UTC"),
-                         "end": pd.Timestamp(t0 + window_s, unit="s", tz="UTC"),
-                         "lag_min": lags[i] / 60, "mad_mm": mad[i] * 1000})
-        t0 += step_s
-    return pd.DataFrame(rows, columns=["start", "end", "lag_min", "mad_mm"])
-
-
-def clock_episodes(timing, limit_min: float = 1.5) -> list[dict]:
-    """Spans where the backup's timing is off by more than ``limit_min`` [min].
-
-    Consecutive windows past the limit are joined; each span reports its start and end
-    (UTC) and the median lag [min]. The limit is IOC's one-minute timing accuracy (Manual
-    Vol. IV, from memory) plus half a minute for the lag grid and noise (our choice).
-    """
-    out: list[dict] = []
-    cur: list = []
-    for row in list(timing.itertuples()) + [None]:
-        if row is not None and abs(row.lag_min) > limit_min:
-            cur.append(row)
-            continue
-        if cur:
-            import numpy as np
-
-            out.append({"start": cur[0].start, "end": cur[-1].end,
-                        "lag_min": float(np.median([r.lag_min for r in cur])), "windows": len(cur)})
-            cur = []
-    return out
-
-
 def technician_checks(store: Path, station: str, start: dt.datetime, end: dt.datetime) -> dict:
     """Drift and timing of the backup against the primary in [start, end), from usable samples."""
     import pandas as pd
 
-    from monitor.diagnostics import sensor_drift
+    from monitor.diagnostics import clock_episodes, sensor_drift, sensor_timing
 
     con = sqlite3.connect(f"file:{store}?mode=ro", uri=True)
 

@@ -4,7 +4,10 @@
   against the backup sensor (Theil-Sen slope, mm/day, with a confidence interval).
 - :func:`van_de_casteele`, :func:`staff_sessions`: offset, scale error and timing error
   of the gauge against tide-staff readings.
-- :func:`clock_offset`: time shift of the record against the predicted tide (minutes).
+- :func:`clock_offset`: time shift of the record against the predicted tide (minutes),
+  band by band (diurnal, semidiurnal, shallow water) with a consistency check.
+- :func:`sensor_timing`, :func:`clock_episodes`: timing of the backup against the
+  primary in sliding windows, and the spans where it is off.
 - :func:`datum_steps`: sudden level steps in a residual or a sensor difference (mm).
 - :func:`monthly_constants`: month-by-month M2, S2, K1, O1 against the reference.
 - :func:`equipment_faults`: fault conditions as plain data for the alerts engine.
@@ -32,7 +35,7 @@ from typing import Any, Iterable
 
 import numpy as np
 import pandas as pd
-from scipy import stats
+from scipy import signal, stats
 
 from monitor.qc import QcSettings, difference_at, seconds, utc_index
 
@@ -242,88 +245,284 @@ def offset_drift(sessions: pd.DataFrame, confidence: float = 0.95) -> dict:
 
 # --------------------------------------------------------------------------- clock
 
-def clock_offset(observed: pd.Series, model: Any, *, max_shift: float = 3600.0, day: float = DAY,
-                 iterations: int = 5) -> dict:
-    """Time shift of the gauge record against the predicted tide.
+#: Tidal bands for the clock estimate [cycles/day]: (name, low, high). Long-period
+#: frequencies are left out: there the surge, not the tide, holds the power.
+CLOCK_BANDS = (("diurnal", 0.75, 1.25), ("semidiurnal", 1.75, 2.25), ("shallow", 2.75, 6.25))
+_CPD = 1.0 / DAY
 
-    A coarse search over ``+-max_shift`` [s] (2-minute steps, least squares of the
-    high-passed residual) gives a start; Gauss-Newton then solves, per day,
-    ``obs - pred(t - lag) = a + b x + c x^2 - dlag * pred'(t - lag)`` (the quadratic
-    absorbs the day's surge) until the shift settles. A clock error shifts every
-    constituent by its speed times the lag, which this fits directly.
+
+def _grid_eval(model: Any, t: np.ndarray, margin: float, step: float = 60.0):
+    """Predicted level and rate on one uniform grid covering ``t`` +- ``margin`` [s].
+
+    Returns (grid times [s], level [m], rate [m/s]). One prediction for the whole
+    diagnostic; shifted values come from interpolation (linear interpolation at a
+    one-minute step errs by A w^2 dt^2 / 8, about 0.01 mm for a 1 m M2).
+    """
+    g = np.arange(t[0] - margin - step, t[-1] + margin + 2 * step, step)
+    idx = pd.to_datetime(g, unit="s", utc=True)
+    p = _predict(model, idx)
+    if hasattr(model, "predict_derivative"):
+        dp = np.asarray(model.predict_derivative(idx), dtype=float)
+    else:
+        dp = np.gradient(p, step)
+    return g, p, dp
+
+
+def _running_mean(x: np.ndarray, m: np.ndarray, width: int) -> np.ndarray:
+    """Centred running mean of ``x`` over the samples where ``m`` is set (``width`` samples)."""
+    cx = np.concatenate([[0.0], np.cumsum(x * m)])
+    cm = np.concatenate([[0.0], np.cumsum(m)])
+    n = len(x)
+    i = np.arange(n)
+    lo = np.clip(i - width // 2, 0, n)
+    hi = np.clip(i + width // 2 + 1, 0, n)
+    cnt = cm[hi] - cm[lo]
+    return np.where(cnt > 0, (cx[hi] - cx[lo]) / np.maximum(cnt, 1), 0.0)
+
+
+def _band_filter(x: np.ndarray, dt: float, lo: float, hi: float, edge: float = 0.1) -> np.ndarray:
+    """Band-pass [lo, hi] cycles/day with raised-cosine edges ``edge`` wide, zero-padded FFT."""
+    n = len(x)
+    nfft = 1 << int(np.ceil(np.log2(2 * n)))
+    f = np.fft.rfftfreq(nfft, dt) / _CPD
+    w = np.clip(np.minimum(f - (lo - edge / 2), (hi + edge / 2) - f) / edge, 0.0, 1.0)
+    w = 0.5 - 0.5 * np.cos(np.pi * w)
+    return np.fft.irfft(np.fft.rfft(x, nfft) * w, nfft)[:n]
+
+
+def clock_offset(observed: pd.Series, model: Any, *, max_shift: float = 3600.0, day: float = DAY,
+                 iterations: int = 8, bands=CLOCK_BANDS, smooth_hours: float = 25.0) -> dict:
+    """Time shift of the gauge record against the predicted tide, band by band.
+
+    A record whose clock is wrong by ``lag`` holds ``h(t - lag) ~ h(t) - lag h'(t)``, so
+    the residual ``r = obs - pred`` is ``-lag`` times the predicted rate ``h'`` plus the
+    weather. The non-tidal part is removed first: a centred running mean over
+    ``smooth_hours`` (25 h, about one diurnal and two semidiurnal periods) is
+    subtracted from ``r`` and from ``h'`` alike, then both are split by the same
+    band-pass filters into the diurnal, semidiurnal and shallow-water bands. In each
+    band, least squares of ``r`` on ``-h'`` gives a shift with its standard error from
+    the band's own residual power and bandwidth (coloured noise), so a storm surge,
+    whose power sits at long periods and spills into the diurnal band, weighs that
+    band down instead of biasing the result. The bands are combined by inverse
+    variance; a clock error moves every constituent by its speed times the same
+    ``lag``, so the band values must agree (``consistent``); when they do not, the
+    uncertainty is widened by the Birge ratio. Gauss-Newton iterations re-evaluate at
+    the shifted times (interpolated from one prediction on a one-minute grid) until
+    the shift settles.
+
+    Parameters
+    ----------
+    observed : Series
+        Usable levels [m] on a UTC DatetimeIndex (any sampling, gaps allowed).
+    model : TideModel or object with ``predict(times)`` (or a callable)
+        The reference tide [m]; ``predict_derivative`` is used when present.
+    max_shift : float
+        Largest shift searched [s]; estimates are clipped to +-max_shift.
+    day : float
+        Length of the ``per_day`` pieces [s].
+    iterations : int
+        Gauss-Newton iterations at most.
+    bands : sequence of (name, low, high)
+        Frequency bands [cycles/day].
+    smooth_hours : float
+        Width of the running mean removed as the non-tidal part [h].
 
     Returns
     -------
     dict
         ``offset_min`` and ``offset_se_min`` (positive: the record lags the tide), the
-        same in seconds (``offset_s``, ``offset_se_s``), ``days`` used, and
-        ``per_day`` (Series of daily shifts [s]). The uncertainty is the standard error
-        of the daily values (3 days or more), else the least-squares error inflated
-        for the residual's lag-one autocorrelation.
+        same in seconds (``offset_s``, ``offset_se_s``), ``days`` used, ``per_day``
+        (Series of daily shifts [s], indexed by day start, UTC), ``bands`` (band name ->
+        ``{"offset_min", "offset_se_min"}``) and ``consistent`` (bool: the bands agree
+        within their uncertainties, chi-square test at 1 %).
 
     References
     ----------
-    Pugh & Woodworth (2014), Sea-Level Science, ch. 3 (timing errors as phase shifts);
-    IOC Manual Vol. IV (timing accuracy). Gauss-Newton least squares (common practice).
+    Pugh, D., Woodworth, P. (2014). Sea-Level Science, ch. 3 (a timing error shifts each
+    constituent's phase by its speed times the error). IOC Manual on Sea Level
+    Measurement and Interpretation, Vol. IV (timing accuracy of one minute). Munk &
+    Cartwright (1966) and Godin (1972) for band-wise noise levels of tidal residuals.
     """
     obs = observed.dropna()
     out = {"offset_min": np.nan, "offset_se_min": np.nan, "offset_s": np.nan, "offset_se_s": np.nan,
-           "days": 0, "per_day": pd.Series(dtype=float)}
+           "days": 0, "per_day": pd.Series(dtype=float), "bands": {}, "consistent": None}
     if len(obs) < 20:
         return out
     t = seconds(obs.index)
-    y = obs.to_numpy(dtype=float)
-    # Coarse search on a thinned record.
-    step = max(1, int(len(t) // 20000))
-    tc, yc = t[::step], y[::step]
-    best, best_cost = 0.0, np.inf
-    for lag in np.arange(-max_shift, max_shift + 1, 120.0):
-        r = yc - _predict(model, pd.to_datetime(tc - lag, unit="s", utc=True))
-        r = r - pd.Series(r).rolling(max(3, int(3 * 3600 / max(np.median(np.diff(tc)), 1))), center=True,
-                                     min_periods=1).mean().to_numpy()
-        cost = float(np.nanmean(r ** 2))
-        if cost < best_cost:
-            best, best_cost = lag, cost
-    lag = best
-    day_id = np.floor((t - t[0]) / day).astype(int)
-    h = 30.0
-    for _ in range(iterations):
-        ts = pd.to_datetime(t - lag, unit="s", utc=True)
-        p = _predict(model, ts)
-        dp = (_predict(model, pd.to_datetime(t - lag + h, unit="s", utc=True))
-              - _predict(model, pd.to_datetime(t - lag - h, unit="s", utc=True))) / (2 * h)
-        r = y - p
-        cols = [-dp]
-        for k in np.unique(day_id):
-            m = (day_id == k).astype(float)
-            x = np.where(day_id == k, (t - t[0]) / day - k - 0.5, 0.0)
-            cols += [m, m * x, m * x * x]
-        X = np.column_stack(cols)
-        beta, se, sd, res = _ols(X, r)
-        lag += beta[0]
-        if abs(beta[0]) < 0.01:
+    order = np.argsort(t, kind="stable")
+    t, y = t[order], obs.to_numpy(dtype=float)[order]
+    gt, gp, gd = _grid_eval(model, t, max_shift)
+    # Analysis grid: the record's own step (at least a minute), samples binned to it.
+    dt = max(60.0, float(np.median(np.diff(t))) if len(t) > 1 else 60.0)
+    k = np.rint((t - t[0]) / dt).astype(np.int64)
+    n = int(k[-1]) + 1
+    cnt = np.bincount(k, minlength=n).astype(float)
+    m = cnt > 0
+    width = max(3, int(round(smooth_hours * 3600 / dt)) | 1)
+    taper = signal.windows.tukey(n, min(1.0, 2 * DAY / max(n * dt, 1.0)))
+
+    def band_sums(lag: float):
+        """Per band: filtered residual and rate on the grid (observed points only)."""
+        r = y - np.interp(t - lag, gt, gp)
+        d = np.interp(t - lag, gt, gd)
+        rg = np.bincount(k, r, n) / np.maximum(cnt, 1)
+        dg_ = np.bincount(k, d, n) / np.maximum(cnt, 1)
+        # The same taper on both keeps r = -lag h' exact while cutting the leakage of
+        # the record's ends (and of a surge) from long periods into the tidal bands.
+        rg = np.where(m, rg - _running_mean(rg, m, width), 0.0) * taper
+        dg_ = np.where(m, dg_ - _running_mean(dg_, m, width), 0.0) * taper
+        return [(name, lo, hi, _band_filter(rg, dt, lo, hi), _band_filter(dg_, dt, lo, hi))
+                for name, lo, hi in bands]
+
+    def combine(parts, sel=slice(None)):
+        est = {}
+        for name, lo, hi, rb, db in parts:
+            sdd = float(db[sel] @ db[sel])
+            if sdd <= 0 or not np.isfinite(sdd):
+                continue
+            tau = -float(rb[sel] @ db[sel]) / sdd
+            e = rb[sel] + tau * db[sel]
+            var_e = float(e @ e) / max(len(e), 1)
+            # OLS variance inflated for band-limited noise: samples are independent only
+            # every 1 / (2 B) seconds (B the bandwidth) -> factor 1 / (2 B dt).
+            inflate = max(1.0, 1.0 / (2 * (hi - lo) * _CPD * dt))
+            var = var_e / sdd * inflate
+            if var > 0 and np.isfinite(var):
+                est[name] = (tau, var)
+        return est
+
+    lag = 0.0
+    est: dict = {}
+    for _ in range(max(1, iterations)):
+        parts = band_sums(lag)
+        est = combine(parts)
+        if not est:
+            return out
+        w = {b: 1.0 / v for b, (_, v) in est.items()}
+        step = sum(w[b] * est[b][0] for b in est) / sum(w.values())
+        new = float(np.clip(lag + step, -max_shift, max_shift))
+        moved, lag = abs(new - lag), new
+        if moved < 0.5:
             break
-    # Daily estimates at the common solution.
+    # Band values at the final shift (the step is the remaining correction).
+    wsum = sum(1.0 / v for _, v in est.values())
+    se_s = math.sqrt(1.0 / wsum)
+    steps = {b: lag - (sum(est[c][0] / est[c][1] for c in est) / wsum) + tau for b, (tau, _) in est.items()}
+    chi2 = sum((steps[b] - lag) ** 2 / est[b][1] for b in est)
+    dof = len(est) - 1
+    consistent = True
+    if dof > 0:
+        consistent = bool(stats.chi2.sf(chi2, dof) > 0.01)
+        se_s *= math.sqrt(max(1.0, chi2 / dof))  # Birge ratio
+    # Daily pieces from the same filtered series, bands weighted as in the whole.
+    grid_t = t[0] + np.arange(n) * dt
+    day_id = np.floor((grid_t - t[0]) / day).astype(int)
     per_day = {}
-    for k in np.unique(day_id):
-        m = day_id == k
-        if m.sum() < 0.5 * day / max(np.median(np.diff(t)), 1):
+    per_sample = max(1, int(0.5 * day / dt))
+    for j in np.unique(day_id):
+        sel = (day_id == j)
+        if int(m[sel].sum()) < per_sample:
             continue
-        x = (t[m] - t[0]) / day - k - 0.5
-        Xd = np.column_stack([-dp[m], np.ones(m.sum()), x, x * x])
-        bd, *_ = _ols(Xd, r[m])
-        per_day[_iso(t[0] + k * day)] = lag - beta[0] + bd[0]
-    pdays = pd.Series(per_day, dtype=float)
-    if len(pdays) >= 3:
-        se_s = float(pdays.std(ddof=1) / math.sqrt(len(pdays)))
-    else:
-        rho = float(np.corrcoef(res[:-1], res[1:])[0, 1]) if len(res) > 3 else 0.0
-        rho = min(max(rho, 0.0), 0.999)
-        se_s = float(se[0] * math.sqrt((1 + rho) / (1 - rho)))
+        ed = combine(parts, sel)
+        if not ed:
+            continue
+        wd = {b: 1.0 / est[b][1] for b in ed if b in est}
+        if not wd:
+            continue
+        per_day[_iso(t[0] + j * day)] = lag + sum(wd[b] * ed[b][0] for b in wd) / sum(wd.values())
     out.update(offset_s=float(lag), offset_se_s=se_s, offset_min=float(lag) / 60, offset_se_min=se_s / 60,
-               days=len(pdays), per_day=pdays)
+               days=len(per_day), per_day=pd.Series(per_day, dtype=float),
+               bands={b: {"offset_min": steps[b] / 60, "offset_se_min": math.sqrt(est[b][1]) / 60}
+                      for b in est},
+               consistent=consistent)
     return out
 
+
+# --------------------------------------------------------------------------- backup timing
+
+def sensor_timing(primary: pd.Series, backup: pd.Series, window_s: float = 6 * 3600.0,
+                  step_s: float = 3 * 3600.0, max_lag_s: float = 900.0, lag_step_s: float = 15.0,
+                  min_samples: int = 60) -> pd.DataFrame:
+    """Timing of the backup sensor against the primary, window by window.
+
+    In each window of ``window_s`` [s] (stepped by ``step_s`` [s]) the lag ``L`` on a
+    grid of ``lag_step_s`` [s] within +-``max_lag_s`` [s] that makes
+    ``backup(t) - primary(t + L)`` most nearly constant (smallest median absolute
+    deviation) is taken. Both sensors see the same sea, so their difference cancels the
+    tide and the weather (a surge included) and leaves offset, drift and timing; the
+    median keeps spikes and a stuck spell from steering it.
+
+    Parameters
+    ----------
+    primary, backup : Series
+        Usable levels [m] on UTC DatetimeIndexes.
+    window_s, step_s, max_lag_s, lag_step_s : float
+        Window length, window step, lag range and lag grid [s].
+    min_samples : int
+        Backup samples a window needs to be used.
+
+    Returns
+    -------
+    DataFrame
+        ``start``, ``end`` (UTC Timestamps), ``lag_min`` [min] (positive: the backup's
+        stamp T holds the sea of T + L, its clock is late) and ``mad_mm`` [mm], one row
+        per window.
+
+    References
+    ----------
+    IOC (1985-2016), Manual on Sea Level Measurement and Interpretation, Vol. IV (a
+    second sensor to check the first). Lag search by the median absolute deviation of
+    the difference: common practice, no source.
+    """
+    cols = ["start", "end", "lag_min", "mad_mm"]
+    primary, backup = primary.dropna(), backup.dropna()
+    if len(primary) < 2 or len(backup) < 2:
+        return pd.DataFrame(columns=cols)
+    ps, pv = seconds(primary.index), primary.to_numpy(dtype=float)
+    bs, bv = seconds(backup.index), backup.to_numpy(dtype=float)
+    lags = np.arange(-max_lag_s, max_lag_s + lag_step_s / 2, lag_step_s)
+    rows = []
+    t0 = max(ps[0], bs[0])
+    while t0 + window_s <= min(ps[-1], bs[-1]):
+        m = (bs >= t0) & (bs < t0 + window_s)
+        if m.sum() >= min_samples:
+            tt, yy = bs[m], bv[m]
+            d = yy[None, :] - np.interp(tt[None, :] + lags[:, None], ps, pv)
+            mad = np.median(np.abs(d - np.median(d, axis=1, keepdims=True)), axis=1)
+            i = int(np.argmin(mad))
+            rows.append({"start": _iso(t0), "end": _iso(t0 + window_s), "lag_min": lags[i] / 60,
+                         "mad_mm": mad[i] / MM})
+        t0 += step_s
+    return pd.DataFrame(rows, columns=cols)
+
+
+def clock_episodes(timing: pd.DataFrame, limit_min: float = 1.5) -> list[dict]:
+    """Spans where the backup's timing (from :func:`sensor_timing`) is off by more than ``limit_min``.
+
+    Consecutive windows past the limit [min] are joined into one span.
+
+    Returns
+    -------
+    list of dict
+        ``start``, ``end`` (UTC Timestamps), ``lag_min`` (median over the span's
+        windows [min]) and ``windows`` (their number).
+
+    References
+    ----------
+    The default limit is the one-minute timing accuracy of IOC Manual Vol. IV (from
+    memory) plus half a minute for the lag grid and noise (our choice).
+    """
+    out: list[dict] = []
+    cur: list = []
+    for row in list(timing.itertuples()) + [None]:
+        if row is not None and abs(row.lag_min) > limit_min:
+            cur.append(row)
+            continue
+        if cur:
+            out.append({"start": cur[0].start, "end": cur[-1].end,
+                        "lag_min": float(np.median([r.lag_min for r in cur])), "windows": len(cur)})
+            cur = []
+    return out
 
 # --------------------------------------------------------------------------- datum steps
 

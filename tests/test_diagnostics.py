@@ -93,6 +93,155 @@ def test_clock_offset_zero_on_a_right_clock(ten_days):
     assert abs(res["offset_min"]) < 3 * res["offset_se_min"] + 0.05
 
 
+# IOC Manual Vol. IV asks for gauge timing good to one minute (from memory); a storm
+# surge is weather, not a clock error, so a right clock must stay inside that minute.
+@pytest.mark.parametrize("seed", [61, 62, 63])
+def test_storm_surge_of_a_metre_is_not_taken_for_a_clock_error(seed):
+    level, _ = record(days=7, seed=seed, surge_height=1.0, surge_width_h=6.0)
+    res = dg.clock_offset(level, SynthModel())
+    assert abs(res["offset_min"]) < 1.0
+
+
+@pytest.mark.parametrize("seed", [61, 62, 63])
+def test_six_minute_clock_error_found_under_a_metre_of_surge(seed):
+    # Pugh & Woodworth (2014), Sea-Level Science, ch. 3: a timing error tau delays the
+    # whole tidal curve by tau. Injected: the gauge record 6 minutes late. Background
+    # noise of 1 cm (a calm week) so the 0.5-minute tolerance is over three standard
+    # errors; the surge is the one of the right-clock test.
+    level, _ = record(days=7, seed=seed, red_sigma=0.01, surge_height=1.0, surge_width_h=6.0,
+                      model=SynthModel(shift_s=6 * minute))
+    res = dg.clock_offset(level, SynthModel())
+    assert res["offset_min"] == pytest.approx(6.0, abs=0.5)
+
+
+def test_surge_moves_the_clock_estimate_by_seconds_only():
+    # The same noisy record (3 cm red noise) with and without a 1 m surge, clock 6 min late.
+    calm, _ = record(days=7, seed=61, model=SynthModel(shift_s=6 * minute))
+    storm, _ = record(days=7, seed=61, surge_height=1.0, surge_width_h=6.0,
+                      model=SynthModel(shift_s=6 * minute))
+    a = dg.clock_offset(calm, SynthModel())["offset_s"]
+    b = dg.clock_offset(storm, SynthModel())["offset_s"]
+    assert abs(a - b) < 10
+
+
+def test_clock_error_of_a_surge_record_covered_by_its_uncertainty():
+    level, _ = record(days=7, seed=64, surge_height=1.0, surge_width_h=6.0,
+                      model=SynthModel(shift_s=-4 * minute))
+    res = dg.clock_offset(level, SynthModel())
+    assert res["offset_min"] == pytest.approx(-4.0, abs=3 * res["offset_se_min"])
+    assert 0 < res["offset_se_min"] < 0.5
+
+
+def _two_band_record(m2_shift_s: float, k1_shift_s: float, seed: int = 70):
+    """Semidiurnal and diurnal tides shifted separately (large diurnal so both bands count)."""
+    semi = {"M2": 1.2, "S2": 0.4, "K1": 0.0, "O1": 0.0}
+    diur = {"M2": 0.0, "S2": 0.0, "K1": 0.6, "O1": 0.4}
+    idx = record(days=14, seed=seed)[0].index
+    rng = np.random.default_rng(seed)
+    level = (SynthModel(shift_s=m2_shift_s, amps=semi).predict(idx)
+             + SynthModel(shift_s=k1_shift_s, amps=diur).predict(idx) - 2.5
+             + rng.normal(0, 10 * mm, len(idx)))
+    return pd.Series(level, index=idx), SynthModel(amps={**semi, **{k: v for k, v in diur.items() if v}})
+
+
+def test_clock_error_is_the_same_time_shift_in_every_band():
+    # Design notes and Pugh & Woodworth (2014), ch. 3: a clock error moves every
+    # constituent by its speed times the same tau, so diurnal and semidiurnal agree.
+    level, ref = _two_band_record(5 * minute, 5 * minute)
+    res = dg.clock_offset(level, ref)
+    assert res["consistent"] is True
+    assert res["bands"]["semidiurnal"]["offset_min"] == pytest.approx(5.0, abs=0.2)
+    assert res["bands"]["diurnal"]["offset_min"] == pytest.approx(5.0, abs=0.5)
+
+
+def test_semidiurnal_phase_change_alone_is_flagged_inconsistent():
+    # A change in the sea (M2 and S2 later by 10 minutes, diurnal tide unchanged) is
+    # not a clock error: the bands disagree.
+    level, ref = _two_band_record(10 * minute, 0.0)
+    res = dg.clock_offset(level, ref)
+    assert res["consistent"] is False
+    assert res["bands"]["diurnal"]["offset_min"] == pytest.approx(0.0, abs=0.5)
+
+
+def test_clock_offset_with_the_package_tide_model_and_gaps():
+    # The real TideModel (analytic rate, predict_derivative) and a record with a 6-hour
+    # gap and irregular 2-minute sampling; 3 minutes late.
+    from predictor import TideModel
+    from test_qc_synthetic import AMPS, MEAN, PHASES
+
+    ref = TideModel(mean=MEAN, constituents=[{"name": k, "amplitude": AMPS[k], "phase": PHASES[k]}
+                                             for k in AMPS])
+    idx = pd.date_range("2024-03-01", periods=5 * 720, freq="2min", tz="UTC")
+    rng = np.random.default_rng(71)
+    idx = idx + pd.to_timedelta(rng.integers(-20, 20, len(idx)), unit="s")
+    keep = (idx < pd.Timestamp("2024-03-03T00:00Z")) | (idx >= pd.Timestamp("2024-03-03T06:00Z"))
+    idx = idx[keep]
+    level = ref.predict(idx - pd.Timedelta(minutes=3)) + rng.normal(0, 5 * mm, len(idx))
+    res = dg.clock_offset(pd.Series(level, index=idx), ref)
+    assert res["offset_min"] == pytest.approx(3.0, abs=0.2)
+    assert res["days"] == 5
+
+
+def test_clock_offset_per_day_follows_a_clock_that_jumps():
+    level, _ = record(days=6, seed=72)
+    late, _ = record(days=6, seed=72, model=SynthModel(shift_s=8 * minute))
+    level.iloc[3 * 1440:] = late.iloc[3 * 1440:]
+    res = dg.clock_offset(level, SynthModel())
+    per_day_min = res["per_day"].to_numpy() / 60
+    assert len(per_day_min) == 6
+    assert np.all(np.abs(per_day_min[:2]) < 1.5)
+    assert np.all(np.abs(per_day_min[4:] - 8) < 1.5)
+
+
+def test_clock_offset_of_too_short_a_record_is_nan():
+    level, _ = record(days=0.01, seed=73)
+    assert np.isnan(dg.clock_offset(level, SynthModel())["offset_min"])
+
+
+def _backup_late(minutes: float, start_h: float, end_h: float, days: float = 4, seed: int = 80):
+    """Primary and a backup whose clock is ``minutes`` late between the given hours.
+
+    Only the tide moves with the clock here; the surge and the noise are the primary's,
+    so the difference is the timing error alone plus 2 mm of sensor noise.
+    """
+    primary, _ = record(days=days, seed=seed, white_sigma=0.0, surge_height=1.0)
+    elapsed_h = np.arange(len(primary)) / 60
+    span = (elapsed_h >= start_h) & (elapsed_h < end_h)
+    backup = primary.copy()
+    backup[span] = primary[span] + (SynthModel(shift_s=-minutes * minute).predict(primary.index[span])
+                                    - SynthModel().predict(primary.index[span]))
+    rng = np.random.default_rng(seed + 1)
+    return primary, backup + 0.02 + rng.normal(0, 2 * mm, len(backup))
+
+
+def test_backup_timing_finds_a_late_clock_in_its_windows():
+    # IOC Manual Vol. IV: a second sensor checks the first. Backup 4 minutes late
+    # (its stamp T holds the sea of T + 4 min) from hour 36 to hour 72.
+    primary, backup = _backup_late(4.0, 36, 72)
+    timing = dg.sensor_timing(primary, backup)
+    inside = timing[(timing["start"] >= START + pd.Timedelta(hours=36))
+                    & (timing["end"] <= START + pd.Timedelta(hours=72))]
+    outside = timing[timing["end"] <= START + pd.Timedelta(hours=36)]
+    assert len(inside) >= 8
+    assert np.allclose(inside["lag_min"], 4.0, atol=0.5)
+    assert np.allclose(outside["lag_min"], 0.0, atol=0.5)
+
+
+def test_clock_episodes_join_late_windows_into_one_span():
+    primary, backup = _backup_late(4.0, 36, 72)
+    (span,) = dg.clock_episodes(dg.sensor_timing(primary, backup))
+    assert span["lag_min"] == pytest.approx(4.0, abs=0.5)
+    assert abs(span["start"] - (START + pd.Timedelta(hours=36))) <= pd.Timedelta(hours=6)
+    assert abs(span["end"] - (START + pd.Timedelta(hours=72))) <= pd.Timedelta(hours=6)
+
+
+def test_sensor_timing_of_empty_input_is_an_empty_frame():
+    empty = pd.Series(dtype=float, index=pd.DatetimeIndex([], tz="UTC"))
+    out = dg.sensor_timing(empty, empty)
+    assert out.empty and list(out.columns) == ["start", "end", "lag_min", "mad_mm"]
+    assert dg.clock_episodes(out) == []
+
+
 def test_datum_step_found_at_its_time_with_its_size(ten_days):
     level, pred = ten_days
     resid = level - pred
