@@ -7,6 +7,10 @@ committed in one transaction, so a crash or restart at any instant neither repea
 message already queued nor forgets an episode in progress; re-evaluating samples at or
 before the watermark does nothing. Reloading the configuration keeps the state: steps
 are matched by name.
+
+Two clocks: the rules run on ``now`` (the data's own time when a record is replayed),
+and the messages carry the data time of their event; the outbox queues them on the wall
+clock, so its back-off and expiry count real time (see :mod:`alerts.outbox`).
 """
 from __future__ import annotations
 
@@ -219,7 +223,7 @@ def _kind_of(event: Event) -> str:
 
 
 def _on_event(db, station: StationView, rule: Rule, event: Event, episode_id: int | None,
-              facts: dict, now: int, key_suffix: str = "") -> tuple[int | None, dict]:
+              facts: dict, now: int, key_suffix: str = "", clock=None) -> tuple[int | None, dict]:
     step = rule.steps[event.level]
     if event.kind == "opened":
         cur = db.conn.execute(
@@ -248,7 +252,8 @@ def _on_event(db, station: StationView, rule: Rule, event: Event, episode_id: in
         key = f"{station.id}/{rule.id}/episode-{episode_id}/{event.kind}/{step.name}"
         if key_suffix:
             key += f"/{key_suffix}"
-        ids = enqueue(db, recipients, subject, text, html, _kind_of(event), key, now=now)
+        ids = enqueue(db, recipients, subject, text, html, _kind_of(event), key, event_time=event.t,
+                      clock=clock)
         db.conn.execute("UPDATE alert_episodes SET messages = messages + ? WHERE id = ?",
                         (len(ids), episode_id))
     log.info("station %s rule %s: %s %s at %d (value %.3f), %d messages queued",
@@ -273,7 +278,7 @@ def _fault_key(f: Any) -> str:
 
 def _fault_changes(db, station: StationView, rule: Rule, state: RuleState, events: list[Event],
                    episode_id: int | None, samples: pd.DataFrame, t_all: np.ndarray, ok_all: np.ndarray,
-                   t_now: int, context: AlertContext) -> tuple[list[dict], list[str]]:
+                   t_now: int, context: AlertContext, clock=None) -> tuple[list[dict], list[str]]:
     """During an equipment-fault episode, one more message when a new kind of fault appears.
 
     Returns the events and the fault keys announced so far in the episode."""
@@ -294,7 +299,7 @@ def _fault_changes(db, station: StationView, rule: Rule, state: RuleState, event
         facts = _facts(samples, t_all, ok_all, t_now, context)
         facts["new_faults"] = [f for f in faults if _fault_key(f) not in announced]
         _, info = _on_event(db, station, rule, ev, episode_id, facts, t_now,
-                            key_suffix="+".join(sorted(set(keys) - announced)))
+                            key_suffix="+".join(sorted(set(keys) - announced)), clock=clock)
         results.append(info)
         announced |= set(keys)
     return results, sorted(announced)
@@ -307,7 +312,7 @@ def _idle(state: RuleState) -> bool:
 
 
 def evaluate(db, station: StationView, rules: Iterable[Rule], samples: pd.DataFrame | None,
-             now: Any = None, context: AlertContext | None = None) -> list[dict]:
+             now: Any = None, context: AlertContext | None = None, clock=None) -> list[dict]:
     """Advance every rule of a station and queue the messages its events call for.
 
     Parameters
@@ -325,6 +330,9 @@ def evaluate(db, station: StationView, rules: Iterable[Rule], samples: pd.DataFr
         The evaluation time (default: the clock); context rules (next high water, feed
         silence, equipment faults) are evaluated once at ``now``.
     context : AlertContext, optional
+    clock : callable, optional
+        Wall clock for the outbox's queue time (default ``time.time``); ``now`` may be a
+        replayed data time, the queue time never is.
 
     Returns
     -------
@@ -344,12 +352,12 @@ def evaluate(db, station: StationView, rules: Iterable[Rule], samples: pd.DataFr
     out: list[dict] = []
     for rule in rules:
         with transaction(db):
-            out.extend(_evaluate_rule(db, station, rule, samples, t_all, t_now, context))
+            out.extend(_evaluate_rule(db, station, rule, samples, t_all, t_now, context, clock))
     return out
 
 
 def _evaluate_rule(db, station: StationView, rule: Rule, samples: pd.DataFrame, t_all: np.ndarray,
-                   t_now: int, context: AlertContext) -> list[dict]:
+                   t_now: int, context: AlertContext, clock=None) -> list[dict]:
     state, episode_id = _load_state(db, station.id, rule)
     wm = state.watermark if state.watermark is not None else -(2 ** 62)
     results: list[dict] = []
@@ -378,7 +386,7 @@ def _evaluate_rule(db, station: StationView, rule: Rule, samples: pd.DataFrame, 
             state, events = advance(rule, state, t, v)
             for ev in events:
                 facts = _facts(samples, t_all, ok_all, t, context)
-                episode_id, info = _on_event(db, station, rule, ev, episode_id, facts, t_now)
+                episode_id, info = _on_event(db, station, rule, ev, episode_id, facts, t_now, clock=clock)
                 results.append(info)
                 if ev.kind == "cleared":
                     episode_id = None
@@ -397,13 +405,13 @@ def _evaluate_rule(db, station: StationView, rule: Rule, samples: pd.DataFrame, 
             ok_all = _counted(rule, samples)
             for ev in events:
                 facts = _facts(samples, t_all, ok_all, t_now, context)
-                episode_id, info = _on_event(db, station, rule, ev, episode_id, facts, t_now)
+                episode_id, info = _on_event(db, station, rule, ev, episode_id, facts, t_now, clock=clock)
                 results.append(info)
                 if ev.kind == "cleared":
                     episode_id = None
             if rule.watch == "equipment_fault":
                 more, announced = _fault_changes(db, station, rule, state, events, episode_id, samples,
-                                                 t_all, ok_all, t_now, context)
+                                                 t_all, ok_all, t_now, context, clock)
                 results += more
             if episode_id is not None:
                 _track_peak(db, rule, episode_id, t_now, value)

@@ -1,7 +1,13 @@
 """Store-and-forward outbox and SMTP delivery.
 
 Every message is written to the ``outbox`` table (one row per recipient) before any
-attempt to send it. Delivery takes rows in order per recipient: an undelivered earlier
+attempt to send it.
+
+Delivery is a real-world process: the queue time, the retry back-off and the expiry always
+follow the wall clock (``time.time()``, or an injected ``clock`` function in tests), whatever
+clock the alert rules run on. A replayed storm from years ago is queued now and delivered
+now; the data time of the event it is about travels in the message text and in the row's
+``event_at`` column, never in the delivery arithmetic. Delivery takes rows in order per recipient: an undelivered earlier
 message blocks later ones to the same address, so nobody reads an all-clear before the
 alert it closes. Each row carries a Message-ID fixed when it is queued; a row is marked
 ``sending`` (with a lease) before the SMTP transaction and ``sent`` after it, so a crash
@@ -43,7 +49,7 @@ from dataclasses import dataclass, field
 from datetime import datetime
 from email.utils import parseaddr
 from pathlib import Path
-from typing import Any, Iterable, Iterator
+from typing import Any, Callable, Iterable, Iterator
 
 from alerts.message import build_email, clean_header
 from alerts.rules import parse_duration
@@ -52,6 +58,13 @@ log = logging.getLogger(__name__)
 
 OUTBOX = "outbox"
 FINAL = ("sent", "expired")
+
+Clock = Callable[[], float]
+
+
+def _wall(clock: Clock | None) -> int:
+    """Wall-clock Unix seconds from ``clock`` (default ``time.time``)."""
+    return int((clock or time.time)())
 
 
 # --------------------------------------------------------------------------- helpers
@@ -92,12 +105,15 @@ def ensure_outbox_schema(db) -> None:
             "id": int, "created_at": int, "kind": str, "key": str, "recipient": str,
             "subject": str, "text": str, "html": str, "attachments": str, "message_id": str,
             "status": str, "attempts": int, "next_try": int, "claimed_until": int,
-            "last_try": int, "last_error": str, "sent_at": int, "expired_at": int,
+            "last_try": int, "last_error": str, "sent_at": int, "expired_at": int, "event_at": int,
         }, pk="id", not_null={"created_at", "kind", "key", "recipient", "subject", "text",
                               "message_id", "status"}, defaults={"status": "pending", "attempts": 0},
             if_not_exists=True)
         db[OUTBOX].create_index(["key", "recipient"], unique=True, if_not_exists=True)
         db[OUTBOX].create_index(["status", "recipient", "id"], if_not_exists=True)
+    elif "event_at" not in db[OUTBOX].columns_dict:
+        # stores queued before the wall-clock split kept the event's time as the queue time
+        db[OUTBOX].add_column("event_at", int)
 
 
 def _make_message_id(kind: str) -> str:
@@ -119,23 +135,31 @@ def _encode_attachments(attachments: Iterable[Any] | None) -> str | None:
                                                                            "application/octet-stream")
         elif isinstance(att, dict):
             name, data, ctype = att["filename"], att["data"], att.get("content_type")
+            cid = att.get("content_id") or att.get("cid")
         else:
-            name, data, ctype = att
+            name, data, ctype, *rest = att
+            cid = rest[0] if rest else None
         if isinstance(data, str):
             data = data.encode("utf-8")
-        out.append({"filename": str(name), "content_type": ctype or "application/octet-stream",
-                    "data": base64.b64encode(data).decode("ascii")})
+        item = {"filename": str(name), "content_type": ctype or "application/octet-stream",
+                "data": base64.b64encode(data).decode("ascii")}
+        if cid:
+            # build_email cites inline report charts by it (multipart/related)
+            item["content_id"] = str(cid)
+        out.append(item)
     return json.dumps(out)
 
 
 def _decode_attachments(text: str | None) -> list[dict]:
+    """Attachments as stored: dicts of filename, content_type, data (bytes), content_id if any."""
     if not text:
         return []
     return [dict(a, data=base64.b64decode(a["data"])) for a in json.loads(text)]
 
 
 def enqueue(db, recipients: Iterable[str], subject: str, text: str, html: str | None, kind: str,
-            key: str, attachments: Iterable[Any] | None = None, now: Any = None) -> list[int]:
+            key: str, attachments: Iterable[Any] | None = None, now: Any = None, *,
+            event_time: Any = None, clock: Clock | None = None) -> list[int]:
     """Queue one message for each recipient; idempotent per (``key``, recipient).
 
     Parameters
@@ -151,9 +175,16 @@ def enqueue(db, recipients: Iterable[str], subject: str, text: str, html: str | 
         Caller's identity for the message; queuing the same key to the same recipient
         again does nothing, so a retried job cannot queue a duplicate.
     attachments : iterable, optional
-        Paths, ``(filename, bytes, content_type)`` tuples or dicts with those keys.
+        Paths, ``(filename, bytes, content_type[, content_id])`` tuples or dicts with those
+        keys; ``content_id`` is kept (inline images cited by the HTML as ``cid:``).
     now : time, optional
-        Queue time (default: the clock).
+        Former name of ``event_time``, kept for callers that pass the time they run at.
+    event_time : time, optional
+        Data time of the event the message is about [Unix s or datetime] (a replayed clock
+        may be years back). Recorded as ``event_at``; never used for delivery.
+    clock : callable, optional
+        Wall clock giving Unix seconds (default ``time.time``): the queue time, from which
+        back-off and expiry count.
 
     Returns
     -------
@@ -161,16 +192,18 @@ def enqueue(db, recipients: Iterable[str], subject: str, text: str, html: str | 
         Outbox ids of the rows added (rows already queued under the key are not repeated).
     """
     ensure_outbox_schema(db)
-    t = unix_seconds(now)
+    t = _wall(clock)
+    ev = event_time if event_time is not None else now
+    event_at = unix_seconds(ev) if ev is not None else t
     att = _encode_attachments(attachments)
     ids: list[int] = []
     with transaction(db):
         for rcpt in dict.fromkeys(r.strip() for r in recipients if r and r.strip()):
             cur = db.conn.execute(
                 "INSERT OR IGNORE INTO outbox (created_at, kind, key, recipient, subject, text, html,"
-                " attachments, message_id, status, attempts, next_try) "
-                "VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, 'pending', 0, ?)",
-                (t, kind, key, rcpt, subject, text, html, att, _make_message_id(kind), t))
+                " attachments, message_id, status, attempts, next_try, event_at) "
+                "VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, 'pending', 0, ?, ?)",
+                (t, kind, key, rcpt, subject, text, html, att, _make_message_id(kind), t, event_at))
             if cur.rowcount == 1:
                 ids.append(cur.lastrowid)
     return ids
@@ -389,7 +422,7 @@ def _save_copy(settings: MailSettings, row: dict, msg) -> None:
 
 
 def deliver_due(db, settings: MailSettings, now: Any = None, *,
-                recipients: Iterable[str] | None = None) -> DeliverySummary:
+                recipients: Iterable[str] | None = None, clock: Clock | None = None) -> DeliverySummary:
     """Send what is due from the outbox, in order per recipient.
 
     Parameters
@@ -397,9 +430,12 @@ def deliver_due(db, settings: MailSettings, now: Any = None, *,
     db : sqlite_utils.Database
     settings : MailSettings
     now : time, optional
-        The delivery round's time (default: the clock); decides back-off and expiry.
+        The round's wall-clock time [Unix s] (default: ``clock()``); decides back-off and
+        expiry. Never a data or replay time: delivery happens in the real world.
     recipients : iterable of str, optional
         Only these recipients' queues (the test-mail command uses this).
+    clock : callable, optional
+        Wall clock giving Unix seconds (default ``time.time``).
 
     Returns
     -------
@@ -407,7 +443,7 @@ def deliver_due(db, settings: MailSettings, now: Any = None, *,
         Ids sent, ids failed this round with the reason, ids expired, rows still waiting.
     """
     ensure_outbox_schema(db)
-    t = unix_seconds(now)
+    t = unix_seconds(now) if now is not None else _wall(clock)
     only = set(recipients) if recipients is not None else None
     summary = DeliverySummary()
 

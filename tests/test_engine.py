@@ -194,7 +194,7 @@ def test_alert_reaches_a_loopback_smtp_server_with_the_caution(db):
         settings, _ = mail_settings_from({"sender": "gauge@port.example", "host": "127.0.0.1", "port": port,
                                           "security": "none"}, "mail")
         evaluate(db, STATION, rules(), frame(storm()), now=T0 + pd.Timedelta(hours=3))
-        deliver_due(db, settings, now=T0 + pd.Timedelta(hours=3))
+        deliver_due(db, settings)  # delivery runs on the wall clock
     finally:
         ctl.stop()
     first = catcher.messages[0]
@@ -202,6 +202,32 @@ def test_alert_reaches_a_loopback_smtp_server_with_the_caution(db):
     assert "automated and unofficial" in first.get_body(("plain",)).get_content()
     assert "official warnings" in first.get_body(("html",)).get_content().lower()
     assert len({msg["Message-ID"] for msg in catcher.messages}) == len(catcher.messages) == 5
+
+
+def test_replayed_episode_years_back_is_delivered_with_its_data_time(db):
+    # The rules run on the replayed clock (2001); the outbox queues and expires on the wall
+    # clock (injected), so the default two-day expiry does not fire for an old record.
+    replay_t0 = pd.Timestamp("2001-02-03 00:00", tz="UTC")
+    wall = pd.Timestamp("2030-06-01 12:00", tz="UTC").timestamp()
+    with socket.socket() as s:
+        s.bind(("127.0.0.1", 0))
+        port = s.getsockname()[1]
+    catcher = Catcher()
+    ctl = Controller(catcher, hostname="127.0.0.1", port=port)
+    ctl.start()
+    try:
+        settings, _ = mail_settings_from({"sender": "gauge@port.example", "host": "127.0.0.1", "port": port,
+                                          "security": "none"}, "mail")
+        evaluate(db, STATION, rules(), frame(storm()[:40], start=replay_t0),
+                 now=replay_t0 + pd.Timedelta(minutes=40), clock=lambda: wall)
+        summary = deliver_due(db, settings, clock=lambda: wall)
+    finally:
+        ctl.stop()
+    assert summary.expired == [] and len(summary.sent) == 1
+    row = next(db.query("SELECT created_at, event_at, attempts FROM outbox"))
+    assert row["created_at"] == int(wall) and row["attempts"] == 1
+    assert pd.Timestamp(row["event_at"], unit="s", tz="UTC").year == 2001
+    assert "2001" in catcher.messages[0].get_body(("plain",)).get_content()
 
 
 def test_works_on_an_autocommit_connection_like_the_stores(path):
