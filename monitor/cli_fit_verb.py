@@ -237,7 +237,7 @@ def run_fit(args) -> int:
         warnings.simplefilter("always", FitConditioningWarning)
         try:
             model = harmonic_fit(times, levels, rayleigh=args.rayleigh or 1.0, trend=args.trend,
-                                 robust=args.robust)
+                                 robust=args.robust, infer=None if args.infer == "none" else args.infer)
         except FitInputError as exc:
             raise UserError(f"{args.obs}: {exc}") from None
     for w in caught:
@@ -254,6 +254,12 @@ def run_fit(args) -> int:
         sys.stdout.write(_table(model, args.obs))
         if args.output:
             print(f"constants written to {args.output}", file=sys.stderr)
+    if args.infer == "none":
+        unresolved = [d for d in model.metadata.get("dropped", ()) if d["name"] in ("P1", "K2")]
+        if unresolved:
+            print(f"{args.obs}: note: the record is too short to resolve P1 and/or K2 from K1 and S2; "
+                  "their neighbours absorb them. '--infer auto' takes them at equilibrium ratios "
+                  "(Foreman 1977) if that assumption suits the port.", file=sys.stderr)
     return 0
 
 
@@ -273,5 +279,9 @@ def register(subparsers) -> argparse.ArgumentParser:
     p.add_argument("--rayleigh", type=float, metavar="R", default=None,
                    help="Rayleigh factor for choosing constituents (default 1)")
     p.add_argument("--trend", action="store_true", help="also fit a linear trend (m/year)")
+    p.add_argument("--infer", choices=("none", "auto", "equilibrium"), default="none",
+                   help="infer constituents the record cannot resolve from a resolved neighbour at "
+                   "equilibrium ratios: 'auto' P1, K2 and NU2 when needed; 'equilibrium' every known "
+                   "pair (default: none)")
     p.set_defaults(func=run_fit)
     return p

@@ -7,10 +7,8 @@ from __future__ import annotations
 
 import datetime as dt
 
+from monitor.cli_common import CAUTION
 from monitor.errors import UserError
-
-CAUTION_LINE = ("Automated and unofficial: official warnings and local emergency authorities "
-                "come first; defer to local codes and licensed practice.")
 
 
 def __getattr__(name: str):
@@ -28,7 +26,7 @@ def register(subparsers) -> None:
         "report", help="write a station's daily report (HTML) on demand",
         description="Write the daily HTML report of one station for one local day, to "
         "<reports.folder>/<station>/<YYYY-MM-DD>.html, and refresh <reports.folder>/index.html. "
-        + CAUTION_LINE)
+        + CAUTION)
     p.add_argument("config", metavar="CONFIG", help="the configuration file (TOML)")
     p.add_argument("--station", required=True, metavar="ID", help="station id from the configuration")
     p.add_argument("--date", "--day", dest="date", metavar="YYYY-MM-DD",
@@ -42,10 +40,9 @@ def _date(text: str | None, tz: str) -> dt.date:
     if text is None:
         from zoneinfo import ZoneInfo
         return dt.datetime.now(ZoneInfo(tz)).date() - dt.timedelta(days=1)
-    try:
-        return dt.date.fromisoformat(text)
-    except ValueError:
-        raise UserError(f"--date {text!r}: expected a date as YYYY-MM-DD") from None
+    from monitor.timeparse import parse_date
+
+    return parse_date(text, "--date")
 
 
 def cmd_report(args) -> int:

@@ -195,3 +195,17 @@ def test_the_installed_command_line_has_the_fit_verb(tmp_path, capsys):
     bad.write_text("time,level\n2031-01-01T00:00Z,x\n")
     assert main(["fit", str(bad)]) == 2
     assert "quaywatch fit: " in capsys.readouterr().err
+
+
+def test_infer_auto_adds_p1_from_k1_and_says_so(tmp_path, capsys):
+    obs = write_csv(tmp_path / "obs.csv", days=30)
+    assert run(["fit", str(obs), "--json", "--infer", "auto"]) == 0
+    out = json.loads(capsys.readouterr().out)
+    p1 = next(c for c in out["constituents"] if c["name"] == "P1")
+    assert p1["inferred_from"] == "K1"
+
+
+def test_without_inference_a_short_record_gets_a_note(tmp_path, capsys):
+    obs = write_csv(tmp_path / "obs.csv", days=30)
+    assert run(["fit", str(obs), "--json"]) == 0
+    assert "--infer auto" in capsys.readouterr().err
