@@ -16,29 +16,11 @@ from __future__ import annotations
 import numpy as np
 import pandas as pd
 
-__all__ = ["turning_points", "high_low", "parse_step"]
+from predictor.timeutil import parse_step
+
+__all__ = ["turning_points", "high_low"]
 
 _NEWTON_STEPS = 3
-
-
-def parse_step(step) -> float:
-    """A time step as seconds: a number [s], a timedelta, or text like ``10min``, ``1h``, ``60s``.
-
-    Raises
-    ------
-    ValueError
-        The text is not a positive duration.
-    """
-    if isinstance(step, (int, float, np.integer, np.floating)) and not isinstance(step, bool):
-        sec = float(step)
-    else:
-        try:
-            sec = pd.Timedelta(step).total_seconds()
-        except (ValueError, TypeError):
-            raise ValueError(f"not a time step: {step!r} (examples: 60s, 6min, 10min, 1h)") from None
-    if not np.isfinite(sec) or sec <= 0:
-        raise ValueError(f"time step must be positive, got {step!r}")
-    return sec
 
 
 def turning_points(model, t_start: float, t_end: float, step_s: float = 600.0):
