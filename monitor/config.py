@@ -17,7 +17,6 @@ from __future__ import annotations
 
 import dataclasses
 import difflib
-import importlib
 import math
 import re
 import tomllib
@@ -278,22 +277,13 @@ def _resolve_fields(obj: Any, base_dir: Path, names: tuple[str, ...]) -> Any:
         return obj
 
 
-def _optional_call(module: str, func: str, *args: Any) -> tuple[Any, list[str], bool]:
-    """Call a colleague's validator if installed: (value, errors, present)."""
-    try:
-        mod = importlib.import_module(module)
-    except ModuleNotFoundError as exc:
-        if exc.name and module.startswith(exc.name):
-            return None, [], False
-        raise
-    fn = getattr(mod, func, None)
-    if fn is None:
-        return None, [], False
+def _validate_with(fn: Any, *args: Any) -> tuple[Any, list[str]]:
+    """Call the owning package's validator: (value, errors)."""
     try:
         value, errs = fn(*args)
     except Exception as exc:  # a validator must not crash the whole check
-        return None, [f"{args[1]}: could not be checked ({type(exc).__name__}: {exc})"], True
-    return value, [str(e) for e in errs], True
+        return None, [f"{args[1]}: could not be checked ({type(exc).__name__}: {exc})"]
+    return value, [str(e) for e in errs]
 
 
 # --------------------------------------------------------------------------- sections
@@ -361,12 +351,16 @@ def validate_config(raw: Any, base_dir: Path | str = ".", path: Path | None = No
     if "mail" in raw:
         mt = c.table(raw.get("mail"), "mail")
         if mt is not None:
-            mail, errs, _ = _optional_call("alerts.outbox", "mail_settings_from", mt, "mail")
+            from alerts.outbox import mail_settings_from
+
+            mail, errs = _validate_with(mail_settings_from, mt, "mail")
             errors.extend(errs)
     if "reports" in raw:
         rt = c.table(raw.get("reports"), "reports")
         if rt is not None:
-            reports, errs, _ = _optional_call("alerts.report", "report_settings_from", rt, "reports")
+            from alerts.report import report_settings_from
+
+            reports, errs = _validate_with(report_settings_from, rt, "reports")
             errors.extend(errs)
 
     mail = _resolve_fields(mail, base_dir, ("password_file", "save_dir"))
@@ -506,16 +500,20 @@ def _station(c: _Checker, raw: Any, kp: str, base_dir: Path) -> StationConfig | 
     qc = None
     qt = c.table(qc_raw, f"{kp}.qc")
     if qt is not None:
-        qc, errs, _ = _optional_call("monitor.qc", "qc_settings_from", qt, f"{kp}.qc")
+        from monitor.qc import qc_settings_from
+
+        qc, errs = _validate_with(qc_settings_from, qt, f"{kp}.qc")
         errors.extend(errs)
     rules_raw = t.get("rules", [])
     rules: Any = ()
     if not isinstance(rules_raw, list):
         errors.append(f"{kp}.rules: expected an array of tables ([[stations.rules]]), got {_show(rules_raw)}")
     else:
-        r, errs, present = _optional_call("alerts.rules", "rules_from_config", rules_raw, f"{kp}.rules", datums)
+        from alerts.rules import rules_from_config
+
+        r, errs = _validate_with(rules_from_config, rules_raw, f"{kp}.rules", datums)
         errors.extend(errs)
-        rules = r if present and r is not None else ()
+        rules = r if r is not None else ()
 
     if len(errors) > n0:
         return None
@@ -576,7 +574,9 @@ def _sensor(c: _Checker, raw: Any, kp: str, station: str, role: str) -> SensorCo
     if feed_raw is not None:
         ft = c.table(feed_raw, f"{kp}.feed")
         if ft is not None:
-            spec, errs, _ = _optional_call("monitor.feeds", "feed_from_config", ft, f"{kp}.feed")
+            from monitor.feeds import feed_from_config
+
+            spec, errs = _validate_with(feed_from_config, ft, f"{kp}.feed")
             errors.extend(errs)
     if len(errors) > n0:
         return None

@@ -1,7 +1,7 @@
 """The daemon: polls the feeds, stores what they give, and processes each station.
 
 apscheduler (3.x, BackgroundScheduler with one worker thread, so jobs never overlap)
-runs these jobs:
+runs these jobs, and an outbox thread of its own delivers the mail:
 
 - ``poll``: each feed's new lines are parsed and stored with the feed's checkpoint in one
   transaction (:func:`ingest_lines`);
@@ -11,8 +11,11 @@ runs these jobs:
   again from the earliest time stored. The rules get the new samples and the hour before
   them, the forecast dict, the feed's age and the equipment faults; sensor drift and clock
   offset, costly, are recomputed every ``daemon.diagnostics_minutes`` of data time. When
-  the rules queue messages the outbox is delivered at once;
-- ``outbox``: deliver queued email (retries and anything queued by other means);
+  the rules queue messages the outbox thread is woken at once;
+- the outbox thread (:class:`OutboxWorker`, its own SQLite connection): delivers queued
+  email when woken and every ``daemon.outbox_seconds`` (retries, anything queued by other
+  means). One round at a time, each send recorded before the next; an SMTP server that
+  does not answer holds up only this thread, never the processing;
 - ``reports``: daily reports, when the report writer is installed;
 - ``refit``: refit stations whose constants come from their own history.
 
@@ -22,12 +25,12 @@ store is refused by the store's lock.
 """
 from __future__ import annotations
 
-import importlib
 import logging
 import logging.handlers
 import math
 import os
 import signal
+import sqlite3
 import tempfile
 import threading
 import time
@@ -54,16 +57,6 @@ HISTORY_REFRESH = 6 * 3600  # [s, data time] how often the forecast's residual h
 # [s] samples before a window handed to the alert rules besides the new ones: messages show the
 # change over the last hour, taken from a sample up to 15 min either side of an hour back
 TREND_BACK = 75 * 60
-
-
-def _optional(module: str):
-    """A colleague's module if installed (None while it is not written yet)."""
-    try:
-        return importlib.import_module(module)
-    except ModuleNotFoundError as exc:
-        if exc.name and module.startswith(exc.name):
-            return None
-        raise
 
 
 # --------------------------------------------------------------------------- ingest
@@ -145,11 +138,14 @@ def load_model(store: Store | None, station: StationConfig) -> tuple[Any, str]:
 
 
 def refit_station(store: Store, station: StationConfig, now: float | None = None, use: bool | None = None,
-                  span_days: float | None = None, robust: bool = True) -> dict:
+                  span_days: float | None = None, robust: bool = True, infer: Any = None) -> dict:
     """Fit constants to a station's quality-controlled primary record and keep the fit.
 
     Samples flagged fail (4) or missing (9) never enter the fit (design rule). The fit is
     put in use when ``use`` (default: when the station's constants come from its history).
+    ``infer`` goes to :func:`predictor.harmonic_fit` (the daemon passes ``"auto"``: P1 from
+    K1, K2 from S2, NU2 from N2 by equilibrium ratios when the record is too short to
+    resolve them; Foreman 1977, sec. 2.3) and is recorded in the fit's metadata.
 
     Returns
     -------
@@ -175,8 +171,9 @@ def refit_station(store: Store, station: StationConfig, now: float | None = None
         raise UserError(f"station {station.id}: {have:.1f} days of usable history, "
                         f"stations[].fit_min_days = {station.fit_min_days:g} needed for a fit")
     try:
-        model = harmonic_fit(obs.index, obs["value"].to_numpy(), robust=robust,
-                             metadata={"station": station.id})
+        meta = {"station": station.id, "infer": infer if isinstance(infer, str) else
+                ("none" if not infer else "given")}
+        model = harmonic_fit(obs.index, obs["value"].to_numpy(), robust=robust, infer=infer, metadata=meta)
     except ValueError as exc:
         raise UserError(f"station {station.id}: fit failed: {exc}") from None
     md = model.metadata or {}
@@ -231,24 +228,33 @@ class Daemon:
         self.empty_polls = 0
         self.feeds_done_at: float | None = None
         self.until_exhausted = False
-        self.qc = _optional("monitor.qc")
+        from monitor import qc
+
+        self.qc = qc
         # The alert engine (with its templates) and the diagnostics (with scipy.stats) take
         # seconds to import on a loaded machine; a daemon without rules does without them.
-        has_rules = any(st.rules for st in cfg.stations)
-        self.diag = _optional("monitor.diagnostics") if has_rules else None
-        self.engine = _optional("alerts.engine") if has_rules else None
-        self.outbox = _optional("alerts.outbox") if cfg.mail is not None else None
-        self.rules_mod = _optional("alerts.rules") if has_rules else None
+        self.diag = self.engine = self.rules_mod = None
+        if any(st.rules for st in cfg.stations):
+            from alerts import engine, rules
+            from monitor import diagnostics
+
+            self.diag, self.engine, self.rules_mod = diagnostics, engine, rules
+        self.outbox = None
+        if cfg.mail is not None:
+            from alerts import outbox
+
+            self.outbox = outbox
+        self.outbox_worker: OutboxWorker | None = None
         self.stations = {st.id: self._station_runtime(st) for st in cfg.stations}
-        # Replay feeds run on the replayed clock: alert times, outbox back-off and expiry all
-        # follow the data's own time, so a replayed storm reads as it would have live.
+        # Replay feeds run the rules and the daily reports on the replayed clock, so a replayed
+        # storm reads as it would have live. Delivery does not: the outbox keeps the wall clock.
         self.replay_clock = bool(self.stations) and all(rt.replay_clock for rt in self.stations.values())
         self.data_now: float | None = None
 
     def _station_runtime(self, st: StationConfig) -> StationRuntime:
         model, source = load_model(self.store, st)
         view = None
-        if self.rules_mod is not None and hasattr(self.rules_mod, "StationView"):
+        if self.rules_mod is not None:
             view = self.rules_mod.StationView(id=st.id, name=st.name, tz=st.tz, datums=dict(st.datums),
                                                notes=st.note)
         kinds = [getattr(s.feed, "kind", None) for s in st.sensors.values() if s.feed is not None]
@@ -260,13 +266,12 @@ class Daemon:
     # ------------------------------------------------------------------ feeds
     def open_feeds(self) -> None:
         """Open every configured feed and restore it from its stored checkpoint."""
-        feeds_mod = _optional("monitor.feeds")
+        from monitor import feeds as feeds_mod
+
         for st in self.cfg.stations:
             for sensor in st.sensors.values():
                 if sensor.feed is None:
                     continue
-                if feeds_mod is None:
-                    raise UserError("feeds are configured but monitor.feeds is not installed")
                 feed = feeds_mod.open_feed(sensor.feed, sensor.feed_name)
                 feed.restore(self.store.checkpoint(sensor.feed_name))
                 self.feeds.append(FeedRuntime(sensor.feed_name, sensor, feed))
@@ -370,11 +375,10 @@ class Daemon:
 
         # 1. quality control (writes per-test flags and observations.flag)
         qc_results: dict = {}
-        if self.qc is not None and hasattr(self.qc, "run_station_qc"):
-            try:
-                qc_results = self.qc.run_station_qc(store, st, st.qc, start_t, end_t, model, now=now) or {}
-            except Exception:
-                log.exception("station %s: quality control failed for this window", st.id)
+        try:
+            qc_results = self.qc.run_station_qc(store, st, st.qc, start_t, end_t, model, now=now) or {}
+        except Exception:
+            log.exception("station %s: quality control failed for this window", st.id)
 
         # 2. residual, smoothed residual, inverse barometer
         rs = self.cfg.residual
@@ -417,7 +421,7 @@ class Daemon:
                 ctx = self._alert_context(rt, context, qc_results, now, end_t)
             else:
                 ctx = None
-                kinds = getattr(self.rules_mod, "SAMPLE_KINDS", ())
+                kinds = self.rules_mod.SAMPLE_KINDS
                 rules = [r for r in rules if r.watch in kinds]
             samples = full.loc[full.index >= pd.Timestamp(start_t - TREND_BACK, unit="s", tz="UTC"),
                                ["observed", "predicted", "residual", "smoothed", "flag"]]
@@ -427,7 +431,7 @@ class Daemon:
             except Exception:
                 log.exception("station %s: alert rules failed for this window", st.id)
             if events:
-                self.deliver()  # at once, not at the outbox job's next turn
+                self.wake_outbox()  # at once, not at the outbox's next turn, and off this thread
         return new
 
     def _ensure_extremes(self, rt: StationRuntime, start_t: float, end_t: float) -> None:
@@ -461,14 +465,11 @@ class Daemon:
                        end_t: int | None = None):
         """The engine's context: the forecast dict as the residual module made it, the feed's
         age, and the equipment faults (silent, stuck, drifting, clock off)."""
-        ctx_cls = getattr(self.engine, "AlertContext", None)
-        if ctx_cls is None:
-            return None
         st = rt.cfg
         last = {r: self.store.last_time(st.id, r) for r in st.sensors}
         age = None if last.get("primary") is None else max(0.0, now - last["primary"])
         faults: list = []
-        if self.diag is not None and hasattr(self.diag, "equipment_faults"):
+        if self.diag is not None:
             try:
                 flat = {}
                 for sn, part in (qc_results or {}).items():
@@ -478,7 +479,7 @@ class Daemon:
             except Exception:
                 log.exception("station %s: equipment fault check failed", st.id)
             faults += self._diagnostic_faults(rt, now, end_t)
-        return ctx_cls(next_high_water=fc, feed_age=age, faults=faults)
+        return self.engine.AlertContext(next_high_water=fc, feed_age=age, faults=faults)
 
     def _diagnostic_faults(self, rt: StationRuntime, now: float, end_t: int | None) -> list[dict]:
         """Sensor drift (primary against backup, over ``qc.drift_window``) and clock offset
@@ -506,8 +507,6 @@ class Daemon:
     def _run_diagnostics(self, rt: StationRuntime, end_t: int) -> dict:
         st, store = rt.cfg, self.store
         out: dict = {}
-        if not (hasattr(self.diag, "sensor_drift") and hasattr(self.diag, "clock_offset")):
-            return out
         usable = lambda o: o.loc[~o["flag"].isin((4, 9)), "value"]  # noqa: E731  fail/missing never count
         window = getattr(st.qc, "drift_window", 30 * 86400.0)
         try:
@@ -545,7 +544,7 @@ class Daemon:
 
     def refit(self, rt: StationRuntime, now: float | None = None) -> None:
         try:
-            fit = refit_station(self.store, rt.cfg, now=now, use=True)
+            refit_station(self.store, rt.cfg, now=now, use=True, infer="auto")
         except UserError as exc:
             log.warning("%s", exc)
             return
@@ -577,25 +576,36 @@ class Daemon:
         except Exception:  # no outbox table yet: nothing queued
             return 0
 
-    def deliver(self) -> None:
-        if self.cfg.mail is None or self.outbox is None:
+    def deliver(self, db=None) -> None:
+        """One delivery round on the wall clock (never the replayed one: delivery is real).
+
+        ``db`` is the caller's connection (the outbox thread has its own); default the store's,
+        for callers on the processing thread."""
+        if self.outbox is None:
             return
         try:
-            now = self.data_now if (self.replay_clock and self.data_now is not None) else None
-            summary = self.outbox.deliver_due(self.store.db, self.cfg.mail, now)
+            summary = self.outbox.deliver_due(self.store.db if db is None else db, self.cfg.mail)
             log.debug("outbox: %s", summary)
         except Exception:
             log.exception("outbox delivery failed; will retry")
 
+    def wake_outbox(self) -> None:
+        """Ask the outbox thread for a round now; without one running, deliver here."""
+        if self.outbox_worker is not None and self.outbox_worker.is_alive():
+            self.outbox_worker.wake.set()
+        else:
+            self.deliver()
+
     def reports(self) -> None:
-        """Write due daily reports (monitor.reporting), on the replayed clock for replay feeds."""
-        mod = _optional("monitor.reporting")
-        fn = getattr(mod, "write_due_reports", None) if mod is not None else None
-        if fn is None or self.cfg.reports is None:
+        """Write due daily reports, on the replayed clock for replay feeds (which day is due
+        follows the data; a report email is still queued on the wall clock)."""
+        if self.cfg.reports is None:
             return
+        from monitor.reporting import write_due_reports
+
         now = self.data_now if (self.replay_clock and self.data_now is not None) else None
         try:
-            fn(self.cfg, self.store, now)
+            write_due_reports(self.cfg, self.store, now)
         except Exception:
             log.exception("daily reports failed; will retry")
 
@@ -608,7 +618,7 @@ class Daemon:
         if self.until_exhausted and n == 0 and self.feeds_exhausted():
             if self.feeds_done_at is None:
                 self.feeds_done_at = time.monotonic()
-                self.deliver()
+                self.wake_outbox()
             pending = self.outbox_pending()
             if pending == 0 or time.monotonic() - self.feeds_done_at > OUTBOX_DRAIN_WAIT:
                 self.reports()
@@ -632,7 +642,8 @@ class Daemon:
                                     timezone="UTC")
         sched.add_job(self.job_poll, "interval", seconds=d.poll_seconds, id="poll", next_run_time=_now_dt())
         sched.add_job(self.job_process, "interval", seconds=d.process_seconds, id="process")
-        sched.add_job(self.deliver, "interval", seconds=d.outbox_seconds, id="outbox")
+        if self.outbox is not None:
+            self.outbox_worker = OutboxWorker(self, d.outbox_seconds)
         # on the replayed clock a day passes in minutes, so reports are looked at more often
         sched.add_job(self.reports, "interval", seconds=max(2 * d.process_seconds, 5) if self.replay_clock else 600,
                       id="reports")
@@ -643,6 +654,8 @@ class Daemon:
             self.stop.set()
 
         old = {s: signal.signal(s, on_signal) for s in (signal.SIGTERM, signal.SIGINT)}
+        if self.outbox_worker is not None:
+            self.outbox_worker.start()
         sched.start()
         log.info("quaywatch daemon running (pid %d, store %s, %d feed(s), %d station(s))",
                  os.getpid(), self.store.path, len(self.feeds), len(self.stations))
@@ -651,10 +664,53 @@ class Daemon:
                 self.stop.wait(0.2)
         finally:
             sched.shutdown(wait=True)  # lets the job in hand finish its batch
+            if self.outbox_worker is not None:
+                # a round in hand records each send before the next; one stuck on a server
+                # that does not answer is left (its claim lapses and a restart retries it)
+                self.outbox_worker.halt(timeout=5.0)
             for s, h in old.items():
                 signal.signal(s, h)
         log.info("quaywatch daemon stopped")
         return 0
+
+
+class OutboxWorker(threading.Thread):
+    """Delivers the outbox on its own thread and SQLite connection, so a slow or unreachable
+    SMTP server never holds up polling and processing.
+
+    A round runs when :attr:`wake` is set (new messages) or every ``interval`` seconds
+    (retries); one round at a time, so two deliveries never race. A wake-up during a round
+    brings another round straight after it.
+    """
+
+    def __init__(self, daemon: "Daemon", interval: float):
+        super().__init__(name="quaywatch-outbox", daemon=True)
+        self.owner = daemon
+        self.interval = float(interval)
+        self.wake = threading.Event()
+        self._halt = threading.Event()
+
+    def run(self) -> None:
+        import sqlite_utils
+
+        conn = sqlite3.connect(str(self.owner.store.path), isolation_level=None, timeout=30.0)
+        try:
+            conn.execute("PRAGMA busy_timeout = 30000")
+            db = sqlite_utils.Database(conn)
+            while not self._halt.is_set():
+                self.wake.wait(self.interval)
+                self.wake.clear()
+                if self._halt.is_set():
+                    break
+                self.owner.deliver(db)
+        finally:
+            conn.close()
+
+    def halt(self, timeout: float | None = None) -> None:
+        """Stop after the round in hand (waits up to ``timeout`` seconds for it)."""
+        self._halt.set()
+        self.wake.set()
+        self.join(timeout)
 
 
 def _now_dt():
@@ -665,6 +721,14 @@ def _now_dt():
 
 # --------------------------------------------------------------------------- logging and entry
 
+class _SkippedRunFilter(logging.Filter):
+    """Drops apscheduler's warning that a run was skipped because the previous one is still
+    going: with max_instances=1 that is the intended behaviour during a long backfill."""
+
+    def filter(self, record: logging.LogRecord) -> bool:
+        return "maximum number of running instances" not in record.getMessage()
+
+
 def setup_logging(cfg: Config, verbose: int = 0) -> None:
     """Log to stderr (set up by the command line) and, if configured, a rotating file."""
     root = logging.getLogger()
@@ -672,8 +736,15 @@ def setup_logging(cfg: Config, verbose: int = 0) -> None:
     if verbose:
         level = min(level, logging.DEBUG if verbose > 1 else logging.INFO)
     root.setLevel(level)
-    # the scheduler's own per-job lines drown the monitor's; show them only with -vv
-    logging.getLogger("apscheduler").setLevel(logging.DEBUG if verbose > 1 else logging.ERROR)
+    # the scheduler logs every job run at INFO, drowning the monitor's lines: its warnings
+    # and errors only, unless -vv
+    aps = logging.getLogger("apscheduler")
+    aps.setLevel(logging.DEBUG if verbose > 1 else logging.WARNING)
+    sched_log = logging.getLogger("apscheduler.scheduler")
+    for f in [f for f in sched_log.filters if isinstance(f, _SkippedRunFilter)]:
+        sched_log.removeFilter(f)
+    if verbose < 2:
+        sched_log.addFilter(_SkippedRunFilter())
     fmt = logging.Formatter("%(asctime)s %(levelname)s %(name)s: %(message)s")
     if not root.handlers:
         h = logging.StreamHandler()

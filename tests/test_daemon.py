@@ -272,3 +272,42 @@ def test_primary_backup_drift_reaches_the_rules_as_an_equipment_fault(tmp_path):
     (f,) = [f for f in faults if f["kind"] == "sensor_drift"]
     # primary - backup grows by 20 mm/day (the injected drift); Theil-Sen on hourly medians
     assert f["value"] == pytest.approx(20.0, abs=1.0)  # mm/day
+
+
+def test_daemon_refit_infers_unresolved_neighbours_and_records_it(daemon):
+    # 40 days resolve M2, S2, N2 and K1 but not K2 from S2 (182.6 days, Rayleigh criterion,
+    # Foreman 1977): with infer="auto" K2 comes inferred from S2 and the fit says so.
+    import pandas as pd
+
+    from monitor.daemon import ingest_lines
+
+    rt = daemon.stations["testport"]
+    t = T0 + 1800 * np.arange(40 * 48)
+    h = (t - T0) / 3600.0
+    lvl = 2.0 + 1.0 * np.cos(np.radians(28.9841042 * h)) + 0.3 * np.cos(np.radians(30.0 * h - 20)) \
+        + 0.08 * np.cos(np.radians(30.0821373 * h - 20))
+    ingest_lines(daemon.store, rt.cfg.sensors["primary"],
+                 [f"{pd.Timestamp(ti, unit='s', tz='UTC'):%Y-%m-%dT%H:%M:%SZ},{v:.3f}" for ti, v in zip(t, lvl)],
+                 received=float(t[-1]))
+    daemon.refit(rt, now=float(t[-1]))
+    md = rt.model.metadata
+    assert md["infer"] == "auto"
+    assert any(d["name"] == "K2" and d["from"] == "S2" for d in md.get("inferred", []))
+
+
+def test_scheduler_job_lines_stay_out_of_the_log_unless_very_verbose(daemon):
+    import logging
+
+    from monitor.daemon import setup_logging
+
+    root = logging.getLogger()
+    level, handlers = root.level, list(root.handlers)
+    try:
+        setup_logging(daemon.cfg, verbose=1)
+        assert logging.getLogger("apscheduler").getEffectiveLevel() == logging.WARNING
+        setup_logging(daemon.cfg, verbose=2)
+        assert logging.getLogger("apscheduler").getEffectiveLevel() == logging.DEBUG
+    finally:
+        logging.getLogger("apscheduler").setLevel(logging.NOTSET)
+        root.setLevel(level)
+        root.handlers[:] = handlers

@@ -86,7 +86,6 @@ port = {smtp_port}
 security = "none"
 retry_first = "1s"
 retry_max = "2s"
-give_up_after = "1000d"
 [[stations]]
 id = "testport"
 name = "Test Port (invented)"
@@ -220,3 +219,73 @@ def test_one_alert_no_duplicate_after_sigkill_one_all_clear_and_no_mail_for_a_sp
     assert len(subjects) == 2, subjects
     assert "raised" in subjects[0] and "all clear" in subjects[1]
     assert not any("jump" in s for s in subjects)
+
+
+# --------------------------------------------------------------------------- delivery off the processing path
+
+def _status(db: Path) -> str | None:
+    con = sqlite3.connect(db, timeout=10)
+    try:
+        row = con.execute("SELECT status FROM outbox ORDER BY id LIMIT 1").fetchone()
+    except sqlite3.OperationalError:
+        return None
+    finally:
+        con.close()
+    return None if row is None else row[0]
+
+
+def test_smtp_server_that_never_answers_does_not_hold_up_processing(tmp_path, monkeypatch):
+    """In process: the daemon runs in this (main) thread; a helper appends lines while the
+    outbox thread is stuck on a server that accepts the connection and never greets."""
+    import threading
+
+    from monitor.config import load_config
+    from monitor.daemon import Daemon
+    from monitor.store import Store
+
+    silent = socket.socket()
+    silent.bind(("127.0.0.1", 0))
+    silent.listen(8)  # the kernel completes the handshake; nobody ever reads or answers
+    cfg_path = _config(tmp_path, silent.getsockname()[1])
+    text = cfg_path.read_text().replace('security = "none"', 'security = "none"\ntimeout = "120s"')
+    # one rule that opens on the first sample, so a message is queued straight away
+    text = text.replace(f"at = {STEP} }}", "at = -5.0 }")
+    cfg_path.write_text(text)
+    monkeypatch.chdir(tmp_path)  # the feed's path is relative, as the subprocess tests run it
+    cfg = load_config(cfg_path)
+    model = TideModel.load(tmp_path / "constants.toml")
+    db, feed = tmp_path / "q.db", tmp_path / "gauge.csv"
+    first, later = np.arange(0, 30), np.arange(30, 60)
+    feed.write_text("time,level\n" + _lines(model, first, np.zeros(len(first))))
+    store = Store.open(cfg.store_path, lock=True)
+    daemon = Daemon(cfg, store)
+    daemon.open_feeds()
+    seen: dict = {}
+
+    def drive():
+        try:
+            end = time.monotonic() + START_DEADLINE
+            while _status(db) != "sending" and time.monotonic() < end:
+                time.sleep(0.1)
+            seen["stuck"] = _status(db)
+            _append(feed, _lines(model, later, np.zeros(len(later))))
+            end = time.monotonic() + STEP_DEADLINE
+            while _processed(db) < T0 + 60 * later[-1] and time.monotonic() < end:
+                time.sleep(0.1)
+            seen["processed"] = _processed(db)
+            seen["status_then"] = _status(db)
+        finally:
+            silent.close()  # releases the stuck delivery
+            daemon.stop.set()
+
+    helper = threading.Thread(target=drive)
+    helper.start()
+    try:
+        daemon.run()
+    finally:
+        helper.join()
+        daemon.close_feeds()
+        store.close()
+    assert seen["stuck"] == "sending"                 # the delivery was waiting on the server
+    assert seen["processed"] >= T0 + 60 * later[-1]   # yet the new lines were processed
+    assert seen["status_then"] == "sending"           # while it was still waiting
