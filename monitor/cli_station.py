@@ -74,6 +74,10 @@ def register(subparsers) -> None:
                    help="put the new fit in use (default: only for stations with constants = \"history\")")
     p.add_argument("--keep", dest="use", action="store_false", help="keep the fit for comparison only")
     p.add_argument("--list", action="store_true", help="list the kept fits and stop")
+    p.add_argument("--infer", choices=("none", "auto", "equilibrium"), default="auto",
+                   help="constituents the record cannot resolve, taken from a resolved neighbour at "
+                   "equilibrium ratios: 'auto' P1, K2 and NU2 when needed (default, as the daemon's "
+                   "refit); 'none' fits only what the record resolves")
     p.set_defaults(func=store_errors(cmd_refit))
 
 
@@ -385,7 +389,8 @@ def cmd_refit(args: argparse.Namespace) -> int:
             old, old_source = None, "unreadable"
         if args.days is not None and not args.days > 0:
             raise UserError(f"--days {args.days:g}: expected a number of days above 0")
-        fit = refit_station(store, st, use=args.use, span_days=args.days)
+        fit = refit_station(store, st, use=args.use, span_days=args.days,
+                            infer=None if args.infer == "none" else args.infer)
     model = fit["model"]
     print(f"station {st.id}: fit #{fit['id']} of {fit['n']:,} samples, {_utc(fit['start'], '%Y-%m-%d')} to "
           f"{_utc(fit['end'], '%Y-%m-%d')} (UTC); rms {fit['rms']:.3f} m; variance explained "

@@ -138,12 +138,12 @@ def load_model(store: Store | None, station: StationConfig) -> tuple[Any, str]:
 
 
 def refit_station(store: Store, station: StationConfig, now: float | None = None, use: bool | None = None,
-                  span_days: float | None = None, robust: bool = True, infer: Any = None) -> dict:
+                  span_days: float | None = None, robust: bool = True, infer: Any = "auto") -> dict:
     """Fit constants to a station's quality-controlled primary record and keep the fit.
 
     Samples flagged fail (4) or missing (9) never enter the fit (design rule). The fit is
     put in use when ``use`` (default: when the station's constants come from its history).
-    ``infer`` goes to :func:`predictor.harmonic_fit` (the daemon passes ``"auto"``: P1 from
+    ``infer`` goes to :func:`predictor.harmonic_fit` (default ``"auto"``: P1 from
     K1, K2 from S2, NU2 from N2 by equilibrium ratios when the record is too short to
     resolve them; Foreman 1977, sec. 2.3) and is recorded in the fit's metadata.
 
@@ -544,7 +544,7 @@ class Daemon:
 
     def refit(self, rt: StationRuntime, now: float | None = None) -> None:
         try:
-            refit_station(self.store, rt.cfg, now=now, use=True, infer="auto")
+            refit_station(self.store, rt.cfg, now=now, use=True)
         except UserError as exc:
             log.warning("%s", exc)
             return
