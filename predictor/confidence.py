@@ -1,8 +1,8 @@
 """Confidence intervals of harmonic constants from the residual's spectrum (coloured noise).
 
 The residual of a tidal fit is not white: surges and seiches put far more power at low
-frequencies and near the tidal bands than a white-noise estimate assumes. Following
-Pawlowicz, Beardsley & Lentz (2002), the residual is put on a uniform grid, its one-sided
+frequencies and near the tidal bands than a white-noise estimate assumes. So the residual
+is put on a uniform grid, its one-sided
 power spectral density is averaged over a band around each tidal species, and the cosine
 and sine coefficients of a constituent in band ``b`` are each given a variance of about
 ``S_b / T`` (``S_b`` the band's mean density, ``T`` the record length). The idea of treating
@@ -11,10 +11,10 @@ Cartwright (1966).
 
 References
 ----------
-Pawlowicz, R., Beardsley, B., Lentz, S. (2002). Classical tidal harmonic analysis including
-error estimates in MATLAB using T_TIDE. Computers & Geosciences 28, 929-937.
 Munk, W. H., Cartwright, D. E. (1966). Tidal spectroscopy and prediction. Phil. Trans. R.
 Soc. A 259, 533-581.
+Pugh, D., Woodworth, P. (2014). Sea-Level Science. Cambridge University Press, ch. 4
+(harmonic analysis and the non-tidal residual as noise in each tidal band).
 """
 from __future__ import annotations
 
@@ -121,7 +121,7 @@ def species_band(species: int) -> tuple[float, float]:
 
     References
     ----------
-    Pawlowicz, Beardsley & Lentz (2002), section 3 (band-averaged residual spectra).
+    Munk & Cartwright (1966) (the residual as band-limited noise around each species).
     """
     species = int(species)
     if species <= 0:
@@ -180,7 +180,7 @@ def residual_band_spectrum(t_seconds, residual, step_seconds: float | None = Non
 
     References
     ----------
-    Pawlowicz, Beardsley & Lentz (2002); Munk & Cartwright (1966).
+    Munk & Cartwright (1966); Pugh & Woodworth (2014), ch. 4.
     """
     grid, filled, step = _grid(t_seconds, residual, step_seconds)
     step_h = step / 3600.0
@@ -246,7 +246,7 @@ def coefficient_variance(spectrum: BandSpectrum, speeds_deg_per_hour, inverse_di
 
     References
     ----------
-    Pawlowicz, Beardsley & Lentz (2002), coloured-noise case; for N evenly spaced samples
+    Munk & Cartwright (1966), coloured-noise case; for N evenly spaced samples
     ``(X'X)^-1`` has diagonal 2/N and both forms agree.
     """
     speeds = np.atleast_1d(np.asarray(speeds_deg_per_hour, dtype=float))
@@ -294,11 +294,12 @@ def amplitude_phase_intervals(a, b, var_a, var_b=None, *, confidence: float = 0.
     snr : ndarray
         Signal-to-noise ratio ``H^2 / var`` with ``var`` the mean of ``var_a`` and
         ``var_b`` [1]; below about 2 the constituent is indistinguishable from noise
-        (Pawlowicz, Beardsley & Lentz 2002 use the same cut).
+        (common practice, no source).
 
     References
     ----------
-    Pawlowicz, Beardsley & Lentz (2002).
+    Linearised propagation of the coefficient variances to amplitude and phase (first-order
+    error propagation; Pugh & Woodworth 2014, ch. 4).
     """
     if not 0.0 < confidence < 1.0:
         raise ValueError(f"confidence must be between 0 and 1, got {confidence}")

@@ -11,8 +11,8 @@ References
 Foreman, M. G. G. (1977, revised 2004). Manual for Tidal Heights Analysis and Prediction.
 Pacific Marine Science Report 77-10 (least squares with gaps; Rayleigh selection).
 Godin, G. (1972). The Analysis of Tides. University of Toronto Press (Rayleigh criterion).
-Pawlowicz, R., Beardsley, B., Lentz, S. (2002). Computers & Geosciences 28 (coloured-noise
-confidence intervals; see :mod:`predictor.confidence`).
+Munk, W. H., Cartwright, D. E. (1966). Phil. Trans. R. Soc. A 259 (the residual as coloured
+noise in each tidal band; see :mod:`predictor.confidence`).
 Leffler, K. E., Jay, D. A. (2009). Enhancing tidal harmonic analysis: robust (hybrid L1/L2)
 solutions. Continental Shelf Research 29, 78-88 (IRLS with Cauchy weights).
 Cartwright, D. E., Tayler, R. J. (1971); Cartwright, D. E., Edden, A. C. (1973) (equilibrium
@@ -627,7 +627,7 @@ def harmonic_fit(times, levels, constituents="auto", rayleigh: float = 1.0, tren
 
     References
     ----------
-    Foreman (1977); Godin (1972); Pawlowicz, Beardsley & Lentz (2002); Leffler & Jay (2009).
+    Foreman (1977); Godin (1972); Munk & Cartwright (1966); Leffler & Jay (2009).
     """
     from predictor.model import TideModel
 

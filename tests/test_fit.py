@@ -201,7 +201,7 @@ def noisy_year(year_with_gaps):
 
 
 def test_constants_fall_within_their_own_95_percent_intervals(noisy_year):
-    # Coloured-noise intervals (Pawlowicz, Beardsley & Lentz 2002): about 95 % coverage
+    # Coloured-noise intervals (Munk & Cartwright 1966; band noise as in predictor.confidence): about 95 % coverage
     # expected; we ask for at least 85 % of the amplitude and phase checks together.
     t, y = noisy_year
     got = by_name(harmonic_fit(t, y, confidence=0.95))
@@ -245,7 +245,7 @@ def test_ill_conditioned_fit_warns_and_still_returns():
 
 def test_white_noise_coefficient_variance_is_two_sigma_squared_over_n():
     # For white noise of variance s^2, least-squares cosine/sine coefficients from N samples
-    # have variance 2 s^2 / N (classical regression result; Pawlowicz et al. 2002, white case).
+    # have variance 2 s^2 / N (classical least-squares regression result, white case).
     rng = np.random.default_rng(1)
     # four years, so that each band averages some 500 spectral lines (about 6 % scatter)
     t = hourly(4 * 365)
@@ -306,7 +306,7 @@ def test_linear_trend_is_recovered_and_predicted():
 
 
 def test_interval_coverage_over_seeds_is_near_nominal():
-    # Coloured-noise intervals (Pawlowicz, Beardsley & Lentz 2002) should hold the true
+    # Coloured-noise intervals (Munk & Cartwright 1966; band noise as in predictor.confidence) should hold the true
     # constants about 95 % of the time. A year with 5 % dropouts and a 22-day outage mid-record,
     # red AR(1) noise; 12 seeds x 12 constituents x (amplitude, phase) = 288 checks, whose
     # binomial standard error at 95 % is 1.3 %: we ask for at least 92 %.
