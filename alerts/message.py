@@ -215,7 +215,7 @@ def compose_alert(station: StationView, rule: Rule, event: Event, facts: dict | 
         subject = f"{SUBJECT_PREFIX} {sname}: {step.name} - new: {new} ({vtext})"
     elif event.kind == "cleared":
         headline = f"{sname}: all clear for {rule.id} (highest step was {step.name}) - {vtext}"
-        subject = f"{SUBJECT_PREFIX} {sname}: all clear ({step.name} over) - {vtext}"
+        subject = f"{SUBJECT_PREFIX} {sname}: all clear after {step.name} - {vtext}"
     else:
         raise ValueError(f"unknown event kind {event.kind!r}")
     local, utc = format_times(event.t, station.tz)

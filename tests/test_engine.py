@@ -68,7 +68,7 @@ def storm():
 def test_a_storm_sends_one_alert_one_escalation_one_all_clear(db):
     evaluate(db, STATION, rules(), frame(storm()), now=T0 + pd.Timedelta(hours=3))
     kinds = [(k, s.split(": ")[1].split(" -")[0]) for r, k, s in queued(db) if r == "duty@port.example"]
-    assert kinds == [("alert", "raised"), ("alert", "up to high"), ("all_clear", "all clear (high over)")]
+    assert kinds == [("alert", "raised"), ("alert", "up to high"), ("all_clear", "all clear after high")]
 
 
 def test_higher_step_recipients_hear_from_the_escalation_on(db):
