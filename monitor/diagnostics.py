@@ -37,7 +37,7 @@ import numpy as np
 import pandas as pd
 from scipy import signal, stats
 
-from monitor.qc import QcSettings, difference_at, seconds, utc_index
+from monitor.qc import USABLE_FLAGS, QcSettings, difference_at, seconds, utc_index
 
 DAY = 86400.0
 MM = 1e-3
@@ -534,31 +534,98 @@ def _edge_kernel(w: int) -> np.ndarray:
     return 1.0 / w - xm * (x - xm) / np.sum((x - xm) ** 2)
 
 
-def datum_steps(series: pd.Series, *, window: float = 600.0, k: float = 6.0, min_step: float = 0.02,
-                gap_limit: float = 300.0) -> pd.DataFrame:
-    """Sudden steps in a residual (or a primary-backup difference).
+def usable_only(series: pd.Series, flags=None) -> pd.Series:
+    """The samples of ``series`` a diagnostic may use: flag 1, 2 or 3, never 4 or 9.
 
-    On a regular grid (the median step; short gaps interpolated, windows across
-    longer gaps skipped), a straight line is fitted on each side of every boundary
-    over ``window`` [s]; the jump ``D`` between the two lines' values at the boundary
-    is a step estimate that a smooth surge (a line locally) leaves near zero. Steps
-    are local maxima of ``|D|`` above ``max(k * sigma_D, min_step)`` [m], ``sigma_D``
-    the robust scale (1.4826 MAD) of ``D`` over the record, which is also the step's
-    standard error.
+    ``flags`` (aggregate QARTOD flags aligned with ``series``, as an array or a Series
+    reindexed to it; missing entries count as 9) may be None when the caller has
+    already kept only usable samples. NaN values are dropped too.
+    """
+    s = series
+    if flags is not None:
+        f = flags.reindex(series.index).fillna(9).to_numpy() if isinstance(flags, pd.Series) else np.asarray(flags)
+        if len(f) != len(series):
+            raise ValueError("flags must have one entry per sample")
+        s = series[np.isin(f, USABLE_FLAGS)]
+    return s.dropna()
+
+
+def _long_step(t: np.ndarray, v: np.ndarray, tb: float, persist: float, iterations: int = 6):
+    """Size and standard error [m] of a step at ``tb`` that persists ``persist`` [s] each side.
+
+    Over ``tb +- persist`` the record is fitted with a cubic in time plus a step at
+    ``tb``: a smooth surge onset (any rise a cubic follows over the span) goes into the
+    polynomial, a level that moves and stays goes into the step. Iteratively
+    reweighted least squares with Cauchy weights on MAD-scaled residuals keeps a short
+    spike, a stuck spell or a clock slip from steering it. Returns (nan, nan) when
+    either side holds less than a third of the span's samples.
+    """
+    sel = (t >= tb - persist) & (t <= tb + persist)
+    tt, y = t[sel], v[sel]
+    after = tt >= tb
+    n_side = persist / max(float(np.median(np.diff(t))) if len(t) > 1 else 60.0, 1.0)
+    if min(after.sum(), (~after).sum()) < max(5, n_side / 3):
+        return np.nan, np.nan
+    x = (tt - tb) / persist
+    X = np.column_stack([np.ones_like(x), x, x ** 2, x ** 3, after.astype(float)])
+    w = np.ones_like(y)
+    beta = np.zeros(X.shape[1])
+    for _ in range(iterations):
+        sw = np.sqrt(w)
+        beta, *_ = np.linalg.lstsq(X * sw[:, None], y * sw, rcond=None)
+        r = y - X @ beta
+        scale = 1.4826 * float(np.median(np.abs(r - np.median(r)))) or 1e-6
+        w = 1.0 / (1.0 + (r / (2.385 * scale)) ** 2)
+    sw = np.sqrt(w)
+    r = (y - X @ beta) * sw
+    s2 = float(r @ r) / max(len(y) - X.shape[1], 1)
+    cov = s2 * np.linalg.pinv((X * sw[:, None]).T @ (X * sw[:, None]))
+    return float(beta[-1]), math.sqrt(max(float(cov[-1, -1]), 0.0))
+
+
+def datum_steps(series: pd.Series, *, window: float = 600.0, k: float = 6.0, min_step: float = 0.02,
+                gap_limit: float = 300.0, flags=None, persist: float | None = 3 * 3600.0,
+                agree: float = 0.5) -> pd.DataFrame:
+    """Sudden steps in a residual (or a primary-backup difference) that persist.
+
+    Candidates: on a regular grid (the median step; short gaps interpolated, windows
+    across longer gaps skipped), a straight line is fitted on each side of every
+    boundary over ``window`` [s]; the jump ``D`` between the two lines' values at the
+    boundary is a step estimate that a smooth surge (a line locally) leaves near zero.
+    Candidates are local maxima of ``|D|`` above ``max(k * sigma_D, min_step)`` [m],
+    ``sigma_D`` the robust scale (1.4826 MAD) of ``D`` over the record, which is also
+    the step's standard error.
+
+    Persistence: a datum step moves the level and the level stays moved, where a spike,
+    a stuck spell or the edge of a surge does not. Each candidate is re-measured over
+    ``persist`` [s] either side by a robust fit of a cubic plus a step (see
+    :func:`_long_step`); it is kept only when that step has the candidate's sign, is at
+    least ``agree`` times its size and above ``min_step``. ``persist=None`` skips the
+    check (a primary-backup difference, where sea and weather cancel, may use it too).
+
+    Parameters
+    ----------
+    series : Series
+        Residual or difference [m] on a UTC DatetimeIndex.
+    flags : array or Series, optional
+        Aggregate QARTOD flags of the samples; only usable ones (1, 2, 3) are used.
+        Without it the caller must pass usable samples only.
 
     Returns
     -------
     DataFrame with ``time`` (UTC, first sample after the step), ``step_mm`` and
-    ``se_mm``, in time order.
+    ``se_mm``, in time order, and ``persistent_mm`` (the step over ``persist``).
 
     References
     ----------
     Two-sided local linear fits for change-point detection (e.g. Pugh & Woodworth 2014,
-    ch. 2 on datum checks); 1.4826 MAD scale (Hampel 1974). Thresholds: common
-    practice, no source.
+    ch. 2 on datum checks); 1.4826 MAD scale (Hampel 1974); Cauchy-weighted iteratively
+    reweighted least squares (Holland & Welsch 1977). Thresholds, window lengths and the
+    persistence rule: common practice, no source.
     """
-    s = series.dropna()
-    empty = pd.DataFrame(columns=["time", "step_mm", "se_mm"])
+    cols = ["time", "step_mm", "se_mm", "persistent_mm"]
+    s = usable_only(series, flags)
+    empty = pd.DataFrame(columns=cols)
     if len(s) < 10:
         return empty
     t = seconds(s.index)
@@ -566,8 +633,9 @@ def datum_steps(series: pd.Series, *, window: float = 600.0, k: float = 6.0, min
     w = max(3, int(round(window / dt)))
     if len(s) < 2 * w + 2:
         return empty
+    vals = s.to_numpy(dtype=float)
     grid = np.arange(t[0], t[-1] + dt / 2, dt)
-    v = np.interp(grid, t, s.to_numpy(dtype=float))
+    v = np.interp(grid, t, vals)
     # Grid points farther than gap_limit from any sample are unknown.
     j = np.clip(np.searchsorted(t, grid), 1, len(t) - 1)
     dist = np.minimum(np.abs(t[j] - grid), np.abs(t[j - 1] - grid))
@@ -601,8 +669,81 @@ def datum_steps(series: pd.Series, *, window: float = 600.0, k: float = 6.0, min
             when = grid[i[c]]
             # First real sample at or after the boundary.
             tj = t[np.searchsorted(t, when - dt / 2)]
-            rows.append({"time": _iso(tj), "step_mm": D[c] / MM, "se_mm": sigma / MM})
-    return pd.DataFrame(rows, columns=["time", "step_mm", "se_mm"]) if rows else empty
+            long = np.nan
+            if persist:
+                long, _ = _long_step(t, vals, tj - dt / 2, persist)
+                if not (np.isfinite(long) and np.sign(long) == np.sign(D[c])
+                        and abs(long) >= max(agree * abs(D[c]), min_step)):
+                    continue
+            rows.append({"time": _iso(tj), "step_mm": D[c] / MM, "se_mm": sigma / MM, "persistent_mm": long / MM})
+    return pd.DataFrame(rows, columns=cols) if rows else empty
+
+
+def sensor_steps(primary: pd.Series, backup: pd.Series, model: Any = None, *, gap_limit: float = 300.0,
+                 min_step: float = 0.02, persist: float = 3 * 3600.0, primary_flags=None, backup_flags=None,
+                 **kw) -> pd.DataFrame:
+    """Datum steps of two co-located sensors, found in their difference and attributed.
+
+    The difference ``primary - backup`` (backup interpolated to the primary's times)
+    cancels the sea and the weather, so a surge cannot pass for a step there; steps are
+    found in it with :func:`datum_steps` (persistence included). Each step is then
+    measured across the same time in each sensor's own residual against ``model`` (or
+    in its level when no model is given) with the robust persistent-step fit: the
+    sensor whose record moved by the difference's step, while the other did not, is
+    the one that stepped.
+
+    Parameters
+    ----------
+    primary, backup : Series
+        Levels [m] on UTC DatetimeIndexes (usable samples, or give the flags).
+    model : TideModel or object with ``predict(times)``, optional
+        Reference tide [m] for the per-sensor residuals.
+    primary_flags, backup_flags : array or Series, optional
+        Aggregate QARTOD flags; only usable samples (1, 2, 3) are used.
+
+    Returns
+    -------
+    DataFrame
+        ``time`` (UTC), ``difference_mm`` (step of primary - backup) and ``se_mm``,
+        ``sensor`` (``"primary"``, ``"backup"`` or ``"undetermined"``), ``step_mm`` (the
+        step of that sensor's own level; the difference's step when undetermined),
+        ``primary_mm`` and ``backup_mm`` (each sensor's own step across the time).
+
+    References
+    ----------
+    IOC (1985-2016), Manual on Sea Level Measurement and Interpretation, Vol. IV (a
+    second sensor to check the first); attribution by each sensor's own step: common
+    practice, no source.
+    """
+    cols = ["time", "difference_mm", "se_mm", "sensor", "step_mm", "primary_mm", "backup_mm"]
+    p, b = usable_only(primary, primary_flags), usable_only(backup, backup_flags)
+    if len(p) < 10 or len(b) < 10:
+        return pd.DataFrame(columns=cols)
+    diff = pd.Series(difference_at(p, b, gap_limit), index=utc_index(p.index))
+    steps = datum_steps(diff, gap_limit=gap_limit, min_step=min_step, persist=persist, **kw)
+    rows = []
+
+    def own(series: pd.Series, tb: float) -> float:
+        tt = seconds(series.index)
+        vv = series.to_numpy(dtype=float)
+        if model is not None:
+            vv = vv - _predict(model, utc_index(series.index))
+        return _long_step(tt, vv, tb, persist)[0]
+
+    for r in steps.itertuples():
+        tb = float(r.time.timestamp()) - 1.0
+        sp, sb = own(p, tb) / MM, own(b, tb) / MM
+        d = float(r.step_mm)
+        sensor, size = "undetermined", d
+        # The sensor that stepped moved by about the whole difference; the other stayed.
+        if np.isfinite(sp) and np.isfinite(sb):
+            if abs(sp - d) < abs(sb + d) and abs(sb) < 0.5 * abs(d) and abs(sp) > 0.5 * abs(d):
+                sensor, size = "primary", sp
+            elif abs(sb + d) < abs(sp - d) and abs(sp) < 0.5 * abs(d) and abs(sb) > 0.5 * abs(d):
+                sensor, size = "backup", sb
+        rows.append({"time": r.time, "difference_mm": d, "se_mm": float(r.se_mm), "sensor": sensor,
+                     "step_mm": size, "primary_mm": sp, "backup_mm": sb})
+    return pd.DataFrame(rows, columns=cols)
 
 
 # --------------------------------------------------------------------------- constants

@@ -302,3 +302,70 @@ def test_drift_within_its_uncertainty_of_the_limit_is_not_a_fault():
     faults = dg.equipment_faults(0, QcSettings(), drift={"drift_mm_per_day": 1.2, "drift_low": 0.6,
                                                          "drift_high": 1.8})
     assert faults == []
+
+
+# --------------------------------------------------------------------------- datum steps without false alarms
+
+def _ramp(idx, start_h: float, rise: float, hours: float) -> np.ndarray:
+    """A raised-cosine rise of ``rise`` [m] over ``hours``, from ``start_h`` hours into ``idx``; it stays."""
+    h = (idx - idx[0]).total_seconds().to_numpy() / hour
+    x = np.clip((h - start_h) / hours, 0.0, 1.0)
+    return rise * 0.5 * (1 - np.cos(np.pi * x))
+
+
+def test_storm_surge_onset_is_not_a_datum_step():
+    # A surge is weather, not a datum change: a smooth 1 m rise over 6 hours that stays
+    # (design notes: a surge is not a spike; persistence rule: common practice, no source).
+    level, pred = record(days=4, seed=90)
+    resid = level - pred + _ramp(level.index, 40, 1.0, 6)
+    assert dg.datum_steps(resid).empty
+
+
+def test_stuck_sensor_flagged_by_qc_is_not_a_datum_step():
+    # 70 minutes stuck at one value on a rising tide; flags from our own QC (flat line:
+    # suspect, then fail). The stuck spell must not pass for a step at either edge.
+    from monitor import qc
+
+    level, pred = record(days=4, seed=91)
+    at = 50 * 60
+    level.iloc[at:at + 70] = level.iloc[at]
+    flags = qc.run_tests(level, QcSettings(), predicted=pred)["flag"]
+    assert (flags.iloc[at + 60:at + 70] == qc.FAIL).all()
+    assert dg.datum_steps(level - pred, flags=flags).empty
+
+
+def test_stuck_sensor_flagged_fail_is_never_used():
+    level, pred = record(days=4, seed=92)
+    at = 50 * 60
+    level.iloc[at:at + 70] = level.iloc[at]
+    flags = np.ones(len(level), dtype=int)
+    flags[at:at + 70] = 4
+    assert dg.datum_steps(level - pred, flags=flags).empty
+
+
+def test_backup_step_found_in_the_difference_and_attributed_to_the_backup():
+    # Design notes: the difference of two co-located sensors cancels sea and weather.
+    # Injected: +40 mm in the backup only, during a 1 m surge, 2 mm sensor noise each.
+    primary, _ = record(days=4, seed=93, surge_height=1.0, surge_width_h=6.0)
+    rng = np.random.default_rng(94)
+    backup = primary + 0.015 + rng.normal(0, 2 * mm, len(primary))
+    at = 2 * 1440 + 200
+    backup.iloc[at:] += 0.040
+    steps = dg.sensor_steps(primary, backup, SynthModel())
+    assert len(steps) == 1
+    row = steps.iloc[0]
+    assert row["time"] == primary.index[at]
+    assert row["sensor"] == "backup"
+    assert row["step_mm"] == pytest.approx(40, abs=3 * row["se_mm"] + 5)
+    assert row["difference_mm"] == pytest.approx(-40, abs=3 * row["se_mm"])
+
+
+def test_primary_step_attributed_to_the_primary():
+    primary, _ = record(days=4, seed=95)
+    rng = np.random.default_rng(96)
+    backup = primary - 0.010 + rng.normal(0, 2 * mm, len(primary))
+    at = 2 * 1440
+    primary.iloc[at:] -= 0.050
+    (row,) = dg.sensor_steps(primary, backup, SynthModel()).to_dict("records")
+    assert row["sensor"] == "primary"
+    assert row["step_mm"] == pytest.approx(-50, abs=10)
