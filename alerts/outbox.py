@@ -30,6 +30,14 @@ Mail settings (a ``[mail]`` table)::
     reply_to      = "harbour-office@port.example"   # optional
     save_dir      = "mail-copies"          # optional: a copy of every sent message as .eml;
                                            # with no host, messages are only saved there
+    ca_file       = "/etc/quaywatch/smtp-ca.pem"   # optional: trust only the CA certificate(s)
+                                           # in this PEM file for the server; default: the
+                                           # system trust store
+
+The server's certificate and host name are always verified (starttls and tls); there is no
+setting that turns verification off. The password is read from the environment or its file
+at each connection, never stored in the settings, the outbox table or a log line, and is
+scrubbed from any error text before that is recorded.
 """
 from __future__ import annotations
 
@@ -228,6 +236,7 @@ class MailSettings:
     give_up_after: float = 2 * 86400.0
     reply_to: str | None = None
     save_dir: str | None = None
+    ca_file: str | None = None
 
     def password(self) -> str | None:
         """Read the password now, from the environment or the file (never stored)."""
@@ -274,7 +283,8 @@ def mail_settings_from(raw: Any, keypath: str) -> tuple[MailSettings | None, lis
         return None, [f"{keypath}: expected a table of mail settings"]
     errors: list[str] = []
     known = {"sender", "host", "port", "security", "user", "password_env", "password_file",
-             "timeout", "retry_first", "retry_max", "give_up_after", "reply_to", "save_dir"}
+             "timeout", "retry_first", "retry_max", "give_up_after", "reply_to", "save_dir",
+             "ca_file"}
     for key in raw:
         if key not in known:
             errors.append(f"{keypath}.{key}: unknown key (known: {', '.join(sorted(known))})")
@@ -298,6 +308,7 @@ def mail_settings_from(raw: Any, keypath: str) -> tuple[MailSettings | None, lis
         errors.append(f"{keypath}.reply_to: not an email address: {reply_to!r}")
     host = text("host")
     save_dir = text("save_dir")
+    ca_file = text("ca_file")
     if host is None and save_dir is None:
         errors.append(f"{keypath}.host: required (or save_dir, to only keep messages as files)")
     security = raw.get("security", "starttls")
@@ -319,6 +330,8 @@ def mail_settings_from(raw: Any, keypath: str) -> tuple[MailSettings | None, lis
         errors.append(f"{keypath}.user: a user needs password_env or password_file")
     if (penv or pfile) and not user:
         errors.append(f"{keypath}.user: required with a password")
+    if ca_file and security == "none":
+        errors.append(f"{keypath}.ca_file: only used with security starttls or tls")
     if (penv or pfile) and security == "none":
         errors.append(f"{keypath}.security: a password is never sent without TLS; use starttls or tls")
     if penv and not re.fullmatch(r"[A-Za-z_][A-Za-z0-9_]*", penv):
@@ -339,7 +352,7 @@ def mail_settings_from(raw: Any, keypath: str) -> tuple[MailSettings | None, lis
         return None, errors
     return MailSettings(sender=sender, host=host, port=port, security=security, user=user,
                         password_env=penv, password_file=pfile, reply_to=reply_to,
-                        save_dir=save_dir, **durations), []
+                        save_dir=save_dir, ca_file=ca_file, **durations), []
 
 
 # --------------------------------------------------------------------------- delivery
@@ -371,18 +384,26 @@ class _Sender:
 
     def _open(self) -> smtplib.SMTP:
         s = self.s
+        password: str | None = None
+        smtp: smtplib.SMTP | None = None
         try:
             if s.security == "tls":
-                smtp = smtplib.SMTP_SSL(s.host, s.port, timeout=s.timeout,
-                                        context=ssl.create_default_context())
+                smtp = smtplib.SMTP_SSL(s.host, s.port, timeout=s.timeout, context=_tls_context(s))
             else:
                 smtp = smtplib.SMTP(s.host, s.port, timeout=s.timeout)
                 if s.security == "starttls":
-                    smtp.starttls(context=ssl.create_default_context())
+                    # starttls() raises when the server does not offer it: never a silent
+                    # fall-back to clear text
+                    smtp.starttls(context=_tls_context(s))
             if s.user:
-                smtp.login(s.user, s.password() or "")
+                password = s.password() or ""
+                smtp.login(s.user, password)
         except (OSError, smtplib.SMTPException, RuntimeError, ssl.SSLError) as exc:
-            raise _ConnectionFailed(f"{s.host}:{s.port}: {_describe(exc)}") from None
+            if smtp is not None:
+                with contextlib.suppress(Exception):
+                    smtp.close()
+            reason = _scrub(_describe(exc), password)
+            raise _ConnectionFailed(f"{s.host}:{s.port}: {reason}") from None
         return smtp
 
     def send(self, msg, sender_addr: str, recipient: str) -> None:
@@ -403,7 +424,30 @@ class _Sender:
             self.smtp = None
 
 
+def _tls_context(s: MailSettings) -> ssl.SSLContext:
+    """A verifying client context: the system trust store, or only ``ca_file`` if set."""
+    if s.ca_file is None:
+        return ssl.create_default_context()
+    try:
+        return ssl.create_default_context(cafile=s.ca_file)
+    except FileNotFoundError:
+        raise RuntimeError(f"mail.ca_file {s.ca_file}: no such file") from None
+    except OSError as exc:
+        raise RuntimeError(f"mail.ca_file {s.ca_file}: cannot read it ({exc.strerror})") from None
+    except ssl.SSLError:
+        raise RuntimeError(f"mail.ca_file {s.ca_file}: not a PEM file of CA certificates") from None
+
+
+def _scrub(text: str, password: str | None) -> str:
+    """``text`` with the password replaced by ``***`` (a server may echo what it got)."""
+    return text.replace(password, "***") if password else text
+
+
 def _describe(exc: BaseException) -> str:
+    if isinstance(exc, ssl.SSLCertVerificationError):
+        why = exc.verify_message or exc.reason or str(exc)
+        return (f"server certificate not trusted ({why}); the server must present a certificate "
+                f"for this host signed by a trusted CA (see mail.ca_file)")
     if isinstance(exc, smtplib.SMTPResponseException):
         msg = exc.smtp_error.decode("utf-8", "replace") if isinstance(exc.smtp_error, bytes) else str(exc.smtp_error)
         return f"{exc.smtp_code} {clean_header(msg, 200)}"
