@@ -322,3 +322,21 @@ def test_ca_file_without_tls_is_a_settings_error():
     _, errors = mail_settings_from({"sender": "g@port.example", "host": "127.0.0.1", "security": "none",
                                     "ca_file": "ca.pem"}, "mail")
     assert [e.split(":")[0] for e in errors] == ["mail.ca_file"]
+
+
+# --------------------------------------------------------------------------- no downgrade
+
+def test_server_without_starttls_gets_no_mail_and_no_password(db, password_env, ca_file):
+    # a plain server that would even take AUTH in clear text: the client must stop first
+    catcher, auth, port = TlsCatcher(), Authenticator(), free_port()
+    ctl = start(Controller(catcher, hostname="127.0.0.1", port=port, server_hostname="localhost",
+                           authenticator=auth, auth_require_tls=False))
+    try:
+        oid = queue_one(db)
+        summary = deliver_due(db, settings(port, "starttls", password_env=password_env, ca_file=ca_file),
+                              clock=at(T0))
+    finally:
+        ctl.stop()
+    assert summary.sent == [] and catcher.messages == [] and auth.seen == []
+    row = outbox_row(db, oid)
+    assert row["status"] == "pending" and "STARTTLS" in row["last_error"]
