@@ -6,9 +6,11 @@
   of the gauge against tide-staff readings.
 - :func:`clock_offset`: time shift of the record against the predicted tide (minutes),
   band by band (diurnal, semidiurnal, shallow water) with a consistency check.
-- :func:`sensor_timing`, :func:`clock_episodes`: timing of the backup against the
-  primary in sliding windows, and the spans where it is off.
-- :func:`datum_steps`: sudden level steps in a residual or a sensor difference (mm).
+- :func:`clock_trend`: clock offset week by week, each week fitted as a whole.
+- :func:`sensor_timing`, :func:`clock_episodes`, :func:`relative_clock`: timing of the
+  backup against the primary in sliding windows, the spans where it is off, a summary.
+- :func:`datum_steps`: sudden level steps that persist, in a residual or a difference (mm).
+- :func:`sensor_steps`: steps in primary minus backup, attributed to the sensor that moved.
 - :func:`monthly_constants`: month-by-month M2, S2, K1, O1 against the reference.
 - :func:`equipment_faults`: fault conditions as plain data for the alerts engine.
 
@@ -291,7 +293,7 @@ def _band_filter(x: np.ndarray, dt: float, lo: float, hi: float, edge: float = 0
 
 
 def clock_offset(observed: pd.Series, model: Any, *, max_shift: float = 3600.0, day: float = DAY,
-                 iterations: int = 8, bands=CLOCK_BANDS, smooth_hours: float = 25.0) -> dict:
+                 iterations: int = 8, bands=CLOCK_BANDS, smooth_hours: float = 25.0, flags=None) -> dict:
     """Time shift of the gauge record against the predicted tide, band by band.
 
     A record whose clock is wrong by ``lag`` holds ``h(t - lag) ~ h(t) - lag h'(t)``, so
@@ -316,6 +318,8 @@ def clock_offset(observed: pd.Series, model: Any, *, max_shift: float = 3600.0, 
         Usable levels [m] on a UTC DatetimeIndex (any sampling, gaps allowed).
     model : TideModel or object with ``predict(times)`` (or a callable)
         The reference tide [m]; ``predict_derivative`` is used when present.
+    flags : array or Series, optional
+        Aggregate QARTOD flags of ``observed``; only usable samples (1, 2, 3) are used.
     max_shift : float
         Largest shift searched [s]; estimates are clipped to +-max_shift.
     day : float
@@ -332,7 +336,8 @@ def clock_offset(observed: pd.Series, model: Any, *, max_shift: float = 3600.0, 
     dict
         ``offset_min`` and ``offset_se_min`` (positive: the record lags the tide), the
         same in seconds (``offset_s``, ``offset_se_s``), ``days`` used, ``per_day``
-        (Series of daily shifts [s], indexed by day start, UTC), ``bands`` (band name ->
+        (Series of daily shifts [s], indexed by day start, UTC) and ``per_day_se`` (their
+        standard errors [s], from each day's own band noise), ``bands`` (band name ->
         ``{"offset_min", "offset_se_min"}``) and ``consistent`` (bool: the bands agree
         within their uncertainties, chi-square test at 1 %).
 
@@ -343,9 +348,10 @@ def clock_offset(observed: pd.Series, model: Any, *, max_shift: float = 3600.0, 
     Measurement and Interpretation, Vol. IV (timing accuracy of one minute). Munk &
     Cartwright (1966) and Godin (1972) for band-wise noise levels of tidal residuals.
     """
-    obs = observed.dropna()
+    obs = usable_only(observed, flags)
     out = {"offset_min": np.nan, "offset_se_min": np.nan, "offset_s": np.nan, "offset_se_s": np.nan,
-           "days": 0, "per_day": pd.Series(dtype=float), "bands": {}, "consistent": None}
+           "days": 0, "per_day": pd.Series(dtype=float), "per_day_se": pd.Series(dtype=float),
+           "bands": {}, "consistent": None}
     if len(obs) < 20:
         return out
     t = seconds(obs.index)
@@ -417,7 +423,8 @@ def clock_offset(observed: pd.Series, model: Any, *, max_shift: float = 3600.0, 
     # Daily pieces from the same filtered series, bands weighted as in the whole.
     grid_t = t[0] + np.arange(n) * dt
     day_id = np.floor((grid_t - t[0]) / day).astype(int)
-    per_day = {}
+    per_day: dict = {}
+    per_day_se: dict = {}
     per_sample = max(1, int(0.5 * day / dt))
     for j in np.unique(day_id):
         sel = (day_id == j)
@@ -429,12 +436,100 @@ def clock_offset(observed: pd.Series, model: Any, *, max_shift: float = 3600.0, 
         wd = {b: 1.0 / est[b][1] for b in ed if b in est}
         if not wd:
             continue
-        per_day[_iso(t[0] + j * day)] = lag + sum(wd[b] * ed[b][0] for b in wd) / sum(wd.values())
+        key = _iso(t[0] + j * day)
+        per_day[key] = lag + sum(wd[b] * ed[b][0] for b in wd) / sum(wd.values())
+        # The day's own uncertainty from its own band noise: a stormy day says so.
+        wsum_d = sum(wd.values())
+        per_day_se[key] = math.sqrt(sum(wd[b] ** 2 * ed[b][1] for b in wd)) / wsum_d
     out.update(offset_s=float(lag), offset_se_s=se_s, offset_min=float(lag) / 60, offset_se_min=se_s / 60,
                days=len(per_day), per_day=pd.Series(per_day, dtype=float),
+               per_day_se=pd.Series(per_day_se, dtype=float),
                bands={b: {"offset_min": steps[b] / 60, "offset_se_min": math.sqrt(est[b][1]) / 60}
                       for b in est},
                consistent=consistent)
+    return out
+
+
+def clock_trend(observed: pd.Series, model: Any, ends: Iterable[pd.Timestamp], *, period: float = 7 * DAY,
+                flags=None, **kw) -> pd.Series:
+    """Clock offset against the predicted tide period by period [min], for a trend.
+
+    Each period ``(end - period, end]`` gets its own :func:`clock_offset` over its whole
+    record, so the band-wise noise weighting of that function sees the storm as noise
+    in a week's spectrum. Averaging daily estimates instead lets the one or two storm
+    days, each noisy and biased, pull the week (minutes, for a metre of surge).
+    Periods with less than a day of usable record are NaN.
+
+    Parameters
+    ----------
+    observed : Series
+        Levels [m] on a UTC DatetimeIndex.
+    model : TideModel or object with ``predict(times)``
+        The reference tide [m].
+    ends : iterable of Timestamp
+        Ends of the periods (UTC).
+    period : float
+        Length of each period [s].
+    flags : array or Series, optional
+        Aggregate QARTOD flags; only usable samples (1, 2, 3) are used.
+
+    Returns
+    -------
+    Series
+        Offset [min] indexed by period end; positive: the record lags the tide.
+
+    References
+    ----------
+    As :func:`clock_offset` (Pugh & Woodworth 2014, ch. 3; Munk & Cartwright 1966).
+    """
+    obs = usable_only(observed, flags)
+    out = {}
+    for end in ends:
+        end = pd.Timestamp(end)
+        part = obs[(obs.index > end - pd.Timedelta(seconds=period)) & (obs.index <= end)]
+        if len(part) < 20 or (part.index[-1] - part.index[0]).total_seconds() < DAY:
+            out[end] = np.nan
+            continue
+        out[end] = clock_offset(part, model, **kw)["offset_min"]
+    return pd.Series(out, dtype=float)
+
+
+def relative_clock(primary: pd.Series, backup: pd.Series, *, primary_flags=None, backup_flags=None,
+                   limit_min: float = 1.5, **kw) -> dict:
+    """Clock of the backup relative to the primary, from their difference (minutes).
+
+    The two sensors see the same sea, so their timing is free of the surge that can
+    bias a clock estimate against the predicted tide. :func:`sensor_timing` windows give
+    the lag; the latest window's lag is the current offset, its uncertainty the
+    spread (1.4826 MAD / sqrt(n)) of the windows around the median, no less than half
+    the lag grid; :func:`clock_episodes` names the spans off by more than ``limit_min``.
+
+    Returns
+    -------
+    dict
+        ``offset_min`` (latest window; positive: the backup's clock is late),
+        ``offset_se_min``, ``median_min`` (all windows), ``windows``, ``episodes`` (list
+        of dicts from :func:`clock_episodes`), ``timing`` (the windows' DataFrame) and
+        ``sensor`` = ``"backup"``. NaN values when no window has enough samples.
+
+    References
+    ----------
+    IOC (1985-2016), Manual on Sea Level Measurement and Interpretation, Vol. IV (a
+    second sensor to check the first).
+    """
+    p, b = usable_only(primary, primary_flags), usable_only(backup, backup_flags)
+    timing = sensor_timing(p, b, **kw)
+    out = {"offset_min": np.nan, "offset_se_min": np.nan, "median_min": np.nan, "windows": len(timing),
+           "episodes": [], "timing": timing, "sensor": "backup"}
+    if timing.empty:
+        return out
+    lags = timing["lag_min"].to_numpy(dtype=float)
+    med = float(np.median(lags))
+    spread = 1.4826 * float(np.median(np.abs(lags - med)))
+    grid_min = kw.get("lag_step_s", 15.0) / 60.0
+    out.update(offset_min=float(lags[-1]), median_min=med,
+               offset_se_min=max(spread / math.sqrt(len(lags)), 0.5 * grid_min),
+               episodes=clock_episodes(timing, limit_min))
     return out
 
 

@@ -369,3 +369,45 @@ def test_primary_step_attributed_to_the_primary():
     (row,) = dg.sensor_steps(primary, backup, SynthModel()).to_dict("records")
     assert row["sensor"] == "primary"
     assert row["step_mm"] == pytest.approx(-50, abs=10)
+
+
+# --------------------------------------------------------------------------- clock in a storm week
+
+# IOC Manual Vol. IV asks for gauge timing good to one minute (from memory): a right clock
+# under a metre of storm surge must read inside that minute in every week of the trend.
+@pytest.mark.parametrize("seed", [61, 64])
+def test_weekly_clock_trend_of_a_right_clock_under_a_storm_stays_within_a_minute(seed):
+    level, _ = record(days=14, seed=seed, surge_height=1.0, surge_width_h=6.0,
+                      surge_peak=START + pd.Timedelta(days=10.5))
+    ends = [START + pd.Timedelta(days=7), START + pd.Timedelta(days=14)]
+    weekly = dg.clock_trend(level, SynthModel(), ends)
+    assert len(weekly) == 2
+    assert np.all(np.abs(weekly.to_numpy()) < 1.0)
+
+
+def test_weekly_clock_trend_finds_a_late_clock():
+    level, _ = record(days=14, seed=65, red_sigma=0.01, model=SynthModel(shift_s=5 * minute))
+    weekly = dg.clock_trend(level, SynthModel(), [START + pd.Timedelta(days=7), START + pd.Timedelta(days=14)])
+    assert np.allclose(weekly.to_numpy(), 5.0, atol=0.5)
+
+
+def test_weekly_clock_trend_skips_fail_flagged_samples():
+    # A 2-hour stretch with a 30-minute-late record flagged fail must not move the week.
+    level, _ = record(days=7, seed=66, red_sigma=0.01)
+    late, _ = record(days=7, seed=66, red_sigma=0.01, model=SynthModel(shift_s=30 * minute))
+    bad = slice(3 * 1440, 3 * 1440 + 120)
+    level.iloc[bad] = late.iloc[bad]
+    flags = np.ones(len(level), dtype=int)
+    flags[bad] = 4
+    weekly = dg.clock_trend(level, SynthModel(), [START + pd.Timedelta(days=7)], flags=flags)
+    assert abs(weekly.iloc[0]) < 0.3
+
+
+def test_relative_clock_finds_the_backup_late_against_the_primary():
+    # IOC Manual Vol. IV: a second sensor checks the first; backup 4 minutes late at the end.
+    primary, backup = _backup_late(4.0, 60, 96)
+    rel = dg.relative_clock(primary, backup)
+    assert rel["sensor"] == "backup"
+    assert rel["offset_min"] == pytest.approx(4.0, abs=0.5)
+    (ep,) = rel["episodes"]
+    assert ep["lag_min"] == pytest.approx(4.0, abs=0.5)
