@@ -363,7 +363,7 @@ def validate_config(raw: Any, base_dir: Path | str = ".", path: Path | None = No
             reports, errs = _validate_with(report_settings_from, rt, "reports")
             errors.extend(errs)
 
-    mail = _resolve_fields(mail, base_dir, ("password_file", "save_dir"))
+    mail = _resolve_fields(mail, base_dir, ("password_file", "save_dir", "ca_file"))
     reports = _resolve_fields(reports, base_dir, ("folder",))
     if errors:
         return None, errors
