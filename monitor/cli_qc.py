@@ -170,21 +170,26 @@ def summarise(st, settings: qc.QcSettings, results: dict[str, pd.DataFrame], obs
         if np.isfinite(d["drift_mm_per_day"]):
             diag.append(["primary - backup drift",
                          f"{d['drift_mm_per_day']:+.2f} mm/day (95% {d['drift_low']:+.2f} to {d['drift_high']:+.2f})"])
-        steps = dg.datum_steps(pd.Series(qc.difference_at(prim, usable["backup"], settings.gap_limit),
-                                         index=prim.index), min_step=settings.step_min_mm * 1e-3,
-                               gap_limit=settings.gap_limit)
+        # Steps in primary - backup first (sea and weather cancel), each attributed to a sensor.
+        steps = dg.sensor_steps(prim, usable["backup"], model, min_step=settings.step_min_mm * 1e-3,
+                                gap_limit=settings.gap_limit)
         for s in steps.itertuples():
-            diag.append(["step primary - backup", f"{_pm(s.step_mm, s.se_mm, 'mm')} at {_local(s.time, tz)}"])
+            diag.append([f"datum step, {s.sensor} sensor",
+                         f"{_pm(s.step_mm, s.se_mm, 'mm')} at {_local(s.time, tz)} (primary - backup "
+                         f"{s.difference_mm:+.0f} mm)"])
+        if steps.empty:
+            diag.append(["datum steps, primary - backup", f"none above {settings.step_min_mm:g} mm"])
     if prim is not None and len(prim) > 100 and model is not None:
         c = dg.clock_offset(prim, model)
         diag.append(["clock offset vs predicted tide",
                      _pm(c["offset_min"], c["offset_se_min"], "min", 2) + "  (+ = record lags the tide)"])
-        resid = prim - np.asarray(model.predict(prim.index), dtype=float)
-        steps = dg.datum_steps(resid, min_step=settings.step_min_mm * 1e-3, gap_limit=settings.gap_limit)
-        if steps.empty:
-            diag.append(["datum steps in residual", f"none above {settings.step_min_mm:g} mm"])
-        for s in steps.itertuples():
-            diag.append(["datum step in residual", f"{_pm(s.step_mm, s.se_mm, 'mm')} at {_local(s.time, tz)}"])
+        if not ("backup" in usable and len(usable["backup"])):  # with a backup, the difference above
+            resid = prim - np.asarray(model.predict(prim.index), dtype=float)
+            steps = dg.datum_steps(resid, min_step=settings.step_min_mm * 1e-3, gap_limit=settings.gap_limit)
+            if steps.empty:
+                diag.append(["datum steps in residual", f"none above {settings.step_min_mm:g} mm"])
+            for s in steps.itertuples():
+                diag.append(["datum step in residual", f"{_pm(s.step_mm, s.se_mm, 'mm')} at {_local(s.time, tz)}"])
         if (end - start).total_seconds() >= 25 * 86400:
             mc = dg.monthly_constants(prim, model)
             for r in mc.itertuples():

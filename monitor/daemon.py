@@ -507,7 +507,7 @@ class Daemon:
     def _run_diagnostics(self, rt: StationRuntime, end_t: int) -> dict:
         st, store = rt.cfg, self.store
         out: dict = {}
-        usable = lambda o: o.loc[~o["flag"].isin((4, 9)), "value"]  # noqa: E731  fail/missing never count
+        usable = lambda o: self.diag.usable_only(o["value"], o["flag"].to_numpy())  # noqa: E731  flags 1, 2, 3 only
         window = getattr(st.qc, "drift_window", 30 * 86400.0)
         try:
             if "backup" in st.sensors:
@@ -518,8 +518,15 @@ class Daemon:
                     out["drift"] = self.diag.sensor_drift(p, b, gap_limit=gap)
             if rt.model is not None:
                 a = int(end_t - self.cfg.daemon.clock_window_days * 86400)
-                for role in (r for r in st.sensors if r != "barometer"):
-                    o = usable(store.observations(st.id, role, a, end_t))
+                levels = {r: usable(store.observations(st.id, r, a, end_t)) for r in st.sensors if r != "barometer"}
+                for role, o in levels.items():
+                    if role == "backup" and len(levels.get("primary", ())) > 1 and len(o) > 1:
+                        # Against the primary the surge cancels: the relative clock comes first.
+                        c = self.diag.relative_clock(levels["primary"], o)
+                        if math.isfinite(c["offset_min"]):
+                            c["since"] = int(c["timing"]["start"].iloc[-1].timestamp())
+                            out["clock.backup"] = {k: v for k, v in c.items() if k != "timing"}
+                            continue
                     # a day of record at least: the fit solves one shift across whole days
                     if len(o) < 2 or (o.index[-1] - o.index[0]).total_seconds() < 86400:
                         continue

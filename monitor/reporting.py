@@ -400,7 +400,9 @@ def _series(store: Any, sid: str, sensor: str, t0: int, t1: int) -> pd.Series:
     obs = store.observations(sid, sensor, t0, t1)
     if obs.empty:
         return pd.Series(dtype=float)
-    obs = obs[~obs["flag"].isin([4, 9])]
+    from monitor.qc import usable_mask
+
+    obs = obs[usable_mask(obs["flag"].to_numpy())]  # flags 1, 2, 3 only: fail and missing never count
     return obs["value"].astype(float)
 
 
@@ -440,23 +442,51 @@ def _diagnostics(store: Any, station: Any, model: Any, end: pd.Timestamp, weeks:
                 out.append(R.Diagnostic(
                     "Primary minus backup: offset", "mm", _num(latest["offset_mm"]), _num(latest["offset_se_mm"]),
                     pd.Series({k: v["offset_mm"] for k, v in values.items()}, dtype=float)))
+        if "backup" in sensors and len(backup := _series(store, sid, "backup", t_start, t_end)):
+            # Two sensors see the same sea: their relative clock is free of the surge.
+            rel = D.relative_clock(primary[primary.index >= end - WEEK], backup[backup.index >= end - WEEK])
+            timing = rel["timing"]
+            eps = rel["episodes"]
+            worst = max(eps, key=lambda e: abs(e["lag_min"])) if eps else None
+            history = (pd.Series(timing["lag_min"].to_numpy(dtype=float), index=pd.DatetimeIndex(timing["end"]))
+                       .resample("7D").median() if len(timing) else pd.Series(dtype=float))
+            out.append(R.Diagnostic(
+                "Backup clock against the primary", "min",
+                _num(worst["lag_min"]) if worst else _num(rel["median_min"]), _num(rel["offset_se_min"]), history,
+                "last 7 days, positive: the backup is late; " + (", ".join(
+                    f"{e['lag_min']:+.1f} min from {e['start'].tz_convert(station.tz):%d %b %H:%M} "
+                    f"to {e['end'].tz_convert(station.tz):%d %b %H:%M}" for e in eps) if eps
+                    else "no span off by more than 1.5 min")))
         if model is not None:
             clock = D.clock_offset(primary, model)
-            per_day = clock.get("per_day", pd.Series(dtype=float))
-            history = (per_day / 60.0).resample("7D").mean() if len(per_day) else pd.Series(dtype=float)
+            # Each week fitted as a whole: a storm day cannot pull the week's figure.
+            history = D.clock_trend(primary, model, [end - k * WEEK for k in range(weeks - 1, -1, -1)])
             out.append(R.Diagnostic("Clock offset against the predicted tide", "min", _num(clock["offset_min"]),
                                     _num(clock["offset_se_min"]), history,
                                     f"{clock.get('days', 0)} days; positive: the record lags the tide"))
             week = primary[primary.index >= end - WEEK]
-            resid = pd.Series(week.to_numpy() - model.predict(week.index), index=week.index)
-            steps = D.datum_steps(resid)
-            out.append(R.Diagnostic(
-                "Datum steps in the residual, last 7 days", "mm",
-                float(steps["step_mm"].iloc[-1]) if len(steps) else None,
-                float(steps["se_mm"].iloc[-1]) if len(steps) else None,
-                note=f"{len(steps)} found" + (": " + ", ".join(
-                    f"{r.step_mm:+.0f} mm at {r.time.tz_convert(station.tz):%d %b %H:%M}" for r in steps.itertuples())
-                    if len(steps) else "")))
+            if "backup" in sensors and len(backup):
+                # Primary minus backup first: sea and weather cancel, and the step is attributed.
+                wk_b = backup[backup.index >= end - WEEK]
+                steps = D.sensor_steps(week, wk_b, model)
+                out.append(R.Diagnostic(
+                    "Datum steps, primary minus backup, last 7 days", "mm",
+                    float(steps["step_mm"].iloc[-1]) if len(steps) else None,
+                    float(steps["se_mm"].iloc[-1]) if len(steps) else None,
+                    note=f"{len(steps)} found" + (": " + ", ".join(
+                        f"{r.step_mm:+.0f} mm in the {r.sensor} sensor at "
+                        f"{r.time.tz_convert(station.tz):%d %b %H:%M}" for r in steps.itertuples())
+                        if len(steps) else "")))
+            else:
+                resid = pd.Series(week.to_numpy() - model.predict(week.index), index=week.index)
+                steps = D.datum_steps(resid)
+                out.append(R.Diagnostic(
+                    "Datum steps in the residual, last 7 days", "mm",
+                    float(steps["step_mm"].iloc[-1]) if len(steps) else None,
+                    float(steps["se_mm"].iloc[-1]) if len(steps) else None,
+                    note=f"{len(steps)} found, steps that persist 3 h" + (": " + ", ".join(
+                        f"{r.step_mm:+.0f} mm at {r.time.tz_convert(station.tz):%d %b %H:%M}"
+                        for r in steps.itertuples()) if len(steps) else "")))
     except Exception:  # a diagnostic must never stop the day's report
         log.exception("station %s: diagnostics for the report failed", sid)
     return out
