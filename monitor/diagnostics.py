@@ -645,14 +645,18 @@ def usable_only(series: pd.Series, flags=None) -> pd.Series:
     return s.dropna()
 
 
-def _long_step(t: np.ndarray, v: np.ndarray, tb: float, persist: float, iterations: int = 6):
+def _long_step(t: np.ndarray, v: np.ndarray, tb: float, persist: float, iterations: int = 6,
+               rate: np.ndarray | None = None):
     """Size and standard error [m] of a step at ``tb`` that persists ``persist`` [s] each side.
 
     Over ``tb +- persist`` the record is fitted with a cubic in time plus a step at
     ``tb``: a smooth surge onset (any rise a cubic follows over the span) goes into the
     polynomial, a level that moves and stays goes into the step. Iteratively
     reweighted least squares with Cauchy weights on MAD-scaled residuals keeps a short
-    spike, a stuck spell or a clock slip from steering it. Returns (nan, nan) when
+    spike or a stuck spell from steering it. With ``rate`` (the level's rate of change
+    [m/s] at ``t``), the rate and its change at ``tb`` enter the fit too: a clock that
+    slips by ``L`` moves a two-sensor difference by ``L`` times the rate, not by a
+    constant, and is not taken for a step. Returns (nan, nan) when
     either side holds less than a third of the span's samples.
     """
     sel = (t >= tb - persist) & (t <= tb + persist)
@@ -662,7 +666,11 @@ def _long_step(t: np.ndarray, v: np.ndarray, tb: float, persist: float, iteratio
     if min(after.sum(), (~after).sum()) < max(5, n_side / 3):
         return np.nan, np.nan
     x = (tt - tb) / persist
-    X = np.column_stack([np.ones_like(x), x, x ** 2, x ** 3, after.astype(float)])
+    cols = [np.ones_like(x), x, x ** 2, x ** 3]
+    if rate is not None:
+        r_ = np.nan_to_num(rate[sel]) * 60.0  # per minute, for conditioning
+        cols += [r_, r_ * after]
+    X = np.column_stack(cols + [after.astype(float)])
     w = np.ones_like(y)
     beta = np.zeros(X.shape[1])
     for _ in range(iterations):
@@ -680,7 +688,7 @@ def _long_step(t: np.ndarray, v: np.ndarray, tb: float, persist: float, iteratio
 
 def datum_steps(series: pd.Series, *, window: float = 600.0, k: float = 6.0, min_step: float = 0.02,
                 gap_limit: float = 300.0, flags=None, persist: float | None = 3 * 3600.0,
-                agree: float = 0.5) -> pd.DataFrame:
+                agree: float = 0.5, rate: pd.Series | None = None) -> pd.DataFrame:
     """Sudden steps in a residual (or a primary-backup difference) that persist.
 
     Candidates: on a regular grid (the median step; short gaps interpolated, windows
@@ -705,6 +713,9 @@ def datum_steps(series: pd.Series, *, window: float = 600.0, k: float = 6.0, min
     flags : array or Series, optional
         Aggregate QARTOD flags of the samples; only usable ones (1, 2, 3) are used.
         Without it the caller must pass usable samples only.
+    rate : Series, optional
+        Rate of change of the sea level [m/s] (for a two-sensor difference): a clock
+        slip, which moves the difference by the slip times the rate, is not a step.
 
     Returns
     -------
@@ -766,7 +777,8 @@ def datum_steps(series: pd.Series, *, window: float = 600.0, k: float = 6.0, min
             tj = t[np.searchsorted(t, when - dt / 2)]
             long = np.nan
             if persist:
-                long, _ = _long_step(t, vals, tj - dt / 2, persist)
+                rr = None if rate is None else np.interp(t, seconds(rate.index), rate.to_numpy(dtype=float))
+                long, _ = _long_step(t, vals, tj - dt / 2, persist, rate=rr)
                 if not (np.isfinite(long) and np.sign(long) == np.sign(D[c])
                         and abs(long) >= max(agree * abs(D[c]), min_step)):
                     continue
@@ -815,7 +827,10 @@ def sensor_steps(primary: pd.Series, backup: pd.Series, model: Any = None, *, ga
     if len(p) < 10 or len(b) < 10:
         return pd.DataFrame(columns=cols)
     diff = pd.Series(difference_at(p, b, gap_limit), index=utc_index(p.index))
-    steps = datum_steps(diff, gap_limit=gap_limit, min_step=min_step, persist=persist, **kw)
+    tp = seconds(p.index)
+    rate = pd.Series(np.gradient(p.to_numpy(dtype=float), tp) if len(tp) > 1 else np.zeros(len(tp)),
+                     index=p.index).rolling(15, center=True, min_periods=1).median()
+    steps = datum_steps(diff, gap_limit=gap_limit, min_step=min_step, persist=persist, rate=rate, **kw)
     rows = []
 
     def own(series: pd.Series, tb: float) -> float:

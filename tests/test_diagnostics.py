@@ -411,3 +411,10 @@ def test_relative_clock_finds_the_backup_late_against_the_primary():
     assert rel["offset_min"] == pytest.approx(4.0, abs=0.5)
     (ep,) = rel["episodes"]
     assert ep["lag_min"] == pytest.approx(4.0, abs=0.5)
+
+
+def test_backup_clock_slip_is_not_a_datum_step():
+    # A clock that slips moves the difference by the slip times the tide's rate, not by a
+    # constant (Pugh & Woodworth 2014, ch. 3): the backup 6 minutes late from hour 60.
+    primary, backup = _backup_late(6.0, 60, 96)
+    assert dg.sensor_steps(primary, backup, SynthModel()).empty
