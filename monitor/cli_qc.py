@@ -158,7 +158,9 @@ def summarise(st, settings: qc.QcSettings, results: dict[str, pd.DataFrame], obs
                     _table(rows, ["last sample", "next sample", "silent"], right={2})]
         o = obs[sn]
         o = o[(o.index >= start) & (o.index <= end)]
-        usable[sn] = o["value"][qc.usable_mask(tests["flag"].reindex(o.index).fillna(qc.PASS).to_numpy())]
+        t = tests.reindex(o.index)
+        usable[sn] = o["value"][qc.diagnostic_mask(t["flag"].fillna(qc.PASS).to_numpy(),
+                                                   t["flat"].fillna(qc.NOT_EVALUATED).to_numpy())]
         out.append("")
 
     out.append("Diagnostics (value +- standard error):")

@@ -722,6 +722,37 @@ def read_observations(store: Any, station: str, sensor: str, start_t: float | No
                          "time_source": list(src)}, index=idx)
 
 
+def diagnostic_mask(flags, flat=None) -> np.ndarray:
+    """True where a sample may feed a gauge diagnostic (drift, clock offset, datum steps).
+
+    Usable samples (flag 1, 2 or 3) that the flat-line test does not doubt: a spell it marks
+    suspect is a sensor that may already be stuck, whose values say nothing of the sea's
+    level, so a diagnostic leaves it out before the spell is long enough to fail.
+    """
+    mask = usable_mask(flags)
+    if flat is not None:
+        mask &= ~np.isin(np.asarray(flat), (SUSPECT, FAIL))
+    return mask
+
+
+def read_level_series(store: Any, station: str, sensor: str, start_t: float, end_t: float) -> pd.Series:
+    """Levels [m] of one sensor that a gauge diagnostic may use (see :func:`diagnostic_mask`),
+    indexed by UTC time."""
+    db = _db(store)
+    ensure_qc_schema(db)
+    rows = db.conn.execute(
+        "SELECT o.t, o.value, o.flag, q.flat FROM observations o LEFT JOIN qc_tests q "
+        "ON q.station = o.station AND q.sensor = o.sensor AND q.t = o.t "
+        "WHERE o.station = ? AND o.sensor = ? AND o.t >= ? AND o.t <= ? ORDER BY o.t",
+        (station, sensor, int(math.floor(start_t)), int(math.ceil(end_t)))).fetchall()
+    if not rows:
+        return pd.Series(dtype=float)
+    t, v, f, flat = (np.asarray(c) for c in zip(*rows))
+    keep = diagnostic_mask(f, np.where(flat == None, NOT_EVALUATED, flat).astype(int))  # noqa: E711
+    idx = pd.to_datetime(t[keep].astype(np.int64), unit="s", utc=True)
+    return pd.Series(v[keep].astype(float), index=idx, name=sensor).dropna()
+
+
 def read_overrides(store: Any, station: str, sensor: str, start_t: float | None = None,
                    end_t: float | None = None) -> pd.Series:
     """Manual flags of one sensor, indexed by UTC time."""

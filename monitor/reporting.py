@@ -397,13 +397,10 @@ def _qc(store: Any, sid: str, t0: int, t1: int) -> tuple[dict, list[R.QcEpisode]
 
 
 def _series(store: Any, sid: str, sensor: str, t0: int, t1: int) -> pd.Series:
-    obs = store.observations(sid, sensor, t0, t1)
-    if obs.empty:
-        return pd.Series(dtype=float)
-    from monitor.qc import usable_mask
+    from monitor.qc import read_level_series
 
-    obs = obs[usable_mask(obs["flag"].to_numpy())]  # flags 1, 2, 3 only: fail and missing never count
-    return obs["value"].astype(float)
+    # flags 1, 2, 3 only (fail and missing never count), and no spell the flat-line test doubts
+    return read_level_series(store, sid, sensor, t0, t1)
 
 
 def _diagnostics(store: Any, station: Any, model: Any, end: pd.Timestamp, weeks: int) -> list[R.Diagnostic]:

@@ -214,3 +214,13 @@ def test_clean_record_with_coloured_noise_and_surge_flags_under_a_tenth_of_a_per
     out = qc.run_tests(level, s, pred, other=backup)
     share = (out["flag"].isin([SUSPECT, FAIL])).mean()
     assert share < 0.001
+
+
+def test_diagnostics_leave_out_a_spell_the_flat_line_test_doubts():
+    # A stuck float reads nothing of the sea even while only suspect; other suspects stay usable
+    # for diagnostics, and fail (4) never is (design notes, "Quality control").
+    from monitor.qc import diagnostic_mask
+
+    flags = [1, 3, 3, 4, 2]
+    flat = [1, 3, 1, 4, 2]
+    assert diagnostic_mask(flags, flat).tolist() == [True, False, True, False, True]
