@@ -26,7 +26,6 @@ authorities come first.
 from __future__ import annotations
 
 import argparse
-import asyncio
 import datetime as dt
 import email
 import email.policy

@@ -2,7 +2,6 @@
 from __future__ import annotations
 
 import copy
-import math
 import tomllib
 from pathlib import Path
 

@@ -24,7 +24,7 @@ import trustme
 from aiosmtpd.controller import Controller
 from aiosmtpd.smtp import AuthResult, LoginPassword
 
-from alerts.outbox import deliver_due, enqueue, list_outbox, mail_settings_from, outbox_row
+from alerts.outbox import deliver_due, enqueue, mail_settings_from, outbox_row
 
 # aiosmtpd warns when AUTH is allowed without *its* STARTTLS; the implicit-TLS servers
 # below are encrypted from the first byte, so the warning does not apply to them

@@ -10,7 +10,7 @@ import pandas as pd
 import pytest
 
 from monitor import qc
-from test_qc_synthetic import SynthModel, hour, minute, mm, record
+from test_qc_synthetic import hour, minute, mm, record
 
 FAIL, SUSPECT, PASS, NOT_EVALUATED, MISSING = qc.FAIL, qc.SUSPECT, qc.PASS, qc.NOT_EVALUATED, qc.MISSING
 

@@ -11,7 +11,7 @@ import tomli_w
 from alerts.report import day_bounds, read_summary
 from monitor.cli import main
 from monitor.config import validate_config
-from monitor.reporting import due_day, gather_day, low_water_differences, write_due_reports, write_station_day
+from monitor.reporting import due_day, gather_day, low_water_differences, write_due_reports
 from monitor.store import Store
 from predictor import TideModel
 
