@@ -3,9 +3,14 @@
 Definitions follow NOAA (2003): mean high water (MHW) is the mean of all high waters,
 mean higher high water (MHHW) the mean of the higher high water of each tidal day
 (24.84 h; a day with one high water counts it as its higher high), and likewise MLW
-and MLLW; mean sea level (MSL) is the mean of the (here 15-minute) heights; mean tide
-level MTL = (MHW + MLW) / 2; MN = MHW - MLW is the mean range and GT = MHHW - MLLW
-the great diurnal range.  HAT and LAT are the highest and lowest predicted levels
+and MLLW.  The tidal days start where they split the fewest tides (not on a high or
+low water); near each crossover of the diurnal inequality two equal pairings of
+high waters remain possible, which can move MHHW or MLLW by up to about 1 cm for a
+strongly mixed tide (the handbook ties the tidal day to the Moon's transit at the
+station, whose longitude a model does not carry).
+Mean sea level (MSL) is the mean of the (here 15-minute) heights; mean tide level
+MTL = (MHW + MLW) / 2; MN = MHW - MLW is the mean range and GT = MHHW - MLLW the
+great diurnal range.  HAT and LAT are the highest and lowest predicted levels
 over the whole period (IHO definition: highest/lowest astronomical tide).
 
 The datums describe the astronomical tide: any trend in the model is left out, so
@@ -45,6 +50,27 @@ DATUM_DESCRIPTIONS = {
     "MN": "mean range (MHW - MLW)",
     "GT": "great diurnal range (MHHW - MLLW)",
 }
+
+
+def _tidal_day_offset(dt: np.ndarray, is_high: np.ndarray, trials: int = 48) -> float:
+    """Start [s after the period's start] of the tidal days that split the fewest tides.
+
+    Of ``trials`` starts spread over one tidal day, the one whose days most often hold
+    the usual number of high and of low waters (two each for a semidiurnal or mixed tide,
+    one each for a diurnal one); ties go to the earliest.
+    """
+    best, best_score = 0.0, None
+    for off in TIDAL_DAY_SECONDS * np.arange(trials) / trials:
+        day = np.floor((dt - off) / TIDAL_DAY_SECONDS).astype(np.int64)
+        ok = day >= 0
+        score = 0
+        for sel in (is_high, ~is_high):
+            counts = np.bincount(day[ok & sel])[:-1]  # the last day may be cut by the end
+            if counts.size:
+                score += int(np.sum(counts == np.bincount(counts).argmax()))
+        if best_score is None or score > best_score:
+            best, best_score = float(off), score
+    return best
 
 
 def tidal_datums(model, start=None, years: float = NODAL_CYCLE_YEARS, step="15min") -> dict:
@@ -94,9 +120,13 @@ def tidal_datums(model, start=None, years: float = NODAL_CYCLE_YEARS, step="15mi
     highs, lows = level[is_high], level[~is_high]
     mhw, mlw = float(highs.mean()), float(lows.mean())
 
-    day = np.floor((t - t0) / TIDAL_DAY_SECONDS).astype(np.int64)
-    ndays = int((t1 - t0) // TIDAL_DAY_SECONDS)  # complete tidal days only
-    full = day < ndays
+    # Tidal days start where no high or low water is near: a boundary on a high water
+    # would put one high in one day and three in the next, depending on the station's
+    # phase only (up to 2 cm on MHHW for an ordinary mixed tide).
+    d0 = t0 + _tidal_day_offset(t - t0, is_high)
+    day = np.floor((t - d0) / TIDAL_DAY_SECONDS).astype(np.int64)
+    ndays = int((t1 - d0) // TIDAL_DAY_SECONDS)  # complete tidal days only
+    full = (day >= 0) & (day < ndays)
     hh = np.full(ndays, -np.inf)
     ll = np.full(ndays, np.inf)
     np.maximum.at(hh, day[full & is_high], level[full & is_high])

@@ -109,3 +109,29 @@ def test_trend_is_left_out_of_datums(mixed):
     a = tidal_datums(mixed, years=1.0)
     b = tidal_datums(with_trend, years=1.0)
     assert b["MHW"] == pytest.approx(a["MHW"], abs=1e-9)
+
+
+def _shifted(constants, hours):
+    # the same tide `hours` later: every phase lag grows by speed x hours (Foreman 1977)
+    from predictor.constituents import speeds
+    return TideModel(mean=0.0, constituents=[
+        {"name": n, "amplitude": a, "phase": (g + speeds([n])[0] * hours) % 360.0} for n, a, g in constants])
+
+
+def test_lower_low_water_does_not_depend_on_where_tidal_days_start():
+    # NOAA (2003): MLLW is the mean of the lower low water of each tidal day; moving the whole
+    # tide by a few hours must not change it. Tidal days that began on a low water once put one
+    # low in one day and three in the next (2 cm off for this invented mixed tide).
+    tide = [("M2", 1.0, 0.0), ("S2", 0.35, 30.0), ("N2", 0.2, 340.0), ("K1", 0.3, 90.0), ("O1", 0.25, 270.0)]
+    a = tidal_datums(_shifted(tide, 0.0), years=2.0)
+    b = tidal_datums(_shifted(tide, 10.0), years=2.0)
+    assert b["MLLW"] == pytest.approx(a["MLLW"], abs=1 * mm)
+
+
+def test_higher_high_water_does_not_depend_on_where_tidal_days_start():
+    # NOAA (2003): MHHW, the mean of the higher high water of each tidal day, is a property of the
+    # tide, not of the hour the computation starts.
+    tide = [("M2", 1.0, 0.0), ("S2", 0.35, 30.0), ("N2", 0.2, 340.0), ("K1", 0.3, 100.0), ("O1", 0.25, 80.0)]
+    a = tidal_datums(_shifted(tide, 0.0), years=2.0)
+    b = tidal_datums(_shifted(tide, 4.0), years=2.0)
+    assert b["MHHW"] == pytest.approx(a["MHHW"], abs=1 * mm)
