@@ -160,7 +160,10 @@ def skew_surges(observed: pd.Series, extremes: pd.DataFrame, max_gap_s: float = 
     after it (half an M2 period either side when a low water is not given). It is complete
     when the observations reach its end, start within ``max_gap_s`` of its start, and have
     no gap longer than ``max_gap_s`` inside it. Skew surge = highest observed level within
-    the cycle - the predicted high water (whatever their times).
+    the cycle - the predicted high water (whatever their times). A double high water
+    (predicted highs less than a quarter M2 period apart) is one cycle, from the low
+    before the first high to the low after the second, and its predicted high water is
+    the higher of the two; the small rise inside a double low water is no cycle.
 
     Parameters
     ----------
@@ -189,14 +192,23 @@ def skew_surges(observed: pd.Series, extremes: pd.DataFrame, max_gap_s: float = 
     ext_t = _secs(pd.DatetimeIndex(extremes["time"]))
     kinds = extremes["kind"].to_numpy()
     levels = extremes["level"].to_numpy(dtype=float)
+    order = np.argsort(ext_t, kind="stable")
+    ext_t, kinds, levels = ext_t[order], kinds[order], levels[order]
     lows = ext_t[kinds == "low"]
+    high_t, high_lv = ext_t[kinds == "high"], levels[kinds == "high"]
     rows = []
-    for tk, lv in zip(ext_t[kinds == "high"], levels[kinds == "high"]):
-        before = lows[lows < tk]
-        after = lows[lows > tk]
-        start = before[-1] if len(before) and tk - before[-1] < 2 * HALF_M2 else tk - HALF_M2
-        end = after[0] if len(after) and after[0] - tk < 2 * HALF_M2 else tk + HALF_M2
-        i0, i1 = np.searchsorted(t_obs, [start, end], side="left")
+    for g in _high_water_stands(high_t):
+        first, last = high_t[g[0]], high_t[g[-1]]
+        top = g[int(np.argmax(high_lv[g]))]
+        tk, lv = high_t[top], high_lv[top]
+        before = lows[lows < first]
+        after = lows[lows > last]
+        start = before[-1] if len(before) and first - before[-1] < 2 * HALF_M2 else first - HALF_M2
+        end = after[0] if len(after) and after[0] - last < 2 * HALF_M2 else last + HALF_M2
+        if end - start < HALF_M2:
+            # the small rise between the two lows of a double low water, not a tidal cycle
+            continue
+        i0 = np.searchsorted(t_obs, start, side="left")
         i1 = np.searchsorted(t_obs, end, side="right")
         if i1 - i0 < 2 or t_obs[-1] < end:
             continue
@@ -258,7 +270,12 @@ def forecast_high_water(now_t: float, residual_now: float, hw_t: float, hw_level
     grid = h.resample(f"{grid_minutes:g}min").mean()
     steps = int(round(lead / (grid_minutes * 60)))
     vals = grid.to_numpy(dtype=float)
-    diff = vals[steps:] - vals[:len(vals) - steps] if steps > 0 else np.zeros(np.isfinite(vals).sum())
+    if steps >= len(vals):  # a history shorter than the lead time holds no pair
+        diff = np.empty(0)
+    elif steps > 0:
+        diff = vals[steps:] - vals[:len(vals) - steps]
+    else:
+        diff = np.zeros(np.isfinite(vals).sum())
     diff = diff[np.isfinite(diff)]
     if len(diff) < 100:
         out["note"] = (f"no uncertainty range: only {len(diff)} pairs of residual {lead_txt} apart in the "
@@ -269,6 +286,16 @@ def forecast_high_water(now_t: float, residual_now: float, hw_t: float, hw_level
     out["note"] = (f"{coverage:.0%} range from how the residual changed over {lead_txt} in "
                    f"{span_days:.0f} days of this station's history")
     return out
+
+
+def _high_water_stands(high_t: np.ndarray) -> list[np.ndarray]:
+    """Indices of the predicted high waters grouped into one stand per tidal cycle: highs
+    closer than a quarter of the M2 period (a double high water, with a shallow dip between
+    them) belong to one cycle (common practice, no source)."""
+    if len(high_t) == 0:
+        return []
+    cut = np.flatnonzero(np.diff(high_t) >= HALF_M2 / 2) + 1
+    return np.split(np.arange(len(high_t)), cut)
 
 
 def _secs(index: pd.DatetimeIndex) -> np.ndarray:

@@ -121,3 +121,50 @@ def test_pressure_is_interpolated_and_not_carried_across_gaps():
     got = R.pressure_at(_index(2, 15), p)
     assert got == pytest.approx([1000.0, 1005.0])
     assert np.isnan(R.pressure_at(pd.DatetimeIndex(["2025-01-01T03:00Z"]), p))[0]
+
+
+def _turning(points):
+    t = np.array([p[0] for p in points]) * hour
+    return pd.DataFrame({"time": pd.to_datetime(t, unit="s", utc=True), "level": [p[1] for p in points],
+                         "kind": [p[2] for p in points]})
+
+
+def _through(points, t, lag=0.0, raise_by=0.0):
+    # observed: the predicted turning points joined by straight lines, later by `lag` and raised
+    return pd.Series(np.interp(t - lag, [p[0] * hour for p in points], [p[1] for p in points]) + raise_by,
+                     index=pd.to_datetime(t, unit="s", utc=True))
+
+
+DOUBLE_HIGH = [(0, -1.0, "low"), (5, 1.0, "high"), (6, 0.9, "low"), (7, 1.05, "high"), (12.5, -1.0, "low"),
+               (17.5, 1.0, "high"), (18.5, 0.9, "low"), (19.5, 1.05, "high"), (25, -1.0, "low")]
+
+
+def test_double_high_water_is_one_tidal_cycle():
+    # Williams et al. (2016): one skew surge per tidal cycle, against the cycle's predicted high water
+    # (the higher of a double high water, 1.05 m here), whenever the observed maximum occurs.
+    t = np.arange(0, 25 * hour + 1, 60.0)
+    ss = R.skew_surges(_through(DOUBLE_HIGH, t, lag=30 * minute, raise_by=0.3), _turning(DOUBLE_HIGH))
+    assert ss["hw_t"].tolist() == [7 * hour, int(19.5 * hour)]
+    assert ss["predicted_high"].to_numpy() == pytest.approx(1.05)
+    assert ss["skew_surge"].to_numpy() == pytest.approx(0.3, abs=1 * mm)
+
+
+DOUBLE_LOW = [(0, -1.0, "low"), (6, 1.0, "high"), (11.5, -1.0, "low"), (12.5, -0.9, "high"), (13.5, -1.05, "low"),
+              (19.5, 1.0, "high"), (25, -1.0, "low")]
+
+
+def test_rise_inside_a_double_low_water_has_no_skew_surge():
+    # the small rise between the two lows of a double low water is not a high water of its own
+    t = np.arange(0, 25 * hour + 1, 60.0)
+    ss = R.skew_surges(_through(DOUBLE_LOW, t, raise_by=0.2), _turning(DOUBLE_LOW))
+    assert ss["hw_t"].tolist() == [6 * hour, int(19.5 * hour)]
+    assert ss["skew_surge"].to_numpy() == pytest.approx(0.2, abs=1 * mm)
+
+
+def test_forecast_with_history_shorter_than_the_lead_time_gives_no_range():
+    # design notes: the range comes from pairs of residuals one lead time apart; two hours of
+    # history hold none three hours apart
+    hist = pd.Series(0.1, index=_index(13, 10))
+    fc = R.forecast_high_water(0, 0.2, 3 * hour, 2.0, hist, min_history_days=0)
+    assert fc["forecast"] == pytest.approx(2.2) and fc["lower"] is None
+    assert "only 0 pairs" in fc["note"]
