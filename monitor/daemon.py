@@ -211,9 +211,44 @@ class StationRuntime:
     history_at: float = -math.inf
     replay_clock: bool = False
     last_fit_try: float = -math.inf
-    faults_mod: Any = field(default=None, repr=False)
     diag_at: float = -math.inf      # data time of the last drift and clock diagnostics [Unix s]
     diag: dict = field(default_factory=dict)  # their results: "drift", "clock.primary", ...
+    predicted: "PredictionMemo | None" = field(default=None, repr=False)
+
+
+class PredictionMemo:
+    """A model's predicted tide at the sample times already asked for.
+
+    A processing pass asks for the same times more than once (quality control predicts
+    its day of context for each level sensor, then the residual the primary's last hours),
+    and the next pass asks for nearly all of them again, one sample later. Only times not
+    asked for before are predicted; :meth:`forget_before` bounds what is kept.
+    """
+
+    def __init__(self, model: Any):
+        self.model = model
+        self._t = np.empty(0, np.int64)  # [ns since 1970, UTC], sorted, unique
+        self._v = np.empty(0)            # [m]
+
+    def predict(self, times: Any) -> np.ndarray:
+        """The model's prediction at ``times`` (as ``TideModel.predict``) [m]."""
+        t = pd.DatetimeIndex(times).as_unit("ns").asi8
+        pos = np.searchsorted(self._t, t)
+        known = pos < len(self._t)
+        known[known] = self._t[pos[known]] == t[known]
+        if not known.all():
+            new = np.unique(t[~known])
+            v = np.asarray(self.model.predict(new.astype("datetime64[ns]")), dtype=float)
+            order = np.argsort(np.concatenate([self._t, new]), kind="stable")
+            self._t = np.concatenate([self._t, new])[order]
+            self._v = np.concatenate([self._v, v])[order]
+            pos = np.searchsorted(self._t, t)
+        return self._v[pos]
+
+    def forget_before(self, t: float) -> None:
+        """Drop the times before ``t`` [Unix s]."""
+        keep = self._t >= int(t * 1e9)
+        self._t, self._v = self._t[keep], self._v[keep]
 
 
 class Daemon:
@@ -372,21 +407,28 @@ class Daemon:
         self.data_now = end_t if self.data_now is None else max(self.data_now, end_t)
         self._maybe_fit(rt, now)
         model = rt.model
+        rs = self.cfg.residual
+        lookback = int((rs.median_minutes + rs.mean_minutes) * 60) + max(REWRITE_BACK, TREND_BACK)
+        predicted = None
+        if model is not None:
+            if rt.predicted is None or rt.predicted.model is not model:
+                rt.predicted = PredictionMemo(model)
+            predicted = rt.predicted
+            context_s = (st.qc or self.qc.QcSettings()).context_seconds()
+            predicted.forget_before(start_t - max(context_s, lookback))
 
         # 1. quality control (writes per-test flags and observations.flag)
         qc_results: dict = {}
         try:
-            qc_results = self.qc.run_station_qc(store, st, st.qc, start_t, end_t, model, now=now) or {}
+            qc_results = self.qc.run_station_qc(store, st, st.qc, start_t, end_t, predicted, now=now) or {}
         except Exception:
             log.exception("station %s: quality control failed for this window", st.id)
 
         # 2. residual, smoothed residual, inverse barometer
-        rs = self.cfg.residual
-        lookback = int((rs.median_minutes + rs.mean_minutes) * 60) + max(REWRITE_BACK, TREND_BACK)
         obs = store.observations(st.id, "primary", start_t - lookback, end_t)
         if obs.empty:
             return 0
-        pred = model.predict(obs.index) if model is not None else None
+        pred = predicted.predict(obs.index) if predicted is not None else None
         pressure = None
         if "barometer" in st.sensors:
             pressure = store.observations(st.id, "barometer", start_t - lookback - 3600, end_t + 3600)["value"]
@@ -435,6 +477,10 @@ class Daemon:
         return new
 
     def _ensure_extremes(self, rt: StationRuntime, start_t: float, end_t: float) -> None:
+        # Kept while the list reaches 2 days past both ends of the window: a tidal cycle
+        # (about 12.4 h, up to a day where the tide is diurnal) on either side is what skew
+        # surges and the next high water need. Made 3 days back and 10 ahead (past a whole
+        # backfill chunk) so a live daemon remakes it about once a week, not every pass.
         lo, hi = rt.extremes_span
         if rt.extremes is not None and lo <= start_t - 2 * 86400 and hi >= end_t + 2 * 86400:
             return
@@ -508,14 +554,14 @@ class Daemon:
         st, store = rt.cfg, self.store
         out: dict = {}
         usable = lambda o: self.diag.usable_only(o["value"], o["flag"].to_numpy())  # noqa: E731  flags 1, 2, 3 only
-        window = getattr(st.qc, "drift_window", 30 * 86400.0)
+        qs = st.qc or self.qc.QcSettings()
+        window = qs.drift_window
         try:
             if "backup" in st.sensors:
                 p = usable(store.observations(st.id, "primary", int(end_t - window), end_t))
                 b = usable(store.observations(st.id, "backup", int(end_t - window), end_t))
                 if len(p) and len(b):
-                    gap = getattr(st.qc, "gap_limit", 300.0)
-                    out["drift"] = self.diag.sensor_drift(p, b, gap_limit=gap)
+                    out["drift"] = self.diag.sensor_drift(p, b, gap_limit=qs.gap_limit)
             if rt.model is not None:
                 a = int(end_t - self.cfg.daemon.clock_window_days * 86400)
                 levels = {r: usable(store.observations(st.id, r, a, end_t)) for r in st.sensors if r != "barometer"}
@@ -541,6 +587,7 @@ class Daemon:
     def _maybe_fit(self, rt: StationRuntime, now: float) -> None:
         """A station fitted from history gets its first fit as soon as it has enough data."""
         st = rt.cfg
+        # at most one try an hour: a fit reads the whole history (the hour is our choice)
         if not st.fit_from_history or rt.model is not None or now - rt.last_fit_try < 3600:
             return
         rt.last_fit_try = now
