@@ -366,10 +366,6 @@ class DeliverySummary:
     expired: list[int] = field(default_factory=list)
     waiting: int = 0
 
-    def as_dict(self) -> dict:
-        return {"sent": self.sent, "retrying": self.retrying, "expired": self.expired,
-                "waiting": self.waiting}
-
 
 class _ConnectionFailed(Exception):
     """The server could not be reached or refused the session: stop this round."""

@@ -21,7 +21,7 @@ import re
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any, Iterable, Mapping, Sequence
-from zoneinfo import ZoneInfo, ZoneInfoNotFoundError
+from zoneinfo import ZoneInfo
 
 import numpy as np
 import pandas as pd
@@ -808,15 +808,6 @@ def prune_reports(folder: Path, keep_days: int, today: dt.date) -> list[Path]:
             path.unlink(missing_ok=True)
             removed.append(path)
     return removed
-
-
-def check_zone(tz: str) -> str | None:
-    """A problem with a time-zone name, or ``None`` if it is known."""
-    try:
-        ZoneInfo(tz)
-    except (ZoneInfoNotFoundError, ValueError):
-        return f"unknown time zone {tz!r} (use an IANA name such as 'Europe/Lisbon')"
-    return None
 
 
 __all__: Iterable[str] = [

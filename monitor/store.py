@@ -281,11 +281,6 @@ class Store:
             "ON CONFLICT(feed) DO UPDATE SET state = excluded.state, updated_at = excluded.updated_at",
             (feed, json.dumps(state, sort_keys=True), now))
 
-    def save_checkpoint(self, feed: str, state: dict, now: float | None = None) -> None:
-        """Store a feed checkpoint alone (a poll that returned only skipped lines)."""
-        with self.transaction():
-            self._put_checkpoint(feed, state, int(time.time() if now is None else now))
-
     def write_derived(self, station: str, frame: pd.DataFrame) -> int:
         """Upsert derived rows (index: UTC times; columns from DERIVED_COLUMNS). Returns rows written."""
         if frame.empty:
