@@ -280,6 +280,13 @@ class Daemon:
 
             self.outbox = outbox
         self.outbox_worker: OutboxWorker | None = None
+        # Every table the jobs write is created here, before the outbox thread opens its own
+        # connection: schema changes on the processing path would contend with it for the lock.
+        qc.ensure_qc_schema(store.db)
+        if self.engine is not None:
+            self.engine.ensure_alert_schema(store.db)
+        if self.outbox is not None:
+            self.outbox.ensure_outbox_schema(store.db)
         self.stations = {st.id: self._station_runtime(st) for st in cfg.stations}
         # Replay feeds run the rules and the daily reports on the replayed clock, so a replayed
         # storm reads as it would have live. Delivery does not: the outbox keeps the wall clock.
@@ -417,12 +424,10 @@ class Daemon:
             context_s = (st.qc or self.qc.QcSettings()).context_seconds()
             predicted.forget_before(start_t - max(context_s, lookback))
 
-        # 1. quality control (writes per-test flags and observations.flag)
-        qc_results: dict = {}
-        try:
-            qc_results = self.qc.run_station_qc(store, st, st.qc, start_t, end_t, predicted, now=now) or {}
-        except Exception:
-            log.exception("station %s: quality control failed for this window", st.id)
+        # 1. quality control (writes per-test flags and observations.flag). If it fails, the
+        # window fails and is retried on the next pass: samples nobody has checked must never
+        # reach the alert rules (a spike would pass as "not evaluated").
+        qc_results = self.qc.run_station_qc(store, st, st.qc, start_t, end_t, predicted, now=now) or {}
 
         # 2. residual, smoothed residual, inverse barometer
         obs = store.observations(st.id, "primary", start_t - lookback, end_t)

@@ -690,6 +690,8 @@ def ensure_qc_schema(db: Any) -> None:
     ``staff_readings`` (station, t) with reading [m], who, note.
     """
     db = _db(db)
+    if {"qc_tests", "qc_overrides", "staff_readings"} <= set(db.table_names()):
+        return  # no schema statement on the processing path once the tables exist
     db["qc_tests"].create({"station": str, "sensor": str, "t": int, **{c: int for c in TESTS}},
                           pk=("station", "sensor", "t"), if_not_exists=True)
     db["qc_overrides"].create({"station": str, "sensor": str, "t": int, "flag": int, "who": str,
