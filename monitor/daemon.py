@@ -498,15 +498,13 @@ class Daemon:
         sm = d["smoothed"].dropna()
         if sm.empty:
             return None
-        ext = rt.extremes
-        highs = ext[(ext["kind"] == "high") & (ext["time"] > pd.Timestamp(end_t, unit="s", tz="UTC"))]
-        if highs.empty:
+        hw = R.next_high_water(rt.extremes, pd.Timestamp(end_t, unit="s", tz="UTC"))
+        if hw is None:
             return None
         if rt.history is None or end_t - rt.history_at > HISTORY_REFRESH:
             h = self.store.derived(st.id, end_t - int(rs.history_days * 86400), end_t)["smoothed"].dropna()
             rt.history = h.resample("10min").mean() if len(h) else h
             rt.history_at = end_t
-        hw = highs.iloc[0]
         fc = R.forecast_high_water(sm.index[-1].timestamp(), float(sm.iloc[-1]), hw["time"].timestamp(),
                                    float(hw["level"]), rt.history, rs.min_history_days)
         self.store.write_forecast(st.id, fc)

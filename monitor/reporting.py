@@ -256,14 +256,11 @@ def _forecast(store: Any, sid: str, model: Any, start: pd.Timestamp, end: pd.Tim
     recent = history[history.index >= at - pd.Timedelta(hours=1)]
     if recent.empty:
         return None
-    extremes = model.high_low(at, at + pd.Timedelta(hours=14))
-    highs = extremes[extremes["kind"] == "high"]
-    if highs.empty:
+    hw = RS.next_high_water(model.high_low(at, at + pd.Timedelta(hours=18)), at)
+    if hw is None:
         return None
-    hw = pd.Timestamp(highs["time"].iloc[0])
-    hw = hw.tz_localize("UTC") if hw.tz is None else hw.tz_convert("UTC")
-    fc = RS.forecast_high_water(recent.index[-1].timestamp(), float(recent.iloc[-1]), hw.timestamp(),
-                                float(highs["level"].iloc[0]), history)
+    fc = RS.forecast_high_water(recent.index[-1].timestamp(), float(recent.iloc[-1]),
+                                pd.Timestamp(hw["time"]).timestamp(), float(hw["level"]), history)
     return _forecast_row(fc, shift)
 
 

@@ -288,6 +288,21 @@ def forecast_high_water(now_t: float, residual_now: float, hw_t: float, hw_level
     return out
 
 
+def next_high_water(extremes: pd.DataFrame, after: pd.Timestamp) -> pd.Series | None:
+    """The next predicted high water after ``after``: a row of ``extremes`` (``time``, ``level``).
+
+    At a double high water the stand's higher peak is the one that matters at the quay, so
+    highs of one stand (see :func:`_high_water_stands`) count as one, at the higher peak.
+    ``extremes`` must reach at least a quarter M2 period past the first high.
+    """
+    highs = extremes[(extremes["kind"] == "high") & (extremes["time"] > after)]
+    if highs.empty:
+        return None
+    first = _high_water_stands(_secs(pd.DatetimeIndex(highs["time"])))[0]
+    stand = highs.iloc[first]
+    return stand.loc[stand["level"].idxmax()]
+
+
 def _high_water_stands(high_t: np.ndarray) -> list[np.ndarray]:
     """Indices of the predicted high waters grouped into one stand per tidal cycle: highs
     closer than a quarter of the M2 period (a double high water, with a shallow dip between

@@ -168,3 +168,15 @@ def test_forecast_with_history_shorter_than_the_lead_time_gives_no_range():
     fc = R.forecast_high_water(0, 0.2, 3 * hour, 2.0, hist, min_history_days=0)
     assert fc["forecast"] == pytest.approx(2.2) and fc["lower"] is None
     assert "only 0 pairs" in fc["note"]
+
+
+def test_next_high_water_at_a_double_high_water_is_the_higher_peak():
+    # Two predicted highs 2 h apart are one stand (a double high water); the quay meets the
+    # higher one, whichever comes first (common practice, no source).
+    t = pd.to_datetime(["2025-10-20T02:00Z", "2025-10-20T08:00Z", "2025-10-20T10:00Z",
+                        "2025-10-20T14:30Z", "2025-10-20T20:30Z"])
+    ext = pd.DataFrame({"time": t, "level": [0.5, 3.1, 3.3, 0.6, 3.2],
+                        "kind": ["low", "high", "high", "low", "high"]})
+    hw = R.next_high_water(ext, pd.Timestamp("2025-10-20T03:00Z"))
+    assert hw["time"] == t[2] and hw["level"] == pytest.approx(3.3)
+    assert R.next_high_water(ext, pd.Timestamp("2025-10-20T21:00Z")) is None
