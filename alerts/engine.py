@@ -173,6 +173,18 @@ def _counted(rule: Rule, samples: pd.DataFrame) -> np.ndarray:
     return ok
 
 
+def _record_events(db, station, rule, events, episode_id, samples, t_all, ok_all, at, context, t_now, clock,
+                   results: list) -> int | None:
+    """Record each event of one step of a rule (queueing its messages); returns the open episode."""
+    for ev in events:
+        facts = _facts(samples, t_all, ok_all, at, context)
+        episode_id, info = _on_event(db, station, rule, ev, episode_id, facts, t_now, clock=clock)
+        results.append(info)
+        if ev.kind == "cleared":
+            episode_id = None
+    return episode_id
+
+
 def _facts(samples: pd.DataFrame, t_all: np.ndarray, ok_all: np.ndarray, t: int,
            context: AlertContext) -> dict:
     facts: dict[str, Any] = {}
@@ -384,12 +396,8 @@ def _evaluate_rule(db, station: StationView, rule: Rule, samples: pd.DataFrame, 
             i = counted[k]
             t, v = int(t_all[i]), float(values_all[i])
             state, events = advance(rule, state, t, v)
-            for ev in events:
-                facts = _facts(samples, t_all, ok_all, t, context)
-                episode_id, info = _on_event(db, station, rule, ev, episode_id, facts, t_now, clock=clock)
-                results.append(info)
-                if ev.kind == "cleared":
-                    episode_id = None
+            episode_id = _record_events(db, station, rule, events, episode_id, samples, t_all, ok_all, t,
+                                        context, t_now, clock, results)
             if episode_id is not None:
                 _track_peak(db, rule, episode_id, t, v)
             k += 1
@@ -403,12 +411,8 @@ def _evaluate_rule(db, station: StationView, rule: Rule, samples: pd.DataFrame, 
         else:
             state, events = advance(rule, state, t_now, value)
             ok_all = _counted(rule, samples)
-            for ev in events:
-                facts = _facts(samples, t_all, ok_all, t_now, context)
-                episode_id, info = _on_event(db, station, rule, ev, episode_id, facts, t_now, clock=clock)
-                results.append(info)
-                if ev.kind == "cleared":
-                    episode_id = None
+            episode_id = _record_events(db, station, rule, events, episode_id, samples, t_all, ok_all, t_now,
+                                        context, t_now, clock, results)
             if rule.watch == "equipment_fault":
                 more, announced = _fault_changes(db, station, rule, state, events, episode_id, samples,
                                                  t_all, ok_all, t_now, context, clock)

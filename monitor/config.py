@@ -19,13 +19,13 @@ import dataclasses
 import difflib
 import math
 import re
-import tomllib
 import zoneinfo
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any, Callable
 
 from monitor.errors import UserError
+from predictor.tomlfile import read_toml
 
 # Conversion of each accepted unit to metres (levels) or hectopascals (pressure).
 LEVEL_UNITS = {"m": 1.0, "cm": 0.01, "mm": 0.001, "ft": 0.3048}  # 1 ft = 0.3048 m exactly (international foot, 1959)
@@ -596,16 +596,7 @@ def load_config(path: str | Path) -> Config:
         lists every problem, one per line, each with its key path.
     """
     path = Path(path)
-    try:
-        text = path.read_text(encoding="utf-8")
-    except FileNotFoundError:
-        raise UserError(f"{path}: configuration file not found") from None
-    except (OSError, UnicodeDecodeError) as exc:
-        raise UserError(f"{path}: cannot read the configuration ({exc})") from None
-    try:
-        raw = tomllib.loads(text)
-    except tomllib.TOMLDecodeError as exc:
-        raise UserError(f"{path}: not valid TOML: {exc}") from None
+    raw = read_toml(path, "configuration file", UserError)
     cfg, errors = validate_config(raw, path.resolve().parent, path)
     if errors:
         listing = "\n".join(f"  {e}" for e in errors)

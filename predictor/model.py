@@ -30,7 +30,6 @@ from __future__ import annotations
 
 import copy
 import math
-import tomllib
 from dataclasses import dataclass, field
 from pathlib import Path
 
@@ -39,6 +38,7 @@ import numpy as np
 from predictor.astro import astronomical_arguments
 from predictor.constituents import doodson_matrix, get
 from predictor.nodal import equilibrium_arguments, nodal_factors
+from predictor.tomlfile import read_toml
 
 __all__ = ["TideModel", "ConstantsFileError", "to_unix_seconds", "SECONDS_PER_YEAR"]
 
@@ -454,16 +454,7 @@ class TideModel:
             message names the file and the entry.
         """
         path = Path(path)
-        try:
-            text = path.read_text(encoding="utf-8")
-        except FileNotFoundError:
-            raise ConstantsFileError(f"{path}: no such constants file") from None
-        except (OSError, UnicodeDecodeError) as exc:
-            raise ConstantsFileError(f"{path}: cannot read ({exc})") from None
-        try:
-            data = tomllib.loads(text)
-        except tomllib.TOMLDecodeError as exc:
-            raise ConstantsFileError(f"{path}: not valid TOML: {exc}") from None
+        data = read_toml(path, "constants file", ConstantsFileError)
         return cls.from_dict(data, where=f"{path}: ")
 
     def save(self, path) -> None:
