@@ -3,7 +3,10 @@
 Definitions follow NOAA (2003): mean high water (MHW) is the mean of all high waters,
 mean higher high water (MHHW) the mean of the higher high water of each tidal day
 (24.84 h; a day with one high water counts it as its higher high), and likewise MLW
-and MLLW.  The tidal days start where they split the fewest tides (not on a high or
+and MLLW. There is one high and one low water per tidal cycle: the two peaks of a
+double high water are one high water, at the higher peak, and the "relatively small
+depression" between them is no low water (handbook glossary); likewise for a double
+low water (:func:`predictor.extrema.classify_stands` decides from the curve's shape).  The tidal days start where they split the fewest tides (not on a high or
 low water); near each crossover of the diurnal inequality two equal pairings of
 high waters remain possible, which can move MHHW or MLLW by up to about 1 cm for a
 strongly mixed tide (the handbook ties the tidal day to the Moon's transit at the
@@ -28,7 +31,7 @@ from __future__ import annotations
 
 import numpy as np
 
-from predictor.extrema import turning_points
+from predictor.extrema import classify_stands, turning_points
 from predictor.timeutil import parse_step
 
 __all__ = ["tidal_datums", "DATUM_ORDER", "DATUM_DESCRIPTIONS", "TIDAL_DAY_SECONDS"]
@@ -111,7 +114,12 @@ def tidal_datums(model, start=None, years: float = NODAL_CYCLE_YEARS, step="15mi
     ns = np.int64(round(t0 * 1e9)) + np.arange(n, dtype=np.int64) * np.int64(round(step_s * 1e9))
     msl = float(np.mean(tide.predict(ns.astype("datetime64[ns]"))))
 
-    t, level, is_high = turning_points(tide, t0, t1, step_s)
+    # one high and one low water per tidal cycle: a stand's other peak and its dip are left
+    # out; a day beyond each end lets a stand cut by the period's ends be told apart too
+    t, level, is_high = turning_points(tide, t0 - 86400.0, t1 + 86400.0, step_s)
+    _, principal, _ = classify_stands(t, level, is_high)
+    keep = principal & (t >= t0) & (t <= t1)
+    t, level, is_high = t[keep], level[keep], is_high[keep]
     if not is_high.any() or is_high.all():
         # no tide (no constituents): every datum is the mean level
         out = {k: msl for k in ("HAT", "MHHW", "MHW", "MTL", "MSL", "MLW", "MLLW", "LAT")}
