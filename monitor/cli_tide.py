@@ -114,19 +114,41 @@ def run_table(args) -> int:
         f"{'date':<15} {'time':>5} {'UTC':>6}  {'tide':<4} {'height [m]':>10}",
     ]
     last_date = None
-    for row in events.itertuples():
-        local = row.time.tz_convert(tz)
+    notes = _stand_notes(events)
+    for row, note in zip(events.itertuples(), notes):
+        # to the nearest minute (the turning point is computed to the second)
+        local = row.time.round("min").tz_convert(tz)
         date = local.strftime("%a %Y-%m-%d")
         shown = date if date != last_date else ""
         last_date = date
-        lines.append(f"{shown:<15} {local.strftime('%H:%M'):>5} {offset_text(local.utcoffset()):>6}  "
-                     f"{('HW' if row.kind == 'high' else 'LW'):<4} {row.level + offset:>10.2f}")
+        lines.append((f"{shown:<15} {local.strftime('%H:%M'):>5} {offset_text(local.utcoffset()):>6}  "
+                      f"{('HW' if row.kind == 'high' else 'LW'):<4} {row.level + offset:>10.2f}  {note}").rstrip())
     if events.empty:
         lines.append("(no high or low water in this period)")
-    lines += ["", "HW high water, LW low water; astronomical tide only: weather can change levels and times a lot.",
-              CAUTION]
+    lines += ["", "HW high water, LW low water; astronomical tide only: weather can change levels and times a lot."]
+    if any(notes):
+        lines.append("A double high (low) water is one stand: both peaks are listed, the higher (lower) one is its "
+                     "high (low) water, and the small dip (rise) between them is no tide (NOAA 2003).")
+    lines.append(CAUTION)
     sys.stdout.write("\n".join(lines) + "\n")
     return 0
+
+
+def _stand_notes(events: pd.DataFrame) -> list[str]:
+    """A note per row marking the peaks of a double high (or low) water as one stand."""
+    if events.empty or "stand" not in events:
+        return [""] * len(events)
+    size = events.groupby("stand")["stand"].transform("size").to_numpy()
+    nth = events.groupby("stand").cumcount().to_numpy()
+    out = []
+    for row, k, i in zip(events.itertuples(), size, nth):
+        if k < 2:
+            out.append("")
+            continue
+        what = "double HW" if row.kind == "high" else "double LW"
+        word = "higher" if row.kind == "high" else "lower"
+        out.append(f"{what}, peak {i + 1} of {k}" + (f" ({word})" if row.principal else ""))
+    return out
 
 
 # --------------------------------------------------------------------------- datums

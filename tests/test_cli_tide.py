@@ -118,3 +118,64 @@ def test_datums_table_is_aligned_with_units(capsys, constants):
     rows = [l for l in out.splitlines() if l[:4] in ("HAT ", "MHW ", "LAT ", "MSL ")]
     assert code == 0 and "height [m]" in out and len(rows) == 4
     assert len({l.index(".") for l in rows}) == 1  # decimal points line up
+
+
+def test_table_rounds_times_to_the_nearest_minute(capsys, constants):
+    # A turning point at hh:mm:40 is shown at the next minute; truncating it made every time in
+    # the table half a minute early on average.
+    code, out, _ = _run(capsys, "table", constants, "--days", "3", "--start", "2025-03-01", "--tz", "UTC")
+    events = TideModel.load(constants).high_low("2025-03-01T00:00Z", "2025-03-04T00:00Z")
+    shown = [r[0] for r in _table_rows(out)]
+    want = [t.round("min").strftime("%H:%M") for t in events["time"]]
+    assert code == 0 and shown == want
+    assert any(t.second >= 30 for t in events["time"])  # some must round up
+
+
+DOUBLE_HIGH = """\
+mean = 0.0
+[[constituents]]
+name = "M2"
+amplitude = 1.2
+phase = 100
+[[constituents]]
+name = "S2"
+amplitude = 0.35
+phase = 130
+[[constituents]]
+name = "M4"
+amplitude = 0.3
+phase = 20
+[[constituents]]
+name = "MS4"
+amplitude = 0.15
+phase = 50
+[[constituents]]
+name = "M6"
+amplitude = 0.1
+phase = 120
+"""
+
+
+def test_table_lists_both_peaks_of_a_double_high_water_as_one_stand(capsys, tmp_path):
+    # NOAA (2003) glossary: a double high water is one high water; the dip is no low water
+    path = tmp_path / "dhw.toml"
+    path.write_text(DOUBLE_HIGH)
+    code, out, _ = _run(capsys, "table", path, "--days", "2", "--start", "2031-03-08", "--tz", "UTC")
+    rows = _table_rows(out)
+    assert code == 0
+    assert sum(r[3] == "double HW, peak 1 of 2" for r in rows) >= 3
+    assert sum(r[3].startswith("double HW, peak 2 of 2") for r in rows) >= 3
+    assert all(r[2] < -0.5 for r in rows if r[1] == "LW")  # no dip is shown as a low water
+    assert "one stand" in out
+
+
+def _table_rows(out):
+    """(time, HW/LW, height, note) of each tide row of ``table``'s output."""
+    import re
+
+    rows = []
+    for line in out.splitlines():
+        m = re.search(r"(\d\d:\d\d) +[+-]\d\d:\d\d  (HW|LW) +(-?\d+\.\d+) *(.*)$", line)
+        if m:
+            rows.append((m.group(1), m.group(2), float(m.group(3)), m.group(4)))
+    return rows
