@@ -74,9 +74,12 @@ class AlertLevel:
 class TideRow:
     """One predicted high or low water, what was observed, and the skew surge.
 
-    ``skew`` is the highest observed level in the tide's cycle minus the predicted high water
-    (for a low water: the lowest observed minus the predicted low), in metres; ``None`` when
-    the cycle has no usable observations. ``partial`` is true when the cycle has gaps.
+    ``skew`` (high waters only) is the skew surge: the highest observed level in the tide's
+    cycle minus the predicted high water, in metres. Its low-water counterpart, the lowest
+    observed level in the cycle minus the predicted low water, is ``low_departure`` (low waters
+    only). Both are ``None`` when the cycle has no usable observations; ``partial`` is true
+    when the cycle has gaps. ``stand`` describes a peak of a double high (low) water, whose
+    stand is one tide (NOAA 2003): empty for an ordinary tide.
     """
 
     kind: str
@@ -86,6 +89,8 @@ class TideRow:
     observed_level: float | None = None
     skew: float | None = None
     partial: bool = False
+    low_departure: float | None = None
+    stand: str = ""
 
 
 @dataclass(frozen=True)

@@ -35,21 +35,32 @@ EPISODE_JOIN_S = 1800.0
 def low_water_differences(observed: pd.Series, extremes: pd.DataFrame) -> pd.DataFrame:
     """For each predicted low water, the lowest observed level in its cycle minus the prediction.
 
-    The cycle runs between the neighbouring predicted high waters (the mirror image of the
-    skew surge's cycle). Returns ``time``, ``predicted``, ``observed``, ``observed_time``,
-    ``difference`` [m], one row per low water with usable observations in its cycle.
+    The low-water counterpart of the skew surge, under its own name (the skew surge is a
+    high-water quantity). The cycle runs between the neighbouring predicted high waters (the
+    mirror image of the skew surge's cycle); a double low water is one low water, at its lower
+    trough, and the peaks of a double high water bound the cycle from their side of the stand
+    (:func:`monitor.residual.tide_stands`). Returns ``time``, ``predicted``, ``observed``,
+    ``observed_time``, ``difference`` [m], one row per low water with usable observations in
+    its cycle.
 
     References
     ----------
-    Williams, J., et al. (2016). Tide and skew surge independence. GRL 43 (skew surge, applied
-    here to low waters as a negative surge measure).
+    Williams, J., et al. (2016). Tide and skew surge independence. GRL 43 (skew surge, mirrored
+    here at low water).
     """
+    from monitor.residual import tide_stands
+
     rows = []
-    ext = extremes.sort_values("time").reset_index(drop=True)
+    cols = ["time", "predicted", "observed", "observed_time", "difference"]
+    if extremes is None or extremes.empty:
+        return pd.DataFrame(rows, columns=cols)
+    ext = tide_stands(extremes)
     obs = observed.dropna()
-    for i, row in ext[ext["kind"] == "low"].iterrows():
-        before = ext.loc[: i - 1][ext.loc[: i - 1, "kind"] == "high"]["time"]
-        after = ext.loc[i + 1:][ext.loc[i + 1:, "kind"] == "high"]["time"]
+    highs = ext[ext["kind"] == "high"]["time"]
+    for _, g in ext[ext["kind"] == "low"].groupby("stand", sort=True):
+        row = g[g["principal"]].iloc[0]
+        before = highs[highs < g["time"].min()]
+        after = highs[highs > g["time"].max()]
         lo = before.iloc[-1] if len(before) else row["time"] - pd.Timedelta(hours=6.21)
         hi = after.iloc[0] if len(after) else row["time"] + pd.Timedelta(hours=6.21)
         window = obs[(obs.index >= lo) & (obs.index <= hi)]
@@ -58,7 +69,7 @@ def low_water_differences(observed: pd.Series, extremes: pd.DataFrame) -> pd.Dat
         at = window.idxmin()
         rows.append({"time": row["time"], "predicted": float(row["level"]), "observed": float(window[at]),
                      "observed_time": at, "difference": float(window[at] - row["level"])})
-    return pd.DataFrame(rows, columns=["time", "predicted", "observed", "observed_time", "difference"])
+    return pd.DataFrame(rows, columns=cols)
 
 
 def qc_counts(tests: pd.DataFrame) -> dict[str, dict[int, int]]:
@@ -318,6 +329,7 @@ def _staff(store: Any, sid: str, end: pd.Timestamp, weeks: int, shift: float) ->
 def _tides(model: Any, usable: pd.Series, start: pd.Timestamp, end: pd.Timestamp,
            shift: float) -> list[R.TideRow]:
     """Predicted high and low waters of the day against the usable observations [m, station datum]."""
+    from monitor import residual as RS
     from monitor.residual import skew_surges
 
     extremes = model.high_low(start - pd.Timedelta(hours=14), end + pd.Timedelta(hours=14))
@@ -327,27 +339,38 @@ def _tides(model: Any, usable: pd.Series, start: pd.Timestamp, end: pd.Timestamp
     lows = low_water_differences(usable, extremes) if len(usable) else pd.DataFrame(columns=["time"])
     lows = lows.set_index("time") if len(lows) else lows
     rows = []
-    for _, e in extremes.iterrows():
+    ext = RS.tide_stands(extremes) if len(extremes) else extremes.assign(stand=0, principal=True)
+    size = ext.groupby("stand")["stand"].transform("size") if len(ext) else pd.Series(dtype=int)
+    nth = ext.groupby("stand").cumcount() if len(ext) else pd.Series(dtype=int)
+    for i, e in ext.iterrows():
         t = e["time"]
         if not (start <= t < end):
             continue
         level = float(e["level"]) - shift
+        stand = ""
+        if size[i] > 1:
+            stand = (f"double {'high' if e['kind'] == 'high' else 'low'} water, peak {nth[i] + 1} of {size[i]}"
+                     + (", the stand's tide" if e["principal"] else ""))
+        if not e["principal"]:
+            rows.append(R.TideRow(e["kind"], t, level, stand=stand))
+            continue
         if e["kind"] == "high":
             key = int(t.timestamp())
             near = [k for k in (highs.index if len(highs) else []) if abs(int(k) - key) <= 60]
             if near:
                 h = highs.loc[near[0]]
                 rows.append(R.TideRow("high", t, level, _ts(h["observed_t"]), float(h["observed_high"]) - shift,
-                                      float(h["skew_surge"])))
+                                      float(h["skew_surge"]), stand=stand))
                 continue
-            rows.append(R.TideRow("high", t, level, partial=len(usable) > 0))
+            rows.append(R.TideRow("high", t, level, partial=len(usable) > 0, stand=stand))
         else:
             if len(lows) and t in lows.index:
                 w = lows.loc[t]
                 rows.append(R.TideRow("low", t, level, w["observed_time"], float(w["observed"]) - shift,
-                                      float(w["difference"]), partial=not _covered(usable, w["observed_time"])))
+                                      partial=not _covered(usable, w["observed_time"]),
+                                      low_departure=float(w["difference"]), stand=stand))
                 continue
-            rows.append(R.TideRow("low", t, level, partial=len(usable) > 0))
+            rows.append(R.TideRow("low", t, level, partial=len(usable) > 0, stand=stand))
     return rows
 
 

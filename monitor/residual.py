@@ -9,6 +9,8 @@ from __future__ import annotations
 import numpy as np
 import pandas as pd
 
+from predictor.extrema import classify_stands
+
 # QARTOD flags (U.S. IOOS 2021): 4 fail and 9 missing never enter the smoothed residual.
 _UNUSABLE = (4, 9)
 #: Inverse-barometer response [m/hPa]: about 1 cm of sea level per hPa (Pugh & Woodworth 2014,
@@ -156,21 +158,24 @@ def derive(observed: pd.DataFrame, predicted: np.ndarray | None, pressure: pd.Se
 def skew_surges(observed: pd.Series, extremes: pd.DataFrame, max_gap_s: float = 3600.0) -> pd.DataFrame:
     """Skew surge of every complete tidal cycle.
 
-    A cycle runs from the predicted low water before a predicted high water to the one
+    A cycle runs from the predicted low water before a predicted high-water stand to the one
     after it (half an M2 period either side when a low water is not given). It is complete
     when the observations reach its end, start within ``max_gap_s`` of its start, and have
     no gap longer than ``max_gap_s`` inside it. Skew surge = highest observed level within
-    the cycle - the predicted high water (whatever their times). A double high water
-    (predicted highs less than a quarter M2 period apart) is one cycle, from the low
-    before the first high to the low after the second, and its predicted high water is
-    the higher of the two; the small rise inside a double low water is no cycle.
+    the cycle - the predicted high water (whatever their times). A double high water is one
+    stand, one cycle, and its predicted high water is the higher peak; the small rise inside
+    a double low water is no cycle. Stands come from the shape of the predicted curve (the
+    ``stand`` and ``principal`` columns of :func:`predictor.extrema.high_low`, or, for a
+    table without them, :func:`predictor.extrema.classify_stands` on its turning points),
+    never from a fixed time gap between peaks.
 
     Parameters
     ----------
     observed : Series
         Usable observed levels [m], UTC index (fail and missing samples removed).
     extremes : DataFrame
-        Predicted turning points: ``time`` (UTC), ``level`` [m], ``kind`` ('high'/'low').
+        Predicted turning points: ``time`` (UTC), ``level`` [m], ``kind`` ('high'/'low'),
+        optionally ``stand`` and ``principal``.
 
     Returns
     -------
@@ -182,6 +187,7 @@ def skew_surges(observed: pd.Series, extremes: pd.DataFrame, max_gap_s: float = 
     ----------
     Williams, J., Horsburgh, K. J., Williams, J. A., Proctor, R. N. F. (2016). Tide and skew
     surge independence: new insights for flood risk. Geophys. Res. Lett. 43.
+    NOAA (2003). Computational Techniques for Tidal Datums Handbook (glossary: double high water).
     """
     cols = ["hw_t", "predicted_high", "observed_high", "observed_t", "skew_surge"]
     obs = observed.dropna()
@@ -189,25 +195,17 @@ def skew_surges(observed: pd.Series, extremes: pd.DataFrame, max_gap_s: float = 
         return pd.DataFrame(columns=cols)
     t_obs = _secs(obs.index)
     v_obs = obs.to_numpy(dtype=float)
-    ext_t = _secs(pd.DatetimeIndex(extremes["time"]))
-    kinds = extremes["kind"].to_numpy()
-    levels = extremes["level"].to_numpy(dtype=float)
-    order = np.argsort(ext_t, kind="stable")
-    ext_t, kinds, levels = ext_t[order], kinds[order], levels[order]
-    lows = ext_t[kinds == "low"]
-    high_t, high_lv = ext_t[kinds == "high"], levels[kinds == "high"]
+    ext = tide_stands(extremes)
+    lows = ext.loc[(ext["kind"] == "low") & ext["principal"], "t"].to_numpy()
     rows = []
-    for g in _high_water_stands(high_t):
-        first, last = high_t[g[0]], high_t[g[-1]]
-        top = g[int(np.argmax(high_lv[g]))]
-        tk, lv = high_t[top], high_lv[top]
+    for _, g in ext[ext["kind"] == "high"].groupby("stand", sort=True):
+        first, last = g["t"].min(), g["t"].max()
+        top = g[g["principal"]].iloc[0]
+        tk, lv = float(top["t"]), float(top["level"])
         before = lows[lows < first]
         after = lows[lows > last]
         start = before[-1] if len(before) and first - before[-1] < 2 * HALF_M2 else first - HALF_M2
         end = after[0] if len(after) and after[0] - last < 2 * HALF_M2 else last + HALF_M2
-        if end - start < HALF_M2:
-            # the small rise between the two lows of a double low water, not a tidal cycle
-            continue
         i0 = np.searchsorted(t_obs, start, side="left")
         i1 = np.searchsorted(t_obs, end, side="right")
         if i1 - i0 < 2 or t_obs[-1] < end:
@@ -217,8 +215,39 @@ def skew_surges(observed: pd.Series, extremes: pd.DataFrame, max_gap_s: float = 
         if np.max(np.diff(edges)) > max_gap_s:
             continue
         k = i0 + int(np.argmax(v_obs[i0:i1]))
-        rows.append((int(round(tk)), float(lv), float(v_obs[k]), int(t_obs[k]), float(v_obs[k] - lv)))
+        rows.append((int(round(tk)), lv, float(v_obs[k]), int(t_obs[k]), float(v_obs[k] - lv)))
     return pd.DataFrame(rows, columns=cols)
+
+
+def tide_stands(extremes: pd.DataFrame) -> pd.DataFrame:
+    """Predicted turning points as high- and low-water stands, in time order.
+
+    Returns a copy with ``t`` [s, Unix], ``stand`` (the peaks of a double high water share one)
+    and ``principal`` (the stand's high or low water of record); the dip inside a double high
+    water (the rise inside a double low water) is dropped. A table from
+    :func:`predictor.extrema.high_low` already carries ``stand`` and ``principal``; for any other
+    table of alternating turning points they are decided here from its levels.
+
+    References
+    ----------
+    NOAA (2003). Computational Techniques for Tidal Datums Handbook (glossary: double high water).
+    """
+    ext = extremes.copy()
+    ext["t"] = _secs(pd.DatetimeIndex(ext["time"]))
+    ext = ext.sort_values("t", kind="stable").reset_index(drop=True)
+    if "stand" not in ext.columns or "principal" not in ext.columns:
+        # rows of one kind in a row are one stand already (a table that left the dip out)
+        high = (ext["kind"] == "high").to_numpy()
+        level = ext["level"].to_numpy(dtype=float)
+        run = np.concatenate([[0], np.cumsum(high[1:] != high[:-1])]) if len(ext) else np.zeros(0, int)
+        key = np.where(high, level, -level)
+        rep = pd.Series(key).groupby(run).idxmax().to_numpy()
+        stand, principal, dip = classify_stands(ext["t"].to_numpy()[rep], level[rep], high[rep])
+        ext["stand"] = stand[run]
+        ext["principal"] = np.isin(np.arange(len(ext)), rep[principal])
+        ext = ext[~dip[run]].reset_index(drop=True)
+    ext["principal"] = ext["principal"].astype(bool)
+    return ext
 
 
 def forecast_high_water(now_t: float, residual_now: float, hw_t: float, hw_level: float,
@@ -291,26 +320,17 @@ def forecast_high_water(now_t: float, residual_now: float, hw_t: float, hw_level
 def next_high_water(extremes: pd.DataFrame, after: pd.Timestamp) -> pd.Series | None:
     """The next predicted high water after ``after``: a row of ``extremes`` (``time``, ``level``).
 
-    At a double high water the stand's higher peak is the one that matters at the quay, so
-    highs of one stand (see :func:`_high_water_stands`) count as one, at the higher peak.
-    ``extremes`` must reach at least a quarter M2 period past the first high.
+    At a double high water the stand's higher peak is the one that matters at the quay, so the
+    peaks of one stand (see :func:`tide_stands`) count as one, at the higher of the peaks still
+    to come. ``extremes`` must reach past the stand's last peak.
     """
-    highs = extremes[(extremes["kind"] == "high") & (extremes["time"] > after)]
+    ext = tide_stands(extremes)
+    after_t = _secs(pd.DatetimeIndex([pd.Timestamp(after)]))[0]
+    highs = ext[(ext["kind"] == "high") & (ext["t"] > after_t)]
     if highs.empty:
         return None
-    first = _high_water_stands(_secs(pd.DatetimeIndex(highs["time"])))[0]
-    stand = highs.iloc[first]
-    return stand.loc[stand["level"].idxmax()]
-
-
-def _high_water_stands(high_t: np.ndarray) -> list[np.ndarray]:
-    """Indices of the predicted high waters grouped into one stand per tidal cycle: highs
-    closer than a quarter of the M2 period (a double high water, with a shallow dip between
-    them) belong to one cycle (common practice, no source)."""
-    if len(high_t) == 0:
-        return []
-    cut = np.flatnonzero(np.diff(high_t) >= HALF_M2 / 2) + 1
-    return np.split(np.arange(len(high_t)), cut)
+    stand = highs[highs["stand"] == highs["stand"].iloc[0]]
+    return stand.loc[stand["level"].idxmax()].drop(labels=["t"])
 
 
 def _secs(index: pd.DatetimeIndex) -> np.ndarray:

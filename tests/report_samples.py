@@ -65,7 +65,10 @@ def sample_report(day: dt.date = dt.date(2024, 3, 12), *, tz: str = TZ, name: st
             continue
         at = window["observed"].idxmax() if kind == "high" else window["observed"].idxmin()
         obs = float(window.loc[at, "observed"])
-        tides.append(TideRow(kind, t, level, at, obs, obs - level, partial=gap is not None))
+        if kind == "high":
+            tides.append(TideRow(kind, t, level, at, obs, obs - level, partial=gap is not None))
+        else:
+            tides.append(TideRow(kind, t, level, at, obs, partial=gap is not None, low_departure=obs - level))
     levels = [AlertLevel("Quay apron wet", 3.60), AlertLevel("Sill depth short", 0.90, direction="below"),
               AlertLevel("Surge watch", 0.30, quantity="residual")]
     alerts = [] if empty else [AlertEpisodeRow(

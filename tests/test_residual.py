@@ -180,3 +180,55 @@ def test_next_high_water_at_a_double_high_water_is_the_higher_peak():
     hw = R.next_high_water(ext, pd.Timestamp("2025-10-20T03:00Z"))
     assert hw["time"] == t[2] and hw["level"] == pytest.approx(3.3)
     assert R.next_high_water(ext, pd.Timestamp("2025-10-20T21:00Z")) is None
+
+
+# peaks 3.3 h apart with a shallow dip in a 12.2 h cycle: one stand (NOAA 2003 glossary, double
+# high water), the higher peak first
+WIDE_DOUBLE_HIGH = [(0, -1.0, "low"), (4.45, 1.05, "high"), (6.1, 0.92, "low"), (7.75, 1.0, "high"),
+                    (12.2, -1.0, "low"), (16.65, 1.05, "high"), (18.3, 0.92, "low"), (19.95, 1.0, "high"),
+                    (24.4, -1.0, "low")]
+
+
+def test_double_high_water_with_peaks_3_h_apart_is_one_cycle_with_the_surge_on_its_second_peak():
+    # The stand is told by its shape (a dip of 8-13 cm in a 2 m range), not by the time between
+    # its peaks: a 0.5 m surge on the lower second peak makes the cycle's skew surge 0.45 m, the
+    # highest observed level less the predicted high water (Williams et al. 2016); no cycle is
+    # lost. A fixed quarter-period rule split each stand into two cycles under 6.21 h and
+    # dropped both.
+    t = np.arange(0, 24.4 * hour + 1, 60.0)
+    surge = sum(0.5 * np.exp(-0.5 * ((t - c * hour) / (40 * minute)) ** 2) for c in (7.75, 19.95))
+    obs = _through(WIDE_DOUBLE_HIGH, t) + pd.Series(surge, index=pd.to_datetime(t, unit="s", utc=True))
+    ss = R.skew_surges(obs, _turning(WIDE_DOUBLE_HIGH))
+    assert ss["hw_t"].tolist() == [round(4.45 * hour), round(16.65 * hour)]
+    assert ss["predicted_high"].to_numpy() == pytest.approx(1.05)
+    assert ss["skew_surge"].to_numpy() == pytest.approx(0.45, abs=1 * mm)
+
+
+def test_skew_surge_at_a_double_high_water_port_from_the_predicted_stands():
+    # The extremes as the predictor makes them (both peaks listed, the dip left out) for an
+    # invented double-high-water port whose peaks come 2.8-3.3 h apart; the observed sea is the
+    # tide synthesised independently (tests/reference_tide.py) plus 0.4 m on every second peak.
+    import reference_tide as ref
+    from predictor import TideModel
+
+    g2 = 100.0
+    port = {"M2": (1.2, g2), "S2": (0.35, g2 + 30), "M4": (0.30, 2 * g2 + 180), "MS4": (0.15, 2 * g2 + 210),
+            "M6": (0.10, (3 * g2 + 180) % 360)}
+    model = TideModel(mean=0.0, constituents=[{"name": n, "amplitude": a, "phase": g % 360}
+                                              for n, (a, g) in port.items()])
+    start = pd.Timestamp("2031-03-06T00:00Z")
+    ext = model.high_low(start - pd.Timedelta(hours=14), start + pd.Timedelta(days=4))
+    second = ext[(ext["kind"] == "high") & (ext.groupby("stand").cumcount() == 1)]
+    assert len(second) >= 6  # double high waters these days
+    t = start.timestamp() + np.arange(0, 3.5 * 86400, 60.0)
+    bump = sum(0.4 * np.exp(-0.5 * ((t - s.timestamp()) / (30 * minute)) ** 2) for s in second["time"])
+    obs = pd.Series(ref.tide(t, 0.0, port) + bump, index=pd.to_datetime(t, unit="s", utc=True))
+    ss = R.skew_surges(obs, ext)
+    stands = ext[(ext["kind"] == "high") & ext["principal"]]
+    inside = stands[(stands["time"] > start + pd.Timedelta(hours=7)) & (stands["time"] < start + pd.Timedelta(days=3))]
+    assert set(int(round(x.timestamp())) for x in inside["time"]) <= set(ss["hw_t"])  # no cycle lost
+    doubles = ss[ss["hw_t"].isin([int(round(x.timestamp())) for x in
+                                   ext.loc[ext["stand"].isin(second["stand"]) & ext["principal"], "time"]])]
+    # a 0.4 m bump on a peak no higher than the stand's high water: the skew surge is 0.4 m
+    # less what the second peak stands below the first (at most 0.16 m here), never millimetres
+    assert (doubles["skew_surge"] > 0.2).all() and len(doubles) >= 5
