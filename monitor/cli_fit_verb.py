@@ -1,7 +1,7 @@
 """The ``fit`` verb: harmonic constants from a CSV of observed levels.
 
 ``quaywatch fit OBS.csv [-o CONSTANTS.toml] [--json] [--tz ZONE] [--robust] [--rayleigh R]
-[--trend]``. The CSV reader :func:`read_level_csv` is shared with the daemon's backfill.
+[--trend] [--infer auto|equilibrium|none]``. The CSV reader :func:`read_level_csv` is shared with the daemon's backfill.
 """
 from __future__ import annotations
 
@@ -176,7 +176,7 @@ def model_summary(model) -> dict:
         out["trend"] = float(trend or 0.0)
     out["constituents"] = [dict(c) for c in _constituent_dicts(model)]
     for key in ("rms", "variance_explained", "record_start", "record_end", "n_samples", "duration_days",
-                "sample_interval_s", "rayleigh", "method", "confidence", "trend_epoch", "dropped"):
+                "sample_interval_s", "rayleigh", "method", "confidence", "trend_epoch", "dropped", "inferred"):
         if key in meta:
             out[key] = meta[key]
     out["units"] = {"mean": "m", "amplitude": "m", "phase": "deg (Greenwich, UTC)", "speed": "deg/h",
@@ -214,6 +214,14 @@ def _table(model, source) -> str:
         rows.append(f"{c['name']:<6} {num('speed', '13.7f')} {num('amplitude', '12.4f')} "
                     f"{num('amplitude_ci', '10.4f')} {num('phase', '10.2f')} {num('phase_ci', '10.2f')} "
                     f"{num('snr', '9.3g')}")
+    inferred = meta.get("inferred") or []
+    if inferred:
+        rows.append("")
+        rows.append(f"{len(inferred)} constituent(s) inferred, not fitted (the record cannot resolve them; "
+                    "amplitude and phase taken from a fitted neighbour, Foreman 1977):")
+        for d in inferred:
+            rows.append(f"  {d['name']} from {d['from']}: amplitude x {d['ratio']:.3f}, phase "
+                        f"{d['phase_difference']:+.1f} deg ({d['source']})")
     dropped = meta.get("dropped") or []
     if dropped:
         rows.append("")
@@ -255,11 +263,12 @@ def run_fit(args) -> int:
         if args.output:
             print(f"constants written to {args.output}", file=sys.stderr)
     if args.infer == "none":
-        unresolved = [d for d in model.metadata.get("dropped", ()) if d["name"] in ("P1", "K2")]
+        unresolved = [d["name"] for d in model.metadata.get("dropped", ())
+                      if d["name"] in ("P1", "K2", "N2", "Q1") and d["reason"].startswith("not resolved")]
         if unresolved:
-            print(f"{args.obs}: note: the record is too short to resolve P1 and/or K2 from K1 and S2; "
-                  "their neighbours absorb them. '--infer auto' takes them at equilibrium ratios "
-                  "(Foreman 1977) if that assumption suits the port.", file=sys.stderr)
+            print(f"{args.obs}: note: the record is too short to resolve {', '.join(unresolved)} from their "
+                  "neighbours, which absorb them; without '--infer none' they are taken at equilibrium "
+                  "ratios (Foreman 1977).", file=sys.stderr)
     return 0
 
 
@@ -279,9 +288,10 @@ def register(subparsers) -> argparse.ArgumentParser:
     p.add_argument("--rayleigh", type=float, metavar="R", default=None,
                    help="Rayleigh factor for choosing constituents (default 1)")
     p.add_argument("--trend", action="store_true", help="also fit a linear trend (m/year)")
-    p.add_argument("--infer", choices=("none", "auto", "equilibrium"), default="none",
-                   help="infer constituents the record cannot resolve from a resolved neighbour at "
-                   "equilibrium ratios: 'auto' P1, K2 and NU2 when needed; 'equilibrium' every known "
-                   "pair (default: none)")
+    p.add_argument("--infer", choices=("none", "auto", "equilibrium"), default="auto",
+                   help="infer constituents the record cannot resolve from a fitted neighbour at "
+                   "equilibrium ratios: 'auto' (default, as refit and the daemon) P1 from K1, K2 from S2, "
+                   "NU2 from N2, and N2 from M2 and Q1 from O1 in records under 27.6 days, each only when "
+                   "needed; 'equilibrium' every known pair; 'none' fits only what the record resolves")
     p.set_defaults(func=run_fit)
     return p

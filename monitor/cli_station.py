@@ -75,9 +75,10 @@ def register(subparsers) -> None:
     p.add_argument("--keep", dest="use", action="store_false", help="keep the fit for comparison only")
     p.add_argument("--list", action="store_true", help="list the kept fits and stop")
     p.add_argument("--infer", choices=("none", "auto", "equilibrium"), default="auto",
-                   help="constituents the record cannot resolve, taken from a resolved neighbour at "
-                   "equilibrium ratios: 'auto' P1, K2 and NU2 when needed (default, as the daemon's "
-                   "refit); 'none' fits only what the record resolves")
+                   help="constituents the record cannot resolve, taken from a fitted neighbour at "
+                   "equilibrium ratios: 'auto' P1, K2, NU2, and N2 and Q1 in records under 27.6 days, "
+                   "when needed (default, as the daemon's refit and 'fit'); 'none' fits only what the "
+                   "record resolves")
     p.set_defaults(func=store_errors(cmd_refit))
 
 

@@ -17,11 +17,15 @@ from predictor import TideModel
 mm = 1e-3
 minute = 60.0
 
-# Invented port: amplitude [m] and Greenwich phase lag [deg].
+# Invented port: amplitude [m] and Greenwich phase lag [deg]; P1 and K2 at their equilibrium
+# ratios to K1 and S2 (0.331, 0.272: Cartwright & Tayler 1971, from memory), as a short record's
+# fit infers them.
 PORT = TideModel(mean=2.45, constituents=[
     {"name": "M2", "amplitude": 1.10, "phase": 95.0},
     {"name": "S2", "amplitude": 0.38, "phase": 128.0},
+    {"name": "K2", "amplitude": 0.38 * 0.272, "phase": 128.0},
     {"name": "K1", "amplitude": 0.12, "phase": 205.0},
+    {"name": "P1", "amplitude": 0.12 * 0.331, "phase": 205.0},
     {"name": "O1", "amplitude": 0.09, "phase": 350.0},
 ])
 
@@ -207,5 +211,27 @@ def test_infer_auto_adds_p1_from_k1_and_says_so(tmp_path, capsys):
 
 def test_without_inference_a_short_record_gets_a_note(tmp_path, capsys):
     obs = write_csv(tmp_path / "obs.csv", days=30)
+    assert run(["fit", str(obs), "--json", "--infer", "none"]) == 0
+    out, err = capsys.readouterr()
+    assert "P1" in err and "equilibrium" in err
+    assert not any("inferred_from" in c for c in json.loads(out)["constituents"])
+
+
+def test_fit_infers_by_default_like_refit_and_the_daemon(tmp_path, capsys):
+    # One default everywhere: a 30-day record cannot resolve P1 from K1 or K2 from S2 (182.6
+    # days, Rayleigh criterion; Godin 1972), so they are inferred unless '--infer none'.
+    obs = write_csv(tmp_path / "obs.csv", days=30)
     assert run(["fit", str(obs), "--json"]) == 0
-    assert "--infer auto" in capsys.readouterr().err
+    out = json.loads(capsys.readouterr().out)
+    got = {c["name"]: c.get("inferred_from") for c in out["constituents"]}
+    assert got["P1"] == "K1" and got["K2"] == "S2"
+    assert {d["name"]: d["from"] for d in out["inferred"]}.items() >= {"P1": "K1", "K2": "S2"}.items()
+
+
+def test_fit_table_says_what_was_inferred_from_what(tmp_path, capsys):
+    obs = write_csv(tmp_path / "obs.csv", days=20)
+    assert run(["fit", str(obs)]) == 0
+    text = capsys.readouterr().out
+    assert "inferred, not fitted" in text
+    for line in ("P1 from K1", "K2 from S2", "N2 from M2", "Q1 from O1"):
+        assert line in text
