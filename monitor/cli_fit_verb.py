@@ -1,7 +1,7 @@
 """The ``fit`` verb: harmonic constants from a CSV of observed levels.
 
 ``quaywatch fit OBS.csv [-o CONSTANTS.toml] [--json] [--tz ZONE] [--robust] [--rayleigh R]
-[--trend] [--infer auto|equilibrium|none]``. The CSV reader :func:`read_level_csv` is shared with the daemon's backfill.
+[--trend] [--infer auto|equilibrium|none] [--robust [auto|on|off]]``. The CSV reader :func:`read_level_csv` is shared with the daemon's backfill.
 """
 from __future__ import annotations
 
@@ -176,7 +176,8 @@ def model_summary(model) -> dict:
         out["trend"] = float(trend or 0.0)
     out["constituents"] = [dict(c) for c in _constituent_dicts(model)]
     for key in ("rms", "variance_explained", "record_start", "record_end", "n_samples", "duration_days",
-                "sample_interval_s", "rayleigh", "method", "confidence", "trend_epoch", "dropped", "inferred"):
+                "sample_interval_s", "rayleigh", "method", "robust_reason", "confidence", "trend_epoch", "dropped",
+                "inferred"):
         if key in meta:
             out[key] = meta[key]
     out["units"] = {"mean": "m", "amplitude": "m", "phase": "deg (Greenwich, UTC)", "speed": "deg/h",
@@ -202,6 +203,8 @@ def _table(model, source) -> str:
         f"mean level {model.mean:.4f} m; residual RMS {meta.get('rms', float('nan')):.4f} m; "
         f"variance explained {100 * meta.get('variance_explained', float('nan')):.2f} %",
     ]
+    if meta.get("robust_reason"):
+        rows.append(f"{meta.get('method', 'fit')}: {meta['robust_reason']}")
     if meta.get("trend_epoch"):
         rows.append(f"trend {model.trend * 1000:.2f} mm/year about {meta['trend_epoch']}")
     rows.append("")
@@ -223,10 +226,16 @@ def _table(model, source) -> str:
             rows.append(f"  {d['name']} from {d['from']}: amplitude x {d['ratio']:.3f}, phase "
                         f"{d['phase_difference']:+.1f} deg ({d['source']})")
     dropped = meta.get("dropped") or []
-    if dropped:
+    weak = [d for d in dropped if d["reason"].startswith("long-period")]
+    if weak:
         rows.append("")
-        rows.append(f"{len(dropped)} constituent(s) left out (record length or sampling): "
-                    + ", ".join(d["name"] for d in dropped[:12]) + (" ..." if len(dropped) > 12 else ""))
+        rows.append(f"{len(weak)} long-period constituent(s) left out as not significant:")
+        rows += [f"  {d['name']}: {d['reason']}" for d in weak]
+    short = [d for d in dropped if not d["reason"].startswith("long-period")]
+    if short:
+        rows.append("")
+        rows.append(f"{len(short)} constituent(s) left out (record length or sampling): "
+                    + ", ".join(d["name"] for d in short[:12]) + (" ..." if len(short) > 12 else ""))
     rows.append("")
     rows.append(CAUTION)
     return "\n".join(rows) + "\n"
@@ -244,8 +253,9 @@ def run_fit(args) -> int:
     with warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always", FitConditioningWarning)
         try:
+            robust = {"auto": "auto", "on": True, "off": False}[args.robust]
             model = harmonic_fit(times, levels, rayleigh=args.rayleigh or 1.0, trend=args.trend,
-                                 robust=args.robust, infer=None if args.infer == "none" else args.infer)
+                                 robust=robust, infer=None if args.infer == "none" else args.infer)
         except FitInputError as exc:
             raise UserError(f"{args.obs}: {exc}") from None
     for w in caught:
@@ -283,8 +293,10 @@ def register(subparsers) -> argparse.ArgumentParser:
     p.add_argument("-o", "--output", metavar="CONSTANTS.toml", help="write the constants file (TOML)")
     p.add_argument("--json", action="store_true", help="print the constants as JSON")
     p.add_argument("--tz", metavar="ZONE", help="IANA time zone for times written without one")
-    p.add_argument("--robust", action="store_true",
-                   help="down-weight storms and outliers (iteratively reweighted least squares)")
+    p.add_argument("--robust", nargs="?", const="on", default="auto", choices=("auto", "on", "off"),
+                   help="down-weight storms and outliers (iteratively reweighted least squares): 'auto' "
+                   "(default) when the least-squares residual is heavy-tailed, '--robust' or 'on' always, "
+                   "'off' never; the output says which and why")
     p.add_argument("--rayleigh", type=float, metavar="R", default=None,
                    help="Rayleigh factor for choosing constituents (default 1)")
     p.add_argument("--trend", action="store_true", help="also fit a linear trend (m/year)")

@@ -44,6 +44,9 @@ __all__ = [
     "INFERENCE_PAIRS",
     "AUTO_INFERENCE",
     "equilibrium_inference",
+    "HEAVY_TAIL_SHARE",
+    "HEAVY_TAIL_SIGMAS",
+    "LONG_PERIOD_SNR",
 ]
 
 SECONDS_PER_HOUR = 3600.0
@@ -538,10 +541,11 @@ def _cauchy_weights(r, tuning):
 
 
 def harmonic_fit(times, levels, constituents="auto", rayleigh: float = 1.0, trend: bool = False,
-                 robust: bool = False, nodal="auto", chunk_size: int | None = 4096,
+                 robust="auto", nodal="auto", chunk_size: int | None = 4096,
                  min_constituents: int = 2, confidence: float | None = 0.95, weights=None,
                  robust_iterations: int = 10, robust_tuning: float = CAUCHY_TUNING,
-                 trend_epoch=None, metadata: dict | None = None, infer="auto"):
+                 trend_epoch=None, metadata: dict | None = None, infer="auto",
+                 long_period_snr: float | None = None):
     """Fit harmonic constants to a record of sea levels by least squares.
 
     Parameters
@@ -558,9 +562,13 @@ def harmonic_fit(times, levels, constituents="auto", rayleigh: float = 1.0, tren
         Rayleigh factor for "auto" [1].
     trend : bool
         Also fit a linear trend [m/year] about ``trend_epoch``.
-    robust : bool
+    robust : "auto", True or False
         Iteratively reweighted least squares with Cauchy weights, starting from the
         ordinary solution (Leffler & Jay 2009), so that storms bias the constants less.
+        "auto" (default) refits robustly when the ordinary residual is heavy-tailed (more
+        than :data:`HEAVY_TAIL_SHARE` of it beyond :data:`HEAVY_TAIL_SIGMAS` robust standard
+        deviations): a storm in a short record otherwise turns into decimetres of spurious
+        long-period tide. ``metadata["robust_reason"]`` says which way and why.
     nodal : "auto", True or False
         Apply nodal factors f and corrections u, evaluated daily and interpolated
         ("auto" and True). False fits plain V only; for comparisons, not prediction.
@@ -618,6 +626,12 @@ def harmonic_fit(times, levels, constituents="auto", rayleigh: float = 1.0, tren
         with inference, 103 mm without), and the fit's metadata (``inferred``) and every printout say
         what was inferred from what, so the assumption is never silent.
 
+    long_period_snr : float or None
+        With ``constituents="auto"``, long-period constituents (Sa, Ssa, Mm, Mf, ...) whose
+        signal-to-noise ratio comes out below this are left out and the record refitted
+        without them; each is listed in ``metadata["dropped"]`` with its SNR. None takes
+        :data:`LONG_PERIOD_SNR`; 0 keeps them all.
+
     Returns
     -------
     TideModel
@@ -626,7 +640,9 @@ def harmonic_fit(times, levels, constituents="auto", rayleigh: float = 1.0, tren
         ``amplitude_ci`` [m], ``phase_ci`` [deg] (half-widths) and ``snr`` [1]; ``trend``
         [m/year]; ``metadata`` with ``rms`` [m], ``variance_explained`` [1],
         ``record_start``/``record_end`` (ISO 8601 UTC), ``n_samples``, ``rayleigh``,
-        ``dropped`` (name and reason) and the method used. Inferred constituents follow
+        ``dropped`` (name and reason: record length, sampling, or a long-period
+        constituent below ``long_period_snr``), the method used and ``robust_reason``
+        (why the fit was or was not robust, in words). Inferred constituents follow
         the fitted ones with ``inferred_from`` (the reference's name), their intervals
         scaled from the reference's; ``metadata["inferred"]`` lists name, reference,
         ratio, phase difference and source.
@@ -645,6 +661,85 @@ def harmonic_fit(times, levels, constituents="auto", rayleigh: float = 1.0, tren
     """
     from predictor.model import TideModel
 
+    t, y, w = _clean_record(times, levels, weights)
+    duration_h = (t[-1] - t[0]) / SECONDS_PER_HOUR
+    steps = np.diff(t)
+    steps = steps[steps > 0]
+    step_h = float(np.median(steps)) / SECONDS_PER_HOUR if steps.size else None
+    auto = isinstance(constituents, str)
+    names, dropped = _chosen_names(constituents, duration_h, step_h, rayleigh, min_constituents)
+    if robust not in (True, False, "auto"):
+        raise FitInputError(f"robust must be True, False or 'auto', got {robust!r}")
+    epoch = 0.5 * (t[0] + t[-1]) if trend_epoch is None else float(to_unix_seconds([trend_epoch])[0]) \
+        if not isinstance(trend_epoch, (int, float)) else float(trend_epoch)
+    inferred, dropped = _resolve_inference(infer, auto, names, dropped, duration_h, rayleigh, step_h)
+    chunk = int(chunk_size) if chunk_size else t.size
+    if chunk < 1:
+        raise FitInputError("chunk_size must be a positive number of samples")
+    setup = dict(t=t, y=y, w=w, nodal=nodal, trend=trend, epoch=epoch, chunk=chunk,
+                 iterations=robust_iterations, tuning=robust_tuning)
+
+    # 1. ordinary least squares, then robust where asked or where the residual is heavy-tailed
+    sol = _solve_record(names, inferred, robust=robust is True, **setup)
+    use_robust, robust_reason = bool(robust), "asked for" if robust is True else "not asked for"
+    if robust == "auto":
+        use_robust, robust_reason = _heavy_tailed(sol.r)
+        if use_robust:
+            sol = _solve_record(names, inferred, robust=True, **setup)
+    # 2. long-period constituents the record cannot tell from its weather are left out
+    if long_period_snr is None:
+        long_period_snr = LONG_PERIOD_SNR
+    if auto and long_period_snr:
+        weak = _weak_long_period(sol, names, inferred, step_h, long_period_snr)
+        if weak:
+            names = [n for n in names if n not in weak]
+            dropped = dropped + [{"name": n, "reason": f"long-period, signal-to-noise ratio {snr:.2g} below "
+                                  f"{long_period_snr:g}: at this period the record's weather (surges, gaps) "
+                                  "cannot be told from tide"} for n, snr in weak.items()]
+            sol = _solve_record(names, inferred, robust=use_robust, **setup)
+
+    cons = _constituent_table(sol, names, inferred, step_h, confidence)
+    r = sol.r
+    var_y = float(np.var(y))
+    meta = {
+        "method": "robust least squares (IRLS, Cauchy weights)" if use_robust else "least squares",
+        "robust_reason": robust_reason,
+        "record_start": _iso(t[0]),
+        "record_end": _iso(t[-1]),
+        "n_samples": int(t.size),
+        "duration_days": float(duration_h / 24.0),
+        "sample_interval_s": float(step_h * SECONDS_PER_HOUR) if step_h else 0.0,
+        "rayleigh": float(rayleigh),
+        "constituent_selection": "auto" if auto else "given",
+        "nodal": "daily f and u, interpolated" if nodal else "none",
+        "rms": float(np.sqrt(np.mean(r**2))),
+        "variance_explained": float(1.0 - np.var(r) / var_y) if var_y > 0 else 0.0,
+        "condition_number": float(sol.cond),
+        "dropped": dropped,
+    }
+    if inferred:
+        meta["inferred"] = [{"name": d["name"], "from": d["from"], "ratio": float(d["ratio"]),
+                             "phase_difference": float(d["dphase"]), "source": d["source"]}
+                            for d in inferred]
+    if use_robust:
+        meta["robust_iterations"] = int(sol.iterations)
+        meta["robust_tuning"] = float(robust_tuning)
+    if confidence is not None:
+        meta["confidence"] = float(confidence)
+    if trend:
+        meta["trend_epoch"] = _iso(epoch)
+    if metadata:
+        meta.update(metadata)
+    beta = sol.beta
+    kwargs = {"trend": float(beta[1]), "trend_epoch": float(epoch)} if trend else {}
+    return TideModel(mean=float(beta[0]), constituents=cons, metadata=meta, **kwargs)
+
+
+# --------------------------------------------------------------------------- steps of the fit
+
+
+def _clean_record(times, levels, weights):
+    """Finite samples in time order: (t [s], y [m], w or None)."""
     t = to_unix_seconds(times)
     y = np.asarray(levels, dtype=float).ravel()
     if t.shape != y.shape:
@@ -663,12 +758,11 @@ def harmonic_fit(times, levels, constituents="auto", rayleigh: float = 1.0, tren
         w = w[ok][order]
     if t.size < 3:
         raise FitInputError(f"only {t.size} valid sample(s); a fit needs a record of levels")
+    return t, y, w
 
-    duration_h = (t[-1] - t[0]) / SECONDS_PER_HOUR
-    steps = np.diff(t)
-    steps = steps[steps > 0]
-    step_h = float(np.median(steps)) / SECONDS_PER_HOUR if steps.size else None
 
+def _chosen_names(constituents, duration_h, step_h, rayleigh, min_constituents):
+    """Names to fit and the dropped list, by Rayleigh selection or as given."""
     catalogue = _catalogue()
     if isinstance(constituents, str):
         if constituents != "auto":
@@ -678,24 +772,35 @@ def harmonic_fit(times, levels, constituents="auto", rayleigh: float = 1.0, tren
                 if step_h is None or _speed(catalogue[n]) < 180.0 / step_h][:max(0, int(min_constituents))]
         if any(n not in names for n in must):
             raise RecordTooShortError(_too_short_message(duration_h, names, rayleigh, min_constituents))
-    else:
-        from predictor.constituents import get
+        return names, dropped
+    from predictor.constituents import get
 
-        names, unknown = [], []
-        for n in constituents:
-            try:
-                names.append(get(n).name)
-            except KeyError:
-                unknown.append(str(n))
-        if unknown:
-            raise FitInputError("unknown constituent(s): " + ", ".join(unknown))
-        names = list(dict.fromkeys(names))
-        dropped = []
+    names, unknown = [], []
+    for n in constituents:
+        try:
+            names.append(get(n).name)
+        except KeyError:
+            unknown.append(str(n))
+    if unknown:
+        raise FitInputError("unknown constituent(s): " + ", ".join(unknown))
+    return list(dict.fromkeys(names)), []
 
-    epoch = 0.5 * (t[0] + t[-1]) if trend_epoch is None else float(to_unix_seconds([trend_epoch])[0]) \
-        if not isinstance(trend_epoch, (int, float)) else float(trend_epoch)
-    inferred, dropped = _resolve_inference(infer, isinstance(constituents, str), names, dropped,
-                                           duration_h, rayleigh, step_h)
+
+@dataclass
+class _Solution:
+    design: _Design
+    beta: np.ndarray        # mean, [trend], then a, b per fitted constituent
+    A: np.ndarray           # the final (weighted) normal matrix
+    cond: float
+    r: np.ndarray           # residual [m]
+    iterations: int
+    off: int                # index of the first constituent coefficient
+    t: np.ndarray           # sample times [s]
+
+
+def _solve_record(names, inferred, *, t, y, w, nodal, trend, epoch, chunk, robust, iterations,
+                  tuning) -> _Solution:
+    """Least squares (and IRLS when ``robust``) for the given constituents."""
     infer_cols = tuple((names.index(d["from"]), len(names) + i, d["ratio"], math.radians(d["dphase"]))
                        for i, d in enumerate(inferred))
     design = _build_design(names + [d["name"] for d in inferred], t[0], t[-1], nodal, trend, epoch,
@@ -703,17 +808,13 @@ def harmonic_fit(times, levels, constituents="auto", rayleigh: float = 1.0, tren
     if t.size < design.n_params + 2:
         raise FitInputError(f"only {t.size} valid samples for {design.n_params} unknowns; "
                             "the record needs more samples")
-    chunk = int(chunk_size) if chunk_size else t.size
-    if chunk < 1:
-        raise FitInputError("chunk_size must be a positive number of samples")
-
     A, rhs = _accumulate(design, t, y, w, chunk)
     beta, cond = _solve(A, rhs)
-    iterations = 0
+    done = 0
     if robust:
-        for iterations in range(1, robust_iterations + 1):
+        for done in range(1, iterations + 1):
             r = _residual(design, beta, t, y, chunk)
-            rw = _cauchy_weights(r, robust_tuning)
+            rw = _cauchy_weights(r, tuning)
             A, rhs = _accumulate(design, t, y, rw if w is None else rw * w, chunk)
             new, cond = _solve(A, rhs)
             change = float(np.max(np.abs(new - beta)))
@@ -721,25 +822,76 @@ def harmonic_fit(times, levels, constituents="auto", rayleigh: float = 1.0, tren
             if change < 1e-6:  # metres: a thousandth of a millimetre
                 break
     r = _residual(design, beta, t, y, chunk)
+    return _Solution(design, beta, A, cond, r, done, 1 + int(trend), t)
 
-    off = 1 + int(trend)
+
+#: A residual is heavy-tailed when more than this share of it lies beyond
+#: :data:`HEAVY_TAIL_SIGMAS` robust standard deviations (1.4826 MAD) of its median: for Gaussian
+#: noise the share is 0.006 % (normal tables), a storm surge or a datum fault in the record
+#: puts percents there. Then ``robust="auto"`` refits by IRLS (common practice, no source).
+HEAVY_TAIL_SHARE = 0.005
+HEAVY_TAIL_SIGMAS = 4.0
+#: Long-period constituents with a signal-to-noise ratio ``H^2 / var`` below this are left out
+#: of an automatic selection: below about 2 a constituent cannot be told from noise (common
+#: practice, no source), and at long periods the noise is the weather.
+LONG_PERIOD_SNR = 2.0
+
+
+def _heavy_tailed(r: np.ndarray) -> tuple[bool, str]:
+    """Whether the ordinary residual is heavy-tailed, and the reason in words."""
+    med = float(np.median(r))
+    sigma = float(np.median(np.abs(r - med))) / _MAD_TO_SIGMA
+    if sigma <= 0.0:
+        return False, "residual without spread"
+    share = float(np.mean(np.abs(r - med) > HEAVY_TAIL_SIGMAS * sigma))
+    words = (f"{share:.2%} of the least-squares residual lies beyond {HEAVY_TAIL_SIGMAS:g} robust standard "
+             f"deviations ({sigma * 1000:.0f} mm), against 0.006 % for Gaussian noise")
+    if share > HEAVY_TAIL_SHARE:
+        return True, "heavy-tailed residual (storms or faults in the record): " + words
+    return False, "residual close to Gaussian: " + words
+
+
+def _intervals(sol: _Solution, names, step_h, confidence):
+    """Amplitude and phase half-widths and SNR of the fitted constituents (coloured noise)."""
+    catalogue = _catalogue()
+    off, beta, A = sol.off, sol.beta, sol.A
+    a, b = beta[off::2], beta[off + 1::2]
+    speeds = np.array([_speed(catalogue[n]) for n in names])
+    spec = _ci.residual_band_spectrum(sol.t, sol.r, None if step_h is None else step_h * SECONDS_PER_HOUR,
+                                      fitted_speeds=speeds)
+    # (X'WX)^-1 of the final solve: the same scaled system, pseudo-inverted so that an
+    # undetermined direction shows as a wide interval rather than an error.
+    dsc = np.sqrt(np.diag(A))
+    dsc[dsc == 0] = 1.0
+    inv = np.diag(np.linalg.pinv(A / dsc[:, None] / dsc[None, :], rcond=1.0 / MAX_CONDITION)) / dsc**2
+    inv_ab = np.column_stack([inv[off::2], inv[off + 1::2]])
+    var_a, var_b = _ci.coefficient_variance(spec, speeds, inv_ab)
+    return _ci.amplitude_phase_intervals(a, b, var_a, var_b, confidence=confidence)
+
+
+def _weak_long_period(sol: _Solution, names, inferred, step_h, threshold) -> dict:
+    """Long-period constituents whose SNR is below ``threshold``: name -> SNR."""
+    from predictor.constituents import get
+
+    refs = {d["from"] for d in inferred}
+    longp = [i for i, n in enumerate(names) if get(n).species == 0 and n not in refs]
+    if not longp:
+        return {}
+    _, _, snr = _intervals(sol, names, step_h, 0.95)
+    return {names[i]: float(snr[i]) for i in longp if snr[i] < threshold}
+
+
+def _constituent_table(sol: _Solution, names, inferred, step_h, confidence) -> list[dict]:
+    """Fitted constituents (with intervals when ``confidence``), then the inferred ones."""
+    catalogue = _catalogue()
+    off, beta = sol.off, sol.beta
     a, b = beta[off::2], beta[off + 1::2]
     amp = np.hypot(a, b)
     phase = np.degrees(np.arctan2(b, a)) % 360.0
-    speeds = np.array([_speed(catalogue[n]) for n in names])
-    cons = [{"name": n, "amplitude": float(amp[i]), "phase": float(phase[i]), "speed": float(speeds[i])}
-            for i, n in enumerate(names)]
+    cons = [{"name": n, "amplitude": float(amp[i]), "phase": float(phase[i]),
+             "speed": _speed(catalogue[n])} for i, n in enumerate(names)]
     if confidence is not None and names:
-        spec = _ci.residual_band_spectrum(t, r, None if step_h is None else step_h * SECONDS_PER_HOUR,
-                                          fitted_speeds=speeds)
-        # (X'WX)^-1 of the final solve: the same scaled system, pseudo-inverted so that an
-        # undetermined direction shows as a wide interval rather than an error.
-        dsc = np.sqrt(np.diag(A))
-        dsc[dsc == 0] = 1.0
-        inv = np.diag(np.linalg.pinv(A / dsc[:, None] / dsc[None, :], rcond=1.0 / MAX_CONDITION)) / dsc**2
-        inv_ab = np.column_stack([inv[off::2], inv[off + 1::2]])
-        var_a, var_b = _ci.coefficient_variance(spec, speeds, inv_ab)
-        amp_ci, ph_ci, snr = _ci.amplitude_phase_intervals(a, b, var_a, var_b, confidence=confidence)
+        amp_ci, ph_ci, snr = _intervals(sol, names, step_h, confidence)
         for i, c in enumerate(cons):
             c.update(amplitude_ci=float(amp_ci[i]), phase_ci=float(ph_ci[i]), snr=float(snr[i]))
     by_fitted = {c["name"]: c for c in cons}
@@ -752,35 +904,4 @@ def harmonic_fit(times, levels, constituents="auto", rayleigh: float = 1.0, tren
             c.update(amplitude_ci=d["ratio"] * ref["amplitude_ci"], phase_ci=ref["phase_ci"],
                      snr=ref["snr"])
         cons.append(c)
-
-    var_y = float(np.var(y))
-    meta = {
-        "method": "robust least squares (IRLS, Cauchy weights)" if robust else "least squares",
-        "record_start": _iso(t[0]),
-        "record_end": _iso(t[-1]),
-        "n_samples": int(t.size),
-        "duration_days": float(duration_h / 24.0),
-        "sample_interval_s": float(step_h * SECONDS_PER_HOUR) if step_h else 0.0,
-        "rayleigh": float(rayleigh),
-        "constituent_selection": "auto" if isinstance(constituents, str) else "given",
-        "nodal": "daily f and u, interpolated" if nodal else "none",
-        "rms": float(np.sqrt(np.mean(r**2))),
-        "variance_explained": float(1.0 - np.var(r) / var_y) if var_y > 0 else 0.0,
-        "condition_number": float(cond),
-        "dropped": dropped,
-    }
-    if inferred:
-        meta["inferred"] = [{"name": d["name"], "from": d["from"], "ratio": float(d["ratio"]),
-                             "phase_difference": float(d["dphase"]), "source": d["source"]}
-                            for d in inferred]
-    if robust:
-        meta["robust_iterations"] = int(iterations)
-        meta["robust_tuning"] = float(robust_tuning)
-    if confidence is not None:
-        meta["confidence"] = float(confidence)
-    if trend:
-        meta["trend_epoch"] = _iso(epoch)
-    if metadata:
-        meta.update(metadata)
-    kwargs = {"trend": float(beta[1]), "trend_epoch": float(epoch)} if trend else {}
-    return TideModel(mean=float(beta[0]), constituents=cons, metadata=meta, **kwargs)
+    return cons

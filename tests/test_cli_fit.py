@@ -235,3 +235,14 @@ def test_fit_table_says_what_was_inferred_from_what(tmp_path, capsys):
     assert "inferred, not fitted" in text
     for line in ("P1 from K1", "K2 from S2", "N2 from M2", "Q1 from O1"):
         assert line in text
+
+
+def test_fit_says_whether_it_was_robust_and_why(tmp_path, capsys):
+    obs = write_csv(tmp_path / "obs.csv", days=30)
+    assert run(["fit", str(obs)]) == 0
+    text = capsys.readouterr().out
+    assert "least squares: residual close to Gaussian" in text
+    assert run(["fit", str(obs), "--robust"]) == 0
+    assert "robust least squares (IRLS, Cauchy weights): asked for" in capsys.readouterr().out
+    assert run(["fit", str(obs), "--json", "--robust", "off"]) == 0
+    assert json.loads(capsys.readouterr().out)["robust_reason"] == "not asked for"
