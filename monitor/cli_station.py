@@ -71,7 +71,9 @@ def register(subparsers) -> None:
     p.add_argument("--station", required=True, metavar="ID")
     p.add_argument("--days", type=finite_float, metavar="N", help="fit the last N days (default stations[].fit_span_days)")
     p.add_argument("--use", dest="use", action="store_true", default=None,
-                   help="put the new fit in use (default: only for stations with constants = \"history\")")
+                   help="put the new fit in use, whatever it hindcasts (default: for stations with "
+                   "constants = \"history\", and only when it hindcasts the days the constants in use "
+                   "have not seen no worse than they do)")
     p.add_argument("--keep", dest="use", action="store_false", help="keep the fit for comparison only")
     p.add_argument("--list", action="store_true", help="list the kept fits and stop")
     p.add_argument("--infer", choices=("none", "auto", "equilibrium"), default="auto",
@@ -391,11 +393,13 @@ def cmd_refit(args: argparse.Namespace) -> int:
         if args.days is not None and not args.days > 0:
             raise UserError(f"--days {args.days:g}: expected a number of days above 0")
         fit = refit_station(store, st, use=args.use, span_days=args.days,
-                            infer=None if args.infer == "none" else args.infer)
+                            infer=None if args.infer == "none" else args.infer, force=bool(args.use))
     model = fit["model"]
     print(f"station {st.id}: fit #{fit['id']} of {fit['n']:,} samples, {_utc(fit['start'], '%Y-%m-%d')} to "
           f"{_utc(fit['end'], '%Y-%m-%d')} (UTC); rms {fit['rms']:.3f} m; variance explained "
           f"{fit['variance_explained']:.1%}; {'in use' if fit['in_use'] else 'kept for comparison'}")
+    if fit.get("check"):
+        print(f"  {fit['check']}")
     new = {c["name"]: c for c in model.constituents}
     prev = {c["name"]: c for c in (old.constituents if old is not None else [])}
     print(f"compared with the constants in use ({old_source}); phases are Greenwich lags, UTC:")

@@ -137,28 +137,47 @@ def load_model(store: Store | None, station: StationConfig) -> tuple[Any, str]:
     return model_from_text(fit["constants"], f"fit {fit['id']}"), f"fit #{fit['id']} of {when}"
 
 
+#: A refit is checked on the most recent days of quality-controlled data that the constants in
+#: use have not seen, up to this many [days]: a week holds 14 tides and a spring-neap half-cycle
+#: (common practice, no source).
+REFIT_CHECK_DAYS = 7.0
+#: ... and needs at least this much of it [days] (two tidal days).
+REFIT_CHECK_MIN_DAYS = 2.0
+#: The candidate may hindcast that far worse [m RMS] and still be taken: half a millimetre, below
+#: what a gauge resolves (common practice, no source).
+REFIT_TOLERANCE_M = 0.0005
+
+
 def refit_station(store: Store, station: StationConfig, now: float | None = None, use: bool | None = None,
-                  span_days: float | None = None, robust: bool = True, infer: Any = "auto") -> dict:
+                  span_days: float | None = None, robust: Any = True, infer: Any = "auto",
+                  force: bool = False) -> dict:
     """Fit constants to a station's quality-controlled primary record and keep the fit.
 
     Samples flagged fail (4) or missing (9) never enter the fit (design rule). The fit is
-    put in use when ``use`` (default: when the station's constants come from its history).
-    ``infer`` goes to :func:`predictor.harmonic_fit` (default ``"auto"``: P1 from
-    K1, K2 from S2, NU2 from N2 by equilibrium ratios when the record is too short to
-    resolve them; Foreman 1977, sec. 2.3) and is recorded in the fit's metadata.
+    meant for use when ``use`` (default: when the station's constants come from its history).
+    ``infer`` goes to :func:`predictor.harmonic_fit` (default ``"auto"``: neighbours the record
+    cannot resolve are inferred from equilibrium ratios; Foreman 1977, sec. 2.3) and is
+    recorded in the fit's metadata.
+
+    Good constants are never replaced by worse ones: when a fit is already in use, the
+    candidate is fitted without the recent days that fit has not seen (up to
+    :data:`REFIT_CHECK_DAYS`), both hindcast those days, and the candidate is put in use only
+    if its RMS error there is no worse (within :data:`REFIT_TOLERANCE_M`). Otherwise it is kept
+    for comparison, with the numbers in its note. Without enough unseen days (under
+    :data:`REFIT_CHECK_MIN_DAYS`) the constants in use stay. ``force`` (an operator's
+    ``refit --use``) skips the check.
 
     Returns
     -------
     dict
-        The fit's row: id, fitted_at, start, end, n, rms, variance_explained, in_use, model.
+        The fit's row: id, fitted_at, start, end, n, rms, variance_explained, in_use, model,
+        and ``check`` (what the hindcast comparison found, in words; empty without one).
 
     Raises
     ------
     UserError
         Too little history, or a fit that fails.
     """
-    from predictor import harmonic_fit
-
     now = time.time() if now is None else now
     end = store.last_time(station.id, "primary")
     if end is None:
@@ -166,28 +185,74 @@ def refit_station(store: Store, station: StationConfig, now: float | None = None
     span = (station.fit_span_days if span_days is None else span_days) * 86400
     obs = store.observations(station.id, "primary", end - span, end)
     obs = obs[~obs["flag"].isin((4, 9))]
+    _enough(station, obs)
+    in_use = station.fit_from_history if use is None else use
+    current = store.fit_in_use(station.id) if in_use and not force else None
+    check = ""
+    if current is None:
+        model = _fit_record(station, obs, robust, infer)
+    else:
+        model, in_use, check = _checked_fit(station, obs, current, robust, infer)
+    md = model.metadata or {}
+    fitted = obs[obs.index <= pd.Timestamp(md.get("record_end", obs.index[-1]))]
+    start_t, end_t = int(fitted.index[0].timestamp()), int(fitted.index[-1].timestamp())
+    fid = store.add_fit(station.id, fitted_at=int(now), start=start_t, end=end_t, n=len(fitted),
+                        rms=float(md.get("rms", float("nan"))),
+                        variance_explained=float(md.get("variance_explained", float("nan"))),
+                        constants=model_to_text(model), in_use=in_use,
+                        robust=md.get("method", "").startswith("robust"), note=check)
+    have = (end_t - start_t) / 86400
+    log.info("station %s: fit #%d over %.1f days, rms %.3f m%s%s", station.id, fid, have,
+             md.get("rms", float("nan")), " (in use)" if in_use else "", f"; {check}" if check else "")
+    return {"id": fid, "fitted_at": int(now), "start": start_t, "end": end_t, "n": len(fitted),
+            "rms": md.get("rms"), "variance_explained": md.get("variance_explained"), "in_use": in_use,
+            "model": model, "check": check}
+
+
+def _enough(station: StationConfig, obs: pd.DataFrame) -> None:
     have = (obs.index[-1] - obs.index[0]).total_seconds() / 86400 if len(obs) > 1 else 0.0
     if have < station.fit_min_days:
         raise UserError(f"station {station.id}: {have:.1f} days of usable history, "
                         f"stations[].fit_min_days = {station.fit_min_days:g} needed for a fit")
+
+
+def _fit_record(station: StationConfig, obs: pd.DataFrame, robust: Any, infer: Any):
+    from predictor import harmonic_fit
+
     try:
         meta = {"station": station.id, "infer": infer if isinstance(infer, str) else
                 ("none" if not infer else "given")}
-        model = harmonic_fit(obs.index, obs["value"].to_numpy(), robust=robust, infer=infer, metadata=meta)
+        return harmonic_fit(obs.index, obs["value"].to_numpy(), robust=robust, infer=infer, metadata=meta)
     except ValueError as exc:
         raise UserError(f"station {station.id}: fit failed: {exc}") from None
-    md = model.metadata or {}
-    in_use = station.fit_from_history if use is None else use
-    start_t, end_t = int(obs.index[0].timestamp()), int(obs.index[-1].timestamp())
-    fid = store.add_fit(station.id, fitted_at=int(now), start=start_t, end=end_t, n=len(obs),
-                        rms=float(md.get("rms", float("nan"))),
-                        variance_explained=float(md.get("variance_explained", float("nan"))),
-                        constants=model_to_text(model), in_use=in_use, robust=robust)
-    log.info("station %s: fit #%d over %.1f days, rms %.3f m%s", station.id, fid, have,
-             md.get("rms", float("nan")), " (in use)" if in_use else "")
-    return {"id": fid, "fitted_at": int(now), "start": start_t, "end": end_t, "n": len(obs),
-            "rms": md.get("rms"), "variance_explained": md.get("variance_explained"), "in_use": in_use,
-            "model": model}
+
+
+def _hindcast_rms(model, obs: pd.DataFrame) -> float:
+    return float(np.sqrt(np.mean((obs["value"].to_numpy() - model.predict(obs.index)) ** 2)))
+
+
+def _checked_fit(station: StationConfig, obs: pd.DataFrame, current: dict, robust: Any,
+                 infer: Any) -> tuple[Any, bool, str]:
+    """The candidate fitted without the days the fit in use has not seen, whether it hindcasts
+    those days no worse, and the comparison in words."""
+    cur_model = model_from_text(current["constants"], f"fit {current['id']}")
+    last = obs.index[-1]
+    split = max(pd.Timestamp(int(current["end"]), unit="s", tz="UTC"),
+                last - pd.Timedelta(days=REFIT_CHECK_DAYS))
+    unseen, train = obs[obs.index > split], obs[obs.index <= split]
+    days = (unseen.index[-1] - unseen.index[0]).total_seconds() / 86400 if len(unseen) > 1 else 0.0
+    if days < REFIT_CHECK_MIN_DAYS:
+        model = _fit_record(station, obs, robust, infer)
+        return model, False, (f"kept for comparison: only {days:.1f} days of data since fit #{current['id']} "
+                              f"in use, {REFIT_CHECK_MIN_DAYS:g} needed to compare hindcasts")
+    _enough(station, train)
+    model = _fit_record(station, train, robust, infer)
+    new, old = _hindcast_rms(model, unseen), _hindcast_rms(cur_model, unseen)
+    words = (f"hindcast of the {days:.1f} days from {unseen.index[0]:%Y-%m-%d %H:%MZ} (unseen by both): "
+             f"rms {new:.3f} m against {old:.3f} m for fit #{current['id']} in use")
+    if new <= old + REFIT_TOLERANCE_M:
+        return model, True, "put in use: " + words
+    return model, False, "not put in use, worse than the constants in use: " + words
 
 
 # --------------------------------------------------------------------------- runtime
@@ -600,6 +665,8 @@ class Daemon:
         self.refit(rt, now)
 
     def refit(self, rt: StationRuntime, now: float | None = None) -> None:
+        """Refit a station from its history; the result replaces the constants in use only if
+        it hindcasts the days they have not seen no worse (:func:`refit_station`)."""
         try:
             refit_station(self.store, rt.cfg, now=now, use=True)
         except UserError as exc:
@@ -620,7 +687,11 @@ class Daemon:
                 rt.model, rt.model_source = load_model(self.store, rt.cfg)
                 rt.extremes, rt.extremes_span = None, (math.inf, -math.inf)
                 log.info("station %s: constants now %s", rt.cfg.id, rt.model_source)
-            if fit is None or (days > 0 and time.time() - fit["fitted_at"] >= days * 86400):
+            # due from the latest try, taken or not: a candidate kept out of use for hindcasting
+            # worse is not retried every hour
+            fits = self.store.fits(rt.cfg.id)
+            last_try = float(fits["fitted_at"].max()) if len(fits) else -math.inf
+            if fit is None or (days > 0 and time.time() - last_try >= days * 86400):
                 self.refit(rt)
 
     # ------------------------------------------------------------------ outbox and reports
