@@ -41,15 +41,17 @@ FLAG_WORDS = {1: "pass", 2: "not evaluated", 3: "suspect", 4: "fail", 9: "missin
 
 #: Per-test columns of the ``qc_tests`` table and how the report names them.
 QC_TEST_NAMES = {
-    "gap": "timing / gap",
-    "syntax": "syntax",
-    "gross": "gross range",
-    "expected": "expected range",
-    "spike": "spike",
-    "roc": "rate of change",
-    "flat": "flat line",
-    "multi": "primary vs backup",
-    "resid": "residual outlier",
+    "gap": "timing / gap (QARTOD 1)",
+    "syntax": "syntax (QARTOD 2)",
+    "location": "location (QARTOD 3)",
+    "gross": "gross range (QARTOD 4)",
+    "expected": "expected range (QARTOD 5, climatology)",
+    "spike": "spike and jump (QARTOD 6)",
+    "roc": "rate of change (QARTOD 7)",
+    "flat": "flat line (QARTOD 8)",
+    "atten": "attenuated signal (QARTOD 10)",
+    "multi": "primary vs backup (QARTOD 11, neighbour)",
+    "resid": "residual outlier (ours)",
 }
 
 

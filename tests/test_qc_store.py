@@ -152,3 +152,22 @@ def test_qc_writes_find_their_rows_through_an_index(store, sql):
     # a full-table scan per row would make a year's pass quadratic
     plan = " ".join(str(r[-1]) for r in store.conn.execute("EXPLAIN QUERY PLAN " + sql).fetchall())
     assert "INDEX" in plan and "SCAN" not in plan
+
+
+def test_a_store_made_before_the_location_and_attenuation_tests_gets_their_columns(tmp_path):
+    # the qc_tests table of an earlier version had no location or atten column
+    old = ("gap", "syntax", "gross", "expected", "spike", "roc", "flat", "multi", "resid")
+    with Store.open(tmp_path / "old.sqlite") as s:
+        s.db["qc_tests"].create({"station": str, "sensor": str, "t": int, **{c: int for c in old}},
+                                pk=("station", "sensor", "t"))
+        s.db["qc_overrides"].create({"station": str, "sensor": str, "t": int, "flag": int, "who": str,
+                                     "why": str, "at": int}, pk=("station", "sensor", "t"))
+        s.db["staff_readings"].create({"station": str, "t": int, "reading": float, "who": str, "note": str},
+                                      pk=("station", "t"))
+        level, _ = record(days=2, seed=7)
+        _put(s, level)
+        t0, t1 = level.index[0].timestamp(), level.index[-1].timestamp()
+        qc.run_station_qc(s, "harbour", None, t0, t1, SynthModel(), now=t1)
+        assert set(qc.TESTS) <= set(s.db["qc_tests"].columns_dict)
+        n = s.conn.execute("SELECT count(*) FROM qc_tests WHERE atten IS NOT NULL").fetchone()[0]
+        assert n == len(level)

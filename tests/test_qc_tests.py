@@ -86,14 +86,26 @@ def test_flat_line_is_suspect_after_30_min_and_fails_after_60_min(calm):
     assert (flat.iloc[:stuck_from + 29] == PASS).all()
 
 
-def test_gap_marks_the_first_sample_after_it(calm):
+def test_gap_marks_the_first_sample_after_it_as_missing_data(calm):
+    # QARTOD v2.1 Test 1: data that did not arrive within TIM_INC are missing (9), not suspect;
+    # the flag sits on the first sample after the silence and records the gap.
     level, pred = calm
     keep = np.ones(len(level), bool)
     keep[1500:1520] = False  # twenty minutes missing
     out = qc.run_tests(level[keep], None, pred[keep])
     after = level.index[1520]
-    assert out.loc[after, "gap"] == SUSPECT
-    assert (out["gap"] == SUSPECT).sum() == 1
+    assert out.loc[after, "gap"] == MISSING
+    assert (out["gap"] != PASS).sum() == 1
+
+
+def test_the_sample_after_a_gap_keeps_its_own_value_usable(calm):
+    # the gap's 9 is about the data that never came; the sample's own value is judged by the
+    # other tests and still reaches alerts and fits
+    level, pred = calm
+    keep = np.ones(len(level), bool)
+    keep[1500:1520] = False
+    out = qc.run_tests(level[keep], None, pred[keep])
+    assert out.loc[level.index[1520], "flag"] in (PASS, NOT_EVALUATED, SUSPECT)
 
 
 def test_find_gaps_reports_start_end_and_length(calm):
