@@ -458,7 +458,8 @@ def spike_test(resid: pd.Series, suspect: float, fail: float, gap_limit: float,
 
     The statistic is ``|r(n) - (r(n-1) + r(n+1)) / 2|`` [m]; above ``suspect`` the sample is
     suspect. Above ``fail`` it fails only when it stands alone: its curvature has the
-    opposite sign to that of both neighbours (a lone sample off the curve). At the crest of a
+    opposite sign to that of both neighbours (a lone sample off the curve) and is no smaller
+    than theirs (the spike, not a neighbour it pulls). At the crest of a
     seiche or meteotsunami the curvature keeps its sign over consecutive samples -- real water,
     at most suspect. A sample without both neighbours within ``gap_limit`` [s] (the newest
     one, say) is not evaluated (2).
@@ -490,9 +491,12 @@ def spike_test(resid: pd.Series, suspect: float, fail: float, gap_limit: float,
         with np.errstate(invalid="ignore"):
             # a neighbour that cannot be judged does not vouch for the sample
             alone = ~(np.sign(before) == np.sign(curv)) & ~(np.sign(after) == np.sign(curv))
+        # the spike itself, not its neighbours (whose curvature it makes half as large)
+        peak = ~(np.nan_to_num(np.concatenate([[0.0], stat[:-1]])) > stat) & \
+            ~(np.nan_to_num(np.concatenate([stat[1:], [0.0]])) > stat)
         flags[ok] = PASS
         flags[ok & (stat > suspect)] = SUSPECT
-        flags[ok & (stat > fail) & alone] = FAIL
+        flags[ok & (stat > fail) & alone & peak] = FAIL
     flags[jumps(resid, fail, jump_ratio, gap_limit)] = FAIL
     return _flags(resid.index, flags, "spike")
 

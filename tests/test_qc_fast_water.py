@@ -191,3 +191,15 @@ def test_tests_are_cited_by_the_manuals_numbers():
                          ("expected_range_test", 5), ("spike_test", 6), ("rate_of_change_test", 7),
                          ("flat_line_test", 8), ("attenuation_test", 10), ("multi_sensor_test", 11)):
         assert f"Test {number} " in getattr(qc, name).__doc__, name
+
+
+def test_the_neighbours_of_a_large_spike_are_not_failed_with_it(calm):
+    # an 0.8 m spike makes its neighbours' curvature 0.4 m, past the fail threshold: they are
+    # suspect, the spike alone fails (the sea exactly the predicted tide, so nothing else
+    # curves them)
+    level, pred, hw = calm
+    water = pd.Series(pred.copy(), index=level.index)
+    water.iloc[hw] += 0.8
+    out = qc.run_tests(water, None, pred)
+    assert out["flag"].iloc[hw] == FAIL
+    assert out["flag"].iloc[hw - 1] == SUSPECT and out["flag"].iloc[hw + 1] == SUSPECT
