@@ -114,3 +114,20 @@ def tide(t, mean: float, constants: dict) -> np.ndarray:
         level = level + f * H * np.cos(np.radians(V + u - g))
     return level
 
+
+
+#: How far this evaluation may stand from Schureman's closed forms (which the product uses), per
+#: metre of amplitude [m/m]: the published series carry 4 decimals in f and 0.01 deg in u and
+#: stop at 3N, which leaves them 0.0002-0.0006 in f and 0.01-0.05 deg in u from the closed
+#: forms for the M2, K1 and O1 families (measured in tests/test_nodal.py), so 1 mm per metre;
+#: Mf's and K2's series stand further off (0.0006 and 0.0017 in f, 0.09 and 0.11 deg in u),
+#: so 3 mm per metre. Compounds add their parents'. Solar constituents have no nodal terms.
+SERIES_TOL = {"solar": 0.05e-3, "M2": 1e-3, "K1": 1e-3, "O1": 1e-3, "Mm": 1e-3, "Mf": 3e-3, "K2": 3e-3}
+
+
+def tolerance(name: str) -> float:
+    """Largest difference from the closed forms per metre of amplitude [m/m] (SERIES_TOL)."""
+    rule = SCHUREMAN_V[name][1]
+    if isinstance(rule, str):
+        return SERIES_TOL[rule]
+    return sum(power * SERIES_TOL[parent] for parent, power in rule)

@@ -1,8 +1,10 @@
 """Harmonic fit and its confidence intervals.
 
-Synthetic records are made with the forward model evaluated sample by sample
-(``predictor.nodal.arguments(..., daily=False)``) from a hand-made set of constants for an
-invented port; the fit must invert that model. External facts are named beside each check.
+Synthetic records are made by tests/reference_tide.py, which shares no code with predictor/
+(pyerfa arguments, Schureman's V, Doodson's published nodal series), from a hand-made set of
+constants for an invented port; the fit must recover them, within the published series'
+truncation (reference_tide.tolerance) where there is no noise. External facts are named beside
+each check.
 """
 from __future__ import annotations
 
@@ -12,8 +14,8 @@ import numpy as np
 import pandas as pd
 import pytest
 
+import reference_tide as ref
 from predictor import confidence as ci
-from predictor import nodal
 from predictor.fit import (FitInputError, RecordTooShortError, harmonic_fit, required_days,
                            select_constituents, to_unix_seconds)
 
@@ -35,12 +37,13 @@ START = pd.Timestamp("2031-01-01", tz="UTC").timestamp()
 
 
 def synthesise(t, constants=CONSTANTS, mean=MEAN):
-    """Tide at Unix times t [s] from constants, nodal terms evaluated at every sample."""
-    names = list(constants)
-    vu, f = nodal.arguments(t, names, daily=False)
-    H = np.array([constants[n][0] for n in names])
-    g = np.array([constants[n][1] for n in names])
-    return mean + (f * H * np.cos(np.radians(vu - g))).sum(axis=1)
+    """Tide at Unix times t [s] from constants, by the independent evaluation."""
+    return ref.tide(t, mean, constants)
+
+
+def series_tol(name, H):
+    """What the published series' truncation leaves between the two evaluations [m]."""
+    return H * ref.tolerance(name)
 
 
 def hourly(days, start=START):
@@ -77,26 +80,28 @@ def year_with_gaps():
 # ----------------------------------------------------------------- exact recovery
 
 
-def test_noise_free_record_with_gaps_recovers_constants_exactly(year_with_gaps):
-    # Least squares on noise-free data returns the generating constants (Foreman 1977, sec. 2).
+def test_noise_free_record_with_gaps_recovers_constants(year_with_gaps):
+    # Least squares on noise-free data returns the generating constants (Foreman 1977, sec. 2),
+    # here to within what the published nodal series leave (0.1 mm more for the fit itself).
     t = year_with_gaps
     model = harmonic_fit(t.astype("datetime64[s]"), synthesise(t))
     got = by_name(model)
     assert model.mean == pytest.approx(MEAN, abs=0.1 * mm)
     for name, (H, g) in CONSTANTS.items():
-        assert got[name]["amplitude"] == pytest.approx(H, abs=0.1 * mm), name
-        # a phase error dg moves the curve by at most H dg: keep that below 0.1 mm too
-        assert abs(np.radians(phase_diff(got[name]["phase"], g))) * H < 0.1 * mm, name
+        tol = series_tol(name, H) + 0.1 * mm
+        assert got[name]["amplitude"] == pytest.approx(H, abs=tol), name
+        # a phase error dg moves the curve by at most H dg
+        assert abs(np.radians(phase_diff(got[name]["phase"], g))) * H < tol, name
 
 
-def test_irregular_sampling_recovers_constants_exactly():
+def test_irregular_sampling_recovers_constants():
     # Irregular times are fine for least squares (Foreman 1977, sec. 2: no uniform grid needed).
     rng = np.random.default_rng(7)
     t = np.sort(START + rng.uniform(0.0, 60 * day, 3000))
     model = harmonic_fit(t, synthesise(t), constituents=list(CONSTANTS))
     got = by_name(model)
     for name, (H, g) in CONSTANTS.items():
-        assert got[name]["amplitude"] == pytest.approx(H, abs=0.1 * mm), name
+        assert got[name]["amplitude"] == pytest.approx(H, abs=series_tol(name, H) + 0.1 * mm), name
 
 
 def test_chunked_and_unchunked_normal_equations_agree():
@@ -117,7 +122,8 @@ def test_nan_levels_are_dropped():
     y_gappy[::7] = np.nan
     # this sea holds no P1, K2 or NU2: nothing to infer (infer=None fits what the record resolves)
     got = by_name(harmonic_fit(t, y_gappy, infer=None))
-    assert got["M2"]["amplitude"] == pytest.approx(CONSTANTS["M2"][0], abs=0.1 * mm)
+    H = CONSTANTS["M2"][0]
+    assert got["M2"]["amplitude"] == pytest.approx(H, abs=series_tol("M2", H) + 0.1 * mm)
 
 
 def test_tz_aware_times_are_converted_to_utc():
@@ -127,7 +133,10 @@ def test_tz_aware_times_are_converted_to_utc():
     local = pd.DatetimeIndex(pd.to_datetime(t, unit="s", utc=True)).tz_convert("Europe/Lisbon")
     np.testing.assert_allclose(to_unix_seconds(local), t)
     got = by_name(harmonic_fit(local, y, infer=None))  # nothing unresolved in this sea to infer
-    assert phase_diff(got["M2"]["phase"], CONSTANTS["M2"][1]) == pytest.approx(0.0, abs=0.01 * degree)
+    utc = by_name(harmonic_fit(t, y, infer=None))
+    assert phase_diff(got["M2"]["phase"], utc["M2"]["phase"]) == pytest.approx(0.0, abs=1e-6 * degree)
+    # and both are the sea's: a wrong offset would move M2 by 29 deg an hour
+    assert phase_diff(got["M2"]["phase"], CONSTANTS["M2"][1]) == pytest.approx(0.0, abs=0.05 * degree)
 
 
 def test_unknown_constituent_name_is_refused():
@@ -242,7 +251,8 @@ def test_ill_conditioned_fit_warns_and_still_returns():
         model = harmonic_fit(t, synthesise(t, SHORT), constituents=list(SHORT) + ["MO3", "2MK3"],
                              confidence=None)
     assert any("ill-conditioned" in str(w.message) for w in caught)
-    assert by_name(model)["M2"]["amplitude"] == pytest.approx(CONSTANTS["M2"][0], abs=0.1 * mm)
+    H = CONSTANTS["M2"][0]
+    assert by_name(model)["M2"]["amplitude"] == pytest.approx(H, abs=series_tol("M2", H) + 0.1 * mm)
 
 
 def test_white_noise_coefficient_variance_is_two_sigma_squared_over_n():
@@ -290,11 +300,13 @@ def test_phase_interval_of_a_noise_constituent_is_capped_at_180_degrees():
 
 
 def test_fitted_model_predicts_the_record():
-    # Conventions of fit and prediction agree: TideModel.predict reproduces noise-free data.
+    # Conventions of fit and prediction agree: TideModel.predict reproduces noise-free data
+    # (to what the published series leave between the two evaluations).
     t = hourly(60)
     y = synthesise(t, SHORT)
     model = harmonic_fit(t.astype("datetime64[s]"), y, constituents=list(SHORT))
-    np.testing.assert_allclose(model.predict(t.astype("datetime64[s]")), y, atol=0.1 * mm)
+    tol = sum(series_tol(n, H) for n, (H, _) in SHORT.items()) + 0.1 * mm
+    np.testing.assert_allclose(model.predict(t.astype("datetime64[s]")), y, atol=tol)
 
 
 def test_linear_trend_is_recovered_and_predicted():
@@ -303,27 +315,40 @@ def test_linear_trend_is_recovered_and_predicted():
     rate = 3.0 * mm  # per Julian year
     y = synthesise(t, SHORT) + rate * (t - t[0]) / (365.25 * day)
     model = harmonic_fit(t, y, constituents=list(SHORT), trend=True, confidence=None)
-    assert model.trend == pytest.approx(rate, abs=0.01 * mm)
-    np.testing.assert_allclose(model.predict(t.astype("datetime64[s]")), y, atol=0.1 * mm)
+    assert model.trend == pytest.approx(rate, abs=0.05 * mm)
+    tol = sum(series_tol(n, H) for n, (H, _) in SHORT.items()) + 0.1 * mm
+    np.testing.assert_allclose(model.predict(t.astype("datetime64[s]")), y, atol=tol)
 
 
-def test_interval_coverage_over_seeds_is_near_nominal():
-    # Coloured-noise intervals (Munk & Cartwright 1966; band noise as in predictor.confidence) should hold the true
-    # constants about 95 % of the time. A year with 5 % dropouts and a 22-day outage mid-record,
-    # red AR(1) noise; 12 seeds x 12 constituents x (amplitude, phase) = 288 checks, whose
-    # binomial standard error at 95 % is 1.3 %: we ask for at least 92 %.
+@pytest.fixture(scope="module")
+def coverage_runs():
+    """A year with 5 % dropouts and a 22-day outage mid-record, red AR(1) noise, 24 seeds."""
     grid = hourly(365)
     clean = synthesise(grid)
-    names = list(CONSTANTS)
-    inside = []
-    for seed in range(12):
+    runs = []
+    for seed in range(24):
         rng = np.random.default_rng(1000 + seed)
         noise = ar1(grid.size, 0.9, 0.03, rng)
         keep = rng.random(grid.size) > 0.05
         keep &= ~((grid > START + 150 * day) & (grid < START + 172 * day))
-        got = by_name(harmonic_fit(grid[keep], (clean + noise)[keep], constituents=names))
+        runs.append((grid[keep], (clean + noise)[keep]))
+    return runs
+
+
+@pytest.mark.parametrize("level,low,high", [(0.95, 0.92, 0.98), (0.50, 0.42, 0.58)])
+def test_interval_coverage_over_seeds_is_nominal_from_both_sides(coverage_runs, level, low, high):
+    # Coloured-noise intervals (Munk & Cartwright 1966; band noise as in predictor.confidence)
+    # must hold the true constants at their nominal rate: too narrow misleads, and too wide
+    # hides real changes, so both sides are checked. 24 seeds x 12 constituents x (amplitude,
+    # phase) = 576 checks, whose binomial standard error is 0.9 % at 95 % and 2.1 % at 50 %;
+    # the bounds are about 3.5 standard errors either side. The 50 % level is the sharper test
+    # of width: intervals 30 % too wide would hold 62 % there.
+    names = list(CONSTANTS)
+    inside = []
+    for t, y in coverage_runs:
+        got = by_name(harmonic_fit(t, y, constituents=names, confidence=level))
         for name, (H, g) in CONSTANTS.items():
             c = got[name]
             inside.append(abs(c["amplitude"] - H) <= c["amplitude_ci"])
             inside.append(abs(phase_diff(c["phase"], g)) <= c["phase_ci"])
-    assert np.mean(inside) >= 0.92
+    assert low <= np.mean(inside) <= high

@@ -5,7 +5,8 @@ record is 45 days, far short of the 182.6 days that separate K1 from P1 and S2 f
 the Rayleigh criterion (360 / 0.0821 deg/h; Godin 1972). Equilibrium amplitudes are the
 Cartwright & Tayler (1971) / Cartwright & Edden (1973) values quoted from memory in
 predictor.constituents and checked against pyerfa in tests/test_equilibrium.py.
-Synthetic records of an invented port: the forward model evaluated sample by sample.
+Synthetic records of an invented port by tests/reference_tide.py, which shares no code with
+predictor/ (pyerfa arguments, Schureman's V, Doodson's nodal series).
 """
 from __future__ import annotations
 
@@ -13,7 +14,7 @@ import numpy as np
 import pandas as pd
 import pytest
 
-from predictor import nodal
+import reference_tide as ref
 from predictor.constituents import EQUILIBRIUM_AMPLITUDE
 from predictor.fit import FitInputError, equilibrium_inference, harmonic_fit
 
@@ -33,11 +34,7 @@ FITTED = ["M2", "S2", "K1", "O1"]
 
 
 def synthesise(t, constants):
-    names = list(constants)
-    vu, f = nodal.arguments(t, names, daily=False)
-    H = np.array([constants[n][0] for n in names])
-    g = np.array([constants[n][1] for n in names])
-    return 1.8 + (f * H * np.cos(np.radians(vu - g))).sum(axis=1)
+    return ref.tide(t, 1.8, constants)
 
 
 def by_name(model):

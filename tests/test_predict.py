@@ -31,21 +31,9 @@ def model():
     return TideModel(mean=1.7, constituents=cons, trend=0.004, trend_epoch="2020-01-01T00:00:00Z")
 
 
-# Difference allowed from the independent evaluation per metre of amplitude [m/m]: the published
-# series carry 4 decimals in f and 0.01 deg in u and stop at 3N, which leaves them 0.0002-0.0006
-# in f and 0.01-0.05 deg in u from the closed forms for the M2, K1 and O1 families (measured in
-# tests/test_nodal.py), so 1 mm per metre; Mf's and K2's series stand further from Schureman's
-# closed forms (0.0006 and 0.0017 in f, 0.09 and 0.11 deg in u), so 3 mm per metre. Compounds
-# add their parents' (Schureman 1958, sec. 95). Solar constituents have no nodal terms.
-SERIES_TOL = {"solar": 0.05 * mm, "M2": 1 * mm, "K1": 1 * mm, "O1": 1 * mm, "Mm": 1 * mm,
-              "Mf": 3 * mm, "K2": 3 * mm}
-
-
 def _series_tol(name):
-    rule = ref.SCHUREMAN_V[name][1]
-    if isinstance(rule, str):
-        return SERIES_TOL[rule]
-    return sum(power * SERIES_TOL[parent] for parent, power in rule)
+    # how far the published series may stand from the closed forms (reference_tide.SERIES_TOL)
+    return ref.tolerance(name)
 
 
 # one sample every 3 days for a whole nodal cycle, and a day at 10-minute steps
