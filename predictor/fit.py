@@ -422,6 +422,16 @@ class _Design:
     def n_params(self) -> int:
         return 1 + int(self.trend) + 2 * self.n_fit
 
+    def keeping(self, kept: list[str]) -> "_Design":
+        """The same design with only the fitted constituents ``kept`` (inferred ones stay)."""
+        n_fit = self.n_fit
+        idx = [i for i in range(n_fit) if self.names[i] in kept]
+        idx += list(range(n_fit, len(self.names)))
+        new_pos = {old: new for new, old in enumerate(idx)}
+        infer = tuple((new_pos[j], new_pos[col], r, d) for j, col, r, d in self.infer)
+        return _Design([self.names[i] for i in idx], self.omega[idx], self.t_ref, self.phi[:, idx],
+                       self.f[:, idx], self.trend, self.trend_epoch, infer)
+
     def rows(self, t: np.ndarray) -> np.ndarray:
         pos = (t - self.t_ref) / SECONDS_PER_DAY
         i = np.clip(np.floor(pos).astype(np.int64), 0, self.phi.shape[0] - 2)
@@ -628,9 +638,10 @@ def harmonic_fit(times, levels, constituents="auto", rayleigh: float = 1.0, tren
 
     long_period_snr : float or None
         With ``constituents="auto"``, long-period constituents (Sa, Ssa, Mm, Mf, ...) whose
-        signal-to-noise ratio comes out below this are left out and the record refitted
-        without them; each is listed in ``metadata["dropped"]`` with its SNR. None takes
-        :data:`LONG_PERIOD_SNR`; 0 keeps them all.
+        signal-to-noise ratio comes out below this are left out of the prediction (shrunk
+        to zero; the others keep their joint estimate and intervals, the residual takes back
+        what the weak ones fitted); each is listed in ``metadata["dropped"]`` with its SNR.
+        None takes :data:`LONG_PERIOD_SNR`; 0 keeps them all.
 
     Returns
     -------
@@ -685,18 +696,21 @@ def harmonic_fit(times, levels, constituents="auto", rayleigh: float = 1.0, tren
     if robust == "auto":
         use_robust, robust_reason = _heavy_tailed(sol.r)
         if use_robust:
-            sol = _solve_record(names, inferred, robust=True, **setup)
+            sol = _solve_record(names, inferred, robust=True, start=(sol.A, sol.rhs), design=sol.design,
+                                **setup)
     # 2. long-period constituents the record cannot tell from its weather are left out
     if long_period_snr is None:
         long_period_snr = LONG_PERIOD_SNR
     if auto and long_period_snr:
         weak = _weak_long_period(sol, names, inferred, step_h, long_period_snr)
         if weak:
-            names = [n for n in names if n not in weak]
             dropped = dropped + [{"name": n, "reason": f"long-period, signal-to-noise ratio {snr:.2g} below "
                                   f"{long_period_snr:g}: at this period the record's weather (surges, gaps) "
-                                  "cannot be told from tide"} for n, snr in weak.items()]
-            sol = _solve_record(names, inferred, robust=use_robust, **setup)
+                                  "cannot be told from tide; left out of the prediction"}
+                                 for n, snr in weak.items()]
+            # shrunk to zero: the others keep their joint estimate, the residual takes back what
+            # the weak ones had fitted (a pass over their columns only)
+            sol, names = _without(sol, names, list(weak), setup), [n for n in names if n not in weak]
 
     cons = _constituent_table(sol, names, inferred, step_h, confidence)
     r = sol.r
@@ -796,19 +810,27 @@ class _Solution:
     iterations: int
     off: int                # index of the first constituent coefficient
     t: np.ndarray           # sample times [s]
+    rhs: np.ndarray         # the final right-hand side X'Wy
+    cov: np.ndarray | None = None  # (X'WX)^-1 when it is not the inverse of A (see _without)
 
 
 def _solve_record(names, inferred, *, t, y, w, nodal, trend, epoch, chunk, robust, iterations,
-                  tuning) -> _Solution:
-    """Least squares (and IRLS when ``robust``) for the given constituents."""
-    infer_cols = tuple((names.index(d["from"]), len(names) + i, d["ratio"], math.radians(d["dphase"]))
-                       for i, d in enumerate(inferred))
-    design = _build_design(names + [d["name"] for d in inferred], t[0], t[-1], nodal, trend, epoch,
-                           infer_cols)
+                  tuning, start=None, design=None) -> _Solution:
+    """Least squares (and IRLS when ``robust``) for the given constituents.
+
+    ``start`` is ``(A, rhs)``: normal equations already accumulated for these parameters (a
+    previous solve's, or the part of them a smaller model keeps), used instead of a first pass
+    over the record; ``design`` the matching design, if already built.
+    """
+    if design is None:
+        infer_cols = tuple((names.index(d["from"]), len(names) + i, d["ratio"], math.radians(d["dphase"]))
+                           for i, d in enumerate(inferred))
+        design = _build_design(names + [d["name"] for d in inferred], t[0], t[-1], nodal, trend, epoch,
+                               infer_cols)
     if t.size < design.n_params + 2:
         raise FitInputError(f"only {t.size} valid samples for {design.n_params} unknowns; "
                             "the record needs more samples")
-    A, rhs = _accumulate(design, t, y, w, chunk)
+    A, rhs = start if start is not None else _accumulate(design, t, y, w, chunk)
     beta, cond = _solve(A, rhs)
     done = 0
     if robust:
@@ -822,7 +844,35 @@ def _solve_record(names, inferred, *, t, y, w, nodal, trend, epoch, chunk, robus
             if change < 1e-6:  # metres: a thousandth of a millimetre
                 break
     r = _residual(design, beta, t, y, chunk)
-    return _Solution(design, beta, A, cond, r, done, 1 + int(trend), t)
+    return _Solution(design, beta, A, cond, r, done, 1 + int(trend), t, rhs)
+
+
+def _inverse(A: np.ndarray) -> np.ndarray:
+    """(X'WX)^-1 from the Jacobi-scaled system, pseudo-inverted so that an undetermined
+    direction shows as a wide interval rather than an error."""
+    dsc = np.sqrt(np.diag(A))
+    dsc[dsc == 0] = 1.0
+    return np.linalg.pinv(A / dsc[:, None] / dsc[None, :], rcond=1.0 / MAX_CONDITION) / np.outer(dsc, dsc)
+
+
+def _without(sol: _Solution, names, gone, setup) -> _Solution:
+    """``sol`` with the fitted constituents ``gone`` set to zero: their coefficients and rows of
+    the normal equations removed (the others' covariance is the joint one, as estimated), and
+    what they fitted put back into the residual."""
+    pos = [names.index(n) for n in gone]
+    cols = np.array([sol.off + 2 * i + k for i in pos for k in (0, 1)])
+    keep = np.setdiff1d(np.arange(sol.beta.size), cols)
+    part = _build_design(list(gone), sol.t[0], sol.t[-1], setup["nodal"], False, 0.0)
+    ab = sol.beta[cols]
+    r = sol.r.copy()
+    chunk = setup["chunk"]
+    for s0 in range(0, sol.t.size, chunk):
+        r[s0:s0 + chunk] += part.rows(sol.t[s0:s0 + chunk])[:, 1:] @ ab
+    # the design keeps the others (with any inferred constituent riding on them)
+    design = sol.design.keeping([n for n in names if n not in gone])
+    cov = _inverse(sol.A)[np.ix_(keep, keep)]
+    return _Solution(design, sol.beta[keep], sol.A[np.ix_(keep, keep)], sol.cond, r, sol.iterations,
+                     sol.off, sol.t, sol.rhs[keep], cov)
 
 
 #: A residual is heavy-tailed when more than this share of it lies beyond
@@ -859,11 +909,8 @@ def _intervals(sol: _Solution, names, step_h, confidence):
     speeds = np.array([_speed(catalogue[n]) for n in names])
     spec = _ci.residual_band_spectrum(sol.t, sol.r, None if step_h is None else step_h * SECONDS_PER_HOUR,
                                       fitted_speeds=speeds)
-    # (X'WX)^-1 of the final solve: the same scaled system, pseudo-inverted so that an
-    # undetermined direction shows as a wide interval rather than an error.
-    dsc = np.sqrt(np.diag(A))
-    dsc[dsc == 0] = 1.0
-    inv = np.diag(np.linalg.pinv(A / dsc[:, None] / dsc[None, :], rcond=1.0 / MAX_CONDITION)) / dsc**2
+    # (X'WX)^-1 of the final solve (of the whole fit when some were set to zero after it)
+    inv = np.diag(sol.cov if sol.cov is not None else _inverse(A))
     inv_ab = np.column_stack([inv[off::2], inv[off + 1::2]])
     var_a, var_b = _ci.coefficient_variance(spec, speeds, inv_ab)
     return _ci.amplitude_phase_intervals(a, b, var_a, var_b, confidence=confidence)
