@@ -72,7 +72,7 @@ def test_flag_scale_is_qartods():
 
 
 def test_rate_of_change_default_is_three_deviations_over_25_hours():
-    # QARTOD water level manual v2.1, Test 6 example: N_DEV = 3 standard deviations,
+    # QARTOD water level manual v2.1, Test 7 (rate of change) example: N_DEV = 3 standard deviations,
     # TIM_DEV = 25 hours (from memory).
     s = QcSettings()
     assert s.roc_n_dev == 3.0
@@ -80,7 +80,7 @@ def test_rate_of_change_default_is_three_deviations_over_25_hours():
 
 
 def test_spike_defaults_have_a_lower_suspect_and_higher_fail_threshold():
-    # QARTOD Test 5 takes SPIKE_THRSHLD_LOW (suspect) < SPIKE_THRSHLD_HIGH (fail), values
+    # QARTOD Test 6 takes SPIKE_THRSHLD_LOW (suspect) < SPIKE_THRSHLD_HIGH (fail), values
     # left to the operator (from memory). Ours: 8 cm / 20 cm, common practice, no source;
     # both must sit below the 30 cm single-sample jump the issue requires to fail.
     s = QcSettings()
@@ -88,7 +88,7 @@ def test_spike_defaults_have_a_lower_suspect_and_higher_fail_threshold():
 
 
 def test_flat_line_suspect_comes_before_fail_and_tolerance_below_resolution():
-    # QARTOD Test 7: REP_CNT_SUSPECT < REP_CNT_FAIL and a tolerance EPS (from memory).
+    # QARTOD Test 8 (flat line): REP_CNT_SUSPECT < REP_CNT_FAIL and a tolerance EPS (from memory).
     # Gauge loggers commonly report to 1 mm (common practice, no source): EPS below it.
     s = QcSettings()
     assert s.flat_suspect_after < s.flat_fail_after
@@ -103,5 +103,5 @@ def test_timing_limit_matches_ioc_one_minute():
 
 def test_context_covers_the_longest_window():
     s = QcSettings()
-    assert s.context_seconds() >= max(s.roc_window, s.flat_fail_after, s.resid_noise_window / 2)
+    assert s.context_seconds() >= max(s.roc_window, s.flat_fail_after, s.resid_noise_window / 2, s.atten_window)
     assert math.isfinite(s.context_seconds())
