@@ -79,6 +79,12 @@ class StationView:
         Datum name -> height of that datum above the station datum [m].
     notes, url : str
         Optional text and link shown in messages.
+    display_datum : str
+        The one datum every level in a message is shown on (a key of ``datums``, or
+        ``"station"``); default ``"chart"`` when the station has a chart datum, else
+        ``"station"``.
+    datum_note : str
+        Said under the levels when they are not on chart datum for want of its offset.
     """
 
     id: str
@@ -87,6 +93,20 @@ class StationView:
     datums: dict = field(default_factory=dict)
     notes: str = ""
     url: str = ""
+    display_datum: str = ""
+    datum_note: str = ""
+
+    @property
+    def display(self) -> str:
+        """Name of the display datum."""
+        if self.display_datum:
+            return self.display_datum
+        return "chart" if "chart" in self.datums else "station"
+
+    @property
+    def display_offset(self) -> float:
+        """Height of the display datum's zero above the station datum [m]."""
+        return float(self.datums.get(self.display, 0.0))
 
 
 @dataclass(frozen=True)

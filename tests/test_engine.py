@@ -23,7 +23,7 @@ hour = 3600
 T0 = pd.Timestamp("2025-10-23 00:00", tz="UTC")
 
 STATION = StationView(id="dunmerrow", name="Port Dunmerrow", tz="Europe/Dublin",
-                      datums={"chart_datum": 1.0})
+                      datums={"chart_datum": 1.0}, display_datum="chart_datum")
 SURGE = {"id": "surge", "watch": "residual_above", "hold": "10min", "band": 0.05,
          "notify": ["duty@port.example"],
          "steps": [{"name": "raised", "at": 0.30},
