@@ -139,6 +139,7 @@ class AlertEpisodeRow:
     peak: float | None = None
     unit: str = "m"
     deliveries: tuple[Delivery, ...] = ()
+    signed: bool = False   # a residual (datum-free, shown with its sign); else a level on the report's datum
 
 
 @dataclass(frozen=True)
@@ -154,7 +155,10 @@ class ConstituentRow:
 
 @dataclass(frozen=True)
 class ConstantsInfo:
-    """The harmonic constants the prediction used, where they came from and how well they fit."""
+    """The harmonic constants the prediction used, where they came from and how well they fit.
+
+    ``mean`` [m] is on the report's datum (the constants file may record another; ``source``
+    says how it was brought to the station's)."""
 
     source: str
     mean: float | None = None
@@ -266,6 +270,7 @@ class DayReport:
     tz: str
     day: dt.date
     datum: str = "station datum"
+    datum_note: str = ""
     note: str = ""
     samples: pd.DataFrame = field(default_factory=lambda: empty_samples())
     predicted: pd.Series = field(default_factory=lambda: pd.Series(dtype=float))
@@ -713,7 +718,7 @@ def render_day_email(report: DayReport) -> ReportEmail:
     f = context["f"]
     subject = f"Daily tide report: {report.station_name}, {report.day.isoformat()}"
     if f.highest_level is not None:
-        subject += f" \u2014 high {f.highest_level:.2f} m, residual {f.highest_residual:+.2f} m"
+        subject += f" \u2014 high {f.highest_level:.2f} m above {report.datum}, residual {f.highest_residual:+.2f} m"
     if report.alerts:
         subject += f", {len(report.alerts)} alert episode{'s' if len(report.alerts) != 1 else ''}"
     return ReportEmail(subject=subject + " (automated, unofficial)", text=text, html=html_part, images=images)

@@ -43,7 +43,7 @@ import numpy as np
 import pandas as pd
 
 from monitor import residual as R
-from monitor.config import Config, SensorConfig, StationConfig
+from monitor.config import STATION_DATUM_NAMES, Config, SensorConfig, StationConfig, datum_words
 from monitor.errors import UserError
 from monitor.parse import parse_lines
 from monitor.store import EMPTY_BATCH, BatchResult, Store
@@ -125,16 +125,51 @@ def load_model(store: Store | None, station: StationConfig) -> tuple[Any, str]:
         from predictor import TideModel
 
         try:
-            return TideModel.load(station.constants), f"file {station.constants}"
+            model = TideModel.load(station.constants)
         except ValueError as exc:
             raise UserError(f"station {station.id} constants: {exc}") from None
+        model, how = on_station_datum(model, station, f"station {station.id} constants {station.constants}")
+        return model, f"file {station.constants} ({how})"
     if store is None:
         return None, "fitted from history (no store)"
     fit = store.fit_in_use(station.id)
     if fit is None:
         return None, "none yet: to be fitted from the station's own history"
     when = pd.Timestamp(fit["fitted_at"], unit="s", tz="UTC").strftime("%Y-%m-%d %H:%MZ")
-    return model_from_text(fit["constants"], f"fit {fit['id']}"), f"fit #{fit['id']} of {when}"
+    model = model_from_text(fit["constants"], f"fit {fit['id']}")
+    if model.datum is None:  # fitted to the store's levels, which are on the station datum
+        model.datum = "station"
+    model, _ = on_station_datum(model, station, f"station {station.id} fit #{fit['id']}")
+    return model, f"fit #{fit['id']} of {when}"
+
+
+def on_station_datum(model, station: StationConfig, where: str) -> tuple[Any, str]:
+    """The model with its levels on the station datum, and words saying what was done.
+
+    A constants file records the datum its mean is measured from (key ``datum``). On the
+    station datum it is used as it is; on another datum of the station (``chart``, say)
+    that datum's height above the station datum is added, explicitly; a datum the
+    station does not define is refused, never taken silently as a metre off.
+    A file that records no datum is taken as on the station datum, and said so.
+
+    Raises
+    ------
+    UserError
+        The file names a datum this station does not define.
+    """
+    datum = getattr(model, "datum", None)
+    if datum is None:
+        return model, "its datum is not recorded in the file: taken as the station datum"
+    if datum in STATION_DATUM_NAMES:
+        return model, "on the station datum"
+    if datum in station.datums:
+        z = float(station.datums[datum])
+        return model.referred_to("station", z), (f"mean on {datum_words(datum)}, {z:+.3f} m added "
+                                                 f"to put it on the station datum")
+    known = ", ".join(sorted(set(station.datums) - {"station"})) or "none besides the station datum"
+    raise UserError(f"{where}: the constants' mean is on datum {datum!r}, which station {station.id} does not "
+                    f"define (its datums: {known}); add {datum} under [stations.datums] with its height above "
+                    f"the station datum, or give the file the datum its levels are on (key 'datum')")
 
 
 def refit_station(store: Store, station: StationConfig, now: float | None = None, use: bool | None = None,
@@ -176,6 +211,7 @@ def refit_station(store: Store, station: StationConfig, now: float | None = None
         model = harmonic_fit(obs.index, obs["value"].to_numpy(), robust=robust, infer=infer, metadata=meta)
     except ValueError as exc:
         raise UserError(f"station {station.id}: fit failed: {exc}") from None
+    model.datum = "station"  # the store keeps levels on the station datum
     md = model.metadata or {}
     in_use = station.fit_from_history if use is None else use
     start_t, end_t = int(obs.index[0].timestamp()), int(obs.index[-1].timestamp())
@@ -298,7 +334,8 @@ class Daemon:
         view = None
         if self.rules_mod is not None:
             view = self.rules_mod.StationView(id=st.id, name=st.name, tz=st.tz, datums=dict(st.datums),
-                                               notes=st.note)
+                                               notes=st.note, display_datum=st.display_datum,
+                                               datum_note=st.datum_note)
         kinds = [getattr(s.feed, "kind", None) for s in st.sensors.values() if s.feed is not None]
         rt = StationRuntime(cfg=st, model=model, model_source=source, view=view,
                             replay_clock=bool(kinds) and all(k == "replay" for k in kinds))

@@ -200,7 +200,8 @@ def fit_constants(history: Path, out: Path, log: Path) -> dict:
         model = harmonic_fit(pd.DatetimeIndex(pd.to_datetime(df["time"], utc=True)), df["level"].to_numpy())
         model.save(out)
         return {"mean": model.mean}
-    res = quaywatch(["fit", str(history), "-o", str(out), "--json"])
+    # the history is on the station datum, and the constants file says so
+    res = quaywatch(["fit", str(history), "-o", str(out), "--json", "--datum", "station"])
     with open(log, "a") as fh:
         fh.write(f"$ quaywatch fit {history} -o {out} --json\n{res.stderr}")
     if res.returncode != 0:

@@ -18,6 +18,7 @@ import numpy as np
 import pandas as pd
 
 from alerts import report as R
+from monitor.config import datum_words
 from monitor.errors import UserError
 
 log = logging.getLogger(__name__)
@@ -108,10 +109,20 @@ def barometric_share(residual: pd.Series | np.ndarray, barometric: pd.Series | n
 
 
 def _report_datum(station: Any) -> tuple[str, float]:
+    """The station's display datum in words and its height above the station datum [m]:
+    ``stations[].display_datum`` (chart datum by default where its offset is given)."""
     datums = dict(getattr(station, "datums", {}) or {})
-    if "chart" in datums:
-        return "chart datum", float(datums["chart"])
-    return "station datum", 0.0
+    name = getattr(station, "display_datum", None) or ("chart" if "chart" in datums else "station")
+    return datum_words(name), float(datums.get(name, 0.0))
+
+
+def _datum_note(station: Any) -> str:
+    note = getattr(station, "datum_note", None)
+    if note is not None:
+        return note
+    datums = dict(getattr(station, "datums", {}) or {})
+    return "" if "chart" in datums else ("no chart datum offset is configured for this station, so levels "
+                                         "are on the station datum (the gauge zero)")
 
 
 def _alert_levels(station: Any, shift: float) -> list[R.AlertLevel]:
@@ -218,12 +229,12 @@ def gather_day(store: Any, station: Any, day: dt.date, settings: R.ReportSetting
     counts, episodes = _qc(store, sid, t0, t1)
     return R.DayReport(
         station_id=sid, station_name=station.name, tz=station.tz, day=day, datum=datum,
-        note=getattr(station, "note", "") or "",
+        datum_note=_datum_note(station), note=getattr(station, "note", "") or "",
         samples=samples, predicted=predicted, sample_interval=sample_interval,
         alert_levels=_alert_levels(station, shift), tides=tides,
         rejected_lines=rejected, rejects=rejects, qc_counts=counts, qc_episodes=episodes,
         diagnostics=_diagnostics(store, station, model, end, settings.trend_weeks),
-        alerts=_alerts(db, sid, t0, t1), constants=_constants(store, sid, model, model_source),
+        alerts=_alerts(db, station, t0, t1, shift), constants=_constants(store, sid, model, model_source, shift),
         generated_at=now, forecast=forecast, staff=staff, barometer=barometer,
     )
 
@@ -499,7 +510,11 @@ def _half_width(d: dict) -> float | None:
     return None if lo is None or hi is None else (hi - lo) / 2
 
 
-def _alerts(db: Any, sid: str, t0: int, t1: int) -> list[R.AlertEpisodeRow]:
+def _alerts(db: Any, station: Any, t0: int, t1: int, shift: float) -> list[R.AlertEpisodeRow]:
+    """The day's alert episodes; a level rule's peak moved from its own datum to the report's,
+    a residual's kept with its sign."""
+    sid = station.id
+    datums = dict(getattr(station, "datums", {}) or {})
     if not _table(db, "alert_episodes"):
         return []
     episodes = list(db.query(
@@ -523,14 +538,18 @@ def _alerts(db: Any, sid: str, t0: int, t1: int) -> list[R.AlertEpisodeRow]:
                     sent_at=_ts(max(sent)) if len(sent) == len(msgs) else None,
                     attempts=max(int(m["attempts"] or 0) for m in msgs), error="; ".join(errors),
                     recipients=len(msgs)))
+        peak, watch = _num(ep.get("peak")), ep.get("watch") or ""
+        if peak is not None and (watch.startswith("level") or watch == "next_high_water_above"):
+            peak = peak + float(datums.get(ep.get("datum") or "station", 0.0)) - shift
         rows.append(R.AlertEpisodeRow(
             rule=ep["rule"], level=ep.get("top_step") or ep.get("step_now") or "", started=_ts(ep["opened_at"]),
-            cleared=_ts(ep["closed_at"]), peak=_num(ep.get("peak")), unit=ep.get("unit") or "m",
-            deliveries=tuple(deliveries)))
+            cleared=_ts(ep["closed_at"]), peak=peak, unit=ep.get("unit") or "m",
+            deliveries=tuple(deliveries), signed=watch.startswith("residual")))
     return rows
 
 
-def _constants(store: Any, sid: str, model: Any, source: str) -> R.ConstantsInfo | None:
+def _constants(store: Any, sid: str, model: Any, source: str, shift: float = 0.0) -> R.ConstantsInfo | None:
+    """The constants in use; their mean level (on the station datum in the model) on the report's datum."""
     if model is None:
         return None
     fit = store.fit_in_use(sid) if source.startswith("fit") else None
@@ -541,7 +560,8 @@ def _constants(store: Any, sid: str, model: Any, source: str) -> R.ConstantsInfo
                                              _num(get("amplitude_ci")), _num(get("snr"))))
     constituents.sort(key=lambda k: -k.amplitude)
     return R.ConstantsInfo(
-        source=source or "constants file", mean=_num(getattr(model, "mean", None)), constituents=tuple(constituents),
+        source=source or "constants file", mean=None if _num(getattr(model, "mean", None)) is None
+        else float(model.mean) - shift, constituents=tuple(constituents),
         fitted_at=_ts(fit["fitted_at"]) if fit else None, record_start=_ts(fit["start"]) if fit else None,
         record_end=_ts(fit["end"]) if fit else None, samples=int(fit["n"]) if fit else None,
         rms=_num(fit["rms"]) if fit else None, variance_explained=_num(fit["variance_explained"]) if fit else None)
