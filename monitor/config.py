@@ -170,9 +170,14 @@ LOG_KEYS = ("level", "file", "max_bytes", "backups")
 class ResidualSettings:
     median_minutes: float = 30.0
     mean_minutes: float = 10.0
-    history_days: float = 90.0
+    # Residual history the high water forecast learns from [days]: storms are seasonal and
+    # rare, and about 20 of them are needed before the range is learnt (benchmarks/bench_forecast.py).
+    history_days: float = 1095.0
     min_history_days: float = 14.0
     reference_pressure: float = 1013.25
+    # Fewest storms in the history for a range conditioned on the storm now; with fewer the
+    # range is the wide rule of thumb, said in words (monitor.surge_forecast).
+    forecast_min_storms: int = 20
 
 
 @dataclass(frozen=True)
@@ -458,6 +463,8 @@ def _residual(c: _Checker, raw: Any) -> ResidualSettings:
                                     lambda v: 0 <= v <= 36600, "days from 0 to 36600"),
         "reference_pressure": c.value(t, "residual", "reference_pressure", "number", d.reference_pressure,
                                       lambda v: 800 <= v <= 1100, "hPa between 800 and 1100"),
+        "forecast_min_storms": c.value(t, "residual", "forecast_min_storms", "int", d.forecast_min_storms,
+                                       lambda v: 5 <= v <= 10000, "a whole number of storms from 5 to 10000"),
     }
     return ResidualSettings(**{k: v for k, v in vals.items() if v is not None})
 

@@ -43,6 +43,7 @@ import numpy as np
 import pandas as pd
 
 from monitor import residual as R
+from monitor import surge_forecast as SF
 from monitor.config import STATION_DATUM_NAMES, Config, SensorConfig, StationConfig, datum_words
 from monitor.errors import UserError
 from monitor.parse import parse_lines
@@ -53,7 +54,7 @@ log = logging.getLogger("monitor.daemon")
 PROCESS_CHUNK = 7 * 86400   # [s] most data time processed in one pass (bounds memory in a backfill)
 REWRITE_BACK = 3600         # [s] derived rows before a window that are recomputed (QC may revise flags)
 OUTBOX_DRAIN_WAIT = 30.0    # [s] with --until-exhausted, longest wait for the outbox after the feeds end
-HISTORY_REFRESH = 6 * 3600  # [s, data time] how often the forecast's residual history is re-read
+HISTORY_REFRESH = 6 * 3600  # [s, data time] how often the forecast relearns from the residual history
 # [s] samples before a window handed to the alert rules besides the new ones: messages show the
 # change over the last hour, taken from a sample up to 15 min either side of an hour back
 TREND_BACK = 75 * 60
@@ -243,7 +244,7 @@ class StationRuntime:
     view: Any = None
     extremes: pd.DataFrame | None = None
     extremes_span: tuple[float, float] = (math.inf, -math.inf)
-    history: pd.Series | None = None
+    forecaster: Any = None          # monitor.surge_forecast.SurgeForecaster, relearnt every HISTORY_REFRESH
     history_at: float = -math.inf
     replay_clock: bool = False
     last_fit_try: float = -math.inf
@@ -319,6 +320,7 @@ class Daemon:
         # Every table the jobs write is created here, before the outbox thread opens its own
         # connection: schema changes on the processing path would contend with it for the lock.
         qc.ensure_qc_schema(store.db)
+        SF.ensure_forecast_schema(store.db)
         if self.engine is not None:
             self.engine.ensure_alert_schema(store.db)
         if self.outbox is not None:
@@ -530,27 +532,46 @@ class Daemon:
         rt.extremes = rt.model.high_low(pd.Timestamp(a, unit="s", tz="UTC"), pd.Timestamp(b, unit="s", tz="UTC"))
         rt.extremes_span = (a, b)
 
-    def _forecast(self, rt: StationRuntime, d: pd.DataFrame, end_t: int) -> dict | None:
+    def _forecast(self, rt: StationRuntime, d: pd.DataFrame, end_t: int) -> list[dict]:
+        """Forecast every predicted high water within the station's longest ``clear_horizon``
+        (at least the next one) from the storm state now; each is stored as the latest
+        forecast of its high water and kept in the forecast log. Returns them, next first."""
         st, rs = rt.cfg, self.cfg.residual
-        sm = d["smoothed"].dropna()
-        if sm.empty:
-            return None
-        hw = R.next_high_water(rt.extremes, pd.Timestamp(end_t, unit="s", tz="UTC"))
-        if hw is None:
-            return None
-        if rt.history is None or end_t - rt.history_at > HISTORY_REFRESH:
-            h = self.store.derived(st.id, end_t - int(rs.history_days * 86400), end_t)["smoothed"].dropna()
-            rt.history = h.resample("10min").mean() if len(h) else h
+        if d["smoothed"].dropna().empty:
+            return []
+        now = pd.Timestamp(end_t, unit="s", tz="UTC")
+        horizon = max((getattr(r, "clear_horizon", 0.0) for r in st.rules or ()), default=0.0)
+        hws = R.high_waters_within(rt.extremes, now, now + pd.Timedelta(seconds=horizon))
+        if hws.empty:
+            return []
+        barometer = "barometer" in st.sensors
+        if rt.forecaster is None or end_t - rt.history_at > HISTORY_REFRESH:
+            grid, skew, pressure = SF.read_history(self.store.conn, st.id, end_t - int(rs.history_days * 86400),
+                                                   end_t, barometer)
+            rt.forecaster = SF.SurgeForecaster.learn(grid, skew, pressure, min_storms=rs.forecast_min_storms,
+                                                     min_history_days=rs.min_history_days)
             rt.history_at = end_t
-        fc = R.forecast_high_water(sm.index[-1].timestamp(), float(sm.iloc[-1]), hw["time"].timestamp(),
-                                   float(hw["level"]), rt.history, rs.min_history_days)
-        self.store.write_forecast(st.id, fc)
-        return fc
+        back = int((SF.RATE_HOURS + 1) * 3600)
+        recent = self.store.derived(st.id, end_t - back, end_t)["smoothed"]
+        pressure_now = None
+        if barometer:
+            o = self.store.observations(st.id, "barometer", end_t - back, end_t)
+            pressure_now = o["value"][~o["flag"].isin((4, 9))]
+        state = SF.storm_state(recent, end_t, pressure_now, barometer=barometer)
+        if not np.isfinite(state.residual):
+            return []
+        fcs = [rt.forecaster.forecast(state, row.time.timestamp(), float(row.level)) for row in hws.itertuples()]
+        for fc in fcs:
+            self.store.write_forecast(st.id, fc)
+        with self.store.transaction() as conn:
+            SF.log_forecasts(conn, st.id, fcs)
+        return fcs
 
-    def _alert_context(self, rt: StationRuntime, fc: dict | None, qc_results: dict, now: float,
+    def _alert_context(self, rt: StationRuntime, fcs: list[dict] | None, qc_results: dict, now: float,
                        end_t: int | None = None):
-        """The engine's context: the forecast dict as the residual module made it, the feed's
-        age, and the equipment faults (silent, stuck, drifting, clock off)."""
+        """The engine's context: the high water forecasts as monitor.surge_forecast made them
+        (the next first), the feed's age, and the equipment faults (silent, stuck, drifting,
+        clock off)."""
         st = rt.cfg
         last = {r: self.store.last_time(st.id, r) for r in st.sensors}
         age = None if last.get("primary") is None else max(0.0, now - last["primary"])
@@ -565,7 +586,8 @@ class Daemon:
             except Exception:
                 log.exception("station %s: equipment fault check failed", st.id)
             faults += self._diagnostic_faults(rt, now, end_t)
-        return self.engine.AlertContext(next_high_water=fc, feed_age=age, faults=faults)
+        return self.engine.AlertContext(next_high_water=fcs[0] if fcs else None, feed_age=age, faults=faults,
+                                        high_waters=list(fcs or []))
 
     def _diagnostic_faults(self, rt: StationRuntime, now: float, end_t: int | None) -> list[dict]:
         """Sensor drift (primary against backup, over ``qc.drift_window``) and clock offset
