@@ -230,8 +230,8 @@ def _clear_lines(rule: Rule, station: StationView, check: Any) -> list[tuple[str
     head = (f"at {loc}: forecast {_m(check['level'] - shift)}, its range reaching {_m(top - shift)} "
             f"above {dlabel}")
     if margin >= 0:
-        return [("Next high water", f"{head}, {_m(margin)} above {clean_line(check['step'], 60)} "
-                                    f"({_m(step_lv - shift)} above {dlabel}): the level may be reached again")]
+        return [("All-clear waits on", f"the high water {head}, {_m(margin)} above {clean_line(check['step'], 60)} "
+                                       f"({_m(step_lv - shift)} above {dlabel}): the level may be reached again")]
     return [("Next high water", f"{head}, {_m(-margin)} below {clean_line(check['step'], 60)} "
                                 f"({_m(step_lv - shift)} above {dlabel})")]
 
