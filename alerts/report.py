@@ -183,11 +183,12 @@ class RejectRow:
 
 @dataclass(frozen=True)
 class HighWaterForecast:
-    """The next high water forecast: predicted high water plus the current residual.
+    """A high water forecast as issued: the predicted high water plus a forecast of the surge.
 
-    Levels in metres on the report's datum; ``lower``/``upper`` bound the range that covers
-    ``coverage`` of the station's past residual changes over the same lead time (``None``
-    when the history is too short, and ``note`` says why).
+    Levels in metres on the report's datum. ``lower``/``upper`` bound the ``coverage`` range:
+    conditioned on the storm at ``made_at`` (``method`` ``"conditioned"``), or a deliberately
+    wide rule of thumb when the history holds too few storms (``"wide"``); ``note`` says
+    which, and how, in words.
     """
 
     time: pd.Timestamp
@@ -199,10 +200,51 @@ class HighWaterForecast:
     upper: float | None = None
     coverage: float | None = None
     note: str = ""
+    method: str = ""            # "conditioned" (on the storm now) or "wide" (the rule of thumb)
+    rising: float | None = None  # if the surge keeps rising at its current rate until then [m]
+    rate: float | None = None    # the residual's rate over the last 3 h [m/h]
+    pressure_note: str = ""      # said when a barometer gap left the pressure tendency out
 
     @property
     def lead(self) -> pd.Timedelta:
         return self.time - self.made_at
+
+
+@dataclass(frozen=True)
+class Verified:
+    """One forecast of a high water issued ``lead_h`` hours before it; levels [m, report datum]."""
+
+    lead_h: float
+    made_at: pd.Timestamp
+    forecast: float | None
+    lower: float | None = None
+    upper: float | None = None
+    method: str = ""
+
+
+@dataclass(frozen=True)
+class VerificationRow:
+    """A high water of the day against what was forecast for it 6, 3 and 1 h before.
+
+    ``observed`` is what came: the highest observed level of its tidal cycle [m, report datum];
+    ``forecasts`` one :class:`Verified` (or None when none was issued then) per lead.
+    """
+
+    time: pd.Timestamp
+    predicted: float
+    observed: float | None
+    observed_time: pd.Timestamp | None = None
+    forecasts: tuple = ()
+
+    def verdict(self, f: "Verified | None") -> str:
+        """``"inside"``, ``"above"``, ``"below"`` the forecast's range, or ``""`` when unknown."""
+        if f is None or self.observed is None or f.lower is None or f.upper is None:
+            return ""
+        if self.observed > f.upper:
+            return "above"
+        if self.observed < f.lower:
+            return "below"
+        return "inside"
 
 
 @dataclass(frozen=True)
@@ -288,6 +330,7 @@ class DayReport:
     forecast: HighWaterForecast | None = None
     staff: StaffCheck | None = None
     barometer: BarometerPart | None = None
+    verification: Sequence["VerificationRow"] = ()
 
 
 def empty_samples() -> pd.DataFrame:
@@ -620,6 +663,15 @@ def _summary(report: DayReport, figures: DayFigures) -> dict[str, Any]:
     }
 
 
+def _verify_leads(report: DayReport) -> list[str]:
+    """The lead times of the verification table's columns [h]."""
+    for row in report.verification:
+        leads = [f.lead_h for f in row.forecasts if f is not None]
+        if len(leads) == len(row.forecasts):
+            return [f"{x:g}" for x in leads]
+    return ["6", "3", "1"]
+
+
 def _forecast_margins(report: DayReport) -> list[tuple[str, float, float, bool]]:
     """For each operator level watched upwards: (name, level, forecast - level, reached),
     ``reached`` when the forecast or the top of its range is at or above the level [m]."""
@@ -657,6 +709,7 @@ def _context(report: DayReport, chart_src: str, trend_src: str | None,
         "generated": clock(generated, date=True) + " local, " + pd.Timestamp(generated).tz_convert("UTC").strftime("%Y-%m-%d %H:%M UTC"),
         "summary_json": json.dumps(_summary(report, figures), sort_keys=True),
         "hw_levels": _forecast_margins(report),
+        "verify_leads": _verify_leads(report),
     }
 
 
@@ -816,7 +869,7 @@ def prune_reports(folder: Path, keep_days: int, today: dt.date) -> list[Path]:
 
 
 __all__: Iterable[str] = [
-    "AlertEpisodeRow", "AlertLevel", "BarometerPart", "CAUTION", "HighWaterForecast", "StaffCheck", "ConstantsInfo", "ConstituentRow", "DayFigures",
+    "AlertEpisodeRow", "AlertLevel", "BarometerPart", "CAUTION", "HighWaterForecast", "Verified", "VerificationRow", "StaffCheck", "ConstantsInfo", "ConstituentRow", "DayFigures",
     "DayReport", "Delivery", "Diagnostic", "QcEpisode", "RejectRow", "ReportEmail",
     "ReportSettings", "TideRow", "day_bounds", "day_figures", "empty_samples", "prune_reports",
     "read_summary", "render_day_email", "render_day_html", "render_index_html",
