@@ -60,8 +60,10 @@ class AlertContext:
         Active equipment faults from quality control (``kind``, ``value``, ``limit``, ``since``).
     high_waters : list
         Forecasts of every predicted high water within the longest ``clear_horizon`` of the
-        station's rules (the next one first), in any form :meth:`hw_dict` accepts; default
-        the next high water alone. A level rule's all-clear waits on them.
+        station's rules, in any form :meth:`hw_dict` accepts; default the next high water
+        alone. Forecasts carrying ``made_t`` may come from several issue times through the
+        window: a sample is judged by the latest set issued at or before it
+        (:meth:`forecasts_at`). A level rule's all-clear waits on them.
     """
 
     next_high_water: Any = None
@@ -75,11 +77,22 @@ class AlertContext:
         out = [d for d in (_as_hw_dict(hw) for hw in items) if d is not None]
         return sorted(out, key=lambda d: d["time"])
 
+    def forecasts_at(self, t: int | None = None) -> list[dict]:
+        """The high water forecasts as they stood at ``t`` [Unix s]: the set issued last at or
+        before it (the first set for a time before any), in time order; all of them when
+        they carry no issue time."""
+        every = self.hw_dicts()
+        made = sorted({d["made_t"] for d in every if d.get("made_t") is not None})
+        if t is None or not made:
+            return every
+        pick = max((m for m in made if m <= t), default=made[0])
+        return [d for d in every if d.get("made_t") == pick]
+
     def hw_dict(self) -> dict | None:
         """The forecast as ``time, level, uncertainty`` (or ``lower, upper``) in a dict.
 
         Accepts a :class:`NextHighWater`, a dict with those keys, or the forecast dict of
-        ``monitor.residual.forecast_high_water`` (``hw_t, forecast, lower, upper, ...``).
+        ``monitor.surge_forecast.SurgeForecaster.forecast`` (``hw_t, forecast, lower, upper, ...``).
         """
         return _as_hw_dict(self.next_high_water)
 
@@ -225,7 +238,8 @@ def _facts(samples: pd.DataFrame, t_all: np.ndarray, ok_all: np.ndarray, t: int,
                     j = cand[np.argmin(np.abs(t_all[cand] - (t_all[i] - TREND_WINDOW)))]
                     facts["trend"] = float(row["observed"]) - float(samples["observed"].iloc[j])
                     facts["trend_window"] = int(t_all[i] - t_all[j])
-    hw = context.hw_dict()
+    coming = [d for d in context.forecasts_at(t) if d["time"] > t] if context.high_waters else []
+    hw = coming[0] if coming else context.hw_dict()
     if hw is not None:
         facts["next_high_water"] = hw
     if context.feed_age is not None:
@@ -241,7 +255,7 @@ def _reaching(rule: Rule, context: AlertContext | None, t: int) -> dict | None:
     on the rule's datum), or None: while there is one, a level rule's all-clear waits."""
     if context is None or rule.watch != "level_above" or rule.clear_horizon <= 0:
         return None
-    for hw in context.hw_dicts():
+    for hw in context.forecasts_at(t):
         if not t < hw["time"] <= t + rule.clear_horizon:
             continue
         top = _top(hw)
@@ -263,7 +277,7 @@ def _clear_check(rule: Rule, context: AlertContext, t: int) -> dict | None:
     else the next high water, with the top of its range [m, station datum]."""
     hw = _reaching(rule, context, t)
     if hw is None:
-        later = [h for h in context.hw_dicts() if h["time"] > t]
+        later = [h for h in context.forecasts_at(t) if h["time"] > t]
         hw = later[0] if later else None
     if hw is None or hw.get("level") is None:
         return None

@@ -498,7 +498,7 @@ class Daemon:
                     store.write_skew_surges(st.id, ss[ss["hw_t"] >= a + 3600])
             # 4. next high water forecast
             if latest:
-                context = self._forecast(rt, d, end_t)
+                context = self._forecast(rt, start_t, end_t)
 
         # 5. alert rules, on the new samples and the hour before them (for the trend)
         if self.engine is not None and st.rules and rt.view is not None:
@@ -532,18 +532,15 @@ class Daemon:
         rt.extremes = rt.model.high_low(pd.Timestamp(a, unit="s", tz="UTC"), pd.Timestamp(b, unit="s", tz="UTC"))
         rt.extremes_span = (a, b)
 
-    def _forecast(self, rt: StationRuntime, d: pd.DataFrame, end_t: int) -> list[dict]:
+    def _forecast(self, rt: StationRuntime, start_t: int, end_t: int) -> list[dict]:
         """Forecast every predicted high water within the station's longest ``clear_horizon``
-        (at least the next one) from the storm state now; each is stored as the latest
-        forecast of its high water and kept in the forecast log. Returns them, next first."""
+        (at least the next one) from the storm state, as issued at the end of the window and
+        at each half hour of it (so a long window -- a backfill, a fast replay -- is judged
+        by the forecast of its own time, not of its end). Each is stored as the latest
+        forecast of its high water and kept in the forecast log. Returns them all, in the
+        order issued."""
         st, rs = rt.cfg, self.cfg.residual
-        if d["smoothed"].dropna().empty:
-            return []
-        now = pd.Timestamp(end_t, unit="s", tz="UTC")
-        horizon = max((getattr(r, "clear_horizon", 0.0) for r in st.rules or ()), default=0.0)
-        hws = R.high_waters_within(rt.extremes, now, now + pd.Timedelta(seconds=horizon))
-        if hws.empty:
-            return []
+        horizon = pd.Timedelta(seconds=max((getattr(r, "clear_horizon", 0.0) for r in st.rules or ()), default=0.0))
         barometer = "barometer" in st.sensors
         if rt.forecaster is None or end_t - rt.history_at > HISTORY_REFRESH:
             grid, skew, pressure = SF.read_history(self.store.conn, st.id, end_t - int(rs.history_days * 86400),
@@ -552,15 +549,21 @@ class Daemon:
                                                      min_history_days=rs.min_history_days)
             rt.history_at = end_t
         back = int((SF.RATE_HOURS + 1) * 3600)
-        recent = self.store.derived(st.id, end_t - back, end_t)["smoothed"]
+        recent = self.store.derived(st.id, start_t - back, end_t)["smoothed"].dropna()
         pressure_now = None
         if barometer:
-            o = self.store.observations(st.id, "barometer", end_t - back, end_t)
+            o = self.store.observations(st.id, "barometer", start_t - back, end_t)
             pressure_now = o["value"][~o["flag"].isin((4, 9))]
-        state = SF.storm_state(recent, end_t, pressure_now, barometer=barometer)
-        if not np.isfinite(state.residual):
-            return []
-        fcs = [rt.forecaster.forecast(state, row.time.timestamp(), float(row.level)) for row in hws.itertuples()]
+        slot = SF.LOG_SLOT_S
+        issued = [*range(-(-start_t // slot) * slot, end_t, slot), end_t]
+        fcs: list[dict] = []
+        for at in issued:
+            state = SF.storm_state(recent, at, pressure_now, barometer=barometer)
+            if not np.isfinite(state.residual) or at - state.t > 3600:
+                continue  # no live residual then (a gap): no forecast
+            now = pd.Timestamp(state.t, unit="s", tz="UTC")
+            hws = R.high_waters_within(rt.extremes, now, now + horizon)
+            fcs += [rt.forecaster.forecast(state, row.time.timestamp(), float(row.level)) for row in hws.itertuples()]
         for fc in fcs:
             self.store.write_forecast(st.id, fc)
         with self.store.transaction() as conn:
@@ -586,7 +589,8 @@ class Daemon:
             except Exception:
                 log.exception("station %s: equipment fault check failed", st.id)
             faults += self._diagnostic_faults(rt, now, end_t)
-        return self.engine.AlertContext(next_high_water=fcs[0] if fcs else None, feed_age=age, faults=faults,
+        last = [f for f in fcs or [] if f["made_t"] == fcs[-1]["made_t"]]
+        return self.engine.AlertContext(next_high_water=last[0] if last else None, feed_age=age, faults=faults,
                                         high_waters=list(fcs or []))
 
     def _diagnostic_faults(self, rt: StationRuntime, now: float, end_t: int | None) -> list[dict]:
