@@ -327,13 +327,14 @@ def _forecast_row(fc: dict, shift: float) -> R.HighWaterForecast:
 
 #: Leads of the verification table [h]: what was forecast this long before each high water.
 VERIFY_LEADS = (6, 3, 1)
-#: A logged forecast counts as made at a lead when issued within this of it [s].
-VERIFY_SLACK_S = 20 * 60
+#: The forecast "L h before" is the last one issued at or before then, if issued within this [s].
+VERIFY_SLACK_S = 3600
 
 
 def _verification(store: Any, sid: str, tides: list, shift: float) -> list[R.VerificationRow]:
-    """For each high water of the day: what was forecast 6, 3 and 1 h before, against what came
-    (the highest observed level of its tidal cycle)."""
+    """For each high water of the day: what was forecast 6, 3 and 1 h before (the last forecast
+    issued at or before each, within an hour of it), against what came (the highest observed
+    level of its tidal cycle)."""
     from monitor import surge_forecast as SF
 
     highs = [w for w in tides if w.kind == "high"]
@@ -349,11 +350,11 @@ def _verification(store: Any, sid: str, tides: list, shift: float) -> list[R.Ver
         made = []
         for lead in VERIFY_LEADS:
             target = hw_t - lead * 3600
-            near = mine[(mine["made_t"] - target).abs() <= VERIFY_SLACK_S] if len(mine) else mine
+            near = mine[(mine["made_t"] <= target) & (mine["made_t"] > target - VERIFY_SLACK_S)] if len(mine) else mine
             if not len(near):
                 made.append(None)
                 continue
-            fc = near.iloc[int(np.argmin((near["made_t"] - target).abs().to_numpy()))].to_dict()
+            fc = near.loc[near["made_t"].idxmax()].to_dict()
             row = _forecast_row(fc, shift)
             made.append(R.Verified(lead_h=lead, made_at=row.made_at, forecast=row.forecast, lower=row.lower,
                                    upper=row.upper, method=row.method))

@@ -539,9 +539,9 @@ class SurgeForecaster:
         enough = self.history_days >= self.min_history_days
         spread = ("the usual spread of the residual's change over this lead time" if enough else
                   f"+-{NO_HISTORY_HALF_WIDTH:.2f} m (too little history for its usual spread)")
-        return (f"WIDE RANGE, a rule of thumb and not a measured one: {why}. It adds to {spread} half the surge "
-                f"now and its 3-hour rate kept for the whole {lead_h:.1f} h, both ways; centre = predicted high "
-                f"water + the surge now, held")
+        return (f"WIDE RANGE, a rule of thumb and not a measured one: {why}. The range is {spread}, widened "
+                f"both ways by half the surge now plus its 3-hour rate kept for the whole {lead_h:.1f} h; "
+                f"centre = predicted high water + the surge now, held")
 
     def _conditioned_note(self, state: StormState, lead_h: float, use_p: bool) -> str:
         parts = [f"surge {state.residual:+.2f} m", f"{'rising' if state.rate >= 0 else 'falling'} "
@@ -573,8 +573,9 @@ def _finite(v: float) -> float | None:
 
 # --------------------------------------------------------------------------- store glue
 
-#: Forecasts kept per high water: the latest in each half-hour of issue time, so a report
-#: can show what was forecast 1, 3 and 6 h before each high water of its day.
+#: Forecasts kept per high water: the first issued in each half-hour of issue time (the
+#: daemon issues one at each half hour), so a report can show what was forecast 1, 3 and
+#: 6 h before each high water of its day without keeping every pass's forecast.
 LOG_SLOT_S = 1800
 LOG_COLUMNS = ("hw_t", "made_t", "predicted_high", "residual_now", "rate", "tendency", "forecast", "lower",
                "upper", "coverage", "persistence", "rising", "method", "note", "pressure_note")
@@ -593,11 +594,11 @@ def ensure_forecast_schema(db) -> None:
 
 
 def log_forecasts(conn, station: str, forecasts: list[dict]) -> None:
-    """Keep forecasts in ``hw_forecast_log`` (the latest of each half-hour slot per high water)."""
+    """Keep forecasts in ``hw_forecast_log`` (the first of each half-hour slot per high water)."""
     rows = [(station, int(fc["hw_t"]), int(fc["made_t"]) // LOG_SLOT_S,
              *[fc.get(k) for k in LOG_COLUMNS[1:]]) for fc in forecasts]
     if rows:
-        conn.executemany(f"INSERT OR REPLACE INTO hw_forecast_log (station, hw_t, slot, {', '.join(LOG_COLUMNS[1:])}) "
+        conn.executemany(f"INSERT OR IGNORE INTO hw_forecast_log (station, hw_t, slot, {', '.join(LOG_COLUMNS[1:])}) "
                          f"VALUES ({', '.join('?' * (len(LOG_COLUMNS) + 2))})", rows)
 
 

@@ -187,8 +187,9 @@ def test_verification_table_shows_each_high_water_against_its_forecasts(site):
     hw_t = int(high.predicted_time.timestamp())
     came = high.observed_level + CHART            # on the station datum, as the daemon logs forecasts
     # 6 h before: a range well below what came; 3 h before: one around it; 1 h before: none issued
-    _log_forecast(store, hw_t, hw_t - 6 * 3600 + 300, came - 0.5, came - 0.7, came - 0.3)
+    _log_forecast(store, hw_t, hw_t - 6 * 3600 - 300, came - 0.5, came - 0.7, came - 0.3)
     _log_forecast(store, hw_t, hw_t - 3 * 3600 - 200, came - 0.05, came - 0.2, came + 0.1)
+    _log_forecast(store, hw_t, hw_t - 2 * 3600 - 900, came + 0.5, came + 0.3, came + 0.7)  # 2.25 h before: neither
     try:
         report = gather_day(store, Station(), DAY, model=model, model_source="constants file", now=end)
     finally:

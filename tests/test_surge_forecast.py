@@ -187,3 +187,15 @@ def test_unconditioned_quantiles_are_todays_method():
     lo, hi = np.quantile(d, [0.05, 0.95])  # numpy quantile, type 7 (Hyndman & Fan 1996)
     assert SF.unconditioned_quantiles(hist, 2 * hour) == pytest.approx((lo, hi), abs=0.01 * mm)
     assert SF.unconditioned_quantiles(hist.iloc[:13], 3 * hour) is None  # no pairs 3 h apart
+
+
+def test_the_log_keeps_the_first_forecast_of_each_half_hour(tmp_path):
+    import sqlite_utils
+
+    db = sqlite_utils.Database(tmp_path / "s.db")
+    SF.ensure_forecast_schema(db)
+    base = {"hw_t": int(T0 + 6 * hour), "predicted_high": 3.0, "residual_now": 0.1, "lower": 2.9, "upper": 3.4}
+    made = [int(T0), int(T0 + 60), int(T0 + 1800), int(T0 + 1860)]   # two passes in each of two half hours
+    SF.log_forecasts(db.conn, "p", [{**base, "made_t": m, "forecast": 3.0 + i / 100} for i, m in enumerate(made)])
+    got = SF.read_log(db, "p", T0 - 1, T0 + hour)
+    assert list(got["made_t"]) == [int(T0), int(T0 + 1800)] and list(got["forecast"]) == [3.0, 3.02]
