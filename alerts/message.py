@@ -232,7 +232,8 @@ def _clear_lines(rule: Rule, station: StationView, check: Any) -> list[tuple[str
     if margin >= 0:
         return [("All-clear waits on", f"the high water {head}, {_m(margin)} above {clean_line(check['step'], 60)} "
                                        f"({_m(step_lv - shift)} above {dlabel}): the level may be reached again")]
-    return [("Next high water", f"{head}, {_m(-margin)} below {clean_line(check['step'], 60)} "
+    below = _m(-margin) if -margin >= 0.005 else "less than 0.01 m"
+    return [("Next high water", f"{head}, {below} below {clean_line(check['step'], 60)} "
                                 f"({_m(step_lv - shift)} above {dlabel})")]
 
 

@@ -277,7 +277,7 @@ def test_next_high_water_shows_forecast_time_and_range(plain_html):
 
 def test_next_high_water_range_reaching_an_operator_level_is_marked(plain_html):
     part = _section(plain_html, "next-hw")
-    assert 'class="bad">Quay apron wet (3.60 m): forecast \u22120.03 m below it, within the range' in part
+    assert 'class="bad">Quay apron wet (3.60 m): forecast 0.03 m below it, within the range' in part
 
 
 def test_forecast_without_range_says_so():
