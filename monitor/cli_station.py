@@ -127,14 +127,17 @@ def cmd_check(args: argparse.Namespace) -> int:
     cfg = _config(args.config)
     from monitor.daemon import load_model
 
+    sources = {}
     for st in cfg.stations:
         if st.constants is not None:
-            load_model(None, st)  # a broken constants file is a configuration problem too
+            # a broken constants file, or one on a datum the station lacks, is a configuration problem too
+            sources[st.id] = load_model(None, st)[1]
     print(f"{args.config}: configuration is valid")
     for st in cfg.stations:
         sensors = ", ".join(f"{r} ({s.units}, feed {getattr(s.feed, 'kind', 'none')})" for r, s in st.sensors.items())
-        const = str(st.constants) if st.constants else "fitted from the station's own history"
-        print(f"  station {st.id}: {st.name}; {st.tz}; sensors: {sensors}; constants: {const}")
+        const = sources.get(st.id, "fitted from the station's own history")
+        print(f"  station {st.id}: {st.name}; {st.tz}; sensors: {sensors}; constants: {const}; levels shown "
+              f"above {st.display_label}" + (f" ({st.datum_note})" if st.datum_note else ""))
     print(f"  store: {cfg.store_path}")
     return 0
 
