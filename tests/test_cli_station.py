@@ -169,3 +169,25 @@ def test_refit_with_too_little_history_says_how_much_is_needed(tmp_path, capsys)
     capsys.readouterr()
     assert main(["refit", str(cfg), "--station", "testport"]) == 2
     assert "fit_min_days = 20 needed" in capsys.readouterr().err
+
+
+def test_status_shows_every_level_on_the_display_datum(tmp_path, capsys):
+    # status gave the level on both datums and the next high water on the station datum.
+    from monitor.store import Store
+
+    (tmp_path / "c.toml").write_text(
+        'mean = 2.5\n[[constituents]]\nname = "M2"\namplitude = 1.2\nphase = 0.0\n')
+    cfg = _setup(tmp_path, "c.toml")
+    with Store.open(tmp_path / "q.db") as store:
+        idx = pd.DatetimeIndex([pd.Timestamp(T0, unit="s", tz="UTC")])
+        store.write_derived("testport", pd.DataFrame({"observed": [3.0], "predicted": [2.8], "residual": [0.2],
+                                                      "smoothed": [0.2]}, index=idx))
+        store.write_forecast("testport", {"hw_t": T0 + 3600, "made_t": T0, "predicted_high": 3.5,
+                                          "residual_now": 0.2, "forecast": 3.7, "lower": 3.5, "upper": 4.0,
+                                          "coverage": 0.9, "note": "test"})
+    assert main(["status", str(cfg)]) == 0
+    out = capsys.readouterr().out
+    # chart datum stands 1.0 m below this station's datum: every level shown is 1.0 m higher
+    assert "4.000 m above chart datum" in out and "3.800 m above chart datum" in out
+    assert "4.700 m above chart datum" in out and "range 4.50 to 5.00 m" in out
+    assert "m above station datum" not in out

@@ -225,3 +225,13 @@ def test_attachment_not_cited_stays_an_attachment_beside_inline_images():
     assert msg.get_content_type() == "multipart/mixed"
     assert [a.get_filename() for a in msg.iter_attachments()] == ["data.csv"]
     assert msg.get_payload()[0].get_content_type() == "multipart/alternative"
+
+
+def test_a_barometer_gap_and_a_rising_surge_are_said_beside_the_forecast():
+    hw = {"time": T + 4 * 3600, "level": 5.2, "lower": 4.7, "upper": 5.9, "coverage": 0.9, "rate": 0.12,
+          "rising": 5.6, "note": "WIDE RANGE, a rule of thumb",
+          "pressure_note": "barometer silent since 2025-10-23 09:00 UTC: forecast made without the pressure tendency"}
+    _, text, _ = compose_alert(STATION, RULE, Event("opened", 0, T, 0.4), {"next_high_water": hw})
+    assert "Barometer:" in text and "without the pressure tendency" in text
+    assert "If the surge keeps rising:" in text and "4.60 m above chart datum" in text  # 5.6 m less CD's 1.0
+    assert "WIDE RANGE" in text
