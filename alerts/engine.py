@@ -58,32 +58,59 @@ class AlertContext:
         Seconds since the station's last sample arrived [s].
     faults : list of dict
         Active equipment faults from quality control (``kind``, ``value``, ``limit``, ``since``).
+    high_waters : list
+        Forecasts of every predicted high water within the longest ``clear_horizon`` of the
+        station's rules, in any form :meth:`hw_dict` accepts; default the next high water
+        alone. Forecasts carrying ``made_t`` may come from several issue times through the
+        window: a sample is judged by the latest set issued at or before it
+        (:meth:`forecasts_at`). A level rule's all-clear waits on them.
     """
 
     next_high_water: Any = None
     feed_age: float | None = None
     faults: list = field(default_factory=list)
+    high_waters: list = field(default_factory=list)
+
+    def hw_dicts(self) -> list[dict]:
+        """Every high water forecast as :meth:`hw_dict` gives the next, in time order."""
+        items = self.high_waters or ([self.next_high_water] if self.next_high_water is not None else [])
+        out = [d for d in (_as_hw_dict(hw) for hw in items) if d is not None]
+        return sorted(out, key=lambda d: d["time"])
+
+    def forecasts_at(self, t: int | None = None) -> list[dict]:
+        """The high water forecasts as they stood at ``t`` [Unix s]: the set issued last at or
+        before it (the first set for a time before any), in time order; all of them when
+        they carry no issue time."""
+        every = self.hw_dicts()
+        made = sorted({d["made_t"] for d in every if d.get("made_t") is not None})
+        if t is None or not made:
+            return every
+        pick = max((m for m in made if m <= t), default=made[0])
+        return [d for d in every if d.get("made_t") == pick]
 
     def hw_dict(self) -> dict | None:
         """The forecast as ``time, level, uncertainty`` (or ``lower, upper``) in a dict.
 
         Accepts a :class:`NextHighWater`, a dict with those keys, or the forecast dict of
-        ``monitor.residual.forecast_high_water`` (``hw_t, forecast, lower, upper, ...``).
+        ``monitor.surge_forecast.SurgeForecaster.forecast`` (``hw_t, forecast, lower, upper, ...``).
         """
-        hw = self.next_high_water
-        if hw is None:
-            return None
-        if isinstance(hw, dict):
-            d = dict(hw)
-            if "hw_t" in d:
-                d.setdefault("time", d["hw_t"])
-                d.setdefault("level", d.get("forecast"))
-        else:
-            d = {"time": hw.time, "level": hw.level, "uncertainty": hw.uncertainty}
-        if d.get("time") is None:
-            return None
-        d["time"] = unix_seconds(d["time"])
-        return d
+        return _as_hw_dict(self.next_high_water)
+
+
+def _as_hw_dict(hw: Any) -> dict | None:
+    if hw is None:
+        return None
+    if isinstance(hw, dict):
+        d = dict(hw)
+        if "hw_t" in d:
+            d.setdefault("time", d["hw_t"])
+            d.setdefault("level", d.get("forecast"))
+    else:
+        d = {"time": hw.time, "level": hw.level, "uncertainty": hw.uncertainty}
+    if d.get("time") is None:
+        return None
+    d["time"] = unix_seconds(d["time"])
+    return d
 
 
 def ensure_alert_schema(db) -> None:
@@ -93,8 +120,10 @@ def ensure_alert_schema(db) -> None:
         db["alert_state"].create({
             "station": str, "rule": str, "level": int, "top_sent": int, "steps": str,
             "above_since": str, "inside_since": str, "watermark": int, "episode_id": int,
-            "announced": str, "updated_at": int,
+            "announced": str, "updated_at": int, "held": int,
         }, pk=("station", "rule"), if_not_exists=True)
+    elif "held" not in db["alert_state"].columns_dict:
+        db["alert_state"].add_column("held", int)  # stores from before the all-clear could wait
     if "alert_episodes" not in names:
         db["alert_episodes"].create({
             "id": int, "station": str, "rule": str, "watch": str, "datum": str, "unit": str,
@@ -130,20 +159,21 @@ def _load_state(db, station: str, rule: Rule) -> tuple[RuleState, int | None]:
 
     state = RuleState(level=remap_index(r["level"]), top_sent=remap_index(r["top_sent"]),
                       above_since=remap_times(above_old), inside_since=remap_times(inside_old),
-                      watermark=r["watermark"])
+                      watermark=r["watermark"], held=bool(r.get("held")))
     return state, r["episode_id"]
 
 
 def _save_state(db, station: str, rule: Rule, state: RuleState, episode_id: int | None, now: int) -> None:
     db.conn.execute(
         "INSERT INTO alert_state (station, rule, level, top_sent, steps, above_since, inside_since,"
-        " watermark, episode_id, updated_at) VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?)"
+        " watermark, episode_id, updated_at, held) VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?)"
         " ON CONFLICT (station, rule) DO UPDATE SET level = excluded.level, top_sent = excluded.top_sent,"
         " steps = excluded.steps, above_since = excluded.above_since, inside_since = excluded.inside_since,"
-        " watermark = excluded.watermark, episode_id = excluded.episode_id, updated_at = excluded.updated_at",
+        " watermark = excluded.watermark, episode_id = excluded.episode_id, updated_at = excluded.updated_at,"
+        " held = excluded.held",
         (station, rule.id, state.level, state.top_sent, json.dumps([s.name for s in rule.steps]),
          json.dumps(list(state.above_since)), json.dumps(list(state.inside_since)),
-         state.watermark, episode_id, now))
+         state.watermark, episode_id, now, int(state.held)))
 
 
 # --------------------------------------------------------------------------- samples
@@ -178,6 +208,10 @@ def _record_events(db, station, rule, events, episode_id, samples, t_all, ok_all
     """Record each event of one step of a rule (queueing its messages); returns the open episode."""
     for ev in events:
         facts = _facts(samples, t_all, ok_all, at, context)
+        if ev.kind in ("held", "cleared") and rule.watch == "level_above" and rule.clear_horizon > 0:
+            check = _clear_check(rule, context, at)
+            if check is not None:
+                facts["clear_check"] = check
         episode_id, info = _on_event(db, station, rule, ev, episode_id, facts, t_now, clock=clock)
         results.append(info)
         if ev.kind == "cleared":
@@ -204,7 +238,8 @@ def _facts(samples: pd.DataFrame, t_all: np.ndarray, ok_all: np.ndarray, t: int,
                     j = cand[np.argmin(np.abs(t_all[cand] - (t_all[i] - TREND_WINDOW)))]
                     facts["trend"] = float(row["observed"]) - float(samples["observed"].iloc[j])
                     facts["trend_window"] = int(t_all[i] - t_all[j])
-    hw = context.hw_dict()
+    coming = [d for d in context.forecasts_at(t) if d["time"] > t] if context.high_waters else []
+    hw = coming[0] if coming else context.hw_dict()
     if hw is not None:
         facts["next_high_water"] = hw
     if context.feed_age is not None:
@@ -212,6 +247,42 @@ def _facts(samples: pd.DataFrame, t_all: np.ndarray, ok_all: np.ndarray, t: int,
     if context.faults:
         facts["faults"] = list(context.faults)
     return facts
+
+
+def _reaching(rule: Rule, context: AlertContext | None, t: int) -> dict | None:
+    """The first high water within the rule's ``clear_horizon`` after ``t`` whose forecast
+    range reaches the rule's lowest step (its top, or the forecast itself without a range,
+    on the rule's datum), or None: while there is one, a level rule's all-clear waits."""
+    if context is None or rule.watch != "level_above" or rule.clear_horizon <= 0:
+        return None
+    for hw in context.forecasts_at(t):
+        if not t < hw["time"] <= t + rule.clear_horizon:
+            continue
+        top = _top(hw)
+        if top is not None and top - rule.datum_offset >= rule.steps[0].at:
+            return hw
+    return None
+
+
+def _top(hw: dict) -> float | None:
+    for key in ("upper", "level"):
+        v = hw.get(key)
+        if v is not None and math.isfinite(float(v)):
+            return float(v)
+    return None
+
+
+def _clear_check(rule: Rule, context: AlertContext, t: int) -> dict | None:
+    """What a held or cleared level rule tells: the high water that holds the all-clear back,
+    else the next high water, with the top of its range [m, station datum]."""
+    hw = _reaching(rule, context, t)
+    if hw is None:
+        later = [h for h in context.forecasts_at(t) if h["time"] > t]
+        hw = later[0] if later else None
+    if hw is None or hw.get("level") is None:
+        return None
+    return {"time": hw["time"], "level": float(hw["level"]), "upper": _top(hw), "step": rule.steps[0].name,
+            "step_at": rule.steps[0].at, "horizon": rule.clear_horizon}
 
 
 def _context_value(rule: Rule, context: AlertContext) -> float | None:
@@ -231,7 +302,8 @@ def _context_value(rule: Rule, context: AlertContext) -> float | None:
 # --------------------------------------------------------------------------- engine
 
 def _kind_of(event: Event) -> str:
-    return {"opened": "alert", "escalated": "alert", "changed": "alert", "cleared": "all_clear"}[event.kind]
+    return {"opened": "alert", "escalated": "alert", "changed": "alert", "held": "alert",
+            "cleared": "all_clear"}[event.kind]
 
 
 def _on_event(db, station: StationView, rule: Rule, event: Event, episode_id: int | None,
@@ -395,7 +467,8 @@ def _evaluate_rule(db, station: StationView, rule: Rule, samples: pd.DataFrame, 
                 k += int(ahead[0])
             i = counted[k]
             t, v = int(t_all[i]), float(values_all[i])
-            state, events = advance(rule, state, t, v)
+            hold = state.level >= 0 and _reaching(rule, context, t) is not None
+            state, events = advance(rule, state, t, v, hold_clear=hold)
             episode_id = _record_events(db, station, rule, events, episode_id, samples, t_all, ok_all, t,
                                         context, t_now, clock, results)
             if episode_id is not None:

@@ -95,28 +95,46 @@ def _duration(seconds: float) -> str:
     return f"{seconds / 3600:.1f} h"
 
 
-def value_text(rule: Rule, value: float) -> str:
-    """The watched quantity in words, e.g. ``"residual +0.62 m"``."""
+def _on_display(rule: Rule, station: StationView | None, value: float) -> tuple[float, str]:
+    """A level in a rule's own units moved to the station's display datum, and its words."""
+    if station is None:
+        return value, datum_label(rule.datum)
+    return value + rule.datum_offset - station.display_offset, datum_label(station.display)
+
+
+def value_text(rule: Rule, value: float, station: StationView | None = None) -> str:
+    """The watched quantity in words, e.g. ``"residual +0.62 m"``.
+
+    Levels are shown on the station's display datum (with ``station``; else on the rule's
+    own datum); residuals are datum-free and carry their sign."""
     if rule.watch.startswith("residual"):
         return f"{rule.series} {_m(value, signed=True)}"
     if rule.watch.startswith("level"):
-        return f"water level {_m(value)} above {datum_label(rule.datum)}"
+        v, d = _on_display(rule, station, value)
+        return f"water level {_m(v)} above {d}"
     if rule.watch == "next_high_water_above":
-        return f"next high water {_m(value)} above {datum_label(rule.datum)}"
+        v, d = _on_display(rule, station, value)
+        return f"next high water {_m(v)} above {d}"
     if rule.watch == "feed_silent":
         return f"no data for {_duration(value)}"
     n = int(value)
     return f"{n} equipment fault{'s' if n != 1 else ''}"
 
 
-def step_text(rule: Rule, at: float) -> str:
+def step_text(rule: Rule, at: float, station: StationView | None = None) -> str:
+    """A step's level in words, on the display datum; the rule's own datum beside it when
+    the rule counts from another datum."""
     if rule.watch == "feed_silent":
         return _duration(at)
     if rule.watch == "equipment_fault":
         return f"{int(at)} fault{'s' if int(at) != 1 else ''}"
     if rule.watch.startswith("residual"):
         return _m(at, signed=True)
-    return f"{_m(at)} above {datum_label(rule.datum)}"
+    v, d = _on_display(rule, station, at)
+    text = f"{_m(v)} above {d}"
+    if station is not None and rule.datum != station.display:
+        text += f" ({_m(at, signed=True)} on {datum_label(rule.datum)})"
+    return text
 
 
 def _fault_line(f: Any, tz: str = "UTC") -> str:
@@ -143,20 +161,25 @@ def _fault_line(f: Any, tz: str = "UTC") -> str:
 def facts_lines(rule: Rule, station: StationView, facts: dict) -> list[tuple[str, str]]:
     """Label/text pairs for the readings block; missing facts are left out.
 
-    ``facts`` keys (all optional): ``observed``, ``predicted``, ``residual`` [m, station
-    datum], ``trend`` [m over ``trend_window`` s], ``next_high_water`` (dict with ``time``
-    [Unix s], ``level`` [m, station datum], ``uncertainty`` [m]), ``feed_age`` [s].
+    Every level is shown on the station's display datum and named; residuals carry their
+    sign (observed minus predicted, no datum). ``facts`` keys (all optional):
+    ``observed``, ``predicted``, ``residual`` [m, station datum], ``trend`` [m over
+    ``trend_window`` s], ``next_high_water`` (dict with ``time`` [Unix s], ``level`` [m,
+    station datum], ``lower``/``upper``/``coverage`` or ``uncertainty`` [m], ``note``,
+    ``rising`` [m, station datum] and ``rate`` [m/h], ``pressure_note``), ``clear_check``
+    (dict: the high water the all-clear waited on, see :func:`_clear_lines`),
+    ``feed_age`` [s].
     """
-    offset = rule.datum_offset if rule.watch.startswith("level") or rule.watch == "next_high_water_above" else 0.0
-    dlabel = datum_label(rule.datum if offset or rule.datum != "station" else "station")
+    shift = station.display_offset
+    dlabel = datum_label(station.display)
     out: list[tuple[str, str]] = []
     obs, pred, res = facts.get("observed"), facts.get("predicted"), facts.get("residual")
     if obs is not None and math.isfinite(obs):
-        out.append(("Observed level", f"{_m(obs - offset)} above {dlabel}"))
+        out.append(("Observed level", f"{_m(obs - shift)} above {dlabel}"))
     if pred is not None and math.isfinite(pred):
-        out.append(("Predicted tide", f"{_m(pred - offset)} above {dlabel}"))
+        out.append(("Predicted tide", f"{_m(pred - shift)} above {dlabel}"))
     if res is not None and math.isfinite(res):
-        out.append(("Residual (surge)", _m(res, signed=True)))
+        out.append(("Residual (surge)", f"{_m(res, signed=True)} (observed minus predicted tide)"))
     trend = facts.get("trend")
     if trend is not None and math.isfinite(trend):
         window = facts.get("trend_window", 3600)
@@ -167,19 +190,51 @@ def facts_lines(rule: Rule, station: StationView, facts: dict) -> list[tuple[str
         unc, lo, hi = hw.get("uncertainty"), hw.get("lower"), hw.get("upper")
         if lo is not None and hi is not None and math.isfinite(lo) and math.isfinite(hi):
             cover = f"{hw['coverage']:.0%} " if hw.get("coverage") else ""
-            spread = f" ({cover}range {_m(lo - offset)} to {_m(hi - offset)})"
+            spread = f" ({cover}range {_m(lo - shift)} to {_m(hi - shift)})"
         elif unc is not None and math.isfinite(unc):
             spread = f" \u00b1 {_m(unc)}"
         else:
             spread = " (no uncertainty range available)"
         out.append(("Next high water forecast",
-                    f"{_m(hw['level'] - offset)} above {dlabel} at {loc}{spread}"))
+                    f"{_m(hw['level'] - shift)} above {dlabel} at {loc}{spread}"))
+        rising, rate = hw.get("rising"), hw.get("rate")
+        if rising is not None and rate is not None and math.isfinite(rising) and rate > 0:
+            out.append(("If the surge keeps rising",
+                        f"at {rate:+.2f} m/h until then: {_m(rising - shift)} above {dlabel}"))
         if hw.get("note"):
-            out.append(("Forecast method", clean_line(hw["note"], 300)))
+            out.append(("Forecast method", clean_line(hw["note"], 400)))
+        if hw.get("pressure_note"):
+            out.append(("Barometer", clean_line(hw["pressure_note"], 300)))
+    out += _clear_lines(rule, station, facts.get("clear_check"))
     age = facts.get("feed_age")
     if age is not None and math.isfinite(age):
         out.append(("Last data received", f"{_duration(age)} ago"))
     return out
+
+
+def _clear_lines(rule: Rule, station: StationView, check: Any) -> list[tuple[str, str]]:
+    """What the all-clear of a level rule waited on: the next high water within the
+    rule's horizon and how far the top of its forecast range is from the lowest step.
+
+    ``check``: ``time`` [Unix s], ``level`` and ``upper`` [m, station datum], ``step``
+    (name), ``step_at`` [m, rule datum], ``horizon`` [s], ``reaches`` (bool)."""
+    if not isinstance(check, dict) or check.get("time") is None:
+        return []
+    shift = station.display_offset
+    dlabel = datum_label(station.display)
+    loc, _ = format_times(check["time"], station.tz)
+    top = check.get("upper")
+    top = check.get("level") if top is None else top
+    step_lv = float(check["step_at"]) + rule.datum_offset
+    margin = float(top) - step_lv
+    head = (f"at {loc}: forecast {_m(check['level'] - shift)}, its range reaching {_m(top - shift)} "
+            f"above {dlabel}")
+    if margin >= 0:
+        return [("All-clear waits on", f"the high water {head}, {_m(margin)} above {clean_line(check['step'], 60)} "
+                                       f"({_m(step_lv - shift)} above {dlabel}): the level may be reached again")]
+    below = _m(-margin) if -margin >= 0.005 else "less than 0.01 m"
+    return [("Next high water", f"{head}, {below} below {clean_line(check['step'], 60)} "
+                                f"({_m(step_lv - shift)} above {dlabel})")]
 
 
 def compose_alert(station: StationView, rule: Rule, event: Event, facts: dict | None = None,
@@ -191,7 +246,9 @@ def compose_alert(station: StationView, rule: Rule, event: Event, facts: dict | 
     station : StationView
     rule : Rule
     event : Event
-        ``opened``, ``escalated`` or ``cleared``; ``event.value`` in the rule's units.
+        ``opened``, ``escalated``, ``changed`` (new equipment faults), ``held`` (a level
+        rule's all-clear waits: the forecast range of a coming high water reaches its lowest
+        step) or ``cleared``; ``event.value`` in the rule's units.
     facts : dict, optional
         Readings to show (see :func:`facts_lines`) and ``faults`` (list of dicts).
 
@@ -202,7 +259,7 @@ def compose_alert(station: StationView, rule: Rule, event: Event, facts: dict | 
     facts = facts or {}
     step = rule.steps[event.level if step_index is None else step_index]
     sname = clean_header(station.name, 80)
-    vtext = value_text(rule, event.value)
+    vtext = value_text(rule, event.value, station)
     if event.kind == "opened":
         headline = f"{sname}: {step.name} - {vtext}"
         subject = f"{SUBJECT_PREFIX} {sname}: {step.name} - {vtext}"
@@ -216,6 +273,14 @@ def compose_alert(station: StationView, rule: Rule, event: Event, facts: dict | 
     elif event.kind == "cleared":
         headline = f"{sname}: all clear for {rule.id} (highest step was {step.name}) - {vtext}"
         subject = f"{SUBJECT_PREFIX} {sname}: all clear after {step.name} - {vtext}"
+    elif event.kind == "held":
+        check = facts.get("clear_check") or {}
+        lowest = clean_line(check.get("step") or rule.steps[0].name, 60)
+        when = format_times(check["time"], station.tz)[0][11:16] if check.get("time") is not None else "?"
+        headline = (f"{sname}: not clear yet for {rule.id} - {vtext}, back below {lowest}, but the "
+                    f"high water at {when} may reach {lowest} again")
+        subject = (f"{SUBJECT_PREFIX} {sname}: not clear yet - the high water at {when} may reach "
+                   f"{lowest} again ({vtext})")
     else:
         raise ValueError(f"unknown event kind {event.kind!r}")
     local, utc = format_times(event.t, station.tz)
@@ -223,7 +288,10 @@ def compose_alert(station: StationView, rule: Rule, event: Event, facts: dict | 
         subject=clean_header(subject), headline=clean_line(headline), caution=CAUTION,
         station_name=clean_line(station.name, 120), station_id=clean_line(station.id, 80),
         rule_id=clean_line(rule.id, 80), what=_WHAT[rule.watch], step_name=clean_line(step.name, 60),
-        step_at=step_text(rule, step.at), value_text=clean_line(vtext), local_time=local, utc_time=utc,
+        step_at=step_text(rule, step.at, station), value_text=clean_line(vtext), local_time=local, utc_time=utc,
+        levels_on=f"metres above {datum_label(station.display)}",
+        datum_note=clean_line(station.datum_note, 300),
+        held=event.kind == "held",
         facts=facts_lines(rule, station, facts),
         faults=[_fault_line(f, station.tz) for f in facts.get("faults") or []],
         note=clean_line(rule.note, 1000), station_notes=clean_line(station.notes, 1000),

@@ -146,6 +146,7 @@ class AlertEpisodeRow:
     peak: float | None = None
     unit: str = "m"
     deliveries: tuple[Delivery, ...] = ()
+    signed: bool = False   # a residual (datum-free, shown with its sign); else a level on the report's datum
 
 
 @dataclass(frozen=True)
@@ -161,7 +162,10 @@ class ConstituentRow:
 
 @dataclass(frozen=True)
 class ConstantsInfo:
-    """The harmonic constants the prediction used, where they came from and how well they fit."""
+    """The harmonic constants the prediction used, where they came from and how well they fit.
+
+    ``mean`` [m] is on the report's datum (the constants file may record another; ``source``
+    says how it was brought to the station's)."""
 
     source: str
     mean: float | None = None
@@ -186,11 +190,12 @@ class RejectRow:
 
 @dataclass(frozen=True)
 class HighWaterForecast:
-    """The next high water forecast: predicted high water plus the current residual.
+    """A high water forecast as issued: the predicted high water plus a forecast of the surge.
 
-    Levels in metres on the report's datum; ``lower``/``upper`` bound the range that covers
-    ``coverage`` of the station's past residual changes over the same lead time (``None``
-    when the history is too short, and ``note`` says why).
+    Levels in metres on the report's datum. ``lower``/``upper`` bound the ``coverage`` range:
+    conditioned on the storm at ``made_at`` (``method`` ``"conditioned"``), or a deliberately
+    wide rule of thumb when the history holds too few storms (``"wide"``); ``note`` says
+    which, and how, in words.
     """
 
     time: pd.Timestamp
@@ -202,10 +207,51 @@ class HighWaterForecast:
     upper: float | None = None
     coverage: float | None = None
     note: str = ""
+    method: str = ""            # "conditioned" (on the storm now) or "wide" (the rule of thumb)
+    rising: float | None = None  # if the surge keeps rising at its current rate until then [m]
+    rate: float | None = None    # the residual's rate over the last 3 h [m/h]
+    pressure_note: str = ""      # said when a barometer gap left the pressure tendency out
 
     @property
     def lead(self) -> pd.Timedelta:
         return self.time - self.made_at
+
+
+@dataclass(frozen=True)
+class Verified:
+    """One forecast of a high water issued ``lead_h`` hours before it; levels [m, report datum]."""
+
+    lead_h: float
+    made_at: pd.Timestamp
+    forecast: float | None
+    lower: float | None = None
+    upper: float | None = None
+    method: str = ""
+
+
+@dataclass(frozen=True)
+class VerificationRow:
+    """A high water of the day against what was forecast for it 6, 3 and 1 h before.
+
+    ``observed`` is what came: the highest observed level of its tidal cycle [m, report datum];
+    ``forecasts`` one :class:`Verified` (or None when none was issued then) per lead.
+    """
+
+    time: pd.Timestamp
+    predicted: float
+    observed: float | None
+    observed_time: pd.Timestamp | None = None
+    forecasts: tuple = ()
+
+    def verdict(self, f: "Verified | None") -> str:
+        """``"inside"``, ``"above"``, ``"below"`` the forecast's range, or ``""`` when unknown."""
+        if f is None or self.observed is None or f.lower is None or f.upper is None:
+            return ""
+        if self.observed > f.upper:
+            return "above"
+        if self.observed < f.lower:
+            return "below"
+        return "inside"
 
 
 @dataclass(frozen=True)
@@ -273,6 +319,7 @@ class DayReport:
     tz: str
     day: dt.date
     datum: str = "station datum"
+    datum_note: str = ""
     note: str = ""
     samples: pd.DataFrame = field(default_factory=lambda: empty_samples())
     predicted: pd.Series = field(default_factory=lambda: pd.Series(dtype=float))
@@ -290,6 +337,7 @@ class DayReport:
     forecast: HighWaterForecast | None = None
     staff: StaffCheck | None = None
     barometer: BarometerPart | None = None
+    verification: Sequence["VerificationRow"] = ()
 
 
 def empty_samples() -> pd.DataFrame:
@@ -622,6 +670,15 @@ def _summary(report: DayReport, figures: DayFigures) -> dict[str, Any]:
     }
 
 
+def _verify_leads(report: DayReport) -> list[str]:
+    """The lead times of the verification table's columns [h]."""
+    for row in report.verification:
+        leads = [f.lead_h for f in row.forecasts if f is not None]
+        if len(leads) == len(row.forecasts):
+            return [f"{x:g}" for x in leads]
+    return ["6", "3", "1"]
+
+
 def _forecast_margins(report: DayReport) -> list[tuple[str, float, float, bool]]:
     """For each operator level watched upwards: (name, level, forecast - level, reached),
     ``reached`` when the forecast or the top of its range is at or above the level [m]."""
@@ -659,6 +716,7 @@ def _context(report: DayReport, chart_src: str, trend_src: str | None,
         "generated": clock(generated, date=True) + " local, " + pd.Timestamp(generated).tz_convert("UTC").strftime("%Y-%m-%d %H:%M UTC"),
         "summary_json": json.dumps(_summary(report, figures), sort_keys=True),
         "hw_levels": _forecast_margins(report),
+        "verify_leads": _verify_leads(report),
     }
 
 
@@ -720,7 +778,7 @@ def render_day_email(report: DayReport) -> ReportEmail:
     f = context["f"]
     subject = f"Daily tide report: {report.station_name}, {report.day.isoformat()}"
     if f.highest_level is not None:
-        subject += f" \u2014 high {f.highest_level:.2f} m, residual {f.highest_residual:+.2f} m"
+        subject += f" \u2014 high {f.highest_level:.2f} m above {report.datum}, residual {f.highest_residual:+.2f} m"
     if report.alerts:
         subject += f", {len(report.alerts)} alert episode{'s' if len(report.alerts) != 1 else ''}"
     return ReportEmail(subject=subject + " (automated, unofficial)", text=text, html=html_part, images=images)
@@ -818,7 +876,7 @@ def prune_reports(folder: Path, keep_days: int, today: dt.date) -> list[Path]:
 
 
 __all__: Iterable[str] = [
-    "AlertEpisodeRow", "AlertLevel", "BarometerPart", "CAUTION", "HighWaterForecast", "StaffCheck", "ConstantsInfo", "ConstituentRow", "DayFigures",
+    "AlertEpisodeRow", "AlertLevel", "BarometerPart", "CAUTION", "HighWaterForecast", "Verified", "VerificationRow", "StaffCheck", "ConstantsInfo", "ConstituentRow", "DayFigures",
     "DayReport", "Delivery", "Diagnostic", "QcEpisode", "RejectRow", "ReportEmail",
     "ReportSettings", "TideRow", "day_bounds", "day_figures", "empty_samples", "prune_reports",
     "read_summary", "render_day_email", "render_day_html", "render_index_html",

@@ -23,6 +23,8 @@ Configuration keys (a list of tables under a station, ``[[stations.rules]]``)::
     use_suspect = true            # count QARTOD-suspect samples (3); fail (4) and missing (9)
                                   # never count
     note     = "free text shown in the message"
+    clear_horizon = "12h"         # level_above: no all-clear while the forecast range of a
+                                  # high water within this time reaches the lowest step
     [[stations.rules.steps]]
     name   = "raised"             # operator's own names
     at     = 0.30                 # metres on the datum (feed_silent: a duration)
@@ -60,6 +62,12 @@ RESERVED_WORDS = ("watch", "warning", "advisory", "alert", "severe", "emergency"
                   "red", "amber", "orange", "yellow")
 
 _STATION_DATUM_NAMES = ("station", "station_datum", "sd")
+
+#: A level rule's all-clear waits while a high water within this time may reach its lowest
+#: step again [s] (12 h: the next high water of a semidiurnal tide; common practice, no source).
+DEFAULT_CLEAR_HORIZON = 12 * 3600.0
+#: Longest such wait [s]: the forecast learns lead times up to a day.
+MAX_CLEAR_HORIZON = 24 * 3600.0
 _ADDR_RE = re.compile(r"^[^@\s<>,;\"\r\n]+@[^@\s<>,;\"\r\n]+\.[^@\s<>,;\"\r\n]+$")
 
 
@@ -79,6 +87,12 @@ class StationView:
         Datum name -> height of that datum above the station datum [m].
     notes, url : str
         Optional text and link shown in messages.
+    display_datum : str
+        The one datum every level in a message is shown on (a key of ``datums``, or
+        ``"station"``); default ``"chart"`` when the station has a chart datum, else
+        ``"station"``.
+    datum_note : str
+        Said under the levels when they are not on chart datum for want of its offset.
     """
 
     id: str
@@ -87,6 +101,20 @@ class StationView:
     datums: dict = field(default_factory=dict)
     notes: str = ""
     url: str = ""
+    display_datum: str = ""
+    datum_note: str = ""
+
+    @property
+    def display(self) -> str:
+        """Name of the display datum."""
+        if self.display_datum:
+            return self.display_datum
+        return "chart" if "chart" in self.datums else "station"
+
+    @property
+    def display_offset(self) -> float:
+        """Height of the display datum's zero above the station datum [m]."""
+        return float(self.datums.get(self.display, 0.0))
 
 
 @dataclass(frozen=True)
@@ -121,6 +149,7 @@ class Rule:
     use_suspect: bool = True
     fault_kinds: tuple[str, ...] = ()
     note: str = ""
+    clear_horizon: float = 0.0  # [s] level_above: the all-clear waits on high waters within this time
 
     @property
     def sign(self) -> int:
@@ -177,7 +206,7 @@ def _one_rule(raw: Any, kp: str, datums: dict[str, float], errors: list[str]) ->
         return None
     n_before = len(errors)
     known = {"id", "watch", "datum", "series", "hold", "settle", "band", "notify", "all_clear",
-             "use_suspect", "faults", "note", "steps"}
+             "use_suspect", "faults", "note", "steps", "clear_horizon"}
     for key in raw:
         if key not in known:
             errors.append(f"{kp}.{key}: unknown key (known: {', '.join(sorted(known))})")
@@ -221,6 +250,14 @@ def _one_rule(raw: Any, kp: str, datums: dict[str, float], errors: list[str]) ->
 
     hold = duration("hold", 0.0 if watch in CONTEXT_KINDS else 600.0)
     settle = duration("settle", hold)
+    clear_horizon = 0.0
+    if watch == "level_above":
+        clear_horizon = duration("clear_horizon", DEFAULT_CLEAR_HORIZON)
+        if not 0 <= clear_horizon <= MAX_CLEAR_HORIZON:
+            errors.append(f"{kp}.clear_horizon: from 0 (no wait) to {MAX_CLEAR_HORIZON / 3600:g} h, "
+                          f"got {raw.get('clear_horizon')!r}")
+    elif "clear_horizon" in raw:
+        errors.append(f"{kp}.clear_horizon: only level_above rules wait on the high water forecast")
     if watch == "feed_silent":
         band = duration("band", 0.0)
     else:
@@ -299,7 +336,7 @@ def _one_rule(raw: Any, kp: str, datums: dict[str, float], errors: list[str]) ->
     return Rule(id=rid, watch=watch, steps=tuple(steps), datum=datum, datum_offset=offset,
                 series=series, hold=hold, settle=settle, band=float(band), notify=notify,
                 all_clear=flags["all_clear"], use_suspect=flags["use_suspect"],
-                fault_kinds=tuple(faults), note=note)
+                fault_kinds=tuple(faults), note=note, clear_horizon=clear_horizon)
 
 
 def rules_from_config(raw_list: Any, keypath: str, datums: dict[str, float]) -> tuple[list[Rule], list[str]]:
@@ -348,7 +385,9 @@ class RuleState:
 
     ``level`` is the index of the step in force (-1 for none). ``above_since[i]`` is the
     start of the current unbroken run beyond step ``i``; ``inside_since[i]`` the start of
-    the current unbroken run back inside the band of step ``i``. Times are Unix seconds UTC.
+    the current unbroken run back inside the band of step ``i``. ``held`` is true once the
+    episode's all-clear has been held back (and said so) because a high water may reach the
+    lowest step again. Times are Unix seconds UTC.
     """
 
     level: int = -1
@@ -356,11 +395,13 @@ class RuleState:
     above_since: tuple = ()
     inside_since: tuple = ()
     watermark: int | None = None
+    held: bool = False
 
 
 @dataclass(frozen=True)
 class Event:
-    """Something to announce: an episode ``opened``, ``escalated`` or ``cleared``."""
+    """Something to announce: an episode ``opened``, ``escalated``, ``held`` (its all-clear
+    waits on a high water forecast to reach the lowest step again) or ``cleared``."""
 
     kind: str
     level: int
@@ -372,7 +413,8 @@ def _fit(seq: tuple, n: int) -> tuple:
     return tuple(seq[:n]) + (None,) * max(0, n - len(seq))
 
 
-def advance(rule: Rule, state: RuleState, t: int, value: float) -> tuple[RuleState, list[Event]]:
+def advance(rule: Rule, state: RuleState, t: int, value: float,
+            hold_clear: bool = False) -> tuple[RuleState, list[Event]]:
     """Advance a rule's state machine by one counted value.
 
     Parameters
@@ -383,14 +425,18 @@ def advance(rule: Rule, state: RuleState, t: int, value: float) -> tuple[RuleSta
         Time of the value, Unix seconds UTC [s]; must be later than ``state.watermark``.
     value : float
         The watched quantity in the rule's units (already on the rule's datum).
+    hold_clear : bool
+        The episode may not end now: a high water forecast still reaches the lowest step
+        (level rules; the engine decides). The lowest step stays in force instead.
 
     Returns
     -------
     state : RuleState
         The new state (watermark set to ``t``).
     events : list of Event
-        At most one: an episode opened, escalated past every step announced so far, or
-        cleared (back inside the band of the lowest step for ``settle`` seconds).
+        At most one: an episode opened, escalated past every step announced so far,
+        held (the first time in the episode its all-clear is held back), or cleared (back
+        inside the band of the lowest step for ``settle`` seconds, and not held).
 
     Notes
     -----
@@ -417,24 +463,32 @@ def advance(rule: Rule, state: RuleState, t: int, value: float) -> tuple[RuleSta
             inside[i] = None
     level = min(state.level, n - 1)
     top = min(state.top_sent, n - 1)
+    held = state.held
     events: list[Event] = []
     reached = max((i for i in range(n) if above[i] is not None and t - above[i] >= rule.hold), default=-1)
     if reached > level:
         if level < 0:
             events.append(Event("opened", reached, t, value))
             top = reached
+            held = False
         elif reached > top:
             events.append(Event("escalated", reached, t, value))
             top = reached
         level = reached
     else:
         while level >= 0 and inside[level] is not None and t - inside[level] >= rule.settle:
+            if level == 0 and hold_clear:
+                if not held:
+                    events.append(Event("held", top, t, value))
+                    held = True
+                break
             level -= 1
         if level < 0 and state.level >= 0:
             events.append(Event("cleared", top, t, value))
             top = -1
+            held = False
     return RuleState(level=level, top_sent=top, above_since=tuple(above),
-                     inside_since=tuple(inside), watermark=t), events
+                     inside_since=tuple(inside), watermark=t, held=held), events
 
 
 def with_watermark(state: RuleState, t: int) -> RuleState:

@@ -93,6 +93,21 @@ def _zone_note(cfg, station: str | None) -> str:
     return f"times in {getattr(zone, 'key', 'UTC')} (abbreviation shown); levels in metres"
 
 
+def _peak(cfg, r: dict) -> str:
+    """An episode's peak as its station shows levels: a level moved from the rule's datum to
+    the station's display datum and named, a residual with its sign."""
+    v, watch = r.get("peak"), r.get("watch") or ""
+    if v is None or r.get("unit") != "m":
+        return _value(v, r.get("unit"))
+    if watch.startswith("residual"):
+        return f"{v:+.2f} m"
+    st = next((s for s in getattr(cfg, "stations", ()) or () if s.id == r["station"]), None)
+    if st is None:
+        return f"{v:.2f} m"
+    level = v + float(st.datums.get(r.get("datum") or "station", 0.0)) - st.display_offset
+    return f"{level:.2f} m above {st.display_label}"
+
+
 def _value(v, unit) -> str:
     if v is None:
         return "-"
@@ -122,7 +137,7 @@ def cmd_episodes(args: argparse.Namespace) -> int:
         zone = _zone_for(cfg, r["station"])
         out.append([str(r["id"]), r["station"], r["rule"], _local(r["opened_at"], zone),
                     _local(r["closed_at"], zone) if r["closed_at"] else "in progress",
-                    r["top_step"] or "-", r["step_now"] or "-", _value(r["peak"], r["unit"]),
+                    r["top_step"] or "-", r["step_now"] or "-", _peak(cfg, r),
                     str(r["messages"] or 0)])
     print(_zone_note(cfg, args.station))
     print(_table(["id", "station", "rule", "opened", "closed", "highest step", "now", "peak", "mails"], out))

@@ -15,6 +15,7 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
+from monitor.config import datum_words
 from monitor.errors import UserError
 from monitor.timeparse import zone as _zone
 
@@ -171,6 +172,8 @@ def model_summary(model) -> dict:
     """The JSON-ready summary printed by ``fit --json``."""
     meta = dict(getattr(model, "metadata", {}) or {})
     out = {"mean": float(model.mean)}
+    if getattr(model, "datum", None):
+        out["datum"] = model.datum
     trend = getattr(model, "trend", 0.0)
     if meta.get("trend_epoch") is not None:
         out["trend"] = float(trend or 0.0)
@@ -200,7 +203,9 @@ def _table(model, source) -> str:
         f"record {meta.get('record_start', '?')} to {meta.get('record_end', '?')}, "
         f"{meta.get('n_samples', '?')} samples, {meta.get('duration_days', float('nan')):.1f} days, "
         f"Rayleigh factor {meta.get('rayleigh', float('nan')):g}, {meta.get('method', '')}",
-        f"mean level {model.mean:.4f} m; residual RMS {meta.get('rms', float('nan')):.4f} m; "
+        f"mean level {model.mean:.4f} m"
+        + (f" above {datum_words(model.datum)}" if getattr(model, "datum", None) else "")
+        + f"; residual RMS {meta.get('rms', float('nan')):.4f} m; "
         f"variance explained {100 * meta.get('variance_explained', float('nan')):.2f} %",
     ]
     if meta.get("robust_reason"):
@@ -260,11 +265,17 @@ def run_fit(args) -> int:
             raise UserError(f"{args.obs}: {exc}") from None
     for w in caught:
         print(f"{args.obs}: warning: {w.message}", file=sys.stderr)
+    if args.datum:
+        model.datum = args.datum
     if args.output:
         try:
             model.save(args.output)
         except OSError as exc:
             raise UserError(f"-o {args.output}: cannot write ({exc.strerror})") from None
+        if not args.datum:
+            print(f"{args.obs}: note: the constants file does not say which datum its mean is on; give "
+                  "--datum NAME (the datum of the levels in the CSV, e.g. station or chart) so a station "
+                  "can check it against its own", file=sys.stderr)
     if args.json:
         json.dump(model_summary(model), sys.stdout, indent=2)
         sys.stdout.write("\n")
@@ -305,5 +316,17 @@ def register(subparsers) -> argparse.ArgumentParser:
                    "equilibrium ratios: 'auto' (default, as refit and the daemon) P1 from K1, K2 from S2, "
                    "NU2 from N2, and N2 from M2 and Q1 from O1 in records under 27.6 days, each only when "
                    "needed; 'equilibrium' every known pair; 'none' fits only what the record resolves")
+    p.add_argument("--datum", metavar="NAME", type=_datum_name,
+                   help="the datum the CSV's levels are on (e.g. station, chart); recorded in the "
+                   "constants file so a station can check it or add its offset")
     p.set_defaults(func=run_fit)
     return p
+
+
+def _datum_name(text: str) -> str:
+    """argparse type: a datum name as the configuration writes them."""
+    name = text.strip()
+    if not re.fullmatch(r"[a-z0-9][a-z0-9_-]{0,39}", name):
+        raise argparse.ArgumentTypeError(f"expected a datum name of lower-case letters, digits, '-' or '_' "
+                                         f"such as station or chart, got {text!r}")
+    return name

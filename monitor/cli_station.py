@@ -10,6 +10,7 @@ import argparse
 import csv
 import datetime as dt
 import math
+import re
 import sys
 import time
 from pathlib import Path
@@ -17,6 +18,7 @@ from pathlib import Path
 import numpy as np
 
 from monitor.cli_common import CAUTION, count, finite_float, input_file, store_errors
+from monitor.config import datum_words
 from monitor.errors import UserError
 from monitor.timeparse import local_text, parse_range
 
@@ -54,8 +56,10 @@ def register(subparsers) -> None:
     p.set_defaults(func=store_errors(cmd_ingest))
 
     p = subparsers.add_parser("export", help="CSV of level, predicted tide, residual and flag",
-                              description="Write time,level,predicted,residual,flag (UTC, metres on the "
-                                          "station datum). Times without an offset are the station's local time.")
+                              description="Write time, level, predicted tide, residual and QC flag: UTC times, "
+                                          "levels in metres on the station's display datum, named in the column "
+                                          "names (e.g. level_m_above_chart_datum); the residual is observed minus "
+                                          "predicted (no datum). Times without an offset are the station's local time.")
     p.add_argument("config", metavar="CONFIG")
     p.add_argument("--station", required=True, metavar="ID")
     p.add_argument("--from", dest="start", required=True, metavar="ISO")
@@ -126,14 +130,17 @@ def cmd_check(args: argparse.Namespace) -> int:
     cfg = _config(args.config)
     from monitor.daemon import load_model
 
+    sources = {}
     for st in cfg.stations:
         if st.constants is not None:
-            load_model(None, st)  # a broken constants file is a configuration problem too
+            # a broken constants file, or one on a datum the station lacks, is a configuration problem too
+            sources[st.id] = load_model(None, st)[1]
     print(f"{args.config}: configuration is valid")
     for st in cfg.stations:
         sensors = ", ".join(f"{r} ({s.units}, feed {getattr(s.feed, 'kind', 'none')})" for r, s in st.sensors.items())
-        const = str(st.constants) if st.constants else "fitted from the station's own history"
-        print(f"  station {st.id}: {st.name}; {st.tz}; sensors: {sensors}; constants: {const}")
+        const = sources.get(st.id, "fitted from the station's own history")
+        print(f"  station {st.id}: {st.name}; {st.tz}; sensors: {sensors}; constants: {const}; levels shown "
+              f"above {st.display_label}" + (f" ({st.datum_note})" if st.datum_note else ""))
     print(f"  store: {cfg.store_path}")
     return 0
 
@@ -160,27 +167,34 @@ def cmd_status(args: argparse.Namespace) -> int:
         checkpoints = store.checkpoints()
         counts = store.reject_counts()
         for st in stations:
-            print(f"Station {st.id}: {st.name}  (times in {st.tz}; levels in metres)", file=out)
+            shift, on = st.display_offset, f"above {st.display_label}"
+            print(f"Station {st.id}: {st.name}  (times in {st.tz}; levels in metres {on}"
+                  + (f"; {st.datum_note}" if st.datum_note else "") + ")", file=out)
             rows: list[tuple[str, str]] = []
             last = store.last_time(st.id, "primary")
             rows.append(("last observation", "-" if last is None else f"{_local(last, st.tz)}, {_age(now - last)}"))
             latest = store.latest_derived(st.id)
-            chart = st.datums.get("chart", 0.0)
+
+            def lv(v):
+                return None if v is None else v - shift
+
             if latest is not None:
-                lvl = latest["observed"]
-                rows.append(("level", f"{_m(lvl)} station datum, {_m(None if lvl is None else lvl - chart)} "
-                                      f"chart datum  at {_local(latest['t'], st.tz)}"))
-                rows.append(("predicted tide", _m(latest["predicted"])))
-                rows.append(("residual", f"{_m(latest['residual'], True)}   smoothed {_m(latest['smoothed'], True)}"))
+                rows.append(("level", f"{_m(lv(latest['observed']))} {on}  at {_local(latest['t'], st.tz)}"))
+                rows.append(("predicted tide", f"{_m(lv(latest['predicted']))} {on}"))
+                rows.append(("residual", f"{_m(latest['residual'], True)}   smoothed {_m(latest['smoothed'], True)}"
+                                         "   (observed minus predicted)"))
                 if latest.get("barometric") is not None:
                     rows.append(("inverse barometer", _m(latest["barometric"], True)))
             else:
                 rows.append(("level", "- (not processed yet)"))
             fc = store.latest_forecast(st.id)
             if fc is not None:
-                rng = "" if fc["lower"] is None else f"  ({fc['coverage']:.0%} range {fc['lower']:.2f} to {fc['upper']:.2f} m)"
-                rows.append(("next high water", f"{_m(fc['forecast'])} station datum at {_local(fc['hw_t'], st.tz)}"
-                                                f"  (predicted {_m(fc['predicted_high'])}){rng}"))
+                rng = "" if fc["lower"] is None else \
+                    f"  ({fc['coverage']:.0%} range {lv(fc['lower']):.2f} to {lv(fc['upper']):.2f} m)"
+                rows.append(("next high water", f"{_m(lv(fc['forecast']))} {on} at {_local(fc['hw_t'], st.tz)}"
+                                                f"  (predicted tide {_m(lv(fc['predicted_high']))}){rng}"))
+                if fc.get("note"):
+                    rows.append(("forecast method", fc["note"]))
             try:
                 _, source = load_model(store, st)
             except UserError as exc:
@@ -347,12 +361,13 @@ def cmd_export(args: argparse.Namespace) -> int:
         raise UserError(f"-o {args.output}: cannot write ({exc.strerror or exc})") from None
     try:
         w = csv.writer(out, lineterminator="\n")
-        w.writerow(["time", "level", "predicted", "residual", "flag"])
+        w.writerow(export_header(st.display_datum))
         times = obs.index.strftime("%Y-%m-%dT%H:%M:%SZ")
+        shift = st.display_offset
         for t, v, p, f in zip(times, obs["value"].to_numpy(), pred, obs["flag"].to_numpy()):
-            pf = "" if not np.isfinite(p) else f"{p:.4f}"
+            pf = "" if not np.isfinite(p) else f"{p - shift:.4f}"
             rf = "" if not np.isfinite(p) else f"{v - p:.4f}"
-            w.writerow([t, f"{v:.4f}", pf, rf, int(f)])
+            w.writerow([t, f"{v - shift:.4f}", pf, rf, int(f)])
     except OSError as exc:
         raise UserError(f"-o {args.output}: cannot write ({exc.strerror or exc})") from None
     finally:
@@ -361,6 +376,12 @@ def cmd_export(args: argparse.Namespace) -> int:
     if args.output:
         print(f"{args.output}: {len(obs):,} rows", file=sys.stderr)
     return 0
+
+
+def export_header(datum: str) -> list[str]:
+    """The export's column names; the levels' datum is named in them."""
+    on = re.sub(r"[^a-z0-9]+", "_", datum_words(datum).lower()).strip("_")
+    return ["time", f"level_m_above_{on}", f"predicted_m_above_{on}", "residual_m", "flag"]
 
 
 # --------------------------------------------------------------------------- refit

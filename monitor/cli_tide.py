@@ -50,6 +50,80 @@ def _load(path):
         raise UserError(str(exc)) from None
 
 
+class _Source:
+    """The model a tide verb predicts from, and the datum its heights are printed on.
+
+    With ``--config FILE --station ID``: the station's constants (its file, or its fit in use),
+    on the station's display datum. With a constants file: the datum the file records, or
+    words saying the file does not record one. ``--datum-offset``/``--datum-name`` shift and
+    rename the file's heights by hand (not with ``--config``).
+    """
+
+    def __init__(self, args):
+        cfg_path, sid = getattr(args, "config", None), getattr(args, "station", None)
+        const = getattr(args, "constants", None)
+        offset = float(getattr(args, "datum_offset", 0.0) or 0.0)
+        name = getattr(args, "datum_name", None)
+        if cfg_path or sid:
+            if not (cfg_path and sid):
+                raise UserError("--config and --station go together: the station's constants, on its display datum")
+            if const:
+                raise UserError(f"{const}: give either a constants file or --config FILE --station ID, not both")
+            if offset or name:
+                raise UserError("--datum-offset/--datum-name: not with --config; the station's display datum "
+                                "(stations[].display_datum) is used")
+            self._from_station(cfg_path, sid)
+            return
+        if not const:
+            raise UserError("give a constants file, or --config FILE --station ID")
+        self.model = _load(const)
+        self.source = str(const)
+        self.shift = -offset  # printed = predicted - shift
+        recorded = getattr(self.model, "datum", None)
+        if name:
+            self.datum = name
+        elif offset:
+            self.datum = "the chosen datum"
+        elif recorded:
+            self.datum = _words(recorded)
+        else:
+            self.datum = "the constants' datum (the file does not record which)"
+        self.note = ""
+
+    def _from_station(self, cfg_path: str, sid: str) -> None:
+        from monitor.config import load_config
+        from monitor.daemon import load_model
+        from monitor.store import Store
+
+        cfg = load_config(cfg_path)
+        st = cfg.station(sid)
+        if st.constants is not None:
+            model, source = load_model(None, st)
+        else:
+            with Store.open(cfg.store_path, create=False) as store:
+                model, source = load_model(store, st)
+            if model is None:
+                raise UserError(f"station {st.id}: no constants yet ({source})")
+        self.model = model
+        self.source = f"station {st.id} ({source})"
+        self.shift = st.display_offset
+        self.datum = st.display_label
+        self.note = st.datum_note
+
+    def heights(self, levels):
+        """Predicted levels [m, model datum] as printed [m, the named datum]."""
+        return np.asarray(levels, dtype=float) - self.shift
+
+    def describe(self) -> str:
+        return f"heights [m] above {self.datum}" + (f" ({self.note})" if self.note else "")
+
+
+def _words(datum: str) -> str:
+    from monitor.config import datum_words
+
+    return datum_words(datum)
+
+
 # --------------------------------------------------------------------------- predict
 
 
@@ -63,7 +137,8 @@ def run_predict(args) -> int:
     if n > _MAX_ROWS:
         raise UserError(f"--start/--end/--step: {n:,} rows asked for; at most {_MAX_ROWS:,} at a time "
                         "(a longer step or a shorter span)")
-    model = _load(args.constants)
+    src = _Source(args)
+    model = src.model
     step_ns = np.int64(step.value)
     start_ns = np.int64(start.value)
     whole = start.value % 1_000_000_000 == 0
@@ -72,11 +147,12 @@ def run_predict(args) -> int:
     for i in range(0, n, _ROWS_PER_WRITE):
         k = np.arange(i, min(n, i + _ROWS_PER_WRITE), dtype=np.int64)
         times = (start_ns + k * step_ns).astype("datetime64[ns]")
-        level = model.predict(times)
+        level = src.heights(model.predict(times))
         stamps = np.datetime_as_string(times, unit="s" if whole else "ms")
         out.write("".join(f"{s}Z,{v:.4f}\n" for s, v in zip(stamps, level)))
     out.flush()
-    # stdout stays pure CSV for scripts; the caution goes to the terminal
+    # stdout stays pure CSV for scripts; the datum and the caution go to the terminal
+    print(f"predicted tide from {src.source}: {src.describe()}", file=sys.stderr)
     print(CAUTION, file=sys.stderr)
     return 0
 
@@ -98,18 +174,18 @@ def run_table(args) -> int:
     day = pd.Timestamp(first).tz_localize(tz, nonexistent="shift_forward", ambiguous=True)
     start = day.tz_convert("UTC")
     end = (day.tz_convert(tz) + pd.DateOffset(days=args.days)).tz_convert("UTC")
-    model = _load(args.constants)
+    src = _Source(args)
+    model = src.model
     try:
         events = model.high_low(start, end, step="10min")
     except ValueError as exc:
         raise UserError(str(exc)) from None
-    offset = float(args.datum_offset or 0.0)
-    datum = args.datum_name or ("the constants' datum" if not offset else "the chosen datum")
+    offset = -src.shift
 
     lines = [
-        f"High and low waters from {args.constants}",
-        f"times: local, {tz.key} (UTC offset shown); heights [m] above {datum}"
-        + (f" (constants' levels {offset:+.3f} m)" if offset else ""),
+        f"High and low waters from {src.source}",
+        f"times: local, {tz.key} (UTC offset shown); {src.describe()}"
+        + (f" (constants' levels {offset:+.3f} m)" if offset and not getattr(args, "config", None) else ""),
         "",
         f"{'date':<15} {'time':>5} {'UTC':>6}  {'tide':<4} {'height [m]':>10}",
     ]
@@ -122,7 +198,8 @@ def run_table(args) -> int:
         shown = date if date != last_date else ""
         last_date = date
         lines.append((f"{shown:<15} {local.strftime('%H:%M'):>5} {offset_text(local.utcoffset()):>6}  "
-                      f"{('HW' if row.kind == 'high' else 'LW'):<4} {row.level + offset:>10.2f}  {note}").rstrip())
+                      f"{('HW' if row.kind == 'high' else 'LW'):<4} {float(src.heights(row.level)):>10.2f}  "
+                      f"{note}").rstrip())
     if events.empty:
         lines.append("(no high or low water in this period)")
     lines += ["", "HW high water, LW low water; astronomical tide only: weather can change levels and times a lot."]
@@ -158,30 +235,31 @@ def run_datums(args) -> int:
     """``quaywatch datums``: tidal datums from an 18.61-year prediction."""
     from predictor.datums import DATUM_DESCRIPTIONS, DATUM_ORDER, tidal_datums
 
-    model = _load(args.constants)
+    src = _Source(args)
+    model = src.model
     start = parse_time(args.start, "--start", "UTC") if args.start else None
     if not 0 < args.years <= 100:
         raise UserError(f"--years {args.years}: give a period from 0 to 100 years (18.61 is the nodal cycle)")
     d = tidal_datums(model, start=start, years=args.years)
-    offset = float(args.datum_offset or 0.0)
+    offset = -src.shift
     levels = {k: d[k] + (offset if k not in ("MN", "GT") else 0.0) for k in DATUM_ORDER}
     if args.json:
         doc = {
             "datums": levels,
             "units": "m",
-            "reference": args.datum_name or "constants' datum",
+            "reference": src.datum,
             "datum_offset": offset,
+            "source": src.source,
             "period": {"start": d["start"], "end": d["end"], "years": args.years},
             "method": "turning points of the predicted astronomical tide (NOAA 2003 definitions)",
             "caution": CAUTION,
         }
         sys.stdout.write(json.dumps(doc, indent=2) + "\n")
         return 0
-    ref = args.datum_name or "the constants' datum"
     lines = [
-        f"Tidal datums from {args.constants}",
-        f"prediction {d['start']} to {d['end']} ({args.years:g} years); heights [m] above {ref}"
-        + (f" (constants' levels {offset:+.3f} m)" if offset else ""),
+        f"Tidal datums from {src.source}",
+        f"prediction {d['start']} to {d['end']} ({args.years:g} years); {src.describe()}"
+        + (f" (constants' levels {offset:+.3f} m)" if offset and not getattr(args, "config", None) else ""),
         "",
         f"{'datum':<6} {'height [m]':>10}  description",
     ]
@@ -195,6 +273,14 @@ def run_datums(args) -> int:
 
 
 # --------------------------------------------------------------------------- register
+
+
+def _source_options(p) -> None:
+    p.add_argument("constants", metavar="CONSTANTS.toml", nargs="?",
+                   help="harmonic constants (TOML); or give --config and --station instead")
+    p.add_argument("--config", metavar="FILE", help="a quaywatch configuration: predict for --station ID on its "
+                   "display datum (chart datum where its offset is given)")
+    p.add_argument("--station", metavar="ID", help="the station of --config")
 
 
 def register(subparsers) -> None:
@@ -211,7 +297,7 @@ def register(subparsers) -> None:
         "predict", help="predicted tide as CSV time,level",
         description="Predict the astronomical tide from a constants file: CSV 'time,level' with UTC "
         "ISO 8601 times ending in Z, one row per step, both ends included. " + CAUTION)
-    p.add_argument("constants", metavar="CONSTANTS.toml", help="harmonic constants (TOML)")
+    _source_options(p)
     p.add_argument("--start", required=True, metavar="ISO", help="first time, with Z or an offset")
     p.add_argument("--end", required=True, metavar="ISO", help="last time, with Z or an offset")
     p.add_argument("--step", default="10min", metavar="STEP", help="time step: 60s, 6min, 10min, 1h (default 10min)")
@@ -221,7 +307,7 @@ def register(subparsers) -> None:
     p = subparsers.add_parser(
         "table", help="high and low waters in local time",
         description="High and low water times and heights in local time. " + CAUTION)
-    p.add_argument("constants", metavar="CONSTANTS.toml", help="harmonic constants (TOML)")
+    _source_options(p)
     p.add_argument("--days", type=int, default=7, help="number of days (default 7)")
     p.add_argument("--start", metavar="DATE", help="first local day, e.g. 2025-03-01 (default today)")
     p.add_argument("--tz", metavar="ZONE", help="IANA time zone for the times shown (default UTC)")
@@ -233,7 +319,7 @@ def register(subparsers) -> None:
     p = subparsers.add_parser(
         "datums", help="tidal datums (HAT, MHHW, MHW, MSL, MLW, MLLW, LAT, ...)",
         description="Tidal datums from an 18.61-year prediction of the astronomical tide. " + CAUTION)
-    p.add_argument("constants", metavar="CONSTANTS.toml", help="harmonic constants (TOML)")
+    _source_options(p)
     p.add_argument("--json", action="store_true", help="print JSON")
     p.add_argument("--start", metavar="ISO", help="start of the period (default 2000-01-01, UTC)")
     p.add_argument("--years", type=finite_float, default=18.61, help="length of the period in years (default 18.61)")

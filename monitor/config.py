@@ -36,6 +36,14 @@ HISTORY = "history"  # value of ``constants`` meaning "fit from the station's ow
 
 _ID_RE = re.compile(r"^[a-z0-9][a-z0-9_-]{0,39}$")
 _REQUIRED = object()
+#: Names that mean the station datum itself (the gauge zero, where levels are stored).
+STATION_DATUM_NAMES = ("station", "station_datum", "sd")
+
+
+def datum_words(name: str) -> str:
+    """A datum's name in words: ``"chart"`` -> ``"chart datum"``, ``"quay"`` -> ``"quay datum"``."""
+    text = str(name).replace("_", " ").strip()
+    return text if "datum" in text.lower() else f"{text} datum"
 
 
 @dataclass(frozen=True)
@@ -102,6 +110,25 @@ class StationConfig:
     qc_raw: dict = field(default_factory=dict)
     rules_raw: list = field(default_factory=list)
     note: str = ""                    # free text shown (as text, never HTML) in reports and emails
+    display_datum: str = "station"    # the one datum every level is shown on (a key of datums)
+
+    @property
+    def display_offset(self) -> float:
+        """Height of the display datum's zero above the station datum [m]."""
+        return float(self.datums.get(self.display_datum, 0.0))
+
+    @property
+    def display_label(self) -> str:
+        """The display datum in words, e.g. ``"chart datum"``."""
+        return datum_words(self.display_datum)
+
+    @property
+    def datum_note(self) -> str:
+        """Said beside the levels when there is no chart datum to show them on."""
+        if self.display_datum == "station" and "chart" not in self.datums:
+            return ("no chart datum offset is configured for this station, so levels are on the "
+                    "station datum (the gauge zero)")
+        return ""
 
     @property
     def fit_from_history(self) -> bool:
@@ -143,9 +170,14 @@ LOG_KEYS = ("level", "file", "max_bytes", "backups")
 class ResidualSettings:
     median_minutes: float = 30.0
     mean_minutes: float = 10.0
-    history_days: float = 90.0
+    # Residual history the high water forecast learns from [days]: storms are seasonal and
+    # rare, and about 20 of them are needed before the range is learnt (benchmarks/bench_forecast.py).
+    history_days: float = 1095.0
     min_history_days: float = 14.0
     reference_pressure: float = 1013.25
+    # Fewest storms in the history for a range conditioned on the storm now; with fewer the
+    # range is the wide rule of thumb, said in words (monitor.surge_forecast).
+    forecast_min_storms: int = 20
 
 
 @dataclass(frozen=True)
@@ -431,12 +463,14 @@ def _residual(c: _Checker, raw: Any) -> ResidualSettings:
                                     lambda v: 0 <= v <= 36600, "days from 0 to 36600"),
         "reference_pressure": c.value(t, "residual", "reference_pressure", "number", d.reference_pressure,
                                       lambda v: 800 <= v <= 1100, "hPa between 800 and 1100"),
+        "forecast_min_storms": c.value(t, "residual", "forecast_min_storms", "int", d.forecast_min_storms,
+                                       lambda v: 5 <= v <= 10000, "a whole number of storms from 5 to 10000"),
     }
     return ResidualSettings(**{k: v for k, v in vals.items() if v is not None})
 
 
-_STATION_KEYS = ("id", "name", "note", "latitude", "longitude", "tz", "datums", "constants", "fit_min_days",
-                 "fit_span_days", "sensors", "qc", "rules")
+_STATION_KEYS = ("id", "name", "note", "latitude", "longitude", "tz", "datums", "display_datum", "constants",
+                 "fit_min_days", "fit_span_days", "sensors", "qc", "rules")
 
 
 def _station(c: _Checker, raw: Any, kp: str, base_dir: Path) -> StationConfig | None:
@@ -456,21 +490,26 @@ def _station(c: _Checker, raw: Any, kp: str, base_dir: Path) -> StationConfig | 
     tz = c.value(t, kp, "tz", "str", "UTC", check=_is_zone, expect="an IANA time zone name such as 'Europe/Lisbon'")
 
     datums = {"station": 0.0}
-    dt = c.table(t.get("datums"), f"{kp}.datums", required=True)
+    # Without a chart datum offset the station shows every level on its station datum, and says so.
+    dt = c.table(t.get("datums"), f"{kp}.datums")
     if dt is not None:
         for key, val in dt.items():
             dk = _join(f"{kp}.datums", key)
             if not isinstance(key, str) or not _ID_RE.match(key):
                 errors.append(f"{dk}: datum names are lower-case letters, digits, '-' or '_'")
+            elif key in STATION_DATUM_NAMES:
+                errors.append(f"{dk}: {key!r} is the station datum itself (height 0 by definition); "
+                              f"name the datums that differ from it")
             elif isinstance(val, bool) or not isinstance(val, (int, float)) or not math.isfinite(val) \
                     or abs(val) > 1000:
                 errors.append(f"{dk}: expected the height of this datum above the station datum in metres "
                               f"(within +-1000), got {_show(val)}")
             else:
                 datums[key] = float(val)
-        if "chart" not in dt:
-            errors.append(f"{kp}.datums.chart: missing; expected the height of chart datum above the "
-                          f"station datum in metres")
+    display = c.value(t, kp, "display_datum", "str", "chart" if "chart" in datums else "station",
+                      check=lambda v: v in datums or v in STATION_DATUM_NAMES,
+                      expect="a datum of this station (" + ", ".join(sorted(datums)) + ")")
+    display = "station" if display is None or display in STATION_DATUM_NAMES else display
 
     const = c.value(t, kp, "constants", "str", check=lambda v: v.strip() != "",
                     expect=f"a constants file path, or {HISTORY!r} to fit from the station's own history")
@@ -519,7 +558,7 @@ def _station(c: _Checker, raw: Any, kp: str, base_dir: Path) -> StationConfig | 
         return None
     return StationConfig(id=sid, name=name or sid, note=note or "", latitude=lat, longitude=lon, tz=tz, datums=datums,
                          constants=const_path, fit_min_days=fit_min, fit_span_days=fit_span, sensors=sensors,
-                         qc=qc, rules=rules, qc_raw=qt or {}, rules_raw=rules_raw)
+                         qc=qc, rules=rules, qc_raw=qt or {}, rules_raw=rules_raw, display_datum=display)
 
 
 _SENSOR_KEYS = ("units", "offset", "label", "line", "feed")

@@ -43,7 +43,8 @@ import numpy as np
 import pandas as pd
 
 from monitor import residual as R
-from monitor.config import Config, SensorConfig, StationConfig
+from monitor import surge_forecast as SF
+from monitor.config import STATION_DATUM_NAMES, Config, SensorConfig, StationConfig, datum_words
 from monitor.errors import UserError
 from monitor.parse import parse_lines
 from monitor.store import EMPTY_BATCH, BatchResult, Store
@@ -53,7 +54,7 @@ log = logging.getLogger("monitor.daemon")
 PROCESS_CHUNK = 7 * 86400   # [s] most data time processed in one pass (bounds memory in a backfill)
 REWRITE_BACK = 3600         # [s] derived rows before a window that are recomputed (QC may revise flags)
 OUTBOX_DRAIN_WAIT = 30.0    # [s] with --until-exhausted, longest wait for the outbox after the feeds end
-HISTORY_REFRESH = 6 * 3600  # [s, data time] how often the forecast's residual history is re-read
+HISTORY_REFRESH = 6 * 3600  # [s, data time] how often the forecast relearns from the residual history
 # [s] samples before a window handed to the alert rules besides the new ones: messages show the
 # change over the last hour, taken from a sample up to 15 min either side of an hour back
 TREND_BACK = 75 * 60
@@ -125,16 +126,51 @@ def load_model(store: Store | None, station: StationConfig) -> tuple[Any, str]:
         from predictor import TideModel
 
         try:
-            return TideModel.load(station.constants), f"file {station.constants}"
+            model = TideModel.load(station.constants)
         except ValueError as exc:
             raise UserError(f"station {station.id} constants: {exc}") from None
+        model, how = on_station_datum(model, station, f"station {station.id} constants {station.constants}")
+        return model, f"file {station.constants} ({how})"
     if store is None:
         return None, "fitted from history (no store)"
     fit = store.fit_in_use(station.id)
     if fit is None:
         return None, "none yet: to be fitted from the station's own history"
     when = pd.Timestamp(fit["fitted_at"], unit="s", tz="UTC").strftime("%Y-%m-%d %H:%MZ")
-    return model_from_text(fit["constants"], f"fit {fit['id']}"), f"fit #{fit['id']} of {when}"
+    model = model_from_text(fit["constants"], f"fit {fit['id']}")
+    if model.datum is None:  # fitted to the store's levels, which are on the station datum
+        model.datum = "station"
+    model, _ = on_station_datum(model, station, f"station {station.id} fit #{fit['id']}")
+    return model, f"fit #{fit['id']} of {when}"
+
+
+def on_station_datum(model, station: StationConfig, where: str) -> tuple[Any, str]:
+    """The model with its levels on the station datum, and words saying what was done.
+
+    A constants file records the datum its mean is measured from (key ``datum``). On the
+    station datum it is used as it is; on another datum of the station (``chart``, say)
+    that datum's height above the station datum is added, explicitly; a datum the
+    station does not define is refused, never taken silently as a metre off.
+    A file that records no datum is taken as on the station datum, and said so.
+
+    Raises
+    ------
+    UserError
+        The file names a datum this station does not define.
+    """
+    datum = getattr(model, "datum", None)
+    if datum is None:
+        return model, "its datum is not recorded in the file: taken as the station datum"
+    if datum in STATION_DATUM_NAMES:
+        return model, "on the station datum"
+    if datum in station.datums:
+        z = float(station.datums[datum])
+        return model.referred_to("station", z), (f"mean on {datum_words(datum)}, {z:+.3f} m added "
+                                                 f"to put it on the station datum")
+    known = ", ".join(sorted(set(station.datums) - {"station"})) or "none besides the station datum"
+    raise UserError(f"{where}: the constants' mean is on datum {datum!r}, which station {station.id} does not "
+                    f"define (its datums: {known}); add {datum} under [stations.datums] with its height above "
+                    f"the station datum, or give the file the datum its levels are on (key 'datum')")
 
 
 #: A refit is checked on the most recent days of quality-controlled data that the constants in
@@ -193,6 +229,7 @@ def refit_station(store: Store, station: StationConfig, now: float | None = None
         model = _fit_record(station, obs, robust, infer)
     else:
         model, in_use, check = _checked_fit(station, obs, current, robust, infer)
+    model.datum = "station"  # the store keeps levels on the station datum
     md = model.metadata or {}
     fitted = obs[obs.index <= pd.Timestamp(md.get("record_end", obs.index[-1]))]
     start_t, end_t = int(fitted.index[0].timestamp()), int(fitted.index[-1].timestamp())
@@ -272,7 +309,7 @@ class StationRuntime:
     view: Any = None
     extremes: pd.DataFrame | None = None
     extremes_span: tuple[float, float] = (math.inf, -math.inf)
-    history: pd.Series | None = None
+    forecaster: Any = None          # monitor.surge_forecast.SurgeForecaster, relearnt every HISTORY_REFRESH
     history_at: float = -math.inf
     replay_clock: bool = False
     last_fit_try: float = -math.inf
@@ -348,6 +385,7 @@ class Daemon:
         # Every table the jobs write is created here, before the outbox thread opens its own
         # connection: schema changes on the processing path would contend with it for the lock.
         qc.ensure_qc_schema(store.db)
+        SF.ensure_forecast_schema(store.db)
         if self.engine is not None:
             self.engine.ensure_alert_schema(store.db)
         if self.outbox is not None:
@@ -363,7 +401,8 @@ class Daemon:
         view = None
         if self.rules_mod is not None:
             view = self.rules_mod.StationView(id=st.id, name=st.name, tz=st.tz, datums=dict(st.datums),
-                                               notes=st.note)
+                                               notes=st.note, display_datum=st.display_datum,
+                                               datum_note=st.datum_note)
         kinds = [getattr(s.feed, "kind", None) for s in st.sensors.values() if s.feed is not None]
         rt = StationRuntime(cfg=st, model=model, model_source=source, view=view,
                             replay_clock=bool(kinds) and all(k == "replay" for k in kinds))
@@ -524,7 +563,7 @@ class Daemon:
                     store.write_skew_surges(st.id, ss[ss["hw_t"] >= a + 3600])
             # 4. next high water forecast
             if latest:
-                context = self._forecast(rt, d, end_t)
+                context = self._forecast(rt, start_t, end_t)
 
         # 5. alert rules, on the new samples and the hour before them (for the trend)
         if self.engine is not None and st.rules and rt.view is not None:
@@ -558,27 +597,49 @@ class Daemon:
         rt.extremes = rt.model.high_low(pd.Timestamp(a, unit="s", tz="UTC"), pd.Timestamp(b, unit="s", tz="UTC"))
         rt.extremes_span = (a, b)
 
-    def _forecast(self, rt: StationRuntime, d: pd.DataFrame, end_t: int) -> dict | None:
+    def _forecast(self, rt: StationRuntime, start_t: int, end_t: int) -> list[dict]:
+        """Forecast every predicted high water within the station's longest ``clear_horizon``
+        (at least the next one) from the storm state, as issued at the end of the window and
+        at each half hour of it (so a long window -- a backfill, a fast replay -- is judged
+        by the forecast of its own time, not of its end). Each is stored as the latest
+        forecast of its high water and kept in the forecast log. Returns them all, in the
+        order issued."""
         st, rs = rt.cfg, self.cfg.residual
-        sm = d["smoothed"].dropna()
-        if sm.empty:
-            return None
-        hw = R.next_high_water(rt.extremes, pd.Timestamp(end_t, unit="s", tz="UTC"))
-        if hw is None:
-            return None
-        if rt.history is None or end_t - rt.history_at > HISTORY_REFRESH:
-            h = self.store.derived(st.id, end_t - int(rs.history_days * 86400), end_t)["smoothed"].dropna()
-            rt.history = h.resample("10min").mean() if len(h) else h
+        horizon = pd.Timedelta(seconds=max((getattr(r, "clear_horizon", 0.0) for r in st.rules or ()), default=0.0))
+        barometer = "barometer" in st.sensors
+        if rt.forecaster is None or end_t - rt.history_at > HISTORY_REFRESH:
+            grid, skew, pressure = SF.read_history(self.store.conn, st.id, end_t - int(rs.history_days * 86400),
+                                                   end_t, barometer)
+            rt.forecaster = SF.SurgeForecaster.learn(grid, skew, pressure, min_storms=rs.forecast_min_storms,
+                                                     min_history_days=rs.min_history_days)
             rt.history_at = end_t
-        fc = R.forecast_high_water(sm.index[-1].timestamp(), float(sm.iloc[-1]), hw["time"].timestamp(),
-                                   float(hw["level"]), rt.history, rs.min_history_days)
-        self.store.write_forecast(st.id, fc)
-        return fc
+        back = int((SF.RATE_HOURS + 1) * 3600)
+        recent = self.store.derived(st.id, start_t - back, end_t)["smoothed"].dropna()
+        pressure_now = None
+        if barometer:
+            o = self.store.observations(st.id, "barometer", start_t - back, end_t)
+            pressure_now = o["value"][~o["flag"].isin((4, 9))]
+        slot = SF.LOG_SLOT_S
+        issued = [*range(-(-start_t // slot) * slot, end_t, slot), end_t]
+        fcs: list[dict] = []
+        for at in issued:
+            state = SF.storm_state(recent, at, pressure_now, barometer=barometer)
+            if not np.isfinite(state.residual) or at - state.t > 3600:
+                continue  # no live residual then (a gap): no forecast
+            now = pd.Timestamp(state.t, unit="s", tz="UTC")
+            hws = R.high_waters_within(rt.extremes, now, now + horizon)
+            fcs += [rt.forecaster.forecast(state, row.time.timestamp(), float(row.level)) for row in hws.itertuples()]
+        for fc in fcs:
+            self.store.write_forecast(st.id, fc)
+        with self.store.transaction() as conn:
+            SF.log_forecasts(conn, st.id, fcs)
+        return fcs
 
-    def _alert_context(self, rt: StationRuntime, fc: dict | None, qc_results: dict, now: float,
+    def _alert_context(self, rt: StationRuntime, fcs: list[dict] | None, qc_results: dict, now: float,
                        end_t: int | None = None):
-        """The engine's context: the forecast dict as the residual module made it, the feed's
-        age, and the equipment faults (silent, stuck, drifting, clock off)."""
+        """The engine's context: the high water forecasts as monitor.surge_forecast made them
+        (the next first), the feed's age, and the equipment faults (silent, stuck, drifting,
+        clock off)."""
         st = rt.cfg
         last = {r: self.store.last_time(st.id, r) for r in st.sensors}
         age = None if last.get("primary") is None else max(0.0, now - last["primary"])
@@ -593,7 +654,9 @@ class Daemon:
             except Exception:
                 log.exception("station %s: equipment fault check failed", st.id)
             faults += self._diagnostic_faults(rt, now, end_t)
-        return self.engine.AlertContext(next_high_water=fc, feed_age=age, faults=faults)
+        last = [f for f in fcs or [] if f["made_t"] == fcs[-1]["made_t"]]
+        return self.engine.AlertContext(next_high_water=last[0] if last else None, feed_age=age, faults=faults,
+                                        high_waters=list(fcs or []))
 
     def _diagnostic_faults(self, rt: StationRuntime, now: float, end_t: int | None) -> list[dict]:
         """Sensor drift (primary against backup, over ``qc.drift_window``) and clock offset

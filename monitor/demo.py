@@ -206,9 +206,10 @@ def fit_constants(history: Path, out: Path, log: Path) -> dict:
                              infer=None)
         model.save(out)
         return {"mean": model.mean}
-    res = quaywatch(["fit", str(history), "-o", str(out), "--json", "--infer", "none"])
+    # the history is on the station datum, and the constants file says so
+    res = quaywatch(["fit", str(history), "-o", str(out), "--json", "--infer", "none", "--datum", "station"])
     with open(log, "a") as fh:
-        fh.write(f"$ quaywatch fit {history} -o {out} --json --infer none\n{res.stderr}")
+        fh.write(f"$ quaywatch fit {history} -o {out} --json --infer none --datum station\n{res.stderr}")
     if res.returncode != 0:
         raise DemoError(f"quaywatch fit failed (exit {res.returncode}): {res.stderr.strip()[-500:]}")
     try:
@@ -383,6 +384,11 @@ class Summary:
     drift: dict = field(default_factory=dict)         # primary - backup, from sensor_drift
     clock: list[dict] = field(default_factory=list)   # spans where the backup's clock is off
     caution_missing: list[Path] = field(default_factory=list)
+    # the storm's high water: (predicted time, came [m, chart datum], [(lead h, forecast, lower, upper, method)])
+    storm_hw: tuple | None = None
+    # the quay rule's all-clear: held at, its held high water [t], sent at, the range's top then [m, chart datum]
+    quay_clear: dict = field(default_factory=dict)
+    boards_out: float | None = None                   # the operator's boards-out level [m, chart datum]
 
 
 CAUTION_WORDS = ("unofficial", "official warnings")
@@ -447,12 +453,52 @@ def read_summary(out: Path, station: str, chart: float, mail: list[CaughtMail],
             s.multi = int((tests["multi"] == qc.SUSPECT).sum())
         gaps = qc.find_gaps(obs.index, 300.0)
         s.gaps = list(zip(gaps["start"], gaps["end"]))
+        if _table(con, "hw_forecast_log") and s.highest:
+            s.storm_hw, s.quay_clear = _forecast_story(con, station, chart, s.highest[0], s.episodes)
     finally:
         con.close()
     checks = technician_checks(store, station, start, end)
     s.drift = checks.get("drift", {})
     s.clock = checks.get("clock", [])
     return s
+
+
+def _forecast_story(con, station: str, chart: float, highest, episodes: list[dict]) -> tuple:
+    """What was forecast for the storm's high water 6, 3 and 1 h before (the last forecast issued
+    at or before each, from the daemon's forecast log) and how the quay's all-clear waited."""
+    import pandas as pd
+
+    log = pd.read_sql_query("select made_t, hw_t, forecast, lower, upper, method from hw_forecast_log "
+                            "where station = ?", con, params=(station,))
+    ss = pd.read_sql_query("select hw_t, observed_high from skew_surges where station = ?", con, params=(station,))
+    t_high = int(highest.timestamp())
+    storm = None
+    if len(ss):
+        row = ss.iloc[int((ss["hw_t"] - t_high).abs().idxmin())]
+        hw_t = int(row["hw_t"])
+        mine = log[(log["hw_t"] - hw_t).abs() <= 300]
+        leads = []
+        for lead in (6, 3, 1):
+            target = hw_t - lead * 3600
+            near = mine[(mine["made_t"] <= target) & (mine["made_t"] > target - 3600)]
+            if len(near):
+                f = near.loc[near["made_t"].idxmax()]
+                leads.append((lead, f["forecast"] - chart, f["lower"] - chart, f["upper"] - chart, f["method"]))
+        storm = (hw_t, float(row["observed_high"]) - chart, leads)
+    quay: dict = {}
+    eps = [e for e in episodes if e["rule"] == "quay"]
+    if eps:
+        held = con.execute("select min(event_at) from outbox where key like ?",
+                           (f"{station}/quay/episode-{eps[0]['id']}/held/%",)).fetchone()[0] \
+            if _table(con, "outbox") else None
+        quay = {"held": held, "closed": eps[0].get("closed_at")}
+        if quay["closed"]:
+            closed = int(quay["closed"])
+            made = log["made_t"][log["made_t"] <= closed].max()
+            now = log[(log["made_t"] == made) & (log["hw_t"] > closed)].sort_values("hw_t")
+            if len(now):
+                quay.update(next_hw=int(now["hw_t"].iloc[0]), top=float(now["upper"].iloc[0]) - chart)
+    return storm, quay
 
 
 def _table(con, name: str) -> bool:
@@ -476,6 +522,20 @@ def print_summary(s: Summary, out: Path, tz: str) -> None:
     for e in s.episodes:
         closed = _local(e["closed_at"], tz) if e.get("closed_at") else "still open"
         p(f"  {e['rule']:7s} {e['top_step']:15s} {_local(e['opened_at'], tz)} -> {closed}")
+    if s.storm_hw:
+        hw_t, came, leads = s.storm_hw
+        p(f"Storm high water {_local(hw_t, tz)}: came {came:.2f} m above chart datum; forecast (90 % range):")
+        for lead, fc, lo, hi, method in leads:
+            where = "inside" if lo <= came <= hi else ("ABOVE" if came > hi else "BELOW")
+            p(f"  {lead} h before  {fc:.2f} m ({lo:.2f} to {hi:.2f}{', wide' if method == 'wide' else ''}): came {where}")
+    q = s.quay_clear
+    if q.get("held"):
+        p(f"Quay all-clear  held at {_local(q['held'], tz)} (\"not clear yet\": the next high water could reach "
+          f"boards out again)")
+    if q.get("closed") and q.get("next_hw"):
+        p(f"                sent at {_local(q['closed'], tz)}, when the range for the high water of "
+          f"{_local(q['next_hw'], tz)} topped out at {q['top']:.3f} m above chart datum"
+          + (f" (boards out {s.boards_out:.3f} m)" if s.boards_out is not None else ""))
     p(f"Emails sent     {len(s.mail)} (all captured by the demo's own SMTP server)")
     for m in s.mail:
         p(f"  {m.path.name[:4]} {m.subject}  -> {', '.join(m.recipients)}")
@@ -579,6 +639,7 @@ def run_demo(out: Path = DEFAULT_OUT, short: bool = False, speedup: float | None
 
     step("Reading back what was found ...")
     summary = read_summary(out, station, chart, catcher.caught, start, end)
+    summary.boards_out = port["levels"]["boards_out"]
     if not quiet:
         print_summary(summary, out, tz)
     return summary

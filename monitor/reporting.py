@@ -18,6 +18,7 @@ import numpy as np
 import pandas as pd
 
 from alerts import report as R
+from monitor.config import datum_words
 from monitor.errors import UserError
 
 log = logging.getLogger(__name__)
@@ -119,10 +120,20 @@ def barometric_share(residual: pd.Series | np.ndarray, barometric: pd.Series | n
 
 
 def _report_datum(station: Any) -> tuple[str, float]:
+    """The station's display datum in words and its height above the station datum [m]:
+    ``stations[].display_datum`` (chart datum by default where its offset is given)."""
     datums = dict(getattr(station, "datums", {}) or {})
-    if "chart" in datums:
-        return "chart datum", float(datums["chart"])
-    return "station datum", 0.0
+    name = getattr(station, "display_datum", None) or ("chart" if "chart" in datums else "station")
+    return datum_words(name), float(datums.get(name, 0.0))
+
+
+def _datum_note(station: Any) -> str:
+    note = getattr(station, "datum_note", None)
+    if note is not None:
+        return note
+    datums = dict(getattr(station, "datums", {}) or {})
+    return "" if "chart" in datums else ("no chart datum offset is configured for this station, so levels "
+                                         "are on the station datum (the gauge zero)")
 
 
 def _alert_levels(station: Any, shift: float) -> list[R.AlertLevel]:
@@ -153,7 +164,8 @@ def _table(db: Any, name: str) -> bool:
 
 
 def gather_day(store: Any, station: Any, day: dt.date, settings: R.ReportSettings | None = None, *,
-               model: Any = None, model_source: str = "", now: pd.Timestamp | None = None) -> R.DayReport:
+               model: Any = None, model_source: str = "", now: pd.Timestamp | None = None,
+               residual: Any = None) -> R.DayReport:
     """Fill a :class:`alerts.report.DayReport` for one station's local day from the store.
 
     Parameters
@@ -164,6 +176,11 @@ def gather_day(store: Any, station: Any, day: dt.date, settings: R.ReportSetting
         The local date in the station's zone.
     model : TideModel, optional
         The tide model in use (loaded from the station's constants when omitted).
+    now : Timestamp, optional
+        When the report is written (default the clock). The report describes its own day:
+        forecasts shown are those issued during the day, never after it.
+    residual : monitor.config.ResidualSettings, optional
+        The forecast's settings, for a forecast made here when the daemon kept none.
     """
     settings = settings or R.ReportSettings()
     db = store.db
@@ -216,10 +233,15 @@ def gather_day(store: Any, station: Any, day: dt.date, settings: R.ReportSetting
         barometer = R.BarometerPart(**share) if share["samples"] else None
     now = now or pd.Timestamp.now(tz="UTC")
     forecast = staff = None
+    verification: list = []
     try:
-        forecast = _forecast(store, sid, model, start, end, now, shift)
+        forecast = _forecast(store, station, model, start, end, now, shift, residual)
     except Exception:  # the forecast must never stop the day's report
         log.exception("station %s: next high water forecast for the report failed", sid)
+    try:
+        verification = _verification(store, sid, tides, shift)
+    except Exception:
+        log.exception("station %s: forecast verification for the report failed", sid)
     try:
         staff = _staff(store, sid, end, settings.trend_weeks, shift)
     except Exception:
@@ -229,54 +251,79 @@ def gather_day(store: Any, station: Any, day: dt.date, settings: R.ReportSetting
     counts, episodes = _qc(store, sid, t0, t1)
     return R.DayReport(
         station_id=sid, station_name=station.name, tz=station.tz, day=day, datum=datum,
-        note=getattr(station, "note", "") or "",
+        datum_note=_datum_note(station), note=getattr(station, "note", "") or "",
         samples=samples, predicted=predicted, sample_interval=sample_interval,
         alert_levels=_alert_levels(station, shift), tides=tides,
         rejected_lines=rejected, rejects=rejects, qc_counts=counts, qc_episodes=episodes,
         diagnostics=_diagnostics(store, station, model, end, settings.trend_weeks),
-        alerts=_alerts(db, sid, t0, t1), constants=_constants(store, sid, model, model_source),
-        generated_at=now, forecast=forecast, staff=staff, barometer=barometer,
+        alerts=_alerts(db, station, t0, t1, shift), constants=_constants(store, sid, model, model_source, shift),
+        generated_at=now, forecast=forecast, staff=staff, barometer=barometer, verification=verification,
     )
 
 
-def _forecast(store: Any, sid: str, model: Any, start: pd.Timestamp, end: pd.Timestamp, now: pd.Timestamp,
-              shift: float) -> R.HighWaterForecast | None:
-    """The next high water forecast as the report is written.
+def _forecast(store: Any, station: Any, model: Any, start: pd.Timestamp, end: pd.Timestamp, now: pd.Timestamp,
+              shift: float, residual: Any = None) -> R.HighWaterForecast | None:
+    """The last next-high-water forecast issued during the report's day, never one issued after it.
 
-    The daemon's latest forecast (table ``hw_forecasts``) made during the day or since; else,
-    with a model, one computed here from the last smoothed residual before the report's
-    moment (the end of the day, or now if earlier) by :func:`monitor.residual.forecast_high_water`.
+    From the forecast log (every forecast the daemon made) or the daemon's latest forecast of
+    each high water, issued between the day's start and its end (or now, if the day is not
+    over); else, with a model, one made here as the daemon would have made it at that moment,
+    from the store's history up to it (:mod:`monitor.surge_forecast`).
     """
-    from monitor import residual as RS
+    from monitor import surge_forecast as SF
 
     db = store.db
-    made_before = int(now.timestamp())
+    sid = station.id
+    t0, made_before = int(start.timestamp()), int(min(now, end).timestamp()) - 1
+    log = SF.read_log(db, sid, t0, made_before)
+    log = log[log["hw_t"] >= log["made_t"]] if len(log) else log
+    if len(log):
+        last = log[log["made_t"] == log["made_t"].max()].sort_values("hw_t").iloc[0]
+        return _forecast_row(last.to_dict(), shift)
     if _table(db, "hw_forecasts"):
         cur = db.conn.execute("SELECT * FROM hw_forecasts WHERE station = ? AND made_t BETWEEN ? AND ? "
-                              "AND hw_t >= made_t ORDER BY made_t DESC, hw_t ASC LIMIT 1",
-                              (sid, int(start.timestamp()), made_before))
+                              "AND hw_t >= made_t ORDER BY made_t DESC, hw_t ASC LIMIT 1", (sid, t0, made_before))
         row = cur.fetchone()
         if row:
-            fc = dict(zip([d[0] for d in cur.description], row))
-            return _forecast_row(fc, shift)
+            return _forecast_row(dict(zip([d[0] for d in cur.description], row)), shift)
     if model is None:
         return None
-    at = min(now, end)
-    at_t = int(at.timestamp())
-    history = store.derived(sid, at_t - 8 * 7 * 86400, at_t)["smoothed"].dropna()
-    recent = history[history.index >= at - pd.Timedelta(hours=1)]
-    if recent.empty:
+    return _forecast_at(store, station, model, made_before, shift, residual)
+
+
+def _forecast_at(store: Any, station: Any, model: Any, at_t: int, shift: float, residual: Any) -> R.HighWaterForecast | None:
+    """The forecast of the next high water as the daemon would have issued it at ``at_t``."""
+    from monitor import residual as RS
+    from monitor import surge_forecast as SF
+
+    if residual is None:
+        from monitor.config import ResidualSettings
+
+        residual = ResidualSettings()
+    sid = station.id
+    at = pd.Timestamp(at_t, unit="s", tz="UTC")
+    back = int((SF.RATE_HOURS + 1) * 3600)
+    recent = store.derived(sid, at_t - back, at_t)["smoothed"]
+    barometer = "barometer" in (getattr(station, "sensors", {}) or {})
+    pressure = None
+    if barometer:
+        o = store.observations(sid, "barometer", at_t - back, at_t)
+        pressure = o["value"][~o["flag"].isin((4, 9))]
+    state = SF.storm_state(recent, at_t, pressure, barometer=barometer)
+    if not np.isfinite(state.residual) or at_t - state.t > 3600:
         return None
-    hw = RS.next_high_water(model.high_low(at, at + pd.Timedelta(hours=18)), at)
+    hw = RS.next_high_water(model.high_low(at, at + pd.Timedelta(hours=30)), at)
     if hw is None:
         return None
-    fc = RS.forecast_high_water(recent.index[-1].timestamp(), float(recent.iloc[-1]),
-                                pd.Timestamp(hw["time"]).timestamp(), float(hw["level"]), history)
+    grid, skew, p_grid = SF.read_history(store.conn, sid, at_t - int(residual.history_days * 86400), at_t, barometer)
+    forecaster = SF.SurgeForecaster.learn(grid, skew, p_grid, min_storms=residual.forecast_min_storms,
+                                          min_history_days=residual.min_history_days)
+    fc = forecaster.forecast(state, pd.Timestamp(hw["time"]).timestamp(), float(hw["level"]))
     return _forecast_row(fc, shift)
 
 
 def _forecast_row(fc: dict, shift: float) -> R.HighWaterForecast:
-    """A forecast dict of :func:`monitor.residual.forecast_high_water` on the report's datum."""
+    """A forecast dict of :mod:`monitor.surge_forecast` (or a stored row) on the report's datum."""
     def level(v: Any) -> float | None:
         v = _num(v)
         return None if v is None else v - shift
@@ -284,7 +331,48 @@ def _forecast_row(fc: dict, shift: float) -> R.HighWaterForecast:
     return R.HighWaterForecast(
         time=_ts(fc["hw_t"]), predicted=level(fc["predicted_high"]), residual_now=_num(fc["residual_now"]),
         forecast=level(fc["forecast"]), made_at=_ts(fc["made_t"]), lower=level(fc.get("lower")),
-        upper=level(fc.get("upper")), coverage=_num(fc.get("coverage")), note=fc.get("note") or "")
+        upper=level(fc.get("upper")), coverage=_num(fc.get("coverage")), note=fc.get("note") or "",
+        method=fc.get("method") or "", rising=level(fc.get("rising")), rate=_num(fc.get("rate")),
+        pressure_note=fc.get("pressure_note") or "")
+
+
+#: Leads of the verification table [h]: what was forecast this long before each high water.
+VERIFY_LEADS = (6, 3, 1)
+#: The forecast "L h before" is the last one issued at or before then, if issued within this [s].
+VERIFY_SLACK_S = 3600
+
+
+def _verification(store: Any, sid: str, tides: list, shift: float) -> list[R.VerificationRow]:
+    """For each high water of the day: what was forecast 6, 3 and 1 h before (the last forecast
+    issued at or before each, within an hour of it), against what came (the highest observed
+    level of its tidal cycle)."""
+    from monitor import surge_forecast as SF
+
+    highs = [w for w in tides if w.kind == "high"]
+    if not highs:
+        return []
+    first = int(highs[0].predicted_time.timestamp())
+    last = int(highs[-1].predicted_time.timestamp())
+    log = SF.read_log(store.db, sid, first - max(VERIFY_LEADS) * 3600 - VERIFY_SLACK_S, last)
+    rows = []
+    for w in highs:
+        hw_t = int(w.predicted_time.timestamp())
+        mine = log[(log["hw_t"] - hw_t).abs() <= 300] if len(log) else log
+        made = []
+        for lead in VERIFY_LEADS:
+            target = hw_t - lead * 3600
+            near = mine[(mine["made_t"] <= target) & (mine["made_t"] > target - VERIFY_SLACK_S)] if len(mine) else mine
+            if not len(near):
+                made.append(None)
+                continue
+            fc = near.loc[near["made_t"].idxmax()].to_dict()
+            row = _forecast_row(fc, shift)
+            made.append(R.Verified(lead_h=lead, made_at=row.made_at, forecast=row.forecast, lower=row.lower,
+                                   upper=row.upper, method=row.method))
+        rows.append(R.VerificationRow(time=w.predicted_time, predicted=w.predicted_level,
+                                      observed=w.observed_level, observed_time=w.observed_time,
+                                      forecasts=tuple(made)))
+    return rows
 
 
 def _staff(store: Any, sid: str, end: pd.Timestamp, weeks: int, shift: float) -> R.StaffCheck | None:
@@ -522,7 +610,11 @@ def _half_width(d: dict) -> float | None:
     return None if lo is None or hi is None else (hi - lo) / 2
 
 
-def _alerts(db: Any, sid: str, t0: int, t1: int) -> list[R.AlertEpisodeRow]:
+def _alerts(db: Any, station: Any, t0: int, t1: int, shift: float) -> list[R.AlertEpisodeRow]:
+    """The day's alert episodes; a level rule's peak moved from its own datum to the report's,
+    a residual's kept with its sign."""
+    sid = station.id
+    datums = dict(getattr(station, "datums", {}) or {})
     if not _table(db, "alert_episodes"):
         return []
     episodes = list(db.query(
@@ -546,14 +638,18 @@ def _alerts(db: Any, sid: str, t0: int, t1: int) -> list[R.AlertEpisodeRow]:
                     sent_at=_ts(max(sent)) if len(sent) == len(msgs) else None,
                     attempts=max(int(m["attempts"] or 0) for m in msgs), error="; ".join(errors),
                     recipients=len(msgs)))
+        peak, watch = _num(ep.get("peak")), ep.get("watch") or ""
+        if peak is not None and (watch.startswith("level") or watch == "next_high_water_above"):
+            peak = peak + float(datums.get(ep.get("datum") or "station", 0.0)) - shift
         rows.append(R.AlertEpisodeRow(
             rule=ep["rule"], level=ep.get("top_step") or ep.get("step_now") or "", started=_ts(ep["opened_at"]),
-            cleared=_ts(ep["closed_at"]), peak=_num(ep.get("peak")), unit=ep.get("unit") or "m",
-            deliveries=tuple(deliveries)))
+            cleared=_ts(ep["closed_at"]), peak=peak, unit=ep.get("unit") or "m",
+            deliveries=tuple(deliveries), signed=watch.startswith("residual")))
     return rows
 
 
-def _constants(store: Any, sid: str, model: Any, source: str) -> R.ConstantsInfo | None:
+def _constants(store: Any, sid: str, model: Any, source: str, shift: float = 0.0) -> R.ConstantsInfo | None:
+    """The constants in use; their mean level (on the station datum in the model) on the report's datum."""
     if model is None:
         return None
     fit = store.fit_in_use(sid) if source.startswith("fit") else None
@@ -564,7 +660,8 @@ def _constants(store: Any, sid: str, model: Any, source: str) -> R.ConstantsInfo
                                              _num(get("amplitude_ci")), _num(get("snr"))))
     constituents.sort(key=lambda k: -k.amplitude)
     return R.ConstantsInfo(
-        source=source or "constants file", mean=_num(getattr(model, "mean", None)), constituents=tuple(constituents),
+        source=source or "constants file", mean=None if _num(getattr(model, "mean", None)) is None
+        else float(model.mean) - shift, constituents=tuple(constituents),
         fitted_at=_ts(fit["fitted_at"]) if fit else None, record_start=_ts(fit["start"]) if fit else None,
         record_end=_ts(fit["end"]) if fit else None, samples=int(fit["n"]) if fit else None,
         rms=_num(fit["rms"]) if fit else None, variance_explained=_num(fit["variance_explained"]) if fit else None)
@@ -600,7 +697,7 @@ def write_station_day(config: Any, store: Any, station: Any, day: dt.date, *, se
     queue the email to the report recipients. Returns the report's path."""
     settings = settings_of(config)
     now = now or pd.Timestamp.now(tz="UTC")
-    report = gather_day(store, station, day, settings, now=now)
+    report = gather_day(store, station, day, settings, now=now, residual=getattr(config, "residual", None))
     try:
         path = R.write_day_report(report, settings.folder)
         R.prune_reports(settings.folder, settings.keep_days, day)

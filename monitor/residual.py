@@ -1,5 +1,6 @@
 """The live residual: observed minus predicted tide, its smoothed form, skew surge,
-the next high water forecast, and the inverse-barometer part of the residual.
+the coming high waters, and the inverse-barometer part of the residual (the next high
+water forecast itself is :mod:`monitor.surge_forecast`).
 
 Pure functions on numpy/pandas (UTC DatetimeIndex, metres); the daemon reads the store,
 calls these, and writes table ``derived`` (plus ``skew_surges`` and ``hw_forecasts``).
@@ -219,104 +220,6 @@ def skew_surges(observed: pd.Series, extremes: pd.DataFrame, max_gap_s: float = 
     return pd.DataFrame(rows, columns=cols)
 
 
-def tide_stands(extremes: pd.DataFrame) -> pd.DataFrame:
-    """Predicted turning points as high- and low-water stands, in time order.
-
-    Returns a copy with ``t`` [s, Unix], ``stand`` (the peaks of a double high water share one)
-    and ``principal`` (the stand's high or low water of record); the dip inside a double high
-    water (the rise inside a double low water) is dropped. A table from
-    :func:`predictor.extrema.high_low` already carries ``stand`` and ``principal``; for any other
-    table of alternating turning points they are decided here from its levels.
-
-    References
-    ----------
-    NOAA (2003). Computational Techniques for Tidal Datums Handbook (glossary: double high water).
-    """
-    ext = extremes.copy()
-    ext["t"] = _secs(pd.DatetimeIndex(ext["time"]))
-    ext = ext.sort_values("t", kind="stable").reset_index(drop=True)
-    if "stand" not in ext.columns or "principal" not in ext.columns:
-        # rows of one kind in a row are one stand already (a table that left the dip out)
-        high = (ext["kind"] == "high").to_numpy()
-        level = ext["level"].to_numpy(dtype=float)
-        run = np.concatenate([[0], np.cumsum(high[1:] != high[:-1])]) if len(ext) else np.zeros(0, int)
-        key = np.where(high, level, -level)
-        rep = pd.Series(key).groupby(run).idxmax().to_numpy()
-        stand, principal, dip = classify_stands(ext["t"].to_numpy()[rep], level[rep], high[rep])
-        ext["stand"] = stand[run]
-        ext["principal"] = np.isin(np.arange(len(ext)), rep[principal])
-        ext = ext[~dip[run]].reset_index(drop=True)
-    ext["principal"] = ext["principal"].astype(bool)
-    return ext
-
-
-def forecast_high_water(now_t: float, residual_now: float, hw_t: float, hw_level: float,
-                        history: pd.Series, min_history_days: float = 14.0,
-                        coverage: float = 0.90, grid_minutes: float = 10.0) -> dict:
-    """Next high water forecast: predicted high water + the current residual (persisted),
-    with a range from the station's own history.
-
-    The range is the spread of the residual's change over the same lead time in the
-    history: the ``(1 - coverage)/2`` and ``(1 + coverage)/2`` quantiles of
-    ``r(t + lead) - r(t)`` over every t, added to the forecast. With less history than
-    ``min_history_days`` (or too few pairs) no range is given and the note says so.
-
-    Parameters
-    ----------
-    now_t : float
-        Time of the current residual [s, Unix UTC].
-    residual_now : float
-        Current (smoothed) residual [m].
-    hw_t, hw_level : float
-        Time [s] and level [m] of the next predicted high water.
-    history : Series
-        Past (smoothed) residual [m], UTC index.
-
-    Returns
-    -------
-    dict
-        ``hw_t, made_t, predicted_high, residual_now, forecast, lower, upper, coverage``
-        (lower/upper/coverage None when history is too short) and ``note`` (plain words).
-
-    References
-    ----------
-    Persistence forecast of the surge: common practice, no source. Empirical quantiles of
-    the residual's change: Hyndman, R. J., Fan, Y. (1996), Sample quantiles in statistical
-    packages, Am. Stat. 50 (type 7, numpy's default).
-    """
-    lead = max(0.0, float(hw_t) - float(now_t))
-    fc = float(hw_level) + float(residual_now)
-    out = {"hw_t": int(round(hw_t)), "made_t": int(round(now_t)), "predicted_high": float(hw_level),
-           "residual_now": float(residual_now), "forecast": fc, "lower": None, "upper": None,
-           "coverage": None}
-    h = history.dropna() if history is not None else pd.Series(dtype=float)
-    span_days = 0.0 if len(h) < 2 else (_secs(h.index[-1:])[0] - _secs(h.index[:1])[0]) / 86400
-    lead_txt = f"{lead / 3600:.1f} h"
-    if span_days < min_history_days:
-        out["note"] = (f"no uncertainty range: only {span_days:.1f} days of residual history, "
-                       f"{min_history_days:g} needed; forecast = predicted high water + current surge")
-        return out
-    grid = h.resample(f"{grid_minutes:g}min").mean()
-    steps = int(round(lead / (grid_minutes * 60)))
-    vals = grid.to_numpy(dtype=float)
-    if steps >= len(vals):  # a history shorter than the lead time holds no pair
-        diff = np.empty(0)
-    elif steps > 0:
-        diff = vals[steps:] - vals[:len(vals) - steps]
-    else:
-        diff = np.zeros(np.isfinite(vals).sum())
-    diff = diff[np.isfinite(diff)]
-    if len(diff) < 100:
-        out["note"] = (f"no uncertainty range: only {len(diff)} pairs of residual {lead_txt} apart in the "
-                       f"history; forecast = predicted high water + current surge")
-        return out
-    q = np.quantile(diff, [(1 - coverage) / 2, (1 + coverage) / 2])
-    out.update(lower=fc + float(q[0]), upper=fc + float(q[1]), coverage=coverage)
-    out["note"] = (f"{coverage:.0%} range from how the residual changed over {lead_txt} in "
-                   f"{span_days:.0f} days of this station's history")
-    return out
-
-
 def next_high_water(extremes: pd.DataFrame, after: pd.Timestamp) -> pd.Series | None:
     """The next predicted high water after ``after``: a row of ``extremes`` (``time``, ``level``).
 
@@ -331,6 +234,23 @@ def next_high_water(extremes: pd.DataFrame, after: pd.Timestamp) -> pd.Series | 
         return None
     stand = highs[highs["stand"] == highs["stand"].iloc[0]]
     return stand.loc[stand["level"].idxmax()].drop(labels=["t"])
+
+
+def high_waters_within(extremes: pd.DataFrame, after: pd.Timestamp, until: pd.Timestamp) -> pd.DataFrame:
+    """The predicted high waters after ``after`` and up to ``until``, one per stand (the
+    higher peak still to come of a double high water, as :func:`next_high_water`); at least
+    the next one even when it falls after ``until``. Columns ``time``, ``level``; empty when
+    none."""
+    ext = tide_stands(extremes)
+    after_t = _secs(pd.DatetimeIndex([pd.Timestamp(after)]))[0]
+    highs = ext[(ext["kind"] == "high") & (ext["t"] > after_t)]
+    if highs.empty:
+        return pd.DataFrame({"time": pd.DatetimeIndex([], tz="UTC"), "level": np.zeros(0)})
+    out = highs.loc[highs.groupby("stand", sort=False)["level"].idxmax(), ["time", "level"]]
+    out = out.sort_values("time").reset_index(drop=True)
+    keep = (out["time"] <= pd.Timestamp(until)).to_numpy()
+    keep[0] = True
+    return out[keep]
 
 
 def _secs(index: pd.DatetimeIndex) -> np.ndarray:

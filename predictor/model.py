@@ -173,6 +173,11 @@ class TideModel:
         ``metadata["trend_epoch"]`` or 2000-01-01T00:00Z.
     metadata : dict
         Free-form information (record span, fit statistics, station, ...).
+    datum : str, optional
+        Name of the datum the levels (``mean``) are measured from, as the constants file
+        records it (e.g. ``"station"``, ``"chart"``); ``None`` when not recorded. The
+        model never converts between datums: whoever knows the offsets does that
+        (:meth:`referred_to`).
     """
 
     mean: float
@@ -180,6 +185,7 @@ class TideModel:
     trend: float = 0.0
     trend_epoch: float | None = None
     metadata: dict = field(default_factory=dict)
+    datum: str | None = None
 
     def __post_init__(self):
         self.mean = float(self.mean)
@@ -206,6 +212,21 @@ class TideModel:
         speed = np.array([get(n).speed for n in self.names], dtype=float)
         omega = np.radians(speed) / 3600.0  # rad/s
         return H, g, omega
+
+    def referred_to(self, datum: str, shift: float) -> "TideModel":
+        """A copy whose levels are ``shift`` metres higher, recorded as on ``datum``.
+
+        Parameters
+        ----------
+        datum : str
+            Name of the datum the copy's levels are measured from.
+        shift : float
+            Height of the old datum's zero above the new one's [m] (added to ``mean``).
+        """
+        m = copy.deepcopy(self)
+        m.mean = self.mean + float(shift)
+        m.datum = datum
+        return m
 
     def without_trend(self) -> "TideModel":
         """A copy with the trend removed (the astronomical tide about ``mean``)."""
@@ -407,6 +428,8 @@ class TideModel:
     def to_dict(self) -> dict:
         """Plain data for TOML or JSON: mean, trend, constituents, metadata."""
         d = {"mean": self.mean}
+        if self.datum:
+            d["datum"] = self.datum
         if self.trend:
             d["trend"] = self.trend
             d["trend_epoch"] = _iso(self.trend_epoch)
@@ -440,8 +463,13 @@ class TideModel:
         meta = data.get("metadata", {})
         if not isinstance(meta, dict):
             raise ConstantsFileError(f"{where}'metadata' must be a table")
+        datum = data.get("datum")
+        if datum is not None and (not isinstance(datum, str) or not datum.strip() or len(datum) > 60):
+            raise ConstantsFileError(f"{where}'datum' must name the datum the mean is measured from "
+                                     f"(e.g. \"station\" or \"chart\"), got {datum!r}")
         cons = _canonical_constituents(cons, where)
-        return cls(mean=float(mean), constituents=cons, trend=float(trend), trend_epoch=epoch, metadata=meta)
+        return cls(mean=float(mean), constituents=cons, trend=float(trend), trend_epoch=epoch, metadata=meta,
+                   datum=datum.strip() if datum else None)
 
     @classmethod
     def load(cls, path) -> "TideModel":
@@ -470,8 +498,8 @@ class TideModel:
         if meta:
             body += "\n" + tomli_w.dumps({"metadata": meta})
         header = (
-            "# quaywatch harmonic constants: mean [m], amplitude [m], phase = Greenwich phase\n"
-            "# lag g [deg], times UTC.\n"
+            "# quaywatch harmonic constants: mean [m] above the datum named by 'datum' (when\n"
+            "# recorded), amplitude [m], phase = Greenwich phase lag g [deg], times UTC.\n"
             "# Automated, unofficial: official tide predictions and warnings and the local\n"
             "# emergency authorities come first; defer to local codes and licensed practice.\n\n"
         )

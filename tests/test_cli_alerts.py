@@ -131,3 +131,22 @@ def test_episodes_are_listed_in_local_time_with_the_zone(config, capsys):
     assert "2025-10-23 13:00 IST" in out and "raised" in out
     header, rule = out.splitlines()[:2]
     assert len(header) <= len(rule) + 2  # columns line up under the header
+
+
+def test_episode_peaks_are_levels_on_the_display_datum_and_residuals_with_their_sign(config, capsys):
+    db = sqlite_utils.Database(config.parent / "store.sqlite")
+    rules, _ = rules_from_config([
+        {"id": "surge", "watch": "residual_above", "hold": 0, "notify": ["duty@port.example"],
+         "steps": [{"name": "raised", "at": 0.3}]},
+        {"id": "level", "watch": "level_above", "hold": 0, "notify": ["duty@port.example"],   # on the station datum
+         "steps": [{"name": "wet", "at": 3.4}]}], "rules", {"chart": 1.0})
+    idx = pd.date_range("2025-10-23 12:00", periods=30, freq="1min", tz="UTC")
+    r = np.r_[[0.5] * 10, [0.0] * 20]
+    samples = pd.DataFrame({"observed": 3 + r, "predicted": 3.0, "residual": r, "smoothed": r, "flag": 1}, index=idx)
+    evaluate(db, StationView("dunmerrow", "Port Dunmerrow", "Europe/Dublin", datums={"chart": 1.0}), rules, samples,
+             now=idx[-1])
+    db.close()
+    main(["alerts", str(config), "episodes"])
+    out = capsys.readouterr().out
+    # the level peaked at 3.5 m on the station datum: 2.5 m above chart datum (1.0 m higher)
+    assert "2.50 m above chart datum" in out and "+0.50 m" in out

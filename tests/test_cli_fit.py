@@ -167,6 +167,15 @@ def test_constants_file_loads_back(tmp_path, capsys):
     assert m2["amplitude"] == pytest.approx(1.10, abs=1 * mm)
 
 
+def test_fit_records_the_datum_it_is_told(tmp_path, capsys):
+    obs = write_csv(tmp_path / "obs.csv", days=30)
+    toml = tmp_path / "port.toml"
+    assert run(["fit", str(obs), "-o", str(toml), "--datum", "chart"]) == 0
+    assert TideModel.load(toml).datum == "chart"
+    assert run(["fit", str(obs), "-o", str(toml)]) == 0
+    assert TideModel.load(toml).datum is None and "--datum" in capsys.readouterr().err
+
+
 def test_too_short_record_gives_needed_lengths(tmp_path, capsys):
     obs = write_csv(tmp_path / "obs.csv", days=0.5, step="10min")
     assert run(["fit", str(obs)]) == 2

@@ -6,6 +6,7 @@ import io
 from pathlib import Path
 
 import numpy as np
+import pandas as pd
 import pytest
 
 from monitor.cli import main
@@ -67,9 +68,11 @@ def test_check_lists_every_problem(tmp_path, capsys):
     cfg.write_text('[[stations]]\nid = "Bad Id"\nlatitude = 91\n')
     assert main(["check", str(cfg)]) == 2
     err = capsys.readouterr().err
-    for key in ("stations[0].id", "stations[0].latitude", "stations[0].longitude", "stations[0].datums",
+    for key in ("stations[0].id", "stations[0].latitude", "stations[0].longitude",
                 "stations[0].sensors", "stations[0].constants"):
         assert key in err
+    # a station without datums is allowed: it shows its levels on the station datum and says so
+    assert "stations[0].datums" not in err
 
 
 def test_ingest_summary_and_second_run_duplicates_everything(tmp_path, capsys):
@@ -100,10 +103,32 @@ def test_export_writes_level_predicted_residual_and_flag(tmp_path, capsys):
     assert main(["export", str(cfg), "--station", "testport", "--from", "2025-10-09T00:00Z",
                  "--to", "2025-10-11T00:00Z"]) == 0
     rows = list(csv.DictReader(io.StringIO(capsys.readouterr().out)))
-    assert list(rows[0]) == ["time", "level", "predicted", "residual", "flag"] and len(rows) == 144
+    level, predicted = "level_m_above_chart_datum", "predicted_m_above_chart_datum"
+    assert list(rows[0]) == ["time", level, predicted, "residual_m", "flag"] and len(rows) == 144
     assert rows[0]["time"].endswith("Z")
     for r in rows[:5]:
-        assert float(r["residual"]) == pytest.approx(float(r["level"]) - float(r["predicted"]), abs=0.2 * mm)
+        assert float(r["residual_m"]) == pytest.approx(float(r[level]) - float(r[predicted]), abs=0.2 * mm)
+
+
+def test_export_levels_are_on_the_display_datum_and_name_it(tmp_path, capsys):
+    # Chart datum stands 1.0 m BELOW this station's datum (datums.chart = -1.0), so a level on
+    # chart datum is the stored level + 1.0 m; the residual is datum-free.
+    (tmp_path / "c.toml").write_text(
+        'mean = 2.5\n[[constituents]]\nname = "M2"\namplitude = 1.2\nphase = 0.0\n')
+    cfg = _setup(tmp_path, "c.toml")
+    data = tmp_path / "gauge.csv"
+    _gauge_file(data, 1)
+    main(["ingest", str(cfg), "--station", "testport", str(data)])
+    capsys.readouterr()
+    main(["export", str(cfg), "--station", "testport", "--from", "2025-10-09T09:00Z", "--to", "2025-10-09T12:00Z"])
+    first = next(csv.DictReader(io.StringIO(capsys.readouterr().out)))
+    t = pd.Timestamp(first["time"])
+    # the gauge file carries PORT in centimetres above the sensor zero, 0.5 m above the station datum
+    stored = PORT.predict(np.array([t.tz_convert(None).to_datetime64()]))[0] + 0.5
+    assert float(first["level_m_above_chart_datum"]) == pytest.approx(stored + 1.0, abs=1 * mm)
+    model = TideModel.load(tmp_path / "c.toml")
+    assert float(first["predicted_m_above_chart_datum"]) == pytest.approx(
+        model.predict(np.array([t.tz_convert(None).to_datetime64()]))[0] + 1.0, abs=0.1 * mm)
 
 
 def test_status_shows_rows_and_rejects(tmp_path, capsys):
@@ -144,3 +169,25 @@ def test_refit_with_too_little_history_says_how_much_is_needed(tmp_path, capsys)
     capsys.readouterr()
     assert main(["refit", str(cfg), "--station", "testport"]) == 2
     assert "fit_min_days = 20 needed" in capsys.readouterr().err
+
+
+def test_status_shows_every_level_on_the_display_datum(tmp_path, capsys):
+    # status gave the level on both datums and the next high water on the station datum.
+    from monitor.store import Store
+
+    (tmp_path / "c.toml").write_text(
+        'mean = 2.5\n[[constituents]]\nname = "M2"\namplitude = 1.2\nphase = 0.0\n')
+    cfg = _setup(tmp_path, "c.toml")
+    with Store.open(tmp_path / "q.db") as store:
+        idx = pd.DatetimeIndex([pd.Timestamp(T0, unit="s", tz="UTC")])
+        store.write_derived("testport", pd.DataFrame({"observed": [3.0], "predicted": [2.8], "residual": [0.2],
+                                                      "smoothed": [0.2]}, index=idx))
+        store.write_forecast("testport", {"hw_t": T0 + 3600, "made_t": T0, "predicted_high": 3.5,
+                                          "residual_now": 0.2, "forecast": 3.7, "lower": 3.5, "upper": 4.0,
+                                          "coverage": 0.9, "note": "test"})
+    assert main(["status", str(cfg)]) == 0
+    out = capsys.readouterr().out
+    # chart datum stands 1.0 m below this station's datum: every level shown is 1.0 m higher
+    assert "4.000 m above chart datum" in out and "3.800 m above chart datum" in out
+    assert "4.700 m above chart datum" in out and "range 4.50 to 5.00 m" in out
+    assert "m above station datum" not in out

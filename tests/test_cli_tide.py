@@ -1,5 +1,6 @@
 """Command line: predict, table and datums (run in-process through monitor.cli.main)."""
 import json
+import re
 
 import numpy as np
 import pandas as pd
@@ -179,3 +180,100 @@ def _table_rows(out):
         if m:
             rows.append((m.group(1), m.group(2), float(m.group(3)), m.group(4)))
     return rows
+# --------------------------------------------------------------------------- one display datum per station
+
+STATION_CONFIG = """\
+[store]
+path = "q.db"
+[[stations]]
+id = "harbour"
+name = "Harbour (invented)"
+latitude = 54.0
+longitude = -10.0
+tz = "Europe/Dublin"
+constants = "{constants}"
+datums = {{ chart = 1.0 }}   # chart datum stands 1.0 m above the station datum (invented)
+[stations.sensors.primary]
+units = "m"
+"""
+
+
+def _station(tmp_path, constants_text, datums="{ chart = 1.0 }"):
+    (tmp_path / "k.toml").write_text(constants_text)
+    cfg = tmp_path / "config.toml"
+    cfg.write_text(STATION_CONFIG.format(constants="k.toml").replace("{ chart = 1.0 }", datums))
+    return cfg
+
+
+def _heights(out):
+    rows = [re.search(r"\s(HW|LW)\s+(-?\d+\.\d\d)$", line) for line in out.splitlines()]
+    return [float(m.group(2)) for m in rows if m]
+
+
+def test_table_for_a_station_is_on_its_display_datum(capsys, tmp_path, constants):
+    # The file's levels are on the station datum; chart datum is 1.0 m above it, so every
+    # height printed for the station is 1.0 m below the file's own (by hand, no shared code).
+    cfg = _station(tmp_path, 'datum = "station"\n' + CONSTANTS)
+    _, plain, _ = _run(capsys, "table", constants, "--days", "2", "--start", "2025-03-01")
+    code, out, _ = _run(capsys, "table", "--config", cfg, "--station", "harbour", "--days", "2",
+                        "--start", "2025-03-01")
+    assert code == 0 and "heights [m] above chart datum" in out
+    assert np.allclose(_heights(out), np.array(_heights(plain)) - 1.0, atol=0.006)
+
+
+def test_predict_and_datums_for_a_station_are_on_its_display_datum(capsys, tmp_path, constants):
+    cfg = _station(tmp_path, 'datum = "station"\n' + CONSTANTS)
+    code, out, err = _run(capsys, "predict", "--config", cfg, "--station", "harbour",
+                          "--start", "2025-03-01T00:00Z", "--end", "2025-03-01T03:00Z", "--step", "1h")
+    rows = [l.split(",") for l in out.splitlines()[1:]]
+    expected = TideModel.load(constants).predict(pd.DatetimeIndex([r[0] for r in rows])) - 1.0
+    assert code == 0 and out.splitlines()[0] == "time,level" and "above chart datum" in err
+    assert np.allclose([float(r[1]) for r in rows], expected, atol=0.05 * mm)
+    code, out, _ = _run(capsys, "datums", "--config", cfg, "--station", "harbour", "--json", "--years", "1")
+    _, plain, _ = _run(capsys, "datums", constants, "--json", "--years", "1")
+    doc, ref = json.loads(out), json.loads(plain)
+    assert doc["reference"] == "chart datum"
+    assert doc["datums"]["MSL"] == pytest.approx(ref["datums"]["MSL"] - 1.0, abs=0.1 * mm)
+    assert doc["datums"]["GT"] == pytest.approx(ref["datums"]["GT"], abs=0.1 * mm)  # a range has no datum
+
+
+def test_constants_on_chart_datum_are_moved_by_the_offset_said_in_words(capsys, tmp_path, constants):
+    # The same tide typed on chart datum (mean 2.2 m above CD) must print as the file says,
+    # never a metre off: the station adds CD's 1.0 m to reach its station datum, then shows CD.
+    cfg = _station(tmp_path, 'datum = "chart"\n' + CONSTANTS)
+    _, plain, _ = _run(capsys, "table", constants, "--days", "1", "--start", "2025-03-01")
+    code, out, _ = _run(capsys, "table", "--config", cfg, "--station", "harbour", "--days", "1",
+                        "--start", "2025-03-01")
+    assert code == 0 and np.allclose(_heights(out), _heights(plain), atol=0.006)
+    assert "+1.000 m added" in out
+
+
+def test_constants_on_a_datum_the_station_lacks_are_refused(capsys, tmp_path):
+    cfg = _station(tmp_path, 'datum = "lat"\n' + CONSTANTS)
+    code, out, err = _run(capsys, "table", "--config", cfg, "--station", "harbour", "--days", "1")
+    assert code == 2 and out == ""
+    assert "k.toml" in err and "'lat'" in err and "harbour" in err and len(err.strip().splitlines()) == 1
+
+
+def test_station_without_a_chart_datum_uses_the_station_datum_and_says_so(capsys, tmp_path, constants):
+    cfg = _station(tmp_path, CONSTANTS, datums="{ quay = 5.0 }")
+    _, plain, _ = _run(capsys, "table", constants, "--days", "1", "--start", "2025-03-01")
+    code, out, _ = _run(capsys, "table", "--config", cfg, "--station", "harbour", "--days", "1",
+                        "--start", "2025-03-01")
+    assert code == 0 and "above station datum" in out and "no chart datum offset is configured" in out
+    assert np.allclose(_heights(out), _heights(plain), atol=0.006)
+
+
+def test_table_of_a_file_names_the_datum_it_records_or_says_it_has_none(capsys, tmp_path, constants):
+    _, out, _ = _run(capsys, "table", constants, "--days", "1")
+    assert "the file does not record which" in out
+    path = tmp_path / "cd.toml"
+    path.write_text('datum = "chart"\n' + CONSTANTS)
+    _, out, _ = _run(capsys, "table", path, "--days", "1")
+    assert "heights [m] above chart datum" in out
+
+
+def test_config_without_station_is_an_error(capsys, tmp_path):
+    cfg = _station(tmp_path, CONSTANTS)
+    code, _, err = _run(capsys, "table", "--config", cfg)
+    assert code == 2 and "--station" in err

@@ -34,6 +34,46 @@ def test_example_configuration_is_valid():
     assert cfg.stations[0].datums["chart"] == pytest.approx(1.0)
 
 
+def test_display_datum_is_chart_datum_where_its_offset_is_given():
+    cfg, errors = validate_config(base_raw(), "/tmp")
+    st = cfg.stations[0]
+    assert errors == [] and st.display_datum == "chart" and st.display_label == "chart datum"
+    assert st.display_offset == pytest.approx(-1.5) and st.datum_note == ""
+
+
+def test_station_without_chart_datum_shows_the_station_datum_and_says_so():
+    raw = base_raw()
+    del raw["stations"][0]["datums"]
+    cfg, errors = validate_config(raw, "/tmp")
+    st = cfg.stations[0]
+    assert errors == [] and st.display_datum == "station" and st.display_offset == 0.0
+    assert "no chart datum offset" in st.datum_note
+
+
+def test_display_datum_may_name_another_datum_of_the_station():
+    raw = base_raw()
+    raw["stations"][0]["datums"]["lat"] = -1.9
+    raw["stations"][0]["display_datum"] = "lat"
+    cfg, errors = validate_config(raw, "/tmp")
+    assert errors == [] and cfg.stations[0].display_offset == pytest.approx(-1.9)
+    assert cfg.stations[0].display_label == "lat datum"
+
+
+def test_display_datum_the_station_lacks_is_refused_with_its_key_path():
+    raw = base_raw()
+    raw["stations"][0]["display_datum"] = "lat"
+    cfg, errors = validate_config(raw, "/tmp")
+    assert cfg is None
+    assert any(e.startswith("stations[0].display_datum: expected a datum of this station") for e in errors)
+
+
+def test_a_datum_named_station_is_refused():
+    raw = base_raw()
+    raw["stations"][0]["datums"]["station"] = 0.3
+    _, errors = validate_config(raw, "/tmp")
+    assert any(e.startswith("stations[0].datums.station:") for e in errors)
+
+
 def test_units_become_a_scale_factor_and_offset_is_kept():
     cfg, errors = validate_config(base_raw(), "/tmp")
     assert errors == []

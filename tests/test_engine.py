@@ -23,7 +23,7 @@ hour = 3600
 T0 = pd.Timestamp("2025-10-23 00:00", tz="UTC")
 
 STATION = StationView(id="dunmerrow", name="Port Dunmerrow", tz="Europe/Dublin",
-                      datums={"chart_datum": 1.0})
+                      datums={"chart_datum": 1.0}, display_datum="chart_datum")
 SURGE = {"id": "surge", "watch": "residual_above", "hold": "10min", "band": 0.05,
          "notify": ["duty@port.example"],
          "steps": [{"name": "raised", "at": 0.30},
@@ -250,3 +250,70 @@ def test_a_new_kind_of_fault_during_an_episode_is_one_more_message(db):
     assert len(subjects) == 3
     assert "new: sensor drift on primary-backup" in subjects[1]
     assert "all clear" in subjects[2]
+
+
+# --------------------------------------------------------------------------- the all-clear waits on the forecast
+
+QUAY = {"id": "quay", "watch": "level_above", "datum": "chart_datum", "hold": 0, "settle": "10min", "band": 0.10,
+        "notify": ["volunteers@port.example"], "steps": [{"name": "boards out", "at": 4.0}]}
+
+
+def _over_then_back(start=T0):
+    """The water 0.2 m over boards out (5.0 m on the station datum) for 20 min, then 4.5 m for an hour."""
+    return frame(np.concatenate([np.full(20, 2.2), np.full(60, 1.5)]), start=start)
+
+
+def _hw(hours_ahead, upper, at=T0):
+    t = int((at + pd.Timedelta(hours=hours_ahead)).timestamp())
+    return {"hw_t": t, "made_t": int(at.timestamp()), "forecast": upper - 0.3, "lower": upper - 0.6, "upper": upper,
+            "coverage": 0.9, "note": "test"}
+
+
+def _kinds(db):
+    return [k for _, k, _ in queued(db)]
+
+
+def test_no_all_clear_while_the_next_high_waters_range_reaches_the_step(db):
+    # 5.05 m on the station datum is 4.05 m above chart datum: the top of the range reaches 4.0.
+    ctx = AlertContext(next_high_water=_hw(6, 5.05))
+    evaluate(db, STATION, rules(QUAY), _over_then_back(), now=T0 + pd.Timedelta(minutes=80), context=ctx)
+    subjects = [s for _, _, s in queued(db)]
+    assert _kinds(db) == ["alert", "alert"] and "not clear yet" in subjects[1]
+    assert list_episodes(db)[0]["closed_at"] is None
+
+
+def test_the_all_clear_comes_once_the_range_tops_out_below_the_step_and_says_by_how_much(db):
+    evaluate(db, STATION, rules(QUAY), _over_then_back(), now=T0 + pd.Timedelta(minutes=80),
+             context=AlertContext(next_high_water=_hw(6, 5.05)))
+    later = frame(np.full(10, 1.5), start=T0 + pd.Timedelta(minutes=80))
+    evaluate(db, STATION, rules(QUAY), later, now=T0 + pd.Timedelta(minutes=90),
+             context=AlertContext(next_high_water=_hw(6, 4.85, at=T0 + pd.Timedelta(minutes=80))))
+    assert _kinds(db) == ["alert", "alert", "all_clear"]
+    text = next(db.query("SELECT text FROM outbox WHERE kind = 'all_clear'"))["text"]
+    # the range tops out at 3.85 m above chart datum, 0.15 m below boards out at 4.00 m
+    assert "0.15 m below boards out (4.00 m above chart datum)" in text
+
+
+def test_a_high_water_beyond_the_horizon_does_not_hold_the_all_clear(db):
+    evaluate(db, STATION, rules({**QUAY, "clear_horizon": "4h"}), _over_then_back(),
+             now=T0 + pd.Timedelta(minutes=80), context=AlertContext(next_high_water=_hw(6, 5.05)))
+    assert _kinds(db) == ["alert", "all_clear"]
+
+
+def test_any_high_water_within_the_horizon_holds_it_not_only_the_next(db):
+    ctx = AlertContext(high_waters=[_hw(3, 4.6), _hw(10, 5.2)])
+    evaluate(db, STATION, rules(QUAY), _over_then_back(), now=T0 + pd.Timedelta(minutes=80), context=ctx)
+    assert _kinds(db) == ["alert", "alert"]
+
+
+def test_not_clear_yet_is_said_once_per_episode(db):
+    ctx = AlertContext(next_high_water=_hw(6, 5.05))
+    evaluate(db, STATION, rules(QUAY), _over_then_back(), now=T0 + pd.Timedelta(minutes=80), context=ctx)
+    more = frame(np.full(30, 1.5), start=T0 + pd.Timedelta(minutes=80))
+    evaluate(db, STATION, rules(QUAY), more, now=T0 + pd.Timedelta(minutes=110), context=ctx)
+    assert _kinds(db) == ["alert", "alert"]
+
+
+def test_without_a_forecast_the_all_clear_goes_as_before(db):
+    evaluate(db, STATION, rules(QUAY), _over_then_back(), now=T0 + pd.Timedelta(minutes=80))
+    assert _kinds(db) == ["alert", "all_clear"]

@@ -8,7 +8,7 @@ from alerts.message import CAUTION, build_email, clean_header, compose_alert, co
 from alerts.rules import Event, Rule, Step, StationView
 
 STATION = StationView(id="dunmerrow", name="Port Dunmerrow", tz="Europe/Dublin",
-                      datums={"chart_datum": 1.0})
+                      datums={"chart_datum": 1.0}, display_datum="chart_datum")
 RULE = Rule(id="surge", watch="residual_above", hold=600, settle=600, band=0.05,
             notify=("duty@port.example",), steps=(Step("raised", 0.3), Step("high", 0.6)))
 T = 1761220800  # 2025-10-23 12:00 UTC = 13:00 IST (Irish summer time, UTC+1)
@@ -34,8 +34,8 @@ def test_text_gives_local_time_with_zone_and_utc():
 
 def test_text_shows_observed_predicted_residual_and_trend():
     _, text, _ = opened()
-    assert "Observed level" in text and "4.71 m" in text
-    assert "Predicted tide" in text and "4.05 m" in text
+    assert "Observed level" in text and "3.71 m" in text   # on chart datum, 1.0 m above the station datum
+    assert "Predicted tide" in text and "3.05 m" in text
     assert "+0.66 m" in text
     assert "+0.12 m" in text
 
@@ -43,7 +43,7 @@ def test_text_shows_observed_predicted_residual_and_trend():
 def test_text_shows_next_high_water_with_its_uncertainty():
     _, text, _ = opened()
     line = next(ln for ln in text.splitlines() if "Next high water forecast" in ln)
-    assert "5.10 m above station datum at 2025-10-23 19:00 IST" in line and "\u00b1 0.15 m" in line
+    assert "4.10 m above chart datum at 2025-10-23 19:00 IST" in line and "\u00b1 0.15 m" in line
 
 
 def test_caution_is_in_both_bodies():
@@ -58,6 +58,43 @@ def test_level_rule_reports_on_its_datum():
     subject, text, _ = compose_alert(STATION, rule, Event("opened", 0, T, 4.1), FACTS)
     assert "4.10 m above chart datum" in subject
     assert "3.71 m above chart datum" in text  # observed 4.71 m on station datum, CD 1.0 m above
+
+
+def test_surge_rule_email_shows_every_level_on_the_display_datum():
+    # The surge rule watches a datum-free residual; its email still shows the levels, and they
+    # must be on the same datum as the quay rule's (chart datum 1.0 m above the station datum).
+    _, text, html = opened()
+    assert "3.71 m above chart datum" in text      # observed 4.71 m on the station datum
+    assert "3.05 m above chart datum" in text      # predicted 4.05 m
+    assert "4.10 m above chart datum" in text      # forecast 5.10 m
+    assert "station datum" not in text and "station datum" not in html
+    assert "Levels:       metres above chart datum" in text
+
+
+def test_residual_keeps_its_sign_and_no_datum():
+    _, text, _ = opened()
+    line = next(ln for ln in text.splitlines() if "Residual (surge)" in ln)
+    assert "+0.66 m (observed minus predicted tide)" in line and "datum" not in line
+
+
+def test_level_rule_on_its_own_datum_is_shown_on_the_display_datum_too():
+    # An operator's datum "quay" stands 5.25 m above the station datum (quay top); a step at
+    # -0.25 m on it is 4.00 m above chart datum (5.00 - 1.00), shown with the rule's own figure.
+    station = StationView(id="d", name="Port", tz="UTC", datums={"chart": 1.0, "quay": 5.25})
+    rule = Rule(id="quay-hw", watch="level_above", datum="quay", datum_offset=5.25,
+                notify=("a@port.example",), steps=(Step("boards out", -0.25),))
+    subject, text, _ = compose_alert(station, rule, Event("opened", 0, T, -0.20), {"observed": 5.05})
+    assert "water level 4.05 m above chart datum" in subject
+    assert "at 4.00 m above chart datum (-0.25 m on quay datum)" in text
+    assert "4.05 m above chart datum" in text
+
+
+def test_station_without_chart_datum_says_its_levels_are_on_the_station_datum():
+    station = StationView(id="d", name="Port", tz="UTC", datums={},
+                          datum_note="no chart datum offset is configured for this station")
+    _, text, _ = compose_alert(station, RULE, Event("opened", 0, T, 0.4), {"observed": 4.71})
+    assert "4.71 m above station datum" in text
+    assert "no chart datum offset is configured" in text
 
 
 def test_escalation_and_all_clear_read_differently():
@@ -120,7 +157,7 @@ def test_forecast_range_from_the_residual_module_is_shown():
     hw = {"hw_t": T + 3600, "forecast": 5.2, "lower": 5.0, "upper": 5.45, "coverage": 0.9,
           "time": T + 3600, "level": 5.2, "note": "90% range from history"}
     _, text, _ = compose_alert(STATION, RULE, Event("opened", 0, T, 0.4), {"next_high_water": hw})
-    assert "5.20 m above station datum" in text and "(90% range 5.00 m to 5.45 m)" in text
+    assert "4.20 m above chart datum" in text and "(90% range 4.00 m to 4.45 m)" in text
 
 
 def test_fault_line_names_sensor_value_limit_and_local_since():
@@ -188,3 +225,13 @@ def test_attachment_not_cited_stays_an_attachment_beside_inline_images():
     assert msg.get_content_type() == "multipart/mixed"
     assert [a.get_filename() for a in msg.iter_attachments()] == ["data.csv"]
     assert msg.get_payload()[0].get_content_type() == "multipart/alternative"
+
+
+def test_a_barometer_gap_and_a_rising_surge_are_said_beside_the_forecast():
+    hw = {"time": T + 4 * 3600, "level": 5.2, "lower": 4.7, "upper": 5.9, "coverage": 0.9, "rate": 0.12,
+          "rising": 5.6, "note": "WIDE RANGE, a rule of thumb",
+          "pressure_note": "barometer silent since 2025-10-23 09:00 UTC: forecast made without the pressure tendency"}
+    _, text, _ = compose_alert(STATION, RULE, Event("opened", 0, T, 0.4), {"next_high_water": hw})
+    assert "Barometer:" in text and "without the pressure tendency" in text
+    assert "If the surge keeps rising:" in text and "4.60 m above chart datum" in text  # 5.6 m less CD's 1.0
+    assert "WIDE RANGE" in text

@@ -170,6 +170,25 @@ def test_save_then_load_round_trips(tmp_path, model):
     assert back.metadata["rms"] == 0.05
 
 
+def test_the_datum_of_the_mean_is_recorded_in_the_file(tmp_path, model):
+    m = TideModel(mean=1.0, constituents=model.constituents[:3], datum="chart")
+    m.save(tmp_path / "c.toml")
+    assert 'datum = "chart"' in (tmp_path / "c.toml").read_text()
+    assert TideModel.load(tmp_path / "c.toml").datum == "chart"
+
+
+def test_a_file_without_datum_says_none():
+    assert TideModel.from_dict({"mean": 1.0, "constituents": []}).datum is None
+
+
+def test_referred_to_moves_the_mean_and_names_the_datum(model):
+    m = TideModel(mean=2.2, constituents=model.constituents[:3], datum="chart")
+    s = m.referred_to("station", 1.0)
+    t = np.array([1.6e9, 1.7e9])
+    assert s.datum == "station" and np.allclose(s.predict(t), m.predict(t) + 1.0, atol=1e-12)
+    assert m.mean == 2.2  # the original is untouched
+
+
 def test_unknown_constituent_names_file_and_entry(tmp_path):
     path = tmp_path / "bad.toml"
     path.write_text('mean = 0.0\n[[constituents]]\nname = "M22"\namplitude = 0.1\nphase = 0\n')
@@ -183,6 +202,7 @@ def test_unknown_constituent_names_file_and_entry(tmp_path):
     ('mean = 0\n[[constituents]]\nname = "M2"\namplitude = 0.1\nphase = 0\n'
      '[[constituents]]\nname = "m2"\namplitude = 0.1\nphase = 0\n', "listed twice"),
     ("mean = = 1\n", "not valid TOML"),
+    ('mean = 0\ndatum = 3\n', "'datum' must name the datum"),
 ])
 def test_bad_files_give_clear_errors(tmp_path, text, needle):
     path = tmp_path / "c.toml"

@@ -110,8 +110,13 @@ def test_forecast_is_predicted_high_water_plus_current_residual(report, site):
     assert w.predicted == pytest.approx(float(first["level"]) - CHART, abs=1 * mm)
 
 
-def test_short_history_gives_no_range_and_says_so(report):
-    assert report.forecast.lower is None and "no uncertainty range" in report.forecast.note
+def test_short_history_gives_a_wide_range_and_says_so(report):
+    # Three days of history hold no storm: the range is the wide rule of thumb, said in words,
+    # and at least +-0.25 m plus half the surge about the forecast (monitor.surge_forecast).
+    w = report.forecast
+    assert w.method == "wide" and "WIDE RANGE" in w.note and "only 0 storms" in w.note
+    assert w.lower <= w.forecast - 0.25 - 0.5 * abs(w.residual_now) + 1 * mm
+    assert w.upper >= w.forecast + 0.25 + 0.5 * abs(w.residual_now) - 1 * mm
 
 
 def test_stored_forecast_of_the_daemon_is_preferred(site):
@@ -136,3 +141,63 @@ def test_variance_explained_of_independent_equal_parts_is_a_half():
     ib = rng.normal(0, 0.1, 20000)
     share = barometric_share(ib + rng.normal(0, 0.1, 20000), ib)
     assert share["variance_explained"] == pytest.approx(0.5, abs=0.02)
+
+
+def test_a_past_days_report_shows_the_forecast_issued_that_day_not_a_later_one(site):
+    # Reports written after the fact took "now": the 22 October report showed 27 October's forecast.
+    store, model, start, end = site
+    day_t, later_t = int(end.timestamp()) - 600, int(end.timestamp()) + 5 * 86400
+    for made, level in ((day_t, 4.30), (later_t, 3.10)):
+        store.write_forecast("skq", {"hw_t": made + 3 * 3600, "made_t": made, "predicted_high": level - 0.3,
+                                     "residual_now": 0.30, "forecast": level, "lower": level - 0.2,
+                                     "upper": level + 0.3, "coverage": 0.9, "note": "from the daemon"})
+    try:
+        report = gather_day(store, Station(), DAY, model=model, model_source="constants file",
+                            now=end + pd.Timedelta(days=6))
+    finally:
+        store.conn.execute("DELETE FROM hw_forecasts")
+    w = report.forecast
+    assert w.made_at == pd.Timestamp(day_t, unit="s", tz="UTC")
+    assert w.forecast == pytest.approx(4.30 - CHART, abs=1 * mm)
+
+
+def test_a_forecast_made_for_the_report_is_made_as_of_the_days_end(site):
+    store, model, start, end = site
+    report = gather_day(store, Station(), DAY, model=model, model_source="constants file",
+                        now=end + pd.Timedelta(days=6))
+    assert start <= report.forecast.made_at < end
+
+
+def _log_forecast(store, hw_t, made_t, forecast, lower, upper):
+    from monitor import surge_forecast as SF
+
+    SF.ensure_forecast_schema(store.db)
+    with store.transaction() as conn:
+        SF.log_forecasts(conn, "skq", [{"hw_t": hw_t, "made_t": made_t, "predicted_high": forecast - 0.1,
+                                        "residual_now": 0.1, "forecast": forecast, "lower": lower, "upper": upper,
+                                        "coverage": 0.9, "method": "conditioned", "note": "logged"}])
+
+
+def test_verification_table_shows_each_high_water_against_its_forecasts(site):
+    from alerts.report import render_day_html
+
+    store, model, start, end = site
+    base = gather_day(store, Station(), DAY, model=model, model_source="constants file", now=end)
+    high = next(w for w in base.tides if w.kind == "high" and w.observed_level is not None)
+    hw_t = int(high.predicted_time.timestamp())
+    came = high.observed_level + CHART            # on the station datum, as the daemon logs forecasts
+    # 6 h before: a range well below what came; 3 h before: one around it; 1 h before: none issued
+    _log_forecast(store, hw_t, hw_t - 6 * 3600 - 300, came - 0.5, came - 0.7, came - 0.3)
+    _log_forecast(store, hw_t, hw_t - 3 * 3600 - 200, came - 0.05, came - 0.2, came + 0.1)
+    _log_forecast(store, hw_t, hw_t - 2 * 3600 - 900, came + 0.5, came + 0.3, came + 0.7)  # 2.25 h before: neither
+    try:
+        report = gather_day(store, Station(), DAY, model=model, model_source="constants file", now=end)
+    finally:
+        store.conn.execute("DELETE FROM hw_forecast_log")
+    row = next(v for v in report.verification if v.time == high.predicted_time)
+    six, three, one = row.forecasts
+    assert (six.lead_h, three.lead_h, one) == (6, 3, None)
+    assert six.forecast == pytest.approx(came - 0.5 - CHART, abs=1 * mm)
+    assert (row.verdict(six), row.verdict(three)) == ("above", "inside")
+    html = render_day_html(report)
+    assert "forecast against what came" in html and "came above the range" in html and "none issued" in html

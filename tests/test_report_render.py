@@ -277,7 +277,7 @@ def test_next_high_water_shows_forecast_time_and_range(plain_html):
 
 def test_next_high_water_range_reaching_an_operator_level_is_marked(plain_html):
     part = _section(plain_html, "next-hw")
-    assert 'class="bad">Quay apron wet (3.60 m): forecast \u22120.03 m below it, within the range' in part
+    assert 'class="bad">Quay apron wet (3.60 m): forecast 0.03 m below it, within the range' in part
 
 
 def test_forecast_without_range_says_so():
@@ -306,11 +306,11 @@ def test_staff_diagram_is_an_inline_png(plain_html):
 
 def test_day_without_extras_says_what_is_missing():
     html = render_day_html(sample_report(PLAIN, extras=False))
-    assert "No high water forecast is available" in html
+    assert "No high water forecast was issued on this day" in html
     assert "No barometer data for this day" in html
     assert "No tide-staff session in the recent weeks" in html
 
 
 def test_email_carries_staff_diagram_by_content_id(mail):
     assert any(cid.endswith("-staff.png@quaywatch.invalid") for cid in mail.images)
-    assert "Next high water forecast\n  3.57 m at 13 Mar 10:53" in mail.text
+    assert "Next high water forecast, as last issued on this day\n  3.57 m at 13 Mar 10:53" in mail.text

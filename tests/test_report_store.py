@@ -100,6 +100,58 @@ def test_constants_in_use_are_listed(report):
     assert "constants.toml" in report.constants.source
 
 
+def test_constants_mean_is_on_the_report_datum(report):
+    # The file's mean 2.60 m is on the station datum; chart datum is 0.50 m above it.
+    assert report.constants.mean == pytest.approx(2.60 - CHART, abs=0.1 * mm)
+
+
+def test_a_level_rules_peak_is_on_the_report_datum_and_a_surges_keeps_its_sign(site):
+    config, folder, _ = site
+    with Store.open(folder / "port.db") as store:
+        from alerts.engine import ensure_alert_schema
+
+        ensure_alert_schema(store.db)
+        start, _ = day_bounds(DAY, TZ)
+        t = int(start.timestamp()) + 3600
+        rows = [("skq", "quay", "level_above", "chart", "m", t, t + 600, "apron wet", 3.95),
+                ("skq", "keel", "level_above", "station", "m", t, t + 600, "deep", 4.45),
+                ("skq", "surge", "residual_above", "station", "m", t, t + 600, "raised", 0.42)]
+        store.conn.executemany(
+            "INSERT INTO alert_episodes (station, rule, watch, datum, unit, opened_at, closed_at, top_step, peak,"
+            " messages) VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, 0)", rows)
+        try:
+            report = gather_day(store, config.stations[0], DAY)
+        finally:
+            store.conn.execute("DELETE FROM alert_episodes")
+    peaks = {a.rule: (a.peak, a.signed) for a in report.alerts}
+    assert peaks["quay"] == (pytest.approx(3.95, abs=0.1 * mm), False)            # already on chart datum
+    assert peaks["keel"] == (pytest.approx(4.45 - CHART, abs=0.1 * mm), False)    # station datum moved to chart
+    assert peaks["surge"] == (pytest.approx(0.42, abs=0.1 * mm), True)            # datum-free
+
+
+def test_report_html_names_the_datum_beside_the_levels(site):
+    from alerts.report import render_day_html
+
+    config, folder, _ = site
+    with Store.open(folder / "port.db") as store:
+        html = render_day_html(gather_day(store, config.stations[0], DAY))
+    assert "Levels in metres above chart datum" in html
+    assert "Mean level 2.100 m above chart datum" in html
+
+
+def test_display_datum_of_the_configuration_is_used(site):
+    config, folder, model = site
+    import dataclasses
+
+    station = dataclasses.replace(config.stations[0], display_datum="station")
+    with Store.open(folder / "port.db") as store:
+        report = gather_day(store, station, DAY)
+    first = report.samples.index[0]
+    assert report.datum == "station datum"
+    assert report.samples["observed"].iloc[0] == pytest.approx(
+        float(model.predict(pd.DatetimeIndex([first]))[0]) + SURGE, abs=1 * mm)
+
+
 def test_low_water_difference_of_a_shifted_record():
     times = pd.date_range("2024-03-12", periods=300, freq="6min", tz="UTC")
     level = pd.Series(2.0 + np.cos(np.linspace(0, 4 * np.pi, 300)), index=times)

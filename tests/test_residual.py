@@ -98,23 +98,6 @@ def test_cycle_with_a_long_gap_has_no_skew_surge():
     assert not np.any(np.isclose(ss["hw_t"], round(2 * M2_PERIOD / 2)))
 
 
-def test_forecast_without_enough_history_says_so():
-    hist = pd.Series(0.1, index=_index(3 * 144, 10))  # three days
-    fc = R.forecast_high_water(0, 0.4, 3 * hour, 2.0, hist, min_history_days=14)
-    assert fc["forecast"] == pytest.approx(2.4) and fc["lower"] is None
-    assert "only 3.0 days" in fc["note"]
-
-
-def test_forecast_range_is_the_quantiles_of_the_residual_change():
-    rng = np.random.default_rng(1)
-    n = 60 * 144
-    hist = pd.Series(np.cumsum(rng.normal(0, 0.01, n)), index=_index(n, 10))
-    fc = R.forecast_high_water(0, 0.2, 2 * hour, 2.0, hist, min_history_days=14, coverage=0.9)
-    d = hist.to_numpy()[12:] - hist.to_numpy()[:-12]
-    lo, hi = np.quantile(d, [0.05, 0.95])  # numpy quantile, type 7 (Hyndman & Fan 1996)
-    assert fc["lower"] == pytest.approx(2.2 + lo, abs=0.01 * mm) and fc["upper"] == pytest.approx(2.2 + hi, abs=0.01 * mm)
-
-
 def test_pressure_is_interpolated_and_not_carried_across_gaps():
     p = pd.Series([1000.0, 1010.0, 1020.0], index=pd.DatetimeIndex(["2025-01-01T00:00Z", "2025-01-01T00:30Z",
                                                                      "2025-01-01T06:00Z"]))
@@ -159,15 +142,6 @@ def test_rise_inside_a_double_low_water_has_no_skew_surge():
     ss = R.skew_surges(_through(DOUBLE_LOW, t, raise_by=0.2), _turning(DOUBLE_LOW))
     assert ss["hw_t"].tolist() == [6 * hour, int(19.5 * hour)]
     assert ss["skew_surge"].to_numpy() == pytest.approx(0.2, abs=1 * mm)
-
-
-def test_forecast_with_history_shorter_than_the_lead_time_gives_no_range():
-    # design notes: the range comes from pairs of residuals one lead time apart; two hours of
-    # history hold none three hours apart
-    hist = pd.Series(0.1, index=_index(13, 10))
-    fc = R.forecast_high_water(0, 0.2, 3 * hour, 2.0, hist, min_history_days=0)
-    assert fc["forecast"] == pytest.approx(2.2) and fc["lower"] is None
-    assert "only 0 pairs" in fc["note"]
 
 
 def test_next_high_water_at_a_double_high_water_is_the_higher_peak():
@@ -232,3 +206,14 @@ def test_skew_surge_at_a_double_high_water_port_from_the_predicted_stands():
     # a 0.4 m bump on a peak no higher than the stand's high water: the skew surge is 0.4 m
     # less what the second peak stands below the first (at most 0.16 m here), never millimetres
     assert (doubles["skew_surge"] > 0.2).all() and len(doubles) >= 5
+def test_high_waters_within_a_horizon_one_per_stand():
+    # the double high water counts once, at its higher peak; the next one always comes back
+    t = pd.to_datetime(["2025-10-20T02:00Z", "2025-10-20T08:00Z", "2025-10-20T10:00Z",
+                        "2025-10-20T14:30Z", "2025-10-20T20:30Z", "2025-10-21T09:00Z"])
+    ext = pd.DataFrame({"time": t, "level": [0.5, 3.1, 3.3, 0.6, 3.2, 3.0],
+                        "kind": ["low", "high", "high", "low", "high", "high"]})
+    now = pd.Timestamp("2025-10-20T03:00Z")
+    got = R.high_waters_within(ext, now, now + pd.Timedelta(hours=18))
+    assert list(got["time"]) == [t[2], t[4]] and list(got["level"]) == [3.3, 3.2]
+    got = R.high_waters_within(ext, now, now + pd.Timedelta(hours=1))
+    assert list(got["time"]) == [t[2]]

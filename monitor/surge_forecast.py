@@ -1,0 +1,642 @@
+"""The next high water forecast, with a range conditioned on the storm now.
+
+The forecast of a high water is its predicted level plus a forecast of what the weather will
+add to it: the *skew surge*, the highest observed level of the tidal cycle minus the
+predicted high water (Williams et al. 2016), which is what a reader compares the forecast
+with afterwards. From the state now (the smoothed residual ``r``, its rate over the last
+three hours, and where a barometer reports, the pressure tendency over the same three
+hours) and the lead time ``L``, the change ``y = skew surge - r`` is forecast by a
+location-scale regression with a range from *locally weighted (normalised) split conformal
+prediction* (Lei et al. 2018, sec. 5.2; Papadopoulos et al. 2008):
+
+- centre ``c(x)``: least squares of ``y`` on ``1, L, r, r L, rate L`` (and ``tendency L``);
+- scale ``s(x)``: least squares of ``|y - c(x)|`` on ``1, sqrt(L), |r|, |r| sqrt(L), |rate| L``
+  (and ``|tendency| L``), floored at 1 cm;
+- the range: ``c(x) + q_lo s(x)`` to ``c(x) + q_hi s(x)``, where ``q_lo``, ``q_hi`` are the
+  finite-sample conformal quantiles of the scores ``(y - c) / s`` computed out of fold
+  (five contiguous blocks of the history, each scored by a fit to the others). The scores
+  are taken separately for storm and calm states and for bands of lead time, so the range
+  is calibrated *in storm conditions*, not only on average (Mondrian conformal prediction,
+  Vovk et al. 2005, ch. 4).
+
+A state is a storm state when ``|r| > 0.3 m`` or the residual rises faster than 0.1 m/h.
+With fewer storms in the history than asked for (``residual.forecast_min_storms``) the
+spread cannot be learnt: the range is then a deliberately wide rule of thumb (today's
+unconditioned spread widened by half the surge and by its 3-hour rate kept for the whole
+lead time, both ways), and the forecast says so in words. ``benchmarks/bench_forecast.py``
+measures both on invented storms against the unconditioned method.
+
+Pure functions on numpy/pandas (UTC times, metres, hPa); the daemon reads the store and
+calls these (the store glue is at the end of this module).
+
+References
+----------
+Lei, J., G'Sell, M., Rinaldo, A., Tibshirani, R. J., Wasserman, L. (2018). Distribution-free
+predictive inference for regression. J. Am. Stat. Assoc. 113(523), 1094-1111.
+Papadopoulos, H., Gammerman, A., Vovk, V. (2008). Normalized nonconformity measures for
+regression conformal prediction. Proc. IASTED AIA 2008, 64-69.
+Vovk, V., Gammerman, A., Shafer, G. (2005). Algorithmic Learning in a Random World. Springer.
+Williams, J., Horsburgh, K. J., Williams, J. A., Proctor, R. N. F. (2016). Tide and skew surge
+independence: new insights for flood risk. Geophys. Res. Lett. 43.
+Hyndman, R. J., Fan, Y. (1996). Sample quantiles in statistical packages. Am. Stat. 50
+(type 7, numpy's default: the unconditioned method's quantiles).
+"""
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass, field
+
+import numpy as np
+import pandas as pd
+
+#: Storm conditions: a residual this large either way [m] ...
+STORM_RESIDUAL = 0.30
+#: ... or rising faster than this [m/h] (the issue's definition, used by the benchmark too).
+STORM_RISE = 0.10
+#: Window of the residual's rate and of the pressure tendency [h]. The barometric tendency is
+#: the change over the last three hours in synoptic practice (WMO Manual on Codes, from memory).
+RATE_HOURS = 3.0
+#: Grid of the residual history [s].
+GRID_S = 600
+#: Longest lead time learnt [h] (a diurnal tide's next high water is up to 25 h away).
+MAX_LEAD_H = 25.0
+#: Upper edges of the lead-time bands whose scores are taken apart [h].
+LEAD_BANDS = (1.5, 2.5, 3.5, 4.5, 6.5, 9.5, 12.5, math.inf)
+#: Contiguous blocks of the history scored out of fold.
+FOLDS = 5
+#: Fewest scores in a (band, storm/calm) cell for its conformal quantiles.
+MIN_SCORES = 40
+#: Smallest scale [m]: a quiet night's spread never collapses below a centimetre.
+MIN_SCALE = 0.01
+#: Storm spells closer than this [s] are one storm.
+STORM_JOIN_S = 24 * 3600
+#: The wide rule of thumb: half-width added = K_RESIDUAL |r| + |rate| L (common practice, no
+#: source; checked on the invented storms of benchmarks/bench_forecast.py, where it covers
+#: about 98 % of storm cases) ...
+K_RESIDUAL = 0.5
+#: ... and, with no history at all, the unconditioned part is +-0.25 m (a rule of thumb).
+NO_HISTORY_HALF_WIDTH = 0.25
+#: Rate assumed when the rate is unknown (a gap) in the wide rule [m/h].
+UNKNOWN_RATE = STORM_RISE
+
+METHOD_CITATION = "locally weighted conformal prediction, Lei et al. 2018"
+
+
+# --------------------------------------------------------------------------- the state now
+
+@dataclass(frozen=True)
+class StormState:
+    """The storm now, as the forecast sees it.
+
+    Attributes
+    ----------
+    t : float
+        Time of the state [Unix s].
+    residual : float
+        Smoothed residual [m].
+    rate : float
+        Its change over the last ``RATE_HOURS`` per hour [m/h]; NaN when unknown.
+    tendency : float
+        Pressure change over the last ``RATE_HOURS`` per hour [hPa/h]; NaN without a barometer
+        reading now and three hours ago.
+    barometer : bool
+        The station has a barometer (so a missing tendency is a gap, said in words).
+    pressure_since : float or None
+        Time of the last pressure reading at or before ``t`` [Unix s]; None without one.
+    """
+
+    t: float
+    residual: float
+    rate: float = math.nan
+    tendency: float = math.nan
+    barometer: bool = False
+    pressure_since: float | None = None
+
+    @property
+    def storm(self) -> bool:
+        return bool(is_storm(np.array([self.residual]), np.array([self.rate]))[0])
+
+
+def is_storm(residual: np.ndarray, rate: np.ndarray) -> np.ndarray:
+    """Storm conditions: ``|residual| > 0.3 m`` or ``rate > 0.1 m/h`` (NaN rate: by size only)."""
+    r = np.asarray(residual, dtype=float)
+    q = np.asarray(rate, dtype=float)
+    return (np.abs(r) > STORM_RESIDUAL) | (np.nan_to_num(q, nan=-np.inf) > STORM_RISE)
+
+
+def on_grid(series: pd.Series | None, start: float | None = None, end: float | None = None) -> pd.Series:
+    """Means over ``GRID_S`` bins on a regular UTC grid (NaN where empty)."""
+    if series is None:
+        return pd.Series(dtype=float)
+    s = series.dropna()
+    if s.empty:
+        return pd.Series(dtype=float)
+    g = s.resample(f"{GRID_S}s", origin="epoch").mean()
+    if start is not None or end is not None:
+        lo = g.index[0] if start is None else pd.Timestamp(int(start // GRID_S * GRID_S), unit="s", tz="UTC")
+        hi = g.index[-1] if end is None else pd.Timestamp(int(end // GRID_S * GRID_S), unit="s", tz="UTC")
+        g = g.reindex(pd.date_range(lo, hi, freq=f"{GRID_S}s"))
+    return g
+
+
+def rates(grid: pd.Series, hours: float = RATE_HOURS) -> np.ndarray:
+    """Change over the last ``hours`` per hour of a regular grid series (NaN without both ends)."""
+    v = grid.to_numpy(dtype=float)
+    k = int(round(hours * 3600 / GRID_S))
+    out = np.full(len(v), np.nan)
+    if len(v) > k:
+        out[k:] = (v[k:] - v[:-k]) / hours
+    return out
+
+
+def storm_state(residual: pd.Series, now: float, pressure: pd.Series | None = None,
+                barometer: bool = False, max_age_s: float = 1800.0) -> StormState:
+    """The state at ``now`` from the recent smoothed residual and barometer readings.
+
+    Parameters
+    ----------
+    residual : Series
+        Smoothed residual [m], UTC index, at least the last ``RATE_HOURS`` (plus a bin).
+    now : float
+        Time of the forecast [Unix s]; the latest residual at or before it is the state's.
+    pressure : Series, optional
+        Barometer readings [hPa], UTC index.
+    barometer : bool
+        Whether the station has a barometer (a missing tendency is then a gap).
+    max_age_s : float
+        A grid bin this far from its target time does not count [s].
+    """
+    r = residual.dropna()
+    r = r[r.index <= pd.Timestamp(now, unit="s", tz="UTC")]
+    if r.empty:
+        return StormState(t=now, residual=math.nan, barometer=barometer)
+    t_now = r.index[-1].timestamp()
+    r_now = float(r.iloc[-1])
+    rate = _change(r, t_now, r_now, max_age_s)
+    tendency, since = math.nan, None
+    if pressure is not None and len(pressure.dropna()):
+        p = pressure.dropna()
+        p = p[p.index <= pd.Timestamp(now, unit="s", tz="UTC")]
+        if len(p):
+            since = p.index[-1].timestamp()
+            if t_now - since <= max_age_s:
+                tendency = _change(p, since, float(p.iloc[-1]), max_age_s)
+    return StormState(t=t_now, residual=r_now, rate=rate, tendency=tendency, barometer=barometer,
+                      pressure_since=since)
+
+
+def _change(s: pd.Series, t_now: float, v_now: float, max_age_s: float) -> float:
+    """Change per hour over the last RATE_HOURS, from the sample nearest RATE_HOURS back."""
+    back = t_now - RATE_HOURS * 3600
+    t = s.index.as_unit("ns").asi8 / 1e9
+    j = int(np.argmin(np.abs(t - back)))
+    if abs(t[j] - back) > max_age_s:
+        return math.nan
+    return (v_now - float(s.iloc[j])) / ((t_now - t[j]) / 3600.0)
+
+
+def count_storms(residual_grid: pd.Series, mask: np.ndarray | None = None) -> int:
+    """Storms in a residual history: spells of storm conditions at least an hour long,
+    spells less than a day apart counted once (common practice, no source)."""
+    if residual_grid.empty:
+        return 0
+    st = is_storm(residual_grid.to_numpy(dtype=float), rates(residual_grid))
+    if mask is not None:
+        st &= np.asarray(mask, dtype=bool)
+    if not st.any():
+        return 0
+    idx = np.flatnonzero(st)
+    breaks = np.flatnonzero(np.diff(idx) * GRID_S > STORM_JOIN_S)
+    starts = np.concatenate([[idx[0]], idx[breaks + 1]])
+    ends = np.concatenate([idx[breaks], [idx[-1]]])
+    counts = np.array([st[a:b + 1].sum() for a, b in zip(starts, ends)])
+    return int((counts * GRID_S >= 3600).sum())
+
+
+# --------------------------------------------------------------------------- learning
+
+def training_pairs(residual_grid: pd.Series, skew: pd.DataFrame, pressure_grid: pd.Series | None = None,
+                   max_lead_h: float = MAX_LEAD_H) -> pd.DataFrame:
+    """Every (state, outcome) pair of a history: for each high water with a skew surge and
+    each grid time up to ``max_lead_h`` before it, the state then and what came.
+
+    Parameters
+    ----------
+    residual_grid : Series
+        Smoothed residual on the regular ``GRID_S`` grid [m] (:func:`on_grid`).
+    skew : DataFrame
+        ``hw_t`` [Unix s] and ``skew_surge`` [m] of completed tidal cycles.
+    pressure_grid : Series, optional
+        Pressure on the same grid [hPa].
+
+    Returns
+    -------
+    DataFrame
+        ``hw_t`` [s], ``lead_h`` [h], ``residual`` [m], ``rate`` [m/h], ``tendency`` [hPa/h]
+        and ``y`` = skew surge - residual then [m]; rows with an unknown residual or rate left out.
+    """
+    cols = ["hw_t", "lead_h", "residual", "rate", "tendency", "y"]
+    if residual_grid.empty or skew is None or len(skew) == 0:
+        return pd.DataFrame(columns=cols)
+    t0 = residual_grid.index[0].timestamp()
+    n = len(residual_grid)
+    r = residual_grid.to_numpy(dtype=float)
+    rate = rates(residual_grid)
+    if pressure_grid is not None and len(pressure_grid):
+        p = pressure_grid.reindex(residual_grid.index)
+        tend = rates(p)
+    else:
+        tend = np.full(n, np.nan)
+    hw_t = skew["hw_t"].to_numpy(dtype=float)
+    ss = skew["skew_surge"].to_numpy(dtype=float)
+    ok = np.isfinite(ss)
+    hw_t, ss = hw_t[ok], ss[ok]
+    steps = int(max_lead_h * 3600 // GRID_S)
+    last = np.floor((hw_t - t0) / GRID_S).astype(np.int64)       # grid index at or before the high water
+    last = np.where(t0 + last * GRID_S >= hw_t, last - 1, last)   # the forecast is made before it
+    k = np.repeat(np.arange(len(hw_t)), steps)
+    i = np.repeat(last, steps) - np.tile(np.arange(steps), len(hw_t))
+    keep = (i >= 0) & (i < n)
+    k, i = k[keep], i[keep]
+    lead = (hw_t[k] - (t0 + i * GRID_S)) / 3600.0
+    out = pd.DataFrame({"hw_t": hw_t[k], "lead_h": lead, "residual": r[i], "rate": rate[i],
+                        "tendency": tend[i], "y": ss[k] - r[i]})
+    return out[np.isfinite(out["residual"]) & np.isfinite(out["rate"])].reset_index(drop=True)
+
+
+def _centre_design(lead, r, rate, tend, pressure: bool) -> np.ndarray:
+    cols = [np.ones_like(lead), lead, r, r * lead, rate * lead]
+    if pressure:
+        cols.append(tend * lead)
+    return np.column_stack(cols)
+
+
+def _scale_design(lead, r, rate, tend, pressure: bool) -> np.ndarray:
+    sl = np.sqrt(lead)
+    cols = [np.ones_like(lead), sl, np.abs(r), np.abs(r) * sl, np.abs(rate) * lead]
+    if pressure:
+        cols.append(np.abs(tend) * lead)
+    return np.column_stack(cols)
+
+
+def _band(lead: np.ndarray) -> np.ndarray:
+    return np.searchsorted(np.asarray(LEAD_BANDS), np.asarray(lead, dtype=float), side="left")
+
+
+def conformal_quantiles(scores: np.ndarray, coverage: float) -> tuple[float, float]:
+    """Lower and upper finite-sample conformal quantiles of scores for a central ``coverage``:
+    the ``floor((n+1) a)``-th and ``ceil((n+1)(1-a))``-th smallest, ``a = (1-coverage)/2``
+    (Lei et al. 2018, sec. 2.2, applied to each tail). +-inf when n is too small for them."""
+    z = np.sort(np.asarray(scores, dtype=float))
+    z = z[np.isfinite(z)]
+    n = len(z)
+    a = (1.0 - coverage) / 2.0
+    k_lo = int(math.floor((n + 1) * a + 1e-9))          # 1e-9: 40 * 0.95 is 38.00000000000001
+    k_hi = int(math.ceil((n + 1) * (1.0 - a) - 1e-9))
+    lo = z[k_lo - 1] if k_lo >= 1 else -math.inf
+    hi = z[k_hi - 1] if k_hi <= n else math.inf
+    return float(lo), float(hi)
+
+
+@dataclass
+class SpreadModel:
+    """A fitted location-scale model of ``y = skew surge - residual`` with conformal scores.
+
+    ``quantiles[(band, storm)]`` holds the (lower, upper) score quantiles of each lead band
+    and state kind; a missing cell means too few scores there.
+    """
+
+    pressure: bool
+    centre: np.ndarray
+    scale: np.ndarray
+    quantiles: dict = field(default_factory=dict)
+    coverage: float = 0.90
+    pairs: int = 0
+
+    def predict(self, lead_h, residual, rate, tendency=None) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+        """Lower, centre and upper forecast of ``y`` [m] (NaN where a cell has no quantiles)."""
+        lead = np.atleast_1d(np.asarray(lead_h, dtype=float))
+        r = np.broadcast_to(np.asarray(residual, dtype=float), lead.shape)
+        q = np.broadcast_to(np.asarray(rate, dtype=float), lead.shape)
+        tn = np.broadcast_to(np.asarray(np.nan if tendency is None else tendency, dtype=float), lead.shape)
+        c = _centre_design(lead, r, q, tn, self.pressure) @ self.centre
+        s = np.maximum(_scale_design(lead, r, q, tn, self.pressure) @ self.scale, MIN_SCALE)
+        band = _band(lead)
+        storm = is_storm(r, q)
+        lo = np.full(lead.shape, np.nan)
+        hi = np.full(lead.shape, np.nan)
+        for key, (ql, qh) in self.quantiles.items():
+            m = (band == key[0]) & (storm == key[1])
+            lo[m] = c[m] + ql * s[m]
+            hi[m] = c[m] + qh * s[m]
+        return np.fmin(lo, c), c, np.fmax(hi, c)
+
+
+def fit_spread(pairs: pd.DataFrame, pressure: bool = False, coverage: float = 0.90,
+               folds: int = FOLDS) -> SpreadModel | None:
+    """Fit the location-scale model and its out-of-fold conformal scores.
+
+    The history is cut into ``folds`` contiguous blocks of high waters; each block is scored
+    by a model fitted to the others (cross-conformal, Vovk 2015), then the model is fitted
+    to all of it. Scores are kept apart by lead band and by storm/calm state.
+
+    Returns None with too few pairs to fit.
+
+    References
+    ----------
+    Lei et al. (2018), sec. 5.2 (locally weighted conformal); Vovk, V. (2015). Cross-conformal
+    predictors. Ann. Math. Artif. Intell. 74, 9-28.
+    """
+    d = pairs
+    if pressure:
+        d = d[np.isfinite(d["tendency"])]
+    if len(d) < 200:
+        return None
+    lead, r = d["lead_h"].to_numpy(float), d["residual"].to_numpy(float)
+    q, tn, y = d["rate"].to_numpy(float), d["tendency"].to_numpy(float), d["y"].to_numpy(float)
+    A = _centre_design(lead, r, q, tn, pressure)
+    B = _scale_design(lead, r, q, tn, pressure)
+    order = np.unique(d["hw_t"].to_numpy(float), return_inverse=True)[1]
+    n_hw = order.max() + 1
+    fold = np.minimum(order * folds // max(n_hw, 1), folds - 1)
+    scores = np.full(len(y), np.nan)
+    for f in range(folds):
+        train, test = fold != f, fold == f
+        if train.sum() < 100 or not test.any():
+            continue
+        bc, bs = _fit_location_scale(A[train], B[train], y[train])
+        scores[test] = (y[test] - A[test] @ bc) / np.maximum(B[test] @ bs, MIN_SCALE)
+    bc, bs = _fit_location_scale(A, B, y)
+    band, storm = _band(lead), is_storm(r, q)
+    quantiles = {}
+    for b in range(len(LEAD_BANDS)):
+        for st in (False, True):
+            z = scores[(band == b) & (storm == st)]
+            z = z[np.isfinite(z)]
+            if len(z) >= MIN_SCORES:
+                quantiles[(b, st)] = conformal_quantiles(z, coverage)
+    return SpreadModel(pressure=pressure, centre=bc, scale=bs, quantiles=quantiles, coverage=coverage, pairs=len(y))
+
+
+def _fit_location_scale(A: np.ndarray, B: np.ndarray, y: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    bc = np.linalg.lstsq(A, y, rcond=None)[0]
+    bs = np.linalg.lstsq(B, np.abs(y - A @ bc), rcond=None)[0]
+    return bc, bs
+
+
+def unconditioned_quantiles(residual_grid: pd.Series, lead_s: float, coverage: float = 0.90) -> tuple | None:
+    """Today's unconditioned spread: the ``(1 -+ coverage)/2`` quantiles of ``r(t + lead) - r(t)``
+    over every t of the history [m], or None with fewer than 100 such pairs.
+
+    References
+    ----------
+    Hyndman & Fan (1996), type 7 quantiles (numpy's default).
+    """
+    vals = residual_grid.to_numpy(dtype=float)
+    steps = int(round(max(0.0, lead_s) / GRID_S))
+    if steps >= len(vals):
+        return None
+    diff = vals[steps:] - vals[:len(vals) - steps] if steps > 0 else np.zeros(np.isfinite(vals).sum())
+    diff = diff[np.isfinite(diff)]
+    if len(diff) < 100:
+        return None
+    q = np.quantile(diff, [(1 - coverage) / 2, (1 + coverage) / 2])
+    return float(q[0]), float(q[1])
+
+
+# --------------------------------------------------------------------------- forecasting
+
+@dataclass
+class SurgeForecaster:
+    """What the station's history teaches about how its surges change.
+
+    Build it with :meth:`learn` from the history; :meth:`forecast` then forecasts a high water.
+    ``models[False]`` ignores pressure, ``models[True]`` uses the pressure tendency; either is
+    None when the history holds fewer than ``min_storms`` storms (with a barometer, for the
+    second), and then the wide rule of thumb gives the range.
+    """
+
+    residual_grid: pd.Series
+    models: dict
+    storms: int
+    storms_with_pressure: int
+    min_storms: int
+    history_days: float
+    coverage: float = 0.90
+    min_history_days: float = 14.0
+    _uncond: dict = field(default_factory=dict, repr=False)
+
+    @classmethod
+    def learn(cls, residual_grid: pd.Series, skew: pd.DataFrame | None, pressure_grid: pd.Series | None = None,
+              min_storms: int = 20, coverage: float = 0.90, min_history_days: float = 14.0) -> "SurgeForecaster":
+        """Learn from a history: smoothed residual on the grid [m], skew surges of its cycles,
+        pressure on the grid [hPa] (optional)."""
+        g = residual_grid
+        days = 0.0 if len(g.dropna()) < 2 else (g.dropna().index[-1] - g.dropna().index[0]).total_seconds() / 86400
+        storms = count_storms(g)
+        with_p = 0
+        if pressure_grid is not None and len(pressure_grid.dropna()):
+            with_p = count_storms(g, np.isfinite(pressure_grid.reindex(g.index).to_numpy(dtype=float)))
+        models = {False: None, True: None}
+        if storms >= min_storms and skew is not None and len(skew):
+            pairs = training_pairs(g, skew, pressure_grid)
+            models[False] = fit_spread(pairs, pressure=False, coverage=coverage)
+            if with_p >= min_storms:
+                models[True] = fit_spread(pairs, pressure=True, coverage=coverage)
+        return cls(residual_grid=g, models=models, storms=storms, storms_with_pressure=with_p,
+                   min_storms=min_storms, history_days=days, coverage=coverage, min_history_days=min_history_days)
+
+    def ranges(self, lead_h, residual, rate, tendency=None) -> tuple:
+        """The forecast change ``y = skew surge - residual now`` for many states at once.
+
+        Returns
+        -------
+        lower, centre, upper : arrays [m]
+            Add them to the persistence forecast (predicted high water + residual now).
+        conditioned : array of bool
+            True where the conditioned method gave the range, False where the wide rule did.
+        pressure : array of bool
+            True where the pressure tendency was used.
+        """
+        lead = np.atleast_1d(np.asarray(lead_h, dtype=float))
+        r = np.broadcast_to(np.asarray(residual, dtype=float), lead.shape).copy()
+        q = np.broadcast_to(np.asarray(rate, dtype=float), lead.shape).copy()
+        tn = np.broadcast_to(np.asarray(np.nan if tendency is None else tendency, dtype=float), lead.shape).copy()
+        lo = np.full(lead.shape, np.nan)
+        hi = lo.copy()
+        c = np.zeros(lead.shape)
+        with_p = np.isfinite(tn) & (self.models.get(True) is not None)
+        for use_p in (False, True):
+            model = self.models.get(use_p)
+            m = (with_p == use_p) & np.isfinite(q)
+            if model is None or not m.any():
+                continue
+            lo[m], c[m], hi[m] = model.predict(lead[m], r[m], q[m], tn[m] if use_p else None)
+        conditioned = np.isfinite(lo) & np.isfinite(hi)
+        c[~conditioned] = 0.0
+        wide = ~conditioned
+        if wide.any():
+            base_lo, base_hi = self._base(lead[wide])
+            w = K_RESIDUAL * np.abs(r[wide]) + np.where(np.isfinite(q[wide]), np.abs(q[wide]), UNKNOWN_RATE) * lead[wide]
+            lo[wide], hi[wide] = base_lo - w, base_hi + w
+        return lo, c, hi, conditioned, with_p & conditioned
+
+    def _base(self, lead_h: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+        """Today's unconditioned spread at each lead (cached per grid step), or the fixed
+        rule-of-thumb spread without enough history."""
+        keys = np.rint(np.asarray(lead_h) * 3600 / GRID_S).astype(int)
+        lo, hi = np.empty(len(keys)), np.empty(len(keys))
+        for k in np.unique(keys):
+            if k not in self._uncond:
+                self._uncond[k] = (unconditioned_quantiles(self.residual_grid, k * GRID_S, self.coverage)
+                                   if self.history_days >= self.min_history_days else None)
+            qk = self._uncond[k] or (-NO_HISTORY_HALF_WIDTH, NO_HISTORY_HALF_WIDTH)
+            lo[keys == k], hi[keys == k] = qk
+        return lo, hi
+
+    def forecast(self, state: StormState, hw_t: float, hw_level: float) -> dict:
+        """Forecast one high water from the state now.
+
+        Parameters
+        ----------
+        state : StormState
+        hw_t, hw_level : float
+            Time [Unix s] and level [m, station datum] of the predicted high water.
+
+        Returns
+        -------
+        dict
+            ``hw_t, made_t, predicted_high, residual_now, rate, tendency, forecast, lower, upper,
+            coverage, persistence, rising, method, note, pressure_note``: levels [m, station
+            datum]; ``forecast`` the centre; ``persistence`` the predicted high water plus the
+            residual now; ``rising`` the same with the residual rising at its current rate
+            until the high water (None unless rising); ``method`` ``"conditioned"`` or ``"wide"``.
+        """
+        lead_h = max(0.0, float(hw_t) - float(state.t)) / 3600.0
+        r = float(state.residual)
+        persistence = float(hw_level) + r
+        rising = persistence + state.rate * lead_h if math.isfinite(state.rate) and state.rate > 0 else None
+        lo, c, hi, conditioned, used_p = self.ranges([lead_h], r, state.rate, state.tendency)
+        if conditioned[0]:
+            note = self._conditioned_note(state, lead_h, bool(used_p[0]))
+        else:
+            note = self._wide_note(state, lead_h)
+        return {"hw_t": int(round(hw_t)), "made_t": int(round(state.t)), "predicted_high": float(hw_level),
+                "residual_now": r, "rate": _finite(state.rate), "tendency": _finite(state.tendency),
+                "forecast": persistence + float(c[0]), "lower": persistence + float(lo[0]),
+                "upper": persistence + float(hi[0]), "coverage": self.coverage, "persistence": persistence,
+                "rising": rising, "method": "conditioned" if conditioned[0] else "wide", "note": note,
+                "pressure_note": self._pressure_note(state)}
+
+    def _wide_note(self, state: StormState, lead_h: float) -> str:
+        if self.storms < self.min_storms:
+            why = (f"only {self.storms} storm{'s' if self.storms != 1 else ''} in {self.history_days:.0f} days "
+                   f"of this station's history ({self.min_storms} needed to learn how its surges change)")
+        elif not math.isfinite(state.rate):
+            why = "the residual's rate over the last 3 h is unknown (a gap in the record)"
+        else:
+            why = "too few past cases like this one (lead time and storm state) in the history"
+        enough = self.history_days >= self.min_history_days
+        spread = ("the usual spread of the residual's change over this lead time" if enough else
+                  f"+-{NO_HISTORY_HALF_WIDTH:.2f} m (too little history for its usual spread)")
+        return (f"WIDE RANGE, a rule of thumb and not a measured one: {why}. The range is {spread}, widened "
+                f"both ways by half the surge now plus its 3-hour rate kept for the whole {lead_h:.1f} h; "
+                f"centre = predicted high water + the surge now, held")
+
+    def _conditioned_note(self, state: StormState, lead_h: float, use_p: bool) -> str:
+        parts = [f"surge {state.residual:+.2f} m", f"{'rising' if state.rate >= 0 else 'falling'} "
+                 f"{abs(state.rate):.2f} m/h over 3 h"]
+        if use_p:
+            parts.append(f"pressure {'falling' if state.tendency < 0 else 'rising'} {abs(state.tendency):.1f} hPa/h")
+        kind = "storm" if state.storm else "calm"
+        return (f"{self.coverage:.0%} range for a {lead_h:.1f} h lead, conditioned on the state now "
+                f"({', '.join(parts)}; a {kind} state): {METHOD_CITATION}, calibrated on "
+                f"{self.storms_with_pressure if use_p else self.storms} storms in {self.history_days:.0f} days "
+                f"of this station's history")
+
+    @staticmethod
+    def _pressure_note(state: StormState) -> str:
+        """Said when the station has a barometer but the forecast went without its tendency."""
+        if not state.barometer or math.isfinite(state.tendency):
+            return ""
+        if state.pressure_since is None:
+            return "no barometer reading at all: forecast made without the pressure tendency"
+        when = pd.Timestamp(state.pressure_since, unit="s", tz="UTC").strftime("%Y-%m-%d %H:%M UTC")
+        if state.t - state.pressure_since > 1800:
+            return f"barometer silent since {when}: forecast made without the pressure tendency"
+        return "no barometer reading from 3 hours ago: forecast made without the pressure tendency"
+
+
+def _finite(v: float) -> float | None:
+    return float(v) if v is not None and math.isfinite(v) else None
+
+
+# --------------------------------------------------------------------------- store glue
+
+#: Forecasts kept per high water: the first issued in each half-hour of issue time (the
+#: daemon issues one at each half hour), so a report can show what was forecast 1, 3 and
+#: 6 h before each high water of its day without keeping every pass's forecast.
+LOG_SLOT_S = 1800
+LOG_COLUMNS = ("hw_t", "made_t", "predicted_high", "residual_now", "rate", "tendency", "forecast", "lower",
+               "upper", "coverage", "persistence", "rising", "method", "note", "pressure_note")
+
+
+def ensure_forecast_schema(db) -> None:
+    """Create ``hw_forecast_log`` (every forecast kept, one per high water and half-hour slot)."""
+    if "hw_forecast_log" not in db.table_names():
+        db["hw_forecast_log"].create({
+            "station": str, "hw_t": int, "slot": int, "made_t": int, "predicted_high": float,
+            "residual_now": float, "rate": float, "tendency": float, "forecast": float, "lower": float,
+            "upper": float, "coverage": float, "persistence": float, "rising": float, "method": str,
+            "note": str, "pressure_note": str,
+        }, pk=("station", "hw_t", "slot"), if_not_exists=True)
+        db["hw_forecast_log"].create_index(["station", "made_t"], if_not_exists=True)
+
+
+def log_forecasts(conn, station: str, forecasts: list[dict]) -> None:
+    """Keep forecasts in ``hw_forecast_log`` (the first of each half-hour slot per high water)."""
+    rows = [(station, int(fc["hw_t"]), int(fc["made_t"]) // LOG_SLOT_S,
+             *[fc.get(k) for k in LOG_COLUMNS[1:]]) for fc in forecasts]
+    if rows:
+        conn.executemany(f"INSERT OR IGNORE INTO hw_forecast_log (station, hw_t, slot, {', '.join(LOG_COLUMNS[1:])}) "
+                         f"VALUES ({', '.join('?' * (len(LOG_COLUMNS) + 2))})", rows)
+
+
+def read_log(db, station: str, made_from: int, made_to: int) -> pd.DataFrame:
+    """Forecasts issued between two times [Unix s] (inclusive), oldest first."""
+    if "hw_forecast_log" not in db.table_names():
+        return pd.DataFrame(columns=list(LOG_COLUMNS))
+    return pd.read_sql_query(
+        f"SELECT {', '.join(LOG_COLUMNS)} FROM hw_forecast_log WHERE station = ? AND made_t BETWEEN ? AND ? "
+        "ORDER BY made_t, hw_t", db.conn, params=(station, int(made_from), int(made_to)))
+
+
+def read_history(conn, station: str, start: int, end: int, barometer: bool = False) -> tuple:
+    """The forecaster's history from the store: the smoothed residual and (with a barometer)
+    the usable pressure readings as ``GRID_S`` means on one regular grid, and the skew surges.
+
+    The means are taken by SQLite, so a long history is read as ten-minute bins, not samples.
+    """
+    def binned(sql: str, params: tuple) -> pd.Series:
+        rows = conn.execute(sql, params).fetchall()
+        if not rows:
+            return pd.Series(dtype=float)
+        t = np.array([r[0] for r in rows], dtype=np.int64)
+        return pd.Series(np.array([r[1] for r in rows], dtype=float), index=pd.to_datetime(t, unit="s", utc=True))
+
+    g = GRID_S
+    resid = binned(f"SELECT (t / {g}) * {g} AS b, avg(smoothed) FROM derived WHERE station = ? AND t BETWEEN ? AND ? "
+                   "AND smoothed IS NOT NULL GROUP BY b ORDER BY b", (station, int(start), int(end)))
+    skew = pd.read_sql_query("SELECT hw_t, skew_surge FROM skew_surges WHERE station = ? AND hw_t BETWEEN ? AND ? "
+                             "ORDER BY hw_t", conn, params=(station, int(start), int(end)))
+    if resid.empty:
+        return resid, skew, None
+    grid = pd.date_range(resid.index[0], resid.index[-1], freq=f"{g}s")
+    resid = resid.reindex(grid)
+    pressure = None
+    if barometer:
+        p = binned(f"SELECT (t / {g}) * {g} AS b, avg(value) FROM observations WHERE station = ? AND sensor = "
+                   "'barometer' AND t BETWEEN ? AND ? AND (flag IS NULL OR flag NOT IN (4, 9)) GROUP BY b ORDER BY b",
+                   (station, int(start), int(end)))
+        pressure = p.reindex(grid) if len(p) else None
+    return resid, skew, pressure

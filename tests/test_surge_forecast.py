@@ -1,0 +1,201 @@
+"""The next high water forecast conditioned on the storm now (monitor.surge_forecast).
+
+Reference values here share no code with the module: the law of the invented data is
+written out (normal errors whose spread grows with the storm), its quantiles come from
+scipy.stats, and the rule of thumb is worked out by hand.
+"""
+from __future__ import annotations
+
+import math
+
+import numpy as np
+import pandas as pd
+import pytest
+from scipy import stats
+
+from monitor import surge_forecast as SF
+
+mm = 1e-3
+hour = 3600.0
+T0 = 1.7e9
+
+
+def _grid(values, start=T0):
+    return pd.Series(np.asarray(values, dtype=float),
+                     index=pd.to_datetime(start + SF.GRID_S * np.arange(len(values)), unit="s", utc=True))
+
+
+# --------------------------------------------------------------------------- conformal quantiles
+
+def test_conformal_quantiles_are_the_finite_sample_order_statistics():
+    # Lei et al. (2018), sec. 2.2: with n = 39 scores and a = 0.05 per tail the lower bound is
+    # the floor(40 * 0.05) = 2nd smallest and the upper the ceil(40 * 0.95) = 38th smallest.
+    z = np.arange(39.0)[::-1]
+    assert SF.conformal_quantiles(z, 0.90) == (1.0, 37.0)
+
+
+def test_too_few_scores_give_an_unbounded_side():
+    # 18 scores cannot place a 95 % upper bound: ceil(19 * 0.95) = 19 > 18.
+    lo, hi = SF.conformal_quantiles(np.arange(18.0), 0.90)
+    assert hi == math.inf and lo == -math.inf
+
+
+# --------------------------------------------------------------------------- conditioned coverage
+
+def _invented_pairs(rng, n):
+    """States with storms among calm, and what came: y = centre + spread * N(0, 1), the
+    spread growing with the surge, its rate and the lead (an invented law)."""
+    storm = rng.random(n) < 0.25
+    r = np.where(storm, rng.uniform(0.3, 1.2, n), rng.normal(0, 0.08, n))
+    rate = np.where(storm, rng.normal(0.05, 0.12, n), rng.normal(0, 0.02, n))
+    lead = rng.uniform(0.2, 13.0, n)
+    centre = -0.03 * r * lead + 0.6 * rate * np.minimum(lead, 4)
+    spread = 0.02 + 0.02 * np.sqrt(lead) + 0.15 * np.abs(r) + 0.08 * np.abs(rate) * lead
+    y = centre + spread * rng.standard_normal(n)
+    hw = np.arange(n) // 20 * 45000.0  # twenty states per high water, one high water per 12.5 h
+    return pd.DataFrame({"hw_t": hw, "lead_h": lead, "residual": r, "rate": rate,
+                         "tendency": np.nan, "y": y}), centre, spread
+
+
+@pytest.fixture(scope="module")
+def fitted():
+    rng = np.random.default_rng(11)
+    train, _, _ = _invented_pairs(rng, 40_000)
+    test, centre, spread = _invented_pairs(rng, 40_000)
+    model = SF.fit_spread(train, pressure=False, coverage=0.90)
+    lo, c, hi = model.predict(test["lead_h"], test["residual"], test["rate"])
+    return test, centre, spread, lo, c, hi
+
+
+@pytest.mark.parametrize("kind", ["storm", "calm"])
+def test_ninety_percent_range_covers_from_both_sides(fitted, kind):
+    test, _, _, lo, _, hi = fitted
+    storm = SF.is_storm(test["residual"].to_numpy(), test["rate"].to_numpy())
+    m = storm if kind == "storm" else ~storm
+    y = test["y"].to_numpy()[m]
+    below, above = np.mean(y < lo[m]), np.mean(y > hi[m])
+    assert 0.03 <= below <= 0.07 and 0.03 <= above <= 0.07, (below, above)
+
+
+def test_range_follows_the_true_spread_of_each_state(fitted):
+    # The invented law's own 5 % and 95 % quantiles (scipy.stats.norm): the range's width tracks
+    # them state by state, so a storm's range is wide and a calm one narrow.
+    _, centre, spread, lo, _, hi = fitted
+    true_width = 2 * stats.norm.ppf(0.95) * spread
+    ratio = (hi - lo) / true_width
+    assert 0.8 < np.median(ratio) < 1.25
+    assert np.corrcoef(hi - lo, true_width)[0, 1] > 0.9
+
+
+def test_storm_range_is_wider_than_a_calm_one_at_the_same_lead(fitted):
+    test, _, _, lo, _, hi = fitted
+    storm = SF.is_storm(test["residual"].to_numpy(), test["rate"].to_numpy())
+    long = (test["lead_h"] > 5).to_numpy()
+    assert np.mean((hi - lo)[storm & long]) > 2.5 * np.mean((hi - lo)[~storm & long])
+
+
+# --------------------------------------------------------------------------- the wide rule of thumb
+
+def test_too_few_storms_give_the_wide_rule_said_in_words():
+    # A calm history: the residual wanders a few centimetres and never storms.
+    rng = np.random.default_rng(3)
+    n = 60 * 144
+    hist = _grid(0.05 * np.sin(np.arange(n) * 2 * np.pi / 700) + rng.normal(0, 0.01, n))
+    f = SF.SurgeForecaster.learn(hist, pd.DataFrame(columns=["hw_t", "skew_surge"]), min_storms=20)
+    state = SF.StormState(t=T0 + 61 * 86400, residual=0.62, rate=0.12)
+    fc = f.forecast(state, state.t + 5 * hour, 4.0)
+    assert fc["method"] == "wide" and "WIDE RANGE" in fc["note"] and "only 0 storms" in fc["note"]
+    # by hand: the history's own 5 %/95 % change over 5 h, widened by 0.5 * 0.62 + 0.12 * 5 = 0.91 m
+    v = hist.to_numpy()
+    d = v[30:] - v[:-30]
+    q5, q95 = np.quantile(d, [0.05, 0.95])
+    assert fc["forecast"] == pytest.approx(4.62, abs=0.1 * mm)
+    assert fc["lower"] == pytest.approx(4.62 + q5 - 0.91, abs=0.1 * mm)
+    assert fc["upper"] == pytest.approx(4.62 + q95 + 0.91, abs=0.1 * mm)
+
+
+def test_no_history_at_all_still_gives_a_wide_range():
+    f = SF.SurgeForecaster.learn(pd.Series(dtype=float), None)
+    fc = f.forecast(SF.StormState(t=T0, residual=0.2, rate=-0.05), T0 + 2 * hour, 3.0)
+    # +-0.25 m (rule of thumb) + 0.5 * 0.2 + 0.05 * 2 = 0.45 m either side of 3.2 m
+    assert (fc["lower"], fc["upper"]) == pytest.approx((2.75, 3.65), abs=0.1 * mm)
+    assert "too little history" in fc["note"]
+
+
+def test_a_rising_surge_gives_the_keeps_rising_figure():
+    f = SF.SurgeForecaster.learn(pd.Series(dtype=float), None)
+    up = f.forecast(SF.StormState(t=T0, residual=0.5, rate=0.1), T0 + 4 * hour, 3.0)
+    down = f.forecast(SF.StormState(t=T0, residual=0.5, rate=-0.1), T0 + 4 * hour, 3.0)
+    assert up["rising"] == pytest.approx(3.0 + 0.5 + 0.4) and down["rising"] is None
+
+
+# --------------------------------------------------------------------------- the state now
+
+def test_state_rate_is_the_change_over_three_hours():
+    r = _grid(0.05 * np.arange(30) / 6)   # rises 5 cm an hour
+    st = SF.storm_state(r, T0 + 29 * SF.GRID_S)
+    assert st.residual == pytest.approx(0.05 * 29 / 6) and st.rate == pytest.approx(0.05)
+
+
+def test_barometer_gap_falls_back_to_no_pressure_and_says_so():
+    r = _grid(np.full(30, 0.4))
+    p = pd.Series([1000.0, 999.0], index=pd.to_datetime([T0, T0 + 600], unit="s", utc=True))
+    st = SF.storm_state(r, T0 + 29 * SF.GRID_S, p, barometer=True)
+    assert math.isnan(st.tendency)
+    f = SF.SurgeForecaster.learn(pd.Series(dtype=float), None)
+    fc = f.forecast(st, st.t + 3 * hour, 3.0)
+    assert fc["pressure_note"].startswith("barometer silent since") and "without the pressure tendency" in fc["pressure_note"]
+
+
+def test_pressure_tendency_over_three_hours():
+    r = _grid(np.full(30, 0.4))
+    t = T0 + SF.GRID_S * np.arange(30)
+    p = pd.Series(1010.0 - 2.0 * (t - T0) / hour, index=pd.to_datetime(t, unit="s", utc=True))
+    st = SF.storm_state(r, t[-1], p, barometer=True)
+    assert st.tendency == pytest.approx(-2.0)
+    assert SF.SurgeForecaster._pressure_note(st) == ""
+
+
+def test_storms_are_counted_once_per_spell():
+    v = np.zeros(12 * 144)                     # twelve calm days on the 10-minute grid
+    for day, width in ((1, 12), (1.4, 12), (5, 30), (9, 3)):
+        i = int(day * 144)
+        v[i:i + width] = 0.5                   # two hours; two hours 9.6 h later; five hours; 30 minutes
+    # the first two spells are less than a day apart (one storm); the last is under an hour (none)
+    assert SF.count_storms(_grid(v)) == 2
+
+
+# --------------------------------------------------------------------------- pairs from a history
+
+def test_training_pairs_pair_each_state_with_what_came():
+    r = _grid(np.linspace(0.0, 0.9, 10 * 6 + 1))   # ten hours, rising 9 cm an hour
+    hw_t = T0 + 9.5 * hour
+    pairs = SF.training_pairs(r, pd.DataFrame({"hw_t": [hw_t], "skew_surge": [1.0]}), max_lead_h=6)
+    # grid times 9 h 20 min back to 3 h 30 min, every 10 minutes: 36 states
+    assert len(pairs) == 36
+    first = pairs.iloc[0]   # the last grid time before the high water: 9 h 20 min
+    assert first["lead_h"] == pytest.approx(10 / 60)
+    assert first["y"] == pytest.approx(1.0 - 0.09 * (9 + 20 / 60), abs=1 * mm)
+    assert first["rate"] == pytest.approx(0.09, abs=0.1 * mm)
+    assert pairs["lead_h"].max() <= 6.0 and (pairs["lead_h"] > 0).all()
+
+
+def test_unconditioned_quantiles_are_todays_method():
+    rng = np.random.default_rng(1)
+    hist = _grid(np.cumsum(rng.normal(0, 0.01, 60 * 144)))
+    d = hist.to_numpy()[12:] - hist.to_numpy()[:-12]
+    lo, hi = np.quantile(d, [0.05, 0.95])  # numpy quantile, type 7 (Hyndman & Fan 1996)
+    assert SF.unconditioned_quantiles(hist, 2 * hour) == pytest.approx((lo, hi), abs=0.01 * mm)
+    assert SF.unconditioned_quantiles(hist.iloc[:13], 3 * hour) is None  # no pairs 3 h apart
+
+
+def test_the_log_keeps_the_first_forecast_of_each_half_hour(tmp_path):
+    import sqlite_utils
+
+    db = sqlite_utils.Database(tmp_path / "s.db")
+    SF.ensure_forecast_schema(db)
+    base = {"hw_t": int(T0 + 6 * hour), "predicted_high": 3.0, "residual_now": 0.1, "lower": 2.9, "upper": 3.4}
+    made = [int(T0), int(T0 + 60), int(T0 + 1800), int(T0 + 1860)]   # two passes in each of two half hours
+    SF.log_forecasts(db.conn, "p", [{**base, "made_t": m, "forecast": 3.0 + i / 100} for i, m in enumerate(made)])
+    got = SF.read_log(db, "p", T0 - 1, T0 + hour)
+    assert list(got["made_t"]) == [int(T0), int(T0 + 1800)] and list(got["forecast"]) == [3.0, 3.02]
