@@ -220,6 +220,37 @@ def skew_surges(observed: pd.Series, extremes: pd.DataFrame, max_gap_s: float = 
     return pd.DataFrame(rows, columns=cols)
 
 
+def tide_stands(extremes: pd.DataFrame) -> pd.DataFrame:
+    """Predicted turning points as high- and low-water stands, in time order.
+
+    Returns a copy with ``t`` [s, Unix], ``stand`` (the peaks of a double high water share one)
+    and ``principal`` (the stand's high or low water of record); the dip inside a double high
+    water (the rise inside a double low water) is dropped. A table from
+    :func:`predictor.extrema.high_low` already carries ``stand`` and ``principal``; for any other
+    table of alternating turning points they are decided here from its levels.
+
+    References
+    ----------
+    NOAA (2003). Computational Techniques for Tidal Datums Handbook (glossary: double high water).
+    """
+    ext = extremes.copy()
+    ext["t"] = _secs(pd.DatetimeIndex(ext["time"]))
+    ext = ext.sort_values("t", kind="stable").reset_index(drop=True)
+    if "stand" not in ext.columns or "principal" not in ext.columns:
+        # rows of one kind in a row are one stand already (a table that left the dip out)
+        high = (ext["kind"] == "high").to_numpy()
+        level = ext["level"].to_numpy(dtype=float)
+        run = np.concatenate([[0], np.cumsum(high[1:] != high[:-1])]) if len(ext) else np.zeros(0, int)
+        key = np.where(high, level, -level)
+        rep = pd.Series(key).groupby(run).idxmax().to_numpy()
+        stand, principal, dip = classify_stands(ext["t"].to_numpy()[rep], level[rep], high[rep])
+        ext["stand"] = stand[run]
+        ext["principal"] = np.isin(np.arange(len(ext)), rep[principal])
+        ext = ext[~dip[run]].reset_index(drop=True)
+    ext["principal"] = ext["principal"].astype(bool)
+    return ext
+
+
 def next_high_water(extremes: pd.DataFrame, after: pd.Timestamp) -> pd.Series | None:
     """The next predicted high water after ``after``: a row of ``extremes`` (``time``, ``level``).
 
@@ -248,7 +279,7 @@ def high_waters_within(extremes: pd.DataFrame, after: pd.Timestamp, until: pd.Ti
         return pd.DataFrame({"time": pd.DatetimeIndex([], tz="UTC"), "level": np.zeros(0)})
     out = highs.loc[highs.groupby("stand", sort=False)["level"].idxmax(), ["time", "level"]]
     out = out.sort_values("time").reset_index(drop=True)
-    keep = (out["time"] <= pd.Timestamp(until)).to_numpy()
+    keep = (out["time"] <= pd.Timestamp(until)).to_numpy().copy()
     keep[0] = True
     return out[keep]
 
