@@ -251,11 +251,24 @@ class _Profiled:
             return -ll if np.isfinite(ll) else _INFEASIBLE
 
         opts = {"xatol": 1e-6, "fatol": 1e-8, "maxiter": 4000}
+        start = np.asarray(start, float)
+        if nll(start) >= _INFEASIBLE / 2:
+            start = self._feasible_start(nll, start)
         res = optimize.minimize(nll, start, method="Nelder-Mead", options=opts)
-        if res.fun >= _INFEASIBLE / 2:
-            res2 = optimize.minimize(nll, self._free(self._theta), method="Nelder-Mead", options=opts)
-            res = res2 if res2.fun < res.fun else res
         return -float(res.fun), res.x
+
+    def _feasible_start(self, nll, start):
+        """The best of a grid of (log scale, shape) around ``start`` where the likelihood is
+        finite: far from the maximum, a fixed return level can put data outside the support
+        of the distribution a start implies, and Nelder-Mead cannot leave a flat penalty."""
+        best, best_v = start, nll(start)
+        for xi in np.linspace(-1.0, 1.4, 25):
+            for dls in np.linspace(-2.0, 2.0, 17):
+                cand = np.array([start[0] + dls, xi])
+                v = nll(cand)
+                if v < best_v:
+                    best, best_v = cand, v
+        return best
 
     def _bound(self, prof, x0, step, crit, max_steps=40):
         """Where ``loglik - prof(x)`` first exceeds ``crit`` going from ``x0`` by ``step``.
