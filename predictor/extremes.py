@@ -522,13 +522,14 @@ def _gev_loglik(x: np.ndarray, mu: float, sigma: float, xi: float) -> float:
     if not sigma > 0:
         return -np.inf
     w = (x - mu) / sigma
-    if abs(xi) < 1e-9:
-        return float(-x.size * math.log(sigma) - np.sum(w) - np.sum(np.exp(-w)))
-    a = 1.0 + xi * w
-    if np.any(a <= 0):
-        return -np.inf
-    la = np.log(a)
-    return float(-x.size * math.log(sigma) - (1.0 + 1.0 / xi) * np.sum(la) - np.sum(np.exp(-la / xi)))
+    with np.errstate(over="ignore"):  # far from the data the likelihood is 0: -inf
+        if abs(xi) < 1e-9:
+            return float(-x.size * math.log(sigma) - np.sum(w) - np.sum(np.exp(-w)))
+        a = 1.0 + xi * w
+        if np.any(a <= 0):
+            return -np.inf
+        la = np.log(a)
+        return float(-x.size * math.log(sigma) - (1.0 + 1.0 / xi) * np.sum(la) - np.sum(np.exp(-la / xi)))
 
 
 def _gpd_loglik(y: np.ndarray, sigma: float, xi: float) -> float:
