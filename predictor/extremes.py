@@ -804,6 +804,15 @@ class JointFit(PotFit):
     extremal index ``theta`` (storms per exceedance) turns cycles into independent events
     (Coles 2001, sec. 5.3.2).
 
+    Limits, measured on the invented port's 40-year histories (sample_feeds/decades.py, 40
+    histories of 40 years with different tidal years): each storm counts once, at its peak
+    skew surge, so a storm's neighbouring cycles are not counted; and the profile likelihood
+    covers the GPD's scale and shape and the storm rate, while the frequencies below the
+    threshold are taken as known. Above 10 years the 95 % band covered the true level in 92 to
+    100 % of histories; at 2 and 5 years, where the frequencies below the threshold decide the
+    level, the estimate ran 1 to 2 cm low with a band only 1 to 4 cm wide, and covered 72 and
+    80 %. Show the annual-maxima route beside it (as the design asks) for short periods.
+
     Attributes
     ----------
     tide_levels, tide_weights : numpy.ndarray
