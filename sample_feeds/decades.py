@@ -26,8 +26,8 @@ The level on the station datum [m] at hourly time t is::
 Truth. The true trend is ``rise``. The true return levels are those of the annual maximum of
 the hourly level with the rise frozen at the epoch (a stationary sea at the epoch's mean sea
 level, on the current station datum). They are computed by conditional Monte Carlo: background
-years (tide from a pool of 19 consecutive years, so a whole nodal cycle, plus fresh anomaly,
-weather and sensor noise) are simulated, and for each the probability that no storm lifts the
+years (tide from a pool of 57 consecutive years about the epoch, three nodal cycles, plus fresh
+anomaly, weather and sensor noise) are simulated, and for each the probability that no storm lifts the
 level over z is integrated over the storm size exactly::
 
     P(annual max <= z) = E_years[ 1{background max <= z} exp(-rate E_t0[ S_X(x*(z, t0)) ]) ]
