@@ -227,7 +227,7 @@ def _read_batches(path: Path, size: int):
 
 
 def ingest_file(store, sensor, path: Path, progress=None, batch_size: int = INGEST_BATCH,
-                first_reject: list | None = None):
+                first_reject: list | None = None, max_ahead: float | None = None):
     """Backfill one file into the store.
 
     Returns
@@ -235,6 +235,8 @@ def ingest_file(store, sensor, path: Path, progress=None, batch_size: int = INGE
     (BatchResult, int or None)
         Summed counts, and the earliest time read [s] (None when no line was read).
         When ``first_reject`` is a list, the first rejected line is appended to it.
+        Lines stamped more than ``max_ahead`` [s] ahead of the clock are rejected
+        (the station's ``qc.future_tolerance``; None: not checked).
     """
     from monitor.parse import parse_lines
     from monitor.store import EMPTY_BATCH
@@ -244,7 +246,8 @@ def ingest_file(store, sensor, path: Path, progress=None, batch_size: int = INGE
     first_t = None
     label = f"ingest:{sensor.station}:{path.name}"
     for lines, pos in _read_batches(path, batch_size):
-        parsed = parse_lines(lines, sensor.format, time.time(), range(lineno + 1, lineno + 1 + len(lines)))
+        parsed = parse_lines(lines, sensor.format, time.time(), range(lineno + 1, lineno + 1 + len(lines)),
+                             max_ahead)
         lineno += len(lines)
         res = store.write_batch(sensor.station, sensor.role, parsed.t, parsed.value, parsed.time_source,
                                 parsed.rejects, feed=label, skipped=parsed.skipped)
@@ -295,13 +298,15 @@ def cmd_ingest(args: argparse.Namespace) -> int:
             last_print[0] = time.monotonic()
             print(f"{path.name}: {lines:,} lines read", file=sys.stderr)
 
+    from monitor.daemon import future_tolerance
     from monitor.store import EMPTY_BATCH
 
     grand = EMPTY_BATCH
     with _store(cfg, create=True) as store:
         for p in paths:
             first_reject: list = []
-            res, first_t = ingest_file(store, sensor, p, progress, first_reject=first_reject)
+            res, first_t = ingest_file(store, sensor, p, progress, first_reject=first_reject,
+                                       max_ahead=future_tolerance(st))
             if tty:
                 sys.stderr.write("\n")
             print(f"{p}: {res.read:,} rows read, {res.stored:,} stored, {res.duplicates:,} duplicates, "

@@ -46,6 +46,7 @@ from monitor import residual as R
 from monitor.config import Config, SensorConfig, StationConfig
 from monitor.errors import UserError
 from monitor.parse import parse_lines
+from monitor.qc import QcSettings
 from monitor.store import EMPTY_BATCH, BatchResult, Store
 
 log = logging.getLogger("monitor.daemon")
@@ -61,8 +62,15 @@ TREND_BACK = 75 * 60
 
 # --------------------------------------------------------------------------- ingest
 
+def future_tolerance(station: StationConfig | None) -> float:
+    """How far ahead of the clock a station's time stamps may be [s] (``qc.future_tolerance``)."""
+    qs = getattr(station, "qc", None) or QcSettings()
+    return float(qs.future_tolerance)
+
+
 def ingest_lines(store: Store, sensor: SensorConfig, lines: Sequence[Any], feed: str | None = None,
-                 state: dict | None = None, received: float | None = None) -> BatchResult:
+                 state: dict | None = None, received: float | None = None,
+                 max_ahead: float | None = QcSettings.future_tolerance) -> BatchResult:
     """Parse lines of one sensor and store them (with the feed checkpoint) in one transaction.
 
     Parameters
@@ -76,6 +84,11 @@ def ingest_lines(store: Store, sensor: SensorConfig, lines: Sequence[Any], feed:
         Feed name (or ingest source) recorded with the rejects; with ``state`` the checkpoint key.
     state : dict, optional
         The feed's checkpoint covering these lines.
+    max_ahead : float, optional
+        A line stamped more than this [s] after it was received goes to the reject log,
+        never into the store (the station's ``qc.future_tolerance``; QARTOD Test 1). A
+        time stamp from the future would otherwise move the processing window, the feed's
+        age and the alert rules' marks. None: not checked.
     """
     if not lines and state is None:
         return EMPTY_BATCH
@@ -88,7 +101,7 @@ def ingest_lines(store: Store, sensor: SensorConfig, lines: Sequence[Any], feed:
         texts = list(lines)
         linenos = None
         recv = now
-    parsed = parse_lines(texts, sensor.format, recv, linenos)
+    parsed = parse_lines(texts, sensor.format, recv, linenos, max_ahead)
     return store.write_batch(sensor.station, sensor.role, parsed.t, parsed.value, parsed.time_source,
                              parsed.rejects, feed=feed, state=state, skipped=parsed.skipped, now=now)
 
@@ -160,9 +173,11 @@ def refit_station(store: Store, station: StationConfig, now: float | None = None
     from predictor import harmonic_fit
 
     now = time.time() if now is None else now
-    end = store.last_time(station.id, "primary")
+    # the fit span ends at the last usable sample: one stamped in the future, or failed,
+    # would leave the span empty
+    end = store.last_time(station.id, "primary", until=int(now + future_tolerance(station)), usable=True)
     if end is None:
-        raise UserError(f"station {station.id}: no observations in {store.path} to fit")
+        raise UserError(f"station {station.id}: no usable observations in {store.path} to fit")
     span = (station.fit_span_days if span_days is None else span_days) * 86400
     obs = store.observations(station.id, "primary", end - span, end)
     obs = obs[~obs["flag"].isin((4, 9))]
@@ -335,7 +350,9 @@ class Daemon:
                 lines = fr.feed.poll()
                 if not lines:
                     continue
-                res = ingest_lines(self.store, fr.sensor, lines, fr.name, fr.feed.state())
+                rt = self.stations.get(fr.sensor.station)
+                res = ingest_lines(self.store, fr.sensor, lines, fr.name, fr.feed.state(),
+                                   max_ahead=future_tolerance(rt.cfg if rt is not None else None))
             except UserError as exc:
                 log.error("feed %s: %s", fr.name, exc)
                 continue
@@ -379,7 +396,11 @@ class Daemon:
         """
         st = rt.cfg
         levels = [r for r in st.sensors if r != "barometer"]
-        ends = [t for t in (self.store.last_time(st.id, r) for r in levels) if t is not None]
+        # Nothing stamped beyond the clock (plus the timing test's tolerance) is processed:
+        # the parser refuses such lines, and one left in the store by an older version must
+        # not drag the window (and with it the rules' clock) into the future.
+        horizon = self._horizon(rt, now)
+        ends = [t for t in (self.store.last_time(st.id, r, until=horizon) for r in levels) if t is not None]
         if not ends:
             return 0
         end_t = max(ends)
@@ -396,8 +417,22 @@ class Daemon:
             chunk_end = min(end_t, start_t + PROCESS_CHUNK - 1)
             done += self.process_window(rt, start_t, chunk_end, now, latest=chunk_end == end_t)
             self.store.set_meta(f"processed.{st.id}", str(chunk_end))
-            start_t = chunk_end + 1
+            start_t = self._next_data(st.id, levels, chunk_end, end_t)
         return done
+
+    def _horizon(self, rt: StationRuntime, now: float | None = None) -> int:
+        """The latest sample time that may be processed or show a feed alive [Unix s]: the
+        wall clock (or ``now`` when a caller gives one) plus ``qc.future_tolerance``."""
+        return int((time.time() if now is None else now) + future_tolerance(rt.cfg))
+
+    def _next_data(self, station: str, levels: list[str], after: int, end_t: int) -> int:
+        """Where the next window starts after ``after`` [Unix s]: the next second, or, across
+        a span without a level sample (a station off the air, or one line stamped decades
+        early that lowered the mark), the next sample -- so a lone sample never makes a pass
+        step through empty weeks. ``end_t + 1`` when nothing is left up to ``end_t``."""
+        nxt = [t for t in (self.store.first_time(station, r, after=after, until=end_t) for r in levels)
+               if t is not None]
+        return min(nxt) if nxt else end_t + 1
 
     def process_window(self, rt: StationRuntime, start_t: int, end_t: int, now: float | None = None,
                        latest: bool = True) -> int:
@@ -515,7 +550,10 @@ class Daemon:
         """The engine's context: the forecast dict as the residual module made it, the feed's
         age, and the equipment faults (silent, stuck, drifting, clock off)."""
         st = rt.cfg
-        last = {r: self.store.last_time(st.id, r) for r in st.sensors}
+        # A feed is alive by its usable samples only: one that failed quality control, or is
+        # stamped ahead of the clock, says nothing of the sea and must not end a silence.
+        horizon = int(now + future_tolerance(st))
+        last = {r: self.store.last_time(st.id, r, until=horizon, usable=True) for r in st.sensors}
         age = None if last.get("primary") is None else max(0.0, now - last["primary"])
         faults: list = []
         if self.diag is not None:
@@ -594,7 +632,12 @@ class Daemon:
         if not st.fit_from_history or rt.model is not None or now - rt.last_fit_try < 3600:
             return
         rt.last_fit_try = now
-        first, last = self.store.first_time(st.id), self.store.last_time(st.id)
+        horizon = int(now + future_tolerance(st))
+        last = self.store.last_time(st.id, until=horizon, usable=True)
+        # the usable record within the span a fit reads (a lone sample from decades back,
+        # a logger's reset clock, is not a history)
+        first = None if last is None else self.store.first_time(
+            st.id, after=int(last - st.fit_span_days * 86400) - 1, until=horizon, usable=True)
         if first is None or (last - first) / 86400 < st.fit_min_days:
             return
         self.refit(rt, now)

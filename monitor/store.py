@@ -29,6 +29,9 @@ import sqlite_utils
 from monitor.errors import UserError
 
 SCHEMA_VERSION = 1
+#: Aggregate QARTOD flags a sample may carry and still move anything (1 pass, 2 not
+#: evaluated, 3 suspect); the same set as ``monitor.qc.USABLE_FLAGS``.
+USABLE_SQL = "flag IN (1, 2, 3)"
 DERIVED_COLUMNS = ("observed", "predicted", "residual", "smoothed", "barometric")
 
 
@@ -373,15 +376,41 @@ class Store:
             sql, args = sql + " AND sensor = ?", args + [sensor]
         return int(self.conn.execute(sql, args).fetchone()[0])
 
-    def last_time(self, station: str, sensor: str = "primary") -> int | None:
-        row = self.conn.execute("SELECT max(t) FROM observations WHERE station = ? AND sensor = ?",
-                                (station, sensor)).fetchone()
-        return None if row[0] is None else int(row[0])
+    def last_time(self, station: str, sensor: str = "primary", *, until: int | None = None,
+                  usable: bool = False) -> int | None:
+        """Time of a sensor's latest sample [Unix s], or None.
 
-    def first_time(self, station: str, sensor: str = "primary") -> int | None:
-        row = self.conn.execute("SELECT min(t) FROM observations WHERE station = ? AND sensor = ?",
-                                (station, sensor)).fetchone()
-        return None if row[0] is None else int(row[0])
+        Parameters
+        ----------
+        until : int, optional
+            Only samples at or before this time [Unix s] (the clock plus its tolerance:
+            a sample stamped in the future is no sign of life).
+        usable : bool
+            Only samples whose aggregate flag is 1, 2 or 3 (pass, not evaluated yet,
+            suspect): a sample that failed quality control, or is missing, moves nothing.
+        """
+        sql, args = "SELECT t FROM observations WHERE station = ? AND sensor = ?", [station, sensor]
+        if until is not None:
+            sql, args = sql + " AND t <= ?", args + [int(until)]
+        if usable:
+            sql += f" AND {USABLE_SQL}"
+        # ORDER BY ... LIMIT 1 walks the primary key backwards from ``until``
+        row = self.conn.execute(sql + " ORDER BY t DESC LIMIT 1", args).fetchone()
+        return None if row is None else int(row[0])
+
+    def first_time(self, station: str, sensor: str = "primary", *, after: int | None = None,
+                   until: int | None = None, usable: bool = False) -> int | None:
+        """Time of a sensor's earliest sample [Unix s] (after ``after``, at or before ``until``,
+        only usable ones: as :meth:`last_time`), or None."""
+        sql, args = "SELECT t FROM observations WHERE station = ? AND sensor = ?", [station, sensor]
+        if after is not None:
+            sql, args = sql + " AND t > ?", args + [int(after)]
+        if until is not None:
+            sql, args = sql + " AND t <= ?", args + [int(until)]
+        if usable:
+            sql += f" AND {USABLE_SQL}"
+        row = self.conn.execute(sql + " ORDER BY t LIMIT 1", args).fetchone()
+        return None if row is None else int(row[0])
 
     def derived(self, station: str, start_t: int | None = None, end_t: int | None = None) -> pd.DataFrame:
         """Derived series (index UTC times; observed, predicted, residual, smoothed [m], barometric [m])."""
