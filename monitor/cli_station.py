@@ -41,7 +41,7 @@ def register(subparsers) -> None:
     p = subparsers.add_parser("status", help="per station: latest level, residual, feeds, rejects, constants")
     p.add_argument("config", metavar="CONFIG")
     p.add_argument("--station", metavar="ID", help="only this station")
-    p.add_argument("--rejects", type=count, default=0, metavar="N", help="also show the last N rejected lines")
+    p.add_argument("--rejects", type=count, default=0, metavar="N", help="also show the last N entries of the reject log (unreadable lines, conflicting repeats)")
     p.set_defaults(func=store_errors(cmd_status))
 
     p = subparsers.add_parser("ingest", help="backfill a station from telemetry files",
@@ -152,15 +152,25 @@ def cmd_status(args: argparse.Namespace) -> int:
     now = time.time()
     out = sys.stdout
     with _store(cfg) as store:
-        from monitor.daemon import load_model
+        from monitor.daemon import future_tolerance, load_model
 
         checkpoints = store.checkpoints()
         counts = store.reject_counts()
+        conflicts = store.reject_counts(conflicts=True)
         for st in stations:
             print(f"Station {st.id}: {st.name}  (times in {st.tz}; levels in metres)", file=out)
             rows: list[tuple[str, str]] = []
-            last = store.last_time(st.id, "primary")
+            # the last sample that counts: one that failed quality control, or stamped ahead
+            # of the clock, is no sign of life
+            last = store.last_time(st.id, "primary", until=int(now + future_tolerance(st)), usable=True)
             rows.append(("last observation", "-" if last is None else f"{_local(last, st.tz)}, {_age(now - last)}"))
+            stored_last = store.last_time(st.id, "primary")
+            if stored_last is not None and stored_last != last:
+                later = store.conn.execute(
+                    "SELECT count(*) FROM observations WHERE station = ? AND sensor = 'primary' AND t > ?",
+                    (st.id, -(2 ** 62) if last is None else last)).fetchone()[0]
+                rows.append(("unusable since", f"{later:,} later sample(s) failed quality control, are missing "
+                                               f"or are ahead of the clock (latest {_local(stored_last, st.tz)})"))
             latest = store.latest_derived(st.id)
             chart = st.datums.get("chart", 0.0)
             if latest is not None:
@@ -191,10 +201,15 @@ def cmd_status(args: argparse.Namespace) -> int:
                 lt = store.last_time(st.id, role)
                 n_obs = store.observation_count(st.id, role)
                 rows.append((f"feed {role}", f"{kind}; {when}; {n_obs:,} rows, last {_local(lt, st.tz)}; "
-                                             f"{counts.get(name, 0):,} rejected"))
+                                             f"{counts.get(name, 0):,} rejected; "
+                                             f"{conflicts.get(name, 0):,} conflicting repeats"))
             ingest_rejects = sum(n for f, n in counts.items() if f.startswith(f"ingest:{st.id}:"))
             if ingest_rejects:
                 rows.append(("ingest rejects", f"{ingest_rejects:,}"))
+            n_conflicts = store.conflict_count(st.id)
+            if n_conflicts:
+                rows.append(("conflicting repeats", f"{n_conflicts:,} line(s) repeated a stored time with "
+                                                    f"another value (first value kept; see --rejects)"))
             width = max(len(k) for k, _ in rows)
             for k, v in rows:
                 print(f"  {k.ljust(width)}  {v}", file=out)
@@ -238,6 +253,7 @@ def ingest_file(store, sensor, path: Path, progress=None, batch_size: int = INGE
         Lines stamped more than ``max_ahead`` [s] ahead of the clock are rejected
         (the station's ``qc.future_tolerance``; None: not checked).
     """
+    from monitor.daemon import row_lines
     from monitor.parse import parse_lines
     from monitor.store import EMPTY_BATCH
 
@@ -250,7 +266,8 @@ def ingest_file(store, sensor, path: Path, progress=None, batch_size: int = INGE
                              max_ahead)
         lineno += len(lines)
         res = store.write_batch(sensor.station, sensor.role, parsed.t, parsed.value, parsed.time_source,
-                                parsed.rejects, feed=label, skipped=parsed.skipped)
+                                parsed.rejects, feed=label, skipped=parsed.skipped,
+                                lines=row_lines(parsed, lines))
         if first_reject is not None and parsed.rejects and not first_reject:
             first_reject.append(parsed.rejects[0])
         if len(parsed):
@@ -310,9 +327,10 @@ def cmd_ingest(args: argparse.Namespace) -> int:
             if tty:
                 sys.stderr.write("\n")
             print(f"{p}: {res.read:,} rows read, {res.stored:,} stored, {res.duplicates:,} duplicates, "
-                  f"{res.rejected:,} rejected ({res.skipped:,} blank, comment or header lines skipped)")
+                  f"{res.conflicts:,} conflicting repeats, {res.rejected:,} rejected "
+                  f"({res.skipped:,} blank, comment or header lines skipped)")
             grand = grand + res
-            if res.rejected and not (res.stored or res.duplicates):
+            if res.rejected and not (res.stored or res.duplicates or res.conflicts):
                 r = first_reject[0] if first_reject else None
                 why = f"; first: line {r.lineno}: {r.reason}" if r is not None else ""
                 raise UserError(f"{p}: none of its {res.read:,} lines fit stations[{st.id}].sensors."
@@ -324,8 +342,8 @@ def cmd_ingest(args: argparse.Namespace) -> int:
                 store.set_meta(f"processed.{st.id}", str(first_t - 1))
     if len(paths) > 1:
         print(f"total: {grand.read:,} rows read, {grand.stored:,} stored, {grand.duplicates:,} duplicates, "
-              f"{grand.rejected:,} rejected")
-    if grand.rejected:
+              f"{grand.conflicts:,} conflicting repeats, {grand.rejected:,} rejected")
+    if grand.rejected or grand.conflicts:
         print(f"see the rejected lines with: quaywatch status {args.config} --station {st.id} --rejects 20",
               file=sys.stderr)
     return 0

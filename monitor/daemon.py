@@ -103,7 +103,15 @@ def ingest_lines(store: Store, sensor: SensorConfig, lines: Sequence[Any], feed:
         recv = now
     parsed = parse_lines(texts, sensor.format, recv, linenos, max_ahead)
     return store.write_batch(sensor.station, sensor.role, parsed.t, parsed.value, parsed.time_source,
-                             parsed.rejects, feed=feed, state=state, skipped=parsed.skipped, now=now)
+                             parsed.rejects, feed=feed, state=state, skipped=parsed.skipped, now=now,
+                             lines=row_lines(parsed, texts))
+
+
+def row_lines(parsed, texts: Sequence[Any]) -> tuple:
+    """(line numbers, texts) of the parsed rows, for the reject log's conflicting repeats."""
+    texts = [texts[i] for i in parsed.index.tolist()] if parsed.index is not None else [None] * len(parsed)
+    return parsed.lineno.tolist(), [t.decode("utf-8", "backslashreplace") if isinstance(t, bytes) else t
+                                    for t in texts]
 
 
 # --------------------------------------------------------------------------- constants

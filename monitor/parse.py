@@ -66,6 +66,7 @@ class ParsedLines:
     lineno: np.ndarray       # int64
     rejects: list
     skipped: int
+    index: np.ndarray | None = None  # int64: position of each good line in the input
 
     def __len__(self) -> int:
         return len(self.t)
@@ -183,7 +184,7 @@ def _parse_lines(texts, fmt, received, linenos, max_ahead=None) -> ParsedLines:
     m = len(idx)
     if m == 0:
         return ParsedLines(np.empty(0, np.int64), np.empty(0), np.empty(0, object), np.empty(0, np.int64),
-                           rejects, skipped)
+                           rejects, skipped, np.empty(0, np.int64))
     idx_a = np.asarray(idx, dtype=np.int64)
     reasons: list[str | None] = [None] * m
 
@@ -240,7 +241,7 @@ def _parse_lines(texts, fmt, received, linenos, max_ahead=None) -> ParsedLines:
         i = int(idx_a[j])
         rejects.append(Reject(int(linenos[i]), _clean_text(texts[i])[1].rstrip("\r\n"), reasons[j]))
     rejects.sort(key=lambda r: r.lineno)
-    return ParsedLines(t[good], value[good], source[good], linenos[idx_a[good]], rejects, skipped)
+    return ParsedLines(t[good], value[good], source[good], linenos[idx_a[good]], rejects, skipped, idx_a[good])
 
 
 def _iso(t: int) -> str:

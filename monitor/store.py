@@ -3,7 +3,9 @@
 One file per network of stations, in WAL mode (readers never block the writer). Times
 are integer Unix seconds UTC in column ``t``; levels are metres on the station datum.
 Observations are keyed by (station, sensor, t), so reading the same line twice stores it
-once. A batch of observations, its rejected lines and the feed checkpoint that covers
+once; a line that repeats a stored time with a different value (a logger re-sending
+another reading for the same minute) keeps the first value and is recorded in the reject
+log as a conflict, with both values. A batch of observations, its rejected lines and the feed checkpoint that covers
 them commit in one transaction: after a crash at any instant the store holds exactly
 the lines up to some checkpoint, and the feed resumes from that checkpoint.
 
@@ -15,6 +17,7 @@ from __future__ import annotations
 import contextlib
 import fcntl
 import json
+import logging
 import os
 import sqlite3
 import time
@@ -28,7 +31,9 @@ import sqlite_utils
 
 from monitor.errors import UserError
 
-SCHEMA_VERSION = 1
+log = logging.getLogger("monitor.store")
+
+SCHEMA_VERSION = 2
 #: Aggregate QARTOD flags a sample may carry and still move anything (1 pass, 2 not
 #: evaluated, 3 suspect); the same set as ``monitor.qc.USABLE_FLAGS``.
 USABLE_SQL = "flag IN (1, 2, 3)"
@@ -37,21 +42,28 @@ DERIVED_COLUMNS = ("observed", "predicted", "residual", "smoothed", "barometric"
 
 @dataclass(frozen=True)
 class BatchResult:
-    """What one batch did: lines read, observations stored, duplicates ignored, rejects, skipped."""
+    """What one batch did: lines read, observations stored, exact duplicates ignored,
+    rejects, skipped, and conflicting repeats (same time, another value: the first kept)."""
 
     read: int
     stored: int
     duplicates: int
     rejected: int
     skipped: int = 0
+    conflicts: int = 0
 
     def __add__(self, other: "BatchResult") -> "BatchResult":
         return BatchResult(self.read + other.read, self.stored + other.stored,
                            self.duplicates + other.duplicates, self.rejected + other.rejected,
-                           self.skipped + other.skipped)
+                           self.skipped + other.skipped, self.conflicts + other.conflicts)
 
 
-EMPTY_BATCH = BatchResult(0, 0, 0, 0, 0)
+EMPTY_BATCH = BatchResult(0, 0, 0, 0, 0, 0)
+#: ``rejects.kind`` of a conflicting repeat; unreadable lines have none.
+CONFLICT = "conflict"
+#: Two readings of one time closer than this are the same reading [m or hPa] (far below
+#: any gauge's resolution; a re-read line parses to the very same number).
+SAME_VALUE = 1e-6
 
 
 def _create_v1(db: sqlite_utils.Database) -> None:
@@ -80,8 +92,18 @@ def _create_v1(db: sqlite_utils.Database) -> None:
     db["fits"].create_index(["station", "fitted_at"], if_not_exists=True)
 
 
+def _conflicts_v2(db: sqlite_utils.Database) -> None:
+    # A conflicting repeat is kept in the reject log with the time it repeats, the value kept
+    # (the first) and the value it brought; unreadable lines leave these empty.
+    cols = db["rejects"].columns_dict
+    for name, kind in (("kind", str), ("t", int), ("kept", float), ("value", float)):
+        if name not in cols:
+            db["rejects"].add_column(name, kind)
+    db["rejects"].create_index(["station", "kind"], if_not_exists=True)
+
+
 # version -> function that brings a store at (version - 1) to version
-MIGRATIONS = {1: _create_v1}
+MIGRATIONS = {1: _create_v1, 2: _conflicts_v2}
 
 
 class Store:
@@ -202,7 +224,7 @@ class Store:
     def write_batch(self, station: str, sensor: str, t: np.ndarray, value: np.ndarray,
                     time_source: np.ndarray | None = None, rejects: list | tuple = (), *,
                     feed: str | None = None, state: dict | None = None, skipped: int = 0,
-                    now: float | None = None) -> BatchResult:
+                    now: float | None = None, lines: tuple | None = None) -> BatchResult:
         """Store parsed observations, their rejected lines and the feed checkpoint atomically.
 
         Parameters
@@ -221,11 +243,16 @@ class Store:
             Feed name; with ``state``, the checkpoint stored in the same transaction.
         state : dict, optional
             JSON-able feed state covering every line of this batch.
+        lines : (linenos, texts), optional
+            The line number and text of each row, recorded with a conflicting repeat.
 
         Returns
         -------
         BatchResult
-            Existing (station, sensor, t) rows are left alone and counted as duplicates.
+            Existing (station, sensor, t) rows are left alone: a row with the same value
+            counts as a duplicate, one with another value as a conflict, which is also
+            recorded in the reject log (``kind = 'conflict'``, the time ``t``, the value
+            ``kept`` and the ``value`` refused). Within a batch the first line wins.
 
         Notes
         -----
@@ -246,6 +273,10 @@ class Store:
             conn.executemany("INSERT OR IGNORE INTO observations (station, sensor, t, value, time_source) "
                              "VALUES (?, ?, ?, ?, ?)", rows)
             stored = conn.total_changes - before
+            conflicts = []
+            if stored < n:  # some times were there already (or twice in the batch)
+                conflicts = self._conflicts(station, sensor, np.asarray(t, dtype=np.int64),
+                                            np.asarray(value, dtype=float), lines, feed, now)
             if stored:
                 conn.execute("INSERT INTO meta(key, value) VALUES (?, ?) ON CONFLICT(key) DO UPDATE SET "
                              "value = min(CAST(value AS INTEGER), CAST(excluded.value AS INTEGER))",
@@ -253,9 +284,47 @@ class Store:
             if rej_rows:
                 conn.executemany("INSERT INTO rejects (feed, station, sensor, lineno, text, reason, at) "
                                  "VALUES (?, ?, ?, ?, ?, ?, ?)", rej_rows)
+            if conflicts:
+                conn.executemany("INSERT INTO rejects (feed, station, sensor, lineno, text, reason, at, kind, t, "
+                                 "kept, value) VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?)", conflicts)
+                log.warning("%s/%s: %d line(s) repeat a stored time with another value; the first value is "
+                            "kept (see 'quaywatch status')", station, sensor, len(conflicts))
             if feed is not None and state is not None:
                 self._put_checkpoint(feed, state, now)
-        return BatchResult(n + len(rej_rows), stored, n - stored, len(rej_rows), skipped)
+        return BatchResult(n + len(rej_rows), stored, n - stored - len(conflicts), len(rej_rows), skipped,
+                           len(conflicts))
+
+    def _conflicts(self, station: str, sensor: str, t: np.ndarray, value: np.ndarray,
+                   lines: tuple | None, feed: str | None, now: int) -> list[tuple]:
+        """Reject-log rows for the batch rows whose time is stored with another value.
+
+        Called after the batch's ``INSERT OR IGNORE``: the stored value of each time is then
+        the first one (from before, or from earlier in the batch)."""
+        uniq = np.unique(t)
+        kept: dict[int, float] = {}
+        step = 900  # bound variables per statement (SQLite's limit is 999 in old builds)
+        for i in range(0, len(uniq), step):
+            part = uniq[i:i + step].tolist()
+            kept.update(self.conn.execute(
+                f"SELECT t, value FROM observations WHERE station = ? AND sensor = ? AND t IN "
+                f"({', '.join('?' * len(part))})", (station, sensor, *part)).fetchall())
+        first = np.array([kept.get(int(x), np.nan) for x in t])
+        differ = np.flatnonzero(~(np.abs(value - first) <= SAME_VALUE))
+        # the first occurrence of a time in the batch is the row stored (or an exact duplicate)
+        unit = "hPa" if sensor == "barometer" else "m"
+        digits = 1 if unit == "hPa" else 3
+        out = []
+        for j in differ:
+            lineno = text = None
+            if lines is not None:
+                lineno = int(lines[0][j]) if lines[0][j] is not None and lines[0][j] > 0 else None
+                text = str(lines[1][j])[:500]
+            when = pd.Timestamp(int(t[j]), unit="s", tz="UTC").strftime("%Y-%m-%dT%H:%M:%SZ")
+            reason = (f"conflicting repeat of {when}: {value[j]:.{digits}f} {unit} here, {first[j]:.{digits}f} "
+                      f"{unit} stored first (the first value is kept)")
+            out.append((feed, station, sensor, lineno, text, reason, now, CONFLICT, int(t[j]),
+                        float(first[j]), float(value[j])))
+        return out
 
     def take_touched(self, station: str) -> int | None:
         """The station's processing mark, lowered below the earliest time written since.
@@ -442,20 +511,40 @@ class Store:
         return dict(zip([d[0] for d in cur.description], row)) if row else None
 
     def rejects(self, station: str | None = None, feed: str | None = None, limit: int = 100) -> pd.DataFrame:
-        """The most recent rejected lines (id, feed, station, sensor, lineno, text, reason, at)."""
-        sql, args = "SELECT id, feed, station, sensor, lineno, text, reason, at FROM rejects WHERE 1", []
+        """The most recent entries of the reject log (id, feed, station, sensor, lineno, text,
+        reason, at, kind, t, kept, value): unreadable lines, and conflicting repeats
+        (``kind = 'conflict'``, with the time repeated, the value kept and the one refused)."""
+        sql, args = ("SELECT id, feed, station, sensor, lineno, text, reason, at, kind, t, kept, value "
+                     "FROM rejects WHERE 1"), []
         if station is not None:
             sql, args = sql + " AND station = ?", args + [station]
         if feed is not None:
             sql, args = sql + " AND feed = ?", args + [feed]
         return pd.read_sql_query(sql + " ORDER BY id DESC LIMIT ?", self.conn, params=(*args, int(limit)))
 
-    def reject_counts(self, station: str | None = None) -> dict[str, int]:
-        """Feed (or ingest source) -> number of rejected lines."""
-        sql, args = "SELECT coalesce(feed, '-'), count(*) FROM rejects", ()
+    def reject_counts(self, station: str | None = None, conflicts: bool = False) -> dict[str, int]:
+        """Feed (or ingest source) -> number of unreadable lines (with ``conflicts``: of
+        conflicting repeats instead)."""
+        sql = "SELECT coalesce(feed, '-'), count(*) FROM rejects WHERE kind IS " + \
+            ("?" if conflicts else "NULL")
+        args: tuple = (CONFLICT,) if conflicts else ()
         if station is not None:
-            sql, args = sql + " WHERE station = ?", (station,)
+            sql, args = sql + " AND station = ?", args + (station,)
         return {f: int(n) for f, n in self.conn.execute(sql + " GROUP BY 1 ORDER BY 1", args)}
+
+    def conflict_count(self, station: str, sensor: str | None = None, start_t: int | None = None,
+                       end_t: int | None = None, by: str = "t") -> int:
+        """Conflicting repeats of a station (one sensor), by the time they repeat (``by="t"``)
+        or the time they were received (``by="at"``) between two times (inclusive)."""
+        col = {"t": "t", "at": "at"}[by]
+        sql, args = "SELECT count(*) FROM rejects WHERE kind = ? AND station = ?", [CONFLICT, station]
+        if sensor is not None:
+            sql, args = sql + " AND sensor = ?", args + [sensor]
+        if start_t is not None:
+            sql, args = sql + f" AND {col} >= ?", args + [int(start_t)]
+        if end_t is not None:
+            sql, args = sql + f" AND {col} <= ?", args + [int(end_t)]
+        return int(self.conn.execute(sql, args).fetchone()[0])
 
     def fits(self, station: str) -> pd.DataFrame:
         """Every fit kept for a station, newest first (without the constants text)."""
