@@ -327,7 +327,7 @@ def cmd_ingest(args: argparse.Namespace) -> int:
             if tty:
                 sys.stderr.write("\n")
             print(f"{p}: {res.read:,} rows read, {res.stored:,} stored, {res.duplicates:,} duplicates, "
-                  f"{res.conflicts:,} conflicting repeats, {res.rejected:,} rejected "
+                  f"{res.rejected:,} rejected, {res.conflicts:,} conflicting repeats "
                   f"({res.skipped:,} blank, comment or header lines skipped)")
             grand = grand + res
             if res.rejected and not (res.stored or res.duplicates or res.conflicts):
@@ -342,7 +342,7 @@ def cmd_ingest(args: argparse.Namespace) -> int:
                 store.set_meta(f"processed.{st.id}", str(first_t - 1))
     if len(paths) > 1:
         print(f"total: {grand.read:,} rows read, {grand.stored:,} stored, {grand.duplicates:,} duplicates, "
-              f"{grand.conflicts:,} conflicting repeats, {grand.rejected:,} rejected")
+              f"{grand.rejected:,} rejected, {grand.conflicts:,} conflicting repeats")
     if grand.rejected or grand.conflicts:
         print(f"see the rejected lines with: quaywatch status {args.config} --station {st.id} --rejects 20",
               file=sys.stderr)

@@ -124,7 +124,7 @@ def test_ingest_status_and_qc_count_conflicting_repeats(tmp_path, capsys):
     capsys.readouterr()
     assert main(["ingest", str(cfg), "--station", "testport", str(tmp_path / "b.csv")]) == 0
     out = capsys.readouterr().out
-    assert "3 duplicates, 2 conflicting repeats" in out
+    assert "3 duplicates, 0 rejected, 2 conflicting repeats" in out
     assert main(["status", str(cfg), "--rejects", "5"]) == 0
     out = capsys.readouterr().out
     assert "2 line(s) repeated a stored time with another value" in out
