@@ -135,7 +135,8 @@ class Store:
         path : Path
             SQLite file.
         lock : bool
-            Take the one-daemon lock (``PATH.lock``, fcntl.flock); a second holder is refused.
+            Take the one-daemon lock (``PATH.lock`` beside the file the path resolves to,
+            through any symbolic link; fcntl.flock); a second holder is refused.
         create : bool
             When false, a missing file is a UserError (for read-only verbs).
 
@@ -152,9 +153,12 @@ class Store:
                 path.parent.mkdir(parents=True, exist_ok=True)
             except OSError as exc:
                 raise UserError(f"store folder {path.parent}: cannot be created ({exc})") from None
-        lock_file = _take_lock(path) if lock else None
+        # The lock (and SQLite) go by the file's real path: a second name for the same file, a
+        # symbolic link, must meet the same lock.
+        real = path.resolve()
+        lock_file = _take_lock(real, shown=path) if lock else None
         try:
-            conn = sqlite3.connect(str(path), isolation_level=None, check_same_thread=False, timeout=30.0)
+            conn = sqlite3.connect(str(real), isolation_level=None, check_same_thread=False, timeout=30.0)
         except sqlite3.Error as exc:
             _release(lock_file)
             raise UserError(f"store {path}: cannot be opened ({exc})") from None
@@ -567,8 +571,10 @@ class Store:
 
 # ---------------------------------------------------------------------- helpers
 
-def _take_lock(path: Path):
-    lock_path = path.with_name(path.name + ".lock")
+def _take_lock(real: Path, shown: Path | None = None):
+    """Take the lock of the store whose resolved path is ``real`` (``shown`` in messages)."""
+    path = shown or real
+    lock_path = real.with_name(real.name + ".lock")
     try:
         fh = open(lock_path, "a+")
     except OSError as exc:
