@@ -121,11 +121,11 @@ def _m(v: float | None, signed: bool = False) -> str:
 
 def cmd_check(args: argparse.Namespace) -> int:
     cfg = _config(args.config)
-    from monitor.daemon import load_model
+    from monitor.daemon import preflight
 
-    for st in cfg.stations:
-        if st.constants is not None:
-            load_model(None, st)  # a broken constants file is a configuration problem too
+    # a broken constants file, or a store that could not be created, is a configuration
+    # problem too (checked without creating anything)
+    preflight(cfg)
     print(f"{args.config}: configuration is valid")
     for st in cfg.stations:
         sensors = ", ".join(f"{r} ({s.units}, feed {getattr(s.feed, 'kind', 'none')})" for r, s in st.sensors.items())

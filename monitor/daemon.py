@@ -239,6 +239,50 @@ class StationRuntime:
     predicted: "PredictionMemo | None" = field(default=None, repr=False)
 
 
+def open_feed_runtimes(cfg: Config) -> list[FeedRuntime]:
+    """Open every configured feed (from the start; the caller restores the checkpoints).
+
+    Raises
+    ------
+    UserError
+        A feed that cannot be opened (a replay file missing); those opened are closed again.
+    """
+    from monitor import feeds as feeds_mod
+
+    out: list[FeedRuntime] = []
+    try:
+        for st in cfg.stations:
+            for sensor in st.sensors.values():
+                if sensor.feed is not None:
+                    out.append(FeedRuntime(sensor.feed_name, sensor,
+                                           feeds_mod.open_feed(sensor.feed, sensor.feed_name)))
+    except BaseException:
+        for fr in out:
+            fr.feed.close()
+        raise
+    return out
+
+
+def preflight(cfg: Config) -> None:
+    """Everything ``run`` can check before it creates anything (store, lock, log file).
+
+    Every configured constants file is read and the store's path must be one the store
+    (and its lock) can be created at; a broken constants file found after the store was
+    made would leave an empty store and a lock file behind.
+
+    Raises
+    ------
+    UserError
+        Naming the file or key and what is wrong.
+    """
+    from monitor.store import check_store_path
+
+    for st in cfg.stations:
+        if st.constants is not None:
+            load_model(None, st)
+    check_store_path(cfg.store_path)
+
+
 class PredictionMemo:
     """A model's predicted tide at the sample times already asked for.
 
@@ -330,16 +374,12 @@ class Daemon:
 
     # ------------------------------------------------------------------ feeds
     def open_feeds(self) -> None:
-        """Open every configured feed and restore it from its stored checkpoint."""
-        from monitor import feeds as feeds_mod
-
-        for st in self.cfg.stations:
-            for sensor in st.sensors.values():
-                if sensor.feed is None:
-                    continue
-                feed = feeds_mod.open_feed(sensor.feed, sensor.feed_name)
-                feed.restore(self.store.checkpoint(sensor.feed_name))
-                self.feeds.append(FeedRuntime(sensor.feed_name, sensor, feed))
+        """Open every configured feed (unless given already) and restore it from its stored
+        checkpoint."""
+        if not self.feeds:
+            self.feeds = open_feed_runtimes(self.cfg)
+        for fr in self.feeds:
+            fr.feed.restore(self.store.checkpoint(fr.name))
 
     def close_feeds(self) -> None:
         for fr in self.feeds:
@@ -870,15 +910,22 @@ def setup_logging(cfg: Config, verbose: int = 0) -> None:
 
 
 def run_daemon(cfg: Config, until_exhausted: bool = False, verbose: int = 0) -> int:
-    """``quaywatch run``: lock the store, open the feeds, run the jobs, close everything."""
-    setup_logging(cfg, verbose)
-    store = Store.open(cfg.store_path, lock=True)
-    daemon = None
+    """``quaywatch run``: check what can be checked, open the feeds, lock the store, run the
+    jobs, close everything. Nothing is created before the checks pass."""
+    preflight(cfg)
+    feeds = open_feed_runtimes(cfg)
+    store = daemon = None
     try:
-        daemon = Daemon(cfg, store)
+        setup_logging(cfg, verbose)
+        store = Store.open(cfg.store_path, lock=True)
+        daemon = Daemon(cfg, store, feeds)
         daemon.open_feeds()
         return daemon.run(until_exhausted=until_exhausted)
     finally:
-        if daemon is not None:
-            daemon.close_feeds()
-        store.close()
+        for fr in feeds:
+            try:
+                fr.feed.close()
+            except Exception:  # closing must not stop the rest from closing
+                log.exception("feed %s: close failed", fr.name)
+        if store is not None:
+            store.close()

@@ -571,6 +571,44 @@ class Store:
 
 # ---------------------------------------------------------------------- helpers
 
+def check_store_path(path: str | Path, key: str = "store.path") -> None:
+    """Refuse a store path that could not be created or written, creating nothing.
+
+    The file, if there, must be a regular file we may write; otherwise its folder must
+    exist and be writable, or the nearest folder above it that exists must be one where the
+    missing folders can be made (none of them may be a file).
+
+    Raises
+    ------
+    UserError
+        Naming ``key``, the path and what is wrong.
+    """
+    path = Path(path)
+    if path.exists():
+        if not path.is_file():
+            raise UserError(f"{key} {path}: is not a file (a folder or a device?); name a file for the store")
+        if not os.access(path, os.R_OK | os.W_OK):
+            raise UserError(f"{key} {path}: cannot be written by this user")
+        folder = path.resolve().parent
+        if not os.access(folder, os.W_OK | os.X_OK):
+            raise UserError(f"{key} {path}: its folder {folder} is not writable (the lock file and "
+                            f"SQLite's journal go beside the store)")
+        return
+    if path.is_symlink():
+        raise UserError(f"{key} {path}: a symbolic link to nothing ({os.readlink(path)})")
+    existing = path.parent
+    while not existing.exists() and existing != existing.parent:
+        if existing.is_symlink():  # a dangling link on the way
+            raise UserError(f"{key} {path}: folder {existing} is a symbolic link to nothing")
+        existing = existing.parent
+    if not existing.is_dir():
+        raise UserError(f"{key} {path}: folder {path.parent} cannot be created, {existing} is a file")
+    if not os.access(existing, os.W_OK | os.X_OK):
+        what = "the store cannot be created in it" if existing == path.parent else \
+            f"folder {path.parent} cannot be created in it"
+        raise UserError(f"{key} {path}: {existing} is not writable by this user; {what}")
+
+
 def _take_lock(real: Path, shown: Path | None = None):
     """Take the lock of the store whose resolved path is ``real`` (``shown`` in messages)."""
     path = shown or real
