@@ -342,10 +342,12 @@ class Daemon:
 
             self.diag, self.engine, self.rules_mod = diagnostics, engine, rules
         self.outbox = None
+        self.claimer: str | None = None
         if cfg.mail is not None:
             from alerts import outbox
 
             self.outbox = outbox
+            self.claimer = outbox.process_identity("daemon")
         self.outbox_worker: OutboxWorker | None = None
         # Every table the jobs write is created here, before the outbox thread opens its own
         # connection: schema changes on the processing path would contend with it for the lock.
@@ -732,7 +734,8 @@ class Daemon:
         if self.outbox is None:
             return
         try:
-            summary = self.outbox.deliver_due(self.store.db if db is None else db, self.cfg.mail)
+            summary = self.outbox.deliver_due(self.store.db if db is None else db, self.cfg.mail,
+                                              claimer=self.claimer)
             log.debug("outbox: %s", summary)
         except Exception:
             log.exception("outbox delivery failed; will retry")
@@ -802,6 +805,14 @@ class Daemon:
             self.stop.set()
 
         old = {s: signal.signal(s, on_signal) for s in (signal.SIGTERM, signal.SIGINT)}
+        if self.outbox is not None:
+            # A predecessor killed with a message in flight left it claimed: resend it now
+            # (same Message-ID) rather than hold that recipient's later mail until the
+            # claim lapses.
+            try:
+                self.outbox.take_over_claims(self.store.db, holds_store_lock=self.store.locked)
+            except Exception:
+                log.exception("outbox: taking over the claims of a previous run failed; they lapse on their own")
         if self.outbox_worker is not None:
             self.outbox_worker.start()
         sched.start()
@@ -814,7 +825,7 @@ class Daemon:
             sched.shutdown(wait=True)  # lets the job in hand finish its batch
             if self.outbox_worker is not None:
                 # a round in hand records each send before the next; one stuck on a server
-                # that does not answer is left (its claim lapses and a restart retries it)
+                # that does not answer is left (a restart takes its claim over at once)
                 self.outbox_worker.halt(timeout=5.0)
             for s, h in old.items():
                 signal.signal(s, h)

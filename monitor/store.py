@@ -177,6 +177,11 @@ class Store:
             raise
         return store
 
+    @property
+    def locked(self) -> bool:
+        """Whether this store holds the one-daemon lock."""
+        return self._lock_file is not None
+
     def close(self) -> None:
         with contextlib.suppress(Exception):
             self.conn.close()
