@@ -40,7 +40,9 @@ Mail settings (a ``[mail]`` table)::
 The server's certificate and host name are always verified (starttls and tls); there is no
 setting that turns verification off. The password is read from the environment or its file
 at each connection, never stored in the settings, the outbox table or a log line, and is
-scrubbed from any error text before that is recorded.
+scrubbed from any error text before that is recorded. A password file other users may read
+is refused (when the configuration is loaded and at each read), with the ``chmod`` that
+fixes it.
 """
 from __future__ import annotations
 
@@ -51,6 +53,7 @@ import json
 import logging
 import os
 import re
+import shlex
 import smtplib
 import socket
 import ssl
@@ -332,6 +335,9 @@ class MailSettings:
                 raise RuntimeError(f"environment variable {self.password_env} is not set")
             return value
         if self.password_file:
+            problem = password_file_problem(self.password_file)
+            if problem:
+                raise RuntimeError(f"password file {problem}")
             try:
                 return Path(self.password_file).read_text(encoding="utf-8").rstrip("\r\n")
             except OSError as exc:
@@ -341,6 +347,24 @@ class MailSettings:
     def backoff(self, attempts: int) -> float:
         """Seconds to wait after the ``attempts``-th failure (doubling, capped)."""
         return min(self.retry_max, self.retry_first * 2 ** max(0, attempts - 1))
+
+
+def password_file_problem(path: str | os.PathLike) -> str | None:
+    """Why a password file must not be used, or None: a file other users may read (or
+    write) is refused, as ssh refuses such a private key, with the command that fixes it.
+
+    The file's owner and group keep their access (a daemon user may read it through its
+    group); a missing file is not a problem here (it is reported when the password is read).
+    """
+    try:
+        mode = os.stat(path).st_mode  # through a symbolic link: the file that is read
+    except OSError:
+        return None
+    if mode & 0o007:
+        what = "readable" if mode & 0o004 else "open"
+        return (f"{path}: {what} by other users (mode {mode & 0o777:04o}); a password must not be; "
+                f"fix it with: chmod o-rwx {shlex.quote(os.fspath(path))}")
+    return None
 
 
 _LOOPBACK_NAMES = {"localhost", "localhost.localdomain", "ip6-localhost"}

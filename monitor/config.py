@@ -364,6 +364,12 @@ def validate_config(raw: Any, base_dir: Path | str = ".", path: Path | None = No
             errors.extend(errs)
 
     mail = _resolve_fields(mail, base_dir, ("password_file", "save_dir", "ca_file"))
+    if mail is not None and mail.password_file:
+        from alerts.outbox import password_file_problem
+
+        problem = password_file_problem(mail.password_file)
+        if problem:
+            errors.append(f"mail.password_file {problem}")
     reports = _resolve_fields(reports, base_dir, ("folder",))
     if errors:
         return None, errors

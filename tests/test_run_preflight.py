@@ -73,3 +73,22 @@ def test_check_accepts_a_store_folder_still_to_be_made_and_makes_nothing(tmp_pat
     assert main(["check", str(cfg)]) == 0
     assert "configuration is valid" in capsys.readouterr().out
     assert not (tmp_path / "data").exists()
+
+
+def test_check_refuses_a_password_file_others_may_read(tmp_path, capsys):
+    (tmp_path / "constants.toml").write_text('mean = 2.0\n[[constituents]]\nname = "M2"\namplitude = 1.0\nphase = 40.0\n')
+    cfg = _config(tmp_path, "q.db")
+    (tmp_path / "smtp.pw").write_text("hunter2\n")
+    (tmp_path / "smtp.pw").chmod(0o644)
+    cfg.write_text(cfg.read_text() + """
+[mail]
+sender = "gauge@testport.example"
+host = "smtp.testport.example"
+user = "gauge"
+password_file = "smtp.pw"
+""")
+    assert main(["check", str(cfg)]) == 2
+    err = _error(capsys)
+    assert "mail.password_file" in err and f"chmod o-rwx {tmp_path / 'smtp.pw'}" in err
+    (tmp_path / "smtp.pw").chmod(0o600)
+    assert main(["check", str(cfg)]) == 0
