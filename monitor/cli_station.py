@@ -44,9 +44,12 @@ def register(subparsers) -> None:
     p.add_argument("--rejects", type=count, default=0, metavar="N", help="also show the last N entries of the reject log (unreadable lines, conflicting repeats)")
     p.set_defaults(func=store_errors(cmd_status))
 
-    p = subparsers.add_parser("ingest", help="backfill a station from telemetry files",
+    p = subparsers.add_parser("ingest", help="backfill a station from telemetry files or raw captures",
                               description="Read FILEs in the sensor's configured line format into the store. "
-                                          "Rows already stored are left alone; bad lines go to the reject log.")
+                                          "Rows already stored are left alone; bad lines go to the reject log. "
+                                          "A raw capture file of a serial line (or a folder of them) is read "
+                                          "as the daemon read the line, with the time each line arrived, so "
+                                          "a lost store can be rebuilt.")
     p.add_argument("config", metavar="CONFIG")
     p.add_argument("--station", required=True, metavar="ID")
     p.add_argument("--sensor", default="primary", choices=("primary", "backup", "barometer"))
@@ -254,9 +257,12 @@ def ingest_file(store, sensor, path: Path, progress=None, batch_size: int = INGE
         (the station's ``qc.future_tolerance``; None: not checked).
     """
     from monitor.daemon import row_lines
+    from monitor.feeds.capture import is_capture
     from monitor.parse import parse_lines
     from monitor.store import EMPTY_BATCH
 
+    if is_capture(path):
+        return _ingest_capture(store, sensor, path, progress, batch_size, first_reject, max_ahead)
     total = EMPTY_BATCH
     lineno = 0
     first_t = None
@@ -279,9 +285,65 @@ def ingest_file(store, sensor, path: Path, progress=None, batch_size: int = INGE
     return total, first_t
 
 
+def _ingest_capture(store, sensor, path: Path, progress, batch_size: int, first_reject: list | None,
+                    max_ahead: float | None):
+    """:func:`ingest_file` for a raw capture file of a serial line: each line parsed as the
+    daemon parsed it when it was read (same receive time, same format, no header lines)."""
+    import dataclasses
+
+    from monitor.daemon import row_lines
+    from monitor.feeds.base import decode_line
+    from monitor.feeds.capture import read_capture
+    from monitor.parse import Reject, parse_lines
+    from monitor.store import EMPTY_BATCH
+
+    encoding = getattr(sensor.feed, "encoding", None) or "utf-8"
+    # a serial line has no header: the daemon never skipped its first lines
+    fmt = dataclasses.replace(sensor.format, header_lines=0)
+    total = EMPTY_BATCH
+    first_t = None
+    label = f"ingest:{sensor.station}:{path.name}"
+    try:
+        for raws, recv, linenos, bad, pos in read_capture(path, batch_size):
+            texts = [decode_line(r, encoding) for r in raws]
+            parsed = parse_lines(texts, fmt, np.asarray(recv, dtype=float), linenos, max_ahead)
+            rejects = sorted(parsed.rejects + [Reject(n, text[:500], "not a capture record (cut short?)")
+                                               for n, text in bad], key=lambda r: r.lineno)
+            res = store.write_batch(sensor.station, sensor.role, parsed.t, parsed.value, parsed.time_source,
+                                    rejects, feed=label, skipped=parsed.skipped, lines=row_lines(parsed, texts))
+            if first_reject is not None and rejects and not first_reject:
+                first_reject.append(rejects[0])
+            if len(parsed):
+                lo = int(parsed.t.min())
+                first_t = lo if first_t is None else min(first_t, lo)
+            total = total + res
+            if progress:
+                progress(path, linenos[-1] if linenos else 0, pos, total)
+    except OSError as exc:
+        raise UserError(f"{path}: cannot be read ({exc.strerror or exc})") from None
+    return total, first_t
+
+
+def _telemetry_files(name: str) -> list[Path]:
+    """The file, or the capture files (``*.capture``, in name order) of a capture folder."""
+    from monitor.feeds.capture import SUFFIX
+
+    p = Path(name)
+    if p.is_dir():
+        found = sorted(f for f in p.iterdir() if f.suffix == SUFFIX and f.is_file())
+        if found:
+            return found
+    return [_telemetry_file(name)]
+
+
 def _telemetry_file(name: str) -> Path:
-    """A readable, non-empty text file; binary data is refused before anything is stored."""
+    """A readable, non-empty text file; binary data is refused before anything is stored
+    (a raw capture file may hold any bytes a serial line delivered)."""
+    from monitor.feeds.capture import is_capture
+
     path = input_file(name, "telemetry file")
+    if is_capture(path):
+        return path
     with open(path, "rb") as fh:
         head = fh.read(8192)
     if not head:
@@ -301,7 +363,7 @@ def cmd_ingest(args: argparse.Namespace) -> int:
     sensor = st.sensors[args.sensor]
     if sensor.format is None:
         raise UserError(f"stations[{st.id}].sensors.{args.sensor}.line: no line format configured")
-    paths = [_telemetry_file(f) for f in args.files]
+    paths = [p for f in args.files for p in _telemetry_files(f)]
     tty = sys.stderr.isatty()
     last_print = [time.monotonic()]  # quiet for small files; a line every 5 s for long ones
 

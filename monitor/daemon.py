@@ -254,8 +254,9 @@ def open_feed_runtimes(cfg: Config) -> list[FeedRuntime]:
         for st in cfg.stations:
             for sensor in st.sensors.values():
                 if sensor.feed is not None:
-                    out.append(FeedRuntime(sensor.feed_name, sensor,
-                                           feeds_mod.open_feed(sensor.feed, sensor.feed_name)))
+                    feed = feeds_mod.open_feed(sensor.feed, sensor.feed_name,
+                                               capture_dir=cfg.captures / sensor.feed_name)
+                    out.append(FeedRuntime(sensor.feed_name, sensor, feed))
     except BaseException:
         for fr in out:
             fr.feed.close()
@@ -266,8 +267,8 @@ def open_feed_runtimes(cfg: Config) -> list[FeedRuntime]:
 def preflight(cfg: Config) -> None:
     """Everything ``run`` can check before it creates anything (store, lock, log file).
 
-    Every configured constants file is read and the store's path must be one the store
-    (and its lock) can be created at; a broken constants file found after the store was
+    Every configured constants file is read and the store's path (and, with a serial line,
+    the capture folder) must be one the store (and its lock) can be created at; a broken constants file found after the store was
     made would leave an empty store and a lock file behind.
 
     Raises
@@ -275,12 +276,14 @@ def preflight(cfg: Config) -> None:
     UserError
         Naming the file or key and what is wrong.
     """
-    from monitor.store import check_store_path
+    from monitor.store import check_folder, check_store_path
 
     for st in cfg.stations:
         if st.constants is not None:
             load_model(None, st)
     check_store_path(cfg.store_path)
+    if any(getattr(s.feed, "kind", None) == "serial" for st in cfg.stations for s in st.sensors.values()):
+        check_folder(cfg.captures, "store.captures")
 
 
 class PredictionMemo:

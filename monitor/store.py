@@ -601,17 +601,30 @@ def check_store_path(path: str | Path, key: str = "store.path") -> None:
         return
     if path.is_symlink():
         raise UserError(f"{key} {path}: a symbolic link to nothing ({os.readlink(path)})")
-    existing = path.parent
+    check_folder(path.parent, key, shown=path)
+
+
+def check_folder(folder: str | Path, key: str, shown: str | Path | None = None) -> None:
+    """Refuse a folder that neither exists writable nor could be made, creating nothing.
+
+    Raises
+    ------
+    UserError
+        Naming ``key``, the path (``shown``, default the folder) and what is wrong.
+    """
+    folder = Path(folder)
+    shown = folder if shown is None else shown
+    existing = folder
     while not existing.exists() and existing != existing.parent:
         if existing.is_symlink():  # a dangling link on the way
-            raise UserError(f"{key} {path}: folder {existing} is a symbolic link to nothing")
+            raise UserError(f"{key} {shown}: folder {existing} is a symbolic link to nothing")
         existing = existing.parent
     if not existing.is_dir():
-        raise UserError(f"{key} {path}: folder {path.parent} cannot be created, {existing} is a file")
+        raise UserError(f"{key} {shown}: folder {folder} cannot be created, {existing} is a file")
     if not os.access(existing, os.W_OK | os.X_OK):
-        what = "the store cannot be created in it" if existing == path.parent else \
-            f"folder {path.parent} cannot be created in it"
-        raise UserError(f"{key} {path}: {existing} is not writable by this user; {what}")
+        what = "nothing can be created in it" if existing == folder else \
+            f"folder {folder} cannot be created in it"
+        raise UserError(f"{key} {shown}: {existing} is not writable by this user; {what}")
 
 
 def _take_lock(real: Path, shown: Path | None = None):
