@@ -56,6 +56,15 @@ def register(subparsers) -> None:
     p.add_argument("files", nargs="+", metavar="FILE")
     p.set_defaults(func=store_errors(cmd_ingest))
 
+    p = subparsers.add_parser("backup", help="a consistent copy of the store, while the daemon runs",
+                              description="Copy the store to DEST with SQLite's online backup: a consistent "
+                                          "copy as of one commit, taken while the daemon goes on writing. "
+                                          "DEST is a new file, or a folder (then a dated file is made in "
+                                          "it). The copy is checked before it is kept.")
+    p.add_argument("config", metavar="CONFIG")
+    p.add_argument("dest", metavar="DEST")
+    p.set_defaults(func=store_errors(cmd_backup))
+
     p = subparsers.add_parser("export", help="CSV of level, predicted tide, residual and flag",
                               description="Write time,level,predicted,residual,flag (UTC, metres on the "
                                           "station datum). Times without an offset are the station's local time.")
@@ -408,6 +417,25 @@ def cmd_ingest(args: argparse.Namespace) -> int:
     if grand.rejected or grand.conflicts:
         print(f"see the rejected lines with: quaywatch status {args.config} --station {st.id} --rejects 20",
               file=sys.stderr)
+    return 0
+
+
+# --------------------------------------------------------------------------- backup
+
+def cmd_backup(args: argparse.Namespace) -> int:
+    cfg = _config(args.config)
+    dest = Path(args.dest).expanduser()
+    if dest.is_dir():
+        stamp = time.strftime("%Y%m%dT%H%M%SZ", time.gmtime())
+        dest = dest / f"{cfg.store_path.stem}-{stamp}{cfg.store_path.suffix or '.db'}"
+    elif not dest.parent.is_dir():
+        raise UserError(f"{args.dest}: folder {dest.parent} does not exist")
+    with _store(cfg) as store:
+        info = store.backup(dest)
+    when = "no feed checkpoint" if info["checkpoint"] is None else \
+        "feeds as of " + dt.datetime.fromtimestamp(info["checkpoint"], dt.timezone.utc).strftime("%Y-%m-%d %H:%M:%SZ")
+    print(f"{info['path']}: backup of {cfg.store_path}, {info['bytes']:,} bytes, {info['observations']:,} "
+          f"observations, {when}; integrity ok")
     return 0
 
 

@@ -412,6 +412,62 @@ class Store:
                  constants, int(bool(in_use)), int(bool(robust)), note))
             return int(cur.lastrowid)
 
+    # ------------------------------------------------------------------ backup
+    def backup(self, dest: str | Path) -> dict:
+        """A consistent copy of the store at ``dest``, taken while a daemon may be writing.
+
+        SQLite's online backup copies the whole database in one step, inside one read
+        transaction: the copy is the store as of one commit (every batch with its feed
+        checkpoint, or neither), while the daemon goes on writing (in WAL mode readers
+        never block the writer). The copy is written beside ``dest`` under a temporary
+        name, checked (``PRAGMA integrity_check``), made a self-contained file (rollback
+        journal, no ``-wal``), fsynced and then renamed into place.
+
+        Returns
+        -------
+        dict
+            ``path``, ``bytes``, ``observations`` and ``checkpoint`` (the latest feed
+            checkpoint time in the copy [Unix s], None without one).
+
+        Raises
+        ------
+        UserError
+            ``dest`` exists, cannot be written, or the copy fails its integrity check.
+        """
+        dest = Path(dest)
+        if dest.exists():
+            raise UserError(f"{dest}: already exists; a backup never overwrites a file (remove it, or name "
+                            f"another file or a folder)")
+        if dest.resolve() == self.path.resolve():
+            raise UserError(f"{dest}: is the store itself")
+        tmp = dest.with_name(f".{dest.name}.partial-{os.getpid()}")
+        try:
+            target = sqlite3.connect(str(tmp), isolation_level=None)
+        except sqlite3.Error as exc:
+            raise UserError(f"{dest}: cannot be created ({exc})") from None
+        try:
+            try:
+                self.conn.backup(target)  # pages=-1: all of it in one step, one snapshot
+                target.execute("PRAGMA journal_mode = DELETE")
+                check = target.execute("PRAGMA integrity_check").fetchall()
+                info = {"observations": target.execute("SELECT count(*) FROM observations").fetchone()[0],
+                        "checkpoint": target.execute("SELECT max(updated_at) FROM feed_checkpoints").fetchone()[0]}
+            finally:
+                target.close()
+            if check != [("ok",)]:
+                raise UserError(f"{dest}: the copy failed SQLite's integrity check ({check[0][0]}); the store "
+                                f"may be damaged: keep it and earlier backups")
+            with open(tmp, "rb+") as fh:
+                os.fsync(fh.fileno())
+            os.replace(tmp, dest)
+            _fsync_dir(dest.resolve().parent)
+        except (sqlite3.Error, OSError) as exc:
+            raise UserError(f"{dest}: backup failed ({exc})") from None
+        finally:
+            with contextlib.suppress(OSError):
+                tmp.unlink()
+        return {"path": dest, "bytes": dest.stat().st_size, **info}
+
     # ------------------------------------------------------------------ reading
     def checkpoint(self, feed: str) -> dict | None:
         row = self.conn.execute("SELECT state FROM feed_checkpoints WHERE feed = ?", (feed,)).fetchone()
@@ -625,6 +681,15 @@ def check_folder(folder: str | Path, key: str, shown: str | Path | None = None) 
         what = "nothing can be created in it" if existing == folder else \
             f"folder {folder} cannot be created in it"
         raise UserError(f"{key} {shown}: {existing} is not writable by this user; {what}")
+
+
+def _fsync_dir(folder: Path) -> None:
+    with contextlib.suppress(OSError):
+        fd = os.open(folder, os.O_RDONLY)
+        try:
+            os.fsync(fd)
+        finally:
+            os.close(fd)
 
 
 def _take_lock(real: Path, shown: Path | None = None):
