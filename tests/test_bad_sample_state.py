@@ -255,6 +255,8 @@ def test_a_failed_sample_does_not_end_a_feed_silence(tmp_path):
         assert run.store.db.execute("SELECT flag FROM observations WHERE t = ?",
                                     [int(now - minute)]).fetchone() == (4,)
         assert [k for k, *_ in run.outbox()] == ["alert"]  # still silent: no all-clear
+        ctx = run.d._alert_context(run.d.stations["testport"], None, {}, time.time())
+        assert ctx.feed_age > 2 * hour - minute           # the age runs from the last good sample
 
         run.ingest([f"{_iso(now)},2.05"])
         run.process_next_second()
@@ -279,7 +281,10 @@ def test_a_stored_sample_from_the_future_moves_no_processing_window(tmp_path, mo
         mark = int(run.store.get_meta("processed.testport"))
         assert mark == t[-1]
         assert max(b for _, b in windows) == t[-1] and len(windows) == 1
-        assert run.d.stations["testport"].extremes_span[1] < time.time() + 30 * day
+        rt = run.d.stations["testport"]
+        assert rt.extremes_span[1] < time.time() + 30 * day  # tide extremes not made to 2099
+        assert run.d.data_now == t[-1]                       # the reports' data clock
+        assert rt.diag_at <= t[-1]                           # the diagnostics' data clock
     finally:
         run.close()
 
@@ -316,5 +321,19 @@ def test_a_far_future_sample_does_not_empty_the_fit_span(tmp_path):
         run.store.write_batch("testport", "primary", np.append(t, FAR), np.append(level, 2.5))
         fit = refit_station(run.store, run.cfg.stations[0], now=time.time(), infer=None)
         assert (fit["start"], fit["end"], fit["n"]) == (t[0], t[-1], len(t))
+    finally:
+        run.close()
+
+
+def test_a_lone_line_stamped_decades_early_does_not_make_a_history_to_fit(tmp_path, monkeypatch):
+    cfg = _config(tmp_path, "", constants=False)  # fit_min_days = 2, fit_span_days 365
+    (tmp_path / "gauge.csv").write_text("")
+    run = _Daemon(cfg)
+    try:
+        run.ingest(["1970-01-01T00:00:00Z,2.0", *_tide_lines(range(0, 600)).splitlines()])
+        tried = []
+        monkeypatch.setattr(run.d, "refit", lambda rt, now=None: tried.append(now))
+        run.d._maybe_fit(run.d.stations["testport"], time.time())
+        assert tried == []  # ten hours of record is no two-day history
     finally:
         run.close()
