@@ -228,15 +228,88 @@ class StationRuntime:
     model: Any = None
     model_source: str = ""
     view: Any = None
-    extremes: pd.DataFrame | None = None
     extremes_span: tuple[float, float] = (math.inf, -math.inf)
-    history: pd.Series | None = None
     history_at: float = -math.inf
     replay_clock: bool = False
     last_fit_try: float = -math.inf
     diag_at: float = -math.inf      # data time of the last drift and clock diagnostics [Unix s]
     diag: dict = field(default_factory=dict)  # their results: "drift", "clock.primary", ...
     predicted: "PredictionMemo | None" = field(default=None, repr=False)
+    _extremes: "Frozen | None" = field(default=None, repr=False)
+    _history: "Frozen | None" = field(default=None, repr=False)
+
+    # The tide's extremes (kept about a week) and the forecast's residual history (kept six
+    # hours of data time) are read every pass; they are kept as plain arrays and each read
+    # gets a new pandas object (see Frozen).
+    @property
+    def extremes(self) -> pd.DataFrame | None:
+        """Predicted high and low waters around the window (``time``, ``level``, ``kind``)."""
+        return None if self._extremes is None else self._extremes.thaw()
+
+    @extremes.setter
+    def extremes(self, frame: pd.DataFrame | None) -> None:
+        self._extremes = None if frame is None else Frozen(frame)
+
+    @property
+    def history(self) -> pd.Series | None:
+        """The smoothed residual history of the next high water forecast [m]."""
+        return None if self._history is None else self._history.thaw()
+
+    @history.setter
+    def history(self, series: pd.Series | None) -> None:
+        self._history = None if series is None else Frozen(series)
+
+
+class Frozen:
+    """A DataFrame or Series kept between processing passes as plain numpy arrays;
+    :meth:`thaw` makes a new pandas object from them at each read.
+
+    With pandas' copy-on-write every column, slice or filter taken of a pandas object
+    leaves a weak reference on its blocks and index, pruned only once such a list has
+    doubled past its last size; a frame kept for days and read every pass piled them up:
+    the daemon's memory grew by megabytes a day at 500 stations (``benchmarks/bench_soak.py``).
+    Numpy arrays keep no such list.
+    """
+
+    def __init__(self, obj: pd.DataFrame | pd.Series):
+        self.series = isinstance(obj, pd.Series)
+        self.name = obj.name if self.series else None
+        frame = obj.to_frame(name="__value__") if self.series else obj
+        self.index = self._freeze(frame.index)
+        self.columns = [(c, self._freeze(frame[c])) for c in frame.columns]
+
+    @staticmethod
+    def _freeze(values: Any) -> tuple:
+        if isinstance(values, pd.RangeIndex):
+            return ("range", values.start, values.stop, values.step, values.name)
+        dtype = values.dtype
+        name = getattr(values, "name", None)
+        if isinstance(dtype, pd.DatetimeTZDtype):  # kept as UTC
+            utc = values.tz_convert("UTC") if isinstance(values, pd.Index) else values.dt.tz_convert("UTC")
+            return ("tz", np.array(utc.tz_localize(None) if isinstance(values, pd.Index) else
+                                   utc.dt.tz_localize(None), copy=True), dtype, name)
+        return ("plain", np.array(values, copy=True), dtype, name)
+
+    @staticmethod
+    def _thaw(kept: tuple, index: pd.Index | None = None) -> Any:
+        if kept[0] == "range":
+            return pd.RangeIndex(kept[1], kept[2], kept[3], name=kept[4])
+        kind, arr, dtype, name = kept
+        if index is None:  # an index
+            if kind == "tz":
+                return pd.DatetimeIndex(arr.copy(), name=name).tz_localize("UTC").tz_convert(dtype.tz)
+            return pd.Index(arr.copy(), dtype=dtype, name=name)
+        if kind == "tz":
+            return pd.Series(pd.DatetimeIndex(arr.copy()).tz_localize("UTC").tz_convert(dtype.tz),
+                             index=index, name=name)
+        return pd.Series(arr.copy(), index=index, dtype=dtype, name=name)
+
+    def thaw(self) -> pd.DataFrame | pd.Series:
+        index = self._thaw(self.index)
+        cols = {c: self._thaw(kept, index) for c, kept in self.columns}
+        if self.series:
+            return cols["__value__"].rename(self.name)
+        return pd.DataFrame(cols, index=index)
 
 
 def open_feed_runtimes(cfg: Config) -> list[FeedRuntime]:
