@@ -13,7 +13,6 @@ from pathlib import Path
 
 import numpy as np
 import pandas as pd
-import pytest
 import sqlite_utils
 
 from alerts.engine import evaluate
