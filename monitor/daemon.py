@@ -340,9 +340,10 @@ def open_feed_runtimes(cfg: Config) -> list[FeedRuntime]:
 def preflight(cfg: Config) -> None:
     """Everything ``run`` can check before it creates anything (store, lock, log file).
 
-    Every configured constants file is read and the store's path (and, with a serial line,
-    the capture folder) must be one the store (and its lock) can be created at; a broken constants file found after the store was
-    made would leave an empty store and a lock file behind.
+    Every configured constants file is read, and the store's path (and, with a serial line,
+    the capture folder) must be one where the store and its lock can be created: a broken
+    constants file found after the store was made would leave an empty store and a lock
+    file behind.
 
     Raises
     ------
