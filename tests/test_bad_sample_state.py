@@ -336,3 +336,21 @@ def test_a_lone_line_stamped_decades_early_does_not_make_a_history_to_fit(tmp_pa
         assert tried == []  # ten hours of record is no two-day history
     finally:
         run.close()
+
+
+def test_status_shows_the_last_usable_sample_and_says_what_came_after(tmp_path, capsys):
+    from monitor.cli import main
+
+    cfg = _config(tmp_path, "")
+    (tmp_path / "gauge.csv").write_text("")
+    run = _Daemon(cfg)
+    try:
+        run.ingest(_tide_lines(range(0, 60)).splitlines())
+        run.store.conn.execute("UPDATE observations SET flag = 4 WHERE t = ?", (T0 + 59 * minute,))
+    finally:
+        run.close()
+    assert main(["status", str(cfg)]) == 0
+    out = capsys.readouterr().out
+    (last,) = [ln for ln in out.splitlines() if "last observation" in ln]
+    assert time.strftime("%H:%MZ", time.gmtime(T0 + 58 * minute)) in last
+    assert "1 later sample(s) failed quality control" in out
