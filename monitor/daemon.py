@@ -929,7 +929,7 @@ class OutboxWorker(threading.Thread):
     def run(self) -> None:
         import sqlite_utils
 
-        conn = sqlite3.connect(str(self.owner.store.path), isolation_level=None, timeout=30.0)
+        conn = sqlite3.connect(str(self.owner.store.real_path), isolation_level=None, timeout=30.0)
         try:
             conn.execute("PRAGMA busy_timeout = 30000")
             db = sqlite_utils.Database(conn)

@@ -119,8 +119,9 @@ class Store:
         The same connection through sqlite-utils, for other packages' tables.
     """
 
-    def __init__(self, path: Path, conn: sqlite3.Connection, lock_file: Any = None):
+    def __init__(self, path: Path, conn: sqlite3.Connection, lock_file: Any = None, real_path: Path | None = None):
         self.path = path
+        self.real_path = real_path or path  # through any symbolic link: what further connections open
         self.conn = conn
         self.db = sqlite_utils.Database(conn)
         self._lock_file = lock_file
@@ -162,7 +163,7 @@ class Store:
         except sqlite3.Error as exc:
             _release(lock_file)
             raise UserError(f"store {path}: cannot be opened ({exc})") from None
-        store = cls(path, conn, lock_file)
+        store = cls(path, conn, lock_file, real)
         try:
             conn.execute("PRAGMA busy_timeout = 30000")
             conn.execute("PRAGMA journal_mode = WAL")
