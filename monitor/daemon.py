@@ -282,6 +282,11 @@ class Frozen:
     def _freeze(values: Any) -> tuple:
         if isinstance(values, pd.RangeIndex):
             return ("range", values.start, values.stop, values.step, values.name)
+        if isinstance(values, pd.DatetimeIndex) and values.tz is not None and len(values) > 2:
+            ns = values.as_unit("ns").asi8
+            step = int(ns[1] - ns[0])
+            if step > 0 and (np.diff(ns) == step).all():  # a regular grid (a resampled history) costs
+                return ("grid", int(ns[0]), step, len(ns), values.dtype, values.name)  # nothing to keep
         dtype = values.dtype
         name = getattr(values, "name", None)
         if isinstance(dtype, pd.DatetimeTZDtype):  # kept as UTC
@@ -294,6 +299,11 @@ class Frozen:
     def _thaw(kept: tuple, index: pd.Index | None = None) -> Any:
         if kept[0] == "range":
             return pd.RangeIndex(kept[1], kept[2], kept[3], name=kept[4])
+        if kept[0] == "grid":
+            _, first, step, n, dtype, name = kept
+            ns = first + step * np.arange(n, dtype=np.int64)
+            return pd.DatetimeIndex(ns.astype("datetime64[ns]"), name=name).tz_localize("UTC") \
+                .tz_convert(dtype.tz).as_unit(dtype.unit)
         kind, arr, dtype, name = kept
         if index is None:  # an index
             if kind == "tz":

@@ -31,6 +31,14 @@ def test_extremes_and_history_read_back_equal():
     assert rt.extremes is not rt.extremes  # a new object at each read
 
 
+def test_an_irregular_time_index_reads_back_equal():
+    rt = StationRuntime(cfg=None)
+    idx = pd.DatetimeIndex(["2025-01-01T00:00Z", "2025-01-01T00:10Z", "2025-01-01T00:25Z", "2025-01-01T00:30Z"])
+    hist = pd.Series([0.1, np.nan, 0.3, 0.4], index=idx.tz_convert("Europe/Dublin"), name="smoothed")
+    rt.history = hist
+    pd.testing.assert_series_equal(rt.history, hist)
+
+
 def test_reading_the_kept_frames_every_pass_leaves_no_references_behind():
     rt = StationRuntime(cfg=None)
     rt.extremes = MODEL.high_low(pd.Timestamp("2025-01-01", tz="UTC"), pd.Timestamp("2025-01-08", tz="UTC"))
