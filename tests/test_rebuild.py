@@ -34,7 +34,15 @@ CONSTANTS = 'mean = 2.0\n[[constituents]]\nname = "M2"\namplitude = 1.0\nphase =
 
 
 def _level(k: np.ndarray, offset: float = 0.0) -> np.ndarray:
-    return 2.0 + offset + np.cos(2 * np.pi * (T0 + minute * k) / (12.42 * hour))
+    """The tide of the constants file (so the residual is small: no sample near a quality-control
+    threshold, where a flag may depend on how much record there was when it was checked)."""
+    import pandas as pd
+
+    from predictor import TideModel
+
+    model = TideModel.from_dict({"mean": 2.0, "constituents": [{"name": "M2", "amplitude": 1.0, "phase": 40.0}]})
+    t = pd.to_datetime(T0 + minute * np.asarray(k), unit="s", utc=True)
+    return np.asarray(model.predict(t)) + offset
 
 
 def _iso(t: int) -> str:
