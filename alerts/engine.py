@@ -474,7 +474,13 @@ def _evaluate_rule(db, station: StationView, rule: Rule, samples: pd.DataFrame, 
             if episode_id is not None:
                 _track_peak(db, rule, episode_id, t, v)
             k += 1
-        state = with_watermark(state, int(t_all[new[-1]]))
+        # Only a sample that counts moves the watermark: one that does not (failed, missing,
+        # or suspect where the rule ignores suspects) may be any time at all -- a clock
+        # stamping 2099 -- and a watermark moved there would silence the rule for good.
+        # Uncounted samples past the watermark are looked at again next time, and count
+        # then if a technician's override or a re-run of quality control passes them.
+        if len(counted):
+            state = with_watermark(state, int(t_all[counted[-1]]))
     else:
         if t_now <= wm:
             return results

@@ -10,9 +10,12 @@ now; the data time of the event it is about travels in the message text and in t
 ``event_at`` column, never in the delivery arithmetic. Delivery takes rows in order per recipient: an undelivered earlier
 message blocks later ones to the same address, so nobody reads an all-clear before the
 alert it closes. Each row carries a Message-ID fixed when it is queued; a row is marked
-``sending`` (with a lease) before the SMTP transaction and ``sent`` after it, so a crash
-in between leads at worst to a resend that mail clients recognise by its Message-ID,
-never to a loss. Failures are retried with exponential back-off until the operator's
+``sending`` (with a lease, and the process that claimed it) before the SMTP transaction
+and ``sent`` after it, so a crash in between leads at worst to a resend that mail clients
+recognise by its Message-ID, never to a loss. A daemon starting takes over at once the
+claims of processes that are gone (:func:`take_over_claims`), so a kill with a message in
+flight does not hold that recipient's later mail, the all-clear included, until the lease
+lapses. Failures are retried with exponential back-off until the operator's
 expiry, then the row is marked ``expired``, logged and listed, never dropped silently.
 
 Mail settings (a ``[mail]`` table)::
@@ -37,7 +40,9 @@ Mail settings (a ``[mail]`` table)::
 The server's certificate and host name are always verified (starttls and tls); there is no
 setting that turns verification off. The password is read from the environment or its file
 at each connection, never stored in the settings, the outbox table or a log line, and is
-scrubbed from any error text before that is recorded.
+scrubbed from any error text before that is recorded. A password file other users may read
+is refused (when the configuration is loaded and at each read), with the ``chmod`` that
+fixes it.
 """
 from __future__ import annotations
 
@@ -48,6 +53,7 @@ import json
 import logging
 import os
 import re
+import shlex
 import smtplib
 import socket
 import ssl
@@ -114,14 +120,97 @@ def ensure_outbox_schema(db) -> None:
             "subject": str, "text": str, "html": str, "attachments": str, "message_id": str,
             "status": str, "attempts": int, "next_try": int, "claimed_until": int,
             "last_try": int, "last_error": str, "sent_at": int, "expired_at": int, "event_at": int,
+            "claimed_by": str,
         }, pk="id", not_null={"created_at", "kind", "key", "recipient", "subject", "text",
                               "message_id", "status"}, defaults={"status": "pending", "attempts": 0},
             if_not_exists=True)
         db[OUTBOX].create_index(["key", "recipient"], unique=True, if_not_exists=True)
         db[OUTBOX].create_index(["status", "recipient", "id"], if_not_exists=True)
-    elif "event_at" not in db[OUTBOX].columns_dict:
+    cols = db[OUTBOX].columns_dict
+    if "event_at" not in cols:
         # stores queued before the wall-clock split kept the event's time as the queue time
         db[OUTBOX].add_column("event_at", int)
+    if "claimed_by" not in cols:
+        # who holds a 'sending' claim (see process_identity); empty in older stores
+        db[OUTBOX].add_column("claimed_by", str)
+
+
+# --------------------------------------------------------------------------- claims
+
+def _start_ticks(pid: int) -> str | None:
+    """When process ``pid`` started (clock ticks since boot, from /proc), or None."""
+    try:
+        with open(f"/proc/{pid}/stat", "rb") as fh:
+            stat = fh.read()
+    except OSError:
+        return None
+    # the command name (field 2) may hold spaces and parentheses: count from the last ')'
+    fields = stat[stat.rfind(b")") + 2:].split()
+    return fields[19].decode() if len(fields) > 19 else None
+
+
+def process_identity(role: str = "daemon") -> str:
+    """``ROLE:HOST:PID:START`` naming this process as the holder of outbox claims.
+
+    The start time tells a process from a later one that got the same pid."""
+    pid = os.getpid()
+    return f"{role}:{socket.gethostname()}:{pid}:{_start_ticks(pid) or '-'}"
+
+
+def _holder_alive(holder: str) -> bool | None:
+    """Whether the process named by :func:`process_identity` runs; None when it is on
+    another host (or the name cannot be read), so cannot be told."""
+    try:
+        _role, host, pid_text, start = holder.split(":")
+        pid = int(pid_text)
+    except ValueError:
+        return None
+    if host != socket.gethostname():
+        return None
+    try:
+        os.kill(pid, 0)
+    except ProcessLookupError:
+        return False
+    except PermissionError:
+        pass  # another user's process with that pid exists
+    now_start = _start_ticks(pid)
+    return not (start != "-" and now_start is not None and now_start != start)
+
+
+def take_over_claims(db, *, holds_store_lock: bool, now: Any = None, clock: Clock | None = None) -> list[int]:
+    """Release the ``sending`` claims of processes that are gone, due at once.
+
+    A daemon calls this as it starts. With ``holds_store_lock`` (the one-daemon lock is
+    ours) every claim made by a daemon -- or by a version that did not name its claims --
+    belongs to a dead predecessor; any other claim is released when its process is known
+    to be gone. The rows go back to ``pending`` with their Message-ID unchanged: the
+    message may have reached the server before the kill, and a resend is recognisable as
+    the same message (at least once, never lost).
+
+    Returns
+    -------
+    list of int
+        The outbox ids taken over.
+    """
+    ensure_outbox_schema(db)
+    t = unix_seconds(now) if now is not None else _wall(clock)
+    rows = list(db.query("SELECT id, claimed_by FROM outbox WHERE status = 'sending'"))
+    taken: list[int] = []
+    for r in rows:
+        holder = r["claimed_by"]
+        daemon_claim = holder is None or holder.startswith("daemon:")
+        if not ((holds_store_lock and daemon_claim) or (holder is not None and _holder_alive(holder) is False)):
+            continue
+        with transaction(db):
+            cur = db.conn.execute(
+                "UPDATE outbox SET status = 'pending', claimed_until = NULL, claimed_by = NULL, next_try = ?"
+                " WHERE id = ? AND status = 'sending' AND claimed_by IS ?", (t, r["id"], holder))
+        if cur.rowcount == 1:
+            taken.append(r["id"])
+    if taken:
+        log.warning("outbox: %d message(s) were being sent when a previous run stopped (ids %s); sending "
+                    "them again now with the same Message-ID", len(taken), ", ".join(map(str, taken)))
+    return taken
 
 
 def _make_message_id(kind: str) -> str:
@@ -246,6 +335,9 @@ class MailSettings:
                 raise RuntimeError(f"environment variable {self.password_env} is not set")
             return value
         if self.password_file:
+            problem = password_file_problem(self.password_file)
+            if problem:
+                raise RuntimeError(f"password file {problem}")
             try:
                 return Path(self.password_file).read_text(encoding="utf-8").rstrip("\r\n")
             except OSError as exc:
@@ -255,6 +347,24 @@ class MailSettings:
     def backoff(self, attempts: int) -> float:
         """Seconds to wait after the ``attempts``-th failure (doubling, capped)."""
         return min(self.retry_max, self.retry_first * 2 ** max(0, attempts - 1))
+
+
+def password_file_problem(path: str | os.PathLike) -> str | None:
+    """Why a password file must not be used, or None: a file other users may read (or
+    write) is refused, as ssh refuses such a private key, with the command that fixes it.
+
+    The file's owner and group keep their access (a daemon user may read it through its
+    group); a missing file is not a problem here (it is reported when the password is read).
+    """
+    try:
+        mode = os.stat(path).st_mode  # through a symbolic link: the file that is read
+    except OSError:
+        return None
+    if mode & 0o007:
+        what = "readable" if mode & 0o004 else "open"
+        return (f"{path}: {what} by other users (mode {mode & 0o777:04o}); a password must not be; "
+                f"fix it with: chmod o-rwx {shlex.quote(os.fspath(path))}")
+    return None
 
 
 _LOOPBACK_NAMES = {"localhost", "localhost.localdomain", "ip6-localhost"}
@@ -462,7 +572,8 @@ def _save_copy(settings: MailSettings, row: dict, msg) -> None:
 
 
 def deliver_due(db, settings: MailSettings, now: Any = None, *,
-                recipients: Iterable[str] | None = None, clock: Clock | None = None) -> DeliverySummary:
+                recipients: Iterable[str] | None = None, clock: Clock | None = None,
+                claimer: str | None = None) -> DeliverySummary:
     """Send what is due from the outbox, in order per recipient.
 
     Parameters
@@ -476,6 +587,9 @@ def deliver_due(db, settings: MailSettings, now: Any = None, *,
         Only these recipients' queues (the test-mail command uses this).
     clock : callable, optional
         Wall clock giving Unix seconds (default ``time.time``).
+    claimer : str, optional
+        Who claims the rows it sends (default :func:`process_identity` ``("cli")``; the
+        daemon passes its own).
 
     Returns
     -------
@@ -486,6 +600,7 @@ def deliver_due(db, settings: MailSettings, now: Any = None, *,
     t = unix_seconds(now) if now is not None else _wall(clock)
     only = set(recipients) if recipients is not None else None
     summary = DeliverySummary()
+    claimer = claimer or process_identity("cli")
 
     rows = [dict(r) for r in db.query(
         "SELECT * FROM outbox WHERE status NOT IN ('sent', 'expired') ORDER BY id")]
@@ -525,9 +640,9 @@ def deliver_due(db, settings: MailSettings, now: Any = None, *,
             # lease keeps it.
             with transaction(db):
                 cur = db.conn.execute(
-                    "UPDATE outbox SET status = 'sending', claimed_until = ?, last_try = ? WHERE id = ?"
-                    " AND (status = 'pending' OR (status = 'sending' AND COALESCE(claimed_until, 0) <= ?))",
-                    (t + lease, t, r["id"], t))
+                    "UPDATE outbox SET status = 'sending', claimed_until = ?, claimed_by = ?, last_try = ?"
+                    " WHERE id = ? AND (status = 'pending' OR (status = 'sending' AND"
+                    " COALESCE(claimed_until, 0) <= ?))", (t + lease, claimer, t, r["id"], t))
             if cur.rowcount != 1:
                 blocked.add(r["recipient"])
                 summary.waiting += 1
@@ -549,6 +664,7 @@ def deliver_due(db, settings: MailSettings, now: Any = None, *,
                 continue
             with transaction(db):
                 db.conn.execute("UPDATE outbox SET status = 'sent', sent_at = ?, claimed_until = NULL,"
+                                " claimed_by = NULL,"
                                 " attempts = COALESCE(attempts, 0) + 1, last_error = NULL WHERE id = ?",
                                 (t, r["id"]))
             log.info("outbox %d sent to %s: %s", r["id"], r["recipient"], r["subject"])
@@ -562,7 +678,8 @@ def _failed(db, settings: MailSettings, r: dict, t: int, reason: str, summary: D
     attempts = (r["attempts"] or 0) + 1
     nxt = t + int(settings.backoff(attempts))
     with transaction(db):
-        db.conn.execute("UPDATE outbox SET status = 'pending', claimed_until = NULL, attempts = ?,"
+        db.conn.execute("UPDATE outbox SET status = 'pending', claimed_until = NULL, claimed_by = NULL,"
+                        " attempts = ?,"
                         " next_try = ?, last_error = ? WHERE id = ?", (attempts, nxt, reason, r["id"]))
     log.warning("outbox %d to %s not delivered (attempt %d, next try in %ds): %s",
                 r["id"], r["recipient"], attempts, nxt - t, reason)

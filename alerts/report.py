@@ -328,6 +328,7 @@ class DayReport:
     tides: Sequence[TideRow] = ()
     rejected_lines: int = 0
     rejects: Sequence[RejectRow] = ()
+    conflicts: int = 0  # conflicting repeats received that day (a time sent again with another value)
     qc_counts: Mapping[str, Mapping[int, int]] = field(default_factory=dict)
     qc_episodes: Sequence[QcEpisode] = ()
     diagnostics: Sequence[Diagnostic] = ()

@@ -125,8 +125,9 @@ def flag_summary(tests: pd.DataFrame) -> list[list[str]]:
 
 def summarise(st, settings: qc.QcSettings, results: dict[str, pd.DataFrame], obs: dict[str, pd.DataFrame],
               model, model_source: str, staff: pd.DataFrame, start: pd.Timestamp, end: pd.Timestamp,
-              n_episodes: int = 5) -> str:
-    """The text report of ``quaywatch qc`` (pure: frames in, text out)."""
+              n_episodes: int = 5, conflicts: dict[str, int] | None = None) -> str:
+    """The text report of ``quaywatch qc`` (pure: frames in, text out). ``conflicts`` is the
+    number of conflicting repeats (a stored time sent again with another value) per sensor."""
     from monitor import diagnostics as dg
 
     tz = st.tz
@@ -135,7 +136,10 @@ def summarise(st, settings: qc.QcSettings, results: dict[str, pd.DataFrame], obs
     usable = {}
     for sn, tests in results.items():
         tests = tests[(tests.index >= start) & (tests.index <= end)]
-        out.append(f"Sensor {sn}: {len(tests)} samples")
+        n_conf = (conflicts or {}).get(sn, 0)
+        out.append(f"Sensor {sn}: {len(tests)} samples" + (
+            f"; {n_conf} conflicting repeat{'s' if n_conf != 1 else ''} (a time sent again with another "
+            f"value; the first kept; see quaywatch status --rejects)" if n_conf else "; no conflicting repeats"))
         if tests.empty:
             out.append("")
             continue
@@ -221,7 +225,10 @@ def cmd_qc(args: argparse.Namespace) -> int:
         results = qc.run_station_qc(store, st, settings, start.timestamp(), end.timestamp(), model)
         obs = {sn: qc.read_observations(store, st.id, sn, start.timestamp(), end.timestamp()) for sn in results}
         staff = qc.read_staff_readings(store, st.id, start.timestamp(), end.timestamp())
-        print(summarise(st, settings, results, obs, model, source, staff, start, end, args.episodes))
+        conflicts = {sn: store.conflict_count(st.id, sn, int(start.timestamp()), int(end.timestamp()))
+                     for sn in results}
+        print(summarise(st, settings, results, obs, model, source, staff, start, end, args.episodes,
+                        conflicts))
     return 0
 
 

@@ -43,17 +43,29 @@ def register(subparsers) -> None:
     p = subparsers.add_parser("status", help="per station: latest level, residual, feeds, rejects, constants")
     p.add_argument("config", metavar="CONFIG")
     p.add_argument("--station", metavar="ID", help="only this station")
-    p.add_argument("--rejects", type=count, default=0, metavar="N", help="also show the last N rejected lines")
+    p.add_argument("--rejects", type=count, default=0, metavar="N", help="also show the last N entries of the reject log (unreadable lines, conflicting repeats)")
     p.set_defaults(func=store_errors(cmd_status))
 
-    p = subparsers.add_parser("ingest", help="backfill a station from telemetry files",
+    p = subparsers.add_parser("ingest", help="backfill a station from telemetry files or raw captures",
                               description="Read FILEs in the sensor's configured line format into the store. "
-                                          "Rows already stored are left alone; bad lines go to the reject log.")
+                                          "Rows already stored are left alone; bad lines go to the reject log. "
+                                          "A raw capture file of a serial line (or a folder of them) is read "
+                                          "as the daemon read the line, with the time each line arrived, so "
+                                          "a lost store can be rebuilt.")
     p.add_argument("config", metavar="CONFIG")
     p.add_argument("--station", required=True, metavar="ID")
     p.add_argument("--sensor", default="primary", choices=("primary", "backup", "barometer"))
     p.add_argument("files", nargs="+", metavar="FILE")
     p.set_defaults(func=store_errors(cmd_ingest))
+
+    p = subparsers.add_parser("backup", help="a consistent copy of the store, while the daemon runs",
+                              description="Copy the store to DEST with SQLite's online backup: a consistent "
+                                          "copy as of one commit, taken while the daemon goes on writing. "
+                                          "DEST is a new file, or a folder (then a dated file is made in "
+                                          "it). The copy is checked before it is kept.")
+    p.add_argument("config", metavar="CONFIG")
+    p.add_argument("dest", metavar="DEST")
+    p.set_defaults(func=store_errors(cmd_backup))
 
     p = subparsers.add_parser("export", help="CSV of level, predicted tide, residual and flag",
                               description="Write time, level, predicted tide, residual and QC flag: UTC times, "
@@ -128,13 +140,11 @@ def _m(v: float | None, signed: bool = False) -> str:
 
 def cmd_check(args: argparse.Namespace) -> int:
     cfg = _config(args.config)
-    from monitor.daemon import load_model
+    from monitor.daemon import preflight
 
-    sources = {}
-    for st in cfg.stations:
-        if st.constants is not None:
-            # a broken constants file, or one on a datum the station lacks, is a configuration problem too
-            sources[st.id] = load_model(None, st)[1]
+    # a broken constants file, or a store that could not be created, is a configuration
+    # problem too (checked without creating anything)
+    sources = preflight(cfg)
     print(f"{args.config}: configuration is valid")
     for st in cfg.stations:
         sensors = ", ".join(f"{r} ({s.units}, feed {getattr(s.feed, 'kind', 'none')})" for r, s in st.sensors.items())
@@ -162,17 +172,27 @@ def cmd_status(args: argparse.Namespace) -> int:
     now = time.time()
     out = sys.stdout
     with _store(cfg) as store:
-        from monitor.daemon import load_model
+        from monitor.daemon import future_tolerance, load_model
 
         checkpoints = store.checkpoints()
         counts = store.reject_counts()
+        conflicts = store.reject_counts(conflicts=True)
         for st in stations:
             shift, on = st.display_offset, f"above {st.display_label}"
             print(f"Station {st.id}: {st.name}  (times in {st.tz}; levels in metres {on}"
                   + (f"; {st.datum_note}" if st.datum_note else "") + ")", file=out)
             rows: list[tuple[str, str]] = []
-            last = store.last_time(st.id, "primary")
+            # the last sample that counts: one that failed quality control, or stamped ahead
+            # of the clock, is no sign of life
+            last = store.last_time(st.id, "primary", until=int(now + future_tolerance(st)), usable=True)
             rows.append(("last observation", "-" if last is None else f"{_local(last, st.tz)}, {_age(now - last)}"))
+            stored_last = store.last_time(st.id, "primary")
+            if stored_last is not None and stored_last != last:
+                later = store.conn.execute(
+                    "SELECT count(*) FROM observations WHERE station = ? AND sensor = 'primary' AND t > ?",
+                    (st.id, -(2 ** 62) if last is None else last)).fetchone()[0]
+                rows.append(("unusable since", f"{later:,} later sample(s) failed quality control, are missing "
+                                               f"or are ahead of the clock (latest {_local(stored_last, st.tz)})"))
             latest = store.latest_derived(st.id)
 
             def lv(v):
@@ -208,10 +228,15 @@ def cmd_status(args: argparse.Namespace) -> int:
                 lt = store.last_time(st.id, role)
                 n_obs = store.observation_count(st.id, role)
                 rows.append((f"feed {role}", f"{kind}; {when}; {n_obs:,} rows, last {_local(lt, st.tz)}; "
-                                             f"{counts.get(name, 0):,} rejected"))
+                                             f"{counts.get(name, 0):,} rejected; "
+                                             f"{conflicts.get(name, 0):,} conflicting repeats"))
             ingest_rejects = sum(n for f, n in counts.items() if f.startswith(f"ingest:{st.id}:"))
             if ingest_rejects:
                 rows.append(("ingest rejects", f"{ingest_rejects:,}"))
+            n_conflicts = store.conflict_count(st.id)
+            if n_conflicts:
+                rows.append(("conflicting repeats", f"{n_conflicts:,} line(s) repeated a stored time with "
+                                                    f"another value (first value kept; see --rejects)"))
             width = max(len(k) for k, _ in rows)
             for k, v in rows:
                 print(f"  {k.ljust(width)}  {v}", file=out)
@@ -244,7 +269,7 @@ def _read_batches(path: Path, size: int):
 
 
 def ingest_file(store, sensor, path: Path, progress=None, batch_size: int = INGEST_BATCH,
-                first_reject: list | None = None):
+                first_reject: list | None = None, max_ahead: float | None = None):
     """Backfill one file into the store.
 
     Returns
@@ -252,19 +277,27 @@ def ingest_file(store, sensor, path: Path, progress=None, batch_size: int = INGE
     (BatchResult, int or None)
         Summed counts, and the earliest time read [s] (None when no line was read).
         When ``first_reject`` is a list, the first rejected line is appended to it.
+        Lines stamped more than ``max_ahead`` [s] ahead of the clock are rejected
+        (the station's ``qc.future_tolerance``; None: not checked).
     """
+    from monitor.daemon import row_lines
+    from monitor.feeds.capture import is_capture
     from monitor.parse import parse_lines
     from monitor.store import EMPTY_BATCH
 
+    if is_capture(path):
+        return _ingest_capture(store, sensor, path, progress, batch_size, first_reject, max_ahead)
     total = EMPTY_BATCH
     lineno = 0
     first_t = None
     label = f"ingest:{sensor.station}:{path.name}"
     for lines, pos in _read_batches(path, batch_size):
-        parsed = parse_lines(lines, sensor.format, time.time(), range(lineno + 1, lineno + 1 + len(lines)))
+        parsed = parse_lines(lines, sensor.format, time.time(), range(lineno + 1, lineno + 1 + len(lines)),
+                             max_ahead)
         lineno += len(lines)
         res = store.write_batch(sensor.station, sensor.role, parsed.t, parsed.value, parsed.time_source,
-                                parsed.rejects, feed=label, skipped=parsed.skipped)
+                                parsed.rejects, feed=label, skipped=parsed.skipped,
+                                lines=row_lines(parsed, lines))
         if first_reject is not None and parsed.rejects and not first_reject:
             first_reject.append(parsed.rejects[0])
         if len(parsed):
@@ -276,9 +309,65 @@ def ingest_file(store, sensor, path: Path, progress=None, batch_size: int = INGE
     return total, first_t
 
 
+def _ingest_capture(store, sensor, path: Path, progress, batch_size: int, first_reject: list | None,
+                    max_ahead: float | None):
+    """:func:`ingest_file` for a raw capture file of a serial line: each line parsed as the
+    daemon parsed it when it was read (same receive time, same format, no header lines)."""
+    import dataclasses
+
+    from monitor.daemon import row_lines
+    from monitor.feeds.base import decode_line
+    from monitor.feeds.capture import read_capture
+    from monitor.parse import Reject, parse_lines
+    from monitor.store import EMPTY_BATCH
+
+    encoding = getattr(sensor.feed, "encoding", None) or "utf-8"
+    # a serial line has no header: the daemon never skipped its first lines
+    fmt = dataclasses.replace(sensor.format, header_lines=0)
+    total = EMPTY_BATCH
+    first_t = None
+    label = f"ingest:{sensor.station}:{path.name}"
+    try:
+        for raws, recv, linenos, bad, pos in read_capture(path, batch_size):
+            texts = [decode_line(r, encoding) for r in raws]
+            parsed = parse_lines(texts, fmt, np.asarray(recv, dtype=float), linenos, max_ahead)
+            rejects = sorted(parsed.rejects + [Reject(n, text[:500], "not a capture record (cut short?)")
+                                               for n, text in bad], key=lambda r: r.lineno)
+            res = store.write_batch(sensor.station, sensor.role, parsed.t, parsed.value, parsed.time_source,
+                                    rejects, feed=label, skipped=parsed.skipped, lines=row_lines(parsed, texts))
+            if first_reject is not None and rejects and not first_reject:
+                first_reject.append(rejects[0])
+            if len(parsed):
+                lo = int(parsed.t.min())
+                first_t = lo if first_t is None else min(first_t, lo)
+            total = total + res
+            if progress:
+                progress(path, linenos[-1] if linenos else 0, pos, total)
+    except OSError as exc:
+        raise UserError(f"{path}: cannot be read ({exc.strerror or exc})") from None
+    return total, first_t
+
+
+def _telemetry_files(name: str) -> list[Path]:
+    """The file, or the capture files (``*.capture``, in name order) of a capture folder."""
+    from monitor.feeds.capture import SUFFIX
+
+    p = Path(name)
+    if p.is_dir():
+        found = sorted(f for f in p.iterdir() if f.suffix == SUFFIX and f.is_file())
+        if found:
+            return found
+    return [_telemetry_file(name)]
+
+
 def _telemetry_file(name: str) -> Path:
-    """A readable, non-empty text file; binary data is refused before anything is stored."""
+    """A readable, non-empty text file; binary data is refused before anything is stored
+    (a raw capture file may hold any bytes a serial line delivered)."""
+    from monitor.feeds.capture import is_capture
+
     path = input_file(name, "telemetry file")
+    if is_capture(path):
+        return path
     with open(path, "rb") as fh:
         head = fh.read(8192)
     if not head:
@@ -298,7 +387,7 @@ def cmd_ingest(args: argparse.Namespace) -> int:
     sensor = st.sensors[args.sensor]
     if sensor.format is None:
         raise UserError(f"stations[{st.id}].sensors.{args.sensor}.line: no line format configured")
-    paths = [_telemetry_file(f) for f in args.files]
+    paths = [p for f in args.files for p in _telemetry_files(f)]
     tty = sys.stderr.isatty()
     last_print = [time.monotonic()]  # quiet for small files; a line every 5 s for long ones
 
@@ -312,19 +401,22 @@ def cmd_ingest(args: argparse.Namespace) -> int:
             last_print[0] = time.monotonic()
             print(f"{path.name}: {lines:,} lines read", file=sys.stderr)
 
+    from monitor.daemon import future_tolerance
     from monitor.store import EMPTY_BATCH
 
     grand = EMPTY_BATCH
     with _store(cfg, create=True) as store:
         for p in paths:
             first_reject: list = []
-            res, first_t = ingest_file(store, sensor, p, progress, first_reject=first_reject)
+            res, first_t = ingest_file(store, sensor, p, progress, first_reject=first_reject,
+                                       max_ahead=future_tolerance(st))
             if tty:
                 sys.stderr.write("\n")
             print(f"{p}: {res.read:,} rows read, {res.stored:,} stored, {res.duplicates:,} duplicates, "
-                  f"{res.rejected:,} rejected ({res.skipped:,} blank, comment or header lines skipped)")
+                  f"{res.rejected:,} rejected, {res.conflicts:,} conflicting repeats "
+                  f"({res.skipped:,} blank, comment or header lines skipped)")
             grand = grand + res
-            if res.rejected and not (res.stored or res.duplicates):
+            if res.rejected and not (res.stored or res.duplicates or res.conflicts):
                 r = first_reject[0] if first_reject else None
                 why = f"; first: line {r.lineno}: {r.reason}" if r is not None else ""
                 raise UserError(f"{p}: none of its {res.read:,} lines fit stations[{st.id}].sensors."
@@ -336,10 +428,29 @@ def cmd_ingest(args: argparse.Namespace) -> int:
                 store.set_meta(f"processed.{st.id}", str(first_t - 1))
     if len(paths) > 1:
         print(f"total: {grand.read:,} rows read, {grand.stored:,} stored, {grand.duplicates:,} duplicates, "
-              f"{grand.rejected:,} rejected")
-    if grand.rejected:
+              f"{grand.rejected:,} rejected, {grand.conflicts:,} conflicting repeats")
+    if grand.rejected or grand.conflicts:
         print(f"see the rejected lines with: quaywatch status {args.config} --station {st.id} --rejects 20",
               file=sys.stderr)
+    return 0
+
+
+# --------------------------------------------------------------------------- backup
+
+def cmd_backup(args: argparse.Namespace) -> int:
+    cfg = _config(args.config)
+    dest = Path(args.dest).expanduser()
+    if dest.is_dir():
+        stamp = time.strftime("%Y%m%dT%H%M%SZ", time.gmtime())
+        dest = dest / f"{cfg.store_path.stem}-{stamp}{cfg.store_path.suffix or '.db'}"
+    elif not dest.parent.is_dir():
+        raise UserError(f"{args.dest}: folder {dest.parent} does not exist")
+    with _store(cfg) as store:
+        info = store.backup(dest)
+    when = "no feed checkpoint" if info["checkpoint"] is None else \
+        "feeds as of " + dt.datetime.fromtimestamp(info["checkpoint"], dt.timezone.utc).strftime("%Y-%m-%d %H:%M:%SZ")
+    print(f"{info['path']}: backup of {cfg.store_path}, {info['bytes']:,} bytes, {info['observations']:,} "
+          f"observations, {when}; integrity ok")
     return 0
 
 

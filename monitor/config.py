@@ -194,6 +194,12 @@ class Config:
     mail: Any = None
     reports: Any = None
     raw: dict = field(default_factory=dict)
+    capture_dir: Path | None = None   # store.captures; None: "captures" beside the store
+
+    @property
+    def captures(self) -> Path:
+        """Folder of the raw capture files of serial lines (one subfolder per feed)."""
+        return self.capture_dir if self.capture_dir is not None else self.store_path.parent / "captures"
 
     def station(self, station_id: str) -> StationConfig:
         """The station with this id, or a UserError listing the known ones."""
@@ -348,14 +354,19 @@ def validate_config(raw: Any, base_dir: Path | str = ".", path: Path | None = No
         return None, [f"configuration: expected a table, got {_show(raw)}"]
     c.unknown(raw, "", _TOP_KEYS)
 
-    store_path = None
+    store_path = capture_dir = None
     st = c.table(raw.get("store"), "store")
     if st is not None:
-        c.unknown(st, "store", ("path",))
+        c.unknown(st, "store", ("path", "captures"))
         sp = c.value(st, "store", "path", "str", "quaywatch.db", check=lambda s: s.strip() != "",
                      expect="a file path")
         if sp is not None:
             store_path = _resolve(base_dir, sp)
+        if "captures" in st:
+            cp = c.value(st, "store", "captures", "str", None, check=lambda s: s.strip() != "",
+                         expect="a folder path")
+            if cp is not None:
+                capture_dir = _resolve(base_dir, cp)
 
     daemon = _daemon(c, raw.get("daemon"))
     logs = _logging(c, raw.get("logging"), base_dir)
@@ -396,11 +407,18 @@ def validate_config(raw: Any, base_dir: Path | str = ".", path: Path | None = No
             errors.extend(errs)
 
     mail = _resolve_fields(mail, base_dir, ("password_file", "save_dir", "ca_file"))
+    if mail is not None and mail.password_file:
+        from alerts.outbox import password_file_problem
+
+        problem = password_file_problem(mail.password_file)
+        if problem:
+            errors.append(f"mail.password_file {problem}")
     reports = _resolve_fields(reports, base_dir, ("folder",))
     if errors:
         return None, errors
     return Config(path=path, base_dir=base_dir, store_path=store_path, daemon=daemon, logging=logs,
-                  residual=resid, stations=tuple(stations), mail=mail, reports=reports, raw=raw), []
+                  residual=resid, stations=tuple(stations), mail=mail, reports=reports, raw=raw,
+                  capture_dir=capture_dir), []
 
 
 def _daemon(c: _Checker, raw: Any) -> DaemonSettings:

@@ -47,6 +47,7 @@ from monitor import surge_forecast as SF
 from monitor.config import STATION_DATUM_NAMES, Config, SensorConfig, StationConfig, datum_words
 from monitor.errors import UserError
 from monitor.parse import parse_lines
+from monitor.qc import QcSettings
 from monitor.store import EMPTY_BATCH, BatchResult, Store
 
 log = logging.getLogger("monitor.daemon")
@@ -62,8 +63,15 @@ TREND_BACK = 75 * 60
 
 # --------------------------------------------------------------------------- ingest
 
+def future_tolerance(station: StationConfig | None) -> float:
+    """How far ahead of the clock a station's time stamps may be [s] (``qc.future_tolerance``)."""
+    qs = getattr(station, "qc", None) or QcSettings()
+    return float(qs.future_tolerance)
+
+
 def ingest_lines(store: Store, sensor: SensorConfig, lines: Sequence[Any], feed: str | None = None,
-                 state: dict | None = None, received: float | None = None) -> BatchResult:
+                 state: dict | None = None, received: float | None = None,
+                 max_ahead: float | None = QcSettings.future_tolerance) -> BatchResult:
     """Parse lines of one sensor and store them (with the feed checkpoint) in one transaction.
 
     Parameters
@@ -77,6 +85,11 @@ def ingest_lines(store: Store, sensor: SensorConfig, lines: Sequence[Any], feed:
         Feed name (or ingest source) recorded with the rejects; with ``state`` the checkpoint key.
     state : dict, optional
         The feed's checkpoint covering these lines.
+    max_ahead : float, optional
+        A line stamped more than this [s] after it was received goes to the reject log,
+        never into the store (the station's ``qc.future_tolerance``; QARTOD Test 1). A
+        time stamp from the future would otherwise move the processing window, the feed's
+        age and the alert rules' marks. None: not checked.
     """
     if not lines and state is None:
         return EMPTY_BATCH
@@ -89,9 +102,17 @@ def ingest_lines(store: Store, sensor: SensorConfig, lines: Sequence[Any], feed:
         texts = list(lines)
         linenos = None
         recv = now
-    parsed = parse_lines(texts, sensor.format, recv, linenos)
+    parsed = parse_lines(texts, sensor.format, recv, linenos, max_ahead)
     return store.write_batch(sensor.station, sensor.role, parsed.t, parsed.value, parsed.time_source,
-                             parsed.rejects, feed=feed, state=state, skipped=parsed.skipped, now=now)
+                             parsed.rejects, feed=feed, state=state, skipped=parsed.skipped, now=now,
+                             lines=row_lines(parsed, texts))
+
+
+def row_lines(parsed, texts: Sequence[Any]) -> tuple:
+    """(line numbers, texts) of the parsed rows, for the reject log's conflicting repeats."""
+    texts = [texts[i] for i in parsed.index.tolist()] if parsed.index is not None else [None] * len(parsed)
+    return parsed.lineno.tolist(), [t.decode("utf-8", "backslashreplace") if isinstance(t, bytes) else t
+                                    for t in texts]
 
 
 # --------------------------------------------------------------------------- constants
@@ -215,9 +236,11 @@ def refit_station(store: Store, station: StationConfig, now: float | None = None
         Too little history, or a fit that fails.
     """
     now = time.time() if now is None else now
-    end = store.last_time(station.id, "primary")
+    # the fit span ends at the last usable sample: one stamped in the future, or failed,
+    # would leave the span empty
+    end = store.last_time(station.id, "primary", until=int(now + future_tolerance(station)), usable=True)
     if end is None:
-        raise UserError(f"station {station.id}: no observations in {store.path} to fit")
+        raise UserError(f"station {station.id}: no usable observations in {store.path} to fit")
     span = (station.fit_span_days if span_days is None else span_days) * 86400
     obs = store.observations(station.id, "primary", end - span, end)
     obs = obs[~obs["flag"].isin((4, 9))]
@@ -307,7 +330,6 @@ class StationRuntime:
     model: Any = None
     model_source: str = ""
     view: Any = None
-    extremes: pd.DataFrame | None = None
     extremes_span: tuple[float, float] = (math.inf, -math.inf)
     forecaster: Any = None          # monitor.surge_forecast.SurgeForecaster, relearnt every HISTORY_REFRESH
     history_at: float = -math.inf
@@ -316,6 +338,132 @@ class StationRuntime:
     diag_at: float = -math.inf      # data time of the last drift and clock diagnostics [Unix s]
     diag: dict = field(default_factory=dict)  # their results: "drift", "clock.primary", ...
     predicted: "PredictionMemo | None" = field(default=None, repr=False)
+    _extremes: "Frozen | None" = field(default=None, repr=False)
+
+    # The tide's extremes (kept about a week) are read every pass; they are kept as plain
+    # arrays and each read gets a new pandas object (see Frozen).
+    @property
+    def extremes(self) -> pd.DataFrame | None:
+        """Predicted high and low waters around the window (``time``, ``level``, ``kind``)."""
+        return None if self._extremes is None else self._extremes.thaw()
+
+    @extremes.setter
+    def extremes(self, frame: pd.DataFrame | None) -> None:
+        self._extremes = None if frame is None else Frozen(frame)
+
+
+class Frozen:
+    """A DataFrame or Series kept between processing passes as plain numpy arrays;
+    :meth:`thaw` makes a new pandas object from them at each read.
+
+    With pandas' copy-on-write every column, slice or filter taken of a pandas object
+    leaves a weak reference on its blocks and index, pruned only once such a list has
+    doubled past its last size; a frame kept for days and read every pass piled them up:
+    the daemon's memory grew by megabytes a day at 500 stations (``benchmarks/bench_soak.py``).
+    Numpy arrays keep no such list.
+    """
+
+    def __init__(self, obj: pd.DataFrame | pd.Series):
+        self.series = isinstance(obj, pd.Series)
+        self.name = obj.name if self.series else None
+        frame = obj.to_frame(name="__value__") if self.series else obj
+        self.index = self._freeze(frame.index)
+        self.columns = [(c, self._freeze(frame[c])) for c in frame.columns]
+
+    @staticmethod
+    def _freeze(values: Any) -> tuple:
+        if isinstance(values, pd.RangeIndex):
+            return ("range", values.start, values.stop, values.step, values.name)
+        if isinstance(values, pd.DatetimeIndex) and values.tz is not None and len(values) > 2:
+            ns = values.as_unit("ns").asi8
+            step = int(ns[1] - ns[0])
+            if step > 0 and (np.diff(ns) == step).all():  # a regular grid (a resampled history) costs
+                return ("grid", int(ns[0]), step, len(ns), values.dtype, values.name)  # nothing to keep
+        dtype = values.dtype
+        name = getattr(values, "name", None)
+        if isinstance(dtype, pd.DatetimeTZDtype):  # kept as UTC
+            utc = values.tz_convert("UTC") if isinstance(values, pd.Index) else values.dt.tz_convert("UTC")
+            return ("tz", np.array(utc.tz_localize(None) if isinstance(values, pd.Index) else
+                                   utc.dt.tz_localize(None), copy=True), dtype, name)
+        return ("plain", np.array(values, copy=True), dtype, name)
+
+    @staticmethod
+    def _thaw(kept: tuple, index: pd.Index | None = None) -> Any:
+        if kept[0] == "range":
+            return pd.RangeIndex(kept[1], kept[2], kept[3], name=kept[4])
+        if kept[0] == "grid":
+            _, first, step, n, dtype, name = kept
+            ns = first + step * np.arange(n, dtype=np.int64)
+            return pd.DatetimeIndex(ns.astype("datetime64[ns]"), name=name).tz_localize("UTC") \
+                .tz_convert(dtype.tz).as_unit(dtype.unit)
+        kind, arr, dtype, name = kept
+        if index is None:  # an index
+            if kind == "tz":
+                return pd.DatetimeIndex(arr.copy(), name=name).tz_localize("UTC").tz_convert(dtype.tz)
+            return pd.Index(arr.copy(), dtype=dtype, name=name)
+        if kind == "tz":
+            return pd.Series(pd.DatetimeIndex(arr.copy()).tz_localize("UTC").tz_convert(dtype.tz),
+                             index=index, name=name)
+        return pd.Series(arr.copy(), index=index, dtype=dtype, name=name)
+
+    def thaw(self) -> pd.DataFrame | pd.Series:
+        index = self._thaw(self.index)
+        cols = {c: self._thaw(kept, index) for c, kept in self.columns}
+        if self.series:
+            return cols["__value__"].rename(self.name)
+        return pd.DataFrame(cols, index=index)
+
+
+def open_feed_runtimes(cfg: Config) -> list[FeedRuntime]:
+    """Open every configured feed (from the start; the caller restores the checkpoints).
+
+    Raises
+    ------
+    UserError
+        A feed that cannot be opened (a replay file missing); those opened are closed again.
+    """
+    from monitor import feeds as feeds_mod
+
+    out: list[FeedRuntime] = []
+    try:
+        for st in cfg.stations:
+            for sensor in st.sensors.values():
+                if sensor.feed is not None:
+                    feed = feeds_mod.open_feed(sensor.feed, sensor.feed_name,
+                                               capture_dir=cfg.captures / sensor.feed_name)
+                    out.append(FeedRuntime(sensor.feed_name, sensor, feed))
+    except BaseException:
+        for fr in out:
+            fr.feed.close()
+        raise
+    return out
+
+
+def preflight(cfg: Config) -> dict[str, str]:
+    """Everything ``run`` can check before it creates anything (store, lock, log file).
+
+    Every configured constants file is read (and put on its station's datum), and the store's
+    path (and, with a serial line, the capture folder) must be one where the store and its
+    lock can be created: a broken constants file found after the store was made would leave
+    an empty store and a lock file behind.
+
+    Returns
+    -------
+    dict
+        Station id -> where its constants come from, in words, for stations with a constants file.
+
+    Raises
+    ------
+    UserError
+        Naming the file or key and what is wrong.
+    """
+    from monitor.store import check_folder, check_store_path
+
+    sources = {st.id: load_model(None, st)[1] for st in cfg.stations if st.constants is not None}
+    check_store_path(cfg.store_path)
+    if any(getattr(s.feed, "kind", None) == "serial" for st in cfg.stations for s in st.sensors.values()):
+        check_folder(cfg.captures, "store.captures")
+    return sources
 
 
 class PredictionMemo:
@@ -377,10 +525,12 @@ class Daemon:
 
             self.diag, self.engine, self.rules_mod = diagnostics, engine, rules
         self.outbox = None
+        self.claimer: str | None = None
         if cfg.mail is not None:
             from alerts import outbox
 
             self.outbox = outbox
+            self.claimer = outbox.process_identity("daemon")
         self.outbox_worker: OutboxWorker | None = None
         # Every table the jobs write is created here, before the outbox thread opens its own
         # connection: schema changes on the processing path would contend with it for the lock.
@@ -411,16 +561,12 @@ class Daemon:
 
     # ------------------------------------------------------------------ feeds
     def open_feeds(self) -> None:
-        """Open every configured feed and restore it from its stored checkpoint."""
-        from monitor import feeds as feeds_mod
-
-        for st in self.cfg.stations:
-            for sensor in st.sensors.values():
-                if sensor.feed is None:
-                    continue
-                feed = feeds_mod.open_feed(sensor.feed, sensor.feed_name)
-                feed.restore(self.store.checkpoint(sensor.feed_name))
-                self.feeds.append(FeedRuntime(sensor.feed_name, sensor, feed))
+        """Open every configured feed (unless given already) and restore it from its stored
+        checkpoint."""
+        if not self.feeds:
+            self.feeds = open_feed_runtimes(self.cfg)
+        for fr in self.feeds:
+            fr.feed.restore(self.store.checkpoint(fr.name))
 
     def close_feeds(self) -> None:
         for fr in self.feeds:
@@ -439,7 +585,9 @@ class Daemon:
                 lines = fr.feed.poll()
                 if not lines:
                     continue
-                res = ingest_lines(self.store, fr.sensor, lines, fr.name, fr.feed.state())
+                rt = self.stations.get(fr.sensor.station)
+                res = ingest_lines(self.store, fr.sensor, lines, fr.name, fr.feed.state(),
+                                   max_ahead=future_tolerance(rt.cfg if rt is not None else None))
             except UserError as exc:
                 log.error("feed %s: %s", fr.name, exc)
                 continue
@@ -483,7 +631,11 @@ class Daemon:
         """
         st = rt.cfg
         levels = [r for r in st.sensors if r != "barometer"]
-        ends = [t for t in (self.store.last_time(st.id, r) for r in levels) if t is not None]
+        # Nothing stamped beyond the clock (plus the timing test's tolerance) is processed:
+        # the parser refuses such lines, and one left in the store by an older version must
+        # not drag the window (and with it the rules' clock) into the future.
+        horizon = self._horizon(rt, now)
+        ends = [t for t in (self.store.last_time(st.id, r, until=horizon) for r in levels) if t is not None]
         if not ends:
             return 0
         end_t = max(ends)
@@ -500,8 +652,22 @@ class Daemon:
             chunk_end = min(end_t, start_t + PROCESS_CHUNK - 1)
             done += self.process_window(rt, start_t, chunk_end, now, latest=chunk_end == end_t)
             self.store.set_meta(f"processed.{st.id}", str(chunk_end))
-            start_t = chunk_end + 1
+            start_t = self._next_data(st.id, levels, chunk_end, end_t)
         return done
+
+    def _horizon(self, rt: StationRuntime, now: float | None = None) -> int:
+        """The latest sample time that may be processed or show a feed alive [Unix s]: the
+        wall clock (or ``now`` when a caller gives one) plus ``qc.future_tolerance``."""
+        return int((time.time() if now is None else now) + future_tolerance(rt.cfg))
+
+    def _next_data(self, station: str, levels: list[str], after: int, end_t: int) -> int:
+        """Where the next window starts after ``after`` [Unix s]: the next second, or, across
+        a span without a level sample (a station off the air, or one line stamped decades
+        early that lowered the mark), the next sample -- so a lone sample never makes a pass
+        step through empty weeks. ``end_t + 1`` when nothing is left up to ``end_t``."""
+        nxt = [t for t in (self.store.first_time(station, r, after=after, until=end_t) for r in levels)
+               if t is not None]
+        return min(nxt) if nxt else end_t + 1
 
     def process_window(self, rt: StationRuntime, start_t: int, end_t: int, now: float | None = None,
                        latest: bool = True) -> int:
@@ -641,7 +807,10 @@ class Daemon:
         (the next first), the feed's age, and the equipment faults (silent, stuck, drifting,
         clock off)."""
         st = rt.cfg
-        last = {r: self.store.last_time(st.id, r) for r in st.sensors}
+        # A feed is alive by its usable samples only: one that failed quality control, or is
+        # stamped ahead of the clock, says nothing of the sea and must not end a silence.
+        horizon = int(now + future_tolerance(st))
+        last = {r: self.store.last_time(st.id, r, until=horizon, usable=True) for r in st.sensors}
         age = None if last.get("primary") is None else max(0.0, now - last["primary"])
         faults: list = []
         if self.diag is not None:
@@ -722,7 +891,12 @@ class Daemon:
         if not st.fit_from_history or rt.model is not None or now - rt.last_fit_try < 3600:
             return
         rt.last_fit_try = now
-        first, last = self.store.first_time(st.id), self.store.last_time(st.id)
+        horizon = int(now + future_tolerance(st))
+        last = self.store.last_time(st.id, until=horizon, usable=True)
+        # the usable record within the span a fit reads (a lone sample from decades back,
+        # a logger's reset clock, is not a history)
+        first = None if last is None else self.store.first_time(
+            st.id, after=int(last - st.fit_span_days * 86400) - 1, until=horizon, usable=True)
         if first is None or (last - first) / 86400 < st.fit_min_days:
             return
         self.refit(rt, now)
@@ -775,7 +949,8 @@ class Daemon:
         if self.outbox is None:
             return
         try:
-            summary = self.outbox.deliver_due(self.store.db if db is None else db, self.cfg.mail)
+            summary = self.outbox.deliver_due(self.store.db if db is None else db, self.cfg.mail,
+                                              claimer=self.claimer)
             log.debug("outbox: %s", summary)
         except Exception:
             log.exception("outbox delivery failed; will retry")
@@ -845,6 +1020,14 @@ class Daemon:
             self.stop.set()
 
         old = {s: signal.signal(s, on_signal) for s in (signal.SIGTERM, signal.SIGINT)}
+        if self.outbox is not None:
+            # A predecessor killed with a message in flight left it claimed: resend it now
+            # (same Message-ID) rather than hold that recipient's later mail until the
+            # claim lapses.
+            try:
+                self.outbox.take_over_claims(self.store.db, holds_store_lock=self.store.locked)
+            except Exception:
+                log.exception("outbox: taking over the claims of a previous run failed; they lapse on their own")
         if self.outbox_worker is not None:
             self.outbox_worker.start()
         sched.start()
@@ -857,7 +1040,7 @@ class Daemon:
             sched.shutdown(wait=True)  # lets the job in hand finish its batch
             if self.outbox_worker is not None:
                 # a round in hand records each send before the next; one stuck on a server
-                # that does not answer is left (its claim lapses and a restart retries it)
+                # that does not answer is left (a restart takes its claim over at once)
                 self.outbox_worker.halt(timeout=5.0)
             for s, h in old.items():
                 signal.signal(s, h)
@@ -884,7 +1067,7 @@ class OutboxWorker(threading.Thread):
     def run(self) -> None:
         import sqlite_utils
 
-        conn = sqlite3.connect(str(self.owner.store.path), isolation_level=None, timeout=30.0)
+        conn = sqlite3.connect(str(self.owner.store.real_path), isolation_level=None, timeout=30.0)
         try:
             conn.execute("PRAGMA busy_timeout = 30000")
             db = sqlite_utils.Database(conn)
@@ -953,15 +1136,22 @@ def setup_logging(cfg: Config, verbose: int = 0) -> None:
 
 
 def run_daemon(cfg: Config, until_exhausted: bool = False, verbose: int = 0) -> int:
-    """``quaywatch run``: lock the store, open the feeds, run the jobs, close everything."""
-    setup_logging(cfg, verbose)
-    store = Store.open(cfg.store_path, lock=True)
-    daemon = None
+    """``quaywatch run``: check what can be checked, open the feeds, lock the store, run the
+    jobs, close everything. Nothing is created before the checks pass."""
+    preflight(cfg)
+    feeds = open_feed_runtimes(cfg)
+    store = daemon = None
     try:
-        daemon = Daemon(cfg, store)
+        setup_logging(cfg, verbose)
+        store = Store.open(cfg.store_path, lock=True)
+        daemon = Daemon(cfg, store, feeds)
         daemon.open_feeds()
         return daemon.run(until_exhausted=until_exhausted)
     finally:
-        if daemon is not None:
-            daemon.close_feeds()
-        store.close()
+        for fr in feeds:
+            try:
+                fr.feed.close()
+            except Exception:  # closing must not stop the rest from closing
+                log.exception("feed %s: close failed", fr.name)
+        if store is not None:
+            store.close()

@@ -8,7 +8,10 @@ line into one of three bins: an observation, a reject with a reason, or skipped
 Times come out as integer Unix seconds, UTC (rounded to the nearest second); levels in
 metres on the station datum (reading x unit factor + sensor offset); a barometer in hPa.
 A line whose time field is empty, or a format without a time column, takes the time the
-line was received and is marked ``time_source = 'receive'``.
+line was received and is marked ``time_source = 'receive'``. With ``max_ahead``, a line
+stamped further than that ahead of the time it was received is rejected: no gauge can
+report the future, and a clock that does must not move anything downstream (QARTOD
+Test 1, timing; U.S. IOOS 2021).
 """
 from __future__ import annotations
 
@@ -63,6 +66,7 @@ class ParsedLines:
     lineno: np.ndarray       # int64
     rejects: list
     skipped: int
+    index: np.ndarray | None = None  # int64: position of each good line in the input
 
     def __len__(self) -> int:
         return len(self.t)
@@ -82,7 +86,7 @@ def _clean_text(text: str | bytes) -> tuple[str | None, str]:
 
 
 def parse_lines(texts: Sequence[str | bytes], fmt: LineFormat, received: float | Sequence[float],
-                linenos: Sequence[int] | None = None) -> ParsedLines:
+                linenos: Sequence[int] | None = None, max_ahead: float | None = None) -> ParsedLines:
     """Parse a batch of telemetry lines.
 
     Parameters
@@ -95,6 +99,9 @@ def parse_lines(texts: Sequence[str | bytes], fmt: LineFormat, received: float |
         When each line was received [s, Unix UTC]; used for lines without a time.
     linenos : sequence of int, optional
         Line numbers for messages (default 1, 2, ...).
+    max_ahead : float, optional
+        Tolerance [s]: a line stamped more than this after its receive time is rejected
+        (the QARTOD timing test's time stamp check). Not checked when None.
 
     Returns
     -------
@@ -105,12 +112,14 @@ def parse_lines(texts: Sequence[str | bytes], fmt: LineFormat, received: float |
     References
     ----------
     ISO 8601-1:2019, Date and time -- Representations for information interchange.
+    U.S. IOOS (2021). Manual for Real-Time Quality Control of Water Level Data (QARTOD),
+    version 2.1, Test 1 (timing/gap).
     """
     # Millions of small lists would otherwise trigger the cyclic collector over and over.
     was_enabled = gc.isenabled()
     gc.disable()
     try:
-        return _parse_lines(texts, fmt, received, linenos)
+        return _parse_lines(texts, fmt, received, linenos, max_ahead)
     finally:
         if was_enabled:
             gc.enable()
@@ -124,7 +133,7 @@ def _to_float(fields: list[str]) -> np.ndarray:
         return pd.to_numeric(pd.Series(fields, dtype=object), errors="coerce").to_numpy(dtype=float, na_value=np.nan)
 
 
-def _parse_lines(texts, fmt, received, linenos) -> ParsedLines:
+def _parse_lines(texts, fmt, received, linenos, max_ahead=None) -> ParsedLines:
     n = len(texts)
     if linenos is None:
         linenos = range(1, n + 1)
@@ -175,7 +184,7 @@ def _parse_lines(texts, fmt, received, linenos) -> ParsedLines:
     m = len(idx)
     if m == 0:
         return ParsedLines(np.empty(0, np.int64), np.empty(0), np.empty(0, object), np.empty(0, np.int64),
-                           rejects, skipped)
+                           rejects, skipped, np.empty(0, np.int64))
     idx_a = np.asarray(idx, dtype=np.int64)
     reasons: list[str | None] = [None] * m
 
@@ -220,13 +229,31 @@ def _parse_lines(texts, fmt, received, linenos) -> ParsedLines:
     for j in np.flatnonzero(out_of_range):
         if reasons[j] is None:
             reasons[j] = "time is outside the years 1900 to 2200"
+    if max_ahead is not None:
+        ahead = t - recv_sel
+        for j in np.flatnonzero((ahead > max_ahead) & has):
+            if reasons[j] is None:
+                reasons[j] = (f"time {_iso(int(t[j]))} is {_span(float(ahead[j]))} ahead of the clock "
+                              f"when received (more than {_span(max_ahead)} is refused: QARTOD timing test)")
 
     good = np.fromiter((r is None for r in reasons), dtype=bool, count=m)
     for j in np.flatnonzero(~good):
         i = int(idx_a[j])
         rejects.append(Reject(int(linenos[i]), _clean_text(texts[i])[1].rstrip("\r\n"), reasons[j]))
     rejects.sort(key=lambda r: r.lineno)
-    return ParsedLines(t[good], value[good], source[good], linenos[idx_a[good]], rejects, skipped)
+    return ParsedLines(t[good], value[good], source[good], linenos[idx_a[good]], rejects, skipped, idx_a[good])
+
+
+def _iso(t: int) -> str:
+    return pd.Timestamp(t, unit="s", tz="UTC").strftime("%Y-%m-%dT%H:%M:%SZ")
+
+
+def _span(seconds: float) -> str:
+    """A duration for a message: seconds, minutes, hours or days."""
+    for unit, size in (("years", 365.25 * 86400), ("days", 86400), ("h", 3600), ("min", 60)):
+        if seconds >= 2 * size:
+            return f"{seconds / size:.0f} {unit}"
+    return f"{seconds:.0f} s"
 
 
 def _short(s: str) -> str:
@@ -293,10 +320,11 @@ def _to_ns(values: pd.Series) -> np.ndarray:
     return values.to_numpy(dtype="datetime64[ns]").view(np.int64)
 
 
-def parse_line(text: str | bytes, fmt: LineFormat, received: float, lineno: int = 1) -> Observation | Reject | None:
+def parse_line(text: str | bytes, fmt: LineFormat, received: float, lineno: int = 1,
+               max_ahead: float | None = None) -> Observation | Reject | None:
     """Parse one line: an :class:`Observation`, a :class:`Reject` with a reason, or ``None``
     for a blank, comment or header line. Never raises for any text."""
-    res = parse_lines([text], fmt, received, [lineno])
+    res = parse_lines([text], fmt, received, [lineno], max_ahead)
     if len(res):
         return Observation(int(res.t[0]), float(res.value[0]), str(res.time_source[0]), int(res.lineno[0]))
     if res.rejects:

@@ -248,13 +248,14 @@ def gather_day(store: Any, station: Any, day: dt.date, settings: R.ReportSetting
         log.exception("station %s: tide-staff check for the report failed", sid)
 
     rejects, rejected = _rejects(db, sid, t0, t1)
+    conflicts = store.conflict_count(sid, start_t=t0, end_t=t1, by="at")
     counts, episodes = _qc(store, sid, t0, t1)
     return R.DayReport(
         station_id=sid, station_name=station.name, tz=station.tz, day=day, datum=datum,
         datum_note=_datum_note(station), note=getattr(station, "note", "") or "",
         samples=samples, predicted=predicted, sample_interval=sample_interval,
         alert_levels=_alert_levels(station, shift), tides=tides,
-        rejected_lines=rejected, rejects=rejects, qc_counts=counts, qc_episodes=episodes,
+        rejected_lines=rejected, rejects=rejects, conflicts=conflicts, qc_counts=counts, qc_episodes=episodes,
         diagnostics=_diagnostics(store, station, model, end, settings.trend_weeks),
         alerts=_alerts(db, station, t0, t1, shift), constants=_constants(store, sid, model, model_source, shift),
         generated_at=now, forecast=forecast, staff=staff, barometer=barometer, verification=verification,
@@ -473,7 +474,7 @@ def _covered(usable: pd.Series, at: pd.Timestamp, hours: float = 6.0, gap_s: flo
 def _rejects(db: Any, sid: str, t0: int, t1: int) -> tuple[list[R.RejectRow], int]:
     if not _table(db, "rejects"):
         return [], 0
-    n = db.conn.execute("SELECT count(*) FROM rejects WHERE station = ? AND at BETWEEN ? AND ?",
+    n = db.conn.execute("SELECT count(*) FROM rejects WHERE station = ? AND at BETWEEN ? AND ? AND kind IS NULL",
                         (sid, t0, t1)).fetchone()[0]
     rows = db.conn.execute("SELECT feed, lineno, reason, text FROM rejects WHERE station = ? AND at BETWEEN ? AND ? "
                            "ORDER BY id LIMIT ?", (sid, t0, t1, REJECTS_SHOWN)).fetchall()

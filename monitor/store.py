@@ -3,7 +3,9 @@
 One file per network of stations, in WAL mode (readers never block the writer). Times
 are integer Unix seconds UTC in column ``t``; levels are metres on the station datum.
 Observations are keyed by (station, sensor, t), so reading the same line twice stores it
-once. A batch of observations, its rejected lines and the feed checkpoint that covers
+once; a line that repeats a stored time with a different value (a logger re-sending
+another reading for the same minute) keeps the first value and is recorded in the reject
+log as a conflict, with both values. A batch of observations, its rejected lines and the feed checkpoint that covers
 them commit in one transaction: after a crash at any instant the store holds exactly
 the lines up to some checkpoint, and the feed resumes from that checkpoint.
 
@@ -15,6 +17,7 @@ from __future__ import annotations
 import contextlib
 import fcntl
 import json
+import logging
 import os
 import sqlite3
 import time
@@ -28,27 +31,39 @@ import sqlite_utils
 
 from monitor.errors import UserError
 
-SCHEMA_VERSION = 1
+log = logging.getLogger("monitor.store")
+
+SCHEMA_VERSION = 2
+#: Aggregate QARTOD flags a sample may carry and still move anything (1 pass, 2 not
+#: evaluated, 3 suspect); the same set as ``monitor.qc.USABLE_FLAGS``.
+USABLE_SQL = "flag IN (1, 2, 3)"
 DERIVED_COLUMNS = ("observed", "predicted", "residual", "smoothed", "barometric")
 
 
 @dataclass(frozen=True)
 class BatchResult:
-    """What one batch did: lines read, observations stored, duplicates ignored, rejects, skipped."""
+    """What one batch did: lines read, observations stored, exact duplicates ignored,
+    rejects, skipped, and conflicting repeats (same time, another value: the first kept)."""
 
     read: int
     stored: int
     duplicates: int
     rejected: int
     skipped: int = 0
+    conflicts: int = 0
 
     def __add__(self, other: "BatchResult") -> "BatchResult":
         return BatchResult(self.read + other.read, self.stored + other.stored,
                            self.duplicates + other.duplicates, self.rejected + other.rejected,
-                           self.skipped + other.skipped)
+                           self.skipped + other.skipped, self.conflicts + other.conflicts)
 
 
-EMPTY_BATCH = BatchResult(0, 0, 0, 0, 0)
+EMPTY_BATCH = BatchResult(0, 0, 0, 0, 0, 0)
+#: ``rejects.kind`` of a conflicting repeat; unreadable lines have none.
+CONFLICT = "conflict"
+#: Two readings of one time closer than this are the same reading [m or hPa] (far below
+#: any gauge's resolution; a re-read line parses to the very same number).
+SAME_VALUE = 1e-6
 
 
 def _create_v1(db: sqlite_utils.Database) -> None:
@@ -77,8 +92,18 @@ def _create_v1(db: sqlite_utils.Database) -> None:
     db["fits"].create_index(["station", "fitted_at"], if_not_exists=True)
 
 
+def _conflicts_v2(db: sqlite_utils.Database) -> None:
+    # A conflicting repeat is kept in the reject log with the time it repeats, the value kept
+    # (the first) and the value it brought; unreadable lines leave these empty.
+    cols = db["rejects"].columns_dict
+    for name, kind in (("kind", str), ("t", int), ("kept", float), ("value", float)):
+        if name not in cols:
+            db["rejects"].add_column(name, kind)
+    db["rejects"].create_index(["station", "kind"], if_not_exists=True)
+
+
 # version -> function that brings a store at (version - 1) to version
-MIGRATIONS = {1: _create_v1}
+MIGRATIONS = {1: _create_v1, 2: _conflicts_v2}
 
 
 class Store:
@@ -94,8 +119,9 @@ class Store:
         The same connection through sqlite-utils, for other packages' tables.
     """
 
-    def __init__(self, path: Path, conn: sqlite3.Connection, lock_file: Any = None):
+    def __init__(self, path: Path, conn: sqlite3.Connection, lock_file: Any = None, real_path: Path | None = None):
         self.path = path
+        self.real_path = real_path or path  # through any symbolic link: what further connections open
         self.conn = conn
         self.db = sqlite_utils.Database(conn)
         self._lock_file = lock_file
@@ -110,7 +136,8 @@ class Store:
         path : Path
             SQLite file.
         lock : bool
-            Take the one-daemon lock (``PATH.lock``, fcntl.flock); a second holder is refused.
+            Take the one-daemon lock (``PATH.lock`` beside the file the path resolves to,
+            through any symbolic link; fcntl.flock); a second holder is refused.
         create : bool
             When false, a missing file is a UserError (for read-only verbs).
 
@@ -127,13 +154,16 @@ class Store:
                 path.parent.mkdir(parents=True, exist_ok=True)
             except OSError as exc:
                 raise UserError(f"store folder {path.parent}: cannot be created ({exc})") from None
-        lock_file = _take_lock(path) if lock else None
+        # The lock (and SQLite) go by the file's real path: a second name for the same file, a
+        # symbolic link, must meet the same lock.
+        real = path.resolve()
+        lock_file = _take_lock(real, shown=path) if lock else None
         try:
-            conn = sqlite3.connect(str(path), isolation_level=None, check_same_thread=False, timeout=30.0)
+            conn = sqlite3.connect(str(real), isolation_level=None, check_same_thread=False, timeout=30.0)
         except sqlite3.Error as exc:
             _release(lock_file)
             raise UserError(f"store {path}: cannot be opened ({exc})") from None
-        store = cls(path, conn, lock_file)
+        store = cls(path, conn, lock_file, real)
         try:
             conn.execute("PRAGMA busy_timeout = 30000")
             conn.execute("PRAGMA journal_mode = WAL")
@@ -147,6 +177,11 @@ class Store:
             store.close()
             raise
         return store
+
+    @property
+    def locked(self) -> bool:
+        """Whether this store holds the one-daemon lock."""
+        return self._lock_file is not None
 
     def close(self) -> None:
         with contextlib.suppress(Exception):
@@ -199,7 +234,7 @@ class Store:
     def write_batch(self, station: str, sensor: str, t: np.ndarray, value: np.ndarray,
                     time_source: np.ndarray | None = None, rejects: list | tuple = (), *,
                     feed: str | None = None, state: dict | None = None, skipped: int = 0,
-                    now: float | None = None) -> BatchResult:
+                    now: float | None = None, lines: tuple | None = None) -> BatchResult:
         """Store parsed observations, their rejected lines and the feed checkpoint atomically.
 
         Parameters
@@ -218,11 +253,16 @@ class Store:
             Feed name; with ``state``, the checkpoint stored in the same transaction.
         state : dict, optional
             JSON-able feed state covering every line of this batch.
+        lines : (linenos, texts), optional
+            The line number and text of each row, recorded with a conflicting repeat.
 
         Returns
         -------
         BatchResult
-            Existing (station, sensor, t) rows are left alone and counted as duplicates.
+            Existing (station, sensor, t) rows are left alone: a row with the same value
+            counts as a duplicate, one with another value as a conflict, which is also
+            recorded in the reject log (``kind = 'conflict'``, the time ``t``, the value
+            ``kept`` and the ``value`` refused). Within a batch the first line wins.
 
         Notes
         -----
@@ -243,6 +283,10 @@ class Store:
             conn.executemany("INSERT OR IGNORE INTO observations (station, sensor, t, value, time_source) "
                              "VALUES (?, ?, ?, ?, ?)", rows)
             stored = conn.total_changes - before
+            conflicts = []
+            if stored < n:  # some times were there already (or twice in the batch)
+                conflicts = self._conflicts(station, sensor, np.asarray(t, dtype=np.int64),
+                                            np.asarray(value, dtype=float), lines, feed, now)
             if stored:
                 conn.execute("INSERT INTO meta(key, value) VALUES (?, ?) ON CONFLICT(key) DO UPDATE SET "
                              "value = min(CAST(value AS INTEGER), CAST(excluded.value AS INTEGER))",
@@ -250,9 +294,47 @@ class Store:
             if rej_rows:
                 conn.executemany("INSERT INTO rejects (feed, station, sensor, lineno, text, reason, at) "
                                  "VALUES (?, ?, ?, ?, ?, ?, ?)", rej_rows)
+            if conflicts:
+                conn.executemany("INSERT INTO rejects (feed, station, sensor, lineno, text, reason, at, kind, t, "
+                                 "kept, value) VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?)", conflicts)
+                log.warning("%s/%s: %d line(s) repeat a stored time with another value; the first value is "
+                            "kept (see 'quaywatch status')", station, sensor, len(conflicts))
             if feed is not None and state is not None:
                 self._put_checkpoint(feed, state, now)
-        return BatchResult(n + len(rej_rows), stored, n - stored, len(rej_rows), skipped)
+        return BatchResult(n + len(rej_rows), stored, n - stored - len(conflicts), len(rej_rows), skipped,
+                           len(conflicts))
+
+    def _conflicts(self, station: str, sensor: str, t: np.ndarray, value: np.ndarray,
+                   lines: tuple | None, feed: str | None, now: int) -> list[tuple]:
+        """Reject-log rows for the batch rows whose time is stored with another value.
+
+        Called after the batch's ``INSERT OR IGNORE``: the stored value of each time is then
+        the first one (from before, or from earlier in the batch)."""
+        uniq = np.unique(t)
+        kept: dict[int, float] = {}
+        step = 900  # bound variables per statement (SQLite's limit is 999 in old builds)
+        for i in range(0, len(uniq), step):
+            part = uniq[i:i + step].tolist()
+            kept.update(self.conn.execute(
+                f"SELECT t, value FROM observations WHERE station = ? AND sensor = ? AND t IN "
+                f"({', '.join('?' * len(part))})", (station, sensor, *part)).fetchall())
+        first = np.array([kept.get(int(x), np.nan) for x in t])
+        differ = np.flatnonzero(~(np.abs(value - first) <= SAME_VALUE))
+        # the first occurrence of a time in the batch is the row stored (or an exact duplicate)
+        unit = "hPa" if sensor == "barometer" else "m"
+        digits = 1 if unit == "hPa" else 3
+        out = []
+        for j in differ:
+            lineno = text = None
+            if lines is not None:
+                lineno = int(lines[0][j]) if lines[0][j] is not None and lines[0][j] > 0 else None
+                text = str(lines[1][j])[:500]
+            when = pd.Timestamp(int(t[j]), unit="s", tz="UTC").strftime("%Y-%m-%dT%H:%M:%SZ")
+            reason = (f"conflicting repeat of {when}: {value[j]:.{digits}f} {unit} here, {first[j]:.{digits}f} "
+                      f"{unit} stored first (the first value is kept)")
+            out.append((feed, station, sensor, lineno, text, reason, now, CONFLICT, int(t[j]),
+                        float(first[j]), float(value[j])))
+        return out
 
     def take_touched(self, station: str) -> int | None:
         """The station's processing mark, lowered below the earliest time written since.
@@ -331,6 +413,62 @@ class Store:
                  constants, int(bool(in_use)), int(bool(robust)), note))
             return int(cur.lastrowid)
 
+    # ------------------------------------------------------------------ backup
+    def backup(self, dest: str | Path) -> dict:
+        """A consistent copy of the store at ``dest``, taken while a daemon may be writing.
+
+        SQLite's online backup copies the whole database in one step, inside one read
+        transaction: the copy is the store as of one commit (every batch with its feed
+        checkpoint, or neither), while the daemon goes on writing (in WAL mode readers
+        never block the writer). The copy is written beside ``dest`` under a temporary
+        name, checked (``PRAGMA integrity_check``), made a self-contained file (rollback
+        journal, no ``-wal``), fsynced and then renamed into place.
+
+        Returns
+        -------
+        dict
+            ``path``, ``bytes``, ``observations`` and ``checkpoint`` (the latest feed
+            checkpoint time in the copy [Unix s], None without one).
+
+        Raises
+        ------
+        UserError
+            ``dest`` exists, cannot be written, or the copy fails its integrity check.
+        """
+        dest = Path(dest)
+        if dest.exists():
+            raise UserError(f"{dest}: already exists; a backup never overwrites a file (remove it, or name "
+                            f"another file or a folder)")
+        if dest.resolve() == self.path.resolve():
+            raise UserError(f"{dest}: is the store itself")
+        tmp = dest.with_name(f".{dest.name}.partial-{os.getpid()}")
+        try:
+            target = sqlite3.connect(str(tmp), isolation_level=None)
+        except sqlite3.Error as exc:
+            raise UserError(f"{dest}: cannot be created ({exc})") from None
+        try:
+            try:
+                self.conn.backup(target)  # pages=-1: all of it in one step, one snapshot
+                target.execute("PRAGMA journal_mode = DELETE")
+                check = target.execute("PRAGMA integrity_check").fetchall()
+                info = {"observations": target.execute("SELECT count(*) FROM observations").fetchone()[0],
+                        "checkpoint": target.execute("SELECT max(updated_at) FROM feed_checkpoints").fetchone()[0]}
+            finally:
+                target.close()
+            if check != [("ok",)]:
+                raise UserError(f"{dest}: the copy failed SQLite's integrity check ({check[0][0]}); the store "
+                                f"may be damaged: keep it and earlier backups")
+            with open(tmp, "rb+") as fh:
+                os.fsync(fh.fileno())
+            os.replace(tmp, dest)
+            _fsync_dir(dest.resolve().parent)
+        except (sqlite3.Error, OSError) as exc:
+            raise UserError(f"{dest}: backup failed ({exc})") from None
+        finally:
+            with contextlib.suppress(OSError):
+                tmp.unlink()
+        return {"path": dest, "bytes": dest.stat().st_size, **info}
+
     # ------------------------------------------------------------------ reading
     def checkpoint(self, feed: str) -> dict | None:
         row = self.conn.execute("SELECT state FROM feed_checkpoints WHERE feed = ?", (feed,)).fetchone()
@@ -373,15 +511,41 @@ class Store:
             sql, args = sql + " AND sensor = ?", args + [sensor]
         return int(self.conn.execute(sql, args).fetchone()[0])
 
-    def last_time(self, station: str, sensor: str = "primary") -> int | None:
-        row = self.conn.execute("SELECT max(t) FROM observations WHERE station = ? AND sensor = ?",
-                                (station, sensor)).fetchone()
-        return None if row[0] is None else int(row[0])
+    def last_time(self, station: str, sensor: str = "primary", *, until: int | None = None,
+                  usable: bool = False) -> int | None:
+        """Time of a sensor's latest sample [Unix s], or None.
 
-    def first_time(self, station: str, sensor: str = "primary") -> int | None:
-        row = self.conn.execute("SELECT min(t) FROM observations WHERE station = ? AND sensor = ?",
-                                (station, sensor)).fetchone()
-        return None if row[0] is None else int(row[0])
+        Parameters
+        ----------
+        until : int, optional
+            Only samples at or before this time [Unix s] (the clock plus its tolerance:
+            a sample stamped in the future is no sign of life).
+        usable : bool
+            Only samples whose aggregate flag is 1, 2 or 3 (pass, not evaluated yet,
+            suspect): a sample that failed quality control, or is missing, moves nothing.
+        """
+        sql, args = "SELECT t FROM observations WHERE station = ? AND sensor = ?", [station, sensor]
+        if until is not None:
+            sql, args = sql + " AND t <= ?", args + [int(until)]
+        if usable:
+            sql += f" AND {USABLE_SQL}"
+        # ORDER BY ... LIMIT 1 walks the primary key backwards from ``until``
+        row = self.conn.execute(sql + " ORDER BY t DESC LIMIT 1", args).fetchone()
+        return None if row is None else int(row[0])
+
+    def first_time(self, station: str, sensor: str = "primary", *, after: int | None = None,
+                   until: int | None = None, usable: bool = False) -> int | None:
+        """Time of a sensor's earliest sample [Unix s] (after ``after``, at or before ``until``,
+        only usable ones: as :meth:`last_time`), or None."""
+        sql, args = "SELECT t FROM observations WHERE station = ? AND sensor = ?", [station, sensor]
+        if after is not None:
+            sql, args = sql + " AND t > ?", args + [int(after)]
+        if until is not None:
+            sql, args = sql + " AND t <= ?", args + [int(until)]
+        if usable:
+            sql += f" AND {USABLE_SQL}"
+        row = self.conn.execute(sql + " ORDER BY t LIMIT 1", args).fetchone()
+        return None if row is None else int(row[0])
 
     def derived(self, station: str, start_t: int | None = None, end_t: int | None = None) -> pd.DataFrame:
         """Derived series (index UTC times; observed, predicted, residual, smoothed [m], barometric [m])."""
@@ -413,20 +577,40 @@ class Store:
         return dict(zip([d[0] for d in cur.description], row)) if row else None
 
     def rejects(self, station: str | None = None, feed: str | None = None, limit: int = 100) -> pd.DataFrame:
-        """The most recent rejected lines (id, feed, station, sensor, lineno, text, reason, at)."""
-        sql, args = "SELECT id, feed, station, sensor, lineno, text, reason, at FROM rejects WHERE 1", []
+        """The most recent entries of the reject log (id, feed, station, sensor, lineno, text,
+        reason, at, kind, t, kept, value): unreadable lines, and conflicting repeats
+        (``kind = 'conflict'``, with the time repeated, the value kept and the one refused)."""
+        sql, args = ("SELECT id, feed, station, sensor, lineno, text, reason, at, kind, t, kept, value "
+                     "FROM rejects WHERE 1"), []
         if station is not None:
             sql, args = sql + " AND station = ?", args + [station]
         if feed is not None:
             sql, args = sql + " AND feed = ?", args + [feed]
         return pd.read_sql_query(sql + " ORDER BY id DESC LIMIT ?", self.conn, params=(*args, int(limit)))
 
-    def reject_counts(self, station: str | None = None) -> dict[str, int]:
-        """Feed (or ingest source) -> number of rejected lines."""
-        sql, args = "SELECT coalesce(feed, '-'), count(*) FROM rejects", ()
+    def reject_counts(self, station: str | None = None, conflicts: bool = False) -> dict[str, int]:
+        """Feed (or ingest source) -> number of unreadable lines (with ``conflicts``: of
+        conflicting repeats instead)."""
+        sql = "SELECT coalesce(feed, '-'), count(*) FROM rejects WHERE kind IS " + \
+            ("?" if conflicts else "NULL")
+        args: tuple = (CONFLICT,) if conflicts else ()
         if station is not None:
-            sql, args = sql + " WHERE station = ?", (station,)
+            sql, args = sql + " AND station = ?", args + (station,)
         return {f: int(n) for f, n in self.conn.execute(sql + " GROUP BY 1 ORDER BY 1", args)}
+
+    def conflict_count(self, station: str, sensor: str | None = None, start_t: int | None = None,
+                       end_t: int | None = None, by: str = "t") -> int:
+        """Conflicting repeats of a station (one sensor), by the time they repeat (``by="t"``)
+        or the time they were received (``by="at"``) between two times (inclusive)."""
+        col = {"t": "t", "at": "at"}[by]
+        sql, args = "SELECT count(*) FROM rejects WHERE kind = ? AND station = ?", [CONFLICT, station]
+        if sensor is not None:
+            sql, args = sql + " AND sensor = ?", args + [sensor]
+        if start_t is not None:
+            sql, args = sql + f" AND {col} >= ?", args + [int(start_t)]
+        if end_t is not None:
+            sql, args = sql + f" AND {col} <= ?", args + [int(end_t)]
+        return int(self.conn.execute(sql, args).fetchone()[0])
 
     def fits(self, station: str) -> pd.DataFrame:
         """Every fit kept for a station, newest first (without the constants text)."""
@@ -449,8 +633,70 @@ class Store:
 
 # ---------------------------------------------------------------------- helpers
 
-def _take_lock(path: Path):
-    lock_path = path.with_name(path.name + ".lock")
+def check_store_path(path: str | Path, key: str = "store.path") -> None:
+    """Refuse a store path that could not be created or written, creating nothing.
+
+    The file, if there, must be a regular file we may write; otherwise its folder must
+    exist and be writable, or the nearest folder above it that exists must be one where the
+    missing folders can be made (none of them may be a file).
+
+    Raises
+    ------
+    UserError
+        Naming ``key``, the path and what is wrong.
+    """
+    path = Path(path)
+    if path.exists():
+        if not path.is_file():
+            raise UserError(f"{key} {path}: is not a file (a folder or a device?); name a file for the store")
+        if not os.access(path, os.R_OK | os.W_OK):
+            raise UserError(f"{key} {path}: cannot be written by this user")
+        folder = path.resolve().parent
+        if not os.access(folder, os.W_OK | os.X_OK):
+            raise UserError(f"{key} {path}: its folder {folder} is not writable (the lock file and "
+                            f"SQLite's journal go beside the store)")
+        return
+    if path.is_symlink():
+        raise UserError(f"{key} {path}: a symbolic link to nothing ({os.readlink(path)})")
+    check_folder(path.parent, key, shown=path)
+
+
+def check_folder(folder: str | Path, key: str, shown: str | Path | None = None) -> None:
+    """Refuse a folder that neither exists writable nor could be made, creating nothing.
+
+    Raises
+    ------
+    UserError
+        Naming ``key``, the path (``shown``, default the folder) and what is wrong.
+    """
+    folder = Path(folder)
+    shown = folder if shown is None else shown
+    existing = folder
+    while not existing.exists() and existing != existing.parent:
+        if existing.is_symlink():  # a dangling link on the way
+            raise UserError(f"{key} {shown}: folder {existing} is a symbolic link to nothing")
+        existing = existing.parent
+    if not existing.is_dir():
+        raise UserError(f"{key} {shown}: folder {folder} cannot be created, {existing} is a file")
+    if not os.access(existing, os.W_OK | os.X_OK):
+        what = "nothing can be created in it" if existing == folder else \
+            f"folder {folder} cannot be created in it"
+        raise UserError(f"{key} {shown}: {existing} is not writable by this user; {what}")
+
+
+def _fsync_dir(folder: Path) -> None:
+    with contextlib.suppress(OSError):
+        fd = os.open(folder, os.O_RDONLY)
+        try:
+            os.fsync(fd)
+        finally:
+            os.close(fd)
+
+
+def _take_lock(real: Path, shown: Path | None = None):
+    """Take the lock of the store whose resolved path is ``real`` (``shown`` in messages)."""
+    path = shown or real
+    lock_path = real.with_name(real.name + ".lock")
     try:
         fh = open(lock_path, "a+")
     except OSError as exc:

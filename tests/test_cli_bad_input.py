@@ -59,7 +59,7 @@ def port(tmp_path_factory):
         line = { delimiter = ",", time_column = 1, value_column = 2, header_lines = 1 }
         feed = { kind = "file", path = "incoming.csv" }
         """))
-    rows = "".join(f"2030-01-{1 + h // 24:02d}T{h % 24:02d}:00:00Z,{2 + (h % 5) / 10:.2f}\n" for h in range(48))
+    rows = "".join(f"2025-01-{1 + h // 24:02d}T{h % 24:02d}:00:00Z,{2 + (h % 5) / 10:.2f}\n" for h in range(48))
     (d / "good.csv").write_text("time,level\n" + rows)
     (d / "folder").mkdir()
     (d / "empty.csv").write_bytes(b"")
@@ -161,7 +161,7 @@ def test_ingest_of_a_file_with_no_usable_line_is_an_error_and_keeps_the_store(ca
 
 def test_ingest_strips_a_byte_order_mark(capsys, port, tmp_path):
     f = tmp_path / "bom.csv"
-    f.write_bytes(b"\xef\xbb\xbftime,level\r\n2030-02-01T00:00:00Z,1.5\r\n")
+    f.write_bytes(b"\xef\xbb\xbftime,level\r\n2025-02-01T00:00:00Z,1.5\r\n")
     before = stored(port)
     code, _ = run(capsys, "ingest", port / "config.toml", "--station", "harbour", f)
     assert code == 0 and stored(port) == before + 1

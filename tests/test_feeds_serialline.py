@@ -168,3 +168,42 @@ def test_open_feed_passes_framing_to_the_port(pty_pair):
     assert (dev.baudrate, dev.bytesize, dev.parity, dev.stopbits) == (
         4800, 7, serial.PARITY_EVEN, serial.STOPBITS_TWO)
     feed.close()
+
+
+# --------------------------------------------------------------------------- raw capture
+
+def test_each_line_read_is_in_the_capture_file_before_the_poll_returns(pty_pair, tmp_path):
+    from monitor.feeds.capture import MAGIC, read_capture
+
+    pty = pty_pair()
+    feed = SerialFeed("gauge", pty.path, reopen_after=0.02, reopen_max=0.1, capture_dir=str(tmp_path / "cap"))
+    feed.poll()
+    pty.write(b"2031-03-01T00:00Z,1.25\r\n\xff\xfe junk\r\n2031-03-01T00:01Z,1.2")  # the last line unfinished
+    lines = []
+    end = time.monotonic() + 5 * second
+    while len(lines) < 2 and time.monotonic() < end:
+        lines += feed.poll()
+        time.sleep(0.01)
+    (path,) = (tmp_path / "cap").iterdir()
+    assert path.name == time.strftime("%Y-%m-%d", time.gmtime(lines[0].received)) + ".capture"
+    assert path.read_bytes().startswith(MAGIC)
+    ((raws, recv, _, bad, _),) = list(read_capture(path, 100))
+    assert raws == [b"2031-03-01T00:00Z,1.25", b"\xff\xfe junk"] and bad == []  # the bytes as received
+    assert recv == [ln.received for ln in lines]                                # the very same times
+    pty.write(b"6\n")
+    assert poll_until(feed, 1) == ["2031-03-01T00:01Z,1.26"]
+    assert list(read_capture(path, 100))[0][0][-1] == b"2031-03-01T00:01Z,1.26"
+    feed.close()
+
+
+def test_a_record_cut_short_by_a_crash_is_reported_not_read(tmp_path):
+    from monitor.feeds.capture import RawCapture, read_capture
+
+    cap = RawCapture(tmp_path, "gauge", "/dev/null")
+    cap.append([b"2031-03-01T00:00Z,1.25"], 1_900_000_000.25)
+    cap.close()
+    with open(next(tmp_path.iterdir()), "ab") as fh:
+        fh.write(b"1900000001.5\t2031-03-01T00:0")  # no line end: the power went
+    ((raws, recv, linenos, bad, _),) = list(read_capture(next(tmp_path.iterdir()), 100))
+    assert raws == [b"2031-03-01T00:00Z,1.25"] and recv == [1_900_000_000.25] and linenos == [2]
+    assert [n for n, _ in bad] == [3]

@@ -183,6 +183,7 @@ def test_password_is_read_from_the_environment_and_never_stored(db, monkeypatch)
 
 def test_password_file_is_read_without_its_newline(tmp_path):
     (tmp_path / "pw").write_text("hunter2\n")
+    (tmp_path / "pw").chmod(0o600)
     s, _ = mail_settings_from({"sender": "g@port.example", "host": "smtp.port.example", "user": "g",
                                "password_file": str(tmp_path / "pw")}, "mail")
     assert s.password() == "hunter2"
@@ -285,3 +286,36 @@ def test_attachment_content_id_survives_the_queue(db):
     got = outbox_mod._decode_attachments(outbox_mod.outbox_row(db, oid)["attachments"])
     assert [a.get("content_id") for a in got] == ["chart-1@quaywatch", None]
     assert got[0]["data"] == png
+
+
+# --------------------------------------------------------------------------- password file permissions
+
+@pytest.mark.parametrize("mode", [0o644, 0o604, 0o666, 0o602])
+def test_a_password_file_other_users_may_read_or_write_is_refused_with_the_fix(tmp_path, mode):
+    from alerts.outbox import password_file_problem
+
+    pw = tmp_path / "smtp password"
+    pw.write_text("hunter2\n")
+    pw.chmod(mode)
+    problem = password_file_problem(pw)
+    assert problem is not None and f"{mode:04o}" in problem and f"chmod o-rwx '{pw}'" in problem
+
+
+@pytest.mark.parametrize("mode", [0o600, 0o400, 0o640])
+def test_a_password_file_for_its_owner_and_group_is_accepted(tmp_path, mode):
+    from alerts.outbox import password_file_problem
+
+    (tmp_path / "pw").write_text("hunter2\n")
+    (tmp_path / "pw").chmod(mode)
+    assert password_file_problem(tmp_path / "pw") is None
+
+
+def test_a_password_file_opened_up_later_is_refused_when_read(tmp_path):
+    (tmp_path / "pw").write_text("hunter2\n")
+    (tmp_path / "pw").chmod(0o600)
+    s, errors = mail_settings_from({"sender": "g@port.example", "host": "smtp.port.example", "user": "g",
+                                    "password_file": str(tmp_path / "pw")}, "mail")
+    assert errors == []
+    (tmp_path / "pw").chmod(0o644)
+    with pytest.raises(RuntimeError, match="chmod o-rwx"):
+        s.password()

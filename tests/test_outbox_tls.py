@@ -181,6 +181,7 @@ def test_starttls_server_saw_the_configured_credentials(db, starttls_server, ca_
 def test_password_file_works_the_same_way(db, starttls_server, ca_file, tmp_path):
     catcher, auth, port = starttls_server
     (tmp_path / "pw").write_text(PASSWORD + "\n")
+    (tmp_path / "pw").chmod(0o600)
     oid = queue_one(db)
     summary = deliver_due(db, settings(port, "starttls", password_file=str(tmp_path / "pw"), ca_file=ca_file),
                           clock=at(T0))

@@ -136,3 +136,32 @@ def test_any_line_parses_or_is_rejected_with_a_reason(line, fmt, lineno):
 def test_every_line_of_a_batch_is_accounted_for(lines, fmt):
     res = parse_lines(lines, fmt, RECV)
     assert len(res) + len(res.rejects) + res.skipped == len(lines)
+
+
+# --------------------------------------------------------------------------- time stamps ahead of the clock
+# QARTOD Test 1 (timing/gap; U.S. IOOS 2021, v2.1): a time stamp ahead of the clock is a fault.
+second, minute = 1, 60
+
+
+def test_a_far_future_time_stamp_is_rejected_with_its_reason():
+    rej = parse_line("2099-01-01T00:00:00Z,2.5", LineFormat(), RECV, lineno=4, max_ahead=2 * minute)
+    assert isinstance(rej, Reject) and rej.lineno == 4
+    assert "2099-01-01T00:00:00Z" in rej.reason and "ahead of the clock" in rej.reason
+
+
+def test_the_future_tolerance_is_checked_from_both_sides():
+    fmt = LineFormat(time_format="epoch")
+    inside = parse_line(f"{RECV + 2 * minute - 1 * second:.0f},2.5", fmt, RECV, max_ahead=2 * minute)
+    outside = parse_line(f"{RECV + 2 * minute + 1 * second:.0f},2.5", fmt, RECV, max_ahead=2 * minute)
+    assert isinstance(inside, Observation) and isinstance(outside, Reject)
+
+
+def test_each_line_is_held_against_its_own_receive_time():
+    fmt = LineFormat(time_format="epoch")
+    lines = [f"{RECV + 10 * minute:.0f},1.0", f"{RECV + 10 * minute:.0f},1.0"]
+    res = parse_lines(lines, fmt, [RECV, RECV + 9 * minute], max_ahead=2 * minute)
+    assert [r.lineno for r in res.rejects] == [1] and res.lineno.tolist() == [2]
+
+
+def test_without_a_tolerance_the_clock_is_not_consulted():
+    assert isinstance(parse_line("2099-01-01T00:00:00Z,2.5", LineFormat(), RECV), Observation)

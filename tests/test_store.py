@@ -79,6 +79,27 @@ def test_second_lock_holder_is_refused(tmp_path):
     Store.open(tmp_path / "q.db", lock=True).close()  # released on close
 
 
+def test_the_lock_holds_through_a_symlink_to_the_store(tmp_path):
+    first = Store.open(tmp_path / "q.db", lock=True)
+    (tmp_path / "other-name.db").symlink_to(tmp_path / "q.db")
+    try:
+        with pytest.raises(UserError, match="in use by another quaywatch daemon"):
+            Store.open(tmp_path / "other-name.db", lock=True)
+    finally:
+        first.close()
+
+
+def test_the_lock_holds_through_a_symlink_to_the_store_folder(tmp_path):
+    (tmp_path / "data").mkdir()
+    (tmp_path / "elsewhere").symlink_to(tmp_path / "data", target_is_directory=True)
+    first = Store.open(tmp_path / "elsewhere" / "q.db", lock=True)
+    try:
+        with pytest.raises(UserError, match="in use by another quaywatch daemon"):
+            Store.open(tmp_path / "data" / "q.db", lock=True)
+    finally:
+        first.close()
+
+
 def test_newer_schema_is_refused_with_a_clear_message(tmp_path):
     s = Store.open(tmp_path / "q.db")
     s.set_meta("schema_version", str(SCHEMA_VERSION + 1))

@@ -9,7 +9,10 @@ Behaviour
   terminal closed), it is closed and opened again after a back-off that starts at
   ``reopen_after`` seconds and doubles up to ``reopen_max``; the back-off starts afresh once
   data flows again. A partial line cut off by the failure is dropped (and counted).
-- Lines from a serial line cannot be read twice, so the checkpoint holds only counters.
+- Lines from a serial line cannot be read twice, so the checkpoint holds only counters;
+  with a capture folder, every complete line is appended to a daily raw capture file
+  (:mod:`monitor.feeds.capture`), flushed and fsynced, before the poll hands it on, so the
+  record can be rebuilt with ``quaywatch ingest``.
 """
 from __future__ import annotations
 
@@ -19,6 +22,7 @@ from typing import Any, Callable
 import serial
 
 from monitor.feeds.base import MAX_LINE_BYTES, Feed, RawLine, decode_line, int_field
+from monitor.feeds.capture import RawCapture
 
 #: Our parity names to pyserial's.
 PARITIES = {
@@ -62,6 +66,8 @@ class SerialFeed(Feed):
         First and longest wait before opening the port again after a failure [s].
     opener : callable, optional
         Replaces ``serial.serial_for_url`` (same arguments).
+    capture_dir : path, optional
+        Folder of this feed's raw capture files; None keeps none.
     """
 
     kind = "serial"
@@ -69,8 +75,9 @@ class SerialFeed(Feed):
     def __init__(self, name: str, port: str, baud: int = 9600, bytesize: int = 8,
                  parity: str = "none", stopbits: float = 1, flow: str = "none",
                  encoding: str = "utf-8", reopen_after: float = 1.0, reopen_max: float = 60.0,
-                 opener: Callable[..., Any] | None = None):
+                 opener: Callable[..., Any] | None = None, capture_dir: str | None = None):
         super().__init__(name)
+        self.capture = RawCapture(capture_dir, name, port) if capture_dir is not None else None
         self.port = port
         self.settings = dict(
             baudrate=baud,
@@ -149,8 +156,10 @@ class SerialFeed(Feed):
         if self._dev is None and self._buf:
             self.counters["dropped_partial"] += 1  # cut off by the failure above
             self._buf = b""
-        out = [RawLine(decode_line(p, self.encoding), None, self.port, received)
-               for p in parts if p]
+        parts = [p for p in parts if p]
+        if self.capture is not None:
+            self.capture.append(parts, received)  # before anything parses them
+        out = [RawLine(decode_line(p, self.encoding), None, self.port, received) for p in parts]
         self.counters["lines"] += len(out)
         return out
 
@@ -165,6 +174,8 @@ class SerialFeed(Feed):
                 self.counters[key] = 0
 
     def close(self) -> None:
+        if self.capture is not None:
+            self.capture.close()
         if self._dev is not None:
             try:
                 self._dev.close()

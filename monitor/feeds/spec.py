@@ -281,8 +281,11 @@ def feed_from_config(raw: dict, keypath: str, *, ignore: Iterable[str] = (),
     return FeedSpec(**values), []
 
 
-def open_feed(spec: FeedSpec, name: str) -> Feed:
+def open_feed(spec: FeedSpec, name: str, capture_dir: str | os.PathLike | None = None) -> Feed:
     """Open the feed a validated spec describes.
+
+    ``capture_dir`` is the folder for a serial feed's raw capture files (other kinds can be
+    read again from their files and keep none).
 
     Raises
     ------
@@ -305,7 +308,8 @@ def open_feed(spec: FeedSpec, name: str) -> Feed:
         return SerialFeed(name, spec.port, baud=spec.baud, bytesize=spec.bytesize,
                           parity=spec.parity, stopbits=spec.stopbits, flow=spec.flow,
                           encoding=spec.encoding, reopen_after=spec.reopen_after,
-                          reopen_max=spec.reopen_max)
+                          reopen_max=spec.reopen_max,
+                          capture_dir=None if capture_dir is None else os.fspath(capture_dir))
     if spec.kind == "replay":
         from monitor.feeds.replay import ReplayFeed
 
