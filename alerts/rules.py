@@ -9,7 +9,7 @@ takes the state and one value and returns the new state and the events to announ
 Configuration keys (a list of tables under a station, ``[[stations.rules]]``)::
 
     id       = "surge"            # unique per station; episodes are keyed by station + id
-    watch    = "residual_above"   # residual_above | residual_below | level_above |
+    when     = "residual_above"   # residual_above | residual_below | level_above |
                                   # level_below | next_high_water_above | feed_silent |
                                   # equipment_fault
     datum    = "chart"            # level_* and next_high_water_above: a named datum
@@ -23,6 +23,7 @@ Configuration keys (a list of tables under a station, ``[[stations.rules]]``)::
     use_suspect = true            # count QARTOD-suspect samples (3); fail (4) and missing (9)
                                   # never count
     note     = "free text shown in the message"
+    action   = "Keep off the quay wall."   # one line: what readers of the brief form should do
     clear_horizon = "12h"         # level_above: no all-clear while the forecast range of a
                                   # high water within this time reaches the lowest step
     [[stations.rules.steps]]
@@ -32,12 +33,16 @@ Configuration keys (a list of tables under a station, ``[[stations.rules]]``)::
 """
 from __future__ import annotations
 
+import logging
 import math
 import re
+import warnings
 from dataclasses import dataclass, field, replace
 from typing import Any
 
 from predictor.timeutil import parse_duration  # the one duration parser; re-exported
+
+log = logging.getLogger(__name__)
 
 # Kinds of rule, and the sign that turns each into an "above" comparison.
 KINDS = {
@@ -60,6 +65,9 @@ DEFAULT_LOW_STEP_NAMES = ("low", "very low", "extreme low")
 # name containing one is refused so that an email can never be mistaken for an official one.
 RESERVED_WORDS = ("watch", "warning", "advisory", "alert", "severe", "emergency",
                   "red", "amber", "orange", "yellow")
+
+#: The former name of a rule's ``when`` key (still read, with a deprecation notice).
+OLD_KIND_KEY = "watch"
 
 _STATION_DATUM_NAMES = ("station", "station_datum", "sd")
 
@@ -93,6 +101,13 @@ class StationView:
         ``"station"``.
     datum_note : str
         Said under the levels when they are not on chart datum for want of its offset.
+    marks : tuple of (str, float)
+        The port's own marks, (name, level [m, station datum]): the steps of the station's
+        ``level_above`` rules (``alerts.engine.evaluate`` fills them in when empty). The brief
+        email form tells the level now against them.
+    forms : tuple of (str, str)
+        (address, form name) pairs: the form of alert email each address gets
+        (``[mail.forms]``, see :mod:`alerts.forms`); others get ``full``.
     """
 
     id: str
@@ -103,6 +118,8 @@ class StationView:
     url: str = ""
     display_datum: str = ""
     datum_note: str = ""
+    marks: tuple = ()
+    forms: tuple = ()
 
     @property
     def display(self) -> str:
@@ -149,6 +166,7 @@ class Rule:
     use_suspect: bool = True
     fault_kinds: tuple[str, ...] = ()
     note: str = ""
+    action: str = ""            # one line the operator writes: what readers of the brief form should do
     clear_horizon: float = 0.0  # [s] level_above: the all-clear waits on high waters within this time
 
     @property
@@ -200,24 +218,42 @@ def _default_steps(watch: str) -> list[dict]:
     return []
 
 
+def _rule_kind(raw: dict, kp: str, errors: list[str]) -> str | None:
+    """The rule's kind from ``when``; the former key ``watch`` (a word official warning
+    services use) is still read, with a deprecation notice naming the new key."""
+    if OLD_KIND_KEY in raw:
+        if "when" in raw:
+            errors.append(f"{kp}.{OLD_KIND_KEY}: renamed to 'when'; give only when")
+            return None
+        example = f" (write when = \"{raw[OLD_KIND_KEY]}\")" if raw[OLD_KIND_KEY] in KINDS else ""
+        deprecated(f"{kp}.{OLD_KIND_KEY}: renamed to 'when'{example}; "
+                   f"the old key is read for now and will be refused in a later version")
+        kind = raw[OLD_KIND_KEY]
+    else:
+        kind = raw.get("when")
+    if not isinstance(kind, str) or kind not in KINDS:
+        errors.append(f"{kp}.when: one of {', '.join(KINDS)} (got {kind!r})")
+        return None
+    return kind
+
+
 def _one_rule(raw: Any, kp: str, datums: dict[str, float], errors: list[str]) -> Rule | None:
     if not isinstance(raw, dict):
         errors.append(f"{kp}: expected a table, got {type(raw).__name__}")
         return None
     n_before = len(errors)
-    known = {"id", "watch", "datum", "series", "hold", "settle", "band", "notify", "all_clear",
-             "use_suspect", "faults", "note", "steps", "clear_horizon"}
+    known = {"id", "when", "datum", "series", "hold", "settle", "band", "notify", "all_clear",
+             "use_suspect", "faults", "note", "action", "steps", "clear_horizon"}
     for key in raw:
-        if key not in known:
+        if key not in known and key != OLD_KIND_KEY:
             errors.append(f"{kp}.{key}: unknown key (known: {', '.join(sorted(known))})")
 
     rid = raw.get("id")
     if not isinstance(rid, str) or not re.fullmatch(r"[A-Za-z0-9_.-]{1,64}", rid or ""):
         errors.append(f"{kp}.id: required; letters, digits, '_', '-', '.' (got {rid!r})")
         rid = None
-    watch = raw.get("watch")
-    if not isinstance(watch, str) or watch not in KINDS:
-        errors.append(f"{kp}.watch: one of {', '.join(KINDS)} (got {watch!r})")
+    watch = _rule_kind(raw, kp, errors)
+    if watch is None:
         return None
 
     datum, offset = "station", 0.0
@@ -284,6 +320,12 @@ def _one_rule(raw: Any, kp: str, datums: dict[str, float], errors: list[str]) ->
         errors.append(f"{kp}.note: expected text, got {note!r}")
         note = ""
 
+    action = raw.get("action", "")
+    if not isinstance(action, str) or len(action) > 300 or re.search(r"[\x00-\x1f\x7f]", action):
+        errors.append(f"{kp}.action: one line of text (at most 300 characters) saying what readers "
+                      f"should do, got {action!r}")
+        action = ""
+
     raw_steps = raw.get("steps", _default_steps(watch))
     if not isinstance(raw_steps, list) or not raw_steps:
         errors.append(f"{kp}.steps: at least one step, e.g. {{ name = \"high\", at = 0.5 }}")
@@ -336,7 +378,7 @@ def _one_rule(raw: Any, kp: str, datums: dict[str, float], errors: list[str]) ->
     return Rule(id=rid, watch=watch, steps=tuple(steps), datum=datum, datum_offset=offset,
                 series=series, hold=hold, settle=settle, band=float(band), notify=notify,
                 all_clear=flags["all_clear"], use_suspect=flags["use_suspect"],
-                fault_kinds=tuple(faults), note=note, clear_horizon=clear_horizon)
+                fault_kinds=tuple(faults), note=note, action=action.strip(), clear_horizon=clear_horizon)
 
 
 def rules_from_config(raw_list: Any, keypath: str, datums: dict[str, float]) -> tuple[list[Rule], list[str]]:
@@ -375,6 +417,13 @@ def rules_from_config(raw_list: Any, keypath: str, datums: dict[str, float]) -> 
         seen.add(rule.id)
         rules.append(rule)
     return rules, errors
+
+
+def deprecated(message: str) -> None:
+    """Say that a configuration key is deprecated: a ``DeprecationWarning`` (a caller that
+    collects notices, such as ``check``, catches it) and a log line for the daemon's log."""
+    warnings.warn(message, DeprecationWarning, stacklevel=3)
+    log.warning("%s", message)
 
 
 # --------------------------------------------------------------------------- state machine
