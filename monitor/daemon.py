@@ -552,7 +552,8 @@ class Daemon:
         if self.rules_mod is not None:
             view = self.rules_mod.StationView(id=st.id, name=st.name, tz=st.tz, datums=dict(st.datums),
                                                notes=st.note, display_datum=st.display_datum,
-                                               datum_note=st.datum_note)
+                                               datum_note=st.datum_note,
+                                               forms=getattr(self.cfg.mail, "forms", ()) or ())
         kinds = [getattr(s.feed, "kind", None) for s in st.sensors.values() if s.feed is not None]
         rt = StationRuntime(cfg=st, model=model, model_source=source, view=view,
                             replay_clock=bool(kinds) and all(k == "replay" for k in kinds))
