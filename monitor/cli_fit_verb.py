@@ -168,6 +168,42 @@ def read_level_csv(path, tz: str | None = None):
     return times, levels, notes
 
 
+#: Widest tidal range a gauge reads in metres: the largest known (about 16 m, Bay of Fundy,
+#: from memory) with room for a storm surge on top [m].
+MAX_RANGE_M = 25.0
+#: Farthest a record's mean may stand from the datum its levels are on [m]: chart datum and
+#: gauge zeros sit near the lowest water, a few metres below the mean (common practice, no source).
+MAX_MEAN_M = 100.0
+_UNITS = (("centimetres", 100.0), ("millimetres", 1000.0))
+
+
+def check_metres(path, levels: np.ndarray) -> None:
+    """Refuse levels that no tide gauge reads in metres, naming the unit they look like.
+
+    The spread is taken between the 0.5th and 99.5th percentiles, so a few wild values do
+    not decide it. A record passes when that range is at most :data:`MAX_RANGE_M` and its
+    median at most :data:`MAX_MEAN_M` from zero.
+
+    Raises
+    ------
+    UserError
+        Naming the file, the range and mean found, and the unit (centimetres or millimetres)
+        under which the numbers would be a plausible tide.
+    """
+    lo, mid, hi = np.nanpercentile(levels, [0.5, 50.0, 99.5])
+    spread = float(hi - lo)
+    if spread <= MAX_RANGE_M and abs(float(mid)) <= MAX_MEAN_M:
+        return
+    guess = next((name for name, div in _UNITS
+                  if spread / div <= MAX_RANGE_M and abs(float(mid)) / div <= MAX_MEAN_M), None)
+    looks = (f"the numbers look like {guess}; convert the levels to metres (divide by "
+             f"{100 if guess == 'centimetres' else 1000})" if guess else
+             "the numbers are not a tide in metres")
+    raise UserError(f"{path}: levels range over {spread:g} and centre on {float(mid):g}: no tide gauge "
+                    f"reads that in metres (a range above {MAX_RANGE_M:g} m or a mean more than "
+                    f"{MAX_MEAN_M:g} m from its datum); {looks}")
+
+
 def model_summary(model) -> dict:
     """The JSON-ready summary printed by ``fit --json``."""
     meta = dict(getattr(model, "metadata", {}) or {})
@@ -255,6 +291,7 @@ def run_fit(args) -> int:
     times, levels, notes = read_level_csv(args.obs, tz=args.tz)
     for note in notes:
         print(note, file=sys.stderr)
+    check_metres(args.obs, levels)
     with warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always", FitConditioningWarning)
         try:

@@ -255,3 +255,39 @@ def test_fit_says_whether_it_was_robust_and_why(tmp_path, capsys):
     assert "robust least squares (IRLS, Cauchy weights): asked for" in capsys.readouterr().out
     assert run(["fit", str(obs), "--json", "--robust", "off"]) == 0
     assert json.loads(capsys.readouterr().out)["robust_reason"] == "not asked for"
+
+
+# ----------------------------------------------------------------- plausible units
+
+def _scaled(path, factor, offset=0.0):
+    """The invented port's CSV with every level multiplied (metres -> another unit)."""
+    lines = path.read_text().splitlines()
+    out = [lines[0]] + [f"{t},{(float(v) + offset) * factor:.2f}" for t, v in (ln.split(",") for ln in lines[1:])]
+    path.write_text("\n".join(out) + "\n")
+    return path
+
+
+def test_levels_in_centimetres_are_refused_naming_the_unit(tmp_path, capsys):
+    obs = _scaled(write_csv(tmp_path / "obs.csv", days=30), 100.0)   # about 0.4 to 4.5 m -> 40 to 450
+    assert run(["fit", str(obs)]) == 2
+    err = capsys.readouterr().err
+    assert "obs.csv" in err and "look like centimetres" in err and "Traceback" not in err
+
+
+def test_levels_in_millimetres_are_refused_naming_the_unit(tmp_path, capsys):
+    obs = _scaled(write_csv(tmp_path / "obs.csv", days=30), 1000.0)
+    assert run(["fit", str(obs), "--json"]) == 2
+    assert "look like millimetres" in capsys.readouterr().err
+
+
+def test_small_range_in_centimetres_is_caught_by_its_mean(tmp_path, capsys):
+    # a microtidal port in centimetres: range small enough to pass as metres, mean not
+    obs = _scaled(write_csv(tmp_path / "obs.csv", days=30), 5.0, offset=30.0)  # mean about 160, range about 20
+    assert run(["fit", str(obs)]) == 2
+    assert "look like centimetres" in capsys.readouterr().err
+
+
+def test_a_big_tide_in_metres_passes(tmp_path, capsys):
+    # a macrotidal range (3 x the invented port, about 9 m spring range) stays a tide in metres
+    obs = _scaled(write_csv(tmp_path / "obs.csv", days=30), 3.0)
+    assert run(["fit", str(obs), "--json"]) == 0
