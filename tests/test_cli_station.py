@@ -86,6 +86,27 @@ def test_ingest_summary_and_second_run_duplicates_everything(tmp_path, capsys):
     assert "0 stored, 144 duplicates, 1 rejected" in capsys.readouterr().out
 
 
+def test_ingest_does_not_count_a_csv_header_as_a_rejected_line(tmp_path, capsys):
+    # the sensor's lines have no header configured; the backfill file has one
+    cfg = _setup(tmp_path)
+    cfg.write_text(cfg.read_text().replace("line = { header_lines = 1 }\n", ""))
+    data = tmp_path / "gauge.csv"
+    _gauge_file(data, 1)
+    assert main(["ingest", str(cfg), "--station", "testport", str(data)]) == 0
+    out = capsys.readouterr().out
+    assert "144 stored, 0 duplicates, 0 rejected" in out and "(1 blank, comment or header lines skipped)" in out
+
+
+def test_ingest_still_rejects_a_bad_first_line_with_digits(tmp_path, capsys):
+    cfg = _setup(tmp_path)
+    cfg.write_text(cfg.read_text().replace("line = { header_lines = 1 }\n", ""))
+    data = tmp_path / "gauge.csv"
+    _gauge_file(data, 1)
+    data.write_text("2025-10-09T09:00:00Z,not a level\n" + data.read_text().split("\n", 1)[1])
+    assert main(["ingest", str(cfg), "--station", "testport", str(data)]) == 0
+    assert "144 stored, 0 duplicates, 1 rejected" in capsys.readouterr().out
+
+
 def test_ingest_unknown_station_is_a_user_error(tmp_path, capsys):
     cfg = _setup(tmp_path)
     assert main(["ingest", str(cfg), "--station", "nowhere", str(cfg)]) == 2
