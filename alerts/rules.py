@@ -33,7 +33,6 @@ Configuration keys (a list of tables under a station, ``[[stations.rules]]``)::
 """
 from __future__ import annotations
 
-import logging
 import math
 import re
 import warnings
@@ -41,8 +40,6 @@ from dataclasses import dataclass, field, replace
 from typing import Any
 
 from predictor.timeutil import parse_duration  # the one duration parser; re-exported
-
-log = logging.getLogger(__name__)
 
 # Kinds of rule, and the sign that turns each into an "above" comparison.
 KINDS = {
@@ -420,10 +417,9 @@ def rules_from_config(raw_list: Any, keypath: str, datums: dict[str, float]) -> 
 
 
 def deprecated(message: str) -> None:
-    """Say that a configuration key is deprecated: a ``DeprecationWarning`` (a caller that
-    collects notices, such as ``check``, catches it) and a log line for the daemon's log."""
+    """Say that a configuration key is deprecated, as a ``DeprecationWarning`` (the
+    configuration loader turns it into a warning on the log, shown by the command line)."""
     warnings.warn(message, DeprecationWarning, stacklevel=3)
-    log.warning("%s", message)
 
 
 # --------------------------------------------------------------------------- state machine

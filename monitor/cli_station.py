@@ -19,7 +19,7 @@ from pathlib import Path
 import numpy as np
 
 from monitor.cli_common import CAUTION, count, finite_float, input_file, store_errors
-from monitor.config import datum_words
+from monitor.config import datum_words, unsendable
 from monitor.errors import UserError
 from monitor.timeparse import local_text, parse_range
 
@@ -146,6 +146,9 @@ def cmd_check(args: argparse.Namespace) -> int:
     # a broken constants file, or a store that could not be created, is a configuration
     # problem too (checked without creating anything)
     sources = preflight(cfg)
+    problems = unsendable(cfg)
+    if problems:
+        raise UserError(f"{args.config}: " + "; ".join(problems))
     print(f"{args.config}: configuration is valid")
     for st in cfg.stations:
         sensors = ", ".join(f"{r} ({s.units}, feed {getattr(s.feed, 'kind', 'none')})" for r, s in st.sensors.items())

@@ -44,7 +44,7 @@ import pandas as pd
 
 from monitor import residual as R
 from monitor import surge_forecast as SF
-from monitor.config import STATION_DATUM_NAMES, Config, SensorConfig, StationConfig, datum_words
+from monitor.config import STATION_DATUM_NAMES, Config, SensorConfig, StationConfig, datum_words, unsendable
 from monitor.errors import UserError
 from monitor.parse import parse_lines
 from monitor.qc import QcSettings
@@ -1144,6 +1144,8 @@ def run_daemon(cfg: Config, until_exhausted: bool = False, verbose: int = 0) -> 
     store = daemon = None
     try:
         setup_logging(cfg, verbose)
+        for problem in unsendable(cfg):
+            log.warning("%s (the messages wait in the outbox)", problem)
         store = Store.open(cfg.store_path, lock=True)
         daemon = Daemon(cfg, store, feeds)
         daemon.open_feeds()

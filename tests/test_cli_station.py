@@ -75,6 +75,38 @@ def test_check_lists_every_problem(tmp_path, capsys):
     assert "stations[0].datums" not in err
 
 
+RULE = """
+[[stations.rules]]
+id = "surge"
+when = "residual_above"
+notify = ["duty@port.example"]
+steps = [{ name = "raised", at = 0.4 }]
+"""
+
+
+def test_check_refuses_rules_with_recipients_and_no_mail_table(tmp_path, capsys):
+    cfg = _setup(tmp_path)
+    cfg.write_text(cfg.read_text() + RULE)
+    assert main(["check", str(cfg)]) == 2
+    err = capsys.readouterr().err
+    assert "mail: required: stations[0].rules (surge) have recipients" in err and "Traceback" not in err
+
+
+def test_check_accepts_rules_with_a_mail_table(tmp_path, capsys):
+    cfg = _setup(tmp_path)
+    cfg.write_text('[mail]\nsender = "g@port.example"\nsave_dir = "mail"\n' + cfg.read_text() + RULE)
+    assert main(["check", str(cfg)]) == 0, capsys.readouterr().err
+
+
+def test_check_says_the_old_rule_key_is_renamed(tmp_path, caplog):
+    cfg = _setup(tmp_path)
+    cfg.write_text('[mail]\nsender = "g@port.example"\nsave_dir = "mail"\n' + cfg.read_text()
+                   + RULE.replace("when =", "watch ="))
+    with caplog.at_level("WARNING"):
+        assert main(["check", str(cfg)]) == 0
+    assert "stations[0].rules[0].watch: renamed to 'when'" in caplog.text
+
+
 def test_ingest_summary_and_second_run_duplicates_everything(tmp_path, capsys):
     cfg = _setup(tmp_path)
     data = tmp_path / "gauge.csv"
