@@ -50,8 +50,8 @@ DATUM_DESCRIPTIONS = {
     "MLW": "mean low water",
     "MLLW": "mean lower low water",
     "LAT": "lowest astronomical tide",
-    "MN": "mean range (MHW - MLW)",
-    "GT": "great diurnal range (MHHW - MLLW)",
+    "MN": "mean range: mean high water minus mean low water (MHW minus MLW)",
+    "GT": "diurnal range: mean higher high water minus mean lower low water (MHHW minus MLLW)",
 }
 
 

@@ -114,6 +114,27 @@ def test_datums_json(capsys, constants):
     assert d["HAT"] > d["MHHW"] > d["MHW"] > d["MSL"] > d["MLW"] > d["MLLW"] > d["LAT"]
 
 
+def test_datums_write_the_ranges_in_words(capsys, constants):
+    code, out, _ = _run(capsys, "datums", constants, "--years", "1")
+    assert code == 0
+    assert not any(line.split()[:1] in (["MN"], ["GT"]) for line in out.splitlines())
+    mean = next(ln for ln in out.splitlines() if ln.strip().startswith("mean range"))
+    diurnal = next(ln for ln in out.splitlines() if ln.strip().startswith("diurnal range"))
+    assert "MHW minus MLW" in mean and "MHHW minus MLLW" in diurnal
+    levels = {ln.split()[0]: float(ln.split()[1]) for ln in out.splitlines()
+              if ln.split()[:1] and ln.split()[0] in ("MHW", "MLW", "MHHW", "MLLW")}
+    # the ranges are the differences of the printed levels (to their rounding)
+    assert float(mean.split()[2]) == pytest.approx(levels["MHW"] - levels["MLW"], abs=2 * mm)
+    assert float(diurnal.split()[2]) == pytest.approx(levels["MHHW"] - levels["MLLW"], abs=2 * mm)
+
+
+def test_datums_method_names_no_agency(capsys, constants):
+    code, out, _ = _run(capsys, "datums", constants, "--years", "1")
+    _, js, _ = _run(capsys, "datums", constants, "--years", "1", "--json")
+    for text in (out, json.loads(js)["method"]):
+        assert "NOAA" not in text and "tidal cycle" in text
+
+
 def test_datums_table_is_aligned_with_units(capsys, constants):
     code, out, _ = _run(capsys, "datums", constants, "--years", "1")
     rows = [l for l in out.splitlines() if l[:4] in ("HAT ", "MHW ", "LAT ", "MSL ")]
@@ -234,7 +255,7 @@ def test_predict_and_datums_for_a_station_are_on_its_display_datum(capsys, tmp_p
     doc, ref = json.loads(out), json.loads(plain)
     assert doc["reference"] == "chart datum"
     assert doc["datums"]["MSL"] == pytest.approx(ref["datums"]["MSL"] - 1.0, abs=0.1 * mm)
-    assert doc["datums"]["GT"] == pytest.approx(ref["datums"]["GT"], abs=0.1 * mm)  # a range has no datum
+    assert doc["ranges"]["diurnal_range"] == pytest.approx(ref["ranges"]["diurnal_range"], abs=0.1 * mm)  # no datum
 
 
 def test_constants_on_chart_datum_are_moved_by_the_offset_said_in_words(capsys, tmp_path, constants):
