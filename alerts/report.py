@@ -147,6 +147,18 @@ class AlertEpisodeRow:
     unit: str = "m"
     deliveries: tuple[Delivery, ...] = ()
     signed: bool = False   # a residual (datum-free, shown with its sign); else a level on the report's datum
+    kind: str = "water"    # "water" (level, residual, forecast rules) or "gauge" (silent feed, equipment faults)
+
+    @property
+    def peak_text(self) -> str | None:
+        """The peak in the rule's own unit: ``45 min`` of silence, ``2 faults``; None for metres
+        (the template writes levels and residuals with the report's datum)."""
+        if self.peak is None or self.unit == "m":
+            return None
+        if self.unit == "s":
+            return _duration_text(pd.Timedelta(seconds=float(self.peak)))
+        n = int(round(self.peak))
+        return f"{n} fault{'s' if n != 1 else ''}" if self.unit == "" else f"{self.peak:g} {self.unit}"
 
 
 @dataclass(frozen=True)
@@ -666,6 +678,8 @@ def _summary(report: DayReport, figures: DayFigures) -> dict[str, Any]:
         "lowest_residual": figures.lowest_residual,
         "completeness": figures.completeness,
         "alerts": len(report.alerts),
+        "water_alerts": sum(1 for a in report.alerts if a.kind != "gauge"),
+        "gauge_alerts": sum(1 for a in report.alerts if a.kind == "gauge"),
         "failed": figures.failed,
         "datum": report.datum,
     }

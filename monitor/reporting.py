@@ -644,8 +644,9 @@ def _alerts(db: Any, station: Any, t0: int, t1: int, shift: float) -> list[R.Ale
             peak = peak + float(datums.get(ep.get("datum") or "station", 0.0)) - shift
         rows.append(R.AlertEpisodeRow(
             rule=ep["rule"], level=ep.get("top_step") or ep.get("step_now") or "", started=_ts(ep["opened_at"]),
-            cleared=_ts(ep["closed_at"]), peak=peak, unit=ep.get("unit") or "m",
-            deliveries=tuple(deliveries), signed=watch.startswith("residual")))
+            cleared=_ts(ep["closed_at"]), peak=peak, unit="m" if ep.get("unit") is None else ep["unit"],
+            deliveries=tuple(deliveries), signed=watch.startswith("residual"),
+            kind="gauge" if watch in ("equipment_fault", "feed_silent") else "water"))
     return rows
 
 

@@ -314,3 +314,49 @@ def test_day_without_extras_says_what_is_missing():
 def test_email_carries_staff_diagram_by_content_id(mail):
     assert any(cid.endswith("-staff.png@quaywatch.invalid") for cid in mail.images)
     assert "Next high water forecast, as last issued on this day\n  3.57 m at 13 Mar 10:53" in mail.text
+
+
+# --- labels: each rule's value in its own unit; water alerts told from gauge faults ---------------
+
+def _with_fault_episode(day=PLAIN):
+    import dataclasses
+
+    from alerts.report import AlertEpisodeRow
+
+    r = sample_report(day)
+    start = r.alerts[0].started
+    fault = AlertEpisodeRow(rule="gauge", level="equipment fault", started=start, cleared=None, peak=2.0,
+                            unit="", kind="gauge")
+    silent = AlertEpisodeRow(rule="silent", level="feed quiet", started=start, cleared=start, peak=2700.0,
+                             unit="s", kind="gauge")
+    return dataclasses.replace(r, alerts=[*r.alerts, fault, silent])
+
+
+def _alert_rows(html):
+    section = html[html.index('id="alerts"'):]
+    section = section[:section.index("</table>")]
+    return [re.sub(r"<[^>]+>", " ", row) for row in section.split("<tr>")[2:]]
+
+
+def test_equipment_fault_peak_is_a_count_not_metres():
+    rows = _alert_rows(render_day_html(_with_fault_episode()))
+    gauge = next(r for r in rows if "gauge" in r.split())
+    assert "2 faults" in gauge and " m " not in gauge + " " and "m above" not in gauge
+
+
+def test_feed_silent_peak_is_a_duration():
+    rows = _alert_rows(render_day_html(_with_fault_episode()))
+    silent = next(r for r in rows if "silent" in r.split())
+    assert "45 min" in silent and "m above" not in silent
+
+
+def test_index_tells_water_alerts_from_gauge_faults(tmp_path):
+    write_day_report(_with_fault_episode(), tmp_path)
+    html = write_index(tmp_path).read_text()
+    assert "Water alerts" in html and "Gauge faults" in html
+    row = html[html.index('href="skq/2024-03-12.html"'):]
+    row = row[:row.index("</tr>")]
+    cells = re.findall(r'<td class="([^"]*)">\s*([^<\s]+)', row)
+    assert ("n bad", "1") in cells          # the surge episode: a water alert, in red
+    assert ("n fault", "2") in cells        # the two gauge episodes, not red
+    assert sum(1 for cls, _ in cells if "bad" in cls) == 1
