@@ -171,6 +171,16 @@ class ConstituentRow:
     amplitude_ci: float | None = None
     snr: float | None = None
 
+    @property
+    def resolved(self) -> bool:
+        """The amplitude stands clear of its interval (the interval does not reach zero);
+        without an interval, a signal-to-noise ratio of 2 or more; without either, shown."""
+        if self.amplitude_ci is not None and not _isnan(self.amplitude_ci):
+            return self.amplitude > self.amplitude_ci
+        if self.snr is not None and not _isnan(self.snr):
+            return self.snr >= 2.0
+        return True
+
 
 @dataclass(frozen=True)
 class ConstantsInfo:
@@ -188,6 +198,16 @@ class ConstantsInfo:
     samples: int | None = None
     rms: float | None = None
     variance_explained: float | None = None
+
+    @property
+    def resolved(self) -> tuple[ConstituentRow, ...]:
+        """The constituents that stand clear of the noise, largest first."""
+        return tuple(sorted((c for c in self.constituents if c.resolved), key=lambda c: -c.amplitude))
+
+    @property
+    def weak(self) -> tuple[ConstituentRow, ...]:
+        """The rest (too weak to tell from noise), largest first: folded away in the report."""
+        return tuple(sorted((c for c in self.constituents if not c.resolved), key=lambda c: -c.amplitude))
 
 
 @dataclass(frozen=True)

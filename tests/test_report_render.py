@@ -360,3 +360,42 @@ def test_index_tells_water_alerts_from_gauge_faults(tmp_path):
     assert ("n bad", "1") in cells          # the surge episode: a water alert, in red
     assert ("n fault", "2") in cells        # the two gauge episodes, not red
     assert sum(1 for cls, _ in cells if "bad" in cls) == 1
+
+
+def _with_weak_constituents(day=PLAIN):
+    import dataclasses
+
+    from alerts.report import ConstituentRow
+
+    r = sample_report(day)
+    weak = (ConstituentRow("M4", 0.004, 77.7, 0.006, 0.4), ConstituentRow("MS4", 0.002, 310.0, 0.006, 0.1))
+    big = ConstituentRow("M2", 1.35, 118.2, 0.004, 1018984.4)
+    consts = dataclasses.replace(r.constants, constituents=(big, *r.constants.constituents[1:], *weak))
+    return dataclasses.replace(r, constants=consts)
+
+
+def _constants_section(html):
+    sec = html[html.index('id="constants"'):]
+    return sec[:sec.index("</section>")]
+
+
+def test_constants_table_shows_resolved_ones_and_folds_the_rest():
+    sec = _constants_section(render_day_html(_with_weak_constituents()))
+    shown, folded = sec.split("<details>", 1)
+    for name in ("M2", "S2", "K1"):
+        assert f">{name}<" in shown
+    assert ">M4<" in folded and ">MS4<" in folded and ">M4<" not in shown
+    assert "2 more constituents, too weak to tell from noise" in folded
+
+
+def test_constants_table_rounds_its_numbers():
+    sec = _constants_section(render_day_html(_with_weak_constituents()))
+    text = re.sub(r"<[^>]+>", " ", sec)
+    assert "1018984" not in text and "SNR" not in text
+    assert "1.350 \u00b1 0.004 m" in html_unescape(text) and "118\u00b0" in html_unescape(text)
+
+
+def html_unescape(text):
+    import html as html_lib
+
+    return html_lib.unescape(text)
