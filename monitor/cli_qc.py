@@ -185,6 +185,15 @@ def summarise(st, settings: qc.QcSettings, results: dict[str, pd.DataFrame], obs
                          f"{s.difference_mm:+.0f} mm)"])
         if steps.empty:
             diag.append(["datum steps, primary - backup", f"none above {settings.step_min_mm:g} mm"])
+        # The backup's clock against the primary's (the same sea: free of the surge), as the
+        # report shows it.
+        rel = dg.relative_clock(prim, usable["backup"])
+        if np.isfinite(rel["median_min"]):
+            diag.append(["backup clock vs primary", _pm(rel["median_min"], rel["offset_se_min"], "min", 2)
+                         + "  (+ = backup late)"])
+            for e in rel["episodes"]:
+                diag.append(["backup clock off", f"{e['lag_min']:+.1f} min from {_local(e['start'], tz)} "
+                             f"to {_local(e['end'], tz)}"])
     if prim is not None and len(prim) > 100 and model is not None:
         c = dg.clock_offset(prim, model)
         diag.append(["clock offset vs predicted tide",
