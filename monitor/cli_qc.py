@@ -119,8 +119,17 @@ def flag_summary(tests: pd.DataFrame) -> list[list[str]]:
         for code in (qc.PASS, qc.NOT_EVALUATED, qc.SUSPECT, qc.FAIL, qc.MISSING):
             k = int((vals == code).sum())
             cells.append(f"{k} ({k / n:.1%})" if k else "0")
-        rows.append(["aggregate" if col == "flag" else col] + cells)
+        rows.append(["aggregate" if col == "flag" else qc_test_label(col)] + cells)
     return rows
+
+
+def qc_test_label(test: str, short: bool = False) -> str:
+    """A test's name as the daily report gives it (``rate of change (QARTOD 7)``); ``short``:
+    without the bracket (``rate of change``)."""
+    from alerts.report import QC_TEST_NAMES
+
+    name = QC_TEST_NAMES.get(test, test)
+    return name.split(" (")[0] if short else name
 
 
 def summarise(st, settings: qc.QcSettings, results: dict[str, pd.DataFrame], obs: dict[str, pd.DataFrame],
@@ -152,7 +161,7 @@ def summarise(st, settings: qc.QcSettings, results: dict[str, pd.DataFrame], obs
                 seg = tests[(tests.index >= e["start"]) & (tests.index <= e["end"])]
                 which = [c for c in qc.TESTS if (seg[c] >= qc.SUSPECT).any() and (seg[c] != qc.MISSING).any()]
                 rows.append([_local(e["start"], tz), _local(e["end"], tz), str(e["samples"]),
-                             qc.FLAG_NAMES[int(e["worst"])], ", ".join(which)])
+                             qc.FLAG_NAMES[int(e["worst"])], ", ".join(qc_test_label(c, short=True) for c in which)])
             out += ["", "worst episodes:", _table(rows, ["from", "to", "samples", "worst", "tests"], right={2})]
         gaps = qc.find_gaps(tests.index, settings.gap_limit)
         if len(gaps):
