@@ -182,12 +182,14 @@ def run_table(args) -> int:
         raise UserError(str(exc)) from None
     offset = -src.shift
 
+    when = (f"times: local, {tz.key} (its offset from UTC beside each time)" if args.tz else
+            "times: UTC (no --tz given; give --tz ZONE for local times)")
     lines = [
         f"High and low waters from {src.source}",
-        f"times: local, {tz.key} (UTC offset shown); {src.describe()}"
+        f"{when}; {src.describe()}"
         + (f" (constants' levels {offset:+.3f} m)" if offset and not getattr(args, "config", None) else ""),
         "",
-        f"{'date':<15} {'time':>5} {'UTC':>6}  {'tide':<4} {'height [m]':>10}",
+        f"{'date':<15} {'time':>5} {'offset':>6}  {'tide':<4} {'height [m]':>10}",
     ]
     last_date = None
     notes = _stand_notes(events)

@@ -89,6 +89,14 @@ def test_predict_naive_time_with_tz_is_local(capsys, constants):
     assert code == 0 and out.splitlines()[1].startswith("2025-07-01T00:00:00Z")  # summer time, UTC+1
 
 
+def test_table_without_tz_labels_its_columns_honestly(capsys, constants):
+    code, out, _ = _run(capsys, "table", constants, "--days", "1", "--start", "2025-03-01")
+    lines = out.splitlines()
+    head = next(ln for ln in lines if ln.startswith("date"))
+    assert code == 0 and head.split()[:3] == ["date", "time", "offset"]
+    assert "times: UTC (no --tz given" in out
+
+
 def test_unknown_constituent_is_a_one_line_error(capsys, tmp_path):
     path = tmp_path / "c.toml"
     path.write_text('mean = 0\n[[constituents]]\nname = "Q2"\namplitude = 0.1\nphase = 0\n')
