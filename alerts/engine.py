@@ -18,6 +18,7 @@ import json
 import logging
 import math
 from dataclasses import dataclass, field, replace
+from datetime import datetime, timezone
 from typing import Any, Iterable
 
 import numpy as np
@@ -301,6 +302,11 @@ def _context_value(rule: Rule, context: AlertContext) -> float | None:
 
 # --------------------------------------------------------------------------- engine
 
+def iso_utc(t: float) -> str:
+    """Unix seconds as ISO 8601 UTC, ``2025-10-23T12:00:00Z`` (for log lines)."""
+    return datetime.fromtimestamp(float(t), tz=timezone.utc).strftime("%Y-%m-%dT%H:%M:%SZ")
+
+
 def _kind_of(event: Event) -> str:
     return {"opened": "alert", "escalated": "alert", "changed": "alert", "held": "alert",
             "cleared": "all_clear"}[event.kind]
@@ -344,8 +350,8 @@ def _on_event(db, station: StationView, rule: Rule, event: Event, episode_id: in
                            clock=clock)
         db.conn.execute("UPDATE alert_episodes SET messages = messages + ? WHERE id = ?",
                         (len(ids), episode_id))
-    log.info("station %s rule %s: %s %s at %d (value %.3f), %d messages queued",
-             station.id, rule.id, event.kind, step.name, event.t, event.value, len(ids))
+    log.info("station %s rule %s: %s %s at %s (value %.3f %s), %d messages queued",
+             station.id, rule.id, event.kind, step.name, iso_utc(event.t), event.value, rule.unit, len(ids))
     return episode_id, {"station": station.id, "rule": rule.id, "event": event.kind,
                         "step": step.name, "t": event.t, "value": event.value,
                         "episode": episode_id, "outbox": ids}

@@ -10,8 +10,10 @@ import argparse
 import importlib
 import logging
 import sys
+from importlib import metadata
 
 from monitor.errors import UserError
+from monitor.timeparse import log_formatter
 
 # Verb groups, each owning its own module; order is the order shown in --help.
 _GROUPS = (
@@ -23,6 +25,14 @@ _GROUPS = (
 )
 
 
+def version() -> str:
+    """The installed package's version (``pyproject.toml``), or ``unknown`` when not installed."""
+    try:
+        return metadata.version("quaywatch")
+    except metadata.PackageNotFoundError:
+        return "unknown (not installed)"
+
+
 def build_parser() -> argparse.ArgumentParser:
     parser = argparse.ArgumentParser(
         prog="quaywatch",
@@ -31,6 +41,7 @@ def build_parser() -> argparse.ArgumentParser:
         "local emergency authorities come first.",
     )
     parser.add_argument("-v", "--verbose", action="count", default=0, help="more log output")
+    parser.add_argument("--version", action="version", version=f"%(prog)s {version()}")
     sub = parser.add_subparsers(dest="verb", metavar="VERB")
     sub.required = True
     for name in _GROUPS:
@@ -38,13 +49,32 @@ def build_parser() -> argparse.ArgumentParser:
     return parser
 
 
+#: Verbs whose configuration file comes before their action (``alerts CONFIG episodes``), and
+#: the actions; the older order ``staff add CONFIG`` is read too.
+_CONFIG_FIRST = {"staff": ("add", "list"), "alerts": ("episodes", "outbox", "test-mail")}
+
+
+def config_first(argv: list[str]) -> list[str]:
+    """``VERB ACTION CONFIG ...`` rewritten as ``VERB CONFIG ACTION ...`` for the verbs of
+    :data:`_CONFIG_FIRST`; anything else unchanged."""
+    argv = list(argv)
+    i = next((k for k, a in enumerate(argv) if not a.startswith("-")), None)
+    if i is None or argv[i] not in _CONFIG_FIRST or len(argv) < i + 3:
+        return argv
+    action, then = argv[i + 1], argv[i + 2]
+    if action in _CONFIG_FIRST[argv[i]] and not then.startswith("-") and then not in _CONFIG_FIRST[argv[i]]:
+        argv[i + 1], argv[i + 2] = then, action
+    return argv
+
+
 def main(argv: list[str] | None = None) -> int:
     parser = build_parser()
-    args = parser.parse_args(argv)
+    args = parser.parse_args(config_first(sys.argv[1:] if argv is None else argv))
+    handler = logging.StreamHandler(sys.stderr)
+    handler.setFormatter(log_formatter())
     logging.basicConfig(
         level=logging.DEBUG if args.verbose > 1 else logging.INFO if args.verbose else logging.WARNING,
-        format="%(asctime)s %(levelname)s %(name)s: %(message)s",
-        stream=sys.stderr,
+        handlers=[handler],
     )
     try:
         return int(args.func(args) or 0)

@@ -20,6 +20,7 @@ from monitor import qc
 from monitor.cli_common import CAUTION, count, finite_float, store_errors
 from monitor.cli_common import table as _common_table
 from monitor.errors import UserError
+from monitor.timeparse import asked_zone
 from monitor.timeparse import local_text as _local
 from monitor.timeparse import parse_range, parse_time
 
@@ -41,10 +42,12 @@ def register(subparsers) -> None:
     p = subparsers.add_parser("staff", help="tide-staff readings: add or list",
                               description="Tide-staff readings entered by a technician, used to check the "
                               "gauge's offset, scale and timing. " + CAUTION)
+    # quaywatch staff CONFIG ACTION, like alerts CONFIG ACTION (the old order, staff ACTION
+    # CONFIG, is still read: monitor.cli puts the configuration first)
+    p.add_argument("config", help="configuration file (TOML)")
     sub = p.add_subparsers(dest="staff_verb", metavar="ACTION")
     sub.required = True
     a = sub.add_parser("add", help="record one staff reading")
-    a.add_argument("config")
     a.add_argument("--station", required=True)
     a.add_argument("--at", required=True, help="time of the reading, ISO 8601 (no offset: local time)")
     a.add_argument("--reading", required=True, type=finite_float, help="staff reading in metres on the station datum")
@@ -52,7 +55,6 @@ def register(subparsers) -> None:
     a.add_argument("--note", default="", help="free text (sea state, staff used)")
     a.set_defaults(func=store_errors(cmd_staff_add))
     ls = sub.add_parser("list", help="list staff readings with the gauge beside them")
-    ls.add_argument("config")
     ls.add_argument("--station", required=True)
     ls.set_defaults(func=store_errors(cmd_staff_list))
 
@@ -303,7 +305,9 @@ def cmd_flag(args: argparse.Namespace) -> int:
             at, end = parse_time(args.at, "--at", st.tz), None
         n = qc.set_override(store, st.id, sensor, at.timestamp(), None if end is None else end.timestamp(),
                             args.flag, args.who, args.why)
-        span = _local(at, st.tz) + ("" if end is None else f" to {_local(end, st.tz)}")
+        # answered in the zone the time was typed in (the station's for a time without one)
+        asked = asked_zone(args.at, st.tz)
+        span = _local(at, asked) + ("" if end is None else f" to {_local(end, asked_zone(args.end, st.tz))}")
         print(f"{n} sample{'s' if n != 1 else ''} of {st.id}/{sensor} at {span} flagged "
               f"{args.flag} ({qc.FLAG_NAMES[args.flag]}) by {args.who}: {args.why}")
     return 0

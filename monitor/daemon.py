@@ -44,6 +44,7 @@ import pandas as pd
 
 from monitor import residual as R
 from monitor import surge_forecast as SF
+from monitor.timeparse import log_formatter
 from monitor.config import STATION_DATUM_NAMES, Config, SensorConfig, StationConfig, datum_words, unsendable
 from monitor.errors import UserError
 from monitor.parse import parse_lines
@@ -1120,7 +1121,7 @@ def setup_logging(cfg: Config, verbose: int = 0) -> None:
         sched_log.removeFilter(f)
     if verbose < 2:
         sched_log.addFilter(_SkippedRunFilter())
-    fmt = logging.Formatter("%(asctime)s %(levelname)s %(name)s: %(message)s")
+    fmt = log_formatter()  # ISO 8601 UTC stamps
     if not root.handlers:
         h = logging.StreamHandler()
         h.setFormatter(fmt)

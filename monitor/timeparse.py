@@ -8,8 +8,10 @@ day-first and month-first dates are refused rather than guessed.
 from __future__ import annotations
 
 import datetime as dt
+import logging
 import math
 import re
+import time
 import zoneinfo
 from typing import Any
 
@@ -39,6 +41,20 @@ def zone(name: Any, option: str = "--tz") -> dt.tzinfo:
     except (zoneinfo.ZoneInfoNotFoundError, ValueError):
         raise UserError(f"{option} {name!r}: unknown time zone (use an IANA name such as "
                         "Europe/Dublin or UTC)") from None
+
+
+def asked_zone(text: Any, default: Any) -> dt.tzinfo:
+    """The zone a time was typed in, to answer in it: UTC for ``Z``, the fixed offset for
+    ``+01:00``, else ``default`` (the station's zone, for a time typed without one)."""
+    m = _ISO.match(str(text).strip())
+    z = m.group("zone") if m else None
+    if not z:
+        return zone(default)
+    if z in ("Z", "z"):
+        return dt.timezone.utc
+    digits = z[1:].replace(":", "")
+    minutes = int(digits[:2]) * 60 + (int(digits[2:4]) if len(digits) > 2 else 0)
+    return dt.timezone(dt.timedelta(minutes=minutes if z[0] == "+" else -minutes))
 
 
 def _key(z: dt.tzinfo) -> str:
@@ -147,3 +163,12 @@ def local_text(t: Any, tz: Any, *, utc: bool = False) -> str:
         ts = pd.Timestamp(int(t), unit="s", tz="UTC")
     text = ts.tz_convert(zone(tz)).strftime("%Y-%m-%d %H:%M %Z")
     return f"{text} ({ts:%H:%MZ})" if utc else text
+
+
+def log_formatter() -> logging.Formatter:
+    """Log lines stamped in ISO 8601 UTC to the millisecond: ``2025-10-23T12:00:00.123Z
+    INFO name: message`` (the daemon's log and the command line's warnings)."""
+    fmt = logging.Formatter("%(asctime)s.%(msecs)03dZ %(levelname)s %(name)s: %(message)s",
+                            datefmt="%Y-%m-%dT%H:%M:%S")
+    fmt.converter = time.gmtime
+    return fmt
