@@ -138,14 +138,18 @@ def test_caution_comes_before_everything_else(plain_html):
 
 def test_page_is_self_contained(plain_html):
     urls = re.findall(r'(?:src|href)="([^"]*)"', plain_html)
-    assert urls, "expected at least the chart image"
-    assert all(u.startswith("data:") for u in urls), urls
+    assert "<svg" in plain_html, "expected the charts inline"
+    # data: URIs, and references inside the page's own SVG (#id)
+    assert all(u.startswith(("data:", "#")) for u in urls), urls
     assert "<link rel=\"stylesheet\"" not in plain_html and "@import" not in plain_html
     assert '<meta name="viewport"' in plain_html and "@media print" in plain_html
 
 
-def test_chart_is_an_inline_png(plain_html):
-    assert re.search(r'<img class="chart" src="data:image/png;base64,[A-Za-z0-9+/]{1000,}', plain_html)
+def test_charts_are_inline_svg_in_two_layouts_with_text_as_text(plain_html):
+    wide = re.search(r'<div class="chart wide"[^>]*><svg[^>]*viewBox="0 0 ([0-9.]+) ', plain_html)
+    narrow = re.search(r'<div class="chart narrow"[^>]*><svg[^>]*viewBox="0 0 ([0-9.]+) ', plain_html)
+    assert wide and narrow and float(narrow.group(1)) < float(wide.group(1))
+    assert "<text" in plain_html and 'width="691' not in plain_html   # scales: no fixed size
 
 
 def test_station_name_with_html_is_shown_as_text(hostile_html):
@@ -168,7 +172,7 @@ def test_times_on_the_long_day_carry_their_offset():
     html = render_day_html(sample_report(AUTUMN))
     assert "then UTC+00:00 from 01:00" in html
     # Every high/low water row names its offset, since 01:xx happens twice on this day.
-    tide_rows = re.findall(r"<td>(\d\d:\d\d \(UTC[+\u2212]\d\d:\d\d\))</td>", html)
+    tide_rows = re.findall(r'<td data-label="(?:Predicted|Observed)">(\d\d:\d\d \(UTC[+\u2212]\d\d:\d\d\))</td>', html)
     assert len(tide_rows) >= 8
 
 
@@ -176,7 +180,7 @@ def test_day_with_no_data_says_so():
     html = render_day_html(sample_report(PLAIN, empty=True))
     assert "No observations were received for this day." in html
     assert "No alert episode was open during this day." in html
-    assert 'class="chart" src="data:image/png;base64,' in html
+    assert 'class="chart wide"' in html and "No usable observations" in html
 
 
 def test_day_with_a_gap_lists_it():
@@ -300,8 +304,8 @@ def test_staff_check_lists_offset_scale_timing_with_uncertainties(plain_html):
     assert "150 s</td><td class=\"n\">20 s" in part
 
 
-def test_staff_diagram_is_an_inline_png(plain_html):
-    assert re.search(r'<img class="staff" src="data:image/png;base64,', plain_html)
+def test_staff_diagram_is_inline(plain_html):
+    assert re.search(r'<div class="staff"[^>]*><svg', plain_html)
 
 
 def test_day_without_extras_says_what_is_missing():
@@ -356,7 +360,7 @@ def test_index_tells_water_alerts_from_gauge_faults(tmp_path):
     assert "Water alerts" in html and "Gauge faults" in html
     row = html[html.index('href="skq/2024-03-12.html"'):]
     row = row[:row.index("</tr>")]
-    cells = re.findall(r'<td class="([^"]*)">\s*([^<\s]+)', row)
+    cells = re.findall(r'<td class="([^"]*)"[^>]*>\s*([^<\s]+)', row)
     assert ("n bad", "1") in cells          # the surge episode: a water alert, in red
     assert ("n fault", "2") in cells        # the two gauge episodes, not red
     assert sum(1 for cls, _ in cells if "bad" in cls) == 1
