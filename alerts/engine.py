@@ -350,8 +350,9 @@ def _on_event(db, station: StationView, rule: Rule, event: Event, episode_id: in
                            clock=clock)
         db.conn.execute("UPDATE alert_episodes SET messages = messages + ? WHERE id = ?",
                         (len(ids), episode_id))
-    log.info("station %s rule %s: %s %s at %s (value %.3f %s), %d messages queued",
-             station.id, rule.id, event.kind, step.name, iso_utc(event.t), event.value, rule.unit, len(ids))
+    log.info("station %s rule %s: %s %s at %s (value %s), %d messages queued",
+             station.id, rule.id, event.kind, step.name, iso_utc(event.t),
+             f"{event.value:.3f} {rule.unit}".strip(), len(ids))
     return episode_id, {"station": station.id, "rule": rule.id, "event": event.kind,
                         "step": step.name, "t": event.t, "value": event.value,
                         "episode": episode_id, "outbox": ids}
