@@ -28,8 +28,8 @@ from typing import Any, Mapping
 
 import jinja2
 
-from alerts.message import (CAUTION, CAUTION_LINE, SUBJECT_PREFIX, _duration, _fault_line, _m, _zone,
-                            _headline_and_subject, alert_subject, clean_header, clean_line, compose_alert, datum_label,
+from alerts.message import (CAUTION, CAUTION_LINE, _duration, _fault_line, _m, _zone,
+                            _headline_and_subject, alert_subject, clean_line, compose_alert, datum_label,
                             facts_lines, format_times, step_text)
 from alerts.rules import Event, Rule, StationView
 
@@ -250,10 +250,6 @@ def _high_water_sentence(station: StationView, marks, facts: dict, t: float) -> 
     return text + "."
 
 
-def _action(rule: Rule, index: int) -> str:
-    return clean_line(rule.action, 300)
-
-
 def brief_lines(station: StationView, rule: Rule, event: Event, facts: dict | None = None,
                 step_index: int | None = None) -> list[str]:
     """The brief form's lines: headline with the level now, next high water, action.
@@ -267,7 +263,7 @@ def brief_lines(station: StationView, rule: Rule, event: Event, facts: dict | No
     hw = _high_water_sentence(station, marks, facts, event.t)
     if hw and rule.watch not in ("feed_silent", "equipment_fault"):
         lines.append(hw)
-    action = _action(rule, index)
+    action = clean_line(rule.action, 300)
     if action and event.kind != "cleared":
         lines.append(f"What to do: {action}")
     return lines
@@ -322,5 +318,4 @@ def compose_gauge(station: StationView, rule: Rule, event: Event, facts: dict | 
 
 
 __all__ = ["FORMS", "DEFAULT_FORM", "FormsError", "forms_from_config", "form_for", "compose",
-           "compose_brief", "compose_gauge", "brief_lines", "level_marks", "SUBJECT_PREFIX",
-           "clean_header"]
+           "compose_brief", "compose_gauge", "brief_lines", "level_marks"]

@@ -222,7 +222,8 @@ def _rule_kind(raw: dict, kp: str, errors: list[str]) -> str | None:
         if "when" in raw:
             errors.append(f"{kp}.{OLD_KIND_KEY}: renamed to 'when'; give only when")
             return None
-        example = f" (write when = \"{raw[OLD_KIND_KEY]}\")" if raw[OLD_KIND_KEY] in KINDS else ""
+        old = raw[OLD_KIND_KEY]
+        example = f" (write when = \"{old}\")" if isinstance(old, str) and old in KINDS else ""
         deprecated(f"{kp}.{OLD_KIND_KEY}: renamed to 'when'{example}; "
                    f"the old key is read for now and will be refused in a later version")
         kind = raw[OLD_KIND_KEY]
