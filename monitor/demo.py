@@ -275,7 +275,7 @@ def run_daemon(config: Path, log: Path, timeout: float) -> None:
         args = None
     try:
         if args is None:
-            code = ("import sys; from monitor.config import load_config; from monitor.daemon import run_daemon; "
+            code = ("import sys; from monitor.service.config import load_config; from monitor.service.daemon import run_daemon; "
                     "sys.exit(run_daemon(load_config(sys.argv[1]), until_exhausted=True))")
             with open(log, "a") as fh:
                 res = subprocess.run([sys.executable, "-c", code, str(config)], stdout=fh,
@@ -324,7 +324,7 @@ def technician_checks(store: Path, station: str, start: dt.datetime, end: dt.dat
     """Drift and timing of the backup against the primary in [start, end), from usable samples."""
     import pandas as pd
 
-    from monitor.diagnostics import clock_episodes, sensor_drift, sensor_timing
+    from monitor.quality.diagnostics import clock_episodes, sensor_drift, sensor_timing
 
     con = sqlite3.connect(f"file:{store}?mode=ro", uri=True)
 
@@ -404,8 +404,7 @@ def read_summary(out: Path, station: str, chart: float, mail: list[CaughtMail],
     """Read what the run produced in [start, end): peaks, episodes and quality-control findings."""
     import pandas as pd
 
-    from monitor import qc
-
+    from monitor.quality import checks as qc
     store = out / "quaywatch.db"
     s = Summary(mail=list(mail), reports=sorted((out / "reports").rglob("*.html")))
     for m in s.mail:

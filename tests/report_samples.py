@@ -9,7 +9,7 @@ import datetime as dt
 import numpy as np
 import pandas as pd
 
-from alerts.report import (
+from alerts.reports.model import (
     AlertEpisodeRow, AlertLevel, BarometerPart, ConstantsInfo, ConstituentRow, DayReport, Delivery, Diagnostic,
     HighWaterForecast, QcEpisode, RejectRow, StaffCheck, TideRow, day_bounds, empty_samples,
 )

@@ -15,7 +15,7 @@
 - :func:`equipment_faults`: fault conditions as plain data for the alerts engine.
 
 All functions are pure: pandas Series on a UTC DatetimeIndex in, numbers and frames out.
-Pass *usable* samples (see :func:`monitor.qc.usable_mask`): spikes bias the estimates.
+Pass *usable* samples (see :func:`monitor.quality.checks.usable_mask`): spikes bias the estimates.
 
 Sign conventions: ``lag`` [s] is positive when events appear in the gauge record later
 than they happened (the gauge's clock runs fast, or its filter delays): the record
@@ -39,7 +39,7 @@ import numpy as np
 import pandas as pd
 from scipy import signal, stats
 
-from monitor.qc import USABLE_FLAGS, QcSettings, difference_at, seconds, utc_index
+from monitor.quality.checks import USABLE_FLAGS, QcSettings, difference_at, seconds, utc_index
 
 DAY = 86400.0
 MM = 1e-3

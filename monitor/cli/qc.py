@@ -16,12 +16,12 @@ import sys
 import numpy as np
 import pandas as pd
 
-from monitor import qc
-from monitor.cli_common import CAUTION, count, finite_float, store_errors
-from monitor.cli_common import table as _common_table
+from monitor.quality import checks as qc
+from monitor.cli.common import CAUTION, count, finite_float, store_errors
+from monitor.cli.common import table as _common_table
 from monitor.errors import UserError
-from monitor.timeparse import local_text as _local
-from monitor.timeparse import parse_range, parse_time
+from monitor.cli.timeparse import local_text as _local
+from monitor.cli.timeparse import parse_range, parse_time
 
 
 
@@ -74,8 +74,8 @@ def register(subparsers) -> None:
 # --------------------------------------------------------------------------- helpers
 
 def _open(config: str, create: bool = False):
-    from monitor.config import load_config
-    from monitor.store import Store
+    from monitor.service.config import load_config
+    from monitor.store.database import Store
 
     cfg = load_config(config)
     return cfg, Store.open(cfg.store_path, create=create, lock=False)
@@ -90,7 +90,7 @@ def _sensor(st, sensor: str) -> str:
 
 def _model(store, st):
     try:
-        from monitor.daemon import load_model
+        from monitor.service.daemon import load_model
     except ImportError:
         return None, "no tide model available"
     model, source = load_model(store, st)
@@ -128,8 +128,7 @@ def summarise(st, settings: qc.QcSettings, results: dict[str, pd.DataFrame], obs
               n_episodes: int = 5, conflicts: dict[str, int] | None = None) -> str:
     """The text report of ``quaywatch qc`` (pure: frames in, text out). ``conflicts`` is the
     number of conflicting repeats (a stored time sent again with another value) per sensor."""
-    from monitor import diagnostics as dg
-
+    from monitor.quality import diagnostics as dg
     tz = st.tz
     out = [f"Quality control, station {st.id} ({st.name}), {_local(start, tz)} to {_local(end, tz)}",
            f"times in {tz} (local); levels in metres; tide model: {model_source}", ""]

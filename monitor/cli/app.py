@@ -15,11 +15,11 @@ from monitor.errors import UserError
 
 # Verb groups, each owning its own module; order is the order shown in --help.
 _GROUPS = (
-    "monitor.cli_tide",      # fit, predict, table, datums
-    "monitor.cli_station",   # check, run, status, ingest, export
-    "monitor.cli_qc",        # qc, staff, flag
-    "monitor.cli_alerts",    # alerts (list, outbox, test-mail)
-    "monitor.cli_report",    # report
+    "monitor.cli.tide",      # fit, predict, table, datums
+    "monitor.cli.station",   # check, run, status, ingest, export
+    "monitor.cli.qc",        # qc, staff, flag
+    "monitor.cli.alerts",    # alerts (list, outbox, test-mail)
+    "monitor.cli.report",    # report
 )
 
 

@@ -1,6 +1,6 @@
 """Tide verbs: ``predict``, ``table`` (high and low waters) and ``datums``.
 
-The ``fit`` verb lives in :mod:`monitor.cli_fit_verb` and is registered from here when
+The ``fit`` verb lives in :mod:`monitor.cli.fit` and is registered from here when
 that module is present.  Each verb function takes the parsed ``args`` and returns an
 exit code; bad input raises :class:`monitor.errors.UserError`.
 """
@@ -13,9 +13,9 @@ import sys
 import numpy as np
 import pandas as pd
 
-from monitor.cli_common import finite_float, input_file
+from monitor.cli.common import finite_float, input_file
 from monitor.errors import UserError
-from monitor.timeparse import offset_text, parse_date, parse_range, parse_time, zone
+from monitor.cli.timeparse import offset_text, parse_date, parse_range, parse_time, zone
 from predictor.timeutil import parse_duration
 
 __all__ = ["register", "run_predict", "run_table", "run_datums", "CAUTION", "parse_step"]
@@ -91,9 +91,9 @@ class _Source:
         self.note = ""
 
     def _from_station(self, cfg_path: str, sid: str) -> None:
-        from monitor.config import load_config
-        from monitor.daemon import load_model
-        from monitor.store import Store
+        from monitor.service.config import load_config
+        from monitor.service.daemon import load_model
+        from monitor.store.database import Store
 
         cfg = load_config(cfg_path)
         st = cfg.station(sid)
@@ -119,7 +119,7 @@ class _Source:
 
 
 def _words(datum: str) -> str:
-    from monitor.config import datum_words
+    from monitor.service.config import datum_words
 
     return datum_words(datum)
 
@@ -286,9 +286,9 @@ def _source_options(p) -> None:
 def register(subparsers) -> None:
     """Add ``predict``, ``table``, ``datums`` (and ``fit`` when present)."""
     try:
-        from monitor import cli_fit_verb
+        from monitor.cli import fit as cli_fit_verb
     except ModuleNotFoundError as exc:
-        if exc.name != "monitor.cli_fit_verb":
+        if exc.name != "monitor.cli.fit":
             raise
     else:
         cli_fit_verb.register(subparsers)

@@ -21,7 +21,7 @@ import pandas as pd  # noqa: E402
 from matplotlib.figure import Figure  # noqa: E402
 
 if TYPE_CHECKING:
-    from alerts.report import AlertLevel, DayReport, Diagnostic, StaffCheck
+    from alerts.reports.model import AlertLevel, DayReport, Diagnostic, StaffCheck
 
 # Palette of our own; each role also has a line style or marker shape.
 OBSERVED = "#0b4f71"
@@ -93,7 +93,7 @@ def day_chart(report: "DayReport", width: float = 9.6, height: float = 6.0, dpi:
     Samples flagged fail (QARTOD 4) are marked but never set the axis range: a wild spike
     is drawn clipped at the panel's edge rather than squashing the tide flat.
     """
-    from alerts.report import day_bounds, day_figures
+    from alerts.reports.model import day_bounds, day_figures
 
     start, end = day_bounds(report.day, report.tz)
     zone = ZoneInfo(report.tz)

@@ -3,7 +3,7 @@
 A report covers one station and one *local* day (midnight to midnight in the station's
 time zone, so 23 or 25 hours long on the days the clocks change). Everything it shows is
 held in a :class:`DayReport` of plain Python and pandas values, so rendering needs no store:
-``monitor.reporting`` fills one from the store, tests build one by hand.
+``monitor.service.reporting`` fills one from the store, tests build one by hand.
 
 Output is a single self-contained HTML file (CSS and images inline, no network fetches),
 readable on a phone and printable, plus an index page over stations and days, and an email
@@ -34,7 +34,7 @@ CAUTION = (
     "navigation, berthing or safety."
 )
 
-TEMPLATES = Path(__file__).with_name("templates")
+TEMPLATES = Path(__file__).resolve().parent.parent / "templates"
 
 #: QARTOD flag values and the words we show for them (U.S. IOOS 2021, QARTOD water level v2.1).
 FLAG_WORDS = {1: "pass", 2: "not evaluated", 3: "suspect", 4: "fail", 9: "missing"}
@@ -357,7 +357,7 @@ def empty_samples() -> pd.DataFrame:
 class ReportSettings:
     """Where and when daily reports are written, and who gets them.
 
-    ``folder`` as given in the configuration (``monitor.config`` resolves it against the
+    ``folder`` as given in the configuration (``monitor.service.config`` resolves it against the
     configuration file's folder); ``write_at`` is the station's local time of day at which
     the previous day's report is written; ``keep_days`` 0 keeps reports for ever.
     """
@@ -729,8 +729,7 @@ def _extra_charts(report: DayReport, charts: Any) -> dict[str, bytes | None]:
 
 def render_day_html(report: DayReport) -> str:
     """Render a station's day as one self-contained HTML page (images inline as data URIs)."""
-    from alerts import charts
-
+    from alerts.reports import charts
     chart_src = _data_uri(charts.day_chart(report))
     extra = {k: _data_uri(v) if v else None for k, v in _extra_charts(report, charts).items()}
     return _environment().get_template("report_day.html").render(
@@ -752,7 +751,7 @@ class ReportEmail:
     images: dict[str, bytes]
 
     def attachments(self) -> list[dict]:
-        """The images as attachment dicts for :func:`alerts.message.build_email` (through the
+        """The images as attachment dicts for :func:`alerts.mail.message.build_email` (through the
         outbox): ``filename``, ``content_type``, ``data`` and ``content_id``, so they go inline."""
         return [{"filename": cid.split("@", 1)[0], "content_type": "image/png", "data": png, "content_id": cid}
                 for cid, png in self.images.items()]
@@ -763,10 +762,9 @@ def render_day_email(report: DayReport) -> ReportEmail:
 
     The image keys are ``<station>-<day>-<what>.png@quaywatch.invalid``: their local part is
     the file name, which lets the images go inline even through a queue that keeps only the
-    file name of an attachment (see :func:`alerts.message.build_email`).
+    file name of an attachment (see :func:`alerts.mail.message.build_email`).
     """
-    from alerts import charts
-
+    from alerts.reports import charts
     stem = f"{report.station_id}-{report.day.isoformat()}"
     domain = "@quaywatch.invalid"
     pngs = {"chart": charts.day_chart(report), **_extra_charts(report, charts)}

@@ -15,9 +15,9 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
-from monitor.config import datum_words
+from monitor.service.config import datum_words
 from monitor.errors import UserError
-from monitor.timeparse import zone as _zone
+from monitor.cli.timeparse import zone as _zone
 
 __all__ = ["CAUTION", "read_level_csv", "register", "run_fit", "model_summary"]
 

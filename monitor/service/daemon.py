@@ -42,15 +42,15 @@ from typing import Any, Sequence
 import numpy as np
 import pandas as pd
 
-from monitor import residual as R
-from monitor import surge_forecast as SF
-from monitor.config import STATION_DATUM_NAMES, Config, SensorConfig, StationConfig, datum_words
+from monitor.surge import residual as R
+from monitor.surge import forecast as SF
+from monitor.service.config import STATION_DATUM_NAMES, Config, SensorConfig, StationConfig, datum_words
 from monitor.errors import UserError
-from monitor.parse import parse_lines
-from monitor.qc import QcSettings
-from monitor.store import EMPTY_BATCH, BatchResult, Store
+from monitor.feeds.parse import parse_lines
+from monitor.quality.checks import QcSettings
+from monitor.store.database import EMPTY_BATCH, BatchResult, Store
 
-log = logging.getLogger("monitor.daemon")
+log = logging.getLogger("monitor.service.daemon")
 
 PROCESS_CHUNK = 7 * 86400   # [s] most data time processed in one pass (bounds memory in a backfill)
 REWRITE_BACK = 3600         # [s] derived rows before a window that are recomputed (QC may revise flags)
@@ -331,7 +331,7 @@ class StationRuntime:
     model_source: str = ""
     view: Any = None
     extremes_span: tuple[float, float] = (math.inf, -math.inf)
-    forecaster: Any = None          # monitor.surge_forecast.SurgeForecaster, relearnt every HISTORY_REFRESH
+    forecaster: Any = None          # monitor.surge.forecast.SurgeForecaster, relearnt every HISTORY_REFRESH
     history_at: float = -math.inf
     replay_clock: bool = False
     last_fit_try: float = -math.inf
@@ -457,7 +457,7 @@ def preflight(cfg: Config) -> dict[str, str]:
     UserError
         Naming the file or key and what is wrong.
     """
-    from monitor.store import check_folder, check_store_path
+    from monitor.store.database import check_folder, check_store_path
 
     sources = {st.id: load_model(None, st)[1] for st in cfg.stations if st.constants is not None}
     check_store_path(cfg.store_path)
@@ -513,22 +513,19 @@ class Daemon:
         self.empty_polls = 0
         self.feeds_done_at: float | None = None
         self.until_exhausted = False
-        from monitor import qc
-
+        from monitor.quality import checks as qc
         self.qc = qc
         # The alert engine (with its templates) and the diagnostics (with scipy.stats) take
         # seconds to import on a loaded machine; a daemon without rules does without them.
         self.diag = self.engine = self.rules_mod = None
         if any(st.rules for st in cfg.stations):
             from alerts import engine, rules
-            from monitor import diagnostics
-
+            from monitor.quality import diagnostics
             self.diag, self.engine, self.rules_mod = diagnostics, engine, rules
         self.outbox = None
         self.claimer: str | None = None
         if cfg.mail is not None:
-            from alerts import outbox
-
+            from alerts.mail import outbox
             self.outbox = outbox
             self.claimer = outbox.process_identity("daemon")
         self.outbox_worker: OutboxWorker | None = None
@@ -803,7 +800,7 @@ class Daemon:
 
     def _alert_context(self, rt: StationRuntime, fcs: list[dict] | None, qc_results: dict, now: float,
                        end_t: int | None = None):
-        """The engine's context: the high water forecasts as monitor.surge_forecast made them
+        """The engine's context: the high water forecasts as monitor.surge.forecast made them
         (the next first), the feed's age, and the equipment faults (silent, stuck, drifting,
         clock off)."""
         st = rt.cfg
@@ -967,7 +964,7 @@ class Daemon:
         follows the data; a report email is still queued on the wall clock)."""
         if self.cfg.reports is None:
             return
-        from monitor.reporting import write_due_reports
+        from monitor.service.reporting import write_due_reports
 
         now = self.data_now if (self.replay_clock and self.data_now is not None) else None
         try:

@@ -176,7 +176,7 @@ class ResidualSettings:
     min_history_days: float = 14.0
     reference_pressure: float = 1013.25
     # Fewest storms in the history for a range conditioned on the storm now; with fewer the
-    # range is the wide rule of thumb, said in words (monitor.surge_forecast).
+    # range is the wide rule of thumb, said in words (monitor.surge.forecast).
     forecast_min_storms: int = 20
 
 
@@ -394,21 +394,21 @@ def validate_config(raw: Any, base_dir: Path | str = ".", path: Path | None = No
     if "mail" in raw:
         mt = c.table(raw.get("mail"), "mail")
         if mt is not None:
-            from alerts.outbox import mail_settings_from
+            from alerts.mail.outbox import mail_settings_from
 
             mail, errs = _validate_with(mail_settings_from, mt, "mail")
             errors.extend(errs)
     if "reports" in raw:
         rt = c.table(raw.get("reports"), "reports")
         if rt is not None:
-            from alerts.report import report_settings_from
+            from alerts.reports.model import report_settings_from
 
             reports, errs = _validate_with(report_settings_from, rt, "reports")
             errors.extend(errs)
 
     mail = _resolve_fields(mail, base_dir, ("password_file", "save_dir", "ca_file"))
     if mail is not None and mail.password_file:
-        from alerts.outbox import password_file_problem
+        from alerts.mail.outbox import password_file_problem
 
         problem = password_file_problem(mail.password_file)
         if problem:
@@ -557,7 +557,7 @@ def _station(c: _Checker, raw: Any, kp: str, base_dir: Path) -> StationConfig | 
     qc = None
     qt = c.table(qc_raw, f"{kp}.qc")
     if qt is not None:
-        from monitor.qc import qc_settings_from
+        from monitor.quality.checks import qc_settings_from
 
         qc, errs = _validate_with(qc_settings_from, qt, f"{kp}.qc")
         errors.extend(errs)

@@ -7,7 +7,7 @@ from __future__ import annotations
 
 import datetime as dt
 
-from monitor.cli_common import CAUTION
+from monitor.cli.common import CAUTION
 from monitor.errors import UserError
 
 
@@ -15,7 +15,7 @@ def __getattr__(name: str):
     # ``write_due_reports`` stays importable from here without loading the reporting
     # stack (pandas, templates, charts) each time the command line starts.
     if name == "write_due_reports":
-        from monitor.reporting import write_due_reports
+        from monitor.service.reporting import write_due_reports
 
         return write_due_reports
     raise AttributeError(f"module {__name__!r} has no attribute {name!r}")
@@ -40,7 +40,7 @@ def _date(text: str | None, tz: str) -> dt.date:
     if text is None:
         from zoneinfo import ZoneInfo
         return dt.datetime.now(ZoneInfo(tz)).date() - dt.timedelta(days=1)
-    from monitor.timeparse import parse_date
+    from monitor.cli.timeparse import parse_date
 
     return parse_date(text, "--date")
 
@@ -48,9 +48,9 @@ def _date(text: str | None, tz: str) -> dt.date:
 def cmd_report(args) -> int:
     from pathlib import Path
 
-    from monitor.config import load_config
-    from monitor.reporting import find_station, write_station_day
-    from monitor.store import Store
+    from monitor.service.config import load_config
+    from monitor.service.reporting import find_station, write_station_day
+    from monitor.store.database import Store
 
     config = load_config(args.config)
     station = find_station(config, args.station)

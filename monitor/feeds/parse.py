@@ -23,7 +23,7 @@ from typing import Sequence
 import numpy as np
 import pandas as pd
 
-from monitor.config import LineFormat
+from monitor.service.config import LineFormat
 
 MAX_TEXT = 500  # characters of a rejected line kept in the store
 # Plausible epoch range: 1900-01-01 .. 2200-01-01 [s]; outside it a clock or a format is wrong.
