@@ -27,7 +27,7 @@ def make_lines(n: int = ROWS) -> list[str]:
 
 def ours(path: Path, lines: list[str]) -> float:
     """Seconds for parse + store with a checkpoint per batch."""
-    from monitor.service.config import LineFormat
+    from monitor.feeds.parse import LineFormat
     from monitor.feeds.parse import parse_lines
     from monitor.store.database import Store
 

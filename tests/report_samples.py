@@ -10,8 +10,9 @@ import numpy as np
 import pandas as pd
 
 from alerts.reports.model import (
-    AlertEpisodeRow, AlertLevel, BarometerPart, ConstantsInfo, ConstituentRow, DayReport, Delivery, Diagnostic,
-    HighWaterForecast, QcEpisode, RejectRow, StaffCheck, TideRow, day_bounds, empty_samples,
+
+    AlertEpisodeRow, AlertLevel, BarometerPart, ConstantsInfo, ConstituentRow, DayReport, Delivery, Diagnostic, HighWaterForecast, QcEpisode, RejectRow, StaffCheck, TideRow, day_bounds, empty_samples,
+
 )
 
 # An invented port on a zone with daylight saving (UTC+00:00 in winter, UTC+01:00 in summer).

@@ -9,7 +9,7 @@ from pathlib import Path
 import pytest
 
 from monitor.cli import main
-from monitor.service.config import LineFormat
+from monitor.feeds.parse import LineFormat
 from monitor.service.daemon import row_lines
 from monitor.feeds.parse import parse_lines
 from monitor.store.database import Store
@@ -139,7 +139,7 @@ def test_ingest_status_and_qc_count_conflicting_repeats(tmp_path, capsys):
 def test_the_daily_report_counts_the_day_s_conflicting_repeats(tmp_path):
     import datetime as dt
 
-    from alerts.reports.model import render_day_email, render_day_html
+    from alerts.reports.render import render_day_email, render_day_html
     from monitor.service.config import load_config
     from monitor.service.reporting import gather_day
 

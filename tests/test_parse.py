@@ -8,7 +8,7 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from monitor.service.config import LineFormat
+from monitor.feeds.parse import LineFormat
 from monitor.feeds.parse import Observation, Reject, parse_line, parse_lines
 
 mm = 1e-3

@@ -13,7 +13,8 @@ from scipy.signal import lfilter
 
 import reference_tide as ref
 from monitor.service.config import validate_config
-from monitor.service.daemon import model_to_text, refit_station
+from monitor.service.constants import model_to_text
+from monitor.service.daemon import refit_station
 from monitor.store.database import Store
 from predictor import TideModel
 from test_short_records import MEAN, SEA, START

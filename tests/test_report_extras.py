@@ -178,7 +178,7 @@ def _log_forecast(store, hw_t, made_t, forecast, lower, upper):
 
 
 def test_verification_table_shows_each_high_water_against_its_forecasts(site):
-    from alerts.reports.model import render_day_html
+    from alerts.reports.render import render_day_html
 
     store, model, start, end = site
     base = gather_day(store, Station(), DAY, model=model, model_source="constants file", now=end)

@@ -4,7 +4,7 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
-from monitor.service.config import LineFormat
+from monitor.feeds.parse import LineFormat
 from monitor.errors import UserError
 from monitor.feeds.parse import parse_lines
 from monitor.store.database import SCHEMA_VERSION, Store

@@ -40,6 +40,8 @@ import pandas as pd
 from scipy import signal, stats
 
 from monitor.quality.checks import USABLE_FLAGS, QcSettings, difference_at, seconds, utc_index
+from predictor.constituents import get
+from predictor.fit import harmonic_fit
 
 DAY = 86400.0
 MM = 1e-3
@@ -882,9 +884,6 @@ def monthly_constants(observed: pd.Series, model: Any, names: Iterable[str] = MA
     Foreman (1977) least-squares analysis; Godin (1972) Rayleigh criterion; the fit is
     :func:`predictor.fit.harmonic_fit`.
     """
-    from predictor.fit import harmonic_fit
-    from predictor.constituents import get
-
     names = list(names)
     obs = observed.dropna()
     cols = ["month", "name", "amplitude", "amplitude_ci", "phase", "phase_ci", "ref_amplitude", "ref_phase",
