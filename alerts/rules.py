@@ -104,7 +104,7 @@ class StationView:
         email form tells the level now against them.
     forms : tuple of (str, str)
         (address, form name) pairs: the form of alert email each address gets
-        (``[mail.forms]``, see :mod:`alerts.forms`); others get ``full``.
+        (``[mail.forms]``, see :mod:`alerts.mail.forms`); others get ``full``.
     """
 
     id: str

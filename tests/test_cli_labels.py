@@ -13,9 +13,10 @@ import pytest
 
 from alerts.engine import evaluate
 from alerts.rules import StationView, rules_from_config
-from monitor.cli import config_first, main
-from monitor.store import Store
-from monitor.timeparse import log_formatter
+from monitor.cli import main
+from monitor.cli.app import config_first
+from monitor.store.database import Store
+from monitor.service.daemon import log_formatter
 
 ROOT = Path(__file__).resolve().parent.parent
 

@@ -6,7 +6,7 @@ import datetime as dt
 import numpy as np
 
 from monitor.demo import replay_progress
-from monitor.store import Store
+from monitor.store.database import Store
 
 START = dt.datetime(2025, 10, 20, tzinfo=dt.timezone.utc)
 END = START + dt.timedelta(days=4)

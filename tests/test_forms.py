@@ -1,4 +1,4 @@
-"""Alert emails by reader (alerts/forms.py): brief, full and gauge forms, read as a phone would."""
+"""Alert emails by reader (alerts/mail/forms.py): brief, full and gauge forms, read as a phone would."""
 from __future__ import annotations
 
 import email
@@ -11,9 +11,9 @@ from email import policy
 import pytest
 
 from alerts.engine import station_marks
-from alerts.forms import FORMS, compose, form_for, forms_from_config
-from alerts.message import CAUTION, CAUTION_LINE, build_email
-from alerts.outbox import mail_settings_from
+from alerts.mail.forms import FORMS, compose, form_for, forms_from_config
+from alerts.mail.message import CAUTION, CAUTION_LINE, build_email
+from alerts.mail.outbox import mail_settings_from
 from alerts.rules import Event, Rule, Step, StationView, rules_from_config
 
 T = 1761220800  # 2025-10-23 12:00 UTC = 13:00 IST (Europe/Dublin summer time, tz database)

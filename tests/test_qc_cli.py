@@ -4,9 +4,9 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
-from monitor import qc
+from monitor.quality import checks as qc
 from monitor.cli import main
-from monitor.store import Store
+from monitor.store.database import Store
 from test_qc_synthetic import AMPS, MEAN, PHASES, mm, record
 
 CONFIG = """
@@ -68,7 +68,7 @@ def test_qc_summary_names_tests_zone_and_the_spike_episode(station, capsys):
     out = capsys.readouterr().out
     assert rc == 0
     assert "times in Europe/Lisbon" in out
-    from alerts.report import QC_TEST_NAMES
+    from alerts.reports.model import QC_TEST_NAMES
 
     for test in qc.TESTS:   # named as the daily report names them
         assert QC_TEST_NAMES[test] in out
@@ -127,7 +127,7 @@ def test_bad_qc_key_in_config_is_reported_with_its_path(station, capsys, tmp_pat
 
 def test_qc_shows_the_backup_clock_against_the_primary(tmp_path, capsys):
     # By construction the backup's clock runs 5 minutes ahead: at its stamp t it holds the sea
-    # of t - 5 min. A late clock counts positive (monitor.diagnostics.relative_clock), so -5 min.
+    # of t - 5 min. A late clock counts positive (monitor.quality.diagnostics.relative_clock), so -5 min.
     import pandas as pd
 
     from predictor import TideModel

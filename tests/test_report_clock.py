@@ -7,9 +7,9 @@ import numpy as np
 import pandas as pd
 import pytest
 
-from alerts.report import day_bounds
-from monitor.reporting import gather_day
-from monitor.store import Store
+from alerts.reports.model import day_bounds
+from monitor.service.reporting import gather_day
+from monitor.store.database import Store
 from predictor import TideModel
 
 TZ = "Atlantic/Faroe"

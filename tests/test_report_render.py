@@ -10,11 +10,18 @@ import numpy as np
 import pandas as pd
 import pytest
 
-from alerts.report import (
-    CAUTION, ReportSettings, day_bounds, day_figures, infer_interval, prune_reports, read_summary, render_day_email,
-    render_day_html, report_settings_from, write_day_report, write_index, zone_label,
+from alerts.reports.model import (
+
+    CAUTION, ReportSettings, day_bounds, day_figures, infer_interval, report_settings_from, zone_label,
+
 )
-from alerts.message import build_email
+
+from alerts.reports.render import (
+
+    prune_reports, read_summary, render_day_email, render_day_html, write_day_report, write_index,
+
+)
+from alerts.mail.message import build_email
 from report_samples import TZ, sample_report
 
 hour = 3600.0
@@ -325,7 +332,7 @@ def test_email_carries_staff_diagram_by_content_id(mail):
 def _with_fault_episode(day=PLAIN):
     import dataclasses
 
-    from alerts.report import AlertEpisodeRow
+    from alerts.reports.model import AlertEpisodeRow
 
     r = sample_report(day)
     start = r.alerts[0].started
@@ -369,7 +376,7 @@ def test_index_tells_water_alerts_from_gauge_faults(tmp_path):
 def _with_weak_constituents(day=PLAIN):
     import dataclasses
 
-    from alerts.report import ConstituentRow
+    from alerts.reports.model import ConstituentRow
 
     r = sample_report(day)
     weak = (ConstituentRow("M4", 0.004, 77.7, 0.006, 0.4), ConstituentRow("MS4", 0.002, 310.0, 0.006, 0.1))

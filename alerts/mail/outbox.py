@@ -38,7 +38,7 @@ Mail settings (a ``[mail]`` table)::
                                            # system trust store
 
     [mail.forms]                           # optional: the form of alert email an address
-    "volunteers@port.example" = "brief"    # gets (brief | full | gauge, see alerts.forms);
+    "volunteers@port.example" = "brief"    # gets (brief | full | gauge, see alerts.mail.forms);
                                            # default full
 
 The server's certificate and host name are always verified (starttls and tls); there is no
@@ -69,8 +69,8 @@ from email.utils import parseaddr
 from pathlib import Path
 from typing import Any, Callable, Iterable, Iterator
 
-from alerts.forms import forms_from_config
-from alerts.message import build_email, clean_header
+from alerts.mail.forms import forms_from_config
+from alerts.mail.message import build_email, clean_header
 from alerts.rules import parse_duration
 
 log = logging.getLogger(__name__)
@@ -331,7 +331,7 @@ class MailSettings:
     reply_to: str | None = None
     save_dir: str | None = None
     ca_file: str | None = None
-    forms: tuple = ()  # (address, form name) pairs, see alerts.forms
+    forms: tuple = ()  # (address, form name) pairs, see alerts.mail.forms
 
     def password(self) -> str | None:
         """Read the password now, from the environment or the file (never stored)."""

@@ -9,14 +9,14 @@ address not listed gets ``full``):
     it is forecast to reach them, the one action line the operator wrote for the rule, and
     the one-line caution. Nothing else.
 ``full``
-    The harbour office's form (:func:`alerts.message.compose_alert`): rule, step, readings,
+    The harbour office's form (:func:`alerts.mail.message.compose_alert`): rule, step, readings,
     forecast method, faults.
 ``gauge``
     The technician's form: the equipment faults and their numbers first, then the readings.
 
 Every form opens with its headline (the level, or the fault) so a phone's preview shows it,
 then (after the faults in the gauge form) the one-line caution
-(:data:`alerts.message.CAUTION_LINE`, the start of the one caution text, ``CAUTION``); the
+(:data:`alerts.mail.message.CAUTION_LINE`, the start of the one caution text, ``CAUTION``); the
 long forms end with the full caution, before the signature marker, never after it.
 """
 from __future__ import annotations
@@ -28,7 +28,7 @@ from typing import Any, Mapping
 
 import jinja2
 
-from alerts.message import (CAUTION, CAUTION_LINE, _duration, _fault_line, _m, _zone,
+from alerts.mail.message import (CAUTION, CAUTION_LINE, _duration, _fault_line, _m, _zone,
                             _headline_and_subject, alert_subject, clean_line, compose_alert, datum_label,
                             facts_lines, format_times, step_text)
 from alerts.rules import Event, Rule, StationView
@@ -135,7 +135,7 @@ def compose(form: str, station: StationView, rule: Rule, event: Event, facts: di
     form : str
         ``brief``, ``full`` or ``gauge`` (see :data:`FORMS`).
     station, rule, event, facts, step_index
-        As for :func:`alerts.message.compose_alert`.
+        As for :func:`alerts.mail.message.compose_alert`.
 
     Returns
     -------

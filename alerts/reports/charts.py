@@ -16,7 +16,7 @@ from __future__ import annotations
 
 import io
 import re
-from typing import TYPE_CHECKING, Sequence
+from typing import Sequence
 from zoneinfo import ZoneInfo
 
 import matplotlib
@@ -27,8 +27,7 @@ import numpy as np  # noqa: E402
 import pandas as pd  # noqa: E402
 from matplotlib.figure import Figure  # noqa: E402
 
-if TYPE_CHECKING:
-    from alerts.report import AlertLevel, DayReport, Diagnostic, StaffCheck
+from alerts.reports.model import AlertLevel, DayReport, Diagnostic, StaffCheck, day_bounds, day_figures
 
 # Palette of our own; each role also has a line style or marker shape.
 OBSERVED = "#0b4f71"
@@ -143,8 +142,6 @@ def _day_chart(report, width, height, dpi, fmt, layout):
     width = lay["width"] if width is None else width
     height = lay["height"] if height is None else height
     small = lay["small"]
-    from alerts.report import day_bounds, day_figures
-
     start, end = day_bounds(report.day, report.tz)
     zone = ZoneInfo(report.tz)
     figures = day_figures(report)

@@ -8,10 +8,8 @@ day-first and month-first dates are refused rather than guessed.
 from __future__ import annotations
 
 import datetime as dt
-import logging
 import math
 import re
-import time
 import zoneinfo
 from typing import Any
 
@@ -163,12 +161,3 @@ def local_text(t: Any, tz: Any, *, utc: bool = False) -> str:
         ts = pd.Timestamp(int(t), unit="s", tz="UTC")
     text = ts.tz_convert(zone(tz)).strftime("%Y-%m-%d %H:%M %Z")
     return f"{text} ({ts:%H:%MZ})" if utc else text
-
-
-def log_formatter() -> logging.Formatter:
-    """Log lines stamped in ISO 8601 UTC to the millisecond: ``2025-10-23T12:00:00.123Z
-    INFO name: message`` (the daemon's log and the command line's warnings)."""
-    fmt = logging.Formatter("%(asctime)s.%(msecs)03dZ %(levelname)s %(name)s: %(message)s",
-                            datefmt="%Y-%m-%dT%H:%M:%S")
-    fmt.converter = time.gmtime
-    return fmt
