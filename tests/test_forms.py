@@ -247,3 +247,22 @@ def test_old_and_new_rule_key_together_are_refused():
            "steps": [{"name": "boards out", "at": 4.0}]}
     _, errors = rules_from_config([raw], "stations[0].rules", {})
     assert any(e.startswith("stations[0].rules[0].watch: renamed to 'when'") for e in errors)
+
+
+def test_brief_all_clear_says_the_water_is_back_below_the_mark():
+    _, text, _ = compose("brief", STATION, QUAY, Event("cleared", 1, T, 3.80), dict(FACTS, observed=4.80))
+    first = text.splitlines()[0]
+    assert 'all clear - the water is back below "boards out"' in first and "3.80 m above chart datum" in first
+    assert "What to do" not in text          # the action line is for while it lasts
+
+
+def test_brief_held_all_clear_says_why():
+    _, text, _ = compose("brief", STATION, QUAY, Event("held", 0, T, 3.90), dict(FACTS, observed=4.90))
+    assert 'not clear yet - the next high water may reach "boards out" again' in text.splitlines()[0]
+
+
+def test_brief_silent_gauge_says_there_is_no_reading():
+    silent = Rule(id="quiet", watch="feed_silent", notify=("t@port.example",), steps=(Step("feed quiet", 1800),))
+    facts = {k: v for k, v in FACTS.items() if k not in ("observed", "predicted", "residual", "trend")}
+    _, text, _ = compose("brief", STATION, silent, Event("opened", 0, T, 2700.0), facts)
+    assert "no data from the gauge for 45 min" in text and "No level reading from the gauge now." in text
