@@ -118,6 +118,7 @@ def test_parse_duration(text, seconds):
     assert parse_duration(text) == seconds
 
 
+@pytest.mark.filterwarnings("ignore:.*renamed to 'when':DeprecationWarning")  # the old key, read on purpose
 @settings(max_examples=150, deadline=None)
 @given(st.lists(st.dictionaries(
     st.sampled_from(["id", "when", "watch", "datum", "hold", "band", "notify", "steps", "series", "x"]),
