@@ -192,6 +192,11 @@ def check_metres(path, levels: np.ndarray) -> None:
     UserError
         Naming the file, the range and mean found, and the unit (centimetres or millimetres)
         under which the numbers would be a plausible tide.
+
+    References
+    ----------
+    Pugh, D., Woodworth, P. (2014). Sea-Level Science, ch. 1: the largest tidal ranges, about
+    16 m in the Bay of Fundy (from memory). The mean's limit is common practice, no source.
     """
     lo, mid, hi = np.nanpercentile(levels, [0.5, 50.0, 99.5])
     spread = float(hi - lo)
