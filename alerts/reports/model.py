@@ -21,13 +21,7 @@ from zoneinfo import ZoneInfo
 import numpy as np
 import pandas as pd
 
-CAUTION = (
-    "This report is automated and unofficial. Official warnings and the local emergency "
-    "authorities come first, always. Levels, predictions and residuals here can be wrong "
-    "(a faulty gauge, constants fitted to a short record, weather the tide model cannot know). "
-    "Defer to local codes, official tide tables and licensed practice for any decision about "
-    "navigation, berthing or safety."
-)
+from predictor.caution import REPORT as CAUTION
 
 
 #: QARTOD flag values and the words we show for them (U.S. IOOS 2021, QARTOD water level v2.1).

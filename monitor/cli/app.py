@@ -12,6 +12,7 @@ import sys
 
 from monitor.cli import alerts, qc, report, station, tide
 from monitor.errors import UserError
+from predictor.caution import CAUTION
 
 # Verb groups, each owning its own module; order is the order shown in --help.
 _GROUPS = (
@@ -27,8 +28,7 @@ def build_parser() -> argparse.ArgumentParser:
     parser = argparse.ArgumentParser(
         prog="quaywatch",
         description="Tide-gauge station monitor: predicted tide, surge residual, quality "
-        "control, alerts and reports. Automated and unofficial: official warnings and "
-        "local emergency authorities come first.",
+        "control, alerts and reports. " + CAUTION,
     )
     parser.add_argument("-v", "--verbose", action="count", default=0, help="more log output")
     sub = parser.add_subparsers(dest="verb", metavar="VERB")

@@ -18,14 +18,13 @@ import pandas as pd
 from monitor.cli.timeparse import zone as _zone
 from monitor.errors import UserError
 from monitor.service.config import datum_words
+from predictor.caution import ANALYSIS as CAUTION
 from predictor.fit import FitConditioningWarning
 from predictor.fit import FitInputError
 from predictor.fit import harmonic_fit
 
 __all__ = ["CAUTION", "read_level_csv", "register", "run_fit", "model_summary"]
 
-CAUTION = ("Automated, unofficial analysis. Official tide tables, official warnings and the local "
-           "emergency authorities come first; defer to local codes and licensed practice.")
 
 # An explicit zone at the end of an ISO 8601 time: Z, +HH, +HHMM or +HH:MM.
 _ZONE = re.compile(r"(?:[Zz]|[+-]\d{2}(?::?\d{2})?)$")
