@@ -15,7 +15,8 @@ from typing import Any
 import numpy as np
 import pandas as pd
 
-__all__ = ["parse_duration", "parse_step", "UNIT_SECONDS", "to_unix_seconds", "iso_utc"]
+__all__ = ["parse_duration", "parse_step", "UNIT_SECONDS", "to_unix_seconds", "iso_utc", "utc_timestamp",
+           "utc_index", "index_seconds"]
 
 # Seconds in each unit name a person may write. "m" is minutes (as in "10m"): months and
 # metres never mean a duration here.
@@ -144,3 +145,28 @@ def to_unix_seconds(times) -> np.ndarray:
 def iso_utc(t: float) -> str:
     """Unix seconds [s] as ISO 8601 text in UTC with ``Z``, to the second."""
     return dt.datetime.fromtimestamp(float(t), dt.timezone.utc).strftime("%Y-%m-%dT%H:%M:%SZ")
+
+
+def utc_timestamp(t: Any) -> pd.Timestamp | None:
+    """Unix seconds [s] as a tz-aware UTC Timestamp; None (or NaN) stays None."""
+    if t is None or (isinstance(t, float) and math.isnan(t)):
+        return None
+    return pd.Timestamp(float(t), unit="s", tz="UTC")
+
+
+def utc_index(index: pd.Index) -> pd.DatetimeIndex:
+    """The index as a UTC DatetimeIndex (naive taken as UTC).
+
+    Raises
+    ------
+    TypeError
+        The index holds no times.
+    """
+    if not isinstance(index, pd.DatetimeIndex):
+        raise TypeError("a series of times needs a DatetimeIndex")
+    return index.tz_localize("UTC") if index.tz is None else index.tz_convert("UTC")
+
+
+def index_seconds(index: pd.Index) -> np.ndarray:
+    """Unix seconds [s] (float) of a DatetimeIndex (naive taken as UTC)."""
+    return utc_index(index).as_unit("ns").asi8 / 1e9

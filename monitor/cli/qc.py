@@ -25,6 +25,7 @@ from monitor.quality import diagnostics as dg
 from monitor.service.config import load_config
 from monitor.service.constants import load_model
 from monitor.store.database import Store
+from predictor.timeutil import index_seconds
 
 
 
@@ -253,7 +254,7 @@ def cmd_staff_list(args: argparse.Namespace) -> int:
         for t, r in staff.iterrows():
             gv = np.nan
             if len(g):
-                tg = qc.seconds(g.index)
+                tg = index_seconds(g.index)
                 ts = t.timestamp()
                 j = np.searchsorted(tg, ts)
                 if 0 < j < len(tg) and tg[j] - tg[j - 1] <= 600 or (j < len(tg) and tg[j] == ts):

@@ -50,6 +50,7 @@ import numpy as np
 import pandas as pd
 
 from monitor.errors import UserError
+from predictor.timeutil import index_seconds, utc_index
 from predictor.timeutil import parse_duration as _parse_duration
 
 PASS, NOT_EVALUATED, SUSPECT, FAIL, MISSING = 1, 2, 3, 4, 9
@@ -272,18 +273,6 @@ def qc_settings_from(raw: Mapping[str, Any] | None, keypath: str) -> tuple[QcSet
 
 # --------------------------------------------------------------------------- helpers
 
-def utc_index(index: pd.Index) -> pd.DatetimeIndex:
-    """The index as a UTC DatetimeIndex (naive taken as UTC)."""
-    if not isinstance(index, pd.DatetimeIndex):
-        raise TypeError("quality-control series need a DatetimeIndex")
-    return index.tz_localize("UTC") if index.tz is None else index.tz_convert("UTC")
-
-
-def seconds(index: pd.Index) -> np.ndarray:
-    """Unix seconds (float) of a DatetimeIndex."""
-    return utc_index(index).as_unit("ns").asi8 / 1e9
-
-
 def _flags(index: pd.Index, values: np.ndarray, name: str) -> pd.Series:
     return pd.Series(np.asarray(values, dtype=np.int8), index=index, name=name)
 
@@ -330,7 +319,7 @@ def gap_test(level: pd.Series, gap_limit: float, now: float | None = None,
     ----------
     U.S. IOOS (2021), QARTOD water level manual v2.1, Test 1 (timing/gap).
     """
-    t = seconds(level.index)
+    t = index_seconds(level.index)
     flags = np.full(len(t), PASS, dtype=np.int8)
     if len(t):
         dt = np.diff(t)
@@ -345,7 +334,7 @@ def gap_test(level: pd.Series, gap_limit: float, now: float | None = None,
 def find_gaps(index: pd.Index, gap_limit: float) -> pd.DataFrame:
     """Silences longer than ``gap_limit`` [s]: columns ``start`` (last sample before),
     ``end`` (first sample after) as UTC Timestamps and ``seconds``."""
-    t = seconds(index)
+    t = index_seconds(index)
     dt = np.diff(t)
     at = np.flatnonzero(dt > gap_limit)
     idx = utc_index(index)
@@ -477,7 +466,7 @@ def spike_test(resid: pd.Series, suspect: float, fail: float, gap_limit: float,
     quickly: hence the shape conditions before a fail.
     """
     r = resid.to_numpy(dtype=float)
-    t = seconds(resid.index)
+    t = index_seconds(resid.index)
     n = len(r)
     prev_ok, next_ok = _neighbour_ok(t, gap_limit)
     flags = np.full(n, NOT_EVALUATED, dtype=np.int8)
@@ -507,7 +496,7 @@ def jumps(resid: pd.Series, size: float, ratio: float, gap_limit: float) -> np.n
     ``gap_limit`` [s] of each other). NaN samples are skipped over.
     """
     r = resid.to_numpy(dtype=float)
-    t = seconds(resid.index)
+    t = index_seconds(resid.index)
     n = len(r)
     out = np.zeros(n, dtype=bool)
     good = np.flatnonzero(np.isfinite(r))
@@ -543,7 +532,7 @@ def rate_of_change_test(resid: pd.Series, n_dev: float, window: float, floor: fl
     identified for this test").
     """
     r = resid.to_numpy(dtype=float)
-    t = seconds(resid.index)
+    t = index_seconds(resid.index)
     n = len(r)
     flags = np.full(n, NOT_EVALUATED, dtype=np.int8)
     if n < 2:
@@ -583,7 +572,7 @@ def flat_line_test(level: pd.Series, tolerance: float, suspect_after: float, fai
     place of repeat counts.
     """
     v = level.to_numpy(dtype=float)
-    t = seconds(level.index)
+    t = index_seconds(level.index)
     idx = utc_index(level.index)
     flags = np.full(len(v), PASS, dtype=np.int8)
     frame = pd.DataFrame({"v": v, "t": t}, index=idx)
@@ -631,8 +620,8 @@ def difference_at(level: pd.Series, other: pd.Series, gap_limit: float) -> np.nd
     """``level - other`` at ``level``'s times [m]; NaN where ``other`` has no sample on
     both sides within ``gap_limit`` [s] (an exact time match is always used)."""
     other = other.dropna()
-    t = seconds(level.index)
-    to = seconds(other.index)
+    t = index_seconds(level.index)
+    to = index_seconds(other.index)
     vo = other.to_numpy(dtype=float)
     if len(to) == 0:
         return np.full(len(t), np.nan)
@@ -683,7 +672,7 @@ def residual_outlier_test(resid: pd.Series, window: float, noise_window: float, 
     flags[ev & (np.abs(d) > np.maximum(k_suspect * sigma, floor_suspect))] = SUSPECT
     far = ev & (np.abs(d) > np.maximum(k_fail * sigma, floor_fail))
     flags[far] = SUSPECT
-    flags[_bursts(r, seconds(resid.index), far, burst, floor_fail, jump_ratio, gap_limit)] = FAIL
+    flags[_bursts(r, index_seconds(resid.index), far, burst, floor_fail, jump_ratio, gap_limit)] = FAIL
     return _flags(resid.index, flags, "resid")
 
 
@@ -743,7 +732,7 @@ def attenuation_test(level: pd.Series, predicted: Any, window: float, suspect: f
     pre = pd.Series(np.where(ok, p, np.nan), index=idx).rolling(w, min_periods=2)
     obs_range = (obs.max() - obs.min()).to_numpy()
     pred_range = (pre.max() - pre.min()).to_numpy()
-    t = seconds(level.index)
+    t = index_seconds(level.index)
     step = float(np.median(np.diff(t))) if n > 1 else window
     count = pd.Series(ok.astype(float), index=idx).rolling(w, min_periods=1).sum().to_numpy()
     span_ok = (t - t[0]) >= window - step  # a whole window of record behind the sample
@@ -930,7 +919,7 @@ def episodes(flags: pd.Series, at_least: int = SUSPECT, join_gap: float = 0.0) -
     if not bad.any():
         return pd.DataFrame(columns=cols)
     pos = np.flatnonzero(bad)
-    t = seconds(flags.index)[pos]
+    t = index_seconds(flags.index)[pos]
     brk = np.concatenate([[True], (np.diff(pos) > 1) & (np.diff(t) > join_gap)])
     gid = np.cumsum(brk) - 1
     df = pd.DataFrame({"i": pos, "g": gid, "f": f[pos]})
@@ -1150,7 +1139,7 @@ def run_station_qc(store: Any, station_cfg: Any, settings: QcSettings | None, st
             tests["flag"] = aggregate_flags(tests)
             resid = df["value"] - preds[sn] if preds[sn] is not None else df["value"]
             tests = _confirm(tests, df["value"], resid, obs[o]["value"].where(shape_only.to_numpy()), s)
-        t = seconds(tests.index)
+        t = index_seconds(tests.index)
         sel = (t >= write_from) & (t <= end_t)
         part = tests[sel].copy()
         ov = read_overrides(db, station, sn, write_from, end_t)
@@ -1171,7 +1160,7 @@ def _write(db: Any, station: str, sensor: str, part: pd.DataFrame, stored: np.nd
     if part.empty:
         return
     conn = db.conn
-    t = (seconds(part.index)).round().astype(np.int64)
+    t = (index_seconds(part.index)).round().astype(np.int64)
     tests = np.column_stack([part[c].to_numpy(dtype=np.int64) for c in TESTS])  # (n, tests)
     names = ", ".join(TESTS)
     # Compare packed rows (4 bits per flag; QARTOD flags are 1..9) so the read of the
