@@ -226,10 +226,6 @@ class TideModel:
         """
         return self._evaluate(times, order=1)
 
-    def predict_second_derivative(self, times) -> np.ndarray:
-        """Analytic second time derivative of the predicted level [m/s^2]."""
-        return self._evaluate(times, order=2)
-
     def high_low(self, start, end, step="10min"):
         """High and low waters between ``start`` and ``end``.
 

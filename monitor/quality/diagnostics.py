@@ -32,6 +32,7 @@ on Kendall's tau. JASA 63 (Theil-Sen slope; scipy.stats.theilslopes).
 """
 from __future__ import annotations
 
+import logging
 import math
 from typing import Any, Iterable
 
@@ -43,6 +44,8 @@ from monitor.quality.checks import USABLE_FLAGS, QcSettings, difference_at
 from predictor.constituents import get
 from predictor.fit import harmonic_fit
 from predictor.timeutil import index_seconds, utc_index, utc_timestamp
+
+log = logging.getLogger(__name__)
 
 DAY = 86400.0
 MM = 1e-3
@@ -227,21 +230,6 @@ def staff_sessions(staff: pd.Series, gauge: pd.Series, *, session_gap: float = 6
         res.pop("points")
         rows.append({"time": utc_timestamp(float(np.mean(index_seconds(part.index)))), **res})
     return pd.DataFrame(rows).set_index("time") if rows else pd.DataFrame()
-
-
-def offset_drift(sessions: pd.DataFrame, confidence: float = 0.95) -> dict:
-    """Drift of the gauge against the staff: Theil-Sen slope of the session offsets.
-
-    Returns ``drift_mm_per_day`` with ``drift_low``/``drift_high`` and ``sessions``;
-    NaN with fewer than 3 sessions.
-    """
-    ok = sessions.dropna(subset=["offset_mm"]) if not sessions.empty else sessions
-    if len(ok) < 3:
-        return {"drift_mm_per_day": np.nan, "drift_low": np.nan, "drift_high": np.nan, "sessions": len(ok)}
-    x = index_seconds(ok.index) / DAY
-    res = stats.theilslopes(ok["offset_mm"].to_numpy(), x - x[0], alpha=confidence)
-    return {"drift_mm_per_day": float(res.slope), "drift_low": float(res.low_slope),
-            "drift_high": float(res.high_slope), "sessions": len(ok)}
 
 
 # --------------------------------------------------------------------------- clock
@@ -898,7 +886,9 @@ def monthly_constants(observed: pd.Series, model: Any, names: Iterable[str] = MA
         try:
             fo = harmonic_fit(ti, obs.to_numpy()[m], constituents=names, confidence=0.95)
             fr = harmonic_fit(ti, _predict(model, ti), constituents=names, confidence=None)
-        except Exception:  # a month that cannot be fitted is skipped, not fatal
+        except (ValueError, np.linalg.LinAlgError) as exc:  # FitInputError among them:
+            # a month that cannot be fitted is skipped, and said so in the log
+            log.info("monthly constants: %s skipped (%s)", pd.Timestamp(ti[0]).strftime("%Y-%m"), exc)
             continue
         ref = {c["name"]: c for c in fr.constituents}
         for c in fo.constituents:

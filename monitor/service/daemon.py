@@ -855,7 +855,7 @@ class Daemon:
         try:
             return int(self.store.conn.execute(
                 "SELECT count(*) FROM outbox WHERE status NOT IN ('sent', 'expired')").fetchone()[0])
-        except Exception:  # no outbox table yet: nothing queued
+        except sqlite3.OperationalError:  # no outbox table yet: nothing queued
             return 0
 
     def deliver(self, db=None) -> None:
