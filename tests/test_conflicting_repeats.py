@@ -73,7 +73,7 @@ def test_conflicts_are_not_counted_as_unreadable_lines(store):
 def test_a_version_1_store_gains_the_conflict_columns(tmp_path):
     import sqlite_utils
 
-    from monitor.store.database import _create_v1
+    from monitor.store.migrations import _create_v1
 
     path = tmp_path / "old.db"
     db = sqlite_utils.Database(path)

@@ -449,14 +449,8 @@ class Daemon:
             self.outbox = outbox
             self.claimer = outbox.process_identity("daemon")
         self.outbox_worker: OutboxWorker | None = None
-        # Every table the jobs write is created here, before the outbox thread opens its own
-        # connection: schema changes on the processing path would contend with it for the lock.
-        qc.ensure_qc_schema(store.db)
-        SF.ensure_forecast_schema(store.db)
-        if self.engine is not None:
-            self.engine.ensure_alert_schema(store.db)
-        if self.outbox is not None:
-            self.outbox.ensure_outbox_schema(store.db)
+        # Every table the jobs write exists already: Store.open ran the schema migrations
+        # (monitor/store/migrations.py), so no schema statement contends with the outbox thread.
         self.stations = {st.id: self._station_runtime(st) for st in cfg.stations}
         # Replay feeds run the rules and the daily reports on the replayed clock, so a replayed
         # storm reads as it would have live. Delivery does not: the outbox keeps the wall clock.

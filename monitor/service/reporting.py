@@ -652,11 +652,6 @@ def _constants(store: Any, sid: str, model: Any, source: str, shift: float = 0.0
 # --------------------------------------------------------------------------- writing and sending
 
 
-def _ensure_runs(db: Any) -> None:
-    db["report_runs"].create({"station": str, "day": str, "written_at": int, "path": str, "queued": int},
-                             pk=("station", "day"), if_not_exists=True)
-
-
 def find_station(config: Any, station_id: str) -> Any:
     for station in config.stations:
         if station.id == station_id:
@@ -689,7 +684,6 @@ def write_station_day(config: Any, store: Any, station: Any, day: dt.date, *, se
     queued = 0
     if send and settings.email and settings.recipients and getattr(config, "mail", None) is not None:
         queued = len(queue_email(store, report, settings.recipients, path, now))
-    _ensure_runs(store.db)
     store.db["report_runs"].upsert({"station": station.id, "day": day.isoformat(), "written_at": int(now.timestamp()),
                                     "path": str(path), "queued": queued}, pk=("station", "day"))
     return path
@@ -728,7 +722,6 @@ def write_due_reports(config: Any, store: Any, now: Any = None) -> list[Path]:
     now = pd.Timestamp.now(tz="UTC") if now is None else pd.Timestamp(now, unit="s", tz="UTC") \
         if isinstance(now, (int, float)) else pd.Timestamp(now).tz_convert("UTC")
     settings = settings_of(config)
-    _ensure_runs(store.db)
     written = []
     for station in config.stations:
         day = due_day(now, station.tz, settings.write_at)

@@ -30,14 +30,13 @@ import pandas as pd
 import sqlite_utils
 
 from monitor.errors import UserError
+from monitor.store.migrations import DERIVED_COLUMNS, MIGRATIONS, SCHEMA_VERSION
 
 log = logging.getLogger("monitor.store.database")
 
-SCHEMA_VERSION = 2
 #: Aggregate QARTOD flags a sample may carry and still move anything (1 pass, 2 not
 #: evaluated, 3 suspect); the same set as ``monitor.quality.checks.USABLE_FLAGS``.
 USABLE_SQL = "flag IN (1, 2, 3)"
-DERIVED_COLUMNS = ("observed", "predicted", "residual", "smoothed", "barometric")
 
 
 @dataclass(frozen=True)
@@ -64,46 +63,6 @@ CONFLICT = "conflict"
 #: Two readings of one time closer than this are the same reading [m or hPa] (far below
 #: any gauge's resolution; a re-read line parses to the very same number).
 SAME_VALUE = 1e-6
-
-
-def _create_v1(db: sqlite_utils.Database) -> None:
-    db["observations"].create(
-        {"station": str, "sensor": str, "t": int, "value": float, "time_source": str, "flag": int},
-        pk=("station", "sensor", "t"), not_null={"station", "sensor", "t", "value"},
-        defaults={"time_source": "sensor", "flag": 2}, if_not_exists=True)
-    db["feed_checkpoints"].create({"feed": str, "state": str, "updated_at": int}, pk="feed", if_not_exists=True)
-    db["rejects"].create(
-        {"id": int, "feed": str, "station": str, "sensor": str, "lineno": int, "text": str, "reason": str,
-         "at": int}, pk="id", if_not_exists=True)
-    db["rejects"].create_index(["station", "feed"], if_not_exists=True)
-    db["derived"].create({"station": str, "t": int, **{c: float for c in DERIVED_COLUMNS}},
-                         pk=("station", "t"), if_not_exists=True)
-    db["skew_surges"].create(
-        {"station": str, "hw_t": int, "predicted_high": float, "observed_high": float, "observed_t": int,
-         "skew_surge": float}, pk=("station", "hw_t"), if_not_exists=True)
-    db["hw_forecasts"].create(
-        {"station": str, "hw_t": int, "made_t": int, "predicted_high": float, "residual_now": float,
-         "forecast": float, "lower": float, "upper": float, "coverage": float, "note": str},
-        pk=("station", "hw_t"), if_not_exists=True)
-    db["fits"].create(
-        {"id": int, "station": str, "fitted_at": int, "start": int, "end": int, "n": int, "rms": float,
-         "variance_explained": float, "constants": str, "in_use": int, "robust": int, "note": str},
-        pk="id", if_not_exists=True)
-    db["fits"].create_index(["station", "fitted_at"], if_not_exists=True)
-
-
-def _conflicts_v2(db: sqlite_utils.Database) -> None:
-    # A conflicting repeat is kept in the reject log with the time it repeats, the value kept
-    # (the first) and the value it brought; unreadable lines leave these empty.
-    cols = db["rejects"].columns_dict
-    for name, kind in (("kind", str), ("t", int), ("kept", float), ("value", float)):
-        if name not in cols:
-            db["rejects"].add_column(name, kind)
-    db["rejects"].create_index(["station", "kind"], if_not_exists=True)
-
-
-# version -> function that brings a store at (version - 1) to version
-MIGRATIONS = {1: _create_v1, 2: _conflicts_v2}
 
 
 class Store:
