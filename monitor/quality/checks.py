@@ -38,7 +38,6 @@ Vols I-V. IOC Manuals and Guides 14.
 """
 from __future__ import annotations
 
-import contextlib
 import difflib
 import math
 import time as _time
@@ -49,6 +48,7 @@ from typing import Any, Iterable, Mapping
 import numpy as np
 import pandas as pd
 
+from alerts.transactions import transaction
 from monitor.errors import UserError
 from predictor.timeutil import index_seconds, utc_index
 from predictor.timeutil import parse_duration as _parse_duration
@@ -936,21 +936,6 @@ def _db(store: Any):
     return getattr(store, "db", store)
 
 
-@contextlib.contextmanager
-def _transaction(conn):
-    """One write transaction, also on an autocommit connection (the Store's)."""
-    if conn.in_transaction:
-        yield conn
-        return
-    conn.execute("BEGIN IMMEDIATE")
-    try:
-        yield conn
-    except BaseException:
-        conn.execute("ROLLBACK")
-        raise
-    conn.execute("COMMIT")
-
-
 def ensure_qc_schema(db: Any) -> None:
     """Create the quality-control tables if missing (idempotent).
 
@@ -1183,7 +1168,7 @@ def _write(db: Any, station: str, sensor: str, part: pd.DataFrame, stored: np.nd
     rows = zip(_repeat(station), _repeat(sensor), t[todo].tolist(), *(tests[todo, j].tolist() for j in range(len(TESTS))))
     flags = zip(new[changed].tolist(), _repeat(station), _repeat(sensor), t[changed].tolist())
     marks = ", ".join("?" * len(TESTS))
-    with _transaction(conn):
+    with transaction(conn):
         conn.executemany(
             f"INSERT OR REPLACE INTO qc_tests (station, sensor, t, {names}) VALUES (?, ?, ?, {marks})", rows)
         conn.executemany("UPDATE observations SET flag = ? WHERE station = ? AND sensor = ? AND t = ?", flags)
@@ -1225,7 +1210,7 @@ def set_override(store: Any, station: str, sensor: str, start_t: float, end_t: f
         raise UserError(f"no sample of {where} at the time given (nearest: {iso}); "
                         f"give that time, or a range with --to")
     stamp = int(at if at is not None else _time.time())
-    with _transaction(conn):
+    with transaction(conn):
         conn.executemany(
             "INSERT OR REPLACE INTO qc_overrides (station, sensor, t, flag, who, why, at) VALUES (?, ?, ?, ?, ?, ?, ?)",
             [(station, sensor, t, int(flag), who, why, stamp) for t in ts])

@@ -29,6 +29,7 @@ import numpy as np
 import pandas as pd
 import sqlite_utils
 
+from alerts.transactions import transaction
 from monitor.errors import UserError
 from monitor.store.migrations import DERIVED_COLUMNS, MIGRATIONS, SCHEMA_VERSION
 
@@ -168,17 +169,10 @@ class Store:
 
     @contextlib.contextmanager
     def transaction(self) -> Iterator[sqlite3.Connection]:
-        """An immediate write transaction: commit on success, roll back on any exception."""
-        if self.conn.in_transaction:  # nested: the outer transaction decides
-            yield self.conn
-            return
-        self.conn.execute("BEGIN IMMEDIATE")
-        try:
-            yield self.conn
-        except BaseException:
-            self.conn.execute("ROLLBACK")
-            raise
-        self.conn.execute("COMMIT")
+        """An immediate write transaction: commit on success, roll back on any exception
+        (:func:`alerts.transactions.transaction`; nested, the outer transaction decides)."""
+        with transaction(self.conn) as conn:
+            yield conn
 
     # ------------------------------------------------------------------ meta
     def get_meta(self, key: str, default: str | None = None) -> str | None:
