@@ -16,7 +16,7 @@ import numpy as np
 import pandas as pd
 
 __all__ = ["parse_duration", "parse_step", "UNIT_SECONDS", "to_unix_seconds", "iso_utc", "utc_timestamp",
-           "utc_index", "index_seconds"]
+           "utc_index", "index_seconds", "silences"]
 
 # Seconds in each unit name a person may write. "m" is minutes (as in "10m"): months and
 # metres never mean a duration here.
@@ -170,3 +170,39 @@ def utc_index(index: pd.Index) -> pd.DatetimeIndex:
 def index_seconds(index: pd.Index) -> np.ndarray:
     """Unix seconds [s] (float) of a DatetimeIndex (naive taken as UTC)."""
     return utc_index(index).as_unit("ns").asi8 / 1e9
+
+
+def silences(t, limit: float, start: float | None = None, end: float | None = None):
+    """Gaps: the one definition of the project. A gap is a span longer than ``limit`` with no
+    sample, between two consecutive samples.
+
+    Parameters
+    ----------
+    t : array_like of numbers
+        Sample times, in any one unit (Unix seconds [s], or nanoseconds for exact times);
+        sorted here.
+    limit : float
+        The longest silence that is not a gap, in the unit of ``t`` (quality control uses its
+        ``gap_limit``; the daily report twice the sampling interval).
+    start, end : float, optional
+        The edges of a window, taken as samples, so a silence at either edge counts too.
+
+    Returns
+    -------
+    (numpy.ndarray, numpy.ndarray)
+        For each gap, the time of the sample before it and of the sample after it (or the
+        window edge), in the unit and type of ``t``.
+
+    References
+    ----------
+    U.S. IOOS (2021), QARTOD water level manual v2.1, Test 1 (timing/gap): a sample is due
+    within a set time of the one before it.
+    """
+    edges = np.sort(np.asarray(t).ravel())
+    if start is not None:
+        edges = np.concatenate([np.asarray([start], dtype=edges.dtype), edges])
+    if end is not None:
+        edges = np.concatenate([edges, np.asarray([end], dtype=edges.dtype)])
+    d = np.diff(edges)
+    at = np.flatnonzero(d > limit)
+    return edges[at], edges[at + 1]

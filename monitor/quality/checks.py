@@ -50,7 +50,7 @@ import pandas as pd
 
 from alerts.transactions import transaction
 from monitor.errors import UserError
-from predictor.timeutil import index_seconds, utc_index
+from predictor.timeutil import index_seconds, silences, utc_index
 from predictor.timeutil import parse_duration as _parse_duration
 
 PASS, NOT_EVALUATED, SUSPECT, FAIL, MISSING = 1, 2, 3, 4, 9
@@ -332,13 +332,12 @@ def gap_test(level: pd.Series, gap_limit: float, now: float | None = None,
 
 
 def find_gaps(index: pd.Index, gap_limit: float) -> pd.DataFrame:
-    """Silences longer than ``gap_limit`` [s]: columns ``start`` (last sample before),
-    ``end`` (first sample after) as UTC Timestamps and ``seconds``."""
-    t = index_seconds(index)
-    dt = np.diff(t)
-    at = np.flatnonzero(dt > gap_limit)
-    idx = utc_index(index)
-    return pd.DataFrame({"start": idx[at], "end": idx[at + 1], "seconds": dt[at]})
+    """Silences longer than ``gap_limit`` [s] (a gap as :func:`predictor.timeutil.silences`
+    defines it): columns ``start`` (last sample before), ``end`` (first sample after) as UTC
+    Timestamps and ``seconds`` [s]."""
+    before, after = silences(utc_index(index).as_unit("ns").asi8, gap_limit * 1e9)
+    return pd.DataFrame({"start": pd.to_datetime(before, utc=True), "end": pd.to_datetime(after, utc=True),
+                         "seconds": (after - before) / 1e9})
 
 
 def syntax_test(level: pd.Series) -> pd.Series:
