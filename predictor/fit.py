@@ -33,6 +33,7 @@ from predictor import constituents as cat
 from predictor import nodal as nod
 from predictor.constituents import equilibrium_amplitude
 from predictor.constituents import get
+from predictor.errors import FitConditioningWarning, FitInputError
 from predictor.model import TideModel
 from predictor.timeutil import iso_utc, to_unix_seconds
 
@@ -80,16 +81,8 @@ PRIORITY = (
 )
 
 
-class FitInputError(ValueError):
-    """The record cannot be fitted as given (too few samples, unknown constituent, ...)."""
-
-
 class RecordTooShortError(FitInputError):
     """The record is too short to resolve the constituents a useful fit needs."""
-
-
-class FitConditioningWarning(UserWarning):
-    """The normal equations are ill-conditioned; a minimum-norm solution was used."""
 
 
 # --------------------------------------------------------------------------- selection

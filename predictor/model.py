@@ -41,6 +41,7 @@ import tomli_w
 from predictor.astro import astronomical_arguments
 from predictor.caution import PREDICTION, comment_lines
 from predictor.constituents import doodson_matrix, get
+from predictor.errors import ConstantsFileError
 from predictor.extrema import high_low
 from predictor.nodal import equilibrium_arguments, nodal_factors
 from predictor.timeutil import iso_utc, to_unix_seconds
@@ -54,10 +55,6 @@ _ROWS_PER_CHUNK = 65536  # rows per chunk on the general path (bounds memory)
 _HALF_DAY = 43200.0
 _BLOCKS_PER_CHUNK = 512
 _RAMP_BUDGET = 1e-8  # [m] summed error allowed from dropped in-block nodal ramps
-
-class ConstantsFileError(ValueError):
-    """A constants file or constants table that cannot be used; the message says where."""
-
 
 def _uniform(times):
     """(t0 [s], dt [s], n) when ``times`` are strictly uniform, else None."""

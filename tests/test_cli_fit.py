@@ -11,7 +11,7 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 
 from monitor.cli.fit import CAUTION, read_level_csv, register
-from monitor.errors import UserError
+from monitor.cli.errors import UserError
 from predictor import TideModel
 
 mm = 1e-3

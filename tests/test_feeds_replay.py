@@ -11,7 +11,7 @@ import time
 
 import pytest
 
-from monitor.errors import UserError
+from monitor.errors import FeedError
 from monitor.feeds import feed_from_config, open_feed
 from monitor.feeds.replay import ReplayFeed, parse_time
 
@@ -159,7 +159,7 @@ def test_changed_file_is_played_from_start(record):
 
 
 def test_missing_replay_file_is_a_user_error(tmp_path):
-    with pytest.raises(UserError, match="absent.csv"):
+    with pytest.raises(FeedError, match="absent.csv"):
         ReplayFeed("demo", str(tmp_path / "absent.csv"), speedup=0)
 
 

@@ -6,7 +6,7 @@ import pandas as pd
 import pytest
 
 from monitor.quality import checks as qc
-from monitor.errors import UserError
+from monitor.errors import QcError
 from monitor.store.database import Store
 from test_qc_synthetic import SynthModel, minute, mm, record
 
@@ -80,7 +80,7 @@ def test_override_range_covers_every_sample_in_it(filled):
 
 def test_override_at_a_time_without_sample_names_the_nearest(filled):
     store, level = filled
-    with pytest.raises(UserError, match="nearest: 2024-03-01T00:05:00Z"):
+    with pytest.raises(QcError, match="nearest: 2024-03-01T00:05:00Z"):
         qc.set_override(store, "harbour", "primary", level.index[5].timestamp() + 20, None, qc.FAIL, "x", "y")
 
 

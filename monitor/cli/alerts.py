@@ -18,8 +18,8 @@ from alerts.mail.outbox import list_outbox
 from alerts.mail.outbox import outbox_row
 from monitor.cli.common import CAUTION, positive_int, store_errors
 from monitor.cli.common import table as _common_table
+from monitor.cli.errors import UserError
 from monitor.cli.timeparse import local_text
-from monitor.errors import UserError
 from monitor.service.config import load_config
 from monitor.store.database import Store
 

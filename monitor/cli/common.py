@@ -9,7 +9,7 @@ import sqlite3
 from pathlib import Path
 from typing import Callable, Iterable, Sequence
 
-from monitor.errors import UserError
+from monitor.cli.errors import UserError
 from predictor.caution import CAUTION
 
 __all__ = ["CAUTION", "table", "positive_int", "count", "finite_float", "store_errors", "input_file"]

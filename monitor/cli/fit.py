@@ -15,8 +15,8 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
+from monitor.cli.errors import UserError
 from monitor.cli.timeparse import zone as _zone
-from monitor.errors import UserError
 from monitor.service.config import datum_words
 from predictor.caution import ANALYSIS as CAUTION
 from predictor.fit import FitConditioningWarning

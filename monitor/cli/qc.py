@@ -17,9 +17,9 @@ import pandas as pd
 
 from monitor.cli.common import CAUTION, count, finite_float, store_errors
 from monitor.cli.common import table as _common_table
+from monitor.cli.errors import UserError
 from monitor.cli.timeparse import local_text as _local
 from monitor.cli.timeparse import parse_range, parse_time
-from monitor.errors import UserError
 from monitor.quality import checks as qc
 from monitor.quality import diagnostics as dg
 from monitor.service.config import load_config

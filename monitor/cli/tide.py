@@ -15,8 +15,8 @@ import pandas as pd
 
 from monitor.cli import fit as fit_verb
 from monitor.cli.common import finite_float, input_file
+from monitor.cli.errors import UserError
 from monitor.cli.timeparse import offset_text, parse_date, parse_range, parse_time, zone
-from monitor.errors import UserError
 from monitor.service.config import datum_words
 from monitor.service.config import load_config
 from monitor.service.constants import load_model

@@ -49,7 +49,7 @@ import numpy as np
 import pandas as pd
 
 from alerts.transactions import transaction
-from monitor.errors import UserError
+from monitor.errors import QcError
 from predictor.timeutil import index_seconds, silences, utc_index
 from predictor.timeutil import parse_duration as _parse_duration
 
@@ -1178,23 +1178,23 @@ def set_override(store: Any, station: str, sensor: str, start_t: float, end_t: f
     """Record a technician's flag for the samples of one sensor in ``[start_t, end_t]``.
 
     With ``end_t`` None the single sample at ``start_t`` is meant; when no sample is
-    stamped exactly then, a UserError names the nearest one. The override wins over
+    stamped exactly then, a QcError names the nearest one. The override wins over
     automatic flags now and whenever QC is re-run. Returns the number of samples.
     """
     if flag not in OVERRIDE_FLAGS:
-        raise UserError(f"--set: expected one of {', '.join(map(str, OVERRIDE_FLAGS))} "
+        raise QcError(f"--set: expected one of {', '.join(map(str, OVERRIDE_FLAGS))} "
                         f"(1 pass, 3 suspect, 4 fail), got {flag}")
     if not who.strip():
-        raise UserError("--who: say who sets the flag")
+        raise QcError("--who: say who sets the flag")
     if not why.strip():
-        raise UserError("--why: say why the flag is set")
+        raise QcError("--why: say why the flag is set")
     db = _db(store)
     ensure_qc_schema(db)
     conn = db.conn
     lo = int(math.floor(start_t))
     hi = int(math.ceil(end_t)) if end_t is not None else lo
     if hi < lo:
-        raise UserError("--to: is before --at")
+        raise QcError("--to: is before --at")
     ts = [r[0] for r in conn.execute(
         "SELECT t FROM observations WHERE station = ? AND sensor = ? AND t BETWEEN ? AND ? ORDER BY t",
         (station, sensor, lo, hi))]
@@ -1204,9 +1204,9 @@ def set_override(store: Any, station: str, sensor: str, start_t: float, end_t: f
             (station, sensor, lo)).fetchone()
         where = f"{station}/{sensor}"
         if near is None:
-            raise UserError(f"no observations of {where} in the store")
+            raise QcError(f"no observations of {where} in the store")
         iso = pd.Timestamp(near[0], unit="s", tz="UTC").isoformat().replace("+00:00", "Z")
-        raise UserError(f"no sample of {where} at the time given (nearest: {iso}); "
+        raise QcError(f"no sample of {where} at the time given (nearest: {iso}); "
                         f"give that time, or a range with --to")
     stamp = int(at if at is not None else _time.time())
     with transaction(conn):
@@ -1221,9 +1221,9 @@ def set_override(store: Any, station: str, sensor: str, start_t: float, end_t: f
 def add_staff_reading(store: Any, station: str, t: float, reading: float, who: str, note: str = "") -> None:
     """Store a tide-staff reading [m on the station datum] taken at ``t`` [Unix s]."""
     if not math.isfinite(reading) or abs(reading) > 1000:
-        raise UserError(f"--reading: expected metres on the station datum, got {reading}")
+        raise QcError(f"--reading: expected metres on the station datum, got {reading}")
     if not who.strip():
-        raise UserError("--who: say who read the staff")
+        raise QcError("--who: say who read the staff")
     db = _db(store)
     ensure_qc_schema(db)
     db["staff_readings"].upsert({"station": station, "t": int(round(t)), "reading": float(reading),

@@ -20,7 +20,7 @@ import pandas as pd
 from alerts.mail.outbox import enqueue
 from alerts.reports import model as R
 from alerts.reports import render as RR
-from monitor.errors import UserError
+from monitor.errors import ConfigError, MonitorError
 from monitor.quality import checks as Q
 from monitor.quality import diagnostics as D
 from monitor.quality.checks import read_level_series
@@ -195,7 +195,7 @@ def gather_day(store: Any, station: Any, day: dt.date, settings: R.ReportSetting
     if model is None:
         try:
             model, model_source = load_model(store, station)
-        except UserError as exc:
+        except MonitorError as exc:
             model, model_source = None, str(exc)
 
     obs = store.observations(sid, "primary", t0, t1)
@@ -657,7 +657,7 @@ def find_station(config: Any, station_id: str) -> Any:
         if station.id == station_id:
             return station
     known = ", ".join(s.id for s in config.stations) or "none"
-    raise UserError(f"--station {station_id!r}: no such station in the configuration (known: {known})")
+    raise ConfigError(f"--station {station_id!r}: no such station in the configuration (known: {known})")
 
 
 def settings_of(config: Any) -> R.ReportSettings:
@@ -680,7 +680,7 @@ def write_station_day(config: Any, store: Any, station: Any, day: dt.date, *, se
         RR.prune_reports(settings.folder, settings.keep_days, day)
         RR.write_index(settings.folder, now)
     except OSError as exc:
-        raise UserError(f"reports.folder {settings.folder}: cannot write the report ({exc})") from None
+        raise ConfigError(f"reports.folder {settings.folder}: cannot write the report ({exc})") from None
     queued = 0
     if send and settings.email and settings.recipients and getattr(config, "mail", None) is not None:
         queued = len(queue_email(store, report, settings.recipients, path, now))
@@ -732,6 +732,6 @@ def write_due_reports(config: Any, store: Any, now: Any = None) -> list[Path]:
         try:
             written.append(write_station_day(config, store, station, day, send=True, now=now))
             log.info("station %s: daily report for %s written", station.id, day)
-        except UserError as exc:
+        except MonitorError as exc:
             log.error("station %s: daily report for %s: %s", station.id, day, exc)
     return written
