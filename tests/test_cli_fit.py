@@ -13,9 +13,8 @@ from hypothesis import strategies as st
 from monitor.cli.fit import CAUTION, read_level_csv, register
 from monitor.cli.errors import UserError
 from predictor import TideModel
+from units import mm
 
-mm = 1e-3
-minute = 60.0
 
 # Invented port: amplitude [m] and Greenwich phase lag [deg]; P1 and K2 at their equilibrium
 # ratios to K1 and S2 (0.331, 0.272: Cartwright & Tayler 1971, from memory), as a short record's

@@ -13,16 +13,7 @@ from monitor.feeds.parse import LineFormat
 from monitor.service.daemon import row_lines
 from monitor.feeds.parse import parse_lines
 from monitor.store.database import Store
-
-m = 1.0
-mm = 1e-3
-
-
-@pytest.fixture
-def store(tmp_path):
-    s = Store.open(tmp_path / "q.db")
-    yield s
-    s.close()
+from units import m, mm
 
 
 def _write(store, lines):

@@ -11,7 +11,8 @@ import pytest
 
 from monitor.quality import diagnostics as dg
 from monitor.quality.checks import QcSettings
-from test_qc_synthetic import START, SynthModel, day, hour, minute, mm, record
+from test_qc_synthetic import START, SynthModel, record
+from units import mm, minute, hour, day
 
 
 @pytest.fixture(scope="module")

@@ -14,9 +14,8 @@ import pytest
 from monitor.errors import FeedError
 from monitor.feeds import feed_from_config, open_feed
 from monitor.feeds.replay import ReplayFeed, parse_time
+from units import second
 
-second = 1.0
-minute = 60.0
 
 RECORD = "time,level\n" + "".join(
     f"2031-03-01T00:{m:02d}:00Z,{1 + m / 100:.2f}\n" for m in range(10))

@@ -10,8 +10,8 @@ import pandas as pd
 from alerts.reports.model import find_gaps as report_gaps
 from monitor.quality.checks import find_gaps as qc_gaps
 from predictor.timeutil import silences
+from units import minute
 
-minute = 60.0
 
 # samples at 0, 1, 2, 10, 11, 20 minutes: silences of 8 min (2 -> 10) and 9 min (11 -> 20)
 T = np.array([0, 1, 2, 10, 11, 20]) * minute

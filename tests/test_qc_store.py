@@ -8,14 +8,8 @@ import pytest
 from monitor.quality import checks as qc
 from monitor.errors import QcError
 from monitor.store.database import Store
-from test_qc_synthetic import SynthModel, minute, mm, record
-
-
-@pytest.fixture()
-def store(tmp_path):
-    with Store.open(tmp_path / "station.sqlite") as s:
-        qc.ensure_qc_schema(s.db)
-        yield s
+from test_qc_synthetic import SynthModel, record
+from units import mm, minute
 
 
 def _put(store, level: pd.Series, sensor: str = "primary", station: str = "harbour"):
