@@ -18,17 +18,8 @@ from zoneinfo import ZoneInfo, ZoneInfoNotFoundError
 import jinja2
 
 from alerts.rules import Event, Rule, StationView
-
-#: The caution, in one line: the top of every email form (its full text follows below).
-CAUTION_LINE = ("Automated and unofficial: official warnings and your local emergency "
-                "authorities come first; defer to local codes and licensed practice.")
-#: The full caution of every email. This module is its one home; forms and templates take it
-#: from here (``CAUTION_LINE`` is its first sentence).
-CAUTION = (
-    f"{CAUTION_LINE} This message comes from a station monitor and is not an official "
-    "warning: follow the instructions of official warnings and your local emergency "
-    "authorities."
-)
+from predictor.caution import CAUTION as CAUTION_LINE  # the one line at the top of every form
+from predictor.caution import MESSAGE as CAUTION        # the full text, below it
 
 SUBJECT_PREFIX = "[quaywatch]"
 
