@@ -11,10 +11,10 @@ from alerts.reports.model import day_bounds
 from monitor.service.reporting import gather_day
 from monitor.store.database import Store
 from predictor import TideModel
+from units import mm
 
 TZ = "Atlantic/Faroe"
 DAY = dt.date(2024, 3, 12)
-mm = 1e-3
 
 
 class Station:
