@@ -492,5 +492,5 @@ def advance(rule: Rule, state: RuleState, t: int, value: float,
 
 
 def with_watermark(state: RuleState, t: int) -> RuleState:
-    """The same state with the watermark moved to ``t`` (a skipped, uncounted sample)."""
+    """The same state with the watermark moved to ``t`` [Unix s, UTC] (a skipped, uncounted sample)."""
     return replace(state, watermark=t)
