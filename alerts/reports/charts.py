@@ -127,7 +127,9 @@ def _clock_change(start: pd.Timestamp, end: pd.Timestamp, zone: ZoneInfo) -> pd.
 
 def day_chart(report: "DayReport", width: float | None = None, height: float | None = None, dpi: int = 110,
               fmt: str = "png", layout: str = "print") -> bytes | str:
-    """Draw the day's level and residual chart: PNG bytes, or SVG text with ``fmt="svg"``.
+    """Draw the day's level and residual chart: PNG bytes, or SVG text with ``fmt="svg"``
+    (``width`` and ``height`` [in] default to the layout's, ``dpi`` [dots per inch]; levels [m]
+    on the report's datum).
 
     Samples flagged fail (QARTOD 4) are marked but never set the axis range: a wild spike
     is drawn clipped at the panel's edge rather than squashing the tide flat. ``layout`` is
@@ -241,7 +243,9 @@ def _day_chart(report, width, height, dpi, fmt, layout):
 
 
 def trend_chart(diagnostics: Sequence["Diagnostic"], dpi: int = 110, fmt: str = "png") -> bytes | str | None:
-    """Small multiples of each diagnostic's recent history; ``None`` when there is none.
+    """Small multiples of each diagnostic's recent history (in its own unit: mm, mm/day,
+    minutes) as PNG bytes at ``dpi`` [dots per inch], or SVG text with ``fmt="svg"``; ``None``
+    when there is none.
 
     As SVG (the report page) one column, its text at 12.5 pt in a 4.8 in (346 pt) drawing,
     so at a 359 px phone column no letter is under 12 px."""
