@@ -9,7 +9,7 @@ otherwise the daemon's defaults, and one with one-second timers (what the design
 "within seconds" needs). Baselines measured in the same run:
 
 - the scheduling bound, poll + process + outbox intervals: what three timers in series
-  allow in the worst case (target: worst latency within the bound plus 5 s);
+  allow in the worst case;
 - the direct path: queuing one message and delivering it to the same server in-process.
 
 With the example's 10 s / 60 s / 30 s timers each latency is tens of seconds and the
@@ -17,6 +17,9 @@ daemon's first processing pass comes a full interval after its start, so one epi
 (two latencies) is measured to finish within about three minutes.  Each line is
 appended soon after the previous email, that is soon after a processing pass, so the
 figures sit near the worst case of the processing timer rather than at its average.
+
+Targets (issue 16; non-zero exit on a miss): line-to-email median under 5 s and 95th
+percentile under 10 s, with the configured polling and with one-second timers.
 
 Run: ``python -m benchmarks.bench_alert_latency`` (``QW_BENCH_TRIALS=N`` episodes with the
 configured polling, ``QW_BENCH_FAST_TRIALS=N`` with one-second timers,
@@ -35,6 +38,8 @@ import threading
 import time
 import tomllib
 from pathlib import Path
+
+import numpy as np
 
 ROOT = Path(__file__).resolve().parents[1]
 STEP = 0.50      # [m] the rule's step
@@ -260,12 +265,17 @@ def _measure(polling: dict, trials: int) -> tuple[list[float], list[float], floa
 
 
 FAST = {"poll_seconds": 1.0, "process_seconds": 1.0, "outbox_seconds": 1.0}
-FAST_TARGET = 10.0   # [s] "within seconds" (design notes), with one-second timers
-OVERHEAD_TARGET = 5.0  # [s] what the pipeline may add on top of its three timers
+MEDIAN_TARGET = 5.0  # [s] line-to-email, median (design notes and issue 16)
+P95_TARGET = 10.0    # [s] line-to-email, 95th percentile (issue 16)
 
 
-def _report(title: str, polling: dict, alerts: list[float], clears: list[float], direct: float,
-            target: float, target_text: str) -> None:
+def _p95(values: list[float]) -> float:
+    """The 95th percentile [s] (linear interpolation between order statistics)."""
+    return float(np.percentile(values, 95))
+
+
+def _report(title: str, polling: dict, alerts: list[float], clears: list[float], direct: float) -> tuple[float, float]:
+    """Print the figures of one daemon; returns (median, 95th percentile) [s] over both kinds."""
     bound = sum(polling.values())
     both = alerts + clears
     med, worst = statistics.median(both), max(both)
@@ -275,11 +285,13 @@ def _report(title: str, polling: dict, alerts: list[float], clears: list[float],
     print(f"  all-clear median {statistics.median(clears):6.2f} s, worst {max(clears):6.2f} s")
     print(f"  ratio median / scheduling bound ({bound:g} s): {med / bound:.2f}; worst: {worst / bound:.2f}")
     print(f"  ratio median / direct queue-and-send ({direct * 1000:.1f} ms): {med / direct:.0f}")
-    print(f"  worst {worst:.2f} s, {target_text} {target:g} s: {'PASS' if worst <= target else 'FAIL'}")
+    return med, _p95(both)
 
 
 def main() -> None:
     from concurrent.futures import ThreadPoolExecutor
+
+    from benchmarks.targets import Targets
 
     polling, src = _polling()
     bound = sum(polling.values())
@@ -293,12 +305,14 @@ def main() -> None:
         fast = pool.submit(_measure, FAST, fast_trials)
         a1, c1, d1 = configured.result()
         a2, c2, d2 = fast.result()
-    _report(f"alert latency with the polling of {src}", polling, a1, c1, d1,
-            bound + OVERHEAD_TARGET, f"target <= scheduling bound + {OVERHEAD_TARGET:g} s =")
-    print("  (a line waits for up to one poll, one processing pass and one outbox pass in series; "
-          "shorter intervals in [daemon] give lower latency)")
-    _report("alert latency with one-second timers", FAST, a2, c2, d2, FAST_TARGET,
-            "target (design notes: within seconds) <=")
+    targets = Targets()
+    med, p95 = _report(f"alert latency with the polling of {src}", polling, a1, c1, d1)
+    targets.below(f"median line-to-email with the polling of {src} [s]", med, MEDIAN_TARGET, ".2f")
+    targets.below(f"95th percentile line-to-email with the polling of {src} [s]", p95, P95_TARGET, ".2f")
+    med, p95 = _report("alert latency with one-second timers", FAST, a2, c2, d2)
+    targets.below("median line-to-email with one-second timers [s]", med, MEDIAN_TARGET, ".2f")
+    targets.below("95th percentile line-to-email with one-second timers [s]", p95, P95_TARGET, ".2f")
+    targets.finish()
 
 
 if __name__ == "__main__":
