@@ -4,8 +4,10 @@ apscheduler (3.x, BackgroundScheduler with one worker thread, so jobs never over
 runs these jobs, and an outbox thread of its own delivers the mail:
 
 - ``poll``: each feed's new lines are parsed and stored with the feed's checkpoint in one
-  transaction (:func:`ingest_lines`);
-- ``process``: per station, :meth:`Daemon.process_station` -- quality control, residual,
+  transaction (:func:`ingest_lines`); a station that got lines is processed in the same job,
+  after ``daemon.coalesce_seconds`` and one more poll (:meth:`Daemon.process_delivered`),
+  so a line reaches the rules within a poll interval and a second, not a timer's minute;
+- ``process``: the catch-up pass over every station (late data, retries), per station, :meth:`Daemon.process_station` -- quality control, residual,
   skew surge, next high water forecast, then the alert rules (one pipeline, in order).
   Rows that arrive late (older than what was processed, of any sensor) are processed
   again from the earliest time stored. The rules get the new samples and the hour before
@@ -536,6 +538,7 @@ class Daemon:
         self.stop = threading.Event()
         self.done = threading.Event()
         self.empty_polls = 0
+        self.delivered: set[str] = set()  # stations whose feeds delivered lines since their last pass
         self.feeds_done_at: float | None = None
         self.until_exhausted = False
         from monitor import qc
@@ -620,6 +623,8 @@ class Daemon:
                 log.exception("feed %s: poll failed; will retry", fr.name)
                 continue
             total += len(lines)
+            if rt is not None:
+                self.delivered.add(rt.cfg.id)
             if res.rejected:
                 log.warning("feed %s: %d line(s) rejected (see 'quaywatch status')", fr.name, res.rejected)
             log.debug("feed %s: %s", fr.name, res)
@@ -637,6 +642,7 @@ class Daemon:
     # ------------------------------------------------------------------ processing
     def process(self) -> int:
         """Process new data of every station. Returns the number of stations with new data."""
+        self.delivered.clear()
         n = 0
         for rt in self.stations.values():
             if self.stop.is_set():
@@ -1003,7 +1009,29 @@ class Daemon:
 
     # ------------------------------------------------------------------ jobs
     def job_poll(self) -> None:
-        self.poll()
+        """Poll the feeds; the stations that got lines are processed at once, after
+        ``daemon.coalesce_seconds`` and one more poll (so lines of a station's other
+        sensors, or the rest of a burst, join the same pass)."""
+        if not self.poll():
+            return
+        wait = self.cfg.daemon.coalesce_seconds
+        if wait > 0 and not self.stop.wait(wait):
+            self.poll()
+        self.process_delivered()
+
+    def process_delivered(self) -> int:
+        """Process the stations whose feeds delivered lines since their last pass. Returns
+        the number of stations with new data."""
+        n = 0
+        while self.delivered and not self.stop.is_set():
+            rt = self.stations.get(self.delivered.pop())
+            if rt is None:
+                continue
+            try:
+                n += bool(self.process_station(rt))
+            except Exception:
+                log.exception("station %s: processing failed; will retry", rt.cfg.id)
+        return n
 
     def job_process(self) -> None:
         n = self.process()
