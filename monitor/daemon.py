@@ -363,6 +363,7 @@ class StationRuntime:
     replay_clock: bool = False
     last_fit_try: float = -math.inf
     diag_at: float = -math.inf      # data time of the last drift and clock diagnostics [Unix s]
+    diag_phase: float = 0.0         # fraction of daemon.diagnostics_minutes this station's runs are offset by
     diag: dict = field(default_factory=dict)  # their results: "drift", "clock.primary", ...
     predicted: "PredictionMemo | None" = field(default=None, repr=False)
     _extremes: "Frozen | None" = field(default=None, repr=False)
@@ -569,6 +570,8 @@ class Daemon:
         if self.outbox is not None:
             self.outbox.ensure_outbox_schema(store.db)
         self.stations = {st.id: self._station_runtime(st) for st in cfg.stations}
+        for i, rt in enumerate(self.stations.values()):
+            rt.diag_phase = i / len(self.stations)
         # Replay feeds run the rules and the daily reports on the replayed clock, so a replayed
         # storm reads as it would have live. Delivery does not: the outbox keeps the wall clock.
         self.replay_clock = bool(self.stations) and all(rt.replay_clock for rt in self.stations.values())
@@ -867,8 +870,12 @@ class Daemon:
         st, dset = rt.cfg, self.cfg.daemon
         if end_t is None:
             end_t = int(now)
-        if end_t - rt.diag_at >= dset.diagnostics_minutes * 60:
-            rt.diag_at = end_t
+        period = dset.diagnostics_minutes * 60
+        if end_t - rt.diag_at >= period:
+            # The first run comes at once; the next after a share of the period that differs
+            # by station, so with many stations the runs spread over the period rather than
+            # all landing in one pass each hour.
+            rt.diag_at = end_t - (rt.diag_phase * period if rt.diag_at == -math.inf else 0.0)
             rt.diag = self._run_diagnostics(rt, end_t)
         faults: list[dict] = []
         qs = st.qc
