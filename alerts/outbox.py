@@ -571,6 +571,11 @@ def _save_copy(settings: MailSettings, row: dict, msg) -> None:
     (d / f"{row['id']:06d}-{kind}.eml").write_bytes(msg.as_bytes())
 
 
+WAITING_SQL = "('pending', 'sending')"  # the statuses of messages not yet delivered nor given up
+_QUEUE_COLUMNS = ("id, created_at, kind, key, recipient, subject, message_id, status, attempts, next_try,"
+                  " claimed_until, last_try, last_error, event_at, claimed_by")
+
+
 def deliver_due(db, settings: MailSettings, now: Any = None, *,
                 recipients: Iterable[str] | None = None, clock: Clock | None = None,
                 claimer: str | None = None) -> DeliverySummary:
@@ -602,8 +607,10 @@ def deliver_due(db, settings: MailSettings, now: Any = None, *,
     summary = DeliverySummary()
     claimer = claimer or process_identity("cli")
 
+    # What is waiting, through the status index and without the bodies (a kept outbox holds
+    # thousands of delivered messages, some report-sized); a body is read when it is sent.
     rows = [dict(r) for r in db.query(
-        "SELECT * FROM outbox WHERE status NOT IN ('sent', 'expired') ORDER BY id")]
+        f"SELECT {_QUEUE_COLUMNS} FROM outbox WHERE status IN {WAITING_SQL} ORDER BY id")]
     if only is not None:
         rows = [r for r in rows if r["recipient"] in only]
 
@@ -647,6 +654,8 @@ def deliver_due(db, settings: MailSettings, now: Any = None, *,
                 blocked.add(r["recipient"])
                 summary.waiting += 1
                 continue
+            body = db.execute("SELECT text, html, attachments FROM outbox WHERE id = ?", [r["id"]]).fetchone()
+            r.update(zip(("text", "html", "attachments"), body))
             msg = build_email(settings.sender, r["recipient"], r["subject"], r["text"], r["html"],
                               r["message_id"], date=r["created_at"], reply_to=settings.reply_to,
                               attachments=_decode_attachments(r["attachments"]))

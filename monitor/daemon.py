@@ -976,7 +976,7 @@ class Daemon:
             return 0
         try:
             return int(self.store.conn.execute(
-                "SELECT count(*) FROM outbox WHERE status NOT IN ('sent', 'expired')").fetchone()[0])
+                f"SELECT count(*) FROM outbox WHERE status IN {self.outbox.WAITING_SQL}").fetchone()[0])
         except Exception:  # no outbox table yet: nothing queued
             return 0
 
