@@ -67,7 +67,7 @@ def _ols(X: np.ndarray, y: np.ndarray) -> tuple[np.ndarray, np.ndarray, float, n
 
 # --------------------------------------------------------------------------- two sensors
 
-DRIFT_MAX_BINS = 720  # bins of the drift's Theil-Sen line at most (30 days of hours)
+DRIFT_MAX_BINS = 744  # bins of the drift's Theil-Sen line at most (31 days of hours: the default 30-day window keeps hourly bins)
 
 
 def sensor_drift(primary: pd.Series, backup: pd.Series, *, bin_seconds: float = 3600.0,
@@ -80,7 +80,7 @@ def sensor_drift(primary: pd.Series, backup: pd.Series, *, bin_seconds: float = 
     gives the drift, and its value at the window's centre the offset. A record longer
     than ``max_bins`` bins gets wider bins (the span over ``max_bins``), so the pairwise
     slopes stay a fixed number and the cost grows with the record only through the
-    binning (30 days of hourly bins are 720).
+    binning (the default 30-day window keeps its hourly bins).
 
     Returns
     -------
@@ -100,7 +100,7 @@ def sensor_drift(primary: pd.Series, backup: pd.Series, *, bin_seconds: float = 
     if d.empty:
         return out
     t = seconds(d.index)
-    bin_seconds = max(bin_seconds, (t[-1] - t[0]) / max_bins)
+    bin_seconds = max(bin_seconds, (t[-1] - t[0]) / (max_bins - 1))  # bins 0 .. max_bins - 1
     b = np.floor((t - t[0]) / bin_seconds)
     g = pd.DataFrame({"t": t, "d": d.to_numpy(), "b": b}).groupby("b").median()
     out.update(bins=len(g), start=d.index[0], end=d.index[-1])
