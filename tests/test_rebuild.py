@@ -22,7 +22,7 @@ import pytest
 from monitor.cli import main
 
 ROOT = Path(__file__).resolve().parent.parent
-START_DEADLINE = 90.0   # [s] a daemon's start and first passes on a loaded machine
+START_DEADLINE = 180.0  # [s] a daemon's start and first passes on a loaded machine (a ceiling)
 minute = 60
 hour = 3600
 T0 = (int(time.time()) // hour - 48) * hour
