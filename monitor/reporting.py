@@ -8,6 +8,7 @@ defines a ``chart`` datum, else on the station datum.
 from __future__ import annotations
 
 import dataclasses
+import json
 import datetime as dt
 import logging
 from pathlib import Path
@@ -672,8 +673,45 @@ def _constants(store: Any, sid: str, model: Any, source: str, shift: float = 0.0
 
 
 def _ensure_runs(db: Any) -> None:
-    db["report_runs"].create({"station": str, "day": str, "written_at": int, "path": str, "queued": int},
-                             pk=("station", "day"), if_not_exists=True)
+    db["report_runs"].create({"station": str, "day": str, "written_at": int, "path": str, "queued": int,
+                              "summary": str}, pk=("station", "day"), if_not_exists=True)
+    if "summary" not in db["report_runs"].columns_dict:
+        # the report's index figures (JSON), kept so the index is written without reading reports
+        db["report_runs"].add_column("summary", str)
+
+
+def refresh_index(config: Any, store: Any, now: pd.Timestamp | None = None, day: dt.date | None = None) -> Path:
+    """Prune reports more than ``reports.keep_days`` before ``day`` (the day just written;
+    once per day) and write the index page from the summaries kept in ``report_runs``: no
+    report file is read, so a round costs the same with 40 reports kept or 40,000. A report
+    written before the summaries were kept has its summary read from its file once, and
+    kept."""
+    settings = settings_of(config)
+    now = now or pd.Timestamp.now(tz="UTC")
+    db = store.db
+    _ensure_runs(db)
+    day = day or now.tz_convert("UTC").date() - dt.timedelta(days=1)
+    cutoff = (day - dt.timedelta(days=settings.keep_days)).isoformat() if settings.keep_days > 0 else ""
+    try:
+        if settings.keep_days > 0 and store.get_meta("reports.pruned_for") != day.isoformat():
+            R.prune_reports(settings.folder, settings.keep_days, day)
+            store.set_meta("reports.pruned_for", day.isoformat())
+        entries = []
+        for sid, day, path, summary in db.conn.execute(
+                "SELECT station, day, path, summary FROM report_runs WHERE day >= ? ORDER BY station, day",
+                (cutoff,)).fetchall():
+            if summary is None:
+                found = R.read_summary(Path(path)) if path else None
+                if found is None:
+                    continue  # gone (pruned, or written elsewhere)
+                db.conn.execute("UPDATE report_runs SET summary = ? WHERE station = ? AND day = ?",
+                                (json.dumps(found), sid, day))
+            else:
+                found = json.loads(summary)
+            entries.append((sid, day, found))
+        return R.write_index(settings.folder, now, entries)
+    except OSError as exc:
+        raise UserError(f"reports.folder {settings.folder}: cannot write the index ({exc})") from None
 
 
 def find_station(config: Any, station_id: str) -> Any:
@@ -693,24 +731,29 @@ def settings_of(config: Any) -> R.ReportSettings:
 
 
 def write_station_day(config: Any, store: Any, station: Any, day: dt.date, *, send: bool = False,
-                      now: pd.Timestamp | None = None) -> Path:
-    """Gather, write ``<folder>/<station>/<day>.html``, refresh the index, and (with ``send``)
-    queue the email to the report recipients. Returns the report's path."""
+                      now: pd.Timestamp | None = None, index: bool = True) -> Path:
+    """Gather, write ``<folder>/<station>/<day>.html``, keep its index figures in
+    ``report_runs``, refresh the index (unless ``index`` is false: a round of many
+    stations writes it once at its end), and (with ``send``) queue the email to the report
+    recipients. Returns the report's path."""
     settings = settings_of(config)
     now = now or pd.Timestamp.now(tz="UTC")
     report = gather_day(store, station, day, settings, now=now, residual=getattr(config, "residual", None))
     try:
         path = R.write_day_report(report, settings.folder)
-        R.prune_reports(settings.folder, settings.keep_days, day)
-        R.write_index(settings.folder, now)
     except OSError as exc:
         raise UserError(f"reports.folder {settings.folder}: cannot write the report ({exc})") from None
+    summary = R.read_summary(path)
     queued = 0
     if send and settings.email and settings.recipients and getattr(config, "mail", None) is not None:
         queued = len(queue_email(store, report, settings.recipients, path, now))
     _ensure_runs(store.db)
     store.db["report_runs"].upsert({"station": station.id, "day": day.isoformat(), "written_at": int(now.timestamp()),
-                                    "path": str(path), "queued": queued}, pk=("station", "day"))
+                                    "path": str(path), "queued": queued,
+                                    "summary": None if summary is None else json.dumps(summary)},
+                                   pk=("station", "day"))
+    if index:
+        refresh_index(config, store, now, day)
     return path
 
 
@@ -758,8 +801,13 @@ def write_due_reports(config: Any, store: Any, now: Any = None) -> list[Path]:
         if done:
             continue
         try:
-            written.append(write_station_day(config, store, station, day, send=True, now=now))
+            written.append(write_station_day(config, store, station, day, send=True, now=now, index=False))
             log.info("station %s: daily report for %s written", station.id, day)
         except UserError as exc:
             log.error("station %s: daily report for %s: %s", station.id, day, exc)
+    if written:
+        try:
+            refresh_index(config, store, now, max(due_day(now, st.tz, settings.write_at) for st in config.stations))
+        except UserError as exc:
+            log.error("daily reports: %s", exc)
     return written
