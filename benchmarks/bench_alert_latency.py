@@ -258,11 +258,11 @@ class _Daemon:
         deadline = time.monotonic() + timeout
         while time.monotonic() < deadline:
             if self.proc.poll() is not None:
-                raise SystemExit(f"the daemon exited; its log:\n{self.log_tail()}")
+                raise RuntimeError(f"the daemon exited; its log:\n{self.log_tail()}")
             if _processed(self.tmp / "store.sqlite", stations, until):
                 return
             time.sleep(1.0)
-        raise SystemExit(f"the daemon did not process its history within {timeout:.0f} s; log:\n{self.log_tail()}")
+        raise RuntimeError(f"the daemon did not process its history within {timeout:.0f} s; log:\n{self.log_tail()}")
 
     def stop(self) -> None:
         self.proc.send_signal(signal.SIGTERM)
@@ -309,7 +309,7 @@ def _episodes(tmp: Path, catcher: _Catcher, sids: list[str], t_start: float, tri
             _append(tmp, sid, t_data[sid], level)
             got = catcher.wait_for(lambda s: name in s and want(s), mark, wait)
             if got is None:
-                raise SystemExit(f"no message within {wait:.0f} s on trial {i} ({sid}); daemon log:\n"
+                raise RuntimeError(f"no message within {wait:.0f} s on trial {i} ({sid}); daemon log:\n"
                                  f"{daemon.log_tail()}")
             latencies.append(got[0] - t_append)
             time.sleep(1.0)
