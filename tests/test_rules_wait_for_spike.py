@@ -18,10 +18,7 @@ from predictor import TideModel
 
 m = 1.0
 minute = 60
-# Data time: three hours ending two minutes ago, so the newest sample is live (its follower
-# may still come within the gap limit) and none is ahead of the clock.
-T_END = (int(time.time()) // minute - 2) * minute
-T0 = T_END - 180 * minute
+GAP_LIMIT = "2h"  # the station's qc.gap_limit: long, so a slow machine cannot age the newest sample past it
 CONSTANTS = """mean = 2.0
 [[constituents]]
 name = "M2"
@@ -53,6 +50,7 @@ latitude = 50.0
 longitude = -4.0
 constants = "constants.toml"
 datums = {{ chart = 0.0 }}
+qc = {{ gap_limit = "{GAP_LIMIT}" }}
 [stations.sensors.primary]
 line = {{ header_lines = 1 }}
 feed = {{ kind = "file", path = "{tmp / 'gauge.csv'}" }}
@@ -82,8 +80,11 @@ def _run(tmp: Path, tail: list[float], follower: float) -> tuple[list, list, int
     """Calm record whose newest samples stand ``tail`` [m] over the tide, then one more sample
     ``follower`` [m] over it. Returns the alerts queued before and after the follower, and
     the newest sample's final aggregate flag."""
+    # Data time: three hours ending two minutes ago, so the newest sample is live (its
+    # follower may still come within the gap limit) and none is ahead of the clock.
+    t_end = (int(time.time()) // minute - 2) * minute
     feed = tmp / "gauge.csv"
-    times = T0 + minute * np.arange(180)
+    times = t_end - 180 * minute + minute * np.arange(180)
     surge = np.zeros(180)
     surge[-len(tail):] = tail
     feed.write_text("time,level\n" + _lines(times, surge))
@@ -91,7 +92,7 @@ def _run(tmp: Path, tail: list[float], follower: float) -> tuple[list, list, int
     try:
         before = _step(d)
         with open(feed, "a") as fh:
-            fh.write(_lines([T_END], [follower]))
+            fh.write(_lines([t_end], [follower]))
         after = _step(d)
         flag = store.conn.execute("SELECT flag FROM observations WHERE t = ?", [int(times[-1])]).fetchone()[0]
     finally:
