@@ -797,6 +797,16 @@ def _confirm(tests: pd.DataFrame, level: pd.Series, resid: pd.Series, other: pd.
     return tests
 
 
+def _aggregate(table: np.ndarray) -> np.ndarray:
+    """:func:`aggregate_flags` of an int8 table whose columns are :data:`TESTS` in order."""
+    a = table.astype(np.int16)
+    g = TESTS.index("gap")
+    a[:, g] = np.where(a[:, g] == MISSING, NOT_EVALUATED, a[:, g])
+    a = np.where(a == NOT_EVALUATED, 0, a)
+    worst = a.max(axis=1) if a.shape[0] else np.zeros(0, dtype=np.int16)
+    return np.where(worst == 0, NOT_EVALUATED, worst).astype(np.int8)
+
+
 def aggregate_flags(tests: pd.DataFrame) -> pd.Series:
     """Aggregate flag per sample: the worst evaluated test (4 > 3 > 1); 2 when no test
     was evaluated; 9 when the value is missing (a test other than the gap test says 9).
@@ -1001,28 +1011,42 @@ def _rolling_median(values: np.ndarray, a: np.ndarray, b: np.ndarray, min_period
     return np.where(count >= min_periods, (lo + hi) / 2, np.nan)
 
 
+def _segments(values: np.ndarray, a: np.ndarray, b: np.ndarray, ufunc) -> np.ndarray:
+    """``ufunc`` reduced over each ``values[a_i:b_i]`` (one pass with ``reduceat``; an
+    empty window gives a value to be masked by its count)."""
+    if len(a) == 0:
+        return np.empty(0)
+    padded = np.append(values, np.nan)  # so an index may equal len(values)
+    idx = np.column_stack([np.minimum(a, len(values)), np.minimum(b, len(values))]).ravel()
+    return ufunc.reduceat(padded, idx)[::2]
+
+
+def _counts(finite: np.ndarray, a: np.ndarray, b: np.ndarray) -> np.ndarray:
+    csum = np.concatenate([[0], np.cumsum(finite)])
+    return csum[b] - csum[a]
+
+
 def _rolling_extremes(values: np.ndarray, a: np.ndarray, b: np.ndarray, min_periods: int) -> tuple:
-    rows, count = _padded(values, a, b)
-    if rows.shape[1] == 0:
-        nan = np.full(len(a), np.nan)
-        return nan, nan.copy()
-    with np.errstate(invalid="ignore"), warnings.catch_warnings():
-        warnings.simplefilter("ignore", RuntimeWarning)  # all-NaN rows
-        hi, lo = np.nanmax(rows, axis=1), np.nanmin(rows, axis=1)
-    few = count < min_periods
-    hi[few] = np.nan
-    lo[few] = np.nan
+    """Maximum and minimum of the non-NaN values of each window; NaN below ``min_periods``."""
+    few = _counts(np.isfinite(values), a, b) < min_periods
+    hi = np.where(few, np.nan, _segments(values, a, b, np.fmax))
+    lo = np.where(few, np.nan, _segments(values, a, b, np.fmin))
     return hi, lo
 
 
 def _rolling_std(values: np.ndarray, a: np.ndarray, b: np.ndarray, min_periods: int) -> np.ndarray:
-    rows, count = _padded(values, a, b)
-    if rows.shape[1] == 0:
-        return np.full(len(a), np.nan)
-    mean = np.nansum(rows, axis=1) / np.maximum(count, 1)
-    dev = np.where(np.isfinite(rows), rows - mean[:, None], 0.0)
+    """Sample standard deviation of the non-NaN values of each window; NaN below
+    ``min_periods`` values. From the window sums of x and x^2 about the record's mean
+    (which keeps the cancellation small: residuals of centimetres about a mean near zero)."""
+    finite = np.isfinite(values)
+    count = _counts(finite, a, b)
+    centre = float(np.mean(values[finite])) if finite.any() else 0.0
+    x = np.where(finite, values - centre, 0.0)
+    s1 = _segments(x, a, b, np.add)
+    s2 = _segments(x * x, a, b, np.add)
     with np.errstate(invalid="ignore", divide="ignore"):
-        sd = np.sqrt((dev * dev).sum(axis=1) / (count - 1))
+        var = (s2 - s1 * s1 / np.maximum(count, 1)) / (count - 1)
+        sd = np.sqrt(np.maximum(var, 0.0))
     return np.where((count >= min_periods) & (count > 1), sd, np.nan)
 
 
@@ -1228,13 +1252,11 @@ def _tail(level: pd.Series, s: QcSettings, predicted: Any, other: pd.Series | No
     # residual outlier: departure from the centred median against the centred noise
     out["resid"] = _resid_tail(rc, t, tn, ok, k, s)
 
-    frame = pd.DataFrame({c: out[c].astype(np.int8) for c in TESTS}, index=level.index[tail])
     missing = out["syntax"] == MISSING
-    if missing.any():
-        for c in TESTS:
-            if c != "syntax":
-                frame.loc[missing, c] = NOT_EVALUATED
-    frame["flag"] = aggregate_flags(frame)
+    table = np.column_stack([np.where(missing & (c != "syntax"), NOT_EVALUATED, out[c]).astype(np.int8)
+                             for c in TESTS]) if n - k else np.zeros((0, len(TESTS)), np.int8)
+    frame = pd.DataFrame(table, index=level.index[tail], columns=list(TESTS))
+    frame["flag"] = _aggregate(table)
     if other is not None:
         frame = confirm_tail(frame, level, r, other, s, k)
     return frame
