@@ -101,7 +101,7 @@ def _polling() -> tuple[dict, str]:
         src = str(example.name)
     else:
         d, src = {}, "daemon defaults (no config.example.toml)"
-    from monitor.config import DaemonSettings
+    from monitor.service.config import DaemonSettings
     base = DaemonSettings()
     out = {k: float(d.get(k, getattr(base, k))) for k in ("poll_seconds", "process_seconds", "outbox_seconds")}
     out["coalesce_seconds"] = float(d.get("coalesce_seconds", base.coalesce_seconds))
@@ -199,7 +199,7 @@ def _append(tmp: Path, sid: str, t: float, level: float) -> None:
 def _direct_baseline(port: int, n: int = 20) -> float:
     import sqlite_utils
 
-    from alerts.outbox import deliver_due, enqueue, mail_settings_from
+    from alerts.mail.outbox import deliver_due, enqueue, mail_settings_from
     settings, _ = mail_settings_from({"sender": "b@bench.example", "host": "127.0.0.1", "port": port,
                                       "security": "none"}, "mail")
     times = []

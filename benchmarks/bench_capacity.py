@@ -46,7 +46,7 @@ def _level(t: np.ndarray, k: int) -> np.ndarray:
 
 
 def _config(tmp: Path):
-    from monitor.config import validate_config
+    from monitor.service.config import validate_config
 
     (tmp / "c.toml").write_text('mean = 2.5\n[[constituents]]\nname = "M2"\namplitude = 1.2\nphase = 30.0\n'
                                 '[[constituents]]\nname = "S2"\namplitude = 0.4\nphase = 60.0\n')
@@ -68,8 +68,8 @@ def _config(tmp: Path):
 
 def main() -> None:
     from benchmarks.targets import Targets
-    from monitor.daemon import Daemon
-    from monitor.store import Store
+    from monitor.service.daemon import Daemon
+    from monitor.store.database import Store
 
     with tempfile.TemporaryDirectory() as tmp:
         tmp = Path(tmp)

@@ -41,7 +41,7 @@ def _outbox_round(kept: int) -> float:
     """Seconds of one delivery round with nothing due over ``kept`` delivered messages."""
     import sqlite_utils
 
-    from alerts.outbox import deliver_due, ensure_outbox_schema, mail_settings_from
+    from alerts.mail.outbox import deliver_due, ensure_outbox_schema, mail_settings_from
 
     settings, _ = mail_settings_from({"sender": "b@bench.example", "host": "127.0.0.1", "port": 9,
                                       "security": "none"}, "mail")
@@ -74,7 +74,7 @@ def _pair(days: float):
 
 def main() -> None:
     from benchmarks.targets import Targets
-    from monitor import diagnostics as D
+    from monitor.quality import diagnostics as D
 
     small, large = (int(x) for x in os.environ.get("QW_BENCH_OUTBOX", "500,10000").split(","))
     targets = Targets()

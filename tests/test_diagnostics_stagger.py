@@ -16,9 +16,9 @@ PERIOD_MIN = 20
 
 
 def test_diagnostics_of_several_stations_land_in_different_passes(tmp_path, monkeypatch):
-    from monitor.config import validate_config
-    from monitor.daemon import Daemon
-    from monitor.store import Store
+    from monitor.service.config import validate_config
+    from monitor.service.daemon import Daemon
+    from monitor.store.database import Store
 
     (tmp_path / "c.toml").write_text('mean = 2.0\n[[constituents]]\nname = "M2"\namplitude = 1.0\nphase = 40.0\n')
     rule = {"id": "surge", "watch": "residual_above", "hold": 0, "notify": ["duty@port.example"],

@@ -27,9 +27,9 @@ def _lines(minutes) -> str:
 
 
 def _daemon(tmp: Path):
-    from monitor.config import load_config
-    from monitor.daemon import Daemon
-    from monitor.store import Store
+    from monitor.service.config import load_config
+    from monitor.service.daemon import Daemon
+    from monitor.store.database import Store
 
     (tmp / "c.toml").write_text('mean = 2.0\n[[constituents]]\nname = "M2"\namplitude = 1.0\nphase = 40.0\n')
     stations = "".join(f"""

@@ -1,7 +1,7 @@
 """Quality control of the newest samples equals a run over the whole record.
 
-``monitor.qc.run_tests_tail(level, ..., start=k)`` evaluates only rows ``k:`` with the
-rows before as context; the reference is ``monitor.qc.run_tests`` over the whole record
+``monitor.quality.checks.run_tests_tail(level, ..., start=k)`` evaluates only rows ``k:`` with the
+rows before as context; the reference is ``monitor.quality.checks.run_tests`` over the whole record
 (pandas' rolling windows), taken from row ``k``. The record is invented: a one-minute tide
 with red noise and, in turn, spikes, a flat line, gaps, a surge front, a short burst, a
 one-sample step, a gross-range failure and missing values, with and without a backup.
@@ -12,8 +12,8 @@ import numpy as np
 import pandas as pd
 import pytest
 
-from monitor.qc import QcSettings, run_tests
-from monitor.qc import run_tests_tail
+from monitor.quality.checks import QcSettings, run_tests
+from monitor.quality.checks import run_tests_tail
 
 minute = 60
 hour = 3600
@@ -121,7 +121,7 @@ class _Tide:
 def _reference(level: pd.Series, backup: pd.Series, model, settings: QcSettings, now: float) -> dict:
     """The tests over the whole record as stored so far, both sensors, as the station pass
     combines them (pandas' windows throughout: ``run_tests`` and ``_confirm``)."""
-    from monitor import qc
+    from monitor.quality import checks as qc
 
     obs = {"primary": level, "backup": backup}
     preds = {sn: model.predict(x.index) for sn, x in obs.items()}
@@ -143,8 +143,8 @@ def test_each_pass_through_the_store_writes_the_flags_of_a_whole_record_run(tmp_
     """Passes as the daemon makes them -- a day's backfill, then samples one at a time and a
     few at once, with the process restarted (a new store connection) midway -- write for
     every row they touch the flags a run over the whole record stored so far gives."""
-    from monitor import qc
-    from monitor.store import Store
+    from monitor.quality import checks as qc
+    from monitor.store.database import Store
 
     t, level, pred, rng = _record(8, hours=34)
     v, keep = _features(t, level, rng)

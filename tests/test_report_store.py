@@ -8,11 +8,13 @@ import pandas as pd
 import pytest
 import tomli_w
 
-from alerts.report import day_bounds, read_summary
+from alerts.reports.model import day_bounds
+
+from alerts.reports.render import read_summary
 from monitor.cli import main
-from monitor.config import validate_config
-from monitor.reporting import due_day, gather_day, low_water_differences, write_due_reports
-from monitor.store import Store
+from monitor.service.config import validate_config
+from monitor.service.reporting import due_day, gather_day, low_water_differences, write_due_reports
+from monitor.store.database import Store
 from predictor import TideModel
 
 mm = 1e-3
@@ -130,7 +132,7 @@ def test_a_level_rules_peak_is_on_the_report_datum_and_a_surges_keeps_its_sign(s
 
 
 def test_report_html_names_the_datum_beside_the_levels(site):
-    from alerts.report import render_day_html
+    from alerts.reports.render import render_day_html
 
     config, folder, _ = site
     with Store.open(folder / "port.db") as store:
@@ -204,8 +206,8 @@ def test_command_refuses_an_unknown_station(site, capsys):
 def test_the_index_is_written_from_the_summaries_kept_in_the_store(site, monkeypatch):
     """The index of a round reads no report file (a daemon keeping 400 days of reports for
     hundreds of stations re-read them all every round): the figures come from the store."""
-    from alerts import report as R
-    from monitor import reporting
+    from alerts.reports import render as RR
+    from monitor.service import reporting
 
     config, folder, _ = site
     day = DAY - dt.timedelta(days=1)
@@ -215,7 +217,7 @@ def test_the_index_is_written_from_the_summaries_kept_in_the_store(site, monkeyp
         def no_reading(path):
             raise AssertionError(f"a report file was read: {path}")
 
-        monkeypatch.setattr(R, "read_summary", no_reading)
+        monkeypatch.setattr(RR, "read_summary", no_reading)
         index = reporting.refresh_index(config, store, pd.Timestamp("2024-03-13 07:00", tz="UTC"), DAY)
     html = index.read_text()
     assert f'skq/{day.isoformat()}.html' in html

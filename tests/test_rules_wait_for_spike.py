@@ -36,9 +36,9 @@ def _lines(times, surge) -> str:
 
 
 def _daemon(tmp: Path):
-    from monitor.config import load_config
-    from monitor.daemon import Daemon
-    from monitor.store import Store
+    from monitor.service.config import load_config
+    from monitor.service.daemon import Daemon
+    from monitor.store.database import Store
 
     (tmp / "constants.toml").write_text(CONSTANTS)
     (tmp / "config.toml").write_text(f"""

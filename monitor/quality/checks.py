@@ -39,11 +39,12 @@ Vols I-V. IOC Manuals and Guides 14.
 from __future__ import annotations
 
 import contextlib
+import difflib
 import math
 import time as _time
 import warnings
-from itertools import repeat as _repeat
 from dataclasses import dataclass, fields
+from itertools import repeat as _repeat
 from typing import Any, Iterable, Mapping
 
 import numpy as np
@@ -227,7 +228,6 @@ def qc_settings_from(raw: Mapping[str, Any] | None, keypath: str) -> tuple[QcSet
             errors.append(f"{kp}: {_RETIRED[key]}")
             continue
         if key not in known:
-            import difflib
             near = difflib.get_close_matches(str(key), known, n=1)
             hint = f" (did you mean {near[0]!r}?)" if near else ""
             errors.append(f"{kp}: unknown key{hint}")
@@ -1052,7 +1052,7 @@ def _rolling_std(values: np.ndarray, a: np.ndarray, b: np.ndarray, min_periods: 
 
 def spike_flags(r: np.ndarray, t: np.ndarray, suspect: float, fail: float, gap_limit: float,
                 jump_ratio: float) -> np.ndarray:
-    """:func:`monitor.qc.spike_test` on plain arrays (residual [m], Unix seconds) [flags]."""
+    """:func:`monitor.quality.checks.spike_test` on plain arrays (residual [m], Unix seconds) [flags]."""
     n = len(r)
     prev_ok, next_ok = _neighbour_ok(t, gap_limit)
     flags = np.full(n, NOT_EVALUATED, dtype=np.int8)
@@ -1075,7 +1075,7 @@ def spike_flags(r: np.ndarray, t: np.ndarray, suspect: float, fail: float, gap_l
 
 
 def jump_flags(r: np.ndarray, t: np.ndarray, size: float, ratio: float, gap_limit: float) -> np.ndarray:
-    """:func:`monitor.qc.jumps` on plain arrays [bool]."""
+    """:func:`monitor.quality.checks.jumps` on plain arrays [bool]."""
     n = len(r)
     out = np.zeros(n, dtype=bool)
     good = np.flatnonzero(np.isfinite(r))
@@ -1097,18 +1097,18 @@ def jump_flags(r: np.ndarray, t: np.ndarray, size: float, ratio: float, gap_limi
 def run_tests_tail(level: pd.Series, settings: QcSettings | None = None, predicted: Any = None,
                    other: pd.Series | None = None, now: float | None = None,
                    position: tuple[float, float] | None = None, start: int = 0) -> pd.DataFrame:
-    """``monitor.qc.run_tests(level, ...).iloc[start:]``, evaluated at those rows only.
+    """``monitor.quality.checks.run_tests(level, ...).iloc[start:]``, evaluated at those rows only.
 
     Parameters
     ----------
     level, settings, predicted, other, now, position
-        As :func:`monitor.qc.run_tests` (positions reported with the samples are not taken).
+        As :func:`monitor.quality.checks.run_tests` (positions reported with the samples are not taken).
     start : int
         First row to evaluate; the rows before it are the context of the windows.
 
     Returns
     -------
-    DataFrame with one int8 column per test of :data:`monitor.qc.TESTS` and ``flag``,
+    DataFrame with one int8 column per test of :data:`monitor.quality.checks.TESTS` and ``flag``,
     indexed like ``level.iloc[start:]``.
 
     References
@@ -1263,7 +1263,7 @@ def _tail(level: pd.Series, s: QcSettings, predicted: Any, other: pd.Series | No
 
 
 def _resid_tail(rc: np.ndarray, t: np.ndarray, tn: np.ndarray, ok: np.ndarray, k: int, s: QcSettings) -> np.ndarray:
-    """:func:`monitor.qc.residual_outlier_test` at rows ``k:`` (``rc`` with gross failures
+    """:func:`monitor.quality.checks.residual_outlier_test` at rows ``k:`` (``rc`` with gross failures
     as NaN, ``ok`` the samples its windows may use)."""
     n = len(rc)
     flags = np.full(n - k, NOT_EVALUATED, dtype=np.int8)
@@ -1303,7 +1303,7 @@ def _resid_tail(rc: np.ndarray, t: np.ndarray, tn: np.ndarray, ok: np.ndarray, k
 
 def confirm_tail(frame: pd.DataFrame, level: pd.Series, r: np.ndarray, other: pd.Series | None,
                  s: QcSettings, k: int) -> pd.DataFrame:
-    """:func:`monitor.qc._confirm` at rows ``k:``: ``frame`` holds those rows' tests,
+    """:func:`monitor.quality.checks._confirm` at rows ``k:``: ``frame`` holds those rows' tests,
     ``level`` and ``r`` (level minus prediction [m]) the whole record, ``other`` the other
     sensor's levels that may confirm a jump (within reach of the rows ``k:`` at least)."""
     n = len(level)
