@@ -67,6 +67,7 @@ log = logging.getLogger("monitor.service.daemon")
 PROCESS_CHUNK = 7 * 86400   # [s] most data time processed in one pass (bounds memory in a backfill)
 REWRITE_BACK = 3600         # [s] derived rows before a window that are recomputed (QC may revise flags)
 OUTBOX_DRAIN_WAIT = 30.0    # [s] with --until-exhausted, longest wait for the outbox after the feeds end
+PRUNE_EVERY = 86400.0       # [s, wall clock] how often the outbox thread prunes delivered messages
 HISTORY_REFRESH = 6 * 3600  # [s, data time] how often the forecast relearns from the residual history
 # [s] samples before a window handed to the alert rules besides the new ones: messages show the
 # change over the last hour, taken from a sample up to 15 min either side of an hour back
@@ -911,6 +912,15 @@ class Daemon:
         except Exception:
             log.exception("outbox delivery failed; will retry")
 
+    def prune_outbox(self, db=None) -> None:
+        """Delete delivered messages past ``mail.keep_delivered`` (the outbox thread, once a day)."""
+        if self.outbox is None:
+            return
+        try:
+            self.outbox.prune_delivered(self.store.db if db is None else db, self.cfg.mail)
+        except Exception:
+            log.exception("outbox: pruning delivered messages failed; will retry")
+
     def wake_outbox(self) -> None:
         """Ask the outbox thread for a round now; without one running, deliver here."""
         if self.outbox_worker is not None and self.outbox_worker.is_alive():
@@ -1043,12 +1053,16 @@ class OutboxWorker(threading.Thread):
         try:
             conn.execute("PRAGMA busy_timeout = 30000")
             db = sqlite_utils.Database(conn)
+            pruned_at = -math.inf
             while not self._halt.is_set():
                 self.wake.wait(self.interval)
                 self.wake.clear()
                 if self._halt.is_set():
                     break
                 self.owner.deliver(db)
+                if time.monotonic() - pruned_at >= PRUNE_EVERY:
+                    pruned_at = time.monotonic()
+                    self.owner.prune_outbox(db)
         finally:
             conn.close()
 
