@@ -18,7 +18,6 @@ from predictor import TideModel
 
 m = 1.0
 minute = 60
-GAP_LIMIT = "2h"  # the station's qc.gap_limit: long, so a slow machine cannot age the newest sample past it
 CONSTANTS = """mean = 2.0
 [[constituents]]
 name = "M2"
@@ -50,7 +49,6 @@ latitude = 50.0
 longitude = -4.0
 constants = "constants.toml"
 datums = {{ chart = 0.0 }}
-qc = {{ gap_limit = "{GAP_LIMIT}" }}
 [stations.sensors.primary]
 line = {{ header_lines = 1 }}
 feed = {{ kind = "file", path = "{tmp / 'gauge.csv'}" }}
@@ -76,13 +74,12 @@ def _step(d) -> list:
     return [r["subject"] for r in d.store.db.query("SELECT subject FROM outbox WHERE kind = 'alert'")]
 
 
-def _run(tmp: Path, tail: list[float], follower: float) -> tuple[list, list, int]:
+def _run(tmp: Path, tail: list[float], follower: float, late: int = 2) -> tuple[list, list, int]:
     """Calm record whose newest samples stand ``tail`` [m] over the tide, then one more sample
     ``follower`` [m] over it. Returns the alerts queued before and after the follower, and
-    the newest sample's final aggregate flag."""
-    # Data time: three hours ending two minutes ago, so the newest sample is live (its
-    # follower may still come within the gap limit) and none is ahead of the clock.
-    t_end = (int(time.time()) // minute - 2) * minute
+    the newest sample's final aggregate flag. The record ends ``late`` minutes ago."""
+    # Data time: three hours ending ``late`` minutes ago, none ahead of the clock.
+    t_end = (int(time.time()) // minute - late) * minute
     feed = tmp / "gauge.csv"
     times = t_end - 180 * minute + minute * np.arange(180)
     surge = np.zeros(180)
@@ -114,3 +111,11 @@ def test_a_real_rise_at_the_newest_sample_alerts_once_its_follower_confirms_it(t
     assert flag in (1, 3)  # usable: water that keeps rising is no spike
     assert before == []    # held back until the spike test could judge it
     assert len(after) == 1 and "raised" in after[0]
+
+
+def test_a_spike_at_the_newest_sample_of_a_feed_running_late_waits_for_its_follower_too(tmp_path):
+    # stamps ninety minutes old (a logger sending its backlog): the follower still comes
+    before, after, flag = _run(tmp_path, tail=[0.6 * m], follower=0.0, late=90)
+    assert flag == 4
+    assert before == []
+    assert after == []

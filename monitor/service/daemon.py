@@ -75,28 +75,23 @@ HISTORY_REFRESH = 6 * 3600  # [s, data time] how often the forecast relearns fro
 TREND_BACK = 75 * 60
 
 
-def judged_samples(samples: pd.DataFrame, gap_limit: float, now: float, final: bool = True) -> pd.DataFrame:
-    """The samples whose quality-control flags are final enough for the alert rules.
+def judged_samples(samples: pd.DataFrame) -> pd.DataFrame:
+    """The samples whose quality-control flags are final enough for the alert rules: all
+    but the newest.
 
     The spike test (QARTOD Test 6) and the one-sample jump judge a sample by the one after
     it; until that sample arrives the newest one is "not evaluated" by them, and a lone
     spike would count for the rules as a good sample. So the newest sample is held back
-    while its follower may still come: until ``gap_limit`` [s] has passed since it
-    (``now`` [Unix s]), after which no follower within the gap limit can judge it, or
-    always when ``final`` is false (an earlier chunk of a backfill, whose follower is in
-    the next chunk). A held-back sample does not move a rule's watermark, so the next
-    pass counts it with its final flag.
+    until its follower has come, whatever its time stamp says (a feed running late
+    delivers old stamps, and their followers still come). A held-back sample does not move
+    a rule's watermark, so the next pass counts it with its final flag; after a silence
+    longer than the gap limit that is the pass of the first sample after it.
 
     References
     ----------
     U.S. IOOS (2021), QARTOD water level manual v2.1, Test 6 (the spike test needs the
     following sample, hence its delay of one sample).
     """
-    if len(samples) == 0:
-        return samples
-    t_last = samples.index[-1].timestamp()
-    if final and now - t_last > gap_limit:
-        return samples
     return samples.iloc[:-1]
 
 
@@ -689,7 +684,7 @@ class Daemon:
                 rules = [r for r in rules if r.watch in kinds]
             samples = full.loc[full.index >= pd.Timestamp(start_t - TREND_BACK, unit="s", tz="UTC"),
                                ["observed", "predicted", "residual", "smoothed", "flag"]]
-            samples = judged_samples(samples, (st.qc or self.qc.QcSettings()).gap_limit, now, final=latest)
+            samples = judged_samples(samples)
             events = []
             try:
                 events = self.engine.evaluate(store.db, rt.view, rules, samples, now=now, context=ctx)
