@@ -25,6 +25,7 @@ import numpy as np
 
 
 def _model():
+    from benchmarks.targets import Targets
     from predictor import TideModel
     from predictor.constituents import CATALOGUE
 
@@ -64,10 +65,6 @@ def _write_csv(times, level, path) -> None:
     with open(path, "w") as fh:
         fh.write("time,level\n")
         fh.write("".join(f"{s}Z,{v:.4f}\n" for s, v in zip(stamps, level)))
-
-
-def _verdict(ok: bool) -> str:
-    return "PASS" if ok else "FAIL"
 
 
 def main() -> None:
@@ -115,12 +112,14 @@ def main() -> None:
     print(f"  write output array       {t_write * 1e3:9.2f} ms   (allocate and fill {n} floats)")
     print(f"  write output as CSV      {t_csv * 1e3:9.1f} ms   (the text `quaywatch predict` prints)")
     print(f"  one cos per sample       {t_cos * 1e3:9.2f} ms")
-    print(f"  max |predict - naive| = {err:.5f} mm (target < 0.1 mm) {_verdict(err < 0.1)}")
-    print(f"  speed-up over naive: {ratio:.1f}x (target >= 20x) {_verdict(ratio >= 20)}")
+    targets = Targets()
+    targets.below("max |predict - naive| [mm]", err, 0.1, ".5f")
+    targets.at_least("speed-up over naive [x]", ratio, 20.0, ".1f")
     print(f"  predict / write output array: {t_fast / t_write:.1f} (the bare floor; no target)")
-    print(f"  predict / write output as CSV: {t_fast / t_csv:.3f} (target <= 1: predicting costs no more than "
-          f"writing the result) {_verdict(t_fast <= t_csv)}")
+    targets.at_most("predict / write output as CSV (predicting costs no more than writing the result)",
+                    t_fast / t_csv, 1.0, ".3f")
     print(f"  predict / one cos per sample: {t_fast / t_cos:.1f} (naive does {k} of them)")
+    targets.finish()
 
 
 if __name__ == "__main__":

@@ -55,6 +55,12 @@ _ROWS_PER_CHUNK = 65536  # rows per chunk on the general path (bounds memory)
 _HALF_DAY = 43200.0
 _BLOCKS_PER_CHUNK = 512
 _RAMP_BUDGET = 1e-8  # [m] summed error allowed from dropped in-block nodal ramps
+# Block phasor factors, shared by every model with the same constituent speeds, step and
+# block length: a daemon following many stations whose constants have the same
+# constituents keeps one copy (about 1.3 MiB for 37 constituents at one-minute steps)
+# rather than one per station. Most recently used last; at most _PHASOR_CACHE_SIZE kept.
+_PHASOR_CACHE: dict = {}
+_PHASOR_CACHE_SIZE = 16
 
 def _uniform(times):
     """(t0 [s], dt [s], n) when ``times`` are strictly uniform, else None."""
@@ -312,11 +318,12 @@ class TideModel:
         ``exp(i omega j_lo dt) * exp(i omega j_hi s dt)`` with ``j = j_hi s + j_lo``: two
         small exponentials and one product (relative error ~1e-16) instead of k*B
         exponentials.  The daemon predicts the same step over and over, so the factors
-        are kept (a handful of entries at most).
+        are kept, shared by every model with the same speeds (``_PHASOR_CACHE``, the
+        least recently used dropped first).
         """
         key = (omega.tobytes(), float(dt), int(B))
-        cache = self.__dict__.setdefault("_phasor_cache", {})
-        hit = cache.get(key)
+        cache = _PHASOR_CACHE
+        hit = cache.pop(key, None)
         if hit is None:
             s = max(1, int(math.isqrt(B)))
             lo = np.exp(1j * np.outer(omega, dt * np.arange(s)))          # (k, s)
@@ -324,9 +331,11 @@ class TideModel:
             E = (hi[:, :, None] * lo[:, None, :]).reshape(omega.size, -1)[:, :B]
             R0 = np.concatenate([E.real, E.imag])  # Re(A E) = Re(A) Re(E) - Im(A) Im(E)
             hit = (R0, (R0 * (np.arange(B) / B)).astype(np.float32))
-            if len(cache) >= 4:
-                cache.pop(next(iter(cache)))
-            cache[key] = hit
+            R0.setflags(write=False)
+            hit[1].setflags(write=False)
+            while len(cache) >= _PHASOR_CACHE_SIZE:
+                cache.pop(next(iter(cache)), None)
+        cache[key] = hit  # most recently used last
         return hit
 
     def _uniform_path(self, t0: float, dt: float, n: int, order: int) -> np.ndarray:

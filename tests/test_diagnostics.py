@@ -402,3 +402,19 @@ def test_backup_clock_slip_is_not_a_datum_step():
     # constant (Pugh & Woodworth 2014, ch. 3): the backup 6 minutes late from hour 60.
     primary, backup = _backup_late(6.0, 60, 96)
     assert dg.sensor_steps(primary, backup, SynthModel()).empty
+
+
+def test_drift_over_a_long_record_keeps_the_theil_sen_pairs_bounded_and_finds_the_drift():
+    """Ninety days of one-minute samples, the backup drifting 0.8 mm/day against the primary
+    (invented): at most DRIFT_MAX_BINS (744) bins go into Theil-Sen (its pairs, not the record, set the
+    cost), and the drift comes out within 0.05 mm/day."""
+    idx = pd.date_range("2025-02-01", periods=90 * 1440, freq="1min", tz="UTC")
+    t = (idx.as_unit("s").asi8 - idx.as_unit("s").asi8[0]) / day
+    rng = np.random.default_rng(91)
+    sea = 2.0 + np.cos(2 * np.pi * t * day / 44714.16)
+    primary = pd.Series(sea + rng.normal(0, 1 * mm, len(t)), index=idx)
+    backup = pd.Series(sea - 0.8 * mm * t + rng.normal(0, 1 * mm, len(t)), index=idx)
+    out = dg.sensor_drift(primary, backup)
+    assert out["bins"] <= dg.DRIFT_MAX_BINS == 744
+    assert out["drift_mm_per_day"] == pytest.approx(0.8, abs=0.05)
+    assert out["drift_low"] < 0.8 < out["drift_high"]

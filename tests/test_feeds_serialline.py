@@ -51,7 +51,10 @@ def pty_pair():
         p.close()
 
 
-def poll_until(feed, want: int, timeout: float = 5 * second) -> list[str]:
+CEILING = 60 * second  # generous: the event comes far sooner on any machine, however loaded
+
+
+def poll_until(feed, want: int, timeout: float = CEILING) -> list[str]:
     got = []
     end = time.monotonic() + timeout
     while len(got) < want and time.monotonic() < end:
@@ -90,7 +93,7 @@ def test_raw_lines_carry_port_and_no_line_number(pty_pair):
     feed.poll()
     pty.write(b"x\n")
     lines = []
-    end = time.monotonic() + 5 * second
+    end = time.monotonic() + CEILING
     while not lines and time.monotonic() < end:
         lines = feed.poll()
     assert (lines[0].source, lines[0].lineno) == (pty.path, None)
@@ -107,14 +110,19 @@ def test_device_gone_and_back_via_symlink_resumes_reading(pty_pair, tmp_path):
     assert poll_until(feed, 1) == ["before"]
 
     first.close()                               # the device vanishes
-    assert poll_until(feed, 1, timeout=0.3) == []
+    end = time.monotonic() + CEILING            # wait for the feed to notice, not a fixed time
+    got = []
+    while feed.is_open and time.monotonic() < end:
+        got += [line.text for line in feed.poll()]
+        time.sleep(0.01)
+    assert got == []
     assert not feed.is_open and feed.last_error
     assert feed.state()["failures"] >= 1
 
     second_pty = pty_pair()                     # and comes back as another pty
     link.unlink()
     link.symlink_to(second_pty.path)
-    end = time.monotonic() + 5 * second
+    end = time.monotonic() + CEILING
     while not feed.is_open and time.monotonic() < end:
         feed.poll()
         time.sleep(0.01)
@@ -180,7 +188,7 @@ def test_each_line_read_is_in_the_capture_file_before_the_poll_returns(pty_pair,
     feed.poll()
     pty.write(b"2031-03-01T00:00Z,1.25\r\n\xff\xfe junk\r\n2031-03-01T00:01Z,1.2")  # the last line unfinished
     lines = []
-    end = time.monotonic() + 5 * second
+    end = time.monotonic() + CEILING
     while len(lines) < 2 and time.monotonic() < end:
         lines += feed.poll()
         time.sleep(0.01)

@@ -270,3 +270,20 @@ def test_a_password_file_opened_up_later_is_refused_when_read(tmp_path):
     (tmp_path / "pw").chmod(0o644)
     with pytest.raises(RuntimeError, match="chmod o-rwx"):
         s.password()
+
+
+def test_delivered_and_expired_messages_past_the_retention_are_deleted_and_nothing_waiting_is(db, port):
+    """A kept outbox grows with every message ever sent; what was sent or given up more than
+    ``keep_delivered`` ago goes, what waits stays whatever its age."""
+    day = 86400
+    t0 = 1_800_000_000
+    settings = settings_for(port, keep_delivered="30d")
+    ids = {name: enqueue(db, [f"{name}@port.example"], name, "t", None, "alert", name, now=t0 - 100 * day)[0]
+           for name in ("old_sent", "old_expired", "new_sent", "waiting")}
+    db.conn.execute("UPDATE outbox SET status = 'sent', sent_at = ? WHERE id = ?", (t0 - 40 * day, ids["old_sent"]))
+    db.conn.execute("UPDATE outbox SET status = 'expired', expired_at = ? WHERE id = ?",
+                    (t0 - 40 * day, ids["old_expired"]))
+    db.conn.execute("UPDATE outbox SET status = 'sent', sent_at = ? WHERE id = ?", (t0 - 20 * day, ids["new_sent"]))
+    assert outbox_mod.prune_delivered(db, settings, now=t0) == 2
+    left = {r["subject"] for r in db.query("SELECT subject FROM outbox")}
+    assert left == {"new_sent", "waiting"}

@@ -23,7 +23,7 @@ from pathlib import Path
 from aiosmtpd.controller import Controller
 
 ROOT = Path(__file__).resolve().parent.parent
-START_DEADLINE = 90.0   # [s] a daemon's start and first outbox round on a loaded machine
+START_DEADLINE = 180.0  # [s] a daemon's start and first outbox round on a loaded machine (a ceiling)
 SMTP_TIMEOUT_MIN = 10   # [min] mail.timeout: a claim lasts four times this plus a minute
 
 

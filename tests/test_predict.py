@@ -206,3 +206,17 @@ def test_bad_files_give_clear_errors(tmp_path, text, needle):
     path.write_text(text)
     with pytest.raises(ConstantsFileError, match=needle):
         TideModel.load(path)
+
+
+def test_models_with_the_same_speeds_share_one_copy_of_the_block_factors():
+    """A daemon following many stations keeps one copy of the block phasors per set of
+    constituent speeds, not one per station (issue 16: 1.3 MiB a station before)."""
+    from predictor import model as M
+
+    times = np.datetime64("2026-03-01T00:00", "ns") + np.arange(3 * 1440) * np.timedelta64(60, "s")
+    names = ["M2", "S2", "K1", "O1"]
+    M._PHASOR_CACHE.clear()
+    for k in range(30):
+        TideModel(mean=0.1 * k, constituents=[{"name": n, "amplitude": 0.1 + 0.01 * k, "phase": 7.0 * k + j}
+                                              for j, n in enumerate(names)]).predict(times)
+    assert len(M._PHASOR_CACHE) == 1

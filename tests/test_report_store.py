@@ -200,3 +200,24 @@ def test_command_refuses_an_unknown_station(site, capsys):
     _, folder, _ = site
     assert main(["report", str(folder / "config.toml"), "--station", "nowhere"]) == 2
     assert "--station 'nowhere': no such station" in capsys.readouterr().err
+
+
+def test_the_index_is_written_from_the_summaries_kept_in_the_store(site, monkeypatch):
+    """The index of a round reads no report file (a daemon keeping 400 days of reports for
+    hundreds of stations re-read them all every round): the figures come from the store."""
+    from alerts.reports import render as RR
+    from monitor.service import reporting
+
+    config, folder, _ = site
+    day = DAY - dt.timedelta(days=1)
+    with Store.open(folder / "port.db") as store:
+        reporting.write_station_day(config, store, config.stations[0], day, index=False)
+
+        def no_reading(path):
+            raise AssertionError(f"a report file was read: {path}")
+
+        monkeypatch.setattr(RR, "read_summary", no_reading)
+        index = reporting.refresh_index(config, store, pd.Timestamp("2024-03-13 07:00", tz="UTC"), DAY)
+    html = index.read_text()
+    assert f'skq/{day.isoformat()}.html' in html
+    assert "Skerrin &lt;Quay&gt;" in html

@@ -314,6 +314,10 @@ class MailSettings:
     retry_first: float = 60.0
     retry_max: float = 1800.0
     give_up_after: float = 2 * 86400.0
+    # Delivered and expired messages are deleted this long after they were sent or given up
+    # (a kept outbox would otherwise grow with every alert and report ever sent); long past
+    # anything that could queue the same message again (common practice, no source).
+    keep_delivered: float = 90 * 86400.0
     reply_to: str | None = None
     save_dir: str | None = None
     ca_file: str | None = None
@@ -386,7 +390,7 @@ def mail_settings_from(raw: Any, keypath: str) -> tuple[MailSettings | None, lis
     errors: list[str] = []
     known = {"sender", "host", "port", "security", "user", "password_env", "password_file",
              "timeout", "retry_first", "retry_max", "give_up_after", "reply_to", "save_dir",
-             "ca_file", "forms"}
+             "ca_file", "forms", "keep_delivered"}
     for key in raw:
         if key not in known:
             errors.append(f"{keypath}.{key}: unknown key (known: {', '.join(sorted(known))})")
@@ -440,7 +444,7 @@ def mail_settings_from(raw: Any, keypath: str) -> tuple[MailSettings | None, lis
         errors.append(f"{keypath}.password_env: the name of an environment variable, got {penv!r}")
     durations = {}
     for key, default in (("timeout", 30.0), ("retry_first", 60.0), ("retry_max", 1800.0),
-                         ("give_up_after", 2 * 86400.0)):
+                         ("give_up_after", 2 * 86400.0), ("keep_delivered", 90 * 86400.0)):
         try:
             durations[key] = parse_duration(raw[key]) if key in raw else default
         except ValueError as exc:
@@ -566,6 +570,25 @@ def _save_copy(settings: MailSettings, row: dict, msg) -> None:
     (d / f"{row['id']:06d}-{kind}.eml").write_bytes(msg.as_bytes())
 
 
+WAITING_SQL = "('pending', 'sending')"  # the statuses of messages not yet delivered nor given up
+_QUEUE_COLUMNS = ("id, created_at, kind, key, recipient, subject, message_id, status, attempts, next_try,"
+                  " claimed_until, last_try, last_error, event_at, claimed_by")
+
+
+def prune_delivered(db, settings: MailSettings, now: Any = None, *, clock: Clock | None = None) -> int:
+    """Delete messages sent or expired more than ``settings.keep_delivered`` ago [s, wall
+    clock]; what is waiting is never touched. Returns the number deleted."""
+    ensure_outbox_schema(db)
+    t = unix_seconds(now) if now is not None else _wall(clock)
+    with transaction(db):
+        cur = db.conn.execute(
+            "DELETE FROM outbox WHERE status IN ('sent', 'expired')"
+            " AND COALESCE(sent_at, expired_at, created_at) < ?", (int(t - settings.keep_delivered),))
+    if cur.rowcount:
+        log.info("outbox: %d delivered or expired message(s) older than the retention deleted", cur.rowcount)
+    return cur.rowcount
+
+
 def deliver_due(db, settings: MailSettings, now: Any = None, *,
                 recipients: Iterable[str] | None = None, clock: Clock | None = None,
                 claimer: str | None = None) -> DeliverySummary:
@@ -597,8 +620,10 @@ def deliver_due(db, settings: MailSettings, now: Any = None, *,
     summary = DeliverySummary()
     claimer = claimer or process_identity("cli")
 
+    # What is waiting, through the status index and without the bodies (a kept outbox holds
+    # thousands of delivered messages, some report-sized); a body is read when it is sent.
     rows = [dict(r) for r in db.query(
-        "SELECT * FROM outbox WHERE status NOT IN ('sent', 'expired') ORDER BY id")]
+        f"SELECT {_QUEUE_COLUMNS} FROM outbox WHERE status IN {WAITING_SQL} ORDER BY id")]
     if only is not None:
         rows = [r for r in rows if r["recipient"] in only]
 
@@ -642,6 +667,8 @@ def deliver_due(db, settings: MailSettings, now: Any = None, *,
                 blocked.add(r["recipient"])
                 summary.waiting += 1
                 continue
+            body = db.execute("SELECT text, html, attachments FROM outbox WHERE id = ?", [r["id"]]).fetchone()
+            r.update(zip(("text", "html", "attachments"), body))
             msg = build_email(settings.sender, r["recipient"], r["subject"], r["text"], r["html"],
                               r["message_id"], date=r["created_at"], reply_to=settings.reply_to,
                               attachments=_decode_attachments(r["attachments"]))

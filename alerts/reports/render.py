@@ -15,7 +15,7 @@ import math
 import re
 from dataclasses import dataclass
 from pathlib import Path
-from typing import Any
+from typing import Any, Iterable
 from zoneinfo import ZoneInfo
 
 import jinja2
@@ -271,20 +271,23 @@ def read_summary(path: Path) -> dict[str, Any] | None:
         return None
 
 
-def render_index_html(folder: Path, generated_at: pd.Timestamp | None = None) -> str:
-    """Render the index page over every report found under ``folder``."""
+def render_index_html(folder: Path, generated_at: pd.Timestamp | None = None,
+                      entries: Iterable[tuple[str, str, dict[str, Any] | None]] | None = None) -> str:
+    """Render the index page over every report found under ``folder``, or over ``entries``
+    (station id, day ``YYYY-MM-DD``, the report's summary as :func:`read_summary` gives it)
+    when given: a caller that keeps the summaries (the daemon, in its store) reads no
+    report file."""
     folder = Path(folder)
+    if entries is None:
+        entries = ((path.parent.name, path.stem, read_summary(path)) for path in sorted(folder.glob("*/*.html"))
+                   if re.fullmatch(r"\d{4}-\d{2}-\d{2}", path.stem))
     stations: dict[str, dict[str, Any]] = {}
-    for path in sorted(folder.glob("*/*.html")):
-        if not re.fullmatch(r"\d{4}-\d{2}-\d{2}", path.stem):
-            continue
-        summary = {"name": path.parent.name, "highest_level": None, "highest_residual": None,
+    for sid, day, found in entries:
+        summary = {"name": sid, "highest_level": None, "highest_residual": None,
                    "completeness": None, "failed": None, "alerts": None,
-                   **(read_summary(path) or {}), "day": path.stem}
-        entry = stations.setdefault(path.parent.name, {"id": path.parent.name,
-                                                       "name": summary.get("name") or path.parent.name,
-                                                       "days": []})
-        summary["href"] = f"{path.parent.name}/{path.name}"
+                   **(found or {}), "day": day}
+        entry = stations.setdefault(sid, {"id": sid, "name": summary.get("name") or sid, "days": []})
+        summary["href"] = f"{sid}/{day}.html"
         entry["days"].append(summary)
     for entry in stations.values():
         entry["days"].sort(key=lambda s: s["day"], reverse=True)
@@ -296,12 +299,14 @@ def render_index_html(folder: Path, generated_at: pd.Timestamp | None = None) ->
     )
 
 
-def write_index(folder: Path, generated_at: pd.Timestamp | None = None) -> Path:
-    """Write ``<folder>/index.html`` over all reports in the folder."""
+def write_index(folder: Path, generated_at: pd.Timestamp | None = None,
+                entries: Iterable[tuple[str, str, dict[str, Any] | None]] | None = None) -> Path:
+    """Write ``<folder>/index.html`` over all reports in the folder (or over ``entries``,
+    see :func:`render_index_html`)."""
     folder = Path(folder)
     folder.mkdir(parents=True, exist_ok=True)
     path = folder / "index.html"
-    _write_atomic(path, render_index_html(folder, generated_at))
+    _write_atomic(path, render_index_html(folder, generated_at, entries))
     return path
 
 

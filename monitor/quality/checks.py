@@ -41,6 +41,7 @@ from __future__ import annotations
 import difflib
 import math
 import time as _time
+import warnings
 from dataclasses import dataclass, fields
 from itertools import repeat as _repeat
 from typing import Any, Iterable, Mapping
@@ -784,6 +785,16 @@ def _confirm(tests: pd.DataFrame, level: pd.Series, resid: pd.Series, other: pd.
     return tests
 
 
+def _aggregate(table: np.ndarray) -> np.ndarray:
+    """:func:`aggregate_flags` of an int8 table whose columns are :data:`TESTS` in order."""
+    a = table.astype(np.int16)
+    g = TESTS.index("gap")
+    a[:, g] = np.where(a[:, g] == MISSING, NOT_EVALUATED, a[:, g])
+    a = np.where(a == NOT_EVALUATED, 0, a)
+    worst = a.max(axis=1) if a.shape[0] else np.zeros(0, dtype=np.int16)
+    return np.where(worst == 0, NOT_EVALUATED, worst).astype(np.int8)
+
+
 def aggregate_flags(tests: pd.DataFrame) -> pd.Series:
     """Aggregate flag per sample: the worst evaluated test (4 > 3 > 1); 2 when no test
     was evaluated; 9 when the value is missing (a test other than the gap test says 9).
@@ -926,6 +937,397 @@ def episodes(flags: pd.Series, at_least: int = SUSPECT, join_gap: float = 0.0) -
     out = pd.DataFrame({"start": idx[agg["first"].to_numpy()], "end": idx[agg["last"].to_numpy()],
                         "samples": agg["samples"].to_numpy(), "worst": agg["worst"].to_numpy()})
     return out.sort_values(["worst", "samples"], ascending=[False, False]).reset_index(drop=True)
+
+
+# --------------------------------------------------------------------------- the newest rows only
+# run_tests_tail gives the rows of run_tests from a given row on, with the record before it
+# as context, without evaluating the tests on the context itself. The daemon judges a
+# minute's sample against 25 hours of record; every test is a function of a window around
+# the sample, so here each window statistic (rolling standard deviation, maximum, minimum,
+# median, range, count) is taken only at the rows asked for, with numpy, over the windows
+# pandas' time-based rolling uses in the tests above -- (t - w, t], or [t - w, t] where they
+# ask for closed="both", or (t - w/2, t + w/2] centred -- so the flags equal those of a run
+# over the whole record (tests/test_qc_tail.py). Long tails (a backfill, `quaywatch qc`)
+# take run_tests itself: the windows as matrices would not fit.
+
+TAIL_ROWS_MAX = 5000       # rows evaluated one by one at most; more take run_tests over the record
+_TAIL_CELLS_MAX = 4_000_000  # window values held at once (rows x widest window)
+
+
+class _TooWide(Exception):
+    """The windows of a tail are too large to hold as one matrix."""
+
+_NS = 1_000_000_000
+
+
+def _ns(seconds_: float) -> int:
+    """A window length [s] as pandas takes it (``f"{round(s)}s"``) in nanoseconds."""
+    return int(round(seconds_)) * _NS
+
+
+def _bounds(tn: np.ndarray, at: np.ndarray, lo: int, hi: int, lo_closed: bool = False) -> tuple:
+    """Index ranges [a, b) of the samples with ``t - lo < tn <= t + hi`` (``<=`` on the left
+    too with ``lo_closed``) for each ``t`` in ``at`` [ns]."""
+    a = np.searchsorted(tn, at - lo, side="left" if lo_closed else "right")
+    b = np.searchsorted(tn, at + hi, side="right")
+    return a, b
+
+
+def _padded(values: np.ndarray, a: np.ndarray, b: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Rows ``values[a_i:b_i]`` padded with NaN to one width, and each row's non-NaN count."""
+    width = int((b - a).max()) if len(a) else 0
+    if len(a) * width > _TAIL_CELLS_MAX:
+        raise _TooWide
+    if width == 0:
+        return np.full((len(a), 0), np.nan), np.zeros(len(a), dtype=int)
+    cols = a[:, None] + np.arange(width)[None, :]
+    inside = cols < b[:, None]
+    rows = np.where(inside, values[np.minimum(cols, len(values) - 1)], np.nan)
+    return rows, np.isfinite(rows).sum(axis=1)
+
+
+def _rolling_median(values: np.ndarray, a: np.ndarray, b: np.ndarray, min_periods: int) -> np.ndarray:
+    """Median of the non-NaN values of each window (mean of the two middle ones for an even
+    count, as pandas and numpy take it); NaN below ``min_periods`` values."""
+    rows, count = _padded(values, a, b)
+    if rows.shape[1] == 0:
+        return np.full(len(a), np.nan)
+    rows.sort(axis=1)  # NaN last
+    r = np.arange(len(a))
+    lo = rows[r, np.maximum((count - 1) // 2, 0)]
+    hi = rows[r, np.maximum(count // 2, 0)]
+    return np.where(count >= min_periods, (lo + hi) / 2, np.nan)
+
+
+def _segments(values: np.ndarray, a: np.ndarray, b: np.ndarray, ufunc) -> np.ndarray:
+    """``ufunc`` reduced over each ``values[a_i:b_i]`` (one pass with ``reduceat``; an
+    empty window gives a value to be masked by its count)."""
+    if len(a) == 0:
+        return np.empty(0)
+    padded = np.append(values, np.nan)  # so an index may equal len(values)
+    idx = np.column_stack([np.minimum(a, len(values)), np.minimum(b, len(values))]).ravel()
+    return ufunc.reduceat(padded, idx)[::2]
+
+
+def _counts(finite: np.ndarray, a: np.ndarray, b: np.ndarray) -> np.ndarray:
+    csum = np.concatenate([[0], np.cumsum(finite)])
+    return csum[b] - csum[a]
+
+
+def _rolling_extremes(values: np.ndarray, a: np.ndarray, b: np.ndarray, min_periods: int) -> tuple:
+    """Maximum and minimum of the non-NaN values of each window; NaN below ``min_periods``."""
+    few = _counts(np.isfinite(values), a, b) < min_periods
+    hi = np.where(few, np.nan, _segments(values, a, b, np.fmax))
+    lo = np.where(few, np.nan, _segments(values, a, b, np.fmin))
+    return hi, lo
+
+
+def _rolling_std(values: np.ndarray, a: np.ndarray, b: np.ndarray, min_periods: int) -> np.ndarray:
+    """Sample standard deviation of the non-NaN values of each window; NaN below
+    ``min_periods`` values. From the window sums of x and x^2 about the record's mean
+    (which keeps the cancellation small: residuals of centimetres about a mean near zero)."""
+    finite = np.isfinite(values)
+    count = _counts(finite, a, b)
+    centre = float(np.mean(values[finite])) if finite.any() else 0.0
+    x = np.where(finite, values - centre, 0.0)
+    s1 = _segments(x, a, b, np.add)
+    s2 = _segments(x * x, a, b, np.add)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        var = (s2 - s1 * s1 / np.maximum(count, 1)) / (count - 1)
+        sd = np.sqrt(np.maximum(var, 0.0))
+    return np.where((count >= min_periods) & (count > 1), sd, np.nan)
+
+
+def spike_flags(r: np.ndarray, t: np.ndarray, suspect: float, fail: float, gap_limit: float,
+                jump_ratio: float) -> np.ndarray:
+    """:func:`monitor.quality.checks.spike_test` on plain arrays (residual [m], Unix seconds) [flags]."""
+    n = len(r)
+    prev_ok, next_ok = _neighbour_ok(t, gap_limit)
+    flags = np.full(n, NOT_EVALUATED, dtype=np.int8)
+    if n >= 3:
+        curv = np.full(n, np.nan)
+        curv[1:-1] = r[1:-1] - 0.5 * (r[:-2] + r[2:])
+        stat = np.abs(curv)
+        ok = prev_ok & next_ok & np.isfinite(stat)
+        before = np.concatenate([[np.nan], curv[:-1]])
+        after = np.concatenate([curv[1:], [np.nan]])
+        with np.errstate(invalid="ignore"):
+            alone = ~(np.sign(before) == np.sign(curv)) & ~(np.sign(after) == np.sign(curv))
+        peak = ~(np.nan_to_num(np.concatenate([[0.0], stat[:-1]])) > stat) & \
+            ~(np.nan_to_num(np.concatenate([stat[1:], [0.0]])) > stat)
+        flags[ok] = PASS
+        flags[ok & (stat > suspect)] = SUSPECT
+        flags[ok & (stat > fail) & alone & peak] = FAIL
+    flags[jump_flags(r, t, fail, jump_ratio, gap_limit)] = FAIL
+    return flags
+
+
+def jump_flags(r: np.ndarray, t: np.ndarray, size: float, ratio: float, gap_limit: float) -> np.ndarray:
+    """:func:`monitor.quality.checks.jumps` on plain arrays [bool]."""
+    n = len(r)
+    out = np.zeros(n, dtype=bool)
+    good = np.flatnonzero(np.isfinite(r))
+    if good.size < 4:
+        return out
+    rv, tv = r[good], t[good]
+    d = np.diff(rv)
+    close = np.diff(tv) <= gap_limit
+    d = np.where(close, d, np.nan)
+    before = np.concatenate([[np.nan], d[:-1]])
+    after = np.concatenate([d[1:], [np.nan]])
+    with np.errstate(invalid="ignore"):
+        big = (np.abs(d) > size) & (np.abs(d) > ratio * np.fmax(np.abs(before), np.abs(after)))
+        big &= np.isfinite(before) & np.isfinite(after)
+    out[good[1:][big]] = True
+    return out
+
+
+def run_tests_tail(level: pd.Series, settings: QcSettings | None = None, predicted: Any = None,
+                   other: pd.Series | None = None, now: float | None = None,
+                   position: tuple[float, float] | None = None, start: int = 0) -> pd.DataFrame:
+    """``monitor.quality.checks.run_tests(level, ...).iloc[start:]``, evaluated at those rows only.
+
+    Parameters
+    ----------
+    level, settings, predicted, other, now, position
+        As :func:`monitor.quality.checks.run_tests` (positions reported with the samples are not taken).
+    start : int
+        First row to evaluate; the rows before it are the context of the windows.
+
+    Returns
+    -------
+    DataFrame with one int8 column per test of :data:`monitor.quality.checks.TESTS` and ``flag``,
+    indexed like ``level.iloc[start:]``.
+
+    References
+    ----------
+    U.S. IOOS (2021), QARTOD water level manual v2.1, Tests 1-8, 10 and 11.
+    """
+    k = int(min(max(start, 0), len(level)))
+    if len(level) - k <= TAIL_ROWS_MAX:
+        try:
+            return _tail(level, settings or QcSettings(), predicted, other, now, position, k)
+        except _TooWide:
+            pass
+    return run_tests(level, settings, predicted, other, now, position).iloc[k:]
+
+
+def _tail(level: pd.Series, s: QcSettings, predicted: Any, other: pd.Series | None, now: float | None,
+          position: tuple[float, float] | None, k: int) -> pd.DataFrame:
+    idx = utc_index(level.index)
+    tn = idx.as_unit("ns").asi8
+    t = tn / 1e9
+    v = level.to_numpy(dtype=float)
+    n = len(v)
+    tail = slice(k, n)
+    at = tn[tail]
+    p = None if predicted is None else np.asarray(predicted, dtype=float)
+    r = v - p if p is not None else v
+    out: dict[str, np.ndarray] = {}
+
+    # 1 timing/gap, 2 syntax, 3 location, 4 gross range, 5 expected range: per sample
+    g = np.full(n - k, PASS, dtype=np.int8)
+    if n - k:
+        prev_t = t[k - 1:n - 1] if k > 0 else np.concatenate([[np.nan], t[:n - 1]])
+        with np.errstate(invalid="ignore"):
+            dt = t[tail] - prev_t
+            g[dt > s.gap_limit] = MISSING
+            g[dt <= 0] = FAIL
+        if now is not None:
+            g[t[tail] > now + s.future_tolerance] = FAIL
+    out["gap"] = g
+    finite = np.isfinite(v)
+    out["syntax"] = np.where(finite[tail], PASS, MISSING).astype(np.int8)
+    lat, lon = position if position is not None else (None, None)
+    out["location"] = location_test(level.index[tail], lat, lon, None, s.location_radius).to_numpy()
+    gross = np.full(n, PASS, dtype=np.int8)
+    if s.gross_suspect_min is not None:
+        gross[v < s.gross_suspect_min] = SUSPECT
+    if s.gross_suspect_max is not None:
+        gross[v > s.gross_suspect_max] = SUSPECT
+    gross[(v < s.gross_fail_min) | (v > s.gross_fail_max)] = FAIL
+    gross[~finite] = NOT_EVALUATED
+    out["gross"] = gross[tail]
+    if p is None:
+        out["expected"] = np.full(n - k, NOT_EVALUATED, dtype=np.int8)
+    else:
+        d = v[tail] - p[tail]
+        e = np.where(np.abs(d) > s.expected_margin, SUSPECT, PASS)
+        out["expected"] = np.where(np.isfinite(d), e, NOT_EVALUATED).astype(np.int8)
+
+    # 6 spike (on the residual without gross failures): over the whole context, cheap and
+    # needed there: its failures are left out of the windows of the tests below
+    gross_fail = gross == FAIL
+    rc = np.where(gross_fail, np.nan, r)
+    spike = spike_flags(rc, t, s.spike_suspect, s.spike_fail, s.gap_limit, s.jump_ratio)
+    out["spike"] = spike[tail]
+    bad = gross_fail | (spike == FAIL)
+    ok = np.isfinite(rc) & ~bad
+
+    # 7 rate of change: against the last usable sample, limit from the previous window's sd
+    roc = np.full(n - k, NOT_EVALUATED, dtype=np.int8)
+    if n >= 2 and n - k:
+        pos = np.where(ok, np.arange(n), -1)
+        last = np.maximum.accumulate(pos)
+        prev = np.concatenate([[-1], last[:-1]])[tail]
+        has_prev = prev >= 0
+        pi = np.where(has_prev, prev, 0)
+        dv = rc[tail] - rc[pi]
+        dtt = t[tail] - t[pi]
+        with np.errstate(invalid="ignore"):
+            evaluated = has_prev & (dtt > 0) & (dtt <= s.gap_limit) & np.isfinite(rc[tail])
+        # the sd at the previous row (of the samples up to it)
+        j = np.arange(k, n) - 1
+        sd = np.full(n - k, np.nan)
+        has = j >= 0
+        if has.any():
+            a, b = _bounds(tn, tn[j[has]], _ns(s.roc_window), 0)
+            sd[has] = _rolling_std(np.where(ok, rc, np.nan), a, b, 10)
+        limit = np.maximum(np.nan_to_num(s.roc_n_dev * sd, nan=0.0), s.roc_floor)
+        roc[evaluated] = PASS
+        with np.errstate(invalid="ignore"):
+            roc[evaluated & (np.abs(dv) > limit)] = SUSPECT
+    out["roc"] = roc
+
+    # 8 flat line, on the level
+    flat = np.full(n - k, PASS, dtype=np.int8)
+    for duration, code in ((s.flat_suspect_after, SUSPECT), (s.flat_fail_after, FAIL)):
+        if n - k == 0:
+            break
+        a, b = _bounds(tn, at, _ns(duration), 0, lo_closed=True)
+        vmax, vmin = _rolling_extremes(v, a, b, 2)
+        tt = t[tail]
+        first = np.searchsorted(t, tt - duration, side="left")
+        exact = t[np.minimum(first, n - 1)] == tt - duration
+        before = t[np.maximum(first - 1, 0)]
+        covered = exact | ((first > 0) & (before >= tt - duration - s.gap_limit))
+        with np.errstate(invalid="ignore"):
+            is_flat = (vmax - v[tail] < s.flat_tolerance) & (v[tail] - vmin < s.flat_tolerance) & covered
+        flat[is_flat] = code
+    flat[~finite[tail]] = NOT_EVALUATED
+    out["flat"] = flat
+
+    # 11 (neighbour) against the co-located sensor
+    multi = np.full(n - k, NOT_EVALUATED, dtype=np.int8)
+    if other is not None and not other.dropna().empty and n - k:
+        dm = difference_at(level.iloc[tail], other, s.gap_limit)
+        okm = np.isfinite(dm)
+        multi[okm] = PASS
+        multi[okm & (np.abs(dm) > s.multi_suspect)] = SUSPECT
+    out["multi"] = multi
+
+    # 10 attenuated signal: observed range over the last tidal day against the predicted
+    atten = np.full(n - k, NOT_EVALUATED, dtype=np.int8)
+    if p is not None and n and n - k:
+        oka = np.isfinite(v) & np.isfinite(p) & ~bad
+        a, b = _bounds(tn, at, _ns(s.atten_window), 0)
+        ohi, olo = _rolling_extremes(np.where(oka, v, np.nan), a, b, 2)
+        phi, plo = _rolling_extremes(np.where(oka, p, np.nan), a, b, 2)
+        csum = np.concatenate([[0], np.cumsum(oka)])
+        count = (csum[b] - csum[a]).astype(float)
+        step = float(np.median(np.diff(t))) if n > 1 else s.atten_window
+        span_ok = (t[tail] - t[0]) >= s.atten_window - step
+        covered = span_ok & (count * step >= 0.8 * s.atten_window)
+        with np.errstate(invalid="ignore", divide="ignore"):
+            pred_range = phi - plo
+            ratio = (ohi - olo) / pred_range
+            ev = covered & np.isfinite(ratio) & (pred_range >= s.atten_min_range) & finite[tail]
+            atten[ev] = PASS
+            atten[ev & (ratio < s.atten_suspect)] = SUSPECT
+            atten[ev & (ratio < s.atten_fail)] = FAIL
+    out["atten"] = atten
+
+    # residual outlier: departure from the centred median against the centred noise
+    out["resid"] = _resid_tail(rc, t, tn, ok, k, s)
+
+    missing = out["syntax"] == MISSING
+    table = np.column_stack([np.where(missing & (c != "syntax"), NOT_EVALUATED, out[c]).astype(np.int8)
+                             for c in TESTS]) if n - k else np.zeros((0, len(TESTS)), np.int8)
+    frame = pd.DataFrame(table, index=level.index[tail], columns=list(TESTS))
+    frame["flag"] = _aggregate(table)
+    if other is not None:
+        frame = confirm_tail(frame, level, r, other, s, k)
+    return frame
+
+
+def _resid_tail(rc: np.ndarray, t: np.ndarray, tn: np.ndarray, ok: np.ndarray, k: int, s: QcSettings) -> np.ndarray:
+    """:func:`monitor.quality.checks.residual_outlier_test` at rows ``k:`` (``rc`` with gross failures
+    as NaN, ``ok`` the samples its windows may use)."""
+    n = len(rc)
+    flags = np.full(n - k, NOT_EVALUATED, dtype=np.int8)
+    if n - k == 0:
+        return flags
+    half_noise = _ns(s.resid_noise_window) // 2
+    half = _ns(s.resid_window) // 2
+    # Rows judged: the tail, and for the burst rule back to the last row more than one
+    # burst before it (e0): a run of far departures through e0 that reaches the tail is too
+    # long to fail, whatever came before e0.
+    e0 = max(int(np.searchsorted(tn, tn[k] - _ns(s.resid_burst), side="left")) - 1, 0)
+    # rows whose departure enters the noise window of a row judged
+    j0 = max(0, int(np.searchsorted(tn, tn[e0] - half_noise, side="left")) - 1)
+    clean = np.where(ok, rc, np.nan)
+    rows = np.arange(j0, n)
+    a, b = _bounds(tn, tn[rows], half, half)
+    med = _rolling_median(clean, a, b, 5)
+    d = np.full(n, np.nan)
+    d[rows] = rc[rows] - med
+    absd = np.where(ok, np.abs(d), np.nan)
+    ev_rows = np.arange(e0, n)
+    a, b = _bounds(tn, tn[ev_rows], half_noise, half_noise)
+    sigma = np.full(n, np.nan)
+    sigma[ev_rows] = 1.4826 * _rolling_median(absd, a, b, 10)
+    full = np.full(n, NOT_EVALUATED, dtype=np.int8)
+    ev = np.isfinite(d) & np.isfinite(sigma)
+    full[ev] = PASS
+    with np.errstate(invalid="ignore"):
+        full[ev & (np.abs(d) > np.maximum(s.resid_suspect_k * sigma, s.resid_suspect_floor))] = SUSPECT
+        far = ev & (np.abs(d) > np.maximum(s.resid_fail_k * sigma, s.resid_fail_floor))
+    full[far] = SUSPECT
+    # A run seen from e0 may have begun before it; one that reaches the tail spans more
+    # than a burst from e0 anyway, so it is judged as in the whole record.
+    full[_bursts(rc, t, far, s.resid_burst, s.resid_fail_floor, s.jump_ratio, s.gap_limit)] = FAIL
+    return full[k:]
+
+
+def confirm_tail(frame: pd.DataFrame, level: pd.Series, r: np.ndarray, other: pd.Series | None,
+                 s: QcSettings, k: int) -> pd.DataFrame:
+    """:func:`monitor.quality.checks._confirm` at rows ``k:``: ``frame`` holds those rows' tests,
+    ``level`` and ``r`` (level minus prediction [m]) the whole record, ``other`` the other
+    sensor's levels that may confirm a jump (within reach of the rows ``k:`` at least)."""
+    n = len(level)
+    if other is None:
+        return frame
+    t = utc_index(level.index).as_unit("ns").asi8 / 1e9
+    if other.dropna().empty or n < 3:
+        return frame
+    # difference and its curvature one row either side of the tail
+    j0 = max(0, k - 1)
+    dd = difference_at(level.iloc[j0:], other, s.gap_limit)
+    curv = np.full(len(dd), np.nan)
+    curv[1:-1] = dd[1:-1] - 0.5 * (dd[:-2] + dd[2:])
+    step = np.concatenate([[np.nan], np.diff(dd)])
+    with np.errstate(invalid="ignore"):
+        same = np.isfinite(curv) & np.isfinite(step) & (np.abs(curv) < s.spike_suspect) & \
+            (np.abs(step) < s.spike_suspect)
+    same = same[k - j0:]
+    if not same.any():
+        return frame
+    gross = frame["gross"].to_numpy()
+    rc = r.copy()
+    rc[k:][gross == FAIL] = np.nan
+    # gross failures before the tail: recomputed (they are per sample)
+    v = level.to_numpy(dtype=float)
+    rc[:k][(v[:k] < s.gross_fail_min) | (v[:k] > s.gross_fail_max)] = np.nan
+    jumped = jump_flags(rc, t, s.spike_fail, s.jump_ratio, s.gap_limit)[k:]
+    f = frame["spike"].to_numpy().copy()
+    real = same & jumped & (f == FAIL)
+    if not real.any():
+        return frame
+    frame = frame.copy()
+    f[real] = SUSPECT
+    frame["spike"] = f.astype(np.int8)
+    frame["flag"] = aggregate_flags(frame)
+    return frame
 
 
 # --------------------------------------------------------------------------- store glue
@@ -1097,38 +1499,49 @@ def run_station_qc(store: Any, station_cfg: Any, settings: QcSettings | None, st
     ensure_qc_schema(db)
     station, sensors = _station_parts(station_cfg)
     now = _time.time() if now is None else now
-    read_from = start_t - s.context_seconds()
     write_from = start_t - s.resid_window
+    # Rows are judged from here (two gap limits before the first row written: the other
+    # sensor's flags are needed that far back for the comparison and the bore check), with
+    # the whole context of every window behind them.
+    judge_from = write_from - 2 * s.gap_limit
+    read_from = judge_from - s.context_seconds()
     obs = {sn: read_observations(db, station, sn, read_from, end_t) for sn in sensors}
     obs = {sn: df for sn, df in obs.items() if not df.empty}
     single: dict[str, pd.DataFrame] = {}
     preds: dict[str, np.ndarray | None] = {}
+    first: dict[str, int] = {}
     position = _position(station_cfg)
     for sn, df in obs.items():
         preds[sn] = _predict(model, df.index)
-        single[sn] = run_tests(df["value"], s, preds[sn], None, now, position=position)
+        first[sn] = int(np.searchsorted(index_seconds(df.index), judge_from, side="left"))
+        single[sn] = run_tests_tail(df["value"], s, preds[sn], None, now, position=position, start=first[sn])
     results: dict[str, pd.DataFrame] = {}
     for sn, df in obs.items():
         tests = single[sn]
+        k = first[sn]
         others = [o for o in obs if o != sn]
         if others:
             o = others[0]
             # the other sensor's values that are not failed, and (to confirm fast water) all
-            # its values but those failed for reasons other than their shape
-            other_ok = obs[o]["value"].where(single[o]["flag"].to_numpy() != FAIL)
+            # its values but those failed for reasons other than their shape; its rows before
+            # those judged are never within reach of the rows written
+            ko = first[o]
+            judged = obs[o]["value"].iloc[ko:]
+            other_ok = judged.where(single[o]["flag"].to_numpy() != FAIL)
             shape_only = ~(single[o][[c for c in TESTS if c not in ("spike", "resid")]] == FAIL).any(axis=1)
             tests = tests.copy()
-            tests["multi"] = multi_sensor_test(df["value"], other_ok, s.multi_suspect, s.gap_limit)
+            tests["multi"] = multi_sensor_test(df["value"].iloc[k:], other_ok, s.multi_suspect, s.gap_limit)
             tests["multi"] = tests["multi"].where(tests["syntax"] != MISSING, NOT_EVALUATED)
             tests["flag"] = aggregate_flags(tests)
-            resid = df["value"] - preds[sn] if preds[sn] is not None else df["value"]
-            tests = _confirm(tests, df["value"], resid, obs[o]["value"].where(shape_only.to_numpy()), s)
+            v = df["value"].to_numpy(dtype=float)
+            resid = v - preds[sn] if preds[sn] is not None else v
+            tests = confirm_tail(tests, df["value"], resid, judged.where(shape_only.to_numpy()), s, k)
         t = index_seconds(tests.index)
         sel = (t >= write_from) & (t <= end_t)
         part = tests[sel].copy()
         ov = read_overrides(db, station, sn, write_from, end_t)
         part["flag"] = apply_overrides(part["flag"], ov)
-        _write(db, station, sn, part, df["flag"].to_numpy()[sel])
+        _write(db, station, sn, part, df["flag"].to_numpy()[k:][sel])
         results[sn] = part
     return results
 

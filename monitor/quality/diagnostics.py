@@ -70,14 +70,20 @@ def _ols(X: np.ndarray, y: np.ndarray) -> tuple[np.ndarray, np.ndarray, float, n
 
 # --------------------------------------------------------------------------- two sensors
 
+DRIFT_MAX_BINS = 744  # bins of the drift's Theil-Sen line at most (31 days of hours: the default 30-day window keeps hourly bins)
+
+
 def sensor_drift(primary: pd.Series, backup: pd.Series, *, bin_seconds: float = 3600.0,
-                 gap_limit: float = 300.0, confidence: float = 0.95) -> dict:
+                 gap_limit: float = 300.0, confidence: float = 0.95, max_bins: int = DRIFT_MAX_BINS) -> dict:
     """Offset and drift of the primary sensor against the backup.
 
     The difference ``primary - backup`` (backup interpolated to the primary's times)
     is reduced to medians per ``bin_seconds`` bin (which keeps Theil-Sen's pairwise
     slopes affordable and resists spikes); the Theil-Sen line through the bin medians
-    gives the drift, and its value at the window's centre the offset.
+    gives the drift, and its value at the window's centre the offset. A record longer
+    than ``max_bins`` bins gets wider bins (the span over ``max_bins``), so the pairwise
+    slopes stay a fixed number and the cost grows with the record only through the
+    binning (the default 30-day window keeps its hourly bins).
 
     Returns
     -------
@@ -97,6 +103,7 @@ def sensor_drift(primary: pd.Series, backup: pd.Series, *, bin_seconds: float = 
     if d.empty:
         return out
     t = index_seconds(d.index)
+    bin_seconds = max(bin_seconds, (t[-1] - t[0]) / (max_bins - 1))  # bins 0 .. max_bins - 1
     b = np.floor((t - t[0]) / bin_seconds)
     g = pd.DataFrame({"t": t, "d": d.to_numpy(), "b": b}).groupby("b").median()
     out.update(bins=len(g), start=d.index[0], end=d.index[-1])
@@ -617,11 +624,15 @@ def sensor_timing(primary: pd.Series, backup: pd.Series, window_s: float = 6 * 3
     lags = np.arange(-max_lag_s, max_lag_s + lag_step_s / 2, lag_step_s)
     rows = []
     t0 = max(ps[0], bs[0])
+    # each window's samples by binary search, and the primary only around the window: the
+    # cost grows with the record, not with its square
     while t0 + window_s <= min(ps[-1], bs[-1]):
-        m = (bs >= t0) & (bs < t0 + window_s)
-        if m.sum() >= min_samples:
-            tt, yy = bs[m], bv[m]
-            d = yy[None, :] - np.interp(tt[None, :] + lags[:, None], ps, pv)
+        i0, i1 = np.searchsorted(bs, [t0, t0 + window_s], side="left")
+        if i1 - i0 >= min_samples:
+            tt, yy = bs[i0:i1], bv[i0:i1]
+            j0 = max(int(np.searchsorted(ps, tt[0] - max_lag_s, side="left")) - 1, 0)
+            j1 = int(np.searchsorted(ps, tt[-1] + max_lag_s, side="right")) + 1
+            d = yy[None, :] - np.interp(tt[None, :] + lags[:, None], ps[j0:j1], pv[j0:j1])
             mad = np.median(np.abs(d - np.median(d, axis=1, keepdims=True)), axis=1)
             i = int(np.argmin(mad))
             rows.append({"start": utc_timestamp(t0), "end": utc_timestamp(t0 + window_s), "lag_min": lags[i] / 60,

@@ -130,7 +130,11 @@ class StationConfig:
 
 @dataclass(frozen=True)
 class DaemonSettings:
-    poll_seconds: float = 10.0
+    # Feeds are read every poll_seconds; a station that got complete lines is processed at
+    # once, after coalesce_seconds (lines of its other sensors arriving together are then
+    # taken in one pass). process_seconds is the catch-up pass over every station.
+    poll_seconds: float = 1.0
+    coalesce_seconds: float = 0.5
     process_seconds: float = 60.0
     outbox_seconds: float = 30.0
     refit_days: float = 30.0
@@ -432,6 +436,8 @@ def _daemon(c: _Checker, raw: Any) -> DaemonSettings:
     pos = lambda v: v > 0  # noqa: E731
     vals = {
         "poll_seconds": c.value(t, "daemon", "poll_seconds", "number", d.poll_seconds, pos, "a number of seconds > 0"),
+        "coalesce_seconds": c.value(t, "daemon", "coalesce_seconds", "number", d.coalesce_seconds,
+                                    lambda v: 0 <= v <= 60, "a number of seconds from 0 to 60"),
         "process_seconds": c.value(t, "daemon", "process_seconds", "number", d.process_seconds, pos,
                                    "a number of seconds > 0"),
         "outbox_seconds": c.value(t, "daemon", "outbox_seconds", "number", d.outbox_seconds, pos,

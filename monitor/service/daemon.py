@@ -4,8 +4,10 @@ apscheduler (3.x, BackgroundScheduler with one worker thread, so jobs never over
 runs these jobs, and an outbox thread of its own delivers the mail:
 
 - ``poll``: each feed's new lines are parsed and stored with the feed's checkpoint in one
-  transaction (:func:`ingest_lines`);
-- ``process``: per station, :meth:`Daemon.process_station` -- quality control, residual,
+  transaction (:func:`ingest_lines`); a station that got lines is processed in the same job,
+  after ``daemon.coalesce_seconds`` and one more poll (:meth:`Daemon.process_delivered`),
+  so a line reaches the rules within a poll interval and a second, not a timer's minute;
+- ``process``: the catch-up pass over every station (late data, retries), per station, :meth:`Daemon.process_station` -- quality control, residual,
   skew surge, next high water forecast, then the alert rules (one pipeline, in order).
   Rows that arrive late (older than what was processed, of any sensor) are processed
   again from the earliest time stored. The rules get the new samples and the hour before
@@ -66,10 +68,31 @@ log = logging.getLogger("monitor.service.daemon")
 PROCESS_CHUNK = 7 * 86400   # [s] most data time processed in one pass (bounds memory in a backfill)
 REWRITE_BACK = 3600         # [s] derived rows before a window that are recomputed (QC may revise flags)
 OUTBOX_DRAIN_WAIT = 30.0    # [s] with --until-exhausted, longest wait for the outbox after the feeds end
+PRUNE_EVERY = 86400.0       # [s, wall clock] how often the outbox thread prunes delivered messages
 HISTORY_REFRESH = 6 * 3600  # [s, data time] how often the forecast relearns from the residual history
 # [s] samples before a window handed to the alert rules besides the new ones: messages show the
 # change over the last hour, taken from a sample up to 15 min either side of an hour back
 TREND_BACK = 75 * 60
+
+
+def judged_samples(samples: pd.DataFrame) -> pd.DataFrame:
+    """The samples whose quality-control flags are final enough for the alert rules: all
+    but the newest.
+
+    The spike test (QARTOD Test 6) and the one-sample jump judge a sample by the one after
+    it; until that sample arrives the newest one is "not evaluated" by them, and a lone
+    spike would count for the rules as a good sample. So the newest sample is held back
+    until its follower has come, whatever its time stamp says (a feed running late
+    delivers old stamps, and their followers still come). A held-back sample does not move
+    a rule's watermark, so the next pass counts it with its final flag; after a silence
+    longer than the gap limit that is the pass of the first sample after it.
+
+    References
+    ----------
+    U.S. IOOS (2021), QARTOD water level manual v2.1, Test 6 (the spike test needs the
+    following sample, hence its delay of one sample).
+    """
+    return samples.iloc[:-1]
 
 
 # --------------------------------------------------------------------------- ingest
@@ -266,6 +289,7 @@ class StationRuntime:
     replay_clock: bool = False
     last_fit_try: float = -math.inf
     diag_at: float = -math.inf      # data time of the last drift and clock diagnostics [Unix s]
+    diag_phase: float = 0.0         # fraction of daemon.diagnostics_minutes this station's runs are offset by
     diag: dict = field(default_factory=dict)  # their results: "drift", "clock.primary", ...
     predicted: "PredictionMemo | None" = field(default=None, repr=False)
     _extremes: "Frozen | None" = field(default=None, repr=False)
@@ -437,6 +461,7 @@ class Daemon:
         self.stop = threading.Event()
         self.done = threading.Event()
         self.empty_polls = 0
+        self.delivered: set[str] = set()  # stations whose feeds delivered lines since their last pass
         self.feeds_done_at: float | None = None
         self.until_exhausted = False
         self.qc = qc
@@ -453,6 +478,8 @@ class Daemon:
         # Every table the jobs write exists already: Store.open ran the schema migrations
         # (monitor/store/migrations.py), so no schema statement contends with the outbox thread.
         self.stations = {st.id: self._station_runtime(st) for st in cfg.stations}
+        for i, rt in enumerate(self.stations.values()):
+            rt.diag_phase = i / len(self.stations)
         # Replay feeds run the rules and the daily reports on the replayed clock, so a replayed
         # storm reads as it would have live. Delivery does not: the outbox keeps the wall clock.
         self.replay_clock = bool(self.stations) and all(rt.replay_clock for rt in self.stations.values())
@@ -508,6 +535,8 @@ class Daemon:
                 log.exception("feed %s: poll failed; will retry", fr.name)
                 continue
             total += len(lines)
+            if rt is not None:
+                self.delivered.add(rt.cfg.id)
             if res.rejected:
                 log.warning("feed %s: %d line(s) rejected (see 'quaywatch status')", fr.name, res.rejected)
             log.debug("feed %s: %s", fr.name, res)
@@ -525,6 +554,7 @@ class Daemon:
     # ------------------------------------------------------------------ processing
     def process(self) -> int:
         """Process new data of every station. Returns the number of stations with new data."""
+        self.delivered.clear()
         n = 0
         for rt in self.stations.values():
             if self.stop.is_set():
@@ -655,6 +685,7 @@ class Daemon:
                 rules = [r for r in rules if r.watch in kinds]
             samples = full.loc[full.index >= pd.Timestamp(start_t - TREND_BACK, unit="s", tz="UTC"),
                                ["observed", "predicted", "residual", "smoothed", "flag"]]
+            samples = judged_samples(samples)
             events = []
             try:
                 events = self.engine.evaluate(store.db, rt.view, rules, samples, now=now, context=ctx)
@@ -748,8 +779,12 @@ class Daemon:
         st, dset = rt.cfg, self.cfg.daemon
         if end_t is None:
             end_t = int(now)
-        if end_t - rt.diag_at >= dset.diagnostics_minutes * 60:
-            rt.diag_at = end_t
+        period = dset.diagnostics_minutes * 60
+        if end_t - rt.diag_at >= period:
+            # The first run comes at once; the next after a share of the period that differs
+            # by station, so with many stations the runs spread over the period rather than
+            # all landing in one pass each hour.
+            rt.diag_at = end_t - (rt.diag_phase * period if rt.diag_at == -math.inf else 0.0)
             rt.diag = self._run_diagnostics(rt, end_t)
         faults: list[dict] = []
         qs = st.qc
@@ -850,7 +885,7 @@ class Daemon:
             return 0
         try:
             return int(self.store.conn.execute(
-                "SELECT count(*) FROM outbox WHERE status NOT IN ('sent', 'expired')").fetchone()[0])
+                f"SELECT count(*) FROM outbox WHERE status IN {self.outbox.WAITING_SQL}").fetchone()[0])
         except sqlite3.OperationalError:  # no outbox table yet: nothing queued
             return 0
 
@@ -867,6 +902,15 @@ class Daemon:
             log.debug("outbox: %s", summary)
         except Exception:
             log.exception("outbox delivery failed; will retry")
+
+    def prune_outbox(self, db=None) -> None:
+        """Delete delivered messages past ``mail.keep_delivered`` (the outbox thread, once a day)."""
+        if self.outbox is None:
+            return
+        try:
+            self.outbox.prune_delivered(self.store.db if db is None else db, self.cfg.mail)
+        except Exception:
+            log.exception("outbox: pruning delivered messages failed; will retry")
 
     def wake_outbox(self) -> None:
         """Ask the outbox thread for a round now; without one running, deliver here."""
@@ -889,7 +933,29 @@ class Daemon:
 
     # ------------------------------------------------------------------ jobs
     def job_poll(self) -> None:
-        self.poll()
+        """Poll the feeds; the stations that got lines are processed at once, after
+        ``daemon.coalesce_seconds`` and one more poll (so lines of a station's other
+        sensors, or the rest of a burst, join the same pass)."""
+        if not self.poll():
+            return
+        wait = self.cfg.daemon.coalesce_seconds
+        if wait > 0 and not self.stop.wait(wait):
+            self.poll()
+        self.process_delivered()
+
+    def process_delivered(self) -> int:
+        """Process the stations whose feeds delivered lines since their last pass. Returns
+        the number of stations with new data."""
+        n = 0
+        while self.delivered and not self.stop.is_set():
+            rt = self.stations.get(self.delivered.pop())
+            if rt is None:
+                continue
+            try:
+                n += bool(self.process_station(rt))
+            except Exception:
+                log.exception("station %s: processing failed; will retry", rt.cfg.id)
+        return n
 
     def job_process(self) -> None:
         n = self.process()
@@ -978,12 +1044,16 @@ class OutboxWorker(threading.Thread):
         try:
             conn.execute("PRAGMA busy_timeout = 30000")
             db = sqlite_utils.Database(conn)
+            pruned_at = -math.inf
             while not self._halt.is_set():
                 self.wake.wait(self.interval)
                 self.wake.clear()
                 if self._halt.is_set():
                     break
                 self.owner.deliver(db)
+                if time.monotonic() - pruned_at >= PRUNE_EVERY:
+                    pruned_at = time.monotonic()
+                    self.owner.prune_outbox(db)
         finally:
             conn.close()
 

@@ -9,6 +9,7 @@ from __future__ import annotations
 
 import dataclasses
 import datetime as dt
+import json
 import logging
 from pathlib import Path
 from typing import Any, Iterable
@@ -669,6 +670,39 @@ def _constants(store: Any, sid: str, model: Any, source: str, shift: float = 0.0
 # --------------------------------------------------------------------------- writing and sending
 
 
+def refresh_index(config: Any, store: Any, now: pd.Timestamp | None = None, day: dt.date | None = None) -> Path:
+    """Prune reports more than ``reports.keep_days`` before ``day`` (the day just written;
+    once per day) and write the index page from the summaries kept in ``report_runs``: no
+    report file is read, so a round costs the same with 40 reports kept or 40,000. A report
+    written before the summaries were kept has its summary read from its file once, and
+    kept."""
+    settings = settings_of(config)
+    now = now or pd.Timestamp.now(tz="UTC")
+    db = store.db
+    day = day or now.tz_convert("UTC").date() - dt.timedelta(days=1)
+    cutoff = (day - dt.timedelta(days=settings.keep_days)).isoformat() if settings.keep_days > 0 else ""
+    try:
+        if settings.keep_days > 0 and store.get_meta("reports.pruned_for") != day.isoformat():
+            report_render.prune_reports(settings.folder, settings.keep_days, day)
+            store.set_meta("reports.pruned_for", day.isoformat())
+        entries = []
+        for sid, day, path, summary in db.conn.execute(
+                "SELECT station, day, path, summary FROM report_runs WHERE day >= ? ORDER BY station, day",
+                (cutoff,)).fetchall():
+            if summary is None:
+                found = report_render.read_summary(Path(path)) if path else None
+                if found is None:
+                    continue  # gone (pruned, or written elsewhere)
+                db.conn.execute("UPDATE report_runs SET summary = ? WHERE station = ? AND day = ?",
+                                (json.dumps(found), sid, day))
+            else:
+                found = json.loads(summary)
+            entries.append((sid, day, found))
+        return report_render.write_index(settings.folder, now, entries)
+    except OSError as exc:
+        raise ConfigError(f"reports.folder {settings.folder}: cannot write the index ({exc})") from None
+
+
 def find_station(config: Any, station_id: str) -> Any:
     for station in config.stations:
         if station.id == station_id:
@@ -686,23 +720,28 @@ def settings_of(config: Any) -> report_model.ReportSettings:
 
 
 def write_station_day(config: Any, store: Any, station: Any, day: dt.date, *, send: bool = False,
-                      now: pd.Timestamp | None = None) -> Path:
-    """Gather, write ``<folder>/<station>/<day>.html``, refresh the index, and (with ``send``)
-    queue the email to the report recipients. Returns the report's path."""
+                      now: pd.Timestamp | None = None, index: bool = True) -> Path:
+    """Gather, write ``<folder>/<station>/<day>.html``, keep its index figures in
+    ``report_runs``, refresh the index (unless ``index`` is false: a round of many
+    stations writes it once at its end), and (with ``send``) queue the email to the report
+    recipients. Returns the report's path."""
     settings = settings_of(config)
     now = now or pd.Timestamp.now(tz="UTC")
     report = gather_day(store, station, day, settings, now=now, residual=getattr(config, "residual", None))
     try:
         path = report_render.write_day_report(report, settings.folder)
-        report_render.prune_reports(settings.folder, settings.keep_days, day)
-        report_render.write_index(settings.folder, now)
     except OSError as exc:
         raise ConfigError(f"reports.folder {settings.folder}: cannot write the report ({exc})") from None
+    summary = report_render.read_summary(path)
     queued = 0
     if send and settings.email and settings.recipients and getattr(config, "mail", None) is not None:
         queued = len(queue_email(store, report, settings.recipients, path, now))
     store.db["report_runs"].upsert({"station": station.id, "day": day.isoformat(), "written_at": int(now.timestamp()),
-                                    "path": str(path), "queued": queued}, pk=("station", "day"))
+                                    "path": str(path), "queued": queued,
+                                    "summary": None if summary is None else json.dumps(summary)},
+                                   pk=("station", "day"))
+    if index:
+        refresh_index(config, store, now, day)
     return path
 
 
@@ -747,8 +786,13 @@ def write_due_reports(config: Any, store: Any, now: Any = None) -> list[Path]:
         if done:
             continue
         try:
-            written.append(write_station_day(config, store, station, day, send=True, now=now))
+            written.append(write_station_day(config, store, station, day, send=True, now=now, index=False))
             log.info("station %s: daily report for %s written", station.id, day)
         except MonitorError as exc:
             log.error("station %s: daily report for %s: %s", station.id, day, exc)
+    if written:
+        try:
+            refresh_index(config, store, now, max(due_day(now, st.tz, settings.write_at) for st in config.stations))
+        except MonitorError as exc:
+            log.error("daily reports: %s", exc)
     return written

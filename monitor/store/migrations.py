@@ -23,8 +23,9 @@ from monitor.surge.forecast import ensure_forecast_schema
 __all__ = ["SCHEMA_VERSION", "MIGRATIONS", "DERIVED_COLUMNS"]
 
 #: This program's schema version. 1: core tables; 2: conflicting repeats in ``rejects``;
-#: 3: the quality-control, forecast-log, alert, outbox and report-run tables under the version.
-SCHEMA_VERSION = 3
+#: 3: the quality-control, forecast-log, alert, outbox and report-run tables under the version;
+#: 4: ``report_runs.summary`` (each report's index figures, so the index reads no report file).
+SCHEMA_VERSION = 4
 DERIVED_COLUMNS = ("observed", "predicted", "residual", "smoothed", "barometric")
 
 
@@ -76,10 +77,19 @@ def _owners_tables_v3(db: sqlite_utils.Database) -> None:
 
 
 def ensure_report_runs(db: sqlite_utils.Database) -> None:
-    """``report_runs`` (station, day): which local days' reports were written (monitor.service.reporting)."""
-    db["report_runs"].create({"station": str, "day": str, "written_at": int, "path": str, "queued": int},
-                             pk=("station", "day"), if_not_exists=True)
+    """``report_runs`` (station, day): which local days' reports were written, and each one's
+    index figures as JSON in ``summary`` (monitor.service.reporting)."""
+    db["report_runs"].create({"station": str, "day": str, "written_at": int, "path": str, "queued": int,
+                              "summary": str}, pk=("station", "day"), if_not_exists=True)
+    if "summary" not in db["report_runs"].columns_dict:
+        db["report_runs"].add_column("summary", str)
+
+
+def _report_summaries_v4(db: sqlite_utils.Database) -> None:
+    # The index is written from the summaries kept here (a report written before has its
+    # summary read from its file once, when the index is next written).
+    ensure_report_runs(db)
 
 
 #: version -> function that brings a store at (version - 1) to version
-MIGRATIONS = {1: _create_v1, 2: _conflicts_v2, 3: _owners_tables_v3}
+MIGRATIONS = {1: _create_v1, 2: _conflicts_v2, 3: _owners_tables_v3, 4: _report_summaries_v4}
