@@ -75,8 +75,9 @@ def svg_chart(snap: Snapshot, layout: tuple[int, int, int] = NARROW, css_class: 
         return '<p class="nochart">No samples in the last 48 hours to draw.</p>'
     tz = ZoneInfo(snap.station.get("tz", "UTC"))
     fc = snap.forecast
-    x0 = snap.now - 48 * 3600
-    x1 = max([snap.now, *(at[-1:] if len(at) else []), *([fc["hw_t"]] if fc and fc.get("hw_t") else [])]) + 1800
+    end = snap.chart_end
+    x0 = end - 48 * 3600
+    x1 = max([end, *(at[-1:] if len(at) else []), *([fc["hw_t"]] if fc and fc.get("hw_t") else [])]) + 1800
     ys = [v for v in (*obs, *pred, *ap) if math.isfinite(v)]
     ys += [m["level"] for m in snap.marks]
     if fc:
@@ -115,17 +116,18 @@ def svg_chart(snap: Snapshot, layout: tuple[int, int, int] = NARROW, css_class: 
         xx = float(X(tick.timestamp()))
         label = tick.strftime("%a %d") if tick.hour == 0 else tick.strftime("%H:%M")
         parts.append(f'<line x1="{xx:.1f}" x2="{xx:.1f}" y1="{top:.1f}" y2="{top + ph:.1f}" stroke="#eee"/>')
-        parts.append(f'<text x="{xx:.1f}" y="{top + ph + 1.2 * font:.1f}" text-anchor="middle" fill="#333">'
-                     f'{escape(label)}</text>')
+        if xx + 1.5 * font <= width:  # a label cut by the edge is left out
+            parts.append(f'<text x="{xx:.1f}" y="{top + ph + 1.2 * font:.1f}" text-anchor="middle" fill="#333">'
+                         f'{escape(label)}</text>')
         tick = (tick + dt.timedelta(hours=every)).astimezone(tz)
         tick = tick.replace(minute=0)
-    zone = dt.datetime.fromtimestamp(snap.now, dt.timezone.utc).astimezone(tz).strftime("%Z")
+    zone = dt.datetime.fromtimestamp(end, dt.timezone.utc).astimezone(tz).strftime("%Z")
     parts.append(f'<text x="{left + pw:.1f}" y="{top + ph + 2.3 * font:.1f}" text-anchor="end" fill="#333">'
                  f'local time ({escape(zone)}); m above {escape(snap.station.get("datum", ""))}</text>')
     # forecast range from now to the next high water: the predicted tide shifted by the range's
     # residuals at the high water, and the range itself at the high water
     if fc and fc.get("lower") is not None and fc.get("upper") is not None and len(at):
-        sel = (at >= snap.now - 1) & (at <= fc["hw_t"] + 1)
+        sel = (at >= end - 1) & (at <= fc["hw_t"] + 1)
         if sel.sum() >= 2:
             lo = ap[sel] + (fc["lower"] - fc["predicted_high"])
             hi = ap[sel] + (fc["upper"] - fc["predicted_high"])
@@ -137,13 +139,17 @@ def svg_chart(snap: Snapshot, layout: tuple[int, int, int] = NARROW, css_class: 
         parts.append(f'<line class="hwrange" x1="{hx:.1f}" x2="{hx:.1f}" y1="{float(Y(fc["upper"])):.1f}" '
                      f'y2="{float(Y(fc["lower"])):.1f}" stroke="#b35900" stroke-width="3"/>')
         parts.append(f'<circle cx="{hx:.1f}" cy="{float(Y(fc["forecast"])):.1f}" r="4" fill="#b35900"/>')
-    # marks
-    for m in snap.marks:
+    # marks, labels moved to the right end when they would overlap the one below
+    placed: list[float] = []
+    for m in sorted(snap.marks, key=lambda m: m["level"]):
         yy = float(Y(m["level"]))
         parts.append(f'<line class="mark" x1="{left:.1f}" x2="{left + pw:.1f}" y1="{yy:.1f}" y2="{yy:.1f}" '
                      f'stroke="#c0392b" stroke-dasharray="6 4" stroke-width="1.5"/>')
-        parts.append(f'<text x="{left + 4:.1f}" y="{yy - 3:.1f}" fill="#a52714">{escape(m["name"])} '
-                     f'{m["level"]:.2f}</text>')
+        crowded = any(abs(yy - p) < 1.1 * font for p in placed)
+        placed.append(yy)
+        x, anchor = (left + pw - 4, "end") if crowded else (left + 4, "start")
+        parts.append(f'<text x="{x:.1f}" y="{yy - 3:.1f}" text-anchor="{anchor}" fill="#a52714">'
+                     f'{escape(m["name"])} {m["level"]:.2f}</text>')
     # predicted tide (past and ahead), observed
     if len(t):
         parts.append(f'<path class="predicted" d="{_path(X(t), Y(pred))}" fill="none" stroke="#1f6fb2" '
@@ -154,9 +160,10 @@ def svg_chart(snap: Snapshot, layout: tuple[int, int, int] = NARROW, css_class: 
     if len(t):
         parts.append(f'<path class="observed" d="{_path(X(t), Y(obs))}" fill="none" stroke="#111" '
                      f'stroke-width="2"/>')
-    nx = float(X(snap.now))
+    nx = float(X(end))
     parts.append(f'<line x1="{nx:.1f}" x2="{nx:.1f}" y1="{top:.1f}" y2="{top + ph:.1f}" stroke="#555" '
                  f'stroke-width="1"/>')
-    parts.append(f'<text x="{nx - 3:.1f}" y="{top + font:.1f}" text-anchor="end" fill="#333">now</text>')
+    word = "now" if end == snap.now else "last sample"
+    parts.append(f'<text x="{nx - 3:.1f}" y="{top + font:.1f}" text-anchor="end" fill="#333">{word}</text>')
     parts.append("</svg>")
     return "".join(parts)

@@ -61,8 +61,19 @@ def gauge_verdict(snap: Snapshot) -> tuple[str, bool]:
     return "Gauge: CHECK: " + "; ".join(problems) + ".", True
 
 
-def headline(snap: Snapshot) -> list[Line]:
-    """The headline lines of a snapshot (see the module's docstring)."""
+def _pick(marks: list[dict], compact: bool) -> list[dict]:
+    """All marks; compact: those not clear, or else the nearest one (smallest margin)."""
+    if not compact or not marks:
+        return marks
+    hit = [m for m in marks if m["state"] != "clear"]
+    return hit or [min(marks, key=lambda m: m["margin"])]
+
+
+def headline(snap: Snapshot, compact: bool = False) -> list[Line]:
+    """The headline lines of a snapshot (see the module's docstring).
+
+    With ``compact`` (the top of a phone page), a level names only the marks it has passed or
+    may pass, or else the nearest one; the full comparison follows further down the page."""
     tz = snap.station.get("tz", "UTC")
     datum = snap.station.get("datum", "station datum")
     lines: list[Line] = []
@@ -79,7 +90,7 @@ def headline(snap: Snapshot) -> list[Line]:
     if lv is None:
         lines.append(Line("level", "Level: no level yet.", False))
     else:
-        marks = "; ".join(m["words"] for m in snap.marks_now)
+        marks = "; ".join(m["words"] for m in _pick(snap.marks_now, compact))
         past = any(m["state"] != "clear" for m in snap.marks_now)
         lines.append(Line("level", f"Level {lv['value']:.2f} m above {datum} at "
                                    f"{local_time(lv['t'], tz, snap.now)}, {trend_words(lv['rate'])}"
@@ -98,10 +109,11 @@ def headline(snap: Snapshot) -> list[Line]:
         if fc.get("lower") is not None and fc.get("upper") is not None:
             cov = f"{fc['coverage']:.0%} " if fc.get("coverage") else ""
             rng = f" ({cov}range {fc['lower']:.2f} to {fc['upper']:.2f} m)"
-        marks = "; ".join(m["words"] for m in snap.marks_hw)
+        marks = "; ".join(m["words"] for m in _pick(snap.marks_hw, compact))
         reach = any(m["state"] != "clear" for m in snap.marks_hw)
+        tide = "" if compact else f", predicted tide {fc['predicted_high']:.2f} m"
         lines.append(Line("forecast", f"Next high water {local_time(fc['hw_t'], tz, snap.now)}: "
-                                      f"{fc['forecast']:.2f} m{rng}, predicted tide {fc['predicted_high']:.2f} m"
+                                      f"{fc['forecast']:.2f} m{rng}{tide}"
                                       + (f": {marks}." if marks else "."), reach))
     if snap.episodes:
         parts = [f"{e.get('rule')} at {e.get('step_now') or e.get('top_step')} since "

@@ -34,6 +34,17 @@ def caution_line(text: str = CAUTION) -> str:
     return text
 
 
+def _what(snap: Snapshot):
+    """A message's subject without the prefix every subject of this station shares."""
+    name = snap.station.get("name", "")
+
+    def short(subject: str) -> str:
+        text = re.sub(r"^\[[^\]]*\]\s*", "", subject or "")
+        return text[len(name) + 2:] if name and text.startswith(name + ": ") else text
+
+    return short
+
+
 def _zone(snap: Snapshot) -> str:
     tz = ZoneInfo(snap.station.get("tz", "UTC"))
     return dt.datetime.fromtimestamp(snap.now, dt.timezone.utc).astimezone(tz).strftime("%Z")
@@ -49,13 +60,13 @@ def render_station(snap: Snapshot, reports: str = "") -> str:
         Link to the daily reports (relative), or "" for none.
     """
     tz = snap.station.get("tz", "UTC")
-    lines = headline(snap)
+    lines = headline(snap, compact=True)
     gauge_text, gauge_alarm = gauge_verdict(snap)
     return _env.get_template("live_station.html").render(
         snap=snap, lines=lines, refresh=max(1, int(round(snap.refresh))), caution_line=caution_line(snap.caution),
         asof=local_time(snap.now, tz), zone=_zone(snap), written=local_time(snap.written_at, tz, snap.written_at),
         local=lambda t: local_time(t, tz, snap.now), trend=trend_words, age=age_words,
-        gauge_text=gauge_text, gauge_alarm=gauge_alarm, reports=reports,
+        gauge_text=gauge_text, gauge_alarm=gauge_alarm, reports=reports, what=_what(snap),
         chart_narrow=svg_chart(snap, NARROW, "chart-narrow"), chart_wide=svg_chart(snap, WIDE, "chart-wide"))
 
 

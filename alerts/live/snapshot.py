@@ -87,6 +87,13 @@ class Snapshot:
     caution: str = ""
 
     @property
+    def chart_end(self) -> float:
+        """Where the chart's record ends [Unix s]: now, or the last usable sample when STALE."""
+        if self.stale and self.last_sample_t is not None:
+            return min(self.now, self.last_sample_t)
+        return self.now
+
+    @property
     def age(self) -> float | None:
         """Age of the last usable sample at ``now`` [s] (None without one)."""
         return None if self.last_sample_t is None else max(0.0, self.now - self.last_sample_t)
@@ -316,7 +323,8 @@ def build_snapshot(*, station: Mapping[str, Any], marks: Sequence[Mark], display
                      for m in marks]
     chart: dict = {}
     if len(t):
-        cut = t >= now - CHART_HOURS * 3600
+        ref = min(now, last_sample_t) if (stale and last_sample_t is not None) else now
+        cut = t >= ref - CHART_HOURS * 3600
         tt, ob, pr = _thin(t[cut], s["observed"][cut] - shift,
                            s.get("predicted", np.full(len(t), np.nan))[cut] - shift)
         chart = {"t": tt.tolist(), "observed": ob.tolist(), "predicted": pr.tolist()}
