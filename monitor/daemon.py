@@ -46,6 +46,7 @@ from monitor import residual as R
 from monitor import surge_forecast as SF
 from monitor.config import STATION_DATUM_NAMES, Config, SensorConfig, StationConfig, datum_words
 from monitor.errors import UserError
+from monitor.live_pages import LivePages
 from monitor.parse import parse_lines
 from monitor.qc import QcSettings
 from monitor.store import EMPTY_BATCH, BatchResult, Store
@@ -545,6 +546,7 @@ class Daemon:
         # storm reads as it would have live. Delivery does not: the outbox keeps the wall clock.
         self.replay_clock = bool(self.stations) and all(rt.replay_clock for rt in self.stations.values())
         self.data_now: float | None = None
+        self.live = LivePages(cfg) if cfg.live is not None else None
 
     def _station_runtime(self, st: StationConfig) -> StationRuntime:
         model, source = load_model(self.store, st)
@@ -611,16 +613,32 @@ class Daemon:
 
     # ------------------------------------------------------------------ processing
     def process(self) -> int:
-        """Process new data of every station. Returns the number of stations with new data."""
-        n = 0
+        """Process new data of every station, then rewrite the live pages that are due.
+        Returns the number of stations with new data."""
+        changed: set[str] = set()
         for rt in self.stations.values():
             if self.stop.is_set():
                 break
             try:
-                n += bool(self.process_station(rt))
+                if self.process_station(rt):
+                    changed.add(rt.cfg.id)
             except Exception:
                 log.exception("station %s: processing failed; will retry", rt.cfg.id)
-        return n
+        self.write_live(changed)
+        return len(changed)
+
+    def write_live(self, changed: set[str] | None = None) -> None:
+        """Rewrite the live page of each station with new data (``changed``), and of each silent
+        one once ``live.refresh`` has passed, so its page says STALE on time."""
+        if self.live is None:
+            return
+
+        def clock(st: StationConfig) -> tuple[float, int]:
+            rt = self.stations[st.id]
+            now = self.data_now if (rt.replay_clock and self.data_now is not None) else time.time()
+            return now, int(now + future_tolerance(st))
+
+        self.live.update(self.store, [(rt.cfg, rt.model) for rt in self.stations.values()], changed or set(), clock)
 
     def process_station(self, rt: StationRuntime, now: float | None = None) -> int:
         """Process a station's data newer than its mark; returns samples processed.
