@@ -12,14 +12,17 @@ import datetime as dt
 import math
 import re
 import sys
+import textwrap
 import time
 from pathlib import Path
 
 import numpy as np
 
+from alerts.live import LiveSettings, headline
 from monitor.cli_common import CAUTION, count, finite_float, input_file, store_errors
 from monitor.config import datum_words
 from monitor.errors import UserError
+from monitor.live_pages import gather
 from monitor.timeparse import local_text, parse_range
 
 INGEST_BATCH = 100_000  # lines per transaction in a backfill
@@ -181,6 +184,12 @@ def cmd_status(args: argparse.Namespace) -> int:
             shift, on = st.display_offset, f"above {st.display_label}"
             print(f"Station {st.id}: {st.name}  (times in {st.tz}; levels in metres {on}"
                   + (f"; {st.datum_note}" if st.datum_note else "") + ")", file=out)
+            # the live page's headline: STALE in words, the level and the next high water
+            # against the operator's marks, open alerts, the gauge
+            snap = gather(store, st, cfg.live or LiveSettings(), now=now, until=int(now + future_tolerance(st)))
+            for line in headline(snap):
+                print(textwrap.fill(line.text, 100, initial_indent=f"  {'!' if line.alarm else '-'} ",
+                                    subsequent_indent="    "), file=out)
             rows: list[tuple[str, str]] = []
             # the last sample that counts: one that failed quality control, or stamped ahead
             # of the clock, is no sign of life
