@@ -18,7 +18,8 @@ from pathlib import Path
 
 import numpy as np
 
-from alerts.live import LiveSettings, headline
+from alerts.live.headline import headline
+from alerts.live.settings import LiveSettings
 from monitor.cli_common import CAUTION, count, finite_float, input_file, store_errors
 from monitor.config import datum_words
 from monitor.errors import UserError

@@ -21,8 +21,9 @@ from typing import Any, Callable, Iterable
 import numpy as np
 import pandas as pd
 
-from alerts.live import LiveSettings, Snapshot, build_snapshot, write_overview, write_station
-from alerts.live.render import CAUTION
+from alerts.live.render import CAUTION, write_overview, write_station
+from alerts.live.settings import LiveSettings
+from alerts.live.snapshot import Snapshot, build_snapshot
 from monitor.config import Config, StationConfig
 from monitor.store import to_unix
 

@@ -3,7 +3,8 @@ from __future__ import annotations
 
 import numpy as np
 
-from alerts.live import Mark, build_snapshot
+from alerts.live.settings import Mark
+from alerts.live.snapshot import build_snapshot
 
 hour = 3600.0
 minute = 60.0

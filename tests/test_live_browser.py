@@ -17,7 +17,7 @@ from pathlib import Path
 
 import pytest
 
-from alerts.live import write_overview, write_station
+from alerts.live.render import write_overview, write_station
 from live_samples import NOW, sample_snapshot
 
 pytestmark = pytest.mark.browser

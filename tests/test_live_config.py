@@ -11,8 +11,7 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from alerts.live import LiveSettings, live_settings_from, marks_from_config
-from alerts.live.settings import LIVE_KEYS, MARK_KEYS
+from alerts.live.settings import LIVE_KEYS, MARK_KEYS, LiveSettings, live_settings_from, marks_from_config
 from monitor.config import validate_config
 
 ROOT = Path(__file__).resolve().parent.parent

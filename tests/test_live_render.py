@@ -11,9 +11,10 @@ import re
 import numpy as np
 import pytest
 
-from alerts.live import (age_words, build_snapshot, headline, local_time, mark_at_high_water, mark_now,
-                         rate_per_hour, render_overview, render_station, trend_words, write_overview,
-                         write_station)
+from alerts.live.headline import headline, local_time
+from alerts.live.render import render_overview, render_station, write_overview, write_station
+from alerts.live.snapshot import (age_words, build_snapshot, mark_at_high_water, mark_now, rate_per_hour,
+                                  trend_words)
 from alerts.live.chart import NARROW, WIDE, svg_chart
 from alerts.live.render import caution_line
 from alerts.report import CAUTION

@@ -1,15 +1,8 @@
-"""Live station pages: a snapshot of each station built from values passed in, its headline in
-words, an HTML page with an inline SVG chart and a JSON file rewritten atomically after each
-processing pass, an overview of all stations, and a small read-only HTTP server
-(:mod:`alerts.live.server`). Nothing here reads the store: :mod:`monitor` gathers the values."""
-from alerts.live.headline import Line, gauge_verdict, headline, local_time
-from alerts.live.render import (atomic_write, caution_line, render_overview, render_station, write_overview,
-                                write_station)
-from alerts.live.settings import LiveSettings, Mark, live_settings_from, marks_from_config
-from alerts.live.snapshot import (MarkState, Snapshot, age_words, build_snapshot, mark_at_high_water, mark_now,
-                                  rate_per_hour, trend_words)
-
-__all__ = ["Line", "gauge_verdict", "headline", "local_time", "atomic_write", "caution_line", "render_overview",
-           "render_station", "write_overview", "write_station", "LiveSettings", "Mark", "live_settings_from",
-           "marks_from_config", "MarkState", "Snapshot", "age_words", "build_snapshot", "mark_at_high_water",
-           "mark_now", "rate_per_hour", "trend_words"]
+"""Live station pages: a snapshot of each station built from values passed in
+(:mod:`alerts.live.snapshot`), its headline in words (:mod:`alerts.live.headline`), an HTML page
+with an inline SVG chart (:mod:`alerts.live.chart`) and a JSON file rewritten atomically after
+each processing pass, an overview of all stations (:mod:`alerts.live.render`), their
+configuration (:mod:`alerts.live.settings`) and a small read-only HTTP server
+(:mod:`alerts.live.server`). Nothing here reads the store: :mod:`monitor.live_pages` gathers the
+values. The package imports none of its modules, so the configuration's validators load
+without the templates."""
