@@ -32,7 +32,8 @@ def tree(tmp_path):
     (reports / "index.html").write_text("<p>reports</p>")
     (reports / "skerrin" / "2025-10-22.html").write_text("<p>day</p>")
     (tmp_path / "secret.toml").write_text("password = 'x'")
-    os.symlink(tmp_path / "secret.toml", live / "escape.html")
+    (tmp_path / "secret.html").write_text("<p>password</p>")  # a page type, outside the folder
+    os.symlink(tmp_path / "secret.html", live / "escape.html")
     os.symlink(tmp_path, live / "up")
     os.symlink(live / "skerrin.html", live / "alias.html")  # a link inside the folder is fine
     return tmp_path
@@ -74,7 +75,8 @@ def test_serves_the_pages(server, target, body):
 @pytest.mark.parametrize("target", [
     "/../secret.toml", "/reports/../../secret.toml", "/%2e%2e/secret.toml", "/%2E%2E%2Fsecret.toml",
     "/..%2fsecret.toml", "/..%5csecret.toml", "/..\\secret.toml", "/%252e%252e/secret.toml",
-    "//etc/passwd", "/escape.html", "/up/secret.toml", "/.skerrin.html.tmp", "/notes.sh",
+    "//etc/passwd", "/escape.html", "/up/secret.toml", "/up/secret.html", "/../secret.html",
+    "/reports/../secret.html", "/%2e%2e/secret.html", "/.skerrin.html.tmp", "/notes.sh",
     "/empty/", "/reports/skerrin/", "/skerrin.html%00.json", "http://example.com/../secret.toml",
     "/./skerrin.html",
 ])
@@ -99,7 +101,7 @@ def test_resolve_never_leaves_its_folders(tree):
     # every file under the test tree, asked for by every path that leads to it
     mounts = {"/": tree / "live", "/reports/": tree / "reports"}
     inside = {(tree / "live").resolve(), (tree / "reports").resolve()}
-    for target in ("/../secret.toml", "/up/secret.toml", "/escape.html", "/reports/../secret.toml", "/skerrin.html"):
+    for target in ("/../secret.html", "/up/secret.html", "/escape.html", "/reports/../secret.html", "/skerrin.html"):
         found = resolve_request(target, mounts)
         assert found is None or any(found.is_relative_to(root) for root in inside)
 
