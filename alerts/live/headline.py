@@ -81,6 +81,10 @@ def headline(snap: Snapshot, compact: bool = False) -> list[Line]:
         if snap.last_sample_t is None:
             lines.append(Line("stale", "STALE: no usable sample has arrived from this gauge. "
                                        "Nothing below is a measurement of the water now.", True))
+        elif compact:
+            lines.append(Line("stale", f"STALE: the last usable sample is {age_words(snap.age)} old "
+                                       f"({local_time(snap.last_sample_t, tz, snap.now)}; limit "
+                                       f"{age_words(snap.stale_after)}). Everything below is that old.", True))
         else:
             lines.append(Line("stale", f"STALE: the last usable sample is {age_words(snap.age)} old "
                                        f"(from {local_time(snap.last_sample_t, tz, snap.now)}; the limit is "
@@ -99,8 +103,8 @@ def headline(snap: Snapshot, compact: bool = False) -> list[Line]:
     if rs is not None:
         value = rs["smoothed"] if rs.get("smoothed") is not None else rs["value"]
         side = "above" if value >= 0 else "below"
-        lines.append(Line("residual", f"Residual {value:+.2f} m (the sea {abs(value):.2f} m {side} the predicted "
-                                      f"tide), {trend_words(rs['rate'])}.", False))
+        words = "" if compact else f" (the sea {abs(value):.2f} m {side} the predicted tide)"
+        lines.append(Line("residual", f"Residual {value:+.2f} m{words}, {trend_words(rs['rate'])}.", False))
     fc = snap.forecast
     if fc is None:
         lines.append(Line("forecast", "Next high water: no forecast yet.", False))
