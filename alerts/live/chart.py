@@ -164,6 +164,7 @@ def svg_chart(snap: Snapshot, layout: tuple[int, int, int] = NARROW, css_class: 
     parts.append(f'<line x1="{nx:.1f}" x2="{nx:.1f}" y1="{top:.1f}" y2="{top + ph:.1f}" stroke="#555" '
                  f'stroke-width="1"/>')
     word = "now" if end == snap.now else "last sample"
-    parts.append(f'<text x="{nx - 3:.1f}" y="{top + font:.1f}" text-anchor="end" fill="#333">{word}</text>')
+    # at the foot of the line, clear of the marks' labels at its top right
+    parts.append(f'<text x="{nx - 3:.1f}" y="{top + ph - 4:.1f}" text-anchor="end" fill="#333">{word}</text>')
     parts.append("</svg>")
     return "".join(parts)
