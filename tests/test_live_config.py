@@ -12,7 +12,7 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 
 from alerts.live.settings import LIVE_KEYS, MARK_KEYS, LiveSettings, live_settings_from, marks_from_config
-from monitor.config import validate_config
+from monitor.service.config import validate_config
 
 ROOT = Path(__file__).resolve().parent.parent
 minute = 60.0

@@ -8,9 +8,9 @@ from pathlib import Path
 import pytest
 
 from monitor.cli import main
-from monitor.config import load_config
-from monitor.daemon import Daemon, ingest_lines
-from monitor.store import Store
+from monitor.service.config import load_config
+from monitor.service.daemon import Daemon, ingest_lines
+from monitor.store.database import Store
 
 minute = 60
 hour = 3600

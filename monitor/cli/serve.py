@@ -14,8 +14,8 @@ import threading
 from pathlib import Path
 
 from alerts.live.server import DEFAULT_PORT, make_server
-from monitor.cli_common import CAUTION
-from monitor.config import load_config
+from monitor.cli.common import CAUTION
+from monitor.service.config import load_config
 from monitor.errors import UserError
 
 

@@ -24,8 +24,8 @@ import pandas as pd
 from alerts.live.render import CAUTION, write_overview, write_station
 from alerts.live.settings import LiveSettings
 from alerts.live.snapshot import Snapshot, build_snapshot
-from monitor.config import Config, StationConfig
-from monitor.store import to_unix
+from monitor.service.config import Config, StationConfig
+from monitor.store.database import to_unix
 
 log = logging.getLogger(__name__)
 
