@@ -5,9 +5,8 @@ import numpy as np
 
 from alerts.live.settings import Mark
 from alerts.live.snapshot import build_snapshot
+from units import hour, minute
 
-hour = 3600.0
-minute = 60.0
 NOW = 1_761_172_200.0          # 2025-10-22 22:30:00Z (23:30 IST in Europe/Dublin), invented storm night
 OFFSET = 1.0                   # chart datum 1.000 m above the gauge zero
 M2_PERIOD = 12.4206012 * hour  # M2 period (Schureman 1958: 28.9841042 deg/h)

@@ -13,9 +13,9 @@ from hypothesis import strategies as st
 
 from alerts.live.settings import LIVE_KEYS, MARK_KEYS, LiveSettings, live_settings_from, marks_from_config
 from monitor.service.config import validate_config
+from units import minute
 
 ROOT = Path(__file__).resolve().parent.parent
-minute = 60.0
 
 
 def _raw(**extra):

@@ -11,9 +11,8 @@ from monitor.cli import main
 from monitor.service.config import load_config
 from monitor.service.daemon import Daemon, ingest_lines
 from monitor.store.database import Store
+from units import minute
 
-minute = 60
-hour = 3600
 T0 = 1_760_000_040  # a whole minute (2025-10-09), invented record
 
 

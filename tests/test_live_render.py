@@ -17,12 +17,9 @@ from alerts.live.snapshot import (age_words, build_snapshot, mark_at_high_water,
                                   trend_words)
 from alerts.live.chart import NARROW, WIDE, svg_chart
 from alerts.live.render import caution_line
-from alerts.reports.model import CAUTION
+from predictor.caution import REPORT as CAUTION
 from live_samples import M2_PERIOD, NOW, sample_snapshot
-
-mm = 1e-3
-minute = 60.0
-hour = 3600.0
+from units import hour, minute, mm
 
 
 # --------------------------------------------------------------------------- numbers

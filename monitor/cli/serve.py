@@ -15,8 +15,8 @@ from pathlib import Path
 
 from alerts.live.server import DEFAULT_PORT, make_server
 from monitor.cli.common import CAUTION
+from monitor.cli.errors import UserError
 from monitor.service.config import load_config
-from monitor.errors import UserError
 
 
 def register(subparsers) -> None:
