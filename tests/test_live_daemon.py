@@ -119,3 +119,13 @@ def test_status_of_a_fresh_gauge_has_no_stale_line(tmp_path, capsys):
     assert main(["status", str(cfg)]) == 0
     head = " ".join(capsys.readouterr().out.split("last observation")[0].split())
     assert "STALE" not in head and "- Level 3." in head and "rising 0.06 m/h" in head
+
+
+def test_refit_with_too_little_history_is_a_warning_not_a_traceback(tmp_path, caplog):
+    # fit_min_days = 365 and half an hour of record: the hourly refit says so and goes on
+    d = _run_once(_write_config(tmp_path), _lines(T0, 30))
+    try:
+        d.refit(d.stations["testport"])
+        assert any("days of usable history" in r.getMessage() for r in caplog.records if r.levelname == "WARNING")
+    finally:
+        d.store.close()

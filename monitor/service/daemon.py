@@ -836,7 +836,7 @@ class Daemon:
         it hindcasts the days they have not seen no worse (:func:`refit_station`)."""
         try:
             refit_station(self.store, rt.cfg, now=now, use=True)
-        except MonitorError as exc:
+        except (MonitorError, FitError) as exc:  # FitError: too little history yet, say so and go on
             log.warning("%s", exc)
             return
         rt.model, rt.model_source = load_model(self.store, rt.cfg)
