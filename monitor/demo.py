@@ -568,6 +568,8 @@ def print_summary(s: Summary, out: Path, tz: str) -> None:
     else:
         p(f"Caution present in all {len(s.mail)} emails and {len(s.reports)} report pages.")
     p("Open:")
+    p(f"  {out / 'live' / 'dunmerrow.html'}  (the live page as it stood at the end of the storm; "
+      f"all stations: live/index.html)")
     p(f"  {out / 'reports' / 'index.html'}")
     p(f"  {out / 'mail'}/  (each .eml opens in a mail client)")
     p(f"  {out / 'qc.txt'}  (the technician's quality-control summary)")

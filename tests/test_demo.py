@@ -398,3 +398,24 @@ def test_demo_finds_the_backup_clock_offset(demo):
     assert span["lag_min"] == pytest.approx(f["minutes_late"], abs=1.0)
     assert abs(span["start"] - _utc(f["start"])) <= pd.Timedelta(3 * hour, "s")
     assert abs(span["end"] - _utc(f["end"])) <= pd.Timedelta(3 * hour, "s")
+
+
+@pytest.mark.slow
+def test_demo_leaves_the_live_page_as_at_the_end_of_the_storm(demo):
+    import json
+
+    from monitor.demo import replay_window
+
+    live = demo["out"] / "live"
+    doc = json.loads((live / "dunmerrow.json").read_text())
+    _, end = replay_window(demo["truth"], short=True)
+    # the replay runs on its own clock: at its end the last sample is fresh, within a minute of the end
+    assert doc["stale"] is False
+    assert end.timestamp() - 2 * minute <= doc["last_sample_t"] <= end.timestamp()
+    # the port's own levels (demo/port.toml), on chart datum
+    assert [(m["name"], round(m["level"], 3), m["side"]) for m in doc["marks"]] == [
+        ("quay top", 4.25, "above"), ("boards out", 4.0, "above"), ("lock sill", -0.9, "below")]
+    assert doc["forecast"] is not None and doc["forecast"]["lower"] < doc["forecast"]["upper"]
+    html = (live / "dunmerrow.html").read_text()
+    assert "Official warnings and the local emergency authorities come first" in html
+    assert 'href="dunmerrow.html"' in (live / "index.html").read_text()

@@ -13,7 +13,7 @@ import logging
 import sys
 from importlib import metadata
 
-from monitor.cli import alerts, qc, report, station, tide
+from monitor.cli import alerts, qc, report, serve, station, tide
 from monitor.cli.errors import UserError
 from monitor.errors import MonitorError
 from predictor.caution import CAUTION
@@ -27,6 +27,7 @@ _GROUPS = (
     qc,        # qc, staff, flag
     alerts,    # alerts (list, outbox, test-mail)
     report,    # report
+    serve,     # serve (live pages and reports over HTTP)
 )
 
 

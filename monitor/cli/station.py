@@ -13,11 +13,14 @@ import datetime as dt
 import math
 import re
 import sys
+import textwrap
 import time
 from pathlib import Path
 
 import numpy as np
 
+from alerts.live.headline import headline
+from alerts.live.settings import LiveSettings
 from monitor.cli.common import CAUTION, count, finite_float, input_file, store_errors
 from monitor.cli.errors import UserError
 from monitor.cli.timeparse import local_text, parse_range
@@ -35,6 +38,7 @@ from monitor.service.daemon import preflight
 from monitor.service.daemon import refit_station
 from monitor.service.daemon import row_lines
 from monitor.service.daemon import run_daemon
+from monitor.service.live_pages import gather
 from monitor.store.database import EMPTY_BATCH
 from monitor.store.database import Store
 
@@ -192,6 +196,12 @@ def cmd_status(args: argparse.Namespace) -> int:
             shift, on = st.display_offset, f"above {st.display_label}"
             print(f"Station {st.id}: {st.name}  (times in {st.tz}; levels in metres {on}"
                   + (f"; {st.datum_note}" if st.datum_note else "") + ")", file=out)
+            # the live page's headline: STALE in words, the level and the next high water
+            # against the operator's marks, open alerts, the gauge
+            snap = gather(store, st, cfg.live or LiveSettings(), now=now, until=int(now + future_tolerance(st)))
+            for line in headline(snap):
+                print(textwrap.fill(line.text, 100, initial_indent=f"  {'!' if line.alarm else '-'} ",
+                                    subsequent_indent="    "), file=out)
             rows: list[tuple[str, str]] = []
             # the last sample that counts: one that failed quality control, or stamped ahead
             # of the clock, is no sign of life

@@ -26,6 +26,7 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any, Callable
 
+from alerts.live.settings import live_settings_from, marks_from_config
 from alerts.mail.outbox import mail_settings_from
 from alerts.mail.outbox import password_file_problem
 from alerts.reports.model import report_settings_from
@@ -100,6 +101,7 @@ class StationConfig:
     rules_raw: list = field(default_factory=list)
     note: str = ""                    # free text shown (as text, never HTML) in reports and emails
     display_datum: str = "station"    # the one datum every level is shown on (a key of datums)
+    marks: tuple = ()                 # the operator's levels (alerts.live.Mark, on the station datum)
 
     @property
     def display_offset(self) -> float:
@@ -188,6 +190,7 @@ class Config:
     reports: Any = None
     raw: dict = field(default_factory=dict)
     capture_dir: Path | None = None   # store.captures; None: "captures" beside the store
+    live: Any = None                  # alerts.live.LiveSettings ([live]), or None: no live pages
 
     @property
     def captures(self) -> Path:
@@ -319,7 +322,7 @@ def _validate_with(fn: Any, *args: Any) -> tuple[Any, list[str]]:
 
 # --------------------------------------------------------------------------- sections
 
-_TOP_KEYS = ("store", "daemon", "logging", "residual", "stations", "mail", "reports")
+_TOP_KEYS = ("store", "daemon", "logging", "residual", "stations", "mail", "reports", "live")
 
 
 def validate_config(raw: Any, base_dir: Path | str = ".", path: Path | None = None) -> tuple[Config | None, list[str]]:
@@ -395,7 +398,15 @@ def validate_config(raw: Any, base_dir: Path | str = ".", path: Path | None = No
             reports, errs = _validate_with(report_settings_from, rt, "reports")
             errors.extend(errs)
 
+    live = None
+    if "live" in raw:
+        lt = c.table(raw.get("live"), "live")
+        if lt is not None:
+            live, errs = _validate_with(live_settings_from, lt, "live")
+            errors.extend(errs)
+
     mail = _resolve_fields(mail, base_dir, ("password_file", "save_dir", "ca_file"))
+    live = _resolve_fields(live, base_dir, ("folder",))
     if mail is not None and mail.password_file:
         problem = password_file_problem(mail.password_file)
         if problem:
@@ -405,7 +416,7 @@ def validate_config(raw: Any, base_dir: Path | str = ".", path: Path | None = No
         return None, errors
     return Config(path=path, base_dir=base_dir, store_path=store_path, daemon=daemon, logging=logs,
                   residual=resid, stations=tuple(stations), mail=mail, reports=reports, raw=raw,
-                  capture_dir=capture_dir), []
+                  capture_dir=capture_dir, live=live), []
 
 
 def unsendable(cfg: "Config") -> list[str]:
@@ -495,7 +506,7 @@ def _residual(c: _Checker, raw: Any) -> ResidualSettings:
 
 
 _STATION_KEYS = ("id", "name", "note", "latitude", "longitude", "tz", "datums", "display_datum", "constants",
-                 "fit_min_days", "fit_span_days", "sensors", "qc", "rules")
+                 "fit_min_days", "fit_span_days", "sensors", "qc", "rules", "marks")
 
 
 def _station(c: _Checker, raw: Any, kp: str, base_dir: Path) -> StationConfig | None:
@@ -575,11 +586,15 @@ def _station(c: _Checker, raw: Any, kp: str, base_dir: Path) -> StationConfig | 
         errors.extend(errs)
         rules = r if r is not None else ()
 
+    marks, errs = _validate_with(marks_from_config, t.get("marks"), f"{kp}.marks", datums, display)
+    errors.extend(errs)
+
     if len(errors) > n0:
         return None
     return StationConfig(id=sid, name=name or sid, note=note or "", latitude=lat, longitude=lon, tz=tz, datums=datums,
                          constants=const_path, fit_min_days=fit_min, fit_span_days=fit_span, sensors=sensors,
-                         qc=qc, rules=rules, qc_raw=qt or {}, rules_raw=rules_raw, display_datum=display)
+                         qc=qc, rules=rules, qc_raw=qt or {}, rules_raw=rules_raw, display_datum=display,
+                         marks=marks or ())
 
 
 _SENSOR_KEYS = ("units", "offset", "label", "line", "feed")

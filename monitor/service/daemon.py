@@ -56,6 +56,7 @@ from monitor.quality import diagnostics
 from monitor.quality.checks import QcSettings
 from monitor.service.config import Config, SensorConfig, StationConfig, unsendable
 from monitor.service.constants import load_model, model_from_text, model_to_text
+from monitor.service.live_pages import LivePages
 from monitor.service.reporting import write_due_reports
 from monitor.store.database import BatchResult, EMPTY_BATCH, Store, check_folder, check_store_path
 from monitor.surge import forecast as surge_forecast
@@ -484,6 +485,7 @@ class Daemon:
         # storm reads as it would have live. Delivery does not: the outbox keeps the wall clock.
         self.replay_clock = bool(self.stations) and all(rt.replay_clock for rt in self.stations.values())
         self.data_now: float | None = None
+        self.live = LivePages(cfg) if cfg.live is not None else None
 
     def _station_runtime(self, st: StationConfig) -> StationRuntime:
         model, source = load_model(self.store, st)
@@ -553,17 +555,33 @@ class Daemon:
 
     # ------------------------------------------------------------------ processing
     def process(self) -> int:
-        """Process new data of every station. Returns the number of stations with new data."""
+        """Process new data of every station, then rewrite the live pages that are due.
+        Returns the number of stations with new data."""
+        changed: set[str] = set()
         self.delivered.clear()
-        n = 0
         for rt in self.stations.values():
             if self.stop.is_set():
                 break
             try:
-                n += bool(self.process_station(rt))
+                if self.process_station(rt):
+                    changed.add(rt.cfg.id)
             except Exception:
                 log.exception("station %s: processing failed; will retry", rt.cfg.id)
-        return n
+        self.write_live(changed)
+        return len(changed)
+
+    def write_live(self, changed: set[str] | None = None) -> None:
+        """Rewrite the live page of each station with new data (``changed``), and of each silent
+        one once ``live.refresh`` has passed, so its page says STALE on time."""
+        if self.live is None:
+            return
+
+        def clock(st: StationConfig) -> tuple[float, int]:
+            rt = self.stations[st.id]
+            now = self.data_now if (rt.replay_clock and self.data_now is not None) else time.time()
+            return now, int(now + future_tolerance(st))
+
+        self.live.update(self.store, [(rt.cfg, rt.model) for rt in self.stations.values()], changed or set(), clock)
 
     def process_station(self, rt: StationRuntime, now: float | None = None) -> int:
         """Process a station's data newer than its mark; returns samples processed.
@@ -854,7 +872,7 @@ class Daemon:
         it hindcasts the days they have not seen no worse (:func:`refit_station`)."""
         try:
             refit_station(self.store, rt.cfg, now=now, use=True)
-        except MonitorError as exc:
+        except (MonitorError, FitError) as exc:  # FitError: too little history yet, say so and go on
             log.warning("%s", exc)
             return
         rt.model, rt.model_source = load_model(self.store, rt.cfg)
@@ -946,16 +964,19 @@ class Daemon:
     def process_delivered(self) -> int:
         """Process the stations whose feeds delivered lines since their last pass. Returns
         the number of stations with new data."""
-        n = 0
+        changed: set[str] = set()
         while self.delivered and not self.stop.is_set():
             rt = self.stations.get(self.delivered.pop())
             if rt is None:
                 continue
             try:
-                n += bool(self.process_station(rt))
+                if self.process_station(rt):
+                    changed.add(rt.cfg.id)
             except Exception:
                 log.exception("station %s: processing failed; will retry", rt.cfg.id)
-        return n
+        if changed:
+            self.write_live(changed)
+        return len(changed)
 
     def job_process(self) -> None:
         n = self.process()
