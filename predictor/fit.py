@@ -22,7 +22,7 @@ from __future__ import annotations
 
 import math
 import warnings
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 
 import numpy as np
 from scipy import linalg
@@ -472,10 +472,11 @@ def _solve(A, rhs, max_condition=MAX_CONDITION):
             return x / d, cond
         except linalg.LinAlgError:
             pass
+    # stacklevel 4: the warning names harmonic_fit's line (via _solve_record, _least_squares_or_robust)
     warnings.warn(f"normal equations ill-conditioned (condition number {cond:.3g}); using a "
                   "minimum-norm solution - gaps may leave some constituents undetermined, "
                   "consider fewer constituents or a larger Rayleigh factor",
-                  FitConditioningWarning, stacklevel=3)
+                  FitConditioningWarning, stacklevel=4)
     # Directions weaker than 1/max_condition are not determined by the data: drop them.
     x, *_ = np.linalg.lstsq(As, rhs / d, rcond=1.0 / max_condition)
     return x / d, cond
@@ -620,80 +621,18 @@ def harmonic_fit(times, levels, constituents="auto", rayleigh: float = 1.0, tren
     Foreman (1977); Godin (1972); Munk & Cartwright (1966); Leffler & Jay (2009).
     """
     t, y, w = _clean_record(times, levels, weights)
-    duration_h = (t[-1] - t[0]) / SECONDS_PER_HOUR
-    steps = np.diff(t)
-    steps = steps[steps > 0]
-    step_h = float(np.median(steps)) / SECONDS_PER_HOUR if steps.size else None
-    auto = isinstance(constituents, str)
-    names, dropped = _chosen_names(constituents, duration_h, step_h, rayleigh, min_constituents)
-    if robust not in (True, False, "auto"):
-        raise FitInputError(f"robust must be True, False or 'auto', got {robust!r}")
-    epoch = 0.5 * (t[0] + t[-1]) if trend_epoch is None else float(to_unix_seconds([trend_epoch])[0]) \
-        if not isinstance(trend_epoch, (int, float)) else float(trend_epoch)
-    inferred, dropped = _resolve_inference(infer, auto, names, dropped, duration_h, rayleigh, step_h)
-    chunk = int(chunk_size) if chunk_size else t.size
-    if chunk < 1:
-        raise FitInputError("chunk_size must be a positive number of samples")
-    setup = dict(t=t, y=y, w=w, nodal=nodal, trend=trend, epoch=epoch, chunk=chunk,
+    plan = _plan_fit(t, constituents, rayleigh, min_constituents, robust, trend_epoch, infer, chunk_size)
+    setup = dict(t=t, y=y, w=w, nodal=nodal, trend=trend, epoch=plan.epoch, chunk=plan.chunk,
                  iterations=robust_iterations, tuning=robust_tuning)
-
     # 1. ordinary least squares, then robust where asked or where the residual is heavy-tailed
-    sol = _solve_record(names, inferred, robust=robust is True, **setup)
-    use_robust, robust_reason = bool(robust), "asked for" if robust is True else "not asked for"
-    if robust == "auto":
-        use_robust, robust_reason = _heavy_tailed(sol.r)
-        if use_robust:
-            sol = _solve_record(names, inferred, robust=True, start=(sol.A, sol.rhs), design=sol.design,
-                                **setup)
+    sol, use_robust, robust_reason = _least_squares_or_robust(plan, robust, setup)
     # 2. long-period constituents the record cannot tell from its weather are left out
-    if long_period_snr is None:
-        long_period_snr = LONG_PERIOD_SNR
-    if auto and long_period_snr:
-        weak = _weak_long_period(sol, names, inferred, step_h, long_period_snr)
-        if weak:
-            dropped = dropped + [{"name": n, "reason": f"long-period, signal-to-noise ratio {snr:.2g} below "
-                                  f"{long_period_snr:g}: at this period the record's weather (surges, gaps) "
-                                  "cannot be told from tide; left out of the prediction"}
-                                 for n, snr in weak.items()]
-            # shrunk to zero: the others keep their joint estimate, the residual takes back what
-            # the weak ones had fitted (a pass over their columns only)
-            sol, names = _without(sol, names, list(weak), setup), [n for n in names if n not in weak]
-
-    cons = _constituent_table(sol, names, inferred, step_h, confidence)
-    r = sol.r
-    var_y = float(np.var(y))
-    meta = {
-        "method": "robust least squares (IRLS, Cauchy weights)" if use_robust else "least squares",
-        "robust_reason": robust_reason,
-        "record_start": iso_utc(t[0]),
-        "record_end": iso_utc(t[-1]),
-        "n_samples": int(t.size),
-        "duration_days": float(duration_h / 24.0),
-        "sample_interval_s": float(step_h * SECONDS_PER_HOUR) if step_h else 0.0,
-        "rayleigh": float(rayleigh),
-        "constituent_selection": "auto" if auto else "given",
-        "nodal": "daily f and u, interpolated" if nodal else "none",
-        "rms": float(np.sqrt(np.mean(r**2))),
-        "variance_explained": float(1.0 - np.var(r) / var_y) if var_y > 0 else 0.0,
-        "condition_number": float(sol.cond),
-        "dropped": dropped,
-    }
-    if inferred:
-        meta["inferred"] = [{"name": d["name"], "from": d["from"], "ratio": float(d["ratio"]),
-                             "phase_difference": float(d["dphase"]), "source": d["source"]}
-                            for d in inferred]
-    if use_robust:
-        meta["robust_iterations"] = int(sol.iterations)
-        meta["robust_tuning"] = float(robust_tuning)
-    if confidence is not None:
-        meta["confidence"] = float(confidence)
-    if trend:
-        meta["trend_epoch"] = iso_utc(epoch)
-    if metadata:
-        meta.update(metadata)
-    beta = sol.beta
-    kwargs = {"trend": float(beta[1]), "trend_epoch": float(epoch)} if trend else {}
-    return TideModel(mean=float(beta[0]), constituents=cons, metadata=meta, **kwargs)
+    sol, plan = _leave_out_weak_long_period(sol, plan, long_period_snr, setup)
+    # 3. the constants (with their intervals) and what was done
+    cons = _constituent_table(sol, plan.names, plan.inferred, plan.step_h, confidence)
+    meta = _fit_metadata(sol, plan, setup, rayleigh=rayleigh, use_robust=use_robust,
+                         robust_reason=robust_reason, confidence=confidence, extra=metadata)
+    return _assemble_model(sol, cons, meta, trend, plan.epoch)
 
 
 # --------------------------------------------------------------------------- steps of the fit
@@ -744,6 +683,56 @@ def _chosen_names(constituents, duration_h, step_h, rayleigh, min_constituents):
     if unknown:
         raise FitInputError("unknown constituent(s): " + ", ".join(unknown))
     return list(dict.fromkeys(names)), []
+
+
+@dataclass
+class _Plan:
+    """What a fit solves for, decided from the record's times and the options."""
+
+    names: list[str]        # fitted constituents
+    dropped: list[dict]     # left out, with the reason
+    inferred: list[dict]    # inferred: name, from, ratio [1], dphase [deg], source
+    auto: bool              # constituents chosen by the Rayleigh criterion
+    duration_h: float       # record length [h]
+    step_h: float | None    # median sampling interval [h]; None without two distinct times
+    epoch: float            # trend epoch [s, Unix UTC]
+    chunk: int              # rows of the design built at a time [samples]
+
+
+def _record_sampling(t: np.ndarray) -> tuple[float, float | None]:
+    """Record length [h] and median sampling interval [h] (None without two distinct times)."""
+    duration_h = (t[-1] - t[0]) / SECONDS_PER_HOUR
+    steps = np.diff(t)
+    steps = steps[steps > 0]
+    step_h = float(np.median(steps)) / SECONDS_PER_HOUR if steps.size else None
+    return duration_h, step_h
+
+
+def _trend_epoch_seconds(trend_epoch, t: np.ndarray) -> float:
+    """The trend's reference time [s, Unix UTC]: as given (a time or Unix seconds), else the
+    record midpoint."""
+    if trend_epoch is None:
+        return 0.5 * (t[0] + t[-1])
+    if not isinstance(trend_epoch, (int, float)):
+        return float(to_unix_seconds([trend_epoch])[0])
+    return float(trend_epoch)
+
+
+def _plan_fit(t, constituents, rayleigh, min_constituents, robust, trend_epoch, infer,
+              chunk_size) -> _Plan:
+    """The constituents to fit (Rayleigh and Nyquist selection, or as given), those to infer,
+    the trend epoch and the chunk size; options are checked in this order."""
+    duration_h, step_h = _record_sampling(t)
+    auto = isinstance(constituents, str)
+    names, dropped = _chosen_names(constituents, duration_h, step_h, rayleigh, min_constituents)
+    if robust not in (True, False, "auto"):
+        raise FitInputError(f"robust must be True, False or 'auto', got {robust!r}")
+    epoch = _trend_epoch_seconds(trend_epoch, t)
+    inferred, dropped = _resolve_inference(infer, auto, names, dropped, duration_h, rayleigh, step_h)
+    chunk = int(chunk_size) if chunk_size else t.size
+    if chunk < 1:
+        raise FitInputError("chunk_size must be a positive number of samples")
+    return _Plan(names, dropped, inferred, auto, duration_h, step_h, epoch, chunk)
 
 
 @dataclass
@@ -847,6 +836,41 @@ def _heavy_tailed(r: np.ndarray) -> tuple[bool, str]:
     return False, "residual close to Gaussian: " + words
 
 
+def _least_squares_or_robust(plan: _Plan, robust, setup: dict) -> tuple[_Solution, bool, str]:
+    """Ordinary least squares, then IRLS with Cauchy weights when ``robust`` is True, or when it
+    is "auto" and the ordinary residual is heavy-tailed (the robust pass starts from the ordinary
+    normal equations): (solution, whether robust, why in words)."""
+    sol = _solve_record(plan.names, plan.inferred, robust=robust is True, **setup)
+    use_robust, reason = bool(robust), "asked for" if robust is True else "not asked for"
+    if robust == "auto":
+        use_robust, reason = _heavy_tailed(sol.r)
+        if use_robust:
+            sol = _solve_record(plan.names, plan.inferred, robust=True, start=(sol.A, sol.rhs),
+                                design=sol.design, **setup)
+    return sol, use_robust, reason
+
+
+def _leave_out_weak_long_period(sol: _Solution, plan: _Plan, threshold,
+                                setup: dict) -> tuple[_Solution, _Plan]:
+    """With an automatic selection, long-period constituents whose SNR is below ``threshold``
+    (None: :data:`LONG_PERIOD_SNR`; 0 keeps them) shrunk to zero and listed as dropped with
+    their SNR: the others keep their joint estimate, the residual takes back what the weak ones
+    had fitted (a pass over their columns only)."""
+    if threshold is None:
+        threshold = LONG_PERIOD_SNR
+    if not (plan.auto and threshold):
+        return sol, plan
+    weak = _weak_long_period(sol, plan.names, plan.inferred, plan.step_h, threshold)
+    if not weak:
+        return sol, plan
+    dropped = plan.dropped + [{"name": n, "reason": f"long-period, signal-to-noise ratio {snr:.2g} below "
+                               f"{threshold:g}: at this period the record's weather (surges, gaps) "
+                               "cannot be told from tide; left out of the prediction"}
+                              for n, snr in weak.items()]
+    sol = _without(sol, plan.names, list(weak), setup)
+    return sol, replace(plan, names=[n for n in plan.names if n not in weak], dropped=dropped)
+
+
 def _intervals(sol: _Solution, names, step_h, confidence):
     """Amplitude and phase half-widths and SNR of the fitted constituents (coloured noise)."""
     catalogue = _catalogue()
@@ -896,3 +920,48 @@ def _constituent_table(sol: _Solution, names, inferred, step_h, confidence) -> l
                      snr=ref["snr"])
         cons.append(c)
     return cons
+
+
+def _fit_metadata(sol: _Solution, plan: _Plan, setup: dict, *, rayleigh, use_robust, robust_reason,
+                  confidence, extra) -> dict:
+    """The model's metadata: the record (span, samples, interval [s]), the method and why,
+    ``rms`` [m], ``variance_explained`` [1], dropped and inferred constituents, then ``extra``."""
+    t, y, r = sol.t, setup["y"], sol.r
+    var_y = float(np.var(y))
+    meta = {
+        "method": "robust least squares (IRLS, Cauchy weights)" if use_robust else "least squares",
+        "robust_reason": robust_reason,
+        "record_start": iso_utc(t[0]),
+        "record_end": iso_utc(t[-1]),
+        "n_samples": int(t.size),
+        "duration_days": float(plan.duration_h / 24.0),
+        "sample_interval_s": float(plan.step_h * SECONDS_PER_HOUR) if plan.step_h else 0.0,
+        "rayleigh": float(rayleigh),
+        "constituent_selection": "auto" if plan.auto else "given",
+        "nodal": "daily f and u, interpolated" if setup["nodal"] else "none",
+        "rms": float(np.sqrt(np.mean(r**2))),
+        "variance_explained": float(1.0 - np.var(r) / var_y) if var_y > 0 else 0.0,
+        "condition_number": float(sol.cond),
+        "dropped": plan.dropped,
+    }
+    if plan.inferred:
+        meta["inferred"] = [{"name": d["name"], "from": d["from"], "ratio": float(d["ratio"]),
+                             "phase_difference": float(d["dphase"]), "source": d["source"]}
+                            for d in plan.inferred]
+    if use_robust:
+        meta["robust_iterations"] = int(sol.iterations)
+        meta["robust_tuning"] = float(setup["tuning"])
+    if confidence is not None:
+        meta["confidence"] = float(confidence)
+    if setup["trend"]:
+        meta["trend_epoch"] = iso_utc(plan.epoch)
+    if extra:
+        meta.update(extra)
+    return meta
+
+
+def _assemble_model(sol: _Solution, cons: list[dict], meta: dict, trend: bool, epoch: float) -> TideModel:
+    """The fitted model: mean [m], constituents, trend [m/year] about ``epoch`` [s] when fitted."""
+    beta = sol.beta
+    kwargs = {"trend": float(beta[1]), "trend_epoch": float(epoch)} if trend else {}
+    return TideModel(mean=float(beta[0]), constituents=cons, metadata=meta, **kwargs)

@@ -157,7 +157,30 @@ def _to_float(fields: list[str]) -> np.ndarray:
 
 
 def _parse_lines(texts, fmt, received, linenos, max_ahead=None) -> ParsedLines:
+    """:func:`parse_lines` without the collector switched off: the steps in order. The first
+    reason found for a line wins: its value, its time, the time's range, then ``max_ahead``."""
     n = len(texts)
+    linenos, recv = _numbers_and_receive_times(n, received, linenos)
+    stripped, keep, unreadable = _lines_to_read(texts, fmt, linenos)
+    skipped = n - len(keep) - len(unreadable)
+    keep, tfield, vfield, short = _split_columns(texts, stripped, keep, fmt, linenos)
+    if not keep:
+        return ParsedLines(np.empty(0, np.int64), np.empty(0), np.empty(0, object), np.empty(0, np.int64),
+                           unreadable + short, skipped, np.empty(0, np.int64))
+    idx = np.asarray(keep, dtype=np.int64)
+    recv_sel = recv[idx]
+    value, value_reasons = _read_values(vfield, fmt)
+    t, source, has, time_reasons = _read_times(tfield, recv_sel, fmt)
+    ahead_reasons = _ahead_of_clock(t, recv_sel, has, max_ahead)
+    reasons: dict[int, str] = {}
+    for found in (value_reasons, time_reasons, ahead_reasons):
+        for j, r in found.items():
+            reasons.setdefault(j, r)
+    return _sorted_out(texts, linenos, idx, t, value, source, reasons, unreadable + short, skipped)
+
+
+def _numbers_and_receive_times(n: int, received, linenos) -> tuple[np.ndarray, np.ndarray]:
+    """Line numbers (int64; default 1..n) and receive times [s, Unix UTC] (float64), one per line."""
     if linenos is None:
         linenos = range(1, n + 1)
     linenos = np.asarray(list(linenos), dtype=np.int64)
@@ -165,14 +188,13 @@ def _parse_lines(texts, fmt, received, linenos, max_ahead=None) -> ParsedLines:
         recv = np.full(n, float(received))
     else:
         recv = np.asarray(received, dtype=float)
+    return linenos, recv
 
-    rejects: list[Reject] = []
-    tcol, vcol = fmt.time_column - 1, fmt.value_column - 1
-    need = max(tcol, vcol) + 1
-    delim = None if fmt.delimiter == "whitespace" else fmt.delimiter
-    comment = fmt.comment
-    header = fmt.header_lines
 
+def _lines_to_read(texts, fmt: LineFormat, linenos: np.ndarray) -> tuple[list, list[int], list[Reject]]:
+    """(stripped text of each line, or None where not UTF-8; positions of the lines to read;
+    rejects of the lines that are not UTF-8). Blank, comment and header lines are skipped."""
+    comment, header = fmt.comment, fmt.header_lines
     if all(x.__class__ is str for x in texts):
         stripped: list = [x.strip() for x in texts]
     else:
@@ -181,6 +203,7 @@ def _parse_lines(texts, fmt, received, linenos, max_ahead=None) -> ParsedLines:
             s, _ = _clean_text(raw)
             stripped.append(None if s is None else s.strip())
     keep: list[int] = []
+    rejects: list[Reject] = []
     if comment and not header and None not in stripped:
         keep = [i for i, s in enumerate(stripped) if s and not s.startswith(comment)]
     else:
@@ -189,9 +212,19 @@ def _parse_lines(texts, fmt, received, linenos, max_ahead=None) -> ParsedLines:
                 rejects.append(Reject(int(linenos[i]), _clean_text(texts[i])[1], "not valid UTF-8 text"))
             elif s and not (comment and s.startswith(comment)) and not (header and 0 < linenos[i] <= header):
                 keep.append(i)
-    skipped = n - len(keep) - len(rejects)
+    return stripped, keep, rejects
+
+
+def _split_columns(texts, stripped: list, keep: list[int], fmt: LineFormat,
+                   linenos: np.ndarray) -> tuple[list[int], list[str], list[str], list[Reject]]:
+    """(positions of the lines with enough columns, their time fields ('' without a time
+    column), their value fields, rejects of the lines with too few columns)."""
+    tcol, vcol = fmt.time_column - 1, fmt.value_column - 1
+    need = max(tcol, vcol) + 1
+    delim = None if fmt.delimiter == "whitespace" else fmt.delimiter
     parts = [stripped[i].split(delim) for i in keep]
     short = [k for k, p in enumerate(parts) if len(p) < need]
+    rejects: list[Reject] = []
     if short:
         for k in short:
             i = keep[k]
@@ -200,18 +233,16 @@ def _parse_lines(texts, fmt, received, linenos, max_ahead=None) -> ParsedLines:
         bad = set(short)
         keep = [i for k, i in enumerate(keep) if k not in bad]
         parts = [p for k, p in enumerate(parts) if k not in bad]
-    idx = keep
     vfield = [p[vcol].strip() for p in parts]
     tfield = [p[tcol].strip() for p in parts] if tcol >= 0 else [""] * len(parts)
+    return keep, tfield, vfield, rejects
 
-    m = len(idx)
-    if m == 0:
-        return ParsedLines(np.empty(0, np.int64), np.empty(0), np.empty(0, object), np.empty(0, np.int64),
-                           rejects, skipped, np.empty(0, np.int64))
-    idx_a = np.asarray(idx, dtype=np.int64)
-    reasons: list[str | None] = [None] * m
 
-    # values
+def _read_values(vfield: list[str], fmt: LineFormat) -> tuple[np.ndarray, dict[int, str]]:
+    """Values [m or hPa] (reading x ``scale`` + ``offset``) and {index: reason} where a field is
+    empty, the missing-value marker, or not a finite number."""
+    m = len(vfield)
+    reasons: dict[int, str] = {}
     num = _to_float(vfield)
     value = num * fmt.scale + fmt.offset
     bad_v = ~np.isfinite(value)
@@ -229,13 +260,20 @@ def _parse_lines(texts, fmt, received, linenos, max_ahead=None) -> ParsedLines:
             reasons[j] = f"value {_short(v)} is not a number"
         else:
             reasons[j] = f"value {_short(v)} is not a finite number"
+    return value, reasons
 
-    # times
+
+def _read_times(tfield: list[str], recv_sel: np.ndarray,
+                fmt: LineFormat) -> tuple[np.ndarray, np.ndarray, np.ndarray, dict[int, str]]:
+    """Times [s, Unix UTC] (int64; an empty field takes the receive time, rounded), their source
+    ('sensor' or 'receive'), which lines carry a time, and {index: reason} where a time is
+    unreadable or outside the years 1900 to 2200."""
+    m = len(tfield)
+    reasons: dict[int, str] = {}
     t = np.zeros(m, dtype=np.int64)
     source = np.full(m, "sensor", dtype=object)
     tarr = np.asarray(tfield, dtype=object)
     empty = tarr == ""
-    recv_sel = recv[idx_a]
     if empty.any():
         t[empty] = np.floor(recv_sel[empty] + 0.5).astype(np.int64)
         source[empty] = "receive"
@@ -245,26 +283,39 @@ def _parse_lines(texts, fmt, received, linenos, max_ahead=None) -> ParsedLines:
         t[has] = ts
         pos = np.flatnonzero(has)
         for k, r in treasons.items():
-            j = pos[k]
-            if reasons[j] is None:
-                reasons[j] = r
+            reasons.setdefault(pos[k], r)
     out_of_range = (t < _T_MIN) | (t > _T_MAX)
     for j in np.flatnonzero(out_of_range):
-        if reasons[j] is None:
-            reasons[j] = "time is outside the years 1900 to 2200"
-    if max_ahead is not None:
-        ahead = t - recv_sel
-        for j in np.flatnonzero((ahead > max_ahead) & has):
-            if reasons[j] is None:
-                reasons[j] = (f"time {iso_utc(int(t[j]))} is {_span(float(ahead[j]))} ahead of the clock "
-                              f"when received (more than {_span(max_ahead)} is refused: QARTOD timing test)")
+        reasons.setdefault(j, "time is outside the years 1900 to 2200")
+    return t, source, has, reasons
 
-    good = np.fromiter((r is None for r in reasons), dtype=bool, count=m)
+
+def _ahead_of_clock(t: np.ndarray, recv_sel: np.ndarray, has: np.ndarray,
+                    max_ahead: float | None) -> dict[int, str]:
+    """{index: reason} for lines stamped more than ``max_ahead`` [s] after they were received
+    (the QARTOD timing test); none when ``max_ahead`` is None. Only times within the years
+    1900 to 2200 are looked at (the others are refused already)."""
+    if max_ahead is None:
+        return {}
+    ahead = t - recv_sel
+    in_range = (t >= _T_MIN) & (t <= _T_MAX)
+    return {j: (f"time {iso_utc(int(t[j]))} is {_span(float(ahead[j]))} ahead of the clock "
+                f"when received (more than {_span(max_ahead)} is refused: QARTOD timing test)")
+            for j in np.flatnonzero((ahead > max_ahead) & has & in_range)}
+
+
+def _sorted_out(texts, linenos: np.ndarray, idx: np.ndarray, t: np.ndarray, value: np.ndarray,
+                source: np.ndarray, reasons: dict[int, str], rejects: list[Reject],
+                skipped: int) -> ParsedLines:
+    """The good lines as arrays in input order; every reject (those given first) by line number."""
+    good = np.ones(idx.size, dtype=bool)
+    good[list(reasons)] = False
+    rejects = list(rejects)
     for j in np.flatnonzero(~good):
-        i = int(idx_a[j])
+        i = int(idx[j])
         rejects.append(Reject(int(linenos[i]), _clean_text(texts[i])[1].rstrip("\r\n"), reasons[j]))
     rejects.sort(key=lambda r: r.lineno)
-    return ParsedLines(t[good], value[good], source[good], linenos[idx_a[good]], rejects, skipped, idx_a[good])
+    return ParsedLines(t[good], value[good], source[good], linenos[idx[good]], rejects, skipped, idx[good])
 
 
 def _span(seconds: float) -> str:
