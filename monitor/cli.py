@@ -20,6 +20,7 @@ _GROUPS = (
     "monitor.cli_qc",        # qc, staff, flag
     "monitor.cli_alerts",    # alerts (list, outbox, test-mail)
     "monitor.cli_report",    # report
+    "monitor.cli_extremes",  # extremes (return levels, sea-level trend)
 )
 
 
