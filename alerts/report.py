@@ -339,6 +339,7 @@ class DayReport:
     staff: StaffCheck | None = None
     barometer: BarometerPart | None = None
     verification: Sequence["VerificationRow"] = ()
+    rarity: Any = None  # alerts.rarity_report.RaritySection: how rare the day's water was, the trend
 
 
 def empty_samples() -> pd.DataFrame:
@@ -722,9 +723,15 @@ def _context(report: DayReport, chart_src: str, trend_src: str | None,
 
 
 def _extra_charts(report: DayReport, charts: Any) -> dict[str, bytes | None]:
-    """The report's smaller charts: diagnostic trends and the staff (Van de Casteele) diagram."""
+    """The report's smaller charts: diagnostic trends, the staff (Van de Casteele) diagram, and
+    the return-level and sea-level charts (alerts.rarity_report)."""
+    from alerts import rarity_report as rr
+
+    sec = report.rarity
     return {"trend": charts.trend_chart(report.diagnostics),
-            "staff": charts.staff_chart(report.staff) if report.staff is not None else None}
+            "staff": charts.staff_chart(report.staff) if report.staff is not None else None,
+            "return_levels": rr.return_level_chart(sec, report.datum) if sec is not None else None,
+            "sea_level": rr.sea_level_chart(sec, report.datum) if sec is not None else None}
 
 
 def render_day_html(report: DayReport) -> str:
@@ -734,7 +741,8 @@ def render_day_html(report: DayReport) -> str:
     chart_src = _data_uri(charts.day_chart(report))
     extra = {k: _data_uri(v) if v else None for k, v in _extra_charts(report, charts).items()}
     return _environment().get_template("report_day.html").render(
-        **_context(report, chart_src, extra["trend"], extra["staff"]), for_email=False)
+        **_context(report, chart_src, extra["trend"], extra["staff"]), for_email=False,
+        return_levels_src=extra["return_levels"], sea_level_src=extra["sea_level"])
 
 
 @dataclass(frozen=True)
@@ -774,7 +782,9 @@ def render_day_email(report: DayReport) -> ReportEmail:
     sources = {what: f"cid:{stem}-{what}.png{domain}" if png else None for what, png in pngs.items()}
     env = _environment()
     context = _context(report, sources["chart"], sources.get("trend"), sources.get("staff"))
-    html_part = env.get_template("report_day.html").render(**context, for_email=True)
+    html_part = env.get_template("report_day.html").render(
+        **context, for_email=True, return_levels_src=sources.get("return_levels"),
+        sea_level_src=sources.get("sea_level"))
     text = env.get_template("report_summary.txt").render(**context)
     f = context["f"]
     subject = f"Daily tide report: {report.station_name}, {report.day.isoformat()}"
