@@ -10,7 +10,7 @@ are matched by name.
 
 Two clocks: the rules run on ``now`` (the data's own time when a record is replayed),
 and the messages carry the data time of their event; the outbox queues them on the wall
-clock, so its back-off and expiry count real time (see :mod:`alerts.outbox`).
+clock, so its back-off and expiry count real time (see :mod:`alerts.mail.outbox`).
 """
 from __future__ import annotations
 
@@ -23,8 +23,8 @@ from typing import Any, Iterable
 import numpy as np
 import pandas as pd
 
-from alerts.message import compose_alert
-from alerts.outbox import enqueue, ensure_outbox_schema, transaction, unix_seconds
+from alerts.mail.message import compose_alert
+from alerts.mail.outbox import enqueue, ensure_outbox_schema, transaction, unix_seconds
 from alerts.rules import Event, Rule, RuleState, SAMPLE_KINDS, StationView, advance, with_watermark
 
 log = logging.getLogger(__name__)
@@ -92,7 +92,7 @@ class AlertContext:
         """The forecast as ``time, level, uncertainty`` (or ``lower, upper``) in a dict.
 
         Accepts a :class:`NextHighWater`, a dict with those keys, or the forecast dict of
-        ``monitor.surge_forecast.SurgeForecaster.forecast`` (``hw_t, forecast, lower, upper, ...``).
+        ``monitor.surge.forecast.SurgeForecaster.forecast`` (``hw_t, forecast, lower, upper, ...``).
         """
         return _as_hw_dict(self.next_high_water)
 

@@ -89,7 +89,7 @@ def _polling() -> tuple[dict, str]:
         src = str(example.name)
     else:
         d, src = {}, "daemon defaults (no config.example.toml)"
-    from monitor.config import DaemonSettings
+    from monitor.service.config import DaemonSettings
     base = DaemonSettings()
     return {"poll_seconds": float(d.get("poll_seconds", base.poll_seconds)),
             "process_seconds": float(d.get("process_seconds", base.process_seconds)),
@@ -161,7 +161,7 @@ steps = [{{ name = "raised", at = {STEP} }}]
 def _direct_baseline(port: int, catcher: _Catcher, n: int = 20) -> float:
     import sqlite_utils
 
-    from alerts.outbox import deliver_due, enqueue, mail_settings_from
+    from alerts.mail.outbox import deliver_due, enqueue, mail_settings_from
     settings, _ = mail_settings_from({"sender": "b@bench.example", "host": "127.0.0.1", "port": port,
                                       "security": "none"}, "mail")
     times = []

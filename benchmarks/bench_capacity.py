@@ -25,9 +25,9 @@ def _level(t: np.ndarray, k: int) -> np.ndarray:
 
 
 def main() -> None:
-    from monitor.config import validate_config
-    from monitor.daemon import Daemon
-    from monitor.store import Store
+    from monitor.service.config import validate_config
+    from monitor.service.daemon import Daemon
+    from monitor.store.database import Store
 
     with tempfile.TemporaryDirectory() as tmp:
         tmp = Path(tmp)

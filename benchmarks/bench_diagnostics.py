@@ -30,7 +30,7 @@ def _best(fn, repeat: int = 3) -> float:
 
 
 def main() -> None:
-    from monitor import diagnostics as D
+    from monitor.quality import diagnostics as D
     from predictor import TideModel
 
     cons = [("M2", 1.2, 95), ("S2", 0.4, 130), ("N2", 0.23, 80), ("K2", 0.11, 128), ("K1", 0.12, 210),

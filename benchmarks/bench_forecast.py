@@ -191,7 +191,7 @@ def score(test: pd.DataFrame, lo, centre, hi) -> pd.DataFrame:
 
 
 def main() -> None:
-    from monitor.surge_forecast import SurgeForecaster
+    from monitor.surge.forecast import SurgeForecaster
 
     t_start = time.perf_counter()
     train_c = coast(seed=20260101, days=3 * 365, storms_per_30_days=2.5, t0=1.60e9)

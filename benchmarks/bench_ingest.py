@@ -27,9 +27,9 @@ def make_lines(n: int = ROWS) -> list[str]:
 
 def ours(path: Path, lines: list[str]) -> float:
     """Seconds for parse + store with a checkpoint per batch."""
-    from monitor.config import LineFormat
-    from monitor.parse import parse_lines
-    from monitor.store import Store
+    from monitor.feeds.parse import LineFormat
+    from monitor.feeds.parse import parse_lines
+    from monitor.store.database import Store
 
     fmt = LineFormat()
     store = Store.open(path)

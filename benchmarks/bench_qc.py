@@ -50,8 +50,8 @@ def _data(days: int):
 
 
 def main() -> None:
-    from monitor import qc
-    from monitor.store import Store
+    from monitor.quality import checks as qc
+    from monitor.store.database import Store
 
     days = int(os.environ.get("QW_BENCH_DAYS", "365"))
     idx, primary, backup = _data(days)

@@ -33,15 +33,28 @@ import json
 import os
 import re
 import shutil
+import socket
 import sqlite3
 import subprocess
 import sys
 import threading
 import time
 import tomllib
+from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass, field
 from pathlib import Path
 from zoneinfo import ZoneInfo
+
+import pandas as pd
+import tomli_w
+from aiosmtpd.controller import Controller
+
+from monitor.cli import build_parser
+from monitor.quality import checks as qc
+from monitor.quality.diagnostics import clock_episodes
+from monitor.quality.diagnostics import sensor_drift
+from monitor.quality.diagnostics import sensor_timing
+from predictor import harmonic_fit
 
 ROOT = Path(__file__).resolve().parent.parent
 SAMPLES = ROOT / "sample_feeds"
@@ -145,10 +158,6 @@ class MailCatcher:
         return "250 Message accepted for delivery"
 
     def start(self) -> int:
-        import socket
-
-        from aiosmtpd.controller import Controller
-
         with socket.socket() as s:
             s.bind(("127.0.0.1", 0))
             self.port = s.getsockname()[1]
@@ -180,8 +189,6 @@ def quaywatch(args: list[str], log: Path | None = None, timeout: float = 600,
 
 
 def _has_verb(verb: str) -> bool:
-    from monitor.cli import build_parser
-
     sub = next(a for a in build_parser()._actions if a.dest == "verb")
     return verb in sub.choices
 
@@ -197,10 +204,6 @@ def fit_constants(history: Path, out: Path, log: Path) -> dict:
     the storm week's tide error from 1.0 to 2.5 cm RMS. A real port's record keeps the default.
     """
     if not _has_verb("fit"):
-        import pandas as pd
-
-        from predictor import harmonic_fit
-
         df = pd.read_csv(history)
         model = harmonic_fit(pd.DatetimeIndex(pd.to_datetime(df["time"], utc=True)), df["level"].to_numpy(),
                              infer=None)
@@ -244,8 +247,6 @@ def ingest_history(history: Path, config: Path, port: dict, before: dt.datetime,
 def write_config(template: Path, out_dir: Path, smtp_port: int, feeds: dict[str, Path],
                  constants: Path, speedup: float | None = None, daemon_reports: bool = True) -> Path:
     """The daemon's configuration: the demo template with this run's port, feeds and constants."""
-    import tomli_w
-
     with open(template, "rb") as fh:
         cfg = tomllib.load(fh)
     cfg["mail"]["port"] = smtp_port
@@ -275,7 +276,7 @@ def run_daemon(config: Path, log: Path, timeout: float) -> None:
         args = None
     try:
         if args is None:
-            code = ("import sys; from monitor.config import load_config; from monitor.daemon import run_daemon; "
+            code = ("import sys; from monitor.service.config import load_config; from monitor.service.daemon import run_daemon; "
                     "sys.exit(run_daemon(load_config(sys.argv[1]), until_exhausted=True))")
             with open(log, "a") as fh:
                 res = subprocess.run([sys.executable, "-c", code, str(config)], stdout=fh,
@@ -299,8 +300,6 @@ def local_days(start: dt.datetime, end: dt.datetime, tz: str) -> list[dt.date]:
 
 def write_reports(config: Path, station: str, days: list[dt.date], log: Path) -> None:
     """One report per local day with ``quaywatch report``, two at a time."""
-    from concurrent.futures import ThreadPoolExecutor
-
     def one(day: dt.date) -> tuple[dt.date, subprocess.CompletedProcess]:
         return day, quaywatch(["report", str(config), "--station", station, "--day", day.isoformat()],
                               cwd=config.parent)
@@ -322,10 +321,6 @@ def write_reports(config: Path, station: str, days: list[dt.date], log: Path) ->
 
 def technician_checks(store: Path, station: str, start: dt.datetime, end: dt.datetime) -> dict:
     """Drift and timing of the backup against the primary in [start, end), from usable samples."""
-    import pandas as pd
-
-    from monitor.diagnostics import clock_episodes, sensor_drift, sensor_timing
-
     con = sqlite3.connect(f"file:{store}?mode=ro", uri=True)
 
     def series(sensor: str, flags: tuple[int, ...]) -> pd.Series:
@@ -352,8 +347,6 @@ def technician_checks(store: Path, station: str, start: dt.datetime, end: dt.dat
 
 
 def _local(t, tz: str) -> str:
-    import pandas as pd
-
     when = pd.Timestamp(t, unit="s", tz="UTC") if isinstance(t, (int, float)) else pd.Timestamp(t)
     return when.tz_convert(tz).strftime("%a %d %b %H:%M %Z")
 
@@ -402,10 +395,6 @@ def _has_caution(text: str) -> bool:
 def read_summary(out: Path, station: str, chart: float, mail: list[CaughtMail],
                  start: dt.datetime, end: dt.datetime) -> Summary:
     """Read what the run produced in [start, end): peaks, episodes and quality-control findings."""
-    import pandas as pd
-
-    from monitor import qc
-
     store = out / "quaywatch.db"
     s = Summary(mail=list(mail), reports=sorted((out / "reports").rglob("*.html")))
     for m in s.mail:
@@ -466,8 +455,6 @@ def read_summary(out: Path, station: str, chart: float, mail: list[CaughtMail],
 def _forecast_story(con, station: str, chart: float, highest, episodes: list[dict]) -> tuple:
     """What was forecast for the storm's high water 6, 3 and 1 h before (the last forecast issued
     at or before each, from the daemon's forecast log) and how the quay's all-clear waited."""
-    import pandas as pd
-
     log = pd.read_sql_query("select made_t, hw_t, forecast, lower, upper, method from hw_forecast_log "
                             "where station = ?", con, params=(station,))
     ss = pd.read_sql_query("select hw_t, observed_high from skew_surges where station = ?", con, params=(station,))

@@ -6,7 +6,7 @@ distribution), writes it as a telemetry file, a configuration and a constants fi
 ``demo-output/records/``, then runs the command line as a user would:
 
 1. ``quaywatch ingest`` (decades of hourly lines in one go, progress on standard error);
-2. quality control over the whole record (:func:`monitor.qc.run_station_qc`, a year at a time);
+2. quality control over the whole record (:func:`monitor.quality.checks.run_station_qc`, a year at a time);
 3. ``quaywatch extremes --json`` and the text form, saved beside the truth the generator put in
    (``truth.json``: the true rise and the true return levels), with a comparison: does each
    95 % band cover the true level, and the trend's interval the true rise.
@@ -23,15 +23,23 @@ from __future__ import annotations
 
 import argparse
 import contextlib
+import dataclasses
 import importlib.util
 import io
 import json
 import sys
 import time
+import tomllib
 from pathlib import Path
 
 import numpy as np
-import pandas as pd
+
+from monitor.cli import main as cli
+from monitor.quality import checks as qc
+from monitor.service.config import load_config
+from monitor.service.constants import load_model
+from monitor.store.database import Store
+from predictor import TideModel
 
 ROOT = Path(__file__).resolve().parent.parent
 DEFAULT_OUT = ROOT / "demo-output" / "records"
@@ -54,11 +62,6 @@ def write_inputs(out: Path, years: int | None = None, truth_levels: bool = True,
                  start_year: int | None = None) -> dict:
     """History CSV, constants file and configuration; returns the truth as a dict (its return
     levels only when ``truth_levels``: a few seconds of Monte Carlo)."""
-    import dataclasses
-    import tomllib
-
-    from predictor import TideModel
-
     dec = _decades()
     spec = dec.DecadesSpec()
     if years is not None:
@@ -112,11 +115,6 @@ feed = {{ kind = "file", path = "history.csv" }}
 
 def run_qc(config: Path, progress=None) -> None:
     """Quality control over the whole record, a year at a time."""
-    from monitor import qc
-    from monitor.config import load_config
-    from monitor.daemon import load_model
-    from monitor.store import Store
-
     cfg = load_config(config)
     st = cfg.station(STATION)
     with Store.open(cfg.store_path) as store:
@@ -154,8 +152,6 @@ def compare(result: dict, truth: dict) -> list[str]:
 
 def run(out: Path = DEFAULT_OUT, years: int | None = None, quiet: bool = False) -> dict:
     """The whole demo; returns ``{"result": ..., "truth": ..., "comparison": [...]}``."""
-    from monitor.cli import main as cli
-
     def say(text: str) -> None:
         if not quiet:
             print(text, flush=True)

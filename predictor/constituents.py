@@ -26,6 +26,7 @@ Foreman, M. G. G. (1977, rev. 2004). Pacific Marine Science Report 77-10, Append
 """
 from __future__ import annotations
 
+import difflib
 from dataclasses import dataclass, field
 
 import numpy as np
@@ -206,7 +207,6 @@ def get(name: str) -> Constituent:
         return CATALOGUE[_FOLDED[key]]
     if key in CATALOGUE:
         return CATALOGUE[key]
-    import difflib
 
     close = difflib.get_close_matches(key, list(_FOLDED), n=3, cutoff=0.5)
     hint = f"; did you mean {', '.join(_FOLDED[c] for c in close)}?" if close else ""

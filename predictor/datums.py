@@ -32,7 +32,8 @@ from __future__ import annotations
 import numpy as np
 
 from predictor.extrema import classify_stands, turning_points
-from predictor.timeutil import parse_step
+from predictor.model import SECONDS_PER_YEAR
+from predictor.timeutil import iso_utc, parse_step, to_unix_seconds
 
 __all__ = ["tidal_datums", "DATUM_ORDER", "DATUM_DESCRIPTIONS", "TIDAL_DAY_SECONDS"]
 
@@ -99,8 +100,6 @@ def tidal_datums(model, start=None, years: float = NODAL_CYCLE_YEARS, step="15mi
     ----------
     NOAA (2003). Computational Techniques for Tidal Datums Handbook, NOS CO-OPS 2.
     """
-    from predictor.model import SECONDS_PER_YEAR, _iso, to_unix_seconds
-
     tide = model.without_trend()
     t0 = 946684800.0 if start is None else float(to_unix_seconds([start])[0])
     if not np.isfinite(t0):
@@ -123,7 +122,7 @@ def tidal_datums(model, start=None, years: float = NODAL_CYCLE_YEARS, step="15mi
     if not is_high.any() or is_high.all():
         # no tide (no constituents): every datum is the mean level
         out = {k: msl for k in ("HAT", "MHHW", "MHW", "MTL", "MSL", "MLW", "MLLW", "LAT")}
-        out.update(MN=0.0, GT=0.0, start=_iso(t0), end=_iso(t1))
+        out.update(MN=0.0, GT=0.0, start=iso_utc(t0), end=iso_utc(t1))
         return out
     highs, lows = level[is_high], level[~is_high]
     mhw, mlw = float(highs.mean()), float(lows.mean())
@@ -153,6 +152,6 @@ def tidal_datums(model, start=None, years: float = NODAL_CYCLE_YEARS, step="15mi
         "LAT": float(lows.min()),
         "MN": mhw - mlw,
         "GT": mhhw - mllw,
-        "start": _iso(t0),
-        "end": _iso(t1),
+        "start": iso_utc(t0),
+        "end": iso_utc(t1),
     }

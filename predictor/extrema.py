@@ -27,7 +27,7 @@ from __future__ import annotations
 import numpy as np
 import pandas as pd
 
-from predictor.timeutil import parse_step
+from predictor.timeutil import parse_step, to_unix_seconds
 
 __all__ = ["turning_points", "high_low", "classify_stands", "STAND_DEPTH_RATIO", "STAND_MAX_SPAN_S"]
 
@@ -211,8 +211,6 @@ def high_low(model, start, end, step="10min") -> pd.DataFrame:
     ----------
     NOAA (2003). Tidal Datums Handbook, NOS CO-OPS 2.
     """
-    from predictor.model import to_unix_seconds
-
     t0 = float(to_unix_seconds([start])[0])
     t1 = float(to_unix_seconds([end])[0])
     if not (np.isfinite(t0) and np.isfinite(t1)):

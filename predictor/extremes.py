@@ -1124,7 +1124,7 @@ def fit_peaks_over_threshold(times, values, threshold: float | None = None,
         Times of the values (DatetimeIndex, ``datetime64`` or Unix seconds).
     values : array_like
         One value per tidal cycle [m], typically the skew surge of every complete cycle (the
-        ``skew_surge`` column of ``monitor.residual.skew_surges``).
+        ``skew_surge`` column of ``monitor.surge.residual.skew_surges``).
     threshold : float, optional
         u [m]; default the 0.99 quantile of the values (see :func:`threshold_diagnostics`).
     run_length : float or str

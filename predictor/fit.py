@@ -30,6 +30,11 @@ from scipy import linalg
 from scipy.linalg import blas
 
 from predictor import confidence as _ci
+from predictor import constituents as cat
+from predictor import nodal as nod
+from predictor.constituents import equilibrium_amplitude
+from predictor.constituents import get
+from predictor.model import TideModel
 
 __all__ = [
     "FitInputError",
@@ -132,8 +137,6 @@ def _iso(t: float) -> str:
 
 
 def _catalogue():
-    from predictor import constituents as cat
-
     return cat.CATALOGUE
 
 
@@ -313,8 +316,6 @@ def equilibrium_inference(name: str, reference: str) -> tuple[float, float]:
     Cartwright & Tayler (1971); Cartwright & Edden (1973) (amplitudes, from memory);
     Foreman (1977), sec. 2.3 (inference from equilibrium ratios).
     """
-    from predictor.constituents import equilibrium_amplitude, get
-
     a, b = get(name), get(reference)
     if a.species != b.species:
         raise FitInputError(f"cannot infer {a.name} from {b.name}: different species")
@@ -324,8 +325,6 @@ def equilibrium_inference(name: str, reference: str) -> tuple[float, float]:
 def _resolve_inference(infer, auto_selected: bool, names: list, dropped: list,
                        duration_h: float, rayleigh: float, step_h) -> tuple[list, list]:
     """Which constituents to infer: list of dict name/from/ratio/dphase/source."""
-    from predictor.constituents import get
-
     if infer is None or infer is False:
         return [], dropped
     catalogue = _catalogue()
@@ -460,8 +459,6 @@ _NODE_BLOCK = 512  # daily nodes evaluated at a time
 
 
 def _build_design(names, t_min, t_max, nodal, trend, trend_epoch, infer=()) -> _Design:
-    from predictor import nodal as nod
-
     catalogue = _catalogue()
     speeds = np.array([_speed(catalogue[n]) for n in names])
     omega = np.radians(speeds) / SECONDS_PER_HOUR
@@ -670,8 +667,6 @@ def harmonic_fit(times, levels, constituents="auto", rayleigh: float = 1.0, tren
     ----------
     Foreman (1977); Godin (1972); Munk & Cartwright (1966); Leffler & Jay (2009).
     """
-    from predictor.model import TideModel
-
     t, y, w = _clean_record(times, levels, weights)
     duration_h = (t[-1] - t[0]) / SECONDS_PER_HOUR
     steps = np.diff(t)
@@ -787,7 +782,6 @@ def _chosen_names(constituents, duration_h, step_h, rayleigh, min_constituents):
         if any(n not in names for n in must):
             raise RecordTooShortError(_too_short_message(duration_h, names, rayleigh, min_constituents))
         return names, dropped
-    from predictor.constituents import get
 
     names, unknown = [], []
     for n in constituents:
@@ -918,8 +912,6 @@ def _intervals(sol: _Solution, names, step_h, confidence):
 
 def _weak_long_period(sol: _Solution, names, inferred, step_h, threshold) -> dict:
     """Long-period constituents whose SNR is below ``threshold``: name -> SNR."""
-    from predictor.constituents import get
-
     refs = {d["from"] for d in inferred}
     longp = [i for i, n in enumerate(names) if get(n).species == 0 and n not in refs]
     if not longp:

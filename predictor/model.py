@@ -29,15 +29,20 @@ Schureman, P. (1958). Special Publication 98 (f and u).
 from __future__ import annotations
 
 import copy
+import datetime as dt
 import math
 from dataclasses import dataclass, field
 from pathlib import Path
 
 import numpy as np
+import pandas as pd
+import tomli_w
 
 from predictor.astro import astronomical_arguments
 from predictor.constituents import doodson_matrix, get
+from predictor.extrema import high_low
 from predictor.nodal import equilibrium_arguments, nodal_factors
+from predictor.timeutil import iso_utc, to_unix_seconds
 from predictor.tomlfile import read_toml
 
 __all__ = ["TideModel", "ConstantsFileError", "to_unix_seconds", "SECONDS_PER_YEAR"]
@@ -59,45 +64,8 @@ class ConstantsFileError(ValueError):
     """A constants file or constants table that cannot be used; the message says where."""
 
 
-def to_unix_seconds(times) -> np.ndarray:
-    """Convert times to Unix seconds UTC.
-
-    Parameters
-    ----------
-    times : array_like
-        ``datetime64`` array (UTC), pandas DatetimeIndex or Series (tz-aware converted
-        to UTC, naive taken as UTC), a sequence of datetimes or ISO strings, a single
-        time, or numbers already in Unix seconds.
-
-    Returns
-    -------
-    numpy.ndarray
-        Unix seconds [s] as float, 1-D; NaT becomes NaN.
-    """
-    import pandas as pd
-
-    if isinstance(times, (pd.Series,)):
-        times = pd.DatetimeIndex(times)
-    if not isinstance(times, pd.DatetimeIndex):
-        arr = np.atleast_1d(np.asarray(times))
-        if np.issubdtype(arr.dtype, np.number):
-            return arr.astype(float).ravel()
-        if np.issubdtype(arr.dtype, np.datetime64):
-            ns = arr.astype("datetime64[ns]").astype(np.int64).astype(float)
-            ns[np.isnat(arr)] = np.nan
-            return ns.ravel() / 1e9
-        times = pd.DatetimeIndex(pd.to_datetime(list(arr.ravel()), utc=True))
-    if times.tz is not None:
-        times = times.tz_convert("UTC").tz_localize(None)
-    ns = times.as_unit("ns").asi8.astype(float)
-    ns[np.asarray(times.isna())] = np.nan
-    return ns / 1e9
-
-
 def _uniform(times):
     """(t0 [s], dt [s], n) when ``times`` are strictly uniform, else None."""
-    import pandas as pd
-
     if isinstance(times, pd.Series):
         times = pd.DatetimeIndex(times)
     if isinstance(times, pd.DatetimeIndex):
@@ -279,8 +247,6 @@ class TideModel:
         --------
         predictor.extrema.high_low
         """
-        from predictor.extrema import high_low
-
         return high_low(self, start, end, step=step)
 
     def _evaluate(self, times, order: int) -> np.ndarray:
@@ -432,7 +398,7 @@ class TideModel:
             d["datum"] = self.datum
         if self.trend:
             d["trend"] = self.trend
-            d["trend_epoch"] = _iso(self.trend_epoch)
+            d["trend_epoch"] = iso_utc(self.trend_epoch)
         d["constituents"] = [dict(c) for c in self.constituents]
         if self.metadata:
             d["metadata"] = dict(self.metadata)
@@ -487,7 +453,6 @@ class TideModel:
 
     def save(self, path) -> None:
         """Write the constants file (TOML), with a header saying what it is."""
-        import tomli_w
 
         data = _plain(self.to_dict())
         meta = data.pop("metadata", None)
@@ -507,17 +472,9 @@ class TideModel:
 
 
 def _aware(value):
-    import datetime as dt
-
     if isinstance(value, dt.datetime) and value.tzinfo is None:
         return value.replace(tzinfo=dt.timezone.utc)
     return value
-
-
-def _iso(t: float) -> str:
-    import datetime as dt
-
-    return dt.datetime.fromtimestamp(float(t), dt.timezone.utc).strftime("%Y-%m-%dT%H:%M:%SZ")
 
 
 def _plain(x):

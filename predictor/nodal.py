@@ -37,7 +37,7 @@ from __future__ import annotations
 import numpy as np
 
 from predictor.astro import astronomical_arguments
-from predictor.constituents import get
+from predictor.constituents import doodson_matrix, get
 
 __all__ = ["nodal_factors", "arguments", "node_terms", "equilibrium_arguments"]
 
@@ -214,8 +214,6 @@ def equilibrium_arguments(t, names):
     Doodson, A. T. (1921); Foreman, M. G. G. (1977): V = sum of Doodson numbers times
     the astronomical arguments, plus the phase offset in quarter cycles.
     """
-    from predictor.constituents import doodson_matrix
-
     t = np.atleast_1d(np.asarray(t, dtype=float)).ravel()
     D = doodson_matrix(names)
     args = astronomical_arguments(t)

@@ -239,7 +239,7 @@ def sea_level_trend(monthly, datum_steps=(), step_handling: str = "correct", nod
         .monthly`` or its ``mean`` column).
     datum_steps : sequence of time-like, or DataFrame with a ``time`` column
         Times at which the gauge's datum is known to have stepped (for example the steps
-        ``monitor.diagnostics.datum_steps`` found). A step inside a month leaves that month out.
+        ``monitor.quality.diagnostics.datum_steps`` found). A step inside a month leaves that month out.
     step_handling : {"correct", "split"}
         ``"correct"``: one trend over the whole record with an offset per step estimated in the
         same fit. ``"split"``: a trend per segment between steps (segments of fewer than 24

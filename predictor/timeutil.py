@@ -1,7 +1,9 @@
-"""Durations written by people: ``"90s"``, ``"10min"``, ``"2h"``, ``"1d"``, ``"1h30min"``.
+"""Times in one place: conversion to Unix seconds and ISO text, and durations written by people.
 
-The one duration parser of the project. It sits in :mod:`predictor` because imports go
-``monitor -> alerts -> predictor``: every layer can use it from here.
+The one home of time conversion (:func:`to_unix_seconds`, :func:`iso_utc`) and the one
+duration parser (``"90s"``, ``"10min"``, ``"2h"``, ``"1d"``, ``"1h30min"``) of the project.
+It sits in :mod:`predictor` because imports go ``monitor -> alerts -> predictor``: every layer
+can use it from here.
 """
 from __future__ import annotations
 
@@ -11,8 +13,9 @@ import re
 from typing import Any
 
 import numpy as np
+import pandas as pd
 
-__all__ = ["parse_duration", "parse_step", "UNIT_SECONDS"]
+__all__ = ["parse_duration", "parse_step", "UNIT_SECONDS", "to_unix_seconds", "iso_utc"]
 
 # Seconds in each unit name a person may write. "m" is minutes (as in "10m"): months and
 # metres never mean a duration here.
@@ -103,3 +106,41 @@ def parse_duration(value: Any, *, positive: bool = False, maximum: float | None 
 def parse_step(step: Any) -> float:
     """A time step [s] above zero (``parse_duration(step, positive=True)``)."""
     return parse_duration(step, positive=True)
+
+
+def to_unix_seconds(times) -> np.ndarray:
+    """Convert times to Unix seconds UTC.
+
+    Parameters
+    ----------
+    times : array_like
+        ``datetime64`` array (UTC), pandas DatetimeIndex or Series (tz-aware converted
+        to UTC, naive taken as UTC), a sequence of datetimes or ISO strings, a single
+        time, or numbers already in Unix seconds.
+
+    Returns
+    -------
+    numpy.ndarray
+        Unix seconds [s] as float, 1-D; NaT becomes NaN.
+    """
+    if isinstance(times, (pd.Series,)):
+        times = pd.DatetimeIndex(times)
+    if not isinstance(times, pd.DatetimeIndex):
+        arr = np.atleast_1d(np.asarray(times))
+        if np.issubdtype(arr.dtype, np.number):
+            return arr.astype(float).ravel()
+        if np.issubdtype(arr.dtype, np.datetime64):
+            ns = arr.astype("datetime64[ns]").astype(np.int64).astype(float)
+            ns[np.isnat(arr)] = np.nan
+            return ns.ravel() / 1e9
+        times = pd.DatetimeIndex(pd.to_datetime(list(arr.ravel()), utc=True))
+    if times.tz is not None:
+        times = times.tz_convert("UTC").tz_localize(None)
+    ns = times.as_unit("ns").asi8.astype(float)
+    ns[np.asarray(times.isna())] = np.nan
+    return ns / 1e9
+
+
+def iso_utc(t: float) -> str:
+    """Unix seconds [s] as ISO 8601 text in UTC with ``Z``, to the second."""
+    return dt.datetime.fromtimestamp(float(t), dt.timezone.utc).strftime("%Y-%m-%dT%H:%M:%SZ")

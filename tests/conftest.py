@@ -5,6 +5,9 @@ import sqlite3
 
 import pytest
 
+from monitor.cli import main as cli
+from monitor.demo_decades import STATION, write_inputs
+
 
 @pytest.fixture(scope="module")
 def records_station(tmp_path_factory):
@@ -12,9 +15,6 @@ def records_station(tmp_path_factory):
     in the middle) ingested through the command line into a fresh store, every sample then
     marked as having passed quality control (flag 1), as the daemon's QC would leave a calm
     record. Returns (config path, truth dict, store path)."""
-    from monitor.cli import main as cli
-    from monitor.demo_decades import STATION, write_inputs
-
     out = tmp_path_factory.mktemp("records")
     truth = write_inputs(out, years=8, truth_levels=False, start_year=2015)
     assert cli(["ingest", str(out / "config.toml"), "--station", STATION, str(out / "history.csv")]) == 0

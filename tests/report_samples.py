@@ -9,9 +9,10 @@ import datetime as dt
 import numpy as np
 import pandas as pd
 
-from alerts.report import (
-    AlertEpisodeRow, AlertLevel, BarometerPart, ConstantsInfo, ConstituentRow, DayReport, Delivery, Diagnostic,
-    HighWaterForecast, QcEpisode, RejectRow, StaffCheck, TideRow, day_bounds, empty_samples,
+from alerts.reports.model import (
+
+    AlertEpisodeRow, AlertLevel, BarometerPart, ConstantsInfo, ConstituentRow, DayReport, Delivery, Diagnostic, HighWaterForecast, QcEpisode, RejectRow, StaffCheck, TideRow, day_bounds, empty_samples,
+
 )
 
 # An invented port on a zone with daylight saving (UTC+00:00 in winter, UTC+01:00 in summer).

@@ -129,7 +129,7 @@ def test_a_backup_during_live_ingest_is_whole_up_to_its_checkpoint(tmp_path, cap
 
 def test_a_backup_never_overwrites_a_file(tmp_path, capsys):
     cfg = _config(tmp_path)
-    from monitor.store import Store
+    from monitor.store.database import Store
 
     Store.open(tmp_path / "q.db").close()
     (tmp_path / "copy.db").write_text("keep me")
@@ -140,7 +140,7 @@ def test_a_backup_never_overwrites_a_file(tmp_path, capsys):
 
 def test_a_backup_into_a_folder_gets_a_dated_name(tmp_path, capsys):
     cfg = _config(tmp_path)
-    from monitor.store import Store
+    from monitor.store.database import Store
 
     Store.open(tmp_path / "q.db").close()
     (tmp_path / "backups").mkdir()

@@ -162,9 +162,9 @@ class _Daemon:
     """A daemon in this process, driven by hand: poll the feeds, then process."""
 
     def __init__(self, cfg_path: Path):
-        from monitor.config import load_config
-        from monitor.daemon import Daemon
-        from monitor.store import Store
+        from monitor.service.config import load_config
+        from monitor.service.daemon import Daemon
+        from monitor.store.database import Store
 
         self.cfg = load_config(cfg_path)
         self.store = Store.open(self.cfg.store_path)
@@ -182,7 +182,7 @@ class _Daemon:
 
     def ingest(self, lines: list[str]) -> None:
         """Lines received now, as if from the feed (after its header line)."""
-        from monitor.daemon import ingest_lines
+        from monitor.service.daemon import ingest_lines
 
         ingest_lines(self.store, self.cfg.stations[0].sensors["primary"], ["time,level", *lines],
                      received=time.time())
@@ -309,7 +309,7 @@ def test_a_lone_line_stamped_decades_early_costs_one_more_window_not_thousands(t
 
 
 def test_a_far_future_sample_does_not_empty_the_fit_span(tmp_path):
-    from monitor.daemon import refit_station
+    from monitor.service.daemon import refit_station
 
     cfg = _config(tmp_path, "", constants=False)
     (tmp_path / "gauge.csv").write_text("")

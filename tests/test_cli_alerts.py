@@ -1,4 +1,4 @@
-"""``quaywatch alerts CONFIG episodes|outbox|test-mail`` (monitor/cli_alerts.py)."""
+"""``quaywatch alerts CONFIG episodes|outbox|test-mail`` (monitor/cli/alerts.py)."""
 from __future__ import annotations
 
 import email

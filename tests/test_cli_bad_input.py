@@ -16,9 +16,9 @@ from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
 from monitor.cli import main
-from monitor.cli_common import store_errors
+from monitor.cli.common import store_errors
 from monitor.errors import UserError
-from monitor.timeparse import local_text, parse_date, parse_time
+from monitor.cli.timeparse import local_text, parse_date, parse_time
 from predictor.timeutil import parse_duration
 
 minute = 60

@@ -10,7 +10,7 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from monitor.cli_fit_verb import CAUTION, read_level_csv, register
+from monitor.cli.fit import CAUTION, read_level_csv, register
 from monitor.errors import UserError
 from predictor import TideModel
 

@@ -173,7 +173,7 @@ def test_refit_with_too_little_history_says_how_much_is_needed(tmp_path, capsys)
 
 def test_status_shows_every_level_on_the_display_datum(tmp_path, capsys):
     # status gave the level on both datums and the next high water on the station datum.
-    from monitor.store import Store
+    from monitor.store.database import Store
 
     (tmp_path / "c.toml").write_text(
         'mean = 2.5\n[[constituents]]\nname = "M2"\namplitude = 1.2\nphase = 0.0\n')

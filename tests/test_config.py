@@ -1,4 +1,4 @@
-"""Configuration loading and validation (monitor.config)."""
+"""Configuration loading and validation (monitor.service.config)."""
 from __future__ import annotations
 
 import copy
@@ -9,7 +9,7 @@ import pytest
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
-from monitor.config import Config, load_config, validate_config
+from monitor.service.config import Config, load_config, validate_config
 from monitor.errors import UserError
 
 ROOT = Path(__file__).resolve().parent.parent
@@ -241,7 +241,7 @@ def test_quaywatch_check_passes_on_the_example():
 
 
 def test_example_documents_every_key_of_the_loader():
-    from monitor.config import known_keys
+    from monitor.service.config import known_keys
 
     raw, text = _example()
     st = raw["stations"][0]
@@ -271,7 +271,7 @@ def test_example_documents_every_feed_key_and_kind():
 def test_example_documents_every_qc_setting_with_its_default():
     from dataclasses import fields
 
-    from monitor.qc import QcSettings, qc_settings_from
+    from monitor.quality.checks import QcSettings, qc_settings_from
 
     raw, text = _example()
     qc = raw["stations"][0]["qc"]
@@ -282,7 +282,7 @@ def test_example_documents_every_qc_setting_with_its_default():
 
 
 def test_example_documents_every_mail_key():
-    from alerts.outbox import mail_settings_from
+    from alerts.mail.outbox import mail_settings_from
 
     raw, text = _example()
     _, errors = mail_settings_from({**raw["mail"], "no_such_key": 1}, "mail")
@@ -291,7 +291,7 @@ def test_example_documents_every_mail_key():
 
 
 def test_example_documents_every_report_key():
-    from alerts.report import report_settings_from
+    from alerts.reports.model import report_settings_from
 
     raw, text = _example()
     _, errors = report_settings_from({**raw["reports"], "no_such_key": 1}, "reports")

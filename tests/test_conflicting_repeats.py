@@ -9,10 +9,10 @@ from pathlib import Path
 import pytest
 
 from monitor.cli import main
-from monitor.config import LineFormat
-from monitor.daemon import row_lines
-from monitor.parse import parse_lines
-from monitor.store import Store
+from monitor.feeds.parse import LineFormat
+from monitor.service.daemon import row_lines
+from monitor.feeds.parse import parse_lines
+from monitor.store.database import Store
 
 m = 1.0
 mm = 1e-3
@@ -73,7 +73,7 @@ def test_conflicts_are_not_counted_as_unreadable_lines(store):
 def test_a_version_1_store_gains_the_conflict_columns(tmp_path):
     import sqlite_utils
 
-    from monitor.store import _create_v1
+    from monitor.store.database import _create_v1
 
     path = tmp_path / "old.db"
     db = sqlite_utils.Database(path)
@@ -139,9 +139,9 @@ def test_ingest_status_and_qc_count_conflicting_repeats(tmp_path, capsys):
 def test_the_daily_report_counts_the_day_s_conflicting_repeats(tmp_path):
     import datetime as dt
 
-    from alerts.report import render_day_email, render_day_html
-    from monitor.config import load_config
-    from monitor.reporting import gather_day
+    from alerts.reports.render import render_day_email, render_day_html
+    from monitor.service.config import load_config
+    from monitor.service.reporting import gather_day
 
     cfg = load_config(_setup(tmp_path, "constants.toml"))
     st = cfg.stations[0]

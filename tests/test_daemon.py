@@ -94,9 +94,9 @@ def _lines(minutes, level=2.0):
 
 @pytest.fixture
 def daemon(tmp_path):
-    from monitor.config import validate_config
-    from monitor.daemon import Daemon
-    from monitor.store import Store
+    from monitor.service.config import validate_config
+    from monitor.service.daemon import Daemon
+    from monitor.store.database import Store
 
     raw = {"store": {"path": "q.db"},
            "stations": [{"id": "testport", "latitude": 50.0, "longitude": -4.0, "constants": "history",
@@ -111,7 +111,7 @@ def daemon(tmp_path):
 
 
 def _ingest(d, role, minutes):
-    from monitor.daemon import ingest_lines
+    from monitor.service.daemon import ingest_lines
 
     st = d.cfg.stations[0]
     ingest_lines(d.store, st.sensors[role], _lines(minutes), received=T0 + 60 * 200)
@@ -169,7 +169,7 @@ def _fork_daemon(cfg: Path):
 
         os._exit(main(["run", str(cfg)]))
 
-    from monitor.config import load_config
+    from monitor.service.config import load_config
 
     load_config(cfg)  # imports what the configuration and the daemon need, before the fork
 
@@ -245,9 +245,9 @@ def test_sigterm_stops_cleanly_and_a_second_daemon_is_refused(tmp_path):
 
 
 def test_primary_backup_drift_reaches_the_rules_as_an_equipment_fault(tmp_path):
-    from monitor.config import validate_config
-    from monitor.daemon import Daemon, ingest_lines
-    from monitor.store import Store
+    from monitor.service.config import validate_config
+    from monitor.service.daemon import Daemon, ingest_lines
+    from monitor.store.database import Store
 
     raw = {"store": {"path": "q.db"},
            "stations": [{"id": "testport", "latitude": 50.0, "longitude": -4.0, "constants": "history",
@@ -279,7 +279,7 @@ def test_daemon_refit_infers_unresolved_neighbours_and_records_it(daemon):
     # Foreman 1977): with infer="auto" K2 comes inferred from S2 and the fit says so.
     import pandas as pd
 
-    from monitor.daemon import ingest_lines
+    from monitor.service.daemon import ingest_lines
 
     rt = daemon.stations["testport"]
     t = T0 + 1800 * np.arange(40 * 48)
@@ -298,7 +298,7 @@ def test_daemon_refit_infers_unresolved_neighbours_and_records_it(daemon):
 def test_scheduler_job_lines_stay_out_of_the_log_unless_very_verbose(daemon):
     import logging
 
-    from monitor.daemon import setup_logging
+    from monitor.service.daemon import setup_logging
 
     root = logging.getLogger()
     level, handlers = root.level, list(root.handlers)

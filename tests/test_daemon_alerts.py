@@ -239,9 +239,9 @@ def test_smtp_server_that_never_answers_does_not_hold_up_processing(tmp_path, mo
     outbox thread is stuck on a server that accepts the connection and never greets."""
     import threading
 
-    from monitor.config import load_config
-    from monitor.daemon import Daemon
-    from monitor.store import Store
+    from monitor.service.config import load_config
+    from monitor.service.daemon import Daemon
+    from monitor.store.database import Store
 
     silent = socket.socket()
     silent.bind(("127.0.0.1", 0))

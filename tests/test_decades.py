@@ -19,7 +19,7 @@ import numpy as np
 import pandas as pd
 import pytest
 
-from monitor.residual import skew_surges
+from monitor.surge.residual import skew_surges
 from predictor import TideModel
 from predictor import extremes as ex
 from predictor import sealevel as sl

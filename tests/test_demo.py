@@ -366,7 +366,7 @@ def test_demo_finds_the_stuck_sensor(demo):
 
     f = demo["truth"]["faults"]["flat_line"]
     ((start, end),) = demo["summary"].flat
-    # QC calls a run flat once it has lasted 30 minutes (monitor.qc.QcSettings, common practice).
+    # QC calls a run flat once it has lasted 30 minutes (monitor.quality.checks.QcSettings, common practice).
     assert _utc(f["start"]) + pd.Timedelta(25 * minute, "s") <= start <= _utc(f["start"]) + pd.Timedelta(35 * minute, "s")
     assert abs(end - _utc(f["end"])) <= pd.Timedelta(2 * minute, "s")
 

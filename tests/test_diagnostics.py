@@ -9,8 +9,8 @@ import numpy as np
 import pandas as pd
 import pytest
 
-from monitor import diagnostics as dg
-from monitor.qc import QcSettings
+from monitor.quality import diagnostics as dg
+from monitor.quality.checks import QcSettings
 from test_qc_synthetic import START, SynthModel, day, hour, minute, mm, record
 
 
@@ -324,8 +324,7 @@ def test_storm_surge_onset_is_not_a_datum_step():
 def test_stuck_sensor_flagged_by_qc_is_not_a_datum_step():
     # 70 minutes stuck at one value on a rising tide; flags from our own QC (flat line:
     # suspect, then fail). The stuck spell must not pass for a step at either edge.
-    from monitor import qc
-
+    from monitor.quality import checks as qc
     level, pred = record(days=4, seed=91)
     at = 50 * 60
     level.iloc[at:at + 70] = level.iloc[at]

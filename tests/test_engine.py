@@ -13,7 +13,7 @@ import sqlite_utils
 from aiosmtpd.controller import Controller
 
 from alerts.engine import AlertContext, NextHighWater, evaluate, list_episodes
-from alerts.outbox import deliver_due, list_outbox, mail_settings_from
+from alerts.mail.outbox import deliver_due, list_outbox, mail_settings_from
 from alerts.rules import StationView, rules_from_config
 
 m = 1.0
@@ -158,7 +158,7 @@ def test_feed_silence_alerts_and_clears(db):
 
 def test_equipment_fault_lists_the_fault(db):
     rule = {"id": "kit", "watch": "equipment_fault", "notify": ["tech@port.example"]}
-    # the shape monitor.diagnostics.equipment_faults hands over
+    # the shape monitor.quality.diagnostics.equipment_faults hands over
     fault = {"kind": "stuck_sensor", "station": "dunmerrow", "sensor": "primary", "value": 62.0,
              "limit": 30.0, "unit": "min", "since": int(T0.timestamp())}
     evaluate(db, STATION, rules(rule), None, now=T0, context=AlertContext(faults=[fault]))

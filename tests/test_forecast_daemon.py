@@ -1,4 +1,4 @@
-"""The daemon's high water forecasts (monitor.daemon with monitor.surge_forecast), in process:
+"""The daemon's high water forecasts (monitor.service.daemon with monitor.surge.forecast), in process:
 a range conditioned on the storm when the station's history holds enough storms, the wide
 rule said in words when it does not, a barometer gap said in words, every high water within
 the rules' horizon forecast and logged. An invented port with invented storms."""
@@ -28,9 +28,9 @@ def _history(days: float, storms: int, seed: int = 5) -> pd.DataFrame:
 
 
 def _site(tmp_path, history: pd.DataFrame, barometer: bool = True):
-    from monitor.config import validate_config
-    from monitor.daemon import Daemon
-    from monitor.store import Store
+    from monitor.service.config import validate_config
+    from monitor.service.daemon import Daemon
+    from monitor.store.database import Store
 
     MODEL.save(tmp_path / "c.toml")
     sensors = {"primary": {}}
@@ -64,7 +64,7 @@ def _site(tmp_path, history: pd.DataFrame, barometer: bool = True):
 
 def _storm_now(d, pressure_until: int | None = None):
     """The last six hours: the surge rising 0.1 m an hour to +0.6 m; pressure falling until ``pressure_until``."""
-    from monitor.daemon import ingest_lines
+    from monitor.service.daemon import ingest_lines
 
     st = d.cfg.stations[0]
     t = np.arange(NOW - 6 * hour, NOW + 1, 60)
@@ -99,8 +99,7 @@ def test_enough_storms_give_a_range_conditioned_on_the_storm_now(tmp_path):
 
 
 def test_a_storm_widens_the_range_that_calm_would_give(tmp_path):
-    from monitor import surge_forecast as SF
-
+    from monitor.surge import forecast as SF
     cfg, store, d = _site(tmp_path, _history(540, 30))
     with store:
         grid, skew, p = SF.read_history(store.conn, "port", NOW - 540 * day, NOW, barometer=False)
@@ -145,7 +144,7 @@ def test_every_high_water_within_the_horizon_is_forecast_and_kept(tmp_path):
 
 def test_a_long_window_is_forecast_through_its_half_hours(tmp_path):
     # Six hours processed at once: forecasts issued at each half hour, so the rules judge each
-    # sample by the forecast of its own time (monitor.daemon._forecast).
+    # sample by the forecast of its own time (monitor.service.daemon._forecast).
     cfg, store, d = _site(tmp_path, _history(200, 3))
     with store:
         _storm_now(d)

@@ -1,10 +1,10 @@
-"""Email composition (alerts/message.py): content, caution, MIME structure, injection."""
+"""Email composition (alerts/mail/message.py): content, caution, MIME structure, injection."""
 from __future__ import annotations
 
 import email
 from email import policy
 
-from alerts.message import CAUTION, build_email, clean_header, compose_alert, compose_test
+from alerts.mail.message import CAUTION, build_email, clean_header, compose_alert, compose_test
 from alerts.rules import Event, Rule, Step, StationView
 
 STATION = StationView(id="dunmerrow", name="Port Dunmerrow", tz="Europe/Dublin",
@@ -203,7 +203,7 @@ def test_image_keeps_inline_through_the_outbox_store():
     # The outbox keeps file name, type and data of an attachment; the cid the HTML cites names the file.
     import sqlite_utils
 
-    from alerts.outbox import _decode_attachments, enqueue
+    from alerts.mail.outbox import _decode_attachments, enqueue
 
     db = sqlite_utils.Database(memory=True)
     enqueue(db, ["d@port.example"], "s", "text", HTML_WITH_IMAGE, kind="report", key="k",

@@ -1,4 +1,4 @@
-"""Store-and-forward outbox and SMTP delivery (alerts/outbox.py), against a real SMTP
+"""Store-and-forward outbox and SMTP delivery (alerts/mail/outbox.py), against a real SMTP
 server on loopback (aiosmtpd)."""
 from __future__ import annotations
 
@@ -10,8 +10,8 @@ import pytest
 import sqlite_utils
 from aiosmtpd.controller import Controller
 
-import alerts.outbox as outbox_mod
-from alerts.outbox import deliver_due, enqueue, list_outbox, mail_settings_from
+import alerts.mail.outbox as outbox_mod
+from alerts.mail.outbox import deliver_due, enqueue, list_outbox, mail_settings_from
 
 minute = 60
 hour = 3600
@@ -292,7 +292,7 @@ def test_attachment_content_id_survives_the_queue(db):
 
 @pytest.mark.parametrize("mode", [0o644, 0o604, 0o666, 0o602])
 def test_a_password_file_other_users_may_read_or_write_is_refused_with_the_fix(tmp_path, mode):
-    from alerts.outbox import password_file_problem
+    from alerts.mail.outbox import password_file_problem
 
     pw = tmp_path / "smtp password"
     pw.write_text("hunter2\n")
@@ -303,7 +303,7 @@ def test_a_password_file_other_users_may_read_or_write_is_refused_with_the_fix(t
 
 @pytest.mark.parametrize("mode", [0o600, 0o400, 0o640])
 def test_a_password_file_for_its_owner_and_group_is_accepted(tmp_path, mode):
-    from alerts.outbox import password_file_problem
+    from alerts.mail.outbox import password_file_problem
 
     (tmp_path / "pw").write_text("hunter2\n")
     (tmp_path / "pw").chmod(mode)

@@ -113,8 +113,8 @@ def _rows(db: Path) -> list[tuple]:
 
 
 def test_a_restart_takes_over_a_message_in_flight_at_once_with_the_same_message_id(tmp_path):
-    from alerts.outbox import enqueue
-    from monitor.store import Store
+    from alerts.mail.outbox import enqueue
+    from monitor.store.database import Store
 
     handler = Holding()
     port = _free_port()
@@ -154,8 +154,8 @@ def test_a_restart_takes_over_a_message_in_flight_at_once_with_the_same_message_
 
 
 def test_a_claim_of_a_live_process_is_left_alone(tmp_path):
-    from alerts.outbox import enqueue, process_identity, take_over_claims
-    from monitor.store import Store
+    from alerts.mail.outbox import enqueue, process_identity, take_over_claims
+    from monitor.store.database import Store
 
     with Store.open(tmp_path / "q.db") as store:
         enqueue(store.db, ["a@testport.example"], "s", "t", None, "test", "k1")

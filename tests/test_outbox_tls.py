@@ -1,4 +1,4 @@
-"""SMTP delivery over TLS with authentication (alerts/outbox.py), against real aiosmtpd
+"""SMTP delivery over TLS with authentication (alerts/mail/outbox.py), against real aiosmtpd
 servers on loopback using throwaway certificates from ``trustme``.
 
 References for the behaviour checked here:
@@ -24,7 +24,7 @@ import trustme
 from aiosmtpd.controller import Controller
 from aiosmtpd.smtp import AuthResult, LoginPassword
 
-from alerts.outbox import deliver_due, enqueue, mail_settings_from, outbox_row
+from alerts.mail.outbox import deliver_due, enqueue, mail_settings_from, outbox_row
 
 # aiosmtpd warns when AUTH is allowed without *its* STARTTLS; the implicit-TLS servers
 # below are encrypted from the first byte, so the warning does not apply to them

@@ -1,4 +1,4 @@
-"""Telemetry line parsing (monitor.parse)."""
+"""Telemetry line parsing (monitor.feeds.parse)."""
 from __future__ import annotations
 
 import datetime as dt
@@ -8,8 +8,8 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from monitor.config import LineFormat
-from monitor.parse import Observation, Reject, parse_line, parse_lines
+from monitor.feeds.parse import LineFormat
+from monitor.feeds.parse import Observation, Reject, parse_line, parse_lines
 
 mm = 1e-3
 RECV = 1_760_000_000.0  # an arbitrary receive time [s]

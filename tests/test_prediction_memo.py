@@ -1,10 +1,10 @@
-"""The daemon's per-station memo of predicted tide (monitor.daemon.PredictionMemo)."""
+"""The daemon's per-station memo of predicted tide (monitor.service.daemon.PredictionMemo)."""
 from __future__ import annotations
 
 import numpy as np
 import pandas as pd
 
-from monitor.daemon import PredictionMemo
+from monitor.service.daemon import PredictionMemo
 from predictor import TideModel
 
 mm = 1e-3

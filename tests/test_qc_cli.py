@@ -4,9 +4,9 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
-from monitor import qc
+from monitor.quality import checks as qc
 from monitor.cli import main
-from monitor.store import Store
+from monitor.store.database import Store
 from test_qc_synthetic import AMPS, MEAN, PHASES, mm, record
 
 CONFIG = """

@@ -7,8 +7,8 @@ from dataclasses import fields
 
 from hypothesis import given, settings, strategies as st
 
-from monitor import qc
-from monitor.qc import QcSettings, qc_settings_from
+from monitor.quality import checks as qc
+from monitor.quality.checks import QcSettings, qc_settings_from
 
 KP = "stations[0].qc"
 minute = 60

@@ -5,9 +5,9 @@ import numpy as np
 import pandas as pd
 import pytest
 
-from monitor import qc
+from monitor.quality import checks as qc
 from monitor.errors import UserError
-from monitor.store import Store
+from monitor.store.database import Store
 from test_qc_synthetic import SynthModel, minute, mm, record
 
 

@@ -12,9 +12,10 @@ import pytest
 from scipy.signal import lfilter
 
 import reference_tide as ref
-from monitor.config import validate_config
-from monitor.daemon import model_to_text, refit_station
-from monitor.store import Store
+from monitor.service.config import validate_config
+from monitor.service.constants import model_to_text
+from monitor.service.daemon import refit_station
+from monitor.store.database import Store
 from predictor import TideModel
 from test_short_records import MEAN, SEA, START
 

@@ -10,7 +10,7 @@ from pathlib import Path
 import numpy as np
 import pytest
 
-from alerts.report import write_day_report, write_index
+from alerts.reports.render import write_day_report, write_index
 from report_samples import sample_report
 
 pytestmark = pytest.mark.browser

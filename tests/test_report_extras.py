@@ -8,10 +8,10 @@ import numpy as np
 import pandas as pd
 import pytest
 
-from alerts.report import day_bounds
-from monitor.qc import add_staff_reading
-from monitor.reporting import barometric_share, gather_day
-from monitor.store import Store
+from alerts.reports.model import day_bounds
+from monitor.quality.checks import add_staff_reading
+from monitor.service.reporting import barometric_share, gather_day
+from monitor.store.database import Store
 from predictor import TideModel
 
 mm = 1e-3
@@ -112,7 +112,7 @@ def test_forecast_is_predicted_high_water_plus_current_residual(report, site):
 
 def test_short_history_gives_a_wide_range_and_says_so(report):
     # Three days of history hold no storm: the range is the wide rule of thumb, said in words,
-    # and at least +-0.25 m plus half the surge about the forecast (monitor.surge_forecast).
+    # and at least +-0.25 m plus half the surge about the forecast (monitor.surge.forecast).
     w = report.forecast
     assert w.method == "wide" and "WIDE RANGE" in w.note and "only 0 storms" in w.note
     assert w.lower <= w.forecast - 0.25 - 0.5 * abs(w.residual_now) + 1 * mm
@@ -169,8 +169,7 @@ def test_a_forecast_made_for_the_report_is_made_as_of_the_days_end(site):
 
 
 def _log_forecast(store, hw_t, made_t, forecast, lower, upper):
-    from monitor import surge_forecast as SF
-
+    from monitor.surge import forecast as SF
     SF.ensure_forecast_schema(store.db)
     with store.transaction() as conn:
         SF.log_forecasts(conn, "skq", [{"hw_t": hw_t, "made_t": made_t, "predicted_high": forecast - 0.1,
@@ -179,7 +178,7 @@ def _log_forecast(store, hw_t, made_t, forecast, lower, upper):
 
 
 def test_verification_table_shows_each_high_water_against_its_forecasts(site):
-    from alerts.report import render_day_html
+    from alerts.reports.render import render_day_html
 
     store, model, start, end = site
     base = gather_day(store, Station(), DAY, model=model, model_source="constants file", now=end)

@@ -10,11 +10,18 @@ import numpy as np
 import pandas as pd
 import pytest
 
-from alerts.report import (
-    CAUTION, ReportSettings, day_bounds, day_figures, infer_interval, prune_reports, read_summary, render_day_email,
-    render_day_html, report_settings_from, write_day_report, write_index, zone_label,
+from alerts.reports.model import (
+
+    CAUTION, ReportSettings, day_bounds, day_figures, infer_interval, report_settings_from, zone_label,
+
 )
-from alerts.message import build_email
+
+from alerts.reports.render import (
+
+    prune_reports, read_summary, render_day_email, render_day_html, write_day_report, write_index,
+
+)
+from alerts.mail.message import build_email
 from report_samples import TZ, sample_report
 
 hour = 3600.0

@@ -8,11 +8,13 @@ import pandas as pd
 import pytest
 import tomli_w
 
-from alerts.report import day_bounds, read_summary
+from alerts.reports.model import day_bounds
+
+from alerts.reports.render import read_summary
 from monitor.cli import main
-from monitor.config import validate_config
-from monitor.reporting import due_day, gather_day, low_water_differences, write_due_reports
-from monitor.store import Store
+from monitor.service.config import validate_config
+from monitor.service.reporting import due_day, gather_day, low_water_differences, write_due_reports
+from monitor.store.database import Store
 from predictor import TideModel
 
 mm = 1e-3
@@ -130,7 +132,7 @@ def test_a_level_rules_peak_is_on_the_report_datum_and_a_surges_keeps_its_sign(s
 
 
 def test_report_html_names_the_datum_beside_the_levels(site):
-    from alerts.report import render_day_html
+    from alerts.reports.render import render_day_html
 
     config, folder, _ = site
     with Store.open(folder / "port.db") as store:

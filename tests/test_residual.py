@@ -1,12 +1,11 @@
-"""Live residual, smoothing, skew surge, forecast and inverse barometer (monitor.residual)."""
+"""Live residual, smoothing, skew surge, forecast and inverse barometer (monitor.surge.residual)."""
 from __future__ import annotations
 
 import numpy as np
 import pandas as pd
 import pytest
 
-from monitor import residual as R
-
+from monitor.surge import residual as R
 mm = 1e-3
 minute = 60
 hour = 3600

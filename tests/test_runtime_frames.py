@@ -9,7 +9,7 @@ import weakref
 import numpy as np
 import pandas as pd
 
-from monitor.daemon import Frozen, StationRuntime
+from monitor.service.daemon import Frozen, StationRuntime
 from predictor import TideModel
 
 MODEL = TideModel.from_dict({"mean": 2.0, "constituents": [{"name": "M2", "amplitude": 1.0, "phase": 40.0}]})

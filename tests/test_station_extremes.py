@@ -1,4 +1,4 @@
-"""The ``extremes`` verb and its station glue (monitor.station_extremes) on a store.
+"""The ``extremes`` verb and its station glue (monitor.service.extremes) on a store.
 
 The record is eight invented years (fixture ``records_station``: sample_feeds/decades.py with
 a fixed seed and a datum step in the middle), ingested through the command line. Checks are
@@ -10,6 +10,8 @@ test_sealevel.py and test_decades.py.
 """
 from __future__ import annotations
 
+import contextlib
+import io
 import json
 import shutil
 import sqlite3
@@ -19,6 +21,10 @@ import pytest
 
 from monitor.cli import main as cli
 from monitor.demo_decades import STATION
+from monitor.service import extremes as se
+from monitor.service.config import load_config
+from monitor.service.constants import load_model
+from monitor.store.database import Store
 
 # A small bootstrap and four periods keep these tests quick; the band's coverage is checked
 # with the defaults in test_extremes_coverage.py.
@@ -40,9 +46,6 @@ def _json(capsys, config, *args):
 @pytest.fixture(scope="module")
 def result(records_station):
     """The verb's JSON with the station log's datum step given, computed once."""
-    import contextlib
-    import io
-
     config, truth, _ = records_station
     buf = io.StringIO()
     with contextlib.redirect_stdout(buf):
@@ -165,11 +168,6 @@ def _append(db, t0, hours, level):
 
 
 def test_cache_is_kept_until_a_new_annual_maximum(records_station, tmp_path):
-    from monitor import station_extremes as se
-    from monitor.config import load_config
-    from monitor.daemon import load_model
-    from monitor.store import Store
-
     config, db, _ = _copy(records_station, tmp_path)
     cfg = load_config(config)
     st = cfg.station(STATION)
@@ -196,11 +194,6 @@ def test_cache_is_kept_until_a_new_annual_maximum(records_station, tmp_path):
 
 
 def test_report_section_says_the_days_water_in_words(records_station, tmp_path):
-    from monitor import station_extremes as se
-    from monitor.config import load_config
-    from monitor.daemon import load_model
-    from monitor.store import Store
-
     config, db, _ = _copy(records_station, tmp_path)
     st = load_config(config).station(STATION)
     with Store.open(db, create=False) as store:

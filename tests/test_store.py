@@ -1,13 +1,13 @@
-"""The SQLite store (monitor.store): batches, duplicates, checkpoints, lock, migrations."""
+"""The SQLite store (monitor.store.database): batches, duplicates, checkpoints, lock, migrations."""
 from __future__ import annotations
 
 import numpy as np
 import pytest
 
-from monitor.config import LineFormat
+from monitor.feeds.parse import LineFormat
 from monitor.errors import UserError
-from monitor.parse import parse_lines
-from monitor.store import SCHEMA_VERSION, Store
+from monitor.feeds.parse import parse_lines
+from monitor.store.database import SCHEMA_VERSION, Store
 
 LINES = ["2025-01-01T00:00:00Z,1.00", "2025-01-01T00:01:00Z,1.01", "bad line", "2025-01-01T00:02:00Z,1.02"]
 

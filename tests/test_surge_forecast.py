@@ -1,4 +1,4 @@
-"""The next high water forecast conditioned on the storm now (monitor.surge_forecast).
+"""The next high water forecast conditioned on the storm now (monitor.surge.forecast).
 
 Reference values here share no code with the module: the law of the invented data is
 written out (normal errors whose spread grows with the storm), its quantiles come from
@@ -13,8 +13,7 @@ import pandas as pd
 import pytest
 from scipy import stats
 
-from monitor import surge_forecast as SF
-
+from monitor.surge import forecast as SF
 mm = 1e-3
 hour = 3600.0
 T0 = 1.7e9

@@ -52,6 +52,12 @@ from pathlib import Path
 from typing import Any, Iterable
 
 from monitor.feeds.base import Feed
+from monitor.feeds.dropfolder import FolderFeed
+from monitor.feeds.filetail import FileFeed
+from monitor.feeds.replay import ReplayFeed
+from monitor.feeds.serialline import FLOWS
+from monitor.feeds.serialline import PARITIES
+from monitor.feeds.serialline import SerialFeed
 
 KINDS = ("file", "folder", "serial", "replay")
 
@@ -229,7 +235,6 @@ def feed_from_config(raw: dict, keypath: str, *, ignore: Iterable[str] = (),
             values["bytesize"] = get["bytesize"]
         else:
             err("bytesize", f"expected 5, 6, 7 or 8 data bits, got {get['bytesize']!r}")
-    from monitor.feeds.serialline import FLOWS, PARITIES  # pyserial only when needed
 
     choice("parity", PARITIES)
     choice("flow", FLOWS)
@@ -294,25 +299,17 @@ def open_feed(spec: FeedSpec, name: str, capture_dir: str | os.PathLike | None =
         device instead of failing.
     """
     if spec.kind == "file":
-        from monitor.feeds.filetail import FileFeed
-
         return FileFeed(name, spec.path, encoding=spec.encoding)
     if spec.kind == "folder":
-        from monitor.feeds.dropfolder import FolderFeed
-
         return FolderFeed(name, spec.path, pattern=spec.pattern, settle=spec.settle,
                           encoding=spec.encoding)
     if spec.kind == "serial":
-        from monitor.feeds.serialline import SerialFeed
-
         return SerialFeed(name, spec.port, baud=spec.baud, bytesize=spec.bytesize,
                           parity=spec.parity, stopbits=spec.stopbits, flow=spec.flow,
                           encoding=spec.encoding, reopen_after=spec.reopen_after,
                           reopen_max=spec.reopen_max,
                           capture_dir=None if capture_dir is None else os.fspath(capture_dir))
     if spec.kind == "replay":
-        from monitor.feeds.replay import ReplayFeed
-
         return ReplayFeed(name, spec.path, speedup=spec.speedup, rate=spec.rate,
                           time_column=spec.time_column, time_format=spec.time_format,
                           delimiter=spec.delimiter, max_pause=spec.max_pause,

@@ -3,7 +3,7 @@
 Return levels by two routes side by side (annual maxima with a GEV fit; declustered skew
 surges with a GPD joined with the predicted high waters), their 95 % bands, the return period
 of a level or of an event, threshold diagnostics, and the sea-level trend, all from the
-station's own QC-passed record (:mod:`monitor.station_extremes`).
+station's own QC-passed record (:mod:`monitor.service.extremes`).
 """
 from __future__ import annotations
 
@@ -14,8 +14,14 @@ import sys
 
 import pandas as pd
 
-from monitor.cli_common import CAUTION, finite_float, positive_int, store_errors, table
+from monitor.cli.common import CAUTION, finite_float, positive_int, store_errors, table
+from monitor.cli.timeparse import parse_time
 from monitor.errors import UserError
+from monitor.service import extremes as se
+from monitor.service.config import load_config
+from monitor.service.constants import load_model
+from monitor.store.database import Store
+from predictor import extremes as ex
 
 __all__ = ["register", "cmd_extremes", "render_text"]
 
@@ -64,13 +70,6 @@ def register(subparsers) -> None:
 
 
 def cmd_extremes(args: argparse.Namespace) -> int:
-    from monitor import station_extremes as se
-    from monitor.config import load_config
-    from monitor.daemon import load_model
-    from monitor.store import Store
-    from monitor.timeparse import parse_time
-    from predictor import extremes as ex
-
     cfg = load_config(args.config)
     st = cfg.station(args.station)
     steps = tuple(parse_time(s, "--datum-step", st.tz).isoformat() for s in args.datum_step)

@@ -31,11 +31,11 @@ import sqlite_utils
 
 from monitor.errors import UserError
 
-log = logging.getLogger("monitor.store")
+log = logging.getLogger("monitor.store.database")
 
 SCHEMA_VERSION = 2
 #: Aggregate QARTOD flags a sample may carry and still move anything (1 pass, 2 not
-#: evaluated, 3 suspect); the same set as ``monitor.qc.USABLE_FLAGS``.
+#: evaluated, 3 suspect); the same set as ``monitor.quality.checks.USABLE_FLAGS``.
 USABLE_SQL = "flag IN (1, 2, 3)"
 DERIVED_COLUMNS = ("observed", "predicted", "residual", "smoothed", "barometric")
 
@@ -247,7 +247,7 @@ class Store:
             Levels [m, station datum] or pressure [hPa].
         time_source : array of str, optional
             'sensor' or 'receive' per row (default 'sensor').
-        rejects : list of monitor.parse.Reject
+        rejects : list of monitor.feeds.parse.Reject
             Lines that could not be read; kept with the feed name and reason.
         feed : str, optional
             Feed name; with ``state``, the checkpoint stored in the same transaction.

@@ -23,13 +23,34 @@ from typing import Sequence
 import numpy as np
 import pandas as pd
 
-from monitor.config import LineFormat
 
 MAX_TEXT = 500  # characters of a rejected line kept in the store
 # Plausible epoch range: 1900-01-01 .. 2200-01-01 [s]; outside it a clock or a format is wrong.
 _T_MIN, _T_MAX = -2208988800, 7258118400
 # The tail of an ISO 8601 time carrying a UTC offset (the 'Z' designator is checked first).
 _OFFSET_TAIL = re.compile(r"\d[+-]\d{2}(?::?\d{2})?$")
+
+
+@dataclass(frozen=True)
+class LineFormat:
+    """How to read one telemetry line of a sensor.
+
+    Columns are 1-based as a user counts them; ``time_column = 0`` means the line has
+    no time and the receive time is used (stored with ``time_source = 'receive'``).
+    ``scale`` converts the reading to metres (hPa for a barometer); ``offset`` is then
+    added (sensor zero to station datum).
+    """
+
+    delimiter: str = ","
+    time_column: int = 1
+    value_column: int = 2
+    time_format: str = "iso"
+    naive_time_zone: str = ""
+    comment: str = "#"
+    header_lines: int = 0
+    missing_marker: str = ""
+    scale: float = 1.0
+    offset: float = 0.0
 
 
 def _is_aware(s: str) -> bool:

@@ -65,7 +65,7 @@ from email.utils import parseaddr
 from pathlib import Path
 from typing import Any, Callable, Iterable, Iterator
 
-from alerts.message import build_email, clean_header
+from alerts.mail.message import build_email, clean_header
 from alerts.rules import parse_duration
 
 log = logging.getLogger(__name__)

@@ -1,6 +1,6 @@
 """The live residual: observed minus predicted tide, its smoothed form, skew surge,
 the coming high waters, and the inverse-barometer part of the residual (the next high
-water forecast itself is :mod:`monitor.surge_forecast`).
+water forecast itself is :mod:`monitor.surge.forecast`).
 
 Pure functions on numpy/pandas (UTC DatetimeIndex, metres); the daemon reads the store,
 calls these, and writes table ``derived`` (plus ``skew_surges`` and ``hw_forecasts``).

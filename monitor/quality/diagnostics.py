@@ -15,7 +15,7 @@
 - :func:`equipment_faults`: fault conditions as plain data for the alerts engine.
 
 All functions are pure: pandas Series on a UTC DatetimeIndex in, numbers and frames out.
-Pass *usable* samples (see :func:`monitor.qc.usable_mask`): spikes bias the estimates.
+Pass *usable* samples (see :func:`monitor.quality.checks.usable_mask`): spikes bias the estimates.
 
 Sign conventions: ``lag`` [s] is positive when events appear in the gauge record later
 than they happened (the gauge's clock runs fast, or its filter delays): the record
@@ -39,7 +39,9 @@ import numpy as np
 import pandas as pd
 from scipy import signal, stats
 
-from monitor.qc import USABLE_FLAGS, QcSettings, difference_at, seconds, utc_index
+from monitor.quality.checks import USABLE_FLAGS, QcSettings, difference_at, seconds, utc_index
+from predictor.constituents import get
+from predictor.fit import harmonic_fit
 
 DAY = 86400.0
 MM = 1e-3
@@ -882,9 +884,6 @@ def monthly_constants(observed: pd.Series, model: Any, names: Iterable[str] = MA
     Foreman (1977) least-squares analysis; Godin (1972) Rayleigh criterion; the fit is
     :func:`predictor.fit.harmonic_fit`.
     """
-    from predictor.fit import harmonic_fit
-    from predictor.constituents import get
-
     names = list(names)
     obs = observed.dropna()
     cols = ["month", "name", "amplitude", "amplitude_ci", "phase", "phase_ci", "ref_amplitude", "ref_phase",

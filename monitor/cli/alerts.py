@@ -10,10 +10,18 @@ from email.utils import parseaddr
 from pathlib import Path
 from zoneinfo import ZoneInfo
 
-from monitor.cli_common import CAUTION, positive_int, store_errors
-from monitor.cli_common import table as _common_table
+from alerts.engine import list_episodes
+from alerts.mail.message import compose_test
+from alerts.mail.outbox import deliver_due
+from alerts.mail.outbox import enqueue
+from alerts.mail.outbox import list_outbox
+from alerts.mail.outbox import outbox_row
+from monitor.cli.common import CAUTION, positive_int, store_errors
+from monitor.cli.common import table as _common_table
+from monitor.cli.timeparse import local_text
 from monitor.errors import UserError
-from monitor.timeparse import local_text
+from monitor.service.config import load_config
+from monitor.store.database import Store
 
 CAUTION_LINE = CAUTION
 
@@ -48,7 +56,6 @@ def register(subparsers) -> None:
 # --------------------------------------------------------------------------- helpers
 
 def _config(path: str):
-    from monitor.config import load_config
     return load_config(path)
 
 
@@ -58,7 +65,6 @@ def _store_path(cfg) -> Path:
 
 def _open(cfg, create: bool = False):
     """The store's sqlite_utils.Database, without the daemon's lock (it may be running)."""
-    from monitor.store import Store
     path = _store_path(cfg)
     if not create and not path.exists():
         raise UserError(f"{cfg.path or 'configuration'}: store.path {str(path)!r} does not exist yet "
@@ -121,7 +127,6 @@ def _value(v, unit) -> str:
 # --------------------------------------------------------------------------- commands
 
 def cmd_episodes(args: argparse.Namespace) -> int:
-    from alerts.engine import list_episodes
     cfg = _config(args.config)
     if args.station:
         cfg.station(args.station)  # a UserError naming the known stations
@@ -146,7 +151,6 @@ def cmd_episodes(args: argparse.Namespace) -> int:
 
 
 def cmd_outbox(args: argparse.Namespace) -> int:
-    from alerts.outbox import list_outbox
     cfg = _config(args.config)
     db = _open(cfg)
     rows = list_outbox(db, limit=max(1, args.limit), status=args.status)
@@ -178,8 +182,6 @@ def cmd_outbox(args: argparse.Namespace) -> int:
 
 
 def cmd_test_mail(args: argparse.Namespace) -> int:
-    from alerts.message import compose_test
-    from alerts.outbox import deliver_due, enqueue, outbox_row
     cfg = _config(args.config)
     settings = getattr(cfg, "mail", None)
     if settings is None:

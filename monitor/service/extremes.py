@@ -18,7 +18,7 @@ is named when it stands above everything that passed (a storm's crest flagged su
 be confirmed by a technician, not silently dropped).
 
 Datum steps come from two places, named in the output: steps found by quality control's
-datum-step test (:func:`monitor.diagnostics.datum_steps`, run here on the hourly residual of
+datum-step test (:func:`monitor.quality.diagnostics.datum_steps`, run here on the hourly residual of
 the passed record) and steps the technician gives (the station log: a gauge replaced, a zero
 reset).
 
@@ -49,10 +49,13 @@ from typing import Any
 import numpy as np
 import pandas as pd
 
+from alerts.reports.rarity import RaritySection
 from monitor.errors import UserError
-from monitor.residual import skew_surges
+from monitor.quality import diagnostics as dg
+from monitor.surge.residual import skew_surges
 from predictor import extremes as ex
 from predictor import sealevel as sl
+from predictor.rarity import rarity_words
 
 __all__ = ["RecordError", "StationRecord", "read_record", "analyse", "cached_analysis",
            "CURVE_PERIODS", "TABLE", "PASSED"]
@@ -153,7 +156,7 @@ def _utc(secs: np.ndarray) -> pd.DatetimeIndex:
 def qc_datum_steps(record: StationRecord, model: Any, qc_settings: Any = None) -> pd.DataFrame:
     """Datum steps found by quality control's test on the hourly residual of the passed record.
 
-    The test (:func:`monitor.diagnostics.datum_steps`) with the station's ``qc.step_min_mm``;
+    The test (:func:`monitor.quality.diagnostics.datum_steps`) with the station's ``qc.step_min_mm``;
     its window is six hours of hourly means either side (the record is reduced to hours).
 
     Returns
@@ -161,8 +164,6 @@ def qc_datum_steps(record: StationRecord, model: Any, qc_settings: Any = None) -
     pandas.DataFrame
         ``time`` (UTC), ``step_mm``, ``se_mm``; empty when none is found.
     """
-    from monitor import diagnostics as dg
-
     s = record.hourly_mean
     if len(s) < 48 or model is None:
         return pd.DataFrame(columns=["time", "step_mm", "se_mm"])
@@ -211,10 +212,10 @@ def analyse(record: StationRecord, model: Any, station: Any, options: Options = 
     record : StationRecord
     model : predictor.TideModel
         The station's tide on the station datum (its trend is left out).
-    station : monitor.config.StationConfig
+    station : monitor.service.config.StationConfig
         For the display datum (``display_offset``, ``display_label``).
     options : Options
-    qc_settings : monitor.qc.QcSettings, optional
+    qc_settings : monitor.quality.checks.QcSettings, optional
         For the datum-step test's minimum step.
 
     Returns
@@ -579,12 +580,9 @@ def report_section(store: Any, station: Any, model: Any, highest: float | None, 
 
     Returns
     -------
-    alerts.rarity_report.RaritySection
+    alerts.reports.rarity.RaritySection
         With ``words`` None and a ``note`` saying why when the record cannot give a curve.
     """
-    from alerts.rarity_report import RaritySection
-    from predictor.rarity import rarity_words
-
     options = options or last_options(store, station.id)
     try:
         result, fresh = cached_analysis(store, station, model, options, qc_settings)

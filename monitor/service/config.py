@@ -24,7 +24,14 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any, Callable
 
+from alerts.mail.outbox import mail_settings_from
+from alerts.mail.outbox import password_file_problem
+from alerts.reports.model import report_settings_from
+from alerts.rules import rules_from_config
 from monitor.errors import UserError
+from monitor.feeds import feed_from_config
+from monitor.feeds.parse import LineFormat
+from monitor.quality.checks import qc_settings_from
 from predictor.tomlfile import read_toml
 
 # Conversion of each accepted unit to metres (levels) or hectopascals (pressure).
@@ -44,28 +51,6 @@ def datum_words(name: str) -> str:
     """A datum's name in words: ``"chart"`` -> ``"chart datum"``, ``"quay"`` -> ``"quay datum"``."""
     text = str(name).replace("_", " ").strip()
     return text if "datum" in text.lower() else f"{text} datum"
-
-
-@dataclass(frozen=True)
-class LineFormat:
-    """How to read one telemetry line of a sensor.
-
-    Columns are 1-based as a user counts them; ``time_column = 0`` means the line has
-    no time and the receive time is used (stored with ``time_source = 'receive'``).
-    ``scale`` converts the reading to metres (hPa for a barometer); ``offset`` is then
-    added (sensor zero to station datum).
-    """
-
-    delimiter: str = ","
-    time_column: int = 1
-    value_column: int = 2
-    time_format: str = "iso"
-    naive_time_zone: str = ""
-    comment: str = "#"
-    header_lines: int = 0
-    missing_marker: str = ""
-    scale: float = 1.0
-    offset: float = 0.0
 
 
 @dataclass(frozen=True)
@@ -176,7 +161,7 @@ class ResidualSettings:
     min_history_days: float = 14.0
     reference_pressure: float = 1013.25
     # Fewest storms in the history for a range conditioned on the storm now; with fewer the
-    # range is the wide rule of thumb, said in words (monitor.surge_forecast).
+    # range is the wide rule of thumb, said in words (monitor.surge.forecast).
     forecast_min_storms: int = 20
 
 
@@ -394,22 +379,16 @@ def validate_config(raw: Any, base_dir: Path | str = ".", path: Path | None = No
     if "mail" in raw:
         mt = c.table(raw.get("mail"), "mail")
         if mt is not None:
-            from alerts.outbox import mail_settings_from
-
             mail, errs = _validate_with(mail_settings_from, mt, "mail")
             errors.extend(errs)
     if "reports" in raw:
         rt = c.table(raw.get("reports"), "reports")
         if rt is not None:
-            from alerts.report import report_settings_from
-
             reports, errs = _validate_with(report_settings_from, rt, "reports")
             errors.extend(errs)
 
     mail = _resolve_fields(mail, base_dir, ("password_file", "save_dir", "ca_file"))
     if mail is not None and mail.password_file:
-        from alerts.outbox import password_file_problem
-
         problem = password_file_problem(mail.password_file)
         if problem:
             errors.append(f"mail.password_file {problem}")
@@ -557,8 +536,6 @@ def _station(c: _Checker, raw: Any, kp: str, base_dir: Path) -> StationConfig | 
     qc = None
     qt = c.table(qc_raw, f"{kp}.qc")
     if qt is not None:
-        from monitor.qc import qc_settings_from
-
         qc, errs = _validate_with(qc_settings_from, qt, f"{kp}.qc")
         errors.extend(errs)
     rules_raw = t.get("rules", [])
@@ -566,8 +543,6 @@ def _station(c: _Checker, raw: Any, kp: str, base_dir: Path) -> StationConfig | 
     if not isinstance(rules_raw, list):
         errors.append(f"{kp}.rules: expected an array of tables ([[stations.rules]]), got {_show(rules_raw)}")
     else:
-        from alerts.rules import rules_from_config
-
         r, errs = _validate_with(rules_from_config, rules_raw, f"{kp}.rules", datums)
         errors.extend(errs)
         rules = r if r is not None else ()
@@ -631,8 +606,6 @@ def _sensor(c: _Checker, raw: Any, kp: str, station: str, role: str) -> SensorCo
     if feed_raw is not None:
         ft = c.table(feed_raw, f"{kp}.feed")
         if ft is not None:
-            from monitor.feeds import feed_from_config
-
             spec, errs = _validate_with(feed_from_config, ft, f"{kp}.feed")
             errors.extend(errs)
     if len(errors) > n0:

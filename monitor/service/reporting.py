@@ -1,7 +1,7 @@
 """Daily reports from the store: gather a station's local day into a DayReport, write it,
 keep the index, email it through the outbox, and decide which reports are due.
 
-Rendering lives in :mod:`alerts.report` (which knows nothing of the store); this module only
+Rendering lives in :mod:`alerts.reports.render` (which knows nothing of the store); this module only
 reads the store and fills the data structure. Levels are shown on chart datum when the station
 defines a ``chart`` datum, else on the station datum.
 """
@@ -17,9 +17,20 @@ from zoneinfo import ZoneInfo
 import numpy as np
 import pandas as pd
 
-from alerts import report as R
-from monitor.config import datum_words
+from alerts.mail.outbox import enqueue
+from alerts.reports import model as R
+from alerts.reports import render as RR
 from monitor.errors import UserError
+from monitor.quality import checks as Q
+from monitor.quality import diagnostics as D
+from monitor.quality.checks import read_level_series
+from monitor.service.config import ResidualSettings, datum_words
+from monitor.service import extremes as EX
+from monitor.service.constants import load_model
+from monitor.surge import forecast as SF
+from monitor.surge import residual as RS
+from monitor.surge.residual import skew_surges
+from monitor.surge.residual import tide_stands
 
 log = logging.getLogger(__name__)
 
@@ -40,7 +51,7 @@ def low_water_differences(observed: pd.Series, extremes: pd.DataFrame) -> pd.Dat
     high-water quantity). The cycle runs between the neighbouring predicted high waters (the
     mirror image of the skew surge's cycle); a double low water is one low water, at its lower
     trough, and the peaks of a double high water bound the cycle from their side of the stand
-    (:func:`monitor.residual.tide_stands`). Returns ``time``, ``predicted``, ``observed``,
+    (:func:`monitor.surge.residual.tide_stands`). Returns ``time``, ``predicted``, ``observed``,
     ``observed_time``, ``difference`` [m], one row per low water with usable observations in
     its cycle.
 
@@ -49,8 +60,6 @@ def low_water_differences(observed: pd.Series, extremes: pd.DataFrame) -> pd.Dat
     Williams, J., et al. (2016). Tide and skew surge independence. GRL 43 (skew surge, mirrored
     here at low water).
     """
-    from monitor.residual import tide_stands
-
     rows = []
     cols = ["time", "predicted", "observed", "observed_time", "difference"]
     if extremes is None or extremes.empty:
@@ -166,12 +175,12 @@ def _table(db: Any, name: str) -> bool:
 def gather_day(store: Any, station: Any, day: dt.date, settings: R.ReportSettings | None = None, *,
                model: Any = None, model_source: str = "", now: pd.Timestamp | None = None,
                residual: Any = None) -> R.DayReport:
-    """Fill a :class:`alerts.report.DayReport` for one station's local day from the store.
+    """Fill a :class:`alerts.reports.model.DayReport` for one station's local day from the store.
 
     Parameters
     ----------
-    store : monitor.store.Store
-    station : monitor.config.StationConfig
+    store : monitor.store.database.Store
+    station : monitor.service.config.StationConfig
     day : date
         The local date in the station's zone.
     model : TideModel, optional
@@ -179,7 +188,7 @@ def gather_day(store: Any, station: Any, day: dt.date, settings: R.ReportSetting
     now : Timestamp, optional
         When the report is written (default the clock). The report describes its own day:
         forecasts shown are those issued during the day, never after it.
-    residual : monitor.config.ResidualSettings, optional
+    residual : monitor.service.config.ResidualSettings, optional
         The forecast's settings, for a forecast made here when the daemon kept none.
     """
     settings = settings or R.ReportSettings()
@@ -190,8 +199,6 @@ def gather_day(store: Any, station: Any, day: dt.date, settings: R.ReportSetting
     datum, shift = _report_datum(station)
 
     if model is None:
-        from monitor.daemon import load_model
-
         try:
             model, model_source = load_model(store, station)
         except UserError as exc:
@@ -248,10 +255,8 @@ def gather_day(store: Any, station: Any, day: dt.date, settings: R.ReportSetting
         log.exception("station %s: tide-staff check for the report failed", sid)
     rarity = None
     try:
-        from monitor.station_extremes import report_section
-
         passed = samples.loc[samples["flag"] == 1, "observed"] if len(samples) else samples["observed"]
-        rarity = report_section(store, station, model, float(passed.max()) if len(passed) else None,
+        rarity = EX.report_section(store, station, model, float(passed.max()) if len(passed) else None,
                                 passed.idxmax() if len(passed) else None, qc_settings=getattr(station, "qc", None))
     except Exception:  # return levels must never stop the day's report
         log.exception("station %s: return levels for the report failed", sid)
@@ -279,10 +284,8 @@ def _forecast(store: Any, station: Any, model: Any, start: pd.Timestamp, end: pd
     From the forecast log (every forecast the daemon made) or the daemon's latest forecast of
     each high water, issued between the day's start and its end (or now, if the day is not
     over); else, with a model, one made here as the daemon would have made it at that moment,
-    from the store's history up to it (:mod:`monitor.surge_forecast`).
+    from the store's history up to it (:mod:`monitor.surge.forecast`).
     """
-    from monitor import surge_forecast as SF
-
     db = store.db
     sid = station.id
     t0, made_before = int(start.timestamp()), int(min(now, end).timestamp()) - 1
@@ -304,12 +307,7 @@ def _forecast(store: Any, station: Any, model: Any, start: pd.Timestamp, end: pd
 
 def _forecast_at(store: Any, station: Any, model: Any, at_t: int, shift: float, residual: Any) -> R.HighWaterForecast | None:
     """The forecast of the next high water as the daemon would have issued it at ``at_t``."""
-    from monitor import residual as RS
-    from monitor import surge_forecast as SF
-
     if residual is None:
-        from monitor.config import ResidualSettings
-
         residual = ResidualSettings()
     sid = station.id
     at = pd.Timestamp(at_t, unit="s", tz="UTC")
@@ -334,7 +332,7 @@ def _forecast_at(store: Any, station: Any, model: Any, at_t: int, shift: float, 
 
 
 def _forecast_row(fc: dict, shift: float) -> R.HighWaterForecast:
-    """A forecast dict of :mod:`monitor.surge_forecast` (or a stored row) on the report's datum."""
+    """A forecast dict of :mod:`monitor.surge.forecast` (or a stored row) on the report's datum."""
     def level(v: Any) -> float | None:
         v = _num(v)
         return None if v is None else v - shift
@@ -357,8 +355,6 @@ def _verification(store: Any, sid: str, tides: list, shift: float) -> list[R.Ver
     """For each high water of the day: what was forecast 6, 3 and 1 h before (the last forecast
     issued at or before each, within an hour of it), against what came (the highest observed
     level of its tidal cycle)."""
-    from monitor import surge_forecast as SF
-
     highs = [w for w in tides if w.kind == "high"]
     if not highs:
         return []
@@ -388,8 +384,6 @@ def _verification(store: Any, sid: str, tides: list, shift: float) -> list[R.Ver
 
 def _staff(store: Any, sid: str, end: pd.Timestamp, weeks: int, shift: float) -> R.StaffCheck | None:
     """The Van de Casteele check of the latest staff session in the recent weeks, if any."""
-    from monitor import diagnostics as D
-
     db = store.db
     if not _table(db, "staff_readings"):
         return None
@@ -428,9 +422,6 @@ def _staff(store: Any, sid: str, end: pd.Timestamp, weeks: int, shift: float) ->
 def _tides(model: Any, usable: pd.Series, start: pd.Timestamp, end: pd.Timestamp,
            shift: float) -> list[R.TideRow]:
     """Predicted high and low waters of the day against the usable observations [m, station datum]."""
-    from monitor import residual as RS
-    from monitor.residual import skew_surges
-
     extremes = model.high_low(start - pd.Timedelta(hours=14), end + pd.Timedelta(hours=14))
     extremes = extremes.assign(time=pd.to_datetime(extremes["time"], utc=True))
     highs = skew_surges(usable, extremes) if len(usable) else pd.DataFrame(columns=["hw_t"])
@@ -492,8 +483,6 @@ def _rejects(db: Any, sid: str, t0: int, t1: int) -> tuple[list[R.RejectRow], in
 
 
 def _qc(store: Any, sid: str, t0: int, t1: int) -> tuple[dict, list[R.QcEpisode]]:
-    from monitor import qc as Q
-
     db = store.db
     if not _table(db, "qc_tests"):
         return {}, []
@@ -516,8 +505,6 @@ def _qc(store: Any, sid: str, t0: int, t1: int) -> tuple[dict, list[R.QcEpisode]
 
 
 def _series(store: Any, sid: str, sensor: str, t0: int, t1: int) -> pd.Series:
-    from monitor.qc import read_level_series
-
     # flags 1, 2, 3 only (fail and missing never count), and no spell the flat-line test doubts
     return read_level_series(store, sid, sensor, t0, t1)
 
@@ -529,8 +516,6 @@ def _diagnostics(store: Any, station: Any, model: Any, end: pd.Timestamp, weeks:
     A diagnostic that cannot be computed (no backup, no model, too little data) is left out
     or says why, and never stops the report.
     """
-    from monitor import diagnostics as D
-
     sid = station.id
     t_end = int(end.timestamp())
     t_start = int((end - weeks * WEEK).timestamp())
@@ -710,9 +695,9 @@ def write_station_day(config: Any, store: Any, station: Any, day: dt.date, *, se
     now = now or pd.Timestamp.now(tz="UTC")
     report = gather_day(store, station, day, settings, now=now, residual=getattr(config, "residual", None))
     try:
-        path = R.write_day_report(report, settings.folder)
-        R.prune_reports(settings.folder, settings.keep_days, day)
-        R.write_index(settings.folder, now)
+        path = RR.write_day_report(report, settings.folder)
+        RR.prune_reports(settings.folder, settings.keep_days, day)
+        RR.write_index(settings.folder, now)
     except OSError as exc:
         raise UserError(f"reports.folder {settings.folder}: cannot write the report ({exc})") from None
     queued = 0
@@ -732,9 +717,7 @@ def queue_email(store: Any, report: R.DayReport, recipients: Iterable[str], path
     (multipart/related, RFC 2387), which mail clients show in place, unlike data: URIs;
     the text part is the summary. ``path`` (the written page) is not needed any more.
     """
-    from alerts.outbox import enqueue
-
-    mail = R.render_day_email(report)
+    mail = RR.render_day_email(report)
     return enqueue(store.db, list(recipients), mail.subject, mail.text, mail.html, kind="report",
                    key=f"report/{report.station_id}/{report.day.isoformat()}", attachments=mail.attachments(),
                    now=int((now or pd.Timestamp.now(tz="UTC")).timestamp()))

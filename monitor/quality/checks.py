@@ -39,10 +39,11 @@ Vols I-V. IOC Manuals and Guides 14.
 from __future__ import annotations
 
 import contextlib
+import difflib
 import math
 import time as _time
-from itertools import repeat as _repeat
 from dataclasses import dataclass, fields
+from itertools import repeat as _repeat
 from typing import Any, Iterable, Mapping
 
 import numpy as np
@@ -226,7 +227,6 @@ def qc_settings_from(raw: Mapping[str, Any] | None, keypath: str) -> tuple[QcSet
             errors.append(f"{kp}: {_RETIRED[key]}")
             continue
         if key not in known:
-            import difflib
             near = difflib.get_close_matches(str(key), known, n=1)
             hint = f" (did you mean {near[0]!r}?)" if near else ""
             errors.append(f"{kp}: unknown key{hint}")

@@ -11,17 +11,20 @@ authorities come first; defer to local codes and licensed practice.
 from __future__ import annotations
 
 import argparse
-import sys
 
 import numpy as np
 import pandas as pd
 
-from monitor import qc
-from monitor.cli_common import CAUTION, count, finite_float, store_errors
-from monitor.cli_common import table as _common_table
+from monitor.cli.common import CAUTION, count, finite_float, store_errors
+from monitor.cli.common import table as _common_table
+from monitor.cli.timeparse import local_text as _local
+from monitor.cli.timeparse import parse_range, parse_time
 from monitor.errors import UserError
-from monitor.timeparse import local_text as _local
-from monitor.timeparse import parse_range, parse_time
+from monitor.quality import checks as qc
+from monitor.quality import diagnostics as dg
+from monitor.service.config import load_config
+from monitor.service.constants import load_model
+from monitor.store.database import Store
 
 
 
@@ -74,9 +77,6 @@ def register(subparsers) -> None:
 # --------------------------------------------------------------------------- helpers
 
 def _open(config: str, create: bool = False):
-    from monitor.config import load_config
-    from monitor.store import Store
-
     cfg = load_config(config)
     return cfg, Store.open(cfg.store_path, create=create, lock=False)
 
@@ -89,12 +89,7 @@ def _sensor(st, sensor: str) -> str:
 
 
 def _model(store, st):
-    try:
-        from monitor.daemon import load_model
-    except ImportError:
-        return None, "no tide model available"
-    model, source = load_model(store, st)
-    return model, source
+    return load_model(store, st)
 
 
 def _table(rows: list[list[str]], head: list[str], right: set[int] = frozenset()) -> str:
@@ -128,8 +123,6 @@ def summarise(st, settings: qc.QcSettings, results: dict[str, pd.DataFrame], obs
               n_episodes: int = 5, conflicts: dict[str, int] | None = None) -> str:
     """The text report of ``quaywatch qc`` (pure: frames in, text out). ``conflicts`` is the
     number of conflicting repeats (a stored time sent again with another value) per sensor."""
-    from monitor import diagnostics as dg
-
     tz = st.tz
     out = [f"Quality control, station {st.id} ({st.name}), {_local(start, tz)} to {_local(end, tz)}",
            f"times in {tz} (local); levels in metres; tide model: {model_source}", ""]
@@ -290,8 +283,3 @@ def cmd_flag(args: argparse.Namespace) -> int:
               f"{args.flag} ({qc.FLAG_NAMES[args.flag]}) by {args.who}: {args.why}")
     return 0
 
-
-if __name__ == "__main__":  # pragma: no cover
-    from monitor.cli import main
-
-    sys.exit(main(["qc", *sys.argv[1:]]))

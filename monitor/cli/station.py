@@ -8,6 +8,7 @@ from __future__ import annotations
 
 import argparse
 import csv
+import dataclasses
 import datetime as dt
 import math
 import re
@@ -17,10 +18,24 @@ from pathlib import Path
 
 import numpy as np
 
-from monitor.cli_common import CAUTION, count, finite_float, input_file, store_errors
-from monitor.config import datum_words
+from monitor.cli.common import CAUTION, count, finite_float, input_file, store_errors
+from monitor.cli.timeparse import local_text, parse_range
 from monitor.errors import UserError
-from monitor.timeparse import local_text, parse_range
+from monitor.feeds.base import decode_line
+from monitor.feeds.capture import SUFFIX
+from monitor.feeds.capture import is_capture
+from monitor.feeds.capture import read_capture
+from monitor.feeds.parse import Reject
+from monitor.feeds.parse import parse_lines
+from monitor.service.config import datum_words, load_config
+from monitor.service.constants import load_model
+from monitor.service.daemon import future_tolerance
+from monitor.service.daemon import preflight
+from monitor.service.daemon import refit_station
+from monitor.service.daemon import row_lines
+from monitor.service.daemon import run_daemon
+from monitor.store.database import EMPTY_BATCH
+from monitor.store.database import Store
 
 INGEST_BATCH = 100_000  # lines per transaction in a backfill
 
@@ -103,14 +118,10 @@ def register(subparsers) -> None:
 # --------------------------------------------------------------------------- helpers
 
 def _config(path: str):
-    from monitor.config import load_config
-
     return load_config(path)
 
 
 def _store(cfg, create: bool = False, lock: bool = False):
-    from monitor.store import Store
-
     return Store.open(cfg.store_path, create=create, lock=lock)
 
 
@@ -140,7 +151,6 @@ def _m(v: float | None, signed: bool = False) -> str:
 
 def cmd_check(args: argparse.Namespace) -> int:
     cfg = _config(args.config)
-    from monitor.daemon import preflight
 
     # a broken constants file, or a store that could not be created, is a configuration
     # problem too (checked without creating anything)
@@ -159,7 +169,6 @@ def cmd_check(args: argparse.Namespace) -> int:
 
 def cmd_run(args: argparse.Namespace) -> int:
     cfg = _config(args.config)
-    from monitor.daemon import run_daemon
 
     return run_daemon(cfg, until_exhausted=args.until_exhausted, verbose=getattr(args, "verbose", 0))
 
@@ -172,8 +181,6 @@ def cmd_status(args: argparse.Namespace) -> int:
     now = time.time()
     out = sys.stdout
     with _store(cfg) as store:
-        from monitor.daemon import future_tolerance, load_model
-
         checkpoints = store.checkpoints()
         counts = store.reject_counts()
         conflicts = store.reject_counts(conflicts=True)
@@ -280,11 +287,6 @@ def ingest_file(store, sensor, path: Path, progress=None, batch_size: int = INGE
         Lines stamped more than ``max_ahead`` [s] ahead of the clock are rejected
         (the station's ``qc.future_tolerance``; None: not checked).
     """
-    from monitor.daemon import row_lines
-    from monitor.feeds.capture import is_capture
-    from monitor.parse import parse_lines
-    from monitor.store import EMPTY_BATCH
-
     if is_capture(path):
         return _ingest_capture(store, sensor, path, progress, batch_size, first_reject, max_ahead)
     total = EMPTY_BATCH
@@ -313,14 +315,6 @@ def _ingest_capture(store, sensor, path: Path, progress, batch_size: int, first_
                     max_ahead: float | None):
     """:func:`ingest_file` for a raw capture file of a serial line: each line parsed as the
     daemon parsed it when it was read (same receive time, same format, no header lines)."""
-    import dataclasses
-
-    from monitor.daemon import row_lines
-    from monitor.feeds.base import decode_line
-    from monitor.feeds.capture import read_capture
-    from monitor.parse import Reject, parse_lines
-    from monitor.store import EMPTY_BATCH
-
     encoding = getattr(sensor.feed, "encoding", None) or "utf-8"
     # a serial line has no header: the daemon never skipped its first lines
     fmt = dataclasses.replace(sensor.format, header_lines=0)
@@ -350,8 +344,6 @@ def _ingest_capture(store, sensor, path: Path, progress, batch_size: int, first_
 
 def _telemetry_files(name: str) -> list[Path]:
     """The file, or the capture files (``*.capture``, in name order) of a capture folder."""
-    from monitor.feeds.capture import SUFFIX
-
     p = Path(name)
     if p.is_dir():
         found = sorted(f for f in p.iterdir() if f.suffix == SUFFIX and f.is_file())
@@ -363,8 +355,6 @@ def _telemetry_files(name: str) -> list[Path]:
 def _telemetry_file(name: str) -> Path:
     """A readable, non-empty text file; binary data is refused before anything is stored
     (a raw capture file may hold any bytes a serial line delivered)."""
-    from monitor.feeds.capture import is_capture
-
     path = input_file(name, "telemetry file")
     if is_capture(path):
         return path
@@ -401,8 +391,6 @@ def cmd_ingest(args: argparse.Namespace) -> int:
             last_print[0] = time.monotonic()
             print(f"{path.name}: {lines:,} lines read", file=sys.stderr)
 
-    from monitor.daemon import future_tolerance
-    from monitor.store import EMPTY_BATCH
 
     grand = EMPTY_BATCH
     with _store(cfg, create=True) as store:
@@ -460,7 +448,6 @@ def cmd_export(args: argparse.Namespace) -> int:
     cfg = _config(args.config)
     st = cfg.station(args.station)
     start, end = parse_range(args.start, args.end, st.tz)
-    from monitor.daemon import load_model
 
     with _store(cfg) as store:
         obs = store.observations(st.id, "primary", int(start.timestamp()), int(end.timestamp()))
@@ -503,7 +490,6 @@ _COMPARE = ("M2", "S2", "N2", "K1", "O1")
 def cmd_refit(args: argparse.Namespace) -> int:
     cfg = _config(args.config)
     st = cfg.station(args.station)
-    from monitor.daemon import load_model, refit_station
 
     with _store(cfg, create=False) as store:
         if args.list:

@@ -25,32 +25,42 @@ store is refused by the store's lock.
 """
 from __future__ import annotations
 
+import datetime as dt
 import logging
 import logging.handlers
 import math
 import os
 import signal
 import sqlite3
-import tempfile
 import threading
 import time
-import tomllib
 from dataclasses import dataclass, field
-from pathlib import Path
 from typing import Any, Sequence
 
 import numpy as np
 import pandas as pd
+import sqlite_utils
+from apscheduler.executors.pool import ThreadPoolExecutor
+from apscheduler.schedulers.background import BackgroundScheduler
 
-from monitor import residual as R
-from monitor import surge_forecast as SF
-from monitor.config import STATION_DATUM_NAMES, Config, SensorConfig, StationConfig, datum_words
+from alerts import engine
+from alerts import rules
+from alerts.mail import outbox
+from monitor import feeds as feeds_mod
 from monitor.errors import UserError
-from monitor.parse import parse_lines
-from monitor.qc import QcSettings
-from monitor.store import EMPTY_BATCH, BatchResult, Store
+from monitor.feeds.parse import parse_lines
+from monitor.quality import checks as qc
+from monitor.quality import diagnostics
+from monitor.quality.checks import QcSettings
+from monitor.service.config import Config, SensorConfig, StationConfig
+from monitor.service.constants import load_model, model_from_text, model_to_text
+from monitor.service.reporting import write_due_reports
+from monitor.store.database import BatchResult, EMPTY_BATCH, Store, check_folder, check_store_path
+from monitor.surge import forecast as SF
+from monitor.surge import residual as R
+from predictor import harmonic_fit
 
-log = logging.getLogger("monitor.daemon")
+log = logging.getLogger("monitor.service.daemon")
 
 PROCESS_CHUNK = 7 * 86400   # [s] most data time processed in one pass (bounds memory in a backfill)
 REWRITE_BACK = 3600         # [s] derived rows before a window that are recomputed (QC may revise flags)
@@ -113,85 +123,6 @@ def row_lines(parsed, texts: Sequence[Any]) -> tuple:
     texts = [texts[i] for i in parsed.index.tolist()] if parsed.index is not None else [None] * len(parsed)
     return parsed.lineno.tolist(), [t.decode("utf-8", "backslashreplace") if isinstance(t, bytes) else t
                                     for t in texts]
-
-
-# --------------------------------------------------------------------------- constants
-
-def model_from_text(text: str, where: str):
-    """A TideModel from constants TOML text kept in the store."""
-    from predictor import TideModel
-
-    try:
-        return TideModel.from_dict(tomllib.loads(text), where=f"{where}: ")
-    except (tomllib.TOMLDecodeError, ValueError) as exc:
-        raise UserError(f"{where}: stored constants cannot be read ({exc})") from None
-
-
-def model_to_text(model) -> str:
-    """Constants TOML text of a TideModel (the same text as its constants file)."""
-    with tempfile.TemporaryDirectory() as tmp:
-        path = Path(tmp) / "constants.toml"
-        model.save(path)
-        return path.read_text(encoding="utf-8")
-
-
-def load_model(store: Store | None, station: StationConfig) -> tuple[Any, str]:
-    """The station's tide model and where it came from; (None, reason) when there is none yet.
-
-    Raises
-    ------
-    UserError
-        A configured constants file that cannot be read.
-    """
-    if station.constants is not None:
-        from predictor import TideModel
-
-        try:
-            model = TideModel.load(station.constants)
-        except ValueError as exc:
-            raise UserError(f"station {station.id} constants: {exc}") from None
-        model, how = on_station_datum(model, station, f"station {station.id} constants {station.constants}")
-        return model, f"file {station.constants} ({how})"
-    if store is None:
-        return None, "fitted from history (no store)"
-    fit = store.fit_in_use(station.id)
-    if fit is None:
-        return None, "none yet: to be fitted from the station's own history"
-    when = pd.Timestamp(fit["fitted_at"], unit="s", tz="UTC").strftime("%Y-%m-%d %H:%MZ")
-    model = model_from_text(fit["constants"], f"fit {fit['id']}")
-    if model.datum is None:  # fitted to the store's levels, which are on the station datum
-        model.datum = "station"
-    model, _ = on_station_datum(model, station, f"station {station.id} fit #{fit['id']}")
-    return model, f"fit #{fit['id']} of {when}"
-
-
-def on_station_datum(model, station: StationConfig, where: str) -> tuple[Any, str]:
-    """The model with its levels on the station datum, and words saying what was done.
-
-    A constants file records the datum its mean is measured from (key ``datum``). On the
-    station datum it is used as it is; on another datum of the station (``chart``, say)
-    that datum's height above the station datum is added, explicitly; a datum the
-    station does not define is refused, never taken silently as a metre off.
-    A file that records no datum is taken as on the station datum, and said so.
-
-    Raises
-    ------
-    UserError
-        The file names a datum this station does not define.
-    """
-    datum = getattr(model, "datum", None)
-    if datum is None:
-        return model, "its datum is not recorded in the file: taken as the station datum"
-    if datum in STATION_DATUM_NAMES:
-        return model, "on the station datum"
-    if datum in station.datums:
-        z = float(station.datums[datum])
-        return model.referred_to("station", z), (f"mean on {datum_words(datum)}, {z:+.3f} m added "
-                                                 f"to put it on the station datum")
-    known = ", ".join(sorted(set(station.datums) - {"station"})) or "none besides the station datum"
-    raise UserError(f"{where}: the constants' mean is on datum {datum!r}, which station {station.id} does not "
-                    f"define (its datums: {known}); add {datum} under [stations.datums] with its height above "
-                    f"the station datum, or give the file the datum its levels are on (key 'datum')")
 
 
 #: A refit is checked on the most recent days of quality-controlled data that the constants in
@@ -277,8 +208,6 @@ def _enough(station: StationConfig, obs: pd.DataFrame) -> None:
 
 
 def _fit_record(station: StationConfig, obs: pd.DataFrame, robust: Any, infer: Any):
-    from predictor import harmonic_fit
-
     try:
         meta = {"station": station.id, "infer": infer if isinstance(infer, str) else
                 ("none" if not infer else "given")}
@@ -331,7 +260,7 @@ class StationRuntime:
     model_source: str = ""
     view: Any = None
     extremes_span: tuple[float, float] = (math.inf, -math.inf)
-    forecaster: Any = None          # monitor.surge_forecast.SurgeForecaster, relearnt every HISTORY_REFRESH
+    forecaster: Any = None          # monitor.surge.forecast.SurgeForecaster, relearnt every HISTORY_REFRESH
     history_at: float = -math.inf
     replay_clock: bool = False
     last_fit_try: float = -math.inf
@@ -422,8 +351,6 @@ def open_feed_runtimes(cfg: Config) -> list[FeedRuntime]:
     UserError
         A feed that cannot be opened (a replay file missing); those opened are closed again.
     """
-    from monitor import feeds as feeds_mod
-
     out: list[FeedRuntime] = []
     try:
         for st in cfg.stations:
@@ -457,8 +384,6 @@ def preflight(cfg: Config) -> dict[str, str]:
     UserError
         Naming the file or key and what is wrong.
     """
-    from monitor.store import check_folder, check_store_path
-
     sources = {st.id: load_model(None, st)[1] for st in cfg.stations if st.constants is not None}
     check_store_path(cfg.store_path)
     if any(getattr(s.feed, "kind", None) == "serial" for st in cfg.stations for s in st.sensors.values()):
@@ -513,22 +438,14 @@ class Daemon:
         self.empty_polls = 0
         self.feeds_done_at: float | None = None
         self.until_exhausted = False
-        from monitor import qc
-
         self.qc = qc
-        # The alert engine (with its templates) and the diagnostics (with scipy.stats) take
-        # seconds to import on a loaded machine; a daemon without rules does without them.
+        # The alert engine and the diagnostics run only for stations with rules.
         self.diag = self.engine = self.rules_mod = None
         if any(st.rules for st in cfg.stations):
-            from alerts import engine, rules
-            from monitor import diagnostics
-
             self.diag, self.engine, self.rules_mod = diagnostics, engine, rules
         self.outbox = None
         self.claimer: str | None = None
         if cfg.mail is not None:
-            from alerts import outbox
-
             self.outbox = outbox
             self.claimer = outbox.process_identity("daemon")
         self.outbox_worker: OutboxWorker | None = None
@@ -803,7 +720,7 @@ class Daemon:
 
     def _alert_context(self, rt: StationRuntime, fcs: list[dict] | None, qc_results: dict, now: float,
                        end_t: int | None = None):
-        """The engine's context: the high water forecasts as monitor.surge_forecast made them
+        """The engine's context: the high water forecasts as monitor.surge.forecast made them
         (the next first), the feed's age, and the equipment faults (silent, stuck, drifting,
         clock off)."""
         st = rt.cfg
@@ -967,7 +884,6 @@ class Daemon:
         follows the data; a report email is still queued on the wall clock)."""
         if self.cfg.reports is None:
             return
-        from monitor.reporting import write_due_reports
 
         now = self.data_now if (self.replay_clock and self.data_now is not None) else None
         try:
@@ -997,9 +913,6 @@ class Daemon:
 
     def run(self, until_exhausted: bool = False) -> int:
         """Run the jobs until SIGTERM/SIGINT (or, with ``until_exhausted``, until the feeds end)."""
-        from apscheduler.executors.pool import ThreadPoolExecutor
-        from apscheduler.schedulers.background import BackgroundScheduler
-
         self.until_exhausted = until_exhausted
         d = self.cfg.daemon
         sched = BackgroundScheduler(executors={"default": ThreadPoolExecutor(1)},
@@ -1065,8 +978,6 @@ class OutboxWorker(threading.Thread):
         self._halt = threading.Event()
 
     def run(self) -> None:
-        import sqlite_utils
-
         conn = sqlite3.connect(str(self.owner.store.real_path), isolation_level=None, timeout=30.0)
         try:
             conn.execute("PRAGMA busy_timeout = 30000")
@@ -1088,8 +999,6 @@ class OutboxWorker(threading.Thread):
 
 
 def _now_dt():
-    import datetime as dt
-
     return dt.datetime.now(dt.timezone.utc)
 
 

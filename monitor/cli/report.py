@@ -1,24 +1,21 @@
 """``quaywatch report CONFIG --station ID --date YYYY-MM-DD``: write a station's daily report
 on demand (and, with ``--email``, queue it to the report recipients through the outbox).
 
-The daemon's scheduler calls :func:`write_due_reports` (re-exported here) for the scheduled ones.
+The daemon's scheduler calls :func:`monitor.service.reporting.write_due_reports` for the scheduled ones.
 """
 from __future__ import annotations
 
 import datetime as dt
+from pathlib import Path
+from zoneinfo import ZoneInfo
 
-from monitor.cli_common import CAUTION
+from monitor.cli.common import CAUTION
+from monitor.cli.timeparse import parse_date
 from monitor.errors import UserError
-
-
-def __getattr__(name: str):
-    # ``write_due_reports`` stays importable from here without loading the reporting
-    # stack (pandas, templates, charts) each time the command line starts.
-    if name == "write_due_reports":
-        from monitor.reporting import write_due_reports
-
-        return write_due_reports
-    raise AttributeError(f"module {__name__!r} has no attribute {name!r}")
+from monitor.service.config import load_config
+from monitor.service.reporting import find_station
+from monitor.service.reporting import write_station_day
+from monitor.store.database import Store
 
 
 def register(subparsers) -> None:
@@ -38,20 +35,12 @@ def register(subparsers) -> None:
 
 def _date(text: str | None, tz: str) -> dt.date:
     if text is None:
-        from zoneinfo import ZoneInfo
         return dt.datetime.now(ZoneInfo(tz)).date() - dt.timedelta(days=1)
-    from monitor.timeparse import parse_date
 
     return parse_date(text, "--date")
 
 
 def cmd_report(args) -> int:
-    from pathlib import Path
-
-    from monitor.config import load_config
-    from monitor.reporting import find_station, write_station_day
-    from monitor.store import Store
-
     config = load_config(args.config)
     station = find_station(config, args.station)
     day = _date(args.date, station.tz)

@@ -1,6 +1,6 @@
 """Tide verbs: ``predict``, ``table`` (high and low waters) and ``datums``.
 
-The ``fit`` verb lives in :mod:`monitor.cli_fit_verb` and is registered from here when
+The ``fit`` verb lives in :mod:`monitor.cli.fit` and is registered from here when
 that module is present.  Each verb function takes the parsed ``args`` and returns an
 exit code; bad input raises :class:`monitor.errors.UserError`.
 """
@@ -13,9 +13,19 @@ import sys
 import numpy as np
 import pandas as pd
 
-from monitor.cli_common import finite_float, input_file
+from monitor.cli import fit as fit_verb
+from monitor.cli.common import finite_float, input_file
+from monitor.cli.timeparse import offset_text, parse_date, parse_range, parse_time, zone
 from monitor.errors import UserError
-from monitor.timeparse import offset_text, parse_date, parse_range, parse_time, zone
+from monitor.service.config import datum_words
+from monitor.service.config import load_config
+from monitor.service.constants import load_model
+from monitor.store.database import Store
+from predictor.datums import DATUM_DESCRIPTIONS
+from predictor.datums import DATUM_ORDER
+from predictor.datums import tidal_datums
+from predictor.model import ConstantsFileError
+from predictor.model import TideModel
 from predictor.timeutil import parse_duration
 
 __all__ = ["register", "run_predict", "run_table", "run_datums", "CAUTION", "parse_step"]
@@ -41,8 +51,6 @@ def parse_step(text: str) -> pd.Timedelta:
 
 
 def _load(path):
-    from predictor.model import ConstantsFileError, TideModel
-
     input_file(path, "constants file")
     try:
         return TideModel.load(path)
@@ -91,10 +99,6 @@ class _Source:
         self.note = ""
 
     def _from_station(self, cfg_path: str, sid: str) -> None:
-        from monitor.config import load_config
-        from monitor.daemon import load_model
-        from monitor.store import Store
-
         cfg = load_config(cfg_path)
         st = cfg.station(sid)
         if st.constants is not None:
@@ -119,8 +123,6 @@ class _Source:
 
 
 def _words(datum: str) -> str:
-    from monitor.config import datum_words
-
     return datum_words(datum)
 
 
@@ -233,8 +235,6 @@ def _stand_notes(events: pd.DataFrame) -> list[str]:
 
 def run_datums(args) -> int:
     """``quaywatch datums``: tidal datums from an 18.61-year prediction."""
-    from predictor.datums import DATUM_DESCRIPTIONS, DATUM_ORDER, tidal_datums
-
     src = _Source(args)
     model = src.model
     start = parse_time(args.start, "--start", "UTC") if args.start else None
@@ -284,14 +284,8 @@ def _source_options(p) -> None:
 
 
 def register(subparsers) -> None:
-    """Add ``predict``, ``table``, ``datums`` (and ``fit`` when present)."""
-    try:
-        from monitor import cli_fit_verb
-    except ModuleNotFoundError as exc:
-        if exc.name != "monitor.cli_fit_verb":
-            raise
-    else:
-        cli_fit_verb.register(subparsers)
+    """Add ``fit``, ``predict``, ``table``, ``datums``."""
+    fit_verb.register(subparsers)
 
     p = subparsers.add_parser(
         "predict", help="predicted tide as CSV time,level",

@@ -15,9 +15,12 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
-from monitor.config import datum_words
+from monitor.cli.timeparse import zone as _zone
 from monitor.errors import UserError
-from monitor.timeparse import zone as _zone
+from monitor.service.config import datum_words
+from predictor.fit import FitConditioningWarning
+from predictor.fit import FitInputError
+from predictor.fit import harmonic_fit
 
 __all__ = ["CAUTION", "read_level_csv", "register", "run_fit", "model_summary"]
 
@@ -248,8 +251,6 @@ def _table(model, source) -> str:
 
 def run_fit(args) -> int:
     """Run ``quaywatch fit``; returns the exit code."""
-    from predictor.fit import FitConditioningWarning, FitInputError, harmonic_fit
-
     if args.rayleigh is not None and not args.rayleigh > 0:
         raise UserError(f"--rayleigh {args.rayleigh}: must be a positive number")
     times, levels, notes = read_level_csv(args.obs, tz=args.tz)

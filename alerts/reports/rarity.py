@@ -1,10 +1,10 @@
 """The daily report's "how rare was today's water" part: its data and its two charts.
 
-:class:`RaritySection` is what :mod:`monitor.station_extremes` hands the report (levels on
+:class:`RaritySection` is what :mod:`monitor.service.extremes` hands the report (levels on
 the report's datum); :func:`return_level_chart` draws both routes' return-level curves with
 their 95 % bands and the day's highest water; :func:`sea_level_chart` draws the monthly means
 (seasonal cycle removed, datum steps corrected) with the fitted trend. PNG bytes through
-matplotlib's Agg backend, like :mod:`alerts.charts`; colours paired with line styles.
+matplotlib's Agg backend, like :mod:`alerts.reports.charts`; colours paired with line styles.
 
 References
 ----------
@@ -19,8 +19,9 @@ from typing import Mapping, Sequence
 
 import numpy as np
 import pandas as pd
+from matplotlib.figure import Figure
 
-from alerts.charts import OBSERVED, PREDICTED, RESIDUAL, LEVEL_ABOVE, _naive_utc
+from alerts.reports.charts import LEVEL_ABOVE, OBSERVED, PREDICTED, RESIDUAL, _naive_utc
 
 __all__ = ["RaritySection", "return_level_chart", "sea_level_chart"]
 
@@ -66,8 +67,6 @@ _STYLES = {"joint probability": (OBSERVED, "-"), "annual maxima": (RESIDUAL, "--
 
 def return_level_chart(section: RaritySection, datum: str, dpi: int = 110) -> bytes | None:
     """Return level against return period (log axis) for each route, 95 % bands shaded."""
-    from matplotlib.figure import Figure
-
     if not section.curves:
         return None
     fig = Figure(figsize=(6.4, 3.8), dpi=dpi, layout="tight")
@@ -102,8 +101,6 @@ def return_level_chart(section: RaritySection, datum: str, dpi: int = 110) -> by
 
 def sea_level_chart(section: RaritySection, datum: str, dpi: int = 110) -> bytes | None:
     """Monthly mean sea level (seasonal cycle removed, steps corrected) and the trend line."""
-    from matplotlib.figure import Figure
-
     m = section.monthly
     if not m or len(m.get("month", ())) < 2:
         return None

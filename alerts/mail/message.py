@@ -27,7 +27,7 @@ CAUTION = (
 
 SUBJECT_PREFIX = "[quaywatch]"
 
-_TEMPLATES = Path(__file__).with_name("templates")
+_TEMPLATES = Path(__file__).resolve().parent.parent / "templates"
 _env_html = jinja2.Environment(loader=jinja2.FileSystemLoader(_TEMPLATES), autoescape=True,
                                undefined=jinja2.StrictUndefined)
 _env_text = jinja2.Environment(loader=jinja2.FileSystemLoader(_TEMPLATES), autoescape=False,

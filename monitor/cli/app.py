@@ -1,26 +1,26 @@
 """The ``quaywatch`` command line.
 
-Each group of verbs lives in its own ``cli_*`` module with a ``register(subparsers)``
-function; this module only assembles them and turns expected errors into one-line
+Each group of verbs lives in its own module of :mod:`monitor.cli` with a
+``register(subparsers)`` function; this module only assembles them and turns expected errors into one-line
 messages (a user never sees a traceback for bad input).
 """
 from __future__ import annotations
 
 import argparse
-import importlib
 import logging
 import sys
 
+from monitor.cli import alerts, extremes, qc, report, station, tide
 from monitor.errors import UserError
 
 # Verb groups, each owning its own module; order is the order shown in --help.
 _GROUPS = (
-    "monitor.cli_tide",      # fit, predict, table, datums
-    "monitor.cli_station",   # check, run, status, ingest, export
-    "monitor.cli_qc",        # qc, staff, flag
-    "monitor.cli_alerts",    # alerts (list, outbox, test-mail)
-    "monitor.cli_report",    # report
-    "monitor.cli_extremes",  # extremes (return levels, sea-level trend)
+    tide,      # fit, predict, table, datums
+    station,   # check, run, status, ingest, export
+    qc,        # qc, staff, flag
+    alerts,    # alerts (list, outbox, test-mail)
+    report,    # report
+    extremes,  # extremes (return levels, sea-level trend)
 )
 
 
@@ -34,8 +34,8 @@ def build_parser() -> argparse.ArgumentParser:
     parser.add_argument("-v", "--verbose", action="count", default=0, help="more log output")
     sub = parser.add_subparsers(dest="verb", metavar="VERB")
     sub.required = True
-    for name in _GROUPS:
-        importlib.import_module(name).register(sub)
+    for group in _GROUPS:
+        group.register(sub)
     return parser
 
 

@@ -9,7 +9,7 @@ readers.
 from __future__ import annotations
 
 import io
-from typing import TYPE_CHECKING, Sequence
+from typing import Sequence
 from zoneinfo import ZoneInfo
 
 import matplotlib
@@ -20,8 +20,7 @@ import numpy as np  # noqa: E402
 import pandas as pd  # noqa: E402
 from matplotlib.figure import Figure  # noqa: E402
 
-if TYPE_CHECKING:
-    from alerts.report import AlertLevel, DayReport, Diagnostic, StaffCheck
+from alerts.reports.model import AlertLevel, DayReport, Diagnostic, StaffCheck, day_bounds, day_figures
 
 # Palette of our own; each role also has a line style or marker shape.
 OBSERVED = "#0b4f71"
@@ -93,8 +92,6 @@ def day_chart(report: "DayReport", width: float = 9.6, height: float = 6.0, dpi:
     Samples flagged fail (QARTOD 4) are marked but never set the axis range: a wild spike
     is drawn clipped at the panel's edge rather than squashing the tide flat.
     """
-    from alerts.report import day_bounds, day_figures
-
     start, end = day_bounds(report.day, report.tz)
     zone = ZoneInfo(report.tz)
     figures = day_figures(report)

@@ -1,0 +1,1 @@
+"""Email: composing messages, and the store-and-forward outbox with SMTP delivery."""
