@@ -21,4 +21,6 @@ def records_station(tmp_path_factory):
     db = out / "records.db"
     with sqlite3.connect(db) as conn:
         conn.execute("UPDATE observations SET flag = 1")
+    with sqlite3.connect(db) as conn:       # into the main file, so a copy of it is whole
+        conn.execute("PRAGMA wal_checkpoint(TRUNCATE)")
     return out / "config.toml", truth, db

@@ -390,8 +390,7 @@ def _joint_route(sea_max: pd.Series, model: Any, epoch, options: Options, shift:
         values = surges["skew_surge"].to_numpy(dtype=float)
         pot = ex.fit_peaks_over_threshold(times, values, options.threshold, f"{options.run_length_h:g}h")
         hw = ex.predicted_high_waters(tide, start=epoch)
-        fit = ex.joint_probability(pot, hw, bootstrap=options.bootstrap,
-                                   cycle_levels=surges["observed_high"].to_numpy(dtype=float))
+        fit = ex.joint_probability(pot, hw, bootstrap=options.bootstrap)
         fit.level_shift_se = _shift_se(trend, times)
     except ex.ExtremesError as exc:
         route["error"] = str(exc)
