@@ -24,8 +24,9 @@ import numpy as np
 import pandas as pd
 
 from alerts.mail.message import compose_alert
-from alerts.mail.outbox import enqueue, ensure_outbox_schema, transaction, unix_seconds
+from alerts.mail.outbox import enqueue, ensure_outbox_schema, unix_seconds
 from alerts.rules import Event, Rule, RuleState, SAMPLE_KINDS, StationView, advance, with_watermark
+from alerts.transactions import transaction
 
 log = logging.getLogger(__name__)
 

@@ -55,14 +55,13 @@ from monitor.quality.diagnostics import clock_episodes
 from monitor.quality.diagnostics import sensor_drift
 from monitor.quality.diagnostics import sensor_timing
 from predictor import harmonic_fit
+from predictor.caution import CAUTION, comment_lines
 
 ROOT = Path(__file__).resolve().parent.parent
 SAMPLES = ROOT / "sample_feeds"
 DEMO = ROOT / "demo"
 DEFAULT_OUT = ROOT / "demo-output"
 
-CAUTION = ("Automated and unofficial. Official warnings and the local emergency authorities come "
-           "first; defer to local codes and licensed practice.")
 
 # The storm-week files and where each one's time sits: (file, header lines, time field).
 FEED_FILES = {
@@ -261,9 +260,7 @@ def write_config(template: Path, out_dir: Path, smtp_port: int, feeds: dict[str,
         if speedup is not None:
             station["sensors"][role]["feed"]["speedup"] = speedup
     path = out_dir / "config.toml"
-    header = ("# Written by python -m monitor.demo from demo/config.toml for this run.\n"
-              "# Automated and unofficial: official warnings and the local emergency "
-              "authorities come first.\n")
+    header = "# Written by python -m monitor.demo from demo/config.toml for this run.\n" + comment_lines()
     path.write_text(header + tomli_w.dumps(cfg))
     return path
 

@@ -65,10 +65,6 @@ class Constituent:
     parents: tuple = field(default_factory=tuple)
 
     @property
-    def is_compound(self) -> bool:
-        return bool(self.parents)
-
-    @property
     def frequency(self) -> float:
         """Frequency [cycles/h]."""
         return self.speed / 360.0

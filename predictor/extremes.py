@@ -62,6 +62,7 @@ import numpy as np
 import pandas as pd
 from scipy import optimize, stats
 
+from predictor.errors import PredictorError
 from predictor.timeutil import parse_duration
 
 __all__ = [
@@ -104,7 +105,7 @@ MIN_BOOTSTRAP_YEARS = 5
 LEVEL_QUANTILE = 0.995
 
 
-class ExtremesError(ValueError):
+class ExtremesError(PredictorError):
     """Input an extreme-value fit cannot use; the message says what is wrong."""
 
 

@@ -25,7 +25,6 @@ import warnings
 from dataclasses import dataclass
 
 import numpy as np
-import pandas as pd
 from scipy import linalg
 from scipy.linalg import blas
 
@@ -34,7 +33,9 @@ from predictor import constituents as cat
 from predictor import nodal as nod
 from predictor.constituents import equilibrium_amplitude
 from predictor.constituents import get
+from predictor.errors import FitConditioningWarning, FitInputError
 from predictor.model import TideModel
+from predictor.timeutil import iso_utc, to_unix_seconds
 
 __all__ = [
     "FitInputError",
@@ -80,57 +81,8 @@ PRIORITY = (
 )
 
 
-class FitInputError(ValueError):
-    """The record cannot be fitted as given (too few samples, unknown constituent, ...)."""
-
-
 class RecordTooShortError(FitInputError):
     """The record is too short to resolve the constituents a useful fit needs."""
-
-
-class FitConditioningWarning(UserWarning):
-    """The normal equations are ill-conditioned; a minimum-norm solution was used."""
-
-
-# --------------------------------------------------------------------------- times
-
-
-def to_unix_seconds(times) -> np.ndarray:
-    """Convert times to Unix seconds UTC.
-
-    Parameters
-    ----------
-    times : array_like
-        ``datetime64`` array (taken as UTC), pandas DatetimeIndex or Series (tz-aware is
-        converted to UTC, naive is taken as UTC), a sequence of ``datetime`` objects, or
-        numbers already in Unix seconds.
-
-    Returns
-    -------
-    ndarray of float
-        Unix seconds UTC [s]; NaT becomes NaN.
-    """
-    if isinstance(times, pd.Series):
-        times = pd.DatetimeIndex(times)
-    if isinstance(times, np.ndarray) and np.issubdtype(times.dtype, np.number):
-        return times.astype(float)
-    if not isinstance(times, pd.DatetimeIndex):
-        arr = np.asarray(times)
-        if np.issubdtype(arr.dtype, np.number):
-            return arr.astype(float)
-        if np.issubdtype(arr.dtype, np.datetime64):
-            times = pd.DatetimeIndex(arr)
-        else:
-            times = pd.DatetimeIndex(pd.to_datetime(list(arr), utc=True))
-    if times.tz is not None:
-        times = times.tz_convert("UTC").tz_localize(None)
-    ns = times.as_unit("ns").asi8.astype(float)
-    ns[np.asarray(times.isna())] = np.nan
-    return ns / 1e9
-
-
-def _iso(t: float) -> str:
-    return pd.Timestamp(t, unit="s").strftime("%Y-%m-%dT%H:%M:%SZ")
 
 
 # --------------------------------------------------------------------------- selection
@@ -713,8 +665,8 @@ def harmonic_fit(times, levels, constituents="auto", rayleigh: float = 1.0, tren
     meta = {
         "method": "robust least squares (IRLS, Cauchy weights)" if use_robust else "least squares",
         "robust_reason": robust_reason,
-        "record_start": _iso(t[0]),
-        "record_end": _iso(t[-1]),
+        "record_start": iso_utc(t[0]),
+        "record_end": iso_utc(t[-1]),
         "n_samples": int(t.size),
         "duration_days": float(duration_h / 24.0),
         "sample_interval_s": float(step_h * SECONDS_PER_HOUR) if step_h else 0.0,
@@ -736,7 +688,7 @@ def harmonic_fit(times, levels, constituents="auto", rayleigh: float = 1.0, tren
     if confidence is not None:
         meta["confidence"] = float(confidence)
     if trend:
-        meta["trend_epoch"] = _iso(epoch)
+        meta["trend_epoch"] = iso_utc(epoch)
     if metadata:
         meta.update(metadata)
     beta = sol.beta

@@ -39,7 +39,9 @@ import pandas as pd
 import tomli_w
 
 from predictor.astro import astronomical_arguments
+from predictor.caution import PREDICTION, comment_lines
 from predictor.constituents import doodson_matrix, get
+from predictor.errors import ConstantsFileError
 from predictor.extrema import high_low
 from predictor.nodal import equilibrium_arguments, nodal_factors
 from predictor.timeutil import iso_utc, to_unix_seconds
@@ -53,16 +55,6 @@ _ROWS_PER_CHUNK = 65536  # rows per chunk on the general path (bounds memory)
 _HALF_DAY = 43200.0
 _BLOCKS_PER_CHUNK = 512
 _RAMP_BUDGET = 1e-8  # [m] summed error allowed from dropped in-block nodal ramps
-
-CAUTION = (
-    "Automated, unofficial prediction. Official tide predictions and warnings and the local "
-    "emergency authorities come first; defer to local codes and licensed practice."
-)
-
-
-class ConstantsFileError(ValueError):
-    """A constants file or constants table that cannot be used; the message says where."""
-
 
 def _uniform(times):
     """(t0 [s], dt [s], n) when ``times`` are strictly uniform, else None."""
@@ -230,10 +222,6 @@ class TideModel:
         matters at the 1e-3 level for the long-period constituents.
         """
         return self._evaluate(times, order=1)
-
-    def predict_second_derivative(self, times) -> np.ndarray:
-        """Analytic second time derivative of the predicted level [m/s^2]."""
-        return self._evaluate(times, order=2)
 
     def high_low(self, start, end, step="10min"):
         """High and low waters between ``start`` and ``end``.
@@ -465,9 +453,7 @@ class TideModel:
         header = (
             "# quaywatch harmonic constants: mean [m] above the datum named by 'datum' (when\n"
             "# recorded), amplitude [m], phase = Greenwich phase lag g [deg], times UTC.\n"
-            "# Automated, unofficial: official tide predictions and warnings and the local\n"
-            "# emergency authorities come first; defer to local codes and licensed practice.\n\n"
-        )
+        ) + comment_lines(PREDICTION) + "\n"
         Path(path).write_text(header + body, encoding="utf-8")
 
 

@@ -40,6 +40,7 @@ import pandas as pd
 from scipy import optimize, stats
 
 from predictor.astro import astronomical_arguments
+from predictor.errors import PredictorError
 
 __all__ = [
     "SeaLevelError", "MeanSeaLevels", "TrendResult", "mean_sea_levels", "sea_level_trend",
@@ -69,7 +70,7 @@ COMPLETENESS_RULE = (
 )
 
 
-class SeaLevelError(ValueError):
+class SeaLevelError(PredictorError):
     """Input the sea-level functions cannot use; the message says what is wrong."""
 
 

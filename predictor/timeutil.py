@@ -15,7 +15,8 @@ from typing import Any
 import numpy as np
 import pandas as pd
 
-__all__ = ["parse_duration", "parse_step", "UNIT_SECONDS", "to_unix_seconds", "iso_utc"]
+__all__ = ["parse_duration", "parse_step", "UNIT_SECONDS", "to_unix_seconds", "iso_utc", "utc_timestamp",
+           "utc_index", "index_seconds", "silences"]
 
 # Seconds in each unit name a person may write. "m" is minutes (as in "10m"): months and
 # metres never mean a duration here.
@@ -144,3 +145,64 @@ def to_unix_seconds(times) -> np.ndarray:
 def iso_utc(t: float) -> str:
     """Unix seconds [s] as ISO 8601 text in UTC with ``Z``, to the second."""
     return dt.datetime.fromtimestamp(float(t), dt.timezone.utc).strftime("%Y-%m-%dT%H:%M:%SZ")
+
+
+def utc_timestamp(t: Any) -> pd.Timestamp | None:
+    """Unix seconds [s] as a tz-aware UTC Timestamp; None (or NaN) stays None."""
+    if t is None or (isinstance(t, float) and math.isnan(t)):
+        return None
+    return pd.Timestamp(float(t), unit="s", tz="UTC")
+
+
+def utc_index(index: pd.Index) -> pd.DatetimeIndex:
+    """The index as a UTC DatetimeIndex (naive taken as UTC).
+
+    Raises
+    ------
+    TypeError
+        The index holds no times.
+    """
+    if not isinstance(index, pd.DatetimeIndex):
+        raise TypeError("a series of times needs a DatetimeIndex")
+    return index.tz_localize("UTC") if index.tz is None else index.tz_convert("UTC")
+
+
+def index_seconds(index: pd.Index) -> np.ndarray:
+    """Unix seconds [s] (float) of a DatetimeIndex (naive taken as UTC)."""
+    return utc_index(index).as_unit("ns").asi8 / 1e9
+
+
+def silences(t, limit: float, start: float | None = None, end: float | None = None):
+    """Gaps: the one definition of the project. A gap is a span longer than ``limit`` with no
+    sample, between two consecutive samples.
+
+    Parameters
+    ----------
+    t : array_like of numbers
+        Sample times, in any one unit (Unix seconds [s], or nanoseconds for exact times);
+        sorted here.
+    limit : float
+        The longest silence that is not a gap, in the unit of ``t`` (quality control uses its
+        ``gap_limit``; the daily report twice the sampling interval).
+    start, end : float, optional
+        The edges of a window, taken as samples, so a silence at either edge counts too.
+
+    Returns
+    -------
+    (numpy.ndarray, numpy.ndarray)
+        For each gap, the time of the sample before it and of the sample after it (or the
+        window edge), in the unit and type of ``t``.
+
+    References
+    ----------
+    U.S. IOOS (2021), QARTOD water level manual v2.1, Test 1 (timing/gap): a sample is due
+    within a set time of the one before it.
+    """
+    edges = np.sort(np.asarray(t).ravel())
+    if start is not None:
+        edges = np.concatenate([np.asarray([start], dtype=edges.dtype), edges])
+    if end is not None:
+        edges = np.concatenate([edges, np.asarray([end], dtype=edges.dtype)])
+    d = np.diff(edges)
+    at = np.flatnonzero(d > limit)
+    return edges[at], edges[at + 1]

@@ -1,12 +1,99 @@
-"""Shared fixtures."""
+"""Fixtures shared by the tests: a fresh store, a fresh database, and an SMTP server on loopback.
+
+- ``store``: a new :class:`monitor.store.database.Store` in the test's folder (schema current).
+- ``db``: a new ``sqlite_utils.Database`` file in WAL mode, for the alerts package (which never
+  sees a Store).
+- ``port``: a free TCP port on 127.0.0.1.
+- ``smtp``: an :class:`SmtpCollector` listening on ``port`` (aiosmtpd), stopped after the test.
+- ``smtp_server``: a function starting a collector (or another aiosmtpd handler) on a port,
+  stopped after the test, for tests that bring a server up part-way through.
+- ``records_station``: eight invented years of hourly levels ingested into a store, every
+  sample marked as passed by quality control (the extremes verb's tests).
+Named units for tolerances are in ``tests/units.py``.
+"""
 from __future__ import annotations
 
+import email
+import socket
 import sqlite3
+from email import policy
 
 import pytest
+import sqlite_utils
+from aiosmtpd.controller import Controller
 
 from monitor.cli import main as cli
 from monitor.demo_decades import STATION, write_inputs
+from monitor.store.database import Store
+
+
+class SmtpCollector:
+    """aiosmtpd handler keeping every accepted message.
+
+    ``messages`` holds the parsed messages in arrival order; ``envelopes`` the same messages
+    as ``(recipients, message)`` with the envelope's recipients.
+    """
+
+    def __init__(self):
+        self.messages: list = []
+        self.envelopes: list = []
+        self.port: int | None = None
+
+    async def handle_DATA(self, server, session, envelope):
+        msg = email.message_from_bytes(envelope.content, policy=policy.default)
+        self.envelopes.append((tuple(envelope.rcpt_tos), msg))
+        self.messages.append(msg)
+        return "250 OK"
+
+
+def free_port() -> int:
+    """A TCP port on 127.0.0.1 that nothing listens on (now)."""
+    with socket.socket() as s:
+        s.bind(("127.0.0.1", 0))
+        return s.getsockname()[1]
+
+
+@pytest.fixture
+def port() -> int:
+    return free_port()
+
+
+@pytest.fixture
+def smtp_server():
+    """``start(port, handler=None, **controller_options) -> handler``: an aiosmtpd server on
+    127.0.0.1 (an SmtpCollector unless a handler is given), stopped when the test ends."""
+    running = []
+
+    def start(port: int, handler=None, **options):
+        handler = SmtpCollector() if handler is None else handler
+        ctl = Controller(handler, hostname="127.0.0.1", port=port, **options)
+        ctl.start()
+        running.append(ctl)
+        if isinstance(handler, SmtpCollector):
+            handler.port = port
+        return handler
+
+    yield start
+    for ctl in running:
+        ctl.stop()
+
+
+@pytest.fixture
+def smtp(smtp_server, port) -> SmtpCollector:
+    return smtp_server(port)
+
+
+@pytest.fixture
+def store(tmp_path):
+    with Store.open(tmp_path / "store.sqlite") as s:
+        yield s
+
+
+@pytest.fixture
+def db(tmp_path):
+    d = sqlite_utils.Database(tmp_path / "store.sqlite")
+    d.enable_wal()
+    return d
 
 
 @pytest.fixture(scope="module")
@@ -24,3 +111,4 @@ def records_station(tmp_path_factory):
     with sqlite3.connect(db) as conn:       # into the main file, so a copy of it is whole
         conn.execute("PRAGMA wal_checkpoint(TRUNCATE)")
     return out / "config.toml", truth, db
+

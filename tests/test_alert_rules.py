@@ -5,11 +5,8 @@ import pytest
 from hypothesis import given, settings, strategies as st
 
 from alerts.rules import Rule, RuleState, Step, advance, parse_duration, rules_from_config
+from units import m, mm, minute, hour
 
-m = 1.0
-mm = 1e-3
-minute = 60
-hour = 3600
 
 DATUMS = {"chart": -2.10 * m}  # invented port: chart datum 2.10 m below station datum
 

@@ -7,12 +7,12 @@ p1 = h - l' (standard identities of the Delaunay arguments).
 """
 import numpy as np
 import pytest
+from units import degree
 
 erfa = pytest.importorskip("erfa")
 
 from predictor.astro import ARGUMENT_RATES, astronomical_arguments, julian_centuries
 
-degree = 1.0
 # 1900-01-01, 1970-01-01, 2014-03-17, 2050-01-01, 2099-12-31 17:00 UTC
 DATES = np.array([-2208988800.0, 0.0, 1395014567.0, 2524608000.0, 4102419600.0])
 

@@ -20,10 +20,10 @@ from pathlib import Path
 import pytest
 
 from monitor.cli import main
+from units import minute
 
 ROOT = Path(__file__).resolve().parent.parent
 START_DEADLINE = 90.0  # [s]
-minute = 60
 T0 = (int(time.time()) // 3600 - 72) * 3600
 
 

@@ -17,11 +17,8 @@ import sqlite_utils
 
 from alerts.engine import evaluate
 from alerts.rules import StationView, rules_from_config
+from units import minute, hour, day
 
-m = 1.0
-minute = 60
-hour = 3600
-day = 86400
 # Data time: whole hours, two days back, so the record is behind the clock.
 T0 = (int(time.time()) // hour - 48) * hour
 FAR = int(pd.Timestamp("2099-01-01", tz="UTC").timestamp())

@@ -1,15 +1,11 @@
 """``quaywatch alerts CONFIG episodes|outbox|test-mail`` (monitor/cli/alerts.py)."""
 from __future__ import annotations
 
-import email
-import socket
-from email import policy
 
 import numpy as np
 import pandas as pd
 import pytest
 import sqlite_utils
-from aiosmtpd.controller import Controller
 
 from alerts.engine import evaluate
 from alerts.rules import StationView, rules_from_config
@@ -49,36 +45,11 @@ steps = [{{ name = "raised", at = 0.3 }}]
 """
 
 
-class Catcher:
-    def __init__(self):
-        self.messages = []
-
-    async def handle_DATA(self, server, session, envelope):
-        self.messages.append(email.message_from_bytes(envelope.content, policy=policy.default))
-        return "250 OK"
-
-
-@pytest.fixture
-def port():
-    with socket.socket() as s:
-        s.bind(("127.0.0.1", 0))
-        return s.getsockname()[1]
-
-
 @pytest.fixture
 def config(tmp_path, port):
     path = tmp_path / "quaywatch.toml"
     path.write_text(CONFIG.format(port=port))
     return path
-
-
-@pytest.fixture
-def smtp(port):
-    catcher = Catcher()
-    ctl = Controller(catcher, hostname="127.0.0.1", port=port)
-    ctl.start()
-    yield catcher
-    ctl.stop()
 
 
 def test_test_mail_is_delivered_and_reported(config, smtp, capsys):

@@ -17,13 +17,11 @@ from hypothesis import strategies as st
 
 from monitor.cli import main
 from monitor.cli.common import store_errors
-from monitor.errors import UserError
+from monitor.cli.errors import UserError
 from monitor.cli.timeparse import local_text, parse_date, parse_time
 from predictor.timeutil import parse_duration
+from units import minute, hour, day
 
-minute = 60
-hour = 3600
-day = 86400
 
 CONSTANTS = textwrap.dedent("""\
     mean = 2.0

@@ -10,12 +10,13 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from monitor.cli.fit import CAUTION, read_level_csv, register
-from monitor.errors import UserError
+from monitor.cli.fit import CAUTION, register
+from monitor.feeds.csvfile import read_level_csv
+from monitor.cli.errors import UserError
+from monitor.errors import FeedError, MonitorError
 from predictor import TideModel
+from units import mm
 
-mm = 1e-3
-minute = 60.0
 
 # Invented port: amplitude [m] and Greenwich phase lag [deg]; P1 and K2 at their equilibrium
 # ratios to K1 and S2 (0.331, 0.272: Cartwright & Tayler 1971, from memory), as a short record's
@@ -31,13 +32,13 @@ PORT = TideModel(mean=2.45, constituents=[
 
 
 def run(argv):
-    """Parse and run like ``monitor.cli.main``: a UserError becomes exit code 2."""
+    """Parse and run like ``monitor.cli.main``: a UserError or MonitorError becomes exit code 2."""
     parser = argparse.ArgumentParser(prog="quaywatch")
     register(parser.add_subparsers(dest="verb"))
     args = parser.parse_args(argv)
     try:
         return args.func(args)
-    except UserError as exc:
+    except (UserError, MonitorError) as exc:
         print(f"quaywatch {args.verb}: {exc}", file=__import__("sys").stderr)
         return 2
 
@@ -75,28 +76,28 @@ def test_reader_sorts_and_says_so(tmp_path):
 def test_malformed_line_is_named_by_number(tmp_path):
     p = tmp_path / "obs.csv"
     p.write_text("time,level\n2031-01-01T00:00Z,1.0\n2031-01-01T01:00Z,1.1,extra\n")
-    with pytest.raises(UserError, match=r"obs\.csv line 3: expected two fields"):
+    with pytest.raises(FeedError, match=r"obs\.csv line 3: expected two fields"):
         read_level_csv(p)
 
 
 def test_non_numeric_level_is_named_by_line(tmp_path):
     p = tmp_path / "obs.csv"
     p.write_text("time,level\n2031-01-01T00:00Z,1.0\n\n2031-01-01T01:00Z,abc\n")
-    with pytest.raises(UserError, match=r"obs\.csv line 4: level 'abc' is not a number"):
+    with pytest.raises(FeedError, match=r"obs\.csv line 4: level 'abc' is not a number"):
         read_level_csv(p)
 
 
 def test_bad_time_is_named_by_line(tmp_path):
     p = tmp_path / "obs.csv"
     p.write_text("time,level\n2031-13-01T00:00Z,1.0\n")
-    with pytest.raises(UserError, match=r"obs\.csv line 2: time '2031-13-01T00:00Z'"):
+    with pytest.raises(FeedError, match=r"obs\.csv line 2: time '2031-13-01T00:00Z'"):
         read_level_csv(p)
 
 
 def test_naive_times_are_refused_without_tz(tmp_path):
     p = tmp_path / "obs.csv"
     p.write_text("time,level\n2031-07-01T12:00:00,1.0\n")
-    with pytest.raises(UserError, match=r"obs\.csv line 2: .*has no zone.*--tz"):
+    with pytest.raises(FeedError, match=r"obs\.csv line 2: .*has no zone.*--tz"):
         read_level_csv(p)
 
 
@@ -111,12 +112,12 @@ def test_naive_times_take_the_given_zone(tmp_path):
 def test_wrong_header_is_named(tmp_path):
     p = tmp_path / "obs.csv"
     p.write_text("when,height\n2031-01-01T00:00Z,1.0\n")
-    with pytest.raises(UserError, match=r"obs\.csv line 1: expected the header 'time,level'"):
+    with pytest.raises(FeedError, match=r"obs\.csv line 1: expected the header 'time,level'"):
         read_level_csv(p)
 
 
 def test_missing_file_is_a_user_error(tmp_path):
-    with pytest.raises(UserError, match="no such file"):
+    with pytest.raises(FeedError, match="no such file"):
         read_level_csv(tmp_path / "absent.csv")
 
 
@@ -255,3 +256,19 @@ def test_fit_says_whether_it_was_robust_and_why(tmp_path, capsys):
     assert "robust least squares (IRLS, Cauchy weights): asked for" in capsys.readouterr().out
     assert run(["fit", str(obs), "--json", "--robust", "off"]) == 0
     assert json.loads(capsys.readouterr().out)["robust_reason"] == "not asked for"
+
+
+def test_a_local_time_the_clock_change_repeats_is_refused_naming_its_line(tmp_path):
+    # Europe/Dublin set its clocks back from 02:00 IST to 01:00 GMT on 2024-10-27 (EU rule,
+    # last Sunday of October, from memory; as in the IANA tz database): 01:30 happened twice.
+    p = tmp_path / "obs.csv"
+    p.write_text("time,level\n2024-10-27T00:30,1.0\n2024-10-27T01:30,1.1\n")
+    with pytest.raises(FeedError, match=r"obs\.csv line 3: local time '2024-10-27T01:30' is ambiguous"):
+        read_level_csv(p, tz="Europe/Dublin")
+
+
+def test_an_unknown_zone_is_refused_by_the_reader(tmp_path):
+    p = tmp_path / "obs.csv"
+    p.write_text("time,level\n2024-10-27T00:30,1.0\n")
+    with pytest.raises(FeedError, match="unknown time zone"):
+        read_level_csv(p, tz="Mars/Olympus")

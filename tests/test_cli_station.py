@@ -11,8 +11,8 @@ import pytest
 
 from monitor.cli import main
 from predictor import TideModel
+from units import mm
 
-mm = 1e-3
 T0 = 1_760_000_000     # 2025-10-09T09:06:40Z
 PORT = TideModel(mean=2.5, constituents=[
     {"name": "M2", "amplitude": 1.2, "phase": 40.0},

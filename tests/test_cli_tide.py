@@ -8,8 +8,8 @@ import pytest
 
 from monitor.cli import main
 from predictor import TideModel
+from units import mm
 
-mm = 1e-3
 
 CONSTANTS = """\
 mean = 2.2

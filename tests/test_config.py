@@ -10,7 +10,7 @@ from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
 from monitor.service.config import Config, load_config, validate_config
-from monitor.errors import UserError
+from monitor.errors import ConfigError
 
 ROOT = Path(__file__).resolve().parent.parent
 
@@ -102,7 +102,7 @@ def test_several_problems_are_listed_at_once_with_key_paths():
 def test_load_config_raises_one_user_error_listing_every_problem(tmp_path):
     path = tmp_path / "bad.toml"
     path.write_text('[daemon]\npoll_seconds = -1\nidle_polls = "x"\n')
-    with pytest.raises(UserError) as exc:
+    with pytest.raises(ConfigError) as exc:
         load_config(path)
     msg = str(exc.value)
     assert "daemon.poll_seconds" in msg and "daemon.idle_polls" in msg and "stations: missing" in msg
@@ -111,7 +111,7 @@ def test_load_config_raises_one_user_error_listing_every_problem(tmp_path):
 def test_bad_toml_names_the_file(tmp_path):
     path = tmp_path / "broken.toml"
     path.write_text("[store\npath = 1\n")
-    with pytest.raises(UserError, match="broken.toml: not valid TOML"):
+    with pytest.raises(ConfigError, match="broken.toml: not valid TOML"):
         load_config(path)
 
 

@@ -13,16 +13,7 @@ from monitor.feeds.parse import LineFormat
 from monitor.service.daemon import row_lines
 from monitor.feeds.parse import parse_lines
 from monitor.store.database import Store
-
-m = 1.0
-mm = 1e-3
-
-
-@pytest.fixture
-def store(tmp_path):
-    s = Store.open(tmp_path / "q.db")
-    yield s
-    s.close()
+from units import m, mm
 
 
 def _write(store, lines):
@@ -73,7 +64,7 @@ def test_conflicts_are_not_counted_as_unreadable_lines(store):
 def test_a_version_1_store_gains_the_conflict_columns(tmp_path):
     import sqlite_utils
 
-    from monitor.store.database import _create_v1
+    from monitor.store.migrations import _create_v1
 
     path = tmp_path / "old.db"
     db = sqlite_utils.Database(path)

@@ -14,9 +14,9 @@ from pathlib import Path
 
 import numpy as np
 import pytest
+from units import minute
 
 ROOT = Path(__file__).resolve().parent.parent
-minute = 60
 N_LINES = 3000
 BAD_EVERY = 250  # one rejected line every 250 lines
 

@@ -8,7 +8,6 @@ whose shape the test chooses.
 """
 from __future__ import annotations
 
-import email
 import os
 import signal
 import socket
@@ -16,19 +15,16 @@ import sqlite3
 import subprocess
 import sys
 import time
-from email import policy
 from pathlib import Path
 
 import numpy as np
 import pandas as pd
 import pytest
-from aiosmtpd.controller import Controller
 
 from predictor import TideModel
+from units import m
 
 ROOT = Path(__file__).resolve().parent.parent
-minute = 60
-m = 1.0
 
 # Deadlines for a loaded 2-core machine: generous, but bounded.
 START_DEADLINE = 60.0   # [s] a daemon's start (imports) and first processing pass
@@ -44,23 +40,6 @@ phase = 40.0
 """
 STEP = 0.30 * m       # the rule's one step [m of residual]
 SURGE = 0.50 * m      # the plateau of the surge [m]
-
-
-class Catcher:
-    """aiosmtpd handler keeping every accepted message."""
-
-    def __init__(self):
-        self.messages = []
-
-    async def handle_DATA(self, server, session, envelope):
-        self.messages.append(email.message_from_bytes(envelope.content, policy=policy.default))
-        return "250 OK"
-
-
-def _free_port() -> int:
-    with socket.socket() as s:
-        s.bind(("127.0.0.1", 0))
-        return s.getsockname()[1]
 
 
 def _lines(model, minutes, surge) -> str:
@@ -164,11 +143,8 @@ def _append(path: Path, text: str) -> None:
 
 
 @pytest.mark.slow
-def test_one_alert_no_duplicate_after_sigkill_one_all_clear_and_no_mail_for_a_spike(tmp_path):
-    port = _free_port()
-    catcher = Catcher()
-    ctl = Controller(catcher, hostname="127.0.0.1", port=port)
-    ctl.start()
+def test_one_alert_no_duplicate_after_sigkill_one_all_clear_and_no_mail_for_a_spike(tmp_path, smtp, port):
+    catcher = smtp
     cfg = _config(tmp_path, port)
     model = TideModel.load(tmp_path / "constants.toml")
     db, feed = tmp_path / "q.db", tmp_path / "gauge.csv"
@@ -211,7 +187,6 @@ def test_one_alert_no_duplicate_after_sigkill_one_all_clear_and_no_mail_for_a_sp
             except subprocess.TimeoutExpired:
                 proc.kill()
                 proc.wait()
-        ctl.stop()
 
     kinds = [k for k, _ in _outbox(db)]
     assert kinds == ["alert", "all_clear"]

@@ -23,11 +23,10 @@ from monitor.surge.residual import skew_surges
 from predictor import TideModel
 from predictor import extremes as ex
 from predictor import sealevel as sl
+from units import mm
 
 ROOT = Path(__file__).resolve().parent.parent
 PERIODS = (2, 5, 10, 20, 50, 100)
-mm = 1e-3
-cm = 1e-2
 
 
 def _load():

@@ -12,13 +12,9 @@ from pathlib import Path
 import erfa
 import numpy as np
 import pytest
+from units import cm, minute, hour, degree
 
 ROOT = Path(__file__).resolve().parent.parent
-mm = 1e-3
-cm = 1e-2
-minute = 60
-hour = 3600
-degree = 1.0
 
 
 def _load_generator():

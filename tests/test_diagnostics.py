@@ -11,7 +11,8 @@ import pytest
 
 from monitor.quality import diagnostics as dg
 from monitor.quality.checks import QcSettings
-from test_qc_synthetic import START, SynthModel, day, hour, minute, mm, record
+from test_qc_synthetic import START, SynthModel, record
+from units import mm, minute, hour, day
 
 
 @pytest.fixture(scope="module")
@@ -61,22 +62,6 @@ def test_van_de_casteele_recovers_offset_scale_and_timing():
     assert res["scale_error"] == pytest.approx(0.02, abs=3 * res["scale_se"])
     assert res["timing_error_s"] == pytest.approx(3 * minute, abs=3 * res["timing_se_s"])
     assert res["timing_se_s"] < 30
-
-
-def test_drift_against_staff_readings_over_sessions():
-    # Five sessions, a week apart; the gauge sinks 0.5 mm/day against the staff.
-    frames = []
-    gauges = []
-    for k in range(5):
-        start = START + pd.Timedelta(days=7 * k)
-        s, g = _staff_day(SynthModel(), -0.5 * mm * 7 * k, seed=40 + k, start=start)
-        frames.append(s)
-        gauges.append(g)
-    staff, gauge = pd.concat(frames), pd.concat(gauges)
-    sessions = dg.staff_sessions(staff, gauge)
-    assert len(sessions) == 5
-    drift = dg.offset_drift(sessions)
-    assert drift["drift_mm_per_day"] == pytest.approx(-0.5, abs=0.1)
 
 
 def test_clock_offset_of_several_minutes_found(ten_days):

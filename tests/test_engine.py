@@ -2,24 +2,17 @@
 configuration reloads, QC flags, and end-to-end delivery to a loopback SMTP server."""
 from __future__ import annotations
 
-import email
-import socket
-from email import policy
 
 import numpy as np
 import pandas as pd
 import pytest
 import sqlite_utils
-from aiosmtpd.controller import Controller
 
 from alerts.engine import AlertContext, NextHighWater, evaluate, list_episodes
 from alerts.mail.outbox import deliver_due, list_outbox, mail_settings_from
 from alerts.rules import StationView, rules_from_config
+from units import minute
 
-m = 1.0
-mm = 1e-3
-minute = 60
-hour = 3600
 T0 = pd.Timestamp("2025-10-23 00:00", tz="UTC")
 
 STATION = StationView(id="dunmerrow", name="Port Dunmerrow", tz="Europe/Dublin",
@@ -174,29 +167,12 @@ def test_message_shows_change_over_the_last_hour(db):
     assert "Change over last 60 min" in text and "+0.30 m" in text  # 0.005 m/min for 60 min
 
 
-class Catcher:
-    def __init__(self):
-        self.messages = []
-
-    async def handle_DATA(self, server, session, envelope):
-        self.messages.append(email.message_from_bytes(envelope.content, policy=policy.default))
-        return "250 OK"
-
-
-def test_alert_reaches_a_loopback_smtp_server_with_the_caution(db):
-    with socket.socket() as s:
-        s.bind(("127.0.0.1", 0))
-        port = s.getsockname()[1]
-    catcher = Catcher()
-    ctl = Controller(catcher, hostname="127.0.0.1", port=port)
-    ctl.start()
-    try:
-        settings, _ = mail_settings_from({"sender": "gauge@port.example", "host": "127.0.0.1", "port": port,
-                                          "security": "none"}, "mail")
-        evaluate(db, STATION, rules(), frame(storm()), now=T0 + pd.Timedelta(hours=3))
-        deliver_due(db, settings)  # delivery runs on the wall clock
-    finally:
-        ctl.stop()
+def test_alert_reaches_a_loopback_smtp_server_with_the_caution(db, smtp):
+    catcher = smtp
+    settings, _ = mail_settings_from({"sender": "gauge@port.example", "host": "127.0.0.1", "port": smtp.port,
+                                      "security": "none"}, "mail")
+    evaluate(db, STATION, rules(), frame(storm()), now=T0 + pd.Timedelta(hours=3))
+    deliver_due(db, settings)  # delivery runs on the wall clock
     first = catcher.messages[0]
     assert first["Subject"].startswith("[quaywatch] Port Dunmerrow: raised")
     assert "automated and unofficial" in first.get_body(("plain",)).get_content()
@@ -204,25 +180,17 @@ def test_alert_reaches_a_loopback_smtp_server_with_the_caution(db):
     assert len({msg["Message-ID"] for msg in catcher.messages}) == len(catcher.messages) == 5
 
 
-def test_replayed_episode_years_back_is_delivered_with_its_data_time(db):
+def test_replayed_episode_years_back_is_delivered_with_its_data_time(db, smtp):
     # The rules run on the replayed clock (2001); the outbox queues and expires on the wall
     # clock (injected), so the default two-day expiry does not fire for an old record.
     replay_t0 = pd.Timestamp("2001-02-03 00:00", tz="UTC")
     wall = pd.Timestamp("2030-06-01 12:00", tz="UTC").timestamp()
-    with socket.socket() as s:
-        s.bind(("127.0.0.1", 0))
-        port = s.getsockname()[1]
-    catcher = Catcher()
-    ctl = Controller(catcher, hostname="127.0.0.1", port=port)
-    ctl.start()
-    try:
-        settings, _ = mail_settings_from({"sender": "gauge@port.example", "host": "127.0.0.1", "port": port,
-                                          "security": "none"}, "mail")
-        evaluate(db, STATION, rules(), frame(storm()[:40], start=replay_t0),
-                 now=replay_t0 + pd.Timedelta(minutes=40), clock=lambda: wall)
-        summary = deliver_due(db, settings, clock=lambda: wall)
-    finally:
-        ctl.stop()
+    catcher = smtp
+    settings, _ = mail_settings_from({"sender": "gauge@port.example", "host": "127.0.0.1", "port": smtp.port,
+                                      "security": "none"}, "mail")
+    evaluate(db, STATION, rules(), frame(storm()[:40], start=replay_t0),
+             now=replay_t0 + pd.Timedelta(minutes=40), clock=lambda: wall)
+    summary = deliver_due(db, settings, clock=lambda: wall)
     assert summary.expired == [] and len(summary.sent) == 1
     row = next(db.query("SELECT created_at, event_at, attempts FROM outbox"))
     assert row["created_at"] == int(wall) and row["attempts"] == 1

@@ -16,6 +16,7 @@ from __future__ import annotations
 
 import numpy as np
 import pytest
+from units import hour, day, degree
 
 erfa = pytest.importorskip("erfa")
 
@@ -23,10 +24,6 @@ from predictor import nodal
 from predictor.constituents import EQUILIBRIUM_AMPLITUDE, get
 from predictor.fit import harmonic_fit
 
-mm = 1e-3
-hour = 3600.0
-day = 86400.0
-degree = 1.0
 
 # IERS Conventions (2010) numerical standards (from memory): mass ratios and equatorial radius.
 MOON_EARTH = 0.0123000371

@@ -17,12 +17,8 @@ import pytest
 import reference_tide as ref
 from predictor import TideModel
 from predictor.datums import tidal_datums
+from units import mm, second, minute, hour, day
 
-mm = 1e-3
-second = 1.0
-minute = 60.0
-hour = 3600.0
-day = 86400.0
 
 # invented constants (mixed, mainly semidiurnal, with a shallow-water M4)
 MIXED = {"mean": 2.2, "constituents": [

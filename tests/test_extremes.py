@@ -17,10 +17,8 @@ from scipy import optimize, stats
 
 from predictor import TideModel
 from predictor import extremes as ex
+from units import cm, mm, hour
 
-mm = 1e-3
-cm = 1e-2
-hour = 3600.0
 year = 365.25 * 86400.0
 
 

@@ -11,12 +11,11 @@ import time
 
 import pytest
 
-from monitor.errors import UserError
+from monitor.errors import FeedError
 from monitor.feeds import feed_from_config, open_feed
 from monitor.feeds.replay import ReplayFeed, parse_time
+from units import second
 
-second = 1.0
-minute = 60.0
 
 RECORD = "time,level\n" + "".join(
     f"2031-03-01T00:{m:02d}:00Z,{1 + m / 100:.2f}\n" for m in range(10))
@@ -159,7 +158,7 @@ def test_changed_file_is_played_from_start(record):
 
 
 def test_missing_replay_file_is_a_user_error(tmp_path):
-    with pytest.raises(UserError, match="absent.csv"):
+    with pytest.raises(FeedError, match="absent.csv"):
         ReplayFeed("demo", str(tmp_path / "absent.csv"), speedup=0)
 
 

@@ -14,8 +14,8 @@ import serial
 
 from monitor.feeds import feed_from_config, open_feed
 from monitor.feeds.serialline import PARITIES, STOPBITS, SerialFeed
+from units import second
 
-second = 1.0
 
 pytestmark = pytest.mark.skipif(not hasattr(os, "openpty"), reason="needs pseudo-terminals")
 

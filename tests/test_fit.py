@@ -18,11 +18,8 @@ import reference_tide as ref
 from predictor import confidence as ci
 from predictor.fit import (FitInputError, RecordTooShortError, harmonic_fit, required_days,
                            select_constituents, to_unix_seconds)
+from units import mm, hour, day, degree
 
-mm = 1e-3
-hour = 3600.0
-day = 86400.0
-degree = 1.0
 
 # Hand-made constants for an invented port: amplitude [m], Greenwich phase lag [deg].
 CONSTANTS = {

@@ -15,10 +15,8 @@ from scipy.signal import lfilter
 import reference_tide as ref
 from predictor import harmonic_fit
 from test_short_records import MEAN, SEA, START
+from units import hour, day
 
-mm = 1e-3
-hour = 3600.0
-day = 86400.0
 NOISE_SD = 0.03  # [m]
 LONG_PERIOD = ("Sa", "Ssa", "Msm", "Mm", "MSf", "Mf", "Mtm", "MSqm")
 

@@ -9,9 +9,8 @@ import pandas as pd
 import pytest
 
 from predictor import TideModel
+from units import hour, day
 
-hour = 3600
-day = 86400
 NOW = 1_767_225_600            # 2026-01-01T00:00Z (invented)
 STEP = 600                     # the history's step [s]
 MODEL = TideModel(mean=3.0, constituents=[{"name": "M2", "amplitude": 1.2, "phase": 30.0}], datum="station")

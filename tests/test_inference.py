@@ -17,11 +17,8 @@ import pytest
 import reference_tide as ref
 from predictor.constituents import EQUILIBRIUM_AMPLITUDE
 from predictor.fit import FitInputError, equilibrium_inference, harmonic_fit
+from units import mm, hour, day, degree
 
-mm = 1e-3
-hour = 3600.0
-day = 86400.0
-degree = 1.0
 START = pd.Timestamp("2031-02-01", tz="UTC").timestamp()
 
 R_P1 = EQUILIBRIUM_AMPLITUDE["P1"] / EQUILIBRIUM_AMPLITUDE["K1"]   # about 0.331

@@ -15,8 +15,8 @@ import pytest
 import reference_tide as ref
 from predictor.astro import astronomical_arguments
 from predictor.nodal import arguments, equilibrium_arguments, nodal_factors
+from units import degree
 
-degree = 1.0
 DAY = 86400.0
 # one full nodal cycle, daily, from 2001-01-01
 T_CYCLE = 978307200.0 + DAY * np.arange(0, int(18.62 * 365.25))

@@ -2,59 +2,15 @@
 server on loopback (aiosmtpd)."""
 from __future__ import annotations
 
-import email
-import socket
-from email import policy
 
 import pytest
 import sqlite_utils
-from aiosmtpd.controller import Controller
 
 import alerts.mail.outbox as outbox_mod
 from alerts.mail.outbox import deliver_due, enqueue, list_outbox, mail_settings_from
+from units import minute, hour
 
-minute = 60
-hour = 3600
 T0 = 1_761_220_800  # 2025-10-23 12:00 UTC
-
-
-class Catcher:
-    """aiosmtpd handler keeping every accepted message."""
-
-    def __init__(self):
-        self.messages = []
-
-    async def handle_DATA(self, server, session, envelope):
-        msg = email.message_from_bytes(envelope.content, policy=policy.default)
-        self.messages.append((tuple(envelope.rcpt_tos), msg))
-        return "250 OK"
-
-
-def free_port() -> int:
-    with socket.socket() as s:
-        s.bind(("127.0.0.1", 0))
-        return s.getsockname()[1]
-
-
-@pytest.fixture
-def port():
-    return free_port()
-
-
-@pytest.fixture
-def smtp(port):
-    catcher = Catcher()
-    ctl = Controller(catcher, hostname="127.0.0.1", port=port)
-    ctl.start()
-    yield catcher
-    ctl.stop()
-
-
-@pytest.fixture
-def db(tmp_path):
-    d = sqlite_utils.Database(tmp_path / "store.sqlite")
-    d.enable_wal()
-    return d
 
 
 def at(t):
@@ -77,7 +33,7 @@ def test_message_arrives_with_subject_message_id_and_both_parts(db, smtp, port):
                     "alert", "k1", clock=at(T0))
     summary = deliver_due(db, settings_for(port), clock=at(T0))
     assert summary.sent == [oid]
-    [(rcpt, msg)] = smtp.messages
+    [(rcpt, msg)] = smtp.envelopes
     assert rcpt == ("duty@port.example",)
     assert msg["Subject"] == "[quaywatch] test subject"
     assert msg["Message-ID"] == list_outbox(db)[0]["message_id"]
@@ -94,7 +50,7 @@ def test_one_row_per_recipient(db):
     assert len(ids) == 2
 
 
-def test_server_down_then_up_every_message_arrives_in_order_once(db, port):
+def test_server_down_then_up_every_message_arrives_in_order_once(db, port, smtp_server):
     s = settings_for(port)
     for i in range(3):
         enqueue(db, ["a@port.example", "b@port.example"], f"msg {i}", f"body {i}", None, "alert", f"k{i}",
@@ -102,17 +58,12 @@ def test_server_down_then_up_every_message_arrives_in_order_once(db, port):
     down = deliver_due(db, s, clock=at(T0 + 10))       # nothing listens on the port
     assert down.sent == [] and down.retrying
     assert all(r["status"] == "pending" for r in list_outbox(db))
-    catcher = Catcher()
-    ctl = Controller(catcher, hostname="127.0.0.1", port=port)
-    ctl.start()
-    try:
-        t = T0 + 10
-        for _ in range(10):                       # delivery rounds, a minute apart
-            t += minute
-            deliver_due(db, s, clock=at(t))
-    finally:
-        ctl.stop()
-    got = [(r[0], m["Subject"]) for r, m in catcher.messages]
+    catcher = smtp_server(port)
+    t = T0 + 10
+    for _ in range(10):                       # delivery rounds, a minute apart
+        t += minute
+        deliver_due(db, s, clock=at(t))
+    got = [(r[0], m["Subject"]) for r, m in catcher.envelopes]
     for addr in ("a@port.example", "b@port.example"):
         assert [subj for a, subj in got if a == addr] == ["msg 0", "msg 1", "msg 2"]
     assert len(got) == 6
@@ -126,7 +77,7 @@ def test_a_failed_earlier_message_blocks_later_ones_to_that_recipient(db, smtp, 
     db.conn.execute("UPDATE outbox SET next_try = ? WHERE subject = 'first'", (T0 + hour,))
     db.conn.commit()
     summary = deliver_due(db, s, clock=at(T0))
-    assert [m["Subject"] for _, m in smtp.messages] == ["other"]
+    assert [m["Subject"] for _, m in smtp.envelopes] == ["other"]
     assert summary.waiting == 2
 
 
@@ -159,7 +110,7 @@ def test_crash_between_acceptance_and_mark_resends_with_the_same_message_id(db, 
     assert list_outbox(db)[0]["status"] == "sending"
     monkeypatch.undo()
     deliver_due(db, s, clock=at(T0 + hour))             # after the lease has run out
-    ids = [m["Message-ID"] for _, m in smtp.messages]
+    ids = [m["Message-ID"] for _, m in smtp.envelopes]
     assert len(ids) == 2 and ids[0] == ids[1]
     assert list_outbox(db)[0]["status"] == "sent"
 
@@ -170,7 +121,7 @@ def test_a_live_lease_keeps_another_round_off_the_row(db, smtp, port):
     db.conn.execute("UPDATE outbox SET status = 'sending', claimed_until = ?", (T0 + 300,))
     db.conn.commit()
     deliver_due(db, s, clock=at(T0))
-    assert smtp.messages == []
+    assert smtp.envelopes == []
 
 
 def test_password_is_read_from_the_environment_and_never_stored(db, monkeypatch):

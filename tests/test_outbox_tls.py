@@ -25,12 +25,12 @@ from aiosmtpd.controller import Controller
 from aiosmtpd.smtp import AuthResult, LoginPassword
 
 from alerts.mail.outbox import deliver_due, enqueue, mail_settings_from, outbox_row
+from units import minute
 
 # aiosmtpd warns when AUTH is allowed without *its* STARTTLS; the implicit-TLS servers
 # below are encrypted from the first byte, so the warning does not apply to them
 pytestmark = pytest.mark.filterwarnings("ignore:Requiring AUTH while not requiring TLS:UserWarning")
 
-minute = 60
 T0 = 1_761_220_800  # 2025-10-23 12:00 UTC
 USER = "gauge"
 PASSWORD = "tide-Secret-4471"   # invented; must never leave the process except to the server

@@ -10,8 +10,8 @@ from hypothesis import strategies as st
 
 from monitor.feeds.parse import LineFormat
 from monitor.feeds.parse import Observation, Reject, parse_line, parse_lines
+from units import mm
 
-mm = 1e-3
 RECV = 1_760_000_000.0  # an arbitrary receive time [s]
 
 

@@ -16,10 +16,7 @@ from predictor import TideModel
 from predictor.constituents import CATALOGUE
 from predictor.model import SECONDS_PER_YEAR, ConstantsFileError
 from predictor.nodal import arguments
-
-mm = 1e-3
-second = 1.0
-minute = 60.0
+from units import mm, second, minute
 
 
 @pytest.fixture(scope="module")

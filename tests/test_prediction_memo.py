@@ -6,8 +6,7 @@ import pandas as pd
 
 from monitor.service.daemon import PredictionMemo
 from predictor import TideModel
-
-mm = 1e-3
+from units import mm
 
 
 class CountingModel:

@@ -7,7 +7,8 @@ import pytest
 from monitor.quality import checks as qc
 from monitor.cli import main
 from monitor.store.database import Store
-from test_qc_synthetic import AMPS, MEAN, PHASES, mm, record
+from test_qc_synthetic import AMPS, MEAN, PHASES, record
+from units import mm
 
 CONFIG = """
 [store]

@@ -16,7 +16,8 @@ import sqlite_utils
 from alerts.engine import evaluate, list_episodes
 from alerts.rules import StationView, rules_from_config
 from monitor.quality import checks as qc
-from test_qc_synthetic import hour, minute, mm, record
+from test_qc_synthetic import record
+from units import mm, minute, hour
 
 FAIL, SUSPECT, PASS, NOT_EVALUATED, MISSING = qc.FAIL, qc.SUSPECT, qc.PASS, qc.NOT_EVALUATED, qc.MISSING
 

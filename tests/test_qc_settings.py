@@ -9,10 +9,9 @@ from hypothesis import given, settings, strategies as st
 
 from monitor.quality import checks as qc
 from monitor.quality.checks import QcSettings, qc_settings_from
+from units import minute, hour
 
 KP = "stations[0].qc"
-minute = 60
-hour = 3600
 
 
 def test_empty_table_gives_defaults_without_errors():

@@ -9,11 +9,8 @@ from __future__ import annotations
 
 import numpy as np
 import pandas as pd
+from units import mm, hour, day
 
-mm = 1e-3
-minute = 60
-hour = 3600
-day = 86400
 
 SPEEDS = {"M2": 28.9841042, "S2": 30.0, "K1": 15.0410686, "O1": 13.9430356}  # deg/h, Schureman (1958)
 AMPS = {"M2": 1.20, "S2": 0.40, "K1": 0.12, "O1": 0.09}                     # invented port, m

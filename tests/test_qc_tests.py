@@ -10,7 +10,8 @@ import pandas as pd
 import pytest
 
 from monitor.quality import checks as qc
-from test_qc_synthetic import hour, minute, mm, record
+from test_qc_synthetic import record
+from units import mm, minute, hour
 
 FAIL, SUSPECT, PASS, NOT_EVALUATED, MISSING = qc.FAIL, qc.SUSPECT, qc.PASS, qc.NOT_EVALUATED, qc.MISSING
 

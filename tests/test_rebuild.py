@@ -20,11 +20,10 @@ import numpy as np
 import pytest
 
 from monitor.cli import main
+from units import minute, hour
 
 ROOT = Path(__file__).resolve().parent.parent
 START_DEADLINE = 90.0   # [s] a daemon's start and first passes on a loaded machine
-minute = 60
-hour = 3600
 T0 = (int(time.time()) // hour - 48) * hour
 N = 240  # four hours of one-minute samples
 

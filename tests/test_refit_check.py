@@ -18,9 +18,7 @@ from monitor.service.daemon import refit_station
 from monitor.store.database import Store
 from predictor import TideModel
 from test_short_records import MEAN, SEA, START
-
-day = 86400.0
-hour = 3600.0
+from units import hour, day
 
 
 @pytest.fixture()

@@ -13,9 +13,8 @@ from monitor.quality.checks import add_staff_reading
 from monitor.service.reporting import barometric_share, gather_day
 from monitor.store.database import Store
 from predictor import TideModel
+from units import mm, minute
 
-mm = 1e-3
-minute = 60.0
 TZ = "Atlantic/Faroe"
 DAY = dt.date(2024, 3, 12)
 CHART = 0.50     # chart datum 0.50 m above the station datum (invented)

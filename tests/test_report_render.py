@@ -23,10 +23,8 @@ from alerts.reports.render import (
 )
 from alerts.mail.message import build_email
 from report_samples import TZ, sample_report
+from units import mm, minute, hour
 
-hour = 3600.0
-minute = 60.0
-mm = 1e-3
 
 # Daylight saving in the sample zone follows the European rule: clocks change at 01:00 UTC on
 # the last Sunday of March (forward) and of October (back). Source: EU Directive 2000/84/EC

@@ -16,9 +16,8 @@ from monitor.service.config import validate_config
 from monitor.service.reporting import due_day, gather_day, low_water_differences, write_due_reports
 from monitor.store.database import Store
 from predictor import TideModel
+from units import mm, minute
 
-mm = 1e-3
-minute = 60.0
 TZ = "Atlantic/Faroe"  # the invented port's zone (UTC+00:00 in winter)
 DAY = dt.date(2024, 3, 12)
 SURGE = 0.20  # m, a steady surge through the record

@@ -6,9 +6,7 @@ import pandas as pd
 import pytest
 
 from monitor.surge import residual as R
-mm = 1e-3
-minute = 60
-hour = 3600
+from units import mm, minute, hour
 M2_PERIOD = 12.4206012 * hour  # 360 / 28.9841042 deg/h (Schureman 1958, table 2)
 
 

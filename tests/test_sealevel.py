@@ -15,8 +15,8 @@ from scipy import stats
 
 from predictor import sealevel as sl
 from predictor.astro import astronomical_arguments
+from units import mm
 
-mm = 1e-3
 mm_per_year = 1.0          # the trend's own unit
 
 

@@ -18,10 +18,8 @@ from scipy.signal import lfilter
 import reference_tide as ref
 from predictor import harmonic_fit
 from predictor.fit import select_constituents
+from units import mm, hour, day
 
-mm = 1e-3
-hour = 3600.0
-day = 86400.0
 
 # An invented port: amplitude [m], Greenwich phase lag [deg].
 SEA = {"M2": (1.00, 95.0), "S2": (0.33, 128.0), "N2": (0.20, 90.0), "K2": (0.09, 126.0),

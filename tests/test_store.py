@@ -5,7 +5,7 @@ import numpy as np
 import pytest
 
 from monitor.feeds.parse import LineFormat
-from monitor.errors import UserError
+from monitor.errors import StoreError
 from monitor.feeds.parse import parse_lines
 from monitor.store.database import SCHEMA_VERSION, Store
 
@@ -72,7 +72,7 @@ def test_rejects_are_kept_with_feed_line_and_reason(store):
 def test_second_lock_holder_is_refused(tmp_path):
     first = Store.open(tmp_path / "q.db", lock=True)
     try:
-        with pytest.raises(UserError, match="in use by another quaywatch daemon"):
+        with pytest.raises(StoreError, match="in use by another quaywatch daemon"):
             Store.open(tmp_path / "q.db", lock=True)
     finally:
         first.close()
@@ -83,7 +83,7 @@ def test_the_lock_holds_through_a_symlink_to_the_store(tmp_path):
     first = Store.open(tmp_path / "q.db", lock=True)
     (tmp_path / "other-name.db").symlink_to(tmp_path / "q.db")
     try:
-        with pytest.raises(UserError, match="in use by another quaywatch daemon"):
+        with pytest.raises(StoreError, match="in use by another quaywatch daemon"):
             Store.open(tmp_path / "other-name.db", lock=True)
     finally:
         first.close()
@@ -94,7 +94,7 @@ def test_the_lock_holds_through_a_symlink_to_the_store_folder(tmp_path):
     (tmp_path / "elsewhere").symlink_to(tmp_path / "data", target_is_directory=True)
     first = Store.open(tmp_path / "elsewhere" / "q.db", lock=True)
     try:
-        with pytest.raises(UserError, match="in use by another quaywatch daemon"):
+        with pytest.raises(StoreError, match="in use by another quaywatch daemon"):
             Store.open(tmp_path / "data" / "q.db", lock=True)
     finally:
         first.close()
@@ -104,13 +104,13 @@ def test_newer_schema_is_refused_with_a_clear_message(tmp_path):
     s = Store.open(tmp_path / "q.db")
     s.set_meta("schema_version", str(SCHEMA_VERSION + 1))
     s.close()
-    with pytest.raises(UserError, match="newer than this quaywatch understands"):
+    with pytest.raises(StoreError, match="newer than this quaywatch understands"):
         Store.open(tmp_path / "q.db")
 
 
 def test_a_file_that_is_not_a_store_is_refused(tmp_path):
     (tmp_path / "x.db").write_bytes(b"not sqlite at all" * 100)
-    with pytest.raises(UserError, match="not a quaywatch store"):
+    with pytest.raises(StoreError, match="not a quaywatch store"):
         Store.open(tmp_path / "x.db")
 
 

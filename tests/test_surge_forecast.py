@@ -14,8 +14,7 @@ import pytest
 from scipy import stats
 
 from monitor.surge import forecast as SF
-mm = 1e-3
-hour = 3600.0
+from units import mm, hour
 T0 = 1.7e9
 
 

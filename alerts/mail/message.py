@@ -18,12 +18,8 @@ from zoneinfo import ZoneInfo, ZoneInfoNotFoundError
 import jinja2
 
 from alerts.rules import Event, Rule, StationView
+from predictor.caution import MESSAGE as CAUTION
 
-CAUTION = (
-    "This message is automated and unofficial. It comes from a station monitor and is not "
-    "an official warning. Official warnings and your local emergency authorities come "
-    "first: follow their instructions. Defer to local codes and licensed practice."
-)
 
 SUBJECT_PREFIX = "[quaywatch]"
 

@@ -63,10 +63,11 @@ from dataclasses import dataclass, field
 from datetime import datetime
 from email.utils import parseaddr
 from pathlib import Path
-from typing import Any, Callable, Iterable, Iterator
+from typing import Any, Callable, Iterable
 
 from alerts.mail.message import build_email, clean_header
 from alerts.rules import parse_duration
+from alerts.transactions import transaction
 
 log = logging.getLogger(__name__)
 
@@ -94,22 +95,6 @@ def unix_seconds(t: Any = None) -> int:
             raise ValueError("naive datetime: give a time zone (UTC)")
         return int(t.timestamp())
     raise TypeError(f"not a time: {t!r}")
-
-
-@contextlib.contextmanager
-def transaction(db) -> Iterator[None]:
-    """One write transaction on a ``sqlite_utils.Database`` (joins an open one)."""
-    conn = db.conn
-    if conn.in_transaction:
-        yield
-        return
-    conn.execute("BEGIN IMMEDIATE")
-    try:
-        yield
-    except BaseException:
-        conn.rollback()
-        raise
-    conn.commit()
 
 
 def ensure_outbox_schema(db) -> None:

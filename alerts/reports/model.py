@@ -21,13 +21,8 @@ from zoneinfo import ZoneInfo
 import numpy as np
 import pandas as pd
 
-CAUTION = (
-    "This report is automated and unofficial. Official warnings and the local emergency "
-    "authorities come first, always. Levels, predictions and residuals here can be wrong "
-    "(a faulty gauge, constants fitted to a short record, weather the tide model cannot know). "
-    "Defer to local codes, official tide tables and licensed practice for any decision about "
-    "navigation, berthing or safety."
-)
+from predictor.caution import REPORT as CAUTION
+from predictor.timeutil import silences
 
 
 #: QARTOD flag values and the words we show for them (U.S. IOOS 2021, QARTOD water level v2.1).
@@ -525,9 +520,11 @@ def infer_interval(index: pd.DatetimeIndex) -> float | None:
 
 def find_gaps(index: pd.DatetimeIndex, start: pd.Timestamp, end: pd.Timestamp,
               interval: float | None) -> tuple[Gap, ...]:
-    """Spans in [start, end) longer than two sample intervals with no sample.
+    """Spans in [start, end) longer than two sample intervals with no sample: gaps as
+    :func:`predictor.timeutil.silences` defines them, with the limit twice ``interval`` [s].
 
-    A day with no samples at all is one gap covering the whole day.
+    Each gap starts when the next sample was due (one interval after the last one). A day with
+    no samples at all is one gap covering the whole day.
     """
     if len(index) == 0:
         return (Gap(start, end),)
@@ -536,8 +533,11 @@ def find_gaps(index: pd.DatetimeIndex, start: pd.Timestamp, end: pd.Timestamp,
     step = pd.Timedelta(seconds=interval)
     # A virtual sample one step before the day and one at its end, so missing data at
     # either edge counts as a gap too.
-    edges = [start - step, *index.sort_values(), end]
-    return tuple(Gap(a + step, b) for a, b in zip(edges[:-1], edges[1:]) if b - a > 2 * step)
+    ns = pd.DatetimeIndex(index).as_unit("ns").asi8
+    before, after = silences(ns, 2 * step.value, start=(start - step).value, end=end.value)
+    tz = start.tz
+    return tuple(Gap(pd.Timestamp(a, tz="UTC").tz_convert(tz) + step, pd.Timestamp(b, tz="UTC").tz_convert(tz))
+                 for a, b in zip(before.tolist(), after.tolist()))
 
 
 def day_figures(report: DayReport) -> DayFigures:

@@ -18,19 +18,18 @@ from alerts.mail.outbox import list_outbox
 from alerts.mail.outbox import outbox_row
 from monitor.cli.common import CAUTION, positive_int, store_errors
 from monitor.cli.common import table as _common_table
+from monitor.cli.errors import UserError
 from monitor.cli.timeparse import local_text
-from monitor.errors import UserError
 from monitor.service.config import load_config
 from monitor.store.database import Store
 
-CAUTION_LINE = CAUTION
 
 
 def register(subparsers) -> None:
     p = subparsers.add_parser(
         "alerts", help="alert episodes, the outbox, and a test email",
         description="Show alert episodes and the outbox, or send a test email through the outbox. "
-        + CAUTION_LINE)
+        + CAUTION)
     p.add_argument("config", metavar="CONFIG", help="the configuration file (TOML)")
     sub = p.add_subparsers(dest="alerts_action", metavar="ACTION")
     sub.required = True

@@ -2,7 +2,9 @@
 
 Each group of verbs lives in its own module of :mod:`monitor.cli` with a
 ``register(subparsers)`` function; this module only assembles them and turns expected errors into one-line
-messages (a user never sees a traceback for bad input).
+messages (a user never sees a traceback for bad input): the command line's own
+:class:`~monitor.cli.errors.UserError`, the monitor's :class:`~monitor.errors.MonitorError` and
+predictor's :class:`~predictor.errors.PredictorError` all become ``quaywatch VERB: message``, exit 2.
 """
 from __future__ import annotations
 
@@ -11,7 +13,10 @@ import logging
 import sys
 
 from monitor.cli import alerts, extremes, qc, report, station, tide
-from monitor.errors import UserError
+from monitor.cli.errors import UserError
+from monitor.errors import MonitorError
+from predictor.caution import CAUTION
+from predictor.errors import PredictorError
 
 # Verb groups, each owning its own module; order is the order shown in --help.
 _GROUPS = (
@@ -28,8 +33,7 @@ def build_parser() -> argparse.ArgumentParser:
     parser = argparse.ArgumentParser(
         prog="quaywatch",
         description="Tide-gauge station monitor: predicted tide, surge residual, quality "
-        "control, alerts and reports. Automated and unofficial: official warnings and "
-        "local emergency authorities come first.",
+        "control, alerts and reports. " + CAUTION,
     )
     parser.add_argument("-v", "--verbose", action="count", default=0, help="more log output")
     sub = parser.add_subparsers(dest="verb", metavar="VERB")
@@ -49,7 +53,7 @@ def main(argv: list[str] | None = None) -> int:
     )
     try:
         return int(args.func(args) or 0)
-    except UserError as exc:
+    except (UserError, MonitorError, PredictorError) as exc:
         print(f"quaywatch {args.verb}: {exc}", file=sys.stderr)
         return 2
     except BrokenPipeError:

@@ -9,12 +9,10 @@ import sqlite3
 from pathlib import Path
 from typing import Callable, Iterable, Sequence
 
-from monitor.errors import UserError
+from monitor.cli.errors import UserError
+from predictor.caution import CAUTION
 
 __all__ = ["CAUTION", "table", "positive_int", "count", "finite_float", "store_errors", "input_file"]
-
-CAUTION = ("Automated and unofficial: official warnings and the local emergency authorities come first; "
-           "defer to local codes and licensed practice.")
 
 
 def table(rows: Sequence[Sequence[object]], head: Sequence[str], right: Iterable[int] = (),

@@ -16,7 +16,7 @@ import pandas as pd
 
 from monitor.cli.common import CAUTION, finite_float, positive_int, store_errors, table
 from monitor.cli.timeparse import parse_time
-from monitor.errors import UserError
+from monitor.cli.errors import UserError
 from monitor.service import extremes as se
 from monitor.service.config import load_config
 from monitor.service.constants import load_model

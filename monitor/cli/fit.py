@@ -1,7 +1,8 @@
 """The ``fit`` verb: harmonic constants from a CSV of observed levels.
 
 ``quaywatch fit OBS.csv [-o CONSTANTS.toml] [--json] [--tz ZONE] [--robust] [--rayleigh R]
-[--trend] [--infer auto|equilibrium|none] [--robust [auto|on|off]]``. The CSV reader :func:`read_level_csv` is shared with the daemon's backfill.
+[--trend] [--infer auto|equilibrium|none] [--robust [auto|on|off]]``. The CSV is read by
+:func:`monitor.feeds.csvfile.read_level_csv`.
 """
 from __future__ import annotations
 
@@ -10,165 +11,18 @@ import json
 import re
 import sys
 import warnings
-from pathlib import Path
 
-import numpy as np
-import pandas as pd
 
+from monitor.cli.errors import UserError
 from monitor.cli.timeparse import zone as _zone
-from monitor.errors import UserError
+from monitor.feeds.csvfile import read_level_csv
 from monitor.service.config import datum_words
+from predictor.caution import ANALYSIS as CAUTION
 from predictor.fit import FitConditioningWarning
 from predictor.fit import FitInputError
 from predictor.fit import harmonic_fit
 
-__all__ = ["CAUTION", "read_level_csv", "register", "run_fit", "model_summary"]
-
-CAUTION = ("Automated, unofficial analysis. Official tide tables, official warnings and the local "
-           "emergency authorities come first; defer to local codes and licensed practice.")
-
-# An explicit zone at the end of an ISO 8601 time: Z, +HH, +HHMM or +HH:MM.
-_ZONE = re.compile(r"(?:[Zz]|[+-]\d{2}(?::?\d{2})?)$")
-_MAX_LISTED = 5
-
-
-def _bad(path, lines, what):
-    """A UserError naming the first bad line and counting the rest."""
-    first = lines[0]
-    more = ""
-    if len(lines) > 1:
-        shown = ", ".join(str(n) for n in lines[1:_MAX_LISTED])
-        extra = len(lines) - _MAX_LISTED
-        more = f" (also line{'s' if len(lines) > 2 else ''} {shown}" + (f" and {extra} more" if extra > 0 else "") + ")"
-    return UserError(f"{path} line {first}: {what}{more}")
-
-
-def read_level_csv(path, tz: str | None = None):
-    """Read a ``time,level`` CSV of observed levels.
-
-    Parameters
-    ----------
-    path : str or Path
-        CSV file with the header ``time,level``; ``time`` ISO 8601 with ``Z`` or an offset,
-        ``level`` in metres. Blank lines and lines starting with ``#`` are skipped; an empty
-        level is a missing value and is left out.
-    tz : str, optional
-        IANA zone for times written without a zone; without it such times are refused.
-
-    Returns
-    -------
-    times : pandas.DatetimeIndex
-        UTC, sorted, without duplicates.
-    levels : ndarray
-        Levels [m].
-    notes : list of str
-        What was changed (re-sorted rows, duplicates dropped, missing levels skipped).
-
-    Raises
-    ------
-    UserError
-        Naming the file and line: unreadable file, wrong header, wrong number of columns,
-        bad time or level, time without a zone, no data.
-    """
-    path = Path(path)
-    zone = None if tz is None else _zone(tz)
-    try:
-        text = path.read_text(encoding="utf-8-sig")
-    except FileNotFoundError:
-        raise UserError(f"{path}: no such file") from None
-    except UnicodeDecodeError as exc:
-        raise UserError(f"{path}: not UTF-8 text ({exc.reason} at byte {exc.start})") from None
-    except OSError as exc:
-        raise UserError(f"{path}: cannot read ({exc.strerror})") from None
-
-    lines = text.splitlines()
-    header_no = next((i for i, ln in enumerate(lines) if ln.strip() and not ln.lstrip().startswith("#")), None)
-    if header_no is None:
-        raise UserError(f"{path}: empty file, expected a header 'time,level' and data")
-    header = [h.strip().lower() for h in lines[header_no].split(",")]
-    if header != ["time", "level"]:
-        raise UserError(f"{path} line {header_no + 1}: expected the header 'time,level', "
-                        f"found {lines[header_no].strip()!r}")
-
-    numbers, t_text, v_text, malformed = [], [], [], []
-    for i in range(header_no + 1, len(lines)):
-        ln = lines[i].strip()
-        if not ln or ln.startswith("#"):
-            continue
-        parts = ln.split(",")
-        if len(parts) != 2:
-            malformed.append(i + 1)
-            continue
-        numbers.append(i + 1)
-        t_text.append(parts[0].strip())
-        v_text.append(parts[1].strip())
-    if malformed:
-        raise _bad(path, malformed, "expected two fields 'time,level'")
-    if not numbers:
-        raise UserError(f"{path}: no data rows after the header")
-    numbers = np.asarray(numbers)
-
-    v_series = pd.Series(v_text, dtype=object)
-    empty = (v_series == "").to_numpy()
-    levels = pd.to_numeric(v_series.where(~empty, "nan"), errors="coerce").to_numpy(dtype=float)
-    bad_level = np.isnan(levels) & ~empty & ~v_series.str.lower().isin(["nan"]).to_numpy()
-    if bad_level.any():
-        first = v_text[int(np.flatnonzero(bad_level)[0])]
-        raise _bad(path, list(numbers[bad_level]), f"level {first!r} is not a number (metres expected)")
-    infinite = np.isinf(levels)
-    if infinite.any():
-        raise _bad(path, list(numbers[infinite]), "level is not finite")
-
-    t_series = pd.Series(t_text, dtype=object)
-    has_zone = t_series.str.contains(_ZONE).to_numpy()
-    naive = ~has_zone
-    if naive.any() and zone is None:
-        raise _bad(path, list(numbers[naive]), f"time {t_text[int(np.flatnonzero(naive)[0])]!r} has no "
-                   "zone; write it with Z or an offset such as +01:00, or give --tz")
-    ns = np.empty(len(t_text), dtype=np.int64)
-    bad_time = np.zeros(len(t_text), dtype=bool)
-    if has_zone.any():
-        parsed = pd.to_datetime(t_series[has_zone], format="ISO8601", utc=True, errors="coerce")
-        bad_time[has_zone] = parsed.isna().to_numpy()
-        ns[has_zone] = pd.DatetimeIndex(parsed).as_unit("ns").asi8
-    if naive.any():
-        parsed = pd.to_datetime(t_series[naive], format="ISO8601", errors="coerce")
-        bad_time[naive] = parsed.isna().to_numpy()
-        if not bad_time[naive].any():
-            local = pd.DatetimeIndex(parsed)
-            try:
-                ns[naive] = local.tz_localize(zone, ambiguous="raise", nonexistent="raise") \
-                    .tz_convert("UTC").as_unit("ns").asi8
-            except Exception:  # pandas raises several types for clock changes
-                for k, stamp in zip(np.flatnonzero(naive), local):
-                    try:
-                        pd.Timestamp(stamp).tz_localize(zone, ambiguous="raise", nonexistent="raise")
-                    except Exception:
-                        raise UserError(f"{path} line {numbers[k]}: local time {t_text[k]!r} is "
-                                        f"ambiguous or does not exist in {tz} (clock change); "
-                                        "write it with an offset") from None
-                raise
-    if bad_time.any():
-        first = t_text[int(np.flatnonzero(bad_time)[0])]
-        raise _bad(path, list(numbers[bad_time]), f"time {first!r} is not an ISO 8601 date and time")
-
-    notes = []
-    keep = ~np.isnan(levels)
-    if (~keep).any():
-        notes.append(f"{path}: {int((~keep).sum())} row(s) without a level skipped")
-    ns, levels = ns[keep], levels[keep]
-    if ns.size == 0:
-        raise UserError(f"{path}: no levels in the file")
-    if np.any(np.diff(ns) < 0):
-        order = np.argsort(ns, kind="stable")
-        notes.append(f"{path}: {int(np.sum(np.diff(ns) < 0))} row(s) out of time order; sorted")
-        ns, levels = ns[order], levels[order]
-    dup = np.concatenate([[False], np.diff(ns) == 0])
-    if dup.any():
-        notes.append(f"{path}: {int(dup.sum())} row(s) repeating an earlier time dropped (first kept)")
-        ns, levels = ns[~dup], levels[~dup]
-    times = pd.DatetimeIndex(ns.astype("datetime64[ns]")).tz_localize("UTC")
-    return times, levels, notes
+__all__ = ["CAUTION", "register", "run_fit", "model_summary"]
 
 
 def model_summary(model) -> dict:
@@ -253,7 +107,7 @@ def run_fit(args) -> int:
     """Run ``quaywatch fit``; returns the exit code."""
     if args.rayleigh is not None and not args.rayleigh > 0:
         raise UserError(f"--rayleigh {args.rayleigh}: must be a positive number")
-    times, levels, notes = read_level_csv(args.obs, tz=args.tz)
+    times, levels, notes = read_level_csv(args.obs, tz=None if args.tz is None else _zone(args.tz))
     for note in notes:
         print(note, file=sys.stderr)
     with warnings.catch_warnings(record=True) as caught:

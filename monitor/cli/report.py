@@ -10,8 +10,8 @@ from pathlib import Path
 from zoneinfo import ZoneInfo
 
 from monitor.cli.common import CAUTION
+from monitor.cli.errors import UserError
 from monitor.cli.timeparse import parse_date
-from monitor.errors import UserError
 from monitor.service.config import load_config
 from monitor.service.reporting import find_station
 from monitor.service.reporting import write_station_day

@@ -19,8 +19,9 @@ from pathlib import Path
 import numpy as np
 
 from monitor.cli.common import CAUTION, count, finite_float, input_file, store_errors
+from monitor.cli.errors import UserError
 from monitor.cli.timeparse import local_text, parse_range
-from monitor.errors import UserError
+from monitor.errors import MonitorError
 from monitor.feeds.base import decode_line
 from monitor.feeds.capture import SUFFIX
 from monitor.feeds.capture import is_capture
@@ -224,7 +225,7 @@ def cmd_status(args: argparse.Namespace) -> int:
                     rows.append(("forecast method", fc["note"]))
             try:
                 _, source = load_model(store, st)
-            except UserError as exc:
+            except MonitorError as exc:
                 source = f"unreadable: {exc}"
             rows.append(("constants", source))
             for role, sensor in st.sensors.items():
@@ -506,7 +507,7 @@ def cmd_refit(args: argparse.Namespace) -> int:
             return 0
         try:
             old, old_source = load_model(store, st)
-        except UserError:
+        except MonitorError:
             old, old_source = None, "unreadable"
         if args.days is not None and not args.days > 0:
             raise UserError(f"--days {args.days:g}: expected a number of days above 0")

@@ -15,12 +15,13 @@ import pandas as pd
 
 from monitor.cli import fit as fit_verb
 from monitor.cli.common import finite_float, input_file
+from monitor.cli.errors import UserError
 from monitor.cli.timeparse import offset_text, parse_date, parse_range, parse_time, zone
-from monitor.errors import UserError
 from monitor.service.config import datum_words
 from monitor.service.config import load_config
 from monitor.service.constants import load_model
 from monitor.store.database import Store
+from predictor.caution import PREDICTION as CAUTION
 from predictor.datums import DATUM_DESCRIPTIONS
 from predictor.datums import DATUM_ORDER
 from predictor.datums import tidal_datums
@@ -30,9 +31,6 @@ from predictor.timeutil import parse_duration
 
 __all__ = ["register", "run_predict", "run_table", "run_datums", "CAUTION", "parse_step"]
 
-CAUTION = ("Automated, unofficial prediction of the astronomical tide only (no weather effects). "
-           "Official tide tables, official warnings and the local emergency authorities come first; "
-           "defer to local codes and licensed practice.")
 
 _ROWS_PER_WRITE = 200_000
 _MAX_ROWS = 100_000_000  # about 190 years at one-minute steps

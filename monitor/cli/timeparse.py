@@ -15,7 +15,7 @@ from typing import Any
 
 import pandas as pd
 
-from monitor.errors import UserError
+from monitor.cli.errors import UserError
 
 __all__ = ["zone", "parse_time", "parse_range", "parse_date", "local_text", "offset_text", "EXAMPLES"]
 

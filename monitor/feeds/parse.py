@@ -23,6 +23,8 @@ from typing import Sequence
 import numpy as np
 import pandas as pd
 
+from predictor.timeutil import iso_utc
+
 
 MAX_TEXT = 500  # characters of a rejected line kept in the store
 # Plausible epoch range: 1900-01-01 .. 2200-01-01 [s]; outside it a clock or a format is wrong.
@@ -254,7 +256,7 @@ def _parse_lines(texts, fmt, received, linenos, max_ahead=None) -> ParsedLines:
         ahead = t - recv_sel
         for j in np.flatnonzero((ahead > max_ahead) & has):
             if reasons[j] is None:
-                reasons[j] = (f"time {_iso(int(t[j]))} is {_span(float(ahead[j]))} ahead of the clock "
+                reasons[j] = (f"time {iso_utc(int(t[j]))} is {_span(float(ahead[j]))} ahead of the clock "
                               f"when received (more than {_span(max_ahead)} is refused: QARTOD timing test)")
 
     good = np.fromiter((r is None for r in reasons), dtype=bool, count=m)
@@ -263,10 +265,6 @@ def _parse_lines(texts, fmt, received, linenos, max_ahead=None) -> ParsedLines:
         rejects.append(Reject(int(linenos[i]), _clean_text(texts[i])[1].rstrip("\r\n"), reasons[j]))
     rejects.sort(key=lambda r: r.lineno)
     return ParsedLines(t[good], value[good], source[good], linenos[idx_a[good]], rejects, skipped, idx_a[good])
-
-
-def _iso(t: int) -> str:
-    return pd.Timestamp(t, unit="s", tz="UTC").strftime("%Y-%m-%dT%H:%M:%SZ")
 
 
 def _span(seconds: float) -> str:

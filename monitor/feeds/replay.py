@@ -25,7 +25,7 @@ import time
 from datetime import datetime, timezone
 from typing import Any, Callable
 
-from monitor.errors import UserError
+from monitor.errors import FeedError
 from monitor.feeds.base import (
     CHUNK_BYTES,
     Feed,
@@ -113,7 +113,7 @@ class ReplayFeed(Feed):
         try:
             self._f = open(self.path, "rb")
         except OSError as exc:
-            raise UserError(f"feed {name}: cannot open the replay file {self.path}: "
+            raise FeedError(f"feed {name}: cannot open the replay file {self.path}: "
                             f"{exc.strerror or exc}") from None
         self._identity = FileIdentity.of_fd(self._f.fileno())
         self._start(0, 0, None)

@@ -294,7 +294,7 @@ def open_feed(spec: FeedSpec, name: str, capture_dir: str | os.PathLike | None =
 
     Raises
     ------
-    monitor.errors.UserError
+    monitor.errors.FeedError
         When a replay file cannot be opened. Other kinds wait for their file, folder or
         device instead of failing.
     """

@@ -38,7 +38,6 @@ Vols I-V. IOC Manuals and Guides 14.
 """
 from __future__ import annotations
 
-import contextlib
 import difflib
 import math
 import time as _time
@@ -49,7 +48,9 @@ from typing import Any, Iterable, Mapping
 import numpy as np
 import pandas as pd
 
-from monitor.errors import UserError
+from alerts.transactions import transaction
+from monitor.errors import QcError
+from predictor.timeutil import index_seconds, silences, utc_index
 from predictor.timeutil import parse_duration as _parse_duration
 
 PASS, NOT_EVALUATED, SUSPECT, FAIL, MISSING = 1, 2, 3, 4, 9
@@ -272,18 +273,6 @@ def qc_settings_from(raw: Mapping[str, Any] | None, keypath: str) -> tuple[QcSet
 
 # --------------------------------------------------------------------------- helpers
 
-def utc_index(index: pd.Index) -> pd.DatetimeIndex:
-    """The index as a UTC DatetimeIndex (naive taken as UTC)."""
-    if not isinstance(index, pd.DatetimeIndex):
-        raise TypeError("quality-control series need a DatetimeIndex")
-    return index.tz_localize("UTC") if index.tz is None else index.tz_convert("UTC")
-
-
-def seconds(index: pd.Index) -> np.ndarray:
-    """Unix seconds (float) of a DatetimeIndex."""
-    return utc_index(index).as_unit("ns").asi8 / 1e9
-
-
 def _flags(index: pd.Index, values: np.ndarray, name: str) -> pd.Series:
     return pd.Series(np.asarray(values, dtype=np.int8), index=index, name=name)
 
@@ -330,7 +319,7 @@ def gap_test(level: pd.Series, gap_limit: float, now: float | None = None,
     ----------
     U.S. IOOS (2021), QARTOD water level manual v2.1, Test 1 (timing/gap).
     """
-    t = seconds(level.index)
+    t = index_seconds(level.index)
     flags = np.full(len(t), PASS, dtype=np.int8)
     if len(t):
         dt = np.diff(t)
@@ -343,13 +332,12 @@ def gap_test(level: pd.Series, gap_limit: float, now: float | None = None,
 
 
 def find_gaps(index: pd.Index, gap_limit: float) -> pd.DataFrame:
-    """Silences longer than ``gap_limit`` [s]: columns ``start`` (last sample before),
-    ``end`` (first sample after) as UTC Timestamps and ``seconds``."""
-    t = seconds(index)
-    dt = np.diff(t)
-    at = np.flatnonzero(dt > gap_limit)
-    idx = utc_index(index)
-    return pd.DataFrame({"start": idx[at], "end": idx[at + 1], "seconds": dt[at]})
+    """Silences longer than ``gap_limit`` [s] (a gap as :func:`predictor.timeutil.silences`
+    defines it): columns ``start`` (last sample before), ``end`` (first sample after) as UTC
+    Timestamps and ``seconds`` [s]."""
+    before, after = silences(utc_index(index).as_unit("ns").asi8, gap_limit * 1e9)
+    return pd.DataFrame({"start": pd.to_datetime(before, utc=True), "end": pd.to_datetime(after, utc=True),
+                         "seconds": (after - before) / 1e9})
 
 
 def syntax_test(level: pd.Series) -> pd.Series:
@@ -477,7 +465,7 @@ def spike_test(resid: pd.Series, suspect: float, fail: float, gap_limit: float,
     quickly: hence the shape conditions before a fail.
     """
     r = resid.to_numpy(dtype=float)
-    t = seconds(resid.index)
+    t = index_seconds(resid.index)
     n = len(r)
     prev_ok, next_ok = _neighbour_ok(t, gap_limit)
     flags = np.full(n, NOT_EVALUATED, dtype=np.int8)
@@ -507,7 +495,7 @@ def jumps(resid: pd.Series, size: float, ratio: float, gap_limit: float) -> np.n
     ``gap_limit`` [s] of each other). NaN samples are skipped over.
     """
     r = resid.to_numpy(dtype=float)
-    t = seconds(resid.index)
+    t = index_seconds(resid.index)
     n = len(r)
     out = np.zeros(n, dtype=bool)
     good = np.flatnonzero(np.isfinite(r))
@@ -543,7 +531,7 @@ def rate_of_change_test(resid: pd.Series, n_dev: float, window: float, floor: fl
     identified for this test").
     """
     r = resid.to_numpy(dtype=float)
-    t = seconds(resid.index)
+    t = index_seconds(resid.index)
     n = len(r)
     flags = np.full(n, NOT_EVALUATED, dtype=np.int8)
     if n < 2:
@@ -583,7 +571,7 @@ def flat_line_test(level: pd.Series, tolerance: float, suspect_after: float, fai
     place of repeat counts.
     """
     v = level.to_numpy(dtype=float)
-    t = seconds(level.index)
+    t = index_seconds(level.index)
     idx = utc_index(level.index)
     flags = np.full(len(v), PASS, dtype=np.int8)
     frame = pd.DataFrame({"v": v, "t": t}, index=idx)
@@ -631,8 +619,8 @@ def difference_at(level: pd.Series, other: pd.Series, gap_limit: float) -> np.nd
     """``level - other`` at ``level``'s times [m]; NaN where ``other`` has no sample on
     both sides within ``gap_limit`` [s] (an exact time match is always used)."""
     other = other.dropna()
-    t = seconds(level.index)
-    to = seconds(other.index)
+    t = index_seconds(level.index)
+    to = index_seconds(other.index)
     vo = other.to_numpy(dtype=float)
     if len(to) == 0:
         return np.full(len(t), np.nan)
@@ -683,7 +671,7 @@ def residual_outlier_test(resid: pd.Series, window: float, noise_window: float, 
     flags[ev & (np.abs(d) > np.maximum(k_suspect * sigma, floor_suspect))] = SUSPECT
     far = ev & (np.abs(d) > np.maximum(k_fail * sigma, floor_fail))
     flags[far] = SUSPECT
-    flags[_bursts(r, seconds(resid.index), far, burst, floor_fail, jump_ratio, gap_limit)] = FAIL
+    flags[_bursts(r, index_seconds(resid.index), far, burst, floor_fail, jump_ratio, gap_limit)] = FAIL
     return _flags(resid.index, flags, "resid")
 
 
@@ -743,7 +731,7 @@ def attenuation_test(level: pd.Series, predicted: Any, window: float, suspect: f
     pre = pd.Series(np.where(ok, p, np.nan), index=idx).rolling(w, min_periods=2)
     obs_range = (obs.max() - obs.min()).to_numpy()
     pred_range = (pre.max() - pre.min()).to_numpy()
-    t = seconds(level.index)
+    t = index_seconds(level.index)
     step = float(np.median(np.diff(t))) if n > 1 else window
     count = pd.Series(ok.astype(float), index=idx).rolling(w, min_periods=1).sum().to_numpy()
     span_ok = (t - t[0]) >= window - step  # a whole window of record behind the sample
@@ -930,7 +918,7 @@ def episodes(flags: pd.Series, at_least: int = SUSPECT, join_gap: float = 0.0) -
     if not bad.any():
         return pd.DataFrame(columns=cols)
     pos = np.flatnonzero(bad)
-    t = seconds(flags.index)[pos]
+    t = index_seconds(flags.index)[pos]
     brk = np.concatenate([[True], (np.diff(pos) > 1) & (np.diff(t) > join_gap)])
     gid = np.cumsum(brk) - 1
     df = pd.DataFrame({"i": pos, "g": gid, "f": f[pos]})
@@ -945,21 +933,6 @@ def episodes(flags: pd.Series, at_least: int = SUSPECT, join_gap: float = 0.0) -
 def _db(store: Any):
     """The sqlite_utils Database behind a Store (or the Database itself)."""
     return getattr(store, "db", store)
-
-
-@contextlib.contextmanager
-def _transaction(conn):
-    """One write transaction, also on an autocommit connection (the Store's)."""
-    if conn.in_transaction:
-        yield conn
-        return
-    conn.execute("BEGIN IMMEDIATE")
-    try:
-        yield conn
-    except BaseException:
-        conn.execute("ROLLBACK")
-        raise
-    conn.execute("COMMIT")
 
 
 def ensure_qc_schema(db: Any) -> None:
@@ -1150,7 +1123,7 @@ def run_station_qc(store: Any, station_cfg: Any, settings: QcSettings | None, st
             tests["flag"] = aggregate_flags(tests)
             resid = df["value"] - preds[sn] if preds[sn] is not None else df["value"]
             tests = _confirm(tests, df["value"], resid, obs[o]["value"].where(shape_only.to_numpy()), s)
-        t = seconds(tests.index)
+        t = index_seconds(tests.index)
         sel = (t >= write_from) & (t <= end_t)
         part = tests[sel].copy()
         ov = read_overrides(db, station, sn, write_from, end_t)
@@ -1171,7 +1144,7 @@ def _write(db: Any, station: str, sensor: str, part: pd.DataFrame, stored: np.nd
     if part.empty:
         return
     conn = db.conn
-    t = (seconds(part.index)).round().astype(np.int64)
+    t = (index_seconds(part.index)).round().astype(np.int64)
     tests = np.column_stack([part[c].to_numpy(dtype=np.int64) for c in TESTS])  # (n, tests)
     names = ", ".join(TESTS)
     # Compare packed rows (4 bits per flag; QARTOD flags are 1..9) so the read of the
@@ -1194,7 +1167,7 @@ def _write(db: Any, station: str, sensor: str, part: pd.DataFrame, stored: np.nd
     rows = zip(_repeat(station), _repeat(sensor), t[todo].tolist(), *(tests[todo, j].tolist() for j in range(len(TESTS))))
     flags = zip(new[changed].tolist(), _repeat(station), _repeat(sensor), t[changed].tolist())
     marks = ", ".join("?" * len(TESTS))
-    with _transaction(conn):
+    with transaction(conn):
         conn.executemany(
             f"INSERT OR REPLACE INTO qc_tests (station, sensor, t, {names}) VALUES (?, ?, ?, {marks})", rows)
         conn.executemany("UPDATE observations SET flag = ? WHERE station = ? AND sensor = ? AND t = ?", flags)
@@ -1205,23 +1178,23 @@ def set_override(store: Any, station: str, sensor: str, start_t: float, end_t: f
     """Record a technician's flag for the samples of one sensor in ``[start_t, end_t]``.
 
     With ``end_t`` None the single sample at ``start_t`` is meant; when no sample is
-    stamped exactly then, a UserError names the nearest one. The override wins over
+    stamped exactly then, a QcError names the nearest one. The override wins over
     automatic flags now and whenever QC is re-run. Returns the number of samples.
     """
     if flag not in OVERRIDE_FLAGS:
-        raise UserError(f"--set: expected one of {', '.join(map(str, OVERRIDE_FLAGS))} "
+        raise QcError(f"--set: expected one of {', '.join(map(str, OVERRIDE_FLAGS))} "
                         f"(1 pass, 3 suspect, 4 fail), got {flag}")
     if not who.strip():
-        raise UserError("--who: say who sets the flag")
+        raise QcError("--who: say who sets the flag")
     if not why.strip():
-        raise UserError("--why: say why the flag is set")
+        raise QcError("--why: say why the flag is set")
     db = _db(store)
     ensure_qc_schema(db)
     conn = db.conn
     lo = int(math.floor(start_t))
     hi = int(math.ceil(end_t)) if end_t is not None else lo
     if hi < lo:
-        raise UserError("--to: is before --at")
+        raise QcError("--to: is before --at")
     ts = [r[0] for r in conn.execute(
         "SELECT t FROM observations WHERE station = ? AND sensor = ? AND t BETWEEN ? AND ? ORDER BY t",
         (station, sensor, lo, hi))]
@@ -1231,12 +1204,12 @@ def set_override(store: Any, station: str, sensor: str, start_t: float, end_t: f
             (station, sensor, lo)).fetchone()
         where = f"{station}/{sensor}"
         if near is None:
-            raise UserError(f"no observations of {where} in the store")
+            raise QcError(f"no observations of {where} in the store")
         iso = pd.Timestamp(near[0], unit="s", tz="UTC").isoformat().replace("+00:00", "Z")
-        raise UserError(f"no sample of {where} at the time given (nearest: {iso}); "
+        raise QcError(f"no sample of {where} at the time given (nearest: {iso}); "
                         f"give that time, or a range with --to")
     stamp = int(at if at is not None else _time.time())
-    with _transaction(conn):
+    with transaction(conn):
         conn.executemany(
             "INSERT OR REPLACE INTO qc_overrides (station, sensor, t, flag, who, why, at) VALUES (?, ?, ?, ?, ?, ?, ?)",
             [(station, sensor, t, int(flag), who, why, stamp) for t in ts])
@@ -1248,9 +1221,9 @@ def set_override(store: Any, station: str, sensor: str, start_t: float, end_t: f
 def add_staff_reading(store: Any, station: str, t: float, reading: float, who: str, note: str = "") -> None:
     """Store a tide-staff reading [m on the station datum] taken at ``t`` [Unix s]."""
     if not math.isfinite(reading) or abs(reading) > 1000:
-        raise UserError(f"--reading: expected metres on the station datum, got {reading}")
+        raise QcError(f"--reading: expected metres on the station datum, got {reading}")
     if not who.strip():
-        raise UserError("--who: say who read the staff")
+        raise QcError("--who: say who read the staff")
     db = _db(store)
     ensure_qc_schema(db)
     db["staff_readings"].upsert({"station": station, "t": int(round(t)), "reading": float(reading),

@@ -32,6 +32,7 @@ on Kendall's tau. JASA 63 (Theil-Sen slope; scipy.stats.theilslopes).
 """
 from __future__ import annotations
 
+import logging
 import math
 from typing import Any, Iterable
 
@@ -39,9 +40,12 @@ import numpy as np
 import pandas as pd
 from scipy import signal, stats
 
-from monitor.quality.checks import USABLE_FLAGS, QcSettings, difference_at, seconds, utc_index
+from monitor.quality.checks import USABLE_FLAGS, QcSettings, difference_at
 from predictor.constituents import get
 from predictor.fit import harmonic_fit
+from predictor.timeutil import index_seconds, utc_index, utc_timestamp
+
+log = logging.getLogger(__name__)
 
 DAY = 86400.0
 MM = 1e-3
@@ -51,10 +55,6 @@ def _predict(model: Any, index) -> np.ndarray:
     if callable(model) and not hasattr(model, "predict"):
         return np.asarray(model(index), dtype=float)
     return np.asarray(model.predict(index), dtype=float)
-
-
-def _iso(t: float) -> pd.Timestamp:
-    return pd.Timestamp(t, unit="s", tz="UTC")
 
 
 def _ols(X: np.ndarray, y: np.ndarray) -> tuple[np.ndarray, np.ndarray, float, np.ndarray]:
@@ -95,7 +95,7 @@ def sensor_drift(primary: pd.Series, backup: pd.Series, *, bin_seconds: float = 
            "drift_high": np.nan, "bins": 0, "start": None, "end": None, "centre": None}
     if d.empty:
         return out
-    t = seconds(d.index)
+    t = index_seconds(d.index)
     b = np.floor((t - t[0]) / bin_seconds)
     g = pd.DataFrame({"t": t, "d": d.to_numpy(), "b": b}).groupby("b").median()
     out.update(bins=len(g), start=d.index[0], end=d.index[-1])
@@ -111,7 +111,7 @@ def sensor_drift(primary: pd.Series, backup: pd.Series, *, bin_seconds: float = 
     # Standard error of a median: 1.2533 sigma / sqrt(n) (normal errors; common practice).
     out.update(offset_mm=offset, offset_se_mm=1.2533 * spread / math.sqrt(len(y)),
                drift_mm_per_day=float(res.slope), drift_low=float(res.low_slope),
-               drift_high=float(res.high_slope), centre=_iso(t[0] + xc * DAY))
+               drift_high=float(res.high_slope), centre=utc_timestamp(t[0] + xc * DAY))
     return out
 
 
@@ -124,12 +124,12 @@ def sliding_sensor_drift(primary: pd.Series, backup: pd.Series, window_seconds: 
     """
     if primary.empty:
         return pd.DataFrame()
-    t = seconds(primary.index)
+    t = index_seconds(primary.index)
     ends = np.arange(t[0] + min(window_seconds, t[-1] - t[0]), t[-1] + step_seconds / 2, step_seconds)
     rows = []
     for e in ends:
-        lo = _iso(e - window_seconds)
-        hi = _iso(e)
+        lo = utc_timestamp(e - window_seconds)
+        hi = utc_timestamp(e)
         p = primary[(primary.index >= lo) & (primary.index <= hi)]
         q = backup[(backup.index >= lo) & (backup.index <= hi)]
         rows.append({"window_end": hi, **sensor_drift(p, q, **kw)})
@@ -140,7 +140,7 @@ def sliding_sensor_drift(primary: pd.Series, backup: pd.Series, window_seconds: 
 
 def _rate(gauge: pd.Series, at: np.ndarray, half: float) -> np.ndarray:
     """dh/dt of the gauge record at times ``at`` [Unix s], central difference over +-half [m/s]."""
-    tg = seconds(gauge.index)
+    tg = index_seconds(gauge.index)
     v = gauge.to_numpy(dtype=float)
     return (np.interp(at + half, tg, v) - np.interp(at - half, tg, v)) / (2 * half)
 
@@ -182,8 +182,8 @@ def van_de_casteele(staff: pd.Series, gauge: pd.Series, *, rate_half_window: flo
     """
     staff = staff.dropna()
     gauge = gauge.dropna()
-    ts = seconds(staff.index)
-    tg = seconds(gauge.index)
+    ts = index_seconds(staff.index)
+    tg = index_seconds(gauge.index)
     out = {"offset_mm": np.nan, "offset_se_mm": np.nan, "scale_error": np.nan, "scale_se": np.nan,
            "timing_error_s": np.nan, "timing_se_s": np.nan, "n": 0, "rms_mm": np.nan,
            "start": None, "end": None, "points": pd.DataFrame(columns=["staff", "difference", "rate"])}
@@ -203,7 +203,7 @@ def van_de_casteele(staff: pd.Series, gauge: pd.Series, *, rate_half_window: flo
     beta, se, sd, _ = _ols(X, g - s)
     out.update(offset_mm=beta[0] / MM, offset_se_mm=se[0] / MM, scale_error=float(beta[1]),
                scale_se=float(se[1]), timing_error_s=float(-beta[2]), timing_se_s=float(se[2]),
-               rms_mm=sd / MM, start=_iso(ts[0]), end=_iso(ts[-1]))
+               rms_mm=sd / MM, start=utc_timestamp(ts[0]), end=utc_timestamp(ts[-1]))
     return out
 
 
@@ -218,7 +218,7 @@ def staff_sessions(staff: pd.Series, gauge: pd.Series, *, session_gap: float = 6
     staff = staff.dropna().sort_index()
     if staff.empty:
         return pd.DataFrame()
-    t = seconds(staff.index)
+    t = index_seconds(staff.index)
     sid = np.concatenate([[0], np.cumsum(np.diff(t) > session_gap)])
     rows = []
     for k in np.unique(sid):
@@ -228,23 +228,8 @@ def staff_sessions(staff: pd.Series, gauge: pd.Series, *, session_gap: float = 6
         lo, hi = part.index[0] - pd.Timedelta(hours=1), part.index[-1] + pd.Timedelta(hours=1)
         res = van_de_casteele(part, gauge[(gauge.index >= lo) & (gauge.index <= hi)], **kw)
         res.pop("points")
-        rows.append({"time": _iso(float(np.mean(seconds(part.index)))), **res})
+        rows.append({"time": utc_timestamp(float(np.mean(index_seconds(part.index)))), **res})
     return pd.DataFrame(rows).set_index("time") if rows else pd.DataFrame()
-
-
-def offset_drift(sessions: pd.DataFrame, confidence: float = 0.95) -> dict:
-    """Drift of the gauge against the staff: Theil-Sen slope of the session offsets.
-
-    Returns ``drift_mm_per_day`` with ``drift_low``/``drift_high`` and ``sessions``;
-    NaN with fewer than 3 sessions.
-    """
-    ok = sessions.dropna(subset=["offset_mm"]) if not sessions.empty else sessions
-    if len(ok) < 3:
-        return {"drift_mm_per_day": np.nan, "drift_low": np.nan, "drift_high": np.nan, "sessions": len(ok)}
-    x = seconds(ok.index) / DAY
-    res = stats.theilslopes(ok["offset_mm"].to_numpy(), x - x[0], alpha=confidence)
-    return {"drift_mm_per_day": float(res.slope), "drift_low": float(res.low_slope),
-            "drift_high": float(res.high_slope), "sessions": len(ok)}
 
 
 # --------------------------------------------------------------------------- clock
@@ -356,7 +341,7 @@ def clock_offset(observed: pd.Series, model: Any, *, max_shift: float = 3600.0, 
            "bands": {}, "consistent": None}
     if len(obs) < 20:
         return out
-    t = seconds(obs.index)
+    t = index_seconds(obs.index)
     order = np.argsort(t, kind="stable")
     t, y = t[order], obs.to_numpy(dtype=float)[order]
     gt, gp, gd = _grid_eval(model, t, max_shift)
@@ -438,7 +423,7 @@ def clock_offset(observed: pd.Series, model: Any, *, max_shift: float = 3600.0, 
         wd = {b: 1.0 / est[b][1] for b in ed if b in est}
         if not wd:
             continue
-        key = _iso(t[0] + j * day)
+        key = utc_timestamp(t[0] + j * day)
         per_day[key] = lag + sum(wd[b] * ed[b][0] for b in wd) / sum(wd.values())
         # The day's own uncertainty from its own band noise: a stormy day says so.
         wsum_d = sum(wd.values())
@@ -575,8 +560,8 @@ def sensor_timing(primary: pd.Series, backup: pd.Series, window_s: float = 6 * 3
     primary, backup = primary.dropna(), backup.dropna()
     if len(primary) < 2 or len(backup) < 2:
         return pd.DataFrame(columns=cols)
-    ps, pv = seconds(primary.index), primary.to_numpy(dtype=float)
-    bs, bv = seconds(backup.index), backup.to_numpy(dtype=float)
+    ps, pv = index_seconds(primary.index), primary.to_numpy(dtype=float)
+    bs, bv = index_seconds(backup.index), backup.to_numpy(dtype=float)
     lags = np.arange(-max_lag_s, max_lag_s + lag_step_s / 2, lag_step_s)
     rows = []
     t0 = max(ps[0], bs[0])
@@ -587,7 +572,7 @@ def sensor_timing(primary: pd.Series, backup: pd.Series, window_s: float = 6 * 3
             d = yy[None, :] - np.interp(tt[None, :] + lags[:, None], ps, pv)
             mad = np.median(np.abs(d - np.median(d, axis=1, keepdims=True)), axis=1)
             i = int(np.argmin(mad))
-            rows.append({"start": _iso(t0), "end": _iso(t0 + window_s), "lag_min": lags[i] / 60,
+            rows.append({"start": utc_timestamp(t0), "end": utc_timestamp(t0 + window_s), "lag_min": lags[i] / 60,
                          "mad_mm": mad[i] / MM})
         t0 += step_s
     return pd.DataFrame(rows, columns=cols)
@@ -736,7 +721,7 @@ def datum_steps(series: pd.Series, *, window: float = 600.0, k: float = 6.0, min
     empty = pd.DataFrame(columns=cols)
     if len(s) < 10:
         return empty
-    t = seconds(s.index)
+    t = index_seconds(s.index)
     dt = float(np.median(np.diff(t)))
     w = max(3, int(round(window / dt)))
     if len(s) < 2 * w + 2:
@@ -779,12 +764,12 @@ def datum_steps(series: pd.Series, *, window: float = 600.0, k: float = 6.0, min
             tj = t[np.searchsorted(t, when - dt / 2)]
             long = np.nan
             if persist:
-                rr = None if rate is None else np.interp(t, seconds(rate.index), rate.to_numpy(dtype=float))
+                rr = None if rate is None else np.interp(t, index_seconds(rate.index), rate.to_numpy(dtype=float))
                 long, _ = _long_step(t, vals, tj - dt / 2, persist, rate=rr)
                 if not (np.isfinite(long) and np.sign(long) == np.sign(D[c])
                         and abs(long) >= max(agree * abs(D[c]), min_step)):
                     continue
-            rows.append({"time": _iso(tj), "step_mm": D[c] / MM, "se_mm": sigma / MM, "persistent_mm": long / MM})
+            rows.append({"time": utc_timestamp(tj), "step_mm": D[c] / MM, "se_mm": sigma / MM, "persistent_mm": long / MM})
     return pd.DataFrame(rows, columns=cols) if rows else empty
 
 
@@ -829,14 +814,14 @@ def sensor_steps(primary: pd.Series, backup: pd.Series, model: Any = None, *, ga
     if len(p) < 10 or len(b) < 10:
         return pd.DataFrame(columns=cols)
     diff = pd.Series(difference_at(p, b, gap_limit), index=utc_index(p.index))
-    tp = seconds(p.index)
+    tp = index_seconds(p.index)
     rate = pd.Series(np.gradient(p.to_numpy(dtype=float), tp) if len(tp) > 1 else np.zeros(len(tp)),
                      index=p.index).rolling(15, center=True, min_periods=1).median()
     steps = datum_steps(diff, gap_limit=gap_limit, min_step=min_step, persist=persist, rate=rate, **kw)
     rows = []
 
     def own(series: pd.Series, tb: float) -> float:
-        tt = seconds(series.index)
+        tt = index_seconds(series.index)
         vv = series.to_numpy(dtype=float)
         if model is not None:
             vv = vv - _predict(model, utc_index(series.index))
@@ -901,7 +886,9 @@ def monthly_constants(observed: pd.Series, model: Any, names: Iterable[str] = MA
         try:
             fo = harmonic_fit(ti, obs.to_numpy()[m], constituents=names, confidence=0.95)
             fr = harmonic_fit(ti, _predict(model, ti), constituents=names, confidence=None)
-        except Exception:  # a month that cannot be fitted is skipped, not fatal
+        except (ValueError, np.linalg.LinAlgError) as exc:  # FitInputError among them:
+            # a month that cannot be fitted is skipped, and said so in the log
+            log.info("monthly constants: %s skipped (%s)", pd.Timestamp(ti[0]).strftime("%Y-%m"), exc)
             continue
         ref = {c["name"]: c for c in fr.constituents}
         for c in fo.constituents:

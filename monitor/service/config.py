@@ -1,7 +1,7 @@
 """Load and validate the quaywatch TOML configuration, listing every problem at once.
 
 The loader is two steps: :func:`load_config` reads the file (a missing file or a TOML
-syntax error is one :class:`~monitor.errors.UserError`), then :func:`validate_config`
+syntax error is one :class:`~monitor.errors.ConfigError`), then :func:`validate_config`
 checks the parsed table and returns either a :class:`Config` or a list of messages,
 each starting with the key path (``stations[0].sensors.primary.units``) and saying what
 is expected. It never raises for any input a TOML parser can produce.
@@ -28,7 +28,7 @@ from alerts.mail.outbox import mail_settings_from
 from alerts.mail.outbox import password_file_problem
 from alerts.reports.model import report_settings_from
 from alerts.rules import rules_from_config
-from monitor.errors import UserError
+from monitor.errors import ConfigError
 from monitor.feeds import feed_from_config
 from monitor.feeds.parse import LineFormat
 from monitor.quality.checks import qc_settings_from
@@ -187,12 +187,12 @@ class Config:
         return self.capture_dir if self.capture_dir is not None else self.store_path.parent / "captures"
 
     def station(self, station_id: str) -> StationConfig:
-        """The station with this id, or a UserError listing the known ones."""
+        """The station with this id, or a ConfigError listing the known ones."""
         for st in self.stations:
             if st.id == station_id:
                 return st
         known = ", ".join(s.id for s in self.stations) or "none"
-        raise UserError(f"no station {station_id!r} in {self.path or 'the configuration'} (stations: {known})")
+        raise ConfigError(f"no station {station_id!r} in {self.path or 'the configuration'} (stations: {known})")
 
 
 # --------------------------------------------------------------------------- helpers
@@ -621,17 +621,17 @@ def load_config(path: str | Path) -> Config:
 
     Raises
     ------
-    UserError
+    ConfigError
         When the file cannot be read, is not valid TOML, or has any problem; the message
         lists every problem, one per line, each with its key path.
     """
     path = Path(path)
-    raw = read_toml(path, "configuration file", UserError)
+    raw = read_toml(path, "configuration file", ConfigError)
     cfg, errors = validate_config(raw, path.resolve().parent, path)
     if errors:
         listing = "\n".join(f"  {e}" for e in errors)
         n = len(errors)
-        raise UserError(f"{path}: {n} problem{'s' if n > 1 else ''} in the configuration:\n{listing}")
+        raise ConfigError(f"{path}: {n} problem{'s' if n > 1 else ''} in the configuration:\n{listing}")
     return cfg
 
 

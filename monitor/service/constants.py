@@ -12,7 +12,7 @@ from typing import Any
 
 import pandas as pd
 
-from monitor.errors import UserError
+from monitor.errors import ConfigError
 from monitor.service.config import STATION_DATUM_NAMES, StationConfig, datum_words
 from monitor.store.database import Store
 from predictor import TideModel
@@ -25,7 +25,7 @@ def model_from_text(text: str, where: str):
     try:
         return TideModel.from_dict(tomllib.loads(text), where=f"{where}: ")
     except (tomllib.TOMLDecodeError, ValueError) as exc:
-        raise UserError(f"{where}: stored constants cannot be read ({exc})") from None
+        raise ConfigError(f"{where}: stored constants cannot be read ({exc})") from None
 
 
 def model_to_text(model) -> str:
@@ -41,14 +41,14 @@ def load_model(store: Store | None, station: StationConfig) -> tuple[Any, str]:
 
     Raises
     ------
-    UserError
+    ConfigError
         A configured constants file that cannot be read.
     """
     if station.constants is not None:
         try:
             model = TideModel.load(station.constants)
         except ValueError as exc:
-            raise UserError(f"station {station.id} constants: {exc}") from None
+            raise ConfigError(f"station {station.id} constants: {exc}") from None
         model, how = on_station_datum(model, station, f"station {station.id} constants {station.constants}")
         return model, f"file {station.constants} ({how})"
     if store is None:
@@ -75,7 +75,7 @@ def on_station_datum(model, station: StationConfig, where: str) -> tuple[Any, st
 
     Raises
     ------
-    UserError
+    ConfigError
         The file names a datum this station does not define.
     """
     datum = getattr(model, "datum", None)
@@ -88,6 +88,6 @@ def on_station_datum(model, station: StationConfig, where: str) -> tuple[Any, st
         return model.referred_to("station", z), (f"mean on {datum_words(datum)}, {z:+.3f} m added "
                                                  f"to put it on the station datum")
     known = ", ".join(sorted(set(station.datums) - {"station"})) or "none besides the station datum"
-    raise UserError(f"{where}: the constants' mean is on datum {datum!r}, which station {station.id} does not "
+    raise ConfigError(f"{where}: the constants' mean is on datum {datum!r}, which station {station.id} does not "
                     f"define (its datums: {known}); add {datum} under [stations.datums] with its height above "
                     f"the station datum, or give the file the datum its levels are on (key 'datum')")

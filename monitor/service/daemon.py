@@ -47,7 +47,7 @@ from alerts import engine
 from alerts import rules
 from alerts.mail import outbox
 from monitor import feeds as feeds_mod
-from monitor.errors import UserError
+from monitor.errors import ConfigError, MonitorError
 from monitor.feeds.parse import parse_lines
 from monitor.quality import checks as qc
 from monitor.quality import diagnostics
@@ -59,6 +59,7 @@ from monitor.store.database import BatchResult, EMPTY_BATCH, Store, check_folder
 from monitor.surge import forecast as SF
 from monitor.surge import residual as R
 from predictor import harmonic_fit
+from predictor.errors import FitError
 
 log = logging.getLogger("monitor.service.daemon")
 
@@ -163,7 +164,7 @@ def refit_station(store: Store, station: StationConfig, now: float | None = None
 
     Raises
     ------
-    UserError
+    predictor.errors.FitError
         Too little history, or a fit that fails.
     """
     now = time.time() if now is None else now
@@ -171,7 +172,7 @@ def refit_station(store: Store, station: StationConfig, now: float | None = None
     # would leave the span empty
     end = store.last_time(station.id, "primary", until=int(now + future_tolerance(station)), usable=True)
     if end is None:
-        raise UserError(f"station {station.id}: no usable observations in {store.path} to fit")
+        raise FitError(f"station {station.id}: no usable observations in {store.path} to fit")
     span = (station.fit_span_days if span_days is None else span_days) * 86400
     obs = store.observations(station.id, "primary", end - span, end)
     obs = obs[~obs["flag"].isin((4, 9))]
@@ -203,7 +204,7 @@ def refit_station(store: Store, station: StationConfig, now: float | None = None
 def _enough(station: StationConfig, obs: pd.DataFrame) -> None:
     have = (obs.index[-1] - obs.index[0]).total_seconds() / 86400 if len(obs) > 1 else 0.0
     if have < station.fit_min_days:
-        raise UserError(f"station {station.id}: {have:.1f} days of usable history, "
+        raise FitError(f"station {station.id}: {have:.1f} days of usable history, "
                         f"stations[].fit_min_days = {station.fit_min_days:g} needed for a fit")
 
 
@@ -213,7 +214,7 @@ def _fit_record(station: StationConfig, obs: pd.DataFrame, robust: Any, infer: A
                 ("none" if not infer else "given")}
         return harmonic_fit(obs.index, obs["value"].to_numpy(), robust=robust, infer=infer, metadata=meta)
     except ValueError as exc:
-        raise UserError(f"station {station.id}: fit failed: {exc}") from None
+        raise FitError(f"station {station.id}: fit failed: {exc}") from None
 
 
 def _hindcast_rms(model, obs: pd.DataFrame) -> float:
@@ -348,7 +349,7 @@ def open_feed_runtimes(cfg: Config) -> list[FeedRuntime]:
 
     Raises
     ------
-    UserError
+    monitor.errors.FeedError
         A feed that cannot be opened (a replay file missing); those opened are closed again.
     """
     out: list[FeedRuntime] = []
@@ -381,7 +382,7 @@ def preflight(cfg: Config) -> dict[str, str]:
 
     Raises
     ------
-    UserError
+    monitor.errors.MonitorError
         Naming the file or key and what is wrong.
     """
     sources = {st.id: load_model(None, st)[1] for st in cfg.stations if st.constants is not None}
@@ -449,14 +450,8 @@ class Daemon:
             self.outbox = outbox
             self.claimer = outbox.process_identity("daemon")
         self.outbox_worker: OutboxWorker | None = None
-        # Every table the jobs write is created here, before the outbox thread opens its own
-        # connection: schema changes on the processing path would contend with it for the lock.
-        qc.ensure_qc_schema(store.db)
-        SF.ensure_forecast_schema(store.db)
-        if self.engine is not None:
-            self.engine.ensure_alert_schema(store.db)
-        if self.outbox is not None:
-            self.outbox.ensure_outbox_schema(store.db)
+        # Every table the jobs write exists already: Store.open ran the schema migrations
+        # (monitor/store/migrations.py), so no schema statement contends with the outbox thread.
         self.stations = {st.id: self._station_runtime(st) for st in cfg.stations}
         # Replay feeds run the rules and the daily reports on the replayed clock, so a replayed
         # storm reads as it would have live. Delivery does not: the outbox keeps the wall clock.
@@ -505,7 +500,7 @@ class Daemon:
                 rt = self.stations.get(fr.sensor.station)
                 res = ingest_lines(self.store, fr.sensor, lines, fr.name, fr.feed.state(),
                                    max_ahead=future_tolerance(rt.cfg if rt is not None else None))
-            except UserError as exc:
+            except MonitorError as exc:
                 log.error("feed %s: %s", fr.name, exc)
                 continue
             except Exception:
@@ -823,7 +818,7 @@ class Daemon:
         it hindcasts the days they have not seen no worse (:func:`refit_station`)."""
         try:
             refit_station(self.store, rt.cfg, now=now, use=True)
-        except UserError as exc:
+        except MonitorError as exc:
             log.warning("%s", exc)
             return
         rt.model, rt.model_source = load_model(self.store, rt.cfg)
@@ -855,7 +850,7 @@ class Daemon:
         try:
             return int(self.store.conn.execute(
                 "SELECT count(*) FROM outbox WHERE status NOT IN ('sent', 'expired')").fetchone()[0])
-        except Exception:  # no outbox table yet: nothing queued
+        except sqlite3.OperationalError:  # no outbox table yet: nothing queued
             return 0
 
     def deliver(self, db=None) -> None:
@@ -1039,7 +1034,7 @@ def setup_logging(cfg: Config, verbose: int = 0) -> None:
             fh = logging.handlers.RotatingFileHandler(cfg.logging.file, maxBytes=cfg.logging.max_bytes,
                                                       backupCount=cfg.logging.backups, encoding="utf-8")
         except OSError as exc:
-            raise UserError(f"logging.file: cannot open {cfg.logging.file} ({exc})") from None
+            raise ConfigError(f"logging.file: cannot open {cfg.logging.file} ({exc})") from None
         fh.setFormatter(fmt)
         root.addHandler(fh)
 

@@ -50,7 +50,7 @@ import numpy as np
 import pandas as pd
 
 from alerts.reports.rarity import RaritySection
-from monitor.errors import UserError
+from monitor.errors import MonitorError
 from monitor.quality import diagnostics as dg
 from monitor.surge.residual import skew_surges
 from predictor import extremes as ex
@@ -72,7 +72,7 @@ VERSION = 1
 _HOUR = 3600
 
 
-class RecordError(UserError):
+class RecordError(MonitorError):
     """The station's record cannot give what was asked; the message says why."""
 
 

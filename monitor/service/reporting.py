@@ -20,7 +20,7 @@ import pandas as pd
 from alerts.mail.outbox import enqueue
 from alerts.reports import model as R
 from alerts.reports import render as RR
-from monitor.errors import UserError
+from monitor.errors import ConfigError, MonitorError
 from monitor.quality import checks as Q
 from monitor.quality import diagnostics as D
 from monitor.quality.checks import read_level_series
@@ -31,6 +31,7 @@ from monitor.surge import forecast as SF
 from monitor.surge import residual as RS
 from monitor.surge.residual import skew_surges
 from monitor.surge.residual import tide_stands
+from predictor.timeutil import utc_timestamp
 
 log = logging.getLogger(__name__)
 
@@ -159,12 +160,6 @@ def _alert_levels(station: Any, shift: float) -> list[R.AlertLevel]:
     return levels
 
 
-def _ts(t: Any) -> pd.Timestamp | None:
-    if t is None or (isinstance(t, float) and np.isnan(t)):
-        return None
-    return pd.Timestamp(int(t), unit="s", tz="UTC")
-
-
 def _table(db: Any, name: str) -> bool:
     return name in db.table_names()
 
@@ -201,7 +196,7 @@ def gather_day(store: Any, station: Any, day: dt.date, settings: R.ReportSetting
     if model is None:
         try:
             model, model_source = load_model(store, station)
-        except UserError as exc:
+        except MonitorError as exc:
             model, model_source = None, str(exc)
 
     obs = store.observations(sid, "primary", t0, t1)
@@ -338,8 +333,8 @@ def _forecast_row(fc: dict, shift: float) -> R.HighWaterForecast:
         return None if v is None else v - shift
 
     return R.HighWaterForecast(
-        time=_ts(fc["hw_t"]), predicted=level(fc["predicted_high"]), residual_now=_num(fc["residual_now"]),
-        forecast=level(fc["forecast"]), made_at=_ts(fc["made_t"]), lower=level(fc.get("lower")),
+        time=utc_timestamp(fc["hw_t"]), predicted=level(fc["predicted_high"]), residual_now=_num(fc["residual_now"]),
+        forecast=level(fc["forecast"]), made_at=utc_timestamp(fc["made_t"]), lower=level(fc.get("lower")),
         upper=level(fc.get("upper")), coverage=_num(fc.get("coverage")), note=fc.get("note") or "",
         method=fc.get("method") or "", rising=level(fc.get("rising")), rate=_num(fc.get("rate")),
         pressure_note=fc.get("pressure_note") or "")
@@ -449,7 +444,7 @@ def _tides(model: Any, usable: pd.Series, start: pd.Timestamp, end: pd.Timestamp
             near = [k for k in (highs.index if len(highs) else []) if abs(int(k) - key) <= 60]
             if near:
                 h = highs.loc[near[0]]
-                rows.append(R.TideRow("high", t, level, _ts(h["observed_t"]), float(h["observed_high"]) - shift,
+                rows.append(R.TideRow("high", t, level, utc_timestamp(h["observed_t"]), float(h["observed_high"]) - shift,
                                       float(h["skew_surge"]), stand=stand))
                 continue
             rows.append(R.TideRow("high", t, level, partial=len(usable) > 0, stand=stand))
@@ -630,16 +625,16 @@ def _alerts(db: Any, station: Any, t0: int, t1: int, shift: float) -> list[R.Ale
                 sent = [m["sent_at"] for m in msgs if m["sent_at"]]
                 errors = sorted({m["last_error"] for m in msgs if m["last_error"] and m["status"] != "sent"})
                 deliveries.append(R.Delivery(
-                    what=what, queued_at=_ts(min(m["created_at"] for m in msgs)),
-                    sent_at=_ts(max(sent)) if len(sent) == len(msgs) else None,
+                    what=what, queued_at=utc_timestamp(min(m["created_at"] for m in msgs)),
+                    sent_at=utc_timestamp(max(sent)) if len(sent) == len(msgs) else None,
                     attempts=max(int(m["attempts"] or 0) for m in msgs), error="; ".join(errors),
                     recipients=len(msgs)))
         peak, watch = _num(ep.get("peak")), ep.get("watch") or ""
         if peak is not None and (watch.startswith("level") or watch == "next_high_water_above"):
             peak = peak + float(datums.get(ep.get("datum") or "station", 0.0)) - shift
         rows.append(R.AlertEpisodeRow(
-            rule=ep["rule"], level=ep.get("top_step") or ep.get("step_now") or "", started=_ts(ep["opened_at"]),
-            cleared=_ts(ep["closed_at"]), peak=peak, unit=ep.get("unit") or "m",
+            rule=ep["rule"], level=ep.get("top_step") or ep.get("step_now") or "", started=utc_timestamp(ep["opened_at"]),
+            cleared=utc_timestamp(ep["closed_at"]), peak=peak, unit=ep.get("unit") or "m",
             deliveries=tuple(deliveries), signed=watch.startswith("residual")))
     return rows
 
@@ -658,17 +653,12 @@ def _constants(store: Any, sid: str, model: Any, source: str, shift: float = 0.0
     return R.ConstantsInfo(
         source=source or "constants file", mean=None if _num(getattr(model, "mean", None)) is None
         else float(model.mean) - shift, constituents=tuple(constituents),
-        fitted_at=_ts(fit["fitted_at"]) if fit else None, record_start=_ts(fit["start"]) if fit else None,
-        record_end=_ts(fit["end"]) if fit else None, samples=int(fit["n"]) if fit else None,
+        fitted_at=utc_timestamp(fit["fitted_at"]) if fit else None, record_start=utc_timestamp(fit["start"]) if fit else None,
+        record_end=utc_timestamp(fit["end"]) if fit else None, samples=int(fit["n"]) if fit else None,
         rms=_num(fit["rms"]) if fit else None, variance_explained=_num(fit["variance_explained"]) if fit else None)
 
 
 # --------------------------------------------------------------------------- writing and sending
-
-
-def _ensure_runs(db: Any) -> None:
-    db["report_runs"].create({"station": str, "day": str, "written_at": int, "path": str, "queued": int},
-                             pk=("station", "day"), if_not_exists=True)
 
 
 def find_station(config: Any, station_id: str) -> Any:
@@ -676,7 +666,7 @@ def find_station(config: Any, station_id: str) -> Any:
         if station.id == station_id:
             return station
     known = ", ".join(s.id for s in config.stations) or "none"
-    raise UserError(f"--station {station_id!r}: no such station in the configuration (known: {known})")
+    raise ConfigError(f"--station {station_id!r}: no such station in the configuration (known: {known})")
 
 
 def settings_of(config: Any) -> R.ReportSettings:
@@ -699,11 +689,10 @@ def write_station_day(config: Any, store: Any, station: Any, day: dt.date, *, se
         RR.prune_reports(settings.folder, settings.keep_days, day)
         RR.write_index(settings.folder, now)
     except OSError as exc:
-        raise UserError(f"reports.folder {settings.folder}: cannot write the report ({exc})") from None
+        raise ConfigError(f"reports.folder {settings.folder}: cannot write the report ({exc})") from None
     queued = 0
     if send and settings.email and settings.recipients and getattr(config, "mail", None) is not None:
         queued = len(queue_email(store, report, settings.recipients, path, now))
-    _ensure_runs(store.db)
     store.db["report_runs"].upsert({"station": station.id, "day": day.isoformat(), "written_at": int(now.timestamp()),
                                     "path": str(path), "queued": queued}, pk=("station", "day"))
     return path
@@ -742,7 +731,6 @@ def write_due_reports(config: Any, store: Any, now: Any = None) -> list[Path]:
     now = pd.Timestamp.now(tz="UTC") if now is None else pd.Timestamp(now, unit="s", tz="UTC") \
         if isinstance(now, (int, float)) else pd.Timestamp(now).tz_convert("UTC")
     settings = settings_of(config)
-    _ensure_runs(store.db)
     written = []
     for station in config.stations:
         day = due_day(now, station.tz, settings.write_at)
@@ -753,6 +741,6 @@ def write_due_reports(config: Any, store: Any, now: Any = None) -> list[Path]:
         try:
             written.append(write_station_day(config, store, station, day, send=True, now=now))
             log.info("station %s: daily report for %s written", station.id, day)
-        except UserError as exc:
+        except MonitorError as exc:
             log.error("station %s: daily report for %s: %s", station.id, day, exc)
     return written

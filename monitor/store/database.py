@@ -29,15 +29,15 @@ import numpy as np
 import pandas as pd
 import sqlite_utils
 
-from monitor.errors import UserError
+from alerts.transactions import transaction
+from monitor.errors import StoreError
+from monitor.store.migrations import DERIVED_COLUMNS, MIGRATIONS, SCHEMA_VERSION
 
 log = logging.getLogger("monitor.store.database")
 
-SCHEMA_VERSION = 2
 #: Aggregate QARTOD flags a sample may carry and still move anything (1 pass, 2 not
 #: evaluated, 3 suspect); the same set as ``monitor.quality.checks.USABLE_FLAGS``.
 USABLE_SQL = "flag IN (1, 2, 3)"
-DERIVED_COLUMNS = ("observed", "predicted", "residual", "smoothed", "barometric")
 
 
 @dataclass(frozen=True)
@@ -64,46 +64,6 @@ CONFLICT = "conflict"
 #: Two readings of one time closer than this are the same reading [m or hPa] (far below
 #: any gauge's resolution; a re-read line parses to the very same number).
 SAME_VALUE = 1e-6
-
-
-def _create_v1(db: sqlite_utils.Database) -> None:
-    db["observations"].create(
-        {"station": str, "sensor": str, "t": int, "value": float, "time_source": str, "flag": int},
-        pk=("station", "sensor", "t"), not_null={"station", "sensor", "t", "value"},
-        defaults={"time_source": "sensor", "flag": 2}, if_not_exists=True)
-    db["feed_checkpoints"].create({"feed": str, "state": str, "updated_at": int}, pk="feed", if_not_exists=True)
-    db["rejects"].create(
-        {"id": int, "feed": str, "station": str, "sensor": str, "lineno": int, "text": str, "reason": str,
-         "at": int}, pk="id", if_not_exists=True)
-    db["rejects"].create_index(["station", "feed"], if_not_exists=True)
-    db["derived"].create({"station": str, "t": int, **{c: float for c in DERIVED_COLUMNS}},
-                         pk=("station", "t"), if_not_exists=True)
-    db["skew_surges"].create(
-        {"station": str, "hw_t": int, "predicted_high": float, "observed_high": float, "observed_t": int,
-         "skew_surge": float}, pk=("station", "hw_t"), if_not_exists=True)
-    db["hw_forecasts"].create(
-        {"station": str, "hw_t": int, "made_t": int, "predicted_high": float, "residual_now": float,
-         "forecast": float, "lower": float, "upper": float, "coverage": float, "note": str},
-        pk=("station", "hw_t"), if_not_exists=True)
-    db["fits"].create(
-        {"id": int, "station": str, "fitted_at": int, "start": int, "end": int, "n": int, "rms": float,
-         "variance_explained": float, "constants": str, "in_use": int, "robust": int, "note": str},
-        pk="id", if_not_exists=True)
-    db["fits"].create_index(["station", "fitted_at"], if_not_exists=True)
-
-
-def _conflicts_v2(db: sqlite_utils.Database) -> None:
-    # A conflicting repeat is kept in the reject log with the time it repeats, the value kept
-    # (the first) and the value it brought; unreadable lines leave these empty.
-    cols = db["rejects"].columns_dict
-    for name, kind in (("kind", str), ("t", int), ("kept", float), ("value", float)):
-        if name not in cols:
-            db["rejects"].add_column(name, kind)
-    db["rejects"].create_index(["station", "kind"], if_not_exists=True)
-
-
-# version -> function that brings a store at (version - 1) to version
-MIGRATIONS = {1: _create_v1, 2: _conflicts_v2}
 
 
 class Store:
@@ -139,21 +99,21 @@ class Store:
             Take the one-daemon lock (``PATH.lock`` beside the file the path resolves to,
             through any symbolic link; fcntl.flock); a second holder is refused.
         create : bool
-            When false, a missing file is a UserError (for read-only verbs).
+            When false, a missing file is a StoreError (for read-only verbs).
 
         Raises
         ------
-        UserError
+        StoreError
             Missing file (``create=False``), not a SQLite file, a newer schema, or locked.
         """
         path = Path(path)
         if not create and not path.exists():
-            raise UserError(f"store {path} does not exist yet (run 'quaywatch run' or 'quaywatch ingest' first)")
+            raise StoreError(f"store {path} does not exist yet (run 'quaywatch run' or 'quaywatch ingest' first)")
         if create:
             try:
                 path.parent.mkdir(parents=True, exist_ok=True)
             except OSError as exc:
-                raise UserError(f"store folder {path.parent}: cannot be created ({exc})") from None
+                raise StoreError(f"store folder {path.parent}: cannot be created ({exc})") from None
         # The lock (and SQLite) go by the file's real path: a second name for the same file, a
         # symbolic link, must meet the same lock.
         real = path.resolve()
@@ -162,7 +122,7 @@ class Store:
             conn = sqlite3.connect(str(real), isolation_level=None, check_same_thread=False, timeout=30.0)
         except sqlite3.Error as exc:
             _release(lock_file)
-            raise UserError(f"store {path}: cannot be opened ({exc})") from None
+            raise StoreError(f"store {path}: cannot be opened ({exc})") from None
         store = cls(path, conn, lock_file, real)
         try:
             conn.execute("PRAGMA busy_timeout = 30000")
@@ -172,8 +132,8 @@ class Store:
             store._migrate()
         except sqlite3.DatabaseError as exc:
             store.close()
-            raise UserError(f"store {path}: not a quaywatch store or damaged ({exc})") from None
-        except UserError:
+            raise StoreError(f"store {path}: not a quaywatch store or damaged ({exc})") from None
+        except StoreError:
             store.close()
             raise
         return store
@@ -199,7 +159,7 @@ class Store:
         self.conn.execute("CREATE TABLE IF NOT EXISTS meta (key TEXT PRIMARY KEY, value TEXT)")
         version = int(self.get_meta("schema_version") or 0)
         if version > SCHEMA_VERSION:
-            raise UserError(
+            raise StoreError(
                 f"store {self.path} has schema version {version}, newer than this quaywatch understands "
                 f"(version {SCHEMA_VERSION}); upgrade quaywatch, or point store.path at another file")
         for v in range(version + 1, SCHEMA_VERSION + 1):
@@ -209,17 +169,10 @@ class Store:
 
     @contextlib.contextmanager
     def transaction(self) -> Iterator[sqlite3.Connection]:
-        """An immediate write transaction: commit on success, roll back on any exception."""
-        if self.conn.in_transaction:  # nested: the outer transaction decides
-            yield self.conn
-            return
-        self.conn.execute("BEGIN IMMEDIATE")
-        try:
-            yield self.conn
-        except BaseException:
-            self.conn.execute("ROLLBACK")
-            raise
-        self.conn.execute("COMMIT")
+        """An immediate write transaction: commit on success, roll back on any exception
+        (:func:`alerts.transactions.transaction`; nested, the outer transaction decides)."""
+        with transaction(self.conn) as conn:
+            yield conn
 
     # ------------------------------------------------------------------ meta
     def get_meta(self, key: str, default: str | None = None) -> str | None:
@@ -432,20 +385,20 @@ class Store:
 
         Raises
         ------
-        UserError
+        StoreError
             ``dest`` exists, cannot be written, or the copy fails its integrity check.
         """
         dest = Path(dest)
         if dest.exists():
-            raise UserError(f"{dest}: already exists; a backup never overwrites a file (remove it, or name "
+            raise StoreError(f"{dest}: already exists; a backup never overwrites a file (remove it, or name "
                             f"another file or a folder)")
         if dest.resolve() == self.path.resolve():
-            raise UserError(f"{dest}: is the store itself")
+            raise StoreError(f"{dest}: is the store itself")
         tmp = dest.with_name(f".{dest.name}.partial-{os.getpid()}")
         try:
             target = sqlite3.connect(str(tmp), isolation_level=None)
         except sqlite3.Error as exc:
-            raise UserError(f"{dest}: cannot be created ({exc})") from None
+            raise StoreError(f"{dest}: cannot be created ({exc})") from None
         try:
             try:
                 self.conn.backup(target)  # pages=-1: all of it in one step, one snapshot
@@ -456,14 +409,14 @@ class Store:
             finally:
                 target.close()
             if check != [("ok",)]:
-                raise UserError(f"{dest}: the copy failed SQLite's integrity check ({check[0][0]}); the store "
+                raise StoreError(f"{dest}: the copy failed SQLite's integrity check ({check[0][0]}); the store "
                                 f"may be damaged: keep it and earlier backups")
             with open(tmp, "rb+") as fh:
                 os.fsync(fh.fileno())
             os.replace(tmp, dest)
             _fsync_dir(dest.resolve().parent)
         except (sqlite3.Error, OSError) as exc:
-            raise UserError(f"{dest}: backup failed ({exc})") from None
+            raise StoreError(f"{dest}: backup failed ({exc})") from None
         finally:
             with contextlib.suppress(OSError):
                 tmp.unlink()
@@ -642,22 +595,22 @@ def check_store_path(path: str | Path, key: str = "store.path") -> None:
 
     Raises
     ------
-    UserError
+    StoreError
         Naming ``key``, the path and what is wrong.
     """
     path = Path(path)
     if path.exists():
         if not path.is_file():
-            raise UserError(f"{key} {path}: is not a file (a folder or a device?); name a file for the store")
+            raise StoreError(f"{key} {path}: is not a file (a folder or a device?); name a file for the store")
         if not os.access(path, os.R_OK | os.W_OK):
-            raise UserError(f"{key} {path}: cannot be written by this user")
+            raise StoreError(f"{key} {path}: cannot be written by this user")
         folder = path.resolve().parent
         if not os.access(folder, os.W_OK | os.X_OK):
-            raise UserError(f"{key} {path}: its folder {folder} is not writable (the lock file and "
+            raise StoreError(f"{key} {path}: its folder {folder} is not writable (the lock file and "
                             f"SQLite's journal go beside the store)")
         return
     if path.is_symlink():
-        raise UserError(f"{key} {path}: a symbolic link to nothing ({os.readlink(path)})")
+        raise StoreError(f"{key} {path}: a symbolic link to nothing ({os.readlink(path)})")
     check_folder(path.parent, key, shown=path)
 
 
@@ -666,7 +619,7 @@ def check_folder(folder: str | Path, key: str, shown: str | Path | None = None) 
 
     Raises
     ------
-    UserError
+    StoreError
         Naming ``key``, the path (``shown``, default the folder) and what is wrong.
     """
     folder = Path(folder)
@@ -674,14 +627,14 @@ def check_folder(folder: str | Path, key: str, shown: str | Path | None = None) 
     existing = folder
     while not existing.exists() and existing != existing.parent:
         if existing.is_symlink():  # a dangling link on the way
-            raise UserError(f"{key} {shown}: folder {existing} is a symbolic link to nothing")
+            raise StoreError(f"{key} {shown}: folder {existing} is a symbolic link to nothing")
         existing = existing.parent
     if not existing.is_dir():
-        raise UserError(f"{key} {shown}: folder {folder} cannot be created, {existing} is a file")
+        raise StoreError(f"{key} {shown}: folder {folder} cannot be created, {existing} is a file")
     if not os.access(existing, os.W_OK | os.X_OK):
         what = "nothing can be created in it" if existing == folder else \
             f"folder {folder} cannot be created in it"
-        raise UserError(f"{key} {shown}: {existing} is not writable by this user; {what}")
+        raise StoreError(f"{key} {shown}: {existing} is not writable by this user; {what}")
 
 
 def _fsync_dir(folder: Path) -> None:
@@ -700,14 +653,14 @@ def _take_lock(real: Path, shown: Path | None = None):
     try:
         fh = open(lock_path, "a+")
     except OSError as exc:
-        raise UserError(f"store {path}: cannot create lock file {lock_path} ({exc})") from None
+        raise StoreError(f"store {path}: cannot create lock file {lock_path} ({exc})") from None
     try:
         fcntl.flock(fh.fileno(), fcntl.LOCK_EX | fcntl.LOCK_NB)
     except OSError:
         fh.seek(0)
         holder = fh.read().strip() or "unknown"
         fh.close()
-        raise UserError(f"store {path} is in use by another quaywatch daemon (pid {holder}, lock {lock_path}); "
+        raise StoreError(f"store {path} is in use by another quaywatch daemon (pid {holder}, lock {lock_path}); "
                         f"stop that one first, or point store.path at another file") from None
     fh.seek(0)
     fh.truncate()
