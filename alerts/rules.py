@@ -200,26 +200,51 @@ def _default_steps(watch: str) -> list[dict]:
     return []
 
 
+_RULE_KEYS = frozenset({"id", "watch", "datum", "series", "hold", "settle", "band", "notify", "all_clear",
+                        "use_suspect", "faults", "note", "steps", "clear_horizon"})
+
+
 def _one_rule(raw: Any, kp: str, datums: dict[str, float], errors: list[str]) -> Rule | None:
+    """One rule table checked: the Rule, or None with the problems appended to ``errors``."""
     if not isinstance(raw, dict):
         errors.append(f"{kp}: expected a table, got {type(raw).__name__}")
         return None
     n_before = len(errors)
-    known = {"id", "watch", "datum", "series", "hold", "settle", "band", "notify", "all_clear",
-             "use_suspect", "faults", "note", "steps", "clear_horizon"}
     for key in raw:
-        if key not in known:
-            errors.append(f"{kp}.{key}: unknown key (known: {', '.join(sorted(known))})")
-
-    rid = raw.get("id")
-    if not isinstance(rid, str) or not re.fullmatch(r"[A-Za-z0-9_.-]{1,64}", rid or ""):
-        errors.append(f"{kp}.id: required; letters, digits, '_', '-', '.' (got {rid!r})")
-        rid = None
+        if key not in _RULE_KEYS:
+            errors.append(f"{kp}.{key}: unknown key (known: {', '.join(sorted(_RULE_KEYS))})")
+    rid = _rule_id(raw, kp, errors)
     watch = raw.get("watch")
     if not isinstance(watch, str) or watch not in KINDS:
         errors.append(f"{kp}.watch: one of {', '.join(KINDS)} (got {watch!r})")
         return None
+    datum, offset = _rule_datum(raw, kp, watch, datums, errors)
+    series = raw.get("series", "residual")
+    if series not in ("residual", "smoothed"):
+        errors.append(f"{kp}.series: 'residual' or 'smoothed' (got {series!r})")
+    hold, settle, clear_horizon, band = _rule_timing(raw, kp, watch, errors)
+    notify, flags, faults, note = _rule_extras(raw, kp, watch, errors)
+    steps = _rule_steps(raw, kp, watch, errors)
+    if steps and not notify and not any(s.notify for s in steps):
+        errors.append(f"{kp}.notify: nobody to tell; give notify on the rule or on a step")
+    if len(errors) > n_before or rid is None:
+        return None
+    return Rule(id=rid, watch=watch, steps=tuple(steps), datum=datum, datum_offset=offset,
+                series=series, hold=hold, settle=settle, band=float(band), notify=notify,
+                all_clear=flags["all_clear"], use_suspect=flags["use_suspect"],
+                fault_kinds=tuple(faults), note=note, clear_horizon=clear_horizon)
 
+
+def _rule_id(raw: dict, kp: str, errors: list[str]) -> str | None:
+    rid = raw.get("id")
+    if not isinstance(rid, str) or not re.fullmatch(r"[A-Za-z0-9_.-]{1,64}", rid or ""):
+        errors.append(f"{kp}.id: required; letters, digits, '_', '-', '.' (got {rid!r})")
+        return None
+    return rid
+
+
+def _rule_datum(raw: dict, kp: str, watch: str, datums: dict[str, float], errors: list[str]) -> tuple[str, float]:
+    """The datum a level rule counts from and its height above the station datum [m]."""
     datum, offset = "station", 0.0
     if watch in ("level_above", "level_below", "next_high_water_above"):
         datum = raw.get("datum", "station")
@@ -234,37 +259,44 @@ def _one_rule(raw: Any, kp: str, datums: dict[str, float], errors: list[str]) ->
             errors.append(f"{kp}.datum: {datum!r} is not a datum of this station (known: {names})")
     elif "datum" in raw:
         errors.append(f"{kp}.datum: only level_above, level_below and next_high_water_above use a datum")
+    return datum, offset
 
-    series = raw.get("series", "residual")
-    if series not in ("residual", "smoothed"):
-        errors.append(f"{kp}.series: 'residual' or 'smoothed' (got {series!r})")
 
-    def duration(key: str, default: float) -> float:
-        if key not in raw:
-            return default
-        try:
-            return parse_duration(raw[key])
-        except ValueError as exc:
-            errors.append(f"{kp}.{key}: {exc}")
-            return default
+def _duration(raw: dict, kp: str, key: str, default: float, errors: list[str]) -> float:
+    """A duration key [s] (``"10min"``, ``"2h"``, a number of seconds), or ``default``."""
+    if key not in raw:
+        return default
+    try:
+        return parse_duration(raw[key])
+    except ValueError as exc:
+        errors.append(f"{kp}.{key}: {exc}")
+        return default
 
-    hold = duration("hold", 0.0 if watch in CONTEXT_KINDS else 600.0)
-    settle = duration("settle", hold)
+
+def _rule_timing(raw: dict, kp: str, watch: str, errors: list[str]) -> tuple[float, float, float, float]:
+    """hold [s], settle [s], clear_horizon [s] and the hysteresis band ([m]; [s] for a silent feed)."""
+    hold = _duration(raw, kp, "hold", 0.0 if watch in CONTEXT_KINDS else 600.0, errors)
+    settle = _duration(raw, kp, "settle", hold, errors)
     clear_horizon = 0.0
     if watch == "level_above":
-        clear_horizon = duration("clear_horizon", DEFAULT_CLEAR_HORIZON)
+        clear_horizon = _duration(raw, kp, "clear_horizon", DEFAULT_CLEAR_HORIZON, errors)
         if not 0 <= clear_horizon <= MAX_CLEAR_HORIZON:
             errors.append(f"{kp}.clear_horizon: from 0 (no wait) to {MAX_CLEAR_HORIZON / 3600:g} h, "
                           f"got {raw.get('clear_horizon')!r}")
     elif "clear_horizon" in raw:
         errors.append(f"{kp}.clear_horizon: only level_above rules wait on the high water forecast")
     if watch == "feed_silent":
-        band = duration("band", 0.0)
+        band = _duration(raw, kp, "band", 0.0, errors)
     else:
         band = raw.get("band", 0.0)
         if isinstance(band, bool) or not isinstance(band, (int, float)) or not math.isfinite(band) or band < 0:
             errors.append(f"{kp}.band: expected a non-negative number of metres, got {band!r}")
             band = 0.0
+    return hold, settle, clear_horizon, band
+
+
+def _rule_extras(raw: dict, kp: str, watch: str, errors: list[str]) -> tuple[tuple[str, ...], dict, list, str]:
+    """notify, the all_clear and use_suspect switches, the fault kinds, the note."""
     notify = _as_addresses(raw.get("notify"), f"{kp}.notify", errors)
     flags = {}
     for key, default in (("all_clear", True), ("use_suspect", True)):
@@ -283,60 +315,58 @@ def _one_rule(raw: Any, kp: str, datums: dict[str, float], errors: list[str]) ->
     if not isinstance(note, str):
         errors.append(f"{kp}.note: expected text, got {note!r}")
         note = ""
+    return notify, flags, faults, note
 
+
+def _rule_steps(raw: dict, kp: str, watch: str, errors: list[str]) -> list[Step]:
+    """The rule's steps in the order the watched value reaches them, each checked."""
     raw_steps = raw.get("steps", _default_steps(watch))
     if not isinstance(raw_steps, list) or not raw_steps:
         errors.append(f"{kp}.steps: at least one step, e.g. {{ name = \"high\", at = 0.5 }}")
         raw_steps = []
-    steps: list[Step] = []
     sign = KINDS[watch]
     defaults = DEFAULT_LOW_STEP_NAMES if sign < 0 or watch == "residual_below" else DEFAULT_STEP_NAMES
-    for i, rs in enumerate(raw_steps):
-        skp = f"{kp}.steps[{i}]"
-        if not isinstance(rs, dict):
-            errors.append(f"{skp}: expected a table with name and at")
-            continue
-        for key in rs:
-            if key not in ("name", "at", "notify"):
-                errors.append(f"{skp}.{key}: unknown key (known: at, name, notify)")
-        name = rs.get("name", defaults[i] if i < len(defaults) else f"step {i + 1}")
-        if not isinstance(name, str) or not name.strip() or len(name) > 40 or re.search(r"[\x00-\x1f\x7f]", name):
-            errors.append(f"{skp}.name: a short single-line name (got {name!r})")
-            name = f"step {i + 1}"
-        elif (word := _reserved_word(name)) is not None:
-            errors.append(f"{skp}.name: {name!r} uses {word!r}, a word official warning "
-                          f"services use; choose a name of your own (e.g. 'raised', 'high')")
-        at = rs.get("at")
-        if at is None:
-            errors.append(f"{skp}.at: required")
-            continue
-        if watch == "feed_silent":
-            try:
-                at = parse_duration(at)
-            except ValueError as exc:
-                errors.append(f"{skp}.at: {exc}")
-                continue
-        elif isinstance(at, bool) or not isinstance(at, (int, float)) or not math.isfinite(at):
-            errors.append(f"{skp}.at: expected a number (metres), got {at!r}")
-            continue
-        if watch == "equipment_fault" and at < 1:
-            errors.append(f"{skp}.at: a count of active faults, at least 1 (got {at!r})")
-        steps.append(Step(name=name.strip(), at=float(at),
-                          notify=_as_addresses(rs.get("notify"), f"{skp}.notify", errors)))
+    steps = [s for i, rs in enumerate(raw_steps) if (s := _one_step(rs, i, f"{kp}.steps[{i}]", watch, defaults, errors))]
     steps.sort(key=lambda s: sign * s.at)
     for a, b in zip(steps, steps[1:]):
         if a.at == b.at:
             errors.append(f"{kp}.steps: {a.name!r} and {b.name!r} share the level {a.at}")
         if a.name == b.name:
             errors.append(f"{kp}.steps: the name {a.name!r} is used twice")
-    if steps and not notify and not any(s.notify for s in steps):
-        errors.append(f"{kp}.notify: nobody to tell; give notify on the rule or on a step")
-    if len(errors) > n_before or rid is None:
+    return steps
+
+
+def _one_step(rs: Any, i: int, skp: str, watch: str, defaults, errors: list[str]) -> Step | None:
+    """One step table: its name and level ``at`` ([m]; [s] for a silent feed; a count of faults)."""
+    if not isinstance(rs, dict):
+        errors.append(f"{skp}: expected a table with name and at")
         return None
-    return Rule(id=rid, watch=watch, steps=tuple(steps), datum=datum, datum_offset=offset,
-                series=series, hold=hold, settle=settle, band=float(band), notify=notify,
-                all_clear=flags["all_clear"], use_suspect=flags["use_suspect"],
-                fault_kinds=tuple(faults), note=note, clear_horizon=clear_horizon)
+    for key in rs:
+        if key not in ("name", "at", "notify"):
+            errors.append(f"{skp}.{key}: unknown key (known: at, name, notify)")
+    name = rs.get("name", defaults[i] if i < len(defaults) else f"step {i + 1}")
+    if not isinstance(name, str) or not name.strip() or len(name) > 40 or re.search(r"[\x00-\x1f\x7f]", name):
+        errors.append(f"{skp}.name: a short single-line name (got {name!r})")
+        name = f"step {i + 1}"
+    elif (word := _reserved_word(name)) is not None:
+        errors.append(f"{skp}.name: {name!r} uses {word!r}, a word official warning "
+                      f"services use; choose a name of your own (e.g. 'raised', 'high')")
+    at = rs.get("at")
+    if at is None:
+        errors.append(f"{skp}.at: required")
+        return None
+    if watch == "feed_silent":
+        try:
+            at = parse_duration(at)
+        except ValueError as exc:
+            errors.append(f"{skp}.at: {exc}")
+            return None
+    elif isinstance(at, bool) or not isinstance(at, (int, float)) or not math.isfinite(at):
+        errors.append(f"{skp}.at: expected a number (metres), got {at!r}")
+        return None
+    if watch == "equipment_fault" and at < 1:
+        errors.append(f"{skp}.at: a count of active faults, at least 1 (got {at!r})")
+    return Step(name=name.strip(), at=float(at), notify=_as_addresses(rs.get("notify"), f"{skp}.notify", errors))
 
 
 def rules_from_config(raw_list: Any, keypath: str, datums: dict[str, float]) -> tuple[list[Rule], list[str]]:
@@ -492,5 +522,5 @@ def advance(rule: Rule, state: RuleState, t: int, value: float,
 
 
 def with_watermark(state: RuleState, t: int) -> RuleState:
-    """The same state with the watermark moved to ``t`` (a skipped, uncounted sample)."""
+    """The same state with the watermark moved to ``t`` [Unix s, UTC] (a skipped, uncounted sample)."""
     return replace(state, watermark=t)

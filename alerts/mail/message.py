@@ -69,7 +69,7 @@ def _zone(tz: str):
 
 
 def format_times(t: int | float, tz: str) -> tuple[str, str]:
-    """Local time with zone abbreviation and UTC, both to the minute."""
+    """Local time with zone abbreviation and UTC, both to the minute, of ``t`` [Unix s, UTC]."""
     dt = datetime.fromtimestamp(float(t), tz=timezone.utc)
     local = dt.astimezone(_zone(tz))
     return (local.strftime("%Y-%m-%d %H:%M %Z (UTC%z)").replace("(UTC+0000)", "").strip(),
@@ -99,7 +99,8 @@ def _on_display(rule: Rule, station: StationView | None, value: float) -> tuple[
 
 
 def value_text(rule: Rule, value: float, station: StationView | None = None) -> str:
-    """The watched quantity in words, e.g. ``"residual +0.62 m"``.
+    """The watched quantity in words, e.g. ``"residual +0.62 m"``; ``value`` in the rule's unit
+    ([m] on the rule's datum for levels and residuals, [s] for a silent feed).
 
     Levels are shown on the station's display datum (with ``station``; else on the rule's
     own datum); residuals are datum-free and carry their sign."""
@@ -119,7 +120,8 @@ def value_text(rule: Rule, value: float, station: StationView | None = None) -> 
 
 def step_text(rule: Rule, at: float, station: StationView | None = None) -> str:
     """A step's level in words, on the display datum; the rule's own datum beside it when
-    the rule counts from another datum."""
+    the rule counts from another datum. ``at`` in the rule's unit ([m]; [s] for a silent
+    feed; a count of faults)."""
     if rule.watch == "feed_silent":
         return _duration(at)
     if rule.watch == "equipment_fault":
@@ -299,7 +301,7 @@ def compose_alert(station: StationView, rule: Rule, event: Event, facts: dict | 
 
 
 def compose_test(now: int | float, host: str = "") -> tuple[str, str, str]:
-    """Subject, plain text and HTML of the mail-settings test message."""
+    """Subject, plain text and HTML of the mail-settings test message, sent at ``now`` [Unix s, UTC]."""
     _, utc = format_times(now, "UTC")
     subject = f"{SUBJECT_PREFIX} test message ({utc})"
     ctx = dict(subject=subject, utc_time=utc, host=clean_line(host, 120), caution=CAUTION)

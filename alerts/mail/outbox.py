@@ -85,7 +85,7 @@ def _wall(clock: Clock | None) -> int:
 # --------------------------------------------------------------------------- helpers
 
 def unix_seconds(t: Any = None) -> int:
-    """Unix seconds UTC from None (now), a number, a datetime or a pandas Timestamp."""
+    """Unix seconds UTC [s] from None (now), a number [s], an aware datetime or a pandas Timestamp."""
     if t is None:
         return int(time.time())
     if isinstance(t, (int, float)):
@@ -163,7 +163,8 @@ def _holder_alive(holder: str) -> bool | None:
 
 
 def take_over_claims(db, *, holds_store_lock: bool, now: Any = None, clock: Clock | None = None) -> list[int]:
-    """Release the ``sending`` claims of processes that are gone, due at once.
+    """Release the ``sending`` claims of processes that are gone, due at once (``now`` [Unix s,
+    UTC] or ``clock()`` [Unix s], the wall clock by default).
 
     A daemon calls this as it starts. With ``holds_store_lock`` (the one-daemon lock is
     ours) every claim made by a daemon -- or by a version that did not name its claims --
@@ -330,7 +331,7 @@ class MailSettings:
         return None
 
     def backoff(self, attempts: int) -> float:
-        """Seconds to wait after the ``attempts``-th failure (doubling, capped)."""
+        """Wait [s] after the ``attempts``-th failure (doubling from ``retry_first``, capped at ``retry_max``)."""
         return min(self.retry_max, self.retry_first * 2 ** max(0, attempts - 1))
 
 

@@ -87,7 +87,8 @@ def _clock_change(start: pd.Timestamp, end: pd.Timestamp, zone: ZoneInfo) -> pd.
 
 
 def day_chart(report: "DayReport", width: float = 9.6, height: float = 6.0, dpi: int = 110) -> bytes:
-    """Draw the day's level and residual chart and return it as PNG bytes.
+    """Draw the day's level and residual chart and return it as PNG bytes (``width`` and
+    ``height`` [in], ``dpi`` [dots per inch]; levels [m] on the report's datum).
 
     Samples flagged fail (QARTOD 4) are marked but never set the axis range: a wild spike
     is drawn clipped at the panel's edge rather than squashing the tide flat.
@@ -189,7 +190,8 @@ def day_chart(report: "DayReport", width: float = 9.6, height: float = 6.0, dpi:
 
 
 def trend_chart(diagnostics: Sequence["Diagnostic"], dpi: int = 110) -> bytes | None:
-    """Small multiples of each diagnostic's recent history; ``None`` when there is none."""
+    """Small multiples of each diagnostic's recent history (in its own unit: mm, mm/day,
+    minutes) as PNG bytes at ``dpi`` [dots per inch]; ``None`` when there is none."""
     # A trend needs two points at least.
     with_history = [d for d in diagnostics if d.history is not None and len(d.history.dropna()) >= 2]
     if not with_history:

@@ -298,7 +298,8 @@ def write_index(folder: Path, generated_at: pd.Timestamp | None = None) -> Path:
 
 
 def prune_reports(folder: Path, keep_days: int, today: dt.date) -> list[Path]:
-    """Delete reports older than ``keep_days`` before ``today``; 0 keeps all. Returns what went."""
+    """Delete reports older than ``keep_days`` [days] before ``today`` (local date); 0 keeps all.
+    Returns what went."""
     if keep_days <= 0:
         return []
     cutoff = today - dt.timedelta(days=keep_days)

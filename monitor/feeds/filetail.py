@@ -80,7 +80,8 @@ class FileCursor:
         return False
 
     def read(self, budget: int, received: float, out: list[RawLine]) -> int:
-        """Read up to ``budget`` bytes, append the complete lines to ``out``; bytes read."""
+        """Read up to ``budget`` [bytes], append the complete lines to ``out`` stamped ``received``
+        [Unix s, UTC]; returns the bytes read."""
         data = os.pread(self.fd, budget, self.pos)
         if not data:
             return 0
@@ -98,14 +99,15 @@ class FileCursor:
         return len(data)
 
     def emit_block(self, body: bytes, received: float, out: list[RawLine]) -> None:
-        """Hand out the whole lines in ``body``, which starts at ``offset``."""
+        """Hand out the whole lines in ``body``, which starts at ``offset`` [bytes], stamped
+        ``received`` [Unix s, UTC]."""
         texts = decode_block(body, self.encoding, first=self.offset == 0)
         n, path = self.lineno, self.path
         out.extend([RawLine(text, n + i, path, received) for i, text in enumerate(texts, 1)])
         self.lineno = n + len(texts)
 
     def finish(self, received: float, out: list[RawLine]) -> None:
-        """Take the pending unterminated bytes as a complete last line."""
+        """Take the pending unterminated bytes as a complete last line, stamped ``received`` [Unix s, UTC]."""
         if self.pending:
             self.emit_block(self.pending, received, out)
             self.offset += len(self.pending)

@@ -342,7 +342,10 @@ def _to_ns(values: pd.Series) -> np.ndarray:
 def parse_line(text: str | bytes, fmt: LineFormat, received: float, lineno: int = 1,
                max_ahead: float | None = None) -> Observation | Reject | None:
     """Parse one line: an :class:`Observation`, a :class:`Reject` with a reason, or ``None``
-    for a blank, comment or header line. Never raises for any text."""
+    for a blank, comment or header line. Never raises for any text. ``received`` [Unix s,
+    UTC] is when it arrived; a time stamped more than ``max_ahead`` [s] after it is refused.
+    The observation's ``t`` is [Unix s, UTC], its value [m] (or [hPa]) after ``fmt``'s scale
+    and offset."""
     res = parse_lines([text], fmt, received, [lineno], max_ahead)
     if len(res):
         return Observation(int(res.t[0]), float(res.value[0]), str(res.time_source[0]), int(res.lineno[0]))

@@ -149,20 +149,29 @@ def feed_from_config(raw: dict, keypath: str, *, ignore: Iterable[str] = (),
     errors : list of str
         Each starts with the key path and says what is expected.
     """
-    errors: list[str] = []
     if not isinstance(raw, dict):
         return None, [f"{keypath}: expected a table of feed settings, got {type(raw).__name__}"]
+    kind, allowed, errors = _kind_and_keys(raw, keypath, frozenset(ignore))
+    if kind is None:
+        return None, errors
+    table = _Table(raw, allowed, keypath, errors)
+    _file_keys(table, base_dir)
+    _serial_keys(table)
+    _replay_keys(table, kind)
+    if errors:
+        return None, errors
+    return FeedSpec(kind=kind, **table.values), []
 
-    def err(key: str, message: str) -> None:
-        errors.append(f"{keypath}.{key}: {message}")
 
-    ignore = frozenset(ignore)
+def _kind_and_keys(raw: dict, keypath: str, ignore: frozenset) -> tuple[str | None, set, list[str]]:
+    """The feed's kind, the keys it allows, and the errors of unknown, misplaced or missing keys."""
+    errors: list[str] = []
     kind = raw.get("kind")
     if kind is None:
         errors.append(f"{keypath}: missing key 'kind'; expected one of "
                       + ", ".join(f'"{k}"' for k in KINDS))
     elif kind not in KINDS:
-        err("kind", f"expected one of {', '.join(repr(k) for k in KINDS)}, got {kind!r}")
+        errors.append(f"{keypath}.kind: expected one of {', '.join(repr(k) for k in KINDS)}, got {kind!r}")
         kind = None
     allowed = {"kind", "encoding", *(_KEYS_BY_KIND[kind] if kind else ALL_KEYS)}
     for key in sorted(set(raw) - ignore, key=str):
@@ -170,49 +179,63 @@ def feed_from_config(raw: dict, keypath: str, *, ignore: Iterable[str] = (),
             continue
         if key in ALL_KEYS:
             users = [k for k in KINDS if key in _KEYS_BY_KIND[k]]
-            err(key, f"not used by kind = {kind!r} (only by {', '.join(users)})")
+            errors.append(f"{keypath}.{key}: not used by kind = {kind!r} (only by {', '.join(users)})")
         else:
-            err(key, "unknown key; expected one of " + ", ".join(sorted(allowed)))
-    if kind is None:
-        return None, errors
-    for key in _REQUIRED[kind]:
-        if key not in raw:
-            errors.append(f"{keypath}: missing key {key!r}, needed for kind = {kind!r}")
+            errors.append(f"{keypath}.{key}: unknown key; expected one of " + ", ".join(sorted(allowed)))
+    if kind is not None:
+        for key in _REQUIRED[kind]:
+            if key not in raw:
+                errors.append(f"{keypath}: missing key {key!r}, needed for kind = {kind!r}")
+    return kind, allowed, errors
 
-    values: dict[str, Any] = {"kind": kind}
-    get = {k: v for k, v in raw.items() if k in allowed and k != "kind"}
 
-    def text(key: str, what: str) -> None:
-        if key in get:
-            if isinstance(get[key], str) and get[key].strip():
-                values[key] = get[key]
+class _Table:
+    """One feed table being checked: the keys given, the values taken, the errors found."""
+
+    def __init__(self, raw: dict, allowed: set, keypath: str, errors: list[str]):
+        self.get = {k: v for k, v in raw.items() if k in allowed and k != "kind"}
+        self.values: dict[str, Any] = {}
+        self.keypath = keypath
+        self.errors = errors
+
+    def err(self, key: str, message: str) -> None:
+        self.errors.append(f"{self.keypath}.{key}: {message}")
+
+    def text(self, key: str, what: str) -> None:
+        if key in self.get:
+            if isinstance(self.get[key], str) and self.get[key].strip():
+                self.values[key] = self.get[key]
             else:
-                err(key, f"expected {what}, got {get[key]!r}")
+                self.err(key, f"expected {what}, got {self.get[key]!r}")
 
-    def number(key: str, what: str, low: float, low_ok: bool) -> None:
-        if key in get:
-            v = get[key]
+    def number(self, key: str, what: str, low: float, low_ok: bool) -> None:
+        """A number [in the key's unit, seconds for durations] above ``low`` (or at it, when ``low_ok``)."""
+        if key in self.get:
+            v = self.get[key]
             if _is_number(v) and (v >= low if low_ok else v > low):
-                values[key] = float(v)
+                self.values[key] = float(v)
             else:
-                err(key, f"expected {what}, got {v!r}")
+                self.err(key, f"expected {what}, got {v!r}")
 
-    def choice(key: str, options: Iterable[Any]) -> None:
-        if key in get:
+    def choice(self, key: str, options: Iterable[Any]) -> None:
+        if key in self.get:
             options = tuple(options)
-            v = get[key]
+            v = self.get[key]
             if isinstance(v, str) and v in options:
-                values[key] = v
+                self.values[key] = v
             else:
-                err(key, f"expected one of {', '.join(repr(o) for o in options)}, got {v!r}")
+                self.err(key, f"expected one of {', '.join(repr(o) for o in options)}, got {v!r}")
 
+
+def _file_keys(t: _Table, base_dir: str | os.PathLike | None) -> None:
+    """encoding, path (relative to ``base_dir``), pattern, settle [s]."""
+    get, values = t.get, t.values
     if "encoding" in get:
         problem = _check_encoding(get["encoding"])
         if problem:
-            err("encoding", problem)
+            t.err("encoding", problem)
         else:
             values["encoding"] = get["encoding"]
-
     if "path" in get:
         p = get["path"]
         if isinstance(p, str) and p.strip() and "\0" not in p:
@@ -221,69 +244,74 @@ def feed_from_config(raw: dict, keypath: str, *, ignore: Iterable[str] = (),
                 path = Path(base_dir) / path
             values["path"] = str(path)
         else:
-            err("path", f"expected a file or folder path as text, got {p!r}")
-    text("pattern", "a glob pattern such as \"*.csv\"")
-    number("settle", "a number of seconds, 0 or more", 0, True)
-    text("port", "a serial device such as \"/dev/ttyUSB0\" or a pyserial URL")
+            t.err("path", f"expected a file or folder path as text, got {p!r}")
+    t.text("pattern", "a glob pattern such as \"*.csv\"")
+    t.number("settle", "a number of seconds, 0 or more", 0, True)
+
+
+def _serial_keys(t: _Table) -> None:
+    """port, baud [bit/s], bytesize, parity, flow, stopbits, reopen_after and reopen_max [s]."""
+    get, values = t.get, t.values
+    t.text("port", "a serial device such as \"/dev/ttyUSB0\" or a pyserial URL")
     if "baud" in get:
         if _is_int(get["baud"]) and get["baud"] > 0:
             values["baud"] = get["baud"]
         else:
-            err("baud", f"expected a line speed in bit/s such as 9600, got {get['baud']!r}")
+            t.err("baud", f"expected a line speed in bit/s such as 9600, got {get['baud']!r}")
     if "bytesize" in get:
         if _is_int(get["bytesize"]) and get["bytesize"] in (5, 6, 7, 8):
             values["bytesize"] = get["bytesize"]
         else:
-            err("bytesize", f"expected 5, 6, 7 or 8 data bits, got {get['bytesize']!r}")
-
-    choice("parity", PARITIES)
-    choice("flow", FLOWS)
+            t.err("bytesize", f"expected 5, 6, 7 or 8 data bits, got {get['bytesize']!r}")
+    t.choice("parity", PARITIES)
+    t.choice("flow", FLOWS)
     if "stopbits" in get:
         v = get["stopbits"]
         if _is_number(v) and v in (1, 1.5, 2):
             values["stopbits"] = 1.5 if v == 1.5 else int(v)
         else:
-            err("stopbits", f"expected 1, 1.5 or 2, got {v!r}")
-    number("reopen_after", "a number of seconds above 0", 0, False)
-    number("reopen_max", "a number of seconds above 0", 0, False)
+            t.err("stopbits", f"expected 1, 1.5 or 2, got {v!r}")
+    t.number("reopen_after", "a number of seconds above 0", 0, False)
+    t.number("reopen_max", "a number of seconds above 0", 0, False)
     if values.get("reopen_max", 60.0) < values.get("reopen_after", 1.0):
-        err("reopen_max", "must not be less than reopen_after")
+        t.err("reopen_max", "must not be less than reopen_after")
 
-    number("speedup", "a speed-up factor, 0 (as fast as possible) or more", 0, True)
-    number("rate", "a number of lines per second above 0", 0, False)
-    number("max_pause", "a number of seconds above 0", 0, False)
+
+def _replay_keys(t: _Table, kind: str) -> None:
+    """speedup, rate [lines/s], max_pause [s], time_column, time_format, delimiter, and how a
+    replay is paced."""
+    get, values = t.get, t.values
+    t.number("speedup", "a speed-up factor, 0 (as fast as possible) or more", 0, True)
+    t.number("rate", "a number of lines per second above 0", 0, False)
+    t.number("max_pause", "a number of seconds above 0", 0, False)
     if "time_column" in get:
         v = get["time_column"]
         if (_is_int(v) and v >= 1) or (isinstance(v, str) and v.strip()):
             values["time_column"] = v.strip() if isinstance(v, str) else v
         else:
-            err("time_column", f"expected a column number counting from 1, or a column "
-                               f"name, got {v!r}")
+            t.err("time_column", f"expected a column number counting from 1, or a column "
+                                 f"name, got {v!r}")
     if "time_format" in get:
         v = get["time_format"]
         if isinstance(v, str) and (v in ("iso", "unix") or "%" in v):
             values["time_format"] = v
         else:
-            err("time_format", f"expected \"iso\", \"unix\" or a strptime pattern such as "
-                               f"\"%Y-%m-%d %H:%M\", got {v!r}")
+            t.err("time_format", f"expected \"iso\", \"unix\" or a strptime pattern such as "
+                                 f"\"%Y-%m-%d %H:%M\", got {v!r}")
     if "delimiter" in get:
         v = get["delimiter"]
         if isinstance(v, str) and (len(v) == 1 and v not in "\r\n" or v == "whitespace"):
             values["delimiter"] = v
         else:
-            err("delimiter", f"expected one character such as \",\" or \"whitespace\", "
-                             f"got {v!r}")
+            t.err("delimiter", f"expected one character such as \",\" or \"whitespace\", "
+                               f"got {v!r}")
     if kind == "replay":
         if "rate" in get and "speedup" in get:
-            err("rate", "give either rate or speedup, not both")
+            t.err("rate", "give either rate or speedup, not both")
         elif ("rate" not in get and values.get("speedup", 1.0) > 0
               and "time_column" not in get):
-            err("time_column", "needed to pace the replay by its timestamps (or set "
-                               "speedup = 0 to play as fast as possible, or give rate)")
-
-    if errors:
-        return None, errors
-    return FeedSpec(**values), []
+            t.err("time_column", "needed to pace the replay by its timestamps (or set "
+                                 "speedup = 0 to play as fast as possible, or give rate)")
 
 
 def open_feed(spec: FeedSpec, name: str, capture_dir: str | os.PathLike | None = None) -> Feed:

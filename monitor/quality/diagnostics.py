@@ -34,6 +34,7 @@ from __future__ import annotations
 
 import logging
 import math
+from dataclasses import dataclass
 from typing import Any, Iterable
 
 import numpy as np
@@ -341,6 +342,44 @@ def clock_offset(observed: pd.Series, model: Any, *, max_shift: float = 3600.0, 
            "bands": {}, "consistent": None}
     if len(obs) < 20:
         return out
+    g = _clock_grid(obs, model, max_shift, smooth_hours)
+    found = _converge(g, bands, max_shift, iterations)
+    if found is None:
+        return out
+    lag, est, parts = found
+    steps, se_s, consistent = _band_agreement(lag, est)
+    per_day, per_day_se = _daily_shifts(g, parts, est, lag, day)
+    out.update(offset_s=float(lag), offset_se_s=se_s, offset_min=float(lag) / 60, offset_se_min=se_s / 60,
+               days=len(per_day), per_day=pd.Series(per_day, dtype=float),
+               per_day_se=pd.Series(per_day_se, dtype=float),
+               bands={b: {"offset_min": steps[b] / 60, "offset_se_min": math.sqrt(est[b][1]) / 60}
+                      for b in est},
+               consistent=consistent)
+    return out
+
+
+@dataclass
+class _ClockGrid:
+    """The record on its analysis grid: samples ``t`` [s] and ``y`` [m], the prediction's grid
+    (``gt`` [s], level ``gp`` [m], rate ``gd`` [m/s]), the grid step ``dt`` [s], each sample's
+    grid cell ``k``, ``n`` cells with ``cnt`` samples (``m``: any), the running-mean
+    ``width`` [cells] and the ``taper``."""
+
+    t: np.ndarray
+    y: np.ndarray
+    gt: np.ndarray
+    gp: np.ndarray
+    gd: np.ndarray
+    dt: float
+    k: np.ndarray
+    n: int
+    cnt: np.ndarray
+    m: np.ndarray
+    width: int
+    taper: np.ndarray
+
+
+def _clock_grid(obs: pd.Series, model: Any, max_shift: float, smooth_hours: float) -> _ClockGrid:
     t = index_seconds(obs.index)
     order = np.argsort(t, kind="stable")
     t, y = t[order], obs.to_numpy(dtype=float)[order]
@@ -350,53 +389,67 @@ def clock_offset(observed: pd.Series, model: Any, *, max_shift: float = 3600.0, 
     k = np.rint((t - t[0]) / dt).astype(np.int64)
     n = int(k[-1]) + 1
     cnt = np.bincount(k, minlength=n).astype(float)
-    m = cnt > 0
     width = max(3, int(round(smooth_hours * 3600 / dt)) | 1)
     taper = signal.windows.tukey(n, min(1.0, 2 * DAY / max(n * dt, 1.0)))
+    return _ClockGrid(t, y, gt, gp, gd, dt, k, n, cnt, cnt > 0, width, taper)
 
-    def band_sums(lag: float):
-        """Per band: filtered residual and rate on the grid (observed points only)."""
-        r = y - np.interp(t - lag, gt, gp)
-        d = np.interp(t - lag, gt, gd)
-        rg = np.bincount(k, r, n) / np.maximum(cnt, 1)
-        dg_ = np.bincount(k, d, n) / np.maximum(cnt, 1)
-        # The same taper on both keeps r = -lag h' exact while cutting the leakage of
-        # the record's ends (and of a surge) from long periods into the tidal bands.
-        rg = np.where(m, rg - _running_mean(rg, m, width), 0.0) * taper
-        dg_ = np.where(m, dg_ - _running_mean(dg_, m, width), 0.0) * taper
-        return [(name, lo, hi, _band_filter(rg, dt, lo, hi), _band_filter(dg_, dt, lo, hi))
-                for name, lo, hi in bands]
 
-    def combine(parts, sel=slice(None)):
-        est = {}
-        for name, lo, hi, rb, db in parts:
-            sdd = float(db[sel] @ db[sel])
-            if sdd <= 0 or not np.isfinite(sdd):
-                continue
-            tau = -float(rb[sel] @ db[sel]) / sdd
-            e = rb[sel] + tau * db[sel]
-            var_e = float(e @ e) / max(len(e), 1)
-            # OLS variance inflated for band-limited noise: samples are independent only
-            # every 1 / (2 B) seconds (B the bandwidth) -> factor 1 / (2 B dt).
-            inflate = max(1.0, 1.0 / (2 * (hi - lo) * _CPD * dt))
-            var = var_e / sdd * inflate
-            if var > 0 and np.isfinite(var):
-                est[name] = (tau, var)
-        return est
+def _band_sums(g: _ClockGrid, lag: float, bands) -> list:
+    """Per band: filtered residual and rate on the grid (observed points only), at ``lag`` [s]."""
+    r = g.y - np.interp(g.t - lag, g.gt, g.gp)
+    d = np.interp(g.t - lag, g.gt, g.gd)
+    rg = np.bincount(g.k, r, g.n) / np.maximum(g.cnt, 1)
+    dg_ = np.bincount(g.k, d, g.n) / np.maximum(g.cnt, 1)
+    # The same taper on both keeps r = -lag h' exact while cutting the leakage of
+    # the record's ends (and of a surge) from long periods into the tidal bands.
+    rg = np.where(g.m, rg - _running_mean(rg, g.m, g.width), 0.0) * g.taper
+    dg_ = np.where(g.m, dg_ - _running_mean(dg_, g.m, g.width), 0.0) * g.taper
+    return [(name, lo, hi, _band_filter(rg, g.dt, lo, hi), _band_filter(dg_, g.dt, lo, hi))
+            for name, lo, hi in bands]
 
+
+def _band_shifts(parts: list, dt: float, sel=slice(None)) -> dict:
+    """Band name -> (shift [s], its variance [s^2]) by least squares of r on -h'."""
+    est = {}
+    for name, lo, hi, rb, db in parts:
+        sdd = float(db[sel] @ db[sel])
+        if sdd <= 0 or not np.isfinite(sdd):
+            continue
+        tau = -float(rb[sel] @ db[sel]) / sdd
+        e = rb[sel] + tau * db[sel]
+        var_e = float(e @ e) / max(len(e), 1)
+        # OLS variance inflated for band-limited noise: samples are independent only
+        # every 1 / (2 B) seconds (B the bandwidth) -> factor 1 / (2 B dt).
+        inflate = max(1.0, 1.0 / (2 * (hi - lo) * _CPD * dt))
+        var = var_e / sdd * inflate
+        if var > 0 and np.isfinite(var):
+            est[name] = (tau, var)
+    return est
+
+
+def _converge(g: _ClockGrid, bands, max_shift: float, iterations: int):
+    """Gauss-Newton on the shift: (lag [s], band estimates, band sums), or None when no band
+    can be estimated."""
     lag = 0.0
     est: dict = {}
+    parts: list = []
     for _ in range(max(1, iterations)):
-        parts = band_sums(lag)
-        est = combine(parts)
+        parts = _band_sums(g, lag, bands)
+        est = _band_shifts(parts, g.dt)
         if not est:
-            return out
+            return None
         w = {b: 1.0 / v for b, (_, v) in est.items()}
         step = sum(w[b] * est[b][0] for b in est) / sum(w.values())
         new = float(np.clip(lag + step, -max_shift, max_shift))
         moved, lag = abs(new - lag), new
         if moved < 0.5:
             break
+    return lag, est, parts
+
+
+def _band_agreement(lag: float, est: dict) -> tuple[dict, float, bool]:
+    """Each band's shift at the final lag [s], the combined standard error [s] (widened by the
+    Birge ratio when the bands disagree) and whether they agree (chi-square at 1 %)."""
     # Band values at the final shift (the step is the remaining correction).
     wsum = sum(1.0 / v for _, v in est.values())
     se_s = math.sqrt(1.0 / wsum)
@@ -407,34 +460,33 @@ def clock_offset(observed: pd.Series, model: Any, *, max_shift: float = 3600.0, 
     if dof > 0:
         consistent = bool(stats.chi2.sf(chi2, dof) > 0.01)
         se_s *= math.sqrt(max(1.0, chi2 / dof))  # Birge ratio
-    # Daily pieces from the same filtered series, bands weighted as in the whole.
-    grid_t = t[0] + np.arange(n) * dt
-    day_id = np.floor((grid_t - t[0]) / day).astype(int)
+    return steps, se_s, consistent
+
+
+def _daily_shifts(g: _ClockGrid, parts: list, est: dict, lag: float, day: float) -> tuple[dict, dict]:
+    """Daily pieces from the same filtered series, bands weighted as in the whole: day start ->
+    shift [s], and day start -> its standard error [s] from the day's own band noise."""
+    grid_t = g.t[0] + np.arange(g.n) * g.dt
+    day_id = np.floor((grid_t - g.t[0]) / day).astype(int)
     per_day: dict = {}
     per_day_se: dict = {}
-    per_sample = max(1, int(0.5 * day / dt))
+    per_sample = max(1, int(0.5 * day / g.dt))
     for j in np.unique(day_id):
         sel = (day_id == j)
-        if int(m[sel].sum()) < per_sample:
+        if int(g.m[sel].sum()) < per_sample:
             continue
-        ed = combine(parts, sel)
+        ed = _band_shifts(parts, g.dt, sel)
         if not ed:
             continue
         wd = {b: 1.0 / est[b][1] for b in ed if b in est}
         if not wd:
             continue
-        key = utc_timestamp(t[0] + j * day)
+        key = utc_timestamp(g.t[0] + j * day)
         per_day[key] = lag + sum(wd[b] * ed[b][0] for b in wd) / sum(wd.values())
         # The day's own uncertainty from its own band noise: a stormy day says so.
         wsum_d = sum(wd.values())
         per_day_se[key] = math.sqrt(sum(wd[b] ** 2 * ed[b][1] for b in wd)) / wsum_d
-    out.update(offset_s=float(lag), offset_se_s=se_s, offset_min=float(lag) / 60, offset_se_min=se_s / 60,
-               days=len(per_day), per_day=pd.Series(per_day, dtype=float),
-               per_day_se=pd.Series(per_day_se, dtype=float),
-               bands={b: {"offset_min": steps[b] / 60, "offset_se_min": math.sqrt(est[b][1]) / 60}
-                      for b in est},
-               consistent=consistent)
-    return out
+    return per_day, per_day_se
 
 
 def clock_trend(observed: pd.Series, model: Any, ends: Iterable[pd.Timestamp], *, period: float = 7 * DAY,

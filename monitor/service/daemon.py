@@ -56,8 +56,8 @@ from monitor.service.config import Config, SensorConfig, StationConfig
 from monitor.service.constants import load_model, model_from_text, model_to_text
 from monitor.service.reporting import write_due_reports
 from monitor.store.database import BatchResult, EMPTY_BATCH, Store, check_folder, check_store_path
-from monitor.surge import forecast as SF
-from monitor.surge import residual as R
+from monitor.surge import forecast as surge_forecast
+from monitor.surge import residual as surge_residual
 from predictor import harmonic_fit
 from predictor.errors import FitError
 
@@ -619,7 +619,7 @@ class Daemon:
         pressure = None
         if "barometer" in st.sensors:
             pressure = store.observations(st.id, "barometer", start_t - lookback - 3600, end_t + 3600)["value"]
-        full = R.derive(obs, pred, pressure, rs.median_minutes, rs.mean_minutes, rs.reference_pressure)
+        full = surge_residual.derive(obs, pred, pressure, rs.median_minutes, rs.mean_minutes, rs.reference_pressure)
         d = full[full.index >= pd.Timestamp(start_t - REWRITE_BACK, unit="s", tz="UTC")]
         store.write_derived(st.id, d)
         new = int((d.index >= pd.Timestamp(start_t, unit="s", tz="UTC")).sum())
@@ -633,10 +633,10 @@ class Daemon:
             lt = lows["time"].map(pd.Timestamp.timestamp).to_numpy() if len(lows) else np.empty(0)
             closing = lt[(lt > start_t - REWRITE_BACK) & (lt <= end_t)]
             if len(closing):
-                a = int(closing.min() - 2 * R.HALF_M2 - 3600)
+                a = int(closing.min() - 2 * surge_residual.HALF_M2 - 3600)
                 o = store.observations(st.id, "primary", a, end_t)
                 o = o[~o["flag"].isin((4, 9))]["value"]
-                ss = R.skew_surges(o, ext)
+                ss = surge_residual.skew_surges(o, ext)
                 if len(ss):
                     store.write_skew_surges(st.id, ss[ss["hw_t"] >= a + 3600])
             # 4. next high water forecast
@@ -686,31 +686,31 @@ class Daemon:
         horizon = pd.Timedelta(seconds=max((getattr(r, "clear_horizon", 0.0) for r in st.rules or ()), default=0.0))
         barometer = "barometer" in st.sensors
         if rt.forecaster is None or end_t - rt.history_at > HISTORY_REFRESH:
-            grid, skew, pressure = SF.read_history(self.store.conn, st.id, end_t - int(rs.history_days * 86400),
+            grid, skew, pressure = surge_forecast.read_history(self.store.conn, st.id, end_t - int(rs.history_days * 86400),
                                                    end_t, barometer)
-            rt.forecaster = SF.SurgeForecaster.learn(grid, skew, pressure, min_storms=rs.forecast_min_storms,
+            rt.forecaster = surge_forecast.SurgeForecaster.learn(grid, skew, pressure, min_storms=rs.forecast_min_storms,
                                                      min_history_days=rs.min_history_days)
             rt.history_at = end_t
-        back = int((SF.RATE_HOURS + 1) * 3600)
+        back = int((surge_forecast.RATE_HOURS + 1) * 3600)
         recent = self.store.derived(st.id, start_t - back, end_t)["smoothed"].dropna()
         pressure_now = None
         if barometer:
             o = self.store.observations(st.id, "barometer", start_t - back, end_t)
             pressure_now = o["value"][~o["flag"].isin((4, 9))]
-        slot = SF.LOG_SLOT_S
+        slot = surge_forecast.LOG_SLOT_S
         issued = [*range(-(-start_t // slot) * slot, end_t, slot), end_t]
         fcs: list[dict] = []
         for at in issued:
-            state = SF.storm_state(recent, at, pressure_now, barometer=barometer)
+            state = surge_forecast.storm_state(recent, at, pressure_now, barometer=barometer)
             if not np.isfinite(state.residual) or at - state.t > 3600:
                 continue  # no live residual then (a gap): no forecast
             now = pd.Timestamp(state.t, unit="s", tz="UTC")
-            hws = R.high_waters_within(rt.extremes, now, now + horizon)
+            hws = surge_residual.high_waters_within(rt.extremes, now, now + horizon)
             fcs += [rt.forecaster.forecast(state, row.time.timestamp(), float(row.level)) for row in hws.itertuples()]
         for fc in fcs:
             self.store.write_forecast(st.id, fc)
         with self.store.transaction() as conn:
-            SF.log_forecasts(conn, st.id, fcs)
+            surge_forecast.log_forecasts(conn, st.id, fcs)
         return fcs
 
     def _alert_context(self, rt: StationRuntime, fcs: list[dict] | None, qc_results: dict, now: float,

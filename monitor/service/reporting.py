@@ -18,17 +18,17 @@ import numpy as np
 import pandas as pd
 
 from alerts.mail.outbox import enqueue
-from alerts.reports import model as R
-from alerts.reports import render as RR
+from alerts.reports import model as report_model
+from alerts.reports import render as report_render
 from monitor.errors import ConfigError, MonitorError
-from monitor.quality import checks as Q
-from monitor.quality import diagnostics as D
+from monitor.quality import checks as qc
+from monitor.quality import diagnostics
 from monitor.quality.checks import read_level_series
 from monitor.service.config import ResidualSettings, datum_words
 from monitor.service import extremes as EX
 from monitor.service.constants import load_model
-from monitor.surge import forecast as SF
-from monitor.surge import residual as RS
+from monitor.surge import forecast as surge_forecast
+from monitor.surge import residual as surge_residual
 from monitor.surge.residual import skew_surges
 from monitor.surge.residual import tide_stands
 from predictor.timeutil import utc_timestamp
@@ -110,7 +110,7 @@ def barometric_share(residual: pd.Series | np.ndarray, barometric: pd.Series | n
 
     References
     ----------
-    Pugh, D., Woodworth, P. (2014). Sea-Level Science, ch. 7 (the inverted barometer; removing
+    Pugh, diagnostics., Woodworth, P. (2014). Sea-Level Science, ch. 7 (the inverted barometer; removing
     it from the residual). Fraction of variance explained: the usual 1 - SS_res / SS_tot.
     """
     r = np.asarray(residual, dtype=float)
@@ -146,7 +146,7 @@ def _datum_note(station: Any) -> str:
                                          "are on the station datum (the gauge zero)")
 
 
-def _alert_levels(station: Any, shift: float) -> list[R.AlertLevel]:
+def _alert_levels(station: Any, shift: float) -> list[report_model.AlertLevel]:
     """The operator's sample-rule steps, on the report's datum."""
     levels = []
     for rule in getattr(station, "rules", ()) or ():
@@ -156,7 +156,7 @@ def _alert_levels(station: Any, shift: float) -> list[R.AlertLevel]:
         quantity, direction = watch.split("_")
         for step in rule.steps:
             value = float(step.at) + (float(rule.datum_offset) - shift if quantity == "level" else 0.0)
-            levels.append(R.AlertLevel(step.name, value, quantity, direction))
+            levels.append(report_model.AlertLevel(step.name, value, quantity, direction))
     return levels
 
 
@@ -167,9 +167,9 @@ def _table(db: Any, name: str) -> bool:
 # --------------------------------------------------------------------------- gathering
 
 
-def gather_day(store: Any, station: Any, day: dt.date, settings: R.ReportSettings | None = None, *,
+def gather_day(store: Any, station: Any, day: dt.date, settings: report_model.ReportSettings | None = None, *,
                model: Any = None, model_source: str = "", now: pd.Timestamp | None = None,
-               residual: Any = None) -> R.DayReport:
+               residual: Any = None) -> report_model.DayReport:
     """Fill a :class:`alerts.reports.model.DayReport` for one station's local day from the store.
 
     Parameters
@@ -186,10 +186,10 @@ def gather_day(store: Any, station: Any, day: dt.date, settings: R.ReportSetting
     residual : monitor.service.config.ResidualSettings, optional
         The forecast's settings, for a forecast made here when the daemon kept none.
     """
-    settings = settings or R.ReportSettings()
+    settings = settings or report_model.ReportSettings()
     db = store.db
     sid = station.id
-    start, end = R.day_bounds(day, station.tz)
+    start, end = report_model.day_bounds(day, station.tz)
     t0, t1 = int(start.timestamp()), int(end.timestamp()) - 1
     datum, shift = _report_datum(station)
 
@@ -201,7 +201,7 @@ def gather_day(store: Any, station: Any, day: dt.date, settings: R.ReportSetting
 
     obs = store.observations(sid, "primary", t0, t1)
     derived = store.derived(sid, t0, t1)
-    samples = R.empty_samples()
+    samples = report_model.empty_samples()
     if len(obs):
         samples = pd.DataFrame({"observed": obs["value"].to_numpy(dtype=float) - shift,
                                 "flag": obs["flag"].to_numpy(dtype=int)}, index=obs.index.rename("time"))
@@ -212,7 +212,7 @@ def gather_day(store: Any, station: Any, day: dt.date, settings: R.ReportSetting
         samples = samples[["observed", "residual", "flag"]]
 
     predicted = pd.Series(dtype=float)
-    tides: list[R.TideRow] = []
+    tides: list[report_model.TideRow] = []
     if model is not None:
         grid = pd.date_range(start - pd.Timedelta(hours=1), end + pd.Timedelta(hours=1), freq="10min")
         predicted = pd.Series(np.asarray(model.predict(grid), dtype=float) - shift, index=grid)
@@ -226,13 +226,13 @@ def gather_day(store: Any, station: Any, day: dt.date, settings: R.ReportSetting
     sample_interval = None
     if len(samples) < 10:
         before = store.observations(sid, "primary", t0 - 7 * 86400, t0 - 1)
-        sample_interval = R.infer_interval(before.index)
+        sample_interval = report_model.infer_interval(before.index)
 
     barometer = None
     if len(samples) and len(derived) and derived["barometric"].notna().any():
         usable = samples[~samples["flag"].isin([4, 9])]
         share = barometric_share(usable["residual"], derived["barometric"].reindex(usable.index))
-        barometer = R.BarometerPart(**share) if share["samples"] else None
+        barometer = report_model.BarometerPart(**share) if share["samples"] else None
     now = now or pd.Timestamp.now(tz="UTC")
     forecast = staff = None
     verification: list = []
@@ -259,7 +259,7 @@ def gather_day(store: Any, station: Any, day: dt.date, settings: R.ReportSetting
     rejects, rejected = _rejects(db, sid, t0, t1)
     conflicts = store.conflict_count(sid, start_t=t0, end_t=t1, by="at")
     counts, episodes = _qc(store, sid, t0, t1)
-    return R.DayReport(
+    return report_model.DayReport(
         station_id=sid, station_name=station.name, tz=station.tz, day=day, datum=datum,
         datum_note=_datum_note(station), note=getattr(station, "note", "") or "",
         samples=samples, predicted=predicted, sample_interval=sample_interval,
@@ -273,7 +273,7 @@ def gather_day(store: Any, station: Any, day: dt.date, settings: R.ReportSetting
 
 
 def _forecast(store: Any, station: Any, model: Any, start: pd.Timestamp, end: pd.Timestamp, now: pd.Timestamp,
-              shift: float, residual: Any = None) -> R.HighWaterForecast | None:
+              shift: float, residual: Any = None) -> report_model.HighWaterForecast | None:
     """The last next-high-water forecast issued during the report's day, never one issued after it.
 
     From the forecast log (every forecast the daemon made) or the daemon's latest forecast of
@@ -284,7 +284,7 @@ def _forecast(store: Any, station: Any, model: Any, start: pd.Timestamp, end: pd
     db = store.db
     sid = station.id
     t0, made_before = int(start.timestamp()), int(min(now, end).timestamp()) - 1
-    log = SF.read_log(db, sid, t0, made_before)
+    log = surge_forecast.read_log(db, sid, t0, made_before)
     log = log[log["hw_t"] >= log["made_t"]] if len(log) else log
     if len(log):
         last = log[log["made_t"] == log["made_t"].max()].sort_values("hw_t").iloc[0]
@@ -300,39 +300,39 @@ def _forecast(store: Any, station: Any, model: Any, start: pd.Timestamp, end: pd
     return _forecast_at(store, station, model, made_before, shift, residual)
 
 
-def _forecast_at(store: Any, station: Any, model: Any, at_t: int, shift: float, residual: Any) -> R.HighWaterForecast | None:
+def _forecast_at(store: Any, station: Any, model: Any, at_t: int, shift: float, residual: Any) -> report_model.HighWaterForecast | None:
     """The forecast of the next high water as the daemon would have issued it at ``at_t``."""
     if residual is None:
         residual = ResidualSettings()
     sid = station.id
     at = pd.Timestamp(at_t, unit="s", tz="UTC")
-    back = int((SF.RATE_HOURS + 1) * 3600)
+    back = int((surge_forecast.RATE_HOURS + 1) * 3600)
     recent = store.derived(sid, at_t - back, at_t)["smoothed"]
     barometer = "barometer" in (getattr(station, "sensors", {}) or {})
     pressure = None
     if barometer:
         o = store.observations(sid, "barometer", at_t - back, at_t)
         pressure = o["value"][~o["flag"].isin((4, 9))]
-    state = SF.storm_state(recent, at_t, pressure, barometer=barometer)
+    state = surge_forecast.storm_state(recent, at_t, pressure, barometer=barometer)
     if not np.isfinite(state.residual) or at_t - state.t > 3600:
         return None
-    hw = RS.next_high_water(model.high_low(at, at + pd.Timedelta(hours=30)), at)
+    hw = surge_residual.next_high_water(model.high_low(at, at + pd.Timedelta(hours=30)), at)
     if hw is None:
         return None
-    grid, skew, p_grid = SF.read_history(store.conn, sid, at_t - int(residual.history_days * 86400), at_t, barometer)
-    forecaster = SF.SurgeForecaster.learn(grid, skew, p_grid, min_storms=residual.forecast_min_storms,
+    grid, skew, p_grid = surge_forecast.read_history(store.conn, sid, at_t - int(residual.history_days * 86400), at_t, barometer)
+    forecaster = surge_forecast.SurgeForecaster.learn(grid, skew, p_grid, min_storms=residual.forecast_min_storms,
                                           min_history_days=residual.min_history_days)
     fc = forecaster.forecast(state, pd.Timestamp(hw["time"]).timestamp(), float(hw["level"]))
     return _forecast_row(fc, shift)
 
 
-def _forecast_row(fc: dict, shift: float) -> R.HighWaterForecast:
+def _forecast_row(fc: dict, shift: float) -> report_model.HighWaterForecast:
     """A forecast dict of :mod:`monitor.surge.forecast` (or a stored row) on the report's datum."""
     def level(v: Any) -> float | None:
         v = _num(v)
         return None if v is None else v - shift
 
-    return R.HighWaterForecast(
+    return report_model.HighWaterForecast(
         time=utc_timestamp(fc["hw_t"]), predicted=level(fc["predicted_high"]), residual_now=_num(fc["residual_now"]),
         forecast=level(fc["forecast"]), made_at=utc_timestamp(fc["made_t"]), lower=level(fc.get("lower")),
         upper=level(fc.get("upper")), coverage=_num(fc.get("coverage")), note=fc.get("note") or "",
@@ -346,7 +346,7 @@ VERIFY_LEADS = (6, 3, 1)
 VERIFY_SLACK_S = 3600
 
 
-def _verification(store: Any, sid: str, tides: list, shift: float) -> list[R.VerificationRow]:
+def _verification(store: Any, sid: str, tides: list, shift: float) -> list[report_model.VerificationRow]:
     """For each high water of the day: what was forecast 6, 3 and 1 h before (the last forecast
     issued at or before each, within an hour of it), against what came (the highest observed
     level of its tidal cycle)."""
@@ -355,7 +355,7 @@ def _verification(store: Any, sid: str, tides: list, shift: float) -> list[R.Ver
         return []
     first = int(highs[0].predicted_time.timestamp())
     last = int(highs[-1].predicted_time.timestamp())
-    log = SF.read_log(store.db, sid, first - max(VERIFY_LEADS) * 3600 - VERIFY_SLACK_S, last)
+    log = surge_forecast.read_log(store.db, sid, first - max(VERIFY_LEADS) * 3600 - VERIFY_SLACK_S, last)
     rows = []
     for w in highs:
         hw_t = int(w.predicted_time.timestamp())
@@ -369,15 +369,15 @@ def _verification(store: Any, sid: str, tides: list, shift: float) -> list[R.Ver
                 continue
             fc = near.loc[near["made_t"].idxmax()].to_dict()
             row = _forecast_row(fc, shift)
-            made.append(R.Verified(lead_h=lead, made_at=row.made_at, forecast=row.forecast, lower=row.lower,
+            made.append(report_model.Verified(lead_h=lead, made_at=row.made_at, forecast=row.forecast, lower=row.lower,
                                    upper=row.upper, method=row.method))
-        rows.append(R.VerificationRow(time=w.predicted_time, predicted=w.predicted_level,
+        rows.append(report_model.VerificationRow(time=w.predicted_time, predicted=w.predicted_level,
                                       observed=w.observed_level, observed_time=w.observed_time,
                                       forecasts=tuple(made)))
     return rows
 
 
-def _staff(store: Any, sid: str, end: pd.Timestamp, weeks: int, shift: float) -> R.StaffCheck | None:
+def _staff(store: Any, sid: str, end: pd.Timestamp, weeks: int, shift: float) -> report_model.StaffCheck | None:
     """The Van de Casteele check of the latest staff session in the recent weeks, if any."""
     db = store.db
     if not _table(db, "staff_readings"):
@@ -391,7 +391,7 @@ def _staff(store: Any, sid: str, end: pd.Timestamp, weeks: int, shift: float) ->
     readings = pd.Series([r[1] for r in rows], dtype=float,
                          index=pd.to_datetime(np.asarray([r[0] for r in rows], dtype=np.int64), unit="s", utc=True))
     gauge = _series(store, sid, "primary", t_start - 3600, t_end + 3600)
-    sessions = D.staff_sessions(readings, gauge)
+    sessions = diagnostics.staff_sessions(readings, gauge)
     if sessions.empty:
         return None
     sessions = sessions.dropna(subset=["offset_mm"])
@@ -403,10 +403,10 @@ def _staff(store: Any, sid: str, end: pd.Timestamp, weeks: int, shift: float) ->
     last_t = last_t.tz_localize("UTC") if last_t.tz is None else last_t.tz_convert("UTC")
     part = readings[(readings.index >= first_t) & (readings.index <= last_t)]
     near = gauge[(gauge.index >= first_t - pd.Timedelta(hours=1)) & (gauge.index <= last_t + pd.Timedelta(hours=1))]
-    points = D.van_de_casteele(part, near)["points"]
+    points = diagnostics.van_de_casteele(part, near)["points"]
     points = points.assign(staff=points["staff"].astype(float) - shift)
     history = pd.Series(sessions["offset_mm"].to_numpy(dtype=float), index=pd.DatetimeIndex(sessions.index))
-    return R.StaffCheck(
+    return report_model.StaffCheck(
         start=first_t, end=last_t, readings=int(last["n"]), sessions=len(sessions),
         offset_mm=_num(last["offset_mm"]), offset_se_mm=_num(last["offset_se_mm"]),
         scale_error=_num(last["scale_error"]), scale_se=_num(last["scale_se"]),
@@ -415,7 +415,7 @@ def _staff(store: Any, sid: str, end: pd.Timestamp, weeks: int, shift: float) ->
 
 
 def _tides(model: Any, usable: pd.Series, start: pd.Timestamp, end: pd.Timestamp,
-           shift: float) -> list[R.TideRow]:
+           shift: float) -> list[report_model.TideRow]:
     """Predicted high and low waters of the day against the usable observations [m, station datum]."""
     extremes = model.high_low(start - pd.Timedelta(hours=14), end + pd.Timedelta(hours=14))
     extremes = extremes.assign(time=pd.to_datetime(extremes["time"], utc=True))
@@ -424,7 +424,7 @@ def _tides(model: Any, usable: pd.Series, start: pd.Timestamp, end: pd.Timestamp
     lows = low_water_differences(usable, extremes) if len(usable) else pd.DataFrame(columns=["time"])
     lows = lows.set_index("time") if len(lows) else lows
     rows = []
-    ext = RS.tide_stands(extremes) if len(extremes) else extremes.assign(stand=0, principal=True)
+    ext = surge_residual.tide_stands(extremes) if len(extremes) else extremes.assign(stand=0, principal=True)
     size = ext.groupby("stand")["stand"].transform("size") if len(ext) else pd.Series(dtype=int)
     nth = ext.groupby("stand").cumcount() if len(ext) else pd.Series(dtype=int)
     for i, e in ext.iterrows():
@@ -437,25 +437,25 @@ def _tides(model: Any, usable: pd.Series, start: pd.Timestamp, end: pd.Timestamp
             stand = (f"double {'high' if e['kind'] == 'high' else 'low'} water, peak {nth[i] + 1} of {size[i]}"
                      + (", the stand's tide" if e["principal"] else ""))
         if not e["principal"]:
-            rows.append(R.TideRow(e["kind"], t, level, stand=stand))
+            rows.append(report_model.TideRow(e["kind"], t, level, stand=stand))
             continue
         if e["kind"] == "high":
             key = int(t.timestamp())
             near = [k for k in (highs.index if len(highs) else []) if abs(int(k) - key) <= 60]
             if near:
                 h = highs.loc[near[0]]
-                rows.append(R.TideRow("high", t, level, utc_timestamp(h["observed_t"]), float(h["observed_high"]) - shift,
+                rows.append(report_model.TideRow("high", t, level, utc_timestamp(h["observed_t"]), float(h["observed_high"]) - shift,
                                       float(h["skew_surge"]), stand=stand))
                 continue
-            rows.append(R.TideRow("high", t, level, partial=len(usable) > 0, stand=stand))
+            rows.append(report_model.TideRow("high", t, level, partial=len(usable) > 0, stand=stand))
         else:
             if len(lows) and t in lows.index:
                 w = lows.loc[t]
-                rows.append(R.TideRow("low", t, level, w["observed_time"], float(w["observed"]) - shift,
+                rows.append(report_model.TideRow("low", t, level, w["observed_time"], float(w["observed"]) - shift,
                                       partial=not _covered(usable, w["observed_time"]),
                                       low_departure=float(w["difference"]), stand=stand))
                 continue
-            rows.append(R.TideRow("low", t, level, partial=len(usable) > 0, stand=stand))
+            rows.append(report_model.TideRow("low", t, level, partial=len(usable) > 0, stand=stand))
     return rows
 
 
@@ -467,33 +467,33 @@ def _covered(usable: pd.Series, at: pd.Timestamp, hours: float = 6.0, gap_s: flo
     return float(np.diff(window.index.as_unit("ns").asi8).max()) / 1e9 <= gap_s
 
 
-def _rejects(db: Any, sid: str, t0: int, t1: int) -> tuple[list[R.RejectRow], int]:
+def _rejects(db: Any, sid: str, t0: int, t1: int) -> tuple[list[report_model.RejectRow], int]:
     if not _table(db, "rejects"):
         return [], 0
     n = db.conn.execute("SELECT count(*) FROM rejects WHERE station = ? AND at BETWEEN ? AND ? AND kind IS NULL",
                         (sid, t0, t1)).fetchone()[0]
     rows = db.conn.execute("SELECT feed, lineno, reason, text FROM rejects WHERE station = ? AND at BETWEEN ? AND ? "
                            "ORDER BY id LIMIT ?", (sid, t0, t1, REJECTS_SHOWN)).fetchall()
-    return [R.RejectRow(f or "-", lineno, reason or "", text or "") for f, lineno, reason, text in rows], int(n)
+    return [report_model.RejectRow(f or "-", lineno, reason or "", text or "") for f, lineno, reason, text in rows], int(n)
 
 
-def _qc(store: Any, sid: str, t0: int, t1: int) -> tuple[dict, list[R.QcEpisode]]:
+def _qc(store: Any, sid: str, t0: int, t1: int) -> tuple[dict, list[report_model.QcEpisode]]:
     db = store.db
     if not _table(db, "qc_tests"):
         return {}, []
     frame = pd.read_sql_query(
-        f"SELECT sensor, t, {', '.join(Q.TESTS)} FROM qc_tests WHERE station = ? AND t BETWEEN ? AND ? "
+        f"SELECT sensor, t, {', '.join(qc.TESTS)} FROM qc_tests WHERE station = ? AND t BETWEEN ? AND ? "
         "ORDER BY sensor, t", db.conn, params=(sid, t0, t1))
     primary = frame[frame["sensor"] == "primary"]
-    counts = qc_counts(primary[list(Q.TESTS)]) if len(primary) else {}
-    episodes: list[R.QcEpisode] = []
+    counts = qc_counts(primary[list(qc.TESTS)]) if len(primary) else {}
+    episodes: list[report_model.QcEpisode] = []
     for sensor, part in frame.groupby("sensor"):
         index = pd.to_datetime(part["t"].to_numpy(dtype=np.int64), unit="s", utc=True)
-        for test in Q.TESTS:
+        for test in qc.TESTS:
             flags = pd.Series(part[test].fillna(2).astype(int).to_numpy(), index=index)
             # Runs less than half an hour apart read as one episode to a technician.
-            for _, ep in Q.episodes(flags, join_gap=EPISODE_JOIN_S).iterrows():
-                episodes.append(R.QcEpisode(R.QC_TEST_NAMES.get(test, test), int(ep["worst"]), ep["start"],
+            for _, ep in qc.episodes(flags, join_gap=EPISODE_JOIN_S).iterrows():
+                episodes.append(report_model.QcEpisode(report_model.QC_TEST_NAMES.get(test, test), int(ep["worst"]), ep["start"],
                                             ep["end"], int(ep["samples"]), str(sensor)))
     episodes.sort(key=lambda e: (e.start, e.test))
     return counts, episodes
@@ -504,7 +504,7 @@ def _series(store: Any, sid: str, sensor: str, t0: int, t1: int) -> pd.Series:
     return read_level_series(store, sid, sensor, t0, t1)
 
 
-def _diagnostics(store: Any, station: Any, model: Any, end: pd.Timestamp, weeks: int) -> list[R.Diagnostic]:
+def _diagnostics(store: Any, station: Any, model: Any, end: pd.Timestamp, weeks: int) -> list[report_model.Diagnostic]:
     """Drift against the backup, clock offset and datum steps over the recent weeks.
 
     Each is computed week by week for the trend; the latest week gives the value shown.
@@ -515,7 +515,7 @@ def _diagnostics(store: Any, station: Any, model: Any, end: pd.Timestamp, weeks:
     t_end = int(end.timestamp())
     t_start = int((end - weeks * WEEK).timestamp())
     primary = _series(store, sid, "primary", t_start, t_end)
-    out: list[R.Diagnostic] = []
+    out: list[report_model.Diagnostic] = []
     if primary.empty:
         return out
     weeks_index = [end - k * WEEK for k in range(weeks, 0, -1)]
@@ -529,24 +529,24 @@ def _diagnostics(store: Any, station: Any, model: Any, end: pd.Timestamp, weeks:
                     a, b = week_end - WEEK, week_end
                     p = primary[(primary.index >= a) & (primary.index < b)]
                     if len(p) > 10:
-                        values[week_end] = D.sensor_drift(p, backup[(backup.index >= a) & (backup.index < b)])
-                latest = D.sensor_drift(primary[primary.index >= end - WEEK], backup[backup.index >= end - WEEK])
-                out.append(R.Diagnostic(
+                        values[week_end] = diagnostics.sensor_drift(p, backup[(backup.index >= a) & (backup.index < b)])
+                latest = diagnostics.sensor_drift(primary[primary.index >= end - WEEK], backup[backup.index >= end - WEEK])
+                out.append(report_model.Diagnostic(
                     "Primary minus backup: drift", "mm/day", _num(latest["drift_mm_per_day"]),
                     _half_width(latest), pd.Series({k: v["drift_mm_per_day"] for k, v in values.items()}, dtype=float),
                     "last 7 days, Theil-Sen slope of hourly medians"))
-                out.append(R.Diagnostic(
+                out.append(report_model.Diagnostic(
                     "Primary minus backup: offset", "mm", _num(latest["offset_mm"]), _num(latest["offset_se_mm"]),
                     pd.Series({k: v["offset_mm"] for k, v in values.items()}, dtype=float)))
         if "backup" in sensors and len(backup := _series(store, sid, "backup", t_start, t_end)):
             # Two sensors see the same sea: their relative clock is free of the surge.
-            rel = D.relative_clock(primary[primary.index >= end - WEEK], backup[backup.index >= end - WEEK])
+            rel = diagnostics.relative_clock(primary[primary.index >= end - WEEK], backup[backup.index >= end - WEEK])
             timing = rel["timing"]
             eps = rel["episodes"]
             worst = max(eps, key=lambda e: abs(e["lag_min"])) if eps else None
             history = (pd.Series(timing["lag_min"].to_numpy(dtype=float), index=pd.DatetimeIndex(timing["end"]))
                        .resample("7D").median() if len(timing) else pd.Series(dtype=float))
-            out.append(R.Diagnostic(
+            out.append(report_model.Diagnostic(
                 "Backup clock against the primary", "min",
                 _num(worst["lag_min"]) if worst else _num(rel["median_min"]), _num(rel["offset_se_min"]), history,
                 "last 7 days, positive: the backup is late; " + (", ".join(
@@ -554,18 +554,18 @@ def _diagnostics(store: Any, station: Any, model: Any, end: pd.Timestamp, weeks:
                     f"to {e['end'].tz_convert(station.tz):%d %b %H:%M}" for e in eps) if eps
                     else "no span off by more than 1.5 min")))
         if model is not None:
-            clock = D.clock_offset(primary, model)
+            clock = diagnostics.clock_offset(primary, model)
             # Each week fitted as a whole: a storm day cannot pull the week's figure.
-            history = D.clock_trend(primary, model, [end - k * WEEK for k in range(weeks - 1, -1, -1)])
-            out.append(R.Diagnostic("Clock offset against the predicted tide", "min", _num(clock["offset_min"]),
+            history = diagnostics.clock_trend(primary, model, [end - k * WEEK for k in range(weeks - 1, -1, -1)])
+            out.append(report_model.Diagnostic("Clock offset against the predicted tide", "min", _num(clock["offset_min"]),
                                     _num(clock["offset_se_min"]), history,
                                     f"{clock.get('days', 0)} days; positive: the record lags the tide"))
             week = primary[primary.index >= end - WEEK]
             if "backup" in sensors and len(backup):
                 # Primary minus backup first: sea and weather cancel, and the step is attributed.
                 wk_b = backup[backup.index >= end - WEEK]
-                steps = D.sensor_steps(week, wk_b, model)
-                out.append(R.Diagnostic(
+                steps = diagnostics.sensor_steps(week, wk_b, model)
+                out.append(report_model.Diagnostic(
                     "Datum steps, primary minus backup, last 7 days", "mm",
                     float(steps["step_mm"].iloc[-1]) if len(steps) else None,
                     float(steps["se_mm"].iloc[-1]) if len(steps) else None,
@@ -575,8 +575,8 @@ def _diagnostics(store: Any, station: Any, model: Any, end: pd.Timestamp, weeks:
                         if len(steps) else "")))
             else:
                 resid = pd.Series(week.to_numpy() - model.predict(week.index), index=week.index)
-                steps = D.datum_steps(resid)
-                out.append(R.Diagnostic(
+                steps = diagnostics.datum_steps(resid)
+                out.append(report_model.Diagnostic(
                     "Datum steps in the residual, last 7 days", "mm",
                     float(steps["step_mm"].iloc[-1]) if len(steps) else None,
                     float(steps["se_mm"].iloc[-1]) if len(steps) else None,
@@ -601,7 +601,7 @@ def _half_width(d: dict) -> float | None:
     return None if lo is None or hi is None else (hi - lo) / 2
 
 
-def _alerts(db: Any, station: Any, t0: int, t1: int, shift: float) -> list[R.AlertEpisodeRow]:
+def _alerts(db: Any, station: Any, t0: int, t1: int, shift: float) -> list[report_model.AlertEpisodeRow]:
     """The day's alert episodes; a level rule's peak moved from its own datum to the report's,
     a residual's kept with its sign."""
     sid = station.id
@@ -614,7 +614,7 @@ def _alerts(db: Any, station: Any, t0: int, t1: int, shift: float) -> list[R.Ale
     has_outbox = _table(db, "outbox")
     rows = []
     for ep in episodes:
-        deliveries: list[R.Delivery] = []
+        deliveries: list[report_model.Delivery] = []
         if has_outbox:
             prefix = f"{sid}/{ep['rule']}/episode-{ep['id']}/"
             groups: dict[str, list[dict]] = {}
@@ -624,7 +624,7 @@ def _alerts(db: Any, station: Any, t0: int, t1: int, shift: float) -> list[R.Ale
                 what = key[len(prefix):].replace("/", ": ", 1).replace("_", " ")
                 sent = [m["sent_at"] for m in msgs if m["sent_at"]]
                 errors = sorted({m["last_error"] for m in msgs if m["last_error"] and m["status"] != "sent"})
-                deliveries.append(R.Delivery(
+                deliveries.append(report_model.Delivery(
                     what=what, queued_at=utc_timestamp(min(m["created_at"] for m in msgs)),
                     sent_at=utc_timestamp(max(sent)) if len(sent) == len(msgs) else None,
                     attempts=max(int(m["attempts"] or 0) for m in msgs), error="; ".join(errors),
@@ -632,14 +632,14 @@ def _alerts(db: Any, station: Any, t0: int, t1: int, shift: float) -> list[R.Ale
         peak, watch = _num(ep.get("peak")), ep.get("watch") or ""
         if peak is not None and (watch.startswith("level") or watch == "next_high_water_above"):
             peak = peak + float(datums.get(ep.get("datum") or "station", 0.0)) - shift
-        rows.append(R.AlertEpisodeRow(
+        rows.append(report_model.AlertEpisodeRow(
             rule=ep["rule"], level=ep.get("top_step") or ep.get("step_now") or "", started=utc_timestamp(ep["opened_at"]),
             cleared=utc_timestamp(ep["closed_at"]), peak=peak, unit=ep.get("unit") or "m",
             deliveries=tuple(deliveries), signed=watch.startswith("residual")))
     return rows
 
 
-def _constants(store: Any, sid: str, model: Any, source: str, shift: float = 0.0) -> R.ConstantsInfo | None:
+def _constants(store: Any, sid: str, model: Any, source: str, shift: float = 0.0) -> report_model.ConstantsInfo | None:
     """The constants in use; their mean level (on the station datum in the model) on the report's datum."""
     if model is None:
         return None
@@ -647,10 +647,10 @@ def _constants(store: Any, sid: str, model: Any, source: str, shift: float = 0.0
     constituents = []
     for c in getattr(model, "constituents", ()) or ():
         get = c.get if isinstance(c, dict) else (lambda k, d=None, c=c: getattr(c, k, d))
-        constituents.append(R.ConstituentRow(str(get("name")), float(get("amplitude")), float(get("phase")),
+        constituents.append(report_model.ConstituentRow(str(get("name")), float(get("amplitude")), float(get("phase")),
                                              _num(get("amplitude_ci")), _num(get("snr"))))
     constituents.sort(key=lambda k: -k.amplitude)
-    return R.ConstantsInfo(
+    return report_model.ConstantsInfo(
         source=source or "constants file", mean=None if _num(getattr(model, "mean", None)) is None
         else float(model.mean) - shift, constituents=tuple(constituents),
         fitted_at=utc_timestamp(fit["fitted_at"]) if fit else None, record_start=utc_timestamp(fit["start"]) if fit else None,
@@ -669,8 +669,8 @@ def find_station(config: Any, station_id: str) -> Any:
     raise ConfigError(f"--station {station_id!r}: no such station in the configuration (known: {known})")
 
 
-def settings_of(config: Any) -> R.ReportSettings:
-    settings = getattr(config, "reports", None) or R.ReportSettings()
+def settings_of(config: Any) -> report_model.ReportSettings:
+    settings = getattr(config, "reports", None) or report_model.ReportSettings()
     folder = Path(settings.folder)
     if not folder.is_absolute():
         folder = Path(getattr(config, "base_dir", ".")) / folder
@@ -685,9 +685,9 @@ def write_station_day(config: Any, store: Any, station: Any, day: dt.date, *, se
     now = now or pd.Timestamp.now(tz="UTC")
     report = gather_day(store, station, day, settings, now=now, residual=getattr(config, "residual", None))
     try:
-        path = RR.write_day_report(report, settings.folder)
-        RR.prune_reports(settings.folder, settings.keep_days, day)
-        RR.write_index(settings.folder, now)
+        path = report_render.write_day_report(report, settings.folder)
+        report_render.prune_reports(settings.folder, settings.keep_days, day)
+        report_render.write_index(settings.folder, now)
     except OSError as exc:
         raise ConfigError(f"reports.folder {settings.folder}: cannot write the report ({exc})") from None
     queued = 0
@@ -698,7 +698,7 @@ def write_station_day(config: Any, store: Any, station: Any, day: dt.date, *, se
     return path
 
 
-def queue_email(store: Any, report: R.DayReport, recipients: Iterable[str], path: Path | None = None,
+def queue_email(store: Any, report: report_model.DayReport, recipients: Iterable[str], path: Path | None = None,
                 now: pd.Timestamp | None = None) -> list[int]:
     """Queue the report to ``recipients`` through the outbox, once per station and day.
 
@@ -706,7 +706,7 @@ def queue_email(store: Any, report: R.DayReport, recipients: Iterable[str], path
     (multipart/related, RFC 2387), which mail clients show in place, unlike data: URIs;
     the text part is the summary. ``path`` (the written page) is not needed any more.
     """
-    mail = RR.render_day_email(report)
+    mail = report_render.render_day_email(report)
     return enqueue(store.db, list(recipients), mail.subject, mail.text, mail.html, kind="report",
                    key=f"report/{report.station_id}/{report.day.isoformat()}", attachments=mail.attachments(),
                    now=int((now or pd.Timestamp.now(tz="UTC")).timestamp()))
