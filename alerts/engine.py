@@ -17,13 +17,14 @@ from __future__ import annotations
 import json
 import logging
 import math
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
+from datetime import datetime, timezone
 from typing import Any, Iterable
 
 import numpy as np
 import pandas as pd
 
-from alerts.mail.message import compose_alert
+from alerts.mail.forms import compose, form_for
 from alerts.mail.outbox import enqueue, ensure_outbox_schema, unix_seconds
 from alerts.rules import Event, Rule, RuleState, SAMPLE_KINDS, StationView, advance, with_watermark
 from alerts.transactions import transaction
@@ -302,6 +303,11 @@ def _context_value(rule: Rule, context: AlertContext) -> float | None:
 
 # --------------------------------------------------------------------------- engine
 
+def iso_utc(t: float) -> str:
+    """Unix seconds as ISO 8601 UTC, ``2025-10-23T12:00:00Z`` (for log lines)."""
+    return datetime.fromtimestamp(float(t), tz=timezone.utc).strftime("%Y-%m-%dT%H:%M:%SZ")
+
+
 def _kind_of(event: Event) -> str:
     return {"opened": "alert", "escalated": "alert", "changed": "alert", "held": "alert",
             "cleared": "all_clear"}[event.kind]
@@ -333,16 +339,21 @@ def _on_event(db, station: StationView, rule: Rule, event: Event, episode_id: in
     recipients = rule.recipients_up_to(event.level)
     ids: list[int] = []
     if event.kind != "cleared" or rule.all_clear:
-        subject, text, html = compose_alert(station, rule, event, facts)
         key = f"{station.id}/{rule.id}/episode-{episode_id}/{event.kind}/{step.name}"
         if key_suffix:
             key += f"/{key_suffix}"
-        ids = enqueue(db, recipients, subject, text, html, _kind_of(event), key, event_time=event.t,
-                      clock=clock)
+        by_form: dict[str, list[str]] = {}
+        for rcpt in recipients:
+            by_form.setdefault(form_for(rcpt, station.forms), []).append(rcpt)
+        for form, group in by_form.items():
+            subject, text, html = compose(form, station, rule, event, facts)
+            ids += enqueue(db, group, subject, text, html, _kind_of(event), key, event_time=event.t,
+                           clock=clock)
         db.conn.execute("UPDATE alert_episodes SET messages = messages + ? WHERE id = ?",
                         (len(ids), episode_id))
-    log.info("station %s rule %s: %s %s at %d (value %.3f), %d messages queued",
-             station.id, rule.id, event.kind, step.name, event.t, event.value, len(ids))
+    log.info("station %s rule %s: %s %s at %s (value %s), %d messages queued",
+             station.id, rule.id, event.kind, step.name, iso_utc(event.t),
+             f"{event.value:.3f} {rule.unit}".strip(), len(ids))
     return episode_id, {"station": station.id, "rule": rule.id, "event": event.kind,
                         "step": step.name, "t": event.t, "value": event.value,
                         "episode": episode_id, "outbox": ids}
@@ -396,6 +407,13 @@ def _idle(state: RuleState) -> bool:
     return state.level < 0 and not any(x is not None for x in state.above_since)
 
 
+def station_marks(rules: Iterable[Rule]) -> tuple[tuple[str, float], ...]:
+    """The port's own marks from its ``level_above`` rules: (step name, level [m, station
+    datum]) for each step, low to high (the brief email form tells levels against them)."""
+    marks = {s.name: s.at + r.datum_offset for r in rules if r.watch == "level_above" for s in r.steps}
+    return tuple(sorted(marks.items(), key=lambda kv: kv[1]))
+
+
 def evaluate(db, station: StationView, rules: Iterable[Rule], samples: pd.DataFrame | None,
              now: Any = None, context: AlertContext | None = None, clock=None) -> list[dict]:
     """Advance every rule of a station and queue the messages its events call for.
@@ -426,6 +444,9 @@ def evaluate(db, station: StationView, rules: Iterable[Rule], samples: pd.DataFr
         episode id, outbox ids queued.
     """
     ensure_alert_schema(db)
+    rules = list(rules)
+    if not station.marks:
+        station = replace(station, marks=station_marks(rules))
     t_now = unix_seconds(now)
     context = context or AlertContext()
     if samples is None:

@@ -9,7 +9,7 @@ takes the state and one value and returns the new state and the events to announ
 Configuration keys (a list of tables under a station, ``[[stations.rules]]``)::
 
     id       = "surge"            # unique per station; episodes are keyed by station + id
-    watch    = "residual_above"   # residual_above | residual_below | level_above |
+    when     = "residual_above"   # residual_above | residual_below | level_above |
                                   # level_below | next_high_water_above | feed_silent |
                                   # equipment_fault
     datum    = "chart"            # level_* and next_high_water_above: a named datum
@@ -23,6 +23,7 @@ Configuration keys (a list of tables under a station, ``[[stations.rules]]``)::
     use_suspect = true            # count QARTOD-suspect samples (3); fail (4) and missing (9)
                                   # never count
     note     = "free text shown in the message"
+    action   = "Keep off the quay wall."   # one line: what readers of the brief form should do
     clear_horizon = "12h"         # level_above: no all-clear while the forecast range of a
                                   # high water within this time reaches the lowest step
     [[stations.rules.steps]]
@@ -34,6 +35,7 @@ from __future__ import annotations
 
 import math
 import re
+import warnings
 from dataclasses import dataclass, field, replace
 from typing import Any
 
@@ -60,6 +62,9 @@ DEFAULT_LOW_STEP_NAMES = ("low", "very low", "extreme low")
 # name containing one is refused so that an email can never be mistaken for an official one.
 RESERVED_WORDS = ("watch", "warning", "advisory", "alert", "severe", "emergency",
                   "red", "amber", "orange", "yellow")
+
+#: The former name of a rule's ``when`` key (still read, with a deprecation notice).
+OLD_KIND_KEY = "watch"
 
 _STATION_DATUM_NAMES = ("station", "station_datum", "sd")
 
@@ -93,6 +98,13 @@ class StationView:
         ``"station"``.
     datum_note : str
         Said under the levels when they are not on chart datum for want of its offset.
+    marks : tuple of (str, float)
+        The port's own marks, (name, level [m, station datum]): the steps of the station's
+        ``level_above`` rules (``alerts.engine.evaluate`` fills them in when empty). The brief
+        email form tells the level now against them.
+    forms : tuple of (str, str)
+        (address, form name) pairs: the form of alert email each address gets
+        (``[mail.forms]``, see :mod:`alerts.mail.forms`); others get ``full``.
     """
 
     id: str
@@ -103,6 +115,8 @@ class StationView:
     url: str = ""
     display_datum: str = ""
     datum_note: str = ""
+    marks: tuple = ()
+    forms: tuple = ()
 
     @property
     def display(self) -> str:
@@ -149,6 +163,7 @@ class Rule:
     use_suspect: bool = True
     fault_kinds: tuple[str, ...] = ()
     note: str = ""
+    action: str = ""            # one line the operator writes: what readers of the brief form should do
     clear_horizon: float = 0.0  # [s] level_above: the all-clear waits on high waters within this time
 
     @property
@@ -200,8 +215,8 @@ def _default_steps(watch: str) -> list[dict]:
     return []
 
 
-_RULE_KEYS = frozenset({"id", "watch", "datum", "series", "hold", "settle", "band", "notify", "all_clear",
-                        "use_suspect", "faults", "note", "steps", "clear_horizon"})
+_RULE_KEYS = frozenset({"id", "when", "datum", "series", "hold", "settle", "band", "notify", "all_clear",
+                        "use_suspect", "faults", "note", "action", "steps", "clear_horizon"})
 
 
 def _one_rule(raw: Any, kp: str, datums: dict[str, float], errors: list[str]) -> Rule | None:
@@ -211,12 +226,11 @@ def _one_rule(raw: Any, kp: str, datums: dict[str, float], errors: list[str]) ->
         return None
     n_before = len(errors)
     for key in raw:
-        if key not in _RULE_KEYS:
+        if key not in _RULE_KEYS and key != OLD_KIND_KEY:
             errors.append(f"{kp}.{key}: unknown key (known: {', '.join(sorted(_RULE_KEYS))})")
     rid = _rule_id(raw, kp, errors)
-    watch = raw.get("watch")
-    if not isinstance(watch, str) or watch not in KINDS:
-        errors.append(f"{kp}.watch: one of {', '.join(KINDS)} (got {watch!r})")
+    watch = _rule_kind(raw, kp, errors)
+    if watch is None:
         return None
     datum, offset = _rule_datum(raw, kp, watch, datums, errors)
     series = raw.get("series", "residual")
@@ -224,6 +238,7 @@ def _one_rule(raw: Any, kp: str, datums: dict[str, float], errors: list[str]) ->
         errors.append(f"{kp}.series: 'residual' or 'smoothed' (got {series!r})")
     hold, settle, clear_horizon, band = _rule_timing(raw, kp, watch, errors)
     notify, flags, faults, note = _rule_extras(raw, kp, watch, errors)
+    action = _rule_action(raw, kp, errors)
     steps = _rule_steps(raw, kp, watch, errors)
     if steps and not notify and not any(s.notify for s in steps):
         errors.append(f"{kp}.notify: nobody to tell; give notify on the rule or on a step")
@@ -232,7 +247,43 @@ def _one_rule(raw: Any, kp: str, datums: dict[str, float], errors: list[str]) ->
     return Rule(id=rid, watch=watch, steps=tuple(steps), datum=datum, datum_offset=offset,
                 series=series, hold=hold, settle=settle, band=float(band), notify=notify,
                 all_clear=flags["all_clear"], use_suspect=flags["use_suspect"],
-                fault_kinds=tuple(faults), note=note, clear_horizon=clear_horizon)
+                fault_kinds=tuple(faults), note=note, action=action, clear_horizon=clear_horizon)
+
+
+def _rule_kind(raw: dict, kp: str, errors: list[str]) -> str | None:
+    """The rule's kind from ``when``; the former key ``watch`` (a word official warning
+    services use) is still read, with a deprecation notice naming the new key."""
+    if OLD_KIND_KEY in raw:
+        if "when" in raw:
+            errors.append(f"{kp}.{OLD_KIND_KEY}: renamed to 'when'; give only when")
+            return None
+        old = raw[OLD_KIND_KEY]
+        example = f" (write when = \"{old}\")" if isinstance(old, str) and old in KINDS else ""
+        deprecated(f"{kp}.{OLD_KIND_KEY}: renamed to 'when'{example}; "
+                   f"the old key is read for now and will be refused in a later version")
+        kind = raw[OLD_KIND_KEY]
+    else:
+        kind = raw.get("when")
+    if not isinstance(kind, str) or kind not in KINDS:
+        errors.append(f"{kp}.when: one of {', '.join(KINDS)} (got {kind!r})")
+        return None
+    return kind
+
+
+def _rule_action(raw: dict, kp: str, errors: list[str]) -> str:
+    """The one line the operator writes for the brief email form (``""`` when not given)."""
+    action = raw.get("action", "")
+    if not isinstance(action, str) or len(action) > 300 or re.search(r"[\x00-\x1f\x7f]", action):
+        errors.append(f"{kp}.action: one line of text (at most 300 characters) saying what readers "
+                      f"should do, got {action!r}")
+        return ""
+    return action.strip()
+
+
+def deprecated(message: str) -> None:
+    """Say that a configuration key is deprecated, as a ``DeprecationWarning`` (the
+    configuration loader turns it into a warning on the log, shown by the command line)."""
+    warnings.warn(message, DeprecationWarning, stacklevel=3)
 
 
 def _rule_id(raw: dict, kp: str, errors: list[str]) -> str | None:

@@ -146,7 +146,7 @@ feed = {{ kind = "file", path = "obs.csv" }}
 
 [[stations.rules]]
 id = "surge"
-watch = "residual_above"
+when = "residual_above"
 hold = 0
 settle = 0
 band = 0.02

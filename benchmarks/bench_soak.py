@@ -102,14 +102,14 @@ feed = {{ kind = "file", path = "feeds/s{k:03d}.csv" }}
 gap_limit = "{2 * STEP}s"
 [[stations.rules]]
 id = "surge"
-watch = "residual_above"
+when = "residual_above"
 hold = "{2 * STEP}s"
 band = 0.1
 notify = ["duty@soak.example"]
 steps = [{{ name = "raised", at = 0.4 }}]
 [[stations.rules]]
 id = "quay"
-watch = "level_above"
+when = "level_above"
 datum = "chart"
 hold = "{2 * STEP}s"
 band = 0.1

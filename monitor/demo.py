@@ -265,26 +265,51 @@ def write_config(template: Path, out_dir: Path, smtp_port: int, feeds: dict[str,
     return path
 
 
-def run_daemon(config: Path, log: Path, timeout: float) -> None:
-    """Run ``quaywatch run CONFIG`` until its replay feeds are exhausted."""
-    args = ["run", str(config), "--until-exhausted"]
-    if not _has_verb("run"):
-        # The command line's run verb not installed yet: the same entry point, directly.
-        args = None
+def run_daemon(config: Path, log: Path, timeout: float, progress=None, every: float = 5.0) -> None:
+    """Run ``quaywatch run CONFIG`` until its replay feeds are exhausted; ``progress()`` is
+    called every ``every`` seconds while it runs (a line on how far the replay has got)."""
+    cmd = [sys.executable, "-m", "monitor", "run", str(config), "--until-exhausted"]
+    env = dict(os.environ, PYTHONPATH=str(ROOT) + os.pathsep + os.environ.get("PYTHONPATH", ""))
+    deadline = time.monotonic() + timeout
+    with open(log, "a") as fh:
+        fh.write(f"\n$ quaywatch run {config} --until-exhausted\n")
+        fh.flush()
+        proc = subprocess.Popen(cmd, stdout=fh, stderr=subprocess.STDOUT, cwd=config.parent, env=env)
+        while True:
+            try:
+                code = proc.wait(timeout=max(0.1, min(every, deadline - time.monotonic())))
+                break
+            except subprocess.TimeoutExpired:
+                if time.monotonic() >= deadline:
+                    proc.kill()
+                    proc.wait()
+                    raise DemoError(f"the daemon did not finish within {timeout:.0f} s; see {log}") from None
+                if progress is not None:
+                    progress()
+    if code != 0:
+        raise DemoError(f"the daemon exited with {code}; see {log}")
+
+
+def replay_progress(store: Path, station: str, start: dt.datetime, end: dt.datetime, tz: str,
+                    emails: int) -> str | None:
+    """``replayed to Thu 23 Oct 14:00 IST, 45 % of the span; 3 emails so far``, from the
+    store's latest primary sample (read-only), or None while there is none."""
     try:
-        if args is None:
-            code = ("import sys; from monitor.service.config import load_config; from monitor.service.daemon import run_daemon; "
-                    "sys.exit(run_daemon(load_config(sys.argv[1]), until_exhausted=True))")
-            with open(log, "a") as fh:
-                res = subprocess.run([sys.executable, "-c", code, str(config)], stdout=fh,
-                                     stderr=subprocess.STDOUT, timeout=timeout, cwd=config.parent,
-                                     env=dict(os.environ, PYTHONPATH=str(ROOT)))
-        else:
-            res = quaywatch(args, log=log, timeout=timeout, cwd=config.parent)
-    except subprocess.TimeoutExpired:
-        raise DemoError(f"the daemon did not finish within {timeout:.0f} s; see {log}") from None
-    if res.returncode != 0:
-        raise DemoError(f"the daemon exited with {res.returncode}; see {log}")
+        con = sqlite3.connect(f"file:{store}?mode=ro", uri=True, timeout=1.0)
+        try:
+            row = con.execute("SELECT MAX(t) FROM observations WHERE station = ? AND sensor = 'primary' "
+                              "AND t >= ?", (station, int(start.timestamp()))).fetchone()
+        finally:
+            con.close()
+    except sqlite3.Error:
+        return None
+    if not row or row[0] is None:
+        return None
+    t = int(row[0])
+    share = (t - start.timestamp()) / max(1.0, (end - start).total_seconds())
+    when = dt.datetime.fromtimestamp(t, dt.timezone.utc).astimezone(ZoneInfo(tz)).strftime("%a %d %b %H:%M %Z")
+    return (f"replayed to {when}, {100 * min(1.0, max(0.0, share)):.0f} % of the span; "
+            f"{emails} email{'s' if emails != 1 else ''} so far")
 
 
 def local_days(start: dt.datetime, end: dt.datetime, tz: str) -> list[dt.date]:
@@ -605,7 +630,15 @@ def run_demo(out: Path = DEFAULT_OUT, short: bool = False, speedup: float | None
     try:
         write_config(DEMO / "config.toml", out, port_no, feeds, constants, speedup, not short)
         step(f"Running the daemon (quaywatch run) on the replay feeds; mail to 127.0.0.1:{port_no} ...")
-        run_daemon(config, out / "daemon.log", timeout)
+        last = [None]
+
+        def progress() -> None:
+            line = replay_progress(out / "quaywatch.db", station, start, end, tz, len(catcher.caught))
+            if line and line != last[0]:
+                last[0] = line
+                step("  " + line)
+
+        run_daemon(config, out / "daemon.log", timeout, progress)
         time.sleep(0.5)  # the last SMTP transaction may still be closing
     finally:
         catcher.stop()

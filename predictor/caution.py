@@ -26,10 +26,11 @@ PREDICTION = ("Automated, unofficial prediction of the astronomical tide only (n
 ANALYSIS = ("Automated, unofficial analysis. Official tide tables, official warnings and the local "
             "emergency authorities come first; defer to local codes and licensed practice.")
 
-#: Every alert and test email.
-MESSAGE = ("This message is automated and unofficial. It comes from a station monitor and is not "
-           "an official warning. Official warnings and your local emergency authorities come "
-           "first: follow their instructions. Defer to local codes and licensed practice.")
+#: Every alert and test email, in full; it opens with :data:`CAUTION`, the one line every email
+#: form (and every report page) shows at its top, so a reader sees that line first and the rest
+#: below it.
+MESSAGE = (f"{CAUTION} This message comes from a station monitor and is not an official warning: "
+           "follow the instructions of official warnings and your local emergency authorities.")
 
 #: Every daily report (page and email).
 REPORT = ("This report is automated and unofficial. Official warnings and the local emergency "

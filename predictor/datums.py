@@ -12,8 +12,8 @@ high waters remain possible, which can move MHHW or MLLW by up to about 1 cm for
 strongly mixed tide (the handbook ties the tidal day to the Moon's transit at the
 station, whose longitude a model does not carry).
 Mean sea level (MSL) is the mean of the (here 15-minute) heights; mean tide level
-MTL = (MHW + MLW) / 2; MN = MHW - MLW is the mean range and GT = MHHW - MLLW the
-great diurnal range.  HAT and LAT are the highest and lowest predicted levels
+MTL = (MHW + MLW) / 2; the mean range (key ``MN``) is MHW minus MLW and the diurnal
+range (key ``GT``) MHHW minus MLLW.  HAT and LAT are the highest and lowest predicted levels
 over the whole period (IHO definition: highest/lowest astronomical tide).
 
 The datums describe the astronomical tide: any trend in the model is left out, so
@@ -51,8 +51,8 @@ DATUM_DESCRIPTIONS = {
     "MLW": "mean low water",
     "MLLW": "mean lower low water",
     "LAT": "lowest astronomical tide",
-    "MN": "mean range (MHW - MLW)",
-    "GT": "great diurnal range (MHHW - MLLW)",
+    "MN": "mean range: mean high water minus mean low water (MHW minus MLW)",
+    "GT": "diurnal range: mean higher high water minus mean lower low water (MHHW minus MLLW)",
 }
 
 

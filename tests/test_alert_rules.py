@@ -12,7 +12,7 @@ DATUMS = {"chart": -2.10 * m}  # invented port: chart datum 2.10 m below station
 
 SURGE = {
     "id": "surge",
-    "watch": "residual_above",
+    "when": "residual_above",
     "hold": "10min",
     "band": 0.05,
     "notify": ["duty@port.example"],
@@ -46,7 +46,7 @@ def test_settle_defaults_to_hold():
 
 
 def test_level_rule_takes_datum_offset_from_station():
-    raw = {"id": "quay", "watch": "level_above", "datum": "chart", "notify": ["a@port.example"],
+    raw = {"id": "quay", "when": "level_above", "datum": "chart", "notify": ["a@port.example"],
            "steps": [{"name": "over the quay", "at": 5.2}]}
     rules, errors = parse([raw])
     assert errors == []
@@ -54,14 +54,14 @@ def test_level_rule_takes_datum_offset_from_station():
 
 
 def test_below_rule_sorts_steps_downwards():
-    raw = {"id": "keel", "watch": "level_below", "datum": "chart", "notify": ["a@port.example"],
+    raw = {"id": "keel", "when": "level_below", "datum": "chart", "notify": ["a@port.example"],
            "steps": [{"name": "low", "at": 0.5}, {"name": "very low", "at": 0.2}]}
     rules, _ = parse([raw])
     assert [s.name for s in rules[0].steps] == ["low", "very low"]
 
 
 def test_unknown_datum_names_the_key_and_the_choices():
-    raw = dict(SURGE, id="q", watch="level_above", datum="lat")
+    raw = dict(SURGE, id="q", when="level_above", datum="lat")
     _, errors = parse([raw])
     assert any(e.startswith("stations[0].rules[0].datum:") and "chart" in e for e in errors)
 
@@ -79,7 +79,7 @@ def test_official_warning_vocabulary_is_refused_as_a_step_name():
 
 
 def test_default_step_names_avoid_official_vocabulary():
-    raw = {"id": "s", "watch": "residual_above", "notify": ["a@port.example"],
+    raw = {"id": "s", "when": "residual_above", "notify": ["a@port.example"],
            "steps": [{"at": 0.3}, {"at": 0.6}, {"at": 0.9}]}
     rules, errors = parse([raw])
     assert errors == []
@@ -104,7 +104,7 @@ def test_bad_address_is_an_error():
 
 
 def test_feed_silent_defaults_to_one_step_of_thirty_minutes():
-    rules, errors = parse([{"id": "quiet", "watch": "feed_silent", "notify": ["tech@port.example"]}])
+    rules, errors = parse([{"id": "quiet", "when": "feed_silent", "notify": ["tech@port.example"]}])
     assert errors == []
     assert rules[0].steps[0].at == 30 * minute
     assert rules[0].hold == 0
@@ -115,9 +115,10 @@ def test_parse_duration(text, seconds):
     assert parse_duration(text) == seconds
 
 
+@pytest.mark.filterwarnings("ignore:.*renamed to 'when':DeprecationWarning")  # the old key, read on purpose
 @settings(max_examples=150, deadline=None)
 @given(st.lists(st.dictionaries(
-    st.sampled_from(["id", "watch", "datum", "hold", "band", "notify", "steps", "series", "x"]),
+    st.sampled_from(["id", "when", "watch", "datum", "hold", "band", "notify", "steps", "series", "x"]),
     st.one_of(st.none(), st.booleans(), st.integers(-5, 5), st.floats(allow_nan=True),
               st.text(max_size=8), st.lists(st.text(max_size=5), max_size=2),
               st.sampled_from(["residual_above", "level_below", "feed_silent", "10min", "chart"]),

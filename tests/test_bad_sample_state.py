@@ -40,7 +40,7 @@ STATION = StationView(id="testport", name="Test Port (invented)", tz="UTC", datu
 
 
 def _rules(**over):
-    raw = {"id": "surge", "watch": "residual_above", "hold": "10min", "band": 0.05,
+    raw = {"id": "surge", "when": "residual_above", "hold": "10min", "band": 0.05,
            "notify": ["duty@testport.example"], "steps": [{"name": "raised", "at": 0.30}], **over}
     out, errors = rules_from_config([raw], "stations[0].rules", STATION.datums)
     assert errors == []
@@ -128,7 +128,7 @@ feed = {{ kind = "file", path = "{tmp / 'gauge.csv'}" }}
 HIGH_WATERS = """
 [[stations.rules]]
 id = "quay"
-watch = "level_above"
+when = "level_above"
 datum = "chart"
 hold = "10min"
 band = 0.10
@@ -139,7 +139,7 @@ steps = [{ name = "quay wet", at = 2.8 }]
 SILENCE = """
 [[stations.rules]]
 id = "silent"
-watch = "feed_silent"
+when = "feed_silent"
 band = "1min"
 notify = ["tech@testport.example"]
 steps = [{ name = "quiet", at = "30min" }]

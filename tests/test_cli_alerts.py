@@ -38,7 +38,7 @@ feed = {{ kind = "file", path = "primary.csv" }}
 
 [[stations.rules]]
 id = "surge"
-watch = "residual_above"
+when = "residual_above"
 hold = "10min"
 notify = ["duty@port.example"]
 steps = [{{ name = "raised", at = 0.3 }}]
@@ -88,7 +88,7 @@ def test_listing_before_the_store_exists_is_a_clear_error(config, capsys):
 
 def test_episodes_are_listed_in_local_time_with_the_zone(config, capsys):
     db = sqlite_utils.Database(config.parent / "store.sqlite")
-    rules, _ = rules_from_config([{"id": "surge", "watch": "residual_above", "hold": 0,
+    rules, _ = rules_from_config([{"id": "surge", "when": "residual_above", "hold": 0,
                                    "notify": ["duty@port.example"], "steps": [{"name": "raised", "at": 0.3}]}],
                                  "rules", {})
     idx = pd.date_range("2025-10-23 12:00", periods=30, freq="1min", tz="UTC")
@@ -107,9 +107,9 @@ def test_episodes_are_listed_in_local_time_with_the_zone(config, capsys):
 def test_episode_peaks_are_levels_on_the_display_datum_and_residuals_with_their_sign(config, capsys):
     db = sqlite_utils.Database(config.parent / "store.sqlite")
     rules, _ = rules_from_config([
-        {"id": "surge", "watch": "residual_above", "hold": 0, "notify": ["duty@port.example"],
+        {"id": "surge", "when": "residual_above", "hold": 0, "notify": ["duty@port.example"],
          "steps": [{"name": "raised", "at": 0.3}]},
-        {"id": "level", "watch": "level_above", "hold": 0, "notify": ["duty@port.example"],   # on the station datum
+        {"id": "level", "when": "level_above", "hold": 0, "notify": ["duty@port.example"],   # on the station datum
          "steps": [{"name": "wet", "at": 3.4}]}], "rules", {"chart": 1.0})
     idx = pd.date_range("2025-10-23 12:00", periods=30, freq="1min", tz="UTC")
     r = np.r_[[0.5] * 10, [0.0] * 20]

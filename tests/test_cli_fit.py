@@ -3,6 +3,7 @@ from __future__ import annotations
 
 import argparse
 import json
+import re
 
 import numpy as np
 import pandas as pd
@@ -151,12 +152,58 @@ def test_json_output_shape_and_values(tmp_path, capsys):
     assert out["caution"] == CAUTION
 
 
-def test_table_output_has_units_and_the_caution(tmp_path, capsys):
+def _noisy_csv(path, days=30, noise=0.05, seed=3):
+    """The invented port with white noise [m] added (fixed seed)."""
+    times = pd.date_range("2031-03-01", periods=days * 24, freq="1h", tz="UTC")
+    levels = PORT.predict(times) + np.random.default_rng(seed).normal(0.0, noise, len(times))
+    lines = ["time,level"] + [f"{t:%Y-%m-%dT%H:%M:%SZ},{v:.4f}" for t, v in zip(times, levels)]
+    path.write_text("\n".join(lines) + "\n")
+    return path
+
+
+def test_printout_has_units_and_the_caution(tmp_path, capsys):
     obs = write_csv(tmp_path / "obs.csv", days=30)
     assert run(["fit", str(obs)]) == 0
     text = capsys.readouterr().out
-    assert "amplitude[m]" in text and "phase[deg]" in text
+    assert "Amplitudes in metres and phases in degrees" in text and "Greenwich" in text
     assert "unofficial" in text
+
+
+def test_printout_groups_constituents_by_band(tmp_path, capsys):
+    assert run(["fit", str(_noisy_csv(tmp_path / "obs.csv"))]) == 0
+    text = capsys.readouterr().out
+    semi, diur = text.index("Twice a day (semidiurnal)"), text.index("Once a day (diurnal)")
+    m2 = text.index("\n  M2 ")
+    k1 = text.index("\n  K1 ")
+    assert semi < m2 < diur < k1
+
+
+def test_printout_shows_amplitude_and_phase_each_with_its_interval(tmp_path, capsys):
+    assert run(["fit", str(_noisy_csv(tmp_path / "obs.csv"))]) == 0
+    line = next(ln for ln in capsys.readouterr().out.splitlines() if ln.startswith("  M2 "))
+    amp, phase = re.search(r"(\d+\.\d{3}) \u00b1 +(\d+\.\d{3}) m +(\d+\.\d) \u00b1 +(\d+\.\d)\u00b0",
+                           line).group(1, 3)
+    assert float(amp) == pytest.approx(1.10, abs=10 * mm)     # the invented port's M2
+    assert float(phase) == pytest.approx(95.0, abs=2.0)
+
+
+def test_printout_judges_in_plain_words(tmp_path, capsys):
+    # 5 cm white noise: M2 (1.1 m) stands clear of it; a constituent the port does not have
+    # (M4, zero amplitude) cannot be told from the noise
+    assert run(["fit", str(_noisy_csv(tmp_path / "obs.csv"))]) == 0
+    lines = capsys.readouterr().out.splitlines()
+    assert next(ln for ln in lines if ln.startswith("  M2 ")).endswith("resolved")
+    assert next(ln for ln in lines if ln.startswith("  M4 ")).endswith("too weak to tell from noise")
+    assert not any("SNR" in ln for ln in lines)
+
+
+def test_printout_ends_with_the_record_summary_and_the_caution(tmp_path, capsys):
+    assert run(["fit", str(_noisy_csv(tmp_path / "obs.csv"))]) == 0
+    text = capsys.readouterr().out
+    summary = text.index("The record and the fit")
+    assert summary > text.rindex("\n  M2 ") and summary > text.index("Once a day")
+    assert "30.0 days, 720 samples" in text[summary:]
+    assert text.rstrip().endswith(CAUTION)
 
 
 def test_constants_file_loads_back(tmp_path, capsys):
@@ -242,8 +289,8 @@ def test_fit_table_says_what_was_inferred_from_what(tmp_path, capsys):
     obs = write_csv(tmp_path / "obs.csv", days=20)
     assert run(["fit", str(obs)]) == 0
     text = capsys.readouterr().out
-    assert "inferred, not fitted" in text
-    for line in ("P1 from K1", "K2 from S2", "N2 from M2", "Q1 from O1"):
+    assert "Inferred, not fitted" in text
+    for line in ("P1 = K1", "K2 = S2", "N2 = M2", "Q1 = O1"):
         assert line in text
 
 
@@ -272,3 +319,39 @@ def test_an_unknown_zone_is_refused_by_the_reader(tmp_path):
     p.write_text("time,level\n2024-10-27T00:30,1.0\n")
     with pytest.raises(FeedError, match="unknown time zone"):
         read_level_csv(p, tz="Mars/Olympus")
+
+
+# ----------------------------------------------------------------- plausible units
+
+def _scaled(path, factor, offset=0.0):
+    """The invented port's CSV with every level multiplied (metres -> another unit)."""
+    lines = path.read_text().splitlines()
+    out = [lines[0]] + [f"{t},{(float(v) + offset) * factor:.2f}" for t, v in (ln.split(",") for ln in lines[1:])]
+    path.write_text("\n".join(out) + "\n")
+    return path
+
+
+def test_levels_in_centimetres_are_refused_naming_the_unit(tmp_path, capsys):
+    obs = _scaled(write_csv(tmp_path / "obs.csv", days=30), 100.0)   # about 0.4 to 4.5 m -> 40 to 450
+    assert run(["fit", str(obs)]) == 2
+    err = capsys.readouterr().err
+    assert "obs.csv" in err and "look like centimetres" in err and "Traceback" not in err
+
+
+def test_levels_in_millimetres_are_refused_naming_the_unit(tmp_path, capsys):
+    obs = _scaled(write_csv(tmp_path / "obs.csv", days=30), 1000.0)
+    assert run(["fit", str(obs), "--json"]) == 2
+    assert "look like millimetres" in capsys.readouterr().err
+
+
+def test_small_range_in_centimetres_is_caught_by_its_mean(tmp_path, capsys):
+    # a microtidal port in centimetres: range small enough to pass as metres, mean not
+    obs = _scaled(write_csv(tmp_path / "obs.csv", days=30), 5.0, offset=30.0)  # mean about 160, range about 20
+    assert run(["fit", str(obs)]) == 2
+    assert "look like centimetres" in capsys.readouterr().err
+
+
+def test_a_big_tide_in_metres_passes(tmp_path, capsys):
+    # a macrotidal range (3 x the invented port, about 9 m spring range) stays a tide in metres
+    obs = _scaled(write_csv(tmp_path / "obs.csv", days=30), 3.0)
+    assert run(["fit", str(obs), "--json"]) == 0

@@ -75,6 +75,38 @@ def test_check_lists_every_problem(tmp_path, capsys):
     assert "stations[0].datums" not in err
 
 
+RULE = """
+[[stations.rules]]
+id = "surge"
+when = "residual_above"
+notify = ["duty@port.example"]
+steps = [{ name = "raised", at = 0.4 }]
+"""
+
+
+def test_check_refuses_rules_with_recipients_and_no_mail_table(tmp_path, capsys):
+    cfg = _setup(tmp_path)
+    cfg.write_text(cfg.read_text() + RULE)
+    assert main(["check", str(cfg)]) == 2
+    err = capsys.readouterr().err
+    assert "mail: required: stations[0].rules (surge) have recipients" in err and "Traceback" not in err
+
+
+def test_check_accepts_rules_with_a_mail_table(tmp_path, capsys):
+    cfg = _setup(tmp_path)
+    cfg.write_text('[mail]\nsender = "g@port.example"\nsave_dir = "mail"\n' + cfg.read_text() + RULE)
+    assert main(["check", str(cfg)]) == 0, capsys.readouterr().err
+
+
+def test_check_says_the_old_rule_key_is_renamed(tmp_path, caplog):
+    cfg = _setup(tmp_path)
+    cfg.write_text('[mail]\nsender = "g@port.example"\nsave_dir = "mail"\n' + cfg.read_text()
+                   + RULE.replace("when =", "watch ="))
+    with caplog.at_level("WARNING"):
+        assert main(["check", str(cfg)]) == 0
+    assert "stations[0].rules[0].watch: renamed to 'when'" in caplog.text
+
+
 def test_ingest_summary_and_second_run_duplicates_everything(tmp_path, capsys):
     cfg = _setup(tmp_path)
     data = tmp_path / "gauge.csv"
@@ -84,6 +116,27 @@ def test_ingest_summary_and_second_run_duplicates_everything(tmp_path, capsys):
     assert "145 rows read, 144 stored, 0 duplicates, 1 rejected" in out
     assert main(["ingest", str(cfg), "--station", "testport", str(data)]) == 0
     assert "0 stored, 144 duplicates, 1 rejected" in capsys.readouterr().out
+
+
+def test_ingest_does_not_count_a_csv_header_as_a_rejected_line(tmp_path, capsys):
+    # the sensor's lines have no header configured; the backfill file has one
+    cfg = _setup(tmp_path)
+    cfg.write_text(cfg.read_text().replace("line = { header_lines = 1 }\n", ""))
+    data = tmp_path / "gauge.csv"
+    _gauge_file(data, 1)
+    assert main(["ingest", str(cfg), "--station", "testport", str(data)]) == 0
+    out = capsys.readouterr().out
+    assert "144 stored, 0 duplicates, 0 rejected" in out and "(1 blank, comment or header lines skipped)" in out
+
+
+def test_ingest_still_rejects_a_bad_first_line_with_digits(tmp_path, capsys):
+    cfg = _setup(tmp_path)
+    cfg.write_text(cfg.read_text().replace("line = { header_lines = 1 }\n", ""))
+    data = tmp_path / "gauge.csv"
+    _gauge_file(data, 1)
+    data.write_text("2025-10-09T09:00:00Z,not a level\n" + data.read_text().split("\n", 1)[1])
+    assert main(["ingest", str(cfg), "--station", "testport", str(data)]) == 0
+    assert "144 stored, 0 duplicates, 1 rejected" in capsys.readouterr().out
 
 
 def test_ingest_unknown_station_is_a_user_error(tmp_path, capsys):

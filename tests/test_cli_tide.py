@@ -89,6 +89,14 @@ def test_predict_naive_time_with_tz_is_local(capsys, constants):
     assert code == 0 and out.splitlines()[1].startswith("2025-07-01T00:00:00Z")  # summer time, UTC+1
 
 
+def test_table_without_tz_labels_its_columns_honestly(capsys, constants):
+    code, out, _ = _run(capsys, "table", constants, "--days", "1", "--start", "2025-03-01")
+    lines = out.splitlines()
+    head = next(ln for ln in lines if ln.startswith("date"))
+    assert code == 0 and head.split()[:3] == ["date", "time", "offset"]
+    assert "times: UTC (no --tz given" in out
+
+
 def test_unknown_constituent_is_a_one_line_error(capsys, tmp_path):
     path = tmp_path / "c.toml"
     path.write_text('mean = 0\n[[constituents]]\nname = "Q2"\namplitude = 0.1\nphase = 0\n')
@@ -112,6 +120,27 @@ def test_datums_json(capsys, constants):
     assert code == 0 and doc["units"] == "m" and "unofficial" in doc["caution"]
     d = doc["datums"]
     assert d["HAT"] > d["MHHW"] > d["MHW"] > d["MSL"] > d["MLW"] > d["MLLW"] > d["LAT"]
+
+
+def test_datums_write_the_ranges_in_words(capsys, constants):
+    code, out, _ = _run(capsys, "datums", constants, "--years", "1")
+    assert code == 0
+    assert not any(line.split()[:1] in (["MN"], ["GT"]) for line in out.splitlines())
+    mean = next(ln for ln in out.splitlines() if ln.strip().startswith("mean range"))
+    diurnal = next(ln for ln in out.splitlines() if ln.strip().startswith("diurnal range"))
+    assert "MHW minus MLW" in mean and "MHHW minus MLLW" in diurnal
+    levels = {ln.split()[0]: float(ln.split()[1]) for ln in out.splitlines()
+              if ln.split()[:1] and ln.split()[0] in ("MHW", "MLW", "MHHW", "MLLW")}
+    # the ranges are the differences of the printed levels (to their rounding)
+    assert float(mean.split()[2]) == pytest.approx(levels["MHW"] - levels["MLW"], abs=2 * mm)
+    assert float(diurnal.split()[2]) == pytest.approx(levels["MHHW"] - levels["MLLW"], abs=2 * mm)
+
+
+def test_datums_method_names_no_agency(capsys, constants):
+    code, out, _ = _run(capsys, "datums", constants, "--years", "1")
+    _, js, _ = _run(capsys, "datums", constants, "--years", "1", "--json")
+    for text in (out, json.loads(js)["method"]):
+        assert "NOAA" not in text and "tidal cycle" in text
 
 
 def test_datums_table_is_aligned_with_units(capsys, constants):
@@ -234,7 +263,7 @@ def test_predict_and_datums_for_a_station_are_on_its_display_datum(capsys, tmp_p
     doc, ref = json.loads(out), json.loads(plain)
     assert doc["reference"] == "chart datum"
     assert doc["datums"]["MSL"] == pytest.approx(ref["datums"]["MSL"] - 1.0, abs=0.1 * mm)
-    assert doc["datums"]["GT"] == pytest.approx(ref["datums"]["GT"], abs=0.1 * mm)  # a range has no datum
+    assert doc["ranges"]["diurnal_range"] == pytest.approx(ref["ranges"]["diurnal_range"], abs=0.1 * mm)  # no datum
 
 
 def test_constants_on_chart_datum_are_moved_by_the_offset_said_in_words(capsys, tmp_path, constants):

@@ -305,7 +305,7 @@ def test_example_has_a_rule_of_every_kind_using_every_rule_key():
     raw, _ = _example()
     st = raw["stations"][0]
     rules = st["rules"]
-    assert {r["watch"] for r in rules} == set(KINDS)
+    assert {r["when"] for r in rules} == set(KINDS)
     _, errors = rules_from_config([{**rules[0], "no_such_key": 1}], "rules", st["datums"])
     known = _known_from_message(errors)
     assert known <= set().union(*(set(r) for r in rules)), known

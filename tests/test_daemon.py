@@ -252,7 +252,7 @@ def test_primary_backup_drift_reaches_the_rules_as_an_equipment_fault(tmp_path):
     raw = {"store": {"path": "q.db"},
            "stations": [{"id": "testport", "latitude": 50.0, "longitude": -4.0, "constants": "history",
                          "datums": {"chart": -1.0}, "sensors": {"primary": {}, "backup": {}},
-                         "rules": [{"id": "gauge", "watch": "equipment_fault",
+                         "rules": [{"id": "gauge", "when": "equipment_fault",
                                     "notify": ["tech@testport.example"]}]}]}
     cfg, errors = validate_config(raw, tmp_path)
     assert errors == []

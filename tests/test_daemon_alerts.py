@@ -77,7 +77,7 @@ line = {{ header_lines = 1 }}
 feed = {{ kind = "file", path = "gauge.csv" }}
 [[stations.rules]]
 id = "surge"
-watch = "residual_above"
+when = "residual_above"
 hold = "10min"
 settle = "10min"
 band = 0.10
@@ -87,7 +87,7 @@ steps = [{{ name = "raised", at = {STEP} }}]
 # spike goes there, and QC fails it, so this rule must stay quiet.
 [[stations.rules]]
 id = "instant"
-watch = "residual_above"
+when = "residual_above"
 hold = "0s"
 notify = ["duty@testport.example"]
 steps = [{{ name = "jump", at = 0.55 }}]

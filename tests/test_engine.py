@@ -17,7 +17,7 @@ T0 = pd.Timestamp("2025-10-23 00:00", tz="UTC")
 
 STATION = StationView(id="dunmerrow", name="Port Dunmerrow", tz="Europe/Dublin",
                       datums={"chart_datum": 1.0}, display_datum="chart_datum")
-SURGE = {"id": "surge", "watch": "residual_above", "hold": "10min", "band": 0.05,
+SURGE = {"id": "surge", "when": "residual_above", "hold": "10min", "band": 0.05,
          "notify": ["duty@port.example"],
          "steps": [{"name": "raised", "at": 0.30},
                    {"name": "high", "at": 0.60, "notify": ["master@port.example"]}]}
@@ -121,7 +121,7 @@ def test_reloading_the_configuration_does_not_reopen_an_episode(db):
 
 
 def test_level_rule_compares_on_the_named_datum(db):
-    quay = {"id": "quay", "watch": "level_above", "datum": "chart_datum", "hold": 0,
+    quay = {"id": "quay", "when": "level_above", "datum": "chart_datum", "hold": 0,
             "notify": ["duty@port.example"], "steps": [{"name": "boards out", "at": 4.0}]}
     # observed 4.95 m on the station datum is 3.95 m above chart datum (1.0 m higher): below 4.0
     evaluate(db, STATION, rules(quay), frame([1.95], predicted=3.0), now=T0)
@@ -132,7 +132,7 @@ def test_level_rule_compares_on_the_named_datum(db):
 
 
 def test_next_high_water_forecast_rule_uses_the_context(db):
-    rule = {"id": "next-hw", "watch": "next_high_water_above", "datum": "chart_datum",
+    rule = {"id": "next-hw", "when": "next_high_water_above", "datum": "chart_datum",
             "notify": ["duty@port.example"], "steps": [{"name": "quay top", "at": 4.25}]}
     ctx = AlertContext(next_high_water=NextHighWater(time=int((T0 + pd.Timedelta(hours=5)).timestamp()),
                                                      level=5.40, uncertainty=0.2))
@@ -142,7 +142,7 @@ def test_next_high_water_forecast_rule_uses_the_context(db):
 
 
 def test_feed_silence_alerts_and_clears(db):
-    rule = {"id": "quiet", "watch": "feed_silent", "notify": ["tech@port.example"]}
+    rule = {"id": "quiet", "when": "feed_silent", "notify": ["tech@port.example"]}
     evaluate(db, STATION, rules(rule), None, now=T0, context=AlertContext(feed_age=45 * minute))
     evaluate(db, STATION, rules(rule), None, now=T0 + pd.Timedelta(minutes=1), context=AlertContext(feed_age=50 * minute))
     evaluate(db, STATION, rules(rule), None, now=T0 + pd.Timedelta(minutes=2), context=AlertContext(feed_age=1 * minute))
@@ -150,7 +150,7 @@ def test_feed_silence_alerts_and_clears(db):
 
 
 def test_equipment_fault_lists_the_fault(db):
-    rule = {"id": "kit", "watch": "equipment_fault", "notify": ["tech@port.example"]}
+    rule = {"id": "kit", "when": "equipment_fault", "notify": ["tech@port.example"]}
     # the shape monitor.quality.diagnostics.equipment_faults hands over
     fault = {"kind": "stuck_sensor", "station": "dunmerrow", "sensor": "primary", "value": 62.0,
              "limit": 30.0, "unit": "min", "since": int(T0.timestamp())}
@@ -175,7 +175,7 @@ def test_alert_reaches_a_loopback_smtp_server_with_the_caution(db, smtp):
     deliver_due(db, settings)  # delivery runs on the wall clock
     first = catcher.messages[0]
     assert first["Subject"].startswith("[quaywatch] Port Dunmerrow: raised")
-    assert "automated and unofficial" in first.get_body(("plain",)).get_content()
+    assert "automated and unofficial" in first.get_body(("plain",)).get_content().lower()
     assert "official warnings" in first.get_body(("html",)).get_content().lower()
     assert len({msg["Message-ID"] for msg in catcher.messages}) == len(catcher.messages) == 5
 
@@ -209,7 +209,7 @@ def test_works_on_an_autocommit_connection_like_the_stores(path):
 
 
 def test_a_new_kind_of_fault_during_an_episode_is_one_more_message(db):
-    rule = {"id": "kit", "watch": "equipment_fault", "notify": ["tech@port.example"]}
+    rule = {"id": "kit", "when": "equipment_fault", "notify": ["tech@port.example"]}
     stuck = {"kind": "stuck_sensor", "sensor": "primary", "value": 62.0, "limit": 30.0, "unit": "min"}
     drift = {"kind": "sensor_drift", "sensor": "primary-backup", "value": 3.1, "limit": 2.0, "unit": "mm/day"}
     for i, faults in enumerate([[stuck], [stuck], [stuck, drift], [stuck, drift], [drift], []]):
@@ -222,7 +222,7 @@ def test_a_new_kind_of_fault_during_an_episode_is_one_more_message(db):
 
 # --------------------------------------------------------------------------- the all-clear waits on the forecast
 
-QUAY = {"id": "quay", "watch": "level_above", "datum": "chart_datum", "hold": 0, "settle": "10min", "band": 0.10,
+QUAY = {"id": "quay", "when": "level_above", "datum": "chart_datum", "hold": 0, "settle": "10min", "band": 0.10,
         "notify": ["volunteers@port.example"], "steps": [{"name": "boards out", "at": 4.0}]}
 
 
@@ -285,3 +285,28 @@ def test_not_clear_yet_is_said_once_per_episode(db):
 def test_without_a_forecast_the_all_clear_goes_as_before(db):
     evaluate(db, STATION, rules(QUAY), _over_then_back(), now=T0 + pd.Timedelta(minutes=80))
     assert _kinds(db) == ["alert", "all_clear"]
+
+
+def test_each_recipient_gets_the_form_set_for_them(db):
+    # [mail.forms]: duty gets the brief form, master the full form (the default)
+    from dataclasses import replace
+
+    station = replace(STATION, forms=(("duty@port.example", "brief"),))
+    evaluate(db, station, rules(), frame(storm()), now=T0 + pd.Timedelta(hours=3))
+    rows = {(r["recipient"], r["key"]): r for r in db.query("SELECT recipient, key, text FROM outbox")}
+    esc = [k for (rc, k) in rows if "/escalated/" in k]
+    assert esc
+    brief = rows[("duty@port.example", esc[0])]["text"]
+    full = rows[("master@port.example", esc[0])]["text"]
+    assert "Rule:" not in brief and "the sea stands" in brief
+    assert "Rule:" in full and "the sea stands" not in full
+
+
+def test_one_episode_keeps_one_message_per_recipient_across_forms(db):
+    from dataclasses import replace
+
+    station = replace(STATION, forms=(("duty@port.example", "brief"),))
+    evaluate(db, station, rules(), frame(storm()), now=T0 + pd.Timedelta(hours=3))
+    evaluate(db, station, rules(), frame(storm()), now=T0 + pd.Timedelta(hours=3))
+    keys = [(r["recipient"], r["key"]) for r in db.query("SELECT recipient, key FROM outbox")]
+    assert len(keys) == len(set(keys))

@@ -39,7 +39,7 @@ def _site(tmp_path, history: pd.DataFrame, barometer: bool = True):
            "mail": {"sender": "g@port.invalid", "save_dir": "mail"},
            "stations": [{"id": "port", "latitude": 54.0, "longitude": -10.0, "constants": "c.toml",
                          "datums": {"chart": 1.0}, "sensors": sensors,
-                         "rules": [{"id": "quay", "watch": "level_above", "datum": "chart", "hold": 0,
+                         "rules": [{"id": "quay", "when": "level_above", "datum": "chart", "hold": 0,
                                     "notify": ["v@port.invalid"], "steps": [{"name": "boards out", "at": 9.0}],
                                     "clear_horizon": "24h"}]}]}
     cfg, errors = validate_config(raw, tmp_path)

@@ -69,11 +69,15 @@ def test_qc_summary_names_tests_zone_and_the_spike_episode(station, capsys):
     out = capsys.readouterr().out
     assert rc == 0
     assert "times in Europe/Lisbon" in out
-    for test in qc.TESTS:
-        assert test in out
+    from alerts.reports.model import QC_TEST_NAMES
+
+    for test in qc.TESTS:   # named as the daily report names them
+        assert QC_TEST_NAMES[test] in out
+    for short in ("roc", "multi", "resid"):
+        assert not any(ln.split()[:1] == [short] for ln in out.splitlines())
     # The worst episode (the spike with its two neighbours) is shown in local time.
     spike = level.index[1500].tz_convert("Europe/Lisbon")
-    line = next(ln for ln in out.splitlines() if " fail " in ln and "spike" in ln)
+    line = next(ln for ln in out.splitlines() if " fail " in ln and "spike and jump" in ln)
     first, last = line[:16], line[22:38]
     fmt = "%Y-%m-%d %H:%M"
     assert first <= spike.strftime(fmt) <= last and " WET" in line
@@ -120,3 +124,29 @@ def test_bad_qc_key_in_config_is_reported_with_its_path(station, capsys, tmp_pat
     cfg.write_text(CONFIG.format(extra="spike_suspekt = 0.1"))
     rc = main(["qc", str(cfg), "--station", "harbour", "--from", "2024-03-01", "--to", "2024-03-02"])
     assert rc == 2 and "stations[0].qc.spike_suspekt: unknown key" in capsys.readouterr().err
+
+
+def test_qc_shows_the_backup_clock_against_the_primary(tmp_path, capsys):
+    # By construction the backup's clock runs 5 minutes ahead: at its stamp t it holds the sea
+    # of t - 5 min. A late clock counts positive (monitor.quality.diagnostics.relative_clock), so -5 min.
+    import pandas as pd
+
+    from predictor import TideModel
+
+    (tmp_path / "constants.toml").write_text(_constants())
+    cfg = tmp_path / "quaywatch.toml"
+    cfg.write_text(CONFIG.format(extra=""))
+    model = TideModel.load(tmp_path / "constants.toml")
+    noisy, _ = record(days=3, seed=62)
+    idx = noisy.index
+    lag = pd.Timedelta(minutes=5)
+    with Store.open(tmp_path / "store.sqlite") as s:
+        t = idx.as_unit("s").asi8
+        s.write_batch("harbour", "primary", t, model.predict(idx))
+        s.write_batch("harbour", "backup", t, model.predict(idx - lag)
+                      + np.random.default_rng(63).normal(0, 2 * mm, len(t)))
+    assert main(["qc", str(cfg), "--station", "harbour", "--from", "2024-03-01T00:00Z",
+                 "--to", "2024-03-03T23:59Z"]) == 0
+    line = next(ln for ln in capsys.readouterr().out.splitlines() if "backup clock vs primary" in ln)
+    value = float(line.split("backup clock vs primary")[1].split()[0])
+    assert value == pytest.approx(-5.0, abs=1.0)

@@ -119,7 +119,7 @@ def test_a_seiche_crest_reaches_the_alert_rules(calm, tmp_path):
     samples = pd.DataFrame({"observed": water.to_numpy(), "predicted": pred, "residual": water.to_numpy() - pred,
                             "smoothed": np.nan, "flag": out["flag"].to_numpy()}, index=water.index)
     view = StationView(id="harbour", name="Invented Harbour", tz="UTC", datums={"station": 0.0})
-    rules, errors = rules_from_config([{"id": "quay", "watch": "level_above", "datum": "station", "hold": "2min",
+    rules, errors = rules_from_config([{"id": "quay", "when": "level_above", "datum": "station", "hold": "2min",
                                         "notify": ["duty@harbour.example"], "steps": [{"name": "quay wet",
                                                                                       "at": quay}]}],
                                       "stations[0].rules", view.datums)

@@ -19,6 +19,8 @@ CHROMIUM = "/usr/bin/chromium"
 ARGS = ["--no-sandbox", "--disable-gpu", "--disable-background-networking", "--disable-component-update",
         "--disable-sync", "--no-first-run"]
 PHONE_WIDTH = 375  # px, a common small phone viewport (common practice, no source)
+DESKTOP_WIDTH = 1280  # px, a common laptop viewport (common practice, no source)
+WIDTHS = [PHONE_WIDTH, DESKTOP_WIDTH]
 
 
 def _need_chromium() -> None:
@@ -77,27 +79,43 @@ def test_page_loads_without_errors_or_network(browser, pages, which):
     assert _foreign(requests, pages[which]) == []
 
 
+@pytest.mark.parametrize("width", WIDTHS)
 @pytest.mark.parametrize("which", ["gap", "empty", "long"])
-def test_chart_is_visible_and_decoded(browser, pages, which):
-    page, _, _ = _load(browser, pages[which])
-    chart = page.locator("img.chart")
-    assert chart.is_visible()
-    natural = chart.evaluate("img => [img.complete, img.naturalWidth, img.naturalHeight]")
-    box = chart.bounding_box()
+def test_one_day_chart_is_visible_and_fills_its_column(browser, pages, which, width):
+    page, _, _ = _load(browser, pages[which], width=width)
+    shown = page.locator("div.chart svg:visible")
+    count = shown.count()
+    box = shown.first.bounding_box() if count else None
+    column = page.evaluate("document.querySelector('main').clientWidth")
     page.close()
-    assert natural[0] and natural[1] > 500 and natural[2] > 300
-    assert box["width"] > 600 and box["height"] > 300
+    assert count == 1                      # the wide or the narrow layout, not both
+    assert box["width"] >= 0.9 * (column - 32) and box["height"] > 250
 
 
 def test_screenshot_is_not_blank(browser, pages):
     pil = pytest.importorskip("PIL.Image")
     page, _, _ = _load(browser, pages["gap"])
-    png = page.locator("img.chart").screenshot()
+    png = page.locator("div.chart svg:visible").screenshot()
     page.close()
     pixels = np.asarray(pil.open(io.BytesIO(png)).convert("L"), dtype=float)
     # A blank or single-colour capture has no spread; lines, labels and shading do.
     assert pixels.std() > 10
     assert (pixels < 128).mean() > 0.005
+
+
+# The size a letter is drawn at: its font size times the scale the page gives its drawing
+# (the length of the first column of the text's screen transform, so rotated labels count too).
+_TEXT_PX = """() => [...document.querySelectorAll('svg text')].filter(t => t.getClientRects().length)
+  .map(t => { const m = t.getScreenCTM(); return parseFloat(getComputedStyle(t).fontSize) * Math.hypot(m.a, m.b); })"""
+
+
+@pytest.mark.parametrize("width", WIDTHS)
+def test_chart_text_is_at_least_12_css_px(browser, pages, width):
+    page, _, _ = _load(browser, pages["gap"], width=width)
+    sizes = page.evaluate(_TEXT_PX)
+    page.close()
+    assert len(sizes) > 20             # ticks, labels, legend of the charts shown
+    assert min(sizes) >= 12.0, sorted(sizes)[:5]
 
 
 def test_html_in_station_name_shows_as_text(browser, pages):
@@ -110,13 +128,48 @@ def test_html_in_station_name_shows_as_text(browser, pages):
     assert note == "<b>staff</b> & gauge"
 
 
-def test_page_fits_a_phone_width(browser, pages):
-    page, _, _ = _load(browser, pages["gap"], width=PHONE_WIDTH)
+@pytest.mark.parametrize("width", WIDTHS)
+@pytest.mark.parametrize("which", ["gap", "long", "index"])
+def test_page_body_never_scrolls_sideways(browser, pages, which, width):
+    page, _, _ = _load(browser, pages[which], width=width)
     overflow = page.evaluate("document.documentElement.scrollWidth - window.innerWidth")
-    caution_visible = page.locator(".caution").is_visible()
+    body = page.evaluate("document.body.scrollWidth - document.body.clientWidth")
     page.close()
-    assert overflow <= 0  # wide tables scroll inside their own box, the page does not
-    assert caution_visible
+    assert overflow <= 0 and body <= 0   # wide tables stack or scroll inside their own box
+
+
+@pytest.mark.parametrize("which", ["gap", "index"])
+def test_caution_is_one_line_on_a_phone_with_the_full_text_below(browser, pages, which):
+    page, _, _ = _load(browser, pages[which], width=PHONE_WIDTH)
+    box = page.locator(".caution").bounding_box()
+    line = page.locator(".caution strong").inner_text()
+    full = page.locator(".caution details").inner_text()
+    page.locator(".caution summary").click()
+    opened = page.locator(".caution details p").is_visible()
+    page.close()
+    assert "unofficial" in line.lower() and "official warnings" in line.lower()
+    assert box["height"] < 0.25 * 900       # not half the first screen
+    assert "The full caution" in full and opened
+
+
+# Every cell of a stacking table lies within the phone's width: nothing cut off to the right.
+_CELLS_OUTSIDE = """() => [...document.querySelectorAll('table.stack td')]
+  .filter(td => td.getClientRects().length && td.getBoundingClientRect().right > window.innerWidth + 0.5)
+  .map(td => td.getAttribute('data-label'))"""
+
+
+@pytest.mark.parametrize("which", ["gap", "index"])
+def test_tides_alerts_and_index_tables_stack_on_a_phone(browser, pages, which):
+    page, _, _ = _load(browser, pages[which], width=PHONE_WIDTH)
+    outside = page.evaluate(_CELLS_OUTSIDE)
+    labels = page.evaluate("[...document.querySelectorAll('table.stack td[data-label]')].length")
+    texts = page.locator("table.stack").first.inner_text()
+    page.close()
+    assert labels > 0 and outside == []
+    if which == "gap":
+        assert "Skew surge" in texts or "Rule" in texts
+    else:
+        assert "Water alerts" in texts
 
 
 def test_page_prints(browser, pages):

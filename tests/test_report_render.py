@@ -143,14 +143,18 @@ def test_caution_comes_before_everything_else(plain_html):
 
 def test_page_is_self_contained(plain_html):
     urls = re.findall(r'(?:src|href)="([^"]*)"', plain_html)
-    assert urls, "expected at least the chart image"
-    assert all(u.startswith("data:") for u in urls), urls
+    assert "<svg" in plain_html, "expected the charts inline"
+    # data: URIs, and references inside the page's own SVG (#id)
+    assert all(u.startswith(("data:", "#")) for u in urls), urls
     assert "<link rel=\"stylesheet\"" not in plain_html and "@import" not in plain_html
     assert '<meta name="viewport"' in plain_html and "@media print" in plain_html
 
 
-def test_chart_is_an_inline_png(plain_html):
-    assert re.search(r'<img class="chart" src="data:image/png;base64,[A-Za-z0-9+/]{1000,}', plain_html)
+def test_charts_are_inline_svg_in_two_layouts_with_text_as_text(plain_html):
+    wide = re.search(r'<div class="chart wide"[^>]*><svg[^>]*viewBox="0 0 ([0-9.]+) ', plain_html)
+    narrow = re.search(r'<div class="chart narrow"[^>]*><svg[^>]*viewBox="0 0 ([0-9.]+) ', plain_html)
+    assert wide and narrow and float(narrow.group(1)) < float(wide.group(1))
+    assert "<text" in plain_html and 'width="691' not in plain_html   # scales: no fixed size
 
 
 def test_station_name_with_html_is_shown_as_text(hostile_html):
@@ -173,7 +177,7 @@ def test_times_on_the_long_day_carry_their_offset():
     html = render_day_html(sample_report(AUTUMN))
     assert "then UTC+00:00 from 01:00" in html
     # Every high/low water row names its offset, since 01:xx happens twice on this day.
-    tide_rows = re.findall(r"<td>(\d\d:\d\d \(UTC[+\u2212]\d\d:\d\d\))</td>", html)
+    tide_rows = re.findall(r'<td data-label="(?:Predicted|Observed)">(\d\d:\d\d \(UTC[+\u2212]\d\d:\d\d\))</td>', html)
     assert len(tide_rows) >= 8
 
 
@@ -181,7 +185,7 @@ def test_day_with_no_data_says_so():
     html = render_day_html(sample_report(PLAIN, empty=True))
     assert "No observations were received for this day." in html
     assert "No alert episode was open during this day." in html
-    assert 'class="chart" src="data:image/png;base64,' in html
+    assert 'class="chart wide"' in html and "No usable observations" in html
 
 
 def test_day_with_a_gap_lists_it():
@@ -305,8 +309,8 @@ def test_staff_check_lists_offset_scale_timing_with_uncertainties(plain_html):
     assert "150 s</td><td class=\"n\">20 s" in part
 
 
-def test_staff_diagram_is_an_inline_png(plain_html):
-    assert re.search(r'<img class="staff" src="data:image/png;base64,', plain_html)
+def test_staff_diagram_is_inline(plain_html):
+    assert re.search(r'<div class="staff"[^>]*><svg', plain_html)
 
 
 def test_day_without_extras_says_what_is_missing():
@@ -319,3 +323,88 @@ def test_day_without_extras_says_what_is_missing():
 def test_email_carries_staff_diagram_by_content_id(mail):
     assert any(cid.endswith("-staff.png@quaywatch.invalid") for cid in mail.images)
     assert "Next high water forecast, as last issued on this day\n  3.57 m at 13 Mar 10:53" in mail.text
+
+
+# --- labels: each rule's value in its own unit; water alerts told from gauge faults ---------------
+
+def _with_fault_episode(day=PLAIN):
+    import dataclasses
+
+    from alerts.reports.model import AlertEpisodeRow
+
+    r = sample_report(day)
+    start = r.alerts[0].started
+    fault = AlertEpisodeRow(rule="gauge", level="equipment fault", started=start, cleared=None, peak=2.0,
+                            unit="", kind="gauge")
+    silent = AlertEpisodeRow(rule="silent", level="feed quiet", started=start, cleared=start, peak=2700.0,
+                             unit="s", kind="gauge")
+    return dataclasses.replace(r, alerts=[*r.alerts, fault, silent])
+
+
+def _alert_rows(html):
+    section = html[html.index('id="alerts"'):]
+    section = section[:section.index("</table>")]
+    return [re.sub(r"<[^>]+>", " ", row) for row in section.split("<tr>")[2:]]
+
+
+def test_equipment_fault_peak_is_a_count_not_metres():
+    rows = _alert_rows(render_day_html(_with_fault_episode()))
+    gauge = next(r for r in rows if "gauge" in r.split())
+    assert "2 faults" in gauge and " m " not in gauge + " " and "m above" not in gauge
+
+
+def test_feed_silent_peak_is_a_duration():
+    rows = _alert_rows(render_day_html(_with_fault_episode()))
+    silent = next(r for r in rows if "silent" in r.split())
+    assert "45 min" in silent and "m above" not in silent
+
+
+def test_index_tells_water_alerts_from_gauge_faults(tmp_path):
+    write_day_report(_with_fault_episode(), tmp_path)
+    html = write_index(tmp_path).read_text()
+    assert "Water alerts" in html and "Gauge faults" in html
+    row = html[html.index('href="skq/2024-03-12.html"'):]
+    row = row[:row.index("</tr>")]
+    cells = re.findall(r'<td class="([^"]*)"[^>]*>\s*([^<\s]+)', row)
+    assert ("n bad", "1") in cells          # the surge episode: a water alert, in red
+    assert ("n fault", "2") in cells        # the two gauge episodes, not red
+    assert sum(1 for cls, _ in cells if "bad" in cls) == 1
+
+
+def _with_weak_constituents(day=PLAIN):
+    import dataclasses
+
+    from alerts.reports.model import ConstituentRow
+
+    r = sample_report(day)
+    weak = (ConstituentRow("M4", 0.004, 77.7, 0.006, 0.4), ConstituentRow("MS4", 0.002, 310.0, 0.006, 0.1))
+    big = ConstituentRow("M2", 1.35, 118.2, 0.004, 1018984.4)
+    consts = dataclasses.replace(r.constants, constituents=(big, *r.constants.constituents[1:], *weak))
+    return dataclasses.replace(r, constants=consts)
+
+
+def _constants_section(html):
+    sec = html[html.index('id="constants"'):]
+    return sec[:sec.index("</section>")]
+
+
+def test_constants_table_shows_resolved_ones_and_folds_the_rest():
+    sec = _constants_section(render_day_html(_with_weak_constituents()))
+    shown, folded = sec.split("<details>", 1)
+    for name in ("M2", "S2", "K1"):
+        assert f">{name}<" in shown
+    assert ">M4<" in folded and ">MS4<" in folded and ">M4<" not in shown
+    assert "2 more constituents, too weak to tell from noise" in folded
+
+
+def test_constants_table_rounds_its_numbers():
+    sec = _constants_section(render_day_html(_with_weak_constituents()))
+    text = re.sub(r"<[^>]+>", " ", sec)
+    assert "1018984" not in text and "SNR" not in text
+    assert "1.350 \u00b1 0.004 m" in html_unescape(text) and "118\u00b0" in html_unescape(text)
+
+
+def html_unescape(text):
+    import html as html_lib
+
+    return html_lib.unescape(text)

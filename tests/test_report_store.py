@@ -39,7 +39,7 @@ def site(tmp_path_factory):
             "id": "skq", "name": "Skerrin <Quay>", "latitude": 61.2, "longitude": -6.9, "tz": TZ,
             "constants": "constants.toml", "datums": {"chart": CHART},
             "sensors": {"primary": {"units": "m", "line": {"delimiter": ",", "time_column": 1, "value_column": 2}}},
-            "rules": [{"id": "quay", "watch": "level_above", "datum": "chart", "notify": ["crew@port.invalid"],
+            "rules": [{"id": "quay", "when": "level_above", "datum": "chart", "notify": ["crew@port.invalid"],
                        "steps": [{"name": "apron wet", "at": 3.90}]}],
         }],
     }

@@ -18,8 +18,8 @@ from zoneinfo import ZoneInfo, ZoneInfoNotFoundError
 import jinja2
 
 from alerts.rules import Event, Rule, StationView
-from predictor.caution import MESSAGE as CAUTION
-
+from predictor.caution import CAUTION as CAUTION_LINE  # the one line at the top of every form
+from predictor.caution import MESSAGE as CAUTION        # the full text, below it
 
 SUBJECT_PREFIX = "[quaywatch]"
 
@@ -235,6 +235,81 @@ def _clear_lines(rule: Rule, station: StationView, check: Any) -> list[tuple[str
                                 f"({_m(step_lv - shift)} above {dlabel})")]
 
 
+def _fault_names(faults: Any, tz: str) -> str:
+    """``stuck sensor on primary, clock offset on backup`` (the kinds, without numbers)."""
+    return ", ".join(_fault_line(f, tz).split(":")[0] for f in faults or [])
+
+
+def _headline_and_subject(station: StationView, rule: Rule, event: Event, facts: dict,
+                          step_index: int | None = None) -> tuple[str, str]:
+    """An event's headline and subject (with the prefix), each said once.
+
+    An equipment-fault episode names its faults rather than counting them after a step name
+    that already says "fault"; a "changed" event names the new ones and how many are active.
+    """
+    step = rule.steps[event.level if step_index is None else step_index]
+    sname = clean_header(station.name, 80)
+    vtext = value_text(rule, event.value, station)
+    if rule.watch == "equipment_fault":
+        n = int(event.value)
+        named = _fault_names(facts.get("faults"), station.tz)
+        vtext = named or f"{n} active"
+        if named and n > 1:
+            vtext = f"{n} active: {named}"
+    if event.kind == "opened":
+        headline = subject = f"{sname}: {step.name} - {vtext}"
+    elif event.kind == "escalated":
+        headline = f"{sname}: now {step.name} - {vtext}"
+        subject = f"{sname}: up to {step.name} - {vtext}"
+    elif event.kind == "changed":
+        new = _fault_names(facts.get("new_faults"), station.tz) or "another fault"
+        active = f"{int(event.value)} active" if rule.watch == "equipment_fault" else vtext
+        headline = f"{sname}: {step.name} continues - new: {new} ({active})"
+        subject = f"{sname}: {step.name} - new: {new} ({active})"
+    elif event.kind == "cleared":
+        vtext = "no fault active" if rule.watch == "equipment_fault" else vtext
+        headline = f"{sname}: all clear for {rule.id} (highest step was {step.name}) - {vtext}"
+        subject = f"{sname}: all clear after {step.name} - {vtext}"
+    elif event.kind == "held":
+        check = facts.get("clear_check") or {}
+        lowest = clean_line(check.get("step") or rule.steps[0].name, 60)
+        when = format_times(check["time"], station.tz)[0][11:16] if check.get("time") is not None else "?"
+        headline = (f"{sname}: not clear yet for {rule.id} - {vtext}, back below {lowest}, but the "
+                    f"high water at {when} may reach {lowest} again")
+        subject = f"{sname}: not clear yet - the high water at {when} may reach {lowest} again ({vtext})"
+    else:
+        raise ValueError(f"unknown event kind {event.kind!r}")
+    return clean_line(headline), clean_header(f"{SUBJECT_PREFIX} {subject}", 250)
+
+
+def alert_subject(station: StationView, rule: Rule, event: Event, facts: dict | None = None,
+                  step_index: int | None = None) -> str:
+    """The subject of an episode event's email (the same in every form)."""
+    return _headline_and_subject(station, rule, event, facts or {}, step_index)[1]
+
+
+def summary_line(station: StationView, facts: dict, t: float) -> str:
+    """``Now 4.05 m above chart datum at 13:00 IST; next high water 16:00 IST, forecast
+    4.30 m.``: the level now and the coming high water, for the top of the long forms (so a
+    phone's preview shows the level before the caution). Empty without readings."""
+    shift, dlabel = station.display_offset, datum_label(station.display)
+    zone = _zone(station.tz)
+    parts = []
+    obs = facts.get("observed")
+    if obs is not None and math.isfinite(obs):
+        at = datetime.fromtimestamp(float(t), tz=timezone.utc).astimezone(zone).strftime("%H:%M %Z")
+        parts.append(f"Now {_m(obs - shift)} above {dlabel} at {at}")
+    hw = facts.get("next_high_water")
+    if isinstance(hw, dict) and hw.get("level") is not None and hw.get("time") is not None:
+        when = datetime.fromtimestamp(float(hw["time"]), tz=timezone.utc).astimezone(zone).strftime("%H:%M %Z")
+        parts.append(f"next high water {when}, forecast {_m(float(hw['level']) - shift)}"
+                     + ("" if parts else f" above {dlabel}"))
+    if not parts:
+        return ""
+    text = "; ".join(parts)
+    return text[0].upper() + text[1:] + "."
+
+
 def compose_alert(station: StationView, rule: Rule, event: Event, facts: dict | None = None,
                   step_index: int | None = None) -> tuple[str, str, str]:
     """Subject, plain text and HTML for an episode event.
@@ -256,34 +331,12 @@ def compose_alert(station: StationView, rule: Rule, event: Event, facts: dict | 
     """
     facts = facts or {}
     step = rule.steps[event.level if step_index is None else step_index]
-    sname = clean_header(station.name, 80)
+    headline, subject = _headline_and_subject(station, rule, event, facts, step_index)
     vtext = value_text(rule, event.value, station)
-    if event.kind == "opened":
-        headline = f"{sname}: {step.name} - {vtext}"
-        subject = f"{SUBJECT_PREFIX} {sname}: {step.name} - {vtext}"
-    elif event.kind == "escalated":
-        headline = f"{sname}: now {step.name} - {vtext}"
-        subject = f"{SUBJECT_PREFIX} {sname}: up to {step.name} - {vtext}"
-    elif event.kind == "changed":
-        new = ", ".join(_fault_line(f, station.tz).split(":")[0] for f in facts.get("new_faults") or [])
-        headline = f"{sname}: {step.name} continues - new: {new} ({vtext})"
-        subject = f"{SUBJECT_PREFIX} {sname}: {step.name} - new: {new} ({vtext})"
-    elif event.kind == "cleared":
-        headline = f"{sname}: all clear for {rule.id} (highest step was {step.name}) - {vtext}"
-        subject = f"{SUBJECT_PREFIX} {sname}: all clear after {step.name} - {vtext}"
-    elif event.kind == "held":
-        check = facts.get("clear_check") or {}
-        lowest = clean_line(check.get("step") or rule.steps[0].name, 60)
-        when = format_times(check["time"], station.tz)[0][11:16] if check.get("time") is not None else "?"
-        headline = (f"{sname}: not clear yet for {rule.id} - {vtext}, back below {lowest}, but the "
-                    f"high water at {when} may reach {lowest} again")
-        subject = (f"{SUBJECT_PREFIX} {sname}: not clear yet - the high water at {when} may reach "
-                   f"{lowest} again ({vtext})")
-    else:
-        raise ValueError(f"unknown event kind {event.kind!r}")
     local, utc = format_times(event.t, station.tz)
     ctx = dict(
-        subject=clean_header(subject), headline=clean_line(headline), caution=CAUTION,
+        subject=subject, headline=headline, caution=CAUTION, caution_line=CAUTION_LINE,
+        summary=summary_line(station, facts, event.t),
         station_name=clean_line(station.name, 120), station_id=clean_line(station.id, 80),
         rule_id=clean_line(rule.id, 80), what=_WHAT[rule.watch], step_name=clean_line(step.name, 60),
         step_at=step_text(rule, step.at, station), value_text=clean_line(vtext), local_time=local, utc_time=utc,

@@ -37,6 +37,10 @@ Mail settings (a ``[mail]`` table)::
                                            # in this PEM file for the server; default: the
                                            # system trust store
 
+    [mail.forms]                           # optional: the form of alert email an address
+    "volunteers@port.example" = "brief"    # gets (brief | full | gauge, see alerts.mail.forms);
+                                           # default full
+
 The server's certificate and host name are always verified (starttls and tls); there is no
 setting that turns verification off. The password is read from the environment or its file
 at each connection, never stored in the settings, the outbox table or a log line, and is
@@ -65,6 +69,7 @@ from email.utils import parseaddr
 from pathlib import Path
 from typing import Any, Callable, Iterable
 
+from alerts.mail.forms import forms_from_config
 from alerts.mail.message import build_email, clean_header
 from alerts.rules import parse_duration
 from alerts.transactions import transaction
@@ -312,6 +317,7 @@ class MailSettings:
     reply_to: str | None = None
     save_dir: str | None = None
     ca_file: str | None = None
+    forms: tuple = ()  # (address, form name) pairs, see alerts.mail.forms
 
     def password(self) -> str | None:
         """Read the password now, from the environment or the file (never stored)."""
@@ -380,7 +386,7 @@ def mail_settings_from(raw: Any, keypath: str) -> tuple[MailSettings | None, lis
     errors: list[str] = []
     known = {"sender", "host", "port", "security", "user", "password_env", "password_file",
              "timeout", "retry_first", "retry_max", "give_up_after", "reply_to", "save_dir",
-             "ca_file"}
+             "ca_file", "forms"}
     for key in raw:
         if key not in known:
             errors.append(f"{keypath}.{key}: unknown key (known: {', '.join(sorted(known))})")
@@ -444,11 +450,14 @@ def mail_settings_from(raw: Any, keypath: str) -> tuple[MailSettings | None, lis
             errors.append(f"{keypath}.{key}: must be more than zero")
     if durations["retry_max"] < durations["retry_first"]:
         errors.append(f"{keypath}.retry_max: shorter than retry_first")
+    forms, form_errors = forms_from_config(raw.get("forms"), f"{keypath}.forms")
+    errors += form_errors
     if errors:
         return None, errors
     return MailSettings(sender=sender, host=host, port=port, security=security, user=user,
                         password_env=penv, password_file=pfile, reply_to=reply_to,
-                        save_dir=save_dir, ca_file=ca_file, **durations), []
+                        save_dir=save_dir, ca_file=ca_file, forms=tuple(sorted(forms.items())),
+                        **durations), []
 
 
 # --------------------------------------------------------------------------- delivery

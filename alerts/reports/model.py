@@ -12,6 +12,7 @@ from __future__ import annotations
 
 import dataclasses
 import datetime as dt
+import math
 import re
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -21,6 +22,7 @@ from zoneinfo import ZoneInfo
 import numpy as np
 import pandas as pd
 
+from predictor.caution import CAUTION as CAUTION_LINE
 from predictor.caution import REPORT as CAUTION
 from predictor.timeutil import silences
 
@@ -136,6 +138,20 @@ class AlertEpisodeRow:
     unit: str = "m"
     deliveries: tuple[Delivery, ...] = ()
     signed: bool = False   # a residual (datum-free, shown with its sign); else a level on the report's datum
+    kind: str = "water"    # "water" (level, residual, forecast rules) or "gauge" (silent feed, equipment faults)
+
+    @property
+    def peak_text(self) -> str | None:
+        """The peak in the rule's own unit: ``45 min`` of silence, ``2 faults``; None for metres
+        (the template writes levels and residuals with the report's datum)."""
+        if self.peak is None or self.unit == "m":
+            return None
+        if self.unit == "s":
+            minutes = int(round(float(self.peak) / 60))
+            h, m = divmod(minutes, 60)
+            return f"{h} h {m:02d} min" if h else f"{m} min"
+        n = int(round(self.peak))
+        return f"{n} fault{'s' if n != 1 else ''}" if self.unit == "" else f"{self.peak:g} {self.unit}"
 
 
 @dataclass(frozen=True)
@@ -147,6 +163,16 @@ class ConstituentRow:
     phase: float
     amplitude_ci: float | None = None
     snr: float | None = None
+
+    @property
+    def resolved(self) -> bool:
+        """The amplitude stands clear of its interval (the interval does not reach zero);
+        without an interval, a signal-to-noise ratio of 2 or more; without either, shown."""
+        if self.amplitude_ci is not None and math.isfinite(self.amplitude_ci):
+            return self.amplitude > self.amplitude_ci
+        if self.snr is not None and math.isfinite(self.snr):
+            return self.snr >= 2.0
+        return True
 
 
 @dataclass(frozen=True)
@@ -165,6 +191,16 @@ class ConstantsInfo:
     samples: int | None = None
     rms: float | None = None
     variance_explained: float | None = None
+
+    @property
+    def resolved(self) -> tuple[ConstituentRow, ...]:
+        """The constituents that stand clear of the noise, largest first."""
+        return tuple(sorted((c for c in self.constituents if c.resolved), key=lambda c: -c.amplitude))
+
+    @property
+    def weak(self) -> tuple[ConstituentRow, ...]:
+        """The rest (too weak to tell from noise), largest first: folded away in the report."""
+        return tuple(sorted((c for c in self.constituents if not c.resolved), key=lambda c: -c.amplitude))
 
 
 @dataclass(frozen=True)
@@ -588,6 +624,7 @@ __all__ = [
     "AlertLevel",
     "BarometerPart",
     "CAUTION",
+    "CAUTION_LINE",
     "HighWaterForecast",
     "Verified",
     "VerificationRow",

@@ -20,11 +20,12 @@ from zoneinfo import ZoneInfo
 
 import jinja2
 import pandas as pd
+from markupsafe import Markup
 
 from alerts.reports import charts
 from alerts.reports import rarity as rr
 from alerts.reports.model import (
-    CAUTION, FLAG_WORDS, QC_TEST_NAMES, DayFigures, DayReport, day_figures, offset_text, zone_label,
+    CAUTION, CAUTION_LINE, FLAG_WORDS, QC_TEST_NAMES, DayFigures, DayReport, day_figures, offset_text, zone_label,
 )
 
 TEMPLATES = Path(__file__).resolve().parent.parent / "templates"
@@ -101,6 +102,8 @@ def _summary(report: DayReport, figures: DayFigures) -> dict[str, Any]:
         "lowest_residual": figures.lowest_residual,
         "completeness": figures.completeness,
         "alerts": len(report.alerts),
+        "water_alerts": sum(1 for a in report.alerts if a.kind != "gauge"),
+        "gauge_alerts": sum(1 for a in report.alerts if a.kind == "gauge"),
         "failed": figures.failed,
         "datum": report.datum,
     }
@@ -141,6 +144,7 @@ def _context(report: DayReport, chart_src: str, trend_src: str | None,
         "f": figures,
         "t": clock,
         "caution": CAUTION,
+        "caution_line": CAUTION_LINE,
         "zone": zone_label(report.tz, figures.start, figures.end),
         "day_text": report.day.strftime("%A %d %B %Y"),
         "chart_src": chart_src,
@@ -166,13 +170,28 @@ def _extra_charts(report: DayReport, charts: Any) -> dict[str, bytes | None]:
             "sea_level": rr.sea_level_chart(sec, report.datum) if sec is not None else None}
 
 
+def _page_charts(report: DayReport) -> dict[str, Any]:
+    """The page's charts as inline SVG that scales with the column: the day chart in its wide
+    (desktop) and narrow (phone) layouts, the trends and the staff diagram. matplotlib
+    escapes every text it writes into the SVG, so the markup is safe to insert."""
+    out = {"day_wide": charts.day_chart(report, fmt="svg", layout="wide"),
+           "day_narrow": charts.day_chart(report, fmt="svg", layout="narrow"),
+           "trend": charts.trend_chart(report.diagnostics, fmt="svg"),
+           "staff": charts.staff_chart(report.staff, fmt="svg") if report.staff is not None else None}
+    return {k: Markup(v) if v else None for k, v in out.items()}
+
+
 def render_day_html(report: DayReport) -> str:
-    """Render a station's day as one self-contained HTML page (images inline as data URIs)."""
-    chart_src = _data_uri(charts.day_chart(report))
-    extra = {k: _data_uri(v) if v else None for k, v in _extra_charts(report, charts).items()}
+    """Render a station's day as one self-contained HTML page (charts inline as SVG)."""
+    svg = _page_charts(report)
+    sec = report.rarity
+    extra = {"return_levels": rr.return_level_chart(sec, report.datum) if sec is not None else None,
+             "sea_level": rr.sea_level_chart(sec, report.datum) if sec is not None else None}
     return _environment().get_template("report_day.html").render(
-        **_context(report, chart_src, extra["trend"], extra["staff"]), for_email=False,
-        return_levels_src=extra["return_levels"], sea_level_src=extra["sea_level"])
+        **_context(report, "", "svg" if svg["trend"] else None, "svg" if svg["staff"] else None),
+        svg=svg, for_email=False,
+        return_levels_src=_data_uri(extra["return_levels"]) if extra["return_levels"] else None,
+        sea_level_src=_data_uri(extra["sea_level"]) if extra["sea_level"] else None)
 
 
 @dataclass(frozen=True)
@@ -211,8 +230,8 @@ def render_day_email(report: DayReport) -> ReportEmail:
     env = _environment()
     context = _context(report, sources["chart"], sources.get("trend"), sources.get("staff"))
     html_part = env.get_template("report_day.html").render(
-        **context, for_email=True, return_levels_src=sources.get("return_levels"),
-        sea_level_src=sources.get("sea_level"))
+        **context, svg=dict.fromkeys(("day_wide", "day_narrow", "trend", "staff")), for_email=True,
+        return_levels_src=sources.get("return_levels"), sea_level_src=sources.get("sea_level"))
     text = env.get_template("report_summary.txt").render(**context)
     f = context["f"]
     subject = f"Daily tide report: {report.station_name}, {report.day.isoformat()}"
@@ -283,7 +302,7 @@ def render_index_html(folder: Path, generated_at: pd.Timestamp | None = None) ->
     generated = (generated_at or pd.Timestamp.now(tz="UTC")).tz_convert("UTC")
     return _environment().get_template("report_index.html").render(
         stations=sorted(stations.values(), key=lambda e: e["name"].lower()),
-        caution=CAUTION,
+        caution=CAUTION, caution_line=CAUTION_LINE,
         generated=generated.strftime("%Y-%m-%d %H:%M UTC"),
     )
 

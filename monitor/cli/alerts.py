@@ -120,7 +120,10 @@ def _value(v, unit) -> str:
         return f"{v:.2f} m"
     if unit == "s":
         return f"{v / 60:.0f} min"
-    return f"{v:g}"
+    if unit == "":
+        n = int(round(v))
+        return f"{n} fault{'s' if n != 1 else ''}"
+    return f"{v:g} {unit}".strip()
 
 
 # --------------------------------------------------------------------------- commands

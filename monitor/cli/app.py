@@ -11,12 +11,14 @@ from __future__ import annotations
 import argparse
 import logging
 import sys
+from importlib import metadata
 
 from monitor.cli import alerts, extremes, qc, report, station, tide
 from monitor.cli.errors import UserError
 from monitor.errors import MonitorError
 from predictor.caution import CAUTION
 from predictor.errors import PredictorError
+from monitor.service.daemon import log_formatter
 
 # Verb groups, each owning its own module; order is the order shown in --help.
 _GROUPS = (
@@ -29,6 +31,14 @@ _GROUPS = (
 )
 
 
+def version() -> str:
+    """The installed package's version (``pyproject.toml``), or ``unknown`` when not installed."""
+    try:
+        return metadata.version("quaywatch")
+    except metadata.PackageNotFoundError:
+        return "unknown (not installed)"
+
+
 def build_parser() -> argparse.ArgumentParser:
     parser = argparse.ArgumentParser(
         prog="quaywatch",
@@ -36,6 +46,7 @@ def build_parser() -> argparse.ArgumentParser:
         "control, alerts and reports. " + CAUTION,
     )
     parser.add_argument("-v", "--verbose", action="count", default=0, help="more log output")
+    parser.add_argument("--version", action="version", version=f"%(prog)s {version()}")
     sub = parser.add_subparsers(dest="verb", metavar="VERB")
     sub.required = True
     for group in _GROUPS:
@@ -43,13 +54,32 @@ def build_parser() -> argparse.ArgumentParser:
     return parser
 
 
+#: Verbs whose configuration file comes before their action (``alerts CONFIG episodes``), and
+#: the actions; the older order ``staff add CONFIG`` is read too.
+_CONFIG_FIRST = {"staff": ("add", "list"), "alerts": ("episodes", "outbox", "test-mail")}
+
+
+def config_first(argv: list[str]) -> list[str]:
+    """``VERB ACTION CONFIG ...`` rewritten as ``VERB CONFIG ACTION ...`` for the verbs of
+    :data:`_CONFIG_FIRST`; anything else unchanged."""
+    argv = list(argv)
+    i = next((k for k, a in enumerate(argv) if not a.startswith("-")), None)
+    if i is None or argv[i] not in _CONFIG_FIRST or len(argv) < i + 3:
+        return argv
+    action, then = argv[i + 1], argv[i + 2]
+    if action in _CONFIG_FIRST[argv[i]] and not then.startswith("-") and then not in _CONFIG_FIRST[argv[i]]:
+        argv[i + 1], argv[i + 2] = then, action
+    return argv
+
+
 def main(argv: list[str] | None = None) -> int:
     parser = build_parser()
-    args = parser.parse_args(argv)
+    args = parser.parse_args(config_first(sys.argv[1:] if argv is None else argv))
+    handler = logging.StreamHandler(sys.stderr)
+    handler.setFormatter(log_formatter())
     logging.basicConfig(
         level=logging.DEBUG if args.verbose > 1 else logging.INFO if args.verbose else logging.WARNING,
-        format="%(asctime)s %(levelname)s %(name)s: %(message)s",
-        stream=sys.stderr,
+        handlers=[handler],
     )
     try:
         return int(args.func(args) or 0)

@@ -12,6 +12,7 @@ import re
 import sys
 import warnings
 
+import numpy as np
 
 from monitor.cli.errors import UserError
 from monitor.cli.timeparse import zone as _zone
@@ -23,6 +24,47 @@ from predictor.fit import FitInputError
 from predictor.fit import harmonic_fit
 
 __all__ = ["CAUTION", "register", "run_fit", "model_summary"]
+
+
+#: Widest tidal range a gauge reads in metres: the largest known (about 16 m, Bay of Fundy,
+#: from memory) with room for a storm surge on top [m].
+MAX_RANGE_M = 25.0
+#: Farthest a record's mean may stand from the datum its levels are on [m]: chart datum and
+#: gauge zeros sit near the lowest water, a few metres below the mean (common practice, no source).
+MAX_MEAN_M = 100.0
+_UNITS = (("centimetres", 100.0), ("millimetres", 1000.0))
+
+
+def check_metres(path, levels: np.ndarray) -> None:
+    """Refuse levels that no tide gauge reads in metres, naming the unit they look like.
+
+    The spread is taken between the 0.5th and 99.5th percentiles, so a few wild values do
+    not decide it. A record passes when that range is at most :data:`MAX_RANGE_M` and its
+    median at most :data:`MAX_MEAN_M` from zero.
+
+    Raises
+    ------
+    UserError
+        Naming the file, the range and mean found, and the unit (centimetres or millimetres)
+        under which the numbers would be a plausible tide.
+
+    References
+    ----------
+    Pugh, D., Woodworth, P. (2014). Sea-Level Science, ch. 1: the largest tidal ranges, about
+    16 m in the Bay of Fundy (from memory). The mean's limit is common practice, no source.
+    """
+    lo, mid, hi = np.nanpercentile(levels, [0.5, 50.0, 99.5])
+    spread = float(hi - lo)
+    if spread <= MAX_RANGE_M and abs(float(mid)) <= MAX_MEAN_M:
+        return
+    guess = next((name for name, div in _UNITS
+                  if spread / div <= MAX_RANGE_M and abs(float(mid)) / div <= MAX_MEAN_M), None)
+    looks = (f"the numbers look like {guess}; convert the levels to metres (divide by "
+             f"{100 if guess == 'centimetres' else 1000})" if guess else
+             "the numbers are not a tide in metres")
+    raise UserError(f"{path}: levels range over {spread:g} and centre on {float(mid):g}: no tide gauge "
+                    f"reads that in metres (a range above {MAX_RANGE_M:g} m or a mean more than "
+                    f"{MAX_MEAN_M:g} m from its datum); {looks}")
 
 
 def model_summary(model) -> dict:
@@ -51,55 +93,97 @@ def _constituent_dicts(model):
         yield c if isinstance(c, dict) else dict(vars(c))
 
 
+#: Tidal bands by cycles per day (speed / 15 deg/h, rounded), in the order printed.
+_BANDS = {2: "Twice a day (semidiurnal)", 1: "Once a day (diurnal)", 0: "Long period (days to a year)",
+          3: "Three times a day (terdiurnal)", 4: "Four times a day (quarter-diurnal)"}
+_HIGHER = "Five or more times a day (shallow water)"
+
+
+def _band(speed: float | None) -> str:
+    """The band a constituent's speed [deg/h] falls in (15 deg/h = one cycle a day)."""
+    if speed is None:
+        return _HIGHER
+    return _BANDS.get(int(round(float(speed) / 15.0)), _HIGHER)
+
+
+def _judgement(c: dict, inferred: dict) -> str:
+    """``resolved`` when the amplitude stands clear of its interval (the interval does not
+    reach zero), ``too weak to tell from noise`` when it does; inferred ones say so."""
+    if c["name"] in inferred:
+        return f"inferred from {inferred[c['name']]}"
+    amp, ci = c.get("amplitude"), c.get("amplitude_ci")
+    if amp is None or ci is None:
+        return "not judged (no interval)"
+    if amp < 0.0005:
+        return "under a millimetre"
+    return "resolved" if amp > ci else "too weak to tell from noise"
+
+
+def _with_interval(values: list, halves: list, fmt: str, unit: str) -> list[str]:
+    """``1.100 ± 0.004 m`` for each value, the numbers aligned on their ``±``."""
+    v = [format(x, fmt) if x is not None else "-" for x in values]
+    h = [format(x, fmt) if x is not None else "" for x in halves]
+    wv, wh = max(map(len, v)), max(map(len, h))
+    return [f"{a:>{wv}} \u00b1 {b:>{wh}}{unit}" if b else f"{a:>{wv}}{' ' * (wh + 3)}{unit}"
+            for a, b in zip(v, h)]
+
+
 def _table(model, source) -> str:
+    """The printout of ``fit``: constituents grouped by tidal band, each amplitude and phase
+    with its interval in one column and a plain judgement; the record summary at the end."""
     meta = dict(getattr(model, "metadata", {}) or {})
     conf = meta.get("confidence")
-    ci = f"±{conf * 100:.0f}%" if conf else "±CI"
-    rows = [
-        f"Harmonic constants from {source} (phases: Greenwich lag, UTC)",
-        f"record {meta.get('record_start', '?')} to {meta.get('record_end', '?')}, "
-        f"{meta.get('n_samples', '?')} samples, {meta.get('duration_days', float('nan')):.1f} days, "
-        f"Rayleigh factor {meta.get('rayleigh', float('nan')):g}, {meta.get('method', '')}",
-        f"mean level {model.mean:.4f} m"
-        + (f" above {datum_words(model.datum)}" if getattr(model, "datum", None) else "")
-        + f"; residual RMS {meta.get('rms', float('nan')):.4f} m; "
-        f"variance explained {100 * meta.get('variance_explained', float('nan')):.2f} %",
-    ]
-    if meta.get("robust_reason"):
-        rows.append(f"{meta.get('method', 'fit')}: {meta['robust_reason']}")
+    level = f"{conf * 100:.0f} %" if conf else "confidence"
+    inferred = {d["name"]: d["from"] for d in meta.get("inferred") or []}
+    rows = [f"Tidal constants fitted to {source}",
+            f"Amplitudes in metres and phases in degrees (Greenwich phase lag, times in UTC), each "
+            f"with its {level} interval.",
+            "",
+            f"Mean level {model.mean:.3f} m"
+            + (f" above {datum_words(model.datum)}" if getattr(model, "datum", None) else "")]
     if meta.get("trend_epoch"):
-        rows.append(f"trend {model.trend * 1000:.2f} mm/year about {meta['trend_epoch']}")
-    rows.append("")
-    head = ("name", "speed[deg/h]", "amplitude[m]", f"{ci}[m]", "phase[deg]", f"{ci}[deg]", "SNR")
-    rows.append(f"{head[0]:<6} {head[1]:>13} {head[2]:>12} {head[3]:>10} {head[4]:>10} {head[5]:>10} {head[6]:>9}")
+        rows.append(f"Trend {model.trend * 1000:.2f} mm a year about {meta['trend_epoch']}")
+    groups: dict[str, list[dict]] = {}
     for c in _constituent_dicts(model):
-        def num(key, fmt):
-            v = c.get(key)
-            return format(v, fmt) if v is not None else "-"
-        rows.append(f"{c['name']:<6} {num('speed', '13.7f')} {num('amplitude', '12.4f')} "
-                    f"{num('amplitude_ci', '10.4f')} {num('phase', '10.2f')} {num('phase_ci', '10.2f')} "
-                    f"{num('snr', '9.3g')}")
-    inferred = meta.get("inferred") or []
+        groups.setdefault(_band(c.get("speed")), []).append(c)
+    width = max((len(c["name"]) for g in groups.values() for c in g), default=4)
+    for band in [*_BANDS.values(), _HIGHER]:
+        members = sorted(groups.get(band, []), key=lambda c: -(c.get("amplitude") or 0.0))
+        if not members:
+            continue
+        rows += ["", band]
+        amps = _with_interval([c.get("amplitude") for c in members],
+                              [c.get("amplitude_ci") for c in members], ".3f", " m")
+        phases = _with_interval([c.get("phase") for c in members],
+                                [c.get("phase_ci") for c in members], ".1f", "\u00b0")
+        rows += [f"  {c['name']:<{width}}  {a}   {p}   {_judgement(c, inferred)}"
+                 for c, a, p in zip(members, amps, phases)]
+    rows += ["", "\"resolved\": the amplitude stands clear of its interval (the interval does not reach "
+             "zero); \"too weak to tell from noise\": it does, and its phase means little."]
     if inferred:
-        rows.append("")
-        rows.append(f"{len(inferred)} constituent(s) inferred, not fitted (the record cannot resolve them; "
-                    "amplitude and phase taken from a fitted neighbour, Foreman 1977):")
-        for d in inferred:
-            rows.append(f"  {d['name']} from {d['from']}: amplitude x {d['ratio']:.3f}, phase "
-                        f"{d['phase_difference']:+.1f} deg ({d['source']})")
+        rows.append("Inferred, not fitted (the record cannot separate them from a fitted neighbour; "
+                    "taken at a published ratio, Foreman 1977): "
+                    + "; ".join(f"{d['name']} = {d['from']} x {d['ratio']:.3f}, phase "
+                                f"{d['phase_difference']:+.1f}\u00b0" for d in meta.get("inferred") or []) + ".")
     dropped = meta.get("dropped") or []
     weak = [d for d in dropped if d["reason"].startswith("long-period")]
     if weak:
-        rows.append("")
-        rows.append(f"{len(weak)} long-period constituent(s) left out as not significant:")
-        rows += [f"  {d['name']}: {d['reason']}" for d in weak]
+        rows.append("Long-period constituents left out as not significant: "
+                    + "; ".join(f"{d['name']} ({d['reason']})" for d in weak) + ".")
     short = [d for d in dropped if not d["reason"].startswith("long-period")]
     if short:
-        rows.append("")
-        rows.append(f"{len(short)} constituent(s) left out (record length or sampling): "
-                    + ", ".join(d["name"] for d in short[:12]) + (" ..." if len(short) > 12 else ""))
-    rows.append("")
-    rows.append(CAUTION)
+        rows.append(f"Left out for the record's length or sampling ({len(short)}): "
+                    + ", ".join(d["name"] for d in short[:12]) + (" and more" if len(short) > 12 else "") + ".")
+    rows += ["", "The record and the fit",
+             f"  {meta.get('record_start', '?')} to {meta.get('record_end', '?')}: "
+             f"{meta.get('duration_days', float('nan')):.1f} days, {meta.get('n_samples', '?')} samples",
+             f"  constituents chosen so the record separates each from its neighbours "
+             f"(Rayleigh factor {meta.get('rayleigh', float('nan')):g}); method: {meta.get('method', '?')}",
+             f"  what is left after the fit: {meta.get('rms', float('nan')) * 1000:.1f} mm RMS; "
+             f"the tide explains {100 * meta.get('variance_explained', float('nan')):.2f} % of the variance"]
+    if meta.get("robust_reason"):
+        rows.append(f"  {meta.get('method', 'fit')}: {meta['robust_reason']}")
+    rows += ["", CAUTION]
     return "\n".join(rows) + "\n"
 
 
@@ -110,6 +194,7 @@ def run_fit(args) -> int:
     times, levels, notes = read_level_csv(args.obs, tz=None if args.tz is None else _zone(args.tz))
     for note in notes:
         print(note, file=sys.stderr)
+    check_metres(args.obs, levels)
     with warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always", FitConditioningWarning)
         try:

@@ -15,9 +15,11 @@ import argparse
 import numpy as np
 import pandas as pd
 
+from alerts.reports.model import QC_TEST_NAMES
 from monitor.cli.common import CAUTION, count, finite_float, store_errors
 from monitor.cli.common import table as _common_table
 from monitor.cli.errors import UserError
+from monitor.cli.timeparse import asked_zone
 from monitor.cli.timeparse import local_text as _local
 from monitor.cli.timeparse import parse_range, parse_time
 from monitor.quality import checks as qc
@@ -45,10 +47,12 @@ def register(subparsers) -> None:
     p = subparsers.add_parser("staff", help="tide-staff readings: add or list",
                               description="Tide-staff readings entered by a technician, used to check the "
                               "gauge's offset, scale and timing. " + CAUTION)
+    # quaywatch staff CONFIG ACTION, like alerts CONFIG ACTION (the old order, staff ACTION
+    # CONFIG, is still read: monitor.cli puts the configuration first)
+    p.add_argument("config", help="configuration file (TOML)")
     sub = p.add_subparsers(dest="staff_verb", metavar="ACTION")
     sub.required = True
     a = sub.add_parser("add", help="record one staff reading")
-    a.add_argument("config")
     a.add_argument("--station", required=True)
     a.add_argument("--at", required=True, help="time of the reading, ISO 8601 (no offset: local time)")
     a.add_argument("--reading", required=True, type=finite_float, help="staff reading in metres on the station datum")
@@ -56,7 +60,6 @@ def register(subparsers) -> None:
     a.add_argument("--note", default="", help="free text (sea state, staff used)")
     a.set_defaults(func=store_errors(cmd_staff_add))
     ls = sub.add_parser("list", help="list staff readings with the gauge beside them")
-    ls.add_argument("config")
     ls.add_argument("--station", required=True)
     ls.set_defaults(func=store_errors(cmd_staff_list))
 
@@ -115,8 +118,15 @@ def flag_summary(tests: pd.DataFrame) -> list[list[str]]:
         for code in (qc.PASS, qc.NOT_EVALUATED, qc.SUSPECT, qc.FAIL, qc.MISSING):
             k = int((vals == code).sum())
             cells.append(f"{k} ({k / n:.1%})" if k else "0")
-        rows.append(["aggregate" if col == "flag" else col] + cells)
+        rows.append(["aggregate" if col == "flag" else qc_test_label(col)] + cells)
     return rows
+
+
+def qc_test_label(test: str, short: bool = False) -> str:
+    """A test's name as the daily report gives it (``rate of change (QARTOD 7)``); ``short``:
+    without the bracket (``rate of change``)."""
+    name = QC_TEST_NAMES.get(test, test)
+    return name.split(" (")[0] if short else name
 
 
 def summarise(st, settings: qc.QcSettings, results: dict[str, pd.DataFrame], obs: dict[str, pd.DataFrame],
@@ -146,7 +156,7 @@ def summarise(st, settings: qc.QcSettings, results: dict[str, pd.DataFrame], obs
                 seg = tests[(tests.index >= e["start"]) & (tests.index <= e["end"])]
                 which = [c for c in qc.TESTS if (seg[c] >= qc.SUSPECT).any() and (seg[c] != qc.MISSING).any()]
                 rows.append([_local(e["start"], tz), _local(e["end"], tz), str(e["samples"]),
-                             qc.FLAG_NAMES[int(e["worst"])], ", ".join(which)])
+                             qc.FLAG_NAMES[int(e["worst"])], ", ".join(qc_test_label(c, short=True) for c in which)])
             out += ["", "worst episodes:", _table(rows, ["from", "to", "samples", "worst", "tests"], right={2})]
         gaps = qc.find_gaps(tests.index, settings.gap_limit)
         if len(gaps):
@@ -179,6 +189,15 @@ def summarise(st, settings: qc.QcSettings, results: dict[str, pd.DataFrame], obs
                          f"{s.difference_mm:+.0f} mm)"])
         if steps.empty:
             diag.append(["datum steps, primary - backup", f"none above {settings.step_min_mm:g} mm"])
+        # The backup's clock against the primary's (the same sea: free of the surge), as the
+        # report shows it.
+        rel = dg.relative_clock(prim, usable["backup"])
+        if np.isfinite(rel["median_min"]):
+            diag.append(["backup clock vs primary", _pm(rel["median_min"], rel["offset_se_min"], "min", 2)
+                         + "  (+ = backup late)"])
+            for e in rel["episodes"]:
+                diag.append(["backup clock off", f"{e['lag_min']:+.1f} min from {_local(e['start'], tz)} "
+                             f"to {_local(e['end'], tz)}"])
     if prim is not None and len(prim) > 100 and model is not None:
         c = dg.clock_offset(prim, model)
         diag.append(["clock offset vs predicted tide",
@@ -279,7 +298,9 @@ def cmd_flag(args: argparse.Namespace) -> int:
             at, end = parse_time(args.at, "--at", st.tz), None
         n = qc.set_override(store, st.id, sensor, at.timestamp(), None if end is None else end.timestamp(),
                             args.flag, args.who, args.why)
-        span = _local(at, st.tz) + ("" if end is None else f" to {_local(end, st.tz)}")
+        # answered in the zone the time was typed in (the station's for a time without one)
+        asked = asked_zone(args.at, st.tz)
+        span = _local(at, asked) + ("" if end is None else f" to {_local(end, asked_zone(args.end, st.tz))}")
         print(f"{n} sample{'s' if n != 1 else ''} of {st.id}/{sensor} at {span} flagged "
               f"{args.flag} ({qc.FLAG_NAMES[args.flag]}) by {args.who}: {args.why}")
     return 0

@@ -28,7 +28,7 @@ from monitor.feeds.capture import is_capture
 from monitor.feeds.capture import read_capture
 from monitor.feeds.parse import Reject
 from monitor.feeds.parse import parse_lines
-from monitor.service.config import datum_words, load_config
+from monitor.service.config import datum_words, load_config, unsendable
 from monitor.service.constants import load_model
 from monitor.service.daemon import future_tolerance
 from monitor.service.daemon import preflight
@@ -156,6 +156,9 @@ def cmd_check(args: argparse.Namespace) -> int:
     # a broken constants file, or a store that could not be created, is a configuration
     # problem too (checked without creating anything)
     sources = preflight(cfg)
+    problems = unsendable(cfg)
+    if problems:
+        raise UserError(f"{args.config}: " + "; ".join(problems))
     print(f"{args.config}: configuration is valid")
     for st in cfg.stations:
         sensors = ", ".join(f"{r} ({s.units}, feed {getattr(s.feed, 'kind', 'none')})" for r, s in st.sensors.items())
@@ -294,8 +297,13 @@ def ingest_file(store, sensor, path: Path, progress=None, batch_size: int = INGE
     lineno = 0
     first_t = None
     label = f"ingest:{sensor.station}:{path.name}"
+    fmt = sensor.format
     for lines, pos in _read_batches(path, batch_size):
-        parsed = parse_lines(lines, sensor.format, time.time(), range(lineno + 1, lineno + 1 + len(lines)),
+        if lineno == 0 and _is_header(lines[0], fmt):
+            # a file written with a column header, for a sensor whose lines have none: the
+            # header is skipped, not counted as a rejected line
+            fmt = dataclasses.replace(fmt, header_lines=1)
+        parsed = parse_lines(lines, fmt, time.time(), range(lineno + 1, lineno + 1 + len(lines)),
                              max_ahead)
         lineno += len(lines)
         res = store.write_batch(sensor.station, sensor.role, parsed.t, parsed.value, parsed.time_source,
@@ -310,6 +318,14 @@ def ingest_file(store, sensor, path: Path, progress=None, batch_size: int = INGE
         if progress:
             progress(path, lineno, pos, total)
     return total, first_t
+
+
+def _is_header(line: str, fmt) -> bool:
+    """The first line of a file is a column header: the format expects none, and the line
+    holds words but not a single digit (no time or level can be written without one)."""
+    text = line.strip()
+    return (fmt.header_lines == 0 and bool(text) and not (fmt.comment and text.startswith(fmt.comment))
+            and re.search(r"[A-Za-z]", text) is not None and re.search(r"\d", text) is None)
 
 
 def _ingest_capture(store, sensor, path: Path, progress, batch_size: int, first_reject: list | None,

@@ -182,12 +182,14 @@ def run_table(args) -> int:
         raise UserError(str(exc)) from None
     offset = -src.shift
 
+    when = (f"times: local, {tz.key} (its offset from UTC beside each time)" if args.tz else
+            "times: UTC (no --tz given; give --tz ZONE for local times)")
     lines = [
         f"High and low waters from {src.source}",
-        f"times: local, {tz.key} (UTC offset shown); {src.describe()}"
+        f"{when}; {src.describe()}"
         + (f" (constants' levels {offset:+.3f} m)" if offset and not getattr(args, "config", None) else ""),
         "",
-        f"{'date':<15} {'time':>5} {'UTC':>6}  {'tide':<4} {'height [m]':>10}",
+        f"{'date':<15} {'time':>5} {'offset':>6}  {'tide':<4} {'height [m]':>10}",
     ]
     last_date = None
     notes = _stand_notes(events)
@@ -231,6 +233,15 @@ def _stand_notes(events: pd.DataFrame) -> list[str]:
 # --------------------------------------------------------------------------- datums
 
 
+#: The ranges among the datums, and their names in ``datums --json``.
+_RANGES = {"MN": "mean_range", "GT": "diurnal_range"}
+DATUMS_METHOD = ("every high and low water of the predicted astronomical tide over the period, one "
+                 "of each per tidal cycle (the dip inside a double high water is not a low water); "
+                 "MHW and MLW are their means, MHHW and MLLW the means of each tidal day's higher high "
+                 "and lower low water, MTL halfway between MHW and MLW, MSL the mean of the tide, HAT "
+                 "and LAT its highest and lowest.")
+
+
 def run_datums(args) -> int:
     """``quaywatch datums``: tidal datums from an 18.61-year prediction."""
     src = _Source(args)
@@ -240,16 +251,18 @@ def run_datums(args) -> int:
         raise UserError(f"--years {args.years}: give a period from 0 to 100 years (18.61 is the nodal cycle)")
     d = tidal_datums(model, start=start, years=args.years)
     offset = -src.shift
-    levels = {k: d[k] + (offset if k not in ("MN", "GT") else 0.0) for k in DATUM_ORDER}
+    levels = {k: d[k] + offset for k in DATUM_ORDER if k not in _RANGES}
+    ranges = {name: d[k] for k, name in _RANGES.items()}
     if args.json:
         doc = {
             "datums": levels,
+            "ranges": ranges,
             "units": "m",
             "reference": src.datum,
             "datum_offset": offset,
             "source": src.source,
             "period": {"start": d["start"], "end": d["end"], "years": args.years},
-            "method": "turning points of the predicted astronomical tide (NOAA 2003 definitions)",
+            "method": DATUMS_METHOD,
             "caution": CAUTION,
         }
         sys.stdout.write(json.dumps(doc, indent=2) + "\n")
@@ -261,10 +274,11 @@ def run_datums(args) -> int:
         "",
         f"{'datum':<6} {'height [m]':>10}  description",
     ]
-    for k in DATUM_ORDER:
-        if k == "MN":
-            lines.append(f"{'':<6} {'range [m]':>10}")
-        lines.append(f"{k:<6} {levels[k]:>10.3f}  {DATUM_DESCRIPTIONS[k]}")
+    lines += [f"{k:<6} {levels[k]:>10.3f}  {DATUM_DESCRIPTIONS[k]}" for k in levels]
+    lines += ["", "Ranges (no datum: a difference of two levels)"]
+    lines += [f"  {DATUM_DESCRIPTIONS[k].split(':')[0]:<14} {ranges[name]:>6.3f} m  "
+              f"{DATUM_DESCRIPTIONS[k].split(': ', 1)[1]}" for k, name in _RANGES.items()]
+    lines += ["", "How: " + DATUMS_METHOD]
     lines += ["", CAUTION]
     sys.stdout.write("\n".join(lines) + "\n")
     return 0

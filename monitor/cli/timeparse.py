@@ -41,6 +41,20 @@ def zone(name: Any, option: str = "--tz") -> dt.tzinfo:
                         "Europe/Dublin or UTC)") from None
 
 
+def asked_zone(text: Any, default: Any) -> dt.tzinfo:
+    """The zone a time was typed in, to answer in it: UTC for ``Z``, the fixed offset for
+    ``+01:00``, else ``default`` (the station's zone, for a time typed without one)."""
+    m = _ISO.match(str(text).strip())
+    z = m.group("zone") if m else None
+    if not z:
+        return zone(default)
+    if z in ("Z", "z"):
+        return dt.timezone.utc
+    digits = z[1:].replace(":", "")
+    minutes = int(digits[:2]) * 60 + (int(digits[2:4]) if len(digits) > 2 else 0)
+    return dt.timezone(dt.timedelta(minutes=minutes if z[0] == "+" else -minutes))
+
+
 def _key(z: dt.tzinfo) -> str:
     return getattr(z, "key", None) or str(z)
 

@@ -17,8 +17,10 @@ from __future__ import annotations
 
 import dataclasses
 import difflib
+import logging
 import math
 import re
+import warnings
 import zoneinfo
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -33,6 +35,8 @@ from monitor.feeds import feed_from_config
 from monitor.feeds.parse import LineFormat
 from monitor.quality.checks import qc_settings_from
 from predictor.tomlfile import read_toml
+
+log = logging.getLogger(__name__)
 
 # Conversion of each accepted unit to metres (levels) or hectopascals (pressure).
 LEVEL_UNITS = {"m": 1.0, "cm": 0.01, "mm": 0.001, "ft": 0.3048}  # 1 ft = 0.3048 m exactly (international foot, 1959)
@@ -400,6 +404,24 @@ def validate_config(raw: Any, base_dir: Path | str = ".", path: Path | None = No
                   capture_dir=capture_dir), []
 
 
+def unsendable(cfg: "Config") -> list[str]:
+    """Rules with recipients in a configuration without a ``[mail]`` table: their alerts
+    could never be sent. One problem per station, by key path, naming the rules.
+
+    ``check`` refuses such a configuration; ``run`` says so in its log and keeps the
+    messages in the outbox, so they go out once a ``[mail]`` table is added."""
+    if cfg.mail is not None:
+        return []
+    problems = []
+    for i, st in enumerate(cfg.stations):
+        named = [r.id for r in st.rules or () if r.recipients_up_to(len(r.steps) - 1)]
+        if named:
+            problems.append(f"mail: required: stations[{i}].rules ({', '.join(named)}) have recipients, "
+                            f"but there is no [mail] table, so their alerts could never be sent; add "
+                            f"[mail] (sender and host, or save_dir) or remove the rules' notify lists")
+    return problems
+
+
 def _daemon(c: _Checker, raw: Any) -> DaemonSettings:
     t = c.table(raw, "daemon")
     if t is None:
@@ -623,11 +645,17 @@ def load_config(path: str | Path) -> Config:
     ------
     ConfigError
         When the file cannot be read, is not valid TOML, or has any problem; the message
-        lists every problem, one per line, each with its key path.
+        lists every problem, one per line, each with its key path. A deprecated key still
+        read is said as a warning on the log (the command line shows it on stderr).
     """
     path = Path(path)
     raw = read_toml(path, "configuration file", ConfigError)
-    cfg, errors = validate_config(raw, path.resolve().parent, path)
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always", DeprecationWarning)
+        cfg, errors = validate_config(raw, path.resolve().parent, path)
+    for w in caught:
+        if issubclass(w.category, DeprecationWarning):
+            log.warning("%s: %s", path, w.message)   # a deprecated key: said, not refused
     if errors:
         listing = "\n".join(f"  {e}" for e in errors)
         n = len(errors)

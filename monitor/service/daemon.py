@@ -52,7 +52,7 @@ from monitor.feeds.parse import parse_lines
 from monitor.quality import checks as qc
 from monitor.quality import diagnostics
 from monitor.quality.checks import QcSettings
-from monitor.service.config import Config, SensorConfig, StationConfig
+from monitor.service.config import Config, SensorConfig, StationConfig, unsendable
 from monitor.service.constants import load_model, model_from_text, model_to_text
 from monitor.service.reporting import write_due_reports
 from monitor.store.database import BatchResult, EMPTY_BATCH, Store, check_folder, check_store_path
@@ -464,7 +464,8 @@ class Daemon:
         if self.rules_mod is not None:
             view = self.rules_mod.StationView(id=st.id, name=st.name, tz=st.tz, datums=dict(st.datums),
                                                notes=st.note, display_datum=st.display_datum,
-                                               datum_note=st.datum_note)
+                                               datum_note=st.datum_note,
+                                               forms=getattr(self.cfg.mail, "forms", ()) or ())
         kinds = [getattr(s.feed, "kind", None) for s in st.sensors.values() if s.feed is not None]
         rt = StationRuntime(cfg=st, model=model, model_source=source, view=view,
                             replay_clock=bool(kinds) and all(k == "replay" for k in kinds))
@@ -1023,7 +1024,7 @@ def setup_logging(cfg: Config, verbose: int = 0) -> None:
         sched_log.removeFilter(f)
     if verbose < 2:
         sched_log.addFilter(_SkippedRunFilter())
-    fmt = logging.Formatter("%(asctime)s %(levelname)s %(name)s: %(message)s")
+    fmt = log_formatter()  # ISO 8601 UTC stamps
     if not root.handlers:
         h = logging.StreamHandler()
         h.setFormatter(fmt)
@@ -1039,6 +1040,15 @@ def setup_logging(cfg: Config, verbose: int = 0) -> None:
         root.addHandler(fh)
 
 
+def log_formatter() -> logging.Formatter:
+    """Log lines stamped in ISO 8601 UTC to the millisecond: ``2025-10-23T12:00:00.123Z
+    INFO name: message`` (the daemon's log, and the command line's warnings)."""
+    fmt = logging.Formatter("%(asctime)s.%(msecs)03dZ %(levelname)s %(name)s: %(message)s",
+                            datefmt="%Y-%m-%dT%H:%M:%S")
+    fmt.converter = time.gmtime
+    return fmt
+
+
 def run_daemon(cfg: Config, until_exhausted: bool = False, verbose: int = 0) -> int:
     """``quaywatch run``: check what can be checked, open the feeds, lock the store, run the
     jobs, close everything. Nothing is created before the checks pass."""
@@ -1047,6 +1057,8 @@ def run_daemon(cfg: Config, until_exhausted: bool = False, verbose: int = 0) -> 
     store = daemon = None
     try:
         setup_logging(cfg, verbose)
+        for problem in unsendable(cfg):
+            log.warning("%s (the messages wait in the outbox)", problem)
         store = Store.open(cfg.store_path, lock=True)
         daemon = Daemon(cfg, store, feeds)
         daemon.open_feeds()

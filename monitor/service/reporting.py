@@ -504,6 +504,19 @@ def _series(store: Any, sid: str, sensor: str, t0: int, t1: int) -> pd.Series:
     return read_level_series(store, sid, sensor, t0, t1)
 
 
+def _weekly_medians(timing: pd.DataFrame, week_ends: list) -> pd.Series:
+    """Median ``lag_min`` of the timing windows ending within each week ``(end - 7 d, end]``."""
+    out = pd.Series(np.nan, index=pd.DatetimeIndex(week_ends), dtype=float)
+    if len(timing):
+        ends = pd.DatetimeIndex(timing["end"])
+        lags = timing["lag_min"].to_numpy(dtype=float)
+        for we in week_ends:
+            sel = (ends > we - WEEK) & (ends <= we)
+            if sel.any():
+                out.loc[we] = float(np.median(lags[sel]))
+    return out
+
+
 def _diagnostics(store: Any, station: Any, model: Any, end: pd.Timestamp, weeks: int) -> list[report_model.Diagnostic]:
     """Drift against the backup, clock offset and datum steps over the recent weeks.
 
@@ -531,6 +544,7 @@ def _diagnostics(store: Any, station: Any, model: Any, end: pd.Timestamp, weeks:
                     if len(p) > 10:
                         values[week_end] = diagnostics.sensor_drift(p, backup[(backup.index >= a) & (backup.index < b)])
                 latest = diagnostics.sensor_drift(primary[primary.index >= end - WEEK], backup[backup.index >= end - WEEK])
+                values[end] = latest   # the chart's last point is the figure shown
                 out.append(report_model.Diagnostic(
                     "Primary minus backup: drift", "mm/day", _num(latest["drift_mm_per_day"]),
                     _half_width(latest), pd.Series({k: v["drift_mm_per_day"] for k, v in values.items()}, dtype=float),
@@ -540,26 +554,28 @@ def _diagnostics(store: Any, station: Any, model: Any, end: pd.Timestamp, weeks:
                     pd.Series({k: v["offset_mm"] for k, v in values.items()}, dtype=float)))
         if "backup" in sensors and len(backup := _series(store, sid, "backup", t_start, t_end)):
             # Two sensors see the same sea: their relative clock is free of the surge.
+            # The figure shown is the last week's median lag, and the chart's last point is
+            # that same figure; the spans off by more than the limit are named in the note.
             rel = diagnostics.relative_clock(primary[primary.index >= end - WEEK], backup[backup.index >= end - WEEK])
-            timing = rel["timing"]
             eps = rel["episodes"]
-            worst = max(eps, key=lambda e: abs(e["lag_min"])) if eps else None
-            history = (pd.Series(timing["lag_min"].to_numpy(dtype=float), index=pd.DatetimeIndex(timing["end"]))
-                       .resample("7D").median() if len(timing) else pd.Series(dtype=float))
+            history = _weekly_medians(diagnostics.relative_clock(primary, backup)["timing"], weeks_index)
+            history.loc[end] = rel["median_min"]
             out.append(report_model.Diagnostic(
                 "Backup clock against the primary", "min",
-                _num(worst["lag_min"]) if worst else _num(rel["median_min"]), _num(rel["offset_se_min"]), history,
-                "last 7 days, positive: the backup is late; " + (", ".join(
+                _num(rel["median_min"]), _num(rel["offset_se_min"]), history,
+                "last 7 days, median, positive: the backup is late; " + (", ".join(
                     f"{e['lag_min']:+.1f} min from {e['start'].tz_convert(station.tz):%d %b %H:%M} "
                     f"to {e['end'].tz_convert(station.tz):%d %b %H:%M}" for e in eps) if eps
                     else "no span off by more than 1.5 min")))
         if model is not None:
-            clock = diagnostics.clock_offset(primary, model)
+            # The figure is the last week's, the same window as the chart's last point.
+            clock = diagnostics.clock_offset(primary[(primary.index > end - WEEK) & (primary.index <= end)], model)
             # Each week fitted as a whole: a storm day cannot pull the week's figure.
             history = diagnostics.clock_trend(primary, model, [end - k * WEEK for k in range(weeks - 1, -1, -1)])
             out.append(report_model.Diagnostic("Clock offset against the predicted tide", "min", _num(clock["offset_min"]),
                                     _num(clock["offset_se_min"]), history,
-                                    f"{clock.get('days', 0)} days; positive: the record lags the tide"))
+                                    f"last 7 days ({clock.get('days', 0)} days of record); positive: the "
+                                    f"record lags the tide"))
             week = primary[primary.index >= end - WEEK]
             if "backup" in sensors and len(backup):
                 # Primary minus backup first: sea and weather cancel, and the step is attributed.
@@ -634,8 +650,9 @@ def _alerts(db: Any, station: Any, t0: int, t1: int, shift: float) -> list[repor
             peak = peak + float(datums.get(ep.get("datum") or "station", 0.0)) - shift
         rows.append(report_model.AlertEpisodeRow(
             rule=ep["rule"], level=ep.get("top_step") or ep.get("step_now") or "", started=utc_timestamp(ep["opened_at"]),
-            cleared=utc_timestamp(ep["closed_at"]), peak=peak, unit=ep.get("unit") or "m",
-            deliveries=tuple(deliveries), signed=watch.startswith("residual")))
+            cleared=utc_timestamp(ep["closed_at"]), peak=peak, unit="m" if ep.get("unit") is None else ep["unit"],
+            deliveries=tuple(deliveries), signed=watch.startswith("residual"),
+            kind="gauge" if watch in ("equipment_fault", "feed_silent") else "water"))
     return rows
 
 
