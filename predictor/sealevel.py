@@ -40,10 +40,11 @@ import pandas as pd
 from scipy import optimize, stats
 
 from predictor.astro import astronomical_arguments
+from predictor.errors import PredictorError
 
 __all__ = [
     "SeaLevelError", "MeanSeaLevels", "TrendResult", "mean_sea_levels", "sea_level_trend",
-    "stationary_levels", "COMPLETENESS_RULE", "NODAL_PERIOD_YEARS",
+    "stationary_levels", "stationary_shift_se", "COMPLETENESS_RULE", "NODAL_PERIOD_YEARS",
 ]
 
 SECONDS_PER_YEAR = 365.25 * 86400.0
@@ -69,7 +70,7 @@ COMPLETENESS_RULE = (
 )
 
 
-class SeaLevelError(ValueError):
+class SeaLevelError(PredictorError):
     """Input the sea-level functions cannot use; the message says what is wrong."""
 
 
@@ -191,6 +192,10 @@ class TrendResult:
         For the chart, index month start: ``mean`` (as given), ``adjusted`` (steps corrected,
         seasonal cycle removed), ``trend`` (the trend line, plus the nodal term when fitted)
         [m].
+    covariance : numpy.ndarray or None
+        Covariance of (rate [m/year], offset of each step [m]) from the GLS fit (one trend
+        with its steps corrected; None for a split record): what
+        :func:`stationary_shift_se` propagates.
     """
 
     rate_mm_per_year: float
@@ -215,6 +220,7 @@ class TrendResult:
     step_note: str = ""
     notes: list = field(default_factory=list)
     monthly: pd.DataFrame | None = field(default=None, repr=False)
+    covariance: np.ndarray | None = field(default=None, repr=False)
 
 
 METHOD = ("generalised least squares with AR(1) errors between monthly means (correlation "
@@ -292,6 +298,8 @@ def _one_trend(y: pd.Series, steps: list, nodal: str, confidence: float) -> Tren
     for j, s in enumerate(steps):
         i = names.index(f"step{j}")
         res.steps.append({"time": s, "offset_mm": 1e3 * g["beta"][i], "se_mm": 1e3 * g["se"][i]})
+    idx = [k] + [names.index(f"step{j}") for j in range(len(steps))]
+    res.covariance = g["cov"][np.ix_(idx, idx)]
     res.step_note = ("no datum steps given" if not steps else
                      f"corrected: {len(steps)} datum step(s) given; each offset estimated in the trend fit "
                      "and the whole record used on the datum of the last segment")
@@ -487,6 +495,44 @@ def stationary_levels(levels: pd.Series, trend: TrendResult, epoch=None) -> pd.S
     for st in trend.steps:
         out = out + np.where(s.index < st["time"], 1e-3 * st["offset_mm"], 0.0)
     return pd.Series(out, index=s.index, name=levels.name)
+
+
+def stationary_shift_se(trend: TrendResult, times) -> float:
+    """Standard error [m] of the mean shift :func:`stationary_levels` gives ``times``.
+
+    An error in the fitted rate, or in a step's offset, moves every stationary level of the
+    record together (by ``-d_rate (t - epoch) + d_offset`` before a step); averaged over the
+    record's times that is one shift of the whole sample, whose variance is ``a' C a`` with
+    ``a`` the mean of those coefficients and C the fit's covariance (the delta method, Coles
+    2001, sec. 2.6.4). The extreme-value fits take their input as exact: this is the part of a
+    return level's uncertainty they do not see.
+
+    Parameters
+    ----------
+    trend : TrendResult
+        With its ``covariance`` (one trend, steps corrected).
+    times : DatetimeIndex or array_like of datetime64
+        The times whose levels enter the extreme-value fit (e.g. each tidal cycle's).
+
+    Returns
+    -------
+    float
+        [m]; 0 when the trend has no covariance (a split record).
+
+    References
+    ----------
+    Coles, S. (2001), sec. 2.6.4 (delta method).
+    """
+    if trend.covariance is None:
+        return 0.0
+    idx = pd.DatetimeIndex(times)
+    idx = idx.tz_localize("UTC") if idx.tz is None else idx.tz_convert("UTC")
+    if len(idx) == 0:
+        return 0.0
+    dt = np.asarray((idx - trend.epoch) / pd.Timedelta(seconds=SECONDS_PER_YEAR), dtype=float)
+    a = [-float(np.mean(dt))] + [float(np.mean(idx < st["time"])) for st in trend.steps]
+    a = np.asarray(a)
+    return float(math.sqrt(max(a @ trend.covariance @ a, 0.0)))
 
 
 # ============================================================================ helpers

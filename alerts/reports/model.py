@@ -364,6 +364,7 @@ class DayReport:
     staff: StaffCheck | None = None
     barometer: BarometerPart | None = None
     verification: Sequence["VerificationRow"] = ()
+    rarity: Any = None  # alerts.reports.rarity.RaritySection: how rare the day's water was, the trend
 
 
 def empty_samples() -> pd.DataFrame:

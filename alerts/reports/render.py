@@ -23,6 +23,7 @@ import pandas as pd
 from markupsafe import Markup
 
 from alerts.reports import charts
+from alerts.reports import rarity as rr
 from alerts.reports.model import (
     CAUTION, CAUTION_LINE, FLAG_WORDS, QC_TEST_NAMES, DayFigures, DayReport, day_figures, offset_text, zone_label,
 )
@@ -160,9 +161,13 @@ def _context(report: DayReport, chart_src: str, trend_src: str | None,
 
 
 def _extra_charts(report: DayReport, charts: Any) -> dict[str, bytes | None]:
-    """The report's smaller charts: diagnostic trends and the staff (Van de Casteele) diagram."""
+    """The report's smaller charts: diagnostic trends, the staff (Van de Casteele) diagram, and
+    the return-level and sea-level charts (:mod:`alerts.reports.rarity`)."""
+    sec = report.rarity
     return {"trend": charts.trend_chart(report.diagnostics),
-            "staff": charts.staff_chart(report.staff) if report.staff is not None else None}
+            "staff": charts.staff_chart(report.staff) if report.staff is not None else None,
+            "return_levels": rr.return_level_chart(sec, report.datum) if sec is not None else None,
+            "sea_level": rr.sea_level_chart(sec, report.datum) if sec is not None else None}
 
 
 def _page_charts(report: DayReport) -> dict[str, Any]:
@@ -179,9 +184,14 @@ def _page_charts(report: DayReport) -> dict[str, Any]:
 def render_day_html(report: DayReport) -> str:
     """Render a station's day as one self-contained HTML page (charts inline as SVG)."""
     svg = _page_charts(report)
+    sec = report.rarity
+    extra = {"return_levels": rr.return_level_chart(sec, report.datum) if sec is not None else None,
+             "sea_level": rr.sea_level_chart(sec, report.datum) if sec is not None else None}
     return _environment().get_template("report_day.html").render(
         **_context(report, "", "svg" if svg["trend"] else None, "svg" if svg["staff"] else None),
-        svg=svg, for_email=False)
+        svg=svg, for_email=False,
+        return_levels_src=_data_uri(extra["return_levels"]) if extra["return_levels"] else None,
+        sea_level_src=_data_uri(extra["sea_level"]) if extra["sea_level"] else None)
 
 
 @dataclass(frozen=True)
@@ -220,7 +230,8 @@ def render_day_email(report: DayReport) -> ReportEmail:
     env = _environment()
     context = _context(report, sources["chart"], sources.get("trend"), sources.get("staff"))
     html_part = env.get_template("report_day.html").render(
-        **context, svg=dict.fromkeys(("day_wide", "day_narrow", "trend", "staff")), for_email=True)
+        **context, svg=dict.fromkeys(("day_wide", "day_narrow", "trend", "staff")), for_email=True,
+        return_levels_src=sources.get("return_levels"), sea_level_src=sources.get("sea_level"))
     text = env.get_template("report_summary.txt").render(**context)
     f = context["f"]
     subject = f"Daily tide report: {report.station_name}, {report.day.isoformat()}"

@@ -13,7 +13,7 @@ import logging
 import sys
 from importlib import metadata
 
-from monitor.cli import alerts, qc, report, serve, station, tide
+from monitor.cli import alerts, extremes, qc, report, serve, station, tide
 from monitor.cli.errors import UserError
 from monitor.errors import MonitorError
 from predictor.caution import CAUTION
@@ -28,6 +28,7 @@ _GROUPS = (
     alerts,    # alerts (list, outbox, test-mail)
     report,    # report
     serve,     # serve (live pages and reports over HTTP)
+    extremes,  # extremes (return levels, sea-level trend)
 )
 
 

@@ -26,6 +26,7 @@ from monitor.quality import checks as qc
 from monitor.quality import diagnostics
 from monitor.quality.checks import read_level_series
 from monitor.service.config import ResidualSettings, datum_words
+from monitor.service import extremes as EX
 from monitor.service.constants import load_model
 from monitor.surge import forecast as surge_forecast
 from monitor.surge import residual as surge_residual
@@ -248,6 +249,13 @@ def gather_day(store: Any, station: Any, day: dt.date, settings: report_model.Re
         staff = _staff(store, sid, end, settings.trend_weeks, shift)
     except Exception:
         log.exception("station %s: tide-staff check for the report failed", sid)
+    rarity = None
+    try:
+        passed = samples.loc[samples["flag"] == 1, "observed"] if len(samples) else samples["observed"]
+        rarity = EX.report_section(store, station, model, float(passed.max()) if len(passed) else None,
+                                passed.idxmax() if len(passed) else None, qc_settings=getattr(station, "qc", None))
+    except Exception:  # return levels must never stop the day's report
+        log.exception("station %s: return levels for the report failed", sid)
 
     rejects, rejected = _rejects(db, sid, t0, t1)
     conflicts = store.conflict_count(sid, start_t=t0, end_t=t1, by="at")
@@ -261,6 +269,7 @@ def gather_day(store: Any, station: Any, day: dt.date, settings: report_model.Re
         diagnostics=_diagnostics(store, station, model, end, settings.trend_weeks),
         alerts=_alerts(db, station, t0, t1, shift), constants=_constants(store, sid, model, model_source, shift),
         generated_at=now, forecast=forecast, staff=staff, barometer=barometer, verification=verification,
+        rarity=rarity,
     )
 
 

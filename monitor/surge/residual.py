@@ -198,25 +198,38 @@ def skew_surges(observed: pd.Series, extremes: pd.DataFrame, max_gap_s: float = 
     v_obs = obs.to_numpy(dtype=float)
     ext = tide_stands(extremes)
     lows = ext.loc[(ext["kind"] == "low") & ext["principal"], "t"].to_numpy()
+    # per stand, as arrays (a pandas group per cycle took most of a minute on 40 years)
+    highs = ext[ext["kind"] == "high"].sort_values(["stand", "t"], kind="stable")
+    stand = highs["stand"].to_numpy()
+    t_hi = highs["t"].to_numpy(dtype=float)
+    lv_hi = highs["level"].to_numpy(dtype=float)
+    _, first_i, n_in = np.unique(stand, return_index=True, return_counts=True)
+    if first_i.size == 0:
+        return pd.DataFrame(columns=cols)
+    first = t_hi[first_i]
+    last = t_hi[first_i + n_in - 1]
+    princ = highs["principal"].to_numpy(dtype=bool)
+    # the stand's first principal row (the high water of record)
+    pidx = np.flatnonzero(princ)
+    top = pidx[np.searchsorted(pidx, first_i)]
+    tk, lv = t_hi[top], lv_hi[top]
+    jb = np.searchsorted(lows, first, side="left")          # lows strictly before ``first``
+    before = np.where(jb > 0, lows[np.maximum(jb - 1, 0)], -np.inf)
+    ja = np.searchsorted(lows, last, side="right")          # lows strictly after ``last``
+    after = np.where(ja < lows.size, lows[np.minimum(ja, max(lows.size - 1, 0))], np.inf) \
+        if lows.size else np.full(first.size, np.inf)
+    start = np.where(first - before < 2 * HALF_M2, before, first - HALF_M2)
+    end = np.where(after - last < 2 * HALF_M2, after, last + HALF_M2)
+    i0 = np.searchsorted(t_obs, start, side="left")
+    i1 = np.searchsorted(t_obs, end, side="right")
     rows = []
-    for _, g in ext[ext["kind"] == "high"].groupby("stand", sort=True):
-        first, last = g["t"].min(), g["t"].max()
-        top = g[g["principal"]].iloc[0]
-        tk, lv = float(top["t"]), float(top["level"])
-        before = lows[lows < first]
-        after = lows[lows > last]
-        start = before[-1] if len(before) and first - before[-1] < 2 * HALF_M2 else first - HALF_M2
-        end = after[0] if len(after) and after[0] - last < 2 * HALF_M2 else last + HALF_M2
-        i0 = np.searchsorted(t_obs, start, side="left")
-        i1 = np.searchsorted(t_obs, end, side="right")
-        if i1 - i0 < 2 or t_obs[-1] < end:
+    for c in np.flatnonzero((i1 - i0 >= 2) & (t_obs[-1] >= end)):
+        a, b = i0[c], i1[c]
+        seg = t_obs[a:b]
+        if max(seg[0] - start[c], end[c] - seg[-1], np.max(np.diff(seg)) if b - a > 1 else 0.0) > max_gap_s:
             continue
-        seg = t_obs[i0:i1]
-        edges = np.concatenate([[start], seg, [end]])
-        if np.max(np.diff(edges)) > max_gap_s:
-            continue
-        k = i0 + int(np.argmax(v_obs[i0:i1]))
-        rows.append((int(round(tk)), lv, float(v_obs[k]), int(t_obs[k]), float(v_obs[k] - lv)))
+        k = a + int(np.argmax(v_obs[a:b]))
+        rows.append((int(round(tk[c])), float(lv[c]), float(v_obs[k]), int(t_obs[k]), float(v_obs[k] - lv[c])))
     return pd.DataFrame(rows, columns=cols)
 
 
