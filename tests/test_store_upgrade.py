@@ -24,7 +24,7 @@ from monitor.store.migrations import SCHEMA_VERSION
 
 DUMP = Path(__file__).resolve().parent / "data" / "store_before_issue13.sql"
 OWNED = ("qc_tests", "qc_overrides", "staff_readings", "hw_forecast_log", "alert_state", "alert_episodes",
-         "outbox", "report_runs")
+         "outbox", "report_runs", "extremes_cache")
 
 
 def _rows_in_dump(text: str) -> Counter:

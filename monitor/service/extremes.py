@@ -52,6 +52,7 @@ import pandas as pd
 from alerts.reports.rarity import RaritySection
 from monitor.errors import MonitorError
 from monitor.quality import diagnostics as dg
+from monitor.store.migrations import ensure_extremes_cache
 from monitor.surge.residual import skew_surges
 from predictor import extremes as ex
 from predictor import sealevel as sl
@@ -470,10 +471,9 @@ def on_todays_sea(result: dict, level: float, t) -> float:
 
 # ============================================================================ cache
 def ensure_schema(db: Any) -> None:
-    """Create table ``extremes_cache`` (owned by this module) if missing."""
-    db.execute(f"CREATE TABLE IF NOT EXISTS {TABLE} (station TEXT NOT NULL, options TEXT NOT NULL, "
-               "made_t INTEGER NOT NULL, record_end INTEGER NOT NULL, events TEXT NOT NULL, "
-               "result TEXT NOT NULL, options_json TEXT NOT NULL, PRIMARY KEY (station, options))")
+    """Create table ``extremes_cache`` if missing (declared in monitor.store.migrations, version 5;
+    kept here for a bare database in tests)."""
+    ensure_extremes_cache(db)
 
 
 def last_options(store: Any, station_id: str) -> Options:

@@ -24,8 +24,9 @@ __all__ = ["SCHEMA_VERSION", "MIGRATIONS", "DERIVED_COLUMNS"]
 
 #: This program's schema version. 1: core tables; 2: conflicting repeats in ``rejects``;
 #: 3: the quality-control, forecast-log, alert, outbox and report-run tables under the version;
-#: 4: ``report_runs.summary`` (each report's index figures, so the index reads no report file).
-SCHEMA_VERSION = 4
+#: 4: ``report_runs.summary`` (each report's index figures, so the index reads no report file);
+#: 5: ``extremes_cache`` (return levels and trend of monitor.service.extremes, kept between runs).
+SCHEMA_VERSION = 5
 DERIVED_COLUMNS = ("observed", "predicted", "residual", "smoothed", "barometric")
 
 
@@ -91,5 +92,20 @@ def _report_summaries_v4(db: sqlite_utils.Database) -> None:
     ensure_report_runs(db)
 
 
+def ensure_extremes_cache(db) -> None:
+    """``extremes_cache`` (station, options): the analysis of monitor.service.extremes, with the
+    events it rests on (annual maxima, storm peaks, threshold, record end). ``db`` is a
+    ``sqlite_utils.Database`` or a ``sqlite3.Connection``."""
+    db.execute("CREATE TABLE IF NOT EXISTS extremes_cache (station TEXT NOT NULL, options TEXT NOT NULL, "
+               "made_t INTEGER NOT NULL, record_end INTEGER NOT NULL, events TEXT NOT NULL, "
+               "result TEXT NOT NULL, options_json TEXT NOT NULL, PRIMARY KEY (station, options))")
+
+
+def _extremes_cache_v5(db: sqlite_utils.Database) -> None:
+    # Until version 5 the cache was made by its owner on first use.
+    ensure_extremes_cache(db)
+
+
 #: version -> function that brings a store at (version - 1) to version
-MIGRATIONS = {1: _create_v1, 2: _conflicts_v2, 3: _owners_tables_v3, 4: _report_summaries_v4}
+MIGRATIONS = {1: _create_v1, 2: _conflicts_v2, 3: _owners_tables_v3, 4: _report_summaries_v4,
+              5: _extremes_cache_v5}
