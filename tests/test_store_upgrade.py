@@ -35,7 +35,7 @@ def _load(path: Path, drop: tuple[str, ...] = ()) -> Path:
     conn = sqlite3.connect(path)
     conn.executescript(DUMP.read_text(encoding="utf-8"))
     for table in drop:
-        conn.execute(f"DROP TABLE {table}")
+        conn.execute(f"DROP TABLE IF EXISTS {table}")
     conn.commit()
     conn.close()
     return path
