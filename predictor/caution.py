@@ -11,7 +11,7 @@ from __future__ import annotations
 
 import textwrap
 
-__all__ = ["CAUTION", "PREDICTION", "ANALYSIS", "MESSAGE", "REPORT", "comment_lines"]
+__all__ = ["CAUTION", "PREDICTION", "ANALYSIS", "MESSAGE", "REPORT", "LIVE", "comment_lines"]
 
 #: The plain caution: command-line output, the demo's summary, generated files.
 CAUTION = ("Automated and unofficial: official warnings and the local emergency authorities come first; "
@@ -38,6 +38,13 @@ REPORT = ("This report is automated and unofficial. Official warnings and the lo
           "(a faulty gauge, constants fitted to a short record, weather the tide model cannot know). "
           "Defer to local codes, official tide tables and licensed practice for any decision about "
           "navigation, berthing or safety.")
+
+#: Every live station page and the overview (they can also be old: a feed that stopped).
+LIVE = ("This page is automated and unofficial. Official warnings and the local emergency "
+        "authorities come first, always. Levels, forecasts and residuals here can be wrong or out "
+        "of date (a faulty gauge, a feed that stopped, constants fitted to a short record, weather "
+        "the tide model cannot know). Defer to local codes, official tide tables and licensed "
+        "practice for any decision about navigation, berthing or safety.")
 
 
 def comment_lines(text: str = CAUTION, width: int = 88) -> str:

@@ -16,8 +16,9 @@ from alerts.live.render import render_overview, render_station, write_overview, 
 from alerts.live.snapshot import (age_words, build_snapshot, mark_at_high_water, mark_now, rate_per_hour,
                                   trend_words)
 from alerts.live.chart import NARROW, WIDE, svg_chart
+from alerts.live import render as live_render
 from alerts.live.render import caution_line
-from predictor.caution import REPORT as CAUTION
+from predictor.caution import LIVE as CAUTION
 from live_samples import M2_PERIOD, NOW, sample_snapshot
 from units import hour, minute, mm
 
@@ -163,6 +164,10 @@ def test_page_escapes_names_and_carries_the_caution_one_tap_away():
     details = re.search(r'<details class="caution".*?</details>', html, re.S).group(0)
     assert "<summary><strong>Automated and unofficial.</strong>" in details
     assert "Official warnings and the local emergency authorities come first." in details
+
+
+def test_live_pages_take_the_page_wording_of_the_one_caution_home():
+    assert live_render.CAUTION == CAUTION and CAUTION.startswith("This page is automated and unofficial.")
 
 
 def test_caution_line_is_a_sentence_of_the_one_caution_text():

@@ -16,7 +16,7 @@ import jinja2
 from alerts.live.chart import NARROW, WIDE, svg_chart
 from alerts.live.headline import gauge_verdict, headline, local_time
 from alerts.live.snapshot import Snapshot, age_words, trend_words
-from predictor.caution import REPORT as CAUTION
+from predictor.caution import LIVE as CAUTION
 
 __all__ = ["render_station", "render_overview", "write_station", "write_overview", "caution_line",
            "overview_row", "atomic_write", "CAUTION"]
