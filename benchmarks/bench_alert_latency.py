@@ -178,7 +178,7 @@ steps = [{{ name = "raised", at = {STEP} }}]
 
 [[stations.rules]]
 id = "quay"
-watch = "level_above"
+when = "level_above"
 datum = "chart"
 hold = 0
 band = 0.02

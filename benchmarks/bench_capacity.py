@@ -50,9 +50,9 @@ def _config(tmp: Path):
 
     (tmp / "c.toml").write_text('mean = 2.5\n[[constituents]]\nname = "M2"\namplitude = 1.2\nphase = 30.0\n'
                                 '[[constituents]]\nname = "S2"\namplitude = 0.4\nphase = 60.0\n')
-    rules = [{"id": "surge", "watch": "residual_above", "hold": 0, "notify": ["duty@bench.example"],
+    rules = [{"id": "surge", "when": "residual_above", "hold": 0, "notify": ["duty@bench.example"],
               "steps": [{"name": "raised", "at": 5.0}]},
-             {"id": "quay", "watch": "level_above", "datum": "chart", "hold": 0, "notify": ["duty@bench.example"],
+             {"id": "quay", "when": "level_above", "datum": "chart", "hold": 0, "notify": ["duty@bench.example"],
               "steps": [{"name": "quay edge", "at": 9.0}]}]
     raw = {"store": {"path": "b.db"},
            "mail": {"sender": "Bench gauge <gauge@bench.example>", "host": "127.0.0.1", "port": 9,

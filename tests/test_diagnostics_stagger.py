@@ -21,7 +21,7 @@ def test_diagnostics_of_several_stations_land_in_different_passes(tmp_path, monk
     from monitor.store.database import Store
 
     (tmp_path / "c.toml").write_text('mean = 2.0\n[[constituents]]\nname = "M2"\namplitude = 1.0\nphase = 40.0\n')
-    rule = {"id": "surge", "watch": "residual_above", "hold": 0, "notify": ["duty@port.example"],
+    rule = {"id": "surge", "when": "residual_above", "hold": 0, "notify": ["duty@port.example"],
             "steps": [{"name": "raised", "at": 5.0}]}
     raw = {"store": {"path": "q.db"}, "daemon": {"diagnostics_minutes": PERIOD_MIN},
            "stations": [{"id": f"s{k}", "latitude": 50.0, "longitude": -4.0, "constants": "c.toml",

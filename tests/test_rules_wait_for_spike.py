@@ -54,7 +54,7 @@ line = {{ header_lines = 1 }}
 feed = {{ kind = "file", path = "{tmp / 'gauge.csv'}" }}
 [[stations.rules]]
 id = "surge"
-watch = "residual_above"
+when = "residual_above"
 hold = 0
 band = 0.05
 notify = ["duty@testport.example"]
