@@ -21,7 +21,7 @@ def tide(t):
 
 
 def sample_snapshot(age: float = 60.0, surge: float = 0.6, episodes=(), health=None, written_at: float | None = None,
-                    stale_after: float = 30 * minute, now: float = NOW):
+                    stale_after: float = 30 * minute, now: float = NOW, rarity=None):
     """A snapshot whose last sample is ``age`` seconds before ``now``, with a steady surge [m]."""
     last = now - age
     t = np.arange(last - 48 * hour, last + 1, minute)
@@ -41,4 +41,5 @@ def sample_snapshot(age: float = 60.0, surge: float = 0.6, episodes=(), health=N
         health=health if health is not None else {
             "sensors": [{"role": "primary", "label": "pressure sensor", "kind": "file", "last_t": last}],
             "qc": {"hours": 6.0, "fail": 0, "suspect": 0, "total": 360}, "faults": []},
-        caution="Automated and unofficial. Official warnings and the local emergency authorities come first.")
+        caution="Automated and unofficial. Official warnings and the local emergency authorities come first.",
+        rarity=rarity)

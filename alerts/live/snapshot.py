@@ -18,9 +18,10 @@ from typing import Any, Mapping, Sequence
 import numpy as np
 
 from alerts.live.settings import Mark
+from predictor.rarity import period_of_level, rarity_words
 
 __all__ = ["Snapshot", "MarkState", "build_snapshot", "rate_per_hour", "mark_now", "mark_at_high_water",
-           "age_words", "trend_words", "RATE_WINDOW", "STEADY", "CHART_HOURS"]
+           "age_words", "trend_words", "rarity_line", "RATE_WINDOW", "STEADY", "CHART_HOURS", "NOT_WATER"]
 
 #: Span over which the rate of rise or fall is fitted [s]: half an hour smooths one-minute
 #: noise and seiches of a few minutes yet follows the tide (common practice, no source).
@@ -32,6 +33,8 @@ STEADY = 0.02
 CHART_HOURS = 48.0
 #: Most points kept per chart series (a 48 h record at one minute is thinned to this).
 CHART_POINTS = 600
+#: Alert kinds that say nothing about the water (an open episode of these is no event).
+NOT_WATER = ("feed_silent", "equipment_fault")
 
 
 @dataclass(frozen=True)
@@ -85,6 +88,7 @@ class Snapshot:
     health: dict = field(default_factory=dict)
     chart: dict = field(default_factory=dict)
     caution: str = ""
+    rarity: dict | None = None
 
     @property
     def chart_end(self) -> float:
@@ -221,6 +225,56 @@ def mark_at_high_water(forecast: float, lower: float, upper: float, mark_level: 
     return MarkState(name=name, side=side, level=mark_level, margin=margin, state=state, words=words)
 
 
+def rarity_line(peak: Mapping[str, Any], curve: Mapping[str, Any], datum: str,
+                episodes: Sequence[Mapping] = ()) -> dict | None:
+    """The event's highest water read off a cached return-level curve, or None outside an event.
+
+    An event is on when an alert episode about the water is open (any kind but
+    :data:`NOT_WATER`), or when the highest water stands above the curve's lowest tabulated
+    return level (its first row: a level reached about once a year or less often).
+
+    Parameters
+    ----------
+    peak : mapping
+        ``level`` [m] on the curve's datum and sea (what is read off the curve), ``recorded``
+        [m] as measured on the same datum, ``t`` [Unix s].
+    curve : mapping
+        ``period`` [year], ``level``, ``lower``, ``upper`` [m] (see
+        :func:`predictor.rarity.period_of_level`).
+    datum : str
+        The display datum in words.
+    episodes : sequence of mapping
+        Open alert episodes (``watch``).
+
+    Returns
+    -------
+    dict or None
+        ``words`` ("Highest water in this event so far, X m above DATUM: about a 1-in-N-year
+        level, range A to B years"), ``level``, ``recorded``, ``t``, ``period``, ``shortest``,
+        ``longest`` [year], ``why`` (what made it an event).
+
+    References
+    ----------
+    Coles (2001), sec. 2.6.6 (the curve read the other way, :mod:`predictor.rarity`).
+    """
+    level = float(peak["level"])
+    lowest = np.asarray(curve["level"], dtype=float)
+    water = [e for e in episodes if e.get("watch") not in NOT_WATER]
+    if water:
+        why = "alert open: " + ", ".join(str(e.get("rule")) for e in water)
+    elif len(lowest) and np.isfinite(lowest[0]) and level > lowest[0]:
+        why = f"above the 1-in-{float(curve['period'][0]):g}-year level ({lowest[0]:.2f} m)"
+    else:
+        return None
+    period, shortest, longest = period_of_level(level, curve)
+    words = "Highest water in this event so far, " + rarity_words(level, curve, f"above {datum}")
+    recorded = float(peak.get("recorded", level))
+    if abs(recorded - level) >= 0.005:
+        words += f" (recorded {recorded:.2f} m, on the curve's sea {level:.2f} m)"
+    return {"words": words, "level": level, "recorded": recorded, "t": float(peak["t"]), "period": period,
+            "shortest": shortest, "longest": longest, "why": why}
+
+
 # --------------------------------------------------------------------------- the snapshot
 
 def _thin(t: np.ndarray, *cols: np.ndarray, most: int = CHART_POINTS) -> list:
@@ -239,7 +293,8 @@ def build_snapshot(*, station: Mapping[str, Any], marks: Sequence[Mark], display
                    written_at: float, stale_after: float, refresh: float, last_sample_t: float | None,
                    samples: Mapping[str, Any] | None, ahead: Mapping[str, Any] | None = None,
                    forecast: Mapping[str, Any] | None = None, episodes: Sequence[Mapping] = (),
-                   health: Mapping[str, Any] | None = None, caution: str = "") -> Snapshot:
+                   health: Mapping[str, Any] | None = None, caution: str = "",
+                   rarity: Mapping[str, Any] | None = None) -> Snapshot:
     """Build a station's snapshot from values passed in.
 
     Parameters
@@ -278,6 +333,12 @@ def build_snapshot(*, station: Mapping[str, Any], marks: Sequence[Mark], display
         ``fail``, ``suspect``, ``total``; ``faults``: list of words.
     caution : str
         The caution text.
+    rarity : mapping, optional
+        The cached return-level analysis and the water it is read for: ``peak`` (``level``,
+        ``recorded`` on the station datum [m], ``t``; ``level`` already on the sea of the
+        curve), ``curve`` (``period``, ``level``, ``lower``, ``upper``, display datum [m]) and
+        ``note`` (where the curve is from). The page's rarity line (:func:`rarity_line`) is
+        said only during an event; None: no cached analysis, no line.
 
     Returns
     -------
@@ -332,10 +393,17 @@ def build_snapshot(*, station: Mapping[str, Any], marks: Sequence[Mark], display
         at = np.asarray(ahead["t"], dtype=float)
         chart["ahead_t"] = at.tolist()
         chart["ahead_predicted"] = (np.asarray(ahead["predicted"], dtype=float) - shift).tolist()
+    rare = None
+    if rarity is not None:
+        pk = rarity["peak"]
+        rare = rarity_line({"level": float(pk["level"]) - shift, "recorded": float(pk["recorded"]) - shift,
+                            "t": pk["t"]}, rarity["curve"], str(station.get("datum", "")), episodes)
+        if rare is not None:
+            rare["note"] = str(rarity.get("note") or "")
     return Snapshot(
         station=dict(station), written_at=float(written_at), now=float(now), stale_after=float(stale_after),
         refresh=float(refresh), last_sample_t=None if last_sample_t is None else float(last_sample_t),
         stale=bool(stale), level=level, residual=residual,
         marks=[{"name": m.name, "level": m.level - shift, "side": m.side} for m in marks],
         marks_now=[asdict(m) for m in ms_now], forecast=fc, marks_hw=[asdict(m) for m in ms_hw],
-        episodes=[dict(e) for e in episodes], health=dict(health or {}), chart=chart, caution=caution)
+        episodes=[dict(e) for e in episodes], health=dict(health or {}), chart=chart, caution=caution, rarity=rare)

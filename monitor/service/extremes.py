@@ -58,8 +58,8 @@ from predictor import extremes as ex
 from predictor import sealevel as sl
 from predictor.rarity import rarity_words
 
-__all__ = ["RecordError", "StationRecord", "read_record", "analyse", "cached_analysis",
-           "CURVE_PERIODS", "TABLE", "PASSED"]
+__all__ = ["RecordError", "StationRecord", "read_record", "analyse", "cached_analysis", "result_curves",
+           "readable_curve", "on_todays_sea", "CURVE_PERIODS", "TABLE", "PASSED"]
 
 TABLE = "extremes_cache"
 #: Aggregate QARTOD flag of a sample that passed every test (U.S. IOOS 2021).
@@ -563,6 +563,24 @@ def _finite(v: float) -> float | None:
 
 
 
+# ============================================================================ the curves of a result
+def result_curves(result: dict) -> dict:
+    """The return-level curves of a (cached) result at :data:`CURVE_PERIODS`, the route read
+    first (joint probability) first: ``{route name: {"period", "level", "lower", "upper"}}``
+    [year, m on the display datum]; an unbounded upper band is None, as stored."""
+    curves = {}
+    for key, name in (("joint_probability", "joint probability"), ("annual_maxima", "annual maxima")):
+        rows = [r for r in result.get(key, {}).get("curve", []) if r["period"] in CURVE_PERIODS]
+        if rows:
+            curves[name] = {k: [r[k] for r in rows] for k in ("period", "level", "lower", "upper")}
+    return curves
+
+
+def readable_curve(curve: dict) -> dict:
+    """A stored curve as :func:`predictor.rarity.rarity_words` reads it (None upper band: inf)."""
+    return {**curve, "upper": [np.inf if v is None else v for v in curve["upper"]]}
+
+
 # ============================================================================ the daily report
 def report_section(store: Any, station: Any, model: Any, highest: float | None, at=None,
                    options: Options | None = None, qc_settings: Any = None):
@@ -587,17 +605,12 @@ def report_section(store: Any, station: Any, model: Any, highest: float | None, 
         result, fresh = cached_analysis(store, station, model, options, qc_settings)
     except RecordError as exc:
         return RaritySection(words=None, note=f"No return levels yet: {exc}.", highest=highest)
-    curves = {}
-    for key, name in (("joint_probability", "joint probability"), ("annual_maxima", "annual maxima")):
-        rows = [r for r in result.get(key, {}).get("curve", []) if r["period"] in CURVE_PERIODS]
-        if rows:
-            curves[name] = {k: [r[k] for r in rows] for k in ("period", "level", "lower", "upper")}
+    curves = result_curves(result)
     route = next(iter(curves), None)
     words = None
     today = None
     if route is not None and highest is not None:
-        c = curves[route]
-        curve = {**c, "upper": [np.inf if v is None else v for v in c["upper"]]}
+        curve = readable_curve(curves[route])
         shift = result["datum_offset_m"]
         today = highest if at is None else on_todays_sea(result, highest + shift, at) - shift
         words = "today's highest water, " + rarity_words(today, curve, f"above {station.display_label}")

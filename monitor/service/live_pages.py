@@ -7,9 +7,17 @@ episodes with the messages queued for them, and the feeds' last usable samples w
 quality-control counts of the last hours. :class:`LivePages` rewrites a station's page after
 each processing pass that gave it new data, and at least every ``live.refresh`` while it is
 silent (so STALE shows when its feed stops), and the overview page with them.
+
+During an event the page says how rare the water is: the highest QC-passed (flag 1) primary
+level of the page's 48 h, read off the return-level curve of the station's latest row in
+``extremes_cache`` (:mod:`monitor.service.extremes`; the same route the daily report reads). No
+fit is ever made here: :class:`RarityCache` peeks at the row's ``made_t`` (one indexed row, no
+JSON) and parses the result only when it changed; no row, no line. Whether it is an event is
+decided by :func:`alerts.live.snapshot.rarity_line`.
 """
 from __future__ import annotations
 
+import json
 import logging
 import math
 import os
@@ -25,11 +33,13 @@ from alerts.live.render import CAUTION, write_overview, write_station
 from alerts.live.settings import LiveSettings
 from alerts.live.snapshot import Snapshot, build_snapshot
 from monitor.service.config import Config, StationConfig
+from monitor.service.extremes import PASSED, TABLE, on_todays_sea, readable_curve, result_curves
 from monitor.store.database import to_unix
 
 log = logging.getLogger(__name__)
 
-__all__ = ["gather", "next_forecast", "open_episodes", "sensor_health", "LivePages", "QC_HOURS", "AHEAD_HOURS"]
+__all__ = ["gather", "next_forecast", "open_episodes", "sensor_health", "event_peak", "RarityCache", "LivePages",
+           "QC_HOURS", "AHEAD_HOURS", "EVENT_HOURS"]
 
 #: Hours of quality-control flags counted in the gauge's health.
 QC_HOURS = 6.0
@@ -38,6 +48,8 @@ QC_HOURS = 6.0
 AHEAD_HOURS = 13.0
 #: Step of the predicted tide drawn ahead [s].
 AHEAD_STEP = 600
+#: Hours searched for the event's highest water: the page's 48 h (a storm's few tides).
+EVENT_HOURS = 48.0
 
 
 def _table(store, name: str) -> bool:
@@ -123,6 +135,83 @@ def sensor_health(store, st: StationConfig, now: float, until: int) -> dict:
                                        "total": int(total or 0)}, "faults": faults}
 
 
+def event_peak(store, station: str, ref: float, until: int) -> tuple[int, float] | None:
+    """The highest QC-passed primary sample of the :data:`EVENT_HOURS` up to ``ref``:
+    (t [Unix s], level [m, station datum]), or None."""
+    row = store.conn.execute(
+        "SELECT t, value FROM observations WHERE station = ? AND sensor = 'primary' AND flag = ? "
+        "AND t BETWEEN ? AND ? ORDER BY value DESC, t DESC LIMIT 1",
+        (station, PASSED, int(ref - EVENT_HOURS * 3600), int(until))).fetchone()
+    return None if row is None else (int(row[0]), float(row[1]))
+
+
+class RarityCache:
+    """The return-level curve of each station's latest ``extremes_cache`` row, kept in memory.
+
+    :meth:`get` reads the row's key and ``made_t`` (one indexed row) on each call and parses
+    its result only when they changed; ``reads`` counts the parses.
+    """
+
+    def __init__(self) -> None:
+        self.kept: dict[str, tuple[tuple, dict | None]] = {}
+        self.reads = 0
+
+    def get(self, store, station: str) -> dict | None:
+        """``{"route", "curve", "datum_offset_m", "trend_result", "note"}`` or None (no row, no curve)."""
+        if not _table(store, TABLE):
+            return None
+        row = store.conn.execute(f"SELECT options, made_t, record_end FROM {TABLE} WHERE station = ? "
+                                 "ORDER BY made_t DESC LIMIT 1", (station,)).fetchone()
+        if row is None:
+            self.kept.pop(station, None)
+            return None
+        sig = tuple(row)
+        kept = self.kept.get(station)
+        if kept is not None and kept[0] == sig:
+            return kept[1]
+        text = store.conn.execute(f"SELECT result FROM {TABLE} WHERE station = ? AND options = ?",
+                                  (station, row[0])).fetchone()
+        self.reads += 1
+        info = None
+        try:
+            info = _curve_info(json.loads(text[0]), int(row[1]))
+        except (TypeError, ValueError, KeyError, IndexError) as exc:
+            log.warning("station %s: extremes_cache row made %s unreadable (%s); no rarity line on the live page",
+                        station, pd.Timestamp(int(row[1]), unit="s", tz="UTC").isoformat(), exc)
+        self.kept[station] = (sig, info)
+        return info
+
+
+def _curve_info(result: dict, made_t: int) -> dict | None:
+    curves = result_curves(result)
+    if not curves:
+        return None
+    route = next(iter(curves))
+    rec = result.get("record") or {}
+    note = (f"Read from the {route} curve of {rec.get('years_of_hours', 0):.0f} years of this station's "
+            f"QC-passed record ({str(rec.get('first', ''))[:4]} to {str(rec.get('last', ''))[:4]}), analysed "
+            f"{pd.Timestamp(made_t, unit='s', tz='UTC'):%Y-%m-%d}; an estimate, not an official flood-risk assessment.")
+    return {"route": route, "curve": readable_curve(curves[route]), "datum_offset_m": float(result["datum_offset_m"]),
+            "trend_result": {"sea_level": {"trend": (result.get("sea_level") or {}).get("trend")}}, "note": note}
+
+
+def _rarity(store, st: StationConfig, cache: RarityCache, ref: float, until: int) -> dict | None:
+    """What :func:`alerts.live.snapshot.build_snapshot` needs for the rarity line, or None."""
+    info = cache.get(store, st.id)
+    if info is None:
+        return None
+    peak = event_peak(store, st.id, ref, until)
+    if peak is None:
+        return None
+    t, level = peak
+    # the curve on today's display datum (a changed display datum moves the cached curve with it)
+    move = info["datum_offset_m"] - float(st.display_offset)
+    curve = {**info["curve"], **{k: [v + move for v in info["curve"][k]] for k in ("level", "lower", "upper")}}
+    return {"peak": {"level": on_todays_sea(info["trend_result"], level, pd.Timestamp(t, unit="s", tz="UTC")),
+                     "recorded": level, "t": t},
+            "curve": curve, "note": info["note"]}
+
+
 def _samples(store, st: StationConfig, ref: float, until: int) -> dict:
     a = int(ref - 48 * 3600)
     d = store.derived(st.id, a, until)
@@ -144,7 +233,7 @@ def _ahead(model, ref: float, forecast: dict | None) -> dict | None:
 
 
 def gather(store, st: StationConfig, settings: LiveSettings, *, now: float, until: int, model: Any = None,
-           written_at: float | None = None) -> Snapshot:
+           written_at: float | None = None, rarity: RarityCache | None = None) -> Snapshot:
     """A station's snapshot from the store.
 
     Parameters
@@ -160,6 +249,8 @@ def gather(store, st: StationConfig, settings: LiveSettings, *, now: float, unti
         The constants in use, for the predicted tide ahead.
     written_at : float, optional
         Wall-clock time of writing [Unix s] (default: now on the wall clock).
+    rarity : RarityCache, optional
+        The cached curves kept between passes (default: read afresh).
     """
     last = store.last_time(st.id, "primary", until=until, usable=True)
     # A silent station shows its last 48 h of record and the forecast last made from it, under
@@ -173,7 +264,8 @@ def gather(store, st: StationConfig, settings: LiveSettings, *, now: float, unti
         written_at=time.time() if written_at is None else written_at,
         stale_after=settings.stale_after, refresh=settings.refresh,
         last_sample_t=last, samples=_samples(store, st, ref, until), ahead=_ahead(model, ref, fc), forecast=fc,
-        episodes=open_episodes(store, st), health=sensor_health(store, st, now, until), caution=CAUTION)
+        episodes=open_episodes(store, st), health=sensor_health(store, st, now, until), caution=CAUTION,
+        rarity=_rarity(store, st, rarity if rarity is not None else RarityCache(), ref, until))
 
 
 class LivePages:
@@ -186,6 +278,7 @@ class LivePages:
         self.folder = Path(cfg.live.folder)
         self.written: dict[str, float] = {}
         self.snaps: dict[str, Snapshot] = {}
+        self.rarity = RarityCache()
         self.reports = ""
         if cfg.reports is not None and getattr(cfg.reports, "folder", None):
             try:
@@ -208,7 +301,8 @@ class LivePages:
                 continue
             now, until = clock(st)
             try:
-                snap = gather(store, st, self.settings, now=now, until=until, model=model, written_at=wall)
+                snap = gather(store, st, self.settings, now=now, until=until, model=model, written_at=wall,
+                              rarity=self.rarity)
                 write_station(snap, self.folder, self.reports)
             except Exception:
                 log.exception("station %s: live page not written; will retry", st.id)
