@@ -14,9 +14,12 @@ Named units for tolerances are in ``tests/units.py``.
 from __future__ import annotations
 
 import email
+import os
+import shutil
 import socket
 import sqlite3
 from email import policy
+from pathlib import Path
 
 import pytest
 import sqlite_utils
@@ -112,3 +115,30 @@ def records_station(tmp_path_factory):
         conn.execute("PRAGMA wal_checkpoint(TRUNCATE)")
     return out / "config.toml", truth, db
 
+
+
+# ---------------------------------------------------------------- headless Chromium
+CHROMIUM = "/usr/bin/chromium"   # Debian's package; never `playwright install`
+CHROMIUM_ARGS = ["--no-sandbox", "--disable-gpu", "--disable-background-networking",
+                 "--disable-component-update", "--disable-sync", "--no-first-run"]
+
+
+def _need_chromium() -> None:
+    """Skip without Chromium, but fail in CI (which installs it)."""
+    if Path(CHROMIUM).exists() and shutil.which(CHROMIUM):
+        return
+    message = f"headless Chromium not found at {CHROMIUM} (Debian package 'chromium')"
+    if os.environ.get("CI") == "true":
+        pytest.fail(message)
+    pytest.skip(message)
+
+
+@pytest.fixture(scope="module")
+def browser():
+    """Headless Chromium driven by Python playwright, one per test module."""
+    _need_chromium()
+    sync_api = pytest.importorskip("playwright.sync_api")
+    with sync_api.sync_playwright() as p:
+        b = p.chromium.launch(executable_path=CHROMIUM, args=CHROMIUM_ARGS)
+        yield b
+        b.close()

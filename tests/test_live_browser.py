@@ -8,7 +8,6 @@ from __future__ import annotations
 
 import datetime as dt
 import os
-import shutil
 import subprocess
 import sys
 import threading
@@ -23,32 +22,10 @@ from live_samples import NOW, sample_snapshot
 pytestmark = pytest.mark.browser
 
 ROOT = Path(__file__).resolve().parent.parent
-CHROMIUM = "/usr/bin/chromium"
-ARGS = ["--no-sandbox", "--disable-gpu", "--disable-background-networking", "--disable-component-update",
-        "--disable-sync", "--no-first-run"]
 PHONE = {"width": 375, "height": 667}   # a common small phone viewport (common practice, no source)
 DESK = {"width": 1280, "height": 800}
 MIN_TEXT_PX = 12
 WAIT_MS = 120_000                       # generous: two cores shared with other work
-
-
-def _need_chromium() -> None:
-    if Path(CHROMIUM).exists() and shutil.which(CHROMIUM):
-        return
-    message = f"headless Chromium not found at {CHROMIUM} (Debian package 'chromium')"
-    if os.environ.get("CI") == "true":
-        pytest.fail(message)
-    pytest.skip(message)
-
-
-@pytest.fixture(scope="module")
-def browser():
-    _need_chromium()
-    sync_api = pytest.importorskip("playwright.sync_api")
-    with sync_api.sync_playwright() as p:
-        b = p.chromium.launch(executable_path=CHROMIUM, args=ARGS)
-        yield b
-        b.close()
 
 
 @pytest.fixture(scope="module")

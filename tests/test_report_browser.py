@@ -3,8 +3,6 @@ from __future__ import annotations
 
 import datetime as dt
 import io
-import os
-import shutil
 from pathlib import Path
 
 import numpy as np
@@ -15,31 +13,9 @@ from report_samples import sample_report
 
 pytestmark = pytest.mark.browser
 
-CHROMIUM = "/usr/bin/chromium"
-ARGS = ["--no-sandbox", "--disable-gpu", "--disable-background-networking", "--disable-component-update",
-        "--disable-sync", "--no-first-run"]
 PHONE_WIDTH = 375  # px, a common small phone viewport (common practice, no source)
 DESKTOP_WIDTH = 1280  # px, a common laptop viewport (common practice, no source)
 WIDTHS = [PHONE_WIDTH, DESKTOP_WIDTH]
-
-
-def _need_chromium() -> None:
-    if Path(CHROMIUM).exists() and shutil.which(CHROMIUM):
-        return
-    message = f"headless Chromium not found at {CHROMIUM} (Debian package 'chromium')"
-    if os.environ.get("CI") == "true":
-        pytest.fail(message)
-    pytest.skip(message)
-
-
-@pytest.fixture(scope="module")
-def browser():
-    _need_chromium()
-    sync_api = pytest.importorskip("playwright.sync_api")
-    with sync_api.sync_playwright() as p:
-        b = p.chromium.launch(executable_path=CHROMIUM, args=ARGS)
-        yield b
-        b.close()
 
 
 @pytest.fixture(scope="module")
