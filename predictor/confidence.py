@@ -26,6 +26,8 @@ import numpy as np
 __all__ = [
     "BAND_HALF_WIDTH_CPD",
     "BandSpectrum",
+    "MAX_CELLS",
+    "ResidualGrid",
     "species_band",
     "residual_band_spectrum",
     "coefficient_variance",
@@ -39,6 +41,14 @@ BAND_HALF_WIDTH_CPD = 0.25
 # A band average over fewer spectral lines than this is too noisy to be useful; narrow
 # bands of short records are widened to this many lines.
 _MIN_LINES = 5
+#: Most cells of the residual's grid (2**20, about 8 MiB a float array): a longer record is
+#: averaged into cells of a whole number of sampling intervals, so the spectrum's memory does
+#: not grow with the record (19 years of one-minute data go into 10-minute cells). The bands
+#: reach 8.25 cycles/day at most, far below the Nyquist frequency of such cells (72 cpd);
+#: averaging over a cell lowers the density of a red residual by ``1 - sinc^2(f cell)``, at
+#: most 1 % at 8 cpd and 0.06 % at 2 cpd for 10-minute cells (a white residual's aliases make
+#: it up exactly). Our choice.
+MAX_CELLS = 2 ** 20
 
 
 @dataclass(frozen=True)
@@ -60,6 +70,10 @@ class BandSpectrum:
     usable : ndarray of bool, optional
         Lines to average; False next to fitted constituents, where the fit itself has
         removed the noise (the residual is orthogonal to the fitted sinusoids).
+    sample_hours : float, optional
+        Sampling interval of the record [h] when the grid's cells are longer (a long record
+        averaged into cells of several samples); the white-noise equivalent of the density
+        is per sample. None: the grid step.
     """
 
     freq: np.ndarray
@@ -68,6 +82,7 @@ class BandSpectrum:
     valid_fraction: float
     step_hours: float
     usable: np.ndarray | None = None
+    sample_hours: float | None = None
 
     def band_mean(self, species: int) -> float:
         """Mean one-sided PSD over the band of a species [m^2 / (cycle/hour)]."""
@@ -129,36 +144,73 @@ def species_band(species: int) -> tuple[float, float]:
     return (species - BAND_HALF_WIDTH_CPD, species + BAND_HALF_WIDTH_CPD)
 
 
-def _grid(t_seconds: np.ndarray, residual: np.ndarray, step_seconds: float | None):
-    """Bin an irregular residual onto a uniform grid; empty cells are zero."""
-    t = np.asarray(t_seconds, dtype=float)
-    r = np.asarray(residual, dtype=float)
-    ok = np.isfinite(t) & np.isfinite(r)
-    t, r = t[ok], r[ok]
-    if t.size < 2:
-        raise ValueError("need at least two residual samples for a spectrum")
-    if step_seconds is None:
-        d = np.diff(np.unique(t))
-        step_seconds = float(np.median(d))
-    t0 = t.min()
-    idx = np.rint((t - t0) / step_seconds).astype(np.int64)
-    n = int(idx.max()) + 1
-    counts = np.bincount(idx, minlength=n)
-    sums = np.bincount(idx, weights=r - r.mean(), minlength=n)
-    grid = np.zeros(n)
-    filled = counts > 0
-    grid[filled] = sums[filled] / counts[filled]
-    return grid, filled, step_seconds
+class ResidualGrid:
+    """A residual averaged into uniform cells, filled chunk by chunk.
+
+    The cells are ``step_seconds`` long (the record's sampling interval), or a whole number
+    of them when the record would need more than ``max_cells``: memory is bounded by
+    ``max_cells`` whatever the record's length. Empty cells are zero once the mean is
+    removed (:meth:`spectrum`).
+
+    Parameters
+    ----------
+    t_first, t_last : float
+        First and last sample time of the record [s, Unix UTC].
+    step_seconds : float
+        Sampling interval [s].
+    max_cells : int
+        Most cells (:data:`MAX_CELLS`).
+    """
+
+    def __init__(self, t_first: float, t_last: float, step_seconds: float, max_cells: int = MAX_CELLS):
+        step = float(step_seconds)
+        if not (step > 0.0 and np.isfinite(step)):
+            raise ValueError(f"the grid step must be a positive number of seconds, got {step_seconds!r}")
+        cells = int(np.rint((float(t_last) - float(t_first)) / step)) + 1
+        self.sample_seconds = step
+        self.cell_seconds = step * max(1, -(-cells // int(max_cells)))
+        self.t0 = float(t_first)
+        self.n = int(np.rint((float(t_last) - self.t0) / self.cell_seconds)) + 1
+        self.sums = np.zeros(self.n)
+        self.counts = np.zeros(self.n, dtype=np.int64)
+        self.total = 0.0
+        self.count = 0
+
+    def add(self, t_seconds, residual) -> None:
+        """Add samples: times [s, Unix UTC] within the record's span and residuals [m]."""
+        t = np.asarray(t_seconds, dtype=float).ravel()
+        r = np.asarray(residual, dtype=float).ravel()
+        ok = np.isfinite(t) & np.isfinite(r)
+        if not ok.all():
+            t, r = t[ok], r[ok]
+        if t.size == 0:
+            return
+        idx = np.clip(np.rint((t - self.t0) / self.cell_seconds).astype(np.int64), 0, self.n - 1)
+        lo, hi = int(idx.min()), int(idx.max()) + 1
+        self.sums[lo:hi] += np.bincount(idx - lo, weights=r, minlength=hi - lo)
+        self.counts[lo:hi] += np.bincount(idx - lo, minlength=hi - lo)
+        self.total += float(r.sum())
+        self.count += int(r.size)
+
+    def spectrum(self, fitted_speeds=None) -> "BandSpectrum":
+        """The one-sided PSD of the cells (see :func:`residual_band_spectrum`)."""
+        if self.count < 2:
+            raise ValueError("need at least two residual samples for a spectrum")
+        filled = self.counts > 0
+        grid = np.zeros(self.n)
+        grid[filled] = self.sums[filled] / self.counts[filled] - self.total / self.count
+        return _band_spectrum(grid, filled, self.cell_seconds, self.sample_seconds, fitted_speeds)
 
 
 def residual_band_spectrum(t_seconds, residual, step_seconds: float | None = None,
-                           fitted_speeds=None) -> BandSpectrum:
+                           fitted_speeds=None, max_cells: int = MAX_CELLS) -> BandSpectrum:
     """One-sided PSD of a (possibly gappy, irregular) residual, ready for band averages.
 
     The residual is averaged into cells of ``step_seconds`` (default: the median sampling
-    interval), empty cells are set to zero after removing the mean, and the Hann-windowed
-    periodogram is divided by the fraction of filled cells so that the density describes
-    the sea, not the gaps.
+    interval; a whole number of them for records longer than ``max_cells`` steps, see
+    :data:`MAX_CELLS`), empty cells are set to zero after removing the mean, and the
+    Hann-windowed periodogram is divided by the fraction of filled cells so that the density
+    describes the sea, not the gaps. :class:`ResidualGrid` does the same chunk by chunk.
 
     Parameters
     ----------
@@ -173,6 +225,8 @@ def residual_band_spectrum(t_seconds, residual, step_seconds: float | None = Non
         these frequencies, so the lines within the Hann main lobe (two lines either side)
         are left out of the band averages; otherwise the noise would be underestimated
         by the share of the band they cover.
+    max_cells : int
+        Most cells of the grid.
 
     Returns
     -------
@@ -182,7 +236,23 @@ def residual_band_spectrum(t_seconds, residual, step_seconds: float | None = Non
     ----------
     Munk & Cartwright (1966); Pugh & Woodworth (2014), ch. 4.
     """
-    grid, filled, step = _grid(t_seconds, residual, step_seconds)
+    t = np.asarray(t_seconds, dtype=float).ravel()
+    r = np.asarray(residual, dtype=float).ravel()
+    ok = np.isfinite(t) & np.isfinite(r)
+    t, r = t[ok], r[ok]
+    if t.size < 2:
+        raise ValueError("need at least two residual samples for a spectrum")
+    if step_seconds is None:
+        d = np.diff(np.unique(t))
+        step_seconds = float(np.median(d))
+    grid = ResidualGrid(t.min(), t.max(), step_seconds, max_cells)
+    grid.add(t, r)
+    return grid.spectrum(fitted_speeds)
+
+
+def _band_spectrum(grid: np.ndarray, filled: np.ndarray, step: float, sample: float,
+                   fitted_speeds) -> BandSpectrum:
+    """Hann periodogram of mean-removed cells, corrected for the empty ones."""
     step_h = step / 3600.0
     p = float(filled.mean())
     # The Hann window keeps the strong low-frequency surge power from leaking into the
@@ -202,7 +272,8 @@ def residual_band_spectrum(t_seconds, residual, step_seconds: float | None = Non
         for fc in np.asarray(fitted_speeds, dtype=float).ravel() / 360.0:  # cycles/hour
             usable &= np.abs(freq - fc) > 2.0 * df
     return BandSpectrum(freq=freq, psd=psd, duration_hours=float(filled.sum()) * step_h,
-                        valid_fraction=p, step_hours=step_h, usable=usable)
+                        valid_fraction=p, step_hours=step_h, usable=usable,
+                        sample_hours=sample / 3600.0)
 
 
 def _hann_periodogram(x: np.ndarray, fs: float):
@@ -234,7 +305,7 @@ def coefficient_variance(spectrum: BandSpectrum, speeds_deg_per_hour, inverse_di
     inverse_diagonal : array_like, optional
         Diagonal elements of ``(X'X)^-1`` for the cosine and sine columns, shape (k, 2)
         [1]. With them the band noise is treated as white noise of the same density,
-        ``sigma_b^2 = S_b / (2 dt)``, so that gaps and nearly-aliased neighbours widen the
+        ``sigma_b^2 = S_b / (2 dt)`` (dt the record's sampling interval), so that gaps and nearly-aliased neighbours widen the
         intervals as they should; without them the orthogonal approximation is used.
 
     Returns
@@ -266,7 +337,8 @@ def coefficient_variance(spectrum: BandSpectrum, speeds_deg_per_hour, inverse_di
         var = density / spectrum.duration_hours
         return var, var.copy()
     inv = np.asarray(inverse_diagonal, dtype=float).reshape(speeds.size, 2)
-    white = density / (2.0 * spectrum.step_hours)
+    # per sample of the record (the grid's cells may hold several)
+    white = density / (2.0 * (spectrum.sample_hours or spectrum.step_hours))
     return white * inv[:, 0], white * inv[:, 1]
 
 

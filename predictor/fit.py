@@ -22,7 +22,7 @@ from __future__ import annotations
 
 import math
 import warnings
-from dataclasses import dataclass, replace
+from dataclasses import dataclass, field, replace
 
 import numpy as np
 from scipy import linalg
@@ -44,6 +44,7 @@ __all__ = [
     "PRIORITY",
     "CAUCHY_TUNING",
     "harmonic_fit",
+    "harmonic_fit_chunks",
     "select_constituents",
     "required_days",
     "to_unix_seconds",
@@ -349,10 +350,27 @@ def _resolve_inference(infer, auto_selected: bool, names: list, dropped: list,
 
 # --------------------------------------------------------------------------- design
 
+#: Longest table of in-day rotations ``exp(i omega (o + j dt))`` kept as one piece [rows];
+#: finer sampling (a day of more than this many steps) takes two tables and one product.
+_TABLE_ROWS = 4096
+#: A sample whose time is within this of its grid point takes the grid point's rotation [s]
+#: (at most 1.2e-9 rad for the fastest constituent, M8).
+_ON_GRID = 1e-6
+
 
 @dataclass
 class _Design:
-    """What is needed to build rows of the design matrix for any chunk of times."""
+    """What is needed to build rows of the design matrix for any chunk of times.
+
+    Within one UTC day the daily nodes' f and ``phi = V + u - omega (t - t_ref)`` are
+    interpolated linearly, so a constituent's argument is ``a_d + omega s + delta_d s / day``
+    (``s`` seconds into day ``d``) and its factor ``f_d + df_d s / day``. A row is
+    ``(C0_d + C1_d w + C2_d w^2) exp(i omega s)`` with ``w = s / day``: the day's
+    coefficients take ``exp(i delta w)`` to second order (``delta`` at most a few 1e-4 rad,
+    so the third-order term is below 1e-10), and ``exp(i omega s)`` is a phasor step looked up
+    in a table of the record's sampling grid (built once), as prediction does; a sample off
+    the grid takes its own exponential.
+    """
 
     names: list[str]
     omega: np.ndarray      # [rad/s]
@@ -364,6 +382,9 @@ class _Design:
     # Inferred constituents ride on a fitted one's columns: (fitted column j, column k of
     # ``names`` beyond the fitted ones, amplitude ratio r [1], phase difference d [rad]).
     infer: tuple = ()
+    step: float | None = None   # sampling interval of the rotation table [s]
+    offset: float = 0.0         # the grid's first point after midnight [s]
+    _table: tuple | None = field(default=None, repr=False)
 
     @property
     def n_fit(self) -> int:
@@ -381,36 +402,95 @@ class _Design:
         new_pos = {old: new for new, old in enumerate(idx)}
         infer = tuple((new_pos[j], new_pos[col], r, d) for j, col, r, d in self.infer)
         return _Design([self.names[i] for i in idx], self.omega[idx], self.t_ref, self.phi[:, idx],
-                       self.f[:, idx], self.trend, self.trend_epoch, infer)
+                       self.f[:, idx], self.trend, self.trend_epoch, infer, self.step, self.offset)
 
     def rows(self, t: np.ndarray) -> np.ndarray:
-        pos = (t - self.t_ref) / SECONDS_PER_DAY
-        i = np.clip(np.floor(pos).astype(np.int64), 0, self.phi.shape[0] - 2)
-        w = (pos - i)[:, None]
-        phi = self.phi[i] * (1.0 - w) + self.phi[i + 1] * w
-        f = self.f[i] * (1.0 - w) + self.f[i + 1] * w
-        arg = (t - self.t_ref)[:, None] * self.omega[None, :] + phi
+        """Rows of the design matrix at times ``t`` [s] (column-major, as BLAS syrk wants)."""
+        Z = self.phasors(t)
         off = 1 + int(self.trend)
         k = self.n_fit
-        X = np.empty((t.size, self.n_params), order="F")  # column-major suits BLAS syrk
-        X[:, 0] = 1.0
-        if self.trend:
-            X[:, 1] = (t - self.trend_epoch) / SECONDS_PER_YEAR
-        X[:, off::2] = f[:, :k] * np.cos(arg[:, :k])
-        X[:, off + 1::2] = f[:, :k] * np.sin(arg[:, :k])
         for j, col, r, d in self.infer:
             # H_ref [f cos(th - g) + r f' cos(th' - g - d)]: with a = H cos g, b = H sin g
             # the inferred term adds r f' cos(th' - d) to the a column, r f' sin(th' - d) to b.
-            fk = r * f[:, col]
-            X[:, off + 2 * j] += fk * np.cos(arg[:, col] - d)
-            X[:, off + 2 * j + 1] += fk * np.sin(arg[:, col] - d)
+            Z[:, j] += (r * complex(math.cos(d), -math.sin(d))) * Z[:, col]
+        X = np.empty((t.size, self.n_params), order="F")
+        X[:, 0] = 1.0
+        if self.trend:
+            X[:, 1] = (t - self.trend_epoch) / SECONDS_PER_YEAR
+        X[:, off::2] = Z.real[:, :k]
+        X[:, off + 1::2] = Z.imag[:, :k]
         return X
+
+    def phasors(self, t: np.ndarray) -> np.ndarray:
+        """``f exp(i (V + u))`` of every constituent at times ``t`` [s]: (n, k) complex."""
+        nd = self.phi.shape[0]
+        i = np.clip(np.floor((t - self.t_ref) / SECONDS_PER_DAY).astype(np.int64), 0, nd - 2)
+        d0, d1 = int(i.min()), int(i.max())
+        days = np.arange(d0, d1 + 1)
+        phi0 = self.phi[d0:d1 + 1]
+        f0 = self.f[d0:d1 + 1]
+        delta = self.phi[d0 + 1:d1 + 2] - phi0
+        df = self.f[d0 + 1:d1 + 2] - f0
+        e = np.exp(1j * ((days * SECONDS_PER_DAY)[:, None] * self.omega[None, :] + phi0))
+        C0 = f0 * e
+        C1 = (df + 1j * delta * f0) * e
+        C2 = (1j * delta * df - 0.5 * delta**2 * f0) * e
+        s = t - (self.t_ref + i * SECONDS_PER_DAY)
+        w = (s / SECONDS_PER_DAY)[:, None]
+        ii = i - d0
+        if d0 == d1:
+            Z = (C0[0] + (C1[0] + C2[0] * w) * w)
+        else:
+            Z = C2[ii]
+            Z *= w
+            Z += C1[ii]
+            Z *= w
+            Z += C0[ii]
+        Z *= self._rotation(s)
+        return Z
+
+    def _rotation(self, s: np.ndarray) -> np.ndarray:
+        """``exp(i omega s)`` for ``s`` seconds after midnight: (n, k) complex."""
+        if self.step is None or not self.names:
+            return np.exp(1j * np.outer(s, self.omega))
+        table, J, m = self._tables()
+        x = (s - self.offset) / self.step
+        j = np.rint(x)
+        on = (np.abs(x - j) * self.step <= _ON_GRID) & (j >= 0) & (j < J)
+        if on.all():
+            return self._lookup(table, j.astype(np.int64), m)
+        E = np.exp(1j * np.outer(s, self.omega))
+        if on.any():
+            E[on] = self._lookup(table, j[on].astype(np.int64), m)
+        return E
+
+    @staticmethod
+    def _lookup(table, j, m):
+        if m == 0:
+            return table[0][j]
+        return table[0][j // m] * table[1][j % m]
+
+    def _tables(self):
+        """The rotation table(s) of the sampling grid, built on first use."""
+        if self._table is None:
+            dt, o = float(self.step), float(self.offset)
+            J = int((SECONDS_PER_DAY - o) // dt) + 2
+            if J <= _TABLE_ROWS:
+                tab = (np.exp(1j * np.outer(o + dt * np.arange(J), self.omega)),)
+                m = 0
+            else:  # exp(i w (o + j dt)) = hi[j // m] lo[j % m]
+                m = int(math.isqrt(J)) + 1
+                hi = np.exp(1j * np.outer(o + dt * m * np.arange(-(-J // m)), self.omega))
+                lo = np.exp(1j * np.outer(dt * np.arange(m), self.omega))
+                tab = (hi, lo)
+            self._table = (tab, J, m)
+        return self._table
 
 
 _NODE_BLOCK = 512  # daily nodes evaluated at a time
 
 
-def _build_design(names, t_min, t_max, nodal, trend, trend_epoch, infer=()) -> _Design:
+def _build_design(names, t_min, t_max, nodal, trend, trend_epoch, infer=(), step=None) -> _Design:
     catalogue = _catalogue()
     speeds = np.array([_speed(catalogue[n]) for n in names])
     omega = np.radians(speeds) / SECONDS_PER_HOUR
@@ -434,23 +514,33 @@ def _build_design(names, t_min, t_max, nodal, trend, trend_epoch, infer=()) -> _
     else:
         phi = np.zeros((nodes.size, 0))
         f = np.zeros((nodes.size, 0))
-    return _Design(list(names), omega, d0, phi, f, bool(trend), float(trend_epoch), tuple(infer))
+    offset = 0.0
+    if step:
+        offset = float((t_min - d0) % step)
+    return _Design(list(names), omega, d0, phi, f, bool(trend), float(trend_epoch), tuple(infer),
+                   float(step) if step else None, offset)
 
 
-def _accumulate(design: _Design, t, y, w, chunk_size):
+def _accumulate(design: _Design, record: "_Record", chunk_size: int, weighting=None):
+    """``X'WX`` and ``X'Wy`` over the record, one chunk of rows at a time. ``weighting`` is
+    ``(beta, scale, tuning)``: Cauchy weights of the residual ``y - X beta`` [m] scaled by
+    ``tuning * scale`` (IRLS), times the record's own weights."""
     p = design.n_params
     A = np.zeros((p, p))
     rhs = np.zeros(p)
-    for s in range(0, t.size, chunk_size):
-        X = design.rows(t[s:s + chunk_size])
-        yc = y[s:s + chunk_size]
+    for t, y, w in record.chunks(chunk_size):
+        X = design.rows(t)
+        if weighting is not None:
+            beta, scale, tuning = weighting
+            cw = _cauchy(y - X @ beta, scale, tuning)
+            w = cw if w is None else cw * w
         if w is not None:
-            sw = np.sqrt(w[s:s + chunk_size])
+            sw = np.sqrt(w)
             X *= sw[:, None]
-            yc = yc * sw
+            y = y * sw
         # X'X is symmetric: syrk computes one triangle, half the work of a product.
         A += blas.dsyrk(1.0, X, trans=1, lower=0)
-        rhs += X.T @ yc
+        rhs += X.T @ y
     return np.triu(A) + np.triu(A, 1).T, rhs
 
 
@@ -472,29 +562,279 @@ def _solve(A, rhs, max_condition=MAX_CONDITION):
             return x / d, cond
         except linalg.LinAlgError:
             pass
-    # stacklevel 4: the warning names harmonic_fit's line (via _solve_record, _least_squares_or_robust)
+    # stacklevel 5: the warning names harmonic_fit's line (via _solve_record,
+    # _least_squares_or_robust, _fit)
     warnings.warn(f"normal equations ill-conditioned (condition number {cond:.3g}); using a "
                   "minimum-norm solution - gaps may leave some constituents undetermined, "
                   "consider fewer constituents or a larger Rayleigh factor",
-                  FitConditioningWarning, stacklevel=4)
+                  FitConditioningWarning, stacklevel=5)
     # Directions weaker than 1/max_condition are not determined by the data: drop them.
     x, *_ = np.linalg.lstsq(As, rhs / d, rcond=1.0 / max_condition)
     return x / d, cond
 
 
-def _residual(design, beta, t, y, chunk_size):
-    r = np.empty_like(y)
-    for s in range(0, t.size, chunk_size):
-        r[s:s + chunk_size] = y[s:s + chunk_size] - design.rows(t[s:s + chunk_size]) @ beta
-    return r
-
-
-def _cauchy_weights(r, tuning):
-    mad = float(np.median(np.abs(r - np.median(r))))
-    scale = mad / _MAD_TO_SIGMA
+def _cauchy(r, scale, tuning):
+    """Cauchy weights of residuals ``r`` [m] scaled by ``tuning * scale``; ones without spread."""
     if scale <= 0.0:
         return np.ones_like(r)
     return 1.0 / (1.0 + (r / (tuning * scale)) ** 2)
+
+
+# --------------------------------------------------------------------------- the record
+
+#: Rows read at a time from a record in passes that need no design rows (the residual).
+_RESIDUAL_ROWS = 65536
+#: Edges of the residual's histogram (medians and MAD in bounded memory): 2**17 bins either
+#: side of zero, spaced evenly in log |r| from a nanometre to a kilometre, so each is 2.1e-4
+#: of its distance from zero wide whatever the residual's size (a gauge's quantisation or a
+#: storm); the median and MAD are interpolated inside a bin. Below a nanometre the residual
+#: has no spread.
+_HIST_SIDE = 2 ** 17
+_NO_SPREAD = 1e-9  # [m]
+_HIST_EDGES = np.concatenate([-np.logspace(3.0, -9.0, _HIST_SIDE + 1), np.logspace(-9.0, 3.0, _HIST_SIDE + 1)])
+
+
+@dataclass
+class _Summary:
+    """What one reading of a record says about it."""
+
+    n: int                 # finite samples
+    t_first: float         # [s]
+    t_last: float          # [s]
+    step: float | None     # median positive interval [s]; None without two distinct times
+    mean_y: float          # [m]
+    var_y: float           # population variance of the levels [m^2]
+
+
+class _Record:
+    """A record in time order, read in chunks ``(t [s], y [m], w [1] or None)`` as often as
+    the fit needs (one pass per step)."""
+
+    def chunks(self, size: int):
+        raise NotImplementedError
+
+    def summary(self) -> _Summary:
+        raise NotImplementedError
+
+
+class _ArrayRecord(_Record):
+    """A record held in arrays (the in-memory API)."""
+
+    def __init__(self, t, y, w):
+        self.t, self.y, self.w = t, y, w
+
+    def chunks(self, size: int):
+        t, y, w = self.t, self.y, self.w
+        for s in range(0, t.size, size):
+            yield t[s:s + size], y[s:s + size], None if w is None else w[s:s + size]
+
+    def summary(self) -> _Summary:
+        t = self.t
+        steps = np.diff(t)
+        steps = steps[steps > 0]
+        step = float(np.median(steps)) if steps.size else None
+        return _Summary(int(t.size), float(t[0]), float(t[-1]), step, float(np.mean(self.y)),
+                        float(np.var(self.y)))
+
+
+class _StreamRecord(_Record):
+    """A record read from a source more than once: ``read()`` returns a fresh iterable of
+    chunks ``(t, y)`` or ``(t, y, w)`` in time order (times as :func:`to_unix_seconds` takes)."""
+
+    def __init__(self, read):
+        if not callable(read):
+            raise FitInputError("the record must be a callable returning an iterable of chunks "
+                                "(times, levels[, weights]) in time order")
+        self._read = read
+        self._n: int | None = None
+
+    def _clean(self):
+        last = -math.inf
+        n = 0
+        for i, chunk in enumerate(self._read()):
+            try:
+                t, y, *rest = chunk
+            except (TypeError, ValueError):
+                raise FitInputError(f"chunk {i} of the record must be (times, levels) or "
+                                    "(times, levels, weights)") from None
+            t = to_unix_seconds(t)
+            y = np.asarray(y, dtype=float).ravel()
+            w = np.asarray(rest[0], dtype=float).ravel() if rest and rest[0] is not None else None
+            if t.shape != y.shape or (w is not None and w.shape != y.shape):
+                raise FitInputError(f"chunk {i} of the record: times, levels and weights differ in length")
+            if w is not None and np.any(w[np.isfinite(w)] < 0):
+                raise FitInputError(f"chunk {i} of the record: weights must be non-negative")
+            ok = np.isfinite(t) & np.isfinite(y)
+            if w is not None:
+                ok &= np.isfinite(w) & (w > 0)
+            if not ok.all():
+                t, y, w = t[ok], y[ok], None if w is None else w[ok]
+            if t.size == 0:
+                continue
+            if np.any(np.diff(t) < 0):
+                order = np.argsort(t, kind="stable")
+                t, y, w = t[order], y[order], None if w is None else w[order]
+            if t[0] < last:
+                raise FitInputError(f"chunk {i} of the record starts at {iso_utc(t[0])}, before the "
+                                    f"previous chunk ends ({iso_utc(last)}): chunks must come in time order")
+            last = t[-1]
+            n += t.size
+            yield t, y, w
+        if self._n is not None and n != self._n:
+            raise FitInputError(f"the record changed while it was being fitted ({self._n} samples "
+                                f"first, {n} now)")
+
+    def chunks(self, size: int):
+        for t, y, w in self._clean():
+            for s in range(0, t.size, size):
+                yield t[s:s + size], y[s:s + size], None if w is None else w[s:s + size]
+
+    def summary(self) -> _Summary:
+        n, first, last, mean, m2 = 0, math.nan, math.nan, 0.0, 0.0
+        steps = _StepCounter()
+        prev = None
+        for t, y, _ in self._clean():
+            if n == 0:
+                first = float(t[0])
+            steps.add(np.diff(t) if prev is None else np.diff(np.concatenate([[prev], t])))
+            prev, last = t[-1], float(t[-1])
+            # the chunk's mean and squared deviations merged into the running ones (Chan et al.)
+            k = y.size
+            cm = float(np.mean(y))
+            cm2 = float(np.sum((y - cm) ** 2))
+            d = cm - mean
+            tot = n + k
+            mean += d * k / tot
+            m2 += cm2 + d * d * n * k / tot
+            n = tot
+        self._n = n
+        return _Summary(n, first, last, steps.median(), mean, m2 / n if n else math.nan)
+
+
+class _StepCounter:
+    """Counts of the positive intervals between samples (rounded to a microsecond, coarser
+    if a record holds more than 65536 distinct ones), for an exact median in bounded memory."""
+
+    _MAX_KEYS = 65536
+
+    def __init__(self):
+        self.keys = np.empty(0)
+        self.counts = np.empty(0, dtype=np.int64)
+        self.decimals = 6
+
+    def add(self, d: np.ndarray) -> None:
+        d = d[d > 0]
+        if d.size == 0:
+            return
+        k, c = np.unique(np.round(d, self.decimals), return_counts=True)
+        self._merge(np.concatenate([self.keys, k]), np.concatenate([self.counts, c]))
+        while self.keys.size > self._MAX_KEYS:
+            self.decimals -= 1
+            self._merge(np.round(self.keys, self.decimals), self.counts)
+
+    def _merge(self, keys, counts) -> None:
+        self.keys, inv = np.unique(keys, return_inverse=True)
+        self.counts = np.bincount(inv, weights=counts).astype(np.int64)
+
+    def median(self) -> float | None:
+        total = int(self.counts.sum())
+        if total == 0:
+            return None
+        cum = np.cumsum(self.counts)
+        lo = self.keys[np.searchsorted(cum, (total - 1) // 2, side="right")]
+        hi = self.keys[np.searchsorted(cum, total // 2, side="right")]
+        return float(0.5 * (lo + hi))
+
+
+@dataclass
+class _ResidualStats:
+    """One pass over the residual: sums, a histogram (median and MAD) and the spectrum's grid."""
+
+    n: int
+    total: float           # sum of r [m]
+    squares: float         # sum of r^2 [m^2]
+    edges: np.ndarray      # histogram bin edges [m]
+    cum: np.ndarray        # samples at or below each edge (linear inside a bin)
+    grid: _ci.ResidualGrid | None
+
+    def cdf(self, x):
+        return np.interp(x, self.edges, self.cum)
+
+    def median(self) -> float:
+        return float(np.interp(0.5 * self.n, self.cum, self.edges))
+
+    def mad(self, med: float) -> float:
+        """Median absolute deviation from ``med`` [m] (bisection on the interpolated CDF)."""
+        lo, hi = 0.0, float(self.edges[-1] - self.edges[0])
+        for _ in range(100):
+            mid = 0.5 * (lo + hi)
+            if self.cdf(med + mid) - self.cdf(med - mid) < 0.5 * self.n:
+                lo = mid
+            else:
+                hi = mid
+        return 0.5 * (lo + hi)
+
+    def beyond(self, med: float, d: float) -> float:
+        """Share of the residual farther than ``d`` from ``med`` [1]."""
+        return float(1.0 - (self.cdf(med + d) - self.cdf(med - d)) / self.n)
+
+
+
+def _residual_pass(predict, record: _Record, summary: _Summary, spectrum: bool) -> _ResidualStats:
+    """Residual ``y - predict(t)`` over the record: sums, histogram and (when ``spectrum``)
+    the cells of its spectrum, in memory bounded by the bins and the cells."""
+    edges = _HIST_EDGES
+    hist = np.zeros(edges.size + 1, dtype=np.int64)  # [under, bins..., over]
+    grid = None
+    if spectrum and summary.step:
+        grid = _ci.ResidualGrid(summary.t_first, summary.t_last, summary.step)
+    n, total, squares = 0, 0.0, 0.0
+    for t, y, _ in record.chunks(_RESIDUAL_ROWS):
+        r = y - predict(t)
+        n += r.size
+        total += float(r.sum())
+        squares += float(np.dot(r, r))
+        hist += np.bincount(np.searchsorted(edges, r), minlength=hist.size)
+        if grid is not None:
+            grid.add(t, r)
+    # samples beyond the range sit at its ends
+    cum = np.cumsum(hist[:-1]).astype(float)
+    cum[-1] += hist[-1]
+    return _ResidualStats(n, total, squares, edges, cum, grid)
+
+
+def _model_of(beta, names, inferred, trend, epoch) -> TideModel:
+    """The tide model of coefficients ``beta`` (inferred constituents riding on theirs)."""
+    off = 1 + int(trend)
+    a, b = beta[off::2], beta[off + 1::2]
+    amp, phase = np.hypot(a, b), np.degrees(np.arctan2(b, a)) % 360.0
+    cons = [{"name": n, "amplitude": float(amp[i]), "phase": float(phase[i])} for i, n in enumerate(names)]
+    for d in inferred:
+        i = names.index(d["from"])
+        cons.append({"name": d["name"], "amplitude": d["ratio"] * float(amp[i]),
+                     "phase": (float(phase[i]) + d["dphase"]) % 360.0})
+    kwargs = {"trend": float(beta[1]), "trend_epoch": float(epoch)} if trend else {}
+    return TideModel(mean=float(beta[0]), constituents=cons, **kwargs)
+
+
+def _predictor(design: _Design, beta, names, inferred, trend, epoch, nodal, step):
+    """``t -> predicted level`` [m] for a chunk of times: the model's fast block path over
+    the chunk's sampling grid when its samples sit on one (gaps allowed), else the model's
+    general path; the design's rows when the fit had no nodal terms (the model always has)."""
+    if not nodal:
+        return lambda t: design.rows(t) @ beta
+    model = _model_of(beta, names, inferred, trend, epoch)
+
+    def predict(t):
+        if step and t.size > 1:
+            x = (t - t[0]) / step
+            j = np.rint(x)
+            cells = int(j[-1]) + 1
+            if cells <= 2 * t.size + 1440 and np.all(np.abs(x - j) * step <= _ON_GRID):
+                return model.predict_grid(float(t[0]), step, cells)[j.astype(np.int64)]
+        return model.predict(t)
+
+    return predict
 
 
 # --------------------------------------------------------------------------- the fit
@@ -621,9 +961,76 @@ def harmonic_fit(times, levels, constituents="auto", rayleigh: float = 1.0, tren
     Foreman (1977); Godin (1972); Munk & Cartwright (1966); Leffler & Jay (2009).
     """
     t, y, w = _clean_record(times, levels, weights)
-    plan = _plan_fit(t, constituents, rayleigh, min_constituents, robust, trend_epoch, infer, chunk_size)
-    setup = dict(t=t, y=y, w=w, nodal=nodal, trend=trend, epoch=plan.epoch, chunk=plan.chunk,
-                 iterations=robust_iterations, tuning=robust_tuning)
+    return _fit(_ArrayRecord(t, y, w), constituents=constituents, rayleigh=rayleigh, trend=trend,
+                robust=robust, nodal=nodal, chunk_size=chunk_size, min_constituents=min_constituents,
+                confidence=confidence, robust_iterations=robust_iterations, robust_tuning=robust_tuning,
+                trend_epoch=trend_epoch, metadata=metadata, infer=infer, long_period_snr=long_period_snr)
+
+
+def harmonic_fit_chunks(read, constituents="auto", rayleigh: float = 1.0, trend: bool = False,
+                        robust="auto", nodal="auto", chunk_size: int = 4096, min_constituents: int = 2,
+                        confidence: float | None = 0.95, robust_iterations: int = 10,
+                        robust_tuning: float = CAUCHY_TUNING, trend_epoch=None,
+                        metadata: dict | None = None, infer="auto", long_period_snr: float | None = None):
+    """:func:`harmonic_fit` of a record read in chunks, in memory that does not grow with it.
+
+    The record is read several times (the fit's passes: a summary, the normal equations, the
+    residual after each solve, and two passes per robust iteration), each time through
+    ``read()``; memory holds one chunk, the normal equations, the daily nodal terms (days by
+    constituents), a histogram of the residual and its spectrum's cells (at most
+    :data:`predictor.confidence.MAX_CELLS`).
+
+    Parameters
+    ----------
+    read : callable
+        ``read()`` returns a fresh iterable of chunks ``(times, levels)`` or
+        ``(times, levels, weights)``, the chunks in time order (times as
+        :func:`harmonic_fit` takes them, usually Unix seconds [s]; levels [m]). Samples with
+        NaN level or time are dropped, as are non-positive weights. Every call must give the
+        same samples; a pass that counts a different number raises :class:`FitInputError`.
+    chunk_size : int
+        Rows of the design matrix built at a time [samples].
+    constituents, rayleigh, trend, robust, nodal, min_constituents, confidence,
+    robust_iterations, robust_tuning, trend_epoch, metadata, infer, long_period_snr
+        As for :func:`harmonic_fit`.
+
+    Returns
+    -------
+    TideModel
+        As :func:`harmonic_fit`, equal to it on the same samples (the median sampling
+        interval is taken from intervals rounded to a microsecond).
+
+    Raises
+    ------
+    RecordTooShortError, FitInputError
+        As :func:`harmonic_fit`; also chunks out of time order or a record that changed
+        between passes.
+
+    References
+    ----------
+    Foreman (1977); Godin (1972); Munk & Cartwright (1966); Leffler & Jay (2009).
+    """
+    return _fit(_StreamRecord(read), constituents=constituents, rayleigh=rayleigh, trend=trend,
+                robust=robust, nodal=nodal, chunk_size=chunk_size, min_constituents=min_constituents,
+                confidence=confidence, robust_iterations=robust_iterations, robust_tuning=robust_tuning,
+                trend_epoch=trend_epoch, metadata=metadata, infer=infer, long_period_snr=long_period_snr)
+
+
+# --------------------------------------------------------------------------- steps of the fit
+
+
+def _fit(record: _Record, *, constituents, rayleigh, trend, robust, nodal, chunk_size, min_constituents,
+         confidence, robust_iterations, robust_tuning, trend_epoch, metadata, infer, long_period_snr):
+    """The fit of :func:`harmonic_fit` and :func:`harmonic_fit_chunks` over a record read in
+    passes: one to summarise it, one to accumulate the normal equations (two per robust
+    iteration), one over the residual after each solve."""
+    summary = record.summary()
+    if summary.n < 3:
+        raise FitInputError(f"only {summary.n} valid sample(s); a fit needs a record of levels")
+    plan = _plan_fit(summary, constituents, rayleigh, min_constituents, robust, trend_epoch, infer,
+                     chunk_size)
+    setup = dict(record=record, summary=summary, nodal=nodal, trend=trend, epoch=plan.epoch,
+                 chunk=plan.chunk, iterations=robust_iterations, tuning=robust_tuning)
     # 1. ordinary least squares, then robust where asked or where the residual is heavy-tailed
     sol, use_robust, robust_reason = _least_squares_or_robust(plan, robust, setup)
     # 2. long-period constituents the record cannot tell from its weather are left out
@@ -633,9 +1040,6 @@ def harmonic_fit(times, levels, constituents="auto", rayleigh: float = 1.0, tren
     meta = _fit_metadata(sol, plan, setup, rayleigh=rayleigh, use_robust=use_robust,
                          robust_reason=robust_reason, confidence=confidence, extra=metadata)
     return _assemble_model(sol, cons, meta, trend, plan.epoch)
-
-
-# --------------------------------------------------------------------------- steps of the fit
 
 
 def _clean_record(times, levels, weights):
@@ -699,37 +1103,29 @@ class _Plan:
     chunk: int              # rows of the design built at a time [samples]
 
 
-def _record_sampling(t: np.ndarray) -> tuple[float, float | None]:
-    """Record length [h] and median sampling interval [h] (None without two distinct times)."""
-    duration_h = (t[-1] - t[0]) / SECONDS_PER_HOUR
-    steps = np.diff(t)
-    steps = steps[steps > 0]
-    step_h = float(np.median(steps)) / SECONDS_PER_HOUR if steps.size else None
-    return duration_h, step_h
-
-
-def _trend_epoch_seconds(trend_epoch, t: np.ndarray) -> float:
+def _trend_epoch_seconds(trend_epoch, summary: _Summary) -> float:
     """The trend's reference time [s, Unix UTC]: as given (a time or Unix seconds), else the
     record midpoint."""
     if trend_epoch is None:
-        return 0.5 * (t[0] + t[-1])
+        return 0.5 * (summary.t_first + summary.t_last)
     if not isinstance(trend_epoch, (int, float)):
         return float(to_unix_seconds([trend_epoch])[0])
     return float(trend_epoch)
 
 
-def _plan_fit(t, constituents, rayleigh, min_constituents, robust, trend_epoch, infer,
+def _plan_fit(summary: _Summary, constituents, rayleigh, min_constituents, robust, trend_epoch, infer,
               chunk_size) -> _Plan:
     """The constituents to fit (Rayleigh and Nyquist selection, or as given), those to infer,
     the trend epoch and the chunk size; options are checked in this order."""
-    duration_h, step_h = _record_sampling(t)
+    duration_h = (summary.t_last - summary.t_first) / SECONDS_PER_HOUR
+    step_h = summary.step / SECONDS_PER_HOUR if summary.step else None
     auto = isinstance(constituents, str)
     names, dropped = _chosen_names(constituents, duration_h, step_h, rayleigh, min_constituents)
     if robust not in (True, False, "auto"):
         raise FitInputError(f"robust must be True, False or 'auto', got {robust!r}")
-    epoch = _trend_epoch_seconds(trend_epoch, t)
+    epoch = _trend_epoch_seconds(trend_epoch, summary)
     inferred, dropped = _resolve_inference(infer, auto, names, dropped, duration_h, rayleigh, step_h)
-    chunk = int(chunk_size) if chunk_size else t.size
+    chunk = int(chunk_size) if chunk_size else summary.n
     if chunk < 1:
         raise FitInputError("chunk_size must be a positive number of samples")
     return _Plan(names, dropped, inferred, auto, duration_h, step_h, epoch, chunk)
@@ -741,45 +1137,61 @@ class _Solution:
     beta: np.ndarray        # mean, [trend], then a, b per fitted constituent
     A: np.ndarray           # the final (weighted) normal matrix
     cond: float
-    r: np.ndarray           # residual [m]
+    stats: _ResidualStats   # the residual of beta: sums, histogram, spectrum cells
     iterations: int
     off: int                # index of the first constituent coefficient
-    t: np.ndarray           # sample times [s]
     rhs: np.ndarray         # the final right-hand side X'Wy
     cov: np.ndarray | None = None  # (X'WX)^-1 when it is not the inverse of A (see _without)
 
 
-def _solve_record(names, inferred, *, t, y, w, nodal, trend, epoch, chunk, robust, iterations,
-                  tuning, start=None, design=None) -> _Solution:
+def _residual_of(design: _Design, beta, names, inferred, setup) -> _ResidualStats:
+    """One pass over the residual of ``beta`` (from the model's fast prediction)."""
+    summary = setup["summary"]
+    predict = _predictor(design, beta, names, inferred, setup["trend"], setup["epoch"], setup["nodal"],
+                         summary.step)
+    return _residual_pass(predict, setup["record"], summary, spectrum=True)
+
+
+def _scale(stats: _ResidualStats) -> float:
+    """Robust standard deviation of the residual, MAD / 0.6745 [m]; 0 without spread (MAD
+    below :data:`_NO_SPREAD`)."""
+    mad = stats.mad(stats.median())
+    return mad / _MAD_TO_SIGMA if mad > _NO_SPREAD else 0.0
+
+
+def _solve_record(names, inferred, *, record, summary, nodal, trend, epoch, chunk, robust, iterations,
+                  tuning, start=None) -> _Solution:
     """Least squares (and IRLS when ``robust``) for the given constituents.
 
-    ``start`` is ``(A, rhs)``: normal equations already accumulated for these parameters (a
-    previous solve's, or the part of them a smaller model keeps), used instead of a first pass
-    over the record; ``design`` the matching design, if already built.
+    ``start`` is a solution already found for these parameters (the ordinary one), used
+    instead of a first pass over the record.
     """
-    if design is None:
+    setup = dict(record=record, summary=summary, nodal=nodal, trend=trend, epoch=epoch)
+    if start is None:
         infer_cols = tuple((names.index(d["from"]), len(names) + i, d["ratio"], math.radians(d["dphase"]))
                            for i, d in enumerate(inferred))
-        design = _build_design(names + [d["name"] for d in inferred], t[0], t[-1], nodal, trend, epoch,
-                               infer_cols)
-    if t.size < design.n_params + 2:
-        raise FitInputError(f"only {t.size} valid samples for {design.n_params} unknowns; "
-                            "the record needs more samples")
-    A, rhs = start if start is not None else _accumulate(design, t, y, w, chunk)
-    beta, cond = _solve(A, rhs)
+        design = _build_design(names + [d["name"] for d in inferred], summary.t_first, summary.t_last,
+                               nodal, trend, epoch, infer_cols, summary.step)
+        if summary.n < design.n_params + 2:
+            raise FitInputError(f"only {summary.n} valid samples for {design.n_params} unknowns; "
+                                "the record needs more samples")
+        A, rhs = _accumulate(design, record, chunk)
+        beta, cond = _solve(A, rhs)
+        stats = _residual_of(design, beta, names, inferred, setup)
+    else:
+        design, A, rhs, beta, cond, stats = (start.design, start.A, start.rhs, start.beta, start.cond,
+                                             start.stats)
     done = 0
     if robust:
         for done in range(1, iterations + 1):
-            r = _residual(design, beta, t, y, chunk)
-            rw = _cauchy_weights(r, tuning)
-            A, rhs = _accumulate(design, t, y, rw if w is None else rw * w, chunk)
+            A, rhs = _accumulate(design, record, chunk, weighting=(beta, _scale(stats), tuning))
             new, cond = _solve(A, rhs)
             change = float(np.max(np.abs(new - beta)))
             beta = new
+            stats = _residual_of(design, beta, names, inferred, setup)
             if change < 1e-6:  # metres: a thousandth of a millimetre
                 break
-    r = _residual(design, beta, t, y, chunk)
-    return _Solution(design, beta, A, cond, r, done, 1 + int(trend), t, rhs)
+    return _Solution(design, beta, A, cond, stats, done, 1 + int(trend), rhs)
 
 
 def _inverse(A: np.ndarray) -> np.ndarray:
@@ -790,24 +1202,21 @@ def _inverse(A: np.ndarray) -> np.ndarray:
     return np.linalg.pinv(A / dsc[:, None] / dsc[None, :], rcond=1.0 / MAX_CONDITION) / np.outer(dsc, dsc)
 
 
-def _without(sol: _Solution, names, gone, setup) -> _Solution:
+def _without(sol: _Solution, names, inferred, gone, setup) -> _Solution:
     """``sol`` with the fitted constituents ``gone`` set to zero: their coefficients and rows of
     the normal equations removed (the others' covariance is the joint one, as estimated), and
-    what they fitted put back into the residual."""
+    the residual that of the others (one pass, from the model's prediction)."""
     pos = [names.index(n) for n in gone]
     cols = np.array([sol.off + 2 * i + k for i in pos for k in (0, 1)])
     keep = np.setdiff1d(np.arange(sol.beta.size), cols)
-    part = _build_design(list(gone), sol.t[0], sol.t[-1], setup["nodal"], False, 0.0)
-    ab = sol.beta[cols]
-    r = sol.r.copy()
-    chunk = setup["chunk"]
-    for s0 in range(0, sol.t.size, chunk):
-        r[s0:s0 + chunk] += part.rows(sol.t[s0:s0 + chunk])[:, 1:] @ ab
+    kept = [n for n in names if n not in gone]
     # the design keeps the others (with any inferred constituent riding on them)
-    design = sol.design.keeping([n for n in names if n not in gone])
+    design = sol.design.keeping(kept)
+    beta = sol.beta[keep]
     cov = _inverse(sol.A)[np.ix_(keep, keep)]
-    return _Solution(design, sol.beta[keep], sol.A[np.ix_(keep, keep)], sol.cond, r, sol.iterations,
-                     sol.off, sol.t, sol.rhs[keep], cov)
+    stats = _residual_of(design, beta, kept, inferred, setup)
+    return _Solution(design, beta, sol.A[np.ix_(keep, keep)], sol.cond, stats, sol.iterations,
+                     sol.off, sol.rhs[keep], cov)
 
 
 #: A residual is heavy-tailed when more than this share of it lies beyond
@@ -822,13 +1231,13 @@ HEAVY_TAIL_SIGMAS = 4.0
 LONG_PERIOD_SNR = 2.0
 
 
-def _heavy_tailed(r: np.ndarray) -> tuple[bool, str]:
+def _heavy_tailed(stats: _ResidualStats) -> tuple[bool, str]:
     """Whether the ordinary residual is heavy-tailed, and the reason in words."""
-    med = float(np.median(r))
-    sigma = float(np.median(np.abs(r - med))) / _MAD_TO_SIGMA
+    med = stats.median()
+    sigma = _scale(stats)
     if sigma <= 0.0:
         return False, "residual without spread"
-    share = float(np.mean(np.abs(r - med) > HEAVY_TAIL_SIGMAS * sigma))
+    share = stats.beyond(med, HEAVY_TAIL_SIGMAS * sigma)
     words = (f"{share:.2%} of the least-squares residual lies beyond {HEAVY_TAIL_SIGMAS:g} robust standard "
              f"deviations ({sigma * 1000:.0f} mm), against 0.006 % for Gaussian noise")
     if share > HEAVY_TAIL_SHARE:
@@ -839,14 +1248,13 @@ def _heavy_tailed(r: np.ndarray) -> tuple[bool, str]:
 def _least_squares_or_robust(plan: _Plan, robust, setup: dict) -> tuple[_Solution, bool, str]:
     """Ordinary least squares, then IRLS with Cauchy weights when ``robust`` is True, or when it
     is "auto" and the ordinary residual is heavy-tailed (the robust pass starts from the ordinary
-    normal equations): (solution, whether robust, why in words)."""
+    solution): (solution, whether robust, why in words)."""
     sol = _solve_record(plan.names, plan.inferred, robust=robust is True, **setup)
     use_robust, reason = bool(robust), "asked for" if robust is True else "not asked for"
     if robust == "auto":
-        use_robust, reason = _heavy_tailed(sol.r)
+        use_robust, reason = _heavy_tailed(sol.stats)
         if use_robust:
-            sol = _solve_record(plan.names, plan.inferred, robust=True, start=(sol.A, sol.rhs),
-                                design=sol.design, **setup)
+            sol = _solve_record(plan.names, plan.inferred, robust=True, start=sol, **setup)
     return sol, use_robust, reason
 
 
@@ -854,8 +1262,7 @@ def _leave_out_weak_long_period(sol: _Solution, plan: _Plan, threshold,
                                 setup: dict) -> tuple[_Solution, _Plan]:
     """With an automatic selection, long-period constituents whose SNR is below ``threshold``
     (None: :data:`LONG_PERIOD_SNR`; 0 keeps them) shrunk to zero and listed as dropped with
-    their SNR: the others keep their joint estimate, the residual takes back what the weak ones
-    had fitted (a pass over their columns only)."""
+    their SNR: the others keep their joint estimate, the residual is that of the others."""
     if threshold is None:
         threshold = LONG_PERIOD_SNR
     if not (plan.auto and threshold):
@@ -867,7 +1274,7 @@ def _leave_out_weak_long_period(sol: _Solution, plan: _Plan, threshold,
                                f"{threshold:g}: at this period the record's weather (surges, gaps) "
                                "cannot be told from tide; left out of the prediction"}
                               for n, snr in weak.items()]
-    sol = _without(sol, plan.names, list(weak), setup)
+    sol = _without(sol, plan.names, plan.inferred, list(weak), setup)
     return sol, replace(plan, names=[n for n in plan.names if n not in weak], dropped=dropped)
 
 
@@ -877,8 +1284,9 @@ def _intervals(sol: _Solution, names, step_h, confidence):
     off, beta, A = sol.off, sol.beta, sol.A
     a, b = beta[off::2], beta[off + 1::2]
     speeds = np.array([_speed(catalogue[n]) for n in names])
-    spec = _ci.residual_band_spectrum(sol.t, sol.r, None if step_h is None else step_h * SECONDS_PER_HOUR,
-                                      fitted_speeds=speeds)
+    if sol.stats.grid is None:
+        raise FitInputError("the record has no two distinct sample times: no spectrum for intervals")
+    spec = sol.stats.grid.spectrum(fitted_speeds=speeds)
     # (X'WX)^-1 of the final solve (of the whole fit when some were set to zero after it)
     inv = np.diag(sol.cov if sol.cov is not None else _inverse(A))
     inv_ab = np.column_stack([inv[off::2], inv[off + 1::2]])
@@ -926,21 +1334,23 @@ def _fit_metadata(sol: _Solution, plan: _Plan, setup: dict, *, rayleigh, use_rob
                   confidence, extra) -> dict:
     """The model's metadata: the record (span, samples, interval [s]), the method and why,
     ``rms`` [m], ``variance_explained`` [1], dropped and inferred constituents, then ``extra``."""
-    t, y, r = sol.t, setup["y"], sol.r
-    var_y = float(np.var(y))
+    summary, stats = setup["summary"], sol.stats
+    var_y = summary.var_y
+    mean_r = stats.total / stats.n
+    var_r = max(stats.squares / stats.n - mean_r * mean_r, 0.0)
     meta = {
         "method": "robust least squares (IRLS, Cauchy weights)" if use_robust else "least squares",
         "robust_reason": robust_reason,
-        "record_start": iso_utc(t[0]),
-        "record_end": iso_utc(t[-1]),
-        "n_samples": int(t.size),
+        "record_start": iso_utc(summary.t_first),
+        "record_end": iso_utc(summary.t_last),
+        "n_samples": int(summary.n),
         "duration_days": float(plan.duration_h / 24.0),
         "sample_interval_s": float(plan.step_h * SECONDS_PER_HOUR) if plan.step_h else 0.0,
         "rayleigh": float(rayleigh),
         "constituent_selection": "auto" if plan.auto else "given",
         "nodal": "daily f and u, interpolated" if setup["nodal"] else "none",
-        "rms": float(np.sqrt(np.mean(r**2))),
-        "variance_explained": float(1.0 - np.var(r) / var_y) if var_y > 0 else 0.0,
+        "rms": float(np.sqrt(stats.squares / stats.n)),
+        "variance_explained": float(1.0 - var_r / var_y) if var_y > 0 else 0.0,
         "condition_number": float(sol.cond),
         "dropped": plan.dropped,
     }

@@ -221,6 +221,27 @@ class TideModel:
         """
         return self._evaluate(times, order=0)
 
+    def predict_grid(self, t0: float, step: float, n: int) -> np.ndarray:
+        """Predicted level at ``t0 + step * j``, ``j < n``, by the fast block path.
+
+        Parameters
+        ----------
+        t0 : float
+            First time [s, Unix UTC].
+        step : float
+            Interval [s], positive.
+        n : int
+            Number of times.
+
+        Returns
+        -------
+        numpy.ndarray
+            Level [m], shape (n,).
+        """
+        if not step > 0.0:
+            raise ValueError(f"step must be a positive number of seconds, got {step!r}")
+        return self._uniform_path(float(t0), float(step), int(n), 0)
+
     def predict_derivative(self, times) -> np.ndarray:
         """Analytic rate of change of the predicted level [m/s].
 
