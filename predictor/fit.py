@@ -438,8 +438,17 @@ class _Design:
         s = t - (self.t_ref + i * SECONDS_PER_DAY)
         w = (s / SECONDS_PER_DAY)[:, None]
         ii = i - d0
-        if d0 == d1:
-            Z = (C0[0] + (C1[0] + C2[0] * w) * w)
+        if t.size >= 64 * days.size:  # long days: each day's coefficients broadcast
+            Z = np.empty((t.size, C0.shape[1]), dtype=complex)
+            cut = np.searchsorted(ii, np.arange(days.size + 1))
+            for q in range(days.size):
+                a, b = cut[q], cut[q + 1]
+                if a < b:
+                    z, wq = Z[a:b], w[a:b]
+                    np.multiply(C2[q], wq, out=z)
+                    z += C1[q]
+                    z *= wq
+                    z += C0[q]
         else:
             Z = C2[ii]
             Z *= w
@@ -780,6 +789,19 @@ class _ResidualStats:
 
 
 
+def _bin_of(r: np.ndarray) -> np.ndarray:
+    """Histogram bin of each residual (as ``searchsorted(_HIST_EDGES, r)``, computed from
+    log10 |r| rather than searched)."""
+    side = _HIST_SIDE
+    a = np.abs(r)
+    with np.errstate(divide="ignore"):
+        lg = np.log10(a)
+    per = side / 12.0  # bins per decade
+    idx = np.where(r > 0, side + 1 + np.ceil((lg + 9.0) * per), np.ceil((3.0 - lg) * per))
+    idx[a <= _NO_SPREAD] = side + 1
+    return np.clip(idx, 0, 2 * side + 2).astype(np.int64)
+
+
 def _residual_pass(predict, record: _Record, summary: _Summary, spectrum: bool) -> _ResidualStats:
     """Residual ``y - predict(t)`` over the record: sums, histogram and (when ``spectrum``)
     the cells of its spectrum, in memory bounded by the bins and the cells."""
@@ -794,7 +816,7 @@ def _residual_pass(predict, record: _Record, summary: _Summary, spectrum: bool) 
         n += r.size
         total += float(r.sum())
         squares += float(np.dot(r, r))
-        hist += np.bincount(np.searchsorted(edges, r), minlength=hist.size)
+        hist += np.bincount(_bin_of(r), minlength=hist.size)
         if grid is not None:
             grid.add(t, r)
     # samples beyond the range sit at its ends
