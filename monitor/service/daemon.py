@@ -61,7 +61,7 @@ from monitor.service.reporting import write_due_reports
 from monitor.store.database import BatchResult, EMPTY_BATCH, Store, check_folder, check_store_path
 from monitor.surge import forecast as surge_forecast
 from monitor.surge import residual as surge_residual
-from predictor import harmonic_fit
+from predictor import harmonic_fit_chunks
 from predictor.errors import FitError
 
 log = logging.getLogger("monitor.service.daemon")
@@ -168,9 +168,10 @@ def refit_station(store: Store, station: StationConfig, now: float | None = None
 
     Samples flagged fail (4) or missing (9) never enter the fit (design rule). The fit is
     meant for use when ``use`` (default: when the station's constants come from its history).
-    ``infer`` goes to :func:`predictor.harmonic_fit` (default ``"auto"``: neighbours the record
-    cannot resolve are inferred from equilibrium ratios; Foreman 1977, sec. 2.3) and is
-    recorded in the fit's metadata.
+    The record is read from the store in chunks (:func:`predictor.harmonic_fit_chunks`), so the
+    fit's memory does not grow with the history. ``infer`` goes to the fit (default
+    ``"auto"``: neighbours the record cannot resolve are inferred from equilibrium ratios;
+    Foreman 1977, sec. 2.3) and is recorded in the fit's metadata.
 
     Good constants are never replaced by worse ones: when a fit is already in use, the
     candidate is fitted without the recent days that fit has not seen (up to
@@ -198,21 +199,21 @@ def refit_station(store: Store, station: StationConfig, now: float | None = None
     if end is None:
         raise FitError(f"station {station.id}: no usable observations in {store.path} to fit")
     span = (station.fit_span_days if span_days is None else span_days) * 86400
-    obs = store.observations(station.id, "primary", end - span, end)
-    obs = obs[~obs["flag"].isin((4, 9))]
-    _enough(station, obs)
+    record = _FitRecord(store, station.id, int(end - span), int(end))
+    _enough(station, record)
     in_use = station.fit_from_history if use is None else use
     current = store.fit_in_use(station.id) if in_use and not force else None
     check = ""
     if current is None:
-        model = _fit_record(station, obs, robust, infer)
+        model = _fit_record(station, record, robust, infer)
     else:
-        model, in_use, check = _checked_fit(station, obs, current, robust, infer)
+        model, in_use, check = _checked_fit(station, record, current, robust, infer)
     model.datum = "station"  # the store keeps levels on the station datum
     md = model.metadata or {}
-    fitted = obs[obs.index <= pd.Timestamp(md.get("record_end", obs.index[-1]))]
-    start_t, end_t = int(fitted.index[0].timestamp()), int(fitted.index[-1].timestamp())
-    fid = store.add_fit(station.id, fitted_at=int(now), start=start_t, end=end_t, n=len(fitted),
+    start_t = int(pd.Timestamp(md["record_start"]).timestamp())
+    end_t = int(pd.Timestamp(md["record_end"]).timestamp())
+    n = int(md["n_samples"])
+    fid = store.add_fit(station.id, fitted_at=int(now), start=start_t, end=end_t, n=n,
                         rms=float(md.get("rms", float("nan"))),
                         variance_explained=float(md.get("variance_explained", float("nan"))),
                         constants=model_to_text(model), in_use=in_use,
@@ -220,23 +221,61 @@ def refit_station(store: Store, station: StationConfig, now: float | None = None
     have = (end_t - start_t) / 86400
     log.info("station %s: fit #%d over %.1f days, rms %.3f m%s%s", station.id, fid, have,
              md.get("rms", float("nan")), " (in use)" if in_use else "", f"; {check}" if check else "")
-    return {"id": fid, "fitted_at": int(now), "start": start_t, "end": end_t, "n": len(fitted),
+    return {"id": fid, "fitted_at": int(now), "start": start_t, "end": end_t, "n": n,
             "rms": md.get("rms"), "variance_explained": md.get("variance_explained"), "in_use": in_use,
             "model": model, "check": check}
 
 
-def _enough(station: StationConfig, obs: pd.DataFrame) -> None:
-    have = (obs.index[-1] - obs.index[0]).total_seconds() / 86400 if len(obs) > 1 else 0.0
+@dataclass(frozen=True)
+class _FitRecord:
+    """A station's primary record between two times [Unix s] (inclusive) as a fit reads it:
+    in chunks from the store, samples flagged fail (4) or missing (9) left out, so a fit's
+    memory does not grow with the history (``predictor.harmonic_fit_chunks``)."""
+
+    store: Store
+    station: str
+    start: int
+    end: int
+
+    def __call__(self):
+        for t, value, flag in self.store.observation_chunks(self.station, "primary", self.start, self.end):
+            keep = ~np.isin(flag, (4, 9))
+            yield t[keep], value[keep]
+
+    def between(self, start: int, end: int) -> "_FitRecord":
+        return _FitRecord(self.store, self.station, int(start), int(end))
+
+    def frame(self) -> pd.DataFrame:
+        """The samples in memory (a short span only: the hindcast check's days)."""
+        parts = list(self())
+        t = np.concatenate([p[0] for p in parts]) if parts else np.empty(0, np.int64)
+        v = np.concatenate([p[1] for p in parts]) if parts else np.empty(0)
+        return pd.DataFrame({"value": v}, index=pd.to_datetime(t, unit="s", utc=True))
+
+
+def _enough(station: StationConfig, record: _FitRecord) -> None:
+    first, last = _usable_span(record)
+    have = (last - first) / 86400 if first is not None and last is not None and last > first else 0.0
     if have < station.fit_min_days:
         raise FitError(f"station {station.id}: {have:.1f} days of usable history, "
                         f"stations[].fit_min_days = {station.fit_min_days:g} needed for a fit")
 
 
-def _fit_record(station: StationConfig, obs: pd.DataFrame, robust: Any, infer: Any):
+def _usable_span(record: _FitRecord) -> tuple[int | None, int | None]:
+    """First and last sample a fit of ``record`` reads (flags 4 and 9 left out), by SQL."""
+    q = ("SELECT {} FROM observations WHERE station = ? AND sensor = 'primary' AND t >= ? AND t <= ? "
+         "AND (flag IS NULL OR flag NOT IN (4, 9))")
+    args = (record.station, record.start, record.end)
+    first = record.store.conn.execute(q.format("min(t)"), args).fetchone()[0]
+    last = record.store.conn.execute(q.format("max(t)"), args).fetchone()[0]
+    return first, last
+
+
+def _fit_record(station: StationConfig, record: _FitRecord, robust: Any, infer: Any):
     try:
         meta = {"station": station.id, "infer": infer if isinstance(infer, str) else
                 ("none" if not infer else "given")}
-        return harmonic_fit(obs.index, obs["value"].to_numpy(), robust=robust, infer=infer, metadata=meta)
+        return harmonic_fit_chunks(record, robust=robust, infer=infer, metadata=meta)
     except ValueError as exc:
         raise FitError(f"station {station.id}: fit failed: {exc}") from None
 
@@ -245,18 +284,18 @@ def _hindcast_rms(model, obs: pd.DataFrame) -> float:
     return float(np.sqrt(np.mean((obs["value"].to_numpy() - model.predict(obs.index)) ** 2)))
 
 
-def _checked_fit(station: StationConfig, obs: pd.DataFrame, current: dict, robust: Any,
+def _checked_fit(station: StationConfig, record: _FitRecord, current: dict, robust: Any,
                  infer: Any) -> tuple[Any, bool, str]:
     """The candidate fitted without the days the fit in use has not seen, whether it hindcasts
     those days no worse, and the comparison in words."""
     cur_model = model_from_text(current["constants"], f"fit {current['id']}")
-    last = obs.index[-1]
-    split = max(pd.Timestamp(int(current["end"]), unit="s", tz="UTC"),
-                last - pd.Timedelta(days=REFIT_CHECK_DAYS))
-    unseen, train = obs[obs.index > split], obs[obs.index <= split]
+    _, last_t = _usable_span(record)
+    split_t = max(int(current["end"]), int(last_t) - int(REFIT_CHECK_DAYS * 86400))
+    unseen = record.between(split_t + 1, record.end).frame()
+    train = record.between(record.start, split_t)
     days = (unseen.index[-1] - unseen.index[0]).total_seconds() / 86400 if len(unseen) > 1 else 0.0
     if days < REFIT_CHECK_MIN_DAYS:
-        model = _fit_record(station, obs, robust, infer)
+        model = _fit_record(station, record, robust, infer)
         return model, False, (f"kept for comparison: only {days:.1f} days of data since fit #{current['id']} "
                               f"in use, {REFIT_CHECK_MIN_DAYS:g} needed to compare hindcasts")
     _enough(station, train)

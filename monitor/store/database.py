@@ -456,6 +456,53 @@ class Store:
         }, index=_from_unix(t))
         return frame
 
+    def observation_chunks(self, station: str, sensor: str = "primary", start_t: int | None = None,
+                           end_t: int | None = None, rows: int = 65536, usable: bool = False):
+        """Observations of one sensor between two times (inclusive), in time order, a chunk at
+        a time: memory holds one chunk whatever the span (a fit over decades reads this way).
+
+        Parameters
+        ----------
+        rows : int
+            Samples per chunk.
+        usable : bool
+            Only samples whose aggregate flag is 1, 2 or 3 (failed and missing ones never
+            enter a fit).
+
+        Yields
+        ------
+        (t, value, flag) : tuple of numpy.ndarray
+            Times [Unix s] (int64), values [m or hPa], aggregate QARTOD flags (2 where not
+            evaluated yet).
+        """
+        lo = -(2 ** 62) if start_t is None else int(start_t)
+        hi = 2 ** 62 if end_t is None else int(end_t)
+        sql = ("SELECT t, value, flag FROM observations WHERE station = ? AND sensor = ? "
+               "AND t >= ? AND t <= ?" + (f" AND {USABLE_SQL}" if usable else "") + " ORDER BY t LIMIT ?")
+        while True:
+            page = self.conn.execute(sql, (station, sensor, lo, hi, int(rows))).fetchall()
+            if not page:
+                return
+            t = np.fromiter((r[0] for r in page), dtype=np.int64, count=len(page))
+            value = np.fromiter((r[1] for r in page), dtype=float, count=len(page))
+            flag = np.fromiter((2 if r[2] is None else r[2] for r in page), dtype=np.int64, count=len(page))
+            yield t, value, flag
+            if len(page) < rows:
+                return
+            lo = int(t[-1]) + 1  # keyset: (station, sensor, t) is the key
+
+    def observation_span(self, station: str, sensor: str = "primary", start_t: int | None = None,
+                         end_t: int | None = None, usable: bool = False) -> tuple[int | None, int | None, int]:
+        """First and last time [Unix s] (None without samples) and the number of a sensor's
+        samples between two times (inclusive); ``usable`` as for :meth:`observation_chunks`."""
+        lo = -(2 ** 62) if start_t is None else int(start_t)
+        hi = 2 ** 62 if end_t is None else int(end_t)
+        row = self.conn.execute(
+            "SELECT min(t), max(t), count(*) FROM observations WHERE station = ? AND sensor = ? "
+            "AND t >= ? AND t <= ?" + (f" AND {USABLE_SQL}" if usable else ""),
+            (station, sensor, lo, hi)).fetchone()
+        return row[0], row[1], int(row[2])
+
     def observation_count(self, station: str | None = None, sensor: str | None = None) -> int:
         sql, args = "SELECT count(*) FROM observations WHERE 1", []
         if station is not None:
