@@ -438,8 +438,8 @@ class _Design:
         s = t - (self.t_ref + i * SECONDS_PER_DAY)
         w = (s / SECONDS_PER_DAY)[:, None]
         ii = i - d0
+        Z = np.empty((t.size, len(self.names)), dtype=complex)
         if t.size >= 64 * days.size:  # long days: each day's coefficients broadcast
-            Z = np.empty((t.size, C0.shape[1]), dtype=complex)
             cut = np.searchsorted(ii, np.arange(days.size + 1))
             for q in range(days.size):
                 a, b = cut[q], cut[q + 1]
@@ -449,17 +449,19 @@ class _Design:
                     z += C1[q]
                     z *= wq
                     z += C0[q]
-        else:
-            Z = C2[ii]
-            Z *= w
-            Z += C1[ii]
-            Z *= w
-            Z += C0[ii]
+                    z *= self._rotation(s[a:b])
+            return Z
+        Z = C2[ii]
+        Z *= w
+        Z += C1[ii]
+        Z *= w
+        Z += C0[ii]
         Z *= self._rotation(s)
         return Z
 
     def _rotation(self, s: np.ndarray) -> np.ndarray:
-        """``exp(i omega s)`` for ``s`` seconds after midnight: (n, k) complex."""
+        """``exp(i omega s)`` for ``s`` seconds after midnight: (n, k) complex (a view of the
+        table for consecutive grid points)."""
         if self.step is None or not self.names:
             return np.exp(1j * np.outer(s, self.omega))
         table, J, m = self._tables()
@@ -467,7 +469,10 @@ class _Design:
         j = np.rint(x)
         on = (np.abs(x - j) * self.step <= _ON_GRID) & (j >= 0) & (j < J)
         if on.all():
-            return self._lookup(table, j.astype(np.int64), m)
+            j = j.astype(np.int64)
+            if m == 0 and j[-1] - j[0] == j.size - 1:
+                return table[0][j[0]:j[-1] + 1]
+            return self._lookup(table, j, m)
         E = np.exp(1j * np.outer(s, self.omega))
         if on.any():
             E[on] = self._lookup(table, j[on].astype(np.int64), m)
