@@ -13,14 +13,16 @@ the same run:
 One-minute (``harmonic_fit_chunks``, about 10 million samples): the record comes from a chunk
 generator standing in for the store (each chunk of 65,536 samples made again on every pass
 from the model and seeded noise, so the record is never in memory), fitted in a fresh
-subprocess. The target is the subprocess's peak resident memory above what it held before
-the fit (``ru_maxrss`` delta: everything, numpy, BLAS and Python) under 300 MB; the peak
-traced by tracemalloc (numpy's buffers) is printed beside it. Time is a ratio to a baseline
+subprocess. The target is the subprocess's peak resident memory (``ru_maxrss``: everything,
+the interpreter, numpy, scipy, pandas, BLAS and the fit) under 300 MB; printed beside it are
+the rise of that peak during the fit (``ru_maxrss`` delta; small, since the fit reuses what
+the imports and a short warm-up fit already held) and the peak traced by tracemalloc during
+the fit (numpy's buffers: what the fit itself holds at once). Time is a ratio to a baseline
 timed in the same subprocess: plain numpy normal equations (``X'X`` and ``X'y`` of cos and
 sin of the same constituents, no nodal terms, chunks of 4,096 rows) over ONE year of the same
-one-minute data; the target is under the number of years (cheaper than that straightforward
-pass over the whole record, although the fit also reads a summary, the residual twice and its
-spectrum).
+one-minute data; the target is under 1.5 times the number of years (per year of record, the
+whole fit, with its nodal terms, a summary pass, two passes over the residual and its
+spectrum, within half as much again as that one straightforward pass).
 
 Run: ``python -m benchmarks.bench_fit`` (``QW_BENCH_YEARS=N`` changes the hourly record's
 length, ``QW_BENCH_MINUTE_YEARS=N`` the one-minute record's; 0 skips it).
@@ -201,13 +203,14 @@ def _minute_report(years: float, targets) -> None:
     print(f"bench_fit: {r['years']:g} years at one minute, {r['n']} samples read in chunks of {_CHUNK}, "
           f"{r['k']} constituents fitted, {r['method']}; M2 {r['m2']:.4f} m +- {r['m2_ci']:.4f}")
     print(f"  harmonic_fit_chunks {r['wall']:8.2f} s   peak rss above start {r['rss_delta'] / mb:8.1f} MB "
-          f"(process before the fit {r['rss_before'] / mb:.0f} MB)   tracemalloc peak {r['peak'] / mb:8.1f} MB")
+          f"(process before the fit {r['rss_before'] / mb:.0f} MB, at its peak "
+          f"{(r['rss_before'] + r['rss_delta']) / mb:.0f} MB)   tracemalloc peak {r['peak'] / mb:8.1f} MB")
     print(f"  baseline: plain numpy normal equations, 1 year at one minute {r['base']:8.2f} s")
-    print(f"  bytes per sample (rss delta / samples) = {r['rss_delta'] / r['n']:6.1f}")
-    targets.below(f"peak memory of the {r['years']:g}-year one-minute fit, ru_maxrss delta [MB]",
-                  r["rss_delta"] / mb, 300.0, ".1f")
+    print(f"  bytes per sample held at once (tracemalloc peak / samples) = {r['peak'] / r['n']:6.1f}")
+    targets.below(f"peak memory of the process fitting {r['years']:g} years at one minute, ru_maxrss [MB]",
+                  (r["rss_before"] + r["rss_delta"]) / mb, 300.0, ".1f")
     targets.below(f"time ratio fit({r['years']:g} y one-minute) / plain normal equations(1 y)",
-                  r["wall"] / r["base"], r["years"], ".2f")
+                  r["wall"] / r["base"], 1.5 * r["years"], ".2f")
 
 
 if __name__ == "__main__":
