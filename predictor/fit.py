@@ -646,7 +646,9 @@ class _ArrayRecord(_Record):
         t = self.t
         steps = np.diff(t)
         steps = steps[steps > 0]
-        step = float(np.median(steps)) if steps.size else None
+        # to the microsecond, as _StepCounter counts them: times converted from nanoseconds
+        # carry a few 1e-7 s of rounding, which would put a one-minute record off its grid
+        step = round(float(np.median(steps)), 6) if steps.size else None
         return _Summary(int(t.size), float(t[0]), float(t[-1]), step, float(np.mean(self.y)),
                         float(np.var(self.y)))
 
