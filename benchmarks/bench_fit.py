@@ -194,8 +194,9 @@ def _minute_child() -> None:
 def _minute_report(years: float, targets) -> None:
     env = dict(os.environ, QW_BENCH_MINUTE_YEARS=str(years))
     root = os.path.dirname(os.path.dirname(os.path.abspath(__file__)))
-    out = subprocess.run([sys.executable, "-c", "from benchmarks.bench_fit import _minute_child; _minute_child()"],
-                         cwd=root, env=env, capture_output=True, text=True, check=False)
+    code = "from benchmarks.bench_fit import _minute_child; _minute_child()"
+    out = subprocess.run([sys.executable, "-c", code], cwd=root, env=env, capture_output=True, text=True,
+                         check=False)
     if out.returncode != 0:
         raise RuntimeError(f"the one-minute fit failed:\n{out.stderr}")
     r = json.loads(out.stdout.strip().splitlines()[-1])

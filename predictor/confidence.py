@@ -305,8 +305,9 @@ def coefficient_variance(spectrum: BandSpectrum, speeds_deg_per_hour, inverse_di
     inverse_diagonal : array_like, optional
         Diagonal elements of ``(X'X)^-1`` for the cosine and sine columns, shape (k, 2)
         [1]. With them the band noise is treated as white noise of the same density,
-        ``sigma_b^2 = S_b / (2 dt)`` (dt the record's sampling interval), so that gaps and nearly-aliased neighbours widen the
-        intervals as they should; without them the orthogonal approximation is used.
+        ``sigma_b^2 = S_b / (2 dt)`` (dt the record's sampling interval, not the grid's
+        cell), so that gaps and nearly-aliased neighbours widen the intervals as they
+        should; without them the orthogonal approximation is used.
 
     Returns
     -------

@@ -3,8 +3,15 @@
 The model is ``h(t) = Z0 [+ trend * years] + sum_k f_k(t) H_k cos(V_k(t) + u_k(t) - g_k)``.
 Each constituent contributes two columns, ``f cos(V+u)`` and ``f sin(V+u)``, whose
 coefficients are ``a = H cos g`` and ``b = H sin g``. The normal equations ``X'WX`` and
-``X'Wy`` are accumulated over chunks of rows, so decades of one-minute data fit in bounded
-memory, and solved by Cholesky after a conditioning check.
+``X'Wy`` are accumulated over chunks of rows and solved by Cholesky after a conditioning
+check. The rows are built by phasor steps, as prediction evaluates the tide: within a day
+each column's phasor ``f exp(i(V+u))`` is the day's nodal coefficients times a rotation
+``exp(i omega s)`` taken from a table of the sampling grid, rather than a cosine and a sine of
+every argument. The residual (for the robust weights' scale, the heavy-tail check, the
+spectrum of the intervals, the RMS) comes from the fitted model's fast prediction, one pass
+over the record each time, summarised in bounded memory: sums, a histogram (median and MAD)
+and the spectrum's cells. So a record read in chunks (:func:`harmonic_fit_chunks`) is never
+held: decades of one-minute data fit in memory that does not grow with the samples.
 
 References
 ----------
@@ -605,7 +612,8 @@ _RESIDUAL_ROWS = 65536
 #: has no spread.
 _HIST_SIDE = 2 ** 17
 _NO_SPREAD = 1e-9  # [m]
-_HIST_EDGES = np.concatenate([-np.logspace(3.0, -9.0, _HIST_SIDE + 1), np.logspace(-9.0, 3.0, _HIST_SIDE + 1)])
+_HIST_EDGES = np.concatenate([-np.logspace(3.0, -9.0, _HIST_SIDE + 1),
+                              np.logspace(-9.0, 3.0, _HIST_SIDE + 1)])
 
 
 @dataclass

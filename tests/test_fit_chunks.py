@@ -137,3 +137,7 @@ def test_store_chunks_give_the_observations_in_order(store):
     np.testing.assert_array_equal(got_t, t[10:81])
     np.testing.assert_allclose(got_v, v[10:81])
     assert store.observation_span("st", "primary", int(t[10]), int(t[80])) == (int(t[10]), int(t[80]), 71)
+    store.conn.execute("UPDATE observations SET flag = 4 WHERE t = ?", (int(t[80]),))
+    store.conn.execute("UPDATE observations SET flag = 1 WHERE t = ?", (int(t[79]),))
+    assert store.observation_span("st", "primary", int(t[10]), int(t[80]), without=(4, 9)) == \
+        (int(t[10]), int(t[79]), 70)

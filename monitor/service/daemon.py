@@ -226,6 +226,9 @@ def refit_station(store: Store, station: StationConfig, now: float | None = None
             "model": model, "check": check}
 
 
+_NOT_FITTED = (4, 9)  # QARTOD fail and missing: never in a fit
+
+
 @dataclass(frozen=True)
 class _FitRecord:
     """A station's primary record between two times [Unix s] (inclusive) as a fit reads it:
@@ -239,7 +242,7 @@ class _FitRecord:
 
     def __call__(self):
         for t, value, flag in self.store.observation_chunks(self.station, "primary", self.start, self.end):
-            keep = ~np.isin(flag, (4, 9))
+            keep = ~np.isin(flag, _NOT_FITTED)
             yield t[keep], value[keep]
 
     def between(self, start: int, end: int) -> "_FitRecord":
@@ -262,12 +265,9 @@ def _enough(station: StationConfig, record: _FitRecord) -> None:
 
 
 def _usable_span(record: _FitRecord) -> tuple[int | None, int | None]:
-    """First and last sample a fit of ``record`` reads (flags 4 and 9 left out), by SQL."""
-    q = ("SELECT {} FROM observations WHERE station = ? AND sensor = 'primary' AND t >= ? AND t <= ? "
-         "AND (flag IS NULL OR flag NOT IN (4, 9))")
-    args = (record.station, record.start, record.end)
-    first = record.store.conn.execute(q.format("min(t)"), args).fetchone()[0]
-    last = record.store.conn.execute(q.format("max(t)"), args).fetchone()[0]
+    """First and last sample a fit of ``record`` reads (flags 4 and 9 left out) [Unix s]."""
+    first, last, _ = record.store.observation_span(record.station, "primary", record.start, record.end,
+                                                   without=_NOT_FITTED)
     return first, last
 
 

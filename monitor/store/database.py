@@ -492,15 +492,19 @@ class Store:
             lo = int(t[-1]) + 1  # keyset: (station, sensor, t) is the key
 
     def observation_span(self, station: str, sensor: str = "primary", start_t: int | None = None,
-                         end_t: int | None = None, usable: bool = False) -> tuple[int | None, int | None, int]:
+                         end_t: int | None = None, without: tuple = ()) -> tuple[int | None, int | None, int]:
         """First and last time [Unix s] (None without samples) and the number of a sensor's
-        samples between two times (inclusive); ``usable`` as for :meth:`observation_chunks`."""
+        samples between two times (inclusive), leaving out those flagged ``without`` (e.g.
+        ``(4, 9)``, failed and missing: what a fit leaves out; a sample not evaluated yet
+        counts)."""
         lo = -(2 ** 62) if start_t is None else int(start_t)
         hi = 2 ** 62 if end_t is None else int(end_t)
-        row = self.conn.execute(
-            "SELECT min(t), max(t), count(*) FROM observations WHERE station = ? AND sensor = ? "
-            "AND t >= ? AND t <= ?" + (f" AND {USABLE_SQL}" if usable else ""),
-            (station, sensor, lo, hi)).fetchone()
+        flags = tuple(int(f) for f in without)
+        sql = ("SELECT min(t), max(t), count(*) FROM observations WHERE station = ? AND sensor = ? "
+               "AND t >= ? AND t <= ?")
+        if flags:
+            sql += f" AND (flag IS NULL OR flag NOT IN ({', '.join('?' * len(flags))}))"
+        row = self.conn.execute(sql, (station, sensor, lo, hi) + flags).fetchone()
         return row[0], row[1], int(row[2])
 
     def observation_count(self, station: str | None = None, sensor: str | None = None) -> int:
