@@ -141,3 +141,26 @@ def test_store_chunks_give_the_observations_in_order(store):
     store.conn.execute("UPDATE observations SET flag = 1 WHERE t = ?", (int(t[79]),))
     assert store.observation_span("st", "primary", int(t[10]), int(t[80]), without=(4, 9)) == \
         (int(t[10]), int(t[79]), 70)
+
+
+def test_design_rows_by_phasor_steps_equal_the_per_sample_formula():
+    # The rows are built per day from the day's f and u ramps and a table of in-day rotations;
+    # here each sample's f cos(V + u) and f sin(V + u) are evaluated on their own (f and u at
+    # every sample, no daily interpolation, no table), so a wrong ramp (up to 5e-4 rad a day
+    # for OO1) or a wrong table entry shows. Nodal terms themselves are checked against
+    # published values in tests/test_nodal.py.
+    from predictor import nodal
+    from predictor.fit import _build_design
+
+    names = ["M2", "K1", "OO1", "M1", "L2", "Mf", "Sa", "MK3"]
+    t = START + 400 * day + np.arange(0.0, 3 * day, 60.0)
+    t = np.concatenate([t[:2000], t[2500:], [t[-1] + 17.3]])  # a gap and one sample off the grid
+    design = _build_design(names, t[0], t[-1], True, False, 0.0, (), 60.0)
+    X = design.rows(t)
+    vu, f = nodal.arguments(t, names, daily=False)
+    arg = np.radians(vu)
+    # 1e-6: f and u are interpolated linearly between midnights (as before issue 16), which
+    # leaves up to 6e-7 for M1 and L2, whose u follows the perigee; a ramp left out would leave
+    # 1e-5 for M2 and 5e-4 for OO1 by the day's end.
+    np.testing.assert_allclose(X[:, 1::2], f * np.cos(arg), atol=1e-6)
+    np.testing.assert_allclose(X[:, 2::2], f * np.sin(arg), atol=1e-6)
