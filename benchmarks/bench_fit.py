@@ -17,8 +17,10 @@ subprocess. The target is the subprocess's peak resident memory (``ru_maxrss``: 
 the interpreter, numpy, scipy, pandas, BLAS and the fit) under 300 MB; printed beside it are
 the rise of that peak during the fit (``ru_maxrss`` delta; small, since the fit reuses what
 the imports and a short warm-up fit already held) and the peak traced by tracemalloc during
-the fit (numpy's buffers: what the fit itself holds at once). Time is a ratio to a baseline
-timed in the same subprocess: plain numpy normal equations (``X'X`` and ``X'y`` of cos and
+the fit (numpy's buffers: what the fit itself holds at once). Time is the subprocess's CPU
+time (``time.process_time``; BLAS single-threaded, so other work on a shared machine moves it
+far less than wall time, which is printed beside it), as a ratio to a baseline timed in the
+same subprocess: plain numpy normal equations (``X'X`` and ``X'y`` of cos and
 sin of the same constituents, no nodal terms, chunks of 4,096 rows) over ONE year of the same
 one-minute data; the target is under 1.5 times the number of years (per year of record, the
 whole fit, with its nodal terms, a summary pass, two passes over the residual and its
@@ -173,19 +175,20 @@ def _minute_child() -> None:
     gc.collect()
     rss0 = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss * 1024
     tracemalloc.start()
-    t0 = time.perf_counter()
+    t0, c0 = time.perf_counter(), time.process_time()
     fit = harmonic_fit_chunks(_minute_reader(model, n))
-    wall = time.perf_counter() - t0
+    wall, cpu = time.perf_counter() - t0, time.process_time() - c0
     _, peak = tracemalloc.get_traced_memory()
     tracemalloc.stop()
     rss1 = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss * 1024
     names = [c["name"] for c in fit.constituents if "inferred_from" not in c]
     one_year = int(365.25 * 1440)
-    t0 = time.perf_counter()
+    t0, c0 = time.perf_counter(), time.process_time()
     _plain_normal_equations(_minute_reader(model, one_year), names)
-    base = time.perf_counter() - t0
+    base_wall, base = time.perf_counter() - t0, time.process_time() - c0
     m2 = next(c for c in fit.constituents if c["name"] == "M2")
-    print(json.dumps({"years": years, "n": n, "k": len(names), "wall": wall, "peak": peak,
+    print(json.dumps({"years": years, "n": n, "k": len(names), "wall": wall, "cpu": cpu, "peak": peak,
+                      "base_wall": base_wall,
                       "rss_delta": rss1 - rss0, "rss_before": rss0, "base": base,
                       "m2": m2["amplitude"], "m2_ci": m2["amplitude_ci"],
                       "method": fit.metadata["method"]}))
@@ -203,15 +206,16 @@ def _minute_report(years: float, targets) -> None:
     mb = 1e6
     print(f"bench_fit: {r['years']:g} years at one minute, {r['n']} samples read in chunks of {_CHUNK}, "
           f"{r['k']} constituents fitted, {r['method']}; M2 {r['m2']:.4f} m +- {r['m2_ci']:.4f}")
-    print(f"  harmonic_fit_chunks {r['wall']:8.2f} s   peak rss above start {r['rss_delta'] / mb:8.1f} MB "
+    print(f"  harmonic_fit_chunks {r['cpu']:8.2f} s CPU ({r['wall']:.2f} s wall)   peak rss above start {r['rss_delta'] / mb:8.1f} MB "
           f"(process before the fit {r['rss_before'] / mb:.0f} MB, at its peak "
           f"{(r['rss_before'] + r['rss_delta']) / mb:.0f} MB)   tracemalloc peak {r['peak'] / mb:8.1f} MB")
-    print(f"  baseline: plain numpy normal equations, 1 year at one minute {r['base']:8.2f} s")
+    print(f"  baseline: plain numpy normal equations, 1 year at one minute {r['base']:8.2f} s CPU "
+          f"({r['base_wall']:.2f} s wall)")
     print(f"  bytes per sample held at once (tracemalloc peak / samples) = {r['peak'] / r['n']:6.1f}")
     targets.below(f"peak memory of the process fitting {r['years']:g} years at one minute, ru_maxrss [MB]",
                   (r["rss_before"] + r["rss_delta"]) / mb, 300.0, ".1f")
-    targets.below(f"time ratio fit({r['years']:g} y one-minute) / plain normal equations(1 y)",
-                  r["wall"] / r["base"], 1.5 * r["years"], ".2f")
+    targets.below(f"CPU time ratio fit({r['years']:g} y one-minute) / plain normal equations(1 y)",
+                  r["cpu"] / r["base"], 1.5 * r["years"], ".2f")
 
 
 if __name__ == "__main__":
