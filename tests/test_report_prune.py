@@ -104,6 +104,17 @@ def test_the_first_pruning_also_removes_old_files_the_store_never_knew(store, tm
     assert not stray.exists() and recent.exists()
 
 
+def test_a_store_pruned_by_the_folder_before_is_swept_once_too(store, tmp_path):
+    # The pruning before this one listed the folder every day and left its mark in the meta.
+    folder = tmp_path / "reports"
+    _keep_reports(store, folder, [WRITTEN])
+    store.set_meta(reporting.PRUNED_FOR, (WRITTEN - dt.timedelta(days=1)).isoformat())
+    stray = folder / "skq" / "2023-12-01.html"
+    stray.write_text("<!DOCTYPE html><p>old</p>")
+    reporting.refresh_index(_config(folder), store, NOW, WRITTEN)
+    assert not stray.exists()
+
+
 def test_pruning_runs_once_a_day(store, tmp_path):
     folder = tmp_path / "reports"
     _keep_reports(store, folder, _days(dt.date(2024, 1, 20), WRITTEN))

@@ -713,6 +713,8 @@ def refresh_index(config: Any, store: Any, now: pd.Timestamp | None = None, day:
 
 #: Meta key: the day whose pruning is done (reports are pruned once per day).
 PRUNED_FOR = "reports.pruned_for"
+#: Meta key: the day the reports folder was swept for files without a row (once per store).
+SWEPT_FOR = "reports.swept_for"
 
 #: Each station with kept reports, one index step each (a skip-scan of the primary key
 #: (station, day), however many days are kept).
@@ -727,7 +729,7 @@ def prune_kept(store: Any, folder: Path, keep_days: int, day: dt.date) -> list[P
 
     What is past retention comes from the store, station by station through the primary key
     (station, day): only the rows that go are read, never the kept ones, nor the folder.
-    The first pruning of a store also sweeps ``folder`` once
+    The first pruning of a store (since this sweep came in) also sweeps ``folder`` once
     (:func:`alerts.reports.render.prune_reports`) for report files without a row.
 
     Parameters
@@ -749,8 +751,9 @@ def prune_kept(store: Any, folder: Path, keep_days: int, day: dt.date) -> list[P
         return []
     cutoff = (day - dt.timedelta(days=keep_days)).isoformat()
     removed = _prune_rows(store, cutoff)
-    if store.get_meta(PRUNED_FOR) is None:
+    if store.get_meta(SWEPT_FOR) is None:
         removed += report_render.prune_reports(folder, keep_days, day)
+        store.set_meta(SWEPT_FOR, day.isoformat())
     store.set_meta(PRUNED_FOR, day.isoformat())
     return removed
 
