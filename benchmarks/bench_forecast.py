@@ -27,11 +27,19 @@ covers at least 90 % of storm cases at every lead; the conditioned range in calm
 is at most 1.5 times as wide as today's (it must not buy its storm coverage by being wide
 when the sea is quiet).
 
+Memory (issue 16: a daemon keeps one learnt forecaster per station, the whole daemon is to
+stay under 0.5 MiB per station): what the forecaster learnt from the three-year history
+still holds once learnt (``tracemalloc``: Python allocations, numpy arrays included, made
+while learning and still alive), against the history's residual grid as float32 values
+measured in the same run (what the forecaster used to keep). Target: under 0.2 MiB.
+
 Run: ``python -m benchmarks.bench_forecast``.
 """
 from __future__ import annotations
 
+import gc
 import time
+import tracemalloc
 
 import numpy as np
 import pandas as pd
@@ -54,7 +62,10 @@ MEAN = 3.1
 SHAPES = ("bell", "fast-rise", "slow-build", "double", "plateau")
 
 
-from benchmarks.targets import TargetMissed
+from benchmarks.targets import TargetMissed, Targets
+
+#: [MiB] retained by one learnt forecaster (issue 16's memory per station, shared out).
+MEMORY_TARGET_MIB = 0.2
 
 
 def tide(t: np.ndarray) -> np.ndarray:
@@ -189,6 +200,18 @@ def score(test: pd.DataFrame, lo, centre, hi) -> pd.DataFrame:
     return pd.DataFrame(rows).set_index(["lead", "set"])
 
 
+def retained_mib(make) -> tuple[float, object]:
+    """Python allocations [MiB] made by ``make()`` and still alive after it returns, with
+    what it returned (kept alive while measured)."""
+    gc.collect()
+    tracemalloc.start()
+    kept = make()
+    gc.collect()
+    current = tracemalloc.get_traced_memory()[0]
+    tracemalloc.stop()
+    return current / 2 ** 20, kept
+
+
 def main() -> None:
     from monitor.surge.forecast import SurgeForecaster
 
@@ -252,6 +275,13 @@ def main() -> None:
     rs = score(rc, rl, rcn, rh)
     print("(not a target) a stormier test winter than the history, storm coverage by lead: new "
           + " ".join(f"{rs.loc[(lead, 'storm'), 'coverage']:.0%}" for lead in LEADS))
+    mib, _ = retained_mib(lambda: SurgeForecaster.learn(train["grid"], skew, train["pgrid"], min_storms=20))
+    grid_mib, _ = retained_mib(lambda: train["grid"].to_numpy(dtype=np.float32))
+    print(f"\nmemory kept by the learnt forecaster (3 years of 10-minute history): {mib * 1024:.1f} KiB; "
+          f"the history's residual grid as float32: {grid_mib * 1024:.1f} KiB (ratio {mib / grid_mib:.3f})")
+    targets = Targets()
+    targets.below("learnt forecaster's memory [MiB]", mib, MEMORY_TARGET_MIB, ".4f")
+    misses += targets.misses
     print(f"total {time.perf_counter() - t_start:.1f} s")
     if misses:
         print("FAIL: " + "; ".join(misses))

@@ -197,3 +197,59 @@ def test_the_log_keeps_the_first_forecast_of_each_half_hour(tmp_path):
     SF.log_forecasts(db.conn, "p", [{**base, "made_t": m, "forecast": 3.0 + i / 100} for i, m in enumerate(made)])
     got = SF.read_log(db, "p", T0 - 1, T0 + hour)
     assert list(got["made_t"]) == [int(T0), int(T0 + 1800)] and list(got["forecast"]) == [3.0, 3.02]
+
+
+# --------------------------------------------------------------------------- what a learnt forecaster keeps
+
+def _wandering_history(days, seed=8):
+    """A residual wandering like a calm sea with gaps: a red-noise walk [m] on the grid, one bin
+    in fifty missing."""
+    rng = np.random.default_rng(seed)
+    n = int(days * 86400 / SF.GRID_S)
+    v = np.cumsum(rng.normal(0, 0.004, n))
+    v -= np.convolve(v, np.ones(145) / 145, mode="same")
+    v[rng.random(n) < 0.02] = np.nan
+    return _grid(v)
+
+
+@pytest.mark.parametrize("days", [40, 200])
+def test_wide_spread_is_the_historys_own_at_every_lead(days):
+    # Reference: numpy's type 7 quantiles (Hyndman & Fan 1996) of r(t + lead) - r(t) over the
+    # history (kept as float32 by the forecaster), one lead at a time; with no surge and no
+    # rate the wide rule adds nothing to them, so they must come out to the last bit.
+    hist = _wandering_history(days)
+    f = SF.SurgeForecaster.learn(hist, None, min_storms=10 ** 6)
+    v = hist.to_numpy(dtype=np.float32).astype(float)
+    steps = np.arange(0, int(SF.MAX_LEAD_H * hour / SF.GRID_S) + 1)
+    lo, _, hi, conditioned, _ = f.ranges(steps * SF.GRID_S / hour, 0.0, 0.0)
+    assert not conditioned.any()
+    for k in steps:
+        d = v[k:] - v[:len(v) - k] if k else np.zeros(np.isfinite(v).sum())
+        expected = np.quantile(d[np.isfinite(d)], [(1 - 0.90) / 2, (1 + 0.90) / 2])
+        assert (lo[k], hi[k]) == (expected[0], expected[1]), k
+
+
+def test_wide_spread_is_kept_for_the_longest_lead_asked():
+    hist = _wandering_history(40)
+    f = SF.SurgeForecaster.learn(hist, None, min_storms=10 ** 6, max_lead_h=36.0)
+    v = hist.to_numpy(dtype=np.float32).astype(float)
+    k = int(36 * hour / SF.GRID_S)
+    d = v[k:] - v[:-k]
+    expected = np.quantile(d[np.isfinite(d)], [(1 - 0.90) / 2, (1 + 0.90) / 2])
+    lo, _, hi, _, _ = f.ranges([36.0], 0.0, 0.0)
+    assert (lo[0], hi[0]) == (expected[0], expected[1])
+
+
+@pytest.mark.parametrize("n, nan_share, decimals", [(5_000, 0.0, None), (157_680, 0.02, None),
+                                                    (60_000, 0.3, 3), (20_000, 0.0, 1)])
+def test_type7_quantiles_are_numpys_to_the_bit(n, nan_share, decimals):
+    # Reference: np.quantile on the finite values (type 7). Ties (rounded values), gaps and
+    # heavy tails (Student t with 2 degrees of freedom) included; both tails and the ends.
+    rng = np.random.default_rng(n)
+    x = rng.standard_t(2, n)
+    if decimals is not None:
+        x = np.round(x, decimals)
+    x[rng.random(n) < nan_share] = np.nan
+    finite = np.isfinite(x)
+    probs = ((1 - 0.90) / 2, (1 + 0.90) / 2, 0.0, 0.5, 1.0, 0.001, 0.123457, 0.876543, 0.31416)
+    assert np.array_equal(SF.type7_quantiles(x, finite, probs), np.quantile(x[finite], probs))

@@ -778,7 +778,8 @@ class Daemon:
             grid, skew, pressure = surge_forecast.read_history(self.store.conn, st.id, end_t - int(rs.history_days * 86400),
                                                    end_t, barometer)
             rt.forecaster = surge_forecast.SurgeForecaster.learn(grid, skew, pressure, min_storms=rs.forecast_min_storms,
-                                                     min_history_days=rs.min_history_days)
+                                                     min_history_days=rs.min_history_days,
+                                                     max_lead_h=horizon.total_seconds() / 3600)
             rt.history_at = end_t
         back = int((surge_forecast.RATE_HOURS + 1) * 3600)
         recent = self.store.derived(st.id, start_t - back, end_t)["smoothed"].dropna()

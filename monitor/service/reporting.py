@@ -681,19 +681,18 @@ def _constants(store: Any, sid: str, model: Any, source: str, shift: float = 0.0
 
 def refresh_index(config: Any, store: Any, now: pd.Timestamp | None = None, day: dt.date | None = None) -> Path:
     """Prune reports more than ``reports.keep_days`` before ``day`` (the day just written;
-    once per day) and write the index page from the summaries kept in ``report_runs``: no
-    report file is read, so a round costs the same with 40 reports kept or 40,000. A report
-    written before the summaries were kept has its summary read from its file once, and
-    kept."""
+    once per day, :func:`prune_kept`) and write the index page from the summaries kept in
+    ``report_runs``: no report file is read or listed, so a round costs about the same with
+    40 reports kept or 6,000 (``benchmarks/bench_growth.py``). A report written before the
+    summaries were kept has its summary read from its file once, and kept."""
     settings = settings_of(config)
     now = now or pd.Timestamp.now(tz="UTC")
     db = store.db
     day = day or now.tz_convert("UTC").date() - dt.timedelta(days=1)
     cutoff = (day - dt.timedelta(days=settings.keep_days)).isoformat() if settings.keep_days > 0 else ""
     try:
-        if settings.keep_days > 0 and store.get_meta("reports.pruned_for") != day.isoformat():
-            report_render.prune_reports(settings.folder, settings.keep_days, day)
-            store.set_meta("reports.pruned_for", day.isoformat())
+        if settings.keep_days > 0 and store.get_meta(PRUNED_FOR) != day.isoformat():
+            prune_kept(store, settings.folder, settings.keep_days, day)
         entries = []
         for sid, day, path, summary in db.conn.execute(
                 "SELECT station, day, path, summary FROM report_runs WHERE day >= ? ORDER BY station, day",
@@ -710,6 +709,70 @@ def refresh_index(config: Any, store: Any, now: pd.Timestamp | None = None, day:
         return report_render.write_index(settings.folder, now, entries)
     except OSError as exc:
         raise ConfigError(f"reports.folder {settings.folder}: cannot write the index ({exc})") from None
+
+
+#: Meta key: the day whose pruning is done (reports are pruned once per day).
+PRUNED_FOR = "reports.pruned_for"
+#: Meta key: the day the reports folder was swept for files without a row (once per store).
+SWEPT_FOR = "reports.swept_for"
+
+#: Each station with kept reports, one index step each (a skip-scan of the primary key
+#: (station, day), however many days are kept).
+_STATIONS_KEPT = ("WITH RECURSIVE s(station) AS (SELECT MIN(station) FROM report_runs UNION ALL "
+                  "SELECT (SELECT MIN(station) FROM report_runs WHERE station > s.station) FROM s "
+                  "WHERE s.station IS NOT NULL) SELECT station FROM s WHERE station IS NOT NULL")
+
+
+def prune_kept(store: Any, folder: Path, keep_days: int, day: dt.date) -> list[Path]:
+    """Delete the reports of days more than ``keep_days`` [days] before ``day`` (a local
+    date), file and ``report_runs`` row alike, and mark the day as pruned.
+
+    What is past retention comes from the store, station by station through the primary key
+    (station, day): only the rows that go are read, never the kept ones, nor the folder.
+    The first pruning of a store (since this sweep came in) also sweeps ``folder`` once
+    (:func:`alerts.reports.render.prune_reports`) for report files without a row.
+
+    Parameters
+    ----------
+    store : monitor.store.database.Store
+    folder : Path
+        The reports folder (of the configuration, resolved).
+    keep_days : int
+        Days kept [days]; 0 or less keeps every report.
+    day : date
+        The day just written.
+
+    Returns
+    -------
+    list of Path
+        The report files removed (those of the rows, then those of the sweep).
+    """
+    if keep_days <= 0:
+        return []
+    cutoff = (day - dt.timedelta(days=keep_days)).isoformat()
+    removed = _prune_rows(store, cutoff)
+    if store.get_meta(SWEPT_FOR) is None:
+        removed += report_render.prune_reports(folder, keep_days, day)
+        store.set_meta(SWEPT_FOR, day.isoformat())
+    store.set_meta(PRUNED_FOR, day.isoformat())
+    return removed
+
+
+def _prune_rows(store: Any, cutoff: str) -> list[Path]:
+    """Remove the files and ``report_runs`` rows of days before ``cutoff`` (``YYYY-MM-DD``)."""
+    removed = []
+    conn = store.db.conn
+    for (sid,) in conn.execute(_STATIONS_KEPT).fetchall():
+        old = conn.execute("SELECT path FROM report_runs WHERE station = ? AND day < ?", (sid, cutoff)).fetchall()
+        if not old:
+            continue
+        for (path,) in old:
+            if path:
+                Path(path).unlink(missing_ok=True)
+                removed.append(Path(path))
+        with store.transaction() as tx:
+            tx.execute("DELETE FROM report_runs WHERE station = ? AND day < ?", (sid, cutoff))
+    return removed
 
 
 def find_station(config: Any, station_id: str) -> Any:

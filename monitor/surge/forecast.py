@@ -397,11 +397,82 @@ def unconditioned_quantiles(residual_grid: pd.Series, lead_s: float, coverage: f
     if steps >= len(vals):
         return None
     diff = vals[steps:] - vals[:len(vals) - steps] if steps > 0 else np.zeros(np.isfinite(vals).sum())
-    diff = diff[np.isfinite(diff)]
-    if len(diff) < 100:
+    finite = np.isfinite(diff)
+    if np.count_nonzero(finite) < 100:
         return None
-    q = np.quantile(diff, [(1 - coverage) / 2, (1 + coverage) / 2])
+    q = type7_quantiles(diff, finite, ((1 - coverage) / 2, (1 + coverage) / 2))
     return float(q[0]), float(q[1])
+
+
+def spread_table(residual_grid: pd.Series | np.ndarray, steps: int, coverage: float = 0.90) -> np.ndarray:
+    """:func:`unconditioned_quantiles` at every lead of ``0 .. steps`` grid steps.
+
+    Returns
+    -------
+    ndarray, shape (steps + 1, 2)
+        Row k: the lower and upper quantile [m] at a lead of ``k * GRID_S`` seconds; NaN
+        where the history holds fewer than 100 pairs that far apart.
+    """
+    vals = np.asarray(residual_grid, dtype=float)
+    table = np.full((steps + 1, 2), np.nan)
+    for k in range(steps + 1):
+        q = unconditioned_quantiles(vals, k * GRID_S, coverage)
+        if q is not None:
+            table[k] = q
+    return table
+
+
+#: Below this many values :func:`type7_quantiles` hands them straight to numpy.
+_SELECT_MIN = 4096
+#: Every how many values the pre-filter's sample takes one, and the margin of probability
+#: [1] either side of each quantile that its window of candidates spans.
+_SELECT_SAMPLE, _SELECT_MARGIN = 64, 0.02
+
+
+def type7_quantiles(values: np.ndarray, finite: np.ndarray, probs: tuple[float, ...]) -> np.ndarray:
+    """``np.quantile(values[finite], probs)`` (linear interpolation, Hyndman & Fan type 7),
+    the same to the last bit, at a fraction of its cost on long arrays.
+
+    Each quantile interpolates two neighbouring order statistics. They are found among the
+    few values inside a window around the quantile, bounded by quantiles of a regular
+    sample of one value in ``_SELECT_SAMPLE`` widened by ``_SELECT_MARGIN``; the window is
+    checked to hold both, else numpy runs on all values. The interpolation is numpy's own,
+    on the two order statistics: ``np.quantile([a, b], g)`` with ``g`` the fraction of the
+    position ``(n - 1) p`` (numpy's virtual index for two values is ``g`` itself, so its
+    weights are the same).
+
+    Parameters
+    ----------
+    values : ndarray
+        Values [any unit], NaN allowed where ``finite`` is False.
+    finite : ndarray of bool
+        Which values count.
+    probs : tuple of float
+        Probabilities [1] in [0, 1].
+    """
+    n = int(np.count_nonzero(finite))
+    sample = values[::_SELECT_SAMPLE]
+    sample = sample[np.isfinite(sample)]
+    if n < _SELECT_MIN or len(sample) < _SELECT_MIN // _SELECT_SAMPLE or np.isinf(values).any():
+        return np.quantile(values[finite], probs)
+    edges = np.quantile(sample, [min(max(p + m, 0.0), 1.0) for p in probs for m in (-_SELECT_MARGIN, _SELECT_MARGIN)])
+    out = np.empty(len(probs))
+    for i, p in enumerate(probs):
+        out[i] = _type7_in_window(values, finite, n, p, edges[2 * i], edges[2 * i + 1])
+    return out
+
+
+def _type7_in_window(values: np.ndarray, finite: np.ndarray, n: int, p: float, low: float, high: float) -> float:
+    """One type 7 quantile from the candidates between ``low`` and ``high`` (see
+    :func:`type7_quantiles`), or numpy on every value when they do not hold it."""
+    position = (n - 1) * p
+    j = int(math.floor(position))
+    below = int(np.count_nonzero(values < low))
+    inside = values[(values >= low) & (values <= high)]
+    if not (below <= j and j + 1 < below + len(inside)) or j + 1 >= n:
+        return float(np.quantile(values[finite], p))
+    pair = np.partition(inside, (j - below, j + 1 - below))[[j - below, j + 1 - below]]
+    return float(np.quantile(pair, position - math.floor(position)))
 
 
 # --------------------------------------------------------------------------- forecasting
@@ -414,13 +485,16 @@ class SurgeForecaster:
     ``models[False]`` ignores pressure, ``models[True]`` uses the pressure tendency; either is
     None when the history holds fewer than ``min_storms`` storms (with a barometer, for the
     second), and then the wide rule of thumb gives the range.
+
+    It keeps what its forecasts use and no history: the two fitted models and, for the wide
+    rule, ``spread``, the unconditioned quantiles of the residual's change at each lead
+    (:func:`spread_table`, from the history's residual rounded to float32 as the grid was
+    kept before, so the forecasts are the same). A daemon following hundreds of stations
+    keeps one per station: with three years of history the full grid was 0.6 MiB of it,
+    the table is 2.4 KiB (``benchmarks/bench_forecast.py`` measures it).
     """
 
-    # The history's residual on the grid [m] as float32 values (no index: the grid is
-    # regular), for the unconditioned spread of the wide fallback. Three years of
-    # ten-minute steps are 0.6 MiB so; as a float64 Series with its index they were 2.5 MiB
-    # per station, kept all the time by a daemon following hundreds.
-    residual_grid: np.ndarray
+    spread: np.ndarray | None
     models: dict
     storms: int
     storms_with_pressure: int
@@ -428,13 +502,17 @@ class SurgeForecaster:
     history_days: float
     coverage: float = 0.90
     min_history_days: float = 14.0
-    _uncond: dict = field(default_factory=dict, repr=False)
 
     @classmethod
     def learn(cls, residual_grid: pd.Series, skew: pd.DataFrame | None, pressure_grid: pd.Series | None = None,
-              min_storms: int = 20, coverage: float = 0.90, min_history_days: float = 14.0) -> "SurgeForecaster":
+              min_storms: int = 20, coverage: float = 0.90, min_history_days: float = 14.0,
+              max_lead_h: float = MAX_LEAD_H) -> "SurgeForecaster":
         """Learn from a history: smoothed residual on the grid [m], skew surges of its cycles,
-        pressure on the grid [hPa] (optional)."""
+        pressure on the grid [hPa] (optional).
+
+        ``max_lead_h`` [h] is the longest lead the wide rule's spread is kept for (at least
+        ``MAX_LEAD_H``); a longer lead takes the spread of the longest kept.
+        """
         g = residual_grid
         days = 0.0 if len(g.dropna()) < 2 else (g.dropna().index[-1] - g.dropna().index[0]).total_seconds() / 86400
         storms = count_storms(g)
@@ -447,7 +525,11 @@ class SurgeForecaster:
             models[False] = fit_spread(pairs, pressure=False, coverage=coverage)
             if with_p >= min_storms:
                 models[True] = fit_spread(pairs, pressure=True, coverage=coverage)
-        return cls(residual_grid=g.to_numpy(dtype=np.float32), models=models, storms=storms, storms_with_pressure=with_p,
+        spread = None
+        if days >= min_history_days:
+            steps = int(math.ceil(max(max_lead_h, MAX_LEAD_H) * 3600 / GRID_S))
+            spread = spread_table(g.to_numpy(dtype=np.float32), steps, coverage)
+        return cls(spread=spread, models=models, storms=storms, storms_with_pressure=with_p,
                    min_storms=min_storms, history_days=days, coverage=coverage, min_history_days=min_history_days)
 
     def ranges(self, lead_h, residual, rate, tendency=None) -> tuple:
@@ -486,16 +568,15 @@ class SurgeForecaster:
         return lo, c, hi, conditioned, with_p & conditioned
 
     def _base(self, lead_h: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-        """Today's unconditioned spread at each lead (cached per grid step), or the fixed
-        rule-of-thumb spread without enough history."""
+        """Today's unconditioned spread at each lead (the nearest grid step's, from
+        ``spread``), or the fixed rule-of-thumb spread without enough history."""
+        if self.spread is None:
+            return (np.full(len(lead_h), -NO_HISTORY_HALF_WIDTH), np.full(len(lead_h), NO_HISTORY_HALF_WIDTH))
         keys = np.rint(np.asarray(lead_h) * 3600 / GRID_S).astype(int)
-        lo, hi = np.empty(len(keys)), np.empty(len(keys))
-        for k in np.unique(keys):
-            if k not in self._uncond:
-                self._uncond[k] = (unconditioned_quantiles(self.residual_grid, k * GRID_S, self.coverage)
-                                   if self.history_days >= self.min_history_days else None)
-            qk = self._uncond[k] or (-NO_HISTORY_HALF_WIDTH, NO_HISTORY_HALF_WIDTH)
-            lo[keys == k], hi[keys == k] = qk
+        rows = self.spread[np.clip(keys, 0, len(self.spread) - 1)]
+        known = np.isfinite(rows).all(axis=1)
+        lo = np.where(known, rows[:, 0], -NO_HISTORY_HALF_WIDTH)
+        hi = np.where(known, rows[:, 1], NO_HISTORY_HALF_WIDTH)
         return lo, hi
 
     def forecast(self, state: StormState, hw_t: float, hw_level: float) -> dict:
