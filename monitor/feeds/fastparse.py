@@ -41,6 +41,7 @@ MAX_DIGITS = 15
 #: Widest field read on the fast path [characters]; wider ones go to the general parser.
 MAX_FIELD = 24
 _POW10_FLOAT = np.array([float(10 ** k) for k in range(MAX_DIGITS + 1)])
+_PAD = MAX_FIELD + 32  # zero bytes after the buffer: more than any column read past a field
 _NL, _DOT, _PLUS, _MINUS, _ZERO = 10, ord("."), ord("+"), ord("-"), ord("0")
 
 
@@ -84,7 +85,9 @@ def read_batch(texts, delimiter: str, time_column: int, value_column: int, time_
     delim = _delimiter_byte(delimiter)
     if buf is None or delim is None or time_format not in ("iso", "epoch", "epoch_ms"):
         return None
-    a = np.frombuffer(buf, dtype=np.uint8)
+    # zero bytes past the end, so that a column read past a field near the end stays inside
+    padded = np.frombuffer(buf + bytes(_PAD), dtype=np.uint8)
+    a = padded[:len(buf)]
     n = len(texts)
     nl = np.flatnonzero(a == _NL)
     if nl.size != n - 1:
@@ -94,6 +97,7 @@ def read_batch(texts, delimiter: str, time_column: int, value_column: int, time_
     ok = _plain_lines(a, starts, ends, delim, comment, header_lines, linenos)
     tcol, vcol = time_column - 1, value_column - 1
     fields = _Fields(a, starts, ends, delim, max(tcol, vcol) + 1)
+    a = padded
     ok &= fields.enough
     vs, ve = fields.span(vcol)
     num, good = _decimals(a, vs, ve, ok)
@@ -136,7 +140,7 @@ def _delimiter_byte(delimiter: str) -> int | None:
     """The delimiter as one byte (``whitespace`` read as a single space); None if the fast
     path cannot split on it (more than one character, or one that numbers and times use)."""
     d = " " if delimiter == "whitespace" else delimiter
-    if len(d) != 1 or not d.isascii() or d.isalnum() or d in "+-.:\n":
+    if len(d) != 1 or not (d == "\t" or " " <= d <= "~") or d.isalnum() or d in "+-.:":
         return None
     return ord(d)
 
@@ -167,16 +171,20 @@ def _plain_lines(a: np.ndarray, starts: np.ndarray, ends: np.ndarray, delim: int
 def _starts_with(a: np.ndarray, starts: np.ndarray, ends: np.ndarray, prefix: bytes) -> np.ndarray:
     """Lines whose bytes begin with ``prefix``."""
     hit = (ends - starts) >= len(prefix)
+    if not hit.any():
+        return hit
     for k, byte in enumerate(prefix):
-        hit &= _column(a, starts, k) == byte
+        hit &= a[np.minimum(starts + k, a.size - 1)] == byte
     return hit
 
 
 def _equals(a: np.ndarray, s: np.ndarray, e: np.ndarray, text: bytes) -> np.ndarray:
     """Fields (from ``s`` to ``e``) that are exactly ``text``."""
     hit = (e - s) == len(text)
+    if not hit.any():
+        return hit
     for k, byte in enumerate(text):
-        hit &= _column(a, s, k) == byte
+        hit &= a[np.minimum(s + k, a.size - 1)] == byte
     return hit
 
 
@@ -208,10 +216,9 @@ class _Fields:
 # ------------------------------------------------------------------------------ numbers
 
 def _column(a: np.ndarray, s: np.ndarray, k: int) -> np.ndarray:
-    """Byte ``k`` of each field starting at ``s`` (any byte where a field is shorter)."""
-    if a.size == 0:
-        return np.zeros(s.size, dtype=np.uint8)
-    return a[np.minimum(s + k, a.size - 1)]
+    """Byte ``k`` of each field starting at ``s`` (any byte where a field is shorter; ``a``
+    is padded with ``_PAD`` zero bytes, and no field read is longer)."""
+    return a[s + k]
 
 
 def _decimals(a: np.ndarray, s: np.ndarray, e: np.ndarray, ok: np.ndarray) -> tuple[np.ndarray, np.ndarray]:

@@ -164,8 +164,7 @@ def _parse_fast_then_general(texts, fmt: LineFormat, received, linenos, max_ahea
         return _parse_general(texts, fmt, recv, linenos, max_ahead)
     source = "sensor" if fmt.time_column > 0 else "receive"
     if fast.ok.all():
-        return ParsedLines(fast.t, fast.value, np.full(n, source, dtype=object), linenos, [], 0,
-                           np.arange(n, dtype=np.int64))
+        return ParsedLines(fast.t, fast.value, _filled(n, source), linenos, [], 0, np.arange(n, dtype=np.int64))
     read = np.flatnonzero(fast.ok)
     left = np.flatnonzero(~fast.ok)
     rest = _parse_general([texts[i] for i in left.tolist()], fmt, recv[left], linenos[left], max_ahead)
@@ -180,9 +179,16 @@ def _merged(read: np.ndarray, fast, left: np.ndarray, rest: ParsedLines, source:
     order = np.argsort(pos, kind="stable")
     t = np.concatenate((fast.t[read], rest.t))[order]
     value = np.concatenate((fast.value[read], rest.value))[order]
-    src = np.concatenate((np.full(read.size, source, dtype=object), rest.time_source))[order]
+    src = np.concatenate((_filled(read.size, source), rest.time_source))[order]
     pos = pos[order]
     return ParsedLines(t, value, src, linenos[pos], rest.rejects, rest.skipped, pos)
+
+
+def _filled(n: int, text: str) -> np.ndarray:
+    """An object array of ``n`` times ``text`` (``np.full`` is ten times slower for objects)."""
+    out = np.empty(n, dtype=object)
+    out.fill(text)
+    return out
 
 
 def _to_float(fields: list[str]) -> np.ndarray:
