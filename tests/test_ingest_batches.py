@@ -70,7 +70,7 @@ def test_how_a_file_is_cut_into_batches_does_not_change_what_is_stored(tmp_path)
     assert len(obs) == 60
 
 
-def test_a_bad_line_past_the_first_batch_is_named_by_its_line_in_the_file(tmp_path, capsys):
+def test_a_bad_line_past_the_first_batch_is_named_by_its_line_in_the_file(tmp_path):
     lines = [f"2025-03-01T{k // 60 % 24:02d}:{k % 60:02d}:00Z,{1.5 + k % 10 / 100:.2f}" for k in range(1_400)]
     lines[1_234] = "2025-03-01T20:34:00Z,not-a-level"
     src = tmp_path / "long.csv"

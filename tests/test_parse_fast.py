@@ -15,7 +15,7 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 
 from monitor.feeds import fastparse
-from monitor.feeds.parse import LineFormat, Observation, Reject, parse_line, parse_lines
+from monitor.feeds.parse import LineFormat, Observation, parse_line, parse_lines
 
 RECV = 1_760_000_000.0  # an arbitrary receive time [s] (2025-10-09)
 

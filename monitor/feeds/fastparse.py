@@ -196,7 +196,7 @@ class _Fields:
         self.pos = np.flatnonzero(a == delim)
         line = np.searchsorted(starts, self.pos, side="right") - 1
         count = np.bincount(line, minlength=starts.size)
-        self.first = np.searchsorted(line, np.arange(starts.size))
+        self.first = np.cumsum(count) - count  # index in pos of each line's first delimiter
         self.count = count
         self.enough = count >= need - 1
 
@@ -330,7 +330,9 @@ def _civil_seconds(a: np.ndarray, at: np.ndarray) -> tuple[np.ndarray, np.ndarra
     leap = ((y % 4 == 0) & (y % 100 != 0)) | (y % 400 == 0)
     dim = _MONTH_DAYS[np.clip(mo, 0, 12)] + ((mo == 2) & leap)
     fine &= (mo >= 1) & (mo <= 12) & (d >= 1) & (d <= dim) & (hh <= 23) & (mi <= 59) & (ss <= 59)
-    return _days_from_civil(y, mo, d) * 86400 + hh * 3600 + mi * 60 + ss, fine
+    fine &= (y >= _YEAR0) & (y <= 2200)
+    month = np.clip((y - _YEAR0) * 12 + mo - 1, 0, _MONTH_START.size - 1)
+    return (_MONTH_START[month] + d - 1) * 86400 + hh * 3600 + mi * 60 + ss, fine
 
 
 def _days_from_civil(y: np.ndarray, m: np.ndarray, d: np.ndarray) -> np.ndarray:
@@ -342,6 +344,13 @@ def _days_from_civil(y: np.ndarray, m: np.ndarray, d: np.ndarray) -> np.ndarray:
     doy = (153 * mp + 2) // 5 + d - 1
     doe = yoe * 365 + yoe // 4 - yoe // 100 + doy
     return era * 146097 + doe - 719468
+
+
+#: Days from 1970-01-01 to the first of each month of the years the fast path reads
+#: (1900 to 2200; a time outside them is refused by the general parser), by table lookup.
+_YEAR0 = 1900
+_MONTH_START = _days_from_civil(np.repeat(np.arange(_YEAR0, 2201), 12), np.tile(np.arange(1, 13), 2201 - _YEAR0),
+                                np.ones((2201 - _YEAR0) * 12, dtype=np.int64)).astype(np.int64)
 
 
 def _localise(secs: np.ndarray, fine: np.ndarray, zone: str) -> tuple[np.ndarray, np.ndarray]:
