@@ -157,7 +157,7 @@ def same(a, b) -> bool:
     return a == b
 
 
-@settings(max_examples=1500, deadline=None)
+@settings(max_examples=1000, deadline=None)
 @given(batch=batches())
 def test_a_batch_gives_every_line_the_outcome_it_gets_on_its_own(batch):
     fmt, lines, linenos, received, max_ahead = batch
