@@ -233,3 +233,21 @@ def test_header_lines_are_left_to_the_general_parser():
     assert fast_read(fmt, lines, np.arange(1, 5)).tolist() == [False, False, True, True]
     res = parse_lines(lines, fmt, RECV)
     assert res.skipped == 2 and res.lineno.tolist() == [3, 4]
+
+
+@settings(max_examples=300, deadline=None)
+@given(digits=st.lists(st.text("0123456789", min_size=1, max_size=15), min_size=1, max_size=40),
+       data=st.data())
+def test_fast_decimals_are_floats_bit_for_bit(digits, data):
+    # reference: Python's float (correctly rounded decimal conversion), not our code
+    texts = []
+    for d in digits:
+        dot = data.draw(st.integers(0, len(d)))
+        sign = data.draw(st.sampled_from(["", "-", "+"]))
+        texts.append(f"{sign}{d[:dot]}.{d[dot:]}" if data.draw(st.booleans()) else f"{sign}{d}")
+    lines = [f"2025-01-01T00:00:00Z,{x}" for x in texts]
+    got = fastparse.read_batch(lines, ",", 1, 2, "iso", "", "#", 0, "", 1.0, 0.0, np.full(len(lines), RECV),
+                               np.arange(1, len(lines) + 1), None)
+    assert got.ok.all()
+    # the value is reading x scale + offset (here 1 and 0, which turns -0.0 into 0.0 as in the parser)
+    assert [np.float64(v).tobytes() for v in got.value] == [np.float64(float(x) * 1.0 + 0.0).tobytes() for x in texts]

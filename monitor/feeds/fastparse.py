@@ -18,9 +18,11 @@ What it reads:
   times left undecided); epoch seconds or milliseconds written as plain decimals;
 - values written as plain decimals (``-1.234``, ``12``, ``.5``; at most 15 digits): a
   decimal of at most 15 digits is an integer below 2**53 divided by a power of ten that
-  is exact in binary, and IEEE 754 division rounds that quotient correctly, so the result
-  is the very double ``float(text)`` gives (IEEE 754-2019, clause 4.3; Python's ``float``
-  rounds decimal text correctly);
+  is exact in binary, and an IEEE 754 division rounds the exact quotient once, so the
+  result is the double nearest the decimal: the very double ``float(text)`` gives, since
+  Python converts decimal text with correct rounding (IEEE 754-2019 clause 5.1 and
+  CPython's use of D. Gay's correctly rounded conversion, both from memory; checked
+  against ``float`` bit for bit by the property test);
 - a one-character delimiter (or ``whitespace``, read as single spaces) and no time column
   (receive times).
 
