@@ -14,7 +14,7 @@ from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
 from monitor.feeds import RawLine, feed_from_config, open_feed
-from monitor.feeds.filetail import FileFeed
+from monitor.feeds.filetail import FIRST_READ_BYTES, FileFeed
 
 
 def append(path, data: bytes) -> None:
@@ -223,6 +223,33 @@ def test_small_chunks_read_over_several_polls(tmp_path):
     for _ in range(100):
         got += texts(feed.poll())
     assert got == [str(i) for i in range(100)]
+
+
+def test_a_backlog_is_read_in_polls_that_start_small_and_grow(tmp_path):
+    path = tmp_path / "gauge.csv"
+    lines = [f"2025-01-01T00:00:00Z,{i:08d}" for i in range(20_000)]  # 30 bytes each, 600 kB
+    append(path, "".join(x + "\n" for x in lines).encode())
+    feed = FileFeed("quay", str(path), chunk=256 << 10)
+    sizes, got = [], []
+    while len(got) < len(lines):
+        polled = texts(feed.poll())
+        assert polled, "a poll returned nothing with lines left"
+        sizes.append(len(polled))
+        got += polled
+    assert got == lines
+    assert sizes[0] * 30 <= FIRST_READ_BYTES and sizes[0] > 0.9 * FIRST_READ_BYTES / 30
+    assert sizes[1] > 1.9 * sizes[0] and sizes[2] > 1.9 * sizes[1]  # doubling ...
+    assert max(sizes) * 30 <= 256 << 10  # ... up to the chunk
+
+
+def test_after_the_backlog_the_next_burst_starts_small_again(tmp_path):
+    path = tmp_path / "gauge.csv"
+    append(path, b"".join(b"%029d\n" % i for i in range(10_000)))
+    feed = FileFeed("quay", str(path), chunk=1 << 20)
+    while feed.poll():
+        pass
+    append(path, b"".join(b"%029d\n" % i for i in range(10_000)))
+    assert len(feed.poll()) * 30 <= FIRST_READ_BYTES
 
 
 def expected_lines(data: bytes) -> list[str]:

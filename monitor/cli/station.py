@@ -16,6 +16,7 @@ import sys
 import textwrap
 import time
 from pathlib import Path
+from typing import Iterator
 
 import numpy as np
 
@@ -25,7 +26,7 @@ from monitor.cli.common import CAUTION, count, finite_float, input_file, store_e
 from monitor.cli.errors import UserError
 from monitor.cli.timeparse import local_text, parse_range
 from monitor.errors import MonitorError
-from monitor.feeds.base import decode_line
+from monitor.feeds.base import FIRST_BATCH_LINES, batch_sizes, decode_line
 from monitor.feeds.capture import SUFFIX
 from monitor.feeds.capture import is_capture
 from monitor.feeds.capture import read_capture
@@ -272,26 +273,34 @@ def cmd_status(args: argparse.Namespace) -> int:
 
 # --------------------------------------------------------------------------- ingest
 
-def _read_batches(path: Path, size: int):
-    """(lines, bytes read so far) in batches, line endings removed; undecodable bytes become U+FFFD."""
+def _read_batches(path: Path, sizes: Iterator[int]):
+    """(lines, bytes read so far) in batches of the ``sizes`` in turn [lines], line endings
+    removed; undecodable bytes become U+FFFD."""
     try:
         fh = open(path, encoding="utf-8-sig", errors="replace", newline="")  # a leading BOM is not data
     except OSError as exc:
         raise UserError(f"{path}: cannot be read ({exc.strerror or exc})") from None
     with fh:
         batch: list[str] = []
+        size = next(sizes)
         for line in fh:
             batch.append(line.rstrip("\r\n"))
             if len(batch) >= size:
                 yield batch, fh.buffer.tell() if hasattr(fh, "buffer") else 0
                 batch = []
+                size = next(sizes)
         if batch:
             yield batch, path.stat().st_size
 
 
 def ingest_file(store, sensor, path: Path, progress=None, batch_size: int = INGEST_BATCH,
-                first_reject: list | None = None, max_ahead: float | None = None):
+                first_reject: list | None = None, max_ahead: float | None = None,
+                first_batch: int = FIRST_BATCH_LINES):
     """Backfill one file into the store.
+
+    Batches grow from ``first_batch`` to ``batch_size`` [lines]
+    (:func:`monitor.feeds.base.batch_sizes`), each stored in one transaction, so the
+    first rows of a big file are stored at once.
 
     Returns
     -------
@@ -302,13 +311,14 @@ def ingest_file(store, sensor, path: Path, progress=None, batch_size: int = INGE
         (the station's ``qc.future_tolerance``; None: not checked).
     """
     if is_capture(path):
-        return _ingest_capture(store, sensor, path, progress, batch_size, first_reject, max_ahead)
+        return _ingest_capture(store, sensor, path, progress, batch_sizes(batch_size, first_batch), first_reject,
+                               max_ahead)
     total = EMPTY_BATCH
     lineno = 0
     first_t = None
     label = f"ingest:{sensor.station}:{path.name}"
     fmt = sensor.format
-    for lines, pos in _read_batches(path, batch_size):
+    for lines, pos in _read_batches(path, batch_sizes(batch_size, first_batch)):
         if lineno == 0 and _is_header(lines[0], fmt):
             # a file written with a column header, for a sensor whose lines have none: the
             # header is skipped, not counted as a rejected line
@@ -338,7 +348,7 @@ def _is_header(line: str, fmt) -> bool:
             and re.search(r"[A-Za-z]", text) is not None and re.search(r"\d", text) is None)
 
 
-def _ingest_capture(store, sensor, path: Path, progress, batch_size: int, first_reject: list | None,
+def _ingest_capture(store, sensor, path: Path, progress, sizes: Iterator[int], first_reject: list | None,
                     max_ahead: float | None):
     """:func:`ingest_file` for a raw capture file of a serial line: each line parsed as the
     daemon parsed it when it was read (same receive time, same format, no header lines)."""
@@ -349,7 +359,7 @@ def _ingest_capture(store, sensor, path: Path, progress, batch_size: int, first_
     first_t = None
     label = f"ingest:{sensor.station}:{path.name}"
     try:
-        for raws, recv, linenos, bad, pos in read_capture(path, batch_size):
+        for raws, recv, linenos, bad, pos in read_capture(path, sizes):
             texts = [decode_line(r, encoding) for r in raws]
             parsed = parse_lines(texts, fmt, np.asarray(recv, dtype=float), linenos, max_ahead)
             rejects = sorted(parsed.rejects + [Reject(n, text[:500], "not a capture record (cut short?)")

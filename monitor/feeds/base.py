@@ -11,7 +11,7 @@ import hashlib
 import logging
 import os
 from dataclasses import dataclass
-from typing import Any
+from typing import Any, Iterator
 
 log = logging.getLogger("monitor.feeds")
 
@@ -23,7 +23,24 @@ CHUNK_BYTES = 4 << 20
 #: reject it) rather than held in memory without bound.
 MAX_LINE_BYTES = 1 << 20
 
+#: The first batch of a backfill [lines]: small, so that the first rows of a big file are
+#: stored (and visible to other readers of the store) within a fraction of a second...
+FIRST_BATCH_LINES = 2_000
+#: ... and each batch after it this many times the one before, up to the most per batch.
+BATCH_GROWTH = 2
+
 _UTF8_BOM = b"\xef\xbb\xbf"
+
+
+def batch_sizes(most: int, first: int = FIRST_BATCH_LINES, growth: int = BATCH_GROWTH) -> Iterator[int]:
+    """Lines of each batch of a backfill, without end: ``first``, then ``growth`` times the
+    one before, never more than ``most`` [lines]. A big file's first rows need not wait for
+    a whole batch of ``most`` lines to be parsed and stored; the per-batch cost (one
+    transaction, one checkpoint) is paid only a few more times."""
+    size = max(1, min(first, most))
+    while True:
+        yield size
+        size = min(most, size * growth)
 
 
 @dataclass(slots=True)

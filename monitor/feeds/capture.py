@@ -15,6 +15,7 @@ before its lines are handed on, so a line that reached the store is in its captu
 """
 from __future__ import annotations
 
+import itertools
 import logging
 import math
 import os
@@ -122,8 +123,10 @@ def is_capture(path: str | os.PathLike) -> bool:
         return False
 
 
-def read_capture(path: str | os.PathLike, size: int) -> Iterator[tuple[list, list, list, list, int]]:
-    """Records of a capture file in batches of up to ``size``.
+def read_capture(path: str | os.PathLike,
+                 size: int | Iterator[int]) -> Iterator[tuple[list, list, list, list, int]]:
+    """Records of a capture file in batches of up to ``size`` records (or of each size an
+    iterator of sizes gives, in turn).
 
     Yields
     ------
@@ -141,6 +144,8 @@ def read_capture(path: str | os.PathLike, size: int) -> Iterator[tuple[list, lis
         linenos: list[int] = []
         bad: list[tuple[int, str]] = []
         lineno = 1
+        sizes = itertools.repeat(size) if isinstance(size, int) else iter(size)
+        limit = next(sizes)
         for record in fh:
             lineno += 1
             if not record.endswith(b"\n"):  # the last record of a capture cut off mid-write
@@ -157,8 +162,9 @@ def read_capture(path: str | os.PathLike, size: int) -> Iterator[tuple[list, lis
             raws.append(raw)
             recv.append(received)
             linenos.append(lineno)
-            if len(raws) >= size:
+            if len(raws) >= limit:
                 yield raws, recv, linenos, bad, fh.tell()
                 raws, recv, linenos, bad = [], [], [], []
+                limit = next(sizes)
         if raws or bad:
             yield raws, recv, linenos, bad, fh.tell()

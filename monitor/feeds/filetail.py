@@ -11,6 +11,10 @@ Behaviour
 - Truncation (the file shrinks below the position read, or its first bytes change): reading
   starts again at byte 0.
 - Bytes that do not decode are replaced (U+FFFD) and left for the parser to reject.
+- A backlog (the daemon started on a big file, or a burst after an outage) is read in
+  polls that grow from ``FIRST_READ_BYTES`` to ``chunk``, doubling while each poll fills
+  its budget, so the first lines of a backlog are stored within a poll's small batch,
+  not after a whole chunk's; a poll that finds less than its budget starts the ramp again.
 
 The checkpoint (:meth:`FileFeed.state`) holds the identity of the file being read (device,
 inode, a hash of its first bytes), the byte offset just past the last line returned, and its
@@ -35,6 +39,10 @@ from monitor.feeds.base import (
     int_field,
     log,
 )
+
+
+#: The first poll of a backlog reads at most this [bytes] (about 2,000 one-minute lines).
+FIRST_READ_BYTES = 64 << 10
 
 
 class FileCursor:
@@ -156,6 +164,7 @@ class FileFeed(Feed):
         self.path = os.fspath(path)
         self.encoding = encoding
         self.chunk = chunk
+        self._budget = min(FIRST_READ_BYTES, chunk)  # this poll's, growing through a backlog
         self._cur: FileCursor | None = None
         self._resume: dict[str, Any] | None = None
 
@@ -216,7 +225,7 @@ class FileFeed(Feed):
     def poll(self) -> list[RawLine]:
         out: list[RawLine] = []
         received = time.time()
-        budget = self.chunk
+        budget = self._budget
         while budget > 0:
             if self._cur is None:
                 self._cur = self._open_name()
@@ -243,7 +252,14 @@ class FileFeed(Feed):
             cur.finish(received, out)
             cur.close()
             self._cur = None  # and go round to open the new file under the name
+        self._grow(filled=budget <= 0)
         return out
+
+    def _grow(self, filled: bool) -> None:
+        """Double the next poll's budget after a poll that filled it (up to ``chunk``); back
+        to ``FIRST_READ_BYTES`` after one that did not (the backlog is read)."""
+        first = min(FIRST_READ_BYTES, self.chunk)
+        self._budget = min(self.chunk, self._budget * 2) if filled else first
 
     def state(self) -> dict[str, Any]:
         if self._cur is not None:

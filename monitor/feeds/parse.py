@@ -1,9 +1,13 @@
 """Telemetry line parsing: configurable columns, ISO 8601 or epoch times, units, offsets.
 
-Pure functions, no I/O. :func:`parse_lines` reads a batch at once (vectorised with
-pandas, so a year of one-minute data parses in well under a second) and sorts every
-line into one of three bins: an observation, a reject with a reason, or skipped
-(blank, comment or header). :func:`parse_line` is the same for one line.
+Pure functions, no I/O. :func:`parse_lines` reads a batch at once and sorts every line
+into one of three bins: an observation, a reject with a reason, or skipped (blank, comment
+or header). :func:`parse_line` is the same for one line. A batch is read in two steps: the
+fast path (:mod:`monitor.feeds.fastparse`, numpy over the joined batch) reads the lines of
+the common shapes it is sure of; the general parser (vectorised with pandas, line by line
+where it must) reads the rest and decides every reject and skip, with its reason. A line's
+outcome never depends on the other lines of its batch: it is what :func:`parse_line`, the
+general parser alone, gives for it.
 
 Times come out as integer Unix seconds, UTC (rounded to the nearest second); levels in
 metres on the station datum (reading x unit factor + sensor offset); a barometer in hPa.
@@ -23,12 +27,13 @@ from typing import Sequence
 import numpy as np
 import pandas as pd
 
+from monitor.feeds.fastparse import T_MAX as _T_MAX
+from monitor.feeds.fastparse import T_MIN as _T_MIN
+from monitor.feeds.fastparse import read_batch
 from predictor.timeutil import iso_utc
 
 
 MAX_TEXT = 500  # characters of a rejected line kept in the store
-# Plausible epoch range: 1900-01-01 .. 2200-01-01 [s]; outside it a clock or a format is wrong.
-_T_MIN, _T_MAX = -2208988800, 7258118400
 # The tail of an ISO 8601 time carrying a UTC offset (the 'Z' designator is checked first).
 _OFFSET_TAIL = re.compile(r"\d[+-]\d{2}(?::?\d{2})?$")
 
@@ -142,23 +147,71 @@ def parse_lines(texts: Sequence[str | bytes], fmt: LineFormat, received: float |
     was_enabled = gc.isenabled()
     gc.disable()
     try:
-        return _parse_lines(texts, fmt, received, linenos, max_ahead)
+        return _parse_fast_then_general(texts, fmt, received, linenos, max_ahead)
     finally:
         if was_enabled:
             gc.enable()
 
 
+def _parse_fast_then_general(texts, fmt: LineFormat, received, linenos, max_ahead) -> ParsedLines:
+    """The fast path over the whole batch, the general parser over the lines it left."""
+    n = len(texts)
+    linenos, recv = _numbers_and_receive_times(n, received, linenos)
+    fast = read_batch(texts, fmt.delimiter, fmt.time_column, fmt.value_column, fmt.time_format,
+                      fmt.naive_time_zone, fmt.comment, fmt.header_lines, fmt.missing_marker,
+                      fmt.scale, fmt.offset, recv, linenos, max_ahead) if n else None
+    if fast is None:
+        return _parse_general(texts, fmt, recv, linenos, max_ahead)
+    source = "sensor" if fmt.time_column > 0 else "receive"
+    if fast.ok.all():
+        return ParsedLines(fast.t, fast.value, _filled(n, source), linenos, [], 0, np.arange(n, dtype=np.int64))
+    read = np.flatnonzero(fast.ok)
+    left = np.flatnonzero(~fast.ok)
+    rest = _parse_general([texts[i] for i in left.tolist()], fmt, recv[left], linenos[left], max_ahead)
+    return _merged(read, fast, left, rest, source, linenos)
+
+
+def _merged(read: np.ndarray, fast, left: np.ndarray, rest: ParsedLines, source: str,
+            linenos: np.ndarray) -> ParsedLines:
+    """One :class:`ParsedLines` in input order from the fast path's lines (positions ``read``)
+    and the general parser's result ``rest`` over the lines at positions ``left``."""
+    pos = np.concatenate((read, left[rest.index]))
+    order = np.argsort(pos, kind="stable")
+    t = np.concatenate((fast.t[read], rest.t))[order]
+    value = np.concatenate((fast.value[read], rest.value))[order]
+    src = np.concatenate((_filled(read.size, source), rest.time_source))[order]
+    pos = pos[order]
+    return ParsedLines(t, value, src, linenos[pos], rest.rejects, rest.skipped, pos)
+
+
+def _filled(n: int, text: str) -> np.ndarray:
+    """An object array of ``n`` times ``text`` (``np.full`` is ten times slower for objects)."""
+    out = np.empty(n, dtype=object)
+    out.fill(text)
+    return out
+
+
 def _to_float(fields: list[str]) -> np.ndarray:
-    """Numbers from text; NaN where a field is not a number."""
+    """Numbers from text, as ``float(text)`` reads each; NaN where a field is not a number.
+    (Field by field once the whole list fails, so one bad field cannot change how another
+    is read.)"""
     try:
         return np.array(fields, dtype=float)
     except (ValueError, TypeError, OverflowError):
-        return pd.to_numeric(pd.Series(fields, dtype=object), errors="coerce").to_numpy(dtype=float, na_value=np.nan)
+        return np.array([_one_float(f) for f in fields], dtype=float)
 
 
-def _parse_lines(texts, fmt, received, linenos, max_ahead=None) -> ParsedLines:
-    """:func:`parse_lines` without the collector switched off: the steps in order. The first
-    reason found for a line wins: its value, its time, the time's range, then ``max_ahead``."""
+def _one_float(field: str) -> float:
+    try:
+        return float(field)
+    except (ValueError, TypeError, OverflowError):
+        return np.nan
+
+
+def _parse_general(texts, fmt: LineFormat, received, linenos, max_ahead=None) -> ParsedLines:
+    """The general parser, each line on its own (:func:`parse_line` is this for one line):
+    the steps in order. The first reason found for a line wins: its value, its time, the
+    time's range, then ``max_ahead``."""
     n = len(texts)
     linenos, recv = _numbers_and_receive_times(n, received, linenos)
     stripped, keep, unreadable = _lines_to_read(texts, fmt, linenos)
@@ -166,7 +219,7 @@ def _parse_lines(texts, fmt, received, linenos, max_ahead=None) -> ParsedLines:
     keep, tfield, vfield, short = _split_columns(texts, stripped, keep, fmt, linenos)
     if not keep:
         return ParsedLines(np.empty(0, np.int64), np.empty(0), np.empty(0, object), np.empty(0, np.int64),
-                           unreadable + short, skipped, np.empty(0, np.int64))
+                           sorted(unreadable + short, key=lambda r: r.lineno), skipped, np.empty(0, np.int64))
     idx = np.asarray(keep, dtype=np.int64)
     recv_sel = recv[idx]
     value, value_reasons = _read_values(vfield, fmt)
@@ -183,7 +236,12 @@ def _numbers_and_receive_times(n: int, received, linenos) -> tuple[np.ndarray, n
     """Line numbers (int64; default 1..n) and receive times [s, Unix UTC] (float64), one per line."""
     if linenos is None:
         linenos = range(1, n + 1)
-    linenos = np.asarray(list(linenos), dtype=np.int64)
+    if isinstance(linenos, range):
+        linenos = np.arange(linenos.start, linenos.stop, linenos.step, dtype=np.int64)
+    elif isinstance(linenos, np.ndarray):
+        linenos = linenos.astype(np.int64)
+    else:
+        linenos = np.asarray(list(linenos), dtype=np.int64)
     if np.ndim(received) == 0:
         recv = np.full(n, float(received))
     else:
@@ -397,7 +455,7 @@ def parse_line(text: str | bytes, fmt: LineFormat, received: float, lineno: int 
     UTC] is when it arrived; a time stamped more than ``max_ahead`` [s] after it is refused.
     The observation's ``t`` is [Unix s, UTC], its value [m] (or [hPa]) after ``fmt``'s scale
     and offset."""
-    res = parse_lines([text], fmt, received, [lineno], max_ahead)
+    res = _parse_general([text], fmt, received, [lineno], max_ahead)
     if len(res):
         return Observation(int(res.t[0]), float(res.value[0]), str(res.time_source[0]), int(res.lineno[0]))
     if res.rejects:

@@ -144,10 +144,34 @@ def ingest_lines(store: Store, sensor: SensorConfig, lines: Sequence[Any], feed:
 
 
 def row_lines(parsed, texts: Sequence[Any]) -> tuple:
-    """(line numbers, texts) of the parsed rows, for the reject log's conflicting repeats."""
-    texts = [texts[i] for i in parsed.index.tolist()] if parsed.index is not None else [None] * len(parsed)
-    return parsed.lineno.tolist(), [t.decode("utf-8", "backslashreplace") if isinstance(t, bytes) else t
-                                    for t in texts]
+    """(line numbers, texts) of the parsed rows, for the reject log's conflicting repeats.
+    Each text is looked up when asked for (only a conflicting repeat's is), so a batch
+    builds no list of row texts."""
+    return parsed.lineno, RowTexts(texts, parsed.index)
+
+
+class RowTexts:
+    """The text of each parsed row (``texts[index[j]]``, bytes decoded), looked up on demand.
+
+    Parameters
+    ----------
+    texts : sequence of str or bytes
+        The batch's lines.
+    index : ndarray of int or None
+        Position in ``texts`` of each parsed row (None: texts unknown, each row's is None).
+    """
+
+    __slots__ = ("texts", "index")
+
+    def __init__(self, texts: Sequence[Any], index: np.ndarray | None):
+        self.texts = texts
+        self.index = index
+
+    def __getitem__(self, j: int) -> str | None:
+        if self.index is None:
+            return None
+        text = self.texts[int(self.index[j])]
+        return text.decode("utf-8", "backslashreplace") if isinstance(text, bytes) else text
 
 
 #: A refit is checked on the most recent days of quality-controlled data that the constants in

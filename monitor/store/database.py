@@ -16,6 +16,7 @@ from __future__ import annotations
 
 import contextlib
 import fcntl
+import itertools
 import json
 import logging
 import os
@@ -225,10 +226,10 @@ class Store:
         """
         now = int(time.time() if now is None else now)
         n = len(t)
-        if time_source is None:
-            time_source = np.full(n, "sensor", dtype=object)
-        rows = zip([station] * n, [sensor] * n, np.asarray(t, dtype=np.int64).tolist(),
-                   np.asarray(value, dtype=float).tolist(), list(time_source))
+        # the keys repeated, not listed; the numbers as one list each
+        rows = zip(itertools.repeat(station, n), itertools.repeat(sensor, n),
+                   np.asarray(t, dtype=np.int64).tolist(), np.asarray(value, dtype=float).tolist(),
+                   itertools.repeat("sensor", n) if time_source is None else list(time_source))
         rej_rows = [(feed, station, sensor, int(r.lineno) if r.lineno and r.lineno > 0 else None, r.text, r.reason, now)
                     for r in rejects]
         with self.transaction() as conn:
