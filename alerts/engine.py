@@ -139,10 +139,11 @@ def ensure_alert_schema(db) -> None:
 # --------------------------------------------------------------------------- state I/O
 
 def _load_state(db, station: str, rule: Rule) -> tuple[RuleState, int | None]:
-    rows = list(db.query("SELECT * FROM alert_state WHERE station = ? AND rule = ?", [station, rule.id]))
-    if not rows:
+    cur = db.conn.execute("SELECT * FROM alert_state WHERE station = ? AND rule = ?", (station, rule.id))
+    row = cur.fetchone()
+    if row is None:
         return RuleState(), None
-    r = rows[0]
+    r = dict(zip([d[0] for d in cur.description], row))
     old_names = json.loads(r["steps"] or "[]")
     above_old = json.loads(r["above_since"] or "[]")
     inside_old = json.loads(r["inside_since"] or "[]")
@@ -240,7 +241,7 @@ def _counted(rule: Rule, samples: Samples) -> np.ndarray:
     if "flag" not in samples:
         return np.ones(len(samples), dtype=bool)
     flag = samples["flag"]
-    ok = np.isin(flag, COUNTED_FLAGS) | np.isnan(flag)  # no flag yet = not evaluated
+    ok = (flag == COUNTED_FLAGS[0]) | (flag == COUNTED_FLAGS[1]) | np.isnan(flag)  # no flag yet = not evaluated
     if rule.use_suspect:
         ok |= flag == SUSPECT
     return ok

@@ -250,12 +250,12 @@ def derive_arrays(t: np.ndarray, observed: np.ndarray, flag: np.ndarray, predict
     obs = np.asarray(observed, dtype=float)
     pred = np.asarray(predicted, dtype=float)
     res = residual(obs, pred)
-    usable = ~np.isin(flag, _UNUSABLE) & np.isfinite(res)
+    flag = np.asarray(flag)
+    usable = (flag != _UNUSABLE[0]) & (flag != _UNUSABLE[1]) & np.isfinite(res)
     sm = smooth_residual_arrays(t * 1_000_000_000, res, usable, median_minutes, mean_minutes)
     ib = inverse_barometer(pressure_at_seconds(t.astype(float), *pressure), reference_hpa) \
         if pressure is not None else np.full(len(t), np.nan)
-    return {"observed": obs, "predicted": pred, "residual": res, "smoothed": sm, "barometric": ib,
-            "flag": np.asarray(flag)}
+    return {"observed": obs, "predicted": pred, "residual": res, "smoothed": sm, "barometric": ib, "flag": flag}
 
 
 def skew_surges(observed: pd.Series, extremes: pd.DataFrame, max_gap_s: float = 3600.0) -> pd.DataFrame:
@@ -400,19 +400,18 @@ def high_waters_within(extremes: pd.DataFrame, after: pd.Timestamp, until: pd.Ti
 def high_water_rows(t: np.ndarray, t_ns: np.ndarray, high: np.ndarray, stand: np.ndarray, level: np.ndarray,
                     after_t: float, until_ns: int) -> np.ndarray:
     """:func:`high_waters_within` on the arrays of :func:`tide_stands` (its ``t`` [Unix s],
-    ``time`` as [ns], high or not, ``stand``, ``level``): the positions of the high waters
-    after ``after_t`` [Unix s] up to ``until_ns`` [ns] (at least the next), in time order."""
+    ``time`` as [ns], high or not, ``stand``, ``level``, in time order, so the peaks of a
+    stand come one after the other): the positions of the high waters after ``after_t``
+    [Unix s] up to ``until_ns`` [ns] (at least the next), in time order."""
     cand = np.flatnonzero(high & (t > after_t))
     if len(cand) == 0:
         return cand
-    # per stand, in order of first appearance, its first highest peak
-    groups, first, inverse = np.unique(stand[cand], return_index=True, return_inverse=True)
-    best = np.empty(len(groups), dtype=np.int64)
-    for g in range(len(groups)):
-        members = cand[inverse.ravel() == g]
-        best[g] = members[int(np.argmax(level[members]))]
-    best = best[np.argsort(first, kind="stable")]
-    best = best[np.argsort(t_ns[best], kind="stable")]
+    # the stands in time order; only those starting by ``until`` (and the next) can be kept
+    s = stand[cand]
+    starts = np.concatenate([[0], np.flatnonzero(s[1:] != s[:-1]) + 1])
+    n = max(1, int(np.searchsorted(t_ns[cand[starts]], until_ns, side="right")))
+    ends = np.append(starts[1:], len(cand))
+    best = np.array([cand[a + int(np.argmax(level[cand[a:b]]))] for a, b in zip(starts[:n], ends[:n])])
     keep = t_ns[best] <= until_ns
     keep[0] = True
     return best[keep]
