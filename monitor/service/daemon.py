@@ -716,7 +716,7 @@ class Daemon:
             chunk_end = min(end_t, start_t + PROCESS_CHUNK - 1)
             done += self.process_window(rt, start_t, chunk_end, now, latest=chunk_end == end_t)
             self.store.set_meta(f"processed.{st.id}", str(chunk_end))
-            start_t = self._next_data(st.id, levels, chunk_end, end_t)
+            start_t = end_t + 1 if chunk_end >= end_t else self._next_data(st.id, levels, chunk_end, end_t)
         return done
 
     def _horizon(self, rt: StationRuntime, now: float | None = None) -> int:
