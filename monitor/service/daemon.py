@@ -860,13 +860,13 @@ class Daemon:
         w = t >= start_t - REWRITE_BACK
         rows = {c: full[c][w] for c in DERIVED_COLUMNS}
         changed = tail.differs(t[w], rows)
-        store.write_derived_rows(st.id, t[w][changed], {c: v[changed] for c, v in rows.items()})
-        tail.merge(t[w], rows, end_t - TAIL_KEEP)
         new = int((t >= start_t).sum())
-
         self._ensure_extremes(rt, start_t, end_t)
-        self._skew_surges(rt, start_t, end_t)
-        context = self._forecast_in_memory(rt, tail, start_t, end_t)
+        with store.transaction():  # one commit for the derived rows, skew surges and forecasts
+            store.write_derived_rows(st.id, t[w][changed], {c: v[changed] for c, v in rows.items()})
+            tail.merge(t[w], rows, end_t - TAIL_KEEP)
+            self._skew_surges(rt, start_t, end_t)
+            context = self._forecast_in_memory(rt, tail, start_t, end_t)
         k = t >= start_t - TREND_BACK
         samples = engine.Samples(t[k], {c: np.asarray(full[c][k], dtype=float)
                                         for c in ("observed", "predicted", "residual", "smoothed", "flag")})

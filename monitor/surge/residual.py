@@ -7,6 +7,8 @@ calls these, and writes table ``derived`` (plus ``skew_surges`` and ``hw_forecas
 """
 from __future__ import annotations
 
+import functools
+
 import numpy as np
 import pandas as pd
 
@@ -193,38 +195,44 @@ def smooth_residual_arrays(t_ns: np.ndarray, resid: np.ndarray, usable: np.ndarr
     if not valid.any():
         return out
     tv, rv = t_ns[valid], r[valid]
-    med = _trailing(tv, rv, pd.Timedelta(minutes=median_minutes).value, _window_median)
+    med = _trailing(tv, rv, _minutes_ns(median_minutes), _window_median)
     if mean_minutes > 0:
-        med = _trailing(tv, med, pd.Timedelta(minutes=mean_minutes).value, _window_mean)
+        med = _trailing(tv, med, _minutes_ns(mean_minutes), _window_mean)
     last = np.searchsorted(tv, t_ns, side="right") - 1
     seen = last >= 0
     out[seen] = med[last[seen]]
-    stale = seen & (t_ns - tv[np.maximum(last, 0)] > pd.Timedelta(minutes=max(median_minutes, 1.0)).value)
+    stale = seen & (t_ns - tv[np.maximum(last, 0)] > _minutes_ns(max(median_minutes, 1.0)))
     out[stale] = np.nan
     return out
 
 
 def _trailing(t_ns: np.ndarray, v: np.ndarray, width_ns: int, reduce) -> np.ndarray:
-    """``reduce`` over each sample's trailing window ``(t - width, t]``, all windows at once
-    (rows of a padded matrix, NaN outside the window)."""
-    first = np.searchsorted(t_ns, t_ns - width_ns, side="right")
+    """``reduce`` over each sample's trailing window ``(t - width, t]``, all windows at once:
+    the rows of a matrix holding each window's values, newest first (``fill`` after them)."""
     i = np.arange(len(v))
-    n = i - first + 1
-    back = np.arange(int(n.max()))
-    j = i[:, None] - back[None, :]
-    inside = back[None, :] < n[:, None]
-    m = np.where(inside, v[np.maximum(j, 0)], np.nan)
-    return reduce(m, n)
+    n = i - np.searchsorted(t_ns, t_ns - width_ns, side="right") + 1
+    j = i[:, None] - np.arange(int(n.max()))[None, :]
+    outside = j < (i - n + 1)[:, None]
+    m = v[np.maximum(j, 0)]
+    return reduce(m, outside, n)
 
 
-def _window_median(m: np.ndarray, n: np.ndarray) -> np.ndarray:
-    s = np.sort(m, axis=1)  # NaN (outside the window) sorts last
+@functools.lru_cache(maxsize=16)
+def _minutes_ns(minutes: float) -> int:
+    """A window length in minutes as pandas makes it [ns]."""
+    return int(pd.Timedelta(minutes=minutes).value)
+
+
+def _window_median(m: np.ndarray, outside: np.ndarray, n: np.ndarray) -> np.ndarray:
+    m[outside] = np.inf  # sorts last
+    m.sort(axis=1)
     rows = np.arange(len(n))
-    return (s[rows, (n - 1) // 2] + s[rows, n // 2]) / 2
+    return (m[rows, (n - 1) // 2] + m[rows, n // 2]) / 2
 
 
-def _window_mean(m: np.ndarray, n: np.ndarray) -> np.ndarray:
-    return np.nansum(m, axis=1) / n
+def _window_mean(m: np.ndarray, outside: np.ndarray, n: np.ndarray) -> np.ndarray:
+    m[outside] = 0.0
+    return m.sum(axis=1) / n
 
 
 def derive_arrays(t: np.ndarray, observed: np.ndarray, flag: np.ndarray, predicted: np.ndarray,
