@@ -2,7 +2,7 @@
 
 An invented port with a primary, a backup and a barometer, two rules and mail, followed one
 sample a pass through a storm (an alert opens and clears), a spike, a silence, late rows of
-each level sensor and a refit. The same run is made twice, once with the pass from memory
+each level sensor, a refit and a restart. The same run is made twice, once with the pass from memory
 and once with every pass the full way (reading the store, pandas): every table the passes
 write must come out the same. A third run stores the whole record at once and processes it
 in one pass: its derived rows and skew surges must equal the sample-a-pass run's.
@@ -33,6 +33,7 @@ SILENT = (LIVE_START + 200 * minute, LIVE_START + 240 * minute)      # neither l
 BACKUP_LATE = (LIVE_START + 290 * minute, LIVE_START + 300 * minute)  # delivered at the end of the span
 PRIMARY_LATE = (LIVE_START + 350 * minute, LIVE_START + 356 * minute)
 REFIT_AT = LIVE_START + 420 * minute
+RESTART_AT = LIVE_START + 470 * minute  # a new daemon on the same store
 
 
 def _surge(t: np.ndarray) -> np.ndarray:
@@ -117,6 +118,10 @@ def _run_a_sample_a_pass(tmp_path, monkeypatch, steady: bool):
             _write(store, sensor, t[due], v[due])
         if now == REFIT_AT:
             _refit(d)
+        if now == RESTART_AT:
+            d = Daemon(d.cfg, store)
+            rt = d.stations["port"]
+            rt.model = REFIT  # the fit in use, as load_model would give it after the refit
         d.process_station(rt, now=now + 30)
     return store, calls
 
@@ -166,10 +171,10 @@ def runs(tmp_path_factory):
     full.close()
 
 
-def test_every_pass_goes_from_memory_but_after_the_history_late_rows_and_the_refit(runs):
+def test_every_pass_goes_from_memory_but_after_the_history_late_rows_the_refit_and_a_restart(runs):
     silent = (SILENT[1] - SILENT[0]) // STEP  # passes with nothing new
     passes = LIVE // STEP + 1 - silent
-    assert runs["n_memory"] == {"memory": passes - 3, "full": 4}
+    assert runs["n_memory"] == {"memory": passes - 4, "full": 5}
     assert runs["n_full"] == {"memory": 0, "full": passes + 1}
 
 
