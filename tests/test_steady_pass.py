@@ -10,10 +10,8 @@ in one pass: its derived rows and skew surges must equal the sample-a-pass run's
 from __future__ import annotations
 
 import math
-import sqlite3
 
 import numpy as np
-import pandas as pd
 import pytest
 
 from predictor import TideModel

@@ -473,8 +473,8 @@ class Store:
             "AND t BETWEEN ? AND ? ORDER BY t", (station, sensor, int(start_t), int(end_t))).fetchall()
         if not rows:
             return np.empty(0, np.int64), np.empty(0), np.empty(0, np.int64)
-        a = np.array(rows, dtype=float)
-        return a[:, 0].astype(np.int64), a[:, 1], a[:, 2].astype(np.int64)
+        t, value, flag = zip(*rows)
+        return np.array(t, dtype=np.int64), np.array(value, dtype=float), np.array(flag, dtype=np.int64)
 
     def observation_count(self, station: str | None = None, sensor: str | None = None) -> int:
         sql, args = "SELECT count(*) FROM observations WHERE 1", []
