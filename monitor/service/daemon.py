@@ -808,7 +808,8 @@ class Daemon:
         first pass, late data, a backfill, a refit); then the station's in-memory state is
         made again from the store. Returns (new samples, samples for the rules, forecasts)."""
         st, store, rs = rt.cfg, self.store, self.cfg.residual
-        model, predicted = rt.model, rt.predicted
+        model = rt.model
+        predicted = rt.predicted if model is not None else None
         rt.tail = None
         obs = store.observations(st.id, "primary", start_t - lookback, end_t)
         if obs.empty:
