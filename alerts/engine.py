@@ -139,10 +139,11 @@ def ensure_alert_schema(db) -> None:
 # --------------------------------------------------------------------------- state I/O
 
 def _load_state(db, station: str, rule: Rule) -> tuple[RuleState, int | None]:
-    rows = list(db.query("SELECT * FROM alert_state WHERE station = ? AND rule = ?", [station, rule.id]))
-    if not rows:
+    cur = db.conn.execute("SELECT * FROM alert_state WHERE station = ? AND rule = ?", (station, rule.id))
+    row = cur.fetchone()
+    if row is None:
         return RuleState(), None
-    r = rows[0]
+    r = dict(zip([d[0] for d in cur.description], row))
     old_names = json.loads(r["steps"] or "[]")
     above_old = json.loads(r["above_since"] or "[]")
     inside_old = json.loads(r["inside_since"] or "[]")
@@ -180,6 +181,47 @@ def _save_state(db, station: str, rule: Rule, state: RuleState, episode_id: int 
 
 # --------------------------------------------------------------------------- samples
 
+@dataclass(frozen=True)
+class Samples:
+    """A station's samples as plain arrays, the engine's own form of them.
+
+    Attributes
+    ----------
+    t : array of int64
+        Sample times [Unix s UTC], increasing.
+    columns : dict
+        Column name -> float array [m] (``observed``, ``predicted``, ``residual``,
+        ``smoothed``, ``flag``), NaN where a value is missing.
+    """
+
+    t: np.ndarray
+    columns: dict
+
+    def __len__(self) -> int:
+        return len(self.t)
+
+    def __contains__(self, name: str) -> bool:
+        return name in self.columns
+
+    def __getitem__(self, name: str) -> np.ndarray:
+        return self.columns[name]
+
+    @classmethod
+    def from_frame(cls, frame: pd.DataFrame | None) -> "Samples":
+        """The samples of a DataFrame indexed by UTC time (sorted by time)."""
+        if frame is None:
+            return cls(np.empty(0, np.int64), {})
+        if len(frame) and not frame.index.is_monotonic_increasing:
+            frame = frame.sort_index()
+        columns = {}
+        for c in frame.columns:
+            try:
+                columns[c] = frame[c].to_numpy(dtype=float)
+            except (TypeError, ValueError):  # a text column: no rule reads one
+                continue
+        return cls(_times(frame.index), columns)
+
+
 def _times(index: pd.Index) -> np.ndarray:
     if isinstance(index, pd.DatetimeIndex):
         if index.tz is not None:
@@ -188,18 +230,18 @@ def _times(index: pd.Index) -> np.ndarray:
     return np.asarray(index, dtype=np.int64)
 
 
-def _series(rule: Rule, samples: pd.DataFrame) -> np.ndarray:
+def _series(rule: Rule, samples: Samples) -> np.ndarray:
     if rule.watch.startswith("residual"):
         col = rule.series if rule.series in samples else "residual"
-        return samples[col].to_numpy(dtype=float)
-    return samples["observed"].to_numpy(dtype=float) - rule.datum_offset
+        return samples[col]
+    return samples["observed"] - rule.datum_offset
 
 
-def _counted(rule: Rule, samples: pd.DataFrame) -> np.ndarray:
+def _counted(rule: Rule, samples: Samples) -> np.ndarray:
     if "flag" not in samples:
         return np.ones(len(samples), dtype=bool)
-    flag = samples["flag"].to_numpy(dtype=float)
-    ok = np.isin(flag, COUNTED_FLAGS) | np.isnan(flag)  # no flag yet = not evaluated
+    flag = samples["flag"]
+    ok = (flag == COUNTED_FLAGS[0]) | (flag == COUNTED_FLAGS[1]) | np.isnan(flag)  # no flag yet = not evaluated
     if rule.use_suspect:
         ok |= flag == SUSPECT
     return ok
@@ -221,24 +263,24 @@ def _record_events(db, station, rule, events, episode_id, samples, t_all, ok_all
     return episode_id
 
 
-def _facts(samples: pd.DataFrame, t_all: np.ndarray, ok_all: np.ndarray, t: int,
+def _facts(samples: Samples, t_all: np.ndarray, ok_all: np.ndarray, t: int,
            context: AlertContext) -> dict:
     facts: dict[str, Any] = {}
     if len(samples):
         usable = ok_all & (t_all <= t)
         if usable.any():
             i = np.flatnonzero(usable)[-1]
-            row = samples.iloc[i]
             for key in ("observed", "predicted", "residual"):
-                if key in samples and pd.notna(row[key]):
-                    facts[key] = float(row[key])
-            if "observed" in samples and pd.notna(row["observed"]):
+                if key in samples and not np.isnan(samples[key][i]):
+                    facts[key] = float(samples[key][i])
+            if "observed" in samples and not np.isnan(samples["observed"][i]):
+                observed = samples["observed"]
                 back = usable & (t_all <= t_all[i] - TREND_WINDOW + _TREND_SLACK) & \
-                    (t_all >= t_all[i] - TREND_WINDOW - _TREND_SLACK) & samples["observed"].notna().to_numpy()
+                    (t_all >= t_all[i] - TREND_WINDOW - _TREND_SLACK) & ~np.isnan(observed)
                 if back.any():
                     cand = np.flatnonzero(back)
                     j = cand[np.argmin(np.abs(t_all[cand] - (t_all[i] - TREND_WINDOW)))]
-                    facts["trend"] = float(row["observed"]) - float(samples["observed"].iloc[j])
+                    facts["trend"] = float(observed[i]) - float(observed[j])
                     facts["trend_window"] = int(t_all[i] - t_all[j])
     coming = [d for d in context.forecasts_at(t) if d["time"] > t] if context.high_waters else []
     hw = coming[0] if coming else context.hw_dict()
@@ -373,7 +415,7 @@ def _fault_key(f: Any) -> str:
 
 
 def _fault_changes(db, station: StationView, rule: Rule, state: RuleState, events: list[Event],
-                   episode_id: int | None, samples: pd.DataFrame, t_all: np.ndarray, ok_all: np.ndarray,
+                   episode_id: int | None, samples: Samples, t_all: np.ndarray, ok_all: np.ndarray,
                    t_now: int, context: AlertContext, clock=None) -> tuple[list[dict], list[str]]:
     """During an equipment-fault episode, one more message when a new kind of fault appears.
 
@@ -414,8 +456,9 @@ def station_marks(rules: Iterable[Rule]) -> tuple[tuple[str, float], ...]:
     return tuple(sorted(marks.items(), key=lambda kv: kv[1]))
 
 
-def evaluate(db, station: StationView, rules: Iterable[Rule], samples: pd.DataFrame | None,
-             now: Any = None, context: AlertContext | None = None, clock=None) -> list[dict]:
+def evaluate(db, station: StationView, rules: Iterable[Rule], samples: pd.DataFrame | Samples | None,
+             now: Any = None, context: AlertContext | None = None, clock=None,
+             schema_ready: bool = False) -> list[dict]:
     """Advance every rule of a station and queue the messages its events call for.
 
     Parameters
@@ -423,9 +466,10 @@ def evaluate(db, station: StationView, rules: Iterable[Rule], samples: pd.DataFr
     db : sqlite_utils.Database
     station : StationView
     rules : iterable of Rule
-    samples : pandas.DataFrame or None
+    samples : pandas.DataFrame, Samples or None
         Indexed by UTC time, columns ``observed``, ``predicted``, ``residual``, ``smoothed``
-        [m, station datum] and ``flag`` (aggregate QARTOD). Samples at or before a rule's
+        [m, station datum] and ``flag`` (aggregate QARTOD); or the same as :class:`Samples`
+        (the daemon's pass, no pandas object made). Samples at or before a rule's
         watermark are not evaluated again; pass the last hour too so messages can show
         the trend. Flags 4 (fail) and 9 (missing) never count; 3 (suspect) counts unless
         the rule says ``use_suspect = false``.
@@ -436,6 +480,9 @@ def evaluate(db, station: StationView, rules: Iterable[Rule], samples: pd.DataFr
     clock : callable, optional
         Wall clock for the outbox's queue time (default ``time.time``); ``now`` may be a
         replayed data time, the queue time never is.
+    schema_ready : bool
+        The caller knows the alert and outbox tables exist (the daemon: its store was
+        migrated on open), so they are not looked for.
 
     Returns
     -------
@@ -443,18 +490,16 @@ def evaluate(db, station: StationView, rules: Iterable[Rule], samples: pd.DataFr
         One per event: station, rule, event (opened/escalated/cleared), step, t, value,
         episode id, outbox ids queued.
     """
-    ensure_alert_schema(db)
+    if not schema_ready:
+        ensure_alert_schema(db)
     rules = list(rules)
     if not station.marks:
         station = replace(station, marks=station_marks(rules))
     t_now = unix_seconds(now)
     context = context or AlertContext()
-    if samples is None:
-        samples = pd.DataFrame(columns=["observed", "predicted", "residual", "smoothed", "flag"],
-                               index=pd.DatetimeIndex([], tz="UTC"))
-    if len(samples) and not samples.index.is_monotonic_increasing:
-        samples = samples.sort_index()
-    t_all = _times(samples.index)
+    if not isinstance(samples, Samples):
+        samples = Samples.from_frame(samples)
+    t_all = samples.t
     out: list[dict] = []
     for rule in rules:
         with transaction(db):
@@ -462,7 +507,7 @@ def evaluate(db, station: StationView, rules: Iterable[Rule], samples: pd.DataFr
     return out
 
 
-def _evaluate_rule(db, station: StationView, rule: Rule, samples: pd.DataFrame, t_all: np.ndarray,
+def _evaluate_rule(db, station: StationView, rule: Rule, samples: Samples, t_all: np.ndarray,
                    t_now: int, context: AlertContext, clock=None) -> list[dict]:
     state, episode_id = _load_state(db, station.id, rule)
     wm = state.watermark if state.watermark is not None else -(2 ** 62)

@@ -214,3 +214,46 @@ def test_high_waters_within_a_horizon_one_per_stand():
     assert list(got["time"]) == [t[2], t[4]] and list(got["level"]) == [3.3, 3.2]
     got = R.high_waters_within(ext, now, now + pd.Timedelta(hours=1))
     assert list(got["time"]) == [t[2]]
+
+
+def test_smoothing_on_arrays_equals_pandas_rolling_windows():
+    # the daemon's numpy smoother against pandas' own rolling median and mean (time windows,
+    # closed on the right): irregular steps, a gap past the staleness limit, failed samples
+    rng = np.random.default_rng(16)
+    step = rng.choice([30, 60, 60, 90, 120], size=400)
+    t = 1_760_000_000 + np.cumsum(step)
+    t[200:] += 50 * minute  # a silence longer than the median window
+    r = 0.3 * np.sin(t / 5000.0) + rng.normal(0, 0.02, len(t))
+    r[rng.integers(0, len(t), 15)] = np.nan
+    usable = rng.random(len(t)) > 0.1
+    idx = pd.to_datetime(t, unit="s", utc=True)
+    for med, mean in ((30, 10), (7.5, 0), (15, 20)):
+        want = R.smooth_residual(pd.Series(r, index=idx), med, mean, usable).to_numpy()
+        got = R.smooth_residual_arrays(t * 1_000_000_000, r, usable, med, mean)
+        assert np.array_equal(np.isnan(got), np.isnan(want))
+        ok = ~np.isnan(want)
+        assert np.abs(got[ok] - want[ok]).max() < 1e-9 * mm
+
+
+def _high_waters_by_groupby(ext, after, until):
+    # reference: pandas' groupby over the stands (the way high_waters_within was first written)
+    highs = ext[(ext["kind"] == "high") & (ext["time"] > after)]
+    out = highs.loc[highs.groupby("stand", sort=False)["level"].idxmax(), ["time", "level"]]
+    out = out.sort_values("time").reset_index(drop=True)
+    keep = (out["time"] <= until).to_numpy().copy()
+    keep[:1] = True
+    return out[keep]
+
+
+def test_high_waters_within_equals_a_groupby_over_the_stands():
+    # many horizons over a table with double high waters
+    t = pd.date_range("2025-10-20T02:00Z", periods=40, freq="185min")
+    kinds = np.where(np.arange(40) % 3 == 0, "low", "high")
+    level = 2.0 + np.sin(np.arange(40)) + np.where(kinds == "low", -2.0, 0.0)
+    ext = R.tide_stands(pd.DataFrame({"time": t, "level": level, "kind": kinds}))
+    assert ext.groupby("stand").size().max() > 1  # double high waters present
+    for hours in range(0, 80, 3):
+        now = t[0] + pd.Timedelta(hours=hours, minutes=7)
+        want = _high_waters_by_groupby(ext, now, now + pd.Timedelta(hours=13))
+        got = R.high_waters_within(ext, now, now + pd.Timedelta(hours=13))
+        assert list(got["time"]) == list(want["time"]) and list(got["level"]) == list(want["level"])

@@ -2,6 +2,7 @@
 from __future__ import annotations
 
 import numpy as np
+import pandas as pd
 import pytest
 
 from monitor.feeds.parse import LineFormat
@@ -140,3 +141,21 @@ def test_duplicates_alone_touch_nothing(store):
     store.set_meta("processed.st", "1735689720")
     _write(store)  # the same lines again (a replay after a crash)
     assert store.take_touched("st") == 1735689720
+
+
+def test_the_array_readers_give_what_the_frame_readers_give(store):
+    # the daemon's steady pass reads arrays; the rest of the program reads frames
+    _write(store)
+    store.conn.execute("UPDATE observations SET flag = 4 WHERE t = (SELECT min(t) FROM observations)")
+    t, value, flag = store.observation_arrays("st", "primary", 0, 2 ** 40)
+    frame = store.observations("st", "primary")
+    assert list(t) == [int(x.timestamp()) for x in frame.index]
+    assert list(value) == list(frame["value"]) and list(flag) == list(frame["flag"]) == [4, 2, 2]
+    idx = pd.to_datetime(t, unit="s", utc=True)
+    store.write_derived_rows("st", t, {"observed": value, "residual": np.array([0.1, np.nan, 0.3])})
+    dt, cols = store.derived_arrays("st", 0, 2 ** 40)
+    want = store.derived("st")
+    assert list(dt) == list(t) and list(want.index) == list(idx)
+    for c in want.columns:
+        assert np.array_equal(cols[c], want[c].to_numpy(), equal_nan=True)
+    assert np.isnan(cols["residual"][1]) and np.isnan(cols["smoothed"]).all()

@@ -59,6 +59,7 @@ from monitor.service.constants import load_model, model_from_text, model_to_text
 from monitor.service.live_pages import LivePages
 from monitor.service.reporting import write_due_reports
 from monitor.store.database import BatchResult, EMPTY_BATCH, Store, check_folder, check_store_path
+from monitor.store.migrations import DERIVED_COLUMNS
 from monitor.surge import forecast as surge_forecast
 from monitor.surge import residual as surge_residual
 from predictor import harmonic_fit_chunks
@@ -74,9 +75,18 @@ HISTORY_REFRESH = 6 * 3600  # [s, data time] how often the forecast relearns fro
 # [s] samples before a window handed to the alert rules besides the new ones: messages show the
 # change over the last hour, taken from a sample up to 15 min either side of an hour back
 TREND_BACK = 75 * 60
+#: [s] smoothed residual before a window that the forecast's storm state reads (the rate over
+#: RATE_HOURS, and an hour more)
+FORECAST_BACK = int((surge_forecast.RATE_HOURS + 1) * 3600)
+#: [s] derived rows a station keeps in memory behind its last pass (:class:`DerivedTail`):
+#: what the next pass's forecast reads and the rows it rewrites
+TAIL_KEEP = FORECAST_BACK + REWRITE_BACK
+#: [s] longest window the in-memory pass takes; a longer one (catching up after the daemon
+#: or the feed stopped) goes the full way, reading from the store
+STEADY_MAX = REWRITE_BACK
 
 
-def judged_samples(samples: pd.DataFrame) -> pd.DataFrame:
+def judged_samples(samples: pd.DataFrame | engine.Samples) -> pd.DataFrame | engine.Samples:
     """The samples whose quality-control flags are final enough for the alert rules: all
     but the newest.
 
@@ -93,6 +103,8 @@ def judged_samples(samples: pd.DataFrame) -> pd.DataFrame:
     U.S. IOOS (2021), QARTOD water level manual v2.1, Test 6 (the spike test needs the
     following sample, hence its delay of one sample).
     """
+    if isinstance(samples, engine.Samples):
+        return engine.Samples(samples.t[:-1], {c: v[:-1] for c, v in samples.columns.items()})
     return samples.iloc[:-1]
 
 
@@ -357,9 +369,15 @@ class StationRuntime:
     diag: dict = field(default_factory=dict)  # their results: "drift", "clock.primary", ...
     predicted: "PredictionMemo | None" = field(default=None, repr=False)
     _extremes: "Frozen | None" = field(default=None, repr=False)
+    turns: "TideTurns | None" = field(default=None, repr=False)  # the extremes as arrays
+    # The station's derived rows of the last hours, as the store holds them, for the
+    # in-memory pass; valid for the model it was made with, after the pass ending at tail_end.
+    tail: "DerivedTail | None" = field(default=None, repr=False)
+    tail_model: Any = field(default=None, repr=False)
+    tail_end: int | None = None
 
-    # The tide's extremes (kept about a week) are read every pass; they are kept as plain
-    # arrays and each read gets a new pandas object (see Frozen).
+    # The tide's extremes (kept about a week) are kept as plain arrays: the pass reads
+    # ``turns``; code that needs the table gets a new pandas object at each read (see Frozen).
     @property
     def extremes(self) -> pd.DataFrame | None:
         """Predicted high and low waters around the window (``time``, ``level``, ``kind``)."""
@@ -368,6 +386,83 @@ class StationRuntime:
     @extremes.setter
     def extremes(self, frame: pd.DataFrame | None) -> None:
         self._extremes = None if frame is None else Frozen(frame)
+        self.turns = None if frame is None else TideTurns(frame)
+
+
+class TideTurns:
+    """The predicted high and low waters of a station as plain arrays, for the pass.
+
+    Made once with the extremes (about once a week): the stands of
+    :func:`monitor.surge.residual.tide_stands`, and every time as
+    :meth:`pandas.Timestamp.timestamp` gives it, so what the pass reads is what the table
+    gave before, without a pandas object per pass.
+    """
+
+    def __init__(self, frame: pd.DataFrame):
+        ext = surge_residual.tide_stands(frame)
+        self.t = ext["t"].to_numpy(dtype=float)
+        self.t_ns = pd.DatetimeIndex(ext["time"]).as_unit("ns").asi8 if len(ext) else np.empty(0, np.int64)
+        self.high = (ext["kind"] == "high").to_numpy()
+        self.stand = ext["stand"].to_numpy()
+        self.level = ext["level"].to_numpy(dtype=float)
+        self.stamp = np.array([x.timestamp() for x in ext["time"]], dtype=float)
+        lows = frame[frame["kind"] == "low"]
+        self.low_t = np.array([x.timestamp() for x in lows["time"]], dtype=float)
+
+    def high_waters(self, after: pd.Timestamp, until: pd.Timestamp) -> list[tuple[float, float]]:
+        """(time [Unix s], level [m]) of the high waters after ``after`` up to ``until``, at
+        least the next (as :func:`monitor.surge.residual.high_waters_within`)."""
+        after_t = np.array([after.as_unit("ns").value], dtype=np.int64) / 1e9
+        rows = surge_residual.high_water_rows(self.t, self.t_ns, self.high, self.stand, self.level, after_t[0],
+                                              until.as_unit("ns").value)
+        return [(float(self.stamp[i]), float(self.level[i])) for i in rows]
+
+
+class DerivedTail:
+    """A station's ``derived`` rows of the last hours, held between passes as the store
+    holds them (the daemon is their only writer, and every row it writes goes here too).
+
+    ``since`` is the time from which the rows are all here [Unix s].
+    """
+
+    def __init__(self, t: np.ndarray, columns: dict[str, np.ndarray], since: int):
+        self.t = np.asarray(t, dtype=np.int64)
+        self.columns = {c: np.asarray(columns[c], dtype=float) for c in DERIVED_COLUMNS}
+        self.since = int(since)
+
+    @classmethod
+    def read(cls, store: Store, station: str, since: int, end_t: int) -> "DerivedTail":
+        t, cols = store.derived_arrays(station, since, end_t)
+        return cls(t, cols, since)
+
+    def differs(self, t: np.ndarray, columns: dict[str, np.ndarray]) -> np.ndarray:
+        """Which of the rows at times ``t`` are not held, or held with other values."""
+        pos = np.searchsorted(self.t, t)
+        held = pos < len(self.t)
+        held[held] = self.t[pos[held]] == t[held]
+        out = ~held
+        p = pos[held]
+        for c in DERIVED_COLUMNS:
+            old, new = self.columns[c][p], columns[c][held]
+            out[held] |= ~((old == new) | (np.isnan(old) & np.isnan(new)))
+        return out
+
+    def merge(self, t: np.ndarray, columns: dict[str, np.ndarray], keep_from: int) -> None:
+        """Take the rows written at times ``t``, every row from ``t[0]`` on (they replace
+        those held from then), and forget the rows before ``keep_from`` [Unix s]."""
+        if len(t):
+            cut = int(np.searchsorted(self.t, t[0], side="left"))
+            self.t = np.concatenate([self.t[:cut], t])
+            self.columns = {c: np.concatenate([self.columns[c][:cut], columns[c]]) for c in DERIVED_COLUMNS}
+        first = int(np.searchsorted(self.t, keep_from, side="left"))
+        self.t = self.t[first:]
+        self.columns = {c: v[first:] for c, v in self.columns.items()}
+        self.since = max(self.since, int(keep_from))
+
+    def smoothed_between(self, a: int, b: int) -> tuple[np.ndarray, np.ndarray]:
+        """Times [Unix s] and smoothed residual [m] of the rows in [a, b]."""
+        i, j = np.searchsorted(self.t, a, side="left"), np.searchsorted(self.t, b, side="right")
+        return self.t[i:j].astype(float), self.columns["smoothed"][i:j]
 
 
 class Frozen:
@@ -496,7 +591,13 @@ class PredictionMemo:
 
     def predict(self, times: Any) -> np.ndarray:
         """The model's prediction at ``times`` (as ``TideModel.predict``) [m]."""
-        t = pd.DatetimeIndex(times).as_unit("ns").asi8
+        return self._at(pd.DatetimeIndex(times).as_unit("ns").asi8)
+
+    def predict_seconds(self, t: np.ndarray) -> np.ndarray:
+        """The prediction at times ``t`` [Unix s, integers] [m], with no pandas object made."""
+        return self._at(np.asarray(t, dtype=np.int64) * 1_000_000_000)
+
+    def _at(self, t: np.ndarray) -> np.ndarray:
         pos = np.searchsorted(self._t, t)
         known = pos < len(self._t)
         known[known] = self._t[pos[known]] == t[known]
@@ -533,6 +634,8 @@ class Daemon:
         self.diag = self.engine = self.rules_mod = None
         if any(st.rules for st in cfg.stations):
             self.diag, self.engine, self.rules_mod = diagnostics, engine, rules
+            # the rules' tables looked for once here, not at every pass (evaluate(schema_ready=True))
+            engine.ensure_alert_schema(store.db)
         self.outbox = None
         self.claimer: str | None = None
         if cfg.mail is not None:
@@ -676,7 +779,7 @@ class Daemon:
             chunk_end = min(end_t, start_t + PROCESS_CHUNK - 1)
             done += self.process_window(rt, start_t, chunk_end, now, latest=chunk_end == end_t)
             self.store.set_meta(f"processed.{st.id}", str(chunk_end))
-            start_t = self._next_data(st.id, levels, chunk_end, end_t)
+            start_t = end_t + 1 if chunk_end >= end_t else self._next_data(st.id, levels, chunk_end, end_t)
         return done
 
     def _horizon(self, rt: StationRuntime, now: float | None = None) -> int:
@@ -723,10 +826,57 @@ class Daemon:
         # reach the alert rules (a spike would pass as "not evaluated").
         qc_results = self.qc.run_station_qc(store, st, st.qc, start_t, end_t, predicted, now=now) or {}
 
-        # 2. residual, smoothed residual, inverse barometer
+        # 2.-4. residual into ``derived``, skew surges, forecasts: in memory in the steady
+        # state, the full way otherwise
+        if self._steady(rt, start_t, end_t, latest):
+            done = self._pass_in_memory(rt, start_t, end_t, lookback)
+        else:
+            done = self._pass_full(rt, start_t, end_t, lookback, latest)
+        if done is None:
+            return 0
+        new, samples, context = done
+
+        # 5. alert rules, on the new samples and the hour before them (for the trend)
+        if self.engine is not None and st.rules and rt.view is not None:
+            rules = st.rules
+            if latest:
+                ctx = self._alert_context(rt, context, qc_results, now, end_t)
+            else:
+                ctx = None
+                kinds = self.rules_mod.SAMPLE_KINDS
+                rules = [r for r in rules if r.watch in kinds]
+            samples = judged_samples(samples)
+            events = []
+            try:
+                events = self.engine.evaluate(store.db, rt.view, rules, samples, now=now, context=ctx,
+                                              schema_ready=True)
+            except Exception:
+                log.exception("station %s: alert rules failed for this window", st.id)
+            if events:
+                self.wake_outbox()  # at once, not at the outbox's next turn, and off this thread
+        return new
+
+    def _steady(self, rt: StationRuntime, start_t: int, end_t: int, latest: bool) -> bool:
+        """Whether the window can be processed from what the station holds in memory: it
+        follows the last pass directly (no late data, no restart), with the same model (no
+        refit), is short (no catch-up) and is the present (no backfill chunk)."""
+        return (latest and rt.model is not None and rt.tail is not None and rt.tail_model is rt.model
+                and rt.predicted is not None and rt.predicted.model is rt.model and rt.turns is not None
+                and rt.tail_end is not None and start_t == rt.tail_end + 1 and end_t - start_t <= STEADY_MAX
+                and rt.tail.since <= start_t - FORECAST_BACK)
+
+    def _pass_full(self, rt: StationRuntime, start_t: int, end_t: int, lookback: int,
+                   latest: bool) -> tuple[int, pd.DataFrame, list | None] | None:
+        """Residual, skew surges and forecasts of a window from the store, with pandas (the
+        first pass, late data, a backfill, a refit); then the station's in-memory state is
+        made again from the store. Returns (new samples, samples for the rules, forecasts)."""
+        st, store, rs = rt.cfg, self.store, self.cfg.residual
+        model = rt.model
+        predicted = rt.predicted if model is not None else None
+        rt.tail = None
         obs = store.observations(st.id, "primary", start_t - lookback, end_t)
         if obs.empty:
-            return 0
+            return None
         pred = predicted.predict(obs.index) if predicted is not None else None
         pressure = None
         if "barometer" in st.sensors:
@@ -740,41 +890,66 @@ class Daemon:
         if model is not None:
             self._ensure_extremes(rt, start_t, end_t)
             # 3. skew surge, for cycles whose closing low water fell in this window
-            ext = rt.extremes
-            lows = ext[ext["kind"] == "low"]
-            lt = lows["time"].map(pd.Timestamp.timestamp).to_numpy() if len(lows) else np.empty(0)
-            closing = lt[(lt > start_t - REWRITE_BACK) & (lt <= end_t)]
-            if len(closing):
-                a = int(closing.min() - 2 * surge_residual.HALF_M2 - 3600)
-                o = store.observations(st.id, "primary", a, end_t)
-                o = o[~o["flag"].isin((4, 9))]["value"]
-                ss = surge_residual.skew_surges(o, ext)
-                if len(ss):
-                    store.write_skew_surges(st.id, ss[ss["hw_t"] >= a + 3600])
+            self._skew_surges(rt, start_t, end_t)
             # 4. next high water forecast
             if latest:
                 context = self._forecast(rt, start_t, end_t)
+        samples = full.loc[full.index >= pd.Timestamp(start_t - TREND_BACK, unit="s", tz="UTC"),
+                           ["observed", "predicted", "residual", "smoothed", "flag"]]
+        if latest and model is not None:
+            rt.tail = DerivedTail.read(store, st.id, end_t - TAIL_KEEP, end_t)
+            rt.tail_model, rt.tail_end = model, end_t
+        return new, samples, context
 
-        # 5. alert rules, on the new samples and the hour before them (for the trend)
-        if self.engine is not None and st.rules and rt.view is not None:
-            rules = st.rules
-            if latest:
-                ctx = self._alert_context(rt, context, qc_results, now, end_t)
-            else:
-                ctx = None
-                kinds = self.rules_mod.SAMPLE_KINDS
-                rules = [r for r in rules if r.watch in kinds]
-            samples = full.loc[full.index >= pd.Timestamp(start_t - TREND_BACK, unit="s", tz="UTC"),
-                               ["observed", "predicted", "residual", "smoothed", "flag"]]
-            samples = judged_samples(samples)
-            events = []
-            try:
-                events = self.engine.evaluate(store.db, rt.view, rules, samples, now=now, context=ctx)
-            except Exception:
-                log.exception("station %s: alert rules failed for this window", st.id)
-            if events:
-                self.wake_outbox()  # at once, not at the outbox's next turn, and off this thread
-        return new
+    def _pass_in_memory(self, rt: StationRuntime, start_t: int, end_t: int,
+                        lookback: int) -> tuple[int, engine.Samples, list] | None:
+        """:meth:`_pass_full` for a window that follows the last pass: the observations of
+        the residual's lookback read as arrays, the residual computed with numpy
+        (:func:`monitor.surge.residual.derive_arrays`), only the derived rows that are new
+        or changed written, the forecast's storm state taken from the rows held
+        (:class:`DerivedTail`) and the coming high waters from :class:`TideTurns`. Stores
+        what the full way stores."""
+        st, store, rs = rt.cfg, self.store, self.cfg.residual
+        tail, rt.tail = rt.tail, None  # any failure below: the next pass goes the full way
+        t, value, flag = store.observation_arrays(st.id, "primary", start_t - lookback, end_t)
+        if len(t) == 0:
+            return None
+        pressure = None
+        if "barometer" in st.sensors:
+            pt, pv, _ = store.observation_arrays(st.id, "barometer", start_t - lookback - 3600, end_t + 3600)
+            ok = np.isfinite(pv)
+            pressure = (pt[ok].astype(float), pv[ok])
+        full = surge_residual.derive_arrays(t, value, flag, rt.predicted.predict_seconds(t), pressure,
+                                            rs.median_minutes, rs.mean_minutes, rs.reference_pressure)
+        w = t >= start_t - REWRITE_BACK
+        rows = {c: full[c][w] for c in DERIVED_COLUMNS}
+        changed = tail.differs(t[w], rows)
+        new = int((t >= start_t).sum())
+        self._ensure_extremes(rt, start_t, end_t)
+        with store.transaction():  # one commit for the derived rows, skew surges and forecasts
+            store.write_derived_rows(st.id, t[w][changed], {c: v[changed] for c, v in rows.items()})
+            tail.merge(t[w], rows, end_t - TAIL_KEEP)
+            self._skew_surges(rt, start_t, end_t)
+            context = self._forecast_in_memory(rt, tail, start_t, end_t)
+        k = t >= start_t - TREND_BACK
+        samples = engine.Samples(t[k], {c: np.asarray(full[c][k], dtype=float)
+                                        for c in ("observed", "predicted", "residual", "smoothed", "flag")})
+        rt.tail, rt.tail_end = tail, end_t
+        return new, samples, context
+
+    def _skew_surges(self, rt: StationRuntime, start_t: int, end_t: int) -> None:
+        """Skew surges of the cycles whose closing low water fell in this window."""
+        lt = rt.turns.low_t
+        closing = lt[(lt > start_t - REWRITE_BACK) & (lt <= end_t)]
+        if len(closing):
+            st = rt.cfg
+            ext = rt.extremes
+            a = int(closing.min() - 2 * surge_residual.HALF_M2 - 3600)
+            o = self.store.observations(st.id, "primary", a, end_t)
+            o = o[~o["flag"].isin((4, 9))]["value"]
+            ss = surge_residual.skew_surges(o, ext)
+            if len(ss):
+                self.store.write_skew_surges(st.id, ss[ss["hw_t"] >= a + 3600])
 
     def _ensure_extremes(self, rt: StationRuntime, start_t: float, end_t: float) -> None:
         # Kept while the list reaches 2 days past both ends of the window: a tidal cycle
@@ -782,7 +957,7 @@ class Daemon:
         # surges and the next high water need. Made 3 days back and 10 ahead (past a whole
         # backfill chunk) so a live daemon remakes it about once a week, not every pass.
         lo, hi = rt.extremes_span
-        if rt.extremes is not None and lo <= start_t - 2 * 86400 and hi >= end_t + 2 * 86400:
+        if rt.turns is not None and lo <= start_t - 2 * 86400 and hi >= end_t + 2 * 86400:
             return
         a, b = start_t - 3 * 86400, max(end_t, start_t + PROCESS_CHUNK) + 10 * 86400
         rt.extremes = rt.model.high_low(pd.Timestamp(a, unit="s", tz="UTC"), pd.Timestamp(b, unit="s", tz="UTC"))
@@ -795,37 +970,76 @@ class Daemon:
         by the forecast of its own time, not of its end). Each is stored as the latest
         forecast of its high water and kept in the forecast log. Returns them all, in the
         order issued."""
-        st, rs = rt.cfg, self.cfg.residual
-        horizon = pd.Timedelta(seconds=max((getattr(r, "clear_horizon", 0.0) for r in st.rules or ()), default=0.0))
+        st = rt.cfg
+        horizon = self._horizon_delta(rt)
         barometer = "barometer" in st.sensors
-        if rt.forecaster is None or end_t - rt.history_at > HISTORY_REFRESH:
-            grid, skew, pressure = surge_forecast.read_history(self.store.conn, st.id, end_t - int(rs.history_days * 86400),
-                                                   end_t, barometer)
-            rt.forecaster = surge_forecast.SurgeForecaster.learn(grid, skew, pressure, min_storms=rs.forecast_min_storms,
-                                                     min_history_days=rs.min_history_days,
-                                                     max_lead_h=horizon.total_seconds() / 3600)
-            rt.history_at = end_t
-        back = int((surge_forecast.RATE_HOURS + 1) * 3600)
+        self._learn(rt, end_t, barometer)
+        back = FORECAST_BACK
         recent = self.store.derived(st.id, start_t - back, end_t)["smoothed"].dropna()
         pressure_now = None
         if barometer:
             o = self.store.observations(st.id, "barometer", start_t - back, end_t)
             pressure_now = o["value"][~o["flag"].isin((4, 9))]
-        slot = surge_forecast.LOG_SLOT_S
-        issued = [*range(-(-start_t // slot) * slot, end_t, slot), end_t]
         fcs: list[dict] = []
-        for at in issued:
+        for at in self._issue_times(start_t, end_t):
             state = surge_forecast.storm_state(recent, at, pressure_now, barometer=barometer)
             if not np.isfinite(state.residual) or at - state.t > 3600:
                 continue  # no live residual then (a gap): no forecast
             now = pd.Timestamp(state.t, unit="s", tz="UTC")
             hws = surge_residual.high_waters_within(rt.extremes, now, now + horizon)
             fcs += [rt.forecaster.forecast(state, row.time.timestamp(), float(row.level)) for row in hws.itertuples()]
-        for fc in fcs:
-            self.store.write_forecast(st.id, fc)
-        with self.store.transaction() as conn:
-            surge_forecast.log_forecasts(conn, st.id, fcs)
+        self._keep_forecasts(st.id, fcs)
         return fcs
+
+    def _forecast_in_memory(self, rt: StationRuntime, tail: DerivedTail, start_t: int, end_t: int) -> list[dict]:
+        """:meth:`_forecast` from the rows held in memory and the extremes as arrays."""
+        st = rt.cfg
+        horizon = self._horizon_delta(rt)
+        barometer = "barometer" in st.sensors
+        self._learn(rt, end_t, barometer)
+        rt_s, rv = tail.smoothed_between(start_t - FORECAST_BACK, end_t)
+        pressure_now = None
+        if barometer:
+            pt, pv, pf = self.store.observation_arrays(st.id, "barometer", start_t - FORECAST_BACK, end_t)
+            ok = (pf != 4) & (pf != 9)
+            pressure_now = (pt[ok].astype(float), pv[ok])
+        fcs: list[dict] = []
+        for at in self._issue_times(start_t, end_t):
+            state = surge_forecast.storm_state_arrays(rt_s, rv, at, pressure_now, barometer=barometer)
+            if not np.isfinite(state.residual) or at - state.t > 3600:
+                continue  # no live residual then (a gap): no forecast
+            now = pd.Timestamp(state.t, unit="s", tz="UTC")
+            fcs += [rt.forecaster.forecast(state, hw_t, level) for hw_t, level in rt.turns.high_waters(now, now + horizon)]
+        self._keep_forecasts(st.id, fcs)
+        return fcs
+
+    @staticmethod
+    def _horizon_delta(rt: StationRuntime) -> pd.Timedelta:
+        return pd.Timedelta(seconds=max((getattr(r, "clear_horizon", 0.0) for r in rt.cfg.rules or ()), default=0.0))
+
+    @staticmethod
+    def _issue_times(start_t: int, end_t: int) -> list[int]:
+        """Each half hour of the window, and its end [Unix s]."""
+        slot = surge_forecast.LOG_SLOT_S
+        return [*range(-(-start_t // slot) * slot, end_t, slot), end_t]
+
+    def _learn(self, rt: StationRuntime, end_t: int, barometer: bool) -> None:
+        """Relearn the station's forecaster from its history every ``HISTORY_REFRESH`` of data time."""
+        st, rs = rt.cfg, self.cfg.residual
+        if rt.forecaster is None or end_t - rt.history_at > HISTORY_REFRESH:
+            grid, skew, pressure = surge_forecast.read_history(self.store.conn, st.id, end_t - int(rs.history_days * 86400),
+                                                   end_t, barometer)
+            rt.forecaster = surge_forecast.SurgeForecaster.learn(grid, skew, pressure, min_storms=rs.forecast_min_storms,
+                                                     min_history_days=rs.min_history_days,
+                                                     max_lead_h=self._horizon_delta(rt).total_seconds() / 3600)
+            rt.history_at = end_t
+
+    def _keep_forecasts(self, station: str, fcs: list[dict]) -> None:
+        """Each forecast as the latest of its high water, and in the forecast log (one transaction)."""
+        with self.store.transaction() as conn:
+            for fc in fcs:
+                self.store.write_forecast(station, fc)
+            surge_forecast.log_forecasts(conn, station, fcs)
 
     def _alert_context(self, rt: StationRuntime, fcs: list[dict] | None, qc_results: dict, now: float,
                        end_t: int | None = None):

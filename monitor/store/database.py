@@ -321,11 +321,19 @@ class Store:
         """Upsert derived rows (index: UTC times; columns from DERIVED_COLUMNS). Returns rows written."""
         if frame.empty:
             return 0
-        cols = [c for c in DERIVED_COLUMNS if c in frame.columns]
-        t = _to_unix(frame.index)
-        data = [frame[c].to_numpy(dtype=float) for c in cols]
+        return self.write_derived_rows(station, _to_unix(frame.index),
+                                       {c: frame[c].to_numpy(dtype=float) for c in DERIVED_COLUMNS
+                                        if c in frame.columns})
+
+    def write_derived_rows(self, station: str, t: np.ndarray, columns: dict[str, np.ndarray]) -> int:
+        """Upsert derived rows given as arrays: times ``t`` [Unix s] and columns of
+        DERIVED_COLUMNS [m] (NaN stored as NULL). Returns rows written."""
+        if len(t) == 0:
+            return 0
+        cols = [c for c in DERIVED_COLUMNS if c in columns]
+        data = [np.asarray(columns[c], dtype=float) for c in cols]
         rows = [(station, int(ti), *[None if not np.isfinite(d[i]) else float(d[i]) for d in data])
-                for i, ti in enumerate(t)]
+                for i, ti in enumerate(np.asarray(t, dtype=np.int64).tolist())]
         sets = ", ".join(f"{c} = excluded.{c}" for c in cols)
         sql = (f"INSERT INTO derived (station, t, {', '.join(cols)}) VALUES ({', '.join('?' * (len(cols) + 2))}) "
                f"ON CONFLICT(station, t) DO UPDATE SET {sets}")
@@ -508,6 +516,18 @@ class Store:
         row = self.conn.execute(sql, (station, sensor, lo, hi) + flags).fetchone()
         return row[0], row[1], int(row[2])
 
+    def observation_arrays(self, station: str, sensor: str, start_t: int, end_t: int
+                           ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+        """:meth:`observations` as plain arrays, for the daemon's pass: times [Unix s, int64],
+        values [m or hPa] and aggregate flags (2 where not evaluated yet), in time order."""
+        rows = self.conn.execute(
+            "SELECT t, value, coalesce(flag, 2) FROM observations WHERE station = ? AND sensor = ? "
+            "AND t BETWEEN ? AND ? ORDER BY t", (station, sensor, int(start_t), int(end_t))).fetchall()
+        if not rows:
+            return np.empty(0, np.int64), np.empty(0), np.empty(0, np.int64)
+        t, value, flag = zip(*rows)
+        return np.array(t, dtype=np.int64), np.array(value, dtype=float), np.array(flag, dtype=np.int64)
+
     def observation_count(self, station: str | None = None, sensor: str | None = None) -> int:
         sql, args = "SELECT count(*) FROM observations WHERE 1", []
         if station is not None:
@@ -562,6 +582,15 @@ class Store:
         arr = np.array([[np.nan if v is None else v for v in r] for r in rows], dtype=float).reshape(
             len(rows), len(DERIVED_COLUMNS) + 1)
         return pd.DataFrame(arr[:, 1:], columns=list(DERIVED_COLUMNS), index=_from_unix(arr[:, 0].astype(np.int64)))
+
+    def derived_arrays(self, station: str, start_t: int, end_t: int) -> tuple[np.ndarray, dict[str, np.ndarray]]:
+        """:meth:`derived` as plain arrays: times [Unix s, int64] and each of DERIVED_COLUMNS
+        [m] (NaN where NULL), in time order."""
+        rows = self.conn.execute(
+            f"SELECT t, {', '.join(DERIVED_COLUMNS)} FROM derived WHERE station = ? AND t BETWEEN ? AND ? "
+            "ORDER BY t", (station, int(start_t), int(end_t))).fetchall()
+        a = np.array(rows, dtype=float).reshape(len(rows), len(DERIVED_COLUMNS) + 1)
+        return a[:, 0].astype(np.int64), {c: a[:, k + 1] for k, c in enumerate(DERIVED_COLUMNS)}
 
     def latest_derived(self, station: str) -> dict | None:
         row = self.conn.execute(f"SELECT t, {', '.join(DERIVED_COLUMNS)} FROM derived WHERE station = ? "

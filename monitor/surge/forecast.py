@@ -167,32 +167,52 @@ def storm_state(residual: pd.Series, now: float, pressure: pd.Series | None = No
         A grid bin this far from its target time does not count [s].
     """
     r = residual.dropna()
-    r = r[r.index <= pd.Timestamp(now, unit="s", tz="UTC")]
-    if r.empty:
+    p = None
+    if pressure is not None:
+        pp = pressure.dropna()
+        p = (_seconds(pp.index), pp.to_numpy(dtype=float))
+    return storm_state_arrays(_seconds(r.index), r.to_numpy(dtype=float), now, p, barometer, max_age_s)
+
+
+def storm_state_arrays(t: np.ndarray, residual: np.ndarray, now: float,
+                       pressure: tuple[np.ndarray, np.ndarray] | None = None, barometer: bool = False,
+                       max_age_s: float = 1800.0) -> StormState:
+    """:func:`storm_state` on plain arrays: smoothed residual ``residual`` [m] at times ``t``
+    [Unix s, increasing], and barometer readings as (times [Unix s], readings [hPa]); NaN
+    values are left out."""
+    t = np.asarray(t, dtype=float)
+    v = np.asarray(residual, dtype=float)
+    now_s = pd.Timestamp(now, unit="s", tz="UTC").value / 1e9
+    keep = np.isfinite(v) & (t <= now_s)
+    t, v = t[keep], v[keep]
+    if len(t) == 0:
         return StormState(t=now, residual=math.nan, barometer=barometer)
-    t_now = r.index[-1].timestamp()
-    r_now = float(r.iloc[-1])
-    rate = _change(r, t_now, r_now, max_age_s)
+    t_now, r_now = float(t[-1]), float(v[-1])
+    rate = _change(t, v, t_now, r_now, max_age_s)
     tendency, since = math.nan, None
-    if pressure is not None and len(pressure.dropna()):
-        p = pressure.dropna()
-        p = p[p.index <= pd.Timestamp(now, unit="s", tz="UTC")]
-        if len(p):
-            since = p.index[-1].timestamp()
+    if pressure is not None:
+        pt, pv = np.asarray(pressure[0], dtype=float), np.asarray(pressure[1], dtype=float)
+        keep = np.isfinite(pv) & (pt <= now_s)
+        pt, pv = pt[keep], pv[keep]
+        if len(pt):
+            since = float(pt[-1])
             if t_now - since <= max_age_s:
-                tendency = _change(p, since, float(p.iloc[-1]), max_age_s)
+                tendency = _change(pt, pv, since, float(pv[-1]), max_age_s)
     return StormState(t=t_now, residual=r_now, rate=rate, tendency=tendency, barometer=barometer,
                       pressure_since=since)
 
 
-def _change(s: pd.Series, t_now: float, v_now: float, max_age_s: float) -> float:
+def _seconds(index: pd.DatetimeIndex) -> np.ndarray:
+    return pd.DatetimeIndex(index).as_unit("ns").asi8 / 1e9
+
+
+def _change(t: np.ndarray, v: np.ndarray, t_now: float, v_now: float, max_age_s: float) -> float:
     """Change per hour over the last RATE_HOURS, from the sample nearest RATE_HOURS back."""
     back = t_now - RATE_HOURS * 3600
-    t = s.index.as_unit("ns").asi8 / 1e9
     j = int(np.argmin(np.abs(t - back)))
     if abs(t[j] - back) > max_age_s:
         return math.nan
-    return (v_now - float(s.iloc[j])) / ((t_now - t[j]) / 3600.0)
+    return (v_now - float(v[j])) / ((t_now - t[j]) / 3600.0)
 
 
 def count_storms(residual_grid: pd.Series, mask: np.ndarray | None = None) -> int:

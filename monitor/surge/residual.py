@@ -7,6 +7,8 @@ calls these, and writes table ``derived`` (plus ``skew_surges`` and ``hw_forecas
 """
 from __future__ import annotations
 
+import functools
+
 import numpy as np
 import pandas as pd
 
@@ -111,11 +113,17 @@ def pressure_at(times: pd.DatetimeIndex, pressure: pd.Series, max_gap_s: float =
     if pressure is None or pressure.empty or len(times) == 0:
         return np.full(len(times), np.nan)
     p = pressure.dropna()
-    if p.empty:
-        return np.full(len(times), np.nan)
-    tp = _secs(p.index)
-    tt = _secs(times)
-    out = np.interp(tt, tp, p.to_numpy(dtype=float), left=np.nan, right=np.nan)
+    return pressure_at_seconds(_secs(times), _secs(p.index), p.to_numpy(dtype=float), max_gap_s)
+
+
+def pressure_at_seconds(tt: np.ndarray, tp: np.ndarray, pv: np.ndarray, max_gap_s: float = 3600.0) -> np.ndarray:
+    """:func:`pressure_at` on plain arrays: times ``tt`` [Unix s] from barometer readings
+    ``pv`` [hPa] at times ``tp`` [Unix s, increasing, NaN readings left out] [hPa]."""
+    tt = np.asarray(tt, dtype=float)
+    if len(tp) == 0 or len(tt) == 0:
+        return np.full(len(tt), np.nan)
+    tp = np.asarray(tp, dtype=float)
+    out = np.interp(tt, tp, np.asarray(pv, dtype=float), left=np.nan, right=np.nan)
     j = np.searchsorted(tp, tt)
     left = tp[np.clip(j - 1, 0, len(tp) - 1)]
     right = tp[np.clip(j, 0, len(tp) - 1)]
@@ -154,6 +162,108 @@ def derive(observed: pd.DataFrame, predicted: np.ndarray | None, pressure: pd.Se
         else np.full(len(idx), np.nan)
     return pd.DataFrame({"observed": obs, "predicted": pred, "residual": res, "smoothed": sm.to_numpy(),
                          "barometric": ib, "flag": flag}, index=idx)
+
+
+def smooth_residual_arrays(t_ns: np.ndarray, resid: np.ndarray, usable: np.ndarray,
+                           median_minutes: float = 30.0, mean_minutes: float = 10.0) -> np.ndarray:
+    """:func:`smooth_residual` on plain arrays, for the daemon's pass over a few hours.
+
+    The same trailing windows (a sample's window holds the usable samples after
+    ``t - width`` up to ``t``), the same carrying forward and staleness, computed with
+    numpy over a small window instead of pandas' rolling machinery. The running mean is
+    summed per window, so it may differ from pandas' running sums in the last bits
+    (around 1e-16 m).
+
+    Parameters
+    ----------
+    t_ns : array of int64
+        Sample times [ns since 1970, UTC], increasing.
+    resid : array
+        Residual [m].
+    usable : array of bool
+        Samples that may enter (QC flag not fail or missing).
+
+    Returns
+    -------
+    array
+        Smoothed residual [m] (NaN before the first usable sample and when stale).
+    """
+    t_ns = np.asarray(t_ns, dtype=np.int64)
+    r = np.asarray(resid, dtype=float)
+    out = np.full(len(r), np.nan)
+    valid = np.asarray(usable, dtype=bool) & np.isfinite(r)
+    if not valid.any():
+        return out
+    tv, rv = t_ns[valid], r[valid]
+    med = _trailing(tv, rv, _minutes_ns(median_minutes), _window_median)
+    if mean_minutes > 0:
+        med = _trailing(tv, med, _minutes_ns(mean_minutes), _window_mean)
+    last = np.searchsorted(tv, t_ns, side="right") - 1
+    seen = last >= 0
+    out[seen] = med[last[seen]]
+    stale = seen & (t_ns - tv[np.maximum(last, 0)] > _minutes_ns(max(median_minutes, 1.0)))
+    out[stale] = np.nan
+    return out
+
+
+def _trailing(t_ns: np.ndarray, v: np.ndarray, width_ns: int, reduce) -> np.ndarray:
+    """``reduce`` over each sample's trailing window ``(t - width, t]``, all windows at once:
+    the rows of a matrix holding each window's values, newest first (``fill`` after them)."""
+    i = np.arange(len(v))
+    n = i - np.searchsorted(t_ns, t_ns - width_ns, side="right") + 1
+    j = i[:, None] - np.arange(int(n.max()))[None, :]
+    outside = j < (i - n + 1)[:, None]
+    m = v[np.maximum(j, 0)]
+    return reduce(m, outside, n)
+
+
+@functools.lru_cache(maxsize=16)
+def _minutes_ns(minutes: float) -> int:
+    """A window length in minutes as pandas makes it [ns]."""
+    return int(pd.Timedelta(minutes=minutes).value)
+
+
+def _window_median(m: np.ndarray, outside: np.ndarray, n: np.ndarray) -> np.ndarray:
+    m[outside] = np.inf  # sorts last
+    m.sort(axis=1)
+    rows = np.arange(len(n))
+    return (m[rows, (n - 1) // 2] + m[rows, n // 2]) / 2
+
+
+def _window_mean(m: np.ndarray, outside: np.ndarray, n: np.ndarray) -> np.ndarray:
+    m[outside] = 0.0
+    return m.sum(axis=1) / n
+
+
+def derive_arrays(t: np.ndarray, observed: np.ndarray, flag: np.ndarray, predicted: np.ndarray,
+                  pressure: tuple[np.ndarray, np.ndarray] | None = None, median_minutes: float = 30.0,
+                  mean_minutes: float = 10.0, reference_hpa: float = REFERENCE_HPA) -> dict[str, np.ndarray]:
+    """:func:`derive` on plain arrays (the daemon's pass over its last hours).
+
+    Parameters
+    ----------
+    t : array of int
+        Sample times [Unix s], increasing.
+    observed, flag, predicted : arrays
+        Level [m, station datum], aggregate QARTOD flag, predicted tide [m].
+    pressure : (times [Unix s], readings [hPa]), optional
+        Barometer readings, NaN readings left out.
+
+    Returns
+    -------
+    dict
+        ``observed, predicted, residual, smoothed, barometric`` [m] and ``flag``, arrays.
+    """
+    t = np.asarray(t, dtype=np.int64)
+    obs = np.asarray(observed, dtype=float)
+    pred = np.asarray(predicted, dtype=float)
+    res = residual(obs, pred)
+    flag = np.asarray(flag)
+    usable = (flag != _UNUSABLE[0]) & (flag != _UNUSABLE[1]) & np.isfinite(res)
+    sm = smooth_residual_arrays(t * 1_000_000_000, res, usable, median_minutes, mean_minutes)
+    ib = inverse_barometer(pressure_at_seconds(t.astype(float), *pressure), reference_hpa) \
+        if pressure is not None else np.full(len(t), np.nan)
+    return {"observed": obs, "predicted": pred, "residual": res, "smoothed": sm, "barometric": ib, "flag": flag}
 
 
 def skew_surges(observed: pd.Series, extremes: pd.DataFrame, max_gap_s: float = 3600.0) -> pd.DataFrame:
@@ -287,14 +397,39 @@ def high_waters_within(extremes: pd.DataFrame, after: pd.Timestamp, until: pd.Ti
     none."""
     ext = tide_stands(extremes)
     after_t = _secs(pd.DatetimeIndex([pd.Timestamp(after)]))[0]
-    highs = ext[(ext["kind"] == "high") & (ext["t"] > after_t)]
-    if highs.empty:
+    rows = high_water_rows(ext["t"].to_numpy(dtype=float), _ns(ext["time"]), (ext["kind"] == "high").to_numpy(),
+                           ext["stand"].to_numpy(), ext["level"].to_numpy(dtype=float), after_t,
+                           pd.Timestamp(until).as_unit("ns").value)
+    if len(rows) == 0:
         return pd.DataFrame({"time": pd.DatetimeIndex([], tz="UTC"), "level": np.zeros(0)})
-    out = highs.loc[highs.groupby("stand", sort=False)["level"].idxmax(), ["time", "level"]]
-    out = out.sort_values("time").reset_index(drop=True)
-    keep = (out["time"] <= pd.Timestamp(until)).to_numpy().copy()
+    return ext.loc[rows, ["time", "level"]].reset_index(drop=True)
+
+
+def high_water_rows(t: np.ndarray, t_ns: np.ndarray, high: np.ndarray, stand: np.ndarray, level: np.ndarray,
+                    after_t: float, until_ns: int) -> np.ndarray:
+    """:func:`high_waters_within` on the arrays of :func:`tide_stands` (its ``t`` [Unix s],
+    ``time`` as [ns], high or not, ``stand``, ``level``, in time order, so the peaks of a
+    stand come one after the other): the positions of the high waters after ``after_t``
+    [Unix s] up to ``until_ns`` [ns] (at least the next), in time order."""
+    cand = np.flatnonzero(high & (t > after_t))
+    if len(cand) == 0:
+        return cand
+    # the stands in time order; only those starting by ``until`` (and the next) can be kept
+    s = stand[cand]
+    starts = np.concatenate([[0], np.flatnonzero(s[1:] != s[:-1]) + 1])
+    n = max(1, int(np.searchsorted(t_ns[cand[starts]], until_ns, side="right")))
+    ends = np.append(starts[1:], len(cand))
+    best = np.array([cand[a + int(np.argmax(level[cand[a:b]]))] for a, b in zip(starts[:n], ends[:n])])
+    keep = t_ns[best] <= until_ns
     keep[0] = True
-    return out[keep]
+    return best[keep]
+
+
+def _ns(times) -> np.ndarray:
+    idx = pd.DatetimeIndex(times)
+    if idx.tz is not None:
+        idx = idx.tz_convert("UTC").tz_localize(None)
+    return idx.as_unit("ns").asi8
 
 
 def _secs(index: pd.DatetimeIndex) -> np.ndarray:
