@@ -38,6 +38,7 @@ Vols I-V. IOC Manuals and Guides 14.
 """
 from __future__ import annotations
 
+import bisect as _bisect
 import difflib
 import math
 import time as _time
@@ -60,6 +61,8 @@ FLAG_NAMES = {PASS: "pass", NOT_EVALUATED: "not evaluated", SUSPECT: "suspect", 
 TESTS = ("gap", "syntax", "location", "gross", "expected", "spike", "roc", "flat", "multi", "atten", "resid")
 #: The QARTOD water-level manual v2.1 number of each test (None: our own addition). "multi",
 #: primary against a co-located backup, is the neighbour test's idea (Test 11).
+#: Column of each test in a table of flags whose columns are :data:`TESTS` in order.
+_COL = {c: i for i, c in enumerate(TESTS)}
 QARTOD_NUMBER = {"gap": 1, "syntax": 2, "location": 3, "gross": 4, "expected": 5, "spike": 6, "roc": 7,
                  "flat": 8, "multi": 11, "atten": 10, "resid": None}
 #: Flags a sample may carry and still be used for alerts, fits and statistics.
@@ -620,9 +623,14 @@ def difference_at(level: pd.Series, other: pd.Series, gap_limit: float) -> np.nd
     """``level - other`` at ``level``'s times [m]; NaN where ``other`` has no sample on
     both sides within ``gap_limit`` [s] (an exact time match is always used)."""
     other = other.dropna()
-    t = index_seconds(level.index)
-    to = index_seconds(other.index)
-    vo = other.to_numpy(dtype=float)
+    return difference_on_arrays(index_seconds(level.index), level.to_numpy(dtype=float),
+                                index_seconds(other.index), other.to_numpy(dtype=float), gap_limit)
+
+
+def difference_on_arrays(t: np.ndarray, v: np.ndarray, to: np.ndarray, vo: np.ndarray,
+                         gap_limit: float) -> np.ndarray:
+    """:func:`difference_at` on plain arrays: times [s] and levels [m] of this sensor, and of
+    the other sensor's samples with a value (no NaN)."""
     if len(to) == 0:
         return np.full(len(t), np.nan)
     j = np.searchsorted(to, t)
@@ -631,7 +639,7 @@ def difference_at(level: pd.Series, other: pd.Series, gap_limit: float) -> np.nd
     exact = to[jr] == t
     bracket = (j > 0) & (j < len(to)) & (t - to[jl] <= gap_limit) & (to[jr] - t <= gap_limit)
     interp = np.interp(t, to, vo)
-    d = level.to_numpy(dtype=float) - interp
+    d = v - interp
     return np.where(exact | bracket, d, np.nan)
 
 
@@ -1114,14 +1122,52 @@ def run_tests_tail(level: pd.Series, settings: QcSettings | None = None, predict
 
 def _tail(level: pd.Series, s: QcSettings, predicted: Any, other: pd.Series | None, now: float | None,
           position: tuple[float, float] | None, k: int) -> pd.DataFrame:
-    idx = utc_index(level.index)
-    tn = idx.as_unit("ns").asi8
-    t = tn / 1e9
+    tn = utc_index(level.index).as_unit("ns").asi8
     v = level.to_numpy(dtype=float)
+    p = None if predicted is None else np.asarray(predicted, dtype=float)
+    table = tail_table(tn, v, p, s, now, position, k)
+    n = len(v)
+    if other is not None and not other.dropna().empty and n - k:
+        dm = difference_at(level.iloc[k:], other, s.gap_limit)
+        okm = np.isfinite(dm)
+        multi = np.full(n - k, NOT_EVALUATED, dtype=np.int8)
+        multi[okm] = PASS
+        multi[okm & (np.abs(dm) > s.multi_suspect)] = SUSPECT
+        table[:, _COL["multi"]] = np.where(table[:, _COL["syntax"]] == MISSING, NOT_EVALUATED, multi)
+    frame = pd.DataFrame(table, index=level.index[k:], columns=list(TESTS))
+    frame["flag"] = _aggregate(table)
+    if other is not None:
+        frame = confirm_tail(frame, level, v - p if p is not None else v, other, s, k)
+    return frame
+
+
+def tail_table(tn: np.ndarray, v: np.ndarray, p: np.ndarray | None, s: QcSettings, now: float | None,
+               position: tuple[float, float] | None, k: int, memo: "ResidMemo | None" = None) -> np.ndarray:
+    """The single-sensor tests of rows ``k:`` on plain arrays (no co-located sensor: the
+    ``multi`` column is 2), as :func:`run_tests_tail` computes them.
+
+    Parameters
+    ----------
+    tn : array of int64
+        Sample times [ns since 1970, UTC], sorted.
+    v, p : array of float
+        Levels and the predicted tide at those times [m] (``p`` None: no prediction).
+    s, now, position
+        As :func:`run_tests`.
+    k : int
+        First row evaluated; the rows before it are the windows' context.
+    memo : ResidMemo, optional
+        The residual outlier test's departures kept from the previous call on the same
+        record (rows appended at the end, dropped at the front); updated in place.
+
+    Returns
+    -------
+    array of int8, shape (n - k, len(TESTS))
+    """
+    t = tn / 1e9
     n = len(v)
     tail = slice(k, n)
     at = tn[tail]
-    p = None if predicted is None else np.asarray(predicted, dtype=float)
     r = v - p if p is not None else v
     out: dict[str, np.ndarray] = {}
 
@@ -1138,8 +1184,11 @@ def _tail(level: pd.Series, s: QcSettings, predicted: Any, other: pd.Series | No
     out["gap"] = g
     finite = np.isfinite(v)
     out["syntax"] = np.where(finite[tail], PASS, MISSING).astype(np.int8)
-    lat, lon = position if position is not None else (None, None)
-    out["location"] = location_test(level.index[tail], lat, lon, None, s.location_radius).to_numpy()
+    if position is None:
+        out["location"] = np.full(n - k, NOT_EVALUATED, dtype=np.int8)
+    else:
+        good = _valid_position(np.asarray([position[0]], dtype=float), np.asarray([position[1]], dtype=float))[0]
+        out["location"] = np.full(n - k, PASS if good else FAIL, dtype=np.int8)
     gross = np.full(n, PASS, dtype=np.int8)
     if s.gross_suspect_min is not None:
         gross[v < s.gross_suspect_min] = SUSPECT
@@ -1207,14 +1256,8 @@ def _tail(level: pd.Series, s: QcSettings, predicted: Any, other: pd.Series | No
     flat[~finite[tail]] = NOT_EVALUATED
     out["flat"] = flat
 
-    # 11 (neighbour) against the co-located sensor
-    multi = np.full(n - k, NOT_EVALUATED, dtype=np.int8)
-    if other is not None and not other.dropna().empty and n - k:
-        dm = difference_at(level.iloc[tail], other, s.gap_limit)
-        okm = np.isfinite(dm)
-        multi[okm] = PASS
-        multi[okm & (np.abs(dm) > s.multi_suspect)] = SUSPECT
-    out["multi"] = multi
+    # 11 (neighbour) against the co-located sensor: by the caller
+    out["multi"] = np.full(n - k, NOT_EVALUATED, dtype=np.int8)
 
     # 10 attenuated signal: observed range over the last tidal day against the predicted
     atten = np.full(n - k, NOT_EVALUATED, dtype=np.int8)
@@ -1238,21 +1281,101 @@ def _tail(level: pd.Series, s: QcSettings, predicted: Any, other: pd.Series | No
     out["atten"] = atten
 
     # residual outlier: departure from the centred median against the centred noise
-    out["resid"] = _resid_tail(rc, t, tn, ok, k, s)
+    out["resid"] = _resid_tail(rc, t, tn, ok, k, s, memo)
 
     missing = out["syntax"] == MISSING
-    table = np.column_stack([np.where(missing & (c != "syntax"), NOT_EVALUATED, out[c]).astype(np.int8)
-                             for c in TESTS]) if n - k else np.zeros((0, len(TESTS)), np.int8)
-    frame = pd.DataFrame(table, index=level.index[tail], columns=list(TESTS))
-    frame["flag"] = _aggregate(table)
-    if other is not None:
-        frame = confirm_tail(frame, level, r, other, s, k)
-    return frame
+    if n - k == 0:
+        return np.zeros((0, len(TESTS)), np.int8)
+    return np.column_stack([np.where(missing & (c != "syntax"), NOT_EVALUATED, out[c]).astype(np.int8)
+                            for c in TESTS])
 
 
-def _resid_tail(rc: np.ndarray, t: np.ndarray, tn: np.ndarray, ok: np.ndarray, k: int, s: QcSettings) -> np.ndarray:
+class ResidMemo:
+    """What the residual outlier test keeps between calls on a record that grows at its end
+    (and loses rows at its front): each row's departure from its centred median and which
+    rows the windows could use. A departure is kept while no row of its window changed.
+
+    The caller drops the front with :meth:`drop`; :func:`tail_table` does the rest.
+    """
+
+    def __init__(self) -> None:
+        self.d = np.empty(0)              # departures [m], NaN where not computed
+        self.ok = np.empty(0, dtype=bool)  # the rows the windows could use, at the last call
+        self.start = 0                    # departures valid from this row on
+
+    def drop(self, rows: int) -> None:
+        """Forget the first ``rows`` rows (the record lost them at its front)."""
+        if rows:
+            self.d, self.ok = self.d[rows:], self.ok[rows:]
+            self.start = max(self.start - rows, 0)
+
+
+def _sliding_median(values: np.ndarray, a: np.ndarray, b: np.ndarray, min_periods: int) -> np.ndarray:
+    """:func:`_rolling_median` for windows ``[a_i, b_i)`` whose ends never move back, kept
+    as one sorted list slid along (each value enters and leaves it once)."""
+    out = np.full(len(a), np.nan)
+    if len(a) == 0:
+        return out
+    vals = values.tolist()
+    fin = np.isfinite(values).tolist()
+    lo = hi = -1
+    win: list[float] = []
+    for i, (ai, bi) in enumerate(zip(a.tolist(), b.tolist())):
+        if ai >= hi:  # no overlap with the window before: sort afresh
+            win = sorted(x for x, f in zip(vals[ai:bi], fin[ai:bi]) if f)
+            hi = bi
+        else:
+            for j in range(hi, bi):
+                if fin[j]:
+                    _bisect.insort(win, vals[j])
+            hi = max(hi, bi)
+            for j in range(lo, ai):
+                if fin[j]:
+                    del win[_bisect.bisect_left(win, vals[j])]
+        lo = ai
+        c = len(win)
+        if c >= min_periods and c:
+            out[i] = (win[(c - 1) // 2] + win[c // 2]) / 2
+    return out
+
+
+def _monotone(a: np.ndarray, b: np.ndarray) -> bool:
+    return bool(np.all(np.diff(a) >= 0) and np.all(np.diff(b) >= 0) and np.all(b >= a))
+
+
+def _departures(rc: np.ndarray, clean: np.ndarray, tn: np.ndarray, j0: int, half: int,
+                memo: ResidMemo | None, ok: np.ndarray) -> np.ndarray:
+    """``rc - median(clean over the centred window)`` at rows ``j0:`` (NaN before), from the
+    memo where no row of a window changed since it was computed."""
+    n = len(rc)
+    d = np.full(n, np.nan)
+    first = j0
+    # a window reaching the first row may have held rows the record has since lost
+    front = int(np.searchsorted(tn, tn[0] + half, side="left")) if n else 0
+    if memo is not None and len(memo.ok) <= n and memo.start <= j0 and j0 >= front:
+        m = len(memo.ok)
+        changed = np.flatnonzero(memo.ok != ok[:m])
+        c0 = int(changed[0]) if changed.size else m
+        if c0 < n:
+            # rows whose window reaches a changed or a new row (the window is (t - half, t + half])
+            first = max(j0, int(np.searchsorted(tn, tn[c0] - half, side="left")) - 1)
+        else:
+            first = n
+        first = min(first, m)
+        d[j0:first] = memo.d[j0:first]
+    rows = np.arange(first, n)
+    if len(rows):
+        a, b = _bounds(tn, tn[rows], half, half)
+        d[rows] = rc[rows] - _rolling_median(clean, a, b, 5)
+    if memo is not None:
+        memo.d, memo.ok, memo.start = d, ok.copy(), j0
+    return d
+
+
+def _resid_tail(rc: np.ndarray, t: np.ndarray, tn: np.ndarray, ok: np.ndarray, k: int, s: QcSettings,
+                memo: ResidMemo | None = None) -> np.ndarray:
     """:func:`monitor.quality.checks.residual_outlier_test` at rows ``k:`` (``rc`` with gross failures
-    as NaN, ``ok`` the samples its windows may use)."""
+    as NaN, ``ok`` the samples its windows may use; ``memo`` see :class:`ResidMemo`)."""
     n = len(rc)
     flags = np.full(n - k, NOT_EVALUATED, dtype=np.int8)
     if n - k == 0:
@@ -1266,16 +1389,15 @@ def _resid_tail(rc: np.ndarray, t: np.ndarray, tn: np.ndarray, ok: np.ndarray, k
     # rows whose departure enters the noise window of a row judged
     j0 = max(0, int(np.searchsorted(tn, tn[e0] - half_noise, side="left")) - 1)
     clean = np.where(ok, rc, np.nan)
-    rows = np.arange(j0, n)
-    a, b = _bounds(tn, tn[rows], half, half)
-    med = _rolling_median(clean, a, b, 5)
-    d = np.full(n, np.nan)
-    d[rows] = rc[rows] - med
+    d = _departures(rc, clean, tn, j0, half, memo, ok)
     absd = np.where(ok, np.abs(d), np.nan)
     ev_rows = np.arange(e0, n)
     a, b = _bounds(tn, tn[ev_rows], half_noise, half_noise)
     sigma = np.full(n, np.nan)
-    sigma[ev_rows] = 1.4826 * _rolling_median(absd, a, b, 10)
+    if memo is not None and _monotone(a, b):
+        sigma[ev_rows] = 1.4826 * _sliding_median(absd, a, b, 10)
+    else:
+        sigma[ev_rows] = 1.4826 * _rolling_median(absd, a, b, 10)
     full = np.full(n, NOT_EVALUATED, dtype=np.int8)
     ev = np.isfinite(d) & np.isfinite(sigma)
     full[ev] = PASS
@@ -1294,15 +1416,33 @@ def confirm_tail(frame: pd.DataFrame, level: pd.Series, r: np.ndarray, other: pd
     """:func:`monitor.quality.checks._confirm` at rows ``k:``: ``frame`` holds those rows' tests,
     ``level`` and ``r`` (level minus prediction [m]) the whole record, ``other`` the other
     sensor's levels that may confirm a jump (within reach of the rows ``k:`` at least)."""
-    n = len(level)
     if other is None:
         return frame
-    t = utc_index(level.index).as_unit("ns").asi8 / 1e9
-    if other.dropna().empty or n < 3:
+    other = other.dropna()
+    table = frame[list(TESTS)].to_numpy(dtype=np.int8)
+    confirmed = confirm_on_arrays(table, index_seconds(level.index), level.to_numpy(dtype=float), r,
+                                  index_seconds(other.index), other.to_numpy(dtype=float), s, k)
+    if confirmed is table:
         return frame
+    frame = frame.copy()
+    frame["spike"] = confirmed[:, _COL["spike"]]
+    frame["flag"] = aggregate_flags(frame)
+    return frame
+
+
+def confirm_on_arrays(table: np.ndarray, t: np.ndarray, v: np.ndarray, r: np.ndarray, to: np.ndarray,
+                      vo: np.ndarray, s: QcSettings, k: int) -> np.ndarray:
+    """:func:`confirm_tail` on plain arrays: ``table`` the tests of rows ``k:`` (columns
+    :data:`TESTS`), ``t`` [s], ``v`` and ``r`` (level, level minus prediction [m]) the whole
+    record, ``to``, ``vo`` the other sensor's samples that may confirm a jump (no NaN).
+    Returns ``table`` itself when nothing changes, else a copy with the confirmed jumps
+    suspect."""
+    n = len(v)
+    if len(to) == 0 or n < 3:
+        return table
     # difference and its curvature one row either side of the tail
     j0 = max(0, k - 1)
-    dd = difference_at(level.iloc[j0:], other, s.gap_limit)
+    dd = difference_on_arrays(t[j0:], v[j0:], to, vo, s.gap_limit)
     curv = np.full(len(dd), np.nan)
     curv[1:-1] = dd[1:-1] - 0.5 * (dd[:-2] + dd[2:])
     step = np.concatenate([[np.nan], np.diff(dd)])
@@ -1310,24 +1450,20 @@ def confirm_tail(frame: pd.DataFrame, level: pd.Series, r: np.ndarray, other: pd
         same = np.isfinite(curv) & np.isfinite(step) & (np.abs(curv) < s.spike_suspect) & \
             (np.abs(step) < s.spike_suspect)
     same = same[k - j0:]
-    if not same.any():
-        return frame
-    gross = frame["gross"].to_numpy()
-    rc = r.copy()
-    rc[k:][gross == FAIL] = np.nan
+    f = table[:, _COL["spike"]]
+    if not (same & (f == FAIL)).any():
+        return table
+    rc = np.array(r, dtype=float)
+    rc[k:][table[:, _COL["gross"]] == FAIL] = np.nan
     # gross failures before the tail: recomputed (they are per sample)
-    v = level.to_numpy(dtype=float)
     rc[:k][(v[:k] < s.gross_fail_min) | (v[:k] > s.gross_fail_max)] = np.nan
     jumped = jump_flags(rc, t, s.spike_fail, s.jump_ratio, s.gap_limit)[k:]
-    f = frame["spike"].to_numpy().copy()
     real = same & jumped & (f == FAIL)
     if not real.any():
-        return frame
-    frame = frame.copy()
-    f[real] = SUSPECT
-    frame["spike"] = f.astype(np.int8)
-    frame["flag"] = aggregate_flags(frame)
-    return frame
+        return table
+    table = table.copy()
+    table[real, _COL["spike"]] = SUSPECT
+    return table
 
 
 # --------------------------------------------------------------------------- store glue
@@ -1462,7 +1598,7 @@ def _predict(model: Any, index: pd.DatetimeIndex) -> np.ndarray | None:
 
 
 def run_station_qc(store: Any, station_cfg: Any, settings: QcSettings | None, start_t: float, end_t: float,
-                   model: Any = None, now: float | None = None) -> dict[str, pd.DataFrame]:
+                   model: Any = None, now: float | None = None, context: Any = None) -> dict[str, Any]:
     """Run every test for a station's level sensors over ``[start_t, end_t]`` and store
     the results.
 
@@ -1489,11 +1625,18 @@ def run_station_qc(store: Any, station_cfg: Any, settings: QcSettings | None, st
         the level itself.
     now : float, optional
         Processing time [Unix s]; defaults to the wall clock.
+    context : monitor.quality.context.QcContext, optional
+        The station's context kept between passes (the daemon's): only rows newer than
+        those it holds are read, and the same flags are written. ``start_t`` must then be
+        no later than the earliest row stored since the previous pass.
 
     Returns
     -------
-    dict sensor -> DataFrame of the written rows (tests, ``flag`` after overrides).
+    dict sensor -> DataFrame of the written rows (tests, ``flag`` after overrides); with a
+    ``context``, sensor -> :class:`monitor.quality.context.QcRows` (the same rows as arrays).
     """
+    if context is not None:
+        return context.run(store, station_cfg, settings, start_t, end_t, model, now)
     s = settings or QcSettings()
     db = _db(store)
     ensure_qc_schema(db)
@@ -1577,13 +1720,40 @@ def _write(db: Any, station: str, sensor: str, part: pd.DataFrame, stored: np.nd
     changed = np.ones(len(new), bool) if stored is None else (np.asarray(stored) != new)
     if not todo.any() and not changed.any():
         return
-    rows = zip(_repeat(station), _repeat(sensor), t[todo].tolist(), *(tests[todo, j].tolist() for j in range(len(TESTS))))
-    flags = zip(new[changed].tolist(), _repeat(station), _repeat(sensor), t[changed].tolist())
+    write_rows(db, station, sensor, t[todo], tests[todo], t[changed], new[changed], edit=True)
+
+
+#: The store's meta key raised by every write of flags that a daemon's in-memory context
+#: did not make (:func:`set_override`, a pass without a context): see monitor.quality.context.
+EDITS_KEY = "qc.edits"
+
+
+def write_rows(db: Any, station: str, sensor: str, t_tests: np.ndarray, tests: np.ndarray, t_flags: np.ndarray,
+               flags: np.ndarray, edit: bool = False) -> None:
+    """In one transaction, store ``qc_tests`` rows (``tests``: one column per test of
+    :data:`TESTS`) at ``t_tests`` and ``observations.flag`` at ``t_flags`` [Unix s];
+    with ``edit`` raise the store's :data:`EDITS_KEY` too."""
+    conn = _db(db).conn
+    names = ", ".join(TESTS)
+    tests = np.asarray(tests, dtype=np.int64)
+    rows = zip(_repeat(station), _repeat(sensor), np.asarray(t_tests, dtype=np.int64).tolist(),
+               *(tests[:, j].tolist() for j in range(len(TESTS))))
+    fl = zip(np.asarray(flags).tolist(), _repeat(station), _repeat(sensor), np.asarray(t_flags, dtype=np.int64).tolist())
     marks = ", ".join("?" * len(TESTS))
     with transaction(conn):
         conn.executemany(
             f"INSERT OR REPLACE INTO qc_tests (station, sensor, t, {names}) VALUES (?, ?, ?, {marks})", rows)
-        conn.executemany("UPDATE observations SET flag = ? WHERE station = ? AND sensor = ? AND t = ?", flags)
+        conn.executemany("UPDATE observations SET flag = ? WHERE station = ? AND sensor = ? AND t = ?", fl)
+        if edit:
+            note_edit(conn)
+
+
+def note_edit(conn: Any) -> None:
+    """Raise the store's :data:`EDITS_KEY` (inside the caller's transaction; a bare database
+    without the store's ``meta`` table has none)."""
+    if conn.execute("SELECT 1 FROM sqlite_master WHERE type = 'table' AND name = 'meta'").fetchone():
+        conn.execute("INSERT INTO meta(key, value) VALUES (?, '1') ON CONFLICT(key) DO UPDATE SET "
+                     "value = CAST(value AS INTEGER) + 1", (EDITS_KEY,))
 
 
 def set_override(store: Any, station: str, sensor: str, start_t: float, end_t: float | None, flag: int,
@@ -1628,6 +1798,7 @@ def set_override(store: Any, station: str, sensor: str, start_t: float, end_t: f
             [(station, sensor, t, int(flag), who, why, stamp) for t in ts])
         conn.execute("UPDATE observations SET flag = ? WHERE station = ? AND sensor = ? AND t BETWEEN ? AND ?",
                      (int(flag), station, sensor, lo, hi))
+        note_edit(conn)
     return len(ts)
 
 
