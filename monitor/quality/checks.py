@@ -1012,9 +1012,23 @@ def _segments(values: np.ndarray, a: np.ndarray, b: np.ndarray, ufunc) -> np.nda
     empty window gives a value to be masked by its count)."""
     if len(a) == 0:
         return np.empty(0)
+    if len(a) >= 8 and a.max() <= b.min():
+        return _anchored(values, a, b, ufunc)
     padded = np.append(values, np.nan)  # so an index may equal len(values)
     idx = np.column_stack([np.minimum(a, len(values)), np.minimum(b, len(values))]).ravel()
     return ufunc.reduceat(padded, idx)[::2]
+
+
+def _anchored(values: np.ndarray, a: np.ndarray, b: np.ndarray, ufunc) -> np.ndarray:
+    """:func:`_segments` of windows that share a row ``c`` (every ``a_i <= c <= b_i``):
+    each is ``[a_i, c)`` and ``[c, b_i)``, reduced by one running pass away from ``c`` each
+    way, so the cost is the span's length, not the sum of the windows'. (Sums are added in
+    another order than ``reduceat``'s: equal to rounding.)"""
+    c, a0, b1 = int(b.min()), int(a.min()), int(b.max())
+    empty = 0.0 if ufunc is np.add else np.nan
+    left = np.append(ufunc.accumulate(values[a0:c][::-1])[::-1], empty)  # [j - a0]: values[j:c]
+    right = np.concatenate([[empty], ufunc.accumulate(values[c:b1])])     # [j - c]: values[c:j]
+    return ufunc(left[a - a0], right[b - c])
 
 
 def _counts(finite: np.ndarray, a: np.ndarray, b: np.ndarray) -> np.ndarray:
@@ -1061,8 +1075,9 @@ def spike_flags(r: np.ndarray, t: np.ndarray, suspect: float, fail: float, gap_l
         after = np.concatenate([curv[1:], [np.nan]])
         with np.errstate(invalid="ignore"):
             alone = ~(np.sign(before) == np.sign(curv)) & ~(np.sign(after) == np.sign(curv))
-        peak = ~(np.nan_to_num(np.concatenate([[0.0], stat[:-1]])) > stat) & \
-            ~(np.nan_to_num(np.concatenate([stat[1:], [0.0]])) > stat)
+        # (a NaN neighbour counts as 0: fmax, as nan_to_num did, without its cost)
+        peak = ~(np.fmax(np.concatenate([[0.0], stat[:-1]]), 0.0) > stat) & \
+            ~(np.fmax(np.concatenate([stat[1:], [0.0]]), 0.0) > stat)
         flags[ok] = PASS
         flags[ok & (stat > suspect)] = SUSPECT
         flags[ok & (stat > fail) & alone & peak] = FAIL
@@ -1232,7 +1247,7 @@ def tail_table(tn: np.ndarray, v: np.ndarray, p: np.ndarray | None, s: QcSetting
         if has.any():
             a, b = _bounds(tn, tn[j[has]], _ns(s.roc_window), 0)
             sd[has] = _rolling_std(np.where(ok, rc, np.nan), a, b, 10)
-        limit = np.maximum(np.nan_to_num(s.roc_n_dev * sd, nan=0.0), s.roc_floor)
+        limit = np.maximum(np.fmax(s.roc_n_dev * sd, 0.0), s.roc_floor)  # NaN: the floor
         roc[evaluated] = PASS
         with np.errstate(invalid="ignore"):
             roc[evaluated & (np.abs(dv) > limit)] = SUSPECT
@@ -1316,13 +1331,16 @@ def _sliding_median(values: np.ndarray, a: np.ndarray, b: np.ndarray, min_period
     out = np.full(len(a), np.nan)
     if len(a) == 0:
         return out
+    base = int(a[0])  # the windows' span only: a and b never move back
+    values = values[base:int(b[-1])]
     vals = values.tolist()
-    fin = np.isfinite(values).tolist()
+    finite = np.isfinite(values)
+    fin = finite.tolist()
     lo = hi = -1
     win: list[float] = []
-    for i, (ai, bi) in enumerate(zip(a.tolist(), b.tolist())):
+    for i, (ai, bi) in enumerate(zip((a - base).tolist(), (b - base).tolist())):
         if ai >= hi:  # no overlap with the window before: sort afresh
-            win = sorted(x for x, f in zip(vals[ai:bi], fin[ai:bi]) if f)
+            win = np.sort(values[ai:bi][finite[ai:bi]]).tolist()
             hi = bi
         else:
             for j in range(hi, bi):
