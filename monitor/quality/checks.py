@@ -1182,7 +1182,6 @@ def tail_table(tn: np.ndarray, v: np.ndarray, p: np.ndarray | None, s: QcSetting
     t = tn / 1e9
     n = len(v)
     tail = slice(k, n)
-    at = tn[tail]
     r = v - p if p is not None else v
     out: dict[str, np.ndarray] = {}
 
@@ -1227,49 +1226,28 @@ def tail_table(tn: np.ndarray, v: np.ndarray, p: np.ndarray | None, s: QcSetting
     out["spike"] = spike[tail]
     bad = gross_fail | (spike == FAIL)
     ok = np.isfinite(rc) & ~bad
+    # Rows whose backward windows are as at the memo's last call: before the first row whose
+    # usability changed (a spike's verdict waits for the next sample) or that is new.
+    keep = memo.unchanged_rows(ok) if memo is not None else 0
+    # a kept row's windows must not have reached rows the record has since lost (before t[0])
+    if memo is not None and memo.dropped and not (
+            n - k and k > 0 and t[k - 1] - s.roc_window >= t[0]
+            and t[k] - max(s.atten_window, max(s.flat_suspect_after, s.flat_fail_after) + s.gap_limit) >= t[0]):
+        keep = 0
 
     # 7 rate of change: against the last usable sample, limit from the previous window's sd
-    roc = np.full(n - k, NOT_EVALUATED, dtype=np.int8)
-    if n >= 2 and n - k:
-        pos = np.where(ok, np.arange(n), -1)
-        last = np.maximum.accumulate(pos)
-        prev = np.concatenate([[-1], last[:-1]])[tail]
-        has_prev = prev >= 0
-        pi = np.where(has_prev, prev, 0)
-        dv = rc[tail] - rc[pi]
-        dtt = t[tail] - t[pi]
-        with np.errstate(invalid="ignore"):
-            evaluated = has_prev & (dtt > 0) & (dtt <= s.gap_limit) & np.isfinite(rc[tail])
-        # the sd at the previous row (of the samples up to it)
-        j = np.arange(k, n) - 1
-        sd = np.full(n - k, np.nan)
-        has = j >= 0
-        if has.any():
-            a, b = _bounds(tn, tn[j[has]], _ns(s.roc_window), 0)
-            sd[has] = _rolling_std(np.where(ok, rc, np.nan), a, b, 10)
-        limit = np.maximum(np.fmax(s.roc_n_dev * sd, 0.0), s.roc_floor)  # NaN: the floor
-        roc[evaluated] = PASS
-        with np.errstate(invalid="ignore"):
-            roc[evaluated & (np.abs(dv) > limit)] = SUSPECT
-    out["roc"] = roc
+    roc = _kept(memo, "roc", n, k, keep)
+    todo = np.flatnonzero(roc == -1) + k
+    if len(todo):
+        roc[todo - k] = _roc_rows(rc, t, tn, ok, todo, s)
+    out["roc"] = _remember(memo, "roc", roc, n, k)
 
-    # 8 flat line, on the level
-    flat = np.full(n - k, PASS, dtype=np.int8)
-    for duration, code in ((s.flat_suspect_after, SUSPECT), (s.flat_fail_after, FAIL)):
-        if n - k == 0:
-            break
-        a, b = _bounds(tn, at, _ns(duration), 0, lo_closed=True)
-        vmax, vmin = _rolling_extremes(v, a, b, 2)
-        tt = t[tail]
-        first = np.searchsorted(t, tt - duration, side="left")
-        exact = t[np.minimum(first, n - 1)] == tt - duration
-        before = t[np.maximum(first - 1, 0)]
-        covered = exact | ((first > 0) & (before >= tt - duration - s.gap_limit))
-        with np.errstate(invalid="ignore"):
-            is_flat = (vmax - v[tail] < s.flat_tolerance) & (v[tail] - vmin < s.flat_tolerance) & covered
-        flat[is_flat] = code
-    flat[~finite[tail]] = NOT_EVALUATED
-    out["flat"] = flat
+    # 8 flat line, on the level (its windows hold values only: every row kept)
+    flat = _kept(memo, "flat", n, k, len(memo.ok) if memo is not None and keep else 0)
+    todo = np.flatnonzero(flat == -1) + k
+    if len(todo):
+        flat[todo - k] = _flat_rows(v, t, tn, todo, s)
+    out["flat"] = _remember(memo, "flat", flat, n, k)
 
     # 11 (neighbour) against the co-located sensor: by the caller
     out["multi"] = np.full(n - k, NOT_EVALUATED, dtype=np.int8)
@@ -1277,18 +1255,12 @@ def tail_table(tn: np.ndarray, v: np.ndarray, p: np.ndarray | None, s: QcSetting
     # 10 attenuated signal: observed range over the last tidal day against the predicted
     atten = np.full(n - k, NOT_EVALUATED, dtype=np.int8)
     if p is not None and n and n - k:
-        oka = np.isfinite(v) & np.isfinite(p) & ~bad
-        a, b = _bounds(tn, at, _ns(s.atten_window), 0)
-        ohi, olo = _rolling_extremes(np.where(oka, v, np.nan), a, b, 2)
-        phi, plo = _rolling_extremes(np.where(oka, p, np.nan), a, b, 2)
-        csum = np.concatenate([[0], np.cumsum(oka)])
-        count = (csum[b] - csum[a]).astype(float)
+        obs_range, pred_range, count = _atten_ranges(v, p, bad, tn, k, s, memo, keep)
         step = float(np.median(np.diff(t))) if n > 1 else s.atten_window
         span_ok = (t[tail] - t[0]) >= s.atten_window - step
         covered = span_ok & (count * step >= 0.8 * s.atten_window)
         with np.errstate(invalid="ignore", divide="ignore"):
-            pred_range = phi - plo
-            ratio = (ohi - olo) / pred_range
+            ratio = obs_range / pred_range
             ev = covered & np.isfinite(ratio) & (pred_range >= s.atten_min_range) & finite[tail]
             atten[ev] = PASS
             atten[ev & (ratio < s.atten_suspect)] = SUSPECT
@@ -1296,7 +1268,9 @@ def tail_table(tn: np.ndarray, v: np.ndarray, p: np.ndarray | None, s: QcSetting
     out["atten"] = atten
 
     # residual outlier: departure from the centred median against the centred noise
-    out["resid"] = _resid_tail(rc, t, tn, ok, k, s, memo)
+    out["resid"] = _resid_tail(rc, t, tn, ok, k, s, memo, keep)
+    if memo is not None:
+        memo.ok = ok
 
     missing = out["syntax"] == MISSING
     if n - k == 0:
@@ -1305,10 +1279,107 @@ def tail_table(tn: np.ndarray, v: np.ndarray, p: np.ndarray | None, s: QcSetting
                             for c in TESTS])
 
 
+def _roc_rows(rc: np.ndarray, t: np.ndarray, tn: np.ndarray, ok: np.ndarray, rows: np.ndarray,
+              s: QcSettings) -> np.ndarray:
+    """The rate-of-change flags at ``rows``: the change from the last usable sample before
+    each against the sd of the usable residual over the window up to that sample's
+    predecessor."""
+    n = len(rc)
+    out = np.full(len(rows), NOT_EVALUATED, dtype=np.int8)
+    if n < 2:
+        return out
+    pos = np.where(ok, np.arange(n), -1)
+    last = np.maximum.accumulate(pos)
+    prev = np.concatenate([[-1], last[:-1]])[rows]
+    has_prev = prev >= 0
+    pi = np.where(has_prev, prev, 0)
+    dv = rc[rows] - rc[pi]
+    dtt = t[rows] - t[pi]
+    with np.errstate(invalid="ignore"):
+        evaluated = has_prev & (dtt > 0) & (dtt <= s.gap_limit) & np.isfinite(rc[rows])
+    # the sd at the previous row (of the samples up to it)
+    j = rows - 1
+    sd = np.full(len(rows), np.nan)
+    has = j >= 0
+    if has.any():
+        a, b = _bounds(tn, tn[j[has]], _ns(s.roc_window), 0)
+        sd[has] = _rolling_std(np.where(ok, rc, np.nan), a, b, 10)
+    limit = np.maximum(np.fmax(s.roc_n_dev * sd, 0.0), s.roc_floor)  # NaN: the floor
+    out[evaluated] = PASS
+    with np.errstate(invalid="ignore"):
+        out[evaluated & (np.abs(dv) > limit)] = SUSPECT
+    return out
+
+
+def _flat_rows(v: np.ndarray, t: np.ndarray, tn: np.ndarray, rows: np.ndarray, s: QcSettings) -> np.ndarray:
+    """The flat-line flags at ``rows``."""
+    n = len(v)
+    out = np.full(len(rows), PASS, dtype=np.int8)
+    tt, vt = t[rows], v[rows]
+    for duration, code in ((s.flat_suspect_after, SUSPECT), (s.flat_fail_after, FAIL)):
+        a, b = _bounds(tn, tn[rows], _ns(duration), 0, lo_closed=True)
+        vmax, vmin = _rolling_extremes(v, a, b, 2)
+        first = np.searchsorted(t, tt - duration, side="left")
+        exact = t[np.minimum(first, n - 1)] == tt - duration
+        before = t[np.maximum(first - 1, 0)]
+        covered = exact | ((first > 0) & (before >= tt - duration - s.gap_limit))
+        with np.errstate(invalid="ignore"):
+            is_flat = (vmax - vt < s.flat_tolerance) & (vt - vmin < s.flat_tolerance) & covered
+        out[is_flat] = code
+    out[~np.isfinite(vt)] = NOT_EVALUATED
+    return out
+
+
+def _atten_ranges(v: np.ndarray, p: np.ndarray, bad: np.ndarray, tn: np.ndarray, k: int, s: QcSettings,
+                  memo: "ResidMemo | None", keep: int) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Observed and predicted range [m] and the usable samples counted over each tail row's
+    attenuation window (``(t - atten_window, t]``); rows before ``keep`` from the memo."""
+    n = len(v)
+    got = [_kept(memo, name, n, k, keep, float) for name in ("a_obs", "a_pred", "a_count")]
+    todo = np.flatnonzero(np.isnan(got[2])) + k
+    if len(todo):
+        oka = np.isfinite(v) & np.isfinite(p) & ~bad
+        a, b = _bounds(tn, tn[todo], _ns(s.atten_window), 0)
+        ohi, olo = _rolling_extremes(np.where(oka, v, np.nan), a, b, 2)
+        phi, plo = _rolling_extremes(np.where(oka, p, np.nan), a, b, 2)
+        csum = np.concatenate([[0], np.cumsum(oka)])
+        got[0][todo - k], got[1][todo - k] = ohi - olo, phi - plo
+        got[2][todo - k] = (csum[b] - csum[a]).astype(float)
+    return tuple(_remember(memo, name, g, n, k) for name, g in zip(("a_obs", "a_pred", "a_count"), got))
+
+
+def _kept(memo: "ResidMemo | None", name: str, n: int, k: int, keep: int, kind: type = np.int8) -> np.ndarray:
+    """Rows ``k:`` of a memo's per-row array, those from ``keep`` on (and any never
+    computed) marked to do: -1 for flags, NaN for values."""
+    blank = -1 if kind is np.int8 else np.nan
+    out = np.full(n - k, blank, dtype=kind)
+    if memo is not None:
+        have = memo.rows.get(name)
+        if have is not None:
+            upto = min(keep, len(have))
+            if upto > k:
+                out[:upto - k] = have[k:upto]
+    return out
+
+
+def _remember(memo: "ResidMemo | None", name: str, tail: np.ndarray, n: int, k: int) -> np.ndarray:
+    """Keep rows ``k:`` of a per-row array in the memo (rows before ``k`` are not needed
+    again: the tail only moves forward while the memo lives)."""
+    if memo is not None:
+        full = np.full(n, -1 if tail.dtype == np.int8 else np.nan, dtype=tail.dtype)
+        full[k:] = tail
+        memo.rows[name] = full
+    return tail
+
+
 class ResidMemo:
-    """What the residual outlier test keeps between calls on a record that grows at its end
-    (and loses rows at its front): each row's departure from its centred median and which
-    rows the windows could use. A departure is kept while no row of its window changed.
+    """What :func:`tail_table` keeps between calls on a record that grows at its end (and
+    loses rows at its front): which rows the windows could use at the last call, each row's
+    departure from its centred median (the residual outlier test), and the per-row results
+    of the tests whose windows look back only (rate of change, flat line, attenuation
+    ranges). A row's result is kept while no row of its windows changed: rows before the
+    first row whose usability changed or that is new (for the flat line, whose windows hold
+    values only, every row held before).
 
     The caller drops the front with :meth:`drop`; :func:`tail_table` does the rest.
     """
@@ -1317,12 +1388,25 @@ class ResidMemo:
         self.d = np.empty(0)              # departures [m], NaN where not computed
         self.ok = np.empty(0, dtype=bool)  # the rows the windows could use, at the last call
         self.start = 0                    # departures valid from this row on
+        self.rows: dict[str, np.ndarray] = {}  # per-row results of the backward-looking tests
+        self.dropped = False              # whether the record has lost rows at its front
 
     def drop(self, rows: int) -> None:
         """Forget the first ``rows`` rows (the record lost them at its front)."""
         if rows:
+            self.dropped = True
             self.d, self.ok = self.d[rows:], self.ok[rows:]
             self.start = max(self.start - rows, 0)
+            self.rows = {name: a[rows:] for name, a in self.rows.items()}
+
+    def unchanged_rows(self, ok: np.ndarray) -> int:
+        """How many leading rows are as at the last call: up to the first row whose
+        usability changed, or the first new one (0 when the memo does not fit)."""
+        m = len(self.ok)
+        if m > len(ok):
+            return 0
+        changed = np.flatnonzero(self.ok != ok[:m])
+        return int(changed[0]) if changed.size else m
 
 
 def _sliding_median(values: np.ndarray, a: np.ndarray, b: np.ndarray, min_periods: int) -> np.ndarray:
@@ -1362,9 +1446,10 @@ def _monotone(a: np.ndarray, b: np.ndarray) -> bool:
 
 
 def _departures(rc: np.ndarray, clean: np.ndarray, tn: np.ndarray, j0: int, half: int,
-                memo: ResidMemo | None, ok: np.ndarray) -> np.ndarray:
+                memo: ResidMemo | None, keep: int) -> np.ndarray:
     """``rc - median(clean over the centred window)`` at rows ``j0:`` (NaN before), from the
-    memo where no row of a window changed since it was computed."""
+    memo where no row of a window changed since it was computed (``keep``: see
+    :meth:`ResidMemo.unchanged_rows`)."""
     n = len(rc)
     d = np.full(n, np.nan)
     first = j0
@@ -1372,8 +1457,7 @@ def _departures(rc: np.ndarray, clean: np.ndarray, tn: np.ndarray, j0: int, half
     front = int(np.searchsorted(tn, tn[0] + half, side="left")) if n else 0
     if memo is not None and len(memo.ok) <= n and memo.start <= j0 and j0 >= front:
         m = len(memo.ok)
-        changed = np.flatnonzero(memo.ok != ok[:m])
-        c0 = int(changed[0]) if changed.size else m
+        c0 = keep
         if c0 < n:
             # rows whose window reaches a changed or a new row (the window is (t - half, t + half])
             first = max(j0, int(np.searchsorted(tn, tn[c0] - half, side="left")) - 1)
@@ -1386,12 +1470,12 @@ def _departures(rc: np.ndarray, clean: np.ndarray, tn: np.ndarray, j0: int, half
         a, b = _bounds(tn, tn[rows], half, half)
         d[rows] = rc[rows] - _rolling_median(clean, a, b, 5)
     if memo is not None:
-        memo.d, memo.ok, memo.start = d, ok.copy(), j0
+        memo.d, memo.start = d, j0
     return d
 
 
 def _resid_tail(rc: np.ndarray, t: np.ndarray, tn: np.ndarray, ok: np.ndarray, k: int, s: QcSettings,
-                memo: ResidMemo | None = None) -> np.ndarray:
+                memo: ResidMemo | None = None, keep: int = 0) -> np.ndarray:
     """:func:`monitor.quality.checks.residual_outlier_test` at rows ``k:`` (``rc`` with gross failures
     as NaN, ``ok`` the samples its windows may use; ``memo`` see :class:`ResidMemo`)."""
     n = len(rc)
@@ -1407,7 +1491,7 @@ def _resid_tail(rc: np.ndarray, t: np.ndarray, tn: np.ndarray, ok: np.ndarray, k
     # rows whose departure enters the noise window of a row judged
     j0 = max(0, int(np.searchsorted(tn, tn[e0] - half_noise, side="left")) - 1)
     clean = np.where(ok, rc, np.nan)
-    d = _departures(rc, clean, tn, j0, half, memo, ok)
+    d = _departures(rc, clean, tn, j0, half, memo, keep)
     absd = np.where(ok, np.abs(d), np.nan)
     ev_rows = np.arange(e0, n)
     a, b = _bounds(tn, tn[ev_rows], half_noise, half_noise)

@@ -129,6 +129,7 @@ class QcContext:
         self.end_t: int | None = None
         self.edits: tuple | None = None
         self.has_meta = False
+        self.ahead_until = -1   # [Unix s] the model's memo holds predictions up to here
 
     # ------------------------------------------------------------------ the pass
     def run(self, store: Any, station_cfg: Any, settings: QcSettings | None, start_t: float, end_t: float,
@@ -200,13 +201,28 @@ class QcContext:
         for sn, (t, v, f) in new.items():
             held = self.sensors[sn]
             if len(t):
-                held.append(t, v, f, _predict(model, t))
+                held.append(t, v, f, self._predict_new(model, t))
             held.drop_before(read_from)
         return True
+
+    def _predict_new(self, model: Any, t: np.ndarray) -> np.ndarray | None:
+        """The predicted tide at new rows [m]. A model that keeps what it predicts (the
+        daemon's memo, with ``forget_before``) is asked for the next :data:`AHEAD` samples'
+        times at the last step too, once they are passed: one model evaluation an hour at
+        one-minute steps, not one a pass."""
+        if model is None or not hasattr(model, "forget_before") or int(t[-1]) <= self.ahead_until:
+            return _predict(model, t)
+        step = int(t[-1] - t[-2]) if len(t) > 1 else 60
+        if not 0 < step <= 3600:
+            return _predict(model, t)
+        more = int(t[-1]) + step * np.arange(1, AHEAD + 1, dtype=np.int64)
+        self.ahead_until = int(more[-1])
+        return _predict(model, np.concatenate([t, more]))[:len(t)]
 
     def _rebuild(self, db: Any, station: str, sensors: list[str], read_from: int, hi: int, model: Any,
                  write_from: float) -> None:
         self.rebuilds += 1
+        self.ahead_until = -1
         self.sensors = {}
         for sn in sensors:
             t, v, f = _read(db, station, sn, read_from, hi)
@@ -309,6 +325,11 @@ def _read(db: Any, station: str, sensor: str, lo: int, hi: int) -> tuple[np.ndar
     t, v, f = zip(*rows)
     return (np.array(t, dtype=np.int64), np.array(v, dtype=float),
             np.array([NOT_EVALUATED if x is None else x for x in f], dtype=np.int16))
+
+
+#: Samples predicted ahead, at the last step, when a memo of predictions is asked for new
+#: rows (one model evaluation an hour at one-minute steps instead of one a minute).
+AHEAD = 60
 
 
 def _predict(model: Any, t: np.ndarray) -> np.ndarray | None:
