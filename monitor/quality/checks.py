@@ -1353,12 +1353,11 @@ def _kept(memo: "ResidMemo | None", name: str, n: int, k: int, keep: int, kind: 
     computed) marked to do: -1 for flags, NaN for values."""
     blank = -1 if kind is np.int8 else np.nan
     out = np.full(n - k, blank, dtype=kind)
-    if memo is not None:
-        have = memo.rows.get(name)
-        if have is not None:
-            upto = min(keep, len(have))
-            if upto > k:
-                out[:upto - k] = have[k:upto]
+    if memo is not None and name in memo.rows:
+        k0, have = memo.rows[name]  # rows k0, k0 + 1, ... as at the last call
+        lo, hi = max(k, k0), min(keep, k0 + len(have), n)
+        if hi > lo:
+            out[lo - k:hi - k] = have[lo - k0:hi - k0]
     return out
 
 
@@ -1366,9 +1365,7 @@ def _remember(memo: "ResidMemo | None", name: str, tail: np.ndarray, n: int, k: 
     """Keep rows ``k:`` of a per-row array in the memo (rows before ``k`` are not needed
     again: the tail only moves forward while the memo lives)."""
     if memo is not None:
-        full = np.full(n, -1 if tail.dtype == np.int8 else np.nan, dtype=tail.dtype)
-        full[k:] = tail
-        memo.rows[name] = full
+        memo.rows[name] = (k, tail.copy())
     return tail
 
 
@@ -1388,7 +1385,7 @@ class ResidMemo:
         self.d = np.empty(0)              # departures [m], NaN where not computed
         self.ok = np.empty(0, dtype=bool)  # the rows the windows could use, at the last call
         self.start = 0                    # departures valid from this row on
-        self.rows: dict[str, np.ndarray] = {}  # per-row results of the backward-looking tests
+        self.rows: dict[str, tuple] = {}  # test -> (first row, per-row results of the rows judged)
         self.dropped = False              # whether the record has lost rows at its front
 
     def drop(self, rows: int) -> None:
@@ -1397,7 +1394,7 @@ class ResidMemo:
             self.dropped = True
             self.d, self.ok = self.d[rows:], self.ok[rows:]
             self.start = max(self.start - rows, 0)
-            self.rows = {name: a[rows:] for name, a in self.rows.items()}
+            self.rows = {name: (k0 - rows, a) for name, (k0, a) in self.rows.items()}
 
     def unchanged_rows(self, ok: np.ndarray) -> int:
         """How many leading rows are as at the last call: up to the first row whose
