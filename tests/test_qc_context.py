@@ -283,3 +283,23 @@ def test_the_sliding_median_equals_numpy_over_each_window(seed):
         w = w[np.isfinite(w)]
         want = np.median(w) if len(w) >= 10 else np.nan
         assert (np.isnan(want) and np.isnan(got[i])) or got[i] == want, i
+
+
+def test_windows_too_wide_for_matrices_take_the_pass_without_the_context(tmp_path, monkeypatch):
+    """Very fine sampling makes the tail's window matrices too large: the pass falls back to
+    the pass without a context (whole-record tests for such tails) and says the same rows."""
+    t, primary, backup, keep = _record(13)
+    monkeypatch.setattr(qc, "_TAIL_CELLS_MAX", 1000)
+    model, s = _Tide(), QcSettings()
+    live, plain = _Station(tmp_path / "live.db", QcContext()), _Station(tmp_path / "plain.db", None)
+    try:
+        for st in (live, plain):
+            st.write("primary", t[:HISTORY + 3], primary[:HISTORY + 3])
+            st.write("backup", t[:HISTORY + 3], backup[:HISTORY + 3])
+            st.process(model, s)
+        for sn in ("primary", "backup"):
+            _same(_stored(live.store, sn, 0, 2 ** 40), _stored(plain.store, sn, 0, 2 ** 40), sn)
+        assert live.context.end_t is None  # forgotten: the next pass reads the store again
+    finally:
+        for st in (live, plain):
+            st.store.close()
