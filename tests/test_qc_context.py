@@ -268,15 +268,18 @@ def test_flat_since_of_the_rows_equals_the_diagnostics_on_a_frame():
     assert QcRows(t, tests, np.ones(8, dtype=np.int8)).flat_since() is None
 
 
-@pytest.mark.parametrize("seed", [1, 2])
-def test_the_sliding_median_equals_numpy_over_each_window(seed):
-    """Against ``np.median`` of each window's finite values (min_periods and NaN as pandas)."""
+@pytest.mark.parametrize("seed, suffixes", [(1, False), (2, False), (3, True), (4, True)])
+def test_the_sliding_median_equals_numpy_over_each_window(seed, suffixes):
+    """Against ``np.median`` of each window's finite values (min_periods and NaN as pandas);
+    windows sliding both ends, and windows all ending at the newest value (the live tail)."""
     rng = np.random.default_rng(seed)
     values = np.abs(rng.normal(0, 1, 400)).round(2)  # ties on purpose
     values[rng.integers(0, 400, 40)] = np.nan
     a = np.sort(rng.integers(0, 300, 120))
     b = np.minimum(np.maximum(a + rng.integers(0, 60, 120), np.maximum.accumulate(a + 5)), 400)
     b = np.maximum.accumulate(b)
+    if suffixes:
+        a, b = np.sort(rng.integers(300, 395, 80)), np.full(80, 400)
     got = qc._sliding_median(values, a, b, 10)
     for i in range(len(a)):
         w = values[a[i]:b[i]]
