@@ -1396,6 +1396,12 @@ class ResidMemo:
             self.start = max(self.start - rows, 0)
             self.rows = {name: (k0 - rows, a) for name, (k0, a) in self.rows.items()}
 
+    def keep_rows_from(self, row: int) -> None:
+        """Forget the per-row results of rows before ``row`` (no later call judges them)."""
+        for name, (k0, a) in list(self.rows.items()):
+            if row > k0:
+                self.rows[name] = (row, a[row - k0:].copy())
+
     def unchanged_rows(self, ok: np.ndarray) -> int:
         """How many leading rows are as at the last call: up to the first row whose
         usability changed, or the first new one (0 when the memo does not fit)."""

@@ -86,7 +86,9 @@ class _Sensor:
         self.v = v          # [m], NaN where missing
         self.flag = flag    # observations.flag as stored (NULL read as 2)
         self.p = p          # predicted tide [m] or None
-        self.packed = np.full(len(t), -1, dtype=np.int64)  # qc_tests row as stored (packed), -1 unknown
+        # the qc_tests rows as stored (packed; -1 unknown) of rows packed_at, packed_at + 1, ...
+        self.packed = np.full(len(t), -1, dtype=np.int64)
+        self.packed_at = 0
         self.ov_t = np.empty(0, dtype=np.int64)  # the technician's overrides from the start on
         self.ov_f = np.empty(0, dtype=np.int8)
         self.memo = _qc.ResidMemo()
@@ -94,7 +96,8 @@ class _Sensor:
     def drop_before(self, t0: int) -> None:
         cut = int(np.searchsorted(self.t, t0, side="left"))
         if cut:
-            self.t, self.v, self.flag, self.packed = self.t[cut:], self.v[cut:], self.flag[cut:], self.packed[cut:]
+            self.t, self.v, self.flag = self.t[cut:], self.v[cut:], self.flag[cut:]
+            self.packed_at -= cut
             if self.p is not None:
                 self.p = self.p[cut:]
             self.memo.drop(cut)
@@ -106,6 +109,21 @@ class _Sensor:
         self.packed = np.concatenate([self.packed, np.full(len(t), -1, dtype=np.int64)])
         if self.p is not None:
             self.p = np.concatenate([self.p, p])
+
+    def stored(self, rows: np.ndarray) -> np.ndarray:
+        """The packed qc_tests rows held as stored at ``rows`` (-1: not known)."""
+        i = rows - self.packed_at
+        inside = (i >= 0) & (i < len(self.packed))
+        return np.where(inside, self.packed[np.clip(i, 0, max(len(self.packed) - 1, 0))], -1) \
+            if len(self.packed) else np.full(len(rows), -1, dtype=np.int64)
+
+    def keep_from(self, row: int) -> None:
+        """Forget what rows before ``row`` were written as: only a backfill or late data
+        (which rebuild the context) write them again."""
+        if row > self.packed_at:
+            self.packed = self.packed[row - self.packed_at:]
+            self.packed_at = row
+        self.memo.keep_rows_from(row)
 
 
 class QcContext:
@@ -242,7 +260,7 @@ class QcContext:
             for tq, packed in stored:
                 i = int(np.searchsorted(held.t, tq))
                 if packed is not None and i < len(held.t) and held.t[i] == tq:
-                    held.packed[i] = packed
+                    held.packed[i - held.packed_at] = packed
             self.sensors[sn] = held
 
     def _judge(self, db: Any, station: str, s: QcSettings, now: float, position: Any, judge_from: float,
@@ -286,6 +304,8 @@ class QcContext:
                 flag = np.where(hit, h.ov_f[pos], flag).astype(np.int8)
             self._write(db, station, sn, h, rows, part, flag)
             results[sn] = QcRows(h.t[rows], part, flag)
+            # a steady next pass judges from one resid_window and two gap limits before its start
+            h.keep_from(int(np.searchsorted(h.t, end_t - s.resid_window - 2 * s.gap_limit - 1)))
         return results
 
     @staticmethod
@@ -296,13 +316,17 @@ class QcContext:
         if not len(rows):
             return
         packed = part.astype(np.int64) @ _PACK
-        todo = h.packed[rows] != packed
+        todo = h.stored(rows) != packed
         changed = h.flag[rows] != flag
         if not todo.any() and not changed.any():
             return
         t = h.t[rows]
         _qc.write_rows(db, station, sensor, t[todo], part[todo], t[changed], flag[changed])
-        h.packed[rows] = packed
+        i = rows - h.packed_at
+        if i[0] < 0:  # rows before those kept (not on a steady pass): hold them again
+            h.packed = np.concatenate([np.full(-int(i[0]), -1, dtype=np.int64), h.packed])
+            h.packed_at, i = int(rows[0]), i - int(i[0])
+        h.packed[i] = packed
         h.flag[rows] = flag
 
 
