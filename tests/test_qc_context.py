@@ -306,3 +306,30 @@ def test_windows_too_wide_for_matrices_take_the_pass_without_the_context(tmp_pat
     finally:
         for st in (live, plain):
             st.store.close()
+
+
+@pytest.mark.parametrize("seed", [5, 6])
+def test_spike_flags_kept_between_calls_equal_those_of_the_whole_record(seed):
+    """The spike test evaluated only near the newest rows and the first (after the record lost
+    rows at its front) equals it over the whole record, with spikes, jumps and missing runs
+    near both ends."""
+    rng = np.random.default_rng(seed)
+    n = 3000
+    t = (T0 + minute * np.arange(n)).astype(float)
+    r = np.cumsum(rng.normal(0, 0.003, n))
+    r[rng.integers(0, n, 60)] += rng.choice([-1, 1], 60) * 0.3    # spikes
+    r[rng.integers(0, n, 20)] += 0.4                              # jumps (two-sample steps)
+    for a in rng.integers(0, n - 10, 25):
+        r[a:a + rng.integers(1, 8)] = np.nan                      # missing runs
+    t[rng.integers(0, n, 15)] += 400                              # a few late stamps (gaps)
+    t = np.sort(t)
+    s, memo = QcSettings(), qc.ResidMemo()
+    lo, hi = 0, 200
+    while hi < n:
+        got = qc._spike_all(r[lo:hi], t[lo:hi], s, memo)
+        want = qc.spike_flags(r[lo:hi], t[lo:hi], s.spike_suspect, s.spike_fail, s.gap_limit, s.jump_ratio)
+        assert np.array_equal(got, want), (lo, hi, np.flatnonzero(got != want))
+        step, cut = int(rng.integers(1, 4)), int(rng.integers(0, 3))
+        hi += step
+        lo += cut
+        memo.drop(cut)

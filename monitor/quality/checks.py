@@ -1222,7 +1222,7 @@ def tail_table(tn: np.ndarray, v: np.ndarray, p: np.ndarray | None, s: QcSetting
     # needed there: its failures are left out of the windows of the tests below
     gross_fail = gross == FAIL
     rc = np.where(gross_fail, np.nan, r)
-    spike = spike_flags(rc, t, s.spike_suspect, s.spike_fail, s.gap_limit, s.jump_ratio)
+    spike = _spike_all(rc, t, s, memo)
     out["spike"] = spike[tail]
     bad = gross_fail | (spike == FAIL)
     ok = np.isfinite(rc) & ~bad
@@ -1277,6 +1277,40 @@ def tail_table(tn: np.ndarray, v: np.ndarray, p: np.ndarray | None, s: QcSetting
         return np.zeros((0, len(TESTS)), np.int8)
     return np.column_stack([np.where(missing & (c != "syntax"), NOT_EVALUATED, out[c]).astype(np.int8)
                             for c in TESTS])
+
+
+def _spike_all(rc: np.ndarray, t: np.ndarray, s: QcSettings, memo: "ResidMemo | None") -> np.ndarray:
+    """:func:`spike_flags` over the whole record; with a memo, only the rows whose
+    neighbours changed are evaluated: those within three rows (and three finite rows) of
+    the newest rows held before, and of the record's first row when it lost rows."""
+    n = len(rc)
+    held = None if memo is None else memo.spike
+    if held is None or len(held) > n or len(held) < 8:
+        sp = spike_flags(rc, t, s.spike_suspect, s.spike_fail, s.gap_limit, s.jump_ratio)
+    else:
+        m = len(held)
+        fin = np.flatnonzero(np.isfinite(rc))
+        old = fin[fin < m]
+        # a row's flag depends on two rows either side and on two finite rows before and one after
+        last = min(m - 3, int(old[-2]) if len(old) >= 2 else 0)
+        first = 0
+        if memo.lost:  # the record lost rows at its front: its first rows lost neighbours
+            first = max(3, int(fin[2]) + 1) if len(fin) > 2 else n
+        if first + 8 >= last:
+            sp = spike_flags(rc, t, s.spike_suspect, s.spike_fail, s.gap_limit, s.jump_ratio)
+        else:
+            sp = held.copy() if m == n else np.concatenate([held, np.zeros(n - m, dtype=held.dtype)])
+            if first:
+                end = max(first + 3, int(fin[4]) + 1 if len(fin) > 4 else n)
+                sp[:first] = spike_flags(rc[:end], t[:end], s.spike_suspect, s.spike_fail, s.gap_limit,
+                                         s.jump_ratio)[:first]
+            prior = fin[fin < last]
+            start = max(0, min(last - 3, int(prior[-3]) if len(prior) >= 3 else 0))
+            sp[last:] = spike_flags(rc[start:], t[start:], s.spike_suspect, s.spike_fail, s.gap_limit,
+                                    s.jump_ratio)[last - start:]
+    if memo is not None:
+        memo.spike, memo.lost = sp, False
+    return sp
 
 
 def _roc_rows(rc: np.ndarray, t: np.ndarray, tn: np.ndarray, ok: np.ndarray, rows: np.ndarray,
@@ -1387,11 +1421,15 @@ class ResidMemo:
         self.start = 0                    # departures valid from this row on
         self.rows: dict[str, tuple] = {}  # test -> (first row, per-row results of the rows judged)
         self.dropped = False              # whether the record has lost rows at its front
+        self.lost = False                 # ... since the last call
+        self.spike: np.ndarray | None = None  # spike flags of every row at the last call
 
     def drop(self, rows: int) -> None:
         """Forget the first ``rows`` rows (the record lost them at its front)."""
         if rows:
-            self.dropped = True
+            self.dropped = self.lost = True
+            if self.spike is not None:
+                self.spike = self.spike[rows:]
             self.d, self.ok = self.d[rows:], self.ok[rows:]
             self.start = max(self.start - rows, 0)
             self.rows = {name: (k0 - rows, a) for name, (k0, a) in self.rows.items()}
