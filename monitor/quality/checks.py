@@ -1038,6 +1038,13 @@ def _counts(finite: np.ndarray, a: np.ndarray, b: np.ndarray) -> np.ndarray:
 
 def _rolling_extremes(values: np.ndarray, a: np.ndarray, b: np.ndarray, min_periods: int) -> tuple:
     """Maximum and minimum of the non-NaN values of each window; NaN below ``min_periods``."""
+    if len(a) <= _FEW:  # each window on its own (the same values: extremes are exact)
+        hi, lo = np.full(len(a), np.nan), np.full(len(a), np.nan)
+        for i, (ai, bi) in enumerate(zip(a.tolist(), b.tolist())):
+            w = values[ai:bi]
+            if bi > ai and np.count_nonzero(np.isfinite(w)) >= min_periods:
+                hi[i], lo[i] = np.fmax.reduce(w), np.fmin.reduce(w)
+        return hi, lo
     few = _counts(np.isfinite(values), a, b) < min_periods
     hi = np.where(few, np.nan, _segments(values, a, b, np.fmax))
     lo = np.where(few, np.nan, _segments(values, a, b, np.fmin))
@@ -1322,6 +1329,8 @@ def _roc_rows(rc: np.ndarray, t: np.ndarray, tn: np.ndarray, ok: np.ndarray, row
     out = np.full(len(rows), NOT_EVALUATED, dtype=np.int8)
     if n < 2:
         return out
+    if len(rows) <= _FEW:
+        return _roc_few(rc, t, tn, ok, rows, s)
     pos = np.where(ok, np.arange(n), -1)
     last = np.maximum.accumulate(pos)
     prev = np.concatenate([[-1], last[:-1]])[rows]
@@ -1342,6 +1351,31 @@ def _roc_rows(rc: np.ndarray, t: np.ndarray, tn: np.ndarray, ok: np.ndarray, row
     out[evaluated] = PASS
     with np.errstate(invalid="ignore"):
         out[evaluated & (np.abs(dv) > limit)] = SUSPECT
+    return out
+
+
+_FEW = 4  # rows a steady pass recomputes: each on its own, not with whole-record arrays
+
+
+def _roc_few(rc: np.ndarray, t: np.ndarray, tn: np.ndarray, ok: np.ndarray, rows: np.ndarray,
+             s: QcSettings) -> np.ndarray:
+    """:func:`_roc_rows` at a few rows, each from its own window (the sd by numpy's two-pass
+    formula: equal to the window sums' to rounding)."""
+    out = np.full(len(rows), NOT_EVALUATED, dtype=np.int8)
+    width = _ns(s.roc_window)
+    for i, row in enumerate(rows.tolist()):
+        usable = np.flatnonzero(ok[:row])
+        if not len(usable) or row == 0:
+            continue
+        prev = int(usable[-1])
+        dtt = t[row] - t[prev]
+        if not (0 < dtt <= s.gap_limit and np.isfinite(rc[row])):
+            continue
+        a = int(np.searchsorted(tn, tn[row - 1] - width, side="right"))
+        w = rc[a:row][ok[a:row]]
+        sd = float(np.std(w, ddof=1)) if len(w) >= 10 else math.nan
+        limit = max(s.roc_n_dev * sd if math.isfinite(sd) else 0.0, s.roc_floor)
+        out[i] = SUSPECT if abs(rc[row] - rc[prev]) > limit else PASS
     return out
 
 
@@ -1371,7 +1405,17 @@ def _atten_ranges(v: np.ndarray, p: np.ndarray, bad: np.ndarray, tn: np.ndarray,
     n = len(v)
     got = [_kept(memo, name, n, k, keep, float) for name in ("a_obs", "a_pred", "a_count")]
     todo = np.flatnonzero(np.isnan(got[2])) + k
-    if len(todo):
+    if 0 < len(todo) <= _FEW:  # each window on its own
+        a, b = _bounds(tn, tn[todo], _ns(s.atten_window), 0)
+        for row, ai, bi in zip(todo.tolist(), a.tolist(), b.tolist()):
+            oka = np.isfinite(v[ai:bi]) & np.isfinite(p[ai:bi]) & ~bad[ai:bi]
+            count = int(np.count_nonzero(oka))
+            got[2][row - k] = float(count)
+            if count >= 2:
+                ov, pv = v[ai:bi][oka], p[ai:bi][oka]
+                got[0][row - k] = ov.max() - ov.min()
+                got[1][row - k] = pv.max() - pv.min()
+    elif len(todo):
         oka = np.isfinite(v) & np.isfinite(p) & ~bad
         a, b = _bounds(tn, tn[todo], _ns(s.atten_window), 0)
         ohi, olo = _rolling_extremes(np.where(oka, v, np.nan), a, b, 2)
