@@ -1889,7 +1889,6 @@ def _write(db: Any, station: str, sensor: str, part: pd.DataFrame, stored: np.nd
     conn = db.conn
     t = (index_seconds(part.index)).round().astype(np.int64)
     tests = np.column_stack([part[c].to_numpy(dtype=np.int64) for c in TESTS])  # (n, tests)
-    names = ", ".join(TESTS)
     # Compare packed rows (4 bits per flag; QARTOD flags are 1..9) so the read of the
     # stored rows moves two integers per sample, not ten.  A NULL packs to NULL and is
     # rewritten.
