@@ -20,6 +20,7 @@ from monitor.quality import checks as qc
 from monitor.quality import diagnostics
 from monitor.quality.checks import QcSettings, run_station_qc, run_tests, set_override
 from monitor.quality.context import QcContext, QcRows
+from monitor.service.daemon import PredictionMemo
 from monitor.store.database import Store
 from units import cm, hour, minute
 
@@ -333,3 +334,38 @@ def test_spike_flags_kept_between_calls_equal_those_of_the_whole_record(seed):
         hi += step
         lo += cut
         memo.drop(cut)
+
+
+class _Counted(_Tide):
+    def __init__(self):
+        self.calls = 0
+
+    def predict(self, times):
+        self.calls += 1
+        return super().predict(times)
+
+
+def test_the_daemons_prediction_memo_is_asked_an_hour_ahead(tmp_path):
+    """Through the daemon's memo the model runs once for an hour of one-minute passes, and
+    the flags are those of a pass without a context with the model itself."""
+    t, primary, backup, keep = _record(14)
+    tide, s = _Counted(), QcSettings()
+    memo = PredictionMemo(tide)
+    live, plain = _Station(tmp_path / "live.db", QcContext()), _Station(tmp_path / "plain.db", None)
+    try:
+        for st, model in ((live, memo), (plain, _Tide())):
+            st.write("primary", t[:HISTORY], primary[:HISTORY])
+            st.write("backup", t[:HISTORY], backup[:HISTORY])
+            st.process(model, s)
+        calls = tide.calls
+        for i in range(HISTORY, HISTORY + 30):
+            for st, model in ((live, memo), (plain, _Tide())):
+                st.write("primary", t[i:i + 1], primary[i:i + 1])
+                st.write("backup", t[i:i + 1], backup[i:i + 1])
+                st.process(model, s)
+        assert tide.calls == calls + 1
+        for sn in ("primary", "backup"):
+            _same(_stored(live.store, sn, 0, 2 ** 40), _stored(plain.store, sn, 0, 2 ** 40), sn)
+    finally:
+        for st in (live, plain):
+            st.store.close()

@@ -147,7 +147,8 @@ class QcContext:
         self.end_t: int | None = None
         self.edits: tuple | None = None
         self.has_meta = False
-        self.ahead_until = -1   # [Unix s] the model's memo holds predictions up to here
+        self.ahead_t = np.empty(0, dtype=np.int64)  # [Unix s] times asked of the model's memo ahead
+        self.ahead_p = np.empty(0)                    # and its predictions there [m]
 
     # ------------------------------------------------------------------ the pass
     def run(self, store: Any, station_cfg: Any, settings: QcSettings | None, start_t: float, end_t: float,
@@ -226,21 +227,27 @@ class QcContext:
     def _predict_new(self, model: Any, t: np.ndarray) -> np.ndarray | None:
         """The predicted tide at new rows [m]. A model that keeps what it predicts (the
         daemon's memo, with ``forget_before``) is asked for the next :data:`AHEAD` samples'
-        times at the last step too, once they are passed: one model evaluation an hour at
-        one-minute steps, not one a pass."""
-        if model is None or not hasattr(model, "forget_before") or int(t[-1]) <= self.ahead_until:
+        times at the last step too, and those predictions are kept here: at one-minute steps
+        one model evaluation an hour, not one a pass (the memo holds the same values for the
+        residual)."""
+        if model is None or not hasattr(model, "forget_before"):
             return _predict(model, t)
+        pos = np.searchsorted(self.ahead_t, t)
+        if len(self.ahead_t) and np.all(pos < len(self.ahead_t)) and np.array_equal(self.ahead_t[pos], t):
+            return self.ahead_p[pos]  # asked for before: the values the memo holds too
         step = int(t[-1] - t[-2]) if len(t) > 1 else 60
         if not 0 < step <= 3600:
             return _predict(model, t)
         more = int(t[-1]) + step * np.arange(1, AHEAD + 1, dtype=np.int64)
-        self.ahead_until = int(more[-1])
-        return _predict(model, np.concatenate([t, more]))[:len(t)]
+        both = np.concatenate([t, more])
+        p = _predict(model, both)
+        self.ahead_t, self.ahead_p = both, p
+        return p[:len(t)]
 
     def _rebuild(self, db: Any, station: str, sensors: list[str], read_from: int, hi: int, model: Any,
                  write_from: float) -> None:
         self.rebuilds += 1
-        self.ahead_until = -1
+        self.ahead_t, self.ahead_p = np.empty(0, dtype=np.int64), np.empty(0)
         self.sensors = {}
         for sn in sensors:
             t, v, f = _read(db, station, sn, read_from, hi)
