@@ -38,6 +38,7 @@ Vols I-V. IOC Manuals and Guides 14.
 """
 from __future__ import annotations
 
+import bisect as _bisect
 import difflib
 import math
 import time as _time
@@ -60,6 +61,8 @@ FLAG_NAMES = {PASS: "pass", NOT_EVALUATED: "not evaluated", SUSPECT: "suspect", 
 TESTS = ("gap", "syntax", "location", "gross", "expected", "spike", "roc", "flat", "multi", "atten", "resid")
 #: The QARTOD water-level manual v2.1 number of each test (None: our own addition). "multi",
 #: primary against a co-located backup, is the neighbour test's idea (Test 11).
+#: Column of each test in a table of flags whose columns are :data:`TESTS` in order.
+_COL = {c: i for i, c in enumerate(TESTS)}
 QARTOD_NUMBER = {"gap": 1, "syntax": 2, "location": 3, "gross": 4, "expected": 5, "spike": 6, "roc": 7,
                  "flat": 8, "multi": 11, "atten": 10, "resid": None}
 #: Flags a sample may carry and still be used for alerts, fits and statistics.
@@ -620,9 +623,14 @@ def difference_at(level: pd.Series, other: pd.Series, gap_limit: float) -> np.nd
     """``level - other`` at ``level``'s times [m]; NaN where ``other`` has no sample on
     both sides within ``gap_limit`` [s] (an exact time match is always used)."""
     other = other.dropna()
-    t = index_seconds(level.index)
-    to = index_seconds(other.index)
-    vo = other.to_numpy(dtype=float)
+    return difference_on_arrays(index_seconds(level.index), level.to_numpy(dtype=float),
+                                index_seconds(other.index), other.to_numpy(dtype=float), gap_limit)
+
+
+def difference_on_arrays(t: np.ndarray, v: np.ndarray, to: np.ndarray, vo: np.ndarray,
+                         gap_limit: float) -> np.ndarray:
+    """:func:`difference_at` on plain arrays: times [s] and levels [m] of this sensor, and of
+    the other sensor's samples with a value (no NaN)."""
     if len(to) == 0:
         return np.full(len(t), np.nan)
     j = np.searchsorted(to, t)
@@ -631,7 +639,7 @@ def difference_at(level: pd.Series, other: pd.Series, gap_limit: float) -> np.nd
     exact = to[jr] == t
     bracket = (j > 0) & (j < len(to)) & (t - to[jl] <= gap_limit) & (to[jr] - t <= gap_limit)
     interp = np.interp(t, to, vo)
-    d = level.to_numpy(dtype=float) - interp
+    d = v - interp
     return np.where(exact | bracket, d, np.nan)
 
 
@@ -1004,9 +1012,23 @@ def _segments(values: np.ndarray, a: np.ndarray, b: np.ndarray, ufunc) -> np.nda
     empty window gives a value to be masked by its count)."""
     if len(a) == 0:
         return np.empty(0)
+    if len(a) >= 8 and a.max() <= b.min():
+        return _anchored(values, a, b, ufunc)
     padded = np.append(values, np.nan)  # so an index may equal len(values)
     idx = np.column_stack([np.minimum(a, len(values)), np.minimum(b, len(values))]).ravel()
     return ufunc.reduceat(padded, idx)[::2]
+
+
+def _anchored(values: np.ndarray, a: np.ndarray, b: np.ndarray, ufunc) -> np.ndarray:
+    """:func:`_segments` of windows that share a row ``c`` (every ``a_i <= c <= b_i``):
+    each is ``[a_i, c)`` and ``[c, b_i)``, reduced by one running pass away from ``c`` each
+    way, so the cost is the span's length, not the sum of the windows'. (Sums are added in
+    another order than ``reduceat``'s: equal to rounding.)"""
+    c, a0, b1 = int(b.min()), int(a.min()), int(b.max())
+    empty = 0.0 if ufunc is np.add else np.nan
+    left = np.append(ufunc.accumulate(values[a0:c][::-1])[::-1], empty)  # [j - a0]: values[j:c]
+    right = np.concatenate([[empty], ufunc.accumulate(values[c:b1])])     # [j - c]: values[c:j]
+    return ufunc(left[a - a0], right[b - c])
 
 
 def _counts(finite: np.ndarray, a: np.ndarray, b: np.ndarray) -> np.ndarray:
@@ -1016,6 +1038,13 @@ def _counts(finite: np.ndarray, a: np.ndarray, b: np.ndarray) -> np.ndarray:
 
 def _rolling_extremes(values: np.ndarray, a: np.ndarray, b: np.ndarray, min_periods: int) -> tuple:
     """Maximum and minimum of the non-NaN values of each window; NaN below ``min_periods``."""
+    if len(a) <= _FEW:  # each window on its own (the same values: extremes are exact)
+        hi, lo = np.full(len(a), np.nan), np.full(len(a), np.nan)
+        for i, (ai, bi) in enumerate(zip(a.tolist(), b.tolist())):
+            w = values[ai:bi]
+            if bi > ai and np.count_nonzero(np.isfinite(w)) >= min_periods:
+                hi[i], lo[i] = np.fmax.reduce(w), np.fmin.reduce(w)
+        return hi, lo
     few = _counts(np.isfinite(values), a, b) < min_periods
     hi = np.where(few, np.nan, _segments(values, a, b, np.fmax))
     lo = np.where(few, np.nan, _segments(values, a, b, np.fmin))
@@ -1053,8 +1082,9 @@ def spike_flags(r: np.ndarray, t: np.ndarray, suspect: float, fail: float, gap_l
         after = np.concatenate([curv[1:], [np.nan]])
         with np.errstate(invalid="ignore"):
             alone = ~(np.sign(before) == np.sign(curv)) & ~(np.sign(after) == np.sign(curv))
-        peak = ~(np.nan_to_num(np.concatenate([[0.0], stat[:-1]])) > stat) & \
-            ~(np.nan_to_num(np.concatenate([stat[1:], [0.0]])) > stat)
+        # (a NaN neighbour counts as 0: fmax, as nan_to_num did, without its cost)
+        peak = ~(np.fmax(np.concatenate([[0.0], stat[:-1]]), 0.0) > stat) & \
+            ~(np.fmax(np.concatenate([stat[1:], [0.0]]), 0.0) > stat)
         flags[ok] = PASS
         flags[ok & (stat > suspect)] = SUSPECT
         flags[ok & (stat > fail) & alone & peak] = FAIL
@@ -1114,14 +1144,51 @@ def run_tests_tail(level: pd.Series, settings: QcSettings | None = None, predict
 
 def _tail(level: pd.Series, s: QcSettings, predicted: Any, other: pd.Series | None, now: float | None,
           position: tuple[float, float] | None, k: int) -> pd.DataFrame:
-    idx = utc_index(level.index)
-    tn = idx.as_unit("ns").asi8
-    t = tn / 1e9
+    tn = utc_index(level.index).as_unit("ns").asi8
     v = level.to_numpy(dtype=float)
+    p = None if predicted is None else np.asarray(predicted, dtype=float)
+    table = tail_table(tn, v, p, s, now, position, k)
+    n = len(v)
+    if other is not None and not other.dropna().empty and n - k:
+        dm = difference_at(level.iloc[k:], other, s.gap_limit)
+        okm = np.isfinite(dm)
+        multi = np.full(n - k, NOT_EVALUATED, dtype=np.int8)
+        multi[okm] = PASS
+        multi[okm & (np.abs(dm) > s.multi_suspect)] = SUSPECT
+        table[:, _COL["multi"]] = np.where(table[:, _COL["syntax"]] == MISSING, NOT_EVALUATED, multi)
+    frame = pd.DataFrame(table, index=level.index[k:], columns=list(TESTS))
+    frame["flag"] = _aggregate(table)
+    if other is not None:
+        frame = confirm_tail(frame, level, v - p if p is not None else v, other, s, k)
+    return frame
+
+
+def tail_table(tn: np.ndarray, v: np.ndarray, p: np.ndarray | None, s: QcSettings, now: float | None,
+               position: tuple[float, float] | None, k: int, memo: "ResidMemo | None" = None) -> np.ndarray:
+    """The single-sensor tests of rows ``k:`` on plain arrays (no co-located sensor: the
+    ``multi`` column is 2), as :func:`run_tests_tail` computes them.
+
+    Parameters
+    ----------
+    tn : array of int64
+        Sample times [ns since 1970, UTC], sorted.
+    v, p : array of float
+        Levels and the predicted tide at those times [m] (``p`` None: no prediction).
+    s, now, position
+        As :func:`run_tests`.
+    k : int
+        First row evaluated; the rows before it are the windows' context.
+    memo : ResidMemo, optional
+        The residual outlier test's departures kept from the previous call on the same
+        record (rows appended at the end, dropped at the front); updated in place.
+
+    Returns
+    -------
+    array of int8, shape (n - k, len(TESTS))
+    """
+    t = tn / 1e9
     n = len(v)
     tail = slice(k, n)
-    at = tn[tail]
-    p = None if predicted is None else np.asarray(predicted, dtype=float)
     r = v - p if p is not None else v
     out: dict[str, np.ndarray] = {}
 
@@ -1138,8 +1205,11 @@ def _tail(level: pd.Series, s: QcSettings, predicted: Any, other: pd.Series | No
     out["gap"] = g
     finite = np.isfinite(v)
     out["syntax"] = np.where(finite[tail], PASS, MISSING).astype(np.int8)
-    lat, lon = position if position is not None else (None, None)
-    out["location"] = location_test(level.index[tail], lat, lon, None, s.location_radius).to_numpy()
+    if position is None:
+        out["location"] = np.full(n - k, NOT_EVALUATED, dtype=np.int8)
+    else:
+        good = _valid_position(np.asarray([position[0]], dtype=float), np.asarray([position[1]], dtype=float))[0]
+        out["location"] = np.full(n - k, PASS if good else FAIL, dtype=np.int8)
     gross = np.full(n, PASS, dtype=np.int8)
     if s.gross_suspect_min is not None:
         gross[v < s.gross_suspect_min] = SUSPECT
@@ -1159,78 +1229,45 @@ def _tail(level: pd.Series, s: QcSettings, predicted: Any, other: pd.Series | No
     # needed there: its failures are left out of the windows of the tests below
     gross_fail = gross == FAIL
     rc = np.where(gross_fail, np.nan, r)
-    spike = spike_flags(rc, t, s.spike_suspect, s.spike_fail, s.gap_limit, s.jump_ratio)
+    spike = _spike_all(rc, t, s, memo)
     out["spike"] = spike[tail]
     bad = gross_fail | (spike == FAIL)
     ok = np.isfinite(rc) & ~bad
+    # Rows whose backward windows are as at the memo's last call: before the first row whose
+    # usability changed (a spike's verdict waits for the next sample) or that is new.
+    keep = memo.unchanged_rows(ok) if memo is not None else 0
+    # a kept row's windows must not have reached rows the record has since lost (before t[0])
+    if memo is not None and memo.dropped and not (
+            n - k and k > 0 and t[k - 1] - s.roc_window >= t[0]
+            and t[k] - max(s.atten_window, max(s.flat_suspect_after, s.flat_fail_after) + s.gap_limit) >= t[0]):
+        keep = 0
 
     # 7 rate of change: against the last usable sample, limit from the previous window's sd
-    roc = np.full(n - k, NOT_EVALUATED, dtype=np.int8)
-    if n >= 2 and n - k:
-        pos = np.where(ok, np.arange(n), -1)
-        last = np.maximum.accumulate(pos)
-        prev = np.concatenate([[-1], last[:-1]])[tail]
-        has_prev = prev >= 0
-        pi = np.where(has_prev, prev, 0)
-        dv = rc[tail] - rc[pi]
-        dtt = t[tail] - t[pi]
-        with np.errstate(invalid="ignore"):
-            evaluated = has_prev & (dtt > 0) & (dtt <= s.gap_limit) & np.isfinite(rc[tail])
-        # the sd at the previous row (of the samples up to it)
-        j = np.arange(k, n) - 1
-        sd = np.full(n - k, np.nan)
-        has = j >= 0
-        if has.any():
-            a, b = _bounds(tn, tn[j[has]], _ns(s.roc_window), 0)
-            sd[has] = _rolling_std(np.where(ok, rc, np.nan), a, b, 10)
-        limit = np.maximum(np.nan_to_num(s.roc_n_dev * sd, nan=0.0), s.roc_floor)
-        roc[evaluated] = PASS
-        with np.errstate(invalid="ignore"):
-            roc[evaluated & (np.abs(dv) > limit)] = SUSPECT
-    out["roc"] = roc
+    roc = _kept(memo, "roc", n, k, keep)
+    todo = np.flatnonzero(roc == -1) + k
+    if len(todo):
+        roc[todo - k] = _roc_rows(rc, t, tn, ok, todo, s)
+    out["roc"] = _remember(memo, "roc", roc, n, k)
 
-    # 8 flat line, on the level
-    flat = np.full(n - k, PASS, dtype=np.int8)
-    for duration, code in ((s.flat_suspect_after, SUSPECT), (s.flat_fail_after, FAIL)):
-        if n - k == 0:
-            break
-        a, b = _bounds(tn, at, _ns(duration), 0, lo_closed=True)
-        vmax, vmin = _rolling_extremes(v, a, b, 2)
-        tt = t[tail]
-        first = np.searchsorted(t, tt - duration, side="left")
-        exact = t[np.minimum(first, n - 1)] == tt - duration
-        before = t[np.maximum(first - 1, 0)]
-        covered = exact | ((first > 0) & (before >= tt - duration - s.gap_limit))
-        with np.errstate(invalid="ignore"):
-            is_flat = (vmax - v[tail] < s.flat_tolerance) & (v[tail] - vmin < s.flat_tolerance) & covered
-        flat[is_flat] = code
-    flat[~finite[tail]] = NOT_EVALUATED
-    out["flat"] = flat
+    # 8 flat line, on the level (its windows hold values only: every row kept)
+    flat = _kept(memo, "flat", n, k, len(memo.ok) if memo is not None and keep else 0)
+    todo = np.flatnonzero(flat == -1) + k
+    if len(todo):
+        flat[todo - k] = _flat_rows(v, t, tn, todo, s)
+    out["flat"] = _remember(memo, "flat", flat, n, k)
 
-    # 11 (neighbour) against the co-located sensor
-    multi = np.full(n - k, NOT_EVALUATED, dtype=np.int8)
-    if other is not None and not other.dropna().empty and n - k:
-        dm = difference_at(level.iloc[tail], other, s.gap_limit)
-        okm = np.isfinite(dm)
-        multi[okm] = PASS
-        multi[okm & (np.abs(dm) > s.multi_suspect)] = SUSPECT
-    out["multi"] = multi
+    # 11 (neighbour) against the co-located sensor: by the caller
+    out["multi"] = np.full(n - k, NOT_EVALUATED, dtype=np.int8)
 
     # 10 attenuated signal: observed range over the last tidal day against the predicted
     atten = np.full(n - k, NOT_EVALUATED, dtype=np.int8)
     if p is not None and n and n - k:
-        oka = np.isfinite(v) & np.isfinite(p) & ~bad
-        a, b = _bounds(tn, at, _ns(s.atten_window), 0)
-        ohi, olo = _rolling_extremes(np.where(oka, v, np.nan), a, b, 2)
-        phi, plo = _rolling_extremes(np.where(oka, p, np.nan), a, b, 2)
-        csum = np.concatenate([[0], np.cumsum(oka)])
-        count = (csum[b] - csum[a]).astype(float)
+        obs_range, pred_range, count = _atten_ranges(v, p, bad, tn, k, s, memo, keep)
         step = float(np.median(np.diff(t))) if n > 1 else s.atten_window
         span_ok = (t[tail] - t[0]) >= s.atten_window - step
         covered = span_ok & (count * step >= 0.8 * s.atten_window)
         with np.errstate(invalid="ignore", divide="ignore"):
-            pred_range = phi - plo
-            ratio = (ohi - olo) / pred_range
+            ratio = obs_range / pred_range
             ev = covered & np.isfinite(ratio) & (pred_range >= s.atten_min_range) & finite[tail]
             atten[ev] = PASS
             atten[ev & (ratio < s.atten_suspect)] = SUSPECT
@@ -1238,21 +1275,294 @@ def _tail(level: pd.Series, s: QcSettings, predicted: Any, other: pd.Series | No
     out["atten"] = atten
 
     # residual outlier: departure from the centred median against the centred noise
-    out["resid"] = _resid_tail(rc, t, tn, ok, k, s)
+    out["resid"] = _resid_tail(rc, t, tn, ok, k, s, memo, keep)
+    if memo is not None:
+        memo.ok = ok
 
     missing = out["syntax"] == MISSING
-    table = np.column_stack([np.where(missing & (c != "syntax"), NOT_EVALUATED, out[c]).astype(np.int8)
-                             for c in TESTS]) if n - k else np.zeros((0, len(TESTS)), np.int8)
-    frame = pd.DataFrame(table, index=level.index[tail], columns=list(TESTS))
-    frame["flag"] = _aggregate(table)
-    if other is not None:
-        frame = confirm_tail(frame, level, r, other, s, k)
-    return frame
+    if n - k == 0:
+        return np.zeros((0, len(TESTS)), np.int8)
+    return np.column_stack([np.where(missing & (c != "syntax"), NOT_EVALUATED, out[c]).astype(np.int8)
+                            for c in TESTS])
 
 
-def _resid_tail(rc: np.ndarray, t: np.ndarray, tn: np.ndarray, ok: np.ndarray, k: int, s: QcSettings) -> np.ndarray:
+def _spike_all(rc: np.ndarray, t: np.ndarray, s: QcSettings, memo: "ResidMemo | None") -> np.ndarray:
+    """:func:`spike_flags` over the whole record; with a memo, only the rows whose
+    neighbours changed are evaluated: those within three rows (and three finite rows) of
+    the newest rows held before, and of the record's first row when it lost rows."""
+    n = len(rc)
+    held = None if memo is None else memo.spike
+    if held is None or len(held) > n or len(held) < 8:
+        sp = spike_flags(rc, t, s.spike_suspect, s.spike_fail, s.gap_limit, s.jump_ratio)
+    else:
+        m = len(held)
+        fin = np.flatnonzero(np.isfinite(rc))
+        old = fin[fin < m]
+        # a row's flag depends on two rows either side and on two finite rows before and one after
+        last = min(m - 3, int(old[-2]) if len(old) >= 2 else 0)
+        first = 0
+        if memo.lost:  # the record lost rows at its front: its first rows lost neighbours
+            first = max(3, int(fin[2]) + 1) if len(fin) > 2 else n
+        if first + 8 >= last:
+            sp = spike_flags(rc, t, s.spike_suspect, s.spike_fail, s.gap_limit, s.jump_ratio)
+        else:
+            sp = held.copy() if m == n else np.concatenate([held, np.zeros(n - m, dtype=held.dtype)])
+            if first:
+                end = max(first + 3, int(fin[4]) + 1 if len(fin) > 4 else n)
+                sp[:first] = spike_flags(rc[:end], t[:end], s.spike_suspect, s.spike_fail, s.gap_limit,
+                                         s.jump_ratio)[:first]
+            prior = fin[fin < last]
+            start = max(0, min(last - 3, int(prior[-3]) if len(prior) >= 3 else 0))
+            sp[last:] = spike_flags(rc[start:], t[start:], s.spike_suspect, s.spike_fail, s.gap_limit,
+                                    s.jump_ratio)[last - start:]
+    if memo is not None:
+        memo.spike, memo.lost = sp, False
+    return sp
+
+
+def _roc_rows(rc: np.ndarray, t: np.ndarray, tn: np.ndarray, ok: np.ndarray, rows: np.ndarray,
+              s: QcSettings) -> np.ndarray:
+    """The rate-of-change flags at ``rows``: the change from the last usable sample before
+    each against the sd of the usable residual over the window up to that sample's
+    predecessor."""
+    n = len(rc)
+    out = np.full(len(rows), NOT_EVALUATED, dtype=np.int8)
+    if n < 2:
+        return out
+    if len(rows) <= _FEW:
+        return _roc_few(rc, t, tn, ok, rows, s)
+    pos = np.where(ok, np.arange(n), -1)
+    last = np.maximum.accumulate(pos)
+    prev = np.concatenate([[-1], last[:-1]])[rows]
+    has_prev = prev >= 0
+    pi = np.where(has_prev, prev, 0)
+    dv = rc[rows] - rc[pi]
+    dtt = t[rows] - t[pi]
+    with np.errstate(invalid="ignore"):
+        evaluated = has_prev & (dtt > 0) & (dtt <= s.gap_limit) & np.isfinite(rc[rows])
+    # the sd at the previous row (of the samples up to it)
+    j = rows - 1
+    sd = np.full(len(rows), np.nan)
+    has = j >= 0
+    if has.any():
+        a, b = _bounds(tn, tn[j[has]], _ns(s.roc_window), 0)
+        sd[has] = _rolling_std(np.where(ok, rc, np.nan), a, b, 10)
+    limit = np.maximum(np.fmax(s.roc_n_dev * sd, 0.0), s.roc_floor)  # NaN: the floor
+    out[evaluated] = PASS
+    with np.errstate(invalid="ignore"):
+        out[evaluated & (np.abs(dv) > limit)] = SUSPECT
+    return out
+
+
+_FEW = 4  # rows a steady pass recomputes: each on its own, not with whole-record arrays
+
+
+def _roc_few(rc: np.ndarray, t: np.ndarray, tn: np.ndarray, ok: np.ndarray, rows: np.ndarray,
+             s: QcSettings) -> np.ndarray:
+    """:func:`_roc_rows` at a few rows, each from its own window (the sd by numpy's two-pass
+    formula: equal to the window sums' to rounding)."""
+    out = np.full(len(rows), NOT_EVALUATED, dtype=np.int8)
+    width = _ns(s.roc_window)
+    for i, row in enumerate(rows.tolist()):
+        usable = np.flatnonzero(ok[:row])
+        if not len(usable) or row == 0:
+            continue
+        prev = int(usable[-1])
+        dtt = t[row] - t[prev]
+        if not (0 < dtt <= s.gap_limit and np.isfinite(rc[row])):
+            continue
+        a = int(np.searchsorted(tn, tn[row - 1] - width, side="right"))
+        w = rc[a:row][ok[a:row]]
+        sd = float(np.std(w, ddof=1)) if len(w) >= 10 else math.nan
+        limit = max(s.roc_n_dev * sd if math.isfinite(sd) else 0.0, s.roc_floor)
+        out[i] = SUSPECT if abs(rc[row] - rc[prev]) > limit else PASS
+    return out
+
+
+def _flat_rows(v: np.ndarray, t: np.ndarray, tn: np.ndarray, rows: np.ndarray, s: QcSettings) -> np.ndarray:
+    """The flat-line flags at ``rows``."""
+    n = len(v)
+    out = np.full(len(rows), PASS, dtype=np.int8)
+    tt, vt = t[rows], v[rows]
+    for duration, code in ((s.flat_suspect_after, SUSPECT), (s.flat_fail_after, FAIL)):
+        a, b = _bounds(tn, tn[rows], _ns(duration), 0, lo_closed=True)
+        vmax, vmin = _rolling_extremes(v, a, b, 2)
+        first = np.searchsorted(t, tt - duration, side="left")
+        exact = t[np.minimum(first, n - 1)] == tt - duration
+        before = t[np.maximum(first - 1, 0)]
+        covered = exact | ((first > 0) & (before >= tt - duration - s.gap_limit))
+        with np.errstate(invalid="ignore"):
+            is_flat = (vmax - vt < s.flat_tolerance) & (vt - vmin < s.flat_tolerance) & covered
+        out[is_flat] = code
+    out[~np.isfinite(vt)] = NOT_EVALUATED
+    return out
+
+
+def _atten_ranges(v: np.ndarray, p: np.ndarray, bad: np.ndarray, tn: np.ndarray, k: int, s: QcSettings,
+                  memo: "ResidMemo | None", keep: int) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Observed and predicted range [m] and the usable samples counted over each tail row's
+    attenuation window (``(t - atten_window, t]``); rows before ``keep`` from the memo."""
+    n = len(v)
+    got = [_kept(memo, name, n, k, keep, float) for name in ("a_obs", "a_pred", "a_count")]
+    todo = np.flatnonzero(np.isnan(got[2])) + k
+    if 0 < len(todo) <= _FEW:  # each window on its own
+        a, b = _bounds(tn, tn[todo], _ns(s.atten_window), 0)
+        for row, ai, bi in zip(todo.tolist(), a.tolist(), b.tolist()):
+            oka = np.isfinite(v[ai:bi]) & np.isfinite(p[ai:bi]) & ~bad[ai:bi]
+            count = int(np.count_nonzero(oka))
+            got[2][row - k] = float(count)
+            if count >= 2:
+                ov, pv = v[ai:bi][oka], p[ai:bi][oka]
+                got[0][row - k] = ov.max() - ov.min()
+                got[1][row - k] = pv.max() - pv.min()
+    elif len(todo):
+        oka = np.isfinite(v) & np.isfinite(p) & ~bad
+        a, b = _bounds(tn, tn[todo], _ns(s.atten_window), 0)
+        ohi, olo = _rolling_extremes(np.where(oka, v, np.nan), a, b, 2)
+        phi, plo = _rolling_extremes(np.where(oka, p, np.nan), a, b, 2)
+        csum = np.concatenate([[0], np.cumsum(oka)])
+        got[0][todo - k], got[1][todo - k] = ohi - olo, phi - plo
+        got[2][todo - k] = (csum[b] - csum[a]).astype(float)
+    return tuple(_remember(memo, name, g, n, k) for name, g in zip(("a_obs", "a_pred", "a_count"), got))
+
+
+def _kept(memo: "ResidMemo | None", name: str, n: int, k: int, keep: int, kind: type = np.int8) -> np.ndarray:
+    """Rows ``k:`` of a memo's per-row array, those from ``keep`` on (and any never
+    computed) marked to do: -1 for flags, NaN for values."""
+    blank = -1 if kind is np.int8 else np.nan
+    out = np.full(n - k, blank, dtype=kind)
+    if memo is not None and name in memo.rows:
+        k0, have = memo.rows[name]  # rows k0, k0 + 1, ... as at the last call
+        lo, hi = max(k, k0), min(keep, k0 + len(have), n)
+        if hi > lo:
+            out[lo - k:hi - k] = have[lo - k0:hi - k0]
+    return out
+
+
+def _remember(memo: "ResidMemo | None", name: str, tail: np.ndarray, n: int, k: int) -> np.ndarray:
+    """Keep rows ``k:`` of a per-row array in the memo (rows before ``k`` are not needed
+    again: the tail only moves forward while the memo lives)."""
+    if memo is not None:
+        memo.rows[name] = (k, tail.copy())
+    return tail
+
+
+class ResidMemo:
+    """What :func:`tail_table` keeps between calls on a record that grows at its end (and
+    loses rows at its front): which rows the windows could use at the last call, each row's
+    departure from its centred median (the residual outlier test), and the per-row results
+    of the tests whose windows look back only (rate of change, flat line, attenuation
+    ranges). A row's result is kept while no row of its windows changed: rows before the
+    first row whose usability changed or that is new (for the flat line, whose windows hold
+    values only, every row held before).
+
+    The caller drops the front with :meth:`drop`; :func:`tail_table` does the rest.
+    """
+
+    def __init__(self) -> None:
+        self.d = np.empty(0)              # departures [m], NaN where not computed
+        self.ok = np.empty(0, dtype=bool)  # the rows the windows could use, at the last call
+        self.start = 0                    # departures valid from this row on
+        self.rows: dict[str, tuple] = {}  # test -> (first row, per-row results of the rows judged)
+        self.dropped = False              # whether the record has lost rows at its front
+        self.lost = False                 # ... since the last call
+        self.spike: np.ndarray | None = None  # spike flags of every row at the last call
+
+    def drop(self, rows: int) -> None:
+        """Forget the first ``rows`` rows (the record lost them at its front)."""
+        if rows:
+            self.dropped = self.lost = True
+            if self.spike is not None:
+                self.spike = self.spike[rows:]
+            self.d, self.ok = self.d[rows:], self.ok[rows:]
+            self.start = max(self.start - rows, 0)
+            self.rows = {name: (k0 - rows, a) for name, (k0, a) in self.rows.items()}
+
+    def keep_rows_from(self, row: int) -> None:
+        """Forget the per-row results of rows before ``row`` (no later call judges them)."""
+        for name, (k0, a) in list(self.rows.items()):
+            if row > k0:
+                self.rows[name] = (row, a[row - k0:].copy())
+
+    def unchanged_rows(self, ok: np.ndarray) -> int:
+        """How many leading rows are as at the last call: up to the first row whose
+        usability changed, or the first new one (0 when the memo does not fit)."""
+        m = len(self.ok)
+        if m > len(ok):
+            return 0
+        changed = np.flatnonzero(self.ok != ok[:m])
+        return int(changed[0]) if changed.size else m
+
+
+def _sliding_median(values: np.ndarray, a: np.ndarray, b: np.ndarray, min_periods: int) -> np.ndarray:
+    """:func:`_rolling_median` for windows ``[a_i, b_i)`` whose ends never move back, kept
+    as one sorted list slid along (each value enters and leaves it once)."""
+    out = np.full(len(a), np.nan)
+    if len(a) == 0:
+        return out
+    base = int(a[0])  # the windows' span only: a and b never move back
+    values = values[base:int(b[-1])]
+    vals = values.tolist()
+    finite = np.isfinite(values)
+    fin = finite.tolist()
+    lo = hi = -1
+    win: list[float] = []
+    for i, (ai, bi) in enumerate(zip((a - base).tolist(), (b - base).tolist())):
+        if ai >= hi:  # no overlap with the window before: sort afresh
+            win = np.sort(values[ai:bi][finite[ai:bi]]).tolist()
+            hi = bi
+        else:
+            for j in range(hi, bi):
+                if fin[j]:
+                    _bisect.insort(win, vals[j])
+            hi = max(hi, bi)
+            for j in range(lo, ai):
+                if fin[j]:
+                    del win[_bisect.bisect_left(win, vals[j])]
+        lo = ai
+        c = len(win)
+        if c >= min_periods and c:
+            out[i] = (win[(c - 1) // 2] + win[c // 2]) / 2
+    return out
+
+
+def _monotone(a: np.ndarray, b: np.ndarray) -> bool:
+    return bool(np.all(np.diff(a) >= 0) and np.all(np.diff(b) >= 0) and np.all(b >= a))
+
+
+def _departures(rc: np.ndarray, clean: np.ndarray, tn: np.ndarray, j0: int, half: int,
+                memo: ResidMemo | None, keep: int) -> np.ndarray:
+    """``rc - median(clean over the centred window)`` at rows ``j0:`` (NaN before), from the
+    memo where no row of a window changed since it was computed (``keep``: see
+    :meth:`ResidMemo.unchanged_rows`)."""
+    n = len(rc)
+    d = np.full(n, np.nan)
+    first = j0
+    # a window reaching the first row may have held rows the record has since lost
+    front = int(np.searchsorted(tn, tn[0] + half, side="left")) if n else 0
+    if memo is not None and len(memo.ok) <= n and memo.start <= j0 and j0 >= front:
+        m = len(memo.ok)
+        c0 = keep
+        if c0 < n:
+            # rows whose window reaches a changed or a new row (the window is (t - half, t + half])
+            first = max(j0, int(np.searchsorted(tn, tn[c0] - half, side="left")) - 1)
+        else:
+            first = n
+        first = min(first, m)
+        d[j0:first] = memo.d[j0:first]
+    rows = np.arange(first, n)
+    if len(rows):
+        a, b = _bounds(tn, tn[rows], half, half)
+        d[rows] = rc[rows] - _rolling_median(clean, a, b, 5)
+    if memo is not None:
+        memo.d, memo.start = d, j0
+    return d
+
+
+def _resid_tail(rc: np.ndarray, t: np.ndarray, tn: np.ndarray, ok: np.ndarray, k: int, s: QcSettings,
+                memo: ResidMemo | None = None, keep: int = 0) -> np.ndarray:
     """:func:`monitor.quality.checks.residual_outlier_test` at rows ``k:`` (``rc`` with gross failures
-    as NaN, ``ok`` the samples its windows may use)."""
+    as NaN, ``ok`` the samples its windows may use; ``memo`` see :class:`ResidMemo`)."""
     n = len(rc)
     flags = np.full(n - k, NOT_EVALUATED, dtype=np.int8)
     if n - k == 0:
@@ -1266,16 +1576,15 @@ def _resid_tail(rc: np.ndarray, t: np.ndarray, tn: np.ndarray, ok: np.ndarray, k
     # rows whose departure enters the noise window of a row judged
     j0 = max(0, int(np.searchsorted(tn, tn[e0] - half_noise, side="left")) - 1)
     clean = np.where(ok, rc, np.nan)
-    rows = np.arange(j0, n)
-    a, b = _bounds(tn, tn[rows], half, half)
-    med = _rolling_median(clean, a, b, 5)
-    d = np.full(n, np.nan)
-    d[rows] = rc[rows] - med
+    d = _departures(rc, clean, tn, j0, half, memo, keep)
     absd = np.where(ok, np.abs(d), np.nan)
     ev_rows = np.arange(e0, n)
     a, b = _bounds(tn, tn[ev_rows], half_noise, half_noise)
     sigma = np.full(n, np.nan)
-    sigma[ev_rows] = 1.4826 * _rolling_median(absd, a, b, 10)
+    if memo is not None and _monotone(a, b):
+        sigma[ev_rows] = 1.4826 * _sliding_median(absd, a, b, 10)
+    else:
+        sigma[ev_rows] = 1.4826 * _rolling_median(absd, a, b, 10)
     full = np.full(n, NOT_EVALUATED, dtype=np.int8)
     ev = np.isfinite(d) & np.isfinite(sigma)
     full[ev] = PASS
@@ -1294,15 +1603,33 @@ def confirm_tail(frame: pd.DataFrame, level: pd.Series, r: np.ndarray, other: pd
     """:func:`monitor.quality.checks._confirm` at rows ``k:``: ``frame`` holds those rows' tests,
     ``level`` and ``r`` (level minus prediction [m]) the whole record, ``other`` the other
     sensor's levels that may confirm a jump (within reach of the rows ``k:`` at least)."""
-    n = len(level)
     if other is None:
         return frame
-    t = utc_index(level.index).as_unit("ns").asi8 / 1e9
-    if other.dropna().empty or n < 3:
+    other = other.dropna()
+    table = frame[list(TESTS)].to_numpy(dtype=np.int8)
+    confirmed = confirm_on_arrays(table, index_seconds(level.index), level.to_numpy(dtype=float), r,
+                                  index_seconds(other.index), other.to_numpy(dtype=float), s, k)
+    if confirmed is table:
         return frame
+    frame = frame.copy()
+    frame["spike"] = confirmed[:, _COL["spike"]]
+    frame["flag"] = aggregate_flags(frame)
+    return frame
+
+
+def confirm_on_arrays(table: np.ndarray, t: np.ndarray, v: np.ndarray, r: np.ndarray, to: np.ndarray,
+                      vo: np.ndarray, s: QcSettings, k: int) -> np.ndarray:
+    """:func:`confirm_tail` on plain arrays: ``table`` the tests of rows ``k:`` (columns
+    :data:`TESTS`), ``t`` [s], ``v`` and ``r`` (level, level minus prediction [m]) the whole
+    record, ``to``, ``vo`` the other sensor's samples that may confirm a jump (no NaN).
+    Returns ``table`` itself when nothing changes, else a copy with the confirmed jumps
+    suspect."""
+    n = len(v)
+    if len(to) == 0 or n < 3:
+        return table
     # difference and its curvature one row either side of the tail
     j0 = max(0, k - 1)
-    dd = difference_at(level.iloc[j0:], other, s.gap_limit)
+    dd = difference_on_arrays(t[j0:], v[j0:], to, vo, s.gap_limit)
     curv = np.full(len(dd), np.nan)
     curv[1:-1] = dd[1:-1] - 0.5 * (dd[:-2] + dd[2:])
     step = np.concatenate([[np.nan], np.diff(dd)])
@@ -1310,24 +1637,20 @@ def confirm_tail(frame: pd.DataFrame, level: pd.Series, r: np.ndarray, other: pd
         same = np.isfinite(curv) & np.isfinite(step) & (np.abs(curv) < s.spike_suspect) & \
             (np.abs(step) < s.spike_suspect)
     same = same[k - j0:]
-    if not same.any():
-        return frame
-    gross = frame["gross"].to_numpy()
-    rc = r.copy()
-    rc[k:][gross == FAIL] = np.nan
+    f = table[:, _COL["spike"]]
+    if not (same & (f == FAIL)).any():
+        return table
+    rc = np.array(r, dtype=float)
+    rc[k:][table[:, _COL["gross"]] == FAIL] = np.nan
     # gross failures before the tail: recomputed (they are per sample)
-    v = level.to_numpy(dtype=float)
     rc[:k][(v[:k] < s.gross_fail_min) | (v[:k] > s.gross_fail_max)] = np.nan
     jumped = jump_flags(rc, t, s.spike_fail, s.jump_ratio, s.gap_limit)[k:]
-    f = frame["spike"].to_numpy().copy()
     real = same & jumped & (f == FAIL)
     if not real.any():
-        return frame
-    frame = frame.copy()
-    f[real] = SUSPECT
-    frame["spike"] = f.astype(np.int8)
-    frame["flag"] = aggregate_flags(frame)
-    return frame
+        return table
+    table = table.copy()
+    table[real, _COL["spike"]] = SUSPECT
+    return table
 
 
 # --------------------------------------------------------------------------- store glue
@@ -1462,7 +1785,7 @@ def _predict(model: Any, index: pd.DatetimeIndex) -> np.ndarray | None:
 
 
 def run_station_qc(store: Any, station_cfg: Any, settings: QcSettings | None, start_t: float, end_t: float,
-                   model: Any = None, now: float | None = None) -> dict[str, pd.DataFrame]:
+                   model: Any = None, now: float | None = None, context: Any = None) -> dict[str, Any]:
     """Run every test for a station's level sensors over ``[start_t, end_t]`` and store
     the results.
 
@@ -1489,11 +1812,18 @@ def run_station_qc(store: Any, station_cfg: Any, settings: QcSettings | None, st
         the level itself.
     now : float, optional
         Processing time [Unix s]; defaults to the wall clock.
+    context : monitor.quality.context.QcContext, optional
+        The station's context kept between passes (the daemon's): only rows newer than
+        those it holds are read, and the same flags are written. ``start_t`` must then be
+        no later than the earliest row stored since the previous pass.
 
     Returns
     -------
-    dict sensor -> DataFrame of the written rows (tests, ``flag`` after overrides).
+    dict sensor -> DataFrame of the written rows (tests, ``flag`` after overrides); with a
+    ``context``, sensor -> :class:`monitor.quality.context.QcRows` (the same rows as arrays).
     """
+    if context is not None:
+        return context.run(store, station_cfg, settings, start_t, end_t, model, now)
     s = settings or QcSettings()
     db = _db(store)
     ensure_qc_schema(db)
@@ -1559,7 +1889,6 @@ def _write(db: Any, station: str, sensor: str, part: pd.DataFrame, stored: np.nd
     conn = db.conn
     t = (index_seconds(part.index)).round().astype(np.int64)
     tests = np.column_stack([part[c].to_numpy(dtype=np.int64) for c in TESTS])  # (n, tests)
-    names = ", ".join(TESTS)
     # Compare packed rows (4 bits per flag; QARTOD flags are 1..9) so the read of the
     # stored rows moves two integers per sample, not ten.  A NULL packs to NULL and is
     # rewritten.
@@ -1577,13 +1906,40 @@ def _write(db: Any, station: str, sensor: str, part: pd.DataFrame, stored: np.nd
     changed = np.ones(len(new), bool) if stored is None else (np.asarray(stored) != new)
     if not todo.any() and not changed.any():
         return
-    rows = zip(_repeat(station), _repeat(sensor), t[todo].tolist(), *(tests[todo, j].tolist() for j in range(len(TESTS))))
-    flags = zip(new[changed].tolist(), _repeat(station), _repeat(sensor), t[changed].tolist())
+    write_rows(db, station, sensor, t[todo], tests[todo], t[changed], new[changed], edit=True)
+
+
+#: The store's meta key raised by every write of flags that a daemon's in-memory context
+#: did not make (:func:`set_override`, a pass without a context): see monitor.quality.context.
+EDITS_KEY = "qc.edits"
+
+
+def write_rows(db: Any, station: str, sensor: str, t_tests: np.ndarray, tests: np.ndarray, t_flags: np.ndarray,
+               flags: np.ndarray, edit: bool = False) -> None:
+    """In one transaction, store ``qc_tests`` rows (``tests``: one column per test of
+    :data:`TESTS`) at ``t_tests`` and ``observations.flag`` at ``t_flags`` [Unix s];
+    with ``edit`` raise the store's :data:`EDITS_KEY` too."""
+    conn = _db(db).conn
+    names = ", ".join(TESTS)
+    tests = np.asarray(tests, dtype=np.int64)
+    rows = zip(_repeat(station), _repeat(sensor), np.asarray(t_tests, dtype=np.int64).tolist(),
+               *(tests[:, j].tolist() for j in range(len(TESTS))))
+    fl = zip(np.asarray(flags).tolist(), _repeat(station), _repeat(sensor), np.asarray(t_flags, dtype=np.int64).tolist())
     marks = ", ".join("?" * len(TESTS))
     with transaction(conn):
         conn.executemany(
             f"INSERT OR REPLACE INTO qc_tests (station, sensor, t, {names}) VALUES (?, ?, ?, {marks})", rows)
-        conn.executemany("UPDATE observations SET flag = ? WHERE station = ? AND sensor = ? AND t = ?", flags)
+        conn.executemany("UPDATE observations SET flag = ? WHERE station = ? AND sensor = ? AND t = ?", fl)
+        if edit:
+            note_edit(conn)
+
+
+def note_edit(conn: Any) -> None:
+    """Raise the store's :data:`EDITS_KEY` (inside the caller's transaction; a bare database
+    without the store's ``meta`` table has none)."""
+    if conn.execute("SELECT 1 FROM sqlite_master WHERE type = 'table' AND name = 'meta'").fetchone():
+        conn.execute("INSERT INTO meta(key, value) VALUES (?, '1') ON CONFLICT(key) DO UPDATE SET "
+                     "value = CAST(value AS INTEGER) + 1", (EDITS_KEY,))
 
 
 def set_override(store: Any, station: str, sensor: str, start_t: float, end_t: float | None, flag: int,
@@ -1628,6 +1984,7 @@ def set_override(store: Any, station: str, sensor: str, start_t: float, end_t: f
             [(station, sensor, t, int(flag), who, why, stamp) for t in ts])
         conn.execute("UPDATE observations SET flag = ? WHERE station = ? AND sensor = ? AND t BETWEEN ? AND ?",
                      (int(flag), station, sensor, lo, hi))
+        note_edit(conn)
     return len(ts)
 
 

@@ -53,6 +53,7 @@ from monitor.errors import ConfigError, MonitorError
 from monitor.feeds.parse import parse_lines
 from monitor.quality import checks as qc
 from monitor.quality import diagnostics
+from monitor.quality.context import QcContext
 from monitor.quality.checks import QcSettings
 from monitor.service.config import Config, SensorConfig, StationConfig, unsendable
 from monitor.service.constants import load_model, model_from_text, model_to_text
@@ -368,6 +369,7 @@ class StationRuntime:
     diag_phase: float = 0.0         # fraction of daemon.diagnostics_minutes this station's runs are offset by
     diag: dict = field(default_factory=dict)  # their results: "drift", "clock.primary", ...
     predicted: "PredictionMemo | None" = field(default=None, repr=False)
+    qc_context: QcContext = field(default_factory=QcContext, repr=False)  # QC's record between passes
     _extremes: "Frozen | None" = field(default=None, repr=False)
     turns: "TideTurns | None" = field(default=None, repr=False)  # the extremes as arrays
     # The station's derived rows of the last hours, as the store holds them, for the
@@ -824,7 +826,8 @@ class Daemon:
         # 1. quality control (writes per-test flags and observations.flag). If it fails, the
         # window fails and is retried on the next pass: samples nobody has checked must never
         # reach the alert rules (a spike would pass as "not evaluated").
-        qc_results = self.qc.run_station_qc(store, st, st.qc, start_t, end_t, predicted, now=now) or {}
+        qc_results = self.qc.run_station_qc(store, st, st.qc, start_t, end_t, predicted, now=now,
+                                            context=rt.qc_context) or {}
 
         # 2.-4. residual into ``derived``, skew surges, forecasts: in memory in the steady
         # state, the full way otherwise
@@ -1057,7 +1060,9 @@ class Daemon:
             try:
                 flat = {}
                 for sn, part in (qc_results or {}).items():
-                    if "flat" in getattr(part, "columns", ()):
+                    if hasattr(part, "flat_since"):  # monitor.quality.context.QcRows
+                        flat[sn] = part.flat_since()
+                    elif "flat" in getattr(part, "columns", ()):
                         flat[sn] = self.diag.flat_since(part["flat"])
                 faults = self.diag.equipment_faults(now, st.qc, station=st.id, last_sample=last, flat=flat)
             except Exception:

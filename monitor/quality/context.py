@@ -1,0 +1,372 @@
+"""A station's quality-control context kept in memory between processing passes.
+
+:func:`monitor.quality.checks.run_station_qc` judges a window's samples against the 25 h
+of record before them. Read from the store at every pass, that context cost most of a
+station's steady-state pass. :class:`QcContext` keeps it (per level sensor: times, values,
+stored flags, the predicted tide, the flags last written and the residual outlier test's
+departures, :class:`monitor.quality.checks.ResidMemo`) and reads only the rows newer than
+the last one held. The flags are those of the pass without a context, equal to a run over
+the whole record (``tests/test_qc_context.py``).
+
+The context is rebuilt from the store, as a pass without one reads it, on any sign that
+it may not hold what the store holds: the first pass, a window that does not start just
+after the last one (late rows or a backfill lower the daemon's processing mark; a failed
+pass is retried), a new row more than ``gap_limit`` after the last one held, more new
+rows than a steady pass brings, other settings, another model, position, sensors or
+store connection, or a change of the technician's overrides or of the stored flags by
+another writer (the store's ``qc.edits`` meta value, raised by
+:func:`monitor.quality.checks.set_override` and by every pass without a context, and the
+overrides table's largest row id). An error inside a pass forgets the context.
+"""
+from __future__ import annotations
+
+import math
+import time as _time
+from typing import Any
+
+import numpy as np
+import pandas as pd
+
+from monitor.quality import checks as _qc
+from monitor.quality.checks import FAIL, MISSING, NOT_EVALUATED, TESTS, QcSettings
+
+_COL = {c: i for i, c in enumerate(TESTS)}
+_PACK = 16 ** np.arange(len(TESTS), dtype=np.int64)  # 4 bits per flag (QARTOD flags are 1..9)
+_NOT_SHAPE = np.array([c not in ("spike", "resid") for c in TESTS])
+#: New rows per sensor a pass takes from the context; more (a backfill) rebuild it.
+STEADY_ROWS_MAX = 120
+
+
+class QcRows:
+    """The rows a pass wrote for one sensor, as plain arrays.
+
+    Attributes
+    ----------
+    t : array of int64
+        Times [Unix s, UTC].
+    tests : array of int8, shape (n, len(TESTS))
+        One QARTOD flag per test of :data:`monitor.quality.checks.TESTS`.
+    flag : array of int8
+        The aggregate flag after the technician's overrides.
+    """
+
+    def __init__(self, t: np.ndarray, tests: np.ndarray, flag: np.ndarray):
+        self.t, self.tests, self.flag = t, tests, flag
+
+    def __len__(self) -> int:
+        return len(self.t)
+
+    def column(self, test: str) -> np.ndarray:
+        """One test's flags [int8]."""
+        return self.tests[:, _COL[test]]
+
+    def flat_since(self, at_least: int = FAIL) -> float | None:
+        """Start [Unix s] of the flat-line run (flagged ``at_least`` or worse) that the last
+        row ends, or None (as :func:`monitor.quality.diagnostics.flat_since`)."""
+        f = self.column("flat")
+        if not len(f) or f[-1] < at_least:
+            return None
+        below = np.flatnonzero(f < at_least)
+        return float(self.t[below[-1] + 1 if below.size else 0])
+
+    def frame(self) -> pd.DataFrame:
+        """The rows as :func:`monitor.quality.checks.run_station_qc` returns them without a
+        context: one column per test and ``flag``, indexed by UTC time."""
+        idx = pd.DatetimeIndex(pd.to_datetime(self.t, unit="s", utc=True), name="time")
+        out = pd.DataFrame(self.tests, index=idx, columns=list(TESTS))
+        out["flag"] = self.flag
+        return out
+
+
+class _Sensor:
+    """One level sensor's rows held: from the context's start to the last row read."""
+
+    def __init__(self, t: np.ndarray, v: np.ndarray, flag: np.ndarray, p: np.ndarray | None):
+        self.t = t          # [Unix s] int64, sorted, unique
+        self.v = v          # [m], NaN where missing
+        self.flag = flag    # observations.flag as stored (NULL read as 2)
+        self.p = p          # predicted tide [m] or None
+        # the qc_tests rows as stored (packed; -1 unknown) of rows packed_at, packed_at + 1, ...
+        self.packed = np.full(len(t), -1, dtype=np.int64)
+        self.packed_at = 0
+        self.ov_t = np.empty(0, dtype=np.int64)  # the technician's overrides from the start on
+        self.ov_f = np.empty(0, dtype=np.int8)
+        self.memo = _qc.ResidMemo()
+
+    def drop_before(self, t0: int) -> None:
+        cut = int(np.searchsorted(self.t, t0, side="left"))
+        if cut:
+            self.t, self.v, self.flag = self.t[cut:], self.v[cut:], self.flag[cut:]
+            self.packed_at -= cut
+            if self.p is not None:
+                self.p = self.p[cut:]
+            self.memo.drop(cut)
+
+    def append(self, t: np.ndarray, v: np.ndarray, flag: np.ndarray, p: np.ndarray | None) -> None:
+        self.t = np.concatenate([self.t, t])
+        self.v = np.concatenate([self.v, v])
+        self.flag = np.concatenate([self.flag, flag])
+        self.packed = np.concatenate([self.packed, np.full(len(t), -1, dtype=np.int64)])
+        if self.p is not None:
+            self.p = np.concatenate([self.p, p])
+
+    def stored(self, rows: np.ndarray) -> np.ndarray:
+        """The packed qc_tests rows held as stored at ``rows`` (-1: not known)."""
+        i = rows - self.packed_at
+        inside = (i >= 0) & (i < len(self.packed))
+        return np.where(inside, self.packed[np.clip(i, 0, max(len(self.packed) - 1, 0))], -1) \
+            if len(self.packed) else np.full(len(rows), -1, dtype=np.int64)
+
+    def keep_from(self, row: int) -> None:
+        """Forget what rows before ``row`` were written as: only a backfill or late data
+        (which rebuild the context) write them again."""
+        if row > self.packed_at:
+            self.packed = self.packed[row - self.packed_at:]
+            self.packed_at = row
+        self.memo.keep_rows_from(row)
+
+
+class QcContext:
+    """A station's quality-control context between passes (see the module's notes).
+
+    Hand the same instance to :func:`monitor.quality.checks.run_station_qc` at every pass
+    of one station (``context=``); it is valid for one store connection, station,
+    settings and model, and rebuilds itself when any of them changes.
+    """
+
+    def __init__(self) -> None:
+        self.rebuilds = 0   # passes that read their context from the store (for tests and logs)
+        self.reset()
+
+    def reset(self) -> None:
+        """Forget everything held: the next pass reads its context from the store."""
+        self.sensors: dict[str, _Sensor] = {}
+        self.key: tuple | None = None
+        self.settings: QcSettings | None = None
+        self.model: Any = None
+        self.end_t: int | None = None
+        self.edits: tuple | None = None
+        self.has_meta = False
+        self.ahead_t = np.empty(0, dtype=np.int64)  # [Unix s] times asked of the model's memo ahead
+        self.ahead_p = np.empty(0)                    # and its predictions there [m]
+
+    # ------------------------------------------------------------------ the pass
+    def run(self, store: Any, station_cfg: Any, settings: QcSettings | None, start_t: float, end_t: float,
+            model: Any = None, now: float | None = None) -> dict[str, QcRows]:
+        """:func:`monitor.quality.checks.run_station_qc` from the context (same parameters).
+
+        ``start_t`` must not be later than the earliest row stored since the previous pass
+        (the daemon's processing mark sees to it). Returns sensor -> :class:`QcRows`.
+        """
+        now = _time.time() if now is None else now
+        try:
+            return self._run(store, station_cfg, settings or QcSettings(), start_t, end_t, model, now)
+        except _qc._TooWide:
+            # windows too wide to hold as matrices (very fine sampling): the pass without a
+            # context, which takes the whole-record tests for such tails
+            self.reset()
+            done = _qc.run_station_qc(store, station_cfg, settings, start_t, end_t, model, now)
+            return {sn: QcRows(np.round(_qc.index_seconds(df.index)).astype(np.int64),
+                               df[list(TESTS)].to_numpy(dtype=np.int8), df["flag"].to_numpy(dtype=np.int8))
+                    for sn, df in done.items()}
+        except BaseException:
+            self.reset()
+            raise
+
+    def _run(self, store: Any, station_cfg: Any, s: QcSettings, start_t: float, end_t: float, model: Any,
+             now: float) -> dict[str, QcRows]:
+        db = _qc._db(store)
+        station, sensors = _qc._station_parts(station_cfg)
+        position = _qc._position(station_cfg)
+        write_from = start_t - s.resid_window
+        judge_from = write_from - 2 * s.gap_limit
+        read_from = int(math.floor(judge_from - s.context_seconds()))
+        hi = int(math.ceil(end_t))
+        key = (id(db.conn), station, tuple(sensors), position)
+        if key != self.key:
+            _qc.ensure_qc_schema(db)
+            self.has_meta = db.conn.execute(
+                "SELECT 1 FROM sqlite_master WHERE type = 'table' AND name = 'meta'").fetchone() is not None
+        edits = _edits(db, self.has_meta)
+        steady = (self.end_t is not None and start_t == self.end_t + 1 and key == self.key
+                  and edits == self.edits and model is self.model
+                  and (s is self.settings or s == self.settings)
+                  and self._advance(db, station, sensors, read_from, hi, model, s))
+        if not steady:
+            self._rebuild(db, station, sensors, read_from, hi, model, write_from)
+            self.key, self.settings, self.model = key, s, model
+        results = self._judge(db, station, s, now, position, judge_from, write_from, end_t)
+        self.end_t = int(end_t) if float(end_t).is_integer() else None
+        self.edits = edits
+        return results
+
+    def _advance(self, db: Any, station: str, sensors: list[str], read_from: int, hi: int, model: Any,
+                 s: QcSettings) -> bool:
+        """Read each sensor's rows newer than the last held and drop those before
+        ``read_from``; False when that is not a steady step (then nothing is trusted)."""
+        new = {}
+        for sn in sensors:
+            held = self.sensors.get(sn)
+            if held is None:  # a sensor without rows in the context: has it any now?
+                if len(_read(db, station, sn, read_from, hi)[0]):
+                    return False
+                continue
+            t, v, f = _read(db, station, sn, max(int(held.t[-1]) + 1, read_from), hi)
+            if len(t) > STEADY_ROWS_MAX or (len(t) and t[0] - held.t[-1] > s.gap_limit):
+                return False
+            if not len(t) and held.t[-1] < read_from:
+                return False  # every row it held leaves the context
+            new[sn] = (t, v, f)
+        for sn, (t, v, f) in new.items():
+            held = self.sensors[sn]
+            if len(t):
+                held.append(t, v, f, self._predict_new(model, t))
+            held.drop_before(read_from)
+        return True
+
+    def _predict_new(self, model: Any, t: np.ndarray) -> np.ndarray | None:
+        """The predicted tide at new rows [m]. A model that keeps what it predicts (the
+        daemon's memo, with ``forget_before``) is asked for the next :data:`AHEAD` samples'
+        times at the last step too, and those predictions are kept here: at one-minute steps
+        one model evaluation an hour, not one a pass (the memo holds the same values for the
+        residual)."""
+        if model is None or not hasattr(model, "forget_before"):
+            return _predict(model, t)
+        pos = np.searchsorted(self.ahead_t, t)
+        if len(self.ahead_t) and np.all(pos < len(self.ahead_t)) and np.array_equal(self.ahead_t[pos], t):
+            return self.ahead_p[pos]  # asked for before: the values the memo holds too
+        step = int(t[-1] - t[-2]) if len(t) > 1 else 60
+        if not 0 < step <= 3600:
+            return _predict(model, t)
+        more = int(t[-1]) + step * np.arange(1, AHEAD + 1, dtype=np.int64)
+        both = np.concatenate([t, more])
+        p = _predict(model, both)
+        self.ahead_t, self.ahead_p = both, p
+        return p[:len(t)]
+
+    def _rebuild(self, db: Any, station: str, sensors: list[str], read_from: int, hi: int, model: Any,
+                 write_from: float) -> None:
+        self.rebuilds += 1
+        self.ahead_t, self.ahead_p = np.empty(0, dtype=np.int64), np.empty(0)
+        self.sensors = {}
+        for sn in sensors:
+            t, v, f = _read(db, station, sn, read_from, hi)
+            if not len(t):
+                continue
+            held = _Sensor(t, v, f, _predict(model, t))
+            rows = db.conn.execute("SELECT t, flag FROM qc_overrides WHERE station = ? AND sensor = ? AND t >= ? "
+                                   "ORDER BY t", (station, sn, read_from)).fetchall()
+            if rows:
+                held.ov_t = np.array([r[0] for r in rows], dtype=np.int64)
+                held.ov_f = np.array([r[1] for r in rows], dtype=np.int8)
+            # the qc_tests rows stored for the rows the next pass may write
+            a = int(math.floor(write_from))
+            expr = " + ".join(f"{16 ** i} * {c}" for i, c in enumerate(TESTS))
+            stored = db.conn.execute(f"SELECT t, {expr} FROM qc_tests WHERE station = ? AND sensor = ? AND t >= ? "
+                                     f"AND t <= ?", (station, sn, a, hi)).fetchall()
+            for tq, packed in stored:
+                i = int(np.searchsorted(held.t, tq))
+                if packed is not None and i < len(held.t) and held.t[i] == tq:
+                    held.packed[i - held.packed_at] = packed
+            self.sensors[sn] = held
+
+    def _judge(self, db: Any, station: str, s: QcSettings, now: float, position: Any, judge_from: float,
+               write_from: float, end_t: float) -> dict[str, QcRows]:
+        """The tests at the rows from ``judge_from`` on, the two sensors combined as
+        :func:`monitor.quality.checks.run_station_qc` combines them; writes what changed."""
+        single = {}
+        for sn, h in self.sensors.items():
+            k = int(np.searchsorted(h.t, judge_from, side="left"))
+            table = _qc.tail_table(h.t * 1_000_000_000, h.v, h.p, s, now, position, k, h.memo)
+            single[sn] = (k, table)
+        results: dict[str, QcRows] = {}
+        for sn, h in self.sensors.items():
+            k, table = single[sn]
+            others = [o for o in self.sensors if o != sn]
+            tf = h.t.astype(float)
+            if others:
+                o = others[0]
+                ho, (ko, table_o) = self.sensors[o], single[o]
+                to, vo = ho.t[ko:].astype(float), ho.v[ko:]
+                flag_o = _qc._aggregate(table_o)
+                other_ok = np.isfinite(vo) & (flag_o != FAIL)
+                table = table.copy()
+                dm = _qc.difference_on_arrays(tf[k:], h.v[k:], to[other_ok], vo[other_ok], s.gap_limit)
+                multi = np.full(len(dm), NOT_EVALUATED, dtype=np.int8)
+                fin = np.isfinite(dm)
+                multi[fin] = _qc.PASS
+                multi[fin & (np.abs(dm) > s.multi_suspect)] = _qc.SUSPECT
+                table[:, _COL["multi"]] = np.where(table[:, _COL["syntax"]] != MISSING, multi, NOT_EVALUATED)
+                shape_only = ~(table_o[:, _NOT_SHAPE] == FAIL).any(axis=1) & np.isfinite(vo)
+                resid = h.v - h.p if h.p is not None else h.v
+                table = _qc.confirm_on_arrays(table, tf, h.v, resid, to[shape_only], vo[shape_only], s, k)
+            flag = _qc._aggregate(table)
+            tt = h.t[k:]
+            sel = (tt >= write_from) & (tt <= end_t)
+            rows = np.flatnonzero(sel) + k
+            part, flag = table[sel], flag[sel]
+            if len(h.ov_t):
+                pos = np.minimum(np.searchsorted(h.ov_t, h.t[rows]), len(h.ov_t) - 1)
+                hit = h.ov_t[pos] == h.t[rows]
+                flag = np.where(hit, h.ov_f[pos], flag).astype(np.int8)
+            self._write(db, station, sn, h, rows, part, flag)
+            results[sn] = QcRows(h.t[rows], part, flag)
+            # a steady next pass judges from one resid_window and two gap limits before its start
+            h.keep_from(int(np.searchsorted(h.t, end_t - s.resid_window - 2 * s.gap_limit - 1)))
+        return results
+
+    @staticmethod
+    def _write(db: Any, station: str, sensor: str, h: _Sensor, rows: np.ndarray, part: np.ndarray,
+               flag: np.ndarray) -> None:
+        """Write the ``qc_tests`` rows that differ from those held as stored, and
+        ``observations.flag`` where it differs from the stored flag (one transaction)."""
+        if not len(rows):
+            return
+        packed = part.astype(np.int64) @ _PACK
+        todo = h.stored(rows) != packed
+        changed = h.flag[rows] != flag
+        if not todo.any() and not changed.any():
+            return
+        t = h.t[rows]
+        _qc.write_rows(db, station, sensor, t[todo], part[todo], t[changed], flag[changed])
+        i = rows - h.packed_at
+        if i[0] < 0:  # rows before those kept (not on a steady pass): hold them again
+            h.packed = np.concatenate([np.full(-int(i[0]), -1, dtype=np.int64), h.packed])
+            h.packed_at, i = int(rows[0]), i - int(i[0])
+        h.packed[i] = packed
+        h.flag[rows] = flag
+
+
+def _edits(db: Any, has_meta: bool) -> tuple:
+    """What says that overrides or stored flags were changed by another writer."""
+    if not has_meta:
+        return tuple(db.conn.execute("SELECT max(rowid) FROM qc_overrides").fetchone())
+    return tuple(db.conn.execute(
+        "SELECT (SELECT value FROM meta WHERE key = ?), (SELECT max(rowid) FROM qc_overrides)",
+        (_qc.EDITS_KEY,)).fetchone())
+
+
+def _read(db: Any, station: str, sensor: str, lo: int, hi: int) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """A sensor's rows with ``lo <= t <= hi``: times [Unix s], values [m] (NaN for NULL),
+    stored flags (NULL read as 2)."""
+    rows = db.conn.execute("SELECT t, value, flag FROM observations WHERE station = ? AND sensor = ? "
+                           "AND t >= ? AND t <= ? ORDER BY t", (station, sensor, lo, hi)).fetchall()
+    if not rows:
+        return np.empty(0, dtype=np.int64), np.empty(0), np.empty(0, dtype=np.int16)
+    t, v, f = zip(*rows)
+    return (np.array(t, dtype=np.int64), np.array(v, dtype=float),
+            np.array([NOT_EVALUATED if x is None else x for x in f], dtype=np.int16))
+
+
+#: Samples predicted ahead, at the last step, when a memo of predictions is asked for new
+#: rows (one model evaluation an hour at one-minute steps instead of one a minute).
+AHEAD = 60
+
+
+def _predict(model: Any, t: np.ndarray) -> np.ndarray | None:
+    """The predicted tide [m] at ``t`` [Unix s], as the pass without a context asks for it."""
+    if model is None or not len(t):
+        return None if model is None else np.empty(0)
+    if callable(model) and not hasattr(model, "predict"):
+        return np.asarray(model(pd.to_datetime(t, unit="s", utc=True)), dtype=float)
+    return np.asarray(model.predict((t * 1_000_000_000).astype("datetime64[ns]")), dtype=float)

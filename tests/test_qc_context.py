@@ -1,0 +1,371 @@
+"""Quality control from the context kept in memory equals a run over the whole record.
+
+An invented station (a one-minute tide with red noise, a primary and a backup sensor) is
+streamed one sample per sensor per pass, as the daemon sees a live feed, through
+``run_station_qc(..., context=QcContext())``. The record holds lone spikes, a stuck float,
+a 20-minute gap, a one-sample step, a backup that disagrees for an hour,
+backup rows that arrive late, and a technician's override set mid-stream. After every pass
+the rows it wrote (``qc_tests`` and ``observations.flag``, read back from the store) are
+compared with a second store driven by the pass without a context, and, every few passes
+and around each feature, with the tests run over the whole record stored so far with
+pandas' rolling windows (``run_tests`` and ``_confirm``, code the context path does not use).
+"""
+from __future__ import annotations
+
+import numpy as np
+import pandas as pd
+import pytest
+
+from monitor.quality import checks as qc
+from monitor.quality import diagnostics
+from monitor.quality.checks import QcSettings, run_station_qc, run_tests, set_override
+from monitor.quality.context import QcContext, QcRows
+from monitor.service.daemon import PredictionMemo
+from monitor.store.database import Store
+from units import cm, hour, minute
+
+T0 = 1_761_000_000 - 1_761_000_000 % 60
+HISTORY = 26 * hour // minute    # samples before the stream (QC looks 25 h back)
+STREAM = 300                     # samples streamed one per pass
+STATION = "harbour"
+
+
+class _Tide:
+    """The invented port's tide, evaluated sample by sample (no blocks, so the prediction
+    of a time does not depend on which times are asked for with it)."""
+
+    def predict(self, times):
+        t = pd.DatetimeIndex(times).as_unit("ns").asi8 / 1e9
+        return 2.1 + 1.3 * np.cos(2 * np.pi * t / 44714.16 + 0.4) + 0.35 * np.cos(2 * np.pi * t / 43200.0 + 1.1)
+
+
+def _record(seed: int = 11):
+    """Times [Unix s] and the two sensors' levels [m]; features in the streamed part."""
+    rng = np.random.default_rng(seed)
+    n = HISTORY + STREAM
+    t = T0 + minute * np.arange(n)
+    sea = _Tide().predict(pd.to_datetime(t, unit="s", utc=True)) + np.cumsum(rng.normal(0, 0.002, n))
+    primary = np.round((sea + rng.normal(0, 0.003, n)) * 1000) / 1000
+    backup = np.round((sea + 0.004 + rng.normal(0, 0.003, n)) * 1000) / 1000
+    s = HISTORY
+    primary[s + 10] += 0.30                    # a lone spike
+    primary[s + 30:s + 100] = primary[s + 30]  # a stuck float, 70 min
+    keep = np.ones(n, bool)
+    keep[s + 140:s + 160] = False              # a 20-minute gap in the primary
+    backup[s + 180:s + 240] += 8 * cm          # the backup disagrees for an hour
+    primary[s + 200:] += 0.25                  # a one-sample step that stays
+    backup[s + 280] -= 0.35                    # a spike in the backup
+    return t, primary, backup, keep
+
+
+def _reference(store: Store, model, s: QcSettings, now: float) -> dict[str, pd.DataFrame]:
+    """Every test over the whole record stored so far, both sensors combined as the station
+    pass combines them, with pandas' rolling windows; the technician's overrides applied."""
+    obs = {sn: qc.read_observations(store, STATION, sn)["value"] for sn in ("primary", "backup")}
+    preds = {sn: model.predict(x.index) for sn, x in obs.items()}
+    single = {sn: run_tests(x, s, preds[sn], None, now, position=(50.2, -4.1)) for sn, x in obs.items()}
+    out = {}
+    for sn, o in (("primary", "backup"), ("backup", "primary")):
+        tests = single[sn].copy()
+        other_ok = obs[o].where(single[o]["flag"].to_numpy() != qc.FAIL)
+        shape_only = ~(single[o][[c for c in qc.TESTS if c not in ("spike", "resid")]] == qc.FAIL).any(axis=1)
+        tests["multi"] = qc.multi_sensor_test(obs[sn], other_ok, s.multi_suspect, s.gap_limit)
+        tests["multi"] = tests["multi"].where(tests["syntax"] != qc.MISSING, qc.NOT_EVALUATED)
+        tests["flag"] = qc.aggregate_flags(tests)
+        tests = qc._confirm(tests, obs[sn], obs[sn] - preds[sn], obs[o].where(shape_only.to_numpy()), s)
+        ov = store.conn.execute("SELECT t, flag FROM qc_overrides WHERE station = ? AND sensor = ?",
+                                (STATION, sn)).fetchall()
+        for t_ov, f_ov in ov:
+            tests.loc[pd.Timestamp(t_ov, unit="s", tz="UTC"), "flag"] = f_ov
+        out[sn] = tests
+    return out
+
+
+def _stored(store: Store, sensor: str, lo: int, hi: int) -> pd.DataFrame:
+    """The ``qc_tests`` rows and ``observations.flag`` of one sensor in ``[lo, hi]``."""
+    rows = store.conn.execute(
+        f"SELECT q.t, {', '.join('q.' + c for c in qc.TESTS)}, o.flag FROM qc_tests q JOIN observations o "
+        "ON o.station = q.station AND o.sensor = q.sensor AND o.t = q.t "
+        "WHERE q.station = ? AND q.sensor = ? AND q.t BETWEEN ? AND ? ORDER BY q.t", (STATION, sensor, lo, hi)).fetchall()
+    frame = pd.DataFrame(rows, columns=["t", *qc.TESTS, "flag"])
+    return frame.set_index(pd.to_datetime(frame.pop("t"), unit="s", utc=True))
+
+
+class _Station:
+    """A store fed and processed as the daemon does it: batches lower the processing mark
+    (``take_touched``), a pass runs from the mark to the last sample stored."""
+
+    def __init__(self, path, context: QcContext | None):
+        self.store = Store.open(path)
+        self.context = context
+        self.cfg = type("St", (), {"id": STATION, "latitude": 50.2, "longitude": -4.1, "sensors": None})()
+
+    def write(self, sensor: str, t: np.ndarray, v: np.ndarray) -> None:
+        if len(t):
+            self.store.write_batch(STATION, sensor, t.astype(np.int64), v)
+
+    def process(self, model, s: QcSettings) -> tuple[int, int]:
+        mark = self.store.take_touched(STATION)
+        ends = [self.store.last_time(STATION, sn) for sn in ("primary", "backup")]
+        end = max(e for e in ends if e is not None)
+        start = (mark + 1) if mark is not None else min(self.store.first_time(STATION, sn) for sn in ("primary", "backup"))
+        run_station_qc(self.store, self.cfg, s, start, end, model, now=end + 30, context=self.context)
+        self.store.set_meta(f"processed.{STATION}", str(end))
+        return start, end
+
+
+def _same(a: pd.DataFrame, b: pd.DataFrame, what: str) -> None:
+    assert list(a.index) == list(b.index), f"{what}: other rows written"
+    diff = (a.to_numpy() != b.to_numpy()).any(axis=1)
+    assert not diff.any(), f"{what}: rows differ at {list(a.index[diff][:5])}\n{a[diff].T}\n{b[diff].T}"
+
+
+def test_streamed_one_sample_per_pass_the_flags_equal_a_whole_record_run(tmp_path):
+    t, primary, backup, keep = _record()
+    model, s = _Tide(), QcSettings()
+    ctx = QcContext()
+    live, plain = _Station(tmp_path / "live.db", ctx), _Station(tmp_path / "plain.db", None)
+    stations = (live, plain)
+    for st in stations:  # the day of history, in one pass
+        st.write("primary", t[:HISTORY][keep[:HISTORY]], primary[:HISTORY][keep[:HISTORY]])
+        st.write("backup", t[:HISTORY], backup[:HISTORY])
+        st.process(model, s)
+    feature_at = {10, 30, 60, 90, 100, 160, 180, 200, 240, 255, 270, 280}
+    rebuilt_at = []
+    try:
+        for j in range(STREAM):
+            i = HISTORY + j
+            rebuilds = ctx.rebuilds
+            for st in stations:
+                if keep[i]:
+                    st.write("primary", t[i:i + 1], primary[i:i + 1])
+                if j == 255:      # the backup's last six rows arrive late, together
+                    st.write("backup", t[i - 5:i + 1], backup[i - 5:i + 1])
+                elif not 250 <= j < 255:
+                    st.write("backup", t[i:i + 1], backup[i:i + 1])
+                if j == 270:      # a technician fails a primary sample written five passes ago
+                    set_override(st.store, STATION, "primary", float(t[i - 5]), None, qc.FAIL, "tech", "fouled")
+                start, end = st.process(model, s)
+            if ctx.rebuilds > rebuilds:
+                rebuilt_at.append(j)
+            lo = int(start - s.resid_window)
+            for sn in ("primary", "backup"):
+                _same(_stored(live.store, sn, lo, end), _stored(plain.store, sn, lo, end),
+                      f"pass {j} {sn}: with and without the context")
+            if j % 25 == 0 or any(abs(j - f) <= 1 for f in feature_at):
+                ref = _reference(live.store, model, s, end + 30)
+                for sn in ("primary", "backup"):
+                    got = _stored(live.store, sn, lo, end)
+                    _same(got, ref[sn].loc[got.index, [*qc.TESTS, "flag"]], f"pass {j} {sn}: against the whole record")
+        for sn in ("primary", "backup"):
+            _same(_stored(live.store, sn, 0, 2 ** 40), _stored(plain.store, sn, 0, 2 ** 40), f"whole store {sn}")
+            flags = [st.store.conn.execute("SELECT t, flag FROM observations WHERE sensor = ? ORDER BY t",
+                                           (sn,)).fetchall() for st in stations]
+            assert flags[0] == flags[1]
+        final = _stored(live.store, "primary", int(t[HISTORY]), int(t[-1]))
+    finally:
+        for st in stations:
+            st.store.close()
+    # the features the stream must have met, so the comparison above is not of a calm sea
+    assert (final["flat"] == qc.FAIL).any() and (final["spike"] == qc.FAIL).any()
+    assert (final["gap"] == qc.MISSING).any()
+    assert (final["multi"] == qc.SUSPECT).any()
+    assert final.loc[pd.Timestamp(int(t[HISTORY + 265]), unit="s", tz="UTC"), "flag"] == qc.FAIL
+    # rebuilt after the gap (first row after it), the late rows and the override; else steady
+    assert rebuilt_at == [160, 255, 270]
+
+
+@pytest.fixture
+def streaming(tmp_path):
+    """A station with a day of history processed through a context, and one more pass."""
+    t, primary, backup, keep = _record(12)
+    st = _Station(tmp_path / "s.db", QcContext())
+    late = np.arange(HISTORY) != HISTORY - 30  # a primary row held back, to arrive late
+    st.write("primary", t[:HISTORY][late], primary[:HISTORY][late])
+    st.write("backup", t[:HISTORY], backup[:HISTORY])
+    tide = _Tide()
+    st.process(tide, QcSettings())
+
+    def step(i: int, settings: QcSettings | None = None, model=None):
+        st.write("primary", t[i:i + 1], primary[i:i + 1])
+        st.write("backup", t[i:i + 1], backup[i:i + 1])
+        return st.process(model or tide, settings or QcSettings())
+
+    st.late = (t[HISTORY - 30:HISTORY - 29], primary[HISTORY - 30:HISTORY - 29])
+    yield st, t, step
+    st.store.close()
+
+
+def test_a_steady_pass_does_not_rebuild(streaming):
+    st, t, step = streaming
+    n = st.context.rebuilds
+    for i in range(HISTORY, HISTORY + 5):
+        step(i)
+    assert st.context.rebuilds == n
+
+
+def test_a_late_row_rebuilds_the_context(streaming):
+    st, t, step = streaming
+    step(HISTORY)
+    n = st.context.rebuilds
+    st.write("primary", *st.late)  # a row inside the span held, after its time was processed
+    step(HISTORY + 1)
+    assert st.context.rebuilds == n + 1
+
+
+def test_an_override_rebuilds_the_context(streaming):
+    st, t, step = streaming
+    step(HISTORY)
+    n = st.context.rebuilds
+    set_override(st.store, STATION, "backup", float(t[HISTORY - 3]), None, qc.SUSPECT, "tech", "check")
+    step(HISTORY + 1)
+    assert st.context.rebuilds == n + 1
+    assert st.store.conn.execute("SELECT flag FROM observations WHERE sensor = 'backup' AND t = ?",
+                                 (int(t[HISTORY - 3]),)).fetchone()[0] == qc.SUSPECT
+
+
+def test_a_pass_without_the_context_rebuilds_it(streaming):
+    """`quaywatch qc` (no context) rewrites flags while the daemon runs."""
+    st, t, step = streaming
+    step(HISTORY)
+    n = st.context.rebuilds
+    run_station_qc(st.store, st.cfg, QcSettings(), float(t[HISTORY - 600]), float(t[HISTORY - 300]), _Tide())
+    step(HISTORY + 1)
+    assert st.context.rebuilds == n + 1
+
+
+def test_other_settings_or_model_rebuild_the_context(streaming):
+    st, t, step = streaming
+    step(HISTORY)
+    n = st.context.rebuilds
+    step(HISTORY + 1, settings=QcSettings(spike_suspect=0.07))
+    assert st.context.rebuilds == n + 1
+    step(HISTORY + 2, settings=QcSettings(spike_suspect=0.07), model=_Tide())
+    assert st.context.rebuilds == n + 2
+
+
+def test_an_error_inside_a_pass_forgets_the_context(streaming):
+    st, t, step = streaming
+    step(HISTORY)
+
+    class Broken:
+        def predict(self, times):
+            raise RuntimeError("no tide")
+
+    with pytest.raises(RuntimeError):
+        step(HISTORY + 1, model=Broken())
+    assert st.context.end_t is None and not st.context.sensors
+
+
+def test_flat_since_of_the_rows_equals_the_diagnostics_on_a_frame():
+    t = T0 + minute * np.arange(8)
+    flat = np.array([1, 3, 4, 1, 3, 4, 4, 4], dtype=np.int8)
+    tests = np.ones((8, len(qc.TESTS)), dtype=np.int8)
+    tests[:, qc.TESTS.index("flat")] = flat
+    rows = QcRows(t, tests, np.ones(8, dtype=np.int8))
+    frame = rows.frame()
+    assert rows.flat_since() == diagnostics.flat_since(frame["flat"]).timestamp() == t[5]
+    tests[-1, qc.TESTS.index("flat")] = 1
+    assert QcRows(t, tests, np.ones(8, dtype=np.int8)).flat_since() is None
+
+
+@pytest.mark.parametrize("seed, suffixes", [(1, False), (2, False), (3, True), (4, True)])
+def test_the_sliding_median_equals_numpy_over_each_window(seed, suffixes):
+    """Against ``np.median`` of each window's finite values (min_periods and NaN as pandas);
+    windows sliding both ends, and windows all ending at the newest value (the live tail)."""
+    rng = np.random.default_rng(seed)
+    values = np.abs(rng.normal(0, 1, 400)).round(2)  # ties on purpose
+    values[rng.integers(0, 400, 40)] = np.nan
+    a = np.sort(rng.integers(0, 300, 120))
+    b = np.minimum(np.maximum(a + rng.integers(0, 60, 120), np.maximum.accumulate(a + 5)), 400)
+    b = np.maximum.accumulate(b)
+    if suffixes:
+        a, b = np.sort(rng.integers(300, 395, 80)), np.full(80, 400)
+    got = qc._sliding_median(values, a, b, 10)
+    for i in range(len(a)):
+        w = values[a[i]:b[i]]
+        w = w[np.isfinite(w)]
+        want = np.median(w) if len(w) >= 10 else np.nan
+        assert (np.isnan(want) and np.isnan(got[i])) or got[i] == want, i
+
+
+def test_windows_too_wide_for_matrices_take_the_pass_without_the_context(tmp_path, monkeypatch):
+    """Very fine sampling makes the tail's window matrices too large: the pass falls back to
+    the pass without a context (whole-record tests for such tails) and says the same rows."""
+    t, primary, backup, keep = _record(13)
+    monkeypatch.setattr(qc, "_TAIL_CELLS_MAX", 1000)
+    model, s = _Tide(), QcSettings()
+    live, plain = _Station(tmp_path / "live.db", QcContext()), _Station(tmp_path / "plain.db", None)
+    try:
+        for st in (live, plain):
+            st.write("primary", t[:HISTORY + 3], primary[:HISTORY + 3])
+            st.write("backup", t[:HISTORY + 3], backup[:HISTORY + 3])
+            st.process(model, s)
+        for sn in ("primary", "backup"):
+            _same(_stored(live.store, sn, 0, 2 ** 40), _stored(plain.store, sn, 0, 2 ** 40), sn)
+        assert live.context.end_t is None  # forgotten: the next pass reads the store again
+    finally:
+        for st in (live, plain):
+            st.store.close()
+
+
+@pytest.mark.parametrize("seed", [5, 6])
+def test_spike_flags_kept_between_calls_equal_those_of_the_whole_record(seed):
+    """The spike test evaluated only near the newest rows and the first (after the record lost
+    rows at its front) equals it over the whole record, with spikes, jumps and missing runs
+    near both ends."""
+    rng = np.random.default_rng(seed)
+    n = 3000
+    t = (T0 + minute * np.arange(n)).astype(float)
+    r = np.cumsum(rng.normal(0, 0.003, n))
+    r[rng.integers(0, n, 60)] += rng.choice([-1, 1], 60) * 0.3    # spikes
+    r[rng.integers(0, n, 20)] += 0.4                              # jumps (two-sample steps)
+    for a in rng.integers(0, n - 10, 25):
+        r[a:a + rng.integers(1, 8)] = np.nan                      # missing runs
+    t[rng.integers(0, n, 15)] += 400                              # a few late stamps (gaps)
+    t = np.sort(t)
+    s, memo = QcSettings(), qc.ResidMemo()
+    lo, hi = 0, 200
+    while hi < n:
+        got = qc._spike_all(r[lo:hi], t[lo:hi], s, memo)
+        want = qc.spike_flags(r[lo:hi], t[lo:hi], s.spike_suspect, s.spike_fail, s.gap_limit, s.jump_ratio)
+        assert np.array_equal(got, want), (lo, hi, np.flatnonzero(got != want))
+        step, cut = int(rng.integers(1, 4)), int(rng.integers(0, 3))
+        hi += step
+        lo += cut
+        memo.drop(cut)
+
+
+class _Counted(_Tide):
+    def __init__(self):
+        self.calls = 0
+
+    def predict(self, times):
+        self.calls += 1
+        return super().predict(times)
+
+
+def test_the_daemons_prediction_memo_is_asked_an_hour_ahead(tmp_path):
+    """Through the daemon's memo the model runs once for an hour of one-minute passes, and
+    the flags are those of a pass without a context with the model itself."""
+    t, primary, backup, keep = _record(14)
+    tide, s = _Counted(), QcSettings()
+    memo = PredictionMemo(tide)
+    live, plain = _Station(tmp_path / "live.db", QcContext()), _Station(tmp_path / "plain.db", None)
+    try:
+        for st, model in ((live, memo), (plain, _Tide())):
+            st.write("primary", t[:HISTORY], primary[:HISTORY])
+            st.write("backup", t[:HISTORY], backup[:HISTORY])
+            st.process(model, s)
+        calls = tide.calls
+        for i in range(HISTORY, HISTORY + 30):
+            for st, model in ((live, memo), (plain, _Tide())):
+                st.write("primary", t[i:i + 1], primary[i:i + 1])
+                st.write("backup", t[i:i + 1], backup[i:i + 1])
+                st.process(model, s)
+        assert tide.calls == calls + 1
+        for sn in ("primary", "backup"):
+            _same(_stored(live.store, sn, 0, 2 ** 40), _stored(plain.store, sn, 0, 2 ** 40), sn)
+    finally:
+        for st in (live, plain):
+            st.store.close()
