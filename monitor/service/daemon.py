@@ -70,7 +70,7 @@ PROCESS_CHUNK = 7 * 86400   # [s] most data time processed in one pass (bounds m
 REWRITE_BACK = 3600         # [s] derived rows before a window that are recomputed (QC may revise flags)
 OUTBOX_DRAIN_WAIT = 30.0    # [s] with --until-exhausted, longest wait for the outbox after the feeds end
 PRUNE_EVERY = 86400.0       # [s, wall clock] how often the outbox thread prunes delivered messages
-HISTORY_REFRESH = 6 * 3600  # [s, data time] how often the forecast relearns from the residual history
+HISTORY_REFRESH = 6 * 3600  # [s, data time] least time between two learns of the forecaster (surge_forecast.relearn_due)
 # [s] samples before a window handed to the alert rules besides the new ones: messages show the
 # change over the last hour, taken from a sample up to 15 min either side of an hour back
 TREND_BACK = 75 * 60
@@ -324,8 +324,9 @@ class StationRuntime:
     model_source: str = ""
     view: Any = None
     extremes_span: tuple[float, float] = (math.inf, -math.inf)
-    forecaster: Any = None          # monitor.surge.forecast.SurgeForecaster, relearnt every HISTORY_REFRESH
+    forecaster: Any = None          # monitor.surge.forecast.SurgeForecaster, relearnt when relearn_due says
     history_at: float = -math.inf
+    storm_seen: bool = False        # storm conditions in a forecast state since the forecaster learnt
     replay_clock: bool = False
     last_fit_try: float = -math.inf
     diag_at: float = -math.inf      # data time of the last drift and clock diagnostics [Unix s]
@@ -774,13 +775,14 @@ class Daemon:
         st, rs = rt.cfg, self.cfg.residual
         horizon = pd.Timedelta(seconds=max((getattr(r, "clear_horizon", 0.0) for r in st.rules or ()), default=0.0))
         barometer = "barometer" in st.sensors
-        if rt.forecaster is None or end_t - rt.history_at > HISTORY_REFRESH:
+        if rt.forecaster is None or surge_forecast.relearn_due(rt.forecaster, end_t - rt.history_at, rt.storm_seen,
+                                                               least_s=HISTORY_REFRESH):
             grid, skew, pressure = surge_forecast.read_history(self.store.conn, st.id, end_t - int(rs.history_days * 86400),
                                                    end_t, barometer)
             rt.forecaster = surge_forecast.SurgeForecaster.learn(grid, skew, pressure, min_storms=rs.forecast_min_storms,
                                                      min_history_days=rs.min_history_days,
                                                      max_lead_h=horizon.total_seconds() / 3600)
-            rt.history_at = end_t
+            rt.history_at, rt.storm_seen = end_t, False
         back = int((surge_forecast.RATE_HOURS + 1) * 3600)
         recent = self.store.derived(st.id, start_t - back, end_t)["smoothed"].dropna()
         pressure_now = None
@@ -794,6 +796,7 @@ class Daemon:
             state = surge_forecast.storm_state(recent, at, pressure_now, barometer=barometer)
             if not np.isfinite(state.residual) or at - state.t > 3600:
                 continue  # no live residual then (a gap): no forecast
+            rt.storm_seen |= state.storm
             now = pd.Timestamp(state.t, unit="s", tz="UTC")
             hws = surge_residual.high_waters_within(rt.extremes, now, now + horizon)
             fcs += [rt.forecaster.forecast(state, row.time.timestamp(), float(row.level)) for row in hws.itertuples()]

@@ -514,6 +514,49 @@ def _type7_in_window(values: np.ndarray, finite: np.ndarray, n: int, p: float, l
     return float(np.quantile(pair, position - math.floor(position)))
 
 
+# --------------------------------------------------------------------------- when to learn again
+
+#: Least data time between two learns [s] (the daemon's ``HISTORY_REFRESH`` passes its own).
+RELEARN_MIN_S = 6 * 3600
+#: In calm weather a learnt forecaster stands for this much data time per year of history it
+#: learnt from [s]: the data new since then is at most 1/365 of what it learnt from.
+RELEARN_PER_YEAR_S = 86400
+
+
+def relearn_due(forecaster: "SurgeForecaster", since_s: float, storm_seen: bool,
+                least_s: float = RELEARN_MIN_S) -> bool:
+    """Whether a learnt forecaster should learn again from the history.
+
+    A learn reads and fits the whole history (three years: about 0.5 s of CPU), so it comes
+    after more than ``least_s`` of new data at the soonest, and in calm weather once the new data
+    reaches a day per year of history (:data:`RELEARN_PER_YEAR_S`). What it would change is
+    bounded by that share: the new high waters are at most 1/365 of the pairs, so each
+    conformal quantile moves by at most that share of its order statistics (about 0.3
+    percentage point of coverage) plus what they move the coefficients by
+    (``tests/test_forecast_relearn.py`` measures both against a learn on all the data).
+
+    A storm in progress on a station that has not yet learnt a conditioned model (too few
+    storms) brings the learn back every ``least_s``: this storm may be the one that makes up
+    the count, and its skew surges should enter at once.
+
+    Parameters
+    ----------
+    forecaster : SurgeForecaster
+        The forecaster in use.
+    since_s : float
+        Data time since it learnt [s].
+    storm_seen : bool
+        Storm conditions were seen since it learnt.
+    least_s : float
+        Least data time between two learns [s].
+    """
+    if since_s <= least_s:
+        return False
+    if storm_seen and forecaster.models.get(False) is None:
+        return True
+    return since_s >= forecaster.history_days / 365.25 * RELEARN_PER_YEAR_S
+
+
 # --------------------------------------------------------------------------- forecasting
 
 @dataclass
