@@ -134,3 +134,29 @@ def test_constants_left_by_a_fit_are_taken_at_the_next_pass_not_before(daemon):
     d.process_station(rt, now=float(last))
     assert rt.model is not None and rt.new_model is None
     assert rt.model_source.startswith("fit #")
+
+
+class _Recorder:
+    """Stands in for the running scheduler: keeps the jobs added to it."""
+
+    def __init__(self):
+        self.jobs: list[tuple] = []
+
+    def add_job(self, func, **kwargs):
+        self.jobs.append((func, kwargs))
+
+
+@pytest.mark.parametrize("replay", [False, True])
+def test_a_first_fit_goes_to_the_fits_worker_unless_the_clock_is_replayed(daemon, replay):
+    # live: the pass asks the fits worker and goes on without constants; replayed: the clock
+    # outruns a fit, so it is made in the pass and the next windows use it
+    d, last = daemon
+    rt = d.stations["testport"]
+    rt.replay_clock = replay
+    d.scheduler = _Recorder()
+    d._maybe_fit(rt, float(last))
+    if replay:
+        assert d.scheduler.jobs == [] and rt.model is not None
+    else:
+        (func, kwargs), = d.scheduler.jobs
+        assert func == d.job_fit and kwargs["executor"] == "fits" and rt.model is None

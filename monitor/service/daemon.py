@@ -920,7 +920,10 @@ class Daemon:
             st.id, after=int(last - st.fit_span_days * 86400) - 1, until=horizon, usable=True)
         if first is None or (last - first) / 86400 < st.fit_min_days:
             return
-        if self.scheduler is not None:  # on the fits worker: this pass goes on without constants
+        # Live, the fit goes to the fits worker and this pass goes on without constants, as the
+        # passes before it did; a replay's clock outruns a fit, so there the fit is made here and
+        # the replay's next windows use it, as they would have live.
+        if self.scheduler is not None and not rt.replay_clock:
             self.scheduler.add_job(self.job_fit, args=[rt, now], executor="fits", id=f"fit.{st.id}",
                                    replace_existing=True)
             return
