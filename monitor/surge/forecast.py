@@ -527,13 +527,15 @@ def relearn_due(forecaster: "SurgeForecaster", since_s: float, storm_seen: bool,
                 least_s: float = RELEARN_MIN_S) -> bool:
     """Whether a learnt forecaster should learn again from the history.
 
-    A learn reads and fits the whole history (three years: about 0.5 s of CPU), so it comes
-    after more than ``least_s`` of new data at the soonest, and in calm weather once the new data
-    reaches a day per year of history (:data:`RELEARN_PER_YEAR_S`). What it would change is
-    bounded by that share: the new high waters are at most 1/365 of the pairs, so each
-    conformal quantile moves by at most that share of its order statistics (about 0.3
-    percentage point of coverage) plus what they move the coefficients by
-    (``tests/test_forecast_relearn.py`` measures both against a learn on all the data).
+    A learn reads and fits the whole history (three years: about 1.5 s of CPU, two thirds of
+    it the store's read), so it comes after more than ``least_s`` of new data at the soonest,
+    and in calm weather once the new data reaches a day per year of history
+    (:data:`RELEARN_PER_YEAR_S`). What it would change is bounded by that share: the new high
+    waters are 1/365 of those learnt from, so a conformal quantile moves by about that share
+    of its order statistics (about 0.3 percentage point of coverage; more in the storm cells,
+    which hold fewer scores, when the new days held a storm) plus what the new pairs move the
+    coefficients by (``tests/test_forecast_relearn.py`` measures it with a storm in the new
+    days, against a learn on all the data).
 
     A storm in progress on a station that has not yet learnt a conditioned model (too few
     storms) brings the learn back every ``least_s``: this storm may be the one that makes up
