@@ -1,7 +1,8 @@
 """The daemon: polls the feeds, stores what they give, and processes each station.
 
 apscheduler (3.x, BackgroundScheduler with one worker thread for polling, processing and
-reports, so they never overlap, and one for fits) runs these jobs, and an outbox thread of its own delivers the mail:
+reports, so they never overlap, and one for fits) runs these jobs, and an outbox thread of
+its own delivers the mail:
 
 - ``poll``: each feed's new lines are parsed and stored with the feed's checkpoint in one
   transaction (:func:`ingest_lines`); a station that got lines is processed in the same job,
@@ -23,7 +24,7 @@ reports, so they never overlap, and one for fits) runs these jobs, and an outbox
   its own (the ``fits`` executor) with its own SQLite connection, so a fit of years of
   one-minute data never holds up polling and processing; the new constants are taken by the
   processing thread between passes (:meth:`Daemon.refit`). A station's first fit goes the
-  same way.
+  same way, except on a replayed clock (which outruns a fit).
 
 SIGTERM and SIGINT stop it cleanly: the batch in hand is finished and committed, then
 the feeds and the store are closed and the process exits 0. A second daemon on the same
