@@ -253,3 +253,51 @@ def test_type7_quantiles_are_numpys_to_the_bit(n, nan_share, decimals):
     finite = np.isfinite(x)
     probs = ((1 - 0.90) / 2, (1 + 0.90) / 2, 0.0, 0.5, 1.0, 0.001, 0.123457, 0.876543, 0.31416)
     assert np.array_equal(SF.type7_quantiles(x, finite, probs), np.quantile(x[finite], probs))
+
+
+# --------------------------------------------------------------------------- the fit's algebra
+
+def _lstsq_reference(pairs, folds=5, coverage=0.90):
+    """The location-scale fit and its out-of-fold quantiles written out with numpy's lstsq on
+    the rows (the columns of the module's docstring: c on 1, L, r, r L, rate L; s on 1,
+    sqrt L, |r|, |r| sqrt L, |rate| L; five contiguous blocks of high waters), no code shared."""
+    L, r, q, y = (pairs[k].to_numpy(float) for k in ("lead_h", "residual", "rate", "y"))
+    A = np.column_stack([np.ones_like(L), L, r, r * L, q * L])
+    B = np.column_stack([np.ones_like(L), np.sqrt(L), np.abs(r), np.abs(r) * np.sqrt(L), np.abs(q) * L])
+    hw = np.unique(pairs["hw_t"].to_numpy(float), return_inverse=True)[1]
+    fold = np.minimum(hw * folds // (hw.max() + 1), folds - 1)
+
+    def fit(m):
+        c = np.linalg.lstsq(A[m], y[m], rcond=None)[0]
+        return c, np.linalg.lstsq(B[m], np.abs(y[m] - A[m] @ c), rcond=None)[0]
+
+    scores = np.empty(len(y))
+    for f in range(folds):
+        c, s = fit(fold != f)
+        t = fold == f
+        scores[t] = (y[t] - A[t] @ c) / np.maximum(B[t] @ s, 0.01)
+    band = np.searchsorted([1.5, 2.5, 3.5, 4.5, 6.5, 9.5, 12.5, np.inf], L)
+    storm = (np.abs(r) > 0.3) | (q > 0.1)
+    quantiles = {}
+    for b in range(8):
+        for st in (False, True):
+            z = np.sort(scores[(band == b) & (storm == st)])
+            if len(z) >= 40:   # Lei et al. (2018), sec. 2.2: the floor((n+1)a)-th and ceil((n+1)(1-a))-th
+                n, a = len(z), (1 - coverage) / 2
+                quantiles[(b, st)] = (z[math.floor((n + 1) * a) - 1], z[math.ceil((n + 1) * (1 - a)) - 1])
+    c, s = fit(np.ones(len(y), bool))
+    return c, s, quantiles
+
+
+def test_the_fold_fits_by_normal_equations_equal_least_squares_on_the_rows():
+    # The fit sums each fold's normal equations once and takes a fold's complement as the total
+    # minus the fold; numpy's lstsq on the rows of each complement is the reference.
+    rng = np.random.default_rng(16)
+    pairs, _, _ = _invented_pairs(rng, 12_000)
+    model = SF.fit_spread(pairs, pressure=False, coverage=0.90)
+    centre, scale, quantiles = _lstsq_reference(pairs)
+    assert model.centre == pytest.approx(centre, abs=1e-9)
+    assert model.scale == pytest.approx(scale, abs=1e-9)
+    assert model.quantiles.keys() == quantiles.keys()
+    for key, (lo, hi) in quantiles.items():
+        assert model.quantiles[key] == pytest.approx((lo, hi), abs=1e-9)

@@ -1,7 +1,8 @@
 """The daemon: polls the feeds, stores what they give, and processes each station.
 
-apscheduler (3.x, BackgroundScheduler with one worker thread, so jobs never overlap)
-runs these jobs, and an outbox thread of its own delivers the mail:
+apscheduler (3.x, BackgroundScheduler with one worker thread for polling, processing and
+reports, so they never overlap, and one for fits) runs these jobs, and an outbox thread of
+its own delivers the mail:
 
 - ``poll``: each feed's new lines are parsed and stored with the feed's checkpoint in one
   transaction (:func:`ingest_lines`); a station that got lines is processed in the same job,
@@ -19,7 +20,11 @@ runs these jobs, and an outbox thread of its own delivers the mail:
   means). One round at a time, each send recorded before the next; an SMTP server that
   does not answer holds up only this thread, never the processing;
 - ``reports``: daily reports, when the report writer is installed;
-- ``refit``: refit stations whose constants come from their own history.
+- ``refit``: refit stations whose constants come from their own history, on a worker of
+  its own (the ``fits`` executor) with its own SQLite connection, so a fit of years of
+  one-minute data never holds up polling and processing; the new constants are taken by the
+  processing thread between passes (:meth:`Daemon.refit`). A station's first fit goes the
+  same way, except on a replayed clock (which outruns a fit).
 
 SIGTERM and SIGINT stop it cleanly: the batch in hand is finished and committed, then
 the feeds and the store are closed and the process exits 0. A second daemon on the same
@@ -72,7 +77,7 @@ PROCESS_CHUNK = 7 * 86400   # [s] most data time processed in one pass (bounds m
 REWRITE_BACK = 3600         # [s] derived rows before a window that are recomputed (QC may revise flags)
 OUTBOX_DRAIN_WAIT = 30.0    # [s] with --until-exhausted, longest wait for the outbox after the feeds end
 PRUNE_EVERY = 86400.0       # [s, wall clock] how often the outbox thread prunes delivered messages
-HISTORY_REFRESH = 6 * 3600  # [s, data time] how often the forecast relearns from the residual history
+HISTORY_REFRESH = 6 * 3600  # [s, data time] least time between two learns of the forecaster (surge_forecast.relearn_due)
 # [s] samples before a window handed to the alert rules besides the new ones: messages show the
 # change over the last hour, taken from a sample up to 15 min either side of an hour back
 TREND_BACK = 75 * 60
@@ -200,7 +205,7 @@ REFIT_TOLERANCE_M = 0.0005
 
 def refit_station(store: Store, station: StationConfig, now: float | None = None, use: bool | None = None,
                   span_days: float | None = None, robust: Any = True, infer: Any = "auto",
-                  force: bool = False) -> dict:
+                  force: bool = False, stop: threading.Event | None = None) -> dict:
     """Fit constants to a station's quality-controlled primary record and keep the fit.
 
     Samples flagged fail (4) or missing (9) never enter the fit (design rule). The fit is
@@ -216,7 +221,8 @@ def refit_station(store: Store, station: StationConfig, now: float | None = None
     if its RMS error there is no worse (within :data:`REFIT_TOLERANCE_M`). Otherwise it is kept
     for comparison, with the numbers in its note. Without enough unseen days (under
     :data:`REFIT_CHECK_MIN_DAYS`) the constants in use stay. ``force`` (an operator's
-    ``refit --use``) skips the check.
+    ``refit --use``) skips the check. ``stop``, once set, ends the fit at its next chunk of
+    the record (a daemon that is stopping does not wait for a fit of years).
 
     Returns
     -------
@@ -227,7 +233,7 @@ def refit_station(store: Store, station: StationConfig, now: float | None = None
     Raises
     ------
     predictor.errors.FitError
-        Too little history, or a fit that fails.
+        Too little history, a fit that fails, or one stopped by ``stop``.
     """
     now = time.time() if now is None else now
     # the fit span ends at the last usable sample: one stamped in the future, or failed,
@@ -236,7 +242,7 @@ def refit_station(store: Store, station: StationConfig, now: float | None = None
     if end is None:
         raise FitError(f"station {station.id}: no usable observations in {store.path} to fit")
     span = (station.fit_span_days if span_days is None else span_days) * 86400
-    record = _FitRecord(store, station.id, int(end - span), int(end))
+    record = _FitRecord(store, station.id, int(end - span), int(end), stop)
     _enough(station, record)
     in_use = station.fit_from_history if use is None else use
     current = store.fit_in_use(station.id) if in_use and not force else None
@@ -276,14 +282,17 @@ class _FitRecord:
     station: str
     start: int
     end: int
+    stop: threading.Event | None = None
 
     def __call__(self):
         for t, value, flag in self.store.observation_chunks(self.station, "primary", self.start, self.end):
+            if self.stop is not None and self.stop.is_set():
+                raise FitError(f"station {self.station}: fit stopped, the daemon is stopping")
             keep = ~np.isin(flag, _NOT_FITTED)
             yield t[keep], value[keep]
 
     def between(self, start: int, end: int) -> "_FitRecord":
-        return _FitRecord(self.store, self.station, int(start), int(end))
+        return _FitRecord(self.store, self.station, int(start), int(end), self.stop)
 
     def frame(self) -> pd.DataFrame:
         """The samples in memory (a short span only: the hindcast check's days)."""
@@ -361,10 +370,12 @@ class StationRuntime:
     model_source: str = ""
     view: Any = None
     extremes_span: tuple[float, float] = (math.inf, -math.inf)
-    forecaster: Any = None          # monitor.surge.forecast.SurgeForecaster, relearnt every HISTORY_REFRESH
+    forecaster: Any = None          # monitor.surge.forecast.SurgeForecaster, relearnt when relearn_due says
     history_at: float = -math.inf
+    storm_seen: bool = False        # storm conditions in a forecast state since the forecaster learnt
     replay_clock: bool = False
     last_fit_try: float = -math.inf
+    new_model: tuple | None = None  # (model, source) from a fit on the fits worker, taken between passes
     diag_at: float = -math.inf      # data time of the last drift and clock diagnostics [Unix s]
     diag_phase: float = 0.0         # fraction of daemon.diagnostics_minutes this station's runs are offset by
     diag: dict = field(default_factory=dict)  # their results: "drift", "clock.primary", ...
@@ -654,6 +665,8 @@ class Daemon:
         self.replay_clock = bool(self.stations) and all(rt.replay_clock for rt in self.stations.values())
         self.data_now: float | None = None
         self.live = LivePages(cfg) if cfg.live is not None else None
+        self.scheduler: BackgroundScheduler | None = None  # while run() runs: fits go to its "fits" worker
+        self._model_lock = threading.Lock()             # guards StationRuntime.new_model
 
     def _station_runtime(self, st: StationConfig) -> StationRuntime:
         model, source = load_model(self.store, st)
@@ -811,6 +824,7 @@ class Daemon:
         st, store = rt.cfg, self.store
         now = (end_t if rt.replay_clock else time.time()) if now is None else now
         self.data_now = end_t if self.data_now is None else max(self.data_now, end_t)
+        self._take_new_model(rt)
         self._maybe_fit(rt, now)
         model = rt.model
         rs = self.cfg.residual
@@ -988,6 +1002,7 @@ class Daemon:
             state = surge_forecast.storm_state(recent, at, pressure_now, barometer=barometer)
             if not np.isfinite(state.residual) or at - state.t > 3600:
                 continue  # no live residual then (a gap): no forecast
+            rt.storm_seen |= state.storm
             now = pd.Timestamp(state.t, unit="s", tz="UTC")
             hws = surge_residual.high_waters_within(rt.extremes, now, now + horizon)
             fcs += [rt.forecaster.forecast(state, row.time.timestamp(), float(row.level)) for row in hws.itertuples()]
@@ -1011,6 +1026,7 @@ class Daemon:
             state = surge_forecast.storm_state_arrays(rt_s, rv, at, pressure_now, barometer=barometer)
             if not np.isfinite(state.residual) or at - state.t > 3600:
                 continue  # no live residual then (a gap): no forecast
+            rt.storm_seen |= state.storm
             now = pd.Timestamp(state.t, unit="s", tz="UTC")
             fcs += [rt.forecaster.forecast(state, hw_t, level) for hw_t, level in rt.turns.high_waters(now, now + horizon)]
         self._keep_forecasts(st.id, fcs)
@@ -1027,15 +1043,18 @@ class Daemon:
         return [*range(-(-start_t // slot) * slot, end_t, slot), end_t]
 
     def _learn(self, rt: StationRuntime, end_t: int, barometer: bool) -> None:
-        """Relearn the station's forecaster from its history every ``HISTORY_REFRESH`` of data time."""
+        """Relearn the station's forecaster from its history when
+        :func:`monitor.surge.forecast.relearn_due` says so (never sooner than ``HISTORY_REFRESH``
+        of data time after the last learn)."""
         st, rs = rt.cfg, self.cfg.residual
-        if rt.forecaster is None or end_t - rt.history_at > HISTORY_REFRESH:
+        if rt.forecaster is None or surge_forecast.relearn_due(rt.forecaster, end_t - rt.history_at, rt.storm_seen,
+                                                               least_s=HISTORY_REFRESH):
             grid, skew, pressure = surge_forecast.read_history(self.store.conn, st.id, end_t - int(rs.history_days * 86400),
                                                    end_t, barometer)
             rt.forecaster = surge_forecast.SurgeForecaster.learn(grid, skew, pressure, min_storms=rs.forecast_min_storms,
                                                      min_history_days=rs.min_history_days,
                                                      max_lead_h=self._horizon_delta(rt).total_seconds() / 3600)
-            rt.history_at = end_t
+            rt.history_at, rt.storm_seen = end_t, False
 
     def _keep_forecasts(self, station: str, fcs: list[dict]) -> None:
         """Each forecast as the latest of its high water, and in the forecast log (one transaction)."""
@@ -1148,37 +1167,83 @@ class Daemon:
             st.id, after=int(last - st.fit_span_days * 86400) - 1, until=horizon, usable=True)
         if first is None or (last - first) / 86400 < st.fit_min_days:
             return
+        # Live, the fit goes to the fits worker and this pass goes on without constants, as the
+        # passes before it did; a replay's clock outruns a fit, so there the fit is made here and
+        # the replay's next windows use it, as they would have live.
+        if self.scheduler is not None and not rt.replay_clock:
+            self.scheduler.add_job(self.job_fit, args=[rt, now], executor="fits", id=f"fit.{st.id}",
+                                   replace_existing=True)
+            return
         self.refit(rt, now)
 
-    def refit(self, rt: StationRuntime, now: float | None = None) -> None:
+    def refit(self, rt: StationRuntime, now: float | None = None, store: Store | None = None) -> None:
         """Refit a station from its history; the result replaces the constants in use only if
-        it hindcasts the days they have not seen no worse (:func:`refit_station`)."""
+        it hindcasts the days they have not seen no worse (:func:`refit_station`).
+
+        ``store`` is the caller's own connection (the fits worker's): the new constants are
+        then left for the processing thread, which takes them before its next pass
+        (:meth:`_take_new_model`). Without it the daemon's store is used and they are taken at
+        once (callers on the processing thread)."""
         try:
-            refit_station(self.store, rt.cfg, now=now, use=True)
+            refit_station(self.store if store is None else store, rt.cfg, now=now, use=True, stop=self.stop)
         except (MonitorError, FitError) as exc:  # FitError: too little history yet, say so and go on
             log.warning("%s", exc)
             return
-        rt.model, rt.model_source = load_model(self.store, rt.cfg)
-        rt.extremes, rt.extremes_span = None, (math.inf, -math.inf)
+        self._offer_model(rt, *load_model(self.store if store is None else store, rt.cfg), at_once=store is None)
 
-    def refit_due(self) -> None:
-        """Refit stations whose constants come from their history, every ``daemon.refit_days``."""
+    def refit_due(self, store: Store | None = None) -> None:
+        """Refit stations whose constants come from their history, every ``daemon.refit_days``
+        (``store``: the caller's own connection, see :meth:`refit`)."""
         days = self.cfg.daemon.refit_days
+        db = self.store if store is None else store
         for rt in self.stations.values():
             if self.stop.is_set() or not rt.cfg.fit_from_history:
                 continue
-            fit = self.store.fit_in_use(rt.cfg.id)
+            fit = db.fit_in_use(rt.cfg.id)
             if fit is not None and not rt.model_source.startswith(f"fit #{fit['id']} "):
                 # a fit put in use from the command line ('quaywatch refit')
-                rt.model, rt.model_source = load_model(self.store, rt.cfg)
-                rt.extremes, rt.extremes_span = None, (math.inf, -math.inf)
-                log.info("station %s: constants now %s", rt.cfg.id, rt.model_source)
+                self._offer_model(rt, *load_model(db, rt.cfg), at_once=store is None)
             # due from the latest try, taken or not: a candidate kept out of use for hindcasting
             # worse is not retried every hour
-            fits = self.store.fits(rt.cfg.id)
+            fits = db.fits(rt.cfg.id)
             last_try = float(fits["fitted_at"].max()) if len(fits) else -math.inf
             if fit is None or (days > 0 and time.time() - last_try >= days * 86400):
-                self.refit(rt)
+                self.refit(rt, store=store)
+
+    def _offer_model(self, rt: StationRuntime, model: Any, source: str, at_once: bool) -> None:
+        """New constants for a station: in use at once, or left for the processing thread."""
+        with self._model_lock:
+            rt.new_model = (model, source)
+        if at_once:
+            self._take_new_model(rt)
+
+    def _take_new_model(self, rt: StationRuntime) -> None:
+        """Put in use the constants a fit left for this station, if any (between passes, on
+        the processing thread: a pass sees one model from its start to its end)."""
+        with self._model_lock:
+            offered, rt.new_model = rt.new_model, None
+        if offered is None:
+            return
+        rt.model, rt.model_source = offered
+        rt.extremes, rt.extremes_span = None, (math.inf, -math.inf)
+        log.info("station %s: constants now %s", rt.cfg.id, rt.model_source)
+
+    def job_refit(self) -> None:
+        """The hourly refit job, on the fits worker with a connection of its own (SQLite
+        connections are not shared between threads; WAL lets it read while processing writes)."""
+        try:
+            with Store.open(self.store.real_path, create=False) as store:
+                self.refit_due(store)
+        except Exception:
+            log.exception("refit failed; will retry")
+
+    def job_fit(self, rt: StationRuntime, now: float) -> None:
+        """A station's first fit, on the fits worker with a connection of its own."""
+        try:
+            with Store.open(self.store.real_path, create=False) as store:
+                self.refit(rt, now, store=store)
+        except Exception:
+            log.exception("station %s: fit failed; will retry", rt.cfg.id)
 
     # ------------------------------------------------------------------ outbox and reports
     def outbox_pending(self) -> int:
@@ -1277,22 +1342,28 @@ class Daemon:
         else:
             self.feeds_done_at = None
 
-    def run(self, until_exhausted: bool = False) -> int:
-        """Run the jobs until SIGTERM/SIGINT (or, with ``until_exhausted``, until the feeds end)."""
-        self.until_exhausted = until_exhausted
+    def build_scheduler(self) -> BackgroundScheduler:
+        """The jobs on a scheduler, not started: polling, processing and reports on one worker
+        (they never overlap), fits on another (``fits``) so processing never waits for one."""
         d = self.cfg.daemon
-        sched = BackgroundScheduler(executors={"default": ThreadPoolExecutor(1)},
+        sched = BackgroundScheduler(executors={"default": ThreadPoolExecutor(1), "fits": ThreadPoolExecutor(1)},
                                     job_defaults={"coalesce": True, "max_instances": 1,
                                                   "misfire_grace_time": None},
                                     timezone="UTC")
         sched.add_job(self.job_poll, "interval", seconds=d.poll_seconds, id="poll", next_run_time=_now_dt())
         sched.add_job(self.job_process, "interval", seconds=d.process_seconds, id="process")
-        if self.outbox is not None:
-            self.outbox_worker = OutboxWorker(self, d.outbox_seconds)
         # on the replayed clock a day passes in minutes, so reports are looked at more often
         sched.add_job(self.reports, "interval", seconds=max(2 * d.process_seconds, 5) if self.replay_clock else 600,
                       id="reports")
-        sched.add_job(self.refit_due, "interval", hours=1, id="refit", next_run_time=_now_dt())
+        sched.add_job(self.job_refit, "interval", hours=1, id="refit", next_run_time=_now_dt(), executor="fits")
+        return sched
+
+    def run(self, until_exhausted: bool = False) -> int:
+        """Run the jobs until SIGTERM/SIGINT (or, with ``until_exhausted``, until the feeds end)."""
+        self.until_exhausted = until_exhausted
+        sched = self.build_scheduler()
+        if self.outbox is not None:
+            self.outbox_worker = OutboxWorker(self, self.cfg.daemon.outbox_seconds)
 
         def on_signal(signum, _frame):
             log.info("signal %d: finishing the current batch, then stopping", signum)
@@ -1309,6 +1380,7 @@ class Daemon:
                 log.exception("outbox: taking over the claims of a previous run failed; they lapse on their own")
         if self.outbox_worker is not None:
             self.outbox_worker.start()
+        self.scheduler = sched
         sched.start()
         log.info("quaywatch daemon running (pid %d, store %s, %d feed(s), %d station(s))",
                  os.getpid(), self.store.path, len(self.feeds), len(self.stations))
@@ -1316,7 +1388,8 @@ class Daemon:
             while not self.stop.is_set() and not self.done.is_set():
                 self.stop.wait(0.2)
         finally:
-            sched.shutdown(wait=True)  # lets the job in hand finish its batch
+            sched.shutdown(wait=True)  # lets the job in hand finish its batch (a fit stops at its next chunk)
+            self.scheduler = None
             if self.outbox_worker is not None:
                 # a round in hand records each send before the next; one stuck on a server
                 # that does not answer is left (a restart takes its claim over at once)

@@ -379,14 +379,11 @@ def fit_spread(pairs: pd.DataFrame, pressure: bool = False, coverage: float = 0.
     order = np.unique(d["hw_t"].to_numpy(float), return_inverse=True)[1]
     n_hw = order.max() + 1
     fold = np.minimum(order * folds // max(n_hw, 1), folds - 1)
+    bc, bs, scored = _fold_fits(A, B, y, fold, folds)
     scores = np.full(len(y), np.nan)
-    for f in range(folds):
-        train, test = fold != f, fold == f
-        if train.sum() < 100 or not test.any():
-            continue
-        bc, bs = _fit_location_scale(A[train], B[train], y[train])
-        scores[test] = (y[test] - A[test] @ bc) / np.maximum(B[test] @ bs, MIN_SCALE)
-    bc, bs = _fit_location_scale(A, B, y)
+    for f, (fc, fs) in scored.items():
+        test = fold == f
+        scores[test] = (y[test] - A[test] @ fc) / np.maximum(B[test] @ fs, MIN_SCALE)
     band, storm = _band(lead), is_storm(r, q)
     quantiles = {}
     for b in range(len(LEAD_BANDS)):
@@ -398,10 +395,52 @@ def fit_spread(pairs: pd.DataFrame, pressure: bool = False, coverage: float = 0.
     return SpreadModel(pressure=pressure, centre=bc, scale=bs, quantiles=quantiles, coverage=coverage, pairs=len(y))
 
 
-def _fit_location_scale(A: np.ndarray, B: np.ndarray, y: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-    bc = np.linalg.lstsq(A, y, rcond=None)[0]
-    bs = np.linalg.lstsq(B, np.abs(y - A @ bc), rcond=None)[0]
-    return bc, bs
+def _fold_fits(A: np.ndarray, B: np.ndarray, y: np.ndarray, fold: np.ndarray,
+               folds: int) -> tuple[np.ndarray, np.ndarray, dict]:
+    """The location-scale fit to all rows and to each fold's complement, by normal equations.
+
+    Each fold's sums (``A'A``, ``A'y``, ``B'B`` and ``B'|y - A c|`` for every centre ``c``)
+    are taken once; a complement's fit is the total minus its fold's, so the cost is one pass
+    over the rows, not one least-squares problem per fold (the same solutions as
+    ``np.linalg.lstsq`` on the rows, to rounding: ``tests/test_surge_forecast.py`` checks
+    them against it).
+
+    Returns
+    -------
+    centre, scale : ndarray
+        The fit to all rows.
+    scored : dict
+        ``{fold: (centre, scale)}`` of the fits to each fold's complement, for the folds
+        with a complement of at least 100 rows and rows of their own.
+    """
+    members = [fold == f for f in range(folds)]
+    gram_a = np.array([A[m].T @ A[m] for m in members])
+    rhs_a = np.array([A[m].T @ y[m] for m in members])
+    gram_b = np.array([B[m].T @ B[m] for m in members])
+    sizes = np.array([int(m.sum()) for m in members])
+    fitted = [f for f in range(folds) if len(y) - sizes[f] >= 100 and sizes[f] > 0]
+    centres = [_solve(gram_a.sum(0) - gram_a[f], rhs_a.sum(0) - rhs_a[f]) for f in fitted]
+    centres.append(_solve(gram_a.sum(0), rhs_a.sum(0)))
+    spread = np.abs(y[:, None] - A @ np.column_stack(centres))      # |y - A c| for every centre
+    rhs_b = np.array([B[m].T @ spread[m] for m in members])         # (folds, columns of B, centres)
+    scored = {}
+    for j, f in enumerate(fitted):
+        scale = _solve(gram_b.sum(0) - gram_b[f], rhs_b[:, :, j].sum(0) - rhs_b[f, :, j])
+        scored[f] = (centres[j], scale)
+    return centres[-1], _solve(gram_b.sum(0), rhs_b[:, :, -1].sum(0)), scored
+
+
+#: Largest condition number of a normal-equations matrix solved directly (about 1e-4 of the
+#: float64 precision left); above it the minimum-norm solution is taken.
+_MAX_CONDITION = 1e12
+
+
+def _solve(gram: np.ndarray, rhs: np.ndarray) -> np.ndarray:
+    """The least-squares coefficients from the normal equations ``gram x = rhs`` (the
+    minimum-norm solution where the columns are dependent, as ``lstsq`` on the rows)."""
+    if np.linalg.cond(gram) < _MAX_CONDITION:
+        return np.linalg.solve(gram, rhs)
+    return np.linalg.lstsq(gram, rhs, rcond=None)[0]
 
 
 def unconditioned_quantiles(residual_grid: pd.Series, lead_s: float, coverage: float = 0.90) -> tuple | None:
@@ -493,6 +532,51 @@ def _type7_in_window(values: np.ndarray, finite: np.ndarray, n: int, p: float, l
         return float(np.quantile(values[finite], p))
     pair = np.partition(inside, (j - below, j + 1 - below))[[j - below, j + 1 - below]]
     return float(np.quantile(pair, position - math.floor(position)))
+
+
+# --------------------------------------------------------------------------- when to learn again
+
+#: Least data time between two learns [s] (the daemon's ``HISTORY_REFRESH`` passes its own).
+RELEARN_MIN_S = 6 * 3600
+#: In calm weather a learnt forecaster stands for this much data time per year of history it
+#: learnt from [s]: the data new since then is at most 1/365 of what it learnt from.
+RELEARN_PER_YEAR_S = 86400
+
+
+def relearn_due(forecaster: "SurgeForecaster", since_s: float, storm_seen: bool,
+                least_s: float = RELEARN_MIN_S) -> bool:
+    """Whether a learnt forecaster should learn again from the history.
+
+    A learn reads and fits the whole history (three years: about 1.5 s of CPU, two thirds of
+    it the store's read), so it comes after more than ``least_s`` of new data at the soonest,
+    and in calm weather once the new data reaches a day per year of history
+    (:data:`RELEARN_PER_YEAR_S`). What it would change is bounded by that share: the new high
+    waters are 1/365 of those learnt from, so a conformal quantile moves by about that share
+    of its order statistics (about 0.3 percentage point of coverage; more in the storm cells,
+    which hold fewer scores, when the new days held a storm) plus what the new pairs move the
+    coefficients by (``tests/test_forecast_relearn.py`` measures it with a storm in the new
+    days, against a learn on all the data).
+
+    A storm in progress on a station that has not yet learnt a conditioned model (too few
+    storms) brings the learn back every ``least_s``: this storm may be the one that makes up
+    the count, and its skew surges should enter at once.
+
+    Parameters
+    ----------
+    forecaster : SurgeForecaster
+        The forecaster in use.
+    since_s : float
+        Data time since it learnt [s].
+    storm_seen : bool
+        Storm conditions were seen since it learnt.
+    least_s : float
+        Least data time between two learns [s].
+    """
+    if since_s <= least_s:
+        return False
+    if storm_seen and forecaster.models.get(False) is None:
+        return True
+    return since_s >= forecaster.history_days / 365.25 * RELEARN_PER_YEAR_S
 
 
 # --------------------------------------------------------------------------- forecasting
