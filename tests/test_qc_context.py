@@ -18,10 +18,11 @@ import pytest
 
 from monitor.quality import checks as qc
 from monitor.quality import diagnostics
-from monitor.quality.checks import QcSettings, run_station_qc, run_tests, set_override
+from monitor.quality.checks import QcSettings, run_station_qc, set_override
 from monitor.quality.context import QcContext, QcRows
 from monitor.service.daemon import PredictionMemo
 from monitor.store.database import Store
+from reference_qc import whole_record_tests
 from units import cm, hour, minute
 
 T0 = 1_761_000_000 - 1_761_000_000 % 60
@@ -62,22 +63,12 @@ def _reference(store: Store, model, s: QcSettings, now: float) -> dict[str, pd.D
     """Every test over the whole record stored so far, both sensors combined as the station
     pass combines them, with pandas' rolling windows; the technician's overrides applied."""
     obs = {sn: qc.read_observations(store, STATION, sn)["value"] for sn in ("primary", "backup")}
-    preds = {sn: model.predict(x.index) for sn, x in obs.items()}
-    single = {sn: run_tests(x, s, preds[sn], None, now, position=(50.2, -4.1)) for sn, x in obs.items()}
-    out = {}
-    for sn, o in (("primary", "backup"), ("backup", "primary")):
-        tests = single[sn].copy()
-        other_ok = obs[o].where(single[o]["flag"].to_numpy() != qc.FAIL)
-        shape_only = ~(single[o][[c for c in qc.TESTS if c not in ("spike", "resid")]] == qc.FAIL).any(axis=1)
-        tests["multi"] = qc.multi_sensor_test(obs[sn], other_ok, s.multi_suspect, s.gap_limit)
-        tests["multi"] = tests["multi"].where(tests["syntax"] != qc.MISSING, qc.NOT_EVALUATED)
-        tests["flag"] = qc.aggregate_flags(tests)
-        tests = qc._confirm(tests, obs[sn], obs[sn] - preds[sn], obs[o].where(shape_only.to_numpy()), s)
+    out = whole_record_tests(obs, model, s, now, position=(50.2, -4.1))
+    for sn, tests in out.items():
         ov = store.conn.execute("SELECT t, flag FROM qc_overrides WHERE station = ? AND sensor = ?",
                                 (STATION, sn)).fetchall()
         for t_ov, f_ov in ov:
             tests.loc[pd.Timestamp(t_ov, unit="s", tz="UTC"), "flag"] = f_ov
-        out[sn] = tests
     return out
 
 

@@ -14,6 +14,7 @@ import pytest
 
 from monitor.quality.checks import QcSettings, run_tests
 from monitor.quality.checks import run_tests_tail
+from reference_qc import whole_record_tests
 
 minute = 60
 hour = 3600
@@ -120,23 +121,8 @@ class _Tide:
 
 def _reference(level: pd.Series, backup: pd.Series, model, settings: QcSettings, now: float) -> dict:
     """The tests over the whole record as stored so far, both sensors, as the station pass
-    combines them (pandas' windows throughout: ``run_tests`` and ``_confirm``)."""
-    from monitor.quality import checks as qc
-
-    obs = {"primary": level, "backup": backup}
-    preds = {sn: model.predict(x.index) for sn, x in obs.items()}
-    single = {sn: run_tests(x, settings, preds[sn], None, now) for sn, x in obs.items()}
-    out = {}
-    for sn, o in (("primary", "backup"), ("backup", "primary")):
-        tests = single[sn].copy()
-        other_ok = obs[o].where(single[o]["flag"].to_numpy() != qc.FAIL)
-        shape_only = ~(single[o][[c for c in qc.TESTS if c not in ("spike", "resid")]] == qc.FAIL).any(axis=1)
-        tests["multi"] = qc.multi_sensor_test(obs[sn], other_ok, settings.multi_suspect, settings.gap_limit)
-        tests["multi"] = tests["multi"].where(tests["syntax"] != qc.MISSING, qc.NOT_EVALUATED)
-        tests["flag"] = qc.aggregate_flags(tests)
-        tests = qc._confirm(tests, obs[sn], obs[sn] - preds[sn], obs[o].where(shape_only.to_numpy()), settings)
-        out[sn] = tests
-    return out
+    combines them (pandas' windows throughout)."""
+    return whole_record_tests({"primary": level, "backup": backup}, model, settings, now)
 
 
 def test_each_pass_through_the_store_writes_the_flags_of_a_whole_record_run(tmp_path):

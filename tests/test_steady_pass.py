@@ -188,7 +188,10 @@ def test_the_run_has_a_storm_alert_a_spike_and_skew_surges(runs):
 @pytest.mark.parametrize("table", ["skew_surges", "hw_forecasts", "hw_forecast_log", "alert_state",
                                    "alert_episodes", "outbox", "flags", "processed"])
 def test_the_pass_from_memory_stores_what_the_full_way_stores(runs, table):
-    assert _same_rows(runs["memory"][table], runs["full"][table])
+    # Floats to a nanometre: the prediction memo predicts in other batches on each way (quality
+    # control asks an hour ahead), and the tide model's sums differ in their last bits with the
+    # batch (about 1e-11 m); every other field, and every flag, step and message, exactly.
+    assert _same_rows(runs["memory"][table], runs["full"][table], tol=1e-9)
 
 
 def test_derived_rows_from_memory_equal_the_full_way_to_the_last_bits(runs):
