@@ -114,7 +114,7 @@ class _Sensor:
         """The packed qc_tests rows held as stored at ``rows`` (-1: not known)."""
         i = rows - self.packed_at
         inside = (i >= 0) & (i < len(self.packed))
-        return np.where(inside, self.packed[np.clip(i, 0, max(len(self.packed) - 1, 0))], -1) \
+        return np.where(inside, self.packed[np.minimum(np.maximum(i, 0), len(self.packed) - 1)], -1) \
             if len(self.packed) else np.full(len(rows), -1, dtype=np.int64)
 
     def keep_from(self, row: int) -> None:
