@@ -377,6 +377,7 @@ class StationRuntime:
     tail: "DerivedTail | None" = field(default=None, repr=False)
     tail_model: Any = field(default=None, repr=False)
     tail_end: int | None = None
+    horizon: tuple | None = field(default=None, repr=False)  # (cfg, its longest clear_horizon)
 
     # The tide's extremes (kept about a week) are kept as plain arrays: the pass reads
     # ``turns``; code that needs the table gets a new pandas object at each read (see Frozen).
@@ -662,7 +663,10 @@ class Daemon:
             view = self.rules_mod.StationView(id=st.id, name=st.name, tz=st.tz, datums=dict(st.datums),
                                                notes=st.note, display_datum=st.display_datum,
                                                datum_note=st.datum_note,
-                                               forms=getattr(self.cfg.mail, "forms", ()) or ())
+                                               forms=getattr(self.cfg.mail, "forms", ()) or (),
+                                               # as evaluate() would make them at each pass (its
+                                               # subsets of the rules keep every level_above rule)
+                                               marks=self.engine.station_marks(st.rules or ()))
         kinds = [getattr(s.feed, "kind", None) for s in st.sensors.values() if s.feed is not None]
         rt = StationRuntime(cfg=st, model=model, model_source=source, view=view,
                             replay_clock=bool(kinds) and all(k == "replay" for k in kinds))
@@ -1018,7 +1022,13 @@ class Daemon:
 
     @staticmethod
     def _horizon_delta(rt: StationRuntime) -> pd.Timedelta:
-        return pd.Timedelta(seconds=max((getattr(r, "clear_horizon", 0.0) for r in rt.cfg.rules or ()), default=0.0))
+        """The station's longest ``clear_horizon``, made once per configuration (frozen)."""
+        made = rt.horizon
+        if made is None or made[0] is not rt.cfg:
+            delta = pd.Timedelta(seconds=max((getattr(r, "clear_horizon", 0.0) for r in rt.cfg.rules or ()),
+                                             default=0.0))
+            made = rt.horizon = (rt.cfg, delta)
+        return made[1]
 
     @staticmethod
     def _issue_times(start_t: int, end_t: int) -> list[int]:
