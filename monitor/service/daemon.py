@@ -1115,15 +1115,30 @@ class Daemon:
         usable = lambda o: self.diag.usable_only(o["value"], o["flag"].to_numpy())  # noqa: E731  flags 1, 2, 3 only
         qs = st.qc or self.qc.QcSettings()
         window = qs.drift_window
+        drift_from = int(end_t - window)
+        a = int(end_t - self.cfg.daemon.clock_window_days * 86400)
+        # each level sensor read once, over the longer of the spans that use it
+        spans: dict[str, int] = {}
+        if "backup" in st.sensors:
+            spans.update(primary=drift_from, backup=drift_from)
+        if rt.model is not None:
+            for r in st.sensors:
+                if r != "barometer":
+                    spans[r] = min(spans.get(r, a), a)
         try:
+            read = {r: store.observations(st.id, r, lo, end_t) for r, lo in spans.items()}
+
+            def since(r: str, lo: int) -> pd.DataFrame:
+                o = read[r]
+                return o if lo <= spans[r] else o[o.index >= pd.Timestamp(lo, unit="s", tz="UTC")]
+
             if "backup" in st.sensors:
-                p = usable(store.observations(st.id, "primary", int(end_t - window), end_t))
-                b = usable(store.observations(st.id, "backup", int(end_t - window), end_t))
+                p = usable(since("primary", drift_from))
+                b = usable(since("backup", drift_from))
                 if len(p) and len(b):
                     out["drift"] = self.diag.sensor_drift(p, b, gap_limit=qs.gap_limit)
             if rt.model is not None:
-                a = int(end_t - self.cfg.daemon.clock_window_days * 86400)
-                levels = {r: usable(store.observations(st.id, r, a, end_t)) for r in st.sensors if r != "barometer"}
+                levels = {r: usable(since(r, a)) for r in st.sensors if r != "barometer"}
                 for role, o in levels.items():
                     if role == "backup" and len(levels.get("primary", ())) > 1 and len(o) > 1:
                         # Against the primary the surge cancels: the relative clock comes first.
