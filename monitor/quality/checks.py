@@ -634,8 +634,9 @@ def difference_on_arrays(t: np.ndarray, v: np.ndarray, to: np.ndarray, vo: np.nd
     if len(to) == 0:
         return np.full(len(t), np.nan)
     j = np.searchsorted(to, t)
-    jl = np.clip(j - 1, 0, len(to) - 1)
-    jr = np.clip(j, 0, len(to) - 1)
+    # (np.minimum/np.maximum, not np.clip: the same integers without clip's overhead)
+    jl = np.maximum(j - 1, 0)
+    jr = np.minimum(j, len(to) - 1)
     exact = to[jr] == t
     bracket = (j > 0) & (j < len(to)) & (t - to[jl] <= gap_limit) & (to[jr] - t <= gap_limit)
     interp = np.interp(t, to, vo)
@@ -1163,6 +1164,21 @@ def _tail(level: pd.Series, s: QcSettings, predicted: Any, other: pd.Series | No
     return frame
 
 
+_IS_SYNTAX = np.array([c == "syntax" for c in TESTS])
+
+
+def _median_step(t: np.ndarray) -> float:
+    """``float(np.median(np.diff(t)))`` [s] of sorted times ``t`` [s] (no NaN), selected with
+    ``np.partition`` as numpy's median does (the mean of the two middle steps for an even
+    count, summed then halved as ``np.mean`` does), without ``np.median``'s overhead."""
+    d = np.diff(t)
+    half = len(d) // 2
+    if len(d) % 2:
+        return float(np.partition(d, half)[half])
+    part = np.partition(d, (half - 1, half))
+    return float((part[half - 1] + part[half]) / 2)
+
+
 def tail_table(tn: np.ndarray, v: np.ndarray, p: np.ndarray | None, s: QcSettings, now: float | None,
                position: tuple[float, float] | None, k: int, memo: "ResidMemo | None" = None) -> np.ndarray:
     """The single-sensor tests of rows ``k:`` on plain arrays (no co-located sensor: the
@@ -1263,7 +1279,7 @@ def tail_table(tn: np.ndarray, v: np.ndarray, p: np.ndarray | None, s: QcSetting
     atten = np.full(n - k, NOT_EVALUATED, dtype=np.int8)
     if p is not None and n and n - k:
         obs_range, pred_range, count = _atten_ranges(v, p, bad, tn, k, s, memo, keep)
-        step = float(np.median(np.diff(t))) if n > 1 else s.atten_window
+        step = _median_step(t) if n > 1 else s.atten_window
         span_ok = (t[tail] - t[0]) >= s.atten_window - step
         covered = span_ok & (count * step >= 0.8 * s.atten_window)
         with np.errstate(invalid="ignore", divide="ignore"):
@@ -1282,8 +1298,12 @@ def tail_table(tn: np.ndarray, v: np.ndarray, p: np.ndarray | None, s: QcSetting
     missing = out["syntax"] == MISSING
     if n - k == 0:
         return np.zeros((0, len(TESTS)), np.int8)
-    return np.column_stack([np.where(missing & (c != "syntax"), NOT_EVALUATED, out[c]).astype(np.int8)
-                            for c in TESTS])
+    table = np.empty((n - k, len(TESTS)), dtype=np.int8)
+    for j, c in enumerate(TESTS):
+        table[:, j] = out[c]
+    if missing.any():  # a missing value: every test but syntax says not evaluated
+        table[missing] = np.where(_IS_SYNTAX, MISSING, NOT_EVALUATED)
+    return table
 
 
 def _spike_all(rc: np.ndarray, t: np.ndarray, s: QcSettings, memo: "ResidMemo | None") -> np.ndarray:

@@ -20,13 +20,15 @@ overrides table's largest row id). An error inside a pass forgets the context.
 """
 from __future__ import annotations
 
+import contextlib
 import math
 import time as _time
-from typing import Any
+from typing import Any, Callable
 
 import numpy as np
 import pandas as pd
 
+from alerts.transactions import transaction
 from monitor.quality import checks as _qc
 from monitor.quality.checks import FAIL, MISSING, NOT_EVALUATED, TESTS, QcSettings
 
@@ -114,7 +116,7 @@ class _Sensor:
         """The packed qc_tests rows held as stored at ``rows`` (-1: not known)."""
         i = rows - self.packed_at
         inside = (i >= 0) & (i < len(self.packed))
-        return np.where(inside, self.packed[np.clip(i, 0, max(len(self.packed) - 1, 0))], -1) \
+        return np.where(inside, self.packed[np.minimum(np.maximum(i, 0), len(self.packed) - 1)], -1) \
             if len(self.packed) else np.full(len(rows), -1, dtype=np.int64)
 
     def keep_from(self, row: int) -> None:
@@ -280,6 +282,7 @@ class QcContext:
             table = _qc.tail_table(h.t * 1_000_000_000, h.v, h.p, s, now, position, k, h.memo)
             single[sn] = (k, table)
         results: dict[str, QcRows] = {}
+        writes = []
         for sn, h in self.sensors.items():
             k, table = single[sn]
             others = [o for o in self.sensors if o != sn]
@@ -309,17 +312,27 @@ class QcContext:
                 pos = np.minimum(np.searchsorted(h.ov_t, h.t[rows]), len(h.ov_t) - 1)
                 hit = h.ov_t[pos] == h.t[rows]
                 flag = np.where(hit, h.ov_f[pos], flag).astype(np.int8)
-            self._write(db, station, sn, h, rows, part, flag)
+            writes.append((sn, h, rows, part, flag))
             results[sn] = QcRows(h.t[rows], part, flag)
-            # a steady next pass judges from one resid_window and two gap limits before its start
-            h.keep_from(int(np.searchsorted(h.t, end_t - s.resid_window - 2 * s.gap_limit - 1)))
+        # every sensor's writes in one transaction (begun only if something changed)
+        with contextlib.ExitStack() as stack:
+            begun: list = []
+
+            def begin() -> None:
+                if not begun:
+                    begun.append(stack.enter_context(transaction(db.conn)))
+            for sn, h, rows, part, flag in writes:
+                self._write(db, station, sn, h, rows, part, flag, begin)
+                # a steady next pass judges from one resid_window and two gap limits before its start
+                h.keep_from(int(np.searchsorted(h.t, end_t - s.resid_window - 2 * s.gap_limit - 1)))
         return results
 
     @staticmethod
     def _write(db: Any, station: str, sensor: str, h: _Sensor, rows: np.ndarray, part: np.ndarray,
-               flag: np.ndarray) -> None:
+               flag: np.ndarray, begin: Callable[[], None]) -> None:
         """Write the ``qc_tests`` rows that differ from those held as stored, and
-        ``observations.flag`` where it differs from the stored flag (one transaction)."""
+        ``observations.flag`` where it differs from the stored flag (``begin()`` first: the
+        pass's one transaction, begun at its first write)."""
         if not len(rows):
             return
         packed = part.astype(np.int64) @ _PACK
@@ -328,6 +341,7 @@ class QcContext:
         if not todo.any() and not changed.any():
             return
         t = h.t[rows]
+        begin()
         _qc.write_rows(db, station, sensor, t[todo], part[todo], t[changed], flag[changed])
         i = rows - h.packed_at
         if i[0] < 0:  # rows before those kept (not on a steady pass): hold them again

@@ -388,6 +388,7 @@ class StationRuntime:
     tail: "DerivedTail | None" = field(default=None, repr=False)
     tail_model: Any = field(default=None, repr=False)
     tail_end: int | None = None
+    horizon: tuple | None = field(default=None, repr=False)  # (cfg, its longest clear_horizon)
 
     # The tide's extremes (kept about a week) are kept as plain arrays: the pass reads
     # ``turns``; code that needs the table gets a new pandas object at each read (see Frozen).
@@ -675,7 +676,10 @@ class Daemon:
             view = self.rules_mod.StationView(id=st.id, name=st.name, tz=st.tz, datums=dict(st.datums),
                                                notes=st.note, display_datum=st.display_datum,
                                                datum_note=st.datum_note,
-                                               forms=getattr(self.cfg.mail, "forms", ()) or ())
+                                               forms=getattr(self.cfg.mail, "forms", ()) or (),
+                                               # as evaluate() would make them at each pass (its
+                                               # subsets of the rules keep every level_above rule)
+                                               marks=self.engine.station_marks(st.rules or ()))
         kinds = [getattr(s.feed, "kind", None) for s in st.sensors.values() if s.feed is not None]
         rt = StationRuntime(cfg=st, model=model, model_source=source, view=view,
                             replay_clock=bool(kinds) and all(k == "replay" for k in kinds))
@@ -1034,7 +1038,13 @@ class Daemon:
 
     @staticmethod
     def _horizon_delta(rt: StationRuntime) -> pd.Timedelta:
-        return pd.Timedelta(seconds=max((getattr(r, "clear_horizon", 0.0) for r in rt.cfg.rules or ()), default=0.0))
+        """The station's longest ``clear_horizon``, made once per configuration (frozen)."""
+        made = rt.horizon
+        if made is None or made[0] is not rt.cfg:
+            delta = pd.Timedelta(seconds=max((getattr(r, "clear_horizon", 0.0) for r in rt.cfg.rules or ()),
+                                             default=0.0))
+            made = rt.horizon = (rt.cfg, delta)
+        return made[1]
 
     @staticmethod
     def _issue_times(start_t: int, end_t: int) -> list[int]:
@@ -1124,15 +1134,30 @@ class Daemon:
         usable = lambda o: self.diag.usable_only(o["value"], o["flag"].to_numpy())  # noqa: E731  flags 1, 2, 3 only
         qs = st.qc or self.qc.QcSettings()
         window = qs.drift_window
+        drift_from = int(end_t - window)
+        a = int(end_t - self.cfg.daemon.clock_window_days * 86400)
+        # each level sensor read once, over the longer of the spans that use it
+        spans: dict[str, int] = {}
+        if "backup" in st.sensors:
+            spans.update(primary=drift_from, backup=drift_from)
+        if rt.model is not None:
+            for r in st.sensors:
+                if r != "barometer":
+                    spans[r] = min(spans.get(r, a), a)
         try:
+            read = {r: store.observations(st.id, r, lo, end_t) for r, lo in spans.items()}
+
+            def since(r: str, lo: int) -> pd.DataFrame:
+                o = read[r]
+                return o if lo <= spans[r] else o[o.index >= pd.Timestamp(lo, unit="s", tz="UTC")]
+
             if "backup" in st.sensors:
-                p = usable(store.observations(st.id, "primary", int(end_t - window), end_t))
-                b = usable(store.observations(st.id, "backup", int(end_t - window), end_t))
+                p = usable(since("primary", drift_from))
+                b = usable(since("backup", drift_from))
                 if len(p) and len(b):
                     out["drift"] = self.diag.sensor_drift(p, b, gap_limit=qs.gap_limit)
             if rt.model is not None:
-                a = int(end_t - self.cfg.daemon.clock_window_days * 86400)
-                levels = {r: usable(store.observations(st.id, r, a, end_t)) for r in st.sensors if r != "barometer"}
+                levels = {r: usable(since(r, a)) for r in st.sensors if r != "barometer"}
                 for role, o in levels.items():
                     if role == "backup" and len(levels.get("primary", ())) > 1 and len(o) > 1:
                         # Against the primary the surge cancels: the relative clock comes first.

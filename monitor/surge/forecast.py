@@ -677,7 +677,7 @@ class SurgeForecaster:
         if self.spread is None:
             return (np.full(len(lead_h), -NO_HISTORY_HALF_WIDTH), np.full(len(lead_h), NO_HISTORY_HALF_WIDTH))
         keys = np.rint(np.asarray(lead_h) * 3600 / GRID_S).astype(int)
-        rows = self.spread[np.clip(keys, 0, len(self.spread) - 1)]
+        rows = self.spread[np.minimum(np.maximum(keys, 0), len(self.spread) - 1)]
         known = np.isfinite(rows).all(axis=1)
         lo = np.where(known, rows[:, 0], -NO_HISTORY_HALF_WIDTH)
         hi = np.where(known, rows[:, 1], NO_HISTORY_HALF_WIDTH)

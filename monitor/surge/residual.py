@@ -125,8 +125,8 @@ def pressure_at_seconds(tt: np.ndarray, tp: np.ndarray, pv: np.ndarray, max_gap_
     tp = np.asarray(tp, dtype=float)
     out = np.interp(tt, tp, np.asarray(pv, dtype=float), left=np.nan, right=np.nan)
     j = np.searchsorted(tp, tt)
-    left = tp[np.clip(j - 1, 0, len(tp) - 1)]
-    right = tp[np.clip(j, 0, len(tp) - 1)]
+    left = tp[np.maximum(j - 1, 0)]  # (searchsorted's j is within 0..len: no np.clip needed)
+    right = tp[np.minimum(j, len(tp) - 1)]
     exact = right == tt
     out[(right - left > max_gap_s) & ~exact] = np.nan
     return out
