@@ -15,6 +15,8 @@ import pytest
 import reference_tide as ref
 from predictor import confidence as ci
 from predictor import harmonic_fit, harmonic_fit_chunks
+from predictor import nodal
+from predictor.fit import _build_design
 from predictor.errors import FitInputError
 from units import mm, hour, day, degree
 
@@ -149,8 +151,6 @@ def test_design_rows_by_phasor_steps_equal_the_per_sample_formula():
     # every sample, no daily interpolation, no table), so a wrong ramp (up to 5e-4 rad a day
     # for OO1) or a wrong table entry shows. Nodal terms themselves are checked against
     # published values in tests/test_nodal.py.
-    from predictor import nodal
-    from predictor.fit import _build_design
 
     names = ["M2", "K1", "OO1", "M1", "L2", "Mf", "Sa", "MK3"]
     t = START + 400 * day + np.arange(0.0, 3 * day, 60.0)

@@ -14,6 +14,9 @@ import math
 import numpy as np
 import pytest
 
+from monitor.service.config import validate_config
+from monitor.service.daemon import Daemon
+from monitor.store.database import Store
 from predictor import TideModel
 from units import hour, minute, mm
 
@@ -52,10 +55,6 @@ def _record():
 
 
 def _site(tmp_path):
-    from monitor.service.config import validate_config
-    from monitor.service.daemon import Daemon
-    from monitor.store.database import Store
-
     MODEL.save(tmp_path / "c.toml")
     rules = [{"id": "surge", "when": "residual_above", "hold": 0, "notify": ["duty@port.invalid"],
               "steps": [{"name": "raised", "at": 0.3}]},
@@ -84,8 +83,6 @@ def _refit(d):
 
 
 def _run_a_sample_a_pass(tmp_path, monkeypatch, steady: bool):
-    from monitor.service.daemon import Daemon
-
     if not steady:
         monkeypatch.setattr(Daemon, "_steady", lambda *a, **k: False)
     calls = {"memory": 0, "full": 0}
