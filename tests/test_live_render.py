@@ -147,6 +147,15 @@ def test_headline_order_and_alarms():
     assert alarms["stale"] and alarms["forecast"] and alarms["alerts"]
 
 
+def test_open_alerts_read_rule_then_step():
+    # "gauge at equipment fault since ..." read as if the gauge stood at a place
+    snap = sample_snapshot(episodes=[{"rule": "gauge", "step_now": "equipment fault", "opened_at": NOW - hour,
+                                      "messages": []}])
+    text = {ln.key: ln.text for ln in headline(snap)}["alerts"]
+    assert text.startswith("Alerts open (1): gauge: equipment fault since ")
+    assert " at equipment fault" not in text
+
+
 def test_compact_headline_names_only_marks_at_risk():
     snap = sample_snapshot()
     full = {ln.key: ln.text for ln in headline(snap)}

@@ -120,7 +120,7 @@ def headline(snap: Snapshot, compact: bool = False) -> list[Line]:
                                       f"{fc['forecast']:.2f} m{rng}{tide}"
                                       + (f": {marks}." if marks else "."), reach))
     if snap.episodes:
-        parts = [f"{e.get('rule')} at {e.get('step_now') or e.get('top_step')} since "
+        parts = [f"{e.get('rule')}: {e.get('step_now') or e.get('top_step')} since "
                  f"{local_time(e.get('opened_at'), tz, snap.now)}" for e in snap.episodes]
         lines.append(Line("alerts", f"Alerts open ({len(parts)}): " + "; ".join(parts) + ".", True))
     else:
