@@ -426,9 +426,8 @@ class TideTurns:
     def high_waters(self, after: pd.Timestamp, until: pd.Timestamp) -> list[tuple[float, float]]:
         """(time [Unix s], level [m]) of the high waters after ``after`` up to ``until``, at
         least the next (as :func:`monitor.surge.residual.high_waters_within`)."""
-        after_t = np.array([after.as_unit("ns").value], dtype=np.int64) / 1e9
-        rows = surge_residual.high_water_rows(self.t, self.t_ns, self.high, self.stand, self.level, after_t[0],
-                                              until.as_unit("ns").value)
+        rows = surge_residual.high_water_rows(self.t, self.t_ns, self.high, self.stand, self.level,
+                                              after.as_unit("ns").value / 1e9, until.as_unit("ns").value)
         return [(float(self.stamp[i]), float(self.level[i])) for i in rows]
 
 
@@ -947,6 +946,9 @@ class Daemon:
         changed = tail.differs(t[w], rows)
         new = int((t >= start_t).sum())
         self._ensure_extremes(rt, start_t, end_t)
+        # before the write transaction: a learn reads years of history (about a second), and
+        # the store's other writers (the outbox thread) must not wait for it
+        self._learn(rt, end_t, "barometer" in st.sensors)
         with store.transaction():  # one commit for the derived rows, skew surges and forecasts
             store.write_derived_rows(st.id, t[w][changed], {c: v[changed] for c, v in rows.items()})
             tail.merge(t[w], rows, end_t - TAIL_KEEP)
@@ -1014,11 +1016,11 @@ class Daemon:
         return fcs
 
     def _forecast_in_memory(self, rt: StationRuntime, tail: DerivedTail, start_t: int, end_t: int) -> list[dict]:
-        """:meth:`_forecast` from the rows held in memory and the extremes as arrays."""
+        """:meth:`_forecast` from the rows held in memory and the extremes as arrays (the
+        forecaster learnt by the caller, outside its transaction)."""
         st = rt.cfg
         horizon = self._horizon_delta(rt)
         barometer = "barometer" in st.sensors
-        self._learn(rt, end_t, barometer)
         rt_s, rv = tail.smoothed_between(start_t - FORECAST_BACK, end_t)
         pressure_now = None
         if barometer:

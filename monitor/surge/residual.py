@@ -13,6 +13,7 @@ import numpy as np
 import pandas as pd
 
 from predictor.extrema import classify_stands
+from predictor.timeutil import index_seconds, utc_index
 
 # QARTOD flags (U.S. IOOS 2021): 4 fail and 9 missing never enter the smoothed residual.
 _UNUSABLE = (4, 9)
@@ -113,7 +114,7 @@ def pressure_at(times: pd.DatetimeIndex, pressure: pd.Series, max_gap_s: float =
     if pressure is None or pressure.empty or len(times) == 0:
         return np.full(len(times), np.nan)
     p = pressure.dropna()
-    return pressure_at_seconds(_secs(times), _secs(p.index), p.to_numpy(dtype=float), max_gap_s)
+    return pressure_at_seconds(index_seconds(pd.DatetimeIndex(times)), index_seconds(p.index), p.to_numpy(dtype=float), max_gap_s)
 
 
 def pressure_at_seconds(tt: np.ndarray, tp: np.ndarray, pv: np.ndarray, max_gap_s: float = 3600.0) -> np.ndarray:
@@ -304,7 +305,7 @@ def skew_surges(observed: pd.Series, extremes: pd.DataFrame, max_gap_s: float = 
     obs = observed.dropna()
     if obs.empty or extremes is None or extremes.empty:
         return pd.DataFrame(columns=cols)
-    t_obs = _secs(obs.index)
+    t_obs = index_seconds(obs.index)
     v_obs = obs.to_numpy(dtype=float)
     ext = tide_stands(extremes)
     lows = ext.loc[(ext["kind"] == "low") & ext["principal"], "t"].to_numpy()
@@ -357,7 +358,7 @@ def tide_stands(extremes: pd.DataFrame) -> pd.DataFrame:
     NOAA (2003). Computational Techniques for Tidal Datums Handbook (glossary: double high water).
     """
     ext = extremes.copy()
-    ext["t"] = _secs(pd.DatetimeIndex(ext["time"]))
+    ext["t"] = index_seconds(pd.DatetimeIndex(ext["time"]))
     ext = ext.sort_values("t", kind="stable").reset_index(drop=True)
     if "stand" not in ext.columns or "principal" not in ext.columns:
         # rows of one kind in a row are one stand already (a table that left the dip out)
@@ -382,7 +383,7 @@ def next_high_water(extremes: pd.DataFrame, after: pd.Timestamp) -> pd.Series | 
     to come. ``extremes`` must reach past the stand's last peak.
     """
     ext = tide_stands(extremes)
-    after_t = _secs(pd.DatetimeIndex([pd.Timestamp(after)]))[0]
+    after_t = index_seconds(pd.DatetimeIndex([pd.Timestamp(after)]))[0]
     highs = ext[(ext["kind"] == "high") & (ext["t"] > after_t)]
     if highs.empty:
         return None
@@ -396,8 +397,8 @@ def high_waters_within(extremes: pd.DataFrame, after: pd.Timestamp, until: pd.Ti
     the next one even when it falls after ``until``. Columns ``time``, ``level``; empty when
     none."""
     ext = tide_stands(extremes)
-    after_t = _secs(pd.DatetimeIndex([pd.Timestamp(after)]))[0]
-    rows = high_water_rows(ext["t"].to_numpy(dtype=float), _ns(ext["time"]), (ext["kind"] == "high").to_numpy(),
+    after_t = index_seconds(pd.DatetimeIndex([pd.Timestamp(after)]))[0]
+    rows = high_water_rows(ext["t"].to_numpy(dtype=float), utc_index(pd.DatetimeIndex(ext["time"])).as_unit("ns").asi8, (ext["kind"] == "high").to_numpy(),
                            ext["stand"].to_numpy(), ext["level"].to_numpy(dtype=float), after_t,
                            pd.Timestamp(until).as_unit("ns").value)
     if len(rows) == 0:
@@ -423,17 +424,3 @@ def high_water_rows(t: np.ndarray, t_ns: np.ndarray, high: np.ndarray, stand: np
     keep = t_ns[best] <= until_ns
     keep[0] = True
     return best[keep]
-
-
-def _ns(times) -> np.ndarray:
-    idx = pd.DatetimeIndex(times)
-    if idx.tz is not None:
-        idx = idx.tz_convert("UTC").tz_localize(None)
-    return idx.as_unit("ns").asi8
-
-
-def _secs(index: pd.DatetimeIndex) -> np.ndarray:
-    idx = pd.DatetimeIndex(index)
-    if idx.tz is not None:
-        idx = idx.tz_convert("UTC").tz_localize(None)
-    return idx.to_numpy(dtype="datetime64[ns]").astype(np.int64) / 1e9
