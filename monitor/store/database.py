@@ -67,6 +67,14 @@ CONFLICT = "conflict"
 SAME_VALUE = 1e-6
 
 
+def _as_arrays(rows: list[tuple]) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Rows of (t, value, flag) as arrays: times [Unix s, int64], values, flags (int64)."""
+    if not rows:
+        return np.empty(0, np.int64), np.empty(0), np.empty(0, np.int64)
+    t, value, flag = zip(*rows)
+    return np.array(t, dtype=np.int64), np.array(value, dtype=float), np.array(flag, dtype=np.int64)
+
+
 class Store:
     """A quaywatch store. Open with :meth:`open`; use as a context manager to close it.
 
@@ -466,7 +474,7 @@ class Store:
         return frame
 
     def observation_chunks(self, station: str, sensor: str = "primary", start_t: int | None = None,
-                           end_t: int | None = None, rows: int = 65536, usable: bool = False):
+                           end_t: int | None = None, rows: int = 65536):
         """Observations of one sensor between two times (inclusive), in time order, a chunk at
         a time: memory holds one chunk whatever the span (a fit over decades reads this way).
 
@@ -474,9 +482,6 @@ class Store:
         ----------
         rows : int
             Samples per chunk.
-        usable : bool
-            Only samples whose aggregate flag is 1, 2 or 3 (failed and missing ones never
-            enter a fit).
 
         Yields
         ------
@@ -486,15 +491,13 @@ class Store:
         """
         lo = -(2 ** 62) if start_t is None else int(start_t)
         hi = 2 ** 62 if end_t is None else int(end_t)
-        sql = ("SELECT t, value, flag FROM observations WHERE station = ? AND sensor = ? "
-               "AND t >= ? AND t <= ?" + (f" AND {USABLE_SQL}" if usable else "") + " ORDER BY t LIMIT ?")
+        sql = ("SELECT t, value, coalesce(flag, 2) FROM observations WHERE station = ? AND sensor = ? "
+               "AND t >= ? AND t <= ? ORDER BY t LIMIT ?")
         while True:
             page = self.conn.execute(sql, (station, sensor, lo, hi, int(rows))).fetchall()
             if not page:
                 return
-            t = np.fromiter((r[0] for r in page), dtype=np.int64, count=len(page))
-            value = np.fromiter((r[1] for r in page), dtype=float, count=len(page))
-            flag = np.fromiter((2 if r[2] is None else r[2] for r in page), dtype=np.int64, count=len(page))
+            t, value, flag = _as_arrays(page)
             yield t, value, flag
             if len(page) < rows:
                 return
@@ -523,10 +526,7 @@ class Store:
         rows = self.conn.execute(
             "SELECT t, value, coalesce(flag, 2) FROM observations WHERE station = ? AND sensor = ? "
             "AND t BETWEEN ? AND ? ORDER BY t", (station, sensor, int(start_t), int(end_t))).fetchall()
-        if not rows:
-            return np.empty(0, np.int64), np.empty(0), np.empty(0, np.int64)
-        t, value, flag = zip(*rows)
-        return np.array(t, dtype=np.int64), np.array(value, dtype=float), np.array(flag, dtype=np.int64)
+        return _as_arrays(rows)
 
     def observation_count(self, station: str | None = None, sensor: str | None = None) -> int:
         sql, args = "SELECT count(*) FROM observations WHERE 1", []
