@@ -49,6 +49,8 @@ from dataclasses import dataclass, field
 import numpy as np
 import pandas as pd
 
+from predictor.timeutil import index_seconds
+
 #: Storm conditions: a residual this large either way [m] ...
 STORM_RESIDUAL = 0.30
 #: ... or rising faster than this [m/h] (the issue's definition, used by the benchmark too).
@@ -170,8 +172,8 @@ def storm_state(residual: pd.Series, now: float, pressure: pd.Series | None = No
     p = None
     if pressure is not None:
         pp = pressure.dropna()
-        p = (_seconds(pp.index), pp.to_numpy(dtype=float))
-    return storm_state_arrays(_seconds(r.index), r.to_numpy(dtype=float), now, p, barometer, max_age_s)
+        p = (index_seconds(pd.DatetimeIndex(pp.index)), pp.to_numpy(dtype=float))
+    return storm_state_arrays(index_seconds(pd.DatetimeIndex(r.index)), r.to_numpy(dtype=float), now, p, barometer, max_age_s)
 
 
 def storm_state_arrays(t: np.ndarray, residual: np.ndarray, now: float,
@@ -200,10 +202,6 @@ def storm_state_arrays(t: np.ndarray, residual: np.ndarray, now: float,
                 tendency = _change(pt, pv, since, float(pv[-1]), max_age_s)
     return StormState(t=t_now, residual=r_now, rate=rate, tendency=tendency, barometer=barometer,
                       pressure_since=since)
-
-
-def _seconds(index: pd.DatetimeIndex) -> np.ndarray:
-    return pd.DatetimeIndex(index).as_unit("ns").asi8 / 1e9
 
 
 def _change(t: np.ndarray, v: np.ndarray, t_now: float, v_now: float, max_age_s: float) -> float:
