@@ -477,7 +477,7 @@ class _Design:
         on = (np.abs(x - j) * self.step <= _ON_GRID) & (j >= 0) & (j < J)
         if on.all():
             j = j.astype(np.int64)
-            if m == 0 and j[-1] - j[0] == j.size - 1:
+            if m == 0 and (np.diff(j) == 1).all():  # consecutive grid points (no repeat, no gap)
                 return table[0][j[0]:j[-1] + 1]
             return self._lookup(table, j, m)
         E = np.exp(1j * np.outer(s, self.omega))

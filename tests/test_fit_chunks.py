@@ -164,3 +164,15 @@ def test_design_rows_by_phasor_steps_equal_the_per_sample_formula():
     # 1e-5 for M2 and 5e-4 for OO1 by the day's end.
     np.testing.assert_allclose(X[:, 1::2], f * np.cos(arg), atol=1e-6)
     np.testing.assert_allclose(X[:, 2::2], f * np.sin(arg), atol=1e-6)
+
+
+def test_design_rows_with_a_repeated_time_and_a_gap_in_one_day():
+    # A repeated time and a missing sample in the same day leave the first and last grid
+    # points as far apart as a run without either: the rows must still be each sample's own
+    # (the rotations once came out of the table as one consecutive slice, 7e-3 off here).
+    names = ["M2", "K1"]
+    t = START + 400 * day + np.arange(0.0, 3 * hour, 60.0)
+    t = np.sort(np.concatenate([np.delete(t, 100), [t[50]]]))  # one repeated, one missing
+    on_grid = _build_design(names, t[0], t[-1], True, False, 0.0, (), 60.0).rows(t)
+    direct = _build_design(names, t[0], t[-1], True, False, 0.0, (), None).rows(t)
+    np.testing.assert_allclose(on_grid, direct, atol=1e-9)
