@@ -360,3 +360,22 @@ def test_the_daemons_prediction_memo_is_asked_an_hour_ahead(tmp_path):
     finally:
         for st in (live, plain):
             st.store.close()
+
+
+def test_without_the_stores_meta_table_every_pass_rebuilds(tmp_path):
+    # A bare database (no ``meta``) cannot record a pass without a context (note_edit has
+    # nowhere to count it), so a context over one must never trust what it holds.
+    t, primary, backup, keep = _record(12)
+    st = _Station(tmp_path / "s.db", None)
+    st.write("primary", t[:HISTORY + 3], primary[:HISTORY + 3])
+    st.write("backup", t[:HISTORY + 3], backup[:HISTORY + 3])
+    st.store.conn.execute("DROP TABLE meta")
+    ctx, tide = QcContext(), _Tide()
+    run_station_qc(st.store.db, st.cfg, QcSettings(), float(t[0]), float(t[HISTORY - 1]), tide,
+                   now=float(t[HISTORY - 1]) + 30, context=ctx)
+    n = ctx.rebuilds
+    for i in range(HISTORY, HISTORY + 3):
+        run_station_qc(st.store.db, st.cfg, QcSettings(), float(t[i - 1] + 1), float(t[i]), tide,
+                       now=float(t[i]) + 30, context=ctx)  # the window right after the last, as the daemon's
+    assert ctx.rebuilds == n + 3
+    st.store.close()

@@ -184,13 +184,16 @@ class QcContext:
         judge_from = write_from - 2 * s.gap_limit
         read_from = int(math.floor(judge_from - s.context_seconds()))
         hi = int(math.ceil(end_t))
-        key = (id(db.conn), station, tuple(sensors), position)
+        # the connection itself, not its id(): a store reopened may get a freed id back
+        key = (db.conn, station, tuple(sensors), position)
         if key != self.key:
             _qc.ensure_qc_schema(db)
             self.has_meta = db.conn.execute(
                 "SELECT 1 FROM sqlite_master WHERE type = 'table' AND name = 'meta'").fetchone() is not None
         edits = _edits(db, self.has_meta)
-        steady = (self.end_t is not None and start_t == self.end_t + 1 and key == self.key
+        # Without the store's ``meta`` table another writer's flags leave no mark (note_edit
+        # has nowhere to count them): every pass then rebuilds from the store.
+        steady = (self.has_meta and self.end_t is not None and start_t == self.end_t + 1 and key == self.key
                   and edits == self.edits and model is self.model
                   and (s is self.settings or s == self.settings)
                   and self._advance(db, station, sensors, read_from, hi, model, s))
