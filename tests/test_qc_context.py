@@ -379,3 +379,29 @@ def test_without_the_stores_meta_table_every_pass_rebuilds(tmp_path):
                        now=float(t[i]) + 30, context=ctx)  # the window right after the last, as the daemon's
     assert ctx.rebuilds == n + 3
     st.store.close()
+
+
+def test_the_memo_is_asked_ahead_at_the_stations_own_step(tmp_path):
+    """A six-minute gauge: the hour asked ahead is at six-minute steps, so thirty passes
+    (three hours) need one model run, not one a pass (a one-minute step guessed for a
+    single new row never met the gauge's times)."""
+    t, primary, backup, keep = _record(14)
+    t, primary, backup = t[::6], primary[::6], backup[::6]
+    h = HISTORY // 6
+    assert len(t) >= h + 30
+    tide, s = _Counted(), QcSettings(gap_limit=15 * minute)  # a gap is over two missed samples
+    memo = PredictionMemo(tide)
+    st = _Station(tmp_path / "six.db", QcContext())
+    try:
+        st.write("primary", t[:h], primary[:h])
+        st.write("backup", t[:h], backup[:h])
+        st.process(memo, s)
+        calls = tide.calls
+        for i in range(h, h + 30):
+            st.write("primary", t[i:i + 1], primary[i:i + 1])
+            st.write("backup", t[i:i + 1], backup[i:i + 1])
+            st.process(memo, s)
+        assert st.context.rebuilds == 1
+        assert tide.calls == calls + 1
+    finally:
+        st.store.close()

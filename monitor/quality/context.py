@@ -225,22 +225,23 @@ class QcContext:
         for sn, (t, v, f) in new.items():
             held = self.sensors[sn]
             if len(t):
-                held.append(t, v, f, self._predict_new(model, t))
+                held.append(t, v, f, self._predict_new(model, t, int(held.t[-1])))
             held.drop_before(read_from)
         return True
 
-    def _predict_new(self, model: Any, t: np.ndarray) -> np.ndarray | None:
+    def _predict_new(self, model: Any, t: np.ndarray, last: int) -> np.ndarray | None:
         """The predicted tide at new rows [m]. A model that keeps what it predicts (the
         daemon's memo, with ``forget_before``) is asked for the next :data:`AHEAD` samples'
         times at the last step too, and those predictions are kept here: at one-minute steps
         one model evaluation an hour, not one a pass (the memo holds the same values for the
-        residual)."""
+        residual). The step is the new rows' own, or from ``last`` [Unix s], the newest row
+        held, for a single new row."""
         if model is None or not hasattr(model, "forget_before"):
             return _predict(model, t)
         pos = np.searchsorted(self.ahead_t, t)
         if len(self.ahead_t) and np.all(pos < len(self.ahead_t)) and np.array_equal(self.ahead_t[pos], t):
             return self.ahead_p[pos]  # asked for before: the values the memo holds too
-        step = int(t[-1] - t[-2]) if len(t) > 1 else 60
+        step = int(t[-1] - t[-2]) if len(t) > 1 else int(t[-1]) - last
         if not 0 < step <= 3600:
             return _predict(model, t)
         more = int(t[-1]) + step * np.arange(1, AHEAD + 1, dtype=np.int64)
