@@ -63,6 +63,10 @@ TESTS = ("gap", "syntax", "location", "gross", "expected", "spike", "roc", "flat
 #: primary against a co-located backup, is the neighbour test's idea (Test 11).
 #: Column of each test in a table of flags whose columns are :data:`TESTS` in order.
 _COL = {c: i for i, c in enumerate(TESTS)}
+#: A row's flags packed 4 bits each (QARTOD flags are 1..9), and the same packing in SQL over
+#: ``qc_tests``: comparing stored rows moves two integers per sample, not ten.
+PACK = 16 ** np.arange(len(TESTS), dtype=np.int64)
+PACKED_SQL = " + ".join(f"{16 ** i} * {c}" for i, c in enumerate(TESTS))
 QARTOD_NUMBER = {"gap": 1, "syntax": 2, "location": 3, "gross": 4, "expected": 5, "spike": 6, "roc": 7,
                  "flat": 8, "multi": 11, "atten": 10, "resid": None}
 #: Flags a sample may carry and still be used for alerts, fits and statistics.
@@ -1909,12 +1913,9 @@ def _write(db: Any, station: str, sensor: str, part: pd.DataFrame, stored: np.nd
     conn = db.conn
     t = (index_seconds(part.index)).round().astype(np.int64)
     tests = np.column_stack([part[c].to_numpy(dtype=np.int64) for c in TESTS])  # (n, tests)
-    # Compare packed rows (4 bits per flag; QARTOD flags are 1..9) so the read of the
-    # stored rows moves two integers per sample, not ten.  A NULL packs to NULL and is
-    # rewritten.
-    packed = tests @ (16 ** np.arange(len(TESTS), dtype=np.int64))
-    expr = " + ".join(f"{16 ** i} * {c}" for i, c in enumerate(TESTS))
-    old = conn.execute(f"SELECT t, {expr} FROM qc_tests WHERE station = ? AND sensor = ? AND t BETWEEN ? AND ?",
+    # Compare packed rows (PACK); a NULL packs to NULL and is rewritten.
+    packed = tests @ PACK
+    old = conn.execute(f"SELECT t, {PACKED_SQL} FROM qc_tests WHERE station = ? AND sensor = ? AND t BETWEEN ? AND ?",
                        (station, sensor, int(t.min()), int(t.max()))).fetchall()
     todo = np.ones(len(t), bool)
     if old and np.all(t[1:] > t[:-1]):

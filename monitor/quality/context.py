@@ -30,10 +30,8 @@ import pandas as pd
 
 from alerts.transactions import transaction
 from monitor.quality import checks as _qc
-from monitor.quality.checks import FAIL, MISSING, NOT_EVALUATED, TESTS, QcSettings
+from monitor.quality.checks import _COL, FAIL, MISSING, NOT_EVALUATED, PACK, PACKED_SQL, TESTS, QcSettings
 
-_COL = {c: i for i, c in enumerate(TESTS)}
-_PACK = 16 ** np.arange(len(TESTS), dtype=np.int64)  # 4 bits per flag (QARTOD flags are 1..9)
 _NOT_SHAPE = np.array([c not in ("spike", "resid") for c in TESTS])
 #: New rows per sensor a pass takes from the context; more (a backfill) rebuild it.
 STEADY_ROWS_MAX = 120
@@ -267,8 +265,7 @@ class QcContext:
                 held.ov_f = np.array([r[1] for r in rows], dtype=np.int8)
             # the qc_tests rows stored for the rows the next pass may write
             a = int(math.floor(write_from))
-            expr = " + ".join(f"{16 ** i} * {c}" for i, c in enumerate(TESTS))
-            stored = db.conn.execute(f"SELECT t, {expr} FROM qc_tests WHERE station = ? AND sensor = ? AND t >= ? "
+            stored = db.conn.execute(f"SELECT t, {PACKED_SQL} FROM qc_tests WHERE station = ? AND sensor = ? AND t >= ? "
                                      f"AND t <= ?", (station, sn, a, hi)).fetchall()
             for tq, packed in stored:
                 i = int(np.searchsorted(held.t, tq))
@@ -339,7 +336,7 @@ class QcContext:
         pass's one transaction, begun at its first write)."""
         if not len(rows):
             return
-        packed = part.astype(np.int64) @ _PACK
+        packed = part.astype(np.int64) @ PACK
         todo = h.stored(rows) != packed
         changed = h.flag[rows] != flag
         if not todo.any() and not changed.any():
