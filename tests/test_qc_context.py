@@ -23,7 +23,7 @@ from monitor.quality.context import QcContext, QcRows
 from monitor.service.daemon import PredictionMemo
 from monitor.store.database import Store
 from reference_qc import whole_record_tests
-from units import cm, hour, minute
+from units import cm, hour, minute, mm
 
 T0 = 1_761_000_000 - 1_761_000_000 % 60
 HISTORY = 26 * hour // minute    # samples before the stream (QC looks 25 h back)
@@ -405,3 +405,52 @@ def test_the_memo_is_asked_ahead_at_the_stations_own_step(tmp_path):
         assert tide.calls == calls + 1
     finally:
         st.store.close()
+
+
+def test_on_a_noisy_sea_the_noise_sigma_decides_as_in_a_whole_record_run(tmp_path):
+    """A seiche of a few centimetres with white noise: the residual outlier test's robust
+    sigma is some 3-4 cm, so its limit (6 sigma) is far above the 5 cm floor and the exact
+    25 h median decides rows departing 5-20 cm (they pass) and the bursts beyond it (they
+    do not). Streamed one sample per pass through the context and compared with the whole
+    record (pandas' rolling windows): a pass that took the floor for such rows, or a wrong
+    sigma, flags them otherwise."""
+    rng = np.random.default_rng(21)
+    n = HISTORY + 40
+    t = T0 + minute * np.arange(n)
+    tide = _Tide().predict(pd.to_datetime(t, unit="s", utc=True))
+    sea = tide + 4 * cm * np.sin(2 * np.pi * t / (11 * minute)) + rng.normal(0, 2 * cm, n)
+    primary = np.round(sea * 1000) / 1000
+    backup = np.round((sea + rng.normal(0, 3 * mm, n)) * 1000) / 1000
+    for j in (8, 9, 10, 25, 26):  # two short bursts far beyond the noise, in the primary
+        primary[HISTORY + j] += 0.6
+    # lone departures either side of the suspect limit (6 sigma, about 25 cm here)
+    primary[HISTORY + 15] += 0.20
+    primary[HISTORY + 32] += 0.30
+    model, s = _Tide(), QcSettings()
+    st = _Station(tmp_path / "noisy.db", QcContext())
+    try:
+        st.write("primary", t[:HISTORY], primary[:HISTORY])
+        st.write("backup", t[:HISTORY], backup[:HISTORY])
+        st.process(model, s)
+        for i in range(HISTORY, n):
+            st.write("primary", t[i:i + 1], primary[i:i + 1])
+            st.write("backup", t[i:i + 1], backup[i:i + 1])
+            start, end = st.process(model, s)
+            if (i - HISTORY) % 10 == 9:
+                ref = _reference(st.store, model, s, end + 30)
+                lo = int(start - s.resid_window)
+                for sn in ("primary", "backup"):
+                    got = _stored(st.store, sn, lo, end)
+                    _same(got, ref[sn].loc[got.index, [*qc.TESTS, "flag"]], f"pass {i - HISTORY} {sn}")
+        got = _stored(st.store, "primary", int(t[HISTORY - 60]), int(t[-1]))
+    finally:
+        st.store.close()
+    # the rows the comparison is about: departures past the floor that pass, and rows that do not
+    resid = pd.Series(primary - tide, index=pd.to_datetime(t, unit="s", utc=True)).loc[got.index]
+    departure = (resid - resid.rolling("3600s", center=True).median()).abs()
+    calm = got["resid"] == qc.PASS
+    assert ((departure > s.resid_suspect_floor) & calm).sum() >= 10
+    assert (got["resid"] >= qc.SUSPECT).any()
+    at = got.index.get_indexer(pd.to_datetime(t[[HISTORY + 15, HISTORY + 32]], unit="s", utc=True))
+    assert departure.iloc[at[0]] > 15 * cm and got["resid"].iloc[at[0]] == qc.PASS
+    assert got["resid"].iloc[at[1]] == qc.SUSPECT

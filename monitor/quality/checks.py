@@ -1583,6 +1583,39 @@ def _departures(rc: np.ndarray, clean: np.ndarray, tn: np.ndarray, j0: int, half
     return d
 
 
+def _noise_where_needed(absd: np.ndarray, size: np.ndarray, tn: np.ndarray, e0: int, half: int, floor: float,
+                        slide: bool) -> np.ndarray:
+    """The residual outlier test's robust sigma (1.4826 times the median of ``absd`` over
+    the centred noise window, NaN below 10 values) at rows ``e0:`` [m], computed exactly
+    only where it can decide a flag.
+
+    A row is judged against ``max(k * sigma, floor)`` for the suspect and the fail limit
+    both; a row whose departure ``size`` [m] is within the smaller ``floor`` [m] passes
+    whatever sigma is. Such rows get sigma 0.0 where the window holds enough values (the
+    limit is then the floor: the same flag) and NaN where it does not (not evaluated, as
+    the exact median gives). On a calm day that is every row, and the 25 h median, the
+    pass's largest cost, is not taken at all. ``slide``: windows may be kept as one
+    sorted list slid along (:func:`_sliding_median`) when they never move back.
+    """
+    n = len(absd)
+    sigma = np.full(n, np.nan)
+    rows = np.arange(e0, n)
+    if not len(rows):
+        return sigma
+    a, b = _bounds(tn, tn[rows], half, half)
+    enough = _counts(np.isfinite(absd), a, b) >= 10
+    with np.errstate(invalid="ignore"):
+        need = enough & (size[rows] > floor)
+    sigma[rows[enough & ~need]] = 0.0
+    if need.any():
+        a, b, at = a[need], b[need], rows[need]
+        if slide and _monotone(a, b):
+            sigma[at] = 1.4826 * _sliding_median(absd, a, b, 10)
+        else:
+            sigma[at] = 1.4826 * _rolling_median(absd, a, b, 10)
+    return sigma
+
+
 def _resid_tail(rc: np.ndarray, t: np.ndarray, tn: np.ndarray, ok: np.ndarray, k: int, s: QcSettings,
                 memo: ResidMemo | None = None, keep: int = 0) -> np.ndarray:
     """:func:`monitor.quality.checks.residual_outlier_test` at rows ``k:`` (``rc`` with gross failures
@@ -1602,13 +1635,8 @@ def _resid_tail(rc: np.ndarray, t: np.ndarray, tn: np.ndarray, ok: np.ndarray, k
     clean = np.where(ok, rc, np.nan)
     d = _departures(rc, clean, tn, j0, half, memo, keep)
     absd = np.where(ok, np.abs(d), np.nan)
-    ev_rows = np.arange(e0, n)
-    a, b = _bounds(tn, tn[ev_rows], half_noise, half_noise)
-    sigma = np.full(n, np.nan)
-    if memo is not None and _monotone(a, b):
-        sigma[ev_rows] = 1.4826 * _sliding_median(absd, a, b, 10)
-    else:
-        sigma[ev_rows] = 1.4826 * _rolling_median(absd, a, b, 10)
+    sigma = _noise_where_needed(absd, np.abs(d), tn, e0, half_noise, min(s.resid_suspect_floor, s.resid_fail_floor),
+                                memo is not None)
     full = np.full(n, NOT_EVALUATED, dtype=np.int8)
     ev = np.isfinite(d) & np.isfinite(sigma)
     full[ev] = PASS
