@@ -300,11 +300,12 @@ def test_windows_too_wide_for_matrices_take_the_pass_without_the_context(tmp_pat
             st.store.close()
 
 
-@pytest.mark.parametrize("seed", [5, 6])
-def test_spike_flags_kept_between_calls_equal_those_of_the_whole_record(seed):
+@pytest.mark.parametrize("seed, reach", [(5, 0), (6, 0), (5, 6), (6, 10)])
+def test_spike_flags_kept_between_calls_equal_those_of_the_whole_record(seed, reach):
     """The spike test evaluated only near the newest rows and the first (after the record lost
     rows at its front) equals it over the whole record, with spikes, jumps and missing runs
-    near both ends."""
+    near both ends; from row ``reach`` on where the rows before it are used by no window of
+    the rows judged (their flags may be left as held)."""
     rng = np.random.default_rng(seed)
     n = 3000
     t = (T0 + minute * np.arange(n)).astype(float)
@@ -318,9 +319,9 @@ def test_spike_flags_kept_between_calls_equal_those_of_the_whole_record(seed):
     s, memo = QcSettings(), qc.ResidMemo()
     lo, hi = 0, 200
     while hi < n:
-        got = qc._spike_all(r[lo:hi], t[lo:hi], s, memo)
+        got = qc._spike_all(r[lo:hi], t[lo:hi], s, memo, reach)
         want = qc.spike_flags(r[lo:hi], t[lo:hi], s.spike_suspect, s.spike_fail, s.gap_limit, s.jump_ratio)
-        assert np.array_equal(got, want), (lo, hi, np.flatnonzero(got != want))
+        assert np.array_equal(got[reach:], want[reach:]), (lo, hi, np.flatnonzero(got != want))
         step, cut = int(rng.integers(1, 4)), int(rng.integers(0, 3))
         hi += step
         lo += cut
@@ -454,3 +455,34 @@ def test_on_a_noisy_sea_the_noise_sigma_decides_as_in_a_whole_record_run(tmp_pat
     at = got.index.get_indexer(pd.to_datetime(t[[HISTORY + 15, HISTORY + 32]], unit="s", utc=True))
     assert departure.iloc[at[0]] > 15 * cm and got["resid"].iloc[at[0]] == qc.PASS
     assert got["resid"].iloc[at[1]] == qc.SUSPECT
+
+
+@pytest.mark.parametrize("step_s, seed", [(minute, 7), (15 * minute, 8), (15 * minute, 9)])
+def test_the_table_kept_between_calls_equals_a_call_without_the_memo(step_s, seed):
+    """The single-sensor tests with the memo (spike flags kept, the first rows' flags left as
+    held where no window of the rows judged reaches them) equal a call that evaluates every
+    row afresh, while the record grows at its end and loses rows at its front, as the
+    context's does; spikes, jumps and missing runs throughout, at one-minute and at
+    fifteen-minute steps (where the first rows do lie in the windows)."""
+    rng = np.random.default_rng(seed)
+    n = int(30 * hour // step_s) + 400
+    t = (T0 + step_s * np.arange(n)).astype(float)
+    p = 2.0 + 1.2 * np.cos(2 * np.pi * t / 44714.16)
+    v = p + np.cumsum(rng.normal(0, 0.004, n))
+    v[rng.integers(0, n, n // 20)] += rng.choice([-1, 1], n // 20) * rng.uniform(0.1, 0.5, n // 20)
+    for a in rng.integers(0, n - 5, n // 60):
+        v[a:a + rng.integers(1, 4)] = np.nan
+    s, memo = QcSettings(), qc.ResidMemo()
+    span = s.context_seconds() + s.resid_window + 2 * s.gap_limit
+    lo, hi = 0, int(span // step_s)
+    while hi < n:
+        k = int(np.searchsorted(t[lo:hi], t[hi - 1] - s.resid_window - 2 * s.gap_limit))
+        tn = (t[lo:hi] * 1e9).astype(np.int64)
+        got = qc.tail_table(tn, v[lo:hi], p[lo:hi], s, t[hi - 1] + 30, None, k, memo)
+        want = qc.tail_table(tn, v[lo:hi], p[lo:hi], s, t[hi - 1] + 30, None, k)
+        assert np.array_equal(got, want), (lo, hi, np.argwhere(got != want)[:5])
+        hi += 1
+        cut = int(np.searchsorted(t, t[hi - 1] - span)) - lo
+        if cut > 0:
+            lo += cut
+            memo.drop(cut)

@@ -1249,7 +1249,7 @@ def tail_table(tn: np.ndarray, v: np.ndarray, p: np.ndarray | None, s: QcSetting
     # needed there: its failures are left out of the windows of the tests below
     gross_fail = gross == FAIL
     rc = np.where(gross_fail, np.nan, r)
-    spike = _spike_all(rc, t, s, memo)
+    spike = _spike_all(rc, t, s, memo, _reach(t, tn, k, s) if n - k else 0)
     out["spike"] = spike[tail]
     bad = gross_fail | (spike == FAIL)
     ok = np.isfinite(rc) & ~bad
@@ -1310,10 +1310,25 @@ def tail_table(tn: np.ndarray, v: np.ndarray, p: np.ndarray | None, s: QcSetting
     return table
 
 
-def _spike_all(rc: np.ndarray, t: np.ndarray, s: QcSettings, memo: "ResidMemo | None") -> np.ndarray:
+def _reach(t: np.ndarray, tn: np.ndarray, k: int, s: QcSettings) -> int:
+    """The first row any window of the rows ``k:`` may use (the rate of change's sd, the
+    attenuation ranges, the residual outlier test's departures and noise): the rows before
+    it decide none of their flags. ``t`` [s], ``tn`` [ns], sorted."""
+    back = t[k - 1] if k > 0 else t[k]
+    # (the rate of change also looks for the last usable row before each: one further back
+    # than the gap limit leaves the row unjudged whichever it is)
+    earliest = min(back - s.roc_window, t[k] - s.gap_limit, t[k] - s.atten_window,
+                   t[k] - max(s.flat_suspect_after, s.flat_fail_after) - s.gap_limit,
+                   t[_resid_rows(tn, k, s)[1]] - s.resid_window / 2)
+    return int(np.searchsorted(t, earliest, side="left"))
+
+
+def _spike_all(rc: np.ndarray, t: np.ndarray, s: QcSettings, memo: "ResidMemo | None", reach: int = 0) -> np.ndarray:
     """:func:`spike_flags` over the whole record; with a memo, only the rows whose
     neighbours changed are evaluated: those within three rows (and three finite rows) of
-    the newest rows held before, and of the record's first row when it lost rows."""
+    the newest rows held before, and of the record's first row when it lost rows -- unless
+    every row whose flag that loss may change lies before ``reach`` (:func:`_reach`: no
+    window of the rows judged uses them; their flags are then left as held)."""
     n = len(rc)
     held = None if memo is None else memo.spike
     if held is None or len(held) > n or len(held) < 8:
@@ -1327,6 +1342,8 @@ def _spike_all(rc: np.ndarray, t: np.ndarray, s: QcSettings, memo: "ResidMemo | 
         first = 0
         if memo.lost:  # the record lost rows at its front: its first rows lost neighbours
             first = max(3, int(fin[2]) + 1) if len(fin) > 2 else n
+            if first <= reach:
+                first = 0  # none of them used by a window of the rows judged
         if first + 8 >= last:
             sp = spike_flags(rc, t, s.spike_suspect, s.spike_fail, s.gap_limit, s.jump_ratio)
         else:
@@ -1616,6 +1633,18 @@ def _noise_where_needed(absd: np.ndarray, size: np.ndarray, tn: np.ndarray, e0: 
     return sigma
 
 
+def _resid_rows(tn: np.ndarray, k: int, s: QcSettings) -> tuple[int, int]:
+    """The rows the residual outlier test of rows ``k:`` judges from (``e0``) and takes
+    departures from (``j0``); ``tn`` [ns], sorted, ``k < len(tn)``."""
+    # Rows judged: the tail, and for the burst rule back to the last row more than one
+    # burst before it (e0): a run of far departures through e0 that reaches the tail is too
+    # long to fail, whatever came before e0.
+    e0 = max(int(np.searchsorted(tn, tn[k] - _ns(s.resid_burst), side="left")) - 1, 0)
+    # rows whose departure enters the noise window of a row judged
+    j0 = max(0, int(np.searchsorted(tn, tn[e0] - _ns(s.resid_noise_window) // 2, side="left")) - 1)
+    return e0, j0
+
+
 def _resid_tail(rc: np.ndarray, t: np.ndarray, tn: np.ndarray, ok: np.ndarray, k: int, s: QcSettings,
                 memo: ResidMemo | None = None, keep: int = 0) -> np.ndarray:
     """:func:`monitor.quality.checks.residual_outlier_test` at rows ``k:`` (``rc`` with gross failures
@@ -1626,12 +1655,7 @@ def _resid_tail(rc: np.ndarray, t: np.ndarray, tn: np.ndarray, ok: np.ndarray, k
         return flags
     half_noise = _ns(s.resid_noise_window) // 2
     half = _ns(s.resid_window) // 2
-    # Rows judged: the tail, and for the burst rule back to the last row more than one
-    # burst before it (e0): a run of far departures through e0 that reaches the tail is too
-    # long to fail, whatever came before e0.
-    e0 = max(int(np.searchsorted(tn, tn[k] - _ns(s.resid_burst), side="left")) - 1, 0)
-    # rows whose departure enters the noise window of a row judged
-    j0 = max(0, int(np.searchsorted(tn, tn[e0] - half_noise, side="left")) - 1)
+    e0, j0 = _resid_rows(tn, k, s)
     clean = np.where(ok, rc, np.nan)
     d = _departures(rc, clean, tn, j0, half, memo, keep)
     absd = np.where(ok, np.abs(d), np.nan)
