@@ -282,9 +282,14 @@ def test_the_sliding_median_equals_numpy_over_each_window(seed, suffixes):
 
 def test_windows_too_wide_for_matrices_take_the_pass_without_the_context(tmp_path, monkeypatch):
     """Very fine sampling makes the tail's window matrices too large: the pass falls back to
-    the pass without a context (whole-record tests for such tails) and says the same rows."""
+    the pass without a context (whole-record tests for such tails) and says the same rows;
+    the passes after it go straight there (no read of the context to find it too wide
+    again) until the context is tried again, WIDE_PASSES later."""
+    from monitor.quality import context as qc_context
+
     t, primary, backup, keep = _record(13)
     monkeypatch.setattr(qc, "_TAIL_CELLS_MAX", 1000)
+    monkeypatch.setattr(qc_context, "WIDE_PASSES", 3)
     model, s = _Tide(), QcSettings()
     live, plain = _Station(tmp_path / "live.db", QcContext()), _Station(tmp_path / "plain.db", None)
     try:
@@ -295,6 +300,17 @@ def test_windows_too_wide_for_matrices_take_the_pass_without_the_context(tmp_pat
         for sn in ("primary", "backup"):
             _same(_stored(live.store, sn, 0, 2 ** 40), _stored(plain.store, sn, 0, 2 ** 40), sn)
         assert live.context.end_t is None  # forgotten: the next pass reads the store again
+        rebuilds = []
+        for i in range(HISTORY + 3, HISTORY + 8):
+            for st in (live, plain):
+                st.write("primary", t[i:i + 1], primary[i:i + 1])
+                st.write("backup", t[i:i + 1], backup[i:i + 1])
+                st.process(model, s)
+            rebuilds.append(live.context.rebuilds)
+        for sn in ("primary", "backup"):
+            _same(_stored(live.store, sn, 0, 2 ** 40), _stored(plain.store, sn, 0, 2 ** 40), sn)
+        # three passes without the context, then one that tries it (a rebuild) and falls back
+        assert rebuilds == [1, 1, 1, 2, 2]
     finally:
         for st in (live, plain):
             st.store.close()

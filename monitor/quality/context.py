@@ -16,7 +16,9 @@ rows than a steady pass brings, other settings, another model, position, sensors
 store connection, or a change of the technician's overrides or of the stored flags by
 another writer (the store's ``qc.edits`` meta value, raised by
 :func:`monitor.quality.checks.set_override` and by every pass without a context, and the
-overrides table's largest row id). An error inside a pass forgets the context.
+overrides table's largest row id). An error inside a pass forgets the context. Windows
+too wide to hold as matrices (very fine sampling) send the pass, and the next
+:data:`WIDE_PASSES`, to the pass without a context.
 """
 from __future__ import annotations
 
@@ -35,6 +37,9 @@ from monitor.quality.checks import _COL, FAIL, MISSING, NOT_EVALUATED, PACK, PAC
 _NOT_SHAPE = np.array([c not in ("spike", "resid") for c in TESTS])
 #: New rows per sensor a pass takes from the context; more (a backfill) rebuild it.
 STEADY_ROWS_MAX = 120
+#: Passes that go without the context after its windows were found too wide (an hour of
+#: one-minute passes; our choice).
+WIDE_PASSES = 60
 
 
 class QcRows:
@@ -136,6 +141,9 @@ class QcContext:
 
     def __init__(self) -> None:
         self.rebuilds = 0   # passes that read their context from the store (for tests and logs)
+        # passes left that go straight to the pass without a context, after windows too wide
+        # to hold as matrices (the context would read the store only to find that again)
+        self.wide_passes = 0
         self.reset()
 
     def reset(self) -> None:
@@ -159,19 +167,30 @@ class QcContext:
         (the daemon's processing mark sees to it). Returns sensor -> :class:`QcRows`.
         """
         now = _time.time() if now is None else now
+        if self.wide_passes:
+            self.wide_passes -= 1
+            return self._without(store, station_cfg, settings, start_t, end_t, model, now)
         try:
             return self._run(store, station_cfg, settings or QcSettings(), start_t, end_t, model, now)
         except _qc._TooWide:
             # windows too wide to hold as matrices (very fine sampling): the pass without a
-            # context, which takes the whole-record tests for such tails
+            # context, which takes the whole-record tests for such tails, for this pass and
+            # the next WIDE_PASSES (then the context is tried again: the sampling may change)
             self.reset()
-            done = _qc.run_station_qc(store, station_cfg, settings, start_t, end_t, model, now)
-            return {sn: QcRows(np.round(_qc.index_seconds(df.index)).astype(np.int64),
-                               df[list(TESTS)].to_numpy(dtype=np.int8), df["flag"].to_numpy(dtype=np.int8))
-                    for sn, df in done.items()}
+            self.wide_passes = WIDE_PASSES
+            return self._without(store, station_cfg, settings, start_t, end_t, model, now)
         except BaseException:
             self.reset()
             raise
+
+    @staticmethod
+    def _without(store: Any, station_cfg: Any, settings: QcSettings | None, start_t: float, end_t: float,
+                 model: Any, now: float) -> dict[str, QcRows]:
+        """The pass without a context, its rows as :class:`QcRows`."""
+        done = _qc.run_station_qc(store, station_cfg, settings, start_t, end_t, model, now)
+        return {sn: QcRows(np.round(_qc.index_seconds(df.index)).astype(np.int64),
+                           df[list(TESTS)].to_numpy(dtype=np.int8), df["flag"].to_numpy(dtype=np.int8))
+                for sn, df in done.items()}
 
     def _run(self, store: Any, station_cfg: Any, s: QcSettings, start_t: float, end_t: float, model: Any,
              now: float) -> dict[str, QcRows]:
