@@ -204,9 +204,7 @@ def common_batch(fmt: LineFormat, n: int = 50) -> list[str]:
 
 
 def fast_read(fmt: LineFormat, lines: list, linenos: np.ndarray) -> np.ndarray:
-    got = fastparse.read_batch(lines, fmt.delimiter, fmt.time_column, fmt.value_column, fmt.time_format,
-                               fmt.naive_time_zone, fmt.comment, fmt.header_lines, fmt.missing_marker,
-                               fmt.scale, fmt.offset, np.full(len(lines), RECV), linenos, 600.0)
+    got = fastparse.read_batch(lines, fmt, np.full(len(lines), RECV), linenos, 600.0)
     return got.ok
 
 
@@ -246,7 +244,7 @@ def test_fast_decimals_are_floats_bit_for_bit(digits, data):
         sign = data.draw(st.sampled_from(["", "-", "+"]))
         texts.append(f"{sign}{d[:dot]}.{d[dot:]}" if data.draw(st.booleans()) else f"{sign}{d}")
     lines = [f"2025-01-01T00:00:00Z,{x}" for x in texts]
-    got = fastparse.read_batch(lines, ",", 1, 2, "iso", "", "#", 0, "", 1.0, 0.0, np.full(len(lines), RECV),
+    got = fastparse.read_batch(lines, LineFormat(), np.full(len(lines), RECV),
                                np.arange(1, len(lines) + 1), None)
     assert got.ok.all()
     # the value is reading x scale + offset (here 1 and 0, which turns -0.0 into 0.0 as in the parser)

@@ -32,6 +32,7 @@ Compatible Low-Level Date Algorithms", 2013), proleptic Gregorian calendar as IS
 from __future__ import annotations
 
 from dataclasses import dataclass
+from typing import Any
 
 import numpy as np
 import pandas as pd
@@ -57,19 +58,18 @@ class FastRead:
     value: np.ndarray   # float64
 
 
-def read_batch(texts, delimiter: str, time_column: int, value_column: int, time_format: str,
-               naive_time_zone: str, comment: str, header_lines: int, missing_marker: str,
-               scale: float, offset: float, recv: np.ndarray, linenos: np.ndarray,
-               max_ahead: float | None) -> FastRead | None:
+def read_batch(texts, fmt: Any, recv: np.ndarray, linenos: np.ndarray, max_ahead: float | None) -> FastRead | None:
     """Read the lines the fast path is sure of.
 
     Parameters
     ----------
     texts : sequence of str or bytes
         The batch (all str or all bytes), without line endings.
-    delimiter, time_column, value_column, time_format, naive_time_zone, comment,
-    header_lines, missing_marker, scale, offset
-        The fields of :class:`monitor.feeds.parse.LineFormat`.
+    fmt : monitor.feeds.parse.LineFormat
+        The feed's line format (its ``delimiter``, ``time_column``, ``value_column``,
+        ``time_format``, ``naive_time_zone``, ``comment``, ``header_lines``,
+        ``missing_marker``, ``scale`` and ``offset`` are read; the type is not imported
+        here, since the parser imports this module).
     recv : ndarray of float
         Receive time of each line [s, Unix UTC].
     linenos : ndarray of int
@@ -84,7 +84,8 @@ def read_batch(texts, delimiter: str, time_column: int, value_column: int, time_
         newline in it, text that cannot be encoded): the caller reads it all the general way.
     """
     buf = _join(texts)
-    delim = _delimiter_byte(delimiter)
+    delim = _delimiter_byte(fmt.delimiter)
+    time_format = fmt.time_format
     if buf is None or delim is None or time_format not in ("iso", "epoch", "epoch_ms"):
         return None
     # zero bytes past the end, so that a column read past a field near the end stays inside
@@ -96,17 +97,17 @@ def read_batch(texts, delimiter: str, time_column: int, value_column: int, time_
         return None
     starts = np.concatenate(([0], nl + 1))
     ends = np.concatenate((nl, [a.size]))
-    ok = _plain_lines(a, starts, ends, delim, comment, header_lines, linenos)
-    tcol, vcol = time_column - 1, value_column - 1
+    ok = _plain_lines(a, starts, ends, delim, fmt.comment, fmt.header_lines, linenos)
+    tcol, vcol = fmt.time_column - 1, fmt.value_column - 1
     fields = _Fields(a, starts, ends, delim, max(tcol, vcol) + 1)
     a = padded
     ok &= fields.enough
     vs, ve = fields.span(vcol)
     num, good = _decimals(a, vs, ve, ok)
     ok &= good
-    if missing_marker:
-        ok &= ~_equals(a, vs, ve, missing_marker.encode("utf-8", "surrogatepass"))
-    value = num * scale + offset
+    if fmt.missing_marker:
+        ok &= ~_equals(a, vs, ve, fmt.missing_marker.encode("utf-8", "surrogatepass"))
+    value = num * fmt.scale + fmt.offset
     ok &= np.isfinite(value)
     if tcol < 0:
         with np.errstate(invalid="ignore"):
@@ -114,7 +115,7 @@ def read_batch(texts, delimiter: str, time_column: int, value_column: int, time_
         return FastRead(ok & (t >= T_MIN) & (t <= T_MAX), t, value)
     ts, te = fields.span(tcol)
     if time_format == "iso":
-        t, good = _iso_times(a, ts, te, ok, naive_time_zone)
+        t, good = _iso_times(a, ts, te, ok, fmt.naive_time_zone)
     else:
         t, good = _epoch_times(a, ts, te, ok, time_format == "epoch_ms")
     ok &= good

@@ -157,9 +157,7 @@ def _parse_fast_then_general(texts, fmt: LineFormat, received, linenos, max_ahea
     """The fast path over the whole batch, the general parser over the lines it left."""
     n = len(texts)
     linenos, recv = _numbers_and_receive_times(n, received, linenos)
-    fast = read_batch(texts, fmt.delimiter, fmt.time_column, fmt.value_column, fmt.time_format,
-                      fmt.naive_time_zone, fmt.comment, fmt.header_lines, fmt.missing_marker,
-                      fmt.scale, fmt.offset, recv, linenos, max_ahead) if n else None
+    fast = read_batch(texts, fmt, recv, linenos, max_ahead) if n else None
     if fast is None:
         return _parse_general(texts, fmt, recv, linenos, max_ahead)
     source = "sensor" if fmt.time_column > 0 else "receive"
