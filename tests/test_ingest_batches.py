@@ -5,6 +5,8 @@ from __future__ import annotations
 import sqlite3
 from pathlib import Path
 
+import numpy as np
+
 from monitor.cli import main
 from monitor.cli.station import ingest_file
 from monitor.feeds.base import batch_sizes
@@ -102,3 +104,11 @@ def test_capture_records_come_in_batches_of_each_size_in_turn(tmp_path):
     path.write_bytes(MAGIC + b"\n" + body.encode())
     got = [len(raws) for raws, *_ in read_capture(path, iter([1, 2, 4, 8]))]
     assert got == [1, 2, 4, 3]
+
+
+def test_a_capture_read_in_batches_of_a_numpy_integer_size(tmp_path):
+    """A size computed with numpy (an np.int64, not an int) is one size, not an iterator."""
+    path = tmp_path / "x.capture"
+    body = "".join(f"{1_700_000_000 + k}.0\t2025-01-01T00:{k:02d}:00Z,1.0\n" for k in range(10))
+    path.write_bytes(MAGIC + b"\n" + body.encode())
+    assert [len(raws) for raws, *_ in read_capture(path, np.int64(4))] == [4, 4, 2]

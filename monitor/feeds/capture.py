@@ -18,6 +18,7 @@ from __future__ import annotations
 import itertools
 import logging
 import math
+import numbers
 import os
 import time
 from pathlib import Path
@@ -125,8 +126,8 @@ def is_capture(path: str | os.PathLike) -> bool:
 
 def read_capture(path: str | os.PathLike,
                  size: int | Iterator[int]) -> Iterator[tuple[list, list, list, list, int]]:
-    """Records of a capture file in batches of up to ``size`` records (or of each size an
-    iterator of sizes gives, in turn).
+    """Records of a capture file in batches of up to ``size`` records (any integer, numpy's
+    too), or of each size an iterator of sizes gives, in turn.
 
     Yields
     ------
@@ -144,7 +145,7 @@ def read_capture(path: str | os.PathLike,
         linenos: list[int] = []
         bad: list[tuple[int, str]] = []
         lineno = 1
-        sizes = itertools.repeat(size) if isinstance(size, int) else iter(size)
+        sizes = itertools.repeat(int(size)) if isinstance(size, numbers.Integral) else iter(size)
         limit = next(sizes)
         for record in fh:
             lineno += 1
