@@ -1860,6 +1860,19 @@ def _predict(model: Any, index: pd.DatetimeIndex) -> np.ndarray | None:
     return np.asarray(model.predict(index), dtype=float)
 
 
+def pass_bounds(start_t: float, s: QcSettings) -> tuple[float, float, float]:
+    """Where a pass over samples from ``start_t`` [Unix s] writes, judges and reads from [Unix s].
+
+    Rows are written from one ``resid_window`` before the window (the residual outlier
+    test's centred windows reach that far back), judged from two gap limits before that
+    (the other sensor's flags are needed that far back for the comparison and the bore
+    check), and read with the whole context of every window behind them.
+    """
+    write_from = start_t - s.resid_window
+    judge_from = write_from - 2 * s.gap_limit
+    return write_from, judge_from, judge_from - s.context_seconds()
+
+
 def run_station_qc(store: Any, station_cfg: Any, settings: QcSettings | None, start_t: float, end_t: float,
                    model: Any = None, now: float | None = None, context: Any = None) -> dict[str, Any]:
     """Run every test for a station's level sensors over ``[start_t, end_t]`` and store
@@ -1905,12 +1918,7 @@ def run_station_qc(store: Any, station_cfg: Any, settings: QcSettings | None, st
     ensure_qc_schema(db)
     station, sensors = _station_parts(station_cfg)
     now = _time.time() if now is None else now
-    write_from = start_t - s.resid_window
-    # Rows are judged from here (two gap limits before the first row written: the other
-    # sensor's flags are needed that far back for the comparison and the bore check), with
-    # the whole context of every window behind them.
-    judge_from = write_from - 2 * s.gap_limit
-    read_from = judge_from - s.context_seconds()
+    write_from, judge_from, read_from = pass_bounds(start_t, s)
     obs = {sn: read_observations(db, station, sn, read_from, end_t) for sn in sensors}
     obs = {sn: df for sn, df in obs.items() if not df.empty}
     single: dict[str, pd.DataFrame] = {}

@@ -197,9 +197,8 @@ class QcContext:
         db = _qc._db(store)
         station, sensors = _qc._station_parts(station_cfg)
         position = _qc._position(station_cfg)
-        write_from = start_t - s.resid_window
-        judge_from = write_from - 2 * s.gap_limit
-        read_from = int(math.floor(judge_from - s.context_seconds()))
+        write_from, judge_from, read_from = _qc.pass_bounds(start_t, s)
+        read_from = int(math.floor(read_from))
         hi = int(math.ceil(end_t))
         # the connection itself, not its id(): a store reopened may get a freed id back
         key = (db.conn, station, tuple(sensors), position)
@@ -343,8 +342,8 @@ class QcContext:
                     begun.append(stack.enter_context(transaction(db.conn)))
             for sn, h, rows, part, flag in writes:
                 self._write(db, station, sn, h, rows, part, flag, begin)
-                # a steady next pass judges from one resid_window and two gap limits before its start
-                h.keep_from(int(np.searchsorted(h.t, end_t - s.resid_window - 2 * s.gap_limit - 1)))
+                # a steady next pass (from end_t + 1) judges from here on
+                h.keep_from(int(np.searchsorted(h.t, _qc.pass_bounds(end_t + 1, s)[1] - 1)))
         return results
 
     @staticmethod
