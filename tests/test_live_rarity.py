@@ -8,6 +8,7 @@ from __future__ import annotations
 
 import json
 import math
+import time
 from pathlib import Path
 
 import pytest
@@ -16,8 +17,10 @@ from alerts.live.render import render_station, write_station
 from alerts.live.settings import LiveSettings
 from alerts.live.snapshot import rarity_line
 from live_samples import NOW, OFFSET, sample_snapshot
+from monitor.cli import main
 from monitor.service.config import load_config
 from monitor.service.live_pages import RarityCache, gather
+from monitor.store.database import Store
 from units import hour, minute
 
 # display datum [m]; the upper band of the 100-year row unbounded
@@ -206,3 +209,23 @@ def test_an_unreadable_cache_row_is_a_log_line_not_a_traceback(store, tmp_path, 
                      "VALUES ('testport', 'k1', 1, 1, '{}', '{not json', '{}')")
     assert _gather(store, st).rarity is None
     assert "extremes_cache row" in caplog.text
+
+
+def test_status_prints_the_line_in_an_event_and_not_on_calm_water(tmp_path, capsys, monkeypatch):
+    """`quaywatch status` (the harbour master's terminal view) carries the page's rarity line
+    while an event is on, and says nothing of rarity on calm water."""
+    st = _station(tmp_path)
+    with Store.open(tmp_path / "q.db") as store:
+        _calm(store)
+        _cache_row(store)
+    monkeypatch.setattr(time, "time", lambda: float(T_NOW))
+    assert main(["status", str(tmp_path / "config.toml")]) == 0
+    calm = capsys.readouterr().out
+    assert "Highest water in this event" not in calm and "unofficial" in calm
+    with Store.open(tmp_path / "q.db") as store:
+        _observe(store, [(T_NOW - 85 * minute, 3.15)])             # 4.15 m on chart datum
+        _episode(store)
+    assert main(["status", str(tmp_path / "config.toml")]) == 0
+    out = capsys.readouterr().out
+    assert " ".join(out.split()).count(WORDS_415) == 1, out
+    assert st.id in out and "unofficial" in out

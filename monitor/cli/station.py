@@ -203,6 +203,11 @@ def cmd_status(args: argparse.Namespace) -> int:
             for line in headline(snap):
                 print(textwrap.fill(line.text, 100, initial_indent=f"  {'!' if line.alarm else '-'} ",
                                     subsequent_indent="    "), file=out)
+            if snap.rarity:  # in an event: its highest water read off the return-level curve, as on the page
+                rare = f"{snap.rarity['words']} (at {_local(snap.rarity['t'], st.tz)})."
+                if snap.rarity.get("note"):
+                    rare += f" {snap.rarity['note']}"
+                print(textwrap.fill(rare, 100, initial_indent="  - ", subsequent_indent="    "), file=out)
             rows: list[tuple[str, str]] = []
             # the last sample that counts: one that failed quality control, or stamped ahead
             # of the clock, is no sign of life
