@@ -87,6 +87,24 @@ def test_timing_cache_forgets_windows_the_record_no_longer_holds():
     assert (cache.computed, cache.reused) == (1, len(out) - 1)
 
 
+def test_drift_bins_are_the_medians_pandas_gives_per_bin_of_the_fixed_grid():
+    # Reference: pandas' groupby median (shares no code with drift_bins) over the same
+    # differences, bins numbered floor(t / width); times out of order, odd and even counts.
+    rng = np.random.default_rng(4)
+    t = np.sort(rng.choice(np.arange(0, 20 * hour, 30), 1500, replace=False)).astype(float) + 1.7e9
+    shuffled = rng.permutation(len(t))
+    vp = rng.normal(0, 0.1, len(t))
+    tb = np.arange(t[0] - 50.0, t[-1] + 60.0, 60.0)  # the backup every minute, around every primary time
+    vb = rng.normal(0, 0.1, len(tb))
+    got = dg.drift_bins(t[shuffled], vp[shuffled], tb, vb, 300.0, 3600.0)
+    d = vp - np.interp(t, tb, vb)
+    ref = pd.DataFrame({"t": t, "d": d, "b": np.floor(t / 3600.0)}).groupby("b")
+    assert list(got.index) == [int(b) for b in ref.groups]
+    assert np.allclose(got["t"], ref["t"].median(), rtol=0, atol=1e-6)
+    assert np.allclose(got["d"], ref["d"].median(), rtol=0, atol=1e-12)
+    assert np.array_equal(got["first"], ref["t"].min()) and np.array_equal(got["last"], ref["t"].max())
+
+
 # --------------------------------------------------------------------------- the daemon
 
 DRIFT_DAYS = 3

@@ -167,14 +167,19 @@ def drift_bins(tp: np.ndarray, vp: np.ndarray, tb: np.ndarray, vb: np.ndarray, g
     """
     d = difference_on_arrays(tp, vp, tb, vb, gap_limit)
     ok = np.isfinite(d)
-    t = tp[ok]
-    frame = pd.DataFrame({"t": t, "d": d[ok], "b": np.floor(t / width)})
-    g = frame.groupby("b")
-    out = g[["t", "d"]].median()
-    out["first"] = g["t"].min()
-    out["last"] = g["t"].max()
-    out.index = out.index.astype(np.int64)
-    return out
+    t, d = tp[ok], d[ok]
+    if len(t) > 1 and np.any(np.diff(t) < 0):
+        order = np.argsort(t, kind="stable")
+        t, d = t[order], d[order]
+    b = np.floor(t / width).astype(np.int64)
+    # bins are runs of one number in time order; a median is the mean of the middle two of
+    # the bin's values sorted (one value twice when the bin holds an odd number)
+    starts = np.flatnonzero(np.concatenate([[True], b[1:] != b[:-1]])) if len(b) else np.empty(0, np.int64)
+    n = np.diff(np.concatenate([starts, [len(b)]]))
+    lo, hi = starts + (n - 1) // 2, starts + n // 2
+    ds = d[np.lexsort((d, b))]
+    return pd.DataFrame({"t": (t[lo] + t[hi]) / 2, "d": (ds[lo] + ds[hi]) / 2, "first": t[starts],
+                         "last": t[starts + n - 1]}, index=pd.Index(b[starts], dtype=np.int64))
 
 
 def drift_line(bins: pd.DataFrame, confidence: float = 0.95) -> dict:
@@ -371,11 +376,21 @@ def _running_mean(x: np.ndarray, m: np.ndarray, width: int) -> np.ndarray:
 def _band_filter(x: np.ndarray, dt: float, lo: float, hi: float, edge: float = 0.1) -> np.ndarray:
     """Band-pass [lo, hi] cycles/day with raised-cosine edges ``edge`` wide, zero-padded FFT."""
     n = len(x)
-    nfft = 1 << int(np.ceil(np.log2(2 * n)))
+    nfft = _nfft(n)
+    return np.fft.irfft(np.fft.rfft(x, nfft) * _band_weights(nfft, dt, lo, hi, edge), nfft)[:n]
+
+
+def _nfft(n: int) -> int:
+    """The zero-padded FFT length of :func:`_band_filter` for ``n`` samples."""
+    return 1 << int(np.ceil(np.log2(2 * n)))
+
+
+def _band_weights(nfft: int, dt: float, lo: float, hi: float, edge: float = 0.1) -> np.ndarray:
+    """:func:`_band_filter`'s weights at the ``nfft``-point frequencies (``dt`` [s], band
+    [cycles/day])."""
     f = np.fft.rfftfreq(nfft, dt) / _CPD
     w = np.clip(np.minimum(f - (lo - edge / 2), (hi + edge / 2) - f) / edge, 0.0, 1.0)
-    w = 0.5 - 0.5 * np.cos(np.pi * w)
-    return np.fft.irfft(np.fft.rfft(x, nfft) * w, nfft)[:n]
+    return 0.5 - 0.5 * np.cos(np.pi * w)
 
 
 def clock_offset(observed: pd.Series, model: Any, *, max_shift: float = 3600.0, day: float = DAY,
@@ -461,7 +476,7 @@ class _ClockGrid:
     """The record on its analysis grid: samples ``t`` [s] and ``y`` [m], the prediction's grid
     (``gt`` [s], level ``gp`` [m], rate ``gd`` [m/s]), the grid step ``dt`` [s], each sample's
     grid cell ``k``, ``n`` cells with ``cnt`` samples (``m``: any), the running-mean
-    ``width`` [cells] and the ``taper``."""
+    ``width`` [cells], the ``taper`` and the band weights last used."""
 
     t: np.ndarray
     y: np.ndarray
@@ -475,6 +490,7 @@ class _ClockGrid:
     m: np.ndarray
     width: int
     taper: np.ndarray
+    weights: tuple | None = None  # (key, band weights) of the last _band_sums
 
 
 def _clock_grid(obs: pd.Series, model: Any, max_shift: float, smooth_hours: float) -> _ClockGrid:
@@ -502,8 +518,15 @@ def _band_sums(g: _ClockGrid, lag: float, bands) -> list:
     # the record's ends (and of a surge) from long periods into the tidal bands.
     rg = np.where(g.m, rg - _running_mean(rg, g.m, g.width), 0.0) * g.taper
     dg_ = np.where(g.m, dg_ - _running_mean(dg_, g.m, g.width), 0.0) * g.taper
-    return [(name, lo, hi, _band_filter(rg, g.dt, lo, hi), _band_filter(dg_, g.dt, lo, hi))
-            for name, lo, hi in bands]
+    # each band as _band_filter gives it, from one transform of each series and one set of
+    # weights per band (the same numbers, a third of the transforms)
+    nfft = _nfft(g.n)
+    spectra = np.fft.rfft(rg, nfft), np.fft.rfft(dg_, nfft)
+    key = (nfft, g.dt, tuple(bands))
+    if g.weights is None or g.weights[0] != key:
+        g.weights = (key, [_band_weights(nfft, g.dt, lo, hi) for _, lo, hi in bands])
+    return [(name, lo, hi, np.fft.irfft(spectra[0] * w, nfft)[:g.n], np.fft.irfft(spectra[1] * w, nfft)[:g.n])
+            for (name, lo, hi), w in zip(bands, g.weights[1])]
 
 
 def _band_shifts(parts: list, dt: float, sel=slice(None)) -> dict:
