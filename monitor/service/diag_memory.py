@@ -56,7 +56,7 @@ class HeldRows:
 
     def between(self, lo: int, hi: int) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
         """The rows in ``[lo, hi]`` [Unix s] (within the rows held)."""
-        i, j = np.searchsorted(self.t, [lo, hi], side="left")[0], np.searchsorted(self.t, hi, side="right")
+        i, j = np.searchsorted(self.t, lo, side="left"), np.searchsorted(self.t, hi, side="right")
         return self.t[i:j], self.v[i:j], self.f[i:j]
 
 
