@@ -1152,7 +1152,7 @@ class Daemon:
             return out
         try:
             since = memo.begin(store, end_t)
-            # each level sensor's rows over the clock's span, held for the next run
+            # each level sensor's usable rows over the clock's span, held for the next run
             rows = {r: memo.rows(store, st.id, r, a, end_t, since) for r in levels}
             if "backup" in st.sensors:
                 drift = memo.drift(store, st.id, drift_from, end_t, since, gap_limit=qs.gap_limit)

@@ -6,9 +6,9 @@ from scratch each time, a run reads that whole record and recomputes every windo
 bin; :class:`DiagnosticsMemory` keeps what the last run read and made, so the next run
 reads the rows that are new or may have changed and recomputes only what they touch:
 
-- the level sensors' rows over the clock window (:class:`HeldRows`): rows newer than the
-  last run are read, and again every row from the earliest time that may have changed
-  since (see below);
+- the level sensors' usable rows over the clock window (:class:`HeldRows`, 12 bytes a
+  row): rows newer than the last run are read, and again every row from the earliest
+  time that may have changed since (see below);
 - :func:`monitor.quality.diagnostics.sensor_timing`'s windows
   (:class:`monitor.quality.diagnostics.TimingWindows`, keyed by a digest of each
   window's samples, so a window whose samples changed is recomputed whatever the
@@ -47,31 +47,35 @@ from monitor.quality.checks import EDITS_KEY, USABLE_FLAGS
 
 
 class HeldRows:
-    """One sensor's rows in ``[lo, hi]`` [Unix s] as the store held them at the last run:
-    times ``t`` [Unix s, int64], values ``v`` [m] and aggregate flags ``f`` [int8]."""
+    """One sensor's usable rows (flag 1, 2 or 3, a value) in ``[lo, hi]`` [Unix s] as the
+    store held them at the last run: times as 32-bit offsets from ``lo`` [s] and values [m]
+    (12 bytes a row). Rows that are not usable need not be held: rows older than the
+    earliest change keep their flags, and every newer row is read again."""
 
-    def __init__(self, lo: int, hi: int, t: np.ndarray, v: np.ndarray, f: np.ndarray):
+    def __init__(self, lo: int, hi: int, t: np.ndarray, v: np.ndarray):
         self.lo, self.hi = int(lo), int(hi)
-        self.t, self.v, self.f = t, v, f.astype(np.int8, copy=False)
+        self.dt = (t - self.lo).astype(np.int32)
+        self.v = v
 
-    def between(self, lo: int, hi: int) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-        """The rows in ``[lo, hi]`` [Unix s] (within the rows held)."""
-        i, j = np.searchsorted(self.t, lo, side="left"), np.searchsorted(self.t, hi, side="right")
-        return self.t[i:j], self.v[i:j], self.f[i:j]
+    def between(self, lo: int, hi: int) -> tuple[np.ndarray, np.ndarray]:
+        """Times [Unix s, int64] and values [m] of the rows held in ``[lo, hi]`` [Unix s]."""
+        i = np.searchsorted(self.dt, max(lo - self.lo, -1), side="left")
+        j = np.searchsorted(self.dt, min(hi - self.lo, 2 ** 31 - 1), side="right")
+        return self.dt[i:j].astype(np.int64) + self.lo, self.v[i:j]
 
 
-def usable_series(t: np.ndarray, v: np.ndarray, f: np.ndarray) -> pd.Series:
-    """The usable samples (flag 1, 2 or 3, a value) as a Series [m] on a UTC DatetimeIndex, as
+def usable_series(t: np.ndarray, v: np.ndarray) -> pd.Series:
+    """Usable samples (times [Unix s], levels [m]) as a Series [m] on a UTC DatetimeIndex, as
     :func:`monitor.quality.diagnostics.usable_only` gives them from the store's frame."""
-    m = np.isin(f, USABLE_FLAGS) & np.isfinite(v)
-    idx = pd.DatetimeIndex(pd.to_datetime(t[m], unit="s", utc=True), name="time")
-    return pd.Series(v[m], index=idx, name="value")
+    idx = pd.DatetimeIndex(pd.to_datetime(t, unit="s", utc=True), name="time")
+    return pd.Series(v, index=idx, name="value")
 
 
-def _usable_arrays(rows: tuple[np.ndarray, np.ndarray, np.ndarray]) -> tuple[np.ndarray, np.ndarray]:
+def _usable(rows: tuple[np.ndarray, np.ndarray, np.ndarray]) -> tuple[np.ndarray, np.ndarray]:
+    """The usable rows (flag 1, 2 or 3, a value) of the store's (times, values, flags)."""
     t, v, f = rows
     m = np.isin(f, USABLE_FLAGS) & np.isfinite(v)
-    return t[m].astype(float), v[m]
+    return t[m], v[m]
 
 
 def _edits(conn: Any) -> tuple | None:
@@ -133,33 +137,33 @@ class DiagnosticsMemory:
         return since
 
     def rows(self, store: Any, station: str, sensor: str, lo: int, hi: int, since: float
-             ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-        """A sensor's rows in ``[lo, hi]`` [Unix s] (times, values, flags), the same as the
-        store holds, read only from ``since`` (or everything, when the rows held do not
-        reach back to ``lo``); held for the next run."""
+             ) -> tuple[np.ndarray, np.ndarray]:
+        """A sensor's usable rows in ``[lo, hi]`` [Unix s] (times [Unix s, int64], values [m]),
+        the same as the store holds, read only from ``since`` on (everything, when the rows
+        held do not reach back to ``lo``); held for the next run."""
         held = self.held.get(sensor)
         if held is None or lo < held.lo or since <= lo:
-            new = store.observation_arrays(station, sensor, lo, hi)
-            self.rows_read += len(new[0])
-            t, v, f = new
+            read = store.observation_arrays(station, sensor, lo, hi)
+            self.rows_read += len(read[0])
+            t, v = _usable(read)
         else:
             keep_to = int(min(since - 1, held.hi, hi))
-            kt, kv, kf = held.between(lo, keep_to)
-            nt, nv, nf = store.observation_arrays(station, sensor, keep_to + 1, hi)
-            self.rows_read += len(nt)
-            t, v, f = np.concatenate([kt, nt]), np.concatenate([kv, nv]), np.concatenate([kf, nf.astype(np.int8)])
-        self.held[sensor] = HeldRows(lo, hi, t, v, f)
-        return self.held[sensor].t, self.held[sensor].v, self.held[sensor].f
+            kt, kv = held.between(lo, keep_to)
+            read = store.observation_arrays(station, sensor, keep_to + 1, hi)
+            self.rows_read += len(read[0])
+            nt, nv = _usable(read)
+            t, v = np.concatenate([kt, nt]), np.concatenate([kv, nv])
+        self.held[sensor] = HeldRows(lo, hi, t, v)
+        return t, v
 
-    def _between(self, store: Any, station: str, sensor: str, lo: int, hi: int
-                 ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-        """Rows in ``[lo, hi]`` from those held this run where they reach, else from the store."""
+    def _between(self, store: Any, station: str, sensor: str, lo: int, hi: int) -> tuple[np.ndarray, np.ndarray]:
+        """Usable rows in ``[lo, hi]`` from those held this run where they reach, else from the store."""
         held = self.held.get(sensor)
         if held is not None and held.lo <= lo and hi <= held.hi:
             return held.between(lo, hi)
-        rows = store.observation_arrays(station, sensor, lo, hi)
-        self.rows_read += len(rows[0])
-        return rows
+        read = store.observation_arrays(station, sensor, lo, hi)
+        self.rows_read += len(read[0])
+        return _usable(read)
 
     def drift(self, store: Any, station: str, lo: int, hi: int, since: float, *, gap_limit: float,
               bin_seconds: float = 3600.0, max_bins: int = diagnostics.DRIFT_MAX_BINS,
@@ -212,9 +216,9 @@ class DiagnosticsMemory:
     def _bins_of(self, store: Any, station: str, lo: int, hi: int, gap_limit: float,
                  width: float) -> pd.DataFrame:
         """The drift bins of the usable rows in ``[lo, hi]`` [Unix s]."""
-        tp, vp = _usable_arrays(self._between(store, station, "primary", lo, hi))
-        tb, vb = _usable_arrays(self._between(store, station, "backup", lo, hi))
-        bins = diagnostics.drift_bins(tp, vp, tb, vb, gap_limit, width)
+        tp, vp = self._between(store, station, "primary", lo, hi)
+        tb, vb = self._between(store, station, "backup", lo, hi)
+        bins = diagnostics.drift_bins(tp.astype(float), vp, tb.astype(float), vb, gap_limit, width)
         self.drift_computed += len(bins)
         return bins
 
@@ -222,10 +226,8 @@ class DiagnosticsMemory:
         """Whether a sensor has a usable sample (flag 1, 2 or 3, or none yet, and a value) in
         ``[lo, hi]`` [Unix s]: from the rows held when they show one, else from the store."""
         held = self.held.get(sensor)
-        if held is not None and held.lo >= lo and held.hi <= hi:
-            _, v, f = held.between(lo, hi)
-            if (np.isin(f, USABLE_FLAGS) & np.isfinite(v)).any():
-                return True
+        if held is not None and held.lo >= lo and held.hi <= hi and len(held.v):
+            return True
         return store.conn.execute(
             "SELECT 1 FROM observations WHERE station = ? AND sensor = ? AND t BETWEEN ? AND ? "
             "AND coalesce(flag, 2) IN (1, 2, 3) AND value IS NOT NULL LIMIT 1",
