@@ -117,7 +117,7 @@ def _hourly_rerun(cons, targets) -> None:
 
     with tempfile.TemporaryDirectory() as tmp:
         tmp = Path(tmp)
-        lines = [f"mean = 2.5"] + [f'[[constituents]]\nname = "{n}"\namplitude = {a}\nphase = {p}' for n, a, p in cons]
+        lines = ["mean = 2.5"] + [f'[[constituents]]\nname = "{n}"\namplitude = {a}\nphase = {p}' for n, a, p in cons]
         (tmp / "c.toml").write_text("\n".join(lines) + "\n")
         rule = {"id": "surge", "when": "residual_above", "hold": 0, "notify": ["duty@bench.example"],
                 "steps": [{"name": "raised", "at": 5.0}]}
