@@ -125,8 +125,22 @@ class DiagnosticsMemory:
 
     # ------------------------------------------------------------------ a run
     def begin(self, store: Any, end_t: int) -> float:
-        """Start a run ending at ``end_t`` [Unix s]: the time [Unix s] before which the rows
-        held are still as the store holds them (``-inf``: nothing held can be trusted)."""
+        """Start a run ending at ``end_t``.
+
+        Parameters
+        ----------
+        store : Store
+            The store the run reads (its connection and ``qc.edits`` are compared with the
+            last run's).
+        end_t : int
+            End of the run's spans [Unix s].
+
+        Returns
+        -------
+        float
+            The time [Unix s] before which the rows held are still as the store holds them
+            (``-inf``: nothing held can be trusted).
+        """
         conn = store.conn
         edits = _edits(conn)
         trusted = edits is not None and edits == self.edits and conn is self.conn and self.hi is not None
@@ -138,9 +152,27 @@ class DiagnosticsMemory:
 
     def rows(self, store: Any, station: str, sensor: str, lo: int, hi: int, since: float
              ) -> tuple[np.ndarray, np.ndarray]:
-        """A sensor's usable rows in ``[lo, hi]`` [Unix s] (times [Unix s, int64], values [m]),
-        the same as the store holds, read only from ``since`` on (everything, when the rows
-        held do not reach back to ``lo``); held for the next run."""
+        """A sensor's usable rows in ``[lo, hi]``, the same as the store holds, held for the
+        next run.
+
+        Parameters
+        ----------
+        store : Store
+            Where rows are read.
+        station, sensor : str
+            Whose rows.
+        lo, hi : int
+            The span [Unix s], both ends included.
+        since : float
+            From :meth:`begin`: rows from this time [Unix s] on are read again; all are when
+            the rows held do not reach back to ``lo``.
+
+        Returns
+        -------
+        (t, v) : tuple of ndarray
+            Times [Unix s, int64] and levels [m] of the samples flagged 1, 2 or 3 (or not
+            yet) with a value, in time order.
+        """
         held = self.held.get(sensor)
         if held is None or lo < held.lo or since <= lo:
             read = store.observation_arrays(station, sensor, lo, hi)
@@ -168,12 +200,34 @@ class DiagnosticsMemory:
     def drift(self, store: Any, station: str, lo: int, hi: int, since: float, *, gap_limit: float,
               bin_seconds: float = 3600.0, max_bins: int = diagnostics.DRIFT_MAX_BINS,
               confidence: float = 0.95) -> dict | None:
-        """:func:`monitor.quality.diagnostics.sensor_drift` of the primary against the
-        backup over ``[lo, hi]`` [Unix s] (usable samples), or None when either has none.
+        """:func:`monitor.quality.diagnostics.sensor_drift` of the primary against the backup.
 
-        The bins kept from the last run whose rows are all older than ``since`` [Unix s]
-        (less ``gap_limit``: a bin uses the backup that far beyond it) and not cut by
-        ``lo`` are taken as they are; the rest are made from their rows.
+        The bins kept from the last run whose rows are all older than ``since`` (less
+        ``gap_limit``: a bin uses the backup that far beyond it) and not cut by ``lo`` are
+        taken as they are; the rest are made from their rows (held this run, else read).
+
+        Parameters
+        ----------
+        store : Store
+            Where rows not held are read.
+        station : str
+            Whose sensors.
+        lo, hi : int
+            The drift window [Unix s], both ends included.
+        since : float
+            From :meth:`begin` [Unix s].
+        gap_limit, bin_seconds : float
+            As :func:`monitor.quality.diagnostics.sensor_drift` [s].
+        max_bins : int
+            As :func:`monitor.quality.diagnostics.sensor_drift`.
+        confidence : float
+            Confidence level of the drift's interval [1].
+
+        Returns
+        -------
+        dict or None
+            As :func:`monitor.quality.diagnostics.sensor_drift` over the usable samples of
+            ``[lo, hi]``; None when either sensor has none there.
         """
         if not (self._any_usable(store, station, "primary", lo, hi)
                 and self._any_usable(store, station, "backup", lo, hi)):
