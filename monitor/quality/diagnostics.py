@@ -32,6 +32,7 @@ on Kendall's tau. JASA 63 (Theil-Sen slope; scipy.stats.theilslopes).
 """
 from __future__ import annotations
 
+import hashlib
 import logging
 import math
 from dataclasses import dataclass
@@ -41,7 +42,7 @@ import numpy as np
 import pandas as pd
 from scipy import signal, stats
 
-from monitor.quality.checks import USABLE_FLAGS, QcSettings, difference_at
+from monitor.quality.checks import USABLE_FLAGS, QcSettings, difference_at, difference_on_arrays
 from predictor.constituents import get
 from predictor.fit import harmonic_fit
 from predictor.timeutil import index_seconds, utc_index, utc_timestamp
@@ -80,10 +81,27 @@ def sensor_drift(primary: pd.Series, backup: pd.Series, *, bin_seconds: float = 
     The difference ``primary - backup`` (backup interpolated to the primary's times)
     is reduced to medians per ``bin_seconds`` bin (which keeps Theil-Sen's pairwise
     slopes affordable and resists spikes); the Theil-Sen line through the bin medians
-    gives the drift, and its value at the window's centre the offset. A record longer
-    than ``max_bins`` bins gets wider bins (the span over ``max_bins``), so the pairwise
-    slopes stay a fixed number and the cost grows with the record only through the
-    binning (the default 30-day window keeps its hourly bins).
+    gives the drift, and its value at the window's centre the offset. The bins lie on a
+    fixed grid in absolute time (bin ``k`` holds ``[k w, (k + 1) w)`` [Unix s]), so the
+    bins of a record that grows are the same bins as before (the daemon keeps them
+    between its hourly runs: :func:`drift_bins`, :func:`drift_line`). A record longer
+    than about ``max_bins`` bins gets wider bins (a whole multiple of ``bin_seconds``,
+    :func:`drift_bin_width`), so the pairwise slopes stay a fixed number and the cost
+    grows with the record only through the binning (the default 30-day window keeps its
+    hourly bins).
+
+    Parameters
+    ----------
+    primary, backup : Series
+        Usable levels [m] on UTC DatetimeIndexes.
+    bin_seconds : float
+        Width of the bins [s] (at least).
+    gap_limit : float
+        Longest gap of the backup bridged by interpolation [s].
+    confidence : float
+        Confidence level of the drift's interval [1].
+    max_bins : int
+        Bins at most.
 
     Returns
     -------
@@ -97,20 +115,98 @@ def sensor_drift(primary: pd.Series, backup: pd.Series, *, bin_seconds: float = 
     Sen (1968); Theil (1950), via scipy.stats.theilslopes. IOC Manual Vol. IV (use of a
     second sensor to check the first).
     """
-    d = pd.Series(difference_at(primary, backup, gap_limit), index=utc_index(primary.index)).dropna()
+    p, b = primary.dropna(), backup.dropna()
+    tp, vp = index_seconds(p.index), p.to_numpy(dtype=float)
+    tb, vb = index_seconds(b.index), b.to_numpy(dtype=float)
+    d = difference_on_arrays(tp, vp, tb, vb, gap_limit)
+    ok = np.isfinite(d)
+    if not ok.any():
+        return drift_line(drift_bins(tp, vp, tb, vb, gap_limit, bin_seconds), confidence)
+    width = drift_bin_width(float(tp[ok][-1] - tp[ok][0]), bin_seconds, max_bins)
+    return drift_line(drift_bins(tp, vp, tb, vb, gap_limit, width), confidence)
+
+
+def drift_bin_width(span: float, bin_seconds: float = 3600.0, max_bins: int = DRIFT_MAX_BINS) -> float:
+    """Width [s] of :func:`sensor_drift`'s bins for a difference spanning ``span`` [s]:
+    ``bin_seconds``, or the least whole multiple of it that keeps the bins of the fixed
+    grid within ``max_bins`` (a span may cut a bin at each end, hence ``max_bins - 2``)."""
+    k = max(1, math.ceil(span / max(max_bins - 2, 1) / bin_seconds))
+    return float(k * bin_seconds)
+
+
+#: Columns of :func:`drift_bins`.
+DRIFT_BIN_COLUMNS = ("t", "d", "first", "last")
+
+
+def drift_bins(tp: np.ndarray, vp: np.ndarray, tb: np.ndarray, vb: np.ndarray, gap_limit: float,
+               width: float) -> pd.DataFrame:
+    """The difference ``primary - backup`` reduced to medians per bin of the fixed grid.
+
+    The difference at a primary sample uses the backup's samples within ``gap_limit`` of
+    it only (:func:`monitor.quality.checks.difference_at`), so a bin ``[b0, b1)`` depends
+    on the primary's samples in it and the backup's in ``[b0 - gap_limit, b1 + gap_limit]``:
+    a bin computed from any rows that include those equals the bin computed from the
+    whole record.
+
+    Parameters
+    ----------
+    tp, vp, tb, vb : ndarray
+        Times [Unix s] and levels [m] of the primary's and the backup's usable samples,
+        in time order, without NaN.
+    gap_limit : float
+        Longest gap of the backup bridged by interpolation [s].
+    width : float
+        Width of the bins [s] (:func:`drift_bin_width`).
+
+    Returns
+    -------
+    DataFrame
+        Indexed by bin number ``k`` (``floor(t / width)``), bins with a difference only:
+        ``t`` and ``d`` (median time [Unix s] and median difference [m]), ``first`` and
+        ``last`` (the bin's first and last time with a difference [Unix s]).
+    """
+    d = difference_on_arrays(tp, vp, tb, vb, gap_limit)
+    ok = np.isfinite(d)
+    t, d = tp[ok], d[ok]
+    if len(t) > 1 and np.any(np.diff(t) < 0):
+        order = np.argsort(t, kind="stable")
+        t, d = t[order], d[order]
+    b = np.floor(t / width).astype(np.int64)
+    # bins are runs of one number in time order; a median is the mean of the middle two of
+    # the bin's values sorted (one value twice when the bin holds an odd number)
+    starts = np.flatnonzero(np.concatenate([[True], b[1:] != b[:-1]])) if len(b) else np.empty(0, np.int64)
+    n = np.diff(np.concatenate([starts, [len(b)]]))
+    lo, hi = starts + (n - 1) // 2, starts + n // 2
+    ds = d[np.lexsort((d, b))]
+    return pd.DataFrame({"t": (t[lo] + t[hi]) / 2, "d": (ds[lo] + ds[hi]) / 2, "first": t[starts],
+                         "last": t[starts + n - 1]}, index=pd.Index(b[starts], dtype=np.int64))
+
+
+def drift_line(bins: pd.DataFrame, confidence: float = 0.95) -> dict:
+    """:func:`sensor_drift`'s result from its bins (:func:`drift_bins`, in bin order).
+
+    Parameters
+    ----------
+    bins : DataFrame
+        ``t`` [Unix s], ``d`` [m], ``first`` and ``last`` [Unix s] per bin.
+    confidence : float
+        Confidence level of the drift's interval [1].
+
+    Returns
+    -------
+    dict
+        As :func:`sensor_drift`.
+    """
     out = {"offset_mm": np.nan, "offset_se_mm": np.nan, "drift_mm_per_day": np.nan, "drift_low": np.nan,
            "drift_high": np.nan, "bins": 0, "start": None, "end": None, "centre": None}
-    if d.empty:
+    if bins.empty:
         return out
-    t = index_seconds(d.index)
-    bin_seconds = max(bin_seconds, (t[-1] - t[0]) / (max_bins - 1))  # bins 0 .. max_bins - 1
-    b = np.floor((t - t[0]) / bin_seconds)
-    g = pd.DataFrame({"t": t, "d": d.to_numpy(), "b": b}).groupby("b").median()
-    out.update(bins=len(g), start=d.index[0], end=d.index[-1])
-    if len(g) < 3:
+    t0 = float(bins["first"].iloc[0])
+    out.update(bins=len(bins), start=utc_timestamp(t0), end=utc_timestamp(float(bins["last"].iloc[-1])))
+    if len(bins) < 3:
         return out
-    x = (g["t"].to_numpy() - t[0]) / DAY
-    y = g["d"].to_numpy() / MM
+    x = (bins["t"].to_numpy() - t0) / DAY
+    y = bins["d"].to_numpy() / MM
     res = stats.theilslopes(y, x, alpha=confidence)
     xc = 0.5 * (x[0] + x[-1])
     resid = y - res.slope * (x - xc)
@@ -119,7 +215,7 @@ def sensor_drift(primary: pd.Series, backup: pd.Series, *, bin_seconds: float = 
     # Standard error of a median: 1.2533 sigma / sqrt(n) (normal errors; common practice).
     out.update(offset_mm=offset, offset_se_mm=1.2533 * spread / math.sqrt(len(y)),
                drift_mm_per_day=float(res.slope), drift_low=float(res.low_slope),
-               drift_high=float(res.high_slope), centre=utc_timestamp(t[0] + xc * DAY))
+               drift_high=float(res.high_slope), centre=utc_timestamp(t0 + xc * DAY))
     return out
 
 
@@ -280,11 +376,21 @@ def _running_mean(x: np.ndarray, m: np.ndarray, width: int) -> np.ndarray:
 def _band_filter(x: np.ndarray, dt: float, lo: float, hi: float, edge: float = 0.1) -> np.ndarray:
     """Band-pass [lo, hi] cycles/day with raised-cosine edges ``edge`` wide, zero-padded FFT."""
     n = len(x)
-    nfft = 1 << int(np.ceil(np.log2(2 * n)))
+    nfft = _nfft(n)
+    return np.fft.irfft(np.fft.rfft(x, nfft) * _band_weights(nfft, dt, lo, hi, edge), nfft)[:n]
+
+
+def _nfft(n: int) -> int:
+    """The zero-padded FFT length of :func:`_band_filter` for ``n`` samples."""
+    return 1 << int(np.ceil(np.log2(2 * n)))
+
+
+def _band_weights(nfft: int, dt: float, lo: float, hi: float, edge: float = 0.1) -> np.ndarray:
+    """:func:`_band_filter`'s weights at the ``nfft``-point frequencies (``dt`` [s], band
+    [cycles/day])."""
     f = np.fft.rfftfreq(nfft, dt) / _CPD
     w = np.clip(np.minimum(f - (lo - edge / 2), (hi + edge / 2) - f) / edge, 0.0, 1.0)
-    w = 0.5 - 0.5 * np.cos(np.pi * w)
-    return np.fft.irfft(np.fft.rfft(x, nfft) * w, nfft)[:n]
+    return 0.5 - 0.5 * np.cos(np.pi * w)
 
 
 def clock_offset(observed: pd.Series, model: Any, *, max_shift: float = 3600.0, day: float = DAY,
@@ -370,7 +476,7 @@ class _ClockGrid:
     """The record on its analysis grid: samples ``t`` [s] and ``y`` [m], the prediction's grid
     (``gt`` [s], level ``gp`` [m], rate ``gd`` [m/s]), the grid step ``dt`` [s], each sample's
     grid cell ``k``, ``n`` cells with ``cnt`` samples (``m``: any), the running-mean
-    ``width`` [cells] and the ``taper``."""
+    ``width`` [cells], the ``taper`` and the band weights last used."""
 
     t: np.ndarray
     y: np.ndarray
@@ -384,6 +490,7 @@ class _ClockGrid:
     m: np.ndarray
     width: int
     taper: np.ndarray
+    weights: tuple | None = None  # (key, band weights) of the last _band_sums
 
 
 def _clock_grid(obs: pd.Series, model: Any, max_shift: float, smooth_hours: float) -> _ClockGrid:
@@ -411,8 +518,15 @@ def _band_sums(g: _ClockGrid, lag: float, bands) -> list:
     # the record's ends (and of a surge) from long periods into the tidal bands.
     rg = np.where(g.m, rg - _running_mean(rg, g.m, g.width), 0.0) * g.taper
     dg_ = np.where(g.m, dg_ - _running_mean(dg_, g.m, g.width), 0.0) * g.taper
-    return [(name, lo, hi, _band_filter(rg, g.dt, lo, hi), _band_filter(dg_, g.dt, lo, hi))
-            for name, lo, hi in bands]
+    # each band as _band_filter gives it, from one transform of each series and one set of
+    # weights per band (the same numbers, a third of the transforms)
+    nfft = _nfft(g.n)
+    spectra = np.fft.rfft(rg, nfft), np.fft.rfft(dg_, nfft)
+    key = (nfft, g.dt, tuple(bands))
+    if g.weights is None or g.weights[0] != key:
+        g.weights = (key, [_band_weights(nfft, g.dt, lo, hi) for _, lo, hi in bands])
+    return [(name, lo, hi, np.fft.irfft(spectra[0] * w, nfft)[:g.n], np.fft.irfft(spectra[1] * w, nfft)[:g.n])
+            for (name, lo, hi), w in zip(bands, g.weights[1])]
 
 
 def _band_shifts(parts: list, dt: float, sel=slice(None)) -> dict:
@@ -549,6 +663,8 @@ def relative_clock(primary: pd.Series, backup: pd.Series, *, primary_flags=None,
     the lag; the latest window's lag is the current offset, its uncertainty the
     spread (1.4826 MAD / sqrt(n)) of the windows around the median, no less than half
     the lag grid; :func:`clock_episodes` names the spans off by more than ``limit_min``.
+    Other keywords go to :func:`sensor_timing` (among them ``cache``, a
+    :class:`TimingWindows` kept between runs over a record that grows).
 
     Returns
     -------
@@ -581,17 +697,58 @@ def relative_clock(primary: pd.Series, backup: pd.Series, *, primary_flags=None,
 
 # --------------------------------------------------------------------------- backup timing
 
+class TimingWindows:
+    """:func:`sensor_timing`'s windows kept between runs over a record that grows.
+
+    Each window is kept under its start [Unix s] with a digest (BLAKE2b, 128 bits) of
+    exactly the arrays it was computed from: the backup's times and levels in the window
+    and the primary's around it. A run over a record that grew recomputes only the windows
+    that are new or whose samples changed (a late row, a flag changed by quality control
+    or a technician, a value rewritten); every other window's lag is the one computed
+    before from the same numbers, so the result equals a run without the cache. Windows
+    that the record no longer holds are forgotten at each run, so the cache holds at most
+    the windows of one record. Other window or lag settings clear it.
+
+    Attributes
+    ----------
+    computed, reused : int
+        Windows computed and taken from the cache by the last run.
+    """
+
+    def __init__(self) -> None:
+        self.settings: tuple | None = None
+        self.windows: dict[float, tuple[bytes, float, float]] = {}  # start -> (digest, lag [s], mad [m])
+        self.computed = 0
+        self.reused = 0
+
+    def _begin(self, settings: tuple) -> None:
+        if settings != self.settings:
+            self.settings, self.windows = settings, {}
+        self.computed = self.reused = 0
+
+
+def _digest(*arrays: np.ndarray) -> bytes:
+    h = hashlib.blake2b(digest_size=16)
+    for a in arrays:
+        h.update(np.int64(len(a)).tobytes())
+        h.update(np.ascontiguousarray(a))
+    return h.digest()
+
+
 def sensor_timing(primary: pd.Series, backup: pd.Series, window_s: float = 6 * 3600.0,
                   step_s: float = 3 * 3600.0, max_lag_s: float = 900.0, lag_step_s: float = 15.0,
-                  min_samples: int = 60) -> pd.DataFrame:
+                  min_samples: int = 60, *, cache: TimingWindows | None = None) -> pd.DataFrame:
     """Timing of the backup sensor against the primary, window by window.
 
-    In each window of ``window_s`` [s] (stepped by ``step_s`` [s]) the lag ``L`` on a
-    grid of ``lag_step_s`` [s] within +-``max_lag_s`` [s] that makes
-    ``backup(t) - primary(t + L)`` most nearly constant (smallest median absolute
-    deviation) is taken. Both sensors see the same sea, so their difference cancels the
-    tide and the weather (a surge included) and leaves offset, drift and timing; the
-    median keeps spikes and a stuck spell from steering it.
+    In each window of ``window_s`` [s] the lag ``L`` on a grid of ``lag_step_s`` [s]
+    within +-``max_lag_s`` [s] that makes ``backup(t) - primary(t + L)`` most nearly
+    constant (smallest median absolute deviation) is taken. Both sensors see the same
+    sea, so their difference cancels the tide and the weather (a surge included) and
+    leaves offset, drift and timing; the median keeps spikes and a stuck spell from
+    steering it. The windows start at whole multiples of ``step_s`` in absolute time
+    (UTC; the first at or after both records' first sample, the last ending at or before
+    both records' last sample), so a record that grows keeps its windows: with ``cache``
+    only the windows that are new or whose samples changed are computed.
 
     Parameters
     ----------
@@ -601,6 +758,8 @@ def sensor_timing(primary: pd.Series, backup: pd.Series, window_s: float = 6 * 3
         Window length, window step, lag range and lag grid [s].
     min_samples : int
         Backup samples a window needs to be used.
+    cache : TimingWindows, optional
+        The windows of an earlier run over the same sensors, updated here.
 
     Returns
     -------
@@ -616,29 +775,58 @@ def sensor_timing(primary: pd.Series, backup: pd.Series, window_s: float = 6 * 3
     the difference: common practice, no source.
     """
     cols = ["start", "end", "lag_min", "mad_mm"]
+    if cache is not None:
+        cache._begin((float(window_s), float(step_s), float(max_lag_s), float(lag_step_s), int(min_samples)))
     primary, backup = primary.dropna(), backup.dropna()
     if len(primary) < 2 or len(backup) < 2:
+        if cache is not None:
+            cache.windows = {}
         return pd.DataFrame(columns=cols)
     ps, pv = index_seconds(primary.index), primary.to_numpy(dtype=float)
     bs, bv = index_seconds(backup.index), backup.to_numpy(dtype=float)
     lags = np.arange(-max_lag_s, max_lag_s + lag_step_s / 2, lag_step_s)
     rows = []
-    t0 = max(ps[0], bs[0])
+    kept: dict[float, tuple[bytes, float, float]] = {}
+    last = min(ps[-1], bs[-1])
+    k = math.ceil(max(ps[0], bs[0]) / step_s)
     # each window's samples by binary search, and the primary only around the window: the
     # cost grows with the record, not with its square
-    while t0 + window_s <= min(ps[-1], bs[-1]):
+    while k * step_s + window_s <= last:
+        t0 = k * step_s
+        k += 1
         i0, i1 = np.searchsorted(bs, [t0, t0 + window_s], side="left")
-        if i1 - i0 >= min_samples:
-            tt, yy = bs[i0:i1], bv[i0:i1]
-            j0 = max(int(np.searchsorted(ps, tt[0] - max_lag_s, side="left")) - 1, 0)
-            j1 = int(np.searchsorted(ps, tt[-1] + max_lag_s, side="right")) + 1
-            d = yy[None, :] - np.interp(tt[None, :] + lags[:, None], ps[j0:j1], pv[j0:j1])
-            mad = np.median(np.abs(d - np.median(d, axis=1, keepdims=True)), axis=1)
-            i = int(np.argmin(mad))
-            rows.append({"start": utc_timestamp(t0), "end": utc_timestamp(t0 + window_s), "lag_min": lags[i] / 60,
-                         "mad_mm": mad[i] / MM})
-        t0 += step_s
+        if i1 - i0 < min_samples:
+            continue
+        tt, yy = bs[i0:i1], bv[i0:i1]
+        j0 = max(int(np.searchsorted(ps, tt[0] - max_lag_s, side="left")) - 1, 0)
+        j1 = int(np.searchsorted(ps, tt[-1] + max_lag_s, side="right")) + 1
+        found = None
+        if cache is not None:
+            key = _digest(tt, yy, ps[j0:j1], pv[j0:j1])
+            held = cache.windows.get(t0)
+            if held is not None and held[0] == key:
+                found, cache.reused = held[1:], cache.reused + 1
+        if found is None:
+            found = _window_lag(tt, yy, ps[j0:j1], pv[j0:j1], lags)
+            if cache is not None:
+                cache.computed += 1
+        if cache is not None:
+            kept[t0] = (key, *found)
+        rows.append({"start": utc_timestamp(t0), "end": utc_timestamp(t0 + window_s), "lag_min": found[0] / 60,
+                     "mad_mm": found[1] / MM})
+    if cache is not None:
+        cache.windows = kept
     return pd.DataFrame(rows, columns=cols)
+
+
+def _window_lag(tt: np.ndarray, yy: np.ndarray, ps: np.ndarray, pv: np.ndarray,
+                lags: np.ndarray) -> tuple[float, float]:
+    """The lag [s] of one window (backup ``tt``, ``yy``; primary ``ps``, ``pv`` around it)
+    with the smallest median absolute deviation of the difference, and that deviation [m]."""
+    d = yy[None, :] - np.interp(tt[None, :] + lags[:, None], ps, pv)
+    mad = np.median(np.abs(d - np.median(d, axis=1, keepdims=True)), axis=1)
+    i = int(np.argmin(mad))
+    return float(lags[i]), float(mad[i])
 
 
 def clock_episodes(timing: pd.DataFrame, limit_min: float = 1.5) -> list[dict]:

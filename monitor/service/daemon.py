@@ -62,6 +62,7 @@ from monitor.quality.context import QcContext
 from monitor.quality.checks import QcSettings
 from monitor.service.config import Config, SensorConfig, StationConfig, unsendable
 from monitor.service.constants import load_model, model_from_text, model_to_text
+from monitor.service.diag_memory import DiagnosticsMemory, usable_series
 from monitor.service.live_pages import LivePages
 from monitor.service.reporting import write_due_reports
 from monitor.store.database import BatchResult, EMPTY_BATCH, Store, check_folder, check_store_path
@@ -379,6 +380,7 @@ class StationRuntime:
     diag_at: float = -math.inf      # data time of the last drift and clock diagnostics [Unix s]
     diag_phase: float = 0.0         # fraction of daemon.diagnostics_minutes this station's runs are offset by
     diag: dict = field(default_factory=dict)  # their results: "drift", "clock.primary", ...
+    diag_memory: DiagnosticsMemory = field(default_factory=DiagnosticsMemory, repr=False)  # between runs
     predicted: "PredictionMemo | None" = field(default=None, repr=False)
     qc_context: QcContext = field(default_factory=QcContext, repr=False)  # QC's record between passes
     _extremes: "Frozen | None" = field(default=None, repr=False)
@@ -827,6 +829,9 @@ class Daemon:
         st, store = rt.cfg, self.store
         now = (end_t if rt.replay_clock else time.time()) if now is None else now
         self.data_now = end_t if self.data_now is None else max(self.data_now, end_t)
+        # quality control may write flags from a resid_window before the window on: the
+        # diagnostics read those rows again at their next run
+        rt.diag_memory.note_changed(start_t - (st.qc or self.qc.QcSettings()).resid_window)
         self._take_new_model(rt)
         self._maybe_fit(rt, now)
         model = rt.model
@@ -1131,39 +1136,34 @@ class Daemon:
         return faults
 
     def _run_diagnostics(self, rt: StationRuntime, end_t: int) -> dict:
-        st, store = rt.cfg, self.store
+        """Drift (primary against backup, over ``qc.drift_window``) and clock offset (the
+        backup against the primary, else each level sensor against the predicted tide, over
+        ``daemon.clock_window_days``) up to ``end_t`` [Unix s]. The rows, the backup's timing
+        windows and the drift's bins of the last run are kept in ``rt.diag_memory``
+        (:class:`monitor.service.diag_memory.DiagnosticsMemory`): a run reads and computes
+        only what is new or may have changed, and gives what a run from scratch gives."""
+        st, store, memo = rt.cfg, self.store, rt.diag_memory
         out: dict = {}
-        usable = lambda o: self.diag.usable_only(o["value"], o["flag"].to_numpy())  # noqa: E731  flags 1, 2, 3 only
         qs = st.qc or self.qc.QcSettings()
-        window = qs.drift_window
-        drift_from = int(end_t - window)
+        drift_from = int(end_t - qs.drift_window)
         a = int(end_t - self.cfg.daemon.clock_window_days * 86400)
-        # each level sensor read once, over the longer of the spans that use it
-        spans: dict[str, int] = {}
-        if "backup" in st.sensors:
-            spans.update(primary=drift_from, backup=drift_from)
-        if rt.model is not None:
-            for r in st.sensors:
-                if r != "barometer":
-                    spans[r] = min(spans.get(r, a), a)
+        levels = [r for r in st.sensors if r != "barometer"]
+        if rt.model is None and "backup" not in st.sensors:
+            return out
         try:
-            read = {r: store.observations(st.id, r, lo, end_t) for r, lo in spans.items()}
-
-            def since(r: str, lo: int) -> pd.DataFrame:
-                o = read[r]
-                return o if lo <= spans[r] else o[o.index >= pd.Timestamp(lo, unit="s", tz="UTC")]
-
+            since = memo.begin(store, end_t)
+            # each level sensor's usable rows over the clock's span, held for the next run
+            rows = {r: memo.rows(store, st.id, r, a, end_t, since) for r in levels}
             if "backup" in st.sensors:
-                p = usable(since("primary", drift_from))
-                b = usable(since("backup", drift_from))
-                if len(p) and len(b):
-                    out["drift"] = self.diag.sensor_drift(p, b, gap_limit=qs.gap_limit)
+                drift = memo.drift(store, st.id, drift_from, end_t, since, gap_limit=qs.gap_limit)
+                if drift is not None:
+                    out["drift"] = drift
             if rt.model is not None:
-                levels = {r: usable(since(r, a)) for r in st.sensors if r != "barometer"}
-                for role, o in levels.items():
-                    if role == "backup" and len(levels.get("primary", ())) > 1 and len(o) > 1:
+                series = {r: usable_series(*rows[r]) for r in levels}
+                for role, o in series.items():
+                    if role == "backup" and len(series.get("primary", ())) > 1 and len(o) > 1:
                         # Against the primary the surge cancels: the relative clock comes first.
-                        c = self.diag.relative_clock(levels["primary"], o)
+                        c = self.diag.relative_clock(series["primary"], o, cache=memo.timing)
                         if math.isfinite(c["offset_min"]):
                             c["since"] = int(c["timing"]["start"].iloc[-1].timestamp())
                             out["clock.backup"] = {k: v for k, v in c.items() if k != "timing"}
@@ -1176,6 +1176,7 @@ class Daemon:
                     c["since"] = int(o.index[0].timestamp())
                     out[f"clock.{role}"] = c
         except Exception:
+            memo.forget()
             log.exception("station %s: drift and clock diagnostics failed", st.id)
         return out
 
