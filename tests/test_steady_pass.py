@@ -12,10 +12,13 @@ from __future__ import annotations
 import math
 
 import numpy as np
+import pandas as pd
 import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
 
 from monitor.service.config import validate_config
-from monitor.service.daemon import Daemon
+from monitor.service.daemon import Daemon, TideTurns
 from monitor.store.database import Store
 from predictor import TideModel
 from units import hour, minute, mm
@@ -213,3 +216,17 @@ def test_a_sample_a_pass_stores_the_derived_rows_of_one_pass_over_the_whole_reco
     assert len(cut(whole["skew_surges"])) >= 1
     assert _same_rows(cut(runs["memory"]["skew_surges"]), cut(whole["skew_surges"]))
     store.close()
+
+
+_TURNS = TideTurns(MODEL.high_low(pd.Timestamp(T0, unit="s", tz="UTC"), pd.Timestamp(T0 + 4 * 86400, unit="s", tz="UTC")))
+
+
+@settings(max_examples=300, deadline=None)
+@given(t=st.one_of(st.integers(T0, T0 + 2 * 86400), st.floats(T0, T0 + 2 * 86400)),
+       horizon_s=st.one_of(st.just(0), st.integers(0, 86400), st.floats(0, 86400)))
+def test_the_coming_high_waters_from_seconds_are_those_from_timestamps(t, horizon_s):
+    # Reference: TideTurns.high_waters with pandas Timestamps, as the pass asked before
+    now = pd.Timestamp(t, unit="s", tz="UTC")
+    horizon = pd.Timedelta(seconds=horizon_s)
+    assert _TURNS.high_waters_after(t, horizon.value) == _TURNS.high_waters(now, now + horizon)
+    assert _TURNS.high_waters_after(float(t), horizon.value) == _TURNS.high_waters(now, now + horizon)

@@ -430,6 +430,18 @@ class TideTurns:
                                               after.as_unit("ns").value / 1e9, until.as_unit("ns").value)
         return [(float(self.stamp[i]), float(self.level[i])) for i in rows]
 
+    def high_waters_after(self, t: float, horizon_ns: int) -> list[tuple[float, float]]:
+        """:meth:`high_waters` after ``pd.Timestamp(t, unit="s")`` up to ``horizon_ns`` [ns]
+        later, with no pandas object made for an integral ``t`` [Unix s] (the pass's)."""
+        if float(t).is_integer() and abs(t) < surge_forecast.EXACT_SECONDS:
+            after_s, until_ns = float(t), int(t) * 1_000_000_000 + int(horizon_ns)
+        else:
+            now = pd.Timestamp(t, unit="s", tz="UTC")
+            after_s = now.as_unit("ns").value / 1e9
+            until_ns = (now + pd.Timedelta(int(horizon_ns), unit="ns")).as_unit("ns").value
+        rows = surge_residual.high_water_rows(self.t, self.t_ns, self.high, self.stand, self.level, after_s, until_ns)
+        return [(float(self.stamp[i]), float(self.level[i])) for i in rows]
+
 
 class DerivedTail:
     """A station's ``derived`` rows of the last hours, held between passes as the store
@@ -1030,11 +1042,11 @@ class Daemon:
         fcs: list[dict] = []
         for at in self._issue_times(start_t, end_t):
             state = surge_forecast.storm_state_arrays(rt_s, rv, at, pressure_now, barometer=barometer)
-            if not np.isfinite(state.residual) or at - state.t > 3600:
+            if not math.isfinite(state.residual) or at - state.t > 3600:
                 continue  # no live residual then (a gap): no forecast
             rt.storm_seen |= state.storm
-            now = pd.Timestamp(state.t, unit="s", tz="UTC")
-            fcs += [rt.forecaster.forecast(state, hw_t, level) for hw_t, level in rt.turns.high_waters(now, now + horizon)]
+            fcs += [rt.forecaster.forecast(state, hw_t, level)
+                    for hw_t, level in rt.turns.high_waters_after(state.t, horizon.value)]
         self._keep_forecasts(st.id, fcs)
         return fcs
 
