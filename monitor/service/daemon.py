@@ -935,15 +935,16 @@ class Daemon:
 
     def _pass_in_memory(self, rt: StationRuntime, start_t: int, end_t: int,
                         lookback: int) -> tuple[int, engine.Samples, list] | None:
-        """:meth:`_pass_full` for a window that follows the last pass: the observations of
-        the residual's lookback read as arrays, the residual computed with numpy
+        """:meth:`_pass_full` for a window that follows the last pass: the primary's
+        observations of the residual's lookback taken as arrays from the QC context that has
+        just judged the window (:meth:`_primary_rows`), the residual computed with numpy
         (:func:`monitor.surge.residual.derive_arrays`), only the derived rows that are new
         or changed written, the forecast's storm state taken from the rows held
         (:class:`DerivedTail`) and the coming high waters from :class:`TideTurns`. Stores
         what the full way stores."""
         st, store, rs = rt.cfg, self.store, self.cfg.residual
         tail, rt.tail = rt.tail, None  # any failure below: the next pass goes the full way
-        t, value, flag = store.observation_arrays(st.id, "primary", start_t - lookback, end_t)
+        t, value, flag = self._primary_rows(rt, start_t - lookback, end_t)
         if len(t) == 0:
             return None
         pressure = None
@@ -971,6 +972,21 @@ class Daemon:
                                         for c in ("observed", "predicted", "residual", "smoothed", "flag")})
         rt.tail, rt.tail_end = tail, end_t
         return new, samples, context
+
+    def _primary_rows(self, rt: StationRuntime, a: int, end_t: int) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+        """The primary's observations with ``a <= t <= end_t`` as :meth:`Store.observation_arrays`
+        reads them (times [Unix s], values [m], stored flags), taken from the station's QC
+        context when it has just judged this window on the store's connection and holds rows
+        from ``a`` on (it holds every stored row from its first on, with the flags as just
+        written; another writer's flags make it read them again before this), else read
+        from the store."""
+        ctx = rt.qc_context
+        held = ctx.sensors.get("primary")
+        if (held is None or ctx.end_t != end_t or ctx.key is None or ctx.key[0] is not self.store.conn
+                or not len(held.t) or held.t[0] > a):
+            return self.store.observation_arrays(rt.cfg.id, "primary", a, end_t)
+        i, j = np.searchsorted(held.t, a, side="left"), np.searchsorted(held.t, end_t, side="right")
+        return held.t[i:j].copy(), held.v[i:j].copy(), held.flag[i:j].astype(np.int64)
 
     def _skew_surges(self, rt: StationRuntime, start_t: int, end_t: int) -> None:
         """Skew surges of the cycles whose closing low water fell in this window."""
