@@ -258,15 +258,32 @@ def test_a_sample_a_pass_stores_the_derived_rows_of_one_pass_over_the_whole_reco
     store.close()
 
 
-_TURNS = TideTurns(MODEL.high_low(pd.Timestamp(T0, unit="s", tz="UTC"), pd.Timestamp(T0 + 4 * 86400, unit="s", tz="UTC")))
+def _double_highs() -> pd.DataFrame:
+    """Turning points with stands of two and three peaks (equal peaks among them), by hand."""
+    rows = [("high", 3.0, 0), ("high", 3.2, 0), ("low", 1.0, 1), ("high", 3.1, 2), ("low", 0.9, 3),
+            ("high", 3.3, 4), ("high", 3.3, 4), ("high", 3.25, 4), ("low", 1.1, 5), ("high", 2.9, 6),
+            ("low", 1.0, 7), ("high", 3.0, 8), ("high", 2.8, 8)]
+    t = T0 + 3 * hour * np.arange(len(rows))
+    return pd.DataFrame({"time": pd.to_datetime(t, unit="s", utc=True), "level": [r[1] for r in rows],
+                         "kind": [r[0] for r in rows], "stand": [r[2] for r in rows], "principal": True})
+
+
+_TURNS = [TideTurns(MODEL.high_low(pd.Timestamp(T0, unit="s", tz="UTC"), pd.Timestamp(T0 + 4 * 86400, unit="s", tz="UTC"))),
+          TideTurns(_double_highs())]
 
 
 @settings(max_examples=300, deadline=None)
-@given(t=st.one_of(st.integers(T0, T0 + 2 * 86400), st.floats(T0, T0 + 2 * 86400)),
-       horizon_s=st.one_of(st.just(0), st.integers(0, 86400), st.floats(0, 86400)))
-def test_the_coming_high_waters_from_seconds_are_those_from_timestamps(t, horizon_s):
-    # Reference: TideTurns.high_waters with pandas Timestamps, as the pass asked before
+@given(which=st.sampled_from([0, 1]),
+       t=st.one_of(st.integers(T0 - hour, T0 + 2 * 86400), st.floats(T0 - hour, T0 + 2 * 86400),
+                   st.sampled_from([T0 + 3 * hour * k for k in range(14)])),
+       horizon_s=st.one_of(st.just(0), st.integers(0, 86400), st.floats(0, 86400),
+                           st.sampled_from([3 * hour * k for k in range(8)])))
+def test_the_coming_high_waters_from_seconds_are_those_from_timestamps(which, t, horizon_s):
+    # Reference: TideTurns.high_waters (numpy over the table, pandas Timestamps), as the pass
+    # asked before; on a tide's turning points and on stands of several peaks made by hand
+    turns = _TURNS[which]
     now = pd.Timestamp(t, unit="s", tz="UTC")
     horizon = pd.Timedelta(seconds=horizon_s)
-    assert _TURNS.high_waters_after(t, horizon.value) == _TURNS.high_waters(now, now + horizon)
-    assert _TURNS.high_waters_after(float(t), horizon.value) == _TURNS.high_waters(now, now + horizon)
+    want = turns.high_waters(now, now + horizon)
+    assert turns.high_waters_after(t, horizon.value) == want
+    assert turns.high_waters_after(float(t), horizon.value) == want

@@ -32,6 +32,7 @@ store is refused by the store's lock.
 """
 from __future__ import annotations
 
+import bisect
 import datetime as dt
 import logging
 import logging.handlers
@@ -422,6 +423,11 @@ class TideTurns:
         self.stamp = np.array([x.timestamp() for x in ext["time"]], dtype=float)
         lows = frame[frame["kind"] == "low"]
         self.low_t = np.array([x.timestamp() for x in lows["time"]], dtype=float)
+        # the high waters alone as Python lists, for the pass's look-up (high_waters_after)
+        hi = np.flatnonzero(self.high)
+        self._hi = (self.t[hi].tolist(), self.t_ns[hi].tolist(), self.stand[hi].tolist(),
+                    self.level[hi].tolist(), self.stamp[hi].tolist())
+        self._hi_plain = bool(np.all(np.diff(self.t[hi]) >= 0)) and not np.isnan(self.level[hi]).any()
 
     def high_waters(self, after: pd.Timestamp, until: pd.Timestamp) -> list[tuple[float, float]]:
         """(time [Unix s], level [m]) of the high waters after ``after`` up to ``until``, at
@@ -439,8 +445,30 @@ class TideTurns:
             now = pd.Timestamp(t, unit="s", tz="UTC")
             after_s = now.as_unit("ns").value / 1e9
             until_ns = (now + pd.Timedelta(int(horizon_ns), unit="ns")).as_unit("ns").value
-        rows = surge_residual.high_water_rows(self.t, self.t_ns, self.high, self.stand, self.level, after_s, until_ns)
-        return [(float(self.stamp[i]), float(self.level[i])) for i in rows]
+        if not self._hi_plain:
+            rows = surge_residual.high_water_rows(self.t, self.t_ns, self.high, self.stand, self.level,
+                                                  after_s, until_ns)
+            return [(float(self.stamp[i]), float(self.level[i])) for i in rows]
+        return self._high_waters_plain(after_s, until_ns)
+
+    def _high_waters_plain(self, after_s: float, until_ns: int) -> list[tuple[float, float]]:
+        """:func:`monitor.surge.residual.high_water_rows` walked in Python over the high waters
+        (a pass looks at one or two stands): each stand from the first after ``after_s``
+        [Unix s] that starts by ``until_ns`` [ns] (and the first, whenever it starts) gives
+        its highest peak (the first of equal ones), kept if by ``until_ns`` (the first always)."""
+        t, t_ns, stand, level, stamp = self._hi
+        k, n = bisect.bisect_right(t, after_s), len(t)
+        out: list[tuple[float, float]] = []
+        while k < n and (not out or t_ns[k] <= until_ns):
+            best, e = k, k + 1
+            while e < n and stand[e] == stand[k]:
+                if level[e] > level[best]:
+                    best = e
+                e += 1
+            if not out or t_ns[best] <= until_ns:
+                out.append((stamp[best], level[best]))
+            k = e
+        return out
 
 
 class DerivedTail:
