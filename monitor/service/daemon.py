@@ -1127,8 +1127,7 @@ class Daemon:
     def _keep_forecasts(self, station: str, fcs: list[dict]) -> None:
         """Each forecast as the latest of its high water, and in the forecast log (one transaction)."""
         with self.store.transaction() as conn:
-            for fc in fcs:
-                self.store.write_forecast(station, fc)
+            self.store.write_forecasts(station, fcs)
             surge_forecast.log_forecasts(conn, station, fcs)
 
     def _alert_context(self, rt: StationRuntime, fcs: list[dict] | None, qc_results: dict, now: float,
