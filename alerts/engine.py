@@ -7,8 +7,8 @@ in a savepoint of its own (:func:`alerts.transactions.savepoint`): a rule's stat
 episode change and queued messages are committed together, so a crash or restart at any
 instant neither repeats a message already queued nor forgets an episode in progress, and
 a rule that fails leaves nothing of its own written while the others' writes are kept;
-re-evaluating samples at or before the watermark does nothing. Reloading the configuration keeps the state: steps
-are matched by name.
+re-evaluating samples at or before the watermark does nothing. Reloading the configuration
+keeps the state: steps are matched by name.
 
 Two clocks: the rules run on ``now`` (the data's own time when a record is replayed),
 and the messages carry the data time of their event; the outbox queues them on the wall

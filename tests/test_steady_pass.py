@@ -268,7 +268,8 @@ def _double_highs() -> pd.DataFrame:
                          "kind": [r[0] for r in rows], "stand": [r[2] for r in rows], "principal": True})
 
 
-_TURNS = [TideTurns(MODEL.high_low(pd.Timestamp(T0, unit="s", tz="UTC"), pd.Timestamp(T0 + 4 * 86400, unit="s", tz="UTC"))),
+_TURNS = [TideTurns(MODEL.high_low(pd.Timestamp(T0, unit="s", tz="UTC"),
+                                   pd.Timestamp(T0 + 4 * 86400, unit="s", tz="UTC"))),
           TideTurns(_double_highs())]
 
 

@@ -736,7 +736,8 @@ class SurgeForecaster:
                 "rising": rising, "method": "conditioned" if conditioned else "wide", "note": note,
                 "pressure_note": self._pressure_note(state)}
 
-    def _range_one(self, lead_h: float, r: float, rate: float, tendency: float) -> tuple[float, float, float, bool, bool]:
+    def _range_one(self, lead_h: float, r: float, rate: float,
+                   tendency: float) -> tuple[float, float, float, bool, bool]:
         """:meth:`ranges` of one state at one lead, the same floats: the daemon forecasts one
         high water at a time, and :meth:`ranges` on one-element arrays is mostly numpy's
         overhead. A conditioned model is asked as :meth:`ranges` asks it (one-element arrays,
