@@ -2,11 +2,13 @@
 
 State lives in the store, not the process: ``alert_state`` holds each rule's state
 machine (keyed by station and rule id) with a watermark time, and ``alert_episodes``
-one row per episode. Each rule's state change, episode change and queued messages are
-committed in one transaction, so a crash or restart at any instant neither repeats a
-message already queued nor forgets an episode in progress; re-evaluating samples at or
-before the watermark does nothing. Reloading the configuration keeps the state: steps
-are matched by name.
+one row per episode. A station's rules are evaluated in one write transaction, each rule
+in a savepoint of its own (:func:`alerts.transactions.savepoint`): a rule's state change,
+episode change and queued messages are committed together, so a crash or restart at any
+instant neither repeats a message already queued nor forgets an episode in progress, and
+a rule that fails leaves nothing of its own written while the others' writes are kept;
+re-evaluating samples at or before the watermark does nothing. Reloading the configuration
+keeps the state: steps are matched by name.
 
 Two clocks: the rules run on ``now`` (the data's own time when a record is replayed),
 and the messages carry the data time of their event; the outbox queues them on the wall
@@ -14,6 +16,7 @@ clock, so its back-off and expiry count real time (see :mod:`alerts.mail.outbox`
 """
 from __future__ import annotations
 
+import functools
 import json
 import logging
 import math
@@ -27,7 +30,7 @@ import pandas as pd
 from alerts.mail.forms import compose, form_for
 from alerts.mail.outbox import enqueue, ensure_outbox_schema, unix_seconds
 from alerts.rules import Event, Rule, RuleState, SAMPLE_KINDS, StationView, advance, with_watermark
-from alerts.transactions import transaction
+from alerts.transactions import savepoint, transaction
 
 log = logging.getLogger(__name__)
 
@@ -138,15 +141,47 @@ def ensure_alert_schema(db) -> None:
 
 # --------------------------------------------------------------------------- state I/O
 
-def _load_state(db, station: str, rule: Rule) -> tuple[RuleState, int | None]:
-    cur = db.conn.execute("SELECT * FROM alert_state WHERE station = ? AND rule = ?", (station, rule.id))
-    row = cur.fetchone()
-    if row is None:
+def _state_rows(db, station: str, rules: list[Rule]) -> dict[str, dict] | None:
+    """The ``alert_state`` rows of a station's rules, read at once (rule id -> row), or None
+    when two rules share an id (each then reads its row after the other's writes)."""
+    if len({r.id for r in rules}) != len(rules):
+        return None
+    cur = db.conn.execute("SELECT * FROM alert_state WHERE station = ?", (station,))
+    names = [d[0] for d in cur.description]
+    return {r["rule"]: r for r in (dict(zip(names, row)) for row in cur.fetchall())}
+
+
+@functools.lru_cache(maxsize=4096)
+def _json_tuple(text: str) -> tuple:
+    """A JSON list of the state's columns as a tuple (parsed once per text seen)."""
+    return tuple(json.loads(text))
+
+
+@functools.lru_cache(maxsize=4096)
+def _plain_json(values: tuple) -> str:
+    return json.dumps(list(values))
+
+
+def _json_list(values: tuple) -> str:
+    """``json.dumps(list(values))``, kept for tuples of plain ints, None and text (equal keys
+    of other types, 1.0 and True for 1, would share an entry but not their text)."""
+    if all(v is None or type(v) is int or type(v) is str for v in values):
+        return _plain_json(values)
+    return json.dumps(list(values))
+
+
+def _load_state(db, station: str, rule: Rule, rows: dict[str, dict] | None = None) -> tuple[RuleState, int | None]:
+    if rows is not None:
+        r = rows.get(rule.id)
+    else:
+        cur = db.conn.execute("SELECT * FROM alert_state WHERE station = ? AND rule = ?", (station, rule.id))
+        row = cur.fetchone()
+        r = None if row is None else dict(zip([d[0] for d in cur.description], row))
+    if r is None:
         return RuleState(), None
-    r = dict(zip([d[0] for d in cur.description], row))
-    old_names = json.loads(r["steps"] or "[]")
-    above_old = json.loads(r["above_since"] or "[]")
-    inside_old = json.loads(r["inside_since"] or "[]")
+    old_names = _json_tuple(r["steps"] or "[]")
+    above_old = _json_tuple(r["above_since"] or "[]")
+    inside_old = _json_tuple(r["inside_since"] or "[]")
     names = [s.name for s in rule.steps]
 
     def remap_index(i: int) -> int:
@@ -174,8 +209,8 @@ def _save_state(db, station: str, rule: Rule, state: RuleState, episode_id: int 
         " steps = excluded.steps, above_since = excluded.above_since, inside_since = excluded.inside_since,"
         " watermark = excluded.watermark, episode_id = excluded.episode_id, updated_at = excluded.updated_at,"
         " held = excluded.held",
-        (station, rule.id, state.level, state.top_sent, json.dumps([s.name for s in rule.steps]),
-         json.dumps(list(state.above_since)), json.dumps(list(state.inside_since)),
+        (station, rule.id, state.level, state.top_sent, _json_list(tuple(s.name for s in rule.steps)),
+         _json_list(state.above_since), _json_list(state.inside_since),
          state.watermark, episode_id, now, int(state.held)))
 
 
@@ -489,10 +524,19 @@ def evaluate(db, station: StationView, rules: Iterable[Rule], samples: pd.DataFr
     list of dict
         One per event: station, rule, event (opened/escalated/cleared), step, t, value,
         episode id, outbox ids queued.
+
+    Notes
+    -----
+    The rules run in one write transaction, each in a savepoint: a rule that raises is
+    logged with its traceback and leaves nothing of its own written (its state, episodes
+    and messages stay as they were, so it is evaluated again next time); the other rules'
+    writes are committed.
     """
     if not schema_ready:
         ensure_alert_schema(db)
     rules = list(rules)
+    if not rules:
+        return []
     if not station.marks:
         station = replace(station, marks=station_marks(rules))
     t_now = unix_seconds(now)
@@ -501,15 +545,23 @@ def evaluate(db, station: StationView, rules: Iterable[Rule], samples: pd.DataFr
         samples = Samples.from_frame(samples)
     t_all = samples.t
     out: list[dict] = []
-    for rule in rules:
-        with transaction(db):
-            out.extend(_evaluate_rule(db, station, rule, samples, t_all, t_now, context, clock))
+    with transaction(db) as conn:  # one write transaction for the station's rules
+        rows = _state_rows(db, station.id, rules)
+        for rule in rules:
+            try:
+                with savepoint(conn):  # a rule that fails undoes its own writes alone
+                    out.extend(_evaluate_rule(db, station, rule, samples, t_all, t_now, context, clock, rows))
+            except Exception:
+                if not conn.in_transaction:
+                    raise  # the transaction itself is gone (an I/O error): nothing more can go in it
+                log.exception("station %s rule %s: evaluation failed; nothing of this rule stored, "
+                              "the other rules go on", station.id, rule.id)
     return out
 
 
 def _evaluate_rule(db, station: StationView, rule: Rule, samples: Samples, t_all: np.ndarray,
-                   t_now: int, context: AlertContext, clock=None) -> list[dict]:
-    state, episode_id = _load_state(db, station.id, rule)
+                   t_now: int, context: AlertContext, clock=None, rows: dict[str, dict] | None = None) -> list[dict]:
+    state, episode_id = _load_state(db, station.id, rule, rows)
     wm = state.watermark if state.watermark is not None else -(2 ** 62)
     results: list[dict] = []
     before = state

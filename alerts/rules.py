@@ -36,7 +36,7 @@ from __future__ import annotations
 import math
 import re
 import warnings
-from dataclasses import dataclass, field, replace
+from dataclasses import dataclass, field
 from typing import Any
 
 from predictor.timeutil import parse_duration  # the one duration parser; re-exported
@@ -574,4 +574,6 @@ def advance(rule: Rule, state: RuleState, t: int, value: float,
 
 def with_watermark(state: RuleState, t: int) -> RuleState:
     """The same state with the watermark moved to ``t`` [Unix s, UTC] (a skipped, uncounted sample)."""
-    return replace(state, watermark=t)
+    # every field named (dataclasses.replace looks them up at each call: the pass's hot path)
+    return RuleState(level=state.level, top_sent=state.top_sent, above_since=state.above_since,
+                     inside_since=state.inside_since, watermark=t, held=state.held)

@@ -1,7 +1,9 @@
 """Write transactions on SQLite: the one helper every package uses.
 
 It sits in :mod:`alerts`, the lowest package that stores anything, so the alert engine, the
-outbox and everything in :mod:`monitor` (the store, quality control) share it.
+outbox and everything in :mod:`monitor` (the store, quality control) share it. A part of a
+transaction that may fail on its own (one alert rule among a station's) is a
+:func:`savepoint` inside it.
 """
 from __future__ import annotations
 
@@ -9,7 +11,7 @@ import contextlib
 import sqlite3
 from typing import Any, Iterator
 
-__all__ = ["transaction"]
+__all__ = ["savepoint", "transaction"]
 
 
 @contextlib.contextmanager
@@ -39,3 +41,41 @@ def transaction(target: Any) -> Iterator[sqlite3.Connection]:
         conn.execute("ROLLBACK")
         raise
     conn.execute("COMMIT")
+
+
+#: The name of the savepoints :func:`savepoint` sets (nested ones share it: ROLLBACK TO and
+#: RELEASE act on the innermost of that name).
+_SAVEPOINT = "qw_part"
+
+
+@contextlib.contextmanager
+def savepoint(target: Any) -> Iterator[sqlite3.Connection]:
+    """A part of the write transaction open on the connection that fails on its own: on an
+    exception its writes alone are undone (``ROLLBACK TO``), the transaction stays open with
+    everything written before the part, and the exception is raised again.
+
+    Parameters
+    ----------
+    target : sqlite3.Connection, or anything with a ``conn``
+        As :func:`transaction`. Without a transaction open, the part is one of its own
+        (:func:`transaction`: committed on success, rolled back on an exception).
+
+    Yields
+    ------
+    sqlite3.Connection
+        The connection, for the statements of the part.
+    """
+    conn = target if isinstance(target, sqlite3.Connection) else target.conn
+    if not conn.in_transaction:
+        with transaction(conn):
+            yield conn
+        return
+    conn.execute(f"SAVEPOINT {_SAVEPOINT}")
+    try:
+        yield conn
+    except BaseException:
+        if conn.in_transaction:  # (an I/O error may have ended the whole transaction already)
+            conn.execute(f"ROLLBACK TO {_SAVEPOINT}")
+            conn.execute(f"RELEASE {_SAVEPOINT}")
+        raise
+    conn.execute(f"RELEASE {_SAVEPOINT}")

@@ -1,10 +1,12 @@
 """Alert rule configuration and the episode state machine (alerts/rules.py)."""
 from __future__ import annotations
 
+import dataclasses
+
 import pytest
 from hypothesis import given, settings, strategies as st
 
-from alerts.rules import Rule, RuleState, Step, advance, parse_duration, rules_from_config
+from alerts.rules import Rule, RuleState, Step, advance, parse_duration, rules_from_config, with_watermark
 from units import m, mm, minute, hour
 
 
@@ -222,3 +224,14 @@ def test_events_always_form_episodes_open_escalate_clear(values, hold_min):
 def test_values_below_every_step_never_raise_anything(values):
     _, events = run(values, rule=RULE)
     assert events == []
+
+
+@settings(max_examples=200, deadline=None)
+@given(level=st.integers(-1, 3), top=st.integers(-1, 3), held=st.booleans(), wm=st.none() | st.integers(0, 2 ** 40),
+       above=st.lists(st.none() | st.integers(0, 2 ** 40), max_size=3),
+       inside=st.lists(st.none() | st.integers(0, 2 ** 40), max_size=3), t=st.integers(0, 2 ** 40))
+def test_moving_the_watermark_keeps_every_other_field(level, top, held, wm, above, inside, t):
+    # Reference: dataclasses.replace, which names no field (a field added later is kept too)
+    state = RuleState(level=level, top_sent=top, above_since=tuple(above), inside_since=tuple(inside),
+                      watermark=wm, held=held)
+    assert with_watermark(state, t) == dataclasses.replace(state, watermark=t)

@@ -2,12 +2,16 @@
 configuration reloads, QC flags, and end-to-end delivery to a loopback SMTP server."""
 from __future__ import annotations
 
+import json
 
 import numpy as np
 import pandas as pd
 import pytest
 import sqlite_utils
+from hypothesis import given, settings
+from hypothesis import strategies as st
 
+import alerts.engine as engine_mod
 from alerts.engine import AlertContext, NextHighWater, evaluate, list_episodes
 from alerts.mail.outbox import deliver_due, list_outbox, mail_settings_from
 from alerts.rules import StationView, rules_from_config
@@ -310,3 +314,46 @@ def test_one_episode_keeps_one_message_per_recipient_across_forms(db):
     evaluate(db, station, rules(), frame(storm()), now=T0 + pd.Timedelta(hours=3))
     keys = [(r["recipient"], r["key"]) for r in db.query("SELECT recipient, key FROM outbox")]
     assert len(keys) == len(set(keys))
+
+
+QUAY_EDGE = {"id": "quay", "when": "level_above", "datum": "chart_datum", "hold": 0,
+             "notify": ["duty@port.example"], "steps": [{"name": "quay edge", "at": 9.0}]}
+
+
+@pytest.mark.parametrize("order", [("surge", "quay"), ("quay", "surge")])
+def test_a_rule_that_fails_midway_leaves_nothing_and_the_other_rule_is_stored(db, monkeypatch, caplog, order):
+    # the surge rule opens an episode and queues its messages, then fails (at its peak's
+    # update): none of that may stay, and the level rule, before or after it, is stored
+    track = engine_mod._track_peak
+
+    def failing(db_, rule, *a, **k):
+        if rule.id == "surge":
+            raise RuntimeError("invented failure inside the surge rule")
+        return track(db_, rule, *a, **k)
+    monkeypatch.setattr(engine_mod, "_track_peak", failing)
+    raw = {"surge": {**SURGE, "hold": 0}, "quay": QUAY_EDGE}
+    both = rules(*[raw[k] for k in order])
+    samples = frame(np.r_[np.zeros(10), [0.5] * 10])
+    now = T0 + pd.Timedelta(minutes=30)
+    events = evaluate(db, STATION, both, samples, now=now)
+    assert events == []
+    assert "rule surge: evaluation failed" in caplog.text
+    state = {r["rule"]: r for r in db.query("SELECT * FROM alert_state")}
+    assert set(state) == {"quay"} and state["quay"]["watermark"] == int((T0 + pd.Timedelta(minutes=19)).timestamp())
+    assert list(db.query("SELECT * FROM alert_episodes")) == [] and queued(db) == []
+    # nothing of it was kept, so the surge rule opens its episode once when it works again
+    monkeypatch.setattr(engine_mod, "_track_peak", track)
+    events = evaluate(db, STATION, both, samples, now=now)
+    assert [(e["rule"], e["event"]) for e in events] == [("surge", "opened")]
+    assert len(list(db.query("SELECT * FROM alert_episodes"))) == 1
+
+
+@settings(max_examples=300, deadline=None)
+@given(values=st.lists(st.one_of(st.none(), st.integers(), st.floats(allow_nan=False), st.booleans(), st.text()),
+                       max_size=4))
+def test_the_state_columns_text_is_json_dumps(values):
+    # Reference: json.dumps of the list, as the state was saved before its texts were kept;
+    # equal keys of other types (1, 1.0, True) each keep their own text
+    for v in (values, [1], [1.0], [True], [None, 1], [None, 1.0]):
+        assert engine_mod._json_list(tuple(v)) == json.dumps(list(v))
+        assert engine_mod._json_tuple(json.dumps(list(v))) == tuple(v)

@@ -12,10 +12,15 @@ from __future__ import annotations
 import math
 
 import numpy as np
+import pandas as pd
 import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
 
 from monitor.service.config import validate_config
-from monitor.service.daemon import Daemon
+from monitor.quality.checks import set_override
+from monitor.quality.context import QcContext
+from monitor.service.daemon import REWRITE_BACK, Daemon, TideTurns
 from monitor.store.database import Store
 from predictor import TideModel
 from units import hour, minute, mm
@@ -30,6 +35,8 @@ REFIT = TideModel(mean=3.01, constituents=[{"name": "M2", "amplitude": 1.21, "ph
                                            {"name": "S2", "amplitude": 0.39, "phase": 60.0}], datum="station")
 LIVE_START = T0 + HISTORY
 SPIKE_AT = LIVE_START + 100 * minute
+OVERRIDE_AT = LIVE_START + 160 * minute  # a technician fails a primary sample of 80 min before
+OVERRIDDEN = OVERRIDE_AT - 80 * minute    # (in the residual's lookback, before QC's rewritten hour)
 SILENT = (LIVE_START + 200 * minute, LIVE_START + 240 * minute)      # neither level sensor reports
 BACKUP_LATE = (LIVE_START + 290 * minute, LIVE_START + 300 * minute)  # delivered at the end of the span
 PRIMARY_LATE = (LIVE_START + 350 * minute, LIVE_START + 356 * minute)
@@ -85,7 +92,12 @@ def _refit(d):
 def _run_a_sample_a_pass(tmp_path, monkeypatch, steady: bool):
     if not steady:
         monkeypatch.setattr(Daemon, "_steady", lambda *a, **k: False)
-    calls = {"memory": 0, "full": 0}
+    calls = {"memory": 0, "full": 0, "primary read": 0}
+    read = Store.observation_arrays
+
+    def reading(self, station, sensor, *a, **k):
+        calls["primary read"] += sensor == "primary"
+        return read(self, station, sensor, *a, **k)
 
     def counting(name, method):
         def counted(self, *a, **k):
@@ -95,6 +107,7 @@ def _run_a_sample_a_pass(tmp_path, monkeypatch, steady: bool):
 
     monkeypatch.setattr(Daemon, "_pass_in_memory", counting("memory", Daemon._pass_in_memory))
     monkeypatch.setattr(Daemon, "_pass_full", counting("full", Daemon._pass_full))
+    monkeypatch.setattr(Store, "observation_arrays", reading)
     store, d = _site(tmp_path)
     rec = _record()
     rt = d.stations["port"]
@@ -113,6 +126,9 @@ def _run_a_sample_a_pass(tmp_path, monkeypatch, steady: bool):
             _write(store, sensor, t[due], v[due])
         if now == REFIT_AT:
             _refit(d)
+        if now == OVERRIDE_AT:
+            set_override(store, "port", "primary", OVERRIDDEN, None, 4, "technician", "float fouled",
+                         at=OVERRIDE_AT)
         if now == RESTART_AT:
             d = Daemon(d.cfg, store)
             rt = d.stations["port"]
@@ -169,8 +185,30 @@ def runs(tmp_path_factory):
 def test_every_pass_goes_from_memory_but_after_the_history_late_rows_the_refit_and_a_restart(runs):
     silent = (SILENT[1] - SILENT[0]) // STEP  # passes with nothing new
     passes = LIVE // STEP + 1 - silent
-    assert runs["n_memory"] == {"memory": passes - 4, "full": 5}
-    assert runs["n_full"] == {"memory": 0, "full": passes + 1}
+    assert runs["n_memory"] == {"memory": passes - 4, "full": 5, "primary read": 0}
+    assert runs["n_full"] == {"memory": 0, "full": passes + 1, "primary read": 0}
+
+
+def test_the_pass_from_memory_reads_the_primary_from_the_store_when_quality_control_kept_none(runs, tmp_path,
+                                                                                            monkeypatch):
+    # the same run with the QC context forgotten after each pass: the residual's lookback is
+    # read from the store (Store.observation_arrays), and what is stored stays the same
+    forget = QcContext.run
+
+    def run_then_forget(self, *a, **k):
+        try:
+            return forget(self, *a, **k)
+        finally:
+            self.reset()
+    monkeypatch.setattr(QcContext, "run", run_then_forget)
+    store, calls = _run_a_sample_a_pass(tmp_path, monkeypatch, steady=True)
+    silent = (SILENT[1] - SILENT[0]) // STEP
+    assert calls["memory"] == LIVE // STEP + 1 - silent - 4 and calls["primary read"] == calls["memory"]
+    derived = _tables(store)["derived"]
+    store.close()
+    # quality control, reading its day afresh at each pass, asks the prediction memo in other
+    # batches, and the fast predictor's block sums then differ by up to 3e-9 m (measured)
+    assert _same_rows(derived, runs["full"]["derived"], tol=1e-5 * mm)
 
 
 def test_the_run_has_a_storm_alert_a_spike_and_skew_surges(runs):
@@ -180,6 +218,7 @@ def test_the_run_has_a_storm_alert_a_spike_and_skew_surges(runs):
     assert any(row[3] is not None for row in t["alert_episodes"])  # closed: an all-clear
     assert len(t["skew_surges"]) >= 1 and len(t["hw_forecast_log"]) >= 10
     assert ("primary", SPIKE_AT, 4) in t["flags"]
+    assert ("primary", OVERRIDDEN, 4) in t["flags"]
 
 
 @pytest.mark.parametrize("table", ["skew_surges", "hw_forecasts", "hw_forecast_log", "alert_state",
@@ -203,13 +242,49 @@ def test_a_sample_a_pass_stores_the_derived_rows_of_one_pass_over_the_whole_reco
     for sensor, (t, v) in rec.items():
         keep = t < REFIT_AT  # before the refit, which changes the predicted tide from then on
         _write(store, sensor, t[keep], v[keep])
+    set_override(store, "port", "primary", OVERRIDDEN, None, 4, "technician", "float fouled", at=OVERRIDE_AT)
     d.process_station(d.stations["port"], now=REFIT_AT - 1)
     whole = _tables(store)
-    # the passes after the refit rewrite the hour before them with the new tide
-    cut = lambda rows: [r for r in rows if r[0] < REFIT_AT - 2 * hour]  # noqa: E731
+    # the passes after the refit rewrite the hour before them with the new tide; the rows the
+    # technician's flag moves before the hour rewritten after it keep what they were given live
+    moved = (OVERRIDDEN, OVERRIDE_AT - REWRITE_BACK)
+    cut = lambda rows: [r for r in rows if r[0] < REFIT_AT - 2 * hour  # noqa: E731
+                        and not moved[0] <= r[0] < moved[1]]
     # the fast predictor's blocks fall differently when the times come a few at a time: the
     # predicted tide agrees to about 1e-11 m, far below a nanometre
     assert _same_rows(cut(runs["memory"]["derived"]), cut(whole["derived"]), tol=1e-6 * mm)
     assert len(cut(whole["skew_surges"])) >= 1
     assert _same_rows(cut(runs["memory"]["skew_surges"]), cut(whole["skew_surges"]))
     store.close()
+
+
+def _double_highs() -> pd.DataFrame:
+    """Turning points with stands of two and three peaks (equal peaks among them), by hand."""
+    rows = [("high", 3.0, 0), ("high", 3.2, 0), ("low", 1.0, 1), ("high", 3.1, 2), ("low", 0.9, 3),
+            ("high", 3.3, 4), ("high", 3.3, 4), ("high", 3.25, 4), ("low", 1.1, 5), ("high", 2.9, 6),
+            ("low", 1.0, 7), ("high", 3.0, 8), ("high", 2.8, 8)]
+    t = T0 + 3 * hour * np.arange(len(rows))
+    return pd.DataFrame({"time": pd.to_datetime(t, unit="s", utc=True), "level": [r[1] for r in rows],
+                         "kind": [r[0] for r in rows], "stand": [r[2] for r in rows], "principal": True})
+
+
+_TURNS = [TideTurns(MODEL.high_low(pd.Timestamp(T0, unit="s", tz="UTC"),
+                                   pd.Timestamp(T0 + 4 * 86400, unit="s", tz="UTC"))),
+          TideTurns(_double_highs())]
+
+
+@settings(max_examples=300, deadline=None)
+@given(which=st.sampled_from([0, 1]),
+       t=st.one_of(st.integers(T0 - hour, T0 + 2 * 86400), st.floats(T0 - hour, T0 + 2 * 86400),
+                   st.sampled_from([T0 + 3 * hour * k for k in range(14)])),
+       horizon_s=st.one_of(st.just(0), st.integers(0, 86400), st.floats(0, 86400),
+                           st.sampled_from([3 * hour * k for k in range(8)])))
+def test_the_coming_high_waters_from_seconds_are_those_from_timestamps(which, t, horizon_s):
+    # Reference: TideTurns.high_waters (numpy over the table, pandas Timestamps), as the pass
+    # asked before; on a tide's turning points and on stands of several peaks made by hand
+    turns = _TURNS[which]
+    now = pd.Timestamp(t, unit="s", tz="UTC")
+    horizon = pd.Timedelta(seconds=horizon_s)
+    want = turns.high_waters(now, now + horizon)
+    assert turns.high_waters_after(t, horizon.value) == want
+    assert turns.high_waters_after(float(t), horizon.value) == want

@@ -11,6 +11,8 @@ import math
 import numpy as np
 import pandas as pd
 import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
 from scipy import stats
 
 from monitor.surge import forecast as SF
@@ -301,3 +303,93 @@ def test_the_fold_fits_by_normal_equations_equal_least_squares_on_the_rows():
     assert model.quantiles.keys() == quantiles.keys()
     for key, (lo, hi) in quantiles.items():
         assert model.quantiles[key] == pytest.approx((lo, hi), abs=1e-9)
+
+
+# --------------------------------------------------------------------------- one high water at a time
+
+def _forecast_by_arrays(f, state, hw_t, hw_level):
+    """What SurgeForecaster.forecast gave before its one-state path: the dict made from
+    ``ranges`` on one-element arrays (the array path, kept for many states at once)."""
+    lead_h = max(0.0, float(hw_t) - float(state.t)) / 3600.0
+    r = float(state.residual)
+    persistence = float(hw_level) + r
+    rising = persistence + state.rate * lead_h if math.isfinite(state.rate) and state.rate > 0 else None
+    lo, c, hi, conditioned, used_p = f.ranges([lead_h], r, state.rate, state.tendency)
+    storm = bool(SF.is_storm(np.array([state.residual]), np.array([state.rate]))[0])
+    note = (f._conditioned_note(state, lead_h, bool(used_p[0])) if conditioned[0] else f._wide_note(state, lead_h))
+    assert (f"a {'storm' if storm else 'calm'} state" in note) or not conditioned[0]
+    return {"hw_t": int(round(hw_t)), "made_t": int(round(state.t)), "predicted_high": float(hw_level),
+            "residual_now": r, "rate": SF._finite(state.rate), "tendency": SF._finite(state.tendency),
+            "forecast": persistence + float(c[0]), "lower": persistence + float(lo[0]),
+            "upper": persistence + float(hi[0]), "coverage": f.coverage, "persistence": persistence,
+            "rising": rising, "method": "conditioned" if conditioned[0] else "wide", "note": note,
+            "pressure_note": f._pressure_note(state)}
+
+
+@pytest.fixture(scope="module")
+def forecasters():
+    """Forecasters of every kind: no history, a spread table with unknown leads, conditioned
+    without pressure, conditioned with and without pressure."""
+    rng = np.random.default_rng(5)
+    pairs, _, _ = _invented_pairs(rng, 8_000)
+    pairs["tendency"] = rng.normal(0, 1.0, len(pairs))
+    pairs["y"] += 0.01 * pairs["tendency"] * pairs["lead_h"]
+    plain = SF.fit_spread(pairs, pressure=False)
+    with_p = SF.fit_spread(pairs, pressure=True)
+    spread = np.sort(rng.normal(0, 0.1, (int(SF.MAX_LEAD_H * 6) + 1, 2)), axis=1)
+    spread[rng.random(len(spread)) < 0.2] = np.nan
+    make = lambda s, models, storms: SF.SurgeForecaster(  # noqa: E731
+        spread=s, models=models, storms=storms, storms_with_pressure=storms // 2, min_storms=20,
+        history_days=400.0 if s is not None else 3.0)
+    return [make(None, {False: None, True: None}, 0),
+            make(spread, {False: None, True: None}, 3),
+            make(spread, {False: None, True: None}, 25),
+            make(spread, {False: plain, True: None}, 60),
+            make(spread, {False: plain, True: with_p}, 60)]
+
+
+_floats = st.one_of(st.floats(-3.0, 3.0), st.just(math.nan))
+
+
+@settings(max_examples=600, deadline=None)
+@given(which=st.integers(0, 4), residual=st.floats(-2.0, 2.0), rate=_floats, tendency=_floats,
+       lead_s=st.floats(-3600.0, 40 * 3600.0), level=st.floats(-2.0, 8.0),
+       barometer=st.booleans(), since=st.one_of(st.none(), st.floats(-4 * 3600.0, 0.0)))
+def test_one_forecast_is_the_array_paths_to_the_bit(forecasters, which, residual, rate, tendency, lead_s, level,
+                                                     barometer, since):
+    # Reference: SurgeForecaster.ranges (the array path) on one-element arrays, as the
+    # forecast was made before its one-state path; every field equal, floats to the bit.
+    f = forecasters[which]
+    state = SF.StormState(t=float(T0), residual=residual, rate=rate, tendency=tendency, barometer=barometer,
+                          pressure_since=None if since is None else T0 + since)
+    got = f.forecast(state, T0 + lead_s, level)
+    want = _forecast_by_arrays(f, state, T0 + lead_s, level)
+    assert got.keys() == want.keys()
+    for k in want:
+        assert type(got[k]) is type(want[k]) and (got[k] == want[k] or got[k] != got[k] and want[k] != want[k]), k
+
+
+def test_one_forecast_covers_each_path(forecasters):
+    # the random states above reach the conditioned path with and without pressure, and the wide one
+    state = SF.StormState(t=float(T0), residual=0.5, rate=0.05, tendency=-1.0)
+    methods = [forecasters[k].forecast(state, T0 + 3 * hour, 3.0)["method"] for k in (1, 3, 4)]
+    assert methods == ["wide", "conditioned", "conditioned"]
+    assert "pressure falling" in forecasters[4].forecast(state, T0 + 3 * hour, 3.0)["note"]
+
+
+@settings(max_examples=300, deadline=None)
+@given(residual=st.one_of(st.floats(allow_nan=True), st.sampled_from([0.3, -0.3, 0.30000000000000004])),
+       rate=st.one_of(st.floats(allow_nan=True), st.sampled_from([0.1, 0.10000000000000002, math.inf, -math.inf])))
+def test_storm_of_one_state_is_is_storms(residual, rate):
+    # Reference: is_storm on one-element arrays (numpy's nan_to_num for the rate)
+    want = bool(SF.is_storm(np.array([residual]), np.array([rate]))[0])
+    assert SF.StormState(t=0.0, residual=residual, rate=rate).storm is want
+
+
+@settings(max_examples=300, deadline=None)
+@given(now=st.one_of(st.integers(-SF.EXACT_SECONDS + 1, SF.EXACT_SECONDS - 1),
+                     st.sampled_from([SF.EXACT_SECONDS - 1, -SF.EXACT_SECONDS + 1, 0, 1_760_000_000])))
+def test_integral_seconds_are_pandas_seconds(now):
+    # Reference: pandas' own conversion, as storm_state_arrays made it before
+    want = pd.Timestamp(now, unit="s", tz="UTC").value / 1e9
+    assert SF.as_seconds(now) == want and SF.as_seconds(np.int64(now)) == want

@@ -32,6 +32,7 @@ store is refused by the store's lock.
 """
 from __future__ import annotations
 
+import bisect
 import datetime as dt
 import logging
 import logging.handlers
@@ -424,6 +425,11 @@ class TideTurns:
         self.stamp = np.array([x.timestamp() for x in ext["time"]], dtype=float)
         lows = frame[frame["kind"] == "low"]
         self.low_t = np.array([x.timestamp() for x in lows["time"]], dtype=float)
+        # the high waters alone as Python lists, for the pass's look-up (high_waters_after)
+        hi = np.flatnonzero(self.high)
+        self._hi = (self.t[hi].tolist(), self.t_ns[hi].tolist(), self.stand[hi].tolist(),
+                    self.level[hi].tolist(), self.stamp[hi].tolist())
+        self._hi_plain = bool(np.all(np.diff(self.t[hi]) >= 0)) and not np.isnan(self.level[hi]).any()
 
     def high_waters(self, after: pd.Timestamp, until: pd.Timestamp) -> list[tuple[float, float]]:
         """(time [Unix s], level [m]) of the high waters after ``after`` up to ``until``, at
@@ -431,6 +437,40 @@ class TideTurns:
         rows = surge_residual.high_water_rows(self.t, self.t_ns, self.high, self.stand, self.level,
                                               after.as_unit("ns").value / 1e9, until.as_unit("ns").value)
         return [(float(self.stamp[i]), float(self.level[i])) for i in rows]
+
+    def high_waters_after(self, t: float, horizon_ns: int) -> list[tuple[float, float]]:
+        """:meth:`high_waters` after ``pd.Timestamp(t, unit="s")`` up to ``horizon_ns`` [ns]
+        later, with no pandas object made for an integral ``t`` [Unix s] (the pass's)."""
+        if float(t).is_integer() and abs(t) < surge_forecast.EXACT_SECONDS:
+            after_s, until_ns = float(t), int(t) * 1_000_000_000 + int(horizon_ns)
+        else:
+            now = pd.Timestamp(t, unit="s", tz="UTC")
+            after_s = now.as_unit("ns").value / 1e9
+            until_ns = (now + pd.Timedelta(int(horizon_ns), unit="ns")).as_unit("ns").value
+        if not self._hi_plain:
+            rows = surge_residual.high_water_rows(self.t, self.t_ns, self.high, self.stand, self.level,
+                                                  after_s, until_ns)
+            return [(float(self.stamp[i]), float(self.level[i])) for i in rows]
+        return self._high_waters_plain(after_s, until_ns)
+
+    def _high_waters_plain(self, after_s: float, until_ns: int) -> list[tuple[float, float]]:
+        """:func:`monitor.surge.residual.high_water_rows` walked in Python over the high waters
+        (a pass looks at one or two stands): each stand from the first after ``after_s``
+        [Unix s] that starts by ``until_ns`` [ns] (and the first, whenever it starts) gives
+        its highest peak (the first of equal ones), kept if by ``until_ns`` (the first always)."""
+        t, t_ns, stand, level, stamp = self._hi
+        k, n = bisect.bisect_right(t, after_s), len(t)
+        out: list[tuple[float, float]] = []
+        while k < n and (not out or t_ns[k] <= until_ns):
+            best, e = k, k + 1
+            while e < n and stand[e] == stand[k]:
+                if level[e] > level[best]:
+                    best = e
+                e += 1
+            if not out or t_ns[best] <= until_ns:
+                out.append((stamp[best], level[best]))
+            k = e
+        return out
 
 
 class DerivedTail:
@@ -928,15 +968,16 @@ class Daemon:
 
     def _pass_in_memory(self, rt: StationRuntime, start_t: int, end_t: int,
                         lookback: int) -> tuple[int, engine.Samples, list] | None:
-        """:meth:`_pass_full` for a window that follows the last pass: the observations of
-        the residual's lookback read as arrays, the residual computed with numpy
+        """:meth:`_pass_full` for a window that follows the last pass: the primary's
+        observations of the residual's lookback taken as arrays from the QC context that has
+        just judged the window (:meth:`_primary_rows`), the residual computed with numpy
         (:func:`monitor.surge.residual.derive_arrays`), only the derived rows that are new
         or changed written, the forecast's storm state taken from the rows held
         (:class:`DerivedTail`) and the coming high waters from :class:`TideTurns`. Stores
         what the full way stores."""
         st, store, rs = rt.cfg, self.store, self.cfg.residual
         tail, rt.tail = rt.tail, None  # any failure below: the next pass goes the full way
-        t, value, flag = store.observation_arrays(st.id, "primary", start_t - lookback, end_t)
+        t, value, flag = self._primary_rows(rt, start_t - lookback, end_t)
         if len(t) == 0:
             return None
         pressure = None
@@ -964,6 +1005,21 @@ class Daemon:
                                         for c in ("observed", "predicted", "residual", "smoothed", "flag")})
         rt.tail, rt.tail_end = tail, end_t
         return new, samples, context
+
+    def _primary_rows(self, rt: StationRuntime, a: int, end_t: int) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+        """The primary's observations with ``a <= t <= end_t`` as :meth:`Store.observation_arrays`
+        reads them (times [Unix s], values [m], stored flags), taken from the station's QC
+        context when it has just judged this window on the store's connection and holds rows
+        from ``a`` on (it holds every stored row from its first on, with the flags as just
+        written; another writer's flags make it read them again before this), else read
+        from the store."""
+        ctx = rt.qc_context
+        held = ctx.sensors.get("primary")
+        if (held is None or ctx.end_t != end_t or ctx.key is None or ctx.key[0] is not self.store.conn
+                or not len(held.t) or held.t[0] > a):
+            return self.store.observation_arrays(rt.cfg.id, "primary", a, end_t)
+        i, j = np.searchsorted(held.t, a, side="left"), np.searchsorted(held.t, end_t, side="right")
+        return held.t[i:j].copy(), held.v[i:j].copy(), held.flag[i:j].astype(np.int64)
 
     def _skew_surges(self, rt: StationRuntime, start_t: int, end_t: int) -> None:
         """Skew surges of the cycles whose closing low water fell in this window."""
@@ -1035,11 +1091,11 @@ class Daemon:
         fcs: list[dict] = []
         for at in self._issue_times(start_t, end_t):
             state = surge_forecast.storm_state_arrays(rt_s, rv, at, pressure_now, barometer=barometer)
-            if not np.isfinite(state.residual) or at - state.t > 3600:
+            if not math.isfinite(state.residual) or at - state.t > 3600:
                 continue  # no live residual then (a gap): no forecast
             rt.storm_seen |= state.storm
-            now = pd.Timestamp(state.t, unit="s", tz="UTC")
-            fcs += [rt.forecaster.forecast(state, hw_t, level) for hw_t, level in rt.turns.high_waters(now, now + horizon)]
+            fcs += [rt.forecaster.forecast(state, hw_t, level)
+                    for hw_t, level in rt.turns.high_waters_after(state.t, horizon.value)]
         self._keep_forecasts(st.id, fcs)
         return fcs
 
@@ -1076,8 +1132,7 @@ class Daemon:
     def _keep_forecasts(self, station: str, fcs: list[dict]) -> None:
         """Each forecast as the latest of its high water, and in the forecast log (one transaction)."""
         with self.store.transaction() as conn:
-            for fc in fcs:
-                self.store.write_forecast(station, fc)
+            self.store.write_forecasts(station, fcs)
             surge_forecast.log_forecasts(conn, station, fcs)
 
     def _alert_context(self, rt: StationRuntime, fcs: list[dict] | None, qc_results: dict, now: float,

@@ -75,6 +75,12 @@ def _as_arrays(rows: list[tuple]) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     return np.array(t, dtype=np.int64), np.array(value, dtype=float), np.array(flag, dtype=np.int64)
 
 
+#: The columns of ``hw_forecasts`` a forecast fills, and the statement that stores one.
+_FORECAST_KEYS = ("hw_t", "made_t", "predicted_high", "residual_now", "forecast", "lower", "upper", "coverage", "note")
+_FORECAST_SQL = (f"INSERT OR REPLACE INTO hw_forecasts (station, {', '.join(_FORECAST_KEYS)}) "
+                 f"VALUES ({', '.join('?' * (len(_FORECAST_KEYS) + 1))})")
+
+
 class Store:
     """A quaywatch store. Open with :meth:`open`; use as a context manager to close it.
 
@@ -363,11 +369,15 @@ class Store:
 
     def write_forecast(self, station: str, fc: dict) -> None:
         """Store the latest next-high-water forecast (one row per predicted high water)."""
-        keys = ("hw_t", "made_t", "predicted_high", "residual_now", "forecast", "lower", "upper", "coverage", "note")
-        vals = [fc.get(k) for k in keys]
+        self.write_forecasts(station, [fc])
+
+    def write_forecasts(self, station: str, fcs: list[dict]) -> None:
+        """:meth:`write_forecast` of each forecast in turn, in one statement (a later forecast
+        of the same high water replaces an earlier one)."""
+        if not fcs:
+            return
         with self.transaction() as conn:
-            conn.execute(f"INSERT OR REPLACE INTO hw_forecasts (station, {', '.join(keys)}) "
-                         f"VALUES ({', '.join('?' * (len(keys) + 1))})", (station, *vals))
+            conn.executemany(_FORECAST_SQL, [(station, *[fc.get(k) for k in _FORECAST_KEYS]) for fc in fcs])
 
     def add_fit(self, station: str, *, fitted_at: int, start: int, end: int, n: int, rms: float,
                 variance_explained: float, constants: str, in_use: bool, robust: bool = True,

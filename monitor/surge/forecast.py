@@ -116,7 +116,8 @@ class StormState:
 
     @property
     def storm(self) -> bool:
-        return bool(is_storm(np.array([self.residual]), np.array([self.rate]))[0])
+        """Storm conditions now: :func:`is_storm` of the one state, in plain floats."""
+        return _is_storm_one(float(self.residual), float(self.rate))
 
 
 def is_storm(residual: np.ndarray, rate: np.ndarray) -> np.ndarray:
@@ -124,6 +125,26 @@ def is_storm(residual: np.ndarray, rate: np.ndarray) -> np.ndarray:
     r = np.asarray(residual, dtype=float)
     q = np.asarray(rate, dtype=float)
     return (np.abs(r) > STORM_RESIDUAL) | (np.nan_to_num(q, nan=-np.inf) > STORM_RISE)
+
+
+def _is_storm_one(residual: float, rate: float) -> bool:
+    """:func:`is_storm` of one state [m, m/h] without arrays: a NaN rate never counts (numpy's
+    ``nan_to_num(nan=-inf)``), an infinite one compares as its sign says there."""
+    return abs(residual) > STORM_RESIDUAL or (not math.isnan(rate) and rate > STORM_RISE)
+
+
+#: Integral Unix seconds below this size [s] are their own float exactly through
+#: ``pd.Timestamp(now, unit="s").value / 1e9``: ``now * 10**9 = now * 5**9 * 2**9`` needs at most
+#: 53 bits while ``|now| * 5**9 < 2**53``. Larger ones (past 2115) take the pandas path.
+EXACT_SECONDS = 2 ** 53 // 5 ** 9
+
+
+def as_seconds(now: float) -> float:
+    """``pd.Timestamp(now, unit="s", tz="UTC").value / 1e9`` [Unix s], with no pandas object
+    made for the integral times the daemon asks with."""
+    if isinstance(now, (int, np.integer)) and -EXACT_SECONDS < now < EXACT_SECONDS:
+        return float(now)
+    return pd.Timestamp(now, unit="s", tz="UTC").value / 1e9
 
 
 def on_grid(series: pd.Series | None, start: float | None = None, end: float | None = None) -> pd.Series:
@@ -184,7 +205,7 @@ def storm_state_arrays(t: np.ndarray, residual: np.ndarray, now: float,
     values are left out."""
     t = np.asarray(t, dtype=float)
     v = np.asarray(residual, dtype=float)
-    now_s = pd.Timestamp(now, unit="s", tz="UTC").value / 1e9
+    now_s = as_seconds(now)
     keep = np.isfinite(v) & (t <= now_s)
     t, v = t[keep], v[keep]
     if len(t) == 0:
@@ -703,17 +724,56 @@ class SurgeForecaster:
         r = float(state.residual)
         persistence = float(hw_level) + r
         rising = persistence + state.rate * lead_h if math.isfinite(state.rate) and state.rate > 0 else None
-        lo, c, hi, conditioned, used_p = self.ranges([lead_h], r, state.rate, state.tendency)
-        if conditioned[0]:
-            note = self._conditioned_note(state, lead_h, bool(used_p[0]))
+        lo, c, hi, conditioned, used_p = self._range_one(lead_h, r, float(state.rate), float(state.tendency))
+        if conditioned:
+            note = self._conditioned_note(state, lead_h, used_p)
         else:
             note = self._wide_note(state, lead_h)
         return {"hw_t": int(round(hw_t)), "made_t": int(round(state.t)), "predicted_high": float(hw_level),
                 "residual_now": r, "rate": _finite(state.rate), "tendency": _finite(state.tendency),
-                "forecast": persistence + float(c[0]), "lower": persistence + float(lo[0]),
-                "upper": persistence + float(hi[0]), "coverage": self.coverage, "persistence": persistence,
-                "rising": rising, "method": "conditioned" if conditioned[0] else "wide", "note": note,
+                "forecast": persistence + c, "lower": persistence + lo,
+                "upper": persistence + hi, "coverage": self.coverage, "persistence": persistence,
+                "rising": rising, "method": "conditioned" if conditioned else "wide", "note": note,
                 "pressure_note": self._pressure_note(state)}
+
+    def _range_one(self, lead_h: float, r: float, rate: float,
+                   tendency: float) -> tuple[float, float, float, bool, bool]:
+        """:meth:`ranges` of one state at one lead, the same floats: the daemon forecasts one
+        high water at a time, and :meth:`ranges` on one-element arrays is mostly numpy's
+        overhead. A conditioned model is asked as :meth:`ranges` asks it (one-element arrays,
+        its matrix products unchanged); the wide rule's arithmetic is elementwise, so plain
+        floats give numpy's results to the bit (``tests/test_surge_forecast.py`` compares
+        the two on random states).
+
+        Returns
+        -------
+        lower, centre, upper : float [m]
+        conditioned, pressure : bool
+        """
+        use_p = math.isfinite(tendency) and self.models.get(True) is not None
+        model = self.models.get(use_p)
+        if model is not None and math.isfinite(rate):
+            lo, c, hi = model.predict(np.array([lead_h]), np.array([r]), np.array([rate]),
+                                      np.array([tendency]) if use_p else None)
+            lo0, c0, hi0 = float(lo[0]), float(c[0]), float(hi[0])
+            if math.isfinite(lo0) and math.isfinite(hi0):
+                return lo0, c0, hi0, True, use_p
+        base_lo, base_hi = self._base_one(lead_h)
+        w = K_RESIDUAL * abs(r) + (abs(rate) if math.isfinite(rate) else UNKNOWN_RATE) * lead_h
+        return base_lo - w, 0.0, base_hi + w, False, False
+
+    def _base_one(self, lead_h: float) -> tuple[float, float]:
+        """:meth:`_base` at one lead [h] (``round`` rounds half to even as ``np.rint``)."""
+        if self.spread is None:
+            return -NO_HISTORY_HALF_WIDTH, NO_HISTORY_HALF_WIDTH
+        if not math.isfinite(lead_h):  # no lead in the table's terms: numpy's own casting
+            lo, hi = self._base(np.array([lead_h]))
+            return float(lo[0]), float(hi[0])
+        key = min(max(round(lead_h * 3600 / GRID_S), 0), len(self.spread) - 1)
+        lo, hi = self.spread[key].tolist()
+        if math.isfinite(lo) and math.isfinite(hi):
+            return lo, hi
+        return -NO_HISTORY_HALF_WIDTH, NO_HISTORY_HALF_WIDTH
 
     def _wide_note(self, state: StormState, lead_h: float) -> str:
         if self.storms < self.min_storms:

@@ -1,0 +1,65 @@
+"""The write-transaction helpers (alerts/transactions.py): a savepoint undoes its own part only."""
+from __future__ import annotations
+
+import sqlite3
+
+import pytest
+
+from alerts.transactions import savepoint, transaction
+
+
+@pytest.fixture
+def conn(tmp_path):
+    c = sqlite3.connect(tmp_path / "t.sqlite", isolation_level=None)
+    c.execute("CREATE TABLE x (k TEXT PRIMARY KEY)")
+    yield c
+    c.close()
+
+
+def _keys(conn):
+    return [r[0] for r in conn.execute("SELECT k FROM x ORDER BY k")]
+
+
+def test_a_failing_part_undoes_its_own_writes_and_the_transaction_keeps_the_rest(conn):
+    with transaction(conn):
+        conn.execute("INSERT INTO x VALUES ('before')")
+        with pytest.raises(RuntimeError):
+            with savepoint(conn):
+                conn.execute("INSERT INTO x VALUES ('part')")
+                raise RuntimeError("invented")
+        with savepoint(conn):
+            conn.execute("INSERT INTO x VALUES ('after')")
+        assert conn.in_transaction
+    assert not conn.in_transaction and _keys(conn) == ["after", "before"]
+
+
+def test_parts_nest(conn):
+    with transaction(conn):
+        with savepoint(conn):
+            conn.execute("INSERT INTO x VALUES ('outer')")
+            with pytest.raises(ValueError):
+                with savepoint(conn):
+                    conn.execute("INSERT INTO x VALUES ('inner')")
+                    raise ValueError("invented")
+    assert _keys(conn) == ["outer"]
+
+
+def test_a_part_without_a_transaction_is_one(conn):
+    with pytest.raises(RuntimeError):
+        with savepoint(conn):
+            conn.execute("INSERT INTO x VALUES ('alone')")
+            assert conn.in_transaction
+            raise RuntimeError("invented")
+    assert not conn.in_transaction and _keys(conn) == []
+    with savepoint(conn):
+        conn.execute("INSERT INTO x VALUES ('alone')")
+    assert not conn.in_transaction and _keys(conn) == ["alone"]
+
+
+def test_the_whole_transaction_still_rolls_back_on_an_error_outside_the_parts(conn):
+    with pytest.raises(RuntimeError):
+        with transaction(conn):
+            with savepoint(conn):
+                conn.execute("INSERT INTO x VALUES ('part')")
+            raise RuntimeError("invented")
+    assert _keys(conn) == []
