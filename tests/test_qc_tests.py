@@ -8,6 +8,8 @@ from __future__ import annotations
 import numpy as np
 import pandas as pd
 import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
 
 from monitor.quality import checks as qc
 from test_qc_synthetic import record
@@ -237,3 +239,80 @@ def test_diagnostics_leave_out_a_spell_the_flat_line_test_doubts():
     flags = [1, 3, 3, 4, 2]
     flat = [1, 3, 1, 4, 2]
     assert diagnostic_mask(flags, flat).tolist() == [True, False, True, False, True]
+
+
+@st.composite
+def _short_records(draw):
+    """A few rows of a residual [m] with spikes, steps, ties, zeros and missing values, at
+    times [s] with repeats, gaps and one-minute steps."""
+    n = draw(st.integers(0, qc._SMALL))
+    pick = st.sampled_from([0.0, -0.0, 0.01, -0.01, 0.05, 0.09, -0.09, 0.25, -0.25, 0.5, 1.0, np.nan])
+    r = np.array(draw(st.lists(st.one_of(pick, st.floats(-2, 2)), min_size=n, max_size=n)), dtype=float)
+    steps = draw(st.lists(st.sampled_from([60.0, 60.0, 60.0, 0.0, 240.0, 300.0, 301.0, 900.0]), min_size=n, max_size=n))
+    t = 1_760_000_000.0 + np.cumsum(steps)
+    return r, t
+
+
+@settings(max_examples=400, deadline=None)
+@given(rec=_short_records())
+def test_the_spike_test_of_a_few_rows_on_floats_equals_the_array_and_pandas_forms(rec):
+    """The steady pass's few re-judged rows go through Python floats (``_spike_flags_small``):
+    the same flags as the whole-array form and as ``spike_test`` on a pandas Series (the
+    whole-record reference), on short records full of ties, zeros, gaps and NaN."""
+    r, t = rec
+    s = qc.QcSettings()
+    args = (s.spike_suspect, s.spike_fail, s.gap_limit, s.jump_ratio)
+    small = qc._spike_flags_small(r, t, *args)
+    arrays = qc._spike_flags_arrays(r, t, *args)
+    assert small.tolist() == arrays.tolist()
+    if len(t) and np.all(np.diff(t) > 0):  # (a Series wants distinct times)
+        series = pd.Series(r, index=pd.to_datetime(t, unit="s", utc=True))
+        assert small.tolist() == qc.spike_test(series, *args).tolist()
+
+
+@st.composite
+def _stuck_records(draw):
+    """Levels [m] with stuck spells, near-ties within the flat tolerance and missing values,
+    at one-minute steps with repeats and gaps [s]."""
+    n = draw(st.integers(2, 150))
+    base = draw(st.sampled_from([2.0, 2.0004, 2.0006, 2.001]))
+    v = np.array(draw(st.lists(st.sampled_from([base, 2.0, 2.0003, 2.0005, 2.1, np.nan]), min_size=n, max_size=n)))
+    steps = draw(st.lists(st.sampled_from([60.0, 60.0, 60.0, 60.0, 120.0, 301.0, 1800.0]), min_size=n, max_size=n))
+    return v, 1_760_000_000.0 + np.cumsum(steps)
+
+
+@settings(max_examples=300, deadline=None)
+@given(rec=_stuck_records(), data=st.data())
+def test_the_flat_line_at_one_row_on_scalars_equals_the_array_form_and_pandas(rec, data):
+    """A steady pass's one new row goes through ``_flat_row`` (scalars): the flag equals the
+    whole-array form's and ``flat_line_test`` over the whole record (pandas, the reference)."""
+    v, t = rec
+    s = qc.QcSettings()
+    tn = (t * 1e9).astype(np.int64)
+    row = data.draw(st.integers(0, len(v) - 1))
+    other = (row + 1) % len(v)
+    one = qc._flat_rows(v, t, tn, np.array([row]), s)[0]
+    assert one == qc._flat_rows(v, t, tn, np.array(sorted({row, other})), s)[sorted({row, other}).index(row)]
+    series = pd.Series(v, index=pd.to_datetime(t, unit="s", utc=True))
+    ref = qc.flat_line_test(series, s.flat_tolerance, s.flat_suspect_after, s.flat_fail_after, s.gap_limit)
+    assert one == ref.iloc[row]
+
+
+@pytest.mark.parametrize("case", ["a sample just at the window's start after a silence", "one finite value"])
+def test_the_flat_line_at_one_row_at_the_edges_of_its_window(case):
+    s = qc.QcSettings()
+    if case.startswith("a sample"):  # 1000 s of silence, then 30 min of one-minute samples, all one value
+        t = np.concatenate([[0.0], 1000.0 + 60.0 * np.arange(31)])
+        v = np.full(len(t), 2.0)
+    else:  # the hour missing but its first sample (another level) and the newest
+        t = 60.0 * np.arange(61)
+        v = np.full(len(t), np.nan)
+        v[0], v[-1] = 2.1, 2.0
+    t += 1_760_000_000.0
+    tn = (t * 1e9).astype(np.int64)
+    row = len(t) - 1
+    series = pd.Series(v, index=pd.to_datetime(t, unit="s", utc=True))
+    want = qc.flat_line_test(series, s.flat_tolerance, s.flat_suspect_after, s.flat_fail_after, s.gap_limit).iloc[row]
+    assert want == (qc.SUSPECT if case.startswith("a sample") else qc.PASS)
+    assert qc._flat_rows(v, t, tn, np.array([row]), s)[0] == want
+    assert qc._flat_rows(v, t, tn, np.array([row - 1, row]), s)[1] == want

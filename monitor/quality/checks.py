@@ -1075,6 +1075,14 @@ def _rolling_std(values: np.ndarray, a: np.ndarray, b: np.ndarray, min_periods: 
 def spike_flags(r: np.ndarray, t: np.ndarray, suspect: float, fail: float, gap_limit: float,
                 jump_ratio: float) -> np.ndarray:
     """:func:`monitor.quality.checks.spike_test` on plain arrays (residual [m], Unix seconds) [flags]."""
+    if len(r) <= _SMALL:
+        return _spike_flags_small(r, t, suspect, fail, gap_limit, jump_ratio)
+    return _spike_flags_arrays(r, t, suspect, fail, gap_limit, jump_ratio)
+
+
+def _spike_flags_arrays(r: np.ndarray, t: np.ndarray, suspect: float, fail: float, gap_limit: float,
+                        jump_ratio: float) -> np.ndarray:
+    """:func:`spike_flags` with whole-array numpy operations."""
     n = len(r)
     prev_ok, next_ok = _neighbour_ok(t, gap_limit)
     flags = np.full(n, NOT_EVALUATED, dtype=np.int8)
@@ -1095,6 +1103,51 @@ def spike_flags(r: np.ndarray, t: np.ndarray, suspect: float, fail: float, gap_l
         flags[ok & (stat > fail) & alone & peak] = FAIL
     flags[jump_flags(r, t, fail, jump_ratio, gap_limit)] = FAIL
     return flags
+
+
+#: Rows up to which the spike test runs on Python floats (a steady pass re-judges a handful
+#: of rows, where each of numpy's calls costs more than the arithmetic it does).
+_SMALL = 24
+
+
+def _sign(x: float) -> float:
+    """``np.sign`` of one float (NaN for NaN)."""
+    return x if x != x else float((x > 0) - (x < 0))
+
+
+def _spike_flags_small(r: np.ndarray, t: np.ndarray, suspect: float, fail: float, gap_limit: float,
+                       jump_ratio: float) -> np.ndarray:
+    """:func:`spike_flags` of a few rows, one row at a time on Python floats: the same
+    operations in the same order, so the same flags (``tests/test_qc_tests.py`` holds the
+    two to each other on random records)."""
+    rl, tl = r.tolist(), t.tolist()
+    n = len(rl)
+    nan = math.nan
+    flags = [NOT_EVALUATED] * n
+    if n >= 3:
+        curv = [nan] + [rl[i] - 0.5 * (rl[i - 1] + rl[i + 1]) for i in range(1, n - 1)] + [nan]
+        stat = [abs(c) for c in curv]
+        sign = [_sign(c) for c in curv]
+        for i in range(1, n - 1):
+            st = stat[i]
+            if not (0 < tl[i] - tl[i - 1] <= gap_limit and 0 < tl[i + 1] - tl[i] <= gap_limit and math.isfinite(st)):
+                continue
+            flags[i] = SUSPECT if st > suspect else PASS
+            if st > fail:
+                alone = not sign[i - 1] == sign[i] and not sign[i + 1] == sign[i]
+                before = stat[i - 1] if stat[i - 1] == stat[i - 1] else 0.0  # fmax(x, 0) of x >= 0 or NaN
+                after = stat[i + 1] if stat[i + 1] == stat[i + 1] else 0.0
+                if alone and not before > st and not after > st:
+                    flags[i] = FAIL
+    good = [i for i in range(n) if math.isfinite(rl[i])]
+    if len(good) >= 4:
+        d = [rl[b] - rl[a] if tl[b] - tl[a] <= gap_limit else nan for a, b in zip(good[:-1], good[1:])]
+        for j in range(1, len(d) - 1):
+            before, step, after = d[j - 1], d[j], d[j + 1]
+            if math.isfinite(before) and math.isfinite(after) and abs(step) > fail \
+                    and abs(step) > jump_ratio * max(abs(before), abs(after)):
+                flags[good[j + 1]] = FAIL
+    return np.array(flags, dtype=np.int8)
 
 
 def jump_flags(r: np.ndarray, t: np.ndarray, size: float, ratio: float, gap_limit: float) -> np.ndarray:
@@ -1422,6 +1475,8 @@ def _roc_few(rc: np.ndarray, t: np.ndarray, tn: np.ndarray, ok: np.ndarray, rows
 
 def _flat_rows(v: np.ndarray, t: np.ndarray, tn: np.ndarray, rows: np.ndarray, s: QcSettings) -> np.ndarray:
     """The flat-line flags at ``rows``."""
+    if len(rows) == 1:  # a steady pass's one new row
+        return np.array([_flat_row(v, t, tn, int(rows[0]), s)], dtype=np.int8)
     n = len(v)
     out = np.full(len(rows), PASS, dtype=np.int8)
     tt, vt = t[rows], v[rows]
@@ -1436,6 +1491,25 @@ def _flat_rows(v: np.ndarray, t: np.ndarray, tn: np.ndarray, rows: np.ndarray, s
             is_flat = (vmax - vt < s.flat_tolerance) & (vt - vmin < s.flat_tolerance) & covered
         out[is_flat] = code
     out[~np.isfinite(vt)] = NOT_EVALUATED
+    return out
+
+
+def _flat_row(v: np.ndarray, t: np.ndarray, tn: np.ndarray, row: int, s: QcSettings) -> int:
+    """:func:`_flat_rows` at one row, on scalars where the whole-array form spends a numpy
+    call on each one-element step (the same comparisons in the same order)."""
+    vt, tt = float(v[row]), float(t[row])
+    if not math.isfinite(vt):
+        return NOT_EVALUATED
+    n, out = len(v), PASS
+    b = int(np.searchsorted(tn, tn[row], side="right"))
+    for duration, code in ((s.flat_suspect_after, SUSPECT), (s.flat_fail_after, FAIL)):
+        w = v[int(np.searchsorted(tn, tn[row] - _ns(duration), side="left")):b]
+        if np.count_nonzero(np.isfinite(w)) < 2:
+            continue
+        first = int(np.searchsorted(t, tt - duration, side="left"))
+        covered = t[min(first, n - 1)] == tt - duration or (first > 0 and t[first - 1] >= tt - duration - s.gap_limit)
+        if np.fmax.reduce(w) - vt < s.flat_tolerance and vt - np.fmin.reduce(w) < s.flat_tolerance and covered:
+            out = code
     return out
 
 
@@ -1567,10 +1641,6 @@ def _sliding_median(values: np.ndarray, a: np.ndarray, b: np.ndarray, min_period
     return out
 
 
-def _monotone(a: np.ndarray, b: np.ndarray) -> bool:
-    return bool(np.all(np.diff(a) >= 0) and np.all(np.diff(b) >= 0) and np.all(b >= a))
-
-
 def _departures(rc: np.ndarray, clean: np.ndarray, tn: np.ndarray, j0: int, half: int,
                 memo: ResidMemo | None, keep: int) -> np.ndarray:
     """``rc - median(clean over the centred window)`` at rows ``j0:`` (NaN before), from the
@@ -1612,7 +1682,7 @@ def _noise_where_needed(absd: np.ndarray, size: np.ndarray, tn: np.ndarray, e0: 
     limit is then the floor: the same flag) and NaN where it does not (not evaluated, as
     the exact median gives). On a calm day that is every row, and the 25 h median, the
     pass's largest cost, is not taken at all. ``slide``: windows may be kept as one
-    sorted list slid along (:func:`_sliding_median`) when they never move back.
+    sorted list slid along (:func:`_sliding_median`).
     """
     n = len(absd)
     sigma = np.full(n, np.nan)
@@ -1626,7 +1696,7 @@ def _noise_where_needed(absd: np.ndarray, size: np.ndarray, tn: np.ndarray, e0: 
     sigma[rows[enough & ~need]] = 0.0
     if need.any():
         a, b, at = a[need], b[need], rows[need]
-        if slide and _monotone(a, b):
+        if slide:  # (windows about sorted times, from _bounds: their ends never move back)
             sigma[at] = 1.4826 * _sliding_median(absd, a, b, 10)
         else:
             sigma[at] = 1.4826 * _rolling_median(absd, a, b, 10)
