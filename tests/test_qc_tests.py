@@ -316,3 +316,11 @@ def test_the_flat_line_at_one_row_at_the_edges_of_its_window(case):
     assert want == (qc.SUSPECT if case.startswith("a sample") else qc.PASS)
     assert qc._flat_rows(v, t, tn, np.array([row]), s)[0] == want
     assert qc._flat_rows(v, t, tn, np.array([row - 1, row]), s)[1] == want
+
+
+@settings(max_examples=300, deadline=None)
+@given(values=st.lists(st.floats(-5, 5), min_size=10, max_size=3000), scale=st.sampled_from([1.0, 1e-3, 1e3]))
+def test_the_sample_std_is_numpys_to_the_bit(values, scale):
+    """The rate of change's sd at a steady pass's new row (``_sample_std``) is ``np.std(ddof=1)``."""
+    w = np.array(values) * scale
+    assert qc._sample_std(w) == float(np.std(w, ddof=1))

@@ -1467,10 +1467,17 @@ def _roc_few(rc: np.ndarray, t: np.ndarray, tn: np.ndarray, ok: np.ndarray, rows
             continue
         a = int(np.searchsorted(tn, tn[row - 1] - width, side="right"))
         w = rc[a:row][ok[a:row]]
-        sd = float(np.std(w, ddof=1)) if len(w) >= 10 else math.nan
+        sd = _sample_std(w) if len(w) >= 10 else math.nan
         limit = max(s.roc_n_dev * sd if math.isfinite(sd) else 0.0, s.roc_floor)
         out[i] = SUSPECT if abs(rc[row] - rc[prev]) > limit else PASS
     return out
+
+
+def _sample_std(w: np.ndarray) -> float:
+    """``np.std(w, ddof=1)`` of a 1-d float array, its two passes written out (the same sums
+    in the same order, so the same float) without its general-case overhead."""
+    x = w - np.add.reduce(w) / len(w)
+    return math.sqrt(np.add.reduce(x * x) / (len(w) - 1))
 
 
 def _flat_rows(v: np.ndarray, t: np.ndarray, tn: np.ndarray, rows: np.ndarray, s: QcSettings) -> np.ndarray:
