@@ -27,6 +27,7 @@ from aiosmtpd.controller import Controller
 
 from monitor.cli import main as cli
 from monitor.demo_decades import STATION, write_inputs
+from monitor.service.config import validate_config
 from monitor.store.database import Store
 
 
@@ -142,3 +143,22 @@ def browser():
         b = p.chromium.launch(executable_path=CHROMIUM, args=CHROMIUM_ARGS)
         yield b
         b.close()
+
+
+@pytest.fixture
+def m2_stations(tmp_path):
+    """Make a validated configuration of invented stations beside a one-constituent constants
+    file (M2 1 m, mean 2 m) with a residual rule each that the tests' water never reaches:
+    ``m2_stations(ids, sensors=("primary",), daemon={...}, qc={...})``."""
+    def make(ids, sensors=("primary",), daemon=None, qc=None):
+        (tmp_path / "c.toml").write_text('mean = 2.0\n[[constituents]]\nname = "M2"\namplitude = 1.0\nphase = 40.0\n')
+        rule = {"id": "surge", "when": "residual_above", "hold": 0, "notify": ["duty@port.example"],
+                "steps": [{"name": "raised", "at": 5.0}]}
+        stations = [{"id": sid, "latitude": 50.0, "longitude": -4.0, "constants": "c.toml", "datums": {"chart": 0.0},
+                     "sensors": {s: {} for s in sensors}, "rules": [rule], **({"qc": qc} if qc else {})}
+                    for sid in ids]
+        cfg, errors = validate_config({"store": {"path": "q.db"}, "daemon": daemon or {}, "stations": stations},
+                                      tmp_path)
+        assert errors == []
+        return cfg
+    return make

@@ -17,6 +17,9 @@ import numpy as np
 import pandas as pd
 
 from monitor.quality import diagnostics as dg
+from monitor.quality.checks import set_override
+from monitor.service.daemon import Daemon
+from monitor.store.database import Store
 from test_qc_synthetic import START, SynthModel, record
 from units import day, hour, minute, mm
 
@@ -111,22 +114,6 @@ DRIFT_DAYS = 3
 CLOCK_DAYS = 2
 
 
-def _daemon(tmp_path, store):
-    from monitor.service.config import validate_config
-    from monitor.service.daemon import Daemon
-
-    (tmp_path / "c.toml").write_text('mean = 2.0\n[[constituents]]\nname = "M2"\namplitude = 1.0\nphase = 40.0\n')
-    rule = {"id": "surge", "when": "residual_above", "hold": 0, "notify": ["duty@port.example"],
-            "steps": [{"name": "raised", "at": 5.0}]}
-    raw = {"store": {"path": "q.db"}, "daemon": {"diagnostics_minutes": 60, "clock_window_days": CLOCK_DAYS},
-           "stations": [{"id": "quay", "latitude": 50.0, "longitude": -4.0, "constants": "c.toml",
-                         "datums": {"chart": 0.0}, "sensors": {"primary": {}, "backup": {}}, "rules": [rule],
-                         "qc": {"drift_window": DRIFT_DAYS * day}}]}
-    cfg, errors = validate_config(raw, tmp_path)
-    assert errors == []
-    return cfg, Daemon
-
-
 def _levels(t: np.ndarray, model, late_from: float) -> tuple[np.ndarray, np.ndarray]:
     """Primary and backup at times ``t`` [Unix s]: the model's tide, a wobble, the backup
     1 cm above drifting 2 mm/day and 4 minutes late from ``late_from``."""
@@ -181,16 +168,15 @@ def _same(a, b, where: str = "") -> None:
         assert a == b and type(a) is type(b), f"{where}: {a!r} != {b!r}"
 
 
-def test_hourly_run_from_memory_equals_a_run_from_scratch(tmp_path):
-    from monitor.quality.checks import set_override
-    from monitor.store.database import Store
-
+def test_hourly_run_from_memory_equals_a_run_from_scratch(tmp_path, m2_stations):
     t0 = int(START.timestamp())
     history = DRIFT_DAYS * day + 6 * hour
     late_from = t0 + history + 5 * hour                     # the backup's clock jumps then
     hole = t0 + history - 30 * hour + 7 * minute            # a primary row that arrives late
-    with Store.open(tmp_path / "q.db") as store:
-        cfg, Daemon = _daemon(tmp_path, store)
+    cfg = m2_stations(["quay"], sensors=("primary", "backup"),
+                      daemon={"diagnostics_minutes": 60, "clock_window_days": CLOCK_DAYS},
+                      qc={"drift_window": DRIFT_DAYS * day})
+    with Store.open(cfg.store_path) as store:
         d = Daemon(cfg, store)
         rt = d.stations["quay"]
         t = t0 + 60 * np.arange(history // 60 + 1)

@@ -9,26 +9,17 @@ from __future__ import annotations
 
 import numpy as np
 
+from monitor.service.daemon import Daemon
+from monitor.store.database import Store
+
 minute = 60
 T0 = 1_760_000_000 - 1_760_000_000 % 3600
 STATIONS = 4
 PERIOD_MIN = 20
 
 
-def test_diagnostics_of_several_stations_land_in_different_passes(tmp_path, monkeypatch):
-    from monitor.service.config import validate_config
-    from monitor.service.daemon import Daemon
-    from monitor.store.database import Store
-
-    (tmp_path / "c.toml").write_text('mean = 2.0\n[[constituents]]\nname = "M2"\namplitude = 1.0\nphase = 40.0\n')
-    rule = {"id": "surge", "when": "residual_above", "hold": 0, "notify": ["duty@port.example"],
-            "steps": [{"name": "raised", "at": 5.0}]}
-    raw = {"store": {"path": "q.db"}, "daemon": {"diagnostics_minutes": PERIOD_MIN},
-           "stations": [{"id": f"s{k}", "latitude": 50.0, "longitude": -4.0, "constants": "c.toml",
-                         "datums": {"chart": 0.0}, "sensors": {"primary": {}}, "rules": [rule]}
-                        for k in range(STATIONS)]}
-    cfg, errors = validate_config(raw, tmp_path)
-    assert errors == []
+def test_diagnostics_of_several_stations_land_in_different_passes(m2_stations, monkeypatch):
+    cfg = m2_stations([f"s{k}" for k in range(STATIONS)], daemon={"diagnostics_minutes": PERIOD_MIN})
     runs: list[tuple[str, int]] = []
     monkeypatch.setattr(Daemon, "_run_diagnostics", lambda self, rt, end_t: runs.append((rt.cfg.id, end_t)) or {})
     with Store.open(cfg.store_path) as store:
