@@ -38,9 +38,20 @@ def transaction(target: Any) -> Iterator[sqlite3.Connection]:
     try:
         yield conn
     except BaseException:
-        conn.execute("ROLLBACK")
+        _roll_back(conn)
         raise
-    conn.execute("COMMIT")
+    try:
+        conn.execute("COMMIT")
+    except BaseException:  # (busy, an I/O error): nothing of it kept, nothing left open for others to join
+        _roll_back(conn)
+        raise
+
+
+def _roll_back(conn: sqlite3.Connection) -> None:
+    """ROLLBACK of the transaction open on ``conn``, if one still is (an I/O error may have
+    ended it already; a ROLLBACK then would raise and hide the error that ended it)."""
+    if conn.in_transaction:
+        conn.execute("ROLLBACK")
 
 
 #: The name of the savepoints :func:`savepoint` sets (nested ones share it: ROLLBACK TO and

@@ -63,3 +63,32 @@ def test_the_whole_transaction_still_rolls_back_on_an_error_outside_the_parts(co
                 conn.execute("INSERT INTO x VALUES ('part')")
             raise RuntimeError("invented")
     assert _keys(conn) == []
+
+
+class _Broken(Exception):
+    """An invented failure that ended the transaction on its way out (as an I/O error may)."""
+
+
+def test_an_error_that_ended_the_transaction_comes_out_as_itself(conn):
+    with pytest.raises(_Broken):
+        with transaction(conn):
+            with savepoint(conn):
+                conn.execute("INSERT INTO x VALUES ('part')")
+                conn.execute("ROLLBACK")  # the transaction is gone before the error is raised
+                raise _Broken("invented")
+    assert not conn.in_transaction and _keys(conn) == []
+
+
+def test_a_commit_that_fails_leaves_nothing_open_and_nothing_kept(conn):
+    # a deferred foreign key is checked at COMMIT, which fails and would leave the
+    # transaction open for the next caller to join
+    conn.execute("PRAGMA foreign_keys = ON")
+    conn.execute("CREATE TABLE child (k TEXT REFERENCES x (k) DEFERRABLE INITIALLY DEFERRED)")
+    with pytest.raises(sqlite3.IntegrityError):
+        with transaction(conn):
+            conn.execute("INSERT INTO x VALUES ('kept?')")
+            conn.execute("INSERT INTO child VALUES ('no such parent')")
+    assert not conn.in_transaction and _keys(conn) == []
+    with transaction(conn):  # the next transaction is a fresh one
+        conn.execute("INSERT INTO x VALUES ('next')")
+    assert not conn.in_transaction and _keys(conn) == ["next"]
