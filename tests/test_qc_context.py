@@ -17,6 +17,7 @@ import pandas as pd
 import pytest
 
 from monitor.quality import checks as qc
+from monitor.quality import context as qc_context
 from monitor.quality import diagnostics
 from monitor.quality.checks import QcSettings, run_station_qc, set_override
 from monitor.quality.context import QcContext, QcRows
@@ -285,8 +286,6 @@ def test_windows_too_wide_for_matrices_take_the_pass_without_the_context(tmp_pat
     the pass without a context (whole-record tests for such tails) and says the same rows;
     the passes after it go straight there (no read of the context to find it too wide
     again) until the context is tried again, WIDE_PASSES later."""
-    from monitor.quality import context as qc_context
-
     t, primary, backup, keep = _record(13)
     monkeypatch.setattr(qc, "_TAIL_CELLS_MAX", 1000)
     monkeypatch.setattr(qc_context, "WIDE_PASSES", 3)
@@ -502,3 +501,40 @@ def test_the_table_kept_between_calls_equals_a_call_without_the_memo(step_s, see
         if cut > 0:
             lo += cut
             memo.drop(cut)
+
+
+@pytest.mark.parametrize("step_s", [minute, 15 * minute, hour])
+def test_the_rows_before_the_reach_decide_no_flag_of_the_rows_judged(step_s, monkeypatch):
+    """Whatever the spike test said of the rows before ``_reach`` (randomised here), the
+    table of the rows judged is the same; randomised from it to the rows judged, the table
+    changes (the rows the windows do use are seen). Spikes and gaps in an invented record, at one-minute,
+    fifteen-minute and hourly steps (the gap limit two steps)."""
+    rng = np.random.default_rng(step_s)
+    s = QcSettings(gap_limit=2.0 * step_s, resid_burst=max(300.0, 2.0 * step_s))
+    span = s.context_seconds() + s.resid_window + 2 * s.gap_limit
+    n = int(span // step_s) + 5
+    t = (T0 + step_s * np.arange(n)).astype(float)
+    p = 2.0 + 1.2 * np.cos(2 * np.pi * t / 44714.16)
+    v = p + np.cumsum(rng.normal(0, 0.01, n))
+    v[rng.integers(0, n, n // 10)] += 0.4
+    tn = (t * 1e9).astype(np.int64)
+    k = int(np.searchsorted(t, t[-1] - s.resid_window - 2 * s.gap_limit))
+    spike_all = qc._spike_all
+    changed = {}
+
+    def table(where: str | None):
+        def randomised(rc, tt, settings, memo, reach=0):
+            sp = spike_all(rc, tt, settings, memo, reach)
+            if where is not None:
+                rows = np.arange(0, reach) if where == "before" else np.arange(reach, k)
+                sp[rows] = rng.choice([qc.PASS, qc.FAIL], len(rows))
+                changed[where] = len(rows)
+            return sp
+        monkeypatch.setattr(qc, "_spike_all", randomised)
+        return qc.tail_table(tn, v, p, s, t[-1] + 30, None, k, qc.ResidMemo())
+
+    plain = table(None)
+    for _ in range(5):
+        assert np.array_equal(table("before"), plain)     # every row before the reach
+    assert changed["before"] > 0
+    assert any(not np.array_equal(table("after"), plain) for _ in range(5))  # from the reach to the rows judged

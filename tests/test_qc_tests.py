@@ -273,7 +273,7 @@ def test_the_spike_test_of_a_few_rows_on_floats_equals_the_array_and_pandas_form
 @st.composite
 def _stuck_records(draw):
     """Levels [m] with stuck spells, near-ties within the flat tolerance and missing values,
-    at one-minute steps with repeats and gaps [s]."""
+    at one-minute steps with gaps [s]."""
     n = draw(st.integers(2, 150))
     base = draw(st.sampled_from([2.0, 2.0004, 2.0006, 2.001]))
     v = np.array(draw(st.lists(st.sampled_from([base, 2.0, 2.0003, 2.0005, 2.1, np.nan]), min_size=n, max_size=n)))

@@ -69,7 +69,7 @@ def read_batch(texts, fmt: Any, recv: np.ndarray, linenos: np.ndarray, max_ahead
         The feed's line format (its ``delimiter``, ``time_column``, ``value_column``,
         ``time_format``, ``naive_time_zone``, ``comment``, ``header_lines``,
         ``missing_marker``, ``scale`` and ``offset`` are read; the type is not imported
-        here, since the parser imports this module).
+        here, since the parser imports this module and imports go one way).
     recv : ndarray of float
         Receive time of each line [s, Unix UTC].
     linenos : ndarray of int

@@ -1302,7 +1302,7 @@ def tail_table(tn: np.ndarray, v: np.ndarray, p: np.ndarray | None, s: QcSetting
     # needed there: its failures are left out of the windows of the tests below
     gross_fail = gross == FAIL
     rc = np.where(gross_fail, np.nan, r)
-    spike = _spike_all(rc, t, s, memo, _reach(t, tn, k, s) if n - k else 0)
+    spike = _spike_all(rc, t, s, memo, _reach(t, tn, k, s) if memo is not None and n - k else 0)
     out["spike"] = spike[tail]
     bad = gross_fail | (spike == FAIL)
     ok = np.isfinite(rc) & ~bad
@@ -1370,8 +1370,8 @@ def _reach(t: np.ndarray, tn: np.ndarray, k: int, s: QcSettings) -> int:
     back = t[k - 1] if k > 0 else t[k]
     # (the rate of change also looks for the last usable row before each: one further back
     # than the gap limit leaves the row unjudged whichever it is)
+    # (the flat line runs on the levels, whatever the spike test says: no term here)
     earliest = min(back - s.roc_window, t[k] - s.gap_limit, t[k] - s.atten_window,
-                   t[k] - max(s.flat_suspect_after, s.flat_fail_after) - s.gap_limit,
                    t[_resid_rows(tn, k, s)[1]] - s.resid_window / 2)
     return int(np.searchsorted(t, earliest, side="left"))
 
@@ -2090,6 +2090,17 @@ def write_rows(db: Any, station: str, sensor: str, t_tests: np.ndarray, tests: n
         conn.executemany("UPDATE observations SET flag = ? WHERE station = ? AND sensor = ? AND t = ?", fl)
         if edit:
             note_edit(conn)
+
+
+def edits_mark(conn: Any, has_meta: bool = True) -> tuple:
+    """What says that stored flags or the technician's overrides were changed by another
+    writer since it was last read: the store's :data:`EDITS_KEY` value (raised by
+    :func:`note_edit`) and the overrides table's largest row id; the latter alone for a
+    database without the store's ``meta`` table (``has_meta`` False)."""
+    if not has_meta:
+        return tuple(conn.execute("SELECT max(rowid) FROM qc_overrides").fetchone())
+    return tuple(conn.execute("SELECT (SELECT value FROM meta WHERE key = ?), (SELECT max(rowid) FROM qc_overrides)",
+                              (EDITS_KEY,)).fetchone())
 
 
 def note_edit(conn: Any) -> None:

@@ -206,7 +206,7 @@ class QcContext:
             _qc.ensure_qc_schema(db)
             self.has_meta = db.conn.execute(
                 "SELECT 1 FROM sqlite_master WHERE type = 'table' AND name = 'meta'").fetchone() is not None
-        edits = _edits(db, self.has_meta)
+        edits = _qc.edits_mark(db.conn, self.has_meta)
         # Without the store's ``meta`` table another writer's flags leave no mark (note_edit
         # has nowhere to count them): every pass then rebuilds from the store.
         steady = (self.has_meta and self.end_t is not None and start_t == self.end_t + 1 and key == self.key
@@ -368,15 +368,6 @@ class QcContext:
             h.packed_at, i = int(rows[0]), i - int(i[0])
         h.packed[i] = packed
         h.flag[rows] = flag
-
-
-def _edits(db: Any, has_meta: bool) -> tuple:
-    """What says that overrides or stored flags were changed by another writer."""
-    if not has_meta:
-        return tuple(db.conn.execute("SELECT max(rowid) FROM qc_overrides").fetchone())
-    return tuple(db.conn.execute(
-        "SELECT (SELECT value FROM meta WHERE key = ?), (SELECT max(rowid) FROM qc_overrides)",
-        (_qc.EDITS_KEY,)).fetchone())
 
 
 def _read(db: Any, station: str, sensor: str, lo: int, hi: int) -> tuple[np.ndarray, np.ndarray, np.ndarray]:

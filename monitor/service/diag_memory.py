@@ -43,14 +43,24 @@ import numpy as np
 import pandas as pd
 
 from monitor.quality import diagnostics
-from monitor.quality.checks import EDITS_KEY, USABLE_FLAGS
+from monitor.quality.checks import NOT_EVALUATED, USABLE_FLAGS, edits_mark
 
 
 class HeldRows:
     """One sensor's usable rows (flag 1, 2 or 3, a value) in ``[lo, hi]`` [Unix s] as the
     store held them at the last run: times as 32-bit offsets from ``lo`` [s] and values [m]
     (12 bytes a row). Rows that are not usable need not be held: rows older than the
-    earliest change keep their flags, and every newer row is read again."""
+    earliest change keep their flags, and every newer row is read again.
+
+    Parameters
+    ----------
+    lo, hi : int
+        The span the rows were read over [Unix s].
+    t : array of int64
+        Times of the usable rows [Unix s], sorted, within ``[lo, hi]``.
+    v : array of float
+        Their values [m].
+    """
 
     def __init__(self, lo: int, hi: int, t: np.ndarray, v: np.ndarray):
         self.lo, self.hi = int(lo), int(hi)
@@ -79,13 +89,16 @@ def _usable(rows: tuple[np.ndarray, np.ndarray, np.ndarray]) -> tuple[np.ndarray
 
 
 def _edits(conn: Any) -> tuple | None:
-    """What says that flags were changed by another writer (as the QC context reads it), or
-    None when the store cannot say."""
+    """What says that flags were changed by another writer (as the QC context reads it,
+    :func:`monitor.quality.checks.edits_mark`), or None when the store cannot say."""
     try:
-        return tuple(conn.execute("SELECT (SELECT value FROM meta WHERE key = ?), (SELECT max(rowid) FROM qc_overrides)",
-                                  (EDITS_KEY,)).fetchone())
+        return edits_mark(conn)
     except sqlite3.Error:
         return None
+
+
+#: The usable samples (flag 1, 2 or 3; not evaluated yet when NULL) in SQL.
+_USABLE_SQL = f"coalesce(flag, {NOT_EVALUATED}) IN ({', '.join(str(f) for f in USABLE_FLAGS)})"
 
 
 class DiagnosticsMemory:
@@ -284,5 +297,5 @@ class DiagnosticsMemory:
             return True
         return store.conn.execute(
             "SELECT 1 FROM observations WHERE station = ? AND sensor = ? AND t BETWEEN ? AND ? "
-            "AND coalesce(flag, 2) IN (1, 2, 3) AND value IS NOT NULL LIMIT 1",
+            f"AND {_USABLE_SQL} AND value IS NOT NULL LIMIT 1",
             (station, sensor, int(lo), int(hi))).fetchone() is not None

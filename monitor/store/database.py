@@ -373,7 +373,15 @@ class Store:
 
     def write_forecasts(self, station: str, fcs: list[dict]) -> None:
         """:meth:`write_forecast` of each forecast in turn, in one statement (a later forecast
-        of the same high water replaces an earlier one)."""
+        of the same high water replaces an earlier one).
+
+        Parameters
+        ----------
+        station : str
+        fcs : list of dict
+            Forecasts as :meth:`monitor.surge.forecast.SurgeForecaster.forecast` makes them:
+            ``hw_t``, ``made_t`` [Unix s], levels [m, station datum], ``coverage`` [1], notes.
+        """
         if not fcs:
             return
         with self.transaction() as conn:
