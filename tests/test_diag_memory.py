@@ -17,7 +17,7 @@ import numpy as np
 import pandas as pd
 
 from monitor.quality import diagnostics as dg
-from monitor.quality.checks import set_override
+from monitor.quality.checks import run_station_qc, set_override
 from monitor.service.daemon import Daemon
 from monitor.store.database import Store
 from test_qc_synthetic import START, SynthModel, record
@@ -209,3 +209,39 @@ def test_hourly_run_from_memory_equals_a_run_from_scratch(tmp_path, m2_stations)
         assert max(read[h] for h in steady) < 400 and max(bins[h] for h in steady) <= 10
         assert 400 < read[4] < read[0] / 3 and read[7] == read[0] + 2
         assert bins[7] == bins[0] > bins[4] > 10
+
+
+def test_another_connections_override_and_qc_run_are_seen_by_the_next_hour(tmp_path, m2_stations):
+    """Writers on their own connection (a technician's `quaywatch flag`, a `quaywatch qc`
+    re-run, as other processes do it): the next hour's run reads everything again and equals
+    a run from scratch."""
+    t0 = int(START.timestamp())
+    history = DRIFT_DAYS * day + 6 * hour
+    cfg = m2_stations(["quay"], sensors=("primary", "backup"),
+                      daemon={"diagnostics_minutes": 60, "clock_window_days": CLOCK_DAYS},
+                      qc={"drift_window": DRIFT_DAYS * day})
+    with Store.open(cfg.store_path) as store, Store.open(cfg.store_path) as other:
+        d = Daemon(cfg, store)
+        rt = d.stations["quay"]
+        t = t0 + 60 * np.arange(history // 60 + 1)
+        p, b = _levels(t, rt.model, t0 + history + 3 * hour)
+        store.write_batch("quay", "primary", t, p)
+        store.write_batch("quay", "backup", t, b)
+        read = []
+        for h in range(6):
+            if h:
+                tn = t[-1] + 60 * np.arange(1, 61)
+                t = np.concatenate([t, tn])
+                pn, bn = _levels(t, rt.model, t0 + history + 3 * hour)
+                store.write_batch("quay", "primary", tn, pn[-60:])
+                store.write_batch("quay", "backup", tn, bn[-60:])
+            if h == 2:   # a technician fails a primary sample 30 h back, from another process
+                set_override(other, "quay", "primary", t0 + history - 30 * hour, None, 4, "tech", "fouled")
+            if h == 4:   # quality control re-run over a day, from another process
+                run_station_qc(other, cfg.stations[0], None, t0 + history - 40 * hour, t0 + history - 16 * hour,
+                               rt.model)
+            d.process_station(rt, now=float(t[-1]) + 30)
+            _same(rt.diag, _reference(store, "quay", int(t[-1]), rt.model), f"hour {h}")
+            read.append(rt.diag_memory.rows_read)
+    assert max(read[1], read[3], read[5]) < 400
+    assert min(read[2], read[4]) > read[0] / 2  # everything read again
