@@ -1302,7 +1302,8 @@ def tail_table(tn: np.ndarray, v: np.ndarray, p: np.ndarray | None, s: QcSetting
     # needed there: its failures are left out of the windows of the tests below
     gross_fail = gross == FAIL
     rc = np.where(gross_fail, np.nan, r)
-    spike = _spike_all(rc, t, s, memo, _reach(t, tn, k, s) if memo is not None and n - k else 0)
+    # (the reach matters only after the record lost rows at its front)
+    spike = _spike_all(rc, t, s, memo, _reach(t, tn, k, s) if memo is not None and memo.lost and n - k else 0)
     out["spike"] = spike[tail]
     bad = gross_fail | (spike == FAIL)
     ok = np.isfinite(rc) & ~bad
