@@ -15,6 +15,8 @@ from __future__ import annotations
 import numpy as np
 import pandas as pd
 import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
 
 from monitor.quality import checks as qc
 from monitor.quality import context as qc_context
@@ -279,6 +281,45 @@ def test_the_sliding_median_equals_numpy_over_each_window(seed, suffixes):
         w = w[np.isfinite(w)]
         want = np.median(w) if len(w) >= 10 else np.nan
         assert (np.isnan(want) and np.isnan(got[i])) or got[i] == want, i
+
+
+@settings(max_examples=200, deadline=None)
+@given(seed=st.integers(0, 2 ** 32 - 1), spread=st.sampled_from([0.002, 0.008, 0.03]),
+       step=st.sampled_from([0.001, 0.005]), judged=st.integers(2, 90))
+def test_the_noise_bound_gives_the_flags_of_the_exact_median(seed, spread, step, judged):
+    """The residual outlier test's sigma from order-statistic bounds (exact only where the
+    bounds leave a flag open) gives the suspect and fail verdicts of the exact 25 h median,
+    taken here with ``np.median`` over each centred window's finite values, one window at
+    a time. Departures are drawn near the limits on purpose, values rounded to make ties;
+    the rows before ``k`` are judged on the fail limit only (the burst rule's)."""
+    rng = np.random.default_rng(seed)
+    n = 900
+    tn = (1_760_000_000 + 60 * np.arange(n)).astype(np.int64) * 1_000_000_000
+    absd = np.round(np.abs(rng.normal(0, spread, n)) / step) * step
+    absd[rng.integers(0, n, 60)] = np.nan
+    limits = ((6.0, 0.05), (12.0, 0.20))
+    half = 12 * 3600 * 1_000_000_000
+    e0, k = n - judged, n - judged * 3 // 4
+    size = absd.copy()
+    # departures of the rows judged around each limit the exact sigma would set
+    exact = np.full(n, np.nan)
+    for i in range(e0, n):
+        w = absd[(tn > tn[i] - half) & (tn <= tn[i] + half)]
+        w = w[np.isfinite(w)]
+        exact[i] = 1.4826 * np.median(w) if len(w) >= 10 else np.nan
+    mult = rng.choice([6.0, 12.0], n)
+    size[e0:] = np.fmax(mult[e0:] * exact[e0:] * rng.uniform(0.8, 1.25, n - e0),
+                        rng.choice([0.05, 0.20, 0.0], n - e0) * rng.uniform(0.9, 1.1, n - e0))
+    got = qc._noise_where_needed(absd, size, tn, e0, half, limits, k, True)
+
+    def verdicts(sigma):
+        ev = np.isfinite(sigma)
+        with np.errstate(invalid="ignore"):
+            return [ev & (size > np.maximum(m * sigma, f)) for m, f in limits]
+    (sus_got, far_got), (sus_want, far_want) = verdicts(got), verdicts(exact)
+    assert np.array_equal(far_got[e0:], far_want[e0:])
+    assert np.array_equal(sus_got[k:], sus_want[k:])
+    assert np.array_equal(np.isfinite(got[k:]), np.isfinite(exact[k:]))
 
 
 def test_windows_too_wide_for_matrices_take_the_pass_without_the_context(tmp_path, monkeypatch):

@@ -1678,19 +1678,26 @@ def _departures(rc: np.ndarray, clean: np.ndarray, tn: np.ndarray, j0: int, half
     return d
 
 
-def _noise_where_needed(absd: np.ndarray, size: np.ndarray, tn: np.ndarray, e0: int, half: int, floor: float,
+def _noise_where_needed(absd: np.ndarray, size: np.ndarray, tn: np.ndarray, e0: int, half: int,
+                        limits: tuple[tuple[float, float], tuple[float, float]], k: int,
                         slide: bool) -> np.ndarray:
     """The residual outlier test's robust sigma (1.4826 times the median of ``absd`` over
-    the centred noise window, NaN below 10 values) at rows ``e0:`` [m], computed exactly
-    only where it can decide a flag.
+    the centred noise window, NaN below 10 values) at rows ``e0:`` [m], exact only where
+    its exact value could change a flag; elsewhere a value that gives the same flags.
 
-    A row is judged against ``max(k * sigma, floor)`` for the suspect and the fail limit
-    both; a row whose departure ``size`` [m] is within the smaller ``floor`` [m] passes
-    whatever sigma is. Such rows get sigma 0.0 where the window holds enough values (the
-    limit is then the floor: the same flag) and NaN where it does not (not evaluated, as
-    the exact median gives). On a calm day that is every row, and the 25 h median, the
-    pass's largest cost, is not taken at all. ``slide``: windows may be kept as one
-    sorted list slid along (:func:`_sliding_median`).
+    A row is judged against ``max(k_s * sigma, floor_s)`` and ``max(k_f * sigma, floor_f)``
+    (``limits``: the suspect and the fail multiple and floor [m]); the rows before ``k``
+    only against the fail limit (they are judged for the burst rule alone). So:
+
+    - a row whose departure ``size`` [m] is within the floors passes whatever sigma is:
+      sigma 0.0 where the window holds enough values (the limits are then the floors: the
+      same flags) and NaN where it does not (not evaluated, as the exact median gives). On
+      a calm day that is every row, and the 25 h median is not taken at all;
+    - with ``slide`` (windows about sorted times: their ends never move back), the other
+      rows' medians are first bounded by order statistics of the part every window shares
+      (:func:`_median_bounds`); where the limits at both bounds give the same flags, the
+      lower bound stands in for sigma. The rest take the exact median, one sorted list
+      slid along (:func:`_sliding_median`).
     """
     n = len(absd)
     sigma = np.full(n, np.nan)
@@ -1698,17 +1705,51 @@ def _noise_where_needed(absd: np.ndarray, size: np.ndarray, tn: np.ndarray, e0: 
     if not len(rows):
         return sigma
     a, b = _bounds(tn, tn[rows], half, half)
-    enough = _counts(np.isfinite(absd), a, b) >= 10
+    count = _counts(np.isfinite(absd), a, b)
+    enough = count >= 10
+    floor = np.where(rows < k, limits[1][1], min(limits[0][1], limits[1][1]))
     with np.errstate(invalid="ignore"):
         need = enough & (size[rows] > floor)
     sigma[rows[enough & ~need]] = 0.0
-    if need.any():
-        a, b, at = a[need], b[need], rows[need]
-        if slide:  # (windows about sorted times, from _bounds: their ends never move back)
-            sigma[at] = 1.4826 * _sliding_median(absd, a, b, 10)
-        else:
-            sigma[at] = 1.4826 * _rolling_median(absd, a, b, 10)
+    if not need.any():
+        return sigma
+    a, b, at, count = a[need], b[need], rows[need], count[need]
+    if not slide:
+        sigma[at] = 1.4826 * _rolling_median(absd, a, b, 10)
+        return sigma
+    lo, hi = _median_bounds(absd, a, b, count)
+    sig_lo, sig_hi = 1.4826 * lo, 1.4826 * hi
+    size_at = size[at]
+    same = np.ones(len(at), dtype=bool)
+    with np.errstate(invalid="ignore"):
+        for j, (mult, fl) in enumerate(limits):
+            agree = (size_at > max(mult * sig_lo, fl)) == (size_at > max(mult * sig_hi, fl))
+            same &= agree if j else (agree | (at < k))
+    sigma[at[same]] = sig_lo
+    if not same.all():
+        sigma[at[~same]] = 1.4826 * _sliding_median(absd, a[~same], b[~same], 10)
     return sigma
+
+
+def _median_bounds(values: np.ndarray, a: np.ndarray, b: np.ndarray, count: np.ndarray) -> tuple[float, float]:
+    """Bounds on the median of the non-NaN values of every window ``[a_i, b_i)`` (``count``
+    of them; ``values`` not negative), from the part all windows share.
+
+    The shared part ``[max a, min b)`` holds ``c`` finite values, sorted ``S``; a window
+    holds ``x = count - c`` more. Its ``r``-th smallest value lies between ``S[r - x]``
+    (at least ``r - x + 1`` values of ``S`` are at or below it) and ``S[r]`` (the ``r + 1``
+    smallest of ``S`` are in the window). Its median, the mean of the ranks
+    ``(count - 1) // 2`` and ``count // 2``, lies between those ranks' bounds (rounding is
+    monotone), and all the windows' between the lowest and the highest of them, which
+    the window with the most values gives: ``S[(m - 1) // 2 - (m - c)]`` and ``S[m // 2]``
+    for ``m = max(count)``. Ranks outside ``S``: 0 and infinity.
+    """
+    start, stop = int(a.max()), int(b.min())
+    core = values[start:stop] if start < stop else values[:0]
+    s = np.sort(core[np.isfinite(core)])
+    c, m = len(s), int(count.max())
+    below, above = (m - 1) // 2 - (m - c), m // 2
+    return (float(s[below]) if below >= 0 else 0.0), (float(s[above]) if above < c else math.inf)
 
 
 def _resid_rows(tn: np.ndarray, k: int, s: QcSettings) -> tuple[int, int]:
@@ -1737,8 +1778,8 @@ def _resid_tail(rc: np.ndarray, t: np.ndarray, tn: np.ndarray, ok: np.ndarray, k
     clean = np.where(ok, rc, np.nan)
     d = _departures(rc, clean, tn, j0, half, memo, keep)
     absd = np.where(ok, np.abs(d), np.nan)
-    sigma = _noise_where_needed(absd, np.abs(d), tn, e0, half_noise, min(s.resid_suspect_floor, s.resid_fail_floor),
-                                memo is not None)
+    limits = ((s.resid_suspect_k, s.resid_suspect_floor), (s.resid_fail_k, s.resid_fail_floor))
+    sigma = _noise_where_needed(absd, np.abs(d), tn, e0, half_noise, limits, k, memo is not None)
     full = np.full(n, NOT_EVALUATED, dtype=np.int8)
     ev = np.isfinite(d) & np.isfinite(sigma)
     full[ev] = PASS
