@@ -189,6 +189,25 @@ def test_aggregate_is_worst_evaluated_test():
     assert list(qc.aggregate_flags(tests)) == [PASS, FAIL, NOT_EVALUATED, SUSPECT]
 
 
+@settings(max_examples=200, deadline=None)
+@given(rows=st.lists(st.lists(st.sampled_from([PASS, NOT_EVALUATED, SUSPECT, FAIL, MISSING]),
+                              min_size=len(qc.TESTS), max_size=len(qc.TESTS)), max_size=30))
+def test_the_array_aggregate_equals_the_rule_written_out(rows):
+    """``_aggregate`` (the QC context's, by table lookups) against the QARTOD aggregate
+    written out row by row: the worst evaluated test (4 > 3 > 1), 9 when a test other than
+    the gap test says the value is missing, else 2 when nothing was evaluated."""
+    table = np.array(rows, dtype=np.int8).reshape(len(rows), len(qc.TESTS))
+    gap = qc.TESTS.index("gap")
+    want = []
+    for row in rows:
+        codes = [c for j, c in enumerate(row) if c != NOT_EVALUATED and not (j == gap and c == MISSING)]
+        want.append(max(codes) if codes else NOT_EVALUATED)
+    got = qc._aggregate(table)
+    assert got.dtype == np.int8 and list(got) == want
+    frame = pd.DataFrame(table, columns=list(qc.TESTS))
+    assert list(qc.aggregate_flags(frame)) == want
+
+
 def test_override_wins_over_automatic_flag(calm):
     level, pred = calm
     idx = level.index[:3]

@@ -506,7 +506,7 @@ def jumps(resid: pd.Series, size: float, ratio: float, gap_limit: float) -> np.n
     t = index_seconds(resid.index)
     n = len(r)
     out = np.zeros(n, dtype=bool)
-    good = np.flatnonzero(np.isfinite(r))
+    good = np.isfinite(r).nonzero()[0]
     if good.size < 4:
         return out
     rv, tv = r[good], t[good]
@@ -589,7 +589,7 @@ def flat_line_test(level: pd.Series, tolerance: float, suspect_after: float, fai
         vmin = roll.min().to_numpy()
         # The record must reach back to t - duration: a sample exactly there, or the
         # one before the window no more than a gap away.
-        first = np.searchsorted(t, t - duration, side="left")
+        first = t.searchsorted(t - duration, side="left")
         exact = t[np.minimum(first, len(t) - 1)] == t - duration
         before = t[np.maximum(first - 1, 0)]
         covered = exact | ((first > 0) & (before >= t - duration - gap_limit))
@@ -637,7 +637,7 @@ def difference_on_arrays(t: np.ndarray, v: np.ndarray, to: np.ndarray, vo: np.nd
     the other sensor's samples with a value (no NaN)."""
     if len(to) == 0:
         return np.full(len(t), np.nan)
-    j = np.searchsorted(to, t)
+    j = to.searchsorted(t)
     # (np.minimum/np.maximum, not np.clip: the same integers without clip's overhead)
     jl = np.maximum(j - 1, 0)
     jr = np.minimum(j, len(to) - 1)
@@ -696,7 +696,7 @@ def _bursts(r: np.ndarray, t: np.ndarray, far: np.ndarray, burst: float, size: f
     out = np.zeros(len(r), dtype=bool)
     if not far.any():
         return out
-    pos = np.flatnonzero(far)
+    pos = far.nonzero()[0]
     brk = np.concatenate([[True], np.diff(pos) > 1])
     starts, ends = pos[brk], pos[np.concatenate([brk[1:], [True]])]
     for a, b in zip(starts, ends):
@@ -798,14 +798,22 @@ def _confirm(tests: pd.DataFrame, level: pd.Series, resid: pd.Series, other: pd.
     return tests
 
 
+# What each flag code weighs in the aggregate (NOT_EVALUATED nothing; the gap test's
+# MISSING nothing either), and the aggregate of a worst weight (nothing: NOT_EVALUATED).
+_WORTH = np.array([0, PASS, 0, SUSPECT, FAIL, 5, 6, 7, 8, MISSING], dtype=np.int8)
+_WORTH_GAP = np.where(np.arange(10) == MISSING, 0, _WORTH).astype(np.int8)
+_FLAG_OF = np.where(np.arange(10) == 0, NOT_EVALUATED, np.arange(10)).astype(np.int8)
+
+
 def _aggregate(table: np.ndarray) -> np.ndarray:
-    """:func:`aggregate_flags` of an int8 table whose columns are :data:`TESTS` in order."""
-    a = table.astype(np.int16)
-    g = TESTS.index("gap")
-    a[:, g] = np.where(a[:, g] == MISSING, NOT_EVALUATED, a[:, g])
-    a = np.where(a == NOT_EVALUATED, 0, a)
-    worst = a.max(axis=1) if a.shape[0] else np.zeros(0, dtype=np.int16)
-    return np.where(worst == 0, NOT_EVALUATED, worst).astype(np.int8)
+    """:func:`aggregate_flags` of an int8 table whose columns are :data:`TESTS` in order
+    (codes 0-9), by table lookups."""
+    if not table.shape[0]:
+        return np.full(0, NOT_EVALUATED, dtype=np.int8)
+    w = _WORTH[table]
+    g = _COL["gap"]
+    w[:, g] = _WORTH_GAP[table[:, g]]
+    return _FLAG_OF[w.max(axis=1)]
 
 
 def aggregate_flags(tests: pd.DataFrame) -> pd.Series:
@@ -941,7 +949,7 @@ def episodes(flags: pd.Series, at_least: int = SUSPECT, join_gap: float = 0.0) -
     cols = ["start", "end", "samples", "worst"]
     if not bad.any():
         return pd.DataFrame(columns=cols)
-    pos = np.flatnonzero(bad)
+    pos = bad.nonzero()[0]
     t = index_seconds(flags.index)[pos]
     brk = np.concatenate([[True], (np.diff(pos) > 1) & (np.diff(t) > join_gap)])
     gid = np.cumsum(brk) - 1
@@ -981,8 +989,8 @@ def _ns(seconds_: float) -> int:
 def _bounds(tn: np.ndarray, at: np.ndarray, lo: int, hi: int, lo_closed: bool = False) -> tuple:
     """Index ranges [a, b) of the samples with ``t - lo < tn <= t + hi`` (``<=`` on the left
     too with ``lo_closed``) for each ``t`` in ``at`` [ns]."""
-    a = np.searchsorted(tn, at - lo, side="left" if lo_closed else "right")
-    b = np.searchsorted(tn, at + hi, side="right")
+    a = tn.searchsorted(at - lo, side="left" if lo_closed else "right")
+    b = tn.searchsorted(at + hi, side="right")
     return a, b
 
 
@@ -1154,7 +1162,7 @@ def jump_flags(r: np.ndarray, t: np.ndarray, size: float, ratio: float, gap_limi
     """:func:`monitor.quality.checks.jumps` on plain arrays [bool]."""
     n = len(r)
     out = np.zeros(n, dtype=bool)
-    good = np.flatnonzero(np.isfinite(r))
+    good = np.isfinite(r).nonzero()[0]
     if good.size < 4:
         return out
     rv, tv = r[good], t[good]
@@ -1318,14 +1326,14 @@ def tail_table(tn: np.ndarray, v: np.ndarray, p: np.ndarray | None, s: QcSetting
 
     # 7 rate of change: against the last usable sample, limit from the previous window's sd
     roc = _kept(memo, "roc", n, k, keep)
-    todo = np.flatnonzero(roc == -1) + k
+    todo = (roc == -1).nonzero()[0] + k
     if len(todo):
         roc[todo - k] = _roc_rows(rc, t, tn, ok, todo, s)
     out["roc"] = _remember(memo, "roc", roc, n, k)
 
     # 8 flat line, on the level (its windows hold values only: every row kept)
     flat = _kept(memo, "flat", n, k, len(memo.ok) if memo is not None and keep else 0)
-    todo = np.flatnonzero(flat == -1) + k
+    todo = (flat == -1).nonzero()[0] + k
     if len(todo):
         flat[todo - k] = _flat_rows(v, t, tn, todo, s)
     out["flat"] = _remember(memo, "flat", flat, n, k)
@@ -1374,7 +1382,7 @@ def _reach(t: np.ndarray, tn: np.ndarray, k: int, s: QcSettings) -> int:
     # (the flat line runs on the levels, whatever the spike test says: no term here)
     earliest = min(back - s.roc_window, t[k] - s.gap_limit, t[k] - s.atten_window,
                    t[_resid_rows(tn, k, s)[1]] - s.resid_window / 2)
-    return int(np.searchsorted(t, earliest, side="left"))
+    return int(t.searchsorted(earliest, side="left"))
 
 
 def _spike_all(rc: np.ndarray, t: np.ndarray, s: QcSettings, memo: "ResidMemo | None", reach: int = 0) -> np.ndarray:
@@ -1389,7 +1397,7 @@ def _spike_all(rc: np.ndarray, t: np.ndarray, s: QcSettings, memo: "ResidMemo | 
         sp = spike_flags(rc, t, s.spike_suspect, s.spike_fail, s.gap_limit, s.jump_ratio)
     else:
         m = len(held)
-        fin = np.flatnonzero(np.isfinite(rc))
+        fin = np.isfinite(rc).nonzero()[0]
         old = fin[fin < m]
         # a row's flag depends on two rows either side and on two finite rows before and one after
         last = min(m - 3, int(old[-2]) if len(old) >= 2 else 0)
@@ -1459,14 +1467,14 @@ def _roc_few(rc: np.ndarray, t: np.ndarray, tn: np.ndarray, ok: np.ndarray, rows
     out = np.full(len(rows), NOT_EVALUATED, dtype=np.int8)
     width = _ns(s.roc_window)
     for i, row in enumerate(rows.tolist()):
-        usable = np.flatnonzero(ok[:row])
+        usable = ok[:row].nonzero()[0]
         if not len(usable) or row == 0:
             continue
         prev = int(usable[-1])
         dtt = t[row] - t[prev]
         if not (0 < dtt <= s.gap_limit and np.isfinite(rc[row])):
             continue
-        a = int(np.searchsorted(tn, tn[row - 1] - width, side="right"))
+        a = int(tn.searchsorted(tn[row - 1] - width, side="right"))
         w = rc[a:row][ok[a:row]]
         sd = _sample_std(w) if len(w) >= 10 else math.nan
         limit = max(s.roc_n_dev * sd if math.isfinite(sd) else 0.0, s.roc_floor)
@@ -1491,7 +1499,7 @@ def _flat_rows(v: np.ndarray, t: np.ndarray, tn: np.ndarray, rows: np.ndarray, s
     for duration, code in ((s.flat_suspect_after, SUSPECT), (s.flat_fail_after, FAIL)):
         a, b = _bounds(tn, tn[rows], _ns(duration), 0, lo_closed=True)
         vmax, vmin = _rolling_extremes(v, a, b, 2)
-        first = np.searchsorted(t, tt - duration, side="left")
+        first = t.searchsorted(tt - duration, side="left")
         exact = t[np.minimum(first, n - 1)] == tt - duration
         before = t[np.maximum(first - 1, 0)]
         covered = exact | ((first > 0) & (before >= tt - duration - s.gap_limit))
@@ -1509,12 +1517,12 @@ def _flat_row(v: np.ndarray, t: np.ndarray, tn: np.ndarray, row: int, s: QcSetti
     if not math.isfinite(vt):
         return NOT_EVALUATED
     n, out = len(v), PASS
-    b = int(np.searchsorted(tn, tn[row], side="right"))
+    b = int(tn.searchsorted(tn[row], side="right"))
     for duration, code in ((s.flat_suspect_after, SUSPECT), (s.flat_fail_after, FAIL)):
-        w = v[int(np.searchsorted(tn, tn[row] - _ns(duration), side="left")):b]
+        w = v[int(tn.searchsorted(tn[row] - _ns(duration), side="left")):b]
         if np.count_nonzero(np.isfinite(w)) < 2:
             continue
-        first = int(np.searchsorted(t, tt - duration, side="left"))
+        first = int(t.searchsorted(tt - duration, side="left"))
         covered = t[min(first, n - 1)] == tt - duration or (first > 0 and t[first - 1] >= tt - duration - s.gap_limit)
         if np.fmax.reduce(w) - vt < s.flat_tolerance and vt - np.fmin.reduce(w) < s.flat_tolerance and covered:
             out = code
@@ -1527,7 +1535,7 @@ def _atten_ranges(v: np.ndarray, p: np.ndarray, bad: np.ndarray, tn: np.ndarray,
     attenuation window (``(t - atten_window, t]``); rows before ``keep`` from the memo."""
     n = len(v)
     got = [_kept(memo, name, n, k, keep, float) for name in ("a_obs", "a_pred", "a_count")]
-    todo = np.flatnonzero(np.isnan(got[2])) + k
+    todo = np.isnan(got[2]).nonzero()[0] + k
     if 0 < len(todo) <= _FEW:  # each window on its own
         a, b = _bounds(tn, tn[todo], _ns(s.atten_window), 0)
         for row, ai, bi in zip(todo.tolist(), a.tolist(), b.tolist()):
@@ -1613,7 +1621,7 @@ class ResidMemo:
         m = len(self.ok)
         if m > len(ok):
             return 0
-        changed = np.flatnonzero(self.ok != ok[:m])
+        changed = (self.ok != ok[:m]).nonzero()[0]
         return int(changed[0]) if changed.size else m
 
 
@@ -1658,13 +1666,13 @@ def _departures(rc: np.ndarray, clean: np.ndarray, tn: np.ndarray, j0: int, half
     d = np.full(n, np.nan)
     first = j0
     # a window reaching the first row may have held rows the record has since lost
-    front = int(np.searchsorted(tn, tn[0] + half, side="left")) if n else 0
+    front = int(tn.searchsorted(tn[0] + half, side="left")) if n else 0
     if memo is not None and len(memo.ok) <= n and memo.start <= j0 and j0 >= front:
         m = len(memo.ok)
         c0 = keep
         if c0 < n:
             # rows whose window reaches a changed or a new row (the window is (t - half, t + half])
-            first = max(j0, int(np.searchsorted(tn, tn[c0] - half, side="left")) - 1)
+            first = max(j0, int(tn.searchsorted(tn[c0] - half, side="left")) - 1)
         else:
             first = n
         first = min(first, m)
@@ -1758,9 +1766,9 @@ def _resid_rows(tn: np.ndarray, k: int, s: QcSettings) -> tuple[int, int]:
     # Rows judged: the tail, and for the burst rule back to the last row more than one
     # burst before it (e0): a run of far departures through e0 that reaches the tail is too
     # long to fail, whatever came before e0.
-    e0 = max(int(np.searchsorted(tn, tn[k] - _ns(s.resid_burst), side="left")) - 1, 0)
+    e0 = max(int(tn.searchsorted(tn[k] - _ns(s.resid_burst), side="left")) - 1, 0)
     # rows whose departure enters the noise window of a row judged
-    j0 = max(0, int(np.searchsorted(tn, tn[e0] - _ns(s.resid_noise_window) // 2, side="left")) - 1)
+    j0 = max(0, int(tn.searchsorted(tn[e0] - _ns(s.resid_noise_window) // 2, side="left")) - 1)
     return e0, j0
 
 
@@ -2099,7 +2107,7 @@ def _write(db: Any, station: str, sensor: str, part: pd.DataFrame, stored: np.nd
     todo = np.ones(len(t), bool)
     if old and np.all(t[1:] > t[:-1]):
         old_arr = np.array(old, dtype=float)  # NULL -> NaN, never equal to a flag
-        pos = np.minimum(np.searchsorted(t, old_arr[:, 0]), len(t) - 1)
+        pos = np.minimum(t.searchsorted(old_arr[:, 0]), len(t) - 1)
         same = (t[pos] == old_arr[:, 0]) & (packed[pos] == old_arr[:, 1])
         todo[pos[same]] = False
     new = part["flag"].to_numpy()

@@ -297,7 +297,7 @@ class QcContext:
         :func:`monitor.quality.checks.run_station_qc` combines them; writes what changed."""
         single = {}
         for sn, h in self.sensors.items():
-            k = int(np.searchsorted(h.t, judge_from, side="left"))
+            k = int(h.t.searchsorted(judge_from, side="left"))
             table = _qc.tail_table(h.t * 1_000_000_000, h.v, h.p, s, now, position, k, h.memo)
             single[sn] = (k, table)
         results: dict[str, QcRows] = {}
@@ -325,10 +325,10 @@ class QcContext:
             flag = _qc._aggregate(table)
             tt = h.t[k:]
             sel = (tt >= write_from) & (tt <= end_t)
-            rows = np.flatnonzero(sel) + k
+            rows = sel.nonzero()[0] + k
             part, flag = table[sel], flag[sel]
             if len(h.ov_t):
-                pos = np.minimum(np.searchsorted(h.ov_t, h.t[rows]), len(h.ov_t) - 1)
+                pos = np.minimum(h.ov_t.searchsorted(h.t[rows]), len(h.ov_t) - 1)
                 hit = h.ov_t[pos] == h.t[rows]
                 flag = np.where(hit, h.ov_f[pos], flag).astype(np.int8)
             writes.append((sn, h, rows, part, flag))
@@ -343,7 +343,7 @@ class QcContext:
             for sn, h, rows, part, flag in writes:
                 self._write(db, station, sn, h, rows, part, flag, begin)
                 # a steady next pass (from end_t + 1) judges from here on
-                h.keep_from(int(np.searchsorted(h.t, _qc.pass_bounds(end_t + 1, s)[1] - 1)))
+                h.keep_from(int(h.t.searchsorted(_qc.pass_bounds(end_t + 1, s)[1] - 1)))
         return results
 
     @staticmethod
