@@ -1828,7 +1828,8 @@ def confirm_on_arrays(table: np.ndarray, t: np.ndarray, v: np.ndarray, r: np.nda
     Returns ``table`` itself when nothing changes, else a copy with the confirmed jumps
     suspect."""
     n = len(v)
-    if len(to) == 0 or n < 3:
+    f = table[:, _COL["spike"]]
+    if len(to) == 0 or n < 3 or not (f == FAIL).any():  # (only a failed spike may be confirmed)
         return table
     # difference and its curvature one row either side of the tail
     j0 = max(0, k - 1)
@@ -1840,7 +1841,6 @@ def confirm_on_arrays(table: np.ndarray, t: np.ndarray, v: np.ndarray, r: np.nda
         same = np.isfinite(curv) & np.isfinite(step) & (np.abs(curv) < s.spike_suspect) & \
             (np.abs(step) < s.spike_suspect)
     same = same[k - j0:]
-    f = table[:, _COL["spike"]]
     if not (same & (f == FAIL)).any():
         return table
     rc = np.array(r, dtype=float)
