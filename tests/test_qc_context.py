@@ -285,20 +285,22 @@ def test_the_sliding_median_equals_numpy_over_each_window(seed, suffixes):
 
 @settings(max_examples=200, deadline=None)
 @given(seed=st.integers(0, 2 ** 32 - 1), spread=st.sampled_from([0.002, 0.008, 0.03]),
-       step=st.sampled_from([0.001, 0.005]), judged=st.integers(2, 90))
-def test_the_noise_bound_gives_the_flags_of_the_exact_median(seed, spread, step, judged):
+       step=st.sampled_from([0.001, 0.005]), judged=st.integers(2, 90),
+       half_min=st.sampled_from([12 * 60, 10, 6]))
+def test_the_noise_bound_gives_the_flags_of_the_exact_median(seed, spread, step, judged, half_min):
     """The residual outlier test's sigma from order-statistic bounds (exact only where the
     bounds leave a flag open) gives the suspect and fail verdicts of the exact 25 h median,
     taken here with ``np.median`` over each centred window's finite values, one window at
     a time. Departures are drawn near the limits on purpose, values rounded to make ties;
-    the rows before ``k`` are judged on the fail limit only (the burst rule's)."""
+    the rows before ``k`` are judged on the fail limit only (the burst rule's). Windows of
+    25 h, and short ones where some hold fewer than 10 values (not evaluated)."""
     rng = np.random.default_rng(seed)
     n = 900
     tn = (1_760_000_000 + 60 * np.arange(n)).astype(np.int64) * 1_000_000_000
     absd = np.round(np.abs(rng.normal(0, spread, n)) / step) * step
     absd[rng.integers(0, n, 60)] = np.nan
     limits = ((6.0, 0.05), (12.0, 0.20))
-    half = 12 * 3600 * 1_000_000_000
+    half = half_min * 60 * 1_000_000_000  # 25 h windows, and short ones (some below 10 values)
     e0, k = n - judged, n - judged * 3 // 4
     size = absd.copy()
     # departures of the rows judged around each limit the exact sigma would set

@@ -208,6 +208,16 @@ def test_the_array_aggregate_equals_the_rule_written_out(rows):
     assert list(qc.aggregate_flags(frame)) == want
 
 
+@settings(max_examples=200, deadline=None)
+@given(steps=st.lists(st.sampled_from([60.0, 60.0, 60.0, 30.0, 61.5, 600.0]), min_size=1, max_size=40),
+       start=st.integers(1_600_000_000, 1_900_000_000))
+def test_the_median_step_equals_numpy_median_of_the_steps(steps, start):
+    """The attenuation test's sampling step against ``np.median(np.diff(t))`` (numpy as the
+    reference), for steady feeds (one step throughout) and irregular ones."""
+    t = start + np.concatenate([[0.0], np.cumsum(steps)])
+    assert qc._median_step(t) == float(np.median(np.diff(t)))
+
+
 def test_override_wins_over_automatic_flag(calm):
     level, pred = calm
     idx = level.index[:3]

@@ -813,7 +813,7 @@ def _aggregate(table: np.ndarray) -> np.ndarray:
     w = _WORTH[table]
     g = _COL["gap"]
     w[:, g] = _WORTH_GAP[table[:, g]]
-    return _FLAG_OF[w.max(axis=1)]
+    return _FLAG_OF[np.maximum.reduce(w, axis=1)]
 
 
 def aggregate_flags(tests: pd.DataFrame) -> pd.Series:
@@ -1237,6 +1237,9 @@ def _median_step(t: np.ndarray) -> float:
     ``np.partition`` as numpy's median does (the mean of the two middle steps for an even
     count, summed then halved as ``np.mean`` does), without ``np.median``'s overhead."""
     d = np.diff(t)
+    lo = np.minimum.reduce(d)
+    if lo == np.maximum.reduce(d):  # one step throughout (a steady feed): the median is it
+        return float(lo)
     half = len(d) // 2
     if len(d) % 2:
         return float(np.partition(d, half)[half])
@@ -1713,8 +1716,16 @@ def _noise_where_needed(absd: np.ndarray, size: np.ndarray, tn: np.ndarray, e0: 
     if not len(rows):
         return sigma
     a, b = _bounds(tn, tn[rows], half, half)
-    count = _counts(np.isfinite(absd), a, b)
-    enough = count >= 10
+    # (windows about sorted times: a and b never move back) Each window's values, NaN
+    # included, less the NaN of all of them: when that leaves 10 in every window, the
+    # counts themselves are not needed (``width`` stands in for them as an upper bound)
+    width = b - a
+    span = absd[int(a[0]):int(b[-1])]
+    if int(width.min()) - (len(span) - np.count_nonzero(span == span)) >= 10:
+        count, enough = width, np.ones(len(rows), dtype=bool)
+    else:
+        count = _counts(np.isfinite(absd), a, b)
+        enough = count >= 10
     floor = np.where(rows < k, limits[1][1], min(limits[0][1], limits[1][1]))
     with np.errstate(invalid="ignore"):
         need = enough & (size[rows] > floor)
@@ -1725,7 +1736,7 @@ def _noise_where_needed(absd: np.ndarray, size: np.ndarray, tn: np.ndarray, e0: 
     if not slide:
         sigma[at] = 1.4826 * _rolling_median(absd, a, b, 10)
         return sigma
-    lo, hi = _median_bounds(absd, a, b, count)
+    lo, hi = _median_bounds(absd, a, b, count)  # (an upper bound on the counts will do)
     sig_lo, sig_hi = 1.4826 * lo, 1.4826 * hi
     size_at = size[at]
     same = np.ones(len(at), dtype=bool)
@@ -1741,7 +1752,8 @@ def _noise_where_needed(absd: np.ndarray, size: np.ndarray, tn: np.ndarray, e0: 
 
 def _median_bounds(values: np.ndarray, a: np.ndarray, b: np.ndarray, count: np.ndarray) -> tuple[float, float]:
     """Bounds on the median of the non-NaN values of every window ``[a_i, b_i)`` (``count``
-    of them; ``values`` not negative), from the part all windows share.
+    of them, or more: the bounds only widen; ``values`` not negative), from the part all
+    windows share.
 
     The shared part ``[max a, min b)`` holds ``c`` finite values, sorted ``S``; a window
     holds ``x = count - c`` more. Its ``r``-th smallest value lies between ``S[r - x]``
@@ -1750,7 +1762,8 @@ def _median_bounds(values: np.ndarray, a: np.ndarray, b: np.ndarray, count: np.n
     ``(count - 1) // 2`` and ``count // 2``, lies between those ranks' bounds (rounding is
     monotone), and all the windows' between the lowest and the highest of them, which
     the window with the most values gives: ``S[(m - 1) // 2 - (m - c)]`` and ``S[m // 2]``
-    for ``m = max(count)``. Ranks outside ``S``: 0 and infinity.
+    for ``m = max(count)`` (a larger ``m`` moves both ranks outwards). Ranks outside
+    ``S``: 0 and infinity.
     """
     start, stop = int(a.max()), int(b.min())
     core = values[start:stop] if start < stop else values[:0]
