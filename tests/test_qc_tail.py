@@ -12,6 +12,7 @@ import numpy as np
 import pandas as pd
 import pytest
 
+from monitor.quality import checks as qc
 from monitor.quality.checks import QcSettings, run_tests
 from monitor.quality.checks import run_tests_tail
 from reference_qc import whole_record_tests
@@ -166,3 +167,17 @@ def test_each_pass_through_the_store_writes_the_flags_of_a_whole_record_run(tmp_
             prev = end
     finally:
         store.close()
+
+
+@pytest.mark.parametrize("position", [(50.0, -4.0), (90.0, 180.0), (90.5, 0.0), (0.0, -180.01), (float("nan"), 0.0),
+                                      (0.0, float("inf"))])
+def test_tail_location_verdict_equals_a_whole_record_run(position):
+    """The location test (QARTOD Test 3: latitude within +-90, longitude within +-180
+    degrees, both finite) of the tail, on positions at and past the limits."""
+    t, level, pred, rng = _record(4, hours=27.0)
+    series = _series(t, level)
+    whole = run_tests(series, None, pred, None, now=float(t[-1]), position=position)
+    tail = run_tests_tail(series, None, pred, None, now=float(t[-1]), position=position, start=len(t) - 3)
+    assert list(tail["location"]) == list(whole["location"].iloc[-3:])
+    good = abs(position[0]) <= 90 and abs(position[1]) <= 180
+    assert set(tail["location"]) == {qc.PASS if good else qc.FAIL}

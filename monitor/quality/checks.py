@@ -1292,7 +1292,8 @@ def tail_table(tn: np.ndarray, v: np.ndarray, p: np.ndarray | None, s: QcSetting
     if position is None:
         out["location"] = np.full(n - k, NOT_EVALUATED, dtype=np.int8)
     else:
-        good = _valid_position(np.asarray([position[0]], dtype=float), np.asarray([position[1]], dtype=float))[0]
+        lat, lon = float(position[0]), float(position[1])  # (one position: on floats)
+        good = math.isfinite(lat) and math.isfinite(lon) and abs(lat) <= 90.0 and abs(lon) <= 180.0
         out["location"] = np.full(n - k, PASS if good else FAIL, dtype=np.int8)
     gross = np.full(n, PASS, dtype=np.int8)
     if s.gross_suspect_min is not None:
