@@ -218,6 +218,21 @@ def test_the_median_step_equals_numpy_median_of_the_steps(steps, start):
     assert qc._median_step(t) == float(np.median(np.diff(t)))
 
 
+@settings(max_examples=600, deadline=None)
+@given(head=st.lists(st.booleans(), max_size=30), runs=st.integers(0, 30), tail=st.lists(st.booleans(), max_size=30),
+       count=st.integers(1, 5), data=st.data())
+def test_the_finite_rows_found_near_an_end_equal_those_of_the_whole_scan(head, runs, tail, count, data):
+    """The spike test's memo finds the n-th finite row before a row (and from the first row
+    on) by looking near it first: against ``np.flatnonzero(np.isfinite(...))`` of the whole
+    record, with runs of NaN longer than the first look."""
+    values = np.where(np.array(head + [True] * runs + tail, dtype=bool), np.nan, 1.0)
+    end = data.draw(st.integers(0, len(values)))
+    fin = np.flatnonzero(np.isfinite(values))
+    before = fin[fin < end]
+    assert qc._finite_back(values, end, count) == (int(before[-count]) if len(before) >= count else -1)
+    assert qc._finite_ahead(values, count) == (int(fin[count - 1]) if len(fin) >= count else -1)
+
+
 def test_override_wins_over_automatic_flag(calm):
     level, pred = calm
     idx = level.index[:3]

@@ -1401,13 +1401,13 @@ def _spike_all(rc: np.ndarray, t: np.ndarray, s: QcSettings, memo: "ResidMemo | 
         sp = spike_flags(rc, t, s.spike_suspect, s.spike_fail, s.gap_limit, s.jump_ratio)
     else:
         m = len(held)
-        fin = np.isfinite(rc).nonzero()[0]
-        old = fin[fin < m]
         # a row's flag depends on two rows either side and on two finite rows before and one after
-        last = min(m - 3, int(old[-2]) if len(old) >= 2 else 0)
+        second = _finite_back(rc, m, 2)
+        last = min(m - 3, second if second >= 0 else 0)
         first = 0
         if memo.lost:  # the record lost rows at its front: its first rows lost neighbours
-            first = max(3, int(fin[2]) + 1) if len(fin) > 2 else n
+            third = _finite_ahead(rc, 3)
+            first = max(3, third + 1) if third >= 0 else n
             if first <= reach:
                 first = 0  # none of them used by a window of the rows judged
         if first + 8 >= last:
@@ -1415,16 +1415,36 @@ def _spike_all(rc: np.ndarray, t: np.ndarray, s: QcSettings, memo: "ResidMemo | 
         else:
             sp = held.copy() if m == n else np.concatenate([held, np.zeros(n - m, dtype=held.dtype)])
             if first:
-                end = max(first + 3, int(fin[4]) + 1 if len(fin) > 4 else n)
+                fifth = _finite_ahead(rc, 5)
+                end = max(first + 3, fifth + 1 if fifth >= 0 else n)
                 sp[:first] = spike_flags(rc[:end], t[:end], s.spike_suspect, s.spike_fail, s.gap_limit,
                                          s.jump_ratio)[:first]
-            prior = fin[fin < last]
-            start = max(0, min(last - 3, int(prior[-3]) if len(prior) >= 3 else 0))
+            third = _finite_back(rc, last, 3)
+            start = max(0, min(last - 3, third if third >= 0 else 0))
             sp[last:] = spike_flags(rc[start:], t[start:], s.spike_suspect, s.spike_fail, s.gap_limit,
                                     s.jump_ratio)[last - start:]
     if memo is not None:
         memo.spike, memo.lost = sp, False
     return sp
+
+
+def _finite_back(values: np.ndarray, end: int, count: int) -> int:
+    """The row of the ``count``-th finite value before row ``end`` counting back (1: the
+    last one), -1 when there are fewer; looks at the few rows before ``end`` first."""
+    lo = max(0, end - 4 * count)
+    idx = np.isfinite(values[lo:end]).nonzero()[0]
+    if len(idx) < count and lo:
+        lo, idx = 0, np.isfinite(values[:end]).nonzero()[0]
+    return int(idx[-count]) + lo if len(idx) >= count else -1
+
+
+def _finite_ahead(values: np.ndarray, count: int) -> int:
+    """The row of the ``count``-th finite value from the first row on (1: the first one),
+    -1 when there are fewer; looks at the first few rows first."""
+    idx = np.isfinite(values[:4 * count]).nonzero()[0]
+    if len(idx) < count and len(values) > 4 * count:
+        idx = np.isfinite(values).nonzero()[0]
+    return int(idx[count - 1]) if len(idx) >= count else -1
 
 
 def _roc_rows(rc: np.ndarray, t: np.ndarray, tn: np.ndarray, ok: np.ndarray, rows: np.ndarray,
