@@ -1348,7 +1348,8 @@ def tail_table(tn: np.ndarray, v: np.ndarray, p: np.ndarray | None, s: QcSetting
     # 10 attenuated signal: observed range over the last tidal day against the predicted
     atten = np.full(n - k, NOT_EVALUATED, dtype=np.int8)
     if p is not None and n and n - k:
-        obs_range, pred_range, count = _atten_ranges(v, p, bad, tn, k, s, memo, keep)
+        # (ok: rc = v - p finite, no gross or spike failure -- v and p finite, as the ranges want)
+        obs_range, pred_range, count = _atten_ranges(v, p, ok, tn, k, s, memo, keep)
         step = _median_step(t) if n > 1 else s.atten_window
         span_ok = (t[tail] - t[0]) >= s.atten_window - step
         covered = span_ok & (count * step >= 0.8 * s.atten_window)
@@ -1553,25 +1554,26 @@ def _flat_row(v: np.ndarray, t: np.ndarray, tn: np.ndarray, row: int, s: QcSetti
     return out
 
 
-def _atten_ranges(v: np.ndarray, p: np.ndarray, bad: np.ndarray, tn: np.ndarray, k: int, s: QcSettings,
+def _atten_ranges(v: np.ndarray, p: np.ndarray, oka: np.ndarray, tn: np.ndarray, k: int, s: QcSettings,
                   memo: "ResidMemo | None", keep: int) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """Observed and predicted range [m] and the usable samples counted over each tail row's
-    attenuation window (``(t - atten_window, t]``); rows before ``keep`` from the memo."""
+    attenuation window (``(t - atten_window, t]``); rows before ``keep`` from the memo.
+    ``oka``: the samples the ranges take (level and prediction finite, no gross or spike
+    failure)."""
     n = len(v)
     got = [_kept(memo, name, n, k, keep, float) for name in ("a_obs", "a_pred", "a_count")]
     todo = np.isnan(got[2]).nonzero()[0] + k
     if 0 < len(todo) <= _FEW:  # each window on its own
         a, b = _bounds(tn, tn[todo], _ns(s.atten_window), 0)
         for row, ai, bi in zip(todo.tolist(), a.tolist(), b.tolist()):
-            oka = np.isfinite(v[ai:bi]) & np.isfinite(p[ai:bi]) & ~bad[ai:bi]
-            count = int(np.count_nonzero(oka))
+            w = oka[ai:bi]
+            count = int(np.count_nonzero(w))
             got[2][row - k] = float(count)
             if count >= 2:
-                ov, pv = v[ai:bi][oka], p[ai:bi][oka]
-                got[0][row - k] = ov.max() - ov.min()
-                got[1][row - k] = pv.max() - pv.min()
+                ov, pv = v[ai:bi][w], p[ai:bi][w]
+                got[0][row - k] = np.maximum.reduce(ov) - np.minimum.reduce(ov)
+                got[1][row - k] = np.maximum.reduce(pv) - np.minimum.reduce(pv)
     elif len(todo):
-        oka = np.isfinite(v) & np.isfinite(p) & ~bad
         a, b = _bounds(tn, tn[todo], _ns(s.atten_window), 0)
         ohi, olo = _rolling_extremes(np.where(oka, v, np.nan), a, b, 2)
         phi, plo = _rolling_extremes(np.where(oka, p, np.nan), a, b, 2)
