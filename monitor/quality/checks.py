@@ -1821,20 +1821,25 @@ def _resid_tail(rc: np.ndarray, t: np.ndarray, tn: np.ndarray, ok: np.ndarray, k
     e0, j0 = _resid_rows(tn, k, s)
     clean = np.where(ok, rc, np.nan)
     d = _departures(rc, clean, tn, j0, half, memo, keep)
-    absd = np.where(ok, np.abs(d), np.nan)
+    size = np.abs(d)
+    absd = np.where(ok, size, np.nan)
     limits = ((s.resid_suspect_k, s.resid_suspect_floor), (s.resid_fail_k, s.resid_fail_floor))
-    sigma = _noise_where_needed(absd, np.abs(d), tn, e0, half_noise, limits, k, memo is not None)
-    full = np.full(n, NOT_EVALUATED, dtype=np.int8)
-    ev = np.isfinite(d) & np.isfinite(sigma)
-    full[ev] = PASS
+    sigma = _noise_where_needed(absd, size, tn, e0, half_noise, limits, k, memo is not None)
+    # rows e0: only (sigma is NaN before e0: nothing there is evaluated)
+    de, se = size[e0:], sigma[e0:]
+    part = np.full(n - e0, NOT_EVALUATED, dtype=np.int8)
+    ev = np.isfinite(de) & np.isfinite(se)
+    part[ev] = PASS
     with np.errstate(invalid="ignore"):
-        full[ev & (np.abs(d) > np.maximum(s.resid_suspect_k * sigma, s.resid_suspect_floor))] = SUSPECT
-        far = ev & (np.abs(d) > np.maximum(s.resid_fail_k * sigma, s.resid_fail_floor))
-    full[far] = SUSPECT
+        part[ev & (de > np.maximum(s.resid_suspect_k * se, s.resid_suspect_floor))] = SUSPECT
+        far_e = ev & (de > np.maximum(s.resid_fail_k * se, s.resid_fail_floor))
+    part[far_e] = SUSPECT
+    far = np.zeros(n, dtype=bool)
+    far[e0:] = far_e
     # A run seen from e0 may have begun before it; one that reaches the tail spans more
     # than a burst from e0 anyway, so it is judged as in the whole record.
-    full[_bursts(rc, t, far, s.resid_burst, s.resid_fail_floor, s.jump_ratio, s.gap_limit)] = FAIL
-    return full[k:]
+    part[_bursts(rc, t, far, s.resid_burst, s.resid_fail_floor, s.jump_ratio, s.gap_limit)[e0:]] = FAIL
+    return part[k - e0:]
 
 
 def confirm_tail(frame: pd.DataFrame, level: pd.Series, r: np.ndarray, other: pd.Series | None,

@@ -254,6 +254,10 @@ class QcContext:
         held, for a single new row."""
         if model is None or not hasattr(model, "forget_before"):
             return _predict(model, t)
+        if len(t) == 1 and len(self.ahead_t):  # a steady pass's one new row
+            i = int(self.ahead_t.searchsorted(t[0]))
+            if i < len(self.ahead_t) and self.ahead_t[i] == t[0]:
+                return self.ahead_p[i:i + 1].copy()
         pos = np.searchsorted(self.ahead_t, t)
         if len(self.ahead_t) and np.all(pos < len(self.ahead_t)) and np.array_equal(self.ahead_t[pos], t):
             return self.ahead_p[pos]  # asked for before: the values the memo holds too
