@@ -33,6 +33,7 @@ store is refused by the store's lock.
 from __future__ import annotations
 
 import bisect
+import contextlib
 import datetime as dt
 import logging
 import logging.handlers
@@ -54,6 +55,7 @@ from apscheduler.schedulers.background import BackgroundScheduler
 from alerts import engine
 from alerts import rules
 from alerts.mail import outbox
+from alerts.transactions import savepoint
 from monitor import feeds as feeds_mod
 from monitor.errors import ConfigError, MonitorError
 from monitor.feeds.parse import parse_lines
@@ -838,7 +840,6 @@ class Daemon:
         while start_t <= end_t and not self.stop.is_set():
             chunk_end = min(end_t, start_t + PROCESS_CHUNK - 1)
             done += self.process_window(rt, start_t, chunk_end, now, latest=chunk_end == end_t)
-            self.store.set_meta(f"processed.{st.id}", str(chunk_end))
             start_t = end_t + 1 if chunk_end >= end_t else self._next_data(st.id, levels, chunk_end, end_t)
         return done
 
@@ -860,20 +861,59 @@ class Daemon:
                        latest: bool = True) -> int:
         """The processing pipeline for one station over [start_t, end_t] (data time), in order:
         quality control, residual and smoothed residual (into ``derived``), skew surge of
-        completed cycles, next high water forecast, alert rules.
+        completed cycles, next high water forecast, alert rules; then the station's
+        processing mark (``processed.STATION``) moves to ``end_t``.
 
         ``latest`` is false for the earlier chunks of a backfill or of late data: then
         no forecast is made and only the rules on samples run (the forecast, feed age
         and equipment faults describe the present, not that chunk).
+
+        A steady pass (:meth:`_steady`) stores all of that in one write transaction, the
+        forecaster's learn (which reads years of history) made before it; if the
+        transaction fails, what the station holds in memory on the strength of its writes
+        is forgotten (:meth:`_forget_pass`). Other passes commit each step on its own.
         """
-        st, store = rt.cfg, self.store
         now = (end_t if rt.replay_clock else time.time()) if now is None else now
+        self._take_new_model(rt)
+        self._maybe_fit(rt, now)
+        steady = self._steady(rt, start_t, end_t, latest)
+        if not steady:
+            new, queued = self._window(rt, start_t, end_t, now, latest, steady)
+            self.store.set_meta(f"processed.{rt.cfg.id}", str(end_t))
+        else:
+            # before the write transaction: a learn reads years of history (about a second),
+            # and the store's other writers (the outbox thread) must not wait for it
+            self._learn(rt, end_t, "barometer" in rt.cfg.sensors)
+            try:
+                with self.store.transaction():
+                    new, queued = self._window(rt, start_t, end_t, now, latest, steady)
+                    self.store.set_meta(f"processed.{rt.cfg.id}", str(end_t))
+            except BaseException:
+                self._forget_pass(rt)
+                raise
+        if queued:  # once committed: at once, not at the outbox's next turn, and off this thread
+            self.wake_outbox()
+        return new
+
+    @staticmethod
+    def _forget_pass(rt: StationRuntime) -> None:
+        """After a steady pass's transaction rolled back: forget what the station holds on
+        the strength of the pass's writes (QC's rows with their flags as stored, the derived
+        rows held), so the next pass reads them from the store. (The diagnostics' memory
+        needs no more: every pass marks its rows as changed, ``note_changed``, and the next
+        run reads them again.)"""
+        rt.qc_context.reset()
+        rt.tail = None
+
+    def _window(self, rt: StationRuntime, start_t: int, end_t: int, now: float, latest: bool,
+                steady: bool) -> tuple[int, bool]:
+        """:meth:`process_window`'s steps (``steady``: from memory, inside the pass's
+        transaction). Returns the samples processed and whether mail was queued."""
+        st, store = rt.cfg, self.store
         self.data_now = end_t if self.data_now is None else max(self.data_now, end_t)
         # quality control may write flags from a resid_window before the window on: the
         # diagnostics read those rows again at their next run
         rt.diag_memory.note_changed(start_t - (st.qc or self.qc.QcSettings()).resid_window)
-        self._take_new_model(rt)
-        self._maybe_fit(rt, now)
         model = rt.model
         rs = self.cfg.residual
         lookback = int((rs.median_minutes + rs.mean_minutes) * 60) + max(REWRITE_BACK, TREND_BACK)
@@ -893,12 +933,12 @@ class Daemon:
 
         # 2.-4. residual into ``derived``, skew surges, forecasts: in memory in the steady
         # state, the full way otherwise
-        if self._steady(rt, start_t, end_t, latest):
+        if steady:
             done = self._pass_in_memory(rt, start_t, end_t, lookback)
         else:
             done = self._pass_full(rt, start_t, end_t, lookback, latest)
         if done is None:
-            return 0
+            return 0, False
         new, samples, context = done
 
         # 5. alert rules, on the new samples and the hour before them (for the trend)
@@ -913,13 +953,18 @@ class Daemon:
             samples = judged_samples(samples)
             events = []
             try:
-                events = self.engine.evaluate(store.db, rt.view, rules, samples, now=now, context=ctx,
-                                              schema_ready=True)
+                # in the pass's transaction, a part of it: rules that fail undo their own writes alone
+                with contextlib.ExitStack() as part:
+                    if steady:
+                        part.enter_context(savepoint(store.conn))
+                    events = self.engine.evaluate(store.db, rt.view, rules, samples, now=now, context=ctx,
+                                                  schema_ready=True)
             except Exception:
+                if steady and not store.conn.in_transaction:
+                    raise  # the pass's transaction itself is gone (an I/O error): nothing of it is stored
                 log.exception("station %s: alert rules failed for this window", st.id)
-            if events:
-                self.wake_outbox()  # at once, not at the outbox's next turn, and off this thread
-        return new
+            return new, bool(events)
+        return new, False
 
     def _steady(self, rt: StationRuntime, start_t: int, end_t: int, latest: bool) -> bool:
         """Whether the window can be processed from what the station holds in memory: it
@@ -992,10 +1037,8 @@ class Daemon:
         changed = tail.differs(t[w], rows)
         new = int((t >= start_t).sum())
         self._ensure_extremes(rt, start_t, end_t)
-        # before the write transaction: a learn reads years of history (about a second), and
-        # the store's other writers (the outbox thread) must not wait for it
-        self._learn(rt, end_t, "barometer" in st.sensors)
-        with store.transaction():  # one commit for the derived rows, skew surges and forecasts
+        # the forecaster was learnt by process_window, before the pass's transaction
+        with store.transaction():  # the pass's (or, alone, one commit for these rows)
             store.write_derived_rows(st.id, t[w][changed], {c: v[changed] for c, v in rows.items()})
             tail.merge(t[w], rows, end_t - TAIL_KEEP)
             self._skew_surges(rt, start_t, end_t)
