@@ -1187,7 +1187,7 @@ class Daemon:
         # A feed is alive by its usable samples only: one that failed quality control, or is
         # stamped ahead of the clock, says nothing of the sea and must not end a silence.
         horizon = int(now + future_tolerance(st))
-        last = {r: self.store.last_time(st.id, r, until=horizon, usable=True) for r in st.sensors}
+        last = {r: self._last_usable(rt, r, end_t, horizon) for r in st.sensors}
         age = None if last.get("primary") is None else max(0.0, now - last["primary"])
         faults: list = []
         if self.diag is not None:
@@ -1205,6 +1205,24 @@ class Daemon:
         last = [f for f in fcs or [] if f["made_t"] == fcs[-1]["made_t"]]
         return self.engine.AlertContext(next_high_water=last[0] if last else None, feed_age=age, faults=faults,
                                         high_waters=list(fcs or []))
+
+    def _last_usable(self, rt: StationRuntime, sensor: str, end_t: int | None, horizon: int) -> int | None:
+        """A sensor's latest usable sample at or before ``horizon`` [Unix s], as
+        :meth:`Store.last_time` (``usable=True``) reads it, taken from the QC context that
+        has just judged the window ending at ``end_t`` when it can say: it holds every
+        stored row of a level sensor up to ``end_t`` with its flag as stored (rows after
+        ``end_t`` are not judged yet, their flag NULL: never usable). A newest usable row
+        held as 2 (not evaluated) may be NULL in the store; then, and when no row held is
+        usable, the store is asked."""
+        ctx = rt.qc_context
+        held = ctx.sensors.get(sensor)
+        if (held is not None and end_t is not None and ctx.end_t == end_t and ctx.key is not None
+                and ctx.key[0] is self.store.conn and len(held.t) and held.t[-1] <= horizon):
+            f = held.flag
+            usable = np.flatnonzero((f == qc.PASS) | (f == qc.NOT_EVALUATED) | (f == qc.SUSPECT))
+            if len(usable) and f[usable[-1]] != qc.NOT_EVALUATED:
+                return int(held.t[usable[-1]])
+        return self.store.last_time(rt.cfg.id, sensor, until=horizon, usable=True)
 
     def _diagnostic_faults(self, rt: StationRuntime, now: float, end_t: int | None) -> list[dict]:
         """Sensor drift (primary against backup, over ``qc.drift_window``) and clock offset
