@@ -824,7 +824,7 @@ class Daemon:
         # the parser refuses such lines, and one left in the store by an older version must
         # not drag the window (and with it the rules' clock) into the future.
         horizon = self._horizon(rt, now)
-        ends = [t for t in (self.store.last_time(st.id, r, until=horizon) for r in levels) if t is not None]
+        ends = [t for t in self.store.last_times(st.id, levels, until=horizon).values() if t is not None]
         if not ends:
             return 0
         end_t = max(ends)
@@ -1030,8 +1030,11 @@ class Daemon:
             pt, pv, _ = store.observation_arrays(st.id, "barometer", start_t - lookback - 3600, end_t + 3600)
             ok = np.isfinite(pv)
             pressure = (pt[ok].astype(float), pv[ok])
+        # the smoothed residual of the rows written and of the rules' samples only (the
+        # lookback's earlier rows are its windows' inputs)
         full = surge_residual.derive_arrays(t, value, flag, rt.predicted.predict_seconds(t), pressure,
-                                            rs.median_minutes, rs.mean_minutes, rs.reference_pressure)
+                                            rs.median_minutes, rs.mean_minutes, rs.reference_pressure,
+                                            smoothed_from=start_t - max(REWRITE_BACK, TREND_BACK))
         w = t >= start_t - REWRITE_BACK
         rows = {c: full[c][w] for c in DERIVED_COLUMNS}
         changed = tail.differs(t[w], rows)
