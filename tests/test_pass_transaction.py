@@ -137,3 +137,34 @@ def test_after_a_failed_transaction_the_station_forgets_what_it_held_of_the_pass
     # write neither, and the store would keep those samples unjudged and without residual.
     failed = _windows_run(tmp_path / "failed", m2_stations, fail=True)
     _same(failed, _windows_run(tmp_path / "whole", m2_stations, fail=False))
+
+
+def test_a_rule_that_fails_in_a_steady_pass_undoes_its_own_writes_alone(tmp_path, m2_stations, monkeypatch):
+    from alerts import engine
+
+    store, d, _ = _start(tmp_path, m2_stations)
+    rt = d.stations["port"]
+    real, fail = engine._save_state, []
+
+    def save_state(*a, **k):
+        real(*a, **k)  # written, then the rule fails after it
+        if fail:
+            raise RuntimeError("a rule's bug (test)")
+
+    monkeypatch.setattr(engine, "_save_state", save_state)
+    try:
+        for k in range(3):
+            t = T0 + HISTORY + k * minute
+            _write(store, np.array([t]))
+            fail[:] = [True] if k == 2 else []
+            before = _tables(store)
+            d.process_station(rt, now=t + 30)
+        after = _tables(store)
+    finally:
+        store.close()
+    assert after["alert_state"] == before["alert_state"]  # the failed rule's state as it was
+    # the rest of the pass is stored: the newest sample judged and its residual, the mark moved
+    assert after["processed"] == [(str(t),)] and before["processed"] == [(str(t - minute),)]
+    assert sorted(r[1] for r in after["qc_tests"] if r[2] == t) == ["backup", "primary"]
+    assert not any(r[2] == t for r in before["qc_tests"])
+    assert any(r[1] == t for r in after["derived"]) and not any(r[1] == t for r in before["derived"])

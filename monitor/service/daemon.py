@@ -33,7 +33,6 @@ store is refused by the store's lock.
 from __future__ import annotations
 
 import bisect
-import contextlib
 import datetime as dt
 import logging
 import logging.handlers
@@ -55,7 +54,6 @@ from apscheduler.schedulers.background import BackgroundScheduler
 from alerts import engine
 from alerts import rules
 from alerts.mail import outbox
-from alerts.transactions import savepoint
 from monitor import feeds as feeds_mod
 from monitor.errors import ConfigError, MonitorError
 from monitor.feeds.parse import parse_lines
@@ -953,12 +951,11 @@ class Daemon:
             samples = judged_samples(samples)
             events = []
             try:
-                # in the pass's transaction, a part of it: rules that fail undo their own writes alone
-                with contextlib.ExitStack() as part:
-                    if steady:
-                        part.enter_context(savepoint(store.conn))
-                    events = self.engine.evaluate(store.db, rt.view, rules, samples, now=now, context=ctx,
-                                                  schema_ready=True)
+                # in a steady pass's transaction: a rule that fails undoes its own writes alone
+                # (its savepoint in evaluate); what else escapes evaluate comes before any rule
+                # wrote, or after the transaction itself was lost
+                events = self.engine.evaluate(store.db, rt.view, rules, samples, now=now, context=ctx,
+                                              schema_ready=True)
             except Exception:
                 if steady and not store.conn.in_transaction:
                     raise  # the pass's transaction itself is gone (an I/O error): nothing of it is stored
