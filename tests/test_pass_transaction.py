@@ -147,9 +147,9 @@ def test_a_rule_that_fails_in_a_steady_pass_undoes_its_own_writes_alone(tmp_path
     real, fail = engine._save_state, []
 
     def save_state(*a, **k):
-        real(*a, **k)  # written, then the rule fails after it
-        if fail:
-            raise RuntimeError("a rule's bug (test)")
+        if fail:  # the rule's state row refused (its one write: a rule below every step)
+            raise sqlite3.OperationalError("database or disk is full (test)")
+        real(*a, **k)
 
     monkeypatch.setattr(engine, "_save_state", save_state)
     try:
