@@ -666,9 +666,11 @@ class PredictionMemo:
         return self._v[pos]
 
     def forget_before(self, t: float) -> None:
-        """Drop the times before ``t`` [Unix s]."""
-        keep = self._t >= int(t * 1e9)
-        self._t, self._v = self._t[keep], self._v[keep]
+        """Drop the times before ``t`` [Unix s] (the times are sorted: a slice from the first
+        kept, no copy)."""
+        first = int(np.searchsorted(self._t, int(t * 1e9), side="left"))
+        if first:
+            self._t, self._v = self._t[first:], self._v[first:]
 
 
 class Daemon:
@@ -1219,6 +1221,9 @@ class Daemon:
         if (held is not None and end_t is not None and ctx.end_t == end_t and ctx.key is not None
                 and ctx.key[0] is self.store.conn and len(held.t) and held.t[-1] <= horizon):
             f = held.flag
+            newest = int(f[-1])  # the usual case: the newest row held is usable
+            if newest in (qc.PASS, qc.SUSPECT):
+                return int(held.t[-1])
             usable = np.flatnonzero((f == qc.PASS) | (f == qc.NOT_EVALUATED) | (f == qc.SUSPECT))
             if len(usable) and f[usable[-1]] != qc.NOT_EVALUATED:
                 return int(held.t[usable[-1]])
