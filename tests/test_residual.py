@@ -4,8 +4,6 @@ from __future__ import annotations
 import numpy as np
 import pandas as pd
 import pytest
-from hypothesis import given, settings
-from hypothesis import strategies as st
 
 from monitor.surge import residual as R
 from units import mm, minute, hour
@@ -259,21 +257,3 @@ def test_high_waters_within_equals_a_groupby_over_the_stands():
         want = _high_waters_by_groupby(ext, now, now + pd.Timedelta(hours=13))
         got = R.high_waters_within(ext, now, now + pd.Timedelta(hours=13))
         assert list(got["time"]) == list(want["time"]) and list(got["level"]) == list(want["level"])
-
-
-@settings(max_examples=150, deadline=None)
-@given(seed=st.integers(0, 2 ** 32 - 1), n=st.integers(1, 160), med=st.sampled_from([30, 7.5, 15, 1]),
-       mean=st.sampled_from([10, 0, 20, 3]), cut=st.floats(-0.2, 1.2))
-def test_smoothing_only_from_a_time_on_equals_the_whole_smoothing_there_bit_for_bit(seed, n, med, mean, cut):
-    # the daemon's pass wants the smoothed residual of its last 75 minutes only: the windows
-    # of the samples before are not computed, and what is computed is the whole run's
-    rng = np.random.default_rng(seed)
-    t = 1_760_000_000 + np.cumsum(rng.choice([20, 60, 60, 60, 90, 600, 3000], size=n))
-    r = 0.3 * np.sin(t / 5000.0) + rng.normal(0, 0.02, n)
-    r[rng.random(n) < 0.1] = np.nan
-    usable = rng.random(n) > 0.15
-    from_s = int(t[0] + cut * (t[-1] - t[0]))
-    whole = R.smooth_residual_arrays(t * 1_000_000_000, r, usable, med, mean)
-    part = R.smooth_residual_arrays(t * 1_000_000_000, r, usable, med, mean, from_ns=from_s * 1_000_000_000)
-    wanted = t >= from_s
-    assert np.array_equal(part[wanted], whole[wanted], equal_nan=True)

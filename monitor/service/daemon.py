@@ -1029,11 +1029,8 @@ class Daemon:
             pt, pv, _ = store.observation_arrays(st.id, "barometer", start_t - lookback - 3600, end_t + 3600)
             ok = np.isfinite(pv)
             pressure = (pt[ok].astype(float), pv[ok])
-        # the smoothed residual of the rows written and of the rules' samples only (the
-        # lookback's earlier rows are its windows' inputs)
         full = surge_residual.derive_arrays(t, value, flag, rt.predicted.predict_seconds(t), pressure,
-                                            rs.median_minutes, rs.mean_minutes, rs.reference_pressure,
-                                            smoothed_from=start_t - max(REWRITE_BACK, TREND_BACK))
+                                            rs.median_minutes, rs.mean_minutes, rs.reference_pressure)
         w = t >= start_t - REWRITE_BACK
         rows = {c: full[c][w] for c in DERIVED_COLUMNS}
         changed = tail.differs(t[w], rows)

@@ -166,8 +166,7 @@ def derive(observed: pd.DataFrame, predicted: np.ndarray | None, pressure: pd.Se
 
 
 def smooth_residual_arrays(t_ns: np.ndarray, resid: np.ndarray, usable: np.ndarray,
-                           median_minutes: float = 30.0, mean_minutes: float = 10.0,
-                           from_ns: int | None = None) -> np.ndarray:
+                           median_minutes: float = 30.0, mean_minutes: float = 10.0) -> np.ndarray:
     """:func:`smooth_residual` on plain arrays, for the daemon's pass over a few hours.
 
     The same trailing windows (a sample's window holds the usable samples after
@@ -184,11 +183,6 @@ def smooth_residual_arrays(t_ns: np.ndarray, resid: np.ndarray, usable: np.ndarr
         Residual [m].
     usable : array of bool
         Samples that may enter (QC flag not fail or missing).
-    from_ns : int, optional
-        Only the samples at or after this time [ns since 1970, UTC] are wanted: the
-        windows of the earlier ones are not computed, and their values mean nothing
-        (mostly NaN). The values from then on are those of the whole computation, bit
-        for bit.
 
     Returns
     -------
@@ -202,14 +196,9 @@ def smooth_residual_arrays(t_ns: np.ndarray, resid: np.ndarray, usable: np.ndarr
     if not valid.any():
         return out
     tv, rv = t_ns[valid], r[valid]
-    first_mean = first_median = 0  # the first usable samples whose windows are wanted
-    if from_ns is not None:
-        first_mean = max(int(np.searchsorted(tv, from_ns, side="right")) - 1, 0)
-        first_median = int(np.searchsorted(tv, tv[first_mean] - _minutes_ns(mean_minutes), side="right")) \
-            if mean_minutes > 0 else first_mean
-    med = _trailing(tv, rv, _minutes_ns(median_minutes), _window_median, first_median)
+    med = _trailing(tv, rv, _minutes_ns(median_minutes), _window_median)
     if mean_minutes > 0:
-        med = _trailing(tv, med, _minutes_ns(mean_minutes), _window_mean, first_mean)
+        med = _trailing(tv, med, _minutes_ns(mean_minutes), _window_mean)
     last = np.searchsorted(tv, t_ns, side="right") - 1
     seen = last >= 0
     out[seen] = med[last[seen]]
@@ -218,22 +207,15 @@ def smooth_residual_arrays(t_ns: np.ndarray, resid: np.ndarray, usable: np.ndarr
     return out
 
 
-def _trailing(t_ns: np.ndarray, v: np.ndarray, width_ns: int, reduce, first: int = 0) -> np.ndarray:
+def _trailing(t_ns: np.ndarray, v: np.ndarray, width_ns: int, reduce) -> np.ndarray:
     """``reduce`` over each sample's trailing window ``(t - width, t]``, all windows at once:
-    the rows of a matrix holding each window's values, newest first (``fill`` after them).
-    Only the windows of samples ``first`` on are computed (the values before are NaN), in a
-    matrix as wide as the whole one (so each row's reduction is the whole one's, bit for bit)."""
+    the rows of a matrix holding each window's values, newest first (``fill`` after them)."""
     i = np.arange(len(v))
     n = i - np.searchsorted(t_ns, t_ns - width_ns, side="right") + 1
-    j = i[first:, None] - np.arange(int(n.max()))[None, :]
-    i, n = i[first:], n[first:]
+    j = i[:, None] - np.arange(int(n.max()))[None, :]
     outside = j < (i - n + 1)[:, None]
     m = v[np.maximum(j, 0)]
-    if not first:
-        return reduce(m, outside, n)
-    out = np.full(len(v), np.nan)
-    out[first:] = reduce(m, outside, n)
-    return out
+    return reduce(m, outside, n)
 
 
 @functools.lru_cache(maxsize=16)
@@ -256,8 +238,7 @@ def _window_mean(m: np.ndarray, outside: np.ndarray, n: np.ndarray) -> np.ndarra
 
 def derive_arrays(t: np.ndarray, observed: np.ndarray, flag: np.ndarray, predicted: np.ndarray,
                   pressure: tuple[np.ndarray, np.ndarray] | None = None, median_minutes: float = 30.0,
-                  mean_minutes: float = 10.0, reference_hpa: float = REFERENCE_HPA,
-                  smoothed_from: int | None = None) -> dict[str, np.ndarray]:
+                  mean_minutes: float = 10.0, reference_hpa: float = REFERENCE_HPA) -> dict[str, np.ndarray]:
     """:func:`derive` on plain arrays (the daemon's pass over its last hours).
 
     Parameters
@@ -268,9 +249,6 @@ def derive_arrays(t: np.ndarray, observed: np.ndarray, flag: np.ndarray, predict
         Level [m, station datum], aggregate QARTOD flag, predicted tide [m].
     pressure : (times [Unix s], readings [hPa]), optional
         Barometer readings, NaN readings left out.
-    smoothed_from : int, optional
-        The smoothed residual is wanted only from this time on [Unix s] (before it, its
-        values mean nothing: :func:`smooth_residual_arrays`' ``from_ns``).
 
     Returns
     -------
@@ -283,8 +261,7 @@ def derive_arrays(t: np.ndarray, observed: np.ndarray, flag: np.ndarray, predict
     res = residual(obs, pred)
     flag = np.asarray(flag)
     usable = (flag != _UNUSABLE[0]) & (flag != _UNUSABLE[1]) & np.isfinite(res)
-    sm = smooth_residual_arrays(t * 1_000_000_000, res, usable, median_minutes, mean_minutes,
-                                None if smoothed_from is None else int(smoothed_from) * 1_000_000_000)
+    sm = smooth_residual_arrays(t * 1_000_000_000, res, usable, median_minutes, mean_minutes)
     ib = inverse_barometer(pressure_at_seconds(t.astype(float), *pressure), reference_hpa) \
         if pressure is not None else np.full(len(t), np.nan)
     return {"observed": obs, "predicted": pred, "residual": res, "smoothed": sm, "barometric": ib, "flag": flag}
