@@ -3,7 +3,8 @@
 State lives in the store, not the process: ``alert_state`` holds each rule's state
 machine (keyed by station and rule id) with a watermark time, and ``alert_episodes``
 one row per episode. A station's rules are evaluated in one write transaction, each rule
-in a savepoint of its own (:func:`alerts.transactions.savepoint`): a rule's state change,
+in a savepoint of its own (:class:`alerts.transactions.LazySavepoint`, set before a rule
+writes more than its state row, one statement applied whole or not at all): a rule's state change,
 episode change and queued messages are committed together, so a crash or restart at any
 instant neither repeats a message already queued nor forgets an episode in progress, and
 a rule that fails leaves nothing of its own written while the others' writes are kept;
@@ -30,7 +31,7 @@ import pandas as pd
 from alerts.mail.forms import compose, form_for
 from alerts.mail.outbox import enqueue, ensure_outbox_schema, unix_seconds
 from alerts.rules import Event, Rule, RuleState, SAMPLE_KINDS, StationView, advance, with_watermark
-from alerts.transactions import savepoint, transaction
+from alerts.transactions import LazySavepoint, transaction
 
 log = logging.getLogger(__name__)
 
@@ -527,7 +528,8 @@ def evaluate(db, station: StationView, rules: Iterable[Rule], samples: pd.DataFr
 
     Notes
     -----
-    The rules run in one write transaction, each in a savepoint: a rule that raises is
+    The rules run in one write transaction, each in a savepoint (set only when the rule
+    writes more than its state row, which one statement writes whole or not at all): a rule that raises is
     logged with its traceback and leaves nothing of its own written (its state, episodes
     and messages stay as they were, so it is evaluated again next time); the other rules'
     writes are committed.
@@ -549,8 +551,11 @@ def evaluate(db, station: StationView, rules: Iterable[Rule], samples: pd.DataFr
         rows = _state_rows(db, station.id, rules)
         for rule in rules:
             try:
-                with savepoint(conn):  # a rule that fails undoes its own writes alone
-                    out.extend(_evaluate_rule(db, station, rule, samples, t_all, t_now, context, clock, rows))
+                # a rule that fails undoes its own writes alone: a savepoint before a rule's
+                # writes, unless it writes its state row alone (one statement, whole or none)
+                with LazySavepoint(conn) as part:
+                    out.extend(_evaluate_rule(db, station, rule, samples, t_all, t_now, context, clock, rows,
+                                              part))
             except Exception:
                 if not conn.in_transaction:
                     raise  # the transaction itself is gone (an I/O error): nothing more can go in it
@@ -560,7 +565,11 @@ def evaluate(db, station: StationView, rules: Iterable[Rule], samples: pd.DataFr
 
 
 def _evaluate_rule(db, station: StationView, rule: Rule, samples: Samples, t_all: np.ndarray,
-                   t_now: int, context: AlertContext, clock=None, rows: dict[str, dict] | None = None) -> list[dict]:
+                   t_now: int, context: AlertContext, clock=None, rows: dict[str, dict] | None = None,
+                   part: LazySavepoint | None = None) -> list[dict]:
+    """One rule over the samples and the context; its writes in ``part``, begun before
+    any write but a lone state row."""
+    begin = part.begin if part is not None else (lambda: None)
     state, episode_id = _load_state(db, station.id, rule, rows)
     wm = state.watermark if state.watermark is not None else -(2 ** 62)
     results: list[dict] = []
@@ -584,6 +593,7 @@ def _evaluate_rule(db, station: StationView, rule: Rule, samples: Samples, t_all
                 if len(ahead) == 0:
                     break
                 k += int(ahead[0])
+            begin()  # events, episodes and messages may be written from here on
             i = counted[k]
             t, v = int(t_all[i]), float(values_all[i])
             hold = state.level >= 0 and _reaching(rule, context, t) is not None
@@ -607,6 +617,7 @@ def _evaluate_rule(db, station: StationView, rule: Rule, samples: Samples, t_all
         if value is None:
             state = with_watermark(state, t_now)
         else:
+            begin()  # events, episodes and messages may be written from here on
             state, events = advance(rule, state, t_now, value)
             ok_all = _counted(rule, samples)
             episode_id = _record_events(db, station, rule, events, episode_id, samples, t_all, ok_all, t_now,
@@ -617,6 +628,8 @@ def _evaluate_rule(db, station: StationView, rule: Rule, samples: Samples, t_all
                 results += more
             if episode_id is not None:
                 _track_peak(db, rule, episode_id, t_now, value)
+    if announced is not None or ((state != before or results) and state.level >= 0):
+        begin()  # more than the state row
     if state != before or results:
         if state.level >= 0 and episode_id is None:
             # An episode in progress without a row (state from a migration): give it one.

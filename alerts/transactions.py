@@ -11,7 +11,7 @@ import contextlib
 import sqlite3
 from typing import Any, Iterator
 
-__all__ = ["savepoint", "transaction"]
+__all__ = ["LazySavepoint", "savepoint", "transaction"]
 
 
 @contextlib.contextmanager
@@ -90,3 +90,39 @@ def savepoint(target: Any) -> Iterator[sqlite3.Connection]:
             conn.execute(f"RELEASE {_SAVEPOINT}")
         raise
     conn.execute(f"RELEASE {_SAVEPOINT}")
+
+
+class LazySavepoint:
+    """:func:`savepoint` for a part that mostly writes one statement or none: the savepoint
+    is set only when the part calls :meth:`begin`, before the first of several writes. A
+    part that never calls it writes at most one statement, as its last step, which SQLite
+    applies whole or not at all, so an exception leaves nothing of it; a part that did is
+    undone on an exception (``ROLLBACK TO``) and the exception raised again, as
+    :func:`savepoint` does. Use it inside a transaction open on ``conn``.
+
+    Parameters
+    ----------
+    conn : sqlite3.Connection
+    """
+
+    def __init__(self, conn: sqlite3.Connection):
+        self.conn, self.set = conn, False
+
+    def begin(self) -> None:
+        """Set the savepoint (once): several writes may follow."""
+        if not self.set and self.conn.in_transaction:
+            self.conn.execute(f"SAVEPOINT {_SAVEPOINT}")
+            self.set = True
+
+    def __enter__(self) -> "LazySavepoint":
+        return self
+
+    def __exit__(self, kind: Any, exc: Any, tb: Any) -> bool:
+        if self.set:
+            self.set = False
+            if kind is None:
+                self.conn.execute(f"RELEASE {_SAVEPOINT}")
+            elif self.conn.in_transaction:  # (an I/O error may have ended the whole transaction already)
+                self.conn.execute(f"ROLLBACK TO {_SAVEPOINT}")
+                self.conn.execute(f"RELEASE {_SAVEPOINT}")
+        return False

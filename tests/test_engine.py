@@ -357,3 +357,18 @@ def test_the_state_columns_text_is_json_dumps(values):
     for v in (values, [1], [1.0], [True], [None, 1], [None, 1.0]):
         assert engine_mod._json_list(tuple(v)) == json.dumps(list(v))
         assert engine_mod._json_tuple(json.dumps(list(v))) == tuple(v)
+
+
+def test_quiet_rules_write_their_state_rows_without_savepoints(db):
+    # below every step, a rule writes its state row alone (one statement): no savepoint is
+    # set for it; a rule that opens an episode writes in one
+    raw = [{**SURGE, "hold": 0}, QUAY_EDGE]
+    said = []
+    db.conn.set_trace_callback(said.append)
+    evaluate(db, STATION, rules(*raw), frame(np.zeros(10)), now=T0 + pd.Timedelta(minutes=30))
+    assert [s.split()[0] for s in said if s.split()[0] in ("SAVEPOINT", "INSERT", "UPDATE")] == ["INSERT", "INSERT"]
+    said.clear()
+    events = evaluate(db, STATION, rules(*raw), frame(np.r_[np.zeros(10), [0.5] * 10]),
+                      now=T0 + pd.Timedelta(minutes=30))
+    assert [(e["rule"], e["event"]) for e in events] == [("surge", "opened")]
+    assert sum(s.startswith("SAVEPOINT") for s in said) == 1

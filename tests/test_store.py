@@ -143,6 +143,20 @@ def test_duplicates_alone_touch_nothing(store):
     assert store.take_touched("st") == 1735689720
 
 
+def test_the_last_times_of_several_sensors_read_at_once_are_each_sensors_newest_time(store):
+    t = np.array([100, 160, 220, 5_000])  # the last one stamped ahead of the clocks below
+    store.write_batch("st", "primary", t, np.full(len(t), 1.0))
+    store.write_batch("st", "backup", t[:2], np.full(2, 1.0))
+    store.write_batch("other", "primary", np.array([300]), np.array([1.0]))
+    for until in (50, 100, 159, 160, 1_000, 10_000):
+        got = store.last_times("st", ["primary", "backup", "barometer"], until=until)
+        want = {s: store.conn.execute("SELECT max(t) FROM observations WHERE station = 'st' AND sensor = ? "
+                                      "AND t <= ?", (s, until)).fetchone()[0] for s in got}
+        assert got == want
+    assert store.last_times("st", ["primary", "backup"], until=1_000) == {"primary": 220, "backup": 160}
+    assert store.last_times("st", [], until=1_000) == {}
+
+
 def test_the_array_readers_give_what_the_frame_readers_give(store):
     # the daemon's steady pass reads arrays; the rest of the program reads frames
     _write(store)
@@ -159,3 +173,7 @@ def test_the_array_readers_give_what_the_frame_readers_give(store):
     for c in want.columns:
         assert np.array_equal(cols[c], want[c].to_numpy(), equal_nan=True)
     assert np.isnan(cols["residual"][1]) and np.isnan(cols["smoothed"]).all()
+    # a value that is not finite is stored as NULL (read back as NaN), as NaN is
+    store.write_derived_rows("st", t[:2], {"observed": np.array([np.inf, 1.5]), "residual": np.array([0.1, -np.inf])})
+    assert store.conn.execute("SELECT observed, residual FROM derived WHERE station = 'st' AND t <= ? ORDER BY t",
+                              (int(t[1]),)).fetchall() == [(None, 0.1), (1.5, None)]

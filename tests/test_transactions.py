@@ -5,7 +5,7 @@ import sqlite3
 
 import pytest
 
-from alerts.transactions import savepoint, transaction
+from alerts.transactions import LazySavepoint, savepoint, transaction
 
 
 @pytest.fixture
@@ -92,3 +92,29 @@ def test_a_commit_that_fails_leaves_nothing_open_and_nothing_kept(conn):
     with transaction(conn):  # the next transaction is a fresh one
         conn.execute("INSERT INTO x VALUES ('next')")
     assert not conn.in_transaction and _keys(conn) == ["next"]
+
+
+def test_a_lazy_part_sets_its_savepoint_only_once_begun_and_then_undoes_its_writes(conn):
+    said = []
+    conn.set_trace_callback(said.append)
+    with transaction(conn):
+        conn.execute("INSERT INTO x VALUES ('before')")
+        with LazySavepoint(conn):  # one statement, never begun: no savepoint
+            conn.execute("INSERT INTO x VALUES ('alone')")
+        assert not any(s.startswith("SAVEPOINT") for s in said)
+        with pytest.raises(sqlite3.IntegrityError):  # one statement that fails: nothing of it
+            with LazySavepoint(conn):
+                conn.execute("INSERT INTO x VALUES ('new'), ('before')")
+        with pytest.raises(RuntimeError):  # begun, two writes, then a failure: both undone
+            with LazySavepoint(conn) as part:
+                part.begin()
+                conn.execute("INSERT INTO x VALUES ('one')")
+                conn.execute("INSERT INTO x VALUES ('two')")
+                raise RuntimeError("invented")
+        with LazySavepoint(conn) as part:  # begun and done: kept
+            part.begin()
+            conn.execute("INSERT INTO x VALUES ('three')")
+            conn.execute("INSERT INTO x VALUES ('four')")
+        assert conn.in_transaction
+    assert _keys(conn) == ["alone", "before", "four", "three"]
+    assert sum(s.startswith("SAVEPOINT") for s in said) == 2

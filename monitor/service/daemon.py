@@ -666,9 +666,11 @@ class PredictionMemo:
         return self._v[pos]
 
     def forget_before(self, t: float) -> None:
-        """Drop the times before ``t`` [Unix s]."""
-        keep = self._t >= int(t * 1e9)
-        self._t, self._v = self._t[keep], self._v[keep]
+        """Drop the times before ``t`` [Unix s] (the times are sorted: a slice from the first
+        kept, no copy)."""
+        first = int(np.searchsorted(self._t, int(t * 1e9), side="left"))
+        if first:
+            self._t, self._v = self._t[first:], self._v[first:]
 
 
 class Daemon:
@@ -822,7 +824,7 @@ class Daemon:
         # the parser refuses such lines, and one left in the store by an older version must
         # not drag the window (and with it the rules' clock) into the future.
         horizon = self._horizon(rt, now)
-        ends = [t for t in (self.store.last_time(st.id, r, until=horizon) for r in levels) if t is not None]
+        ends = [t for t in self.store.last_times(st.id, levels, until=horizon).values() if t is not None]
         if not ends:
             return 0
         end_t = max(ends)
@@ -838,7 +840,6 @@ class Daemon:
         while start_t <= end_t and not self.stop.is_set():
             chunk_end = min(end_t, start_t + PROCESS_CHUNK - 1)
             done += self.process_window(rt, start_t, chunk_end, now, latest=chunk_end == end_t)
-            self.store.set_meta(f"processed.{st.id}", str(chunk_end))
             start_t = end_t + 1 if chunk_end >= end_t else self._next_data(st.id, levels, chunk_end, end_t)
         return done
 
@@ -860,20 +861,59 @@ class Daemon:
                        latest: bool = True) -> int:
         """The processing pipeline for one station over [start_t, end_t] (data time), in order:
         quality control, residual and smoothed residual (into ``derived``), skew surge of
-        completed cycles, next high water forecast, alert rules.
+        completed cycles, next high water forecast, alert rules; then the station's
+        processing mark (``processed.STATION``) moves to ``end_t``.
 
         ``latest`` is false for the earlier chunks of a backfill or of late data: then
         no forecast is made and only the rules on samples run (the forecast, feed age
         and equipment faults describe the present, not that chunk).
+
+        A steady pass (:meth:`_steady`) stores all of that in one write transaction, the
+        forecaster's learn (which reads years of history) made before it; if the
+        transaction fails, what the station holds in memory on the strength of its writes
+        is forgotten (:meth:`_forget_pass`). Other passes commit each step on its own.
         """
-        st, store = rt.cfg, self.store
         now = (end_t if rt.replay_clock else time.time()) if now is None else now
+        self._take_new_model(rt)
+        self._maybe_fit(rt, now)
+        steady = self._steady(rt, start_t, end_t, latest)
+        if not steady:
+            new, queued = self._window(rt, start_t, end_t, now, latest, steady)
+            self.store.set_meta(f"processed.{rt.cfg.id}", str(end_t))
+        else:
+            # before the write transaction: a learn reads years of history (about a second),
+            # and the store's other writers (the outbox thread) must not wait for it
+            self._learn(rt, end_t, "barometer" in rt.cfg.sensors)
+            try:
+                with self.store.transaction():
+                    new, queued = self._window(rt, start_t, end_t, now, latest, steady)
+                    self.store.set_meta(f"processed.{rt.cfg.id}", str(end_t))
+            except BaseException:
+                self._forget_pass(rt)
+                raise
+        if queued:  # once committed: at once, not at the outbox's next turn, and off this thread
+            self.wake_outbox()
+        return new
+
+    @staticmethod
+    def _forget_pass(rt: StationRuntime) -> None:
+        """After a steady pass's transaction rolled back: forget what the station holds on
+        the strength of the pass's writes (QC's rows with their flags as stored, the derived
+        rows held), so the next pass reads them from the store. (The diagnostics' memory
+        needs no more: every pass marks its rows as changed, ``note_changed``, and the next
+        run reads them again.)"""
+        rt.qc_context.reset()
+        rt.tail = None
+
+    def _window(self, rt: StationRuntime, start_t: int, end_t: int, now: float, latest: bool,
+                steady: bool) -> tuple[int, bool]:
+        """:meth:`process_window`'s steps (``steady``: from memory, inside the pass's
+        transaction). Returns the samples processed and whether mail was queued."""
+        st, store = rt.cfg, self.store
         self.data_now = end_t if self.data_now is None else max(self.data_now, end_t)
         # quality control may write flags from a resid_window before the window on: the
         # diagnostics read those rows again at their next run
         rt.diag_memory.note_changed(start_t - (st.qc or self.qc.QcSettings()).resid_window)
-        self._take_new_model(rt)
-        self._maybe_fit(rt, now)
         model = rt.model
         rs = self.cfg.residual
         lookback = int((rs.median_minutes + rs.mean_minutes) * 60) + max(REWRITE_BACK, TREND_BACK)
@@ -893,12 +933,12 @@ class Daemon:
 
         # 2.-4. residual into ``derived``, skew surges, forecasts: in memory in the steady
         # state, the full way otherwise
-        if self._steady(rt, start_t, end_t, latest):
+        if steady:
             done = self._pass_in_memory(rt, start_t, end_t, lookback)
         else:
             done = self._pass_full(rt, start_t, end_t, lookback, latest)
         if done is None:
-            return 0
+            return 0, False
         new, samples, context = done
 
         # 5. alert rules, on the new samples and the hour before them (for the trend)
@@ -913,13 +953,17 @@ class Daemon:
             samples = judged_samples(samples)
             events = []
             try:
+                # in a steady pass's transaction: a rule that fails undoes its own writes alone
+                # (its savepoint in evaluate); what else escapes evaluate comes before any rule
+                # wrote, or after the transaction itself was lost
                 events = self.engine.evaluate(store.db, rt.view, rules, samples, now=now, context=ctx,
                                               schema_ready=True)
             except Exception:
+                if steady and not store.conn.in_transaction:
+                    raise  # the pass's transaction itself is gone (an I/O error): nothing of it is stored
                 log.exception("station %s: alert rules failed for this window", st.id)
-            if events:
-                self.wake_outbox()  # at once, not at the outbox's next turn, and off this thread
-        return new
+            return new, bool(events)
+        return new, False
 
     def _steady(self, rt: StationRuntime, start_t: int, end_t: int, latest: bool) -> bool:
         """Whether the window can be processed from what the station holds in memory: it
@@ -992,10 +1036,8 @@ class Daemon:
         changed = tail.differs(t[w], rows)
         new = int((t >= start_t).sum())
         self._ensure_extremes(rt, start_t, end_t)
-        # before the write transaction: a learn reads years of history (about a second), and
-        # the store's other writers (the outbox thread) must not wait for it
-        self._learn(rt, end_t, "barometer" in st.sensors)
-        with store.transaction():  # one commit for the derived rows, skew surges and forecasts
+        # the forecaster was learnt by process_window, before the pass's transaction
+        with store.transaction():  # the pass's (or, alone, one commit for these rows)
             store.write_derived_rows(st.id, t[w][changed], {c: v[changed] for c, v in rows.items()})
             tail.merge(t[w], rows, end_t - TAIL_KEEP)
             self._skew_surges(rt, start_t, end_t)
@@ -1144,7 +1186,7 @@ class Daemon:
         # A feed is alive by its usable samples only: one that failed quality control, or is
         # stamped ahead of the clock, says nothing of the sea and must not end a silence.
         horizon = int(now + future_tolerance(st))
-        last = {r: self.store.last_time(st.id, r, until=horizon, usable=True) for r in st.sensors}
+        last = {r: self._last_usable(rt, r, end_t, horizon) for r in st.sensors}
         age = None if last.get("primary") is None else max(0.0, now - last["primary"])
         faults: list = []
         if self.diag is not None:
@@ -1162,6 +1204,27 @@ class Daemon:
         last = [f for f in fcs or [] if f["made_t"] == fcs[-1]["made_t"]]
         return self.engine.AlertContext(next_high_water=last[0] if last else None, feed_age=age, faults=faults,
                                         high_waters=list(fcs or []))
+
+    def _last_usable(self, rt: StationRuntime, sensor: str, end_t: int | None, horizon: int) -> int | None:
+        """A sensor's latest usable sample at or before ``horizon`` [Unix s], as
+        :meth:`Store.last_time` (``usable=True``) reads it, taken from the QC context that
+        has just judged the window ending at ``end_t`` when it can say: it holds every
+        stored row of a level sensor up to ``end_t`` with its flag as stored (rows after
+        ``end_t`` are not judged yet, their flag NULL: never usable). A newest usable row
+        held as 2 (not evaluated) may be NULL in the store; then, and when no row held is
+        usable, the store is asked."""
+        ctx = rt.qc_context
+        held = ctx.sensors.get(sensor)
+        if (held is not None and end_t is not None and ctx.end_t == end_t and ctx.key is not None
+                and ctx.key[0] is self.store.conn and len(held.t) and held.t[-1] <= horizon):
+            f = held.flag
+            newest = int(f[-1])  # the usual case: the newest row held is usable
+            if newest in (qc.PASS, qc.SUSPECT):
+                return int(held.t[-1])
+            usable = np.flatnonzero((f == qc.PASS) | (f == qc.NOT_EVALUATED) | (f == qc.SUSPECT))
+            if len(usable) and f[usable[-1]] != qc.NOT_EVALUATED:
+                return int(held.t[usable[-1]])
+        return self.store.last_time(rt.cfg.id, sensor, until=horizon, usable=True)
 
     def _diagnostic_faults(self, rt: StationRuntime, now: float, end_t: int | None) -> list[dict]:
         """Sensor drift (primary against backup, over ``qc.drift_window``) and clock offset

@@ -16,15 +16,17 @@ from __future__ import annotations
 
 import contextlib
 import fcntl
+import functools
 import itertools
 import json
 import logging
+import math
 import os
 import sqlite3
 import time
 from dataclasses import dataclass
 from pathlib import Path
-from typing import Any, Iterator
+from typing import Any, Iterator, Sequence
 
 import numpy as np
 import pandas as pd
@@ -314,8 +316,8 @@ class Store:
         """
         key, tkey = f"processed.{station}", f"touched.{station}"
         with self.transaction():
-            mark = self.get_meta(key)
-            touched = self.get_meta(tkey)
+            mark, touched = self.conn.execute("SELECT (SELECT value FROM meta WHERE key = ?), "
+                                              "(SELECT value FROM meta WHERE key = ?)", (key, tkey)).fetchone()
             if touched is None:
                 return None if mark is None else int(mark)
             self.conn.execute("DELETE FROM meta WHERE key = ?", (tkey,))
@@ -344,15 +346,12 @@ class Store:
         DERIVED_COLUMNS [m] (NaN stored as NULL). Returns rows written."""
         if len(t) == 0:
             return 0
-        cols = [c for c in DERIVED_COLUMNS if c in columns]
-        data = [np.asarray(columns[c], dtype=float) for c in cols]
-        rows = [(station, int(ti), *[None if not np.isfinite(d[i]) else float(d[i]) for d in data])
-                for i, ti in enumerate(np.asarray(t, dtype=np.int64).tolist())]
-        sets = ", ".join(f"{c} = excluded.{c}" for c in cols)
-        sql = (f"INSERT INTO derived (station, t, {', '.join(cols)}) VALUES ({', '.join('?' * (len(cols) + 2))}) "
-               f"ON CONFLICT(station, t) DO UPDATE SET {sets}")
+        cols = tuple(c for c in DERIVED_COLUMNS if c in columns)
+        data = [np.asarray(columns[c], dtype=float).tolist() for c in cols]
+        rows = [(station, ti, *[v if math.isfinite(v) else None for v in values])
+                for ti, *values in zip(np.asarray(t, dtype=np.int64).tolist(), *data)]
         with self.transaction() as conn:
-            conn.executemany(sql, rows)
+            conn.executemany(_derived_sql(cols), rows)
         return len(rows)
 
     def write_skew_surges(self, station: str, frame: pd.DataFrame) -> int:
@@ -576,6 +575,16 @@ class Store:
         row = self.conn.execute(sql + " ORDER BY t DESC LIMIT 1", args).fetchone()
         return None if row is None else int(row[0])
 
+    def last_times(self, station: str, sensors: Sequence[str], *, until: int) -> dict[str, int | None]:
+        """:meth:`last_time` of each sensor (``until``, not ``usable``) in one statement:
+        sensor -> time of its latest sample at or before ``until`` [Unix s], or None."""
+        if not sensors:
+            return {}
+        one = "(SELECT t FROM observations WHERE station = ? AND sensor = ? AND t <= ? ORDER BY t DESC LIMIT 1)"
+        args = [x for sensor in sensors for x in (station, sensor, int(until))]
+        row = self.conn.execute(f"SELECT {', '.join([one] * len(sensors))}", args).fetchone()
+        return {sensor: None if t is None else int(t) for sensor, t in zip(sensors, row)}
+
     def first_time(self, station: str, sensor: str = "primary", *, after: int | None = None,
                    until: int | None = None, usable: bool = False) -> int | None:
         """Time of a sensor's earliest sample [Unix s] (after ``after``, at or before ``until``,
@@ -777,6 +786,14 @@ def _release(fh) -> None:
         fcntl.flock(fh.fileno(), fcntl.LOCK_UN)
     with contextlib.suppress(Exception):
         fh.close()
+
+
+@functools.lru_cache(maxsize=8)
+def _derived_sql(cols: tuple[str, ...]) -> str:
+    """The upsert of ``derived`` rows with these columns (made once per set of columns)."""
+    sets = ", ".join(f"{c} = excluded.{c}" for c in cols)
+    return (f"INSERT INTO derived (station, t, {', '.join(cols)}) VALUES ({', '.join('?' * (len(cols) + 2))}) "
+            f"ON CONFLICT(station, t) DO UPDATE SET {sets}")
 
 
 def _from_unix(t: np.ndarray) -> pd.DatetimeIndex:

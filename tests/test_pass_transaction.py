@@ -1,0 +1,170 @@
+"""A steady pass stores its writes in one transaction (Daemon.process_window).
+
+Quality control's flags, the derived rows, the forecasts, the rules' state and the
+processing mark of a steady pass are committed together. If that transaction fails, none
+of it is stored, and what the station holds in memory on the strength of those writes
+(quality control's rows and flags as stored, the derived rows held) is forgotten, so the
+next pass writes them again. Each run is compared with the same run without the failure:
+every table the passes write must come out the same.
+"""
+from __future__ import annotations
+
+import sqlite3
+
+import numpy as np
+import pytest
+
+from monitor.service.daemon import Daemon
+from monitor.store.database import Store
+from units import hour, minute, mm
+
+T0 = 1_767_225_600          # 2026-01-01T00:00Z (invented)
+HISTORY = 26 * hour         # quality control looks 25 h back
+LIVE = 40                   # one-minute passes after the history
+FAIL_AT = 20                # the pass whose transaction fails
+
+
+def _level(t: np.ndarray, sensor: str) -> np.ndarray:
+    """An invented tide with a little wobble [m]; the backup reads 3 mm high."""
+    return 2.0 + np.cos(2 * np.pi * t / 44714.16 + 0.7) + 0.004 * np.sin(t / 377.0) + (sensor == "backup") * 0.003
+
+
+def _write(store: Store, t: np.ndarray) -> None:
+    for sensor in ("primary", "backup"):
+        store.write_batch("port", sensor, t, _level(t, sensor), now=int(t[-1]))
+
+
+def _same(a: dict[str, list], b: dict[str, list]) -> None:
+    """Every table equal; the derived rows to 1e-5 mm (a pass the full way predicts the tide
+    through pandas, the pass from memory from plain seconds: they differ in the last bits)."""
+    for name in b:
+        if name == "derived":
+            assert [r[:2] for r in a[name]] == [r[:2] for r in b[name]]
+            np.testing.assert_allclose(np.array([r[2:] for r in a[name]], dtype=float),
+                                       np.array([r[2:] for r in b[name]], dtype=float), rtol=0, atol=1e-5 * mm)
+        else:
+            assert a[name] == b[name], name
+
+
+def _tables(store: Store) -> dict[str, list]:
+    q = {"flags": "SELECT sensor, t, flag FROM observations ORDER BY sensor, t",
+         "qc_tests": "SELECT * FROM qc_tests ORDER BY sensor, t",
+         "derived": "SELECT * FROM derived ORDER BY t",
+         "hw_forecasts": "SELECT * FROM hw_forecasts ORDER BY hw_t",
+         "alert_state": "SELECT rule, level, watermark FROM alert_state ORDER BY rule",
+         "processed": "SELECT value FROM meta WHERE key = 'processed.port'"}
+    return {name: store.conn.execute(sql).fetchall() for name, sql in q.items()}
+
+
+class _Failing:
+    """Makes the processing mark's write at the end of one pass fail, as a full disk would:
+    the last write of the pass's transaction, after every other."""
+
+    def __init__(self, store: Store):
+        self.store, self.at, self.real = store, None, store.set_meta
+
+    def __call__(self, key: str, value: str) -> None:
+        if key == "processed.port" and value == str(self.at):
+            self.at = None
+            raise sqlite3.OperationalError("database or disk is full (test)")
+        self.real(key, value)
+
+
+def _start(tmp_path, m2_stations) -> tuple[Store, Daemon, _Failing]:
+    cfg = m2_stations(["port"], sensors=("primary", "backup"))
+    store = Store.open(cfg.store_path)
+    failing = _Failing(store)
+    store.set_meta = failing
+    _write(store, T0 + minute * np.arange(HISTORY // minute))
+    d = Daemon(cfg, store)
+    d.process_station(d.stations["port"], now=T0 + HISTORY)
+    return store, d, failing
+
+
+def _steady_run(tmp_path, m2_stations, fail: bool) -> dict[str, list]:
+    store, d, failing = _start(tmp_path, m2_stations)
+    rt = d.stations["port"]
+    try:
+        for k in range(LIVE):
+            t = T0 + HISTORY + k * minute
+            _write(store, np.array([t]))
+            if fail and k == FAIL_AT:
+                failing.at = t
+                before = _tables(store)
+                with pytest.raises(sqlite3.OperationalError):
+                    d.process_station(rt, now=t + 30)
+                assert _tables(store) == before  # nothing of the failed pass is stored
+                continue
+            d.process_station(rt, now=t + 30)
+        return _tables(store)
+    finally:
+        store.close()
+
+
+def test_a_steady_pass_whose_transaction_fails_stores_nothing_and_the_next_pass_stores_it(tmp_path, m2_stations,
+                                                                                        monkeypatch):
+    passes = []
+    real = Daemon._pass_in_memory
+    monkeypatch.setattr(Daemon, "_pass_in_memory", lambda self, *a: passes.append(a[2]) or real(self, *a))
+    failed = _steady_run(tmp_path / "failed", m2_stations, fail=True)
+    assert T0 + HISTORY + FAIL_AT * minute in passes, "not a steady pass"
+    _same(failed, _steady_run(tmp_path / "whole", m2_stations, fail=False))
+
+
+def _windows_run(tmp_path, m2_stations, fail: bool) -> dict[str, list]:
+    """Windows handed to process_window one after the other, as a caller that keeps its own
+    marks would: the window after the failed one starts where the failed one ended."""
+    store, d, failing = _start(tmp_path, m2_stations)
+    rt = d.stations["port"]
+    try:
+        for k in range(LIVE):
+            t = T0 + HISTORY + k * minute
+            _write(store, np.array([t]))
+            if fail and k == FAIL_AT:
+                failing.at = t
+                with pytest.raises(sqlite3.OperationalError):
+                    d.process_window(rt, t - minute + 1, t, now=t + 30)
+                continue
+            d.process_window(rt, t - minute + 1, t, now=t + 30)
+        return _tables(store)
+    finally:
+        store.close()
+
+
+def test_after_a_failed_transaction_the_station_forgets_what_it_held_of_the_passs_writes(tmp_path, m2_stations):
+    # Held on, quality control's rows would count the failed pass's flags as stored and
+    # the derived rows held would count its residual as stored: the next window would
+    # write neither, and the store would keep those samples unjudged and without residual.
+    failed = _windows_run(tmp_path / "failed", m2_stations, fail=True)
+    _same(failed, _windows_run(tmp_path / "whole", m2_stations, fail=False))
+
+
+def test_a_rule_that_fails_in_a_steady_pass_undoes_its_own_writes_alone(tmp_path, m2_stations, monkeypatch):
+    from alerts import engine
+
+    store, d, _ = _start(tmp_path, m2_stations)
+    rt = d.stations["port"]
+    real, fail = engine._save_state, []
+
+    def save_state(*a, **k):
+        if fail:  # the rule's state row refused (its one write: a rule below every step)
+            raise sqlite3.OperationalError("database or disk is full (test)")
+        real(*a, **k)
+
+    monkeypatch.setattr(engine, "_save_state", save_state)
+    try:
+        for k in range(3):
+            t = T0 + HISTORY + k * minute
+            _write(store, np.array([t]))
+            fail[:] = [True] if k == 2 else []
+            before = _tables(store)
+            d.process_station(rt, now=t + 30)
+        after = _tables(store)
+    finally:
+        store.close()
+    assert after["alert_state"] == before["alert_state"]  # the failed rule's state as it was
+    # the rest of the pass is stored: the newest sample judged and its residual, the mark moved
+    assert after["processed"] == [(str(t),)] and before["processed"] == [(str(t - minute),)]
+    assert sorted(r[1] for r in after["qc_tests"] if r[2] == t) == ["backup", "primary"]
+    assert not any(r[2] == t for r in before["qc_tests"])
+    assert any(r[1] == t for r in after["derived"]) and not any(r[1] == t for r in before["derived"])
