@@ -99,7 +99,7 @@ class _Sensor:
         self.memo = _qc.ResidMemo()
 
     def drop_before(self, t0: int) -> None:
-        cut = int(np.searchsorted(self.t, t0, side="left"))
+        cut = int(self.t.searchsorted(t0, side="left"))
         if cut:
             self.t, self.v, self.flag = self.t[cut:], self.v[cut:], self.flag[cut:]
             self.packed_at -= cut
@@ -258,7 +258,7 @@ class QcContext:
             i = int(self.ahead_t.searchsorted(t[0]))
             if i < len(self.ahead_t) and self.ahead_t[i] == t[0]:
                 return self.ahead_p[i:i + 1].copy()
-        pos = np.searchsorted(self.ahead_t, t)
+        pos = self.ahead_t.searchsorted(t)
         if len(self.ahead_t) and np.all(pos < len(self.ahead_t)) and np.array_equal(self.ahead_t[pos], t):
             return self.ahead_p[pos]  # asked for before: the values the memo holds too
         step = int(t[-1] - t[-2]) if len(t) > 1 else int(t[-1]) - last
@@ -290,7 +290,7 @@ class QcContext:
             stored = db.conn.execute(f"SELECT t, {PACKED_SQL} FROM qc_tests WHERE station = ? AND sensor = ? AND t >= ? "
                                      f"AND t <= ?", (station, sn, a, hi)).fetchall()
             for tq, packed in stored:
-                i = int(np.searchsorted(held.t, tq))
+                i = int(held.t.searchsorted(tq))
                 if packed is not None and i < len(held.t) and held.t[i] == tq:
                     held.packed[i - held.packed_at] = packed
             self.sensors[sn] = held

@@ -492,7 +492,7 @@ class DerivedTail:
 
     def differs(self, t: np.ndarray, columns: dict[str, np.ndarray]) -> np.ndarray:
         """Which of the rows at times ``t`` are not held, or held with other values."""
-        pos = np.searchsorted(self.t, t)
+        pos = self.t.searchsorted(t)
         held = pos < len(self.t)
         held[held] = self.t[pos[held]] == t[held]
         out = ~held
@@ -506,17 +506,17 @@ class DerivedTail:
         """Take the rows written at times ``t``, every row from ``t[0]`` on (they replace
         those held from then), and forget the rows before ``keep_from`` [Unix s]."""
         if len(t):
-            cut = int(np.searchsorted(self.t, t[0], side="left"))
+            cut = int(self.t.searchsorted(t[0], side="left"))
             self.t = np.concatenate([self.t[:cut], t])
             self.columns = {c: np.concatenate([self.columns[c][:cut], columns[c]]) for c in DERIVED_COLUMNS}
-        first = int(np.searchsorted(self.t, keep_from, side="left"))
+        first = int(self.t.searchsorted(keep_from, side="left"))
         self.t = self.t[first:]
         self.columns = {c: v[first:] for c, v in self.columns.items()}
         self.since = max(self.since, int(keep_from))
 
     def smoothed_between(self, a: int, b: int) -> tuple[np.ndarray, np.ndarray]:
         """Times [Unix s] and smoothed residual [m] of the rows in [a, b]."""
-        i, j = np.searchsorted(self.t, a, side="left"), np.searchsorted(self.t, b, side="right")
+        i, j = self.t.searchsorted(a, side="left"), self.t.searchsorted(b, side="right")
         return self.t[i:j].astype(float), self.columns["smoothed"][i:j]
 
 
@@ -653,7 +653,7 @@ class PredictionMemo:
         return self._at(np.asarray(t, dtype=np.int64) * 1_000_000_000)
 
     def _at(self, t: np.ndarray) -> np.ndarray:
-        pos = np.searchsorted(self._t, t)
+        pos = self._t.searchsorted(t)
         known = pos < len(self._t)
         known[known] = self._t[pos[known]] == t[known]
         if not known.all():
@@ -662,13 +662,13 @@ class PredictionMemo:
             order = np.argsort(np.concatenate([self._t, new]), kind="stable")
             self._t = np.concatenate([self._t, new])[order]
             self._v = np.concatenate([self._v, v])[order]
-            pos = np.searchsorted(self._t, t)
+            pos = self._t.searchsorted(t)
         return self._v[pos]
 
     def forget_before(self, t: float) -> None:
         """Drop the times before ``t`` [Unix s] (the times are sorted: a slice from the first
         kept, no copy)."""
-        first = int(np.searchsorted(self._t, int(t * 1e9), side="left"))
+        first = int(self._t.searchsorted(int(t * 1e9), side="left"))
         if first:
             self._t, self._v = self._t[first:], self._v[first:]
 
@@ -1060,7 +1060,7 @@ class Daemon:
         if (held is None or ctx.end_t != end_t or ctx.key is None or ctx.key[0] is not self.store.conn
                 or not len(held.t) or held.t[0] > a):
             return self.store.observation_arrays(rt.cfg.id, "primary", a, end_t)
-        i, j = np.searchsorted(held.t, a, side="left"), np.searchsorted(held.t, end_t, side="right")
+        i, j = held.t.searchsorted(a, side="left"), held.t.searchsorted(end_t, side="right")
         return held.t[i:j].copy(), held.v[i:j].copy(), held.flag[i:j].astype(np.int64)
 
     def _skew_surges(self, rt: StationRuntime, start_t: int, end_t: int) -> None:

@@ -69,8 +69,8 @@ class HeldRows:
 
     def between(self, lo: int, hi: int) -> tuple[np.ndarray, np.ndarray]:
         """Times [Unix s, int64] and values [m] of the rows held in ``[lo, hi]`` [Unix s]."""
-        i = np.searchsorted(self.dt, max(lo - self.lo, -1), side="left")
-        j = np.searchsorted(self.dt, min(hi - self.lo, 2 ** 31 - 1), side="right")
+        i = self.dt.searchsorted(max(lo - self.lo, -1), side="left")
+        j = self.dt.searchsorted(min(hi - self.lo, 2 ** 31 - 1), side="right")
         return self.dt[i:j].astype(np.int64) + self.lo, self.v[i:j]
 
 

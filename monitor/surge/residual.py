@@ -199,7 +199,7 @@ def smooth_residual_arrays(t_ns: np.ndarray, resid: np.ndarray, usable: np.ndarr
     med = _trailing(tv, rv, _minutes_ns(median_minutes), _window_median)
     if mean_minutes > 0:
         med = _trailing(tv, med, _minutes_ns(mean_minutes), _window_mean)
-    last = np.searchsorted(tv, t_ns, side="right") - 1
+    last = tv.searchsorted(t_ns, side="right") - 1
     seen = last >= 0
     out[seen] = med[last[seen]]
     stale = seen & (t_ns - tv[np.maximum(last, 0)] > _minutes_ns(max(median_minutes, 1.0)))
@@ -211,7 +211,7 @@ def _trailing(t_ns: np.ndarray, v: np.ndarray, width_ns: int, reduce) -> np.ndar
     """``reduce`` over each sample's trailing window ``(t - width, t]``, all windows at once:
     the rows of a matrix holding each window's values, newest first (``fill`` after them)."""
     i = np.arange(len(v))
-    n = i - np.searchsorted(t_ns, t_ns - width_ns, side="right") + 1
+    n = i - t_ns.searchsorted(t_ns - width_ns, side="right") + 1
     j = i[:, None] - np.arange(int(n.max()))[None, :]
     outside = j < (i - n + 1)[:, None]
     m = v[np.maximum(j, 0)]
