@@ -81,9 +81,19 @@ def _start(tmp_path, m2_stations) -> tuple[Store, Daemon, _Failing]:
     return store, d, failing
 
 
-def _steady_run(tmp_path, m2_stations, fail: bool) -> dict[str, list]:
+def _run(tmp_path, m2_stations, fail: bool, windows: bool) -> dict[str, list]:
+    """A minute at a time, the pass at ``FAIL_AT`` failing its transaction when ``fail``.
+    ``windows``: each window handed to process_window one after the other, as a caller that
+    keeps its own marks would (the window after the failed one starts where the failed one
+    ended); else process_station, as the daemon's loop runs it."""
     store, d, failing = _start(tmp_path, m2_stations)
     rt = d.stations["port"]
+
+    def step(t: int) -> None:
+        if windows:
+            d.process_window(rt, t - minute + 1, t, now=t + 30)
+        else:
+            d.process_station(rt, now=t + 30)
     try:
         for k in range(LIVE):
             t = T0 + HISTORY + k * minute
@@ -92,10 +102,10 @@ def _steady_run(tmp_path, m2_stations, fail: bool) -> dict[str, list]:
                 failing.at = t
                 before = _tables(store)
                 with pytest.raises(sqlite3.OperationalError):
-                    d.process_station(rt, now=t + 30)
+                    step(t)
                 assert _tables(store) == before  # nothing of the failed pass is stored
                 continue
-            d.process_station(rt, now=t + 30)
+            step(t)
         return _tables(store)
     finally:
         store.close()
@@ -106,37 +116,17 @@ def test_a_steady_pass_whose_transaction_fails_stores_nothing_and_the_next_pass_
     passes = []
     real = Daemon._pass_in_memory
     monkeypatch.setattr(Daemon, "_pass_in_memory", lambda self, *a: passes.append(a[2]) or real(self, *a))
-    failed = _steady_run(tmp_path / "failed", m2_stations, fail=True)
+    failed = _run(tmp_path / "failed", m2_stations, fail=True, windows=False)
     assert T0 + HISTORY + FAIL_AT * minute in passes, "not a steady pass"
-    _same(failed, _steady_run(tmp_path / "whole", m2_stations, fail=False))
-
-
-def _windows_run(tmp_path, m2_stations, fail: bool) -> dict[str, list]:
-    """Windows handed to process_window one after the other, as a caller that keeps its own
-    marks would: the window after the failed one starts where the failed one ended."""
-    store, d, failing = _start(tmp_path, m2_stations)
-    rt = d.stations["port"]
-    try:
-        for k in range(LIVE):
-            t = T0 + HISTORY + k * minute
-            _write(store, np.array([t]))
-            if fail and k == FAIL_AT:
-                failing.at = t
-                with pytest.raises(sqlite3.OperationalError):
-                    d.process_window(rt, t - minute + 1, t, now=t + 30)
-                continue
-            d.process_window(rt, t - minute + 1, t, now=t + 30)
-        return _tables(store)
-    finally:
-        store.close()
+    _same(failed, _run(tmp_path / "whole", m2_stations, fail=False, windows=False))
 
 
 def test_after_a_failed_transaction_the_station_forgets_what_it_held_of_the_passs_writes(tmp_path, m2_stations):
     # Held on, quality control's rows would count the failed pass's flags as stored and
     # the derived rows held would count its residual as stored: the next window would
     # write neither, and the store would keep those samples unjudged and without residual.
-    failed = _windows_run(tmp_path / "failed", m2_stations, fail=True)
-    _same(failed, _windows_run(tmp_path / "whole", m2_stations, fail=False))
+    failed = _run(tmp_path / "failed", m2_stations, fail=True, windows=True)
+    _same(failed, _run(tmp_path / "whole", m2_stations, fail=False, windows=True))
 
 
 def test_a_rule_that_fails_in_a_steady_pass_undoes_its_own_writes_alone(tmp_path, m2_stations, monkeypatch):
