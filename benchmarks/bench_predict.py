@@ -25,7 +25,6 @@ import numpy as np
 
 
 def _model():
-    from benchmarks.targets import Targets
     from predictor import TideModel
     from predictor.constituents import CATALOGUE
 
@@ -70,6 +69,7 @@ def _write_csv(times, level, path) -> None:
 def main() -> None:
     import tempfile
 
+    from benchmarks.targets import Targets
     from predictor import TideModel
 
     days = float(os.environ.get("QW_BENCH_DAYS", "365"))
