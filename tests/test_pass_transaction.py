@@ -158,3 +158,40 @@ def test_a_rule_that_fails_in_a_steady_pass_undoes_its_own_writes_alone(tmp_path
     assert sorted(r[1] for r in after["qc_tests"] if r[2] == t) == ["backup", "primary"]
     assert not any(r[2] == t for r in before["qc_tests"])
     assert any(r[1] == t for r in after["derived"]) and not any(r[1] == t for r in before["derived"])
+
+
+def test_a_pass_whose_transaction_sqlite_ended_early_keeps_nothing_of_the_rest(tmp_path, m2_stations, monkeypatch):
+    # After a full disk or an I/O error SQLite rolls the transaction back itself. The
+    # equipment-fault checks log such an error and go on; the rules and the processing mark
+    # after them must not then be stored on their own (autocommit), outside the lost pass.
+    store, d, _ = _start(tmp_path, m2_stations)
+    rt = d.stations["port"]
+    real, lose = rt.diag_memory.begin, []
+
+    def begin(store_, end_t):
+        if lose:
+            store_.conn.execute("ROLLBACK")  # as SQLite does itself
+            raise sqlite3.OperationalError("disk I/O error (test)")
+        return real(store_, end_t)
+
+    monkeypatch.setattr(rt.diag_memory, "begin", begin)
+    try:
+        for k in range(3):
+            t = T0 + HISTORY + k * minute
+            _write(store, np.array([t]))
+            d.process_station(rt, now=t + 30)
+        t += minute
+        _write(store, np.array([t]))
+        lose.append(True)
+        rt.diag_at = -np.inf  # the hourly diagnostics run in this pass
+        before = _tables(store)
+        with pytest.raises(sqlite3.OperationalError, match="ended early"):
+            d.process_station(rt, now=t + 30)
+        assert _tables(store) == before  # no rule state, no mark, nothing of the pass
+        lose.clear()
+        d.process_station(rt, now=t + 30)  # the next pass does it all
+        after = _tables(store)
+    finally:
+        store.close()
+    assert after["processed"] == [(str(t),)]
+    assert sorted(r[1] for r in after["qc_tests"] if r[2] == t) == ["backup", "primary"]

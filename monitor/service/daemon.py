@@ -887,6 +887,7 @@ class Daemon:
             try:
                 with self.store.transaction():
                     new, queued = self._window(rt, start_t, end_t, now, latest, steady)
+                    self._pass_intact(steady)
                     self.store.set_meta(f"processed.{rt.cfg.id}", str(end_t))
             except BaseException:
                 self._forget_pass(rt)
@@ -894,6 +895,16 @@ class Daemon:
         if queued:  # once committed: at once, not at the outbox's next turn, and off this thread
             self.wake_outbox()
         return new
+
+    def _pass_intact(self, steady: bool) -> None:
+        """In a steady pass: raise when its write transaction has ended early. After some
+        errors (a full disk, an I/O error) SQLite rolls the transaction back itself, and a
+        step that logs its error and goes on (the equipment-fault checks) would leave what
+        comes after it -- the rules' writes, the processing mark -- to be stored on its own,
+        outside the pass whose other writes are gone."""
+        if steady and not self.store.conn.in_transaction:
+            raise sqlite3.OperationalError("the pass's write transaction ended early (after the error logged "
+                                           "before this); nothing of the pass is kept, the next pass does it again")
 
     @staticmethod
     def _forget_pass(rt: StationRuntime) -> None:
@@ -951,6 +962,7 @@ class Daemon:
                 kinds = self.rules_mod.SAMPLE_KINDS
                 rules = [r for r in rules if r.watch in kinds]
             samples = judged_samples(samples)
+            self._pass_intact(steady)  # (the rules' context may have logged an error that ended it)
             events = []
             try:
                 # in a steady pass's transaction: a rule that fails undoes its own writes alone
@@ -1209,10 +1221,11 @@ class Daemon:
         """A sensor's latest usable sample at or before ``horizon`` [Unix s], as
         :meth:`Store.last_time` (``usable=True``) reads it, taken from the QC context that
         has just judged the window ending at ``end_t`` when it can say: it holds every
-        stored row of a level sensor up to ``end_t`` with its flag as stored (rows after
-        ``end_t`` are not judged yet, their flag NULL: never usable). A newest usable row
-        held as 2 (not evaluated) may be NULL in the store; then, and when no row held is
-        usable, the store is asked."""
+        stored row of a level sensor up to ``end_t`` with its flag as stored (a row stored
+        after ``end_t`` since the pass began is left to the next pass: the age is that of
+        the window judged, at most a pass younger than the store would say). A newest usable
+        row held as 2 (not evaluated) may be NULL in the store; then, and when no row held
+        is usable, the store is asked."""
         ctx = rt.qc_context
         held = ctx.sensors.get(sensor)
         if (held is not None and end_t is not None and ctx.end_t == end_t and ctx.key is not None
