@@ -1234,7 +1234,7 @@ class Daemon:
             newest = int(f[-1])  # the usual case: the newest row held is usable
             if newest in (qc.PASS, qc.SUSPECT):
                 return int(held.t[-1])
-            usable = np.flatnonzero((f == qc.PASS) | (f == qc.NOT_EVALUATED) | (f == qc.SUSPECT))
+            usable = qc.usable_mask(f).nonzero()[0]
             if len(usable) and f[usable[-1]] != qc.NOT_EVALUATED:
                 return int(held.t[usable[-1]])
         return self.store.last_time(rt.cfg.id, sensor, until=horizon, usable=True)
