@@ -583,3 +583,31 @@ def test_the_rows_before_the_reach_decide_no_flag_of_the_rows_judged(step_s, mon
         assert np.array_equal(table("before"), plain)     # every row before the reach
     assert changed["before"] > 0
     assert any(not np.array_equal(table("after"), plain) for _ in range(5))  # from the reach to the rows judged
+
+
+def test_the_step_kept_between_calls_follows_a_change_of_sampling():
+    """The attenuation test's coverage takes the record's median step; kept between calls
+    while the record keeps one step throughout, it must follow the record when the gauge
+    goes from one-minute to two-minute sampling (and back) as a call without the memo does:
+    at two minutes a tidal day holds 745 samples, covered only if the step is taken as
+    two minutes (745 x 60 s is under 80 % of the day)."""
+    s, memo = QcSettings(), qc.ResidMemo()
+    t = list(T0 + minute * np.arange(int(s.context_seconds() // minute)))
+    seen = set()
+    for step in [minute] * 30 + [2 * minute] * 1900 + [minute] * 400:
+        t.append(t[-1] + step)
+        tt = np.array(t, dtype=float)
+        lo = int(np.searchsorted(tt, tt[-1] - s.context_seconds()))
+        if lo:
+            del t[:lo]
+            memo.drop(lo)
+            tt = tt[lo:]
+        p = 2.0 + 1.2 * np.cos(2 * np.pi * tt / 44714.16)
+        v = p + 0.01 * np.sin(tt / 977.0)
+        k = len(tt) - 3
+        tn = (tt * 1e9).astype(np.int64)
+        got = qc.tail_table(tn, v, p, s, tt[-1] + 30, None, k, memo)
+        want = qc.tail_table(tn, v, p, s, tt[-1] + 30, None, k)
+        assert np.array_equal(got, want), (len(t), np.argwhere(got != want)[:5])
+        seen.update(got[:, qc._COL["atten"]].tolist())
+    assert {qc.PASS, qc.NOT_EVALUATED} <= seen  # both sides of the coverage were met

@@ -1236,15 +1236,35 @@ def _median_step(t: np.ndarray) -> float:
     """``float(np.median(np.diff(t)))`` [s] of sorted times ``t`` [s] (no NaN), selected with
     ``np.partition`` as numpy's median does (the mean of the two middle steps for an even
     count, summed then halved as ``np.mean`` does), without ``np.median``'s overhead."""
+    return _step_of(t)[0]
+
+
+def _step_of(t: np.ndarray) -> tuple[float, bool]:
+    """:func:`_median_step` of ``t`` and whether ``t`` keeps that one step throughout."""
     d = np.diff(t)
     lo = np.minimum.reduce(d)
     if lo == np.maximum.reduce(d):  # one step throughout (a steady feed): the median is it
-        return float(lo)
+        return float(lo), True
     half = len(d) // 2
     if len(d) % 2:
-        return float(np.partition(d, half)[half])
+        return float(np.partition(d, half)[half]), False
     part = np.partition(d, (half - 1, half))
-    return float((part[half - 1] + part[half]) / 2)
+    return float((part[half - 1] + part[half]) / 2), False
+
+
+def _step_kept(t: np.ndarray, memo: "ResidMemo | None") -> float:
+    """:func:`_median_step` of ``t`` (two rows or more), from the memo when the record kept
+    one step throughout at its last call and the rows added since keep it too (rows lost at
+    the front leave such a record one step throughout)."""
+    m = len(memo.ok) if memo is not None else 0
+    u = memo.step if memo is not None else None
+    if u is not None and 2 <= m <= len(t):
+        if m == len(t) or (m + 1 == len(t) and t[m] - t[m - 1] == u) or bool((np.diff(t[m - 1:]) == u).all()):
+            return u
+    step, one = _step_of(t)
+    if memo is not None:
+        memo.step = step if one else None
+    return step
 
 
 def tail_table(tn: np.ndarray, v: np.ndarray, p: np.ndarray | None, s: QcSettings, now: float | None,
@@ -1350,7 +1370,7 @@ def tail_table(tn: np.ndarray, v: np.ndarray, p: np.ndarray | None, s: QcSetting
     if p is not None and n and n - k:
         # (ok: rc = v - p finite, no gross or spike failure -- v and p finite, as the ranges want)
         obs_range, pred_range, count = _atten_ranges(v, p, ok, tn, k, s, memo, keep)
-        step = _median_step(t) if n > 1 else s.atten_window
+        step = _step_kept(t, memo) if n > 1 else s.atten_window
         span_ok = (t[tail] - t[0]) >= s.atten_window - step
         covered = span_ok & (count * step >= 0.8 * s.atten_window)
         with np.errstate(invalid="ignore", divide="ignore"):
@@ -1561,33 +1581,37 @@ def _atten_ranges(v: np.ndarray, p: np.ndarray, oka: np.ndarray, tn: np.ndarray,
     ``oka``: the samples the ranges take (level and prediction finite, no gross or spike
     failure)."""
     n = len(v)
-    got = [_kept(memo, name, n, k, keep, float) for name in ("a_obs", "a_pred", "a_count")]
-    todo = np.isnan(got[2]).nonzero()[0] + k
+    # (the three per row, as one memo entry: observed range, predicted range, count)
+    got = _kept(memo, "atten", n, k, keep, float, columns=3)
+    todo = np.isnan(got[:, 2]).nonzero()[0] + k
     if 0 < len(todo) <= _FEW:  # each window on its own
         a, b = _bounds(tn, tn[todo], _ns(s.atten_window), 0)
         for row, ai, bi in zip(todo.tolist(), a.tolist(), b.tolist()):
             w = oka[ai:bi]
             count = int(np.count_nonzero(w))
-            got[2][row - k] = float(count)
+            got[row - k, 2] = float(count)
             if count >= 2:
                 ov, pv = v[ai:bi][w], p[ai:bi][w]
-                got[0][row - k] = np.maximum.reduce(ov) - np.minimum.reduce(ov)
-                got[1][row - k] = np.maximum.reduce(pv) - np.minimum.reduce(pv)
+                got[row - k, 0] = np.maximum.reduce(ov) - np.minimum.reduce(ov)
+                got[row - k, 1] = np.maximum.reduce(pv) - np.minimum.reduce(pv)
     elif len(todo):
         a, b = _bounds(tn, tn[todo], _ns(s.atten_window), 0)
         ohi, olo = _rolling_extremes(np.where(oka, v, np.nan), a, b, 2)
         phi, plo = _rolling_extremes(np.where(oka, p, np.nan), a, b, 2)
         csum = np.concatenate([[0], np.cumsum(oka)])
-        got[0][todo - k], got[1][todo - k] = ohi - olo, phi - plo
-        got[2][todo - k] = (csum[b] - csum[a]).astype(float)
-    return tuple(_remember(memo, name, g, n, k) for name, g in zip(("a_obs", "a_pred", "a_count"), got))
+        got[todo - k, 0], got[todo - k, 1] = ohi - olo, phi - plo
+        got[todo - k, 2] = csum[b] - csum[a]
+    _remember(memo, "atten", got, n, k)
+    return got[:, 0], got[:, 1], got[:, 2]
 
 
-def _kept(memo: "ResidMemo | None", name: str, n: int, k: int, keep: int, kind: type = np.int8) -> np.ndarray:
-    """Rows ``k:`` of a memo's per-row array, those from ``keep`` on (and any never
-    computed) marked to do: -1 for flags, NaN for values."""
+def _kept(memo: "ResidMemo | None", name: str, n: int, k: int, keep: int, kind: type = np.int8,
+          columns: int = 0) -> np.ndarray:
+    """Rows ``k:`` of a memo's per-row array (``columns`` > 0: that many values a row, as
+    columns of a 2-D array), those from ``keep`` on (and any never computed) marked to do:
+    -1 for flags, NaN for values."""
     blank = -1 if kind is np.int8 else np.nan
-    out = np.full(n - k, blank, dtype=kind)
+    out = np.full((n - k, columns) if columns else n - k, blank, dtype=kind)
     if memo is not None and name in memo.rows:
         k0, have = memo.rows[name]  # rows k0, k0 + 1, ... as at the last call
         lo, hi = max(k, k0), min(keep, k0 + len(have), n)
@@ -1609,7 +1633,7 @@ class ResidMemo:
     loses rows at its front): which rows the windows could use at the last call, each row's
     departure from its centred median (the residual outlier test), and the per-row results
     of the tests whose windows look back only (rate of change, flat line, attenuation
-    ranges). A row's result is kept while no row of its windows changed: rows before the
+    ranges), and the record's step while it keeps one step throughout. A row's result is kept while no row of its windows changed: rows before the
     first row whose usability changed or that is new (for the flat line, whose windows hold
     values only, every row held before).
 
@@ -1624,6 +1648,7 @@ class ResidMemo:
         self.dropped = False              # whether the record has lost rows at its front
         self.lost = False                 # ... since the last call
         self.spike: np.ndarray | None = None  # spike flags of every row at the last call
+        self.step: float | None = None    # the record's one step [s] at the last call (None: not one)
 
     def drop(self, rows: int) -> None:
         """Forget the first ``rows`` rows (the record lost them at its front)."""
