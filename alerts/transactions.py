@@ -14,8 +14,7 @@ from typing import Any, Iterator
 __all__ = ["LazySavepoint", "savepoint", "transaction"]
 
 
-@contextlib.contextmanager
-def transaction(target: Any) -> Iterator[sqlite3.Connection]:
+def transaction(target: Any) -> "_Transaction":
     """One immediate write transaction: commit on success, roll back on any exception.
 
     Parameters
@@ -25,26 +24,43 @@ def transaction(target: Any) -> Iterator[sqlite3.Connection]:
         Where to write. Inside a transaction already open on the connection, the outer one
         decides (nothing is begun, committed or rolled back here).
 
-    Yields
-    ------
-    sqlite3.Connection
-        The connection, for the statements of the transaction.
+    Returns
+    -------
+    context manager
+        Entered, it gives the connection, for the statements of the transaction.
     """
-    conn = target if isinstance(target, sqlite3.Connection) else target.conn
-    if conn.in_transaction:
-        yield conn
-        return
-    conn.execute("BEGIN IMMEDIATE")
-    try:
-        yield conn
-    except BaseException:
-        _roll_back(conn)
-        raise
-    try:
-        conn.execute("COMMIT")
-    except BaseException:  # (busy, an I/O error): nothing of it kept, nothing left open for others to join
-        _roll_back(conn)
-        raise
+    return _Transaction(target if isinstance(target, sqlite3.Connection) else target.conn)
+
+
+class _Transaction:
+    """:func:`transaction`'s context manager: a class rather than a generator, as a pass
+    enters a dozen of them (most nested, doing nothing) and a generator's costs several
+    times more than the little they do."""
+
+    __slots__ = ("conn", "nested")
+
+    def __init__(self, conn: sqlite3.Connection):
+        self.conn, self.nested = conn, False
+
+    def __enter__(self) -> sqlite3.Connection:
+        conn = self.conn
+        self.nested = conn.in_transaction
+        if not self.nested:
+            conn.execute("BEGIN IMMEDIATE")
+        return conn
+
+    def __exit__(self, kind: Any, exc: Any, tb: Any) -> bool:
+        if self.nested:
+            return False
+        if kind is not None:
+            _roll_back(self.conn)
+            return False
+        try:
+            self.conn.execute("COMMIT")
+        except BaseException:  # (busy, an I/O error): nothing of it kept, nothing left open for others to join
+            _roll_back(self.conn)
+            raise
+        return False
 
 
 def _roll_back(conn: sqlite3.Connection) -> None:

@@ -118,3 +118,32 @@ def test_a_lazy_part_sets_its_savepoint_only_once_begun_and_then_undoes_its_writ
         assert conn.in_transaction
     assert _keys(conn) == ["alone", "before", "four", "three"]
     assert sum(s.startswith("SAVEPOINT") for s in said) == 2
+
+
+def test_a_nested_transaction_leaves_everything_to_the_outer_one(conn):
+    """Inside an open transaction, another neither commits, nor rolls back on an error: the
+    outer one decides, and commits all that was written, the nested part's too."""
+    with transaction(conn):
+        conn.execute("INSERT INTO x VALUES ('outer')")
+        with pytest.raises(RuntimeError):
+            with transaction(conn) as inner:
+                assert inner is conn
+                conn.execute("INSERT INTO x VALUES ('nested')")
+                raise RuntimeError("invented")
+        assert conn.in_transaction
+        with transaction(conn):
+            conn.execute("INSERT INTO x VALUES ('second')")
+        assert conn.in_transaction  # not committed by the nested one
+        conn.execute("INSERT INTO x VALUES ('last')")
+    assert not conn.in_transaction and _keys(conn) == ["last", "nested", "outer", "second"]
+
+
+def test_a_transaction_object_entered_again_starts_afresh(conn):
+    """The context manager a transaction returns keeps no state from an earlier use."""
+    with transaction(conn):
+        t = transaction(conn)
+        with t:  # nested here
+            conn.execute("INSERT INTO x VALUES ('a')")
+    with t:  # now the outer one: it commits
+        conn.execute("INSERT INTO x VALUES ('b')")
+    assert not conn.in_transaction and _keys(conn) == ["a", "b"]

@@ -26,7 +26,7 @@ import sqlite3
 import time
 from dataclasses import dataclass
 from pathlib import Path
-from typing import Any, Iterator, Sequence
+from typing import Any, ContextManager, Sequence
 
 import numpy as np
 import pandas as pd
@@ -184,12 +184,10 @@ class Store:
                 MIGRATIONS[v](self.db)
                 self.set_meta("schema_version", str(v))
 
-    @contextlib.contextmanager
-    def transaction(self) -> Iterator[sqlite3.Connection]:
+    def transaction(self) -> ContextManager[sqlite3.Connection]:
         """An immediate write transaction: commit on success, roll back on any exception
         (:func:`alerts.transactions.transaction`; nested, the outer transaction decides)."""
-        with transaction(self.conn) as conn:
-            yield conn
+        return transaction(self.conn)
 
     # ------------------------------------------------------------------ meta
     def get_meta(self, key: str, default: str | None = None) -> str | None:
