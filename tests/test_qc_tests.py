@@ -368,3 +368,13 @@ def test_the_sample_std_is_numpys_to_the_bit(values, scale):
     """The rate of change's sd at a steady pass's new row (``_sample_std``) is ``np.std(ddof=1)``."""
     w = np.array(values) * scale
     assert qc._sample_std(w) == float(np.std(w, ddof=1))
+
+
+@pytest.mark.parametrize("shape, value, dtype", [(5, np.nan, float), (3, qc.NOT_EVALUATED, np.int8),
+                                                 ((2, 3), -1, np.int64), (0, qc.PASS, np.int8),
+                                                 ((4, 3), np.nan, float), (7, -1, np.int8)])
+def test_the_filled_helper_is_numpys_full(shape, value, dtype):
+    """``_filled`` stands in for ``np.full`` on the steady pass: the same dtype, shape and values."""
+    got, want = qc._filled(shape, value, dtype), np.full(shape, value, dtype=dtype)
+    assert got.dtype == want.dtype and got.shape == want.shape
+    assert np.array_equal(got, want, equal_nan=True)

@@ -111,7 +111,7 @@ class _Sensor:
         self.t = np.concatenate([self.t, t])
         self.v = np.concatenate([self.v, v])
         self.flag = np.concatenate([self.flag, flag])
-        self.packed = np.concatenate([self.packed, np.full(len(t), -1, dtype=np.int64)])
+        self.packed = np.concatenate([self.packed, _qc._filled(len(t), -1, np.int64)])
         if self.p is not None:
             self.p = np.concatenate([self.p, p])
 
@@ -318,7 +318,7 @@ class QcContext:
                 other_ok = np.isfinite(vo) & (flag_o != FAIL)
                 table = table.copy()
                 dm = _qc.difference_on_arrays(tf[k:], h.v[k:], to[other_ok], vo[other_ok], s.gap_limit)
-                multi = np.full(len(dm), NOT_EVALUATED, dtype=np.int8)
+                multi = _qc._filled(len(dm), NOT_EVALUATED, np.int8)
                 fin = np.isfinite(dm)
                 multi[fin] = _qc.PASS
                 multi[fin & (np.abs(dm) > s.multi_suspect)] = _qc.SUSPECT
