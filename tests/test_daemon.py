@@ -269,6 +269,19 @@ def test_primary_backup_drift_reaches_the_rules_as_an_equipment_fault(tmp_path):
             ingest_lines(store, st.sensors[role], lines, received=T0 + 5 * day)
         end = int(T0 + 60 * minutes[-1])
         faults = d._diagnostic_faults(rt, now=end + 60, end_t=end)
+        # the next passes, before the next run, get the same faults, as equipment_faults
+        # gives them from the run's results; a change made to one pass's copy stays there
+        from monitor.quality import diagnostics
+        fresh = diagnostics.equipment_faults(end + 120, st.qc, station=st.id, drift=rt.diag["drift"])
+        for key, clock in rt.diag.items():
+            if key.startswith("clock."):
+                fresh += diagnostics.equipment_faults(end + 120, st.qc, station=st.id, clock=clock)
+        again = d._diagnostic_faults(rt, now=end + 120, end_t=end + 60)
+        assert again == fresh == faults
+        again[0]["value"] = -1.0
+        assert d._diagnostic_faults(rt, now=end + 180, end_t=end + 120) == faults
+        rt.diag = {}  # a run that found nothing: its faults are gone at once
+        assert d._diagnostic_faults(rt, now=end + 240, end_t=end + 180) == []
     (f,) = [f for f in faults if f["kind"] == "sensor_drift"]
     # primary - backup grows by 20 mm/day (the injected drift); Theil-Sen on hourly medians
     assert f["value"] == pytest.approx(20.0, abs=1.0)  # mm/day

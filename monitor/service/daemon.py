@@ -381,6 +381,7 @@ class StationRuntime:
     diag_at: float = -math.inf      # data time of the last drift and clock diagnostics [Unix s]
     diag_phase: float = 0.0         # fraction of daemon.diagnostics_minutes this station's runs are offset by
     diag: dict = field(default_factory=dict)  # their results: "drift", "clock.primary", ...
+    diag_faults: tuple | None = field(default=None, repr=False)  # (diag, settings, the faults they give)
     diag_memory: DiagnosticsMemory = field(default_factory=DiagnosticsMemory, repr=False)  # between runs
     predicted: "PredictionMemo | None" = field(default=None, repr=False)
     qc_context: QcContext = field(default_factory=QcContext, repr=False)  # QC's record between passes
@@ -1254,17 +1255,23 @@ class Daemon:
             # all landing in one pass each hour.
             rt.diag_at = end_t - (rt.diag_phase * period if rt.diag_at == -math.inf else 0.0)
             rt.diag = self._run_diagnostics(rt, end_t)
-        faults: list[dict] = []
         qs = st.qc
-        try:
-            if "drift" in rt.diag:
-                faults += self.diag.equipment_faults(now, qs, station=st.id, drift=rt.diag["drift"])
-            for key, clock in rt.diag.items():
-                if key.startswith("clock."):
-                    faults += self.diag.equipment_faults(now, qs, station=st.id, clock=clock)
-        except Exception:
-            log.exception("station %s: drift and clock fault check failed", st.id)
-        return faults
+        made = rt.diag_faults
+        if made is None or made[0] is not rt.diag or made[1] is not qs:
+            # (drift and clock faults depend on the results and the limits alone, not on
+            # ``now``: made once a run, each pass gets copies)
+            faults: list[dict] = []
+            try:
+                if "drift" in rt.diag:
+                    faults += self.diag.equipment_faults(now, qs, station=st.id, drift=rt.diag["drift"])
+                for key, clock in rt.diag.items():
+                    if key.startswith("clock."):
+                        faults += self.diag.equipment_faults(now, qs, station=st.id, clock=clock)
+            except Exception:
+                log.exception("station %s: drift and clock fault check failed", st.id)
+                return faults
+            made = rt.diag_faults = (rt.diag, qs, faults)
+        return [dict(f) for f in made[2]]
 
     def _run_diagnostics(self, rt: StationRuntime, end_t: int) -> dict:
         """Drift (primary against backup, over ``qc.drift_window``) and clock offset (the
