@@ -611,3 +611,27 @@ def test_the_step_kept_between_calls_follows_a_change_of_sampling():
         assert np.array_equal(got, want), (len(t), np.argwhere(got != want)[:5])
         seen.update(got[:, qc._COL["atten"]].tolist())
     assert {qc.PASS, qc.NOT_EVALUATED} <= seen  # both sides of the coverage were met
+
+
+@pytest.mark.parametrize("seed", [1, 2])
+def test_a_growing_column_holds_what_concatenation_and_slicing_would(seed):
+    """The context's columns grow in a buffer with room to spare; each step they must hold
+    what ``np.concatenate`` and slicing give, and a view taken before a step must not see
+    what the step wrote (only the rows past its end are written, or a new buffer)."""
+    rng = np.random.default_rng(seed)
+    want = rng.normal(size=300)
+    col = qc_context._Column(want.copy())
+    kept = []
+    for _ in range(400):
+        before = col.view()
+        kept.append((before, before.copy()))
+        if rng.random() < 0.5:
+            new = rng.normal(size=int(rng.integers(0, 4)))
+            got, want = col.append(new), np.concatenate([want, new])
+        elif rng.random() < 0.8:
+            cut = int(rng.integers(0, 3))
+            got, want = col.drop(cut), want[cut:]
+        else:
+            got, want = col.append(count=2, fill=-1.0), np.concatenate([want, [-1.0, -1.0]])
+        assert np.array_equal(got, want) and np.array_equal(col.view(), want)
+    assert all(np.array_equal(a, b) for a, b in kept)

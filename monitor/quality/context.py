@@ -83,37 +83,78 @@ class QcRows:
         return out
 
 
+class _Column:
+    """A 1-D array that grows at its end and loses rows at its front, held in a larger
+    buffer: a pass's few new rows are written in place instead of the whole array copied
+    (the buffer is copied only when its spare room runs out, then with an eighth more)."""
+
+    __slots__ = ("buf", "lo", "hi")
+
+    def __init__(self, a: np.ndarray):
+        self.buf, self.lo, self.hi = a, 0, len(a)
+
+    def view(self) -> np.ndarray:
+        """The rows held (a view of the buffer)."""
+        return self.buf[self.lo:self.hi]
+
+    def append(self, new: np.ndarray | None = None, count: int = 0, fill: Any = None) -> np.ndarray:
+        """Add ``new`` (or ``count`` rows of ``fill``) at the end; returns :meth:`view`."""
+        m = len(new) if new is not None else count
+        if self.hi + m > len(self.buf):
+            n = self.hi - self.lo
+            buf = np.empty(n + m + max(64, n // 8), dtype=self.buf.dtype)
+            buf[:n] = self.buf[self.lo:self.hi]
+            self.buf, self.lo, self.hi = buf, 0, n
+        if new is not None:
+            self.buf[self.hi:self.hi + m] = new
+        else:
+            self.buf[self.hi:self.hi + m] = fill
+        self.hi += m
+        return self.buf[self.lo:self.hi]
+
+    def drop(self, count: int) -> np.ndarray:
+        """Forget the first ``count`` rows; returns :meth:`view`."""
+        self.lo = min(self.lo + count, self.hi)
+        return self.buf[self.lo:self.hi]
+
+
 class _Sensor:
-    """One level sensor's rows held: from the context's start to the last row read."""
+    """One level sensor's rows held: from the context's start to the last row read.
+
+    ``t``, ``v``, ``flag``, ``p`` and ``packed`` are views of growing buffers
+    (:class:`_Column`): write into them in place, never assign them.
+    """
 
     def __init__(self, t: np.ndarray, v: np.ndarray, flag: np.ndarray, p: np.ndarray | None):
+        self._cols = [_Column(t), _Column(v), _Column(flag)] + ([_Column(p)] if p is not None else [])
         self.t = t          # [Unix s] int64, sorted, unique
         self.v = v          # [m], NaN where missing
         self.flag = flag    # observations.flag as stored (NULL read as 2)
         self.p = p          # predicted tide [m] or None
         # the qc_tests rows as stored (packed; -1 unknown) of rows packed_at, packed_at + 1, ...
-        self.packed = np.full(len(t), -1, dtype=np.int64)
+        self._packed = _Column(_qc._filled(len(t), -1, np.int64))
+        self.packed = self._packed.view()
         self.packed_at = 0
         self.ov_t = np.empty(0, dtype=np.int64)  # the technician's overrides from the start on
         self.ov_f = np.empty(0, dtype=np.int8)
         self.memo = _qc.ResidMemo()
 
+    def _views(self, views: list) -> None:
+        self.t, self.v, self.flag = views[0], views[1], views[2]
+        if len(views) > 3:
+            self.p = views[3]
+
     def drop_before(self, t0: int) -> None:
         cut = int(self.t.searchsorted(t0, side="left"))
         if cut:
-            self.t, self.v, self.flag = self.t[cut:], self.v[cut:], self.flag[cut:]
+            self._views([c.drop(cut) for c in self._cols])
             self.packed_at -= cut
-            if self.p is not None:
-                self.p = self.p[cut:]
             self.memo.drop(cut)
 
     def append(self, t: np.ndarray, v: np.ndarray, flag: np.ndarray, p: np.ndarray | None) -> None:
-        self.t = np.concatenate([self.t, t])
-        self.v = np.concatenate([self.v, v])
-        self.flag = np.concatenate([self.flag, flag])
-        self.packed = np.concatenate([self.packed, _qc._filled(len(t), -1, np.int64)])
-        if self.p is not None:
-            self.p = np.concatenate([self.p, p])
+        new = (t, v, flag, p)
+        self._views([c.append(a) for c, a in zip(self._cols, new)])
+        self.packed = self._packed.append(count=len(t), fill=-1)
 
     def stored(self, rows: np.ndarray) -> np.ndarray:
         """The packed qc_tests rows held as stored at ``rows`` (-1: not known)."""
@@ -126,9 +167,15 @@ class _Sensor:
         """Forget what rows before ``row`` were written as: only a backfill or late data
         (which rebuild the context) write them again."""
         if row > self.packed_at:
-            self.packed = self.packed[row - self.packed_at:]
+            self.packed = self._packed.drop(row - self.packed_at)
             self.packed_at = row
         self.memo.keep_rows_from(row)
+
+    def unknown_before(self, count: int) -> None:
+        """Hold ``count`` more rows before those of ``packed``, not known as stored (-1)."""
+        self._packed = _Column(np.concatenate([np.full(count, -1, dtype=np.int64), self.packed]))
+        self.packed = self._packed.view()
+        self.packed_at -= count
 
 
 class QcContext:
@@ -368,8 +415,8 @@ class QcContext:
         _qc.write_rows(db, station, sensor, t[todo], part[todo], t[changed], flag[changed])
         i = rows - h.packed_at
         if i[0] < 0:  # rows before those kept (not on a steady pass): hold them again
-            h.packed = np.concatenate([np.full(-int(i[0]), -1, dtype=np.int64), h.packed])
-            h.packed_at, i = int(rows[0]), i - int(i[0])
+            h.unknown_before(-int(i[0]))
+            i = rows - h.packed_at
         h.packed[i] = packed
         h.flag[rows] = flag
 
