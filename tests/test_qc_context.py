@@ -54,6 +54,8 @@ def _record(seed: int = 11):
     s = HISTORY
     primary[s + 10] += 0.30                    # a lone spike
     primary[s + 30:s + 100] = primary[s + 30]  # a stuck float, 70 min
+    primary[s + 120:] += 0.30                  # a bore passing both gauges: one step in each
+    backup[s + 120:] += 0.30
     keep = np.ones(n, bool)
     keep[s + 140:s + 160] = False              # a 20-minute gap in the primary
     backup[s + 180:s + 240] += 8 * cm          # the backup disagrees for an hour
@@ -124,7 +126,7 @@ def test_streamed_one_sample_per_pass_the_flags_equal_a_whole_record_run(tmp_pat
         st.write("primary", t[:HISTORY][keep[:HISTORY]], primary[:HISTORY][keep[:HISTORY]])
         st.write("backup", t[:HISTORY], backup[:HISTORY])
         st.process(model, s)
-    feature_at = {10, 30, 60, 90, 100, 160, 180, 200, 240, 255, 270, 280}
+    feature_at = {10, 30, 60, 90, 100, 120, 160, 180, 200, 240, 255, 270, 280}
     rebuilt_at = []
     try:
         for j in range(STREAM):
@@ -165,6 +167,9 @@ def test_streamed_one_sample_per_pass_the_flags_equal_a_whole_record_run(tmp_pat
     assert (final["gap"] == qc.MISSING).any()
     assert (final["multi"] == qc.SUSPECT).any()
     assert final.loc[pd.Timestamp(int(t[HISTORY + 265]), unit="s", tz="UTC"), "flag"] == qc.FAIL
+    # the bore: each sensor's step alone fails; confirmed by the other, it is suspect
+    assert final.loc[pd.Timestamp(int(t[HISTORY + 120]), unit="s", tz="UTC"), "spike"] == qc.SUSPECT
+    assert final.loc[pd.Timestamp(int(t[HISTORY + 200]), unit="s", tz="UTC"), "spike"] == qc.FAIL
     # rebuilt after the gap (first row after it), the late rows and the override; else steady
     assert rebuilt_at == [160, 255, 270]
 

@@ -356,7 +356,6 @@ class QcContext:
         for sn, h in self.sensors.items():
             k, table = single[sn]
             others = [o for o in self.sensors if o != sn]
-            tf = h.t.astype(float)
             if others:
                 o = others[0]
                 ho, (ko, table_o) = self.sensors[o], single[o]
@@ -364,15 +363,18 @@ class QcContext:
                 flag_o = _qc._aggregate(table_o)
                 other_ok = np.isfinite(vo) & (flag_o != FAIL)
                 table = table.copy()
-                dm = _qc.difference_on_arrays(tf[k:], h.v[k:], to[other_ok], vo[other_ok], s.gap_limit)
+                dm = _qc.difference_on_arrays(h.t[k:].astype(float), h.v[k:], to[other_ok], vo[other_ok],
+                                              s.gap_limit)
                 multi = _qc._filled(len(dm), NOT_EVALUATED, np.int8)
                 fin = np.isfinite(dm)
                 multi[fin] = _qc.PASS
                 multi[fin & (np.abs(dm) > s.multi_suspect)] = _qc.SUSPECT
                 table[:, _COL["multi"]] = np.where(table[:, _COL["syntax"]] != MISSING, multi, NOT_EVALUATED)
-                shape_only = ~(table_o[:, _NOT_SHAPE] == FAIL).any(axis=1) & np.isfinite(vo)
-                resid = h.v - h.p if h.p is not None else h.v
-                table = _qc.confirm_on_arrays(table, tf, h.v, resid, to[shape_only], vo[shape_only], s, k)
+                if (table[:, _COL["spike"]] == FAIL).any():  # (only a failed spike may be confirmed)
+                    shape_only = ~(table_o[:, _NOT_SHAPE] == FAIL).any(axis=1) & np.isfinite(vo)
+                    resid = h.v - h.p if h.p is not None else h.v
+                    table = _qc.confirm_on_arrays(table, h.t.astype(float), h.v, resid, to[shape_only],
+                                                  vo[shape_only], s, k)
             flag = _qc._aggregate(table)
             tt = h.t[k:]
             sel = (tt >= write_from) & (tt <= end_t)
