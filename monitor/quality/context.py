@@ -157,8 +157,10 @@ class _Sensor:
         self.packed = self._packed.append(count=len(t), fill=-1)
 
     def stored(self, rows: np.ndarray) -> np.ndarray:
-        """The packed qc_tests rows held as stored at ``rows`` (-1: not known)."""
+        """The packed qc_tests rows held as stored at ``rows``, ascending (-1: not known)."""
         i = rows - self.packed_at
+        if len(i) and i[0] >= 0 and i[-1] < len(self.packed):  # (a steady pass: every row held)
+            return self.packed[i]
         inside = (i >= 0) & (i < len(self.packed))
         return np.where(inside, self.packed[np.minimum(np.maximum(i, 0), len(self.packed) - 1)], -1) \
             if len(self.packed) else np.full(len(rows), -1, dtype=np.int64)
