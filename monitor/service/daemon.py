@@ -484,6 +484,9 @@ class DerivedTail:
         self.t = np.asarray(t, dtype=np.int64)
         self.columns = {c: np.asarray(columns[c], dtype=float) for c in DERIVED_COLUMNS}
         self.since = int(since)
+        #: the last steady pass's computation (:class:`monitor.surge.residual.DerivedMemo`):
+        #: its rows from the first new or changed one on are the only ones made again
+        self.memo: surge_residual.DerivedMemo | None = None
 
     @classmethod
     def read(cls, store: Store, station: str, since: int, end_t: int) -> "DerivedTail":
@@ -927,7 +930,8 @@ class Daemon:
         rt.diag_memory.note_changed(start_t - (st.qc or self.qc.QcSettings()).resid_window)
         model = rt.model
         rs = self.cfg.residual
-        lookback = int((rs.median_minutes + rs.mean_minutes) * 60) + max(REWRITE_BACK, TREND_BACK)
+        # every row written or handed to the rules gets the smoothed value of the whole record
+        lookback = surge_residual.smoothing_span_s(rs.median_minutes, rs.mean_minutes) + max(REWRITE_BACK, TREND_BACK)
         predicted = None
         if model is not None:
             if rt.predicted is None or rt.predicted.model is not model:
@@ -1041,17 +1045,17 @@ class Daemon:
             pt, pv, _ = store.observation_arrays(st.id, "barometer", start_t - lookback - 3600, end_t + 3600)
             ok = np.isfinite(pv)
             pressure = (pt[ok].astype(float), pv[ok])
-        full = surge_residual.derive_arrays(t, value, flag, rt.predicted.predict_seconds(t), pressure,
-                                            rs.median_minutes, rs.mean_minutes, rs.reference_pressure)
-        w = t >= start_t - REWRITE_BACK
-        rows = {c: full[c][w] for c in DERIVED_COLUMNS}
-        changed = tail.differs(t[w], rows)
+        full, lo = self._derive_in_memory(tail, t, value, flag, rt.predicted.predict_seconds(t), pressure,
+                                          int(t.searchsorted(start_t - max(REWRITE_BACK, TREND_BACK))),
+                                          int(t.searchsorted(start_t - REWRITE_BACK)))
+        rows = {c: full[c][lo:] for c in DERIVED_COLUMNS}
+        changed = tail.differs(t[lo:], rows)
         new = int((t >= start_t).sum())
         self._ensure_extremes(rt, start_t, end_t)
         # the forecaster was learnt by process_window, before the pass's transaction
         with store.transaction():  # the pass's (or, alone, one commit for these rows)
-            store.write_derived_rows(st.id, t[w][changed], {c: v[changed] for c, v in rows.items()})
-            tail.merge(t[w], rows, end_t - TAIL_KEEP)
+            store.write_derived_rows(st.id, t[lo:][changed], {c: v[changed] for c, v in rows.items()})
+            tail.merge(t[lo:], rows, end_t - TAIL_KEEP)
             self._skew_surges(rt, start_t, end_t)
             context = self._forecast_in_memory(rt, tail, start_t, end_t)
         k = t >= start_t - TREND_BACK
@@ -1059,6 +1063,22 @@ class Daemon:
                                         for c in ("observed", "predicted", "residual", "smoothed", "flag")})
         rt.tail, rt.tail_end = tail, end_t
         return new, samples, context
+
+    def _derive_in_memory(self, tail: DerivedTail, t: np.ndarray, value: np.ndarray, flag: np.ndarray,
+                          predicted: np.ndarray, pressure: tuple | None, used: int,
+                          written: int) -> tuple[dict[str, np.ndarray], int]:
+        """The primary's derived columns of the rows from ``used`` on [index] (those the rules
+        or the store get: ``written`` on go to the store), bit for bit those of
+        :func:`monitor.surge.residual.derive_arrays` over the whole lookback, the smoothed
+        residual made again only from the first row whose inputs changed since the last pass
+        (a new sample, a flag quality control revised, an override), with the memo the tail
+        keeps (:attr:`DerivedTail.memo`). Returns them and the first row [index, >=
+        ``written``] that may differ from the rows held: the rows before it are held as they are."""
+        rs = self.cfg.residual
+        full, changed, tail.memo = surge_residual.derive_arrays_again(
+            tail.memo, t, value, flag, predicted, pressure, rs.median_minutes, rs.mean_minutes,
+            rs.reference_pressure, first=used)
+        return full, max(changed, written)
 
     def _primary_rows(self, rt: StationRuntime, a: int, end_t: int) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
         """The primary's observations with ``a <= t <= end_t`` as :meth:`Store.observation_arrays`
