@@ -392,6 +392,9 @@ class StationRuntime:
     tail_model: Any = field(default=None, repr=False)
     tail_end: int | None = None
     horizon: tuple | None = field(default=None, repr=False)  # (cfg, its longest clear_horizon)
+    # (hw_t, slot) of the forecasts steady passes put in hw_forecast_log, committed or in the
+    # pass's open transaction (forgotten with it, _forget_pass): never logged again
+    logged: set = field(default_factory=set, repr=False)
 
     # The tide's extremes (kept about a week) are kept as plain arrays: the pass reads
     # ``turns``; code that needs the table gets a new pandas object at each read (see Frozen).
@@ -495,6 +498,8 @@ class DerivedTail:
 
     def differs(self, t: np.ndarray, columns: dict[str, np.ndarray]) -> np.ndarray:
         """Which of the rows at times ``t`` are not held, or held with other values."""
+        if not len(self.t) or (len(t) and t[0] > self.t[-1]):
+            return np.ones(len(t), dtype=bool)  # all after the rows held (a steady pass's new rows)
         pos = self.t.searchsorted(t)
         held = pos < len(self.t)
         held[held] = self.t[pos[held]] == t[held]
@@ -913,11 +918,12 @@ class Daemon:
     def _forget_pass(rt: StationRuntime) -> None:
         """After a steady pass's transaction rolled back: forget what the station holds on
         the strength of the pass's writes (QC's rows with their flags as stored, the derived
-        rows held), so the next pass reads them from the store. (The diagnostics' memory
+        rows held, the forecasts known to be logged), so the next pass reads them from the store. (The diagnostics' memory
         needs no more: every pass marks its rows as changed, ``note_changed``, and the next
         run reads them again.)"""
         rt.qc_context.reset()
         rt.tail = None
+        rt.logged.clear()
 
     def _window(self, rt: StationRuntime, start_t: int, end_t: int, now: float, latest: bool,
                 steady: bool) -> tuple[int, bool]:
@@ -1170,7 +1176,7 @@ class Daemon:
             rt.storm_seen |= state.storm
             fcs += [rt.forecaster.forecast(state, hw_t, level)
                     for hw_t, level in rt.turns.high_waters_after(state.t, horizon.value)]
-        self._keep_forecasts(st.id, fcs)
+        self._keep_forecasts(st.id, fcs, rt.logged)
         return fcs
 
     @staticmethod
@@ -1203,11 +1209,27 @@ class Daemon:
                                                      max_lead_h=self._horizon_delta(rt).total_seconds() / 3600)
             rt.history_at, rt.storm_seen = end_t, False
 
-    def _keep_forecasts(self, station: str, fcs: list[dict]) -> None:
-        """Each forecast as the latest of its high water, and in the forecast log (one transaction)."""
+    def _keep_forecasts(self, station: str, fcs: list[dict], logged: set | None = None) -> None:
+        """Each forecast as the latest of its high water, and in the forecast log (one
+        transaction). ``logged``: the (hw_t, slot) known to be in the log already (the log
+        keeps the first forecast of each; those are not offered to it again), to which
+        those logged now are added."""
         with self.store.transaction() as conn:
             self.store.write_forecasts(station, fcs)
-            surge_forecast.log_forecasts(conn, station, fcs)
+            surge_forecast.log_forecasts(conn, station, fcs if logged is None else self._not_logged(fcs, logged))
+
+    @staticmethod
+    def _not_logged(fcs: list[dict], logged: set) -> list[dict]:
+        """The forecasts whose (hw_t, slot) ``logged`` does not hold, now added to it (and
+        those of slots two or more before the newest dropped from it)."""
+        slot = surge_forecast.LOG_SLOT_S
+        out = [fc for fc in fcs if (int(fc["hw_t"]), int(fc["made_t"]) // slot) not in logged]
+        if out:
+            keys = {(int(fc["hw_t"]), int(fc["made_t"]) // slot) for fc in out}
+            newest = max(k[1] for k in keys)
+            logged -= {k for k in logged if k[1] < newest - 1}
+            logged |= keys
+        return out
 
     def _alert_context(self, rt: StationRuntime, fcs: list[dict] | None, qc_results: dict, now: float,
                        end_t: int | None = None):

@@ -228,12 +228,45 @@ def _smoothed_from(tv: np.ndarray, rv: np.ndarray, k0: int, median_minutes: floa
     residuals ``rv`` [m] of the usable samples): the running median, then the running mean
     of the medians, each over its trailing window; the medians computed only from the
     first one the means of ``k0`` on read."""
+    if len(tv) - k0 <= _FEW:
+        return _smoothed_few(tv, rv, k0, _minutes_ns(median_minutes), _minutes_ns(mean_minutes) if mean_minutes > 0 else 0)
     if mean_minutes <= 0:
         return _trailing(tv, rv, _minutes_ns(median_minutes), _window_median, k0)
     mean_ns = _minutes_ns(mean_minutes)
     k1 = int(tv.searchsorted(tv[k0] - mean_ns, side="right"))  # the mean of k0 reads medians from k1
     med = _trailing(tv, rv, _minutes_ns(median_minutes), _window_median, k1)
     return _trailing(tv[k1:], med, mean_ns, _window_mean, k0 - k1)
+
+
+#: at most this many samples' smoothed values are made in Python floats (a steady pass's new
+#: sample), where a few numpy calls per window would cost more than the arithmetic
+_FEW = 3
+
+
+def _smoothed_few(tv: np.ndarray, rv: np.ndarray, k0: int, median_ns: int, mean_ns: int) -> np.ndarray:
+    """:func:`_smoothed_from` in Python floats for the few samples from ``k0`` on: the same
+    windows, the same median (the middle values' mean) and the same additions in the same
+    order (newest first, then divided by the count), so the same bits."""
+    k1 = int(tv.searchsorted(tv[k0] - mean_ns, side="right")) if mean_ns else k0
+    a = int(tv.searchsorted(tv[k1] - median_ns, side="right"))
+    t, r = tv[a:].tolist(), rv[a:].tolist()
+    medians, lo = [], 0
+    for j in range(k1 - a, len(t)):
+        while t[lo] <= t[j] - median_ns:
+            lo += 1
+        w = sorted(r[lo:j + 1])
+        medians.append((w[(len(w) - 1) // 2] + w[len(w) // 2]) / 2)
+    if not mean_ns:
+        return np.array(medians, dtype=float)
+    tm, out, lo = t[k1 - a:], [], 0
+    for k in range(k0 - k1, len(tm)):
+        while tm[lo] <= tm[k] - mean_ns:
+            lo += 1
+        total = medians[k]
+        for j in range(k - 1, lo - 1, -1):
+            total += medians[j]
+        out.append(total / (k - lo + 1))
+    return np.array(out, dtype=float)
 
 
 def _trailing(t_ns: np.ndarray, v: np.ndarray, width_ns: int, reduce, first: int = 0) -> np.ndarray:
