@@ -918,9 +918,9 @@ class Daemon:
     def _forget_pass(rt: StationRuntime) -> None:
         """After a steady pass's transaction rolled back: forget what the station holds on
         the strength of the pass's writes (QC's rows with their flags as stored, the derived
-        rows held, the forecasts known to be logged), so the next pass reads them from the store. (The diagnostics' memory
-        needs no more: every pass marks its rows as changed, ``note_changed``, and the next
-        run reads them again.)"""
+        rows held, the forecasts known to be logged), so the next pass reads them from the
+        store. (The diagnostics' memory needs no more: every pass marks its rows as changed,
+        ``note_changed``, and the next run reads them again.)"""
         rt.qc_context.reset()
         rt.tail = None
         rt.logged.clear()
@@ -1036,11 +1036,11 @@ class Daemon:
                         lookback: int) -> tuple[int, engine.Samples, list] | None:
         """:meth:`_pass_full` for a window that follows the last pass: the primary's
         observations of the residual's lookback taken as arrays from the QC context that has
-        just judged the window (:meth:`_primary_rows`), the residual computed with numpy
-        (:func:`monitor.surge.residual.derive_arrays`), only the derived rows that are new
-        or changed written, the forecast's storm state taken from the rows held
-        (:class:`DerivedTail`) and the coming high waters from :class:`TideTurns`. Stores
-        what the full way stores."""
+        just judged the window (:meth:`_primary_rows`), the smoothed residual made again
+        only from the first row whose inputs changed since the last pass
+        (:meth:`_derive_in_memory`), only the derived rows that are new or changed written,
+        the forecast's storm state taken from the rows held (:class:`DerivedTail`) and the
+        coming high waters from :class:`TideTurns`. Stores what the full way stores."""
         st, store, rs = rt.cfg, self.store, self.cfg.residual
         tail, rt.tail = rt.tail, None  # any failure below: the next pass goes the full way
         t, value, flag = self._primary_rows(rt, start_t - lookback, end_t)

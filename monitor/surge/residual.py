@@ -229,7 +229,8 @@ def _smoothed_from(tv: np.ndarray, rv: np.ndarray, k0: int, median_minutes: floa
     of the medians, each over its trailing window; the medians computed only from the
     first one the means of ``k0`` on read."""
     if len(tv) - k0 <= _FEW:
-        return _smoothed_few(tv, rv, k0, _minutes_ns(median_minutes), _minutes_ns(mean_minutes) if mean_minutes > 0 else 0)
+        mean_ns = _minutes_ns(mean_minutes) if mean_minutes > 0 else 0
+        return _smoothed_few(tv, rv, k0, _minutes_ns(median_minutes), mean_ns)
     if mean_minutes <= 0:
         return _trailing(tv, rv, _minutes_ns(median_minutes), _window_median, k0)
     mean_ns = _minutes_ns(mean_minutes)
