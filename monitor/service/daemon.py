@@ -1216,20 +1216,25 @@ class Daemon:
         those logged now are added."""
         with self.store.transaction() as conn:
             self.store.write_forecasts(station, fcs)
-            surge_forecast.log_forecasts(conn, station, fcs if logged is None else self._not_logged(fcs, logged))
+            if logged is None:
+                surge_forecast.log_forecasts(conn, station, fcs)
+                return
+            new = [fc for fc in fcs if self._log_key(fc) not in logged]
+            surge_forecast.log_forecasts(conn, station, new)
+            self._note_logged(logged, {self._log_key(fc) for fc in new})
 
     @staticmethod
-    def _not_logged(fcs: list[dict], logged: set) -> list[dict]:
-        """The forecasts whose (hw_t, slot) ``logged`` does not hold, now added to it (and
-        those of slots two or more before the newest dropped from it)."""
-        slot = surge_forecast.LOG_SLOT_S
-        out = [fc for fc in fcs if (int(fc["hw_t"]), int(fc["made_t"]) // slot) not in logged]
-        if out:
-            keys = {(int(fc["hw_t"]), int(fc["made_t"]) // slot) for fc in out}
+    def _log_key(fc: dict) -> tuple[int, int]:
+        """A forecast's key in ``hw_forecast_log``: (hw_t [Unix s], half-hour slot)."""
+        return int(fc["hw_t"]), int(fc["made_t"]) // surge_forecast.LOG_SLOT_S
+
+    @staticmethod
+    def _note_logged(logged: set, keys: set) -> None:
+        """Add ``keys`` to ``logged``, dropping those of slots two or more before the newest."""
+        if keys:
             newest = max(k[1] for k in keys)
             logged -= {k for k in logged if k[1] < newest - 1}
             logged |= keys
-        return out
 
     def _alert_context(self, rt: StationRuntime, fcs: list[dict] | None, qc_results: dict, now: float,
                        end_t: int | None = None):
