@@ -51,6 +51,7 @@ def _tables(store: Store) -> dict[str, list]:
          "qc_tests": "SELECT * FROM qc_tests ORDER BY sensor, t",
          "derived": "SELECT * FROM derived ORDER BY t",
          "hw_forecasts": "SELECT * FROM hw_forecasts ORDER BY hw_t",
+         "hw_forecast_log": "SELECT * FROM hw_forecast_log ORDER BY hw_t, slot",
          "alert_state": "SELECT rule, level, watermark FROM alert_state ORDER BY rule",
          "processed": "SELECT value FROM meta WHERE key = 'processed.port'"}
     return {name: store.conn.execute(sql).fetchall() for name, sql in q.items()}
@@ -81,7 +82,13 @@ def _start(tmp_path, m2_stations) -> tuple[Store, Daemon, _Failing]:
     return store, d, failing
 
 
-def _run(tmp_path, m2_stations, fail: bool, windows: bool) -> dict[str, list]:
+def _logged_but_not_stored(store: Store, rt) -> set:
+    """The (hw_t, slot) the station holds as logged that hw_forecast_log does not hold."""
+    stored = set(store.conn.execute("SELECT hw_t, slot FROM hw_forecast_log WHERE station = 'port'").fetchall())
+    return set(rt.logged) - stored
+
+
+def _run(tmp_path, m2_stations, fail: bool, windows: bool, fail_at: int = FAIL_AT) -> dict[str, list]:
     """A minute at a time, the pass at ``FAIL_AT`` failing its transaction when ``fail``.
     ``windows``: each window handed to process_window one after the other, as a caller that
     keeps its own marks would (the window after the failed one starts where the failed one
@@ -98,14 +105,16 @@ def _run(tmp_path, m2_stations, fail: bool, windows: bool) -> dict[str, list]:
         for k in range(LIVE):
             t = T0 + HISTORY + k * minute
             _write(store, np.array([t]))
-            if fail and k == FAIL_AT:
+            if fail and k == fail_at:
                 failing.at = t
                 before = _tables(store)
                 with pytest.raises(sqlite3.OperationalError):
                     step(t)
                 assert _tables(store) == before  # nothing of the failed pass is stored
+                assert not _logged_but_not_stored(store, rt)
                 continue
             step(t)
+            assert not _logged_but_not_stored(store, rt)
         return _tables(store)
     finally:
         store.close()
@@ -127,6 +136,19 @@ def test_after_a_failed_transaction_the_station_forgets_what_it_held_of_the_pass
     # write neither, and the store would keep those samples unjudged and without residual.
     failed = _run(tmp_path / "failed", m2_stations, fail=True, windows=True)
     _same(failed, _run(tmp_path / "whole", m2_stations, fail=False, windows=True))
+
+
+@pytest.mark.parametrize("windows", [False, True])
+def test_a_failed_pass_that_opened_a_forecast_log_slot_leaves_no_slot_held_as_logged(tmp_path, m2_stations,
+                                                                                    windows):
+    # the pass at 26 h 30 min is the first of a half-hour slot: its forecasts would be the
+    # slot's first in the log; rolled back, the station must not hold them as logged (the
+    # steady passes do not offer the log what they hold as logged)
+    assert (T0 + HISTORY + 30 * minute) % 1800 == 0
+    failed = _run(tmp_path / "failed", m2_stations, fail=True, windows=windows, fail_at=30)
+    assert len(failed["hw_forecast_log"]) >= 2
+    if not windows:  # the pass after it does the failed one's window again
+        _same(failed, _run(tmp_path / "whole", m2_stations, fail=False, windows=False))
 
 
 def test_a_rule_that_fails_in_a_steady_pass_undoes_its_own_writes_alone(tmp_path, m2_stations, monkeypatch):

@@ -393,6 +393,9 @@ class StationRuntime:
     tail_model: Any = field(default=None, repr=False)
     tail_end: int | None = None
     horizon: tuple | None = field(default=None, repr=False)  # (cfg, its longest clear_horizon)
+    # (hw_t, slot) of the forecasts steady passes put in hw_forecast_log, committed or in the
+    # pass's open transaction (forgotten with it, _forget_pass): never logged again
+    logged: set = field(default_factory=set, repr=False)
 
     # The tide's extremes (kept about a week) are kept as plain arrays: the pass reads
     # ``turns``; code that needs the table gets a new pandas object at each read (see Frozen).
@@ -485,6 +488,9 @@ class DerivedTail:
         self.t = np.asarray(t, dtype=np.int64)
         self.columns = {c: np.asarray(columns[c], dtype=float) for c in DERIVED_COLUMNS}
         self.since = int(since)
+        #: the last steady pass's computation (:class:`monitor.surge.residual.DerivedMemo`):
+        #: its rows from the first new or changed one on are the only ones made again
+        self.memo: surge_residual.DerivedMemo | None = None
 
     @classmethod
     def read(cls, store: Store, station: str, since: int, end_t: int) -> "DerivedTail":
@@ -493,6 +499,8 @@ class DerivedTail:
 
     def differs(self, t: np.ndarray, columns: dict[str, np.ndarray]) -> np.ndarray:
         """Which of the rows at times ``t`` are not held, or held with other values."""
+        if not len(self.t) or (len(t) and t[0] > self.t[-1]):
+            return np.ones(len(t), dtype=bool)  # all after the rows held (a steady pass's new rows)
         pos = self.t.searchsorted(t)
         held = pos < len(self.t)
         held[held] = self.t[pos[held]] == t[held]
@@ -911,11 +919,12 @@ class Daemon:
     def _forget_pass(rt: StationRuntime) -> None:
         """After a steady pass's transaction rolled back: forget what the station holds on
         the strength of the pass's writes (QC's rows with their flags as stored, the derived
-        rows held), so the next pass reads them from the store. (The diagnostics' memory
-        needs no more: every pass marks its rows as changed, ``note_changed``, and the next
-        run reads them again.)"""
+        rows held, the forecasts known to be logged), so the next pass reads them from the
+        store. (The diagnostics' memory needs no more: every pass marks its rows as changed,
+        ``note_changed``, and the next run reads them again.)"""
         rt.qc_context.reset()
         rt.tail = None
+        rt.logged.clear()
 
     def _window(self, rt: StationRuntime, start_t: int, end_t: int, now: float, latest: bool,
                 steady: bool) -> tuple[int, bool]:
@@ -928,7 +937,8 @@ class Daemon:
         rt.diag_memory.note_changed(start_t - (st.qc or self.qc.QcSettings()).resid_window)
         model = rt.model
         rs = self.cfg.residual
-        lookback = int((rs.median_minutes + rs.mean_minutes) * 60) + max(REWRITE_BACK, TREND_BACK)
+        # every row written or handed to the rules gets the smoothed value of the whole record
+        lookback = surge_residual.smoothing_span_s(rs.median_minutes, rs.mean_minutes) + max(REWRITE_BACK, TREND_BACK)
         predicted = None
         if model is not None:
             if rt.predicted is None or rt.predicted.model is not model:
@@ -1027,11 +1037,11 @@ class Daemon:
                         lookback: int) -> tuple[int, engine.Samples, list] | None:
         """:meth:`_pass_full` for a window that follows the last pass: the primary's
         observations of the residual's lookback taken as arrays from the QC context that has
-        just judged the window (:meth:`_primary_rows`), the residual computed with numpy
-        (:func:`monitor.surge.residual.derive_arrays`), only the derived rows that are new
-        or changed written, the forecast's storm state taken from the rows held
-        (:class:`DerivedTail`) and the coming high waters from :class:`TideTurns`. Stores
-        what the full way stores."""
+        just judged the window (:meth:`_primary_rows`), the smoothed residual made again
+        only from the first row whose inputs changed since the last pass
+        (:meth:`_derive_in_memory`), only the derived rows that are new or changed written,
+        the forecast's storm state taken from the rows held (:class:`DerivedTail`) and the
+        coming high waters from :class:`TideTurns`. Stores what the full way stores."""
         st, store, rs = rt.cfg, self.store, self.cfg.residual
         tail, rt.tail = rt.tail, None  # any failure below: the next pass goes the full way
         t, value, flag = self._primary_rows(rt, start_t - lookback, end_t)
@@ -1042,17 +1052,17 @@ class Daemon:
             pt, pv, _ = store.observation_arrays(st.id, "barometer", start_t - lookback - 3600, end_t + 3600)
             ok = np.isfinite(pv)
             pressure = (pt[ok].astype(float), pv[ok])
-        full = surge_residual.derive_arrays(t, value, flag, rt.predicted.predict_seconds(t), pressure,
-                                            rs.median_minutes, rs.mean_minutes, rs.reference_pressure)
-        w = t >= start_t - REWRITE_BACK
-        rows = {c: full[c][w] for c in DERIVED_COLUMNS}
-        changed = tail.differs(t[w], rows)
+        full, lo = self._derive_in_memory(tail, t, value, flag, rt.predicted.predict_seconds(t), pressure,
+                                          int(t.searchsorted(start_t - max(REWRITE_BACK, TREND_BACK))),
+                                          int(t.searchsorted(start_t - REWRITE_BACK)))
+        rows = {c: full[c][lo:] for c in DERIVED_COLUMNS}
+        changed = tail.differs(t[lo:], rows)
         new = int((t >= start_t).sum())
         self._ensure_extremes(rt, start_t, end_t)
         # the forecaster was learnt by process_window, before the pass's transaction
         with store.transaction():  # the pass's (or, alone, one commit for these rows)
-            store.write_derived_rows(st.id, t[w][changed], {c: v[changed] for c, v in rows.items()})
-            tail.merge(t[w], rows, end_t - TAIL_KEEP)
+            store.write_derived_rows(st.id, t[lo:][changed], {c: v[changed] for c, v in rows.items()})
+            tail.merge(t[lo:], rows, end_t - TAIL_KEEP)
             self._skew_surges(rt, start_t, end_t)
             context = self._forecast_in_memory(rt, tail, start_t, end_t)
         k = t >= start_t - TREND_BACK
@@ -1060,6 +1070,22 @@ class Daemon:
                                         for c in ("observed", "predicted", "residual", "smoothed", "flag")})
         rt.tail, rt.tail_end = tail, end_t
         return new, samples, context
+
+    def _derive_in_memory(self, tail: DerivedTail, t: np.ndarray, value: np.ndarray, flag: np.ndarray,
+                          predicted: np.ndarray, pressure: tuple | None, used: int,
+                          written: int) -> tuple[dict[str, np.ndarray], int]:
+        """The primary's derived columns of the rows from ``used`` on [index] (those the rules
+        or the store get: ``written`` on go to the store), bit for bit those of
+        :func:`monitor.surge.residual.derive_arrays` over the whole lookback, the smoothed
+        residual made again only from the first row whose inputs changed since the last pass
+        (a new sample, a flag quality control revised, an override), with the memo the tail
+        keeps (:attr:`DerivedTail.memo`). Returns them and the first row [index, >=
+        ``written``] that may differ from the rows held: the rows before it are held as they are."""
+        rs = self.cfg.residual
+        full, changed, tail.memo = surge_residual.derive_arrays_again(
+            tail.memo, t, value, flag, predicted, pressure, rs.median_minutes, rs.mean_minutes,
+            rs.reference_pressure, first=used)
+        return full, max(changed, written)
 
     def _primary_rows(self, rt: StationRuntime, a: int, end_t: int) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
         """The primary's observations with ``a <= t <= end_t`` as :meth:`Store.observation_arrays`
@@ -1151,7 +1177,7 @@ class Daemon:
             rt.storm_seen |= state.storm
             fcs += [rt.forecaster.forecast(state, hw_t, level)
                     for hw_t, level in rt.turns.high_waters_after(state.t, horizon.value)]
-        self._keep_forecasts(st.id, fcs)
+        self._keep_forecasts(st.id, fcs, rt.logged)
         return fcs
 
     @staticmethod
@@ -1184,11 +1210,32 @@ class Daemon:
                                                      max_lead_h=self._horizon_delta(rt).total_seconds() / 3600)
             rt.history_at, rt.storm_seen = end_t, False
 
-    def _keep_forecasts(self, station: str, fcs: list[dict]) -> None:
-        """Each forecast as the latest of its high water, and in the forecast log (one transaction)."""
+    def _keep_forecasts(self, station: str, fcs: list[dict], logged: set | None = None) -> None:
+        """Each forecast as the latest of its high water, and in the forecast log (one
+        transaction). ``logged``: the (hw_t, slot) known to be in the log already (the log
+        keeps the first forecast of each; those are not offered to it again), to which
+        those logged now are added."""
         with self.store.transaction() as conn:
             self.store.write_forecasts(station, fcs)
-            surge_forecast.log_forecasts(conn, station, fcs)
+            if logged is None:
+                surge_forecast.log_forecasts(conn, station, fcs)
+                return
+            new = [fc for fc in fcs if self._log_key(fc) not in logged]
+            surge_forecast.log_forecasts(conn, station, new)
+            self._note_logged(logged, {self._log_key(fc) for fc in new})
+
+    @staticmethod
+    def _log_key(fc: dict) -> tuple[int, int]:
+        """A forecast's key in ``hw_forecast_log``: (hw_t [Unix s], half-hour slot)."""
+        return int(fc["hw_t"]), int(fc["made_t"]) // surge_forecast.LOG_SLOT_S
+
+    @staticmethod
+    def _note_logged(logged: set, keys: set) -> None:
+        """Add ``keys`` to ``logged``, dropping those of slots two or more before the newest."""
+        if keys:
+            newest = max(k[1] for k in keys)
+            logged -= {k for k in logged if k[1] < newest - 1}
+            logged |= keys
 
     def _alert_context(self, rt: StationRuntime, fcs: list[dict] | None, qc_results: dict, now: float,
                        end_t: int | None = None):

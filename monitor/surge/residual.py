@@ -166,14 +166,15 @@ def derive(observed: pd.DataFrame, predicted: np.ndarray | None, pressure: pd.Se
 
 
 def smooth_residual_arrays(t_ns: np.ndarray, resid: np.ndarray, usable: np.ndarray,
-                           median_minutes: float = 30.0, mean_minutes: float = 10.0) -> np.ndarray:
+                           median_minutes: float = 30.0, mean_minutes: float = 10.0, first: int = 0) -> np.ndarray:
     """:func:`smooth_residual` on plain arrays, for the daemon's pass over a few hours.
 
     The same trailing windows (a sample's window holds the usable samples after
     ``t - width`` up to ``t``), the same carrying forward and staleness, computed with
     numpy over a small window instead of pandas' rolling machinery. The running mean is
-    summed per window, so it may differ from pandas' running sums in the last bits
-    (around 1e-16 m).
+    summed per window, oldest value last, so it may differ from pandas' running sums in
+    the last bits (around 1e-16 m); each row's value depends only on the samples of its
+    windows, never on which other rows are computed with it.
 
     Parameters
     ----------
@@ -183,6 +184,11 @@ def smooth_residual_arrays(t_ns: np.ndarray, resid: np.ndarray, usable: np.ndarr
         Residual [m].
     usable : array of bool
         Samples that may enter (QC flag not fail or missing).
+    median_minutes, mean_minutes : float
+        Window lengths [min]; ``mean_minutes = 0`` skips the mean.
+    first : int
+        The first row computed [index]: the rows before it are left NaN, the rows from it
+        on get what a computation of every row gives them (bit for bit).
 
     Returns
     -------
@@ -193,25 +199,83 @@ def smooth_residual_arrays(t_ns: np.ndarray, resid: np.ndarray, usable: np.ndarr
     r = np.asarray(resid, dtype=float)
     out = np.full(len(r), np.nan)
     valid = np.asarray(usable, dtype=bool) & np.isfinite(r)
-    if not valid.any():
+    if not valid.any() or first >= len(r):
         return out
     tv, rv = t_ns[valid], r[valid]
-    med = _trailing(tv, rv, _minutes_ns(median_minutes), _window_median)
-    if mean_minutes > 0:
-        med = _trailing(tv, med, _minutes_ns(mean_minutes), _window_mean)
-    last = tv.searchsorted(t_ns, side="right") - 1
+    last = tv.searchsorted(t_ns[first:], side="right") - 1  # each row's newest usable sample
     seen = last >= 0
-    out[seen] = med[last[seen]]
-    stale = seen & (t_ns - tv[np.maximum(last, 0)] > _minutes_ns(max(median_minutes, 1.0)))
-    out[stale] = np.nan
+    if not seen.any():
+        return out
+    k0 = int(last[seen][0])  # the oldest usable sample whose smoothed value the rows take
+    smoothed = _smoothed_from(tv, rv, k0, median_minutes, mean_minutes)
+    rows = out[first:]
+    rows[seen] = smoothed[last[seen] - k0]
+    stale = seen & (t_ns[first:] - tv[np.maximum(last, 0)] > _minutes_ns(max(median_minutes, 1.0)))
+    rows[stale] = np.nan
     return out
 
 
-def _trailing(t_ns: np.ndarray, v: np.ndarray, width_ns: int, reduce) -> np.ndarray:
-    """``reduce`` over each sample's trailing window ``(t - width, t]``, all windows at once:
-    the rows of a matrix holding each window's values, newest first (``fill`` after them)."""
-    i = np.arange(len(v))
-    n = i - t_ns.searchsorted(t_ns - width_ns, side="right") + 1
+def smoothing_span_s(median_minutes: float = 30.0, mean_minutes: float = 10.0) -> int:
+    """How far before a row the samples that decide its smoothed value can lie [s]: the
+    median's and the mean's windows of the usable sample whose value it takes, and the
+    longest it is carried forward over unusable samples (``max(median_minutes, 1)``)."""
+    return int((median_minutes + mean_minutes + max(median_minutes, 1.0)) * 60)
+
+
+def _smoothed_from(tv: np.ndarray, rv: np.ndarray, k0: int, median_minutes: float,
+                   mean_minutes: float) -> np.ndarray:
+    """The smoothed value at each usable sample from the ``k0``-th on (times ``tv`` [ns],
+    residuals ``rv`` [m] of the usable samples): the running median, then the running mean
+    of the medians, each over its trailing window; the medians computed only from the
+    first one the means of ``k0`` on read."""
+    if len(tv) - k0 <= _FEW:
+        mean_ns = _minutes_ns(mean_minutes) if mean_minutes > 0 else 0
+        return _smoothed_few(tv, rv, k0, _minutes_ns(median_minutes), mean_ns)
+    if mean_minutes <= 0:
+        return _trailing(tv, rv, _minutes_ns(median_minutes), _window_median, k0)
+    mean_ns = _minutes_ns(mean_minutes)
+    k1 = int(tv.searchsorted(tv[k0] - mean_ns, side="right"))  # the mean of k0 reads medians from k1
+    med = _trailing(tv, rv, _minutes_ns(median_minutes), _window_median, k1)
+    return _trailing(tv[k1:], med, mean_ns, _window_mean, k0 - k1)
+
+
+#: at most this many samples' smoothed values are made in Python floats (a steady pass's new
+#: sample), where a few numpy calls per window would cost more than the arithmetic
+_FEW = 3
+
+
+def _smoothed_few(tv: np.ndarray, rv: np.ndarray, k0: int, median_ns: int, mean_ns: int) -> np.ndarray:
+    """:func:`_smoothed_from` in Python floats for the few samples from ``k0`` on: the same
+    windows, the same median (the middle values' mean) and the same additions in the same
+    order (newest first, then divided by the count), so the same bits."""
+    k1 = int(tv.searchsorted(tv[k0] - mean_ns, side="right")) if mean_ns else k0
+    a = int(tv.searchsorted(tv[k1] - median_ns, side="right"))
+    t, r = tv[a:].tolist(), rv[a:].tolist()
+    medians, lo = [], 0
+    for j in range(k1 - a, len(t)):
+        while t[lo] <= t[j] - median_ns:
+            lo += 1
+        w = sorted(r[lo:j + 1])
+        medians.append((w[(len(w) - 1) // 2] + w[len(w) // 2]) / 2)
+    if not mean_ns:
+        return np.array(medians, dtype=float)
+    tm, out, lo = t[k1 - a:], [], 0
+    for k in range(k0 - k1, len(tm)):
+        while tm[lo] <= tm[k] - mean_ns:
+            lo += 1
+        total = medians[k]
+        for j in range(k - 1, lo - 1, -1):
+            total += medians[j]
+        out.append(total / (k - lo + 1))
+    return np.array(out, dtype=float)
+
+
+def _trailing(t_ns: np.ndarray, v: np.ndarray, width_ns: int, reduce, first: int = 0) -> np.ndarray:
+    """``reduce`` over the trailing window ``(t - width, t]`` of each sample from the
+    ``first``-th on, all windows at once: the rows of a matrix holding each window's
+    values, newest first (whatever after them; ``reduce`` is told which are outside)."""
+    i = np.arange(first, len(v))
+    n = i - t_ns.searchsorted(t_ns[first:] - width_ns, side="right") + 1
     j = i[:, None] - np.arange(int(n.max()))[None, :]
     outside = j < (i - n + 1)[:, None]
     m = v[np.maximum(j, 0)]
@@ -232,8 +296,9 @@ def _window_median(m: np.ndarray, outside: np.ndarray, n: np.ndarray) -> np.ndar
 
 
 def _window_mean(m: np.ndarray, outside: np.ndarray, n: np.ndarray) -> np.ndarray:
-    m[outside] = 0.0
-    return m.sum(axis=1) / n
+    # a running sum along each row (one addition after another: the same bits whatever the
+    # matrix's width or rows, unlike a pairwise sum), read at the window's last value
+    return np.cumsum(m, axis=1)[np.arange(len(n)), n - 1] / n
 
 
 def derive_arrays(t: np.ndarray, observed: np.ndarray, flag: np.ndarray, predicted: np.ndarray,
@@ -255,16 +320,106 @@ def derive_arrays(t: np.ndarray, observed: np.ndarray, flag: np.ndarray, predict
     dict
         ``observed, predicted, residual, smoothed, barometric`` [m] and ``flag``, arrays.
     """
+    d = _unsmoothed(t, observed, flag, predicted, pressure, reference_hpa)
+    d["smoothed"] = smooth_residual_arrays(d.pop("t") * 1_000_000_000, d["residual"], d.pop("usable"),
+                                           median_minutes, mean_minutes)
+    return d
+
+
+def _unsmoothed(t: np.ndarray, observed: np.ndarray, flag: np.ndarray, predicted: np.ndarray,
+                pressure: tuple[np.ndarray, np.ndarray] | None, reference_hpa: float) -> dict[str, np.ndarray]:
+    """:func:`derive_arrays`' columns but the smoothed residual, with ``t`` [Unix s, int64]
+    and ``usable`` (the samples the smoothing takes)."""
     t = np.asarray(t, dtype=np.int64)
     obs = np.asarray(observed, dtype=float)
     pred = np.asarray(predicted, dtype=float)
     res = residual(obs, pred)
     flag = np.asarray(flag)
     usable = (flag != _UNUSABLE[0]) & (flag != _UNUSABLE[1]) & np.isfinite(res)
-    sm = smooth_residual_arrays(t * 1_000_000_000, res, usable, median_minutes, mean_minutes)
     ib = inverse_barometer(pressure_at_seconds(t.astype(float), *pressure), reference_hpa) \
         if pressure is not None else np.full(len(t), np.nan)
-    return {"observed": obs, "predicted": pred, "residual": res, "smoothed": sm, "barometric": ib, "flag": flag}
+    return {"t": t, "usable": usable, "observed": obs, "predicted": pred, "residual": res, "barometric": ib,
+            "flag": flag}
+
+
+class DerivedMemo:
+    """What :func:`derive_arrays_again` keeps of one computation for the next: the rows'
+    times [Unix s], the inputs that decide each row's derived values (observed and
+    predicted level [m], whether the smoothing takes it, the barometric part [m]), the
+    smoothed residual [m] of the rows from ``since`` [Unix s] on, and the settings."""
+
+    __slots__ = ("t", "observed", "predicted", "usable", "barometric", "smoothed", "since", "settings")
+
+    def __init__(self, d: dict[str, np.ndarray], since: int, settings: tuple):
+        # copies of what may be the caller's arrays (changed in place, they would hide a revision)
+        self.t, self.observed, self.predicted = d["t"].copy(), d["observed"].copy(), d["predicted"].copy()
+        self.usable, self.barometric, self.smoothed = d["usable"], d["barometric"], d["smoothed"]
+        self.since, self.settings = int(since), settings
+
+
+def derive_arrays_again(memo: DerivedMemo | None, t: np.ndarray, observed: np.ndarray, flag: np.ndarray,
+                        predicted: np.ndarray, pressure: tuple[np.ndarray, np.ndarray] | None = None,
+                        median_minutes: float = 30.0, mean_minutes: float = 10.0,
+                        reference_hpa: float = REFERENCE_HPA,
+                        first: int = 0) -> tuple[dict[str, np.ndarray], int, DerivedMemo]:
+    """:func:`derive_arrays` of the rows from ``first`` on, the smoothed residual made
+    again only from the first row whose inputs differ from the last computation's.
+
+    With trailing windows a row's smoothed value depends on the rows up to it only, so the
+    rows before the first new or changed one (its time, level, prediction, whether the
+    smoothing takes it, its barometric part) keep the smoothed value ``memo`` holds.
+
+    Parameters
+    ----------
+    memo : DerivedMemo or None
+        What the last call returned (None: every row from ``first`` is computed).
+    t, observed, flag, predicted, pressure, median_minutes, mean_minutes, reference_hpa
+        As :func:`derive_arrays`; ``t`` must hold the windows' samples before ``first``.
+    first : int
+        The first row wanted [index]; ``t[first]`` [Unix s] must not be before the
+        ``first`` of the call that made ``memo`` (else every row is computed).
+
+    Returns
+    -------
+    derived : dict
+        As :func:`derive_arrays`, bit for bit, from ``first`` on (``smoothed`` NaN before).
+    changed : int
+        The first row [index, >= ``first``] whose derived values may differ from those
+        ``memo`` holds at its time; the rows from ``first`` up to it have equal values.
+    memo : DerivedMemo
+        For the next call.
+    """
+    settings = (float(median_minutes), float(mean_minutes), float(reference_hpa))
+    d = _unsmoothed(t, observed, flag, predicted, pressure, reference_hpa)
+    t = d["t"]
+    changed = max(first, _first_changed(memo, d, settings, int(t[first]) if first < len(t) else None))
+    sm = smooth_residual_arrays(t * 1_000_000_000, d["residual"], d["usable"], median_minutes, mean_minutes,
+                                first=changed)
+    if changed > first:
+        o = int(memo.t.searchsorted(t[0]))  # rows equal up to ``changed``: memo's row o is row 0
+        sm[first:changed] = memo.smoothed[o + first:o + changed]
+    d["smoothed"] = sm
+    new_memo = DerivedMemo(d, int(t[first]) if first < len(t) else 2 ** 62, settings)
+    del d["t"], d["usable"]
+    return d, changed, new_memo
+
+
+def _first_changed(memo: DerivedMemo | None, d: dict[str, np.ndarray], settings: tuple, since: int | None) -> int:
+    """The first row of ``d`` (from :func:`_unsmoothed`) that ``memo`` does not hold with
+    the same bits of time, level, prediction, usability and barometric part (0 when
+    ``memo`` cannot say: none, other settings, or its smoothed values start later)."""
+    t = d["t"]
+    if memo is None or memo.settings != settings or since is None or since < memo.since or not len(t):
+        return 0
+    o = int(memo.t.searchsorted(t[0]))
+    n = min(len(memo.t) - o, len(t))
+    if n <= 0:
+        return 0
+    same = memo.t[o:o + n] == t[:n]
+    same &= memo.usable[o:o + n] == d["usable"][:n]
+    for c in ("observed", "predicted", "barometric"):  # bit for bit (a NaN is the same NaN)
+        same &= getattr(memo, c)[o:o + n].view(np.int64) == d[c][:n].view(np.int64)
+    return n if same.all() else int(same.argmin())
 
 
 def skew_surges(observed: pd.Series, extremes: pd.DataFrame, max_gap_s: float = 3600.0) -> pd.DataFrame:
