@@ -816,7 +816,12 @@ class Daemon:
 
         Late data -- rows older than the mark, of any sensor, say a backup whose feed lags
         the primary's or a gap filled afterwards -- is processed again from the earliest
-        time a batch touched (the store's ``touched.STATION``, folded into the mark here).
+        time a batch touched (the store's ``touched.STATION``, folded into the mark here,
+        :meth:`Store.take_touched`, in a transaction of its own). When every row stored
+        since the last pass lies after the mark (the steady case) the mark stays as it is,
+        and ``touched`` is cleared by the first window once it sees those rows
+        (:meth:`Store.clear_touched`, in a steady pass inside its transaction): a batch
+        landing meanwhile with an earlier time keeps it, and a failed pass leaves it.
         """
         st = rt.cfg
         levels = [r for r in st.sensors if r != "barometer"]
@@ -824,11 +829,14 @@ class Daemon:
         # the parser refuses such lines, and one left in the store by an older version must
         # not drag the window (and with it the rules' clock) into the future.
         horizon = self._horizon(rt, now)
-        ends = [t for t in self.store.last_times(st.id, levels, until=horizon).values() if t is not None]
+        last, mark, touched = self.store.pass_bounds(st.id, levels, until=horizon)
+        ends = [t for t in last.values() if t is not None]
         if not ends:
             return 0
         end_t = max(ends)
-        mark = self.store.take_touched(st.id)
+        clear = touched is not None
+        if clear and (mark is None or touched <= mark):  # late rows (or nothing processed yet)
+            mark, clear = self.store.take_touched(st.id), False
         if mark is not None and end_t <= mark:
             return 0
         if mark is None:
@@ -839,7 +847,8 @@ class Daemon:
         done = 0
         while start_t <= end_t and not self.stop.is_set():
             chunk_end = min(end_t, start_t + PROCESS_CHUNK - 1)
-            done += self.process_window(rt, start_t, chunk_end, now, latest=chunk_end == end_t)
+            done += self.process_window(rt, start_t, chunk_end, now, latest=chunk_end == end_t, clear_touched=clear)
+            clear = False
             start_t = end_t + 1 if chunk_end >= end_t else self._next_data(st.id, levels, chunk_end, end_t)
         return done
 
@@ -858,7 +867,7 @@ class Daemon:
         return min(nxt) if nxt else end_t + 1
 
     def process_window(self, rt: StationRuntime, start_t: int, end_t: int, now: float | None = None,
-                       latest: bool = True) -> int:
+                       latest: bool = True, clear_touched: bool = False) -> int:
         """The processing pipeline for one station over [start_t, end_t] (data time), in order:
         quality control, residual and smoothed residual (into ``derived``), skew surge of
         completed cycles, next high water forecast, alert rules; then the station's
@@ -872,12 +881,20 @@ class Daemon:
         forecaster's learn (which reads years of history) made before it; if the
         transaction fails, what the station holds in memory on the strength of its writes
         is forgotten (:meth:`_forget_pass`). Other passes commit each step on its own.
+
+        ``clear_touched``: the station's ``touched.STATION`` is cleared when every row it
+        records lies at or after ``start_t`` (:meth:`Store.clear_touched`; the first window
+        of :meth:`process_station` when the mark did not move): in a steady pass inside its
+        transaction, which sees every row stored before it began; otherwise before the
+        window's first step reads the store.
         """
         now = (end_t if rt.replay_clock else time.time()) if now is None else now
         self._take_new_model(rt)
         self._maybe_fit(rt, now)
         steady = self._steady(rt, start_t, end_t, latest)
         if not steady:
+            if clear_touched:
+                self.store.clear_touched(rt.cfg.id, start_t)
             new, queued = self._window(rt, start_t, end_t, now, latest, steady)
             self.store.set_meta(f"processed.{rt.cfg.id}", str(end_t))
         else:
@@ -888,6 +905,8 @@ class Daemon:
                 with self.store.transaction():
                     new, queued = self._window(rt, start_t, end_t, now, latest, steady)
                     self._pass_intact(steady)
+                    if clear_touched:
+                        self.store.clear_touched(rt.cfg.id, start_t)
                     self.store.set_meta(f"processed.{rt.cfg.id}", str(end_t))
             except BaseException:
                 self._forget_pass(rt)
