@@ -71,7 +71,7 @@ class _Failing:
 
 
 def _start(tmp_path, m2_stations) -> tuple[Store, Daemon, _Failing]:
-    cfg = m2_stations(["port"], sensors=("primary", "backup"))
+    cfg = m2_stations(["port"], sensors=("primary", "backup"), folder=tmp_path)  # a store of its own per run
     store = Store.open(cfg.store_path)
     failing = _Failing(store)
     store.set_meta = failing
