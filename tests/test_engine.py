@@ -372,3 +372,58 @@ def test_quiet_rules_write_their_state_rows_without_savepoints(db):
                       now=T0 + pd.Timedelta(minutes=30))
     assert [(e["rule"], e["event"]) for e in events] == [("surge", "opened")]
     assert sum(s.startswith("SAVEPOINT") for s in said) == 1
+
+
+def _state_table(db) -> dict:
+    return {r["rule"]: r for r in db.query("SELECT * FROM alert_state WHERE station = ?", [STATION.id])}
+
+
+def test_a_memo_of_the_state_rows_always_equals_the_store_and_changes_nothing_stored(tmp_path, monkeypatch):
+    # A storm (alert, escalation, all-clear), an equipment fault whose kinds change (the
+    # ``announced`` column), a silent feed, and one evaluation where a rule fails midway:
+    # after each evaluation the memo holds exactly the rows the store holds (read here with
+    # a query of its own), or nothing after the failure; and the store ends as a run without
+    # a memo leaves it.
+    raw = [SURGE, {"id": "kit", "when": "equipment_fault", "notify": ["tech@port.example"]},
+           {"id": "quiet", "when": "feed_silent", "notify": ["tech@port.example"]}]
+    stuck = {"kind": "stuck_sensor", "sensor": "primary", "value": 62.0, "limit": 30.0, "unit": "min"}
+    drift = {"kind": "sensor_drift", "sensor": "primary-backup", "value": 3.1, "limit": 2.0, "unit": "mm/day"}
+    values = storm()
+    track = engine_mod._track_peak
+
+    def run(db, memo) -> list:
+        seen = []
+        for k in range(0, len(values), 10):
+            faults = [[], [stuck], [stuck], [stuck, drift], [drift], []][min(k // 25, 5)]
+            ctx = AlertContext(feed_age=(50 if 40 <= k < 80 else 1) * minute, faults=faults)
+            fail = k == 60
+
+            def failing(db_, rule, *a, **kw):
+                if fail and rule.id == "surge":
+                    raise RuntimeError("invented failure inside the surge rule")
+                return track(db_, rule, *a, **kw)
+            monkeypatch.setattr(engine_mod, "_track_peak", failing)
+            evaluate(db, STATION, rules(*raw), frame(values[:k + 10]), now=T0 + pd.Timedelta(minutes=k + 10),
+                     context=ctx, memo=memo)
+            if memo is not None:
+                if fail:
+                    assert memo.rows is None  # read again from the store next time
+                else:
+                    assert memo.rows == _state_table(db)
+                    seen.append(memo.rows["kit"]["announced"])
+        monkeypatch.setattr(engine_mod, "_track_peak", track)
+        return seen
+
+    with_memo = sqlite_utils.Database(tmp_path / "memo.sqlite")
+    seen = run(with_memo, engine_mod.StateMemo())
+    without = sqlite_utils.Database(tmp_path / "plain.sqlite")
+    run(without, None)
+    # the scenario reaches what it is meant to: every evaluation but the failed one kept its
+    # rows, the fault's kinds were told of one by one, alerts opened and cleared
+    assert len(seen) == len(range(0, len(values), 10)) - 1
+    assert json.dumps(sorted(["stuck_sensor/primary", "sensor_drift/primary-backup"])) in seen
+    kinds = [k for _, k, _ in queued(with_memo)]
+    assert kinds.count("all_clear") >= 2 and len(kinds) >= 6
+    for sql in ("SELECT * FROM alert_state ORDER BY rule", "SELECT * FROM alert_episodes ORDER BY id",
+                "SELECT kind, key, recipient, subject, text, event_at FROM outbox ORDER BY id"):
+        assert list(with_memo.query(sql)) == list(without.query(sql)), sql

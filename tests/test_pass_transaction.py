@@ -104,8 +104,11 @@ def _run(tmp_path, m2_stations, fail: bool, windows: bool) -> dict[str, list]:
                 with pytest.raises(sqlite3.OperationalError):
                     step(t)
                 assert _tables(store) == before  # nothing of the failed pass is stored
+                assert rt.alert_memo.rows is None  # nor kept of the rules' state rows
                 continue
             step(t)
+            # the rules' state rows the daemon keeps between passes are those stored
+            assert rt.alert_memo.rows == {r["rule"]: r for r in store.db.query("SELECT * FROM alert_state")}
         return _tables(store)
     finally:
         store.close()
@@ -139,7 +142,7 @@ def test_a_rule_that_fails_in_a_steady_pass_undoes_its_own_writes_alone(tmp_path
     def save_state(*a, **k):
         if fail:  # the rule's state row refused (its one write: a rule below every step)
             raise sqlite3.OperationalError("database or disk is full (test)")
-        real(*a, **k)
+        return real(*a, **k)
 
     monkeypatch.setattr(engine, "_save_state", save_state)
     try:

@@ -384,6 +384,8 @@ class StationRuntime:
     diag_memory: DiagnosticsMemory = field(default_factory=DiagnosticsMemory, repr=False)  # between runs
     predicted: "PredictionMemo | None" = field(default=None, repr=False)
     qc_context: QcContext = field(default_factory=QcContext, repr=False)  # QC's record between passes
+    # the rules' state rows as the last evaluation stored them (the daemon is their one writer)
+    alert_memo: engine.StateMemo = field(default_factory=engine.StateMemo, repr=False)
     _extremes: "Frozen | None" = field(default=None, repr=False)
     turns: "TideTurns | None" = field(default=None, repr=False)  # the extremes as arrays
     # The station's derived rows of the last hours, as the store holds them, for the
@@ -929,11 +931,12 @@ class Daemon:
     def _forget_pass(rt: StationRuntime) -> None:
         """After a steady pass's transaction rolled back: forget what the station holds on
         the strength of the pass's writes (QC's rows with their flags as stored, the derived
-        rows held), so the next pass reads them from the store. (The diagnostics' memory
-        needs no more: every pass marks its rows as changed, ``note_changed``, and the next
-        run reads them again.)"""
+        rows held, the rules' state rows), so the next pass reads them from the store. (The
+        diagnostics' memory needs no more: every pass marks its rows as changed,
+        ``note_changed``, and the next run reads them again.)"""
         rt.qc_context.reset()
         rt.tail = None
+        rt.alert_memo.forget()
 
     def _window(self, rt: StationRuntime, start_t: int, end_t: int, now: float, latest: bool,
                 steady: bool) -> tuple[int, bool]:
@@ -988,7 +991,7 @@ class Daemon:
                 # (its savepoint in evaluate); what else escapes evaluate comes before any rule
                 # wrote, or after the transaction itself was lost
                 events = self.engine.evaluate(store.db, rt.view, rules, samples, now=now, context=ctx,
-                                              schema_ready=True)
+                                              schema_ready=True, memo=rt.alert_memo)
             except Exception:
                 if steady and not store.conn.in_transaction:
                     raise  # the pass's transaction itself is gone (an I/O error): nothing of it is stored
