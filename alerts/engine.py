@@ -209,11 +209,26 @@ _SAVED = ("station", "rule", "level", "top_sent", "steps", "above_since", "insid
           "episode_id", "updated_at", "held")
 
 
-def _save_state(db, station: str, rule: Rule, state: RuleState, episode_id: int | None, now: int) -> tuple:
-    """Store a rule's state row; returns the values written (in the order of ``_SAVED``)."""
+#: The columns that stay as stored when only a rule's watermark moves (a quiet rule's pass).
+_KEPT = tuple(i for i, c in enumerate(_SAVED) if c not in ("station", "rule", "watermark", "updated_at"))
+
+
+def _save_state(db, station: str, rule: Rule, state: RuleState, episode_id: int | None, now: int,
+                stored: dict | None = None) -> tuple:
+    """Store a rule's state row; returns the values written (in the order of ``_SAVED``).
+
+    ``stored``: the row as the store holds it (read in this transaction, or kept by its one
+    writer, :class:`StateMemo`). When every other column would be written as it stands
+    there, only the watermark and ``updated_at`` are updated: the same row, in a cheaper
+    statement than the upsert."""
     values = (station, rule.id, state.level, state.top_sent, _json_list(tuple(s.name for s in rule.steps)),
               _json_list(state.above_since), _json_list(state.inside_since),
               state.watermark, episode_id, now, int(state.held))
+    if stored is not None and all(stored.get(_SAVED[i]) == values[i] for i in _KEPT):
+        cur = db.conn.execute("UPDATE alert_state SET watermark = ?, updated_at = ? WHERE station = ? AND rule = ?",
+                              (state.watermark, now, station, rule.id))
+        if cur.rowcount == 1:
+            return values
     db.conn.execute(
         "INSERT INTO alert_state (station, rule, level, top_sent, steps, above_since, inside_since,"
         " watermark, episode_id, updated_at, held) VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?)"
@@ -683,7 +698,8 @@ def _evaluate_rule(db, station: StationView, rule: Rule, samples: Samples, t_all
         if episode_id is not None and state.level >= 0:
             db.conn.execute("UPDATE alert_episodes SET step_now = ? WHERE id = ?",
                             (rule.steps[state.level].name, episode_id))
-        saved = dict(zip(_SAVED, _save_state(db, station.id, rule, state, episode_id, t_now)))
+        saved = dict(zip(_SAVED, _save_state(db, station.id, rule, state, episode_id, t_now,
+                                             None if rows is None else rows.get(rule.id))))
         if rows is not None:  # the row as now stored (``announced`` kept as it was)
             rows[rule.id] = {**rows.get(rule.id, {"announced": None}), **saved}
     if announced is not None:
