@@ -10,8 +10,8 @@ instant neither repeats a message already queued nor forgets an episode in progr
 a rule that fails leaves nothing of its own written while the others' writes are kept;
 re-evaluating samples at or before the watermark does nothing. A caller that is the one
 writer of a station's rules (the daemon) may keep the state rows between evaluations
-(:class:`StateMemo`): a copy of what is stored, never more, so a restart reads the store. Reloading the configuration
-keeps the state: steps are matched by name.
+(:class:`StateMemo`): a copy of what is stored, never more, so a restart reads the store.
+Reloading the configuration keeps the state: steps are matched by name.
 
 Two clocks: the rules run on ``now`` (the data's own time when a record is replayed),
 and the messages carry the data time of their event; the outbox queues them on the wall
