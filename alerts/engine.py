@@ -8,8 +8,10 @@ writes more than its state row, one statement applied whole or not at all): a ru
 episode change and queued messages are committed together, so a crash or restart at any
 instant neither repeats a message already queued nor forgets an episode in progress, and
 a rule that fails leaves nothing of its own written while the others' writes are kept;
-re-evaluating samples at or before the watermark does nothing. Reloading the configuration
-keeps the state: steps are matched by name.
+re-evaluating samples at or before the watermark does nothing. A caller that is the one
+writer of a station's rules (the daemon) may keep the state rows between evaluations
+(:class:`StateMemo`): a copy of what is stored, never more, so a restart reads the store.
+Reloading the configuration keeps the state: steps are matched by name.
 
 Two clocks: the rules run on ``now`` (the data's own time when a record is replayed),
 and the messages carry the data time of their event; the outbox queues them on the wall
@@ -202,17 +204,59 @@ def _load_state(db, station: str, rule: Rule, rows: dict[str, dict] | None = Non
     return state, r["episode_id"]
 
 
-def _save_state(db, station: str, rule: Rule, state: RuleState, episode_id: int | None, now: int) -> None:
+#: The ``alert_state`` columns :func:`_save_state` writes, in its statement's order.
+_SAVED = ("station", "rule", "level", "top_sent", "steps", "above_since", "inside_since", "watermark",
+          "episode_id", "updated_at", "held")
+
+
+#: The columns that stay as stored when only a rule's watermark moves (a quiet rule's pass).
+_KEPT = tuple(i for i, c in enumerate(_SAVED) if c not in ("station", "rule", "watermark", "updated_at"))
+
+
+def _save_state(db, station: str, rule: Rule, state: RuleState, episode_id: int | None, now: int,
+                stored: dict | None = None) -> tuple:
+    """Store a rule's state row; returns the values written (in the order of ``_SAVED``).
+
+    ``stored``: the row as the store holds it (read in this transaction, or kept by its one
+    writer, :class:`StateMemo`). When every other column would be written as it stands
+    there, only the watermark and ``updated_at`` are updated: the same row, in a cheaper
+    statement than the upsert."""
+    values = (station, rule.id, state.level, state.top_sent, _json_list(tuple(s.name for s in rule.steps)),
+              _json_list(state.above_since), _json_list(state.inside_since),
+              state.watermark, episode_id, now, int(state.held))
+    if stored is not None and all(stored.get(_SAVED[i]) == values[i] for i in _KEPT):
+        cur = db.conn.execute("UPDATE alert_state SET watermark = ?, updated_at = ? WHERE station = ? AND rule = ?",
+                              (state.watermark, now, station, rule.id))
+        if cur.rowcount == 1:
+            return values
     db.conn.execute(
         "INSERT INTO alert_state (station, rule, level, top_sent, steps, above_since, inside_since,"
         " watermark, episode_id, updated_at, held) VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?)"
         " ON CONFLICT (station, rule) DO UPDATE SET level = excluded.level, top_sent = excluded.top_sent,"
         " steps = excluded.steps, above_since = excluded.above_since, inside_since = excluded.inside_since,"
         " watermark = excluded.watermark, episode_id = excluded.episode_id, updated_at = excluded.updated_at,"
-        " held = excluded.held",
-        (station, rule.id, state.level, state.top_sent, _json_list(tuple(s.name for s in rule.steps)),
-         _json_list(state.above_since), _json_list(state.inside_since),
-         state.watermark, episode_id, now, int(state.held)))
+        " held = excluded.held", values)
+    return values
+
+
+class StateMemo:
+    """A station's ``alert_state`` rows (rule id -> row, as :func:`_state_rows` reads them)
+    as the last :func:`evaluate` that was given this memo left them, so the next one need
+    not read them again. For the one writer of a station's rules (the daemon): nothing else
+    may write them while it is kept.
+
+    :func:`evaluate` takes the rows out at its start (the memo is then empty) and puts them
+    back only when every rule ran and its transaction ended without an error. Inside a
+    caller's transaction that is before the caller's commit: a caller whose transaction
+    then fails calls :meth:`forget`.
+    """
+
+    def __init__(self) -> None:
+        self.rows: dict[str, dict] | None = None
+
+    def forget(self) -> None:
+        """Read the rows from the store at the next evaluation."""
+        self.rows = None
 
 
 # --------------------------------------------------------------------------- samples
@@ -494,7 +538,7 @@ def station_marks(rules: Iterable[Rule]) -> tuple[tuple[str, float], ...]:
 
 def evaluate(db, station: StationView, rules: Iterable[Rule], samples: pd.DataFrame | Samples | None,
              now: Any = None, context: AlertContext | None = None, clock=None,
-             schema_ready: bool = False) -> list[dict]:
+             schema_ready: bool = False, memo: StateMemo | None = None) -> list[dict]:
     """Advance every rule of a station and queue the messages its events call for.
 
     Parameters
@@ -519,6 +563,10 @@ def evaluate(db, station: StationView, rules: Iterable[Rule], samples: pd.DataFr
     schema_ready : bool
         The caller knows the alert and outbox tables exist (the daemon: its store was
         migrated on open), so they are not looked for.
+    memo : StateMemo, optional
+        The station's state rows as the last evaluation given it stored them (the daemon,
+        the rules' one writer): read from it instead of the store, and left in it again
+        when every rule ran and the transaction ended without an error.
 
     Returns
     -------
@@ -547,8 +595,12 @@ def evaluate(db, station: StationView, rules: Iterable[Rule], samples: pd.DataFr
         samples = Samples.from_frame(samples)
     t_all = samples.t
     out: list[dict] = []
+    rows, whole = None, True
+    if memo is not None:
+        rows, memo.rows = memo.rows, None  # taken: left again only after a whole evaluation
     with transaction(db) as conn:  # one write transaction for the station's rules
-        rows = _state_rows(db, station.id, rules)
+        if rows is None:
+            rows = _state_rows(db, station.id, rules)
         for rule in rules:
             try:
                 # a rule that fails undoes its own writes alone: a savepoint before a rule's
@@ -557,10 +609,13 @@ def evaluate(db, station: StationView, rules: Iterable[Rule], samples: pd.DataFr
                     out.extend(_evaluate_rule(db, station, rule, samples, t_all, t_now, context, clock, rows,
                                               part))
             except Exception:
+                whole = False
                 if not conn.in_transaction:
                     raise  # the transaction itself is gone (an I/O error): nothing more can go in it
                 log.exception("station %s rule %s: evaluation failed; nothing of this rule stored, "
                               "the other rules go on", station.id, rule.id)
+    if memo is not None and whole:
+        memo.rows = rows  # as written: each rule's writes copied into ``rows`` (_evaluate_rule)
     return out
 
 
@@ -643,10 +698,16 @@ def _evaluate_rule(db, station: StationView, rule: Rule, samples: Samples, t_all
         if episode_id is not None and state.level >= 0:
             db.conn.execute("UPDATE alert_episodes SET step_now = ? WHERE id = ?",
                             (rule.steps[state.level].name, episode_id))
-        _save_state(db, station.id, rule, state, episode_id, t_now)
+        saved = dict(zip(_SAVED, _save_state(db, station.id, rule, state, episode_id, t_now,
+                                             None if rows is None else rows.get(rule.id))))
+        if rows is not None:  # the row as now stored (``announced`` kept as it was)
+            rows[rule.id] = {**rows.get(rule.id, {"announced": None}), **saved}
     if announced is not None:
+        text = json.dumps(announced)
         db.conn.execute("UPDATE alert_state SET announced = ? WHERE station = ? AND rule = ?",
-                        (json.dumps(announced), station.id, rule.id))
+                        (text, station.id, rule.id))
+        if rows is not None and rule.id in rows:
+            rows[rule.id] = {**rows[rule.id], "announced": text}
     return results
 
 

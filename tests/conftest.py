@@ -149,16 +149,20 @@ def browser():
 def m2_stations(tmp_path):
     """Make a validated configuration of invented stations beside a one-constituent constants
     file (M2 1 m, mean 2 m) with a residual rule each that the tests' water never reaches:
-    ``m2_stations(ids, sensors=("primary",), daemon={...}, qc={...})``."""
-    def make(ids, sensors=("primary",), daemon=None, qc=None):
-        (tmp_path / "c.toml").write_text('mean = 2.0\n[[constituents]]\nname = "M2"\namplitude = 1.0\nphase = 40.0\n')
+    ``m2_stations(ids, sensors=("primary",), daemon={...}, qc={...}, folder=None)``; ``folder``
+    (made if missing): where the constants and the store go, for several stores in one test
+    (default the test's folder)."""
+    def make(ids, sensors=("primary",), daemon=None, qc=None, folder=None):
+        base = tmp_path if folder is None else Path(folder)
+        base.mkdir(parents=True, exist_ok=True)
+        (base / "c.toml").write_text('mean = 2.0\n[[constituents]]\nname = "M2"\namplitude = 1.0\nphase = 40.0\n')
         rule = {"id": "surge", "when": "residual_above", "hold": 0, "notify": ["duty@port.example"],
                 "steps": [{"name": "raised", "at": 5.0}]}
         stations = [{"id": sid, "latitude": 50.0, "longitude": -4.0, "constants": "c.toml", "datums": {"chart": 0.0},
                      "sensors": {s: {} for s in sensors}, "rules": [rule], **({"qc": qc} if qc else {})}
                     for sid in ids]
         cfg, errors = validate_config({"store": {"path": "q.db"}, "daemon": daemon or {}, "stations": stations},
-                                      tmp_path)
+                                      base)
         assert errors == []
         return cfg
     return make

@@ -372,3 +372,84 @@ def test_quiet_rules_write_their_state_rows_without_savepoints(db):
                       now=T0 + pd.Timedelta(minutes=30))
     assert [(e["rule"], e["event"]) for e in events] == [("surge", "opened")]
     assert sum(s.startswith("SAVEPOINT") for s in said) == 1
+
+
+def _state_table(db) -> dict:
+    return {r["rule"]: r for r in db.query("SELECT * FROM alert_state WHERE station = ?", [STATION.id])}
+
+
+_RAW = [SURGE, {"id": "kit", "when": "equipment_fault", "notify": ["tech@port.example"]},
+        {"id": "quiet", "when": "feed_silent", "notify": ["tech@port.example"]}]
+_STUCK = {"kind": "stuck_sensor", "sensor": "primary", "value": 62.0, "limit": 30.0, "unit": "min"}
+_DRIFT = {"kind": "sensor_drift", "sensor": "primary-backup", "value": 3.1, "limit": 2.0, "unit": "mm/day"}
+
+
+def _passes(db, memo, monkeypatch, fail_at=60) -> list:
+    """Evaluations ten minutes apart over a storm (alert, escalation, all-clear), with an
+    equipment fault whose kinds change (the ``announced`` column) and a silent feed; at
+    ``fail_at`` the surge rule fails midway. With a memo, checks after each evaluation that
+    it holds the rows the store holds (read here with a query of its own), or nothing after
+    the failure; returns the ``announced`` of the fault rule as kept each time."""
+    values = storm()
+    track = engine_mod._track_peak
+    seen = []
+    for k in range(0, len(values), 10):
+        faults = [[], [_STUCK], [_STUCK], [_STUCK, _DRIFT], [_DRIFT], []][min(k // 25, 5)]
+        ctx = AlertContext(feed_age=(50 if 40 <= k < 80 else 1) * minute, faults=faults)
+        fail = k == fail_at
+
+        def failing(db_, rule, *a, **kw):
+            if fail and rule.id == "surge":
+                raise RuntimeError("invented failure inside the surge rule")
+            return track(db_, rule, *a, **kw)
+        monkeypatch.setattr(engine_mod, "_track_peak", failing)
+        evaluate(db, STATION, rules(*_RAW), frame(values[:k + 10]), now=T0 + pd.Timedelta(minutes=k + 10),
+                 context=ctx, memo=memo)
+        if memo is not None:
+            if fail:
+                assert memo.rows is None  # read again from the store next time
+            else:
+                assert memo.rows == _state_table(db)
+                seen.append(memo.rows["kit"]["announced"])
+    monkeypatch.setattr(engine_mod, "_track_peak", track)
+    return seen
+
+
+_TABLES = ("SELECT * FROM alert_state ORDER BY rule", "SELECT * FROM alert_episodes ORDER BY id",
+           "SELECT kind, key, recipient, subject, text, event_at FROM outbox ORDER BY id")
+
+
+def test_a_memo_of_the_state_rows_always_equals_the_store_and_changes_nothing_stored(tmp_path, monkeypatch):
+    with_memo = sqlite_utils.Database(tmp_path / "memo.sqlite")
+    seen = _passes(with_memo, engine_mod.StateMemo(), monkeypatch)
+    without = sqlite_utils.Database(tmp_path / "plain.sqlite")
+    _passes(without, None, monkeypatch)
+    # the scenario reaches what it is meant to: every evaluation but the failed one kept its
+    # rows, the fault's kinds were told of one by one, alerts opened and cleared
+    assert len(seen) == len(range(0, len(storm()), 10)) - 1
+    assert json.dumps(sorted(["stuck_sensor/primary", "sensor_drift/primary-backup"])) in seen
+    kinds = [k for _, k, _ in queued(with_memo)]
+    assert kinds.count("all_clear") >= 2 and len(kinds) >= 6
+    for sql in _TABLES:
+        assert list(with_memo.query(sql)) == list(without.query(sql)), sql
+
+
+def test_a_state_row_whose_watermark_alone_moves_is_stored_as_the_whole_rows_upsert_stores_it(tmp_path,
+                                                                                              monkeypatch):
+    # Reference: every state row written by the upsert of all its columns (the statement
+    # used before the watermark's own UPDATE); the same passes, with and without a memo
+    real = engine_mod._save_state
+    said = []
+    for memo in (None, engine_mod.StateMemo()):
+        quick = sqlite_utils.Database(tmp_path / f"quick{memo is None}.sqlite")
+        quick.conn.set_trace_callback(said.append)
+        _passes(quick, memo, monkeypatch)
+        with monkeypatch.context() as mp:
+            mp.setattr(engine_mod, "_save_state", lambda *a, stored=None: real(*a))
+            whole = sqlite_utils.Database(tmp_path / f"whole{memo is None}.sqlite")
+            _passes(whole, None, monkeypatch)
+        for sql in _TABLES:
+            assert list(quick.query(sql)) == list(whole.query(sql)), sql
+    assert sum(x.startswith("UPDATE alert_state SET watermark") for x in said) >= 20  # the UPDATE was used
+
+

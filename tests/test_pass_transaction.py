@@ -72,7 +72,7 @@ class _Failing:
 
 
 def _start(tmp_path, m2_stations) -> tuple[Store, Daemon, _Failing]:
-    cfg = m2_stations(["port"], sensors=("primary", "backup"))
+    cfg = m2_stations(["port"], sensors=("primary", "backup"), folder=tmp_path)  # a store of its own per run
     store = Store.open(cfg.store_path)
     failing = _Failing(store)
     store.set_meta = failing
@@ -112,9 +112,12 @@ def _run(tmp_path, m2_stations, fail: bool, windows: bool, fail_at: int = FAIL_A
                     step(t)
                 assert _tables(store) == before  # nothing of the failed pass is stored
                 assert not _logged_but_not_stored(store, rt)
+                assert rt.alert_memo.rows is None  # nor kept of the rules' state rows
                 continue
             step(t)
             assert not _logged_but_not_stored(store, rt)
+            # the rules' state rows the daemon keeps between passes are those stored
+            assert rt.alert_memo.rows == {r["rule"]: r for r in store.db.query("SELECT * FROM alert_state")}
         return _tables(store)
     finally:
         store.close()
@@ -161,7 +164,7 @@ def test_a_rule_that_fails_in_a_steady_pass_undoes_its_own_writes_alone(tmp_path
     def save_state(*a, **k):
         if fail:  # the rule's state row refused (its one write: a rule below every step)
             raise sqlite3.OperationalError("database or disk is full (test)")
-        real(*a, **k)
+        return real(*a, **k)
 
     monkeypatch.setattr(engine, "_save_state", save_state)
     try:
@@ -217,3 +220,60 @@ def test_a_pass_whose_transaction_sqlite_ended_early_keeps_nothing_of_the_rest(t
         store.close()
     assert after["processed"] == [(str(t),)]
     assert sorted(r[1] for r in after["qc_tests"] if r[2] == t) == ["backup", "primary"]
+
+
+def _land_late(tmp_path, m2_stations, monkeypatch, landing: int | None, late: int) -> tuple[dict, list]:
+    """Passes a minute at a time, the backup's sample of minute ``late`` missing from its
+    feed until the pass of minute ``landing``: there another writer (a connection of its
+    own, as ``quaywatch ingest`` is) stores it right after the pass has read the processing
+    mark -- the worst moment. ``landing`` None: stored just before that pass instead (the
+    plain late-data case). Returns the tables after the last pass and the steady passes."""
+    store, d, _ = _start(tmp_path, m2_stations)
+    rt = d.stations["port"]
+    t_late = T0 + HISTORY + late * minute
+    other = Store.open(store.path)
+    steady, pending = [], []
+    real_pass, real_bounds = Daemon._pass_in_memory, store.pass_bounds
+
+    def bounds(*a, **k):
+        got = real_bounds(*a, **k)
+        if pending:
+            other.write_batch("port", "backup", *pending.pop(), now=t_late)
+        return got
+
+    store.pass_bounds = bounds
+    try:
+        with monkeypatch.context() as mp:  # each run spies on its own passes
+            mp.setattr(Daemon, "_pass_in_memory", lambda self, *a: steady.append(a[2]) or real_pass(self, *a))
+            for k in range(8):
+                t = T0 + HISTORY + k * minute
+                store.write_batch("port", "primary", np.array([t]), _level(np.array([t]), "primary"), now=t)
+                if k != late:
+                    store.write_batch("port", "backup", np.array([t]), _level(np.array([t]), "backup"), now=t)
+                if k == 4:
+                    row = (np.array([t_late]), _level(np.array([t_late]), "backup"))
+                    if landing is None:
+                        other.write_batch("port", "backup", *row, now=t)
+                    else:
+                        pending.append(row)
+                d.process_station(rt, now=t + 30)
+                assert not pending
+        return _tables(store), steady
+    finally:
+        other.close()
+        store.close()
+
+
+@pytest.mark.parametrize("late", [1, 4], ids=["before-the-mark", "inside-the-window"])
+def test_a_batch_landing_right_after_the_mark_is_read_is_processed(tmp_path, m2_stations, monkeypatch, late):
+    # The steady pass clears ``touched`` inside its own transaction. A row stored between
+    # reading the mark and that transaction with a time before the window must keep it
+    # (and so lower the mark at the next pass): cleared unconditionally, the row would
+    # never be judged. A row inside the window is seen by the pass's transaction.
+    got, steady = _land_late(tmp_path / "worst", m2_stations, monkeypatch, landing=4, late=late)
+    assert T0 + HISTORY + 4 * minute in steady, "the batch did not land before a steady pass"
+    t_late = T0 + HISTORY + late * minute
+    assert ("backup", t_late) in {(r[1], r[2]) for r in got["qc_tests"]}, "the late row never judged"
+    assert [f for s, t, f in got["flags"] if s == "backup" and t == t_late] != [None]
+    want, _ = _land_late(tmp_path / "plain", m2_stations, monkeypatch, landing=None, late=late)
+    _same(got, want)

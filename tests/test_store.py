@@ -143,6 +143,21 @@ def test_duplicates_alone_touch_nothing(store):
     assert store.take_touched("st") == 1735689720
 
 
+def test_touched_is_cleared_only_when_every_row_it_records_is_at_or_after_the_window(store):
+    store.write_batch("st", "primary", np.array([600, 660]), np.array([1.0, 1.1]))
+    store.set_meta("processed.st", "540")
+    assert store.pass_bounds("st", ["primary"], until=10_000) == ({"primary": 660}, 540, 600)
+    store.write_batch("st", "backup", np.array([480]), np.array([1.0]))  # late: before the window
+    assert not store.clear_touched("st", 541)  # kept, so the next pass lowers the mark
+    assert store.pass_bounds("st", ["primary"], until=10_000)[1:] == (540, 480)
+    assert store.take_touched("st") == 479
+    store.write_batch("st", "primary", np.array([720]), np.array([1.2]))
+    assert not store.clear_touched("st", 721)  # (an edge: 720 is before a window from 721)
+    assert store.clear_touched("st", 720)  # every row at or after the window's start
+    assert store.pass_bounds("st", ["primary", "backup"], until=700) == ({"primary": 660, "backup": 480}, 479, None)
+    assert not store.clear_touched("st", 0)  # nothing to clear
+
+
 def test_the_last_times_of_several_sensors_read_at_once_are_each_sensors_newest_time(store):
     t = np.array([100, 160, 220, 5_000])  # the last one stamped ahead of the clocks below
     store.write_batch("st", "primary", t, np.full(len(t), 1.0))

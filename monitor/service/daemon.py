@@ -385,6 +385,8 @@ class StationRuntime:
     diag_memory: DiagnosticsMemory = field(default_factory=DiagnosticsMemory, repr=False)  # between runs
     predicted: "PredictionMemo | None" = field(default=None, repr=False)
     qc_context: QcContext = field(default_factory=QcContext, repr=False)  # QC's record between passes
+    # the rules' state rows as the last evaluation stored them (the daemon is their one writer)
+    alert_memo: engine.StateMemo = field(default_factory=engine.StateMemo, repr=False)
     _extremes: "Frozen | None" = field(default=None, repr=False)
     turns: "TideTurns | None" = field(default=None, repr=False)  # the extremes as arrays
     # The station's derived rows of the last hours, as the store holds them, for the
@@ -825,7 +827,12 @@ class Daemon:
 
         Late data -- rows older than the mark, of any sensor, say a backup whose feed lags
         the primary's or a gap filled afterwards -- is processed again from the earliest
-        time a batch touched (the store's ``touched.STATION``, folded into the mark here).
+        time a batch touched (the store's ``touched.STATION``, folded into the mark here,
+        :meth:`Store.take_touched`, in a transaction of its own). When every row stored
+        since the last pass lies after the mark (the steady case) the mark stays as it is,
+        and ``touched`` is cleared by the first window once it sees those rows
+        (:meth:`Store.clear_touched`, in a steady pass inside its transaction): a batch
+        landing meanwhile with an earlier time keeps it, and a failed pass leaves it.
         """
         st = rt.cfg
         levels = [r for r in st.sensors if r != "barometer"]
@@ -833,11 +840,14 @@ class Daemon:
         # the parser refuses such lines, and one left in the store by an older version must
         # not drag the window (and with it the rules' clock) into the future.
         horizon = self._horizon(rt, now)
-        ends = [t for t in self.store.last_times(st.id, levels, until=horizon).values() if t is not None]
+        last, mark, touched = self.store.pass_bounds(st.id, levels, until=horizon)
+        ends = [t for t in last.values() if t is not None]
         if not ends:
             return 0
         end_t = max(ends)
-        mark = self.store.take_touched(st.id)
+        clear = touched is not None
+        if clear and (mark is None or touched <= mark):  # late rows (or nothing processed yet)
+            mark, clear = self.store.take_touched(st.id), False
         if mark is not None and end_t <= mark:
             return 0
         if mark is None:
@@ -848,7 +858,8 @@ class Daemon:
         done = 0
         while start_t <= end_t and not self.stop.is_set():
             chunk_end = min(end_t, start_t + PROCESS_CHUNK - 1)
-            done += self.process_window(rt, start_t, chunk_end, now, latest=chunk_end == end_t)
+            done += self.process_window(rt, start_t, chunk_end, now, latest=chunk_end == end_t, clear_touched=clear)
+            clear = False
             start_t = end_t + 1 if chunk_end >= end_t else self._next_data(st.id, levels, chunk_end, end_t)
         return done
 
@@ -867,7 +878,7 @@ class Daemon:
         return min(nxt) if nxt else end_t + 1
 
     def process_window(self, rt: StationRuntime, start_t: int, end_t: int, now: float | None = None,
-                       latest: bool = True) -> int:
+                       latest: bool = True, clear_touched: bool = False) -> int:
         """The processing pipeline for one station over [start_t, end_t] (data time), in order:
         quality control, residual and smoothed residual (into ``derived``), skew surge of
         completed cycles, next high water forecast, alert rules; then the station's
@@ -881,12 +892,20 @@ class Daemon:
         forecaster's learn (which reads years of history) made before it; if the
         transaction fails, what the station holds in memory on the strength of its writes
         is forgotten (:meth:`_forget_pass`). Other passes commit each step on its own.
+
+        ``clear_touched``: the station's ``touched.STATION`` is cleared when every row it
+        records lies at or after ``start_t`` (:meth:`Store.clear_touched`; the first window
+        of :meth:`process_station` when the mark did not move): in a steady pass inside its
+        transaction, which sees every row stored before it began; otherwise before the
+        window's first step reads the store.
         """
         now = (end_t if rt.replay_clock else time.time()) if now is None else now
         self._take_new_model(rt)
         self._maybe_fit(rt, now)
         steady = self._steady(rt, start_t, end_t, latest)
         if not steady:
+            if clear_touched:
+                self.store.clear_touched(rt.cfg.id, start_t)
             new, queued = self._window(rt, start_t, end_t, now, latest, steady)
             self.store.set_meta(f"processed.{rt.cfg.id}", str(end_t))
         else:
@@ -897,6 +916,8 @@ class Daemon:
                 with self.store.transaction():
                     new, queued = self._window(rt, start_t, end_t, now, latest, steady)
                     self._pass_intact(steady)
+                    if clear_touched:
+                        self.store.clear_touched(rt.cfg.id, start_t)
                     self.store.set_meta(f"processed.{rt.cfg.id}", str(end_t))
             except BaseException:
                 self._forget_pass(rt)
@@ -919,12 +940,13 @@ class Daemon:
     def _forget_pass(rt: StationRuntime) -> None:
         """After a steady pass's transaction rolled back: forget what the station holds on
         the strength of the pass's writes (QC's rows with their flags as stored, the derived
-        rows held, the forecasts known to be logged), so the next pass reads them from the
-        store. (The diagnostics' memory needs no more: every pass marks its rows as changed,
-        ``note_changed``, and the next run reads them again.)"""
+        rows held, the forecasts known to be logged, the rules' state rows), so the next pass
+        reads them from the store. (The diagnostics' memory needs no more: every pass marks
+        its rows as changed, ``note_changed``, and the next run reads them again.)"""
         rt.qc_context.reset()
         rt.tail = None
         rt.logged.clear()
+        rt.alert_memo.forget()
 
     def _window(self, rt: StationRuntime, start_t: int, end_t: int, now: float, latest: bool,
                 steady: bool) -> tuple[int, bool]:
@@ -980,7 +1002,7 @@ class Daemon:
                 # (its savepoint in evaluate); what else escapes evaluate comes before any rule
                 # wrote, or after the transaction itself was lost
                 events = self.engine.evaluate(store.db, rt.view, rules, samples, now=now, context=ctx,
-                                              schema_ready=True)
+                                              schema_ready=True, memo=rt.alert_memo)
             except Exception:
                 if steady and not store.conn.in_transaction:
                     raise  # the pass's transaction itself is gone (an I/O error): nothing of it is stored

@@ -325,6 +325,17 @@ class Store:
             self.set_meta(key, str(mark))
             return mark
 
+    def clear_touched(self, station: str, since: int) -> bool:
+        """Clear ``touched.STATION`` when every time it records is at or after ``since``
+        [Unix s]: the rows stored since it was last taken are then all in or past a window
+        starting at ``since`` that sees them. One statement; a row stored earlier than
+        ``since`` (late data landing after the mark was read) keeps it, so
+        :meth:`take_touched` lowers the mark at the next pass. Returns whether it was
+        cleared."""
+        cur = self.conn.execute("DELETE FROM meta WHERE key = ? AND CAST(value AS INTEGER) >= ?",
+                                (f"touched.{station}", int(since)))
+        return cur.rowcount > 0
+
     def _put_checkpoint(self, feed: str, state: dict, now: int) -> None:
         self.conn.execute(
             "INSERT INTO feed_checkpoints (feed, state, updated_at) VALUES (?, ?, ?) "
@@ -582,6 +593,22 @@ class Store:
         args = [x for sensor in sensors for x in (station, sensor, int(until))]
         row = self.conn.execute(f"SELECT {', '.join([one] * len(sensors))}", args).fetchone()
         return {sensor: None if t is None else int(t) for sensor, t in zip(sensors, row)}
+
+    def pass_bounds(self, station: str, sensors: Sequence[str], *,
+                    until: int) -> tuple[dict[str, int | None], int | None, int | None]:
+        """What a pass starts from, in one statement: :meth:`last_times` of the sensors, the
+        processing mark ``processed.STATION`` and ``touched.STATION`` (the earliest time a
+        batch stored since it was last taken) [Unix s, None when absent]. Read only: the
+        mark is lowered by :meth:`take_touched` and ``touched`` cleared by
+        :meth:`clear_touched`."""
+        one = "(SELECT t FROM observations WHERE station = ? AND sensor = ? AND t <= ? ORDER BY t DESC LIMIT 1)"
+        meta = "(SELECT value FROM meta WHERE key = ?)"
+        args = [x for sensor in sensors for x in (station, sensor, int(until))]
+        row = self.conn.execute(f"SELECT {', '.join([one] * len(sensors) + [meta, meta])}",
+                                args + [f"processed.{station}", f"touched.{station}"]).fetchone()
+        last = {sensor: None if t is None else int(t) for sensor, t in zip(sensors, row)}
+        mark, touched = row[len(sensors):]
+        return last, None if mark is None else int(mark), None if touched is None else int(touched)
 
     def first_time(self, station: str, sensor: str = "primary", *, after: int | None = None,
                    until: int | None = None, usable: bool = False) -> int | None:
