@@ -439,17 +439,37 @@ def test_a_state_row_whose_watermark_alone_moves_is_stored_as_the_whole_rows_ups
     # Reference: every state row written by the upsert of all its columns (the statement
     # used before the watermark's own UPDATE); the same passes, with and without a memo
     real = engine_mod._save_state
-    said = []
+    said, said_whole = [], []
+
+    def upsert_only(db, station, rule, state, episode_id, now, stored=None):
+        return real(db, station, rule, state, episode_id, now)  # never told the stored row
+
     for memo in (None, engine_mod.StateMemo()):
         quick = sqlite_utils.Database(tmp_path / f"quick{memo is None}.sqlite")
         quick.conn.set_trace_callback(said.append)
         _passes(quick, memo, monkeypatch)
         with monkeypatch.context() as mp:
-            mp.setattr(engine_mod, "_save_state", lambda *a, stored=None: real(*a))
+            mp.setattr(engine_mod, "_save_state", upsert_only)
             whole = sqlite_utils.Database(tmp_path / f"whole{memo is None}.sqlite")
+            whole.conn.set_trace_callback(said_whole.append)
             _passes(whole, None, monkeypatch)
         for sql in _TABLES:
             assert list(quick.query(sql)) == list(whole.query(sql)), sql
     assert sum(x.startswith("UPDATE alert_state SET watermark") for x in said) >= 20  # the UPDATE was used
+    assert not any(x.startswith("UPDATE alert_state SET watermark") for x in said_whole)  # and not here
+
+
+def test_a_watermark_update_that_finds_no_row_falls_back_to_the_whole_upsert(tmp_path):
+    """Told of a stored row the store no longer has, the state is still stored whole."""
+    db = sqlite_utils.Database(tmp_path / "gone.sqlite")
+    engine_mod.ensure_alert_schema(db)
+    (rule,) = rules()
+    state = engine_mod.RuleState()
+    values = engine_mod._save_state(db, STATION.id, rule, state, None, 100)
+    db.conn.execute("DELETE FROM alert_state")
+    moved = engine_mod.with_watermark(state, 160)
+    engine_mod._save_state(db, STATION.id, rule, moved, None, 200, stored=dict(zip(engine_mod._SAVED, values)))
+    (row,) = db.query("SELECT * FROM alert_state")
+    assert row["watermark"] == 160 and row["updated_at"] == 200 and row["steps"] == '["raised", "high"]'
 
 
