@@ -151,6 +151,32 @@ def test_the_smoothing_from_memory_agrees_with_pandas():
     assert np.abs(got["smoothed"][150:][ok] - want[150:][ok]).max() < 1e-12
 
 
+@settings(max_examples=40, deadline=None)
+@given(seed=st.integers(0, 2 ** 32 - 1), added=st.integers(1, 3))
+def test_the_few_new_rows_made_in_floats_agree_with_pandas(seed, added):
+    # the steady pass's new rows alone made again (in Python floats, residual._smoothed_few)
+    # against pandas' rolling windows through smooth_residual, to 1e-12 m: irregular steps,
+    # gaps past the staleness limit, missing values, failed and missing flags
+    rng = np.random.default_rng(seed)
+    n = 200
+    step = rng.choice([60, 60, 60, 120, 30], size=n)
+    step[rng.integers(0, n, 2)] = rng.choice([20 * minute, 45 * minute])
+    t = T0 + np.cumsum(step)
+    value = 0.3 * np.sin(t / 4000.0) + rng.normal(0, 0.02, n)
+    value[rng.random(n) < 0.05] = np.nan
+    flag = rng.choice([1, 1, 1, 3, 4, 9], size=n)
+    pred = np.zeros(n)
+    first, old = 120, n - added
+    _, _, memo = R.derive_arrays_again(None, t[:old], value[:old], flag[:old], pred[:old], first=first)
+    got, changed, _ = R.derive_arrays_again(memo, t, value, flag, pred, first=first)
+    assert changed == old  # only the new rows were made again
+    want = R.smooth_residual(pd.Series(value, index=pd.to_datetime(t, unit="s", utc=True)), MED, MEAN,
+                             (flag != 4) & (flag != 9)).to_numpy()
+    assert np.array_equal(np.isnan(got["smoothed"][first:]), np.isnan(want[first:]))
+    ok = ~np.isnan(want[first:])
+    assert np.abs(got["smoothed"][first:][ok] - want[first:][ok]).max(initial=0.0) < 1e-12
+
+
 # ----------------------------------------------------------------------------- the daemon
 
 STEP = minute
