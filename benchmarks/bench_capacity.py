@@ -45,7 +45,8 @@ WARMUP_MIN = 26 * 60  # minutes of history stored and processed before timing (Q
 # simulated minutes timed per round: one whole diagnostics period (daemon.diagnostics_minutes,
 # 60 by default), so every station's hourly diagnostics run once in every round
 MINUTES = int(os.environ.get("QW_BENCH_MINUTES", 60))
-ROUNDS = int(os.environ.get("QW_BENCH_ROUNDS", 5))     # rounds timed; the best one is the figure (timeit repeats 5 times by default)
+# rounds timed, the best one the figure (timeit.default_repeat is 5)
+ROUNDS = int(os.environ.get("QW_BENCH_ROUNDS", 5))
 T0 = 1_760_000_000 - 1_760_000_000 % 60
 CPU_TARGET_MS = 5.0       # [ms] CPU per station-minute (issue 16)
 MEMORY_TARGET_MIB = 0.5   # [MiB] per station (issue 16)

@@ -16,6 +16,8 @@ import numpy as np
 import pytest
 from units import minute
 
+from monitor.quality import diagnostics
+
 ROOT = Path(__file__).resolve().parent.parent
 N_LINES = 3000
 BAD_EVERY = 250  # one rejected line every 250 lines
@@ -271,7 +273,6 @@ def test_primary_backup_drift_reaches_the_rules_as_an_equipment_fault(tmp_path):
         faults = d._diagnostic_faults(rt, now=end + 60, end_t=end)
         # the next passes, before the next run, get the same faults, as equipment_faults
         # gives them from the run's results; a change made to one pass's copy stays there
-        from monitor.quality import diagnostics
         fresh = diagnostics.equipment_faults(end + 120, st.qc, station=st.id, drift=rt.diag["drift"])
         for key, clock in rt.diag.items():
             if key.startswith("clock."):

@@ -85,7 +85,7 @@ def _start(tmp_path, m2_stations) -> tuple[Store, Daemon, _Failing]:
 def _logged_but_not_stored(store: Store, rt) -> set:
     """The (hw_t, slot) the station holds as logged that hw_forecast_log does not hold."""
     stored = set(store.conn.execute("SELECT hw_t, slot FROM hw_forecast_log WHERE station = 'port'").fetchall())
-    return set(rt.logged) - stored
+    return set(rt.slots_logged) - stored
 
 
 def _run(tmp_path, m2_stations, fail: bool, windows: bool, fail_at: int = FAIL_AT) -> dict[str, list]:

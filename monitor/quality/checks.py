@@ -1641,9 +1641,10 @@ class ResidMemo:
     loses rows at its front): which rows the windows could use at the last call, each row's
     departure from its centred median (the residual outlier test), and the per-row results
     of the tests whose windows look back only (rate of change, flat line, attenuation
-    ranges), and the record's step while it keeps one step throughout. A row's result is kept while no row of its windows changed: rows before the
-    first row whose usability changed or that is new (for the flat line, whose windows hold
-    values only, every row held before).
+    ranges), and the record's step while it keeps one step throughout. A row's result is
+    kept while no row of its windows changed: rows before the first row whose usability
+    changed or that is new (for the flat line, whose windows hold values only, every row
+    held before).
 
     The caller drops the front with :meth:`drop`; :func:`tail_table` does the rest.
     """

@@ -175,7 +175,7 @@ class _Sensor:
 
     def unknown_before(self, count: int) -> None:
         """Hold ``count`` more rows before those of ``packed``, not known as stored (-1)."""
-        self._packed = _Column(np.concatenate([np.full(count, -1, dtype=np.int64), self.packed]))
+        self._packed = _Column(np.concatenate([_qc._filled(count, -1, np.int64), self.packed]))
         self.packed = self._packed.view()
         self.packed_at -= count
 
@@ -372,7 +372,9 @@ class QcContext:
                 multi[fin] = _qc.PASS
                 multi[fin & (np.abs(dm) > s.multi_suspect)] = _qc.SUSPECT
                 table[:, _COL["multi"]] = np.where(table[:, _COL["syntax"]] != MISSING, multi, NOT_EVALUATED)
-                if (table[:, _COL["spike"]] == FAIL).any():  # (only a failed spike may be confirmed)
+                # (confirm_on_arrays returns at once without a failed spike, the only verdict
+                # the other sensor may confirm: its arguments are made only when one failed)
+                if (table[:, _COL["spike"]] == FAIL).any():
                     shape_only = ~(table_o[:, _NOT_SHAPE] == FAIL).any(axis=1) & np.isfinite(vo)
                     resid = h.v - h.p if h.p is not None else h.v
                     table = _qc.confirm_on_arrays(table, h.t.astype(float), h.v, resid, to[shape_only],

@@ -397,7 +397,7 @@ class StationRuntime:
     horizon: tuple | None = field(default=None, repr=False)  # (cfg, its longest clear_horizon)
     # (hw_t, slot) of the forecasts steady passes put in hw_forecast_log, committed or in the
     # pass's open transaction (forgotten with it, _forget_pass): never logged again
-    logged: set = field(default_factory=set, repr=False)
+    slots_logged: set = field(default_factory=set, repr=False)
 
     # The tide's extremes (kept about a week) are kept as plain arrays: the pass reads
     # ``turns``; code that needs the table gets a new pandas object at each read (see Frozen).
@@ -945,7 +945,7 @@ class Daemon:
         its rows as changed, ``note_changed``, and the next run reads them again.)"""
         rt.qc_context.reset()
         rt.tail = None
-        rt.logged.clear()
+        rt.slots_logged.clear()
         rt.alert_memo.forget()
 
     def _window(self, rt: StationRuntime, start_t: int, end_t: int, now: float, latest: bool,
@@ -1199,7 +1199,7 @@ class Daemon:
             rt.storm_seen |= state.storm
             fcs += [rt.forecaster.forecast(state, hw_t, level)
                     for hw_t, level in rt.turns.high_waters_after(state.t, horizon.value)]
-        self._keep_forecasts(st.id, fcs, rt.logged)
+        self._keep_forecasts(st.id, fcs, rt.slots_logged)
         return fcs
 
     @staticmethod
@@ -1242,14 +1242,9 @@ class Daemon:
             if logged is None:
                 surge_forecast.log_forecasts(conn, station, fcs)
                 return
-            new = [fc for fc in fcs if self._log_key(fc) not in logged]
+            new = [fc for fc in fcs if surge_forecast.log_key(fc) not in logged]
             surge_forecast.log_forecasts(conn, station, new)
-            self._note_logged(logged, {self._log_key(fc) for fc in new})
-
-    @staticmethod
-    def _log_key(fc: dict) -> tuple[int, int]:
-        """A forecast's key in ``hw_forecast_log``: (hw_t [Unix s], half-hour slot)."""
-        return int(fc["hw_t"]), int(fc["made_t"]) // surge_forecast.LOG_SLOT_S
+            self._note_logged(logged, {surge_forecast.log_key(fc) for fc in new})
 
     @staticmethod
     def _note_logged(logged: set, keys: set) -> None:

@@ -586,13 +586,9 @@ class Store:
 
     def last_times(self, station: str, sensors: Sequence[str], *, until: int) -> dict[str, int | None]:
         """:meth:`last_time` of each sensor (``until``, not ``usable``) in one statement:
-        sensor -> time of its latest sample at or before ``until`` [Unix s], or None."""
-        if not sensors:
-            return {}
-        one = "(SELECT t FROM observations WHERE station = ? AND sensor = ? AND t <= ? ORDER BY t DESC LIMIT 1)"
-        args = [x for sensor in sensors for x in (station, sensor, int(until))]
-        row = self.conn.execute(f"SELECT {', '.join([one] * len(sensors))}", args).fetchone()
-        return {sensor: None if t is None else int(t) for sensor, t in zip(sensors, row)}
+        sensor -> time of its latest sample at or before ``until`` [Unix s], or None (the
+        first part of :meth:`pass_bounds`)."""
+        return self.pass_bounds(station, sensors, until=until)[0]
 
     def pass_bounds(self, station: str, sensors: Sequence[str], *,
                     until: int) -> tuple[dict[str, int | None], int | None, int | None]:

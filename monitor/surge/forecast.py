@@ -840,10 +840,15 @@ def ensure_forecast_schema(db) -> None:
         db["hw_forecast_log"].create_index(["station", "made_t"], if_not_exists=True)
 
 
+def log_key(fc: dict) -> tuple[int, int]:
+    """A forecast's key in ``hw_forecast_log``: (its high water's time [Unix s], the
+    half-hour slot it was made in)."""
+    return int(fc["hw_t"]), int(fc["made_t"]) // LOG_SLOT_S
+
+
 def log_forecasts(conn, station: str, forecasts: list[dict]) -> None:
     """Keep forecasts in ``hw_forecast_log`` (the first of each half-hour slot per high water)."""
-    rows = [(station, int(fc["hw_t"]), int(fc["made_t"]) // LOG_SLOT_S,
-             *[fc.get(k) for k in LOG_COLUMNS[1:]]) for fc in forecasts]
+    rows = [(station, *log_key(fc), *[fc.get(k) for k in LOG_COLUMNS[1:]]) for fc in forecasts]
     if rows:
         conn.executemany(f"INSERT OR IGNORE INTO hw_forecast_log (station, hw_t, slot, {', '.join(LOG_COLUMNS[1:])}) "
                          f"VALUES ({', '.join('?' * (len(LOG_COLUMNS) + 2))})", rows)

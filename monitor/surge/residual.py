@@ -37,6 +37,12 @@ def residual(observed: np.ndarray, predicted: np.ndarray) -> np.ndarray:
     return np.asarray(observed, dtype=float) - np.asarray(predicted, dtype=float)
 
 
+def carry_minutes(median_minutes: float = 30.0) -> float:
+    """How long the smoothed residual is carried forward over unusable samples before it
+    goes stale [min]: the running median's window, at least a minute."""
+    return max(median_minutes, 1.0)
+
+
 def smooth_residual(resid: pd.Series, median_minutes: float = 30.0, mean_minutes: float = 10.0,
                     usable: np.ndarray | None = None) -> pd.Series:
     """Smoothed residual for alerting: a trailing running median, then a trailing running mean.
@@ -81,7 +87,7 @@ def smooth_residual(resid: pd.Series, median_minutes: float = 30.0, mean_minutes
     # a value carried forward over a long gap is not a live value
     last_t = pd.Series(valid.index, index=valid.index).reindex(resid.index.union(valid.index)).ffill()
     last_t = last_t.reindex(resid.index)
-    stale = (resid.index - pd.DatetimeIndex(last_t)) > pd.Timedelta(minutes=max(median_minutes, 1.0))
+    stale = (resid.index - pd.DatetimeIndex(last_t)) > pd.Timedelta(minutes=carry_minutes(median_minutes))
     out[np.asarray(stale, dtype=bool)] = np.nan
     out.name = "smoothed"
     return out
@@ -210,7 +216,7 @@ def smooth_residual_arrays(t_ns: np.ndarray, resid: np.ndarray, usable: np.ndarr
     smoothed = _smoothed_from(tv, rv, k0, median_minutes, mean_minutes)
     rows = out[first:]
     rows[seen] = smoothed[last[seen] - k0]
-    stale = seen & (t_ns[first:] - tv[np.maximum(last, 0)] > _minutes_ns(max(median_minutes, 1.0)))
+    stale = seen & (t_ns[first:] - tv[np.maximum(last, 0)] > _minutes_ns(carry_minutes(median_minutes)))
     rows[stale] = np.nan
     return out
 
@@ -219,7 +225,7 @@ def smoothing_span_s(median_minutes: float = 30.0, mean_minutes: float = 10.0) -
     """How far before a row the samples that decide its smoothed value can lie [s]: the
     median's and the mean's windows of the usable sample whose value it takes, and the
     longest it is carried forward over unusable samples (``max(median_minutes, 1)``)."""
-    return int((median_minutes + mean_minutes + max(median_minutes, 1.0)) * 60)
+    return int((median_minutes + mean_minutes + carry_minutes(median_minutes)) * 60)
 
 
 def _smoothed_from(tv: np.ndarray, rv: np.ndarray, k0: int, median_minutes: float,
@@ -304,7 +310,8 @@ def _window_mean(m: np.ndarray, outside: np.ndarray, n: np.ndarray) -> np.ndarra
 def derive_arrays(t: np.ndarray, observed: np.ndarray, flag: np.ndarray, predicted: np.ndarray,
                   pressure: tuple[np.ndarray, np.ndarray] | None = None, median_minutes: float = 30.0,
                   mean_minutes: float = 10.0, reference_hpa: float = REFERENCE_HPA) -> dict[str, np.ndarray]:
-    """:func:`derive` on plain arrays (the daemon's pass over its last hours).
+    """:func:`derive` on plain arrays, every row computed (the reference the daemon's steady
+    pass, :func:`derive_arrays_again`, is held to).
 
     Parameters
     ----------
