@@ -209,8 +209,8 @@ _SAVED = ("station", "rule", "level", "top_sent", "steps", "above_since", "insid
           "episode_id", "updated_at", "held")
 
 
-#: The columns that stay as stored when only a rule's watermark moves (a quiet rule's pass).
-_KEPT = tuple(i for i, c in enumerate(_SAVED) if c not in ("station", "rule", "watermark", "updated_at"))
+#: The positions in ``_SAVED`` of the columns that stay as stored when only a rule's watermark moves.
+_KEPT_AT = tuple(i for i, c in enumerate(_SAVED) if c not in ("station", "rule", "watermark", "updated_at"))
 
 
 def _save_state(db, station: str, rule: Rule, state: RuleState, episode_id: int | None, now: int,
@@ -224,7 +224,7 @@ def _save_state(db, station: str, rule: Rule, state: RuleState, episode_id: int 
     values = (station, rule.id, state.level, state.top_sent, _json_list(tuple(s.name for s in rule.steps)),
               _json_list(state.above_since), _json_list(state.inside_since),
               state.watermark, episode_id, now, int(state.held))
-    if stored is not None and all(stored.get(_SAVED[i]) == values[i] for i in _KEPT):
+    if stored is not None and all(stored.get(_SAVED[i]) == values[i] for i in _KEPT_AT):
         cur = db.conn.execute("UPDATE alert_state SET watermark = ?, updated_at = ? WHERE station = ? AND rule = ?",
                               (state.watermark, now, station, rule.id))
         if cur.rowcount == 1:

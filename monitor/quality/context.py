@@ -102,6 +102,8 @@ class _Column:
         m = len(new) if new is not None else count
         if self.hi + m > len(self.buf):
             n = self.hi - self.lo
+            # room for an eighth more, at least 64 rows (our choice: a copy every few hours
+            # of one-minute rows, and at most an eighth more memory)
             buf = np.empty(n + m + max(64, n // 8), dtype=self.buf.dtype)
             buf[:n] = self.buf[self.lo:self.hi]
             self.buf, self.lo, self.hi = buf, 0, n
