@@ -35,6 +35,7 @@ import sqlite_utils
 from alerts.transactions import transaction
 from monitor.errors import StoreError
 from monitor.store.migrations import DERIVED_COLUMNS, MIGRATIONS, SCHEMA_VERSION
+from monitor.surge.forecast import rebin_residual
 
 log = logging.getLogger("monitor.store.database")
 
@@ -352,15 +353,19 @@ class Store:
 
     def write_derived_rows(self, station: str, t: np.ndarray, columns: dict[str, np.ndarray]) -> int:
         """Upsert derived rows given as arrays: times ``t`` [Unix s] and columns of
-        DERIVED_COLUMNS [m] (NaN stored as NULL). Returns rows written."""
+        DERIVED_COLUMNS [m] (NaN stored as NULL), and with a ``smoothed`` column the
+        ``residual_bins`` of their times, in the same transaction. Returns rows written."""
         if len(t) == 0:
             return 0
         cols = tuple(c for c in DERIVED_COLUMNS if c in columns)
         data = [np.asarray(columns[c], dtype=float).tolist() for c in cols]
+        t = np.asarray(t, dtype=np.int64)
         rows = [(station, ti, *[v if math.isfinite(v) else None for v in values])
-                for ti, *values in zip(np.asarray(t, dtype=np.int64).tolist(), *data)]
+                for ti, *values in zip(t.tolist(), *data)]
         with self.transaction() as conn:
             conn.executemany(_derived_sql(cols), rows)
+            if "smoothed" in cols:  # the residual's ten-minute means, with the rows they are made of
+                rebin_residual(conn, station, int(t.min()), int(t.max()))
         return len(rows)
 
     def write_skew_surges(self, station: str, frame: pd.DataFrame) -> int:

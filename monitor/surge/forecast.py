@@ -863,22 +863,70 @@ def read_log(db, station: str, made_from: int, made_to: int) -> pd.DataFrame:
         "ORDER BY made_t, hw_t", db.conn, params=(station, int(made_from), int(made_to)))
 
 
+#: The ``GRID_S`` bin of a time column ``t`` [Unix s] in SQL: its start, rounded down (also
+#: before 1970, where SQLite's integer division would round towards zero).
+_BIN_SQL = f"(t - ((t % {GRID_S}) + {GRID_S}) % {GRID_S})"
+
+
+def ensure_residual_bins(db) -> None:
+    """Create ``residual_bins`` (station, b): the mean smoothed residual [m] of each
+    ``GRID_S`` bin starting at ``b`` [Unix s] with a smoothed value in ``derived``, kept by
+    :func:`rebin_residual` at every write of ``derived`` (so :func:`read_history` reads
+    three years as 160,000 kept means, not 1.6 million rows to group). ``db``: a
+    ``sqlite_utils.Database`` or a ``sqlite3.Connection``."""
+    db.execute("CREATE TABLE IF NOT EXISTS residual_bins (station TEXT NOT NULL, b INTEGER NOT NULL, "
+               "mean REAL NOT NULL, PRIMARY KEY (station, b)) WITHOUT ROWID")
+
+
+def rebin_residual(conn, station: str, t_lo: int | None = None, t_hi: int | None = None) -> None:
+    """Make ``residual_bins`` again for every bin holding a time in ``[t_lo, t_hi]`` [Unix s]
+    (all of the station's without bounds) from the ``derived`` rows as stored now: the
+    caller's transaction writes them with the rows (:meth:`Store.write_derived_rows
+    <monitor.store.database.Store.write_derived_rows>`, the one writer of ``derived``)."""
+    g = GRID_S
+    if t_lo is None or t_hi is None:
+        conn.execute("DELETE FROM residual_bins WHERE station = ?", (station,))
+        conn.execute(f"INSERT INTO residual_bins (station, b, mean) SELECT station, {_BIN_SQL} AS b, "
+                     "avg(smoothed) FROM derived WHERE station = ? AND smoothed IS NOT NULL GROUP BY b", (station,))
+        return
+    lo, hi = int(t_lo) // g * g, int(t_hi) // g * g + g - 1
+    conn.execute("DELETE FROM residual_bins WHERE station = ? AND b BETWEEN ? AND ?", (station, lo, hi))
+    conn.execute(f"INSERT INTO residual_bins (station, b, mean) SELECT station, {_BIN_SQL} AS b, avg(smoothed) "
+                 "FROM derived WHERE station = ? AND t BETWEEN ? AND ? AND smoothed IS NOT NULL GROUP BY b",
+                 (station, lo, hi))
+
+
 def read_history(conn, station: str, start: int, end: int, barometer: bool = False) -> tuple:
     """The forecaster's history from the store: the smoothed residual and (with a barometer)
     the usable pressure readings as ``GRID_S`` means on one regular grid, and the skew surges.
 
-    The means are taken by SQLite, so a long history is read as ten-minute bins, not samples.
-    """
-    def binned(sql: str, params: tuple) -> pd.Series:
-        rows = conn.execute(sql, params).fetchall()
-        if not rows:
-            return pd.Series(dtype=float)
-        t = np.array([r[0] for r in rows], dtype=np.int64)
-        return pd.Series(np.array([r[1] for r in rows], dtype=float), index=pd.to_datetime(t, unit="s", utc=True))
+    Parameters
+    ----------
+    conn : sqlite3.Connection
+        The store.
+    station : str
+        The station's id.
+    start, end : int
+        The history's first and last times [Unix s], both included (a bin cut by either
+        holds the means of its times inside).
+    barometer : bool
+        Whether to read the barometer's pressure [hPa] too.
 
+    Returns
+    -------
+    tuple
+        The smoothed residual [m] on the grid (NaN where a bin has none), the skew surges
+        (``hw_t`` [Unix s], ``skew_surge`` [m]) and the pressure on the same grid (None
+        without a barometer or readings).
+
+    Notes
+    -----
+    The whole bins of the residual are the means kept in ``residual_bins``; the two bins cut
+    by ``start`` and ``end`` are grouped from ``derived``. The pressure's means are grouped
+    by SQLite from the observations (whose flags change after they are stored).
+    """
     g = GRID_S
-    resid = binned(f"SELECT (t / {g}) * {g} AS b, avg(smoothed) FROM derived WHERE station = ? AND t BETWEEN ? AND ? "
-                   "AND smoothed IS NOT NULL GROUP BY b ORDER BY b", (station, int(start), int(end)))
+    resid = _series(_residual_bins(conn, station, int(start), int(end)))
     skew = pd.read_sql_query("SELECT hw_t, skew_surge FROM skew_surges WHERE station = ? AND hw_t BETWEEN ? AND ? "
                              "ORDER BY hw_t", conn, params=(station, int(start), int(end)))
     if resid.empty:
@@ -887,8 +935,35 @@ def read_history(conn, station: str, start: int, end: int, barometer: bool = Fal
     resid = resid.reindex(grid)
     pressure = None
     if barometer:
-        p = binned(f"SELECT (t / {g}) * {g} AS b, avg(value) FROM observations WHERE station = ? AND sensor = "
-                   "'barometer' AND t BETWEEN ? AND ? AND (flag IS NULL OR flag NOT IN (4, 9)) GROUP BY b ORDER BY b",
-                   (station, int(start), int(end)))
+        p = _series(conn.execute(
+            f"SELECT {_BIN_SQL} AS b, avg(value) FROM observations WHERE station = ? AND sensor = 'barometer' "
+            "AND t BETWEEN ? AND ? AND (flag IS NULL OR flag NOT IN (4, 9)) GROUP BY b ORDER BY b",
+            (station, int(start), int(end))).fetchall())
         pressure = p.reindex(grid) if len(p) else None
     return resid, skew, pressure
+
+
+def _residual_bins(conn, station: str, start: int, end: int) -> list[tuple]:
+    """(bin start [Unix s], mean smoothed residual [m]) of every bin with a value in
+    ``[start, end]``, in time order: the whole bins as kept, the cut ones grouped."""
+    g = GRID_S
+    first, last = -(-start // g) * g, (end + 1) // g * g - g  # the first and last whole bins
+    cut = (f"SELECT {_BIN_SQL} AS b, avg(smoothed) FROM derived WHERE station = ? AND t BETWEEN ? AND ? "
+           "AND smoothed IS NOT NULL GROUP BY b ORDER BY b")
+    if first > last:
+        return conn.execute(cut, (station, start, end)).fetchall()
+    rows = conn.execute(cut, (station, start, first - 1)).fetchall() if start < first else []
+    rows += conn.execute("SELECT b, mean FROM residual_bins WHERE station = ? AND b BETWEEN ? AND ? ORDER BY b",
+                         (station, first, last)).fetchall()
+    if last + g <= end:
+        rows += conn.execute(cut, (station, last + g, end)).fetchall()
+    return rows
+
+
+def _series(rows: list[tuple]) -> pd.Series:
+    """(bin start [Unix s], mean) rows as a Series on UTC times."""
+    if not rows:
+        return pd.Series(dtype=float)
+    t = np.fromiter((r[0] for r in rows), dtype=np.int64, count=len(rows))
+    v = np.fromiter((r[1] for r in rows), dtype=float, count=len(rows))
+    return pd.Series(v, index=pd.to_datetime(t, unit="s", utc=True))

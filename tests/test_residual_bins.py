@@ -1,0 +1,107 @@
+"""The forecaster's history read from kept ten-minute means equals one grouped from the rows.
+
+:func:`monitor.surge.forecast.read_history` takes the whole bins of the smoothed residual
+from ``residual_bins``, kept by every write of ``derived``, and groups only the two bins cut
+by its bounds. The reference here shares no code with it: the ``derived`` rows read raw and
+grouped by pandas on bins floored by numpy. Writes come in any order, rewrite rows (a value,
+then none), leave the smoothed column out, and reach before 1970.
+"""
+from __future__ import annotations
+
+import sqlite3
+
+import numpy as np
+import pandas as pd
+import pytest
+from hypothesis import HealthCheck, given, settings
+from hypothesis import strategies as st
+
+from monitor.store.database import Store
+from monitor.surge import forecast as SF
+from tests.test_store_upgrade import _load
+from tests.units import day, hour, minute, mm
+
+GRID = 10 * minute   # the forecaster's grid, written out (not read from the code under test)
+#: Means of the same rows summed in another order may differ in the last bits [m].
+ROUNDING = 1e-9 * mm
+
+
+def reference(conn: sqlite3.Connection, station: str, start: int, end: int) -> pd.Series:
+    """The smoothed residual's means on the grid, from the raw rows, by pandas."""
+    raw = pd.read_sql_query("SELECT t, smoothed FROM derived WHERE station = ? AND t BETWEEN ? AND ? "
+                            "AND smoothed IS NOT NULL", conn, params=(station, start, end))
+    if raw.empty:
+        return pd.Series(dtype=float)
+    means = raw.groupby(np.floor_divide(raw["t"].to_numpy(), GRID) * GRID)["smoothed"].mean()
+    full = np.arange(means.index[0], means.index[-1] + 1, GRID)
+    return means.reindex(full).set_axis(pd.to_datetime(full, unit="s", utc=True))
+
+
+def assert_same(got: pd.Series, want: pd.Series) -> None:
+    assert len(got) == len(want)
+    if len(want):
+        assert (got.index == want.index).all()
+        np.testing.assert_array_equal(np.isnan(got.to_numpy()), np.isnan(want.to_numpy()))
+        np.testing.assert_allclose(got.to_numpy(), want.to_numpy(), rtol=0, atol=ROUNDING)
+
+
+writes = st.lists(st.tuples(st.integers(-3 * hour, 3 * day), st.integers(1, 400), st.sampled_from(["value", "none", "other"]),
+                            st.booleans()), min_size=1, max_size=8)
+
+
+@settings(max_examples=40, deadline=None, suppress_health_check=[HealthCheck.function_scoped_fixture])
+@given(writes=writes, bounds=st.tuples(st.integers(-4 * hour, 3 * day), st.integers(0, 3 * day)), seed=st.integers(0, 99))
+def test_the_history_equals_the_rows_grouped(tmp_path_factory, writes, bounds, seed):
+    rng = np.random.default_rng(seed)
+    path = tmp_path_factory.mktemp("bins") / "store.sqlite"
+    t0 = 1_700_000_000 - 1_700_000_000 % GRID + 7  # bins not aligned with the writes
+    with Store.open(path) as store:
+        for at, n, kind, shuffled in writes:
+            t = t0 + at + np.arange(n) * rng.choice([minute, 1, 7 * minute])
+            if shuffled:
+                t = rng.permutation(t)
+            values = rng.normal(0, 0.3, n)
+            if kind == "none":      # a rewrite that takes the smoothed value away
+                values[:] = np.nan
+            elif kind == "value":
+                values[rng.random(n) < 0.2] = np.nan
+            cols = {"smoothed": values} if kind != "other" else {"residual": values}
+            store.write_derived_rows("port", t, cols)
+            store.write_derived_rows("other", t, {"smoothed": values + 5.0})  # a neighbour's rows
+        start, length = t0 + bounds[0], bounds[1]
+        got, _, _ = SF.read_history(store.conn, "port", start, start + length)
+        assert_same(got, reference(store.conn, "port", start, start + length))
+
+
+@pytest.mark.parametrize("start, end", [(-3 * day - 7, -1), (-5 * GRID, 5 * GRID), (-GRID + 1, GRID - 1),
+                                        (-3 * minute, 2 * minute)])
+def test_bins_before_1970_round_down(store, start, end):
+    t = np.arange(-2 * day, 2 * hour, minute)
+    store.write_derived_rows("port", t, {"smoothed": np.sin(t / 5000.0)})
+    got, _, _ = SF.read_history(store.conn, "port", start, end)
+    assert_same(got, reference(store.conn, "port", start, end))
+    if len(got):
+        seconds = (got.index - pd.Timestamp(0, tz="UTC")) // pd.Timedelta(seconds=1)
+        assert (seconds % GRID == 0).all()
+
+
+def test_a_rewrite_without_values_empties_its_bins(store):
+    t = 1_700_000_400 + np.arange(0, 6 * hour, minute)
+    store.write_derived_rows("port", t, {"smoothed": np.full(len(t), 0.5)})
+    store.write_derived_rows("port", t[60:120], {"smoothed": np.full(60, np.nan)})
+    got, _, _ = SF.read_history(store.conn, "port", int(t[0]), int(t[-1]))
+    hole = got[(got.index >= pd.Timestamp(t[60], unit="s", tz="UTC"))
+               & (got.index < pd.Timestamp(t[120], unit="s", tz="UTC"))]
+    assert len(hole) == 6 and hole.isna().all()
+    assert got.drop(hole.index).eq(0.5).all()
+
+
+def test_an_upgraded_store_has_the_means_of_its_rows(tmp_path):
+    path = _load(tmp_path / "old.db")
+    with Store.open(path) as store:
+        span = store.conn.execute("SELECT min(t), max(t), count(smoothed) FROM derived WHERE station = 'testport'"
+                                  ).fetchone()
+        assert span[2] > 100
+        got, _, _ = SF.read_history(store.conn, "testport", span[0], span[1])
+        assert got.notna().sum() > 10
+        assert_same(got, reference(store.conn, "testport", span[0], span[1]))
