@@ -365,7 +365,9 @@ class Store:
         with self.transaction() as conn:
             conn.executemany(_derived_sql(cols), rows)
             if "smoothed" in cols:  # the residual's ten-minute means, with the rows they are made of
-                rebin_residual(conn, station, int(t.min()), int(t.max()))
+                smoothed = data[cols.index("smoothed")]
+                rebin_residual(conn, station, int(t.min()), int(t.max()),
+                               emptied=not all(map(math.isfinite, smoothed)))
         return len(rows)
 
     def write_skew_surges(self, station: str, frame: pd.DataFrame) -> int:

@@ -878,11 +878,14 @@ def ensure_residual_bins(db) -> None:
                "mean REAL NOT NULL, PRIMARY KEY (station, b)) WITHOUT ROWID")
 
 
-def rebin_residual(conn, station: str, t_lo: int | None = None, t_hi: int | None = None) -> None:
+def rebin_residual(conn, station: str, t_lo: int | None = None, t_hi: int | None = None,
+                   emptied: bool = True) -> None:
     """Make ``residual_bins`` again for every bin holding a time in ``[t_lo, t_hi]`` [Unix s]
     (all of the station's without bounds) from the ``derived`` rows as stored now: the
     caller's transaction writes them with the rows (:meth:`Store.write_derived_rows
-    <monitor.store.database.Store.write_derived_rows>`, the one writer of ``derived``)."""
+    <monitor.store.database.Store.write_derived_rows>`, the one writer of ``derived``).
+    ``emptied`` False: the rows just written all have a smoothed value, so no bin of theirs
+    is left without one (and none is deleted)."""
     g = GRID_S
     if t_lo is None or t_hi is None:
         conn.execute("DELETE FROM residual_bins WHERE station = ?", (station,))
@@ -890,8 +893,9 @@ def rebin_residual(conn, station: str, t_lo: int | None = None, t_hi: int | None
                      "avg(smoothed) FROM derived WHERE station = ? AND smoothed IS NOT NULL GROUP BY b", (station,))
         return
     lo, hi = int(t_lo) // g * g, int(t_hi) // g * g + g - 1
-    conn.execute("DELETE FROM residual_bins WHERE station = ? AND b BETWEEN ? AND ?", (station, lo, hi))
-    conn.execute(f"INSERT INTO residual_bins (station, b, mean) SELECT station, {_BIN_SQL} AS b, avg(smoothed) "
+    if emptied:
+        conn.execute("DELETE FROM residual_bins WHERE station = ? AND b BETWEEN ? AND ?", (station, lo, hi))
+    conn.execute(f"INSERT OR REPLACE INTO residual_bins (station, b, mean) SELECT station, {_BIN_SQL} AS b, avg(smoothed) "
                  "FROM derived WHERE station = ? AND t BETWEEN ? AND ? AND smoothed IS NOT NULL GROUP BY b",
                  (station, lo, hi))
 
