@@ -28,6 +28,7 @@ from aiosmtpd.controller import Controller
 from monitor.cli import main as cli
 from monitor.demo_decades import STATION, write_inputs
 from monitor.service.config import validate_config
+from monitor.service.daemon import Daemon
 from monitor.store.database import Store
 
 
@@ -91,6 +92,21 @@ def smtp(smtp_server, port) -> SmtpCollector:
 def store(tmp_path):
     with Store.open(tmp_path / "store.sqlite") as s:
         yield s
+
+
+@pytest.fixture
+def daemon(tmp_path):
+    """A daemon over a fresh store with one station, ``testport`` (primary and backup, its
+    constants to be fitted from its own history), no feeds."""
+    raw = {"store": {"path": "q.db"},
+           "stations": [{"id": "testport", "latitude": 50.0, "longitude": -4.0, "constants": "history",
+                         "datums": {"chart": -1.0},
+                         "sensors": {"primary": {}, "backup": {}}}]}
+    cfg, errors = validate_config(raw, tmp_path)
+    assert errors == []
+    store = Store.open(cfg.store_path)
+    yield Daemon(cfg, store)
+    store.close()
 
 
 @pytest.fixture

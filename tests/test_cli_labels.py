@@ -16,7 +16,7 @@ from alerts.rules import StationView, rules_from_config
 from monitor.cli import main
 from monitor.cli.app import config_first
 from monitor.store.database import Store
-from monitor.service.daemon import log_formatter
+from monitor.service.logs import log_formatter
 
 ROOT = Path(__file__).resolve().parent.parent
 

@@ -94,24 +94,6 @@ def _lines(minutes, level=2.0):
             for m in minutes]
 
 
-@pytest.fixture
-def daemon(tmp_path):
-    from monitor.service.config import validate_config
-    from monitor.service.daemon import Daemon
-    from monitor.store.database import Store
-
-    raw = {"store": {"path": "q.db"},
-           "stations": [{"id": "testport", "latitude": 50.0, "longitude": -4.0, "constants": "history",
-                         "datums": {"chart": -1.0},
-                         "sensors": {"primary": {}, "backup": {}}}]}
-    cfg, errors = validate_config(raw, tmp_path)
-    assert errors == []
-    store = Store.open(cfg.store_path)
-    d = Daemon(cfg, store)
-    yield d
-    store.close()
-
-
 def _ingest(d, role, minutes):
     from monitor.service.daemon import ingest_lines
 
@@ -312,7 +294,7 @@ def test_daemon_refit_infers_unresolved_neighbours_and_records_it(daemon):
 def test_scheduler_job_lines_stay_out_of_the_log_unless_very_verbose(daemon):
     import logging
 
-    from monitor.service.daemon import setup_logging
+    from monitor.service.logs import setup_logging
 
     root = logging.getLogger()
     level, handlers = root.level, list(root.handlers)

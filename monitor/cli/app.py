@@ -18,7 +18,7 @@ from monitor.cli.errors import UserError
 from monitor.errors import MonitorError
 from predictor.caution import CAUTION
 from predictor.errors import PredictorError
-from monitor.service.daemon import log_formatter
+from monitor.service.logs import log_formatter
 
 # Verb groups, each owning its own module; order is the order shown in --help.
 _GROUPS = (

@@ -156,9 +156,10 @@ class LogSettings:
     file: Path | None = None
     max_bytes: int = 5_000_000
     backups: int = 5
+    repeat_minutes: float = 10.0
 
 
-LOG_KEYS = ("level", "file", "max_bytes", "backups")
+LOG_KEYS = ("level", "file", "max_bytes", "backups", "repeat_minutes")
 
 
 @dataclass(frozen=True)
@@ -477,8 +478,11 @@ def _logging(c: _Checker, raw: Any, base_dir: Path) -> LogSettings:
     f = c.value(t, "logging", "file", "str", "")
     mb = c.value(t, "logging", "max_bytes", "int", d.max_bytes, lambda v: v >= 1000, "an integer >= 1000")
     bk = c.value(t, "logging", "backups", "int", d.backups, lambda v: 0 <= v <= 100, "an integer from 0 to 100")
+    rp = c.value(t, "logging", "repeat_minutes", "number", d.repeat_minutes, lambda v: 0 <= v <= 1440,
+                 "minutes from 0 to 1440")
     return LogSettings(level=(level or d.level).lower(), file=_resolve(base_dir, f) if f else None,
-                       max_bytes=mb or d.max_bytes, backups=d.backups if bk is None else bk)
+                       max_bytes=mb or d.max_bytes, backups=d.backups if bk is None else bk,
+                       repeat_minutes=d.repeat_minutes if rp is None else float(rp))
 
 
 def _residual(c: _Checker, raw: Any) -> ResidualSettings:

@@ -35,7 +35,6 @@ from __future__ import annotations
 import bisect
 import datetime as dt
 import logging
-import logging.handlers
 import math
 import os
 import signal
@@ -55,7 +54,7 @@ from alerts import engine
 from alerts import rules
 from alerts.mail import outbox
 from monitor import feeds as feeds_mod
-from monitor.errors import ConfigError, MonitorError
+from monitor.errors import MonitorError
 from monitor.feeds.parse import parse_lines
 from monitor.quality import checks as qc
 from monitor.quality import diagnostics
@@ -65,6 +64,7 @@ from monitor.service.config import Config, SensorConfig, StationConfig, unsendab
 from monitor.service.constants import load_model, model_from_text, model_to_text
 from monitor.service.diag_memory import DiagnosticsMemory, usable_series
 from monitor.service.live_pages import LivePages
+from monitor.service.logs import setup_logging
 from monitor.service.reporting import write_due_reports
 from monitor.store.database import BatchResult, EMPTY_BATCH, Store, check_folder, check_store_path
 from monitor.store.migrations import DERIVED_COLUMNS
@@ -1675,56 +1675,7 @@ def _now_dt():
     return dt.datetime.now(dt.timezone.utc)
 
 
-# --------------------------------------------------------------------------- logging and entry
-
-class _SkippedRunFilter(logging.Filter):
-    """Drops apscheduler's warning that a run was skipped because the previous one is still
-    going: with max_instances=1 that is the intended behaviour during a long backfill."""
-
-    def filter(self, record: logging.LogRecord) -> bool:
-        return "maximum number of running instances" not in record.getMessage()
-
-
-def setup_logging(cfg: Config, verbose: int = 0) -> None:
-    """Log to stderr (set up by the command line) and, if configured, a rotating file."""
-    root = logging.getLogger()
-    level = getattr(logging, cfg.logging.level.upper(), logging.INFO)
-    if verbose:
-        level = min(level, logging.DEBUG if verbose > 1 else logging.INFO)
-    root.setLevel(level)
-    # the scheduler logs every job run at INFO, drowning the monitor's lines: its warnings
-    # and errors only, unless -vv
-    aps = logging.getLogger("apscheduler")
-    aps.setLevel(logging.DEBUG if verbose > 1 else logging.WARNING)
-    sched_log = logging.getLogger("apscheduler.scheduler")
-    for f in [f for f in sched_log.filters if isinstance(f, _SkippedRunFilter)]:
-        sched_log.removeFilter(f)
-    if verbose < 2:
-        sched_log.addFilter(_SkippedRunFilter())
-    fmt = log_formatter()  # ISO 8601 UTC stamps
-    if not root.handlers:
-        h = logging.StreamHandler()
-        h.setFormatter(fmt)
-        root.addHandler(h)
-    if cfg.logging.file is not None:
-        try:
-            cfg.logging.file.parent.mkdir(parents=True, exist_ok=True)
-            fh = logging.handlers.RotatingFileHandler(cfg.logging.file, maxBytes=cfg.logging.max_bytes,
-                                                      backupCount=cfg.logging.backups, encoding="utf-8")
-        except OSError as exc:
-            raise ConfigError(f"logging.file: cannot open {cfg.logging.file} ({exc})") from None
-        fh.setFormatter(fmt)
-        root.addHandler(fh)
-
-
-def log_formatter() -> logging.Formatter:
-    """Log lines stamped in ISO 8601 UTC to the millisecond: ``2025-10-23T12:00:00.123Z
-    INFO name: message`` (the daemon's log, and the command line's warnings)."""
-    fmt = logging.Formatter("%(asctime)s.%(msecs)03dZ %(levelname)s %(name)s: %(message)s",
-                            datefmt="%Y-%m-%dT%H:%M:%S")
-    fmt.converter = time.gmtime
-    return fmt
-
+# --------------------------------------------------------------------------- entry
 
 def run_daemon(cfg: Config, until_exhausted: bool = False, verbose: int = 0) -> int:
     """``quaywatch run``: check what can be checked, open the feeds, lock the store, run the

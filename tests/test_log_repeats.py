@@ -1,0 +1,189 @@
+"""A failure that repeats is shown once whole, then at most every few minutes with its count.
+
+A feed whose device is gone fails every poll; a broken rule every pass. The log keeps the
+first traceback, then one line per ``logging.repeat_minutes`` saying how many of the same
+were not shown, and the traceback again after a day.
+"""
+from __future__ import annotations
+
+import io
+import logging
+from dataclasses import replace
+
+import pytest
+
+from monitor.service.daemon import FeedRuntime
+from monitor.service.logs import RepeatFilter, log_formatter, setup_logging
+from tests.units import day, minute
+
+
+class Clock:
+    def __init__(self, t: float = 1_790_000_000.0):
+        self.t = t
+
+    def __call__(self) -> float:
+        return self.t
+
+
+@pytest.fixture
+def logged():
+    """A logger of its own writing to a text buffer through a RepeatFilter on a test clock."""
+    clock, out = Clock(), io.StringIO()
+    handler = logging.StreamHandler(out)
+    handler.setFormatter(log_formatter())
+    handler.addFilter(RepeatFilter(every_s=10 * minute, clock=clock))
+    logger = logging.getLogger("qw.test.repeats")
+    logger.propagate, logger.level = False, logging.DEBUG
+    logger.addHandler(handler)
+    yield logger, clock, out
+    logger.removeHandler(handler)
+
+
+def fail(logger: logging.Logger, text: str = "device gone") -> None:
+    try:
+        raise OSError(text)
+    except OSError:
+        logger.exception("feed %s: poll failed; will retry", "north")
+
+
+def test_a_repeated_failure_is_shown_once_with_its_traceback(logged):
+    logger, clock, out = logged
+    for _ in range(100):
+        fail(logger)
+        clock.t += 3  # a poll every 3 s: 300 s in all
+    text = out.getvalue()
+    assert text.count("poll failed") == 1 and text.count("Traceback") == 1
+
+
+def test_after_the_interval_it_is_shown_with_the_count_and_without_the_traceback(logged):
+    logger, clock, out = logged
+    fail(logger)                    # shown whole at t0
+    for _ in range(99):
+        clock.t += 5
+        fail(logger)                # 99 hidden, the last 495 s after t0
+    clock.t += 10 * minute - 495    # exactly the interval after the first showing
+    fail(logger)
+    lines = [ln for ln in out.getvalue().splitlines() if "poll failed" in ln]
+    assert len(lines) == 2
+    # the clock starts at 1,790,000,000 s: 2026-09-21T14:13:20Z (GNU date -u -d @1790000000)
+    assert "the same 99 more time(s) from 2026-09-21T14:13:25Z to 2026-09-21T14:21:35Z, not shown" in lines[1]
+    assert "traceback as shown at 2026-09-21T14:13:20Z" in lines[1]
+    assert out.getvalue().count("Traceback") == 1
+
+
+def test_just_before_the_interval_it_stays_hidden(logged):
+    logger, clock, out = logged
+    fail(logger)
+    clock.t += 10 * minute - 1
+    fail(logger)
+    assert out.getvalue().count("poll failed") == 1
+
+
+def test_the_traceback_comes_again_after_a_day(logged):
+    logger, clock, out = logged
+    fail(logger)
+    clock.t += day - 1
+    fail(logger)                    # shown, a second short of a day: without its traceback
+    clock.t += 10 * minute
+    fail(logger)                    # shown, the traceback a day old: with it
+    assert out.getvalue().count("poll failed") == 3
+    assert out.getvalue().count("Traceback") == 2
+
+
+def test_another_message_or_error_is_another_line(logged):
+    logger, clock, out = logged
+    fail(logger, "device gone")
+    fail(logger, "permission denied")
+    logger.error("station %s: processing failed", "north")
+    logger.error("station %s: processing failed", "south")
+    text = out.getvalue()
+    assert text.count("device gone") == 1 and text.count("permission denied") == 1
+    assert text.count("processing failed") == 2
+
+
+def test_lines_below_warning_always_pass(logged):
+    logger, clock, out = logged
+    for _ in range(20):
+        logger.info("feed north: 1 line(s) rejected")
+    assert out.getvalue().count("rejected") == 20
+
+
+def test_zero_minutes_shows_every_one():
+    out, clock = io.StringIO(), Clock()
+    handler = logging.StreamHandler(out)
+    handler.addFilter(RepeatFilter(every_s=0, clock=clock))
+    logger = logging.getLogger("qw.test.repeats.every")
+    logger.propagate = False
+    logger.addHandler(handler)
+    try:
+        for _ in range(5):
+            fail(logger)
+    finally:
+        logger.removeHandler(handler)
+    assert out.getvalue().count("Traceback") == 5
+
+
+def test_one_filter_on_two_handlers_shows_the_same_on_both():
+    clock, a, b = Clock(), io.StringIO(), io.StringIO()
+    repeats = RepeatFilter(every_s=10 * minute, clock=clock)
+    logger = logging.getLogger("qw.test.repeats.two")
+    logger.propagate = False
+    handlers = [logging.StreamHandler(a), logging.StreamHandler(b)]
+    for h in handlers:
+        h.addFilter(repeats)
+        logger.addHandler(h)
+    try:
+        for _ in range(3):
+            fail(logger)
+            clock.t += 6 * minute
+    finally:
+        for h in handlers:
+            logger.removeHandler(h)
+    assert a.getvalue() == b.getvalue()
+    assert a.getvalue().count("poll failed") == 2 and a.getvalue().count("Traceback") == 1
+
+
+def test_the_oldest_line_is_forgotten_past_the_limit(logged):
+    logger, clock, out = logged
+    for i in range(RepeatFilter.MAX_LINES + 1):
+        logger.warning("line %d", i)
+    logger.warning("line %d", 0)    # forgotten: shown again as new
+    logger.warning("line %d", RepeatFilter.MAX_LINES)  # remembered: hidden
+    lines = out.getvalue().splitlines()
+    assert len(lines) == RepeatFilter.MAX_LINES + 2
+
+
+def test_the_daemon_log_keeps_one_traceback_of_a_feed_that_fails_every_poll(daemon, tmp_path):
+    class Gone:
+        def poll(self):
+            raise OSError("[Errno 19] No such device: /dev/ttyGAUGE")
+
+    log_file = tmp_path / "quaywatch.log"
+    cfg = replace(daemon.cfg, logging=replace(daemon.cfg.logging, file=log_file))
+    root = logging.getLogger()
+    level, handlers = root.level, list(root.handlers)
+    root.handlers[:] = []
+    try:
+        setup_logging(cfg)
+        daemon.feeds = [FeedRuntime("north-serial", daemon.cfg.stations[0].sensors["primary"], Gone())]
+        for _ in range(50):
+            daemon.poll()
+    finally:
+        for h in root.handlers:
+            h.close()
+        root.setLevel(level)
+        root.handlers[:] = handlers
+    text = log_file.read_text(encoding="utf-8")
+    assert text.count("feed north-serial: poll failed; will retry") == 1
+    assert text.count("Traceback") == 1 and "No such device" in text
+
+
+def test_repeat_minutes_is_read_from_the_configuration(tmp_path):
+    from monitor.service.config import validate_config
+
+    base = {"store": {"path": "q.db"}, "stations": [{"id": "p", "latitude": 50.0, "longitude": -4.0,
+                                                     "constants": "history", "sensors": {"primary": {}}}]}
+    cfg, errors = validate_config({**base, "logging": {"repeat_minutes": 30}}, tmp_path)
+    assert errors == [] and cfg.logging.repeat_minutes == 30.0
+    _, errors = validate_config({**base, "logging": {"repeat_minutes": -1}}, tmp_path)
+    assert errors == ["logging.repeat_minutes: expected minutes from 0 to 1440, got integer -1"]
