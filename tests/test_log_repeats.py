@@ -187,3 +187,10 @@ def test_repeat_minutes_is_read_from_the_configuration(tmp_path):
     assert errors == [] and cfg.logging.repeat_minutes == 30.0
     _, errors = validate_config({**base, "logging": {"repeat_minutes": -1}}, tmp_path)
     assert errors == ["logging.repeat_minutes: expected minutes from 0 to 1440, got integer -1"]
+
+
+def test_a_message_that_cannot_be_made_is_passed_to_the_handler():
+    # one argument short: the filter must not raise into the code that logged it; the
+    # handler reports the broken line as logging does
+    record = logging.LogRecord("qw.test", logging.ERROR, __file__, 1, "station %s: %d samples", ("north",), None)
+    assert RepeatFilter(every_s=10 * minute, clock=Clock()).filter(record) is True

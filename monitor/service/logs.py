@@ -13,6 +13,7 @@ from __future__ import annotations
 import logging
 import logging.handlers
 import math
+import threading
 import time
 from dataclasses import dataclass
 from typing import Callable
@@ -116,7 +117,7 @@ class RepeatFilter(logging.Filter):
     -----
     One instance serves every handler: the first handler's call decides for a record (and
     rewrites its message), the others read that decision, so the file and the terminal show
-    the same lines. At most ``MAX_LINES`` lines are remembered; the one seen longest ago is
+    the same lines. Calls from several threads take turns (a lock). At most ``MAX_LINES`` lines are remembered; the one seen longest ago is
     forgotten first.
     """
 
@@ -127,14 +128,18 @@ class RepeatFilter(logging.Filter):
         super().__init__()
         self.every_s, self.trace_every_s, self.clock = float(every_s), float(trace_every_s), clock
         self._seen: dict[tuple, _Seen] = {}
+        self._lock = threading.Lock()  # the daemon logs from its jobs' threads, the outbox's and the fit's
 
     def filter(self, record: logging.LogRecord) -> bool:
-        decided = record.__dict__.get("_qw_shown")
-        if decided is not None:
-            return decided
-        shown = self._decide(record)
-        record._qw_shown = shown
-        return shown
+        with self._lock:
+            decided = record.__dict__.get("_qw_shown")
+            if decided is None:
+                try:
+                    decided = self._decide(record)
+                except Exception:  # a message that cannot be made (its handler says so): shown as it is
+                    decided = True
+                record._qw_shown = decided
+        return decided
 
     def _decide(self, record: logging.LogRecord) -> bool:
         if record.levelno < logging.WARNING or self.every_s <= 0:
