@@ -14,6 +14,7 @@ Named units for tolerances are in ``tests/units.py``.
 from __future__ import annotations
 
 import email
+import logging
 import os
 import shutil
 import socket
@@ -107,6 +108,27 @@ def daemon(tmp_path):
     store = Store.open(cfg.store_path)
     yield Daemon(cfg, store)
     store.close()
+
+
+@pytest.fixture
+def root_logging():
+    """The root logger's level, handlers and each handler's filters, as they were, after
+    the test (``setup_logging`` changes all three; a filter left on pytest's own handlers
+    would hide lines from the tests after it). Yields the root logger."""
+    root = logging.getLogger()
+    aps = logging.getLogger("apscheduler")
+    kept = (root.level, aps.level, [(h, list(h.filters)) for h in root.handlers])
+    try:
+        yield root
+    finally:
+        for h in root.handlers:
+            if h not in [k for k, _ in kept[2]]:
+                h.close()
+        root.setLevel(kept[0])
+        aps.setLevel(kept[1])
+        root.handlers[:] = [h for h, _ in kept[2]]
+        for h, filters in kept[2]:
+            h.filters[:] = filters
 
 
 @pytest.fixture

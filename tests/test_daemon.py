@@ -291,22 +291,15 @@ def test_daemon_refit_infers_unresolved_neighbours_and_records_it(daemon):
     assert any(d["name"] == "K2" and d["from"] == "S2" for d in md.get("inferred", []))
 
 
-def test_scheduler_job_lines_stay_out_of_the_log_unless_very_verbose(daemon):
+def test_scheduler_job_lines_stay_out_of_the_log_unless_very_verbose(daemon, root_logging):
     import logging
 
     from monitor.service.logs import setup_logging
 
-    root = logging.getLogger()
-    level, handlers = root.level, list(root.handlers)
-    try:
-        setup_logging(daemon.cfg, verbose=1)
-        assert logging.getLogger("apscheduler").getEffectiveLevel() == logging.WARNING
-        setup_logging(daemon.cfg, verbose=2)
-        assert logging.getLogger("apscheduler").getEffectiveLevel() == logging.DEBUG
-    finally:
-        logging.getLogger("apscheduler").setLevel(logging.NOTSET)
-        root.setLevel(level)
-        root.handlers[:] = handlers
+    setup_logging(daemon.cfg, verbose=1)
+    assert logging.getLogger("apscheduler").getEffectiveLevel() == logging.WARNING
+    setup_logging(daemon.cfg, verbose=2)
+    assert logging.getLogger("apscheduler").getEffectiveLevel() == logging.DEBUG
 
 
 def test_a_window_whose_quality_control_fails_is_retried_not_passed_on(daemon, monkeypatch):

@@ -153,29 +153,33 @@ def test_the_oldest_line_is_forgotten_past_the_limit(logged):
     assert len(lines) == RepeatFilter.MAX_LINES + 2
 
 
-def test_the_daemon_log_keeps_one_traceback_of_a_feed_that_fails_every_poll(daemon, tmp_path):
+def test_the_daemon_log_keeps_one_traceback_of_a_feed_that_fails_every_poll(daemon, tmp_path, root_logging):
     class Gone:
         def poll(self):
             raise OSError("[Errno 19] No such device: /dev/ttyGAUGE")
 
     log_file = tmp_path / "quaywatch.log"
     cfg = replace(daemon.cfg, logging=replace(daemon.cfg.logging, file=log_file))
-    root = logging.getLogger()
-    level, handlers = root.level, list(root.handlers)
-    root.handlers[:] = []
-    try:
-        setup_logging(cfg)
-        daemon.feeds = [FeedRuntime("north-serial", daemon.cfg.stations[0].sensors["primary"], Gone())]
-        for _ in range(50):
-            daemon.poll()
-    finally:
-        for h in root.handlers:
-            h.close()
-        root.setLevel(level)
-        root.handlers[:] = handlers
+    root_logging.handlers[:] = []
+    setup_logging(cfg)
+    daemon.feeds = [FeedRuntime("north-serial", daemon.cfg.stations[0].sensors["primary"], Gone())]
+    for _ in range(50):
+        daemon.poll()
+    for h in root_logging.handlers:
+        h.flush()
     text = log_file.read_text(encoding="utf-8")
     assert text.count("feed north-serial: poll failed; will retry") == 1
     assert text.count("Traceback") == 1 and "No such device" in text
+
+
+def test_setup_logging_puts_one_filter_on_every_handler_once(daemon, root_logging):
+    extra = logging.StreamHandler(io.StringIO())
+    root_logging.addHandler(extra)
+    setup_logging(daemon.cfg)
+    setup_logging(daemon.cfg)
+    filters = [[f for f in h.filters if isinstance(f, RepeatFilter)] for h in root_logging.handlers]
+    assert all(len(f) == 1 for f in filters)
+    assert len({id(f[0]) for f in filters}) == 1
 
 
 def test_repeat_minutes_is_read_from_the_configuration(tmp_path):
