@@ -105,3 +105,74 @@ def test_an_upgraded_store_has_the_means_of_its_rows(tmp_path):
         got, _, _ = SF.read_history(store.conn, "testport", span[0], span[1])
         assert got.notna().sum() > 10
         assert_same(got, reference(store.conn, "testport", span[0], span[1]))
+
+
+def pressure_reference(conn: sqlite3.Connection, station: str, start: int, end: int, grid: pd.Index) -> pd.Series:
+    """The barometer's usable readings (flag not 4 or 9) as means on ``grid``, by pandas."""
+    raw = pd.read_sql_query("SELECT t, value, flag FROM observations WHERE station = ? AND sensor = 'barometer' "
+                            "AND t BETWEEN ? AND ?", conn, params=(station, start, end))
+    raw = raw[~raw["flag"].isin([4, 9])]
+    means = raw.groupby(np.floor_divide(raw["t"].to_numpy(), GRID) * GRID)["value"].mean()
+    return means.set_axis(pd.to_datetime(means.index.to_numpy(), unit="s", utc=True)).reindex(grid)
+
+
+@settings(max_examples=25, deadline=None, suppress_health_check=[HealthCheck.function_scoped_fixture])
+@given(batches=st.lists(st.tuples(st.integers(-2 * hour, 2 * day), st.integers(1, 300), st.booleans()),
+                        min_size=1, max_size=5),
+       flagged=st.lists(st.tuples(st.integers(0, 2 * day), st.integers(0, 3 * hour), st.sampled_from([1, 3, 4, 9])),
+                        max_size=4),
+       bounds=st.tuples(st.integers(-3 * hour, 2 * day), st.integers(0, 2 * day)), seed=st.integers(0, 99),
+       t0=st.sampled_from([-2 * day + 13, 1_700_000_000 + 7]))
+def test_the_pressure_equals_its_usable_readings_grouped(tmp_path_factory, batches, flagged, bounds, seed, t0):
+    from monitor.quality import checks as qc
+
+    rng = np.random.default_rng(seed)
+    path = tmp_path_factory.mktemp("pbins") / "store.sqlite"
+    with Store.open(path) as store:
+        t = np.arange(t0 - 4 * hour, t0 + 3 * day, minute)
+        store.write_derived_rows("port", t, {"smoothed": np.zeros(len(t))})  # the grid the pressure is put on
+        for at, n, shuffled in batches:  # late, repeated and out-of-order batches
+            tb = t0 + at + np.arange(n) * minute
+            store.write_batch("port", "barometer", rng.permutation(tb) if shuffled else tb,
+                              1013.0 + rng.normal(0, 5, n))
+        stored = np.array([r[0] for r in store.conn.execute(
+            "SELECT t FROM observations WHERE sensor = 'barometer' ORDER BY t")], dtype=np.int64)
+        for at, length, flag in flagged:
+            some = stored[(stored >= t0 + at) & (stored <= t0 + at + length)]
+            if len(some):  # quality control's flags, and a technician's over part of them
+                qc.write_rows(store, "port", "barometer", some, np.ones((len(some), len(qc.TESTS))), some,
+                              np.full(len(some), flag))
+                qc.set_override(store, "port", "barometer", float(some[0]), float(some[len(some) // 2]),
+                                4 if flag != 4 else 1, "tech", "test")
+        start, end = t0 + bounds[0], t0 + bounds[0] + bounds[1]
+        resid, _, pressure = SF.read_history(store.conn, "port", start, end, barometer=True)
+        want = pressure_reference(store.conn, "port", start, end, resid.index)
+        if pressure is None:
+            assert want.isna().all()
+        else:
+            assert_same(pressure, want)
+
+
+def test_each_writer_of_the_barometer_keeps_its_means(store):
+    from monitor.quality import checks as qc
+
+    t0 = 1_700_000_000 + 7
+    t = t0 + np.arange(0, 6 * hour, minute)
+    store.write_derived_rows("port", t, {"smoothed": np.zeros(len(t))})
+
+    def check():
+        resid, _, pressure = SF.read_history(store.conn, "port", int(t[0]), int(t[-1]), barometer=True)
+        assert_same(pressure, pressure_reference(store.conn, "port", int(t[0]), int(t[-1]), resid.index))
+
+    store.write_batch("port", "barometer", t[::2], 1000.0 + np.arange(len(t[::2])))
+    check()
+    store.write_batch("port", "barometer", t[1::2], 1020.0 + np.arange(len(t[1::2])))  # late rows between
+    check()
+    hour2 = t[(t >= t0 + hour) & (t < t0 + 2 * hour)]
+    qc.write_rows(store, "port", "barometer", hour2, np.ones((len(hour2), len(qc.TESTS))), hour2,
+                  np.full(len(hour2), 4))   # quality control fails an hour
+    check()
+    qc.set_override(store, "port", "barometer", float(t0 + 4 * hour), float(t0 + 5 * hour), 4, "tech", "leak")
+    check()
+    qc.set_override(store, "port", "barometer", float(hour2[0]), float(hour2[20]), 1, "tech", "fine after all")
+    check()

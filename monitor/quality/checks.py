@@ -52,6 +52,7 @@ import pandas as pd
 
 from alerts.transactions import transaction
 from monitor.errors import QcError
+from monitor.surge.forecast import rebin_pressure
 from predictor.timeutil import index_seconds, silences, utc_index
 from predictor.timeutil import parse_duration as _parse_duration
 
@@ -2213,6 +2214,8 @@ def write_rows(db: Any, station: str, sensor: str, t_tests: np.ndarray, tests: n
         conn.executemany(
             f"INSERT OR REPLACE INTO qc_tests (station, sensor, t, {names}) VALUES (?, ?, ?, {marks})", rows)
         conn.executemany("UPDATE observations SET flag = ? WHERE station = ? AND sensor = ? AND t = ?", fl)
+        if sensor == "barometer" and len(t_flags):  # a failed reading leaves the pressure's means
+            rebin_pressure(conn, station, int(np.min(t_flags)), int(np.max(t_flags)))
         if edit:
             note_edit(conn)
 
@@ -2278,6 +2281,8 @@ def set_override(store: Any, station: str, sensor: str, start_t: float, end_t: f
             [(station, sensor, t, int(flag), who, why, stamp) for t in ts])
         conn.execute("UPDATE observations SET flag = ? WHERE station = ? AND sensor = ? AND t BETWEEN ? AND ?",
                      (int(flag), station, sensor, lo, hi))
+        if sensor == "barometer":
+            rebin_pressure(conn, station, lo, hi)
         note_edit(conn)
     return len(ts)
 

@@ -35,7 +35,7 @@ import sqlite_utils
 from alerts.transactions import transaction
 from monitor.errors import StoreError
 from monitor.store.migrations import DERIVED_COLUMNS, MIGRATIONS, SCHEMA_VERSION
-from monitor.surge.forecast import rebin_residual
+from monitor.surge.forecast import rebin_pressure, rebin_residual
 
 log = logging.getLogger("monitor.store.database")
 
@@ -260,6 +260,8 @@ class Store:
                 conn.execute("INSERT INTO meta(key, value) VALUES (?, ?) ON CONFLICT(key) DO UPDATE SET "
                              "value = min(CAST(value AS INTEGER), CAST(excluded.value AS INTEGER))",
                              (f"touched.{station}", str(int(np.min(t)))))
+                if sensor == "barometer":  # the pressure's ten-minute means, with the rows they are made of
+                    rebin_pressure(conn, station, int(np.min(t)), int(np.max(t)))
             if rej_rows:
                 conn.executemany("INSERT INTO rejects (feed, station, sensor, lineno, text, reason, at) "
                                  "VALUES (?, ?, ?, ?, ?, ?, ?)", rej_rows)

@@ -18,7 +18,7 @@ import sqlite_utils
 from alerts.engine import ensure_alert_schema
 from alerts.mail.outbox import ensure_outbox_schema
 from monitor.quality.checks import ensure_qc_schema
-from monitor.surge.forecast import ensure_forecast_schema, ensure_residual_bins, rebin_residual
+from monitor.surge.forecast import ensure_forecast_schema, ensure_history_bins, rebin_pressure, rebin_residual
 
 __all__ = ["SCHEMA_VERSION", "MIGRATIONS", "DERIVED_COLUMNS"]
 
@@ -26,7 +26,7 @@ __all__ = ["SCHEMA_VERSION", "MIGRATIONS", "DERIVED_COLUMNS"]
 #: 3: the quality-control, forecast-log, alert, outbox and report-run tables under the version;
 #: 4: ``report_runs.summary`` (each report's index figures, so the index reads no report file);
 #: 5: ``extremes_cache`` (return levels and trend of monitor.service.extremes, kept between runs);
-#: 6: ``residual_bins`` (the smoothed residual's ten-minute means, for the forecaster's history).
+#: 6: ``residual_bins``, ``pressure_bins`` (ten-minute means of the forecaster's history).
 SCHEMA_VERSION = 6
 DERIVED_COLUMNS = ("observed", "predicted", "residual", "smoothed", "barometric")
 
@@ -107,14 +107,16 @@ def _extremes_cache_v5(db: sqlite_utils.Database) -> None:
     ensure_extremes_cache(db)
 
 
-def _residual_bins_v6(db: sqlite_utils.Database) -> None:
-    # The means of the residual already stored, made once; from now on each write of
-    # ``derived`` keeps them (monitor.surge.forecast.rebin_residual).
-    ensure_residual_bins(db)
+def _history_bins_v6(db: sqlite_utils.Database) -> None:
+    # The means of the rows already stored, made once; from now on each write of the rows
+    # keeps them (monitor.surge.forecast.rebin_residual, rebin_pressure).
+    ensure_history_bins(db)
     for (station,) in db.execute("SELECT DISTINCT station FROM derived").fetchall():
         rebin_residual(db.conn, station)
+    for (station,) in db.execute("SELECT DISTINCT station FROM observations WHERE sensor = 'barometer'").fetchall():
+        rebin_pressure(db.conn, station)
 
 
 #: version -> function that brings a store at (version - 1) to version
 MIGRATIONS = {1: _create_v1, 2: _conflicts_v2, 3: _owners_tables_v3, 4: _report_summaries_v4,
-              5: _extremes_cache_v5, 6: _residual_bins_v6}
+              5: _extremes_cache_v5, 6: _history_bins_v6}

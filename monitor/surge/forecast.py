@@ -868,14 +868,25 @@ def read_log(db, station: str, made_from: int, made_to: int) -> pd.DataFrame:
 _BIN_SQL = f"(t - ((t % {GRID_S}) + {GRID_S}) % {GRID_S})"
 
 
-def ensure_residual_bins(db) -> None:
-    """Create ``residual_bins`` (station, b): the mean smoothed residual [m] of each
-    ``GRID_S`` bin starting at ``b`` [Unix s] with a smoothed value in ``derived``, kept by
-    :func:`rebin_residual` at every write of ``derived`` (so :func:`read_history` reads
-    three years as 160,000 kept means, not 1.6 million rows to group). ``db``: a
+#: The kept ten-minute means of the forecaster's history: table -> (the table of the rows they
+#: are the means of, the column averaged, which rows count).
+_KEPT = {
+    "residual_bins": ("derived", "smoothed", "smoothed IS NOT NULL"),
+    "pressure_bins": ("observations", "value", "sensor = 'barometer' AND (flag IS NULL OR flag NOT IN (4, 9))"),
+}
+
+
+def ensure_history_bins(db) -> None:
+    """Create ``residual_bins`` and ``pressure_bins`` (station, b): the mean smoothed residual
+    [m] of each ``GRID_S`` bin starting at ``b`` [Unix s] with a smoothed value in ``derived``,
+    and the mean barometer reading [hPa] of each with a usable one (flag not 4 or 9) in
+    ``observations``. Each write of those rows makes their bins again in its transaction
+    (:func:`rebin_residual`, :func:`rebin_pressure`), so :func:`read_history` reads three
+    years as 160,000 kept means, not 1.6 million rows to group. ``db``: a
     ``sqlite_utils.Database`` or a ``sqlite3.Connection``."""
-    db.execute("CREATE TABLE IF NOT EXISTS residual_bins (station TEXT NOT NULL, b INTEGER NOT NULL, "
-               "mean REAL NOT NULL, PRIMARY KEY (station, b)) WITHOUT ROWID")
+    for table in _KEPT:
+        db.execute(f"CREATE TABLE IF NOT EXISTS {table} (station TEXT NOT NULL, b INTEGER NOT NULL, "
+                   "mean REAL NOT NULL, PRIMARY KEY (station, b)) WITHOUT ROWID")
 
 
 def rebin_residual(conn, station: str, t_lo: int | None = None, t_hi: int | None = None,
@@ -886,17 +897,30 @@ def rebin_residual(conn, station: str, t_lo: int | None = None, t_hi: int | None
     <monitor.store.database.Store.write_derived_rows>`, the one writer of ``derived``).
     ``emptied`` False: the rows just written all have a smoothed value, so no bin of theirs
     is left without one (and none is deleted)."""
-    g = GRID_S
+    _rebin(conn, "residual_bins", station, t_lo, t_hi, emptied)
+
+
+def rebin_pressure(conn, station: str, t_lo: int | None = None, t_hi: int | None = None) -> None:
+    """Make ``pressure_bins`` again for every bin holding a time in ``[t_lo, t_hi]`` [Unix s]
+    (all of the station's without bounds) from the barometer's rows as stored now, in the
+    caller's transaction: called by every writer of a barometer's values or flags
+    (:meth:`Store.write_batch <monitor.store.database.Store.write_batch>`,
+    :func:`monitor.quality.checks.write_rows`, :func:`monitor.quality.checks.set_override`)."""
+    _rebin(conn, "pressure_bins", station, t_lo, t_hi, True)
+
+
+def _rebin(conn, table: str, station: str, t_lo: int | None, t_hi: int | None, emptied: bool) -> None:
+    source, column, usable = _KEPT[table]
+    means = f"SELECT station, {_BIN_SQL} AS b, avg({column}) FROM {source} WHERE station = ? AND {usable}"
     if t_lo is None or t_hi is None:
-        conn.execute("DELETE FROM residual_bins WHERE station = ?", (station,))
-        conn.execute(f"INSERT INTO residual_bins (station, b, mean) SELECT station, {_BIN_SQL} AS b, "
-                     "avg(smoothed) FROM derived WHERE station = ? AND smoothed IS NOT NULL GROUP BY b", (station,))
+        conn.execute(f"DELETE FROM {table} WHERE station = ?", (station,))
+        conn.execute(f"INSERT INTO {table} (station, b, mean) {means} GROUP BY b", (station,))
         return
+    g = GRID_S
     lo, hi = int(t_lo) // g * g, int(t_hi) // g * g + g - 1
     if emptied:
-        conn.execute("DELETE FROM residual_bins WHERE station = ? AND b BETWEEN ? AND ?", (station, lo, hi))
-    conn.execute(f"INSERT OR REPLACE INTO residual_bins (station, b, mean) SELECT station, {_BIN_SQL} AS b, avg(smoothed) "
-                 "FROM derived WHERE station = ? AND t BETWEEN ? AND ? AND smoothed IS NOT NULL GROUP BY b",
+        conn.execute(f"DELETE FROM {table} WHERE station = ? AND b BETWEEN ? AND ?", (station, lo, hi))
+    conn.execute(f"INSERT OR REPLACE INTO {table} (station, b, mean) {means} AND t BETWEEN ? AND ? GROUP BY b",
                  (station, lo, hi))
 
 
@@ -925,12 +949,11 @@ def read_history(conn, station: str, start: int, end: int, barometer: bool = Fal
 
     Notes
     -----
-    The whole bins of the residual are the means kept in ``residual_bins``; the two bins cut
-    by ``start`` and ``end`` are grouped from ``derived``. The pressure's means are grouped
-    by SQLite from the observations (whose flags change after they are stored).
+    The whole bins are the means kept in ``residual_bins`` and ``pressure_bins``; the two
+    bins cut by ``start`` and ``end`` are grouped from the rows.
     """
     g = GRID_S
-    resid = _series(_residual_bins(conn, station, int(start), int(end)))
+    resid = _series(_kept_means(conn, "residual_bins", station, int(start), int(end)))
     skew = pd.read_sql_query("SELECT hw_t, skew_surge FROM skew_surges WHERE station = ? AND hw_t BETWEEN ? AND ? "
                              "ORDER BY hw_t", conn, params=(station, int(start), int(end)))
     if resid.empty:
@@ -939,25 +962,23 @@ def read_history(conn, station: str, start: int, end: int, barometer: bool = Fal
     resid = resid.reindex(grid)
     pressure = None
     if barometer:
-        p = _series(conn.execute(
-            f"SELECT {_BIN_SQL} AS b, avg(value) FROM observations WHERE station = ? AND sensor = 'barometer' "
-            "AND t BETWEEN ? AND ? AND (flag IS NULL OR flag NOT IN (4, 9)) GROUP BY b ORDER BY b",
-            (station, int(start), int(end))).fetchall())
+        p = _series(_kept_means(conn, "pressure_bins", station, int(start), int(end)))
         pressure = p.reindex(grid) if len(p) else None
     return resid, skew, pressure
 
 
-def _residual_bins(conn, station: str, start: int, end: int) -> list[tuple]:
-    """(bin start [Unix s], mean smoothed residual [m]) of every bin with a value in
+def _kept_means(conn, table: str, station: str, start: int, end: int) -> list[tuple]:
+    """(bin start [Unix s], mean) of every bin of ``table``'s series with a value in
     ``[start, end]``, in time order: the whole bins as kept, the cut ones grouped."""
     g = GRID_S
+    source, column, usable = _KEPT[table]
     first, last = -(-start // g) * g, (end + 1) // g * g - g  # the first and last whole bins
-    cut = (f"SELECT {_BIN_SQL} AS b, avg(smoothed) FROM derived WHERE station = ? AND t BETWEEN ? AND ? "
-           "AND smoothed IS NOT NULL GROUP BY b ORDER BY b")
+    cut = (f"SELECT {_BIN_SQL} AS b, avg({column}) FROM {source} WHERE station = ? AND {usable} "
+           "AND t BETWEEN ? AND ? GROUP BY b ORDER BY b")
     if first > last:
         return conn.execute(cut, (station, start, end)).fetchall()
     rows = conn.execute(cut, (station, start, first - 1)).fetchall() if start < first else []
-    rows += conn.execute("SELECT b, mean FROM residual_bins WHERE station = ? AND b BETWEEN ? AND ? ORDER BY b",
+    rows += conn.execute(f"SELECT b, mean FROM {table} WHERE station = ? AND b BETWEEN ? AND ? ORDER BY b",
                          (station, first, last)).fetchall()
     if last + g <= end:
         rows += conn.execute(cut, (station, last + g, end)).fetchall()
