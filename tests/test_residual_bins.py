@@ -50,11 +50,11 @@ writes = st.lists(st.tuples(st.integers(-3 * hour, 3 * day), st.integers(1, 400)
 
 
 @settings(max_examples=40, deadline=None, suppress_health_check=[HealthCheck.function_scoped_fixture])
-@given(writes=writes, bounds=st.tuples(st.integers(-4 * hour, 3 * day), st.integers(0, 3 * day)), seed=st.integers(0, 99))
-def test_the_history_equals_the_rows_grouped(tmp_path_factory, writes, bounds, seed):
+@given(writes=writes, bounds=st.tuples(st.integers(-4 * hour, 3 * day), st.integers(0, 3 * day)), seed=st.integers(0, 99),
+       t0=st.sampled_from([1_700_000_000 - 1_700_000_000 % GRID + 7, -day - 293]))  # not aligned; before 1970
+def test_the_history_equals_the_rows_grouped(tmp_path_factory, writes, bounds, seed, t0):
     rng = np.random.default_rng(seed)
     path = tmp_path_factory.mktemp("bins") / "store.sqlite"
-    t0 = 1_700_000_000 - 1_700_000_000 % GRID + 7  # bins not aligned with the writes
     with Store.open(path) as store:
         for at, n, kind, shuffled in writes:
             t = t0 + at + np.arange(n) * rng.choice([minute, 1, 7 * minute])
@@ -176,3 +176,38 @@ def test_each_writer_of_the_barometer_keeps_its_means(store):
     check()
     qc.set_override(store, "port", "barometer", float(hour2[0]), float(hour2[20]), 1, "tech", "fine after all")
     check()
+
+
+def test_a_daemons_first_open_after_an_upgrade_by_another_program_makes_the_means_again(tmp_path):
+    path = tmp_path / "store.sqlite"
+    t = 1_700_000_000 + np.arange(0, 6 * hour, minute)
+    with Store.open(path) as store:  # upgraded (made) by a verb without the lock ...
+        store.write_derived_rows("port", t, {"smoothed": np.full(len(t), 0.2)})
+        # ... while a daemon of the version before writes rows without their means
+        store.conn.execute("UPDATE derived SET smoothed = 0.7 WHERE t >= ?", (int(t[120]),))
+    with Store.open(path, lock=True) as store:
+        got, _, _ = SF.read_history(store.conn, "port", int(t[0]), int(t[-1]))
+        assert_same(got, reference(store.conn, "port", int(t[0]), int(t[-1])))
+        assert got.iloc[-3] == pytest.approx(0.7)
+        store.conn.execute("UPDATE derived SET smoothed = 0.9")  # behind the means' back again
+    with Store.open(path, lock=True) as store:  # made again once only, not at every open
+        got, _, _ = SF.read_history(store.conn, "port", int(t[0]), int(t[-1]))
+        assert got.iloc[-3] == pytest.approx(0.7)   # a whole bin: the mean kept
+
+
+def test_a_store_made_by_the_daemon_is_not_made_again(tmp_path):
+    path = tmp_path / "store.sqlite"
+    with Store.open(path, lock=True) as store:
+        assert store.get_meta("history_bins.whole") == "1"
+
+
+@pytest.mark.parametrize("t0", [1_700_000_400, -10 * GRID])
+def test_a_bin_written_in_two_halves_and_read_across_its_edges(store, t0):
+    # per-second rows, every value there (the writes that keep a bin without deleting it)
+    t = t0 + np.arange(0, 3 * GRID)
+    store.write_derived_rows("port", t[: GRID + GRID // 2], {"smoothed": np.sin(t[: GRID + GRID // 2] / 50.0)})
+    store.write_derived_rows("port", t[GRID + GRID // 2:], {"smoothed": np.cos(t[GRID + GRID // 2:] / 50.0)})
+    for start, end in [(t0 + GRID - 1, t0 + 2 * GRID), (t0 + GRID, t0 + 2 * GRID - 1), (t0 + GRID + 1, t0 + 3 * GRID),
+                       (t0 - 1, t0 + 2 * GRID + 1), (t0 + GRID + 5, t0 + GRID + 9)]:
+        got, _, _ = SF.read_history(store.conn, "port", start, end)
+        assert_same(got, reference(store.conn, "port", start, end))

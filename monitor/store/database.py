@@ -34,8 +34,9 @@ import sqlite_utils
 
 from alerts.transactions import transaction
 from monitor.errors import StoreError
-from monitor.store.migrations import DERIVED_COLUMNS, MIGRATIONS, SCHEMA_VERSION
-from monitor.surge.forecast import rebin_pressure, rebin_residual
+from monitor.store.migrations import (DERIVED_COLUMNS, HISTORY_BINS_KEY, HISTORY_BINS_VERSION, MIGRATIONS,
+                                      SCHEMA_VERSION)
+from monitor.surge.forecast import rebin_all, rebin_pressure, rebin_residual
 
 log = logging.getLogger("monitor.store.database")
 
@@ -184,6 +185,13 @@ class Store:
             with self.transaction():
                 MIGRATIONS[v](self.db)
                 self.set_meta("schema_version", str(v))
+        if self.locked and self.get_meta(HISTORY_BINS_KEY) is None:
+            # Upgraded by a program without the lock (any verb), a daemon of the version before
+            # may have gone on writing rows without their means: made again, once.
+            with self.transaction():
+                if version >= HISTORY_BINS_VERSION:
+                    rebin_all(self.conn)
+                self.set_meta(HISTORY_BINS_KEY, "1")
 
     def transaction(self) -> ContextManager[sqlite3.Connection]:
         """An immediate write transaction: commit on success, roll back on any exception

@@ -18,9 +18,9 @@ import sqlite_utils
 from alerts.engine import ensure_alert_schema
 from alerts.mail.outbox import ensure_outbox_schema
 from monitor.quality.checks import ensure_qc_schema
-from monitor.surge.forecast import ensure_forecast_schema, ensure_history_bins, rebin_pressure, rebin_residual
+from monitor.surge.forecast import ensure_forecast_schema, ensure_history_bins, rebin_all
 
-__all__ = ["SCHEMA_VERSION", "MIGRATIONS", "DERIVED_COLUMNS"]
+__all__ = ["SCHEMA_VERSION", "MIGRATIONS", "DERIVED_COLUMNS", "HISTORY_BINS_KEY", "HISTORY_BINS_VERSION"]
 
 #: This program's schema version. 1: core tables; 2: conflicting repeats in ``rejects``;
 #: 3: the quality-control, forecast-log, alert, outbox and report-run tables under the version;
@@ -109,12 +109,16 @@ def _extremes_cache_v5(db: sqlite_utils.Database) -> None:
 
 def _history_bins_v6(db: sqlite_utils.Database) -> None:
     # The means of the rows already stored, made once; from now on each write of the rows
-    # keeps them (monitor.surge.forecast.rebin_residual, rebin_pressure).
+    # keeps them (monitor.surge.forecast.rebin_residual, rebin_pressure). A daemon of version 5
+    # still running writes rows without them: the store's first locked open makes them again.
     ensure_history_bins(db)
-    for (station,) in db.execute("SELECT DISTINCT station FROM derived").fetchall():
-        rebin_residual(db.conn, station)
-    for (station,) in db.execute("SELECT DISTINCT station FROM observations WHERE sensor = 'barometer'").fetchall():
-        rebin_pressure(db.conn, station)
+    rebin_all(db.conn)
+
+
+#: The version that brought the kept means, and the meta key saying a daemon's open (the lock
+#: held: no program of an earlier version writing) has seen them whole since.
+HISTORY_BINS_VERSION = 6
+HISTORY_BINS_KEY = "history_bins.whole"
 
 
 #: version -> function that brings a store at (version - 1) to version

@@ -889,6 +889,17 @@ def ensure_history_bins(db) -> None:
                    "mean REAL NOT NULL, PRIMARY KEY (station, b)) WITHOUT ROWID")
 
 
+def rebin_all(conn) -> None:
+    """Make ``residual_bins`` and ``pressure_bins`` again for every station from the rows
+    stored (:data:`monitor.store.migrations.MIGRATIONS` 6, and the first open by a daemon
+    after a store was upgraded by another program: see :meth:`Store._migrate
+    <monitor.store.database.Store._migrate>`)."""
+    for (station,) in conn.execute("SELECT DISTINCT station FROM derived").fetchall():
+        rebin_residual(conn, station)
+    for (station,) in conn.execute("SELECT DISTINCT station FROM observations WHERE sensor = 'barometer'").fetchall():
+        rebin_pressure(conn, station)
+
+
 def rebin_residual(conn, station: str, t_lo: int | None = None, t_hi: int | None = None,
                    emptied: bool = True) -> None:
     """Make ``residual_bins`` again for every bin holding a time in ``[t_lo, t_hi]`` [Unix s]
@@ -953,17 +964,22 @@ def read_history(conn, station: str, start: int, end: int, barometer: bool = Fal
     bins cut by ``start`` and ``end`` are grouped from the rows.
     """
     g = GRID_S
-    resid = _series(_kept_means(conn, "residual_bins", station, int(start), int(end)))
-    skew = pd.read_sql_query("SELECT hw_t, skew_surge FROM skew_surges WHERE station = ? AND hw_t BETWEEN ? AND ? "
-                             "ORDER BY hw_t", conn, params=(station, int(start), int(end)))
+    own = not conn.in_transaction  # the reads of one snapshot: no other writer's commit between them
+    if own:
+        conn.execute("BEGIN")
+    try:
+        resid = _series(_kept_means(conn, "residual_bins", station, int(start), int(end)))
+        skew = pd.read_sql_query("SELECT hw_t, skew_surge FROM skew_surges WHERE station = ? AND hw_t BETWEEN ? "
+                                 "AND ? ORDER BY hw_t", conn, params=(station, int(start), int(end)))
+        p = _series(_kept_means(conn, "pressure_bins", station, int(start), int(end))) if barometer else None
+    finally:
+        if own:
+            conn.execute("COMMIT")
     if resid.empty:
         return resid, skew, None
     grid = pd.date_range(resid.index[0], resid.index[-1], freq=f"{g}s")
     resid = resid.reindex(grid)
-    pressure = None
-    if barometer:
-        p = _series(_kept_means(conn, "pressure_bins", station, int(start), int(end)))
-        pressure = p.reindex(grid) if len(p) else None
+    pressure = p.reindex(grid) if p is not None and len(p) else None
     return resid, skew, pressure
 
 
