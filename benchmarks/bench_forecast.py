@@ -288,6 +288,7 @@ def learn_cost(scenarios: list, targets: Targets) -> None:
                 start = end - 3 * 365 * 86400
                 kept, _ = best_cpu(lambda: read_history(conn, "bench", start, end))
                 grouped, _ = best_cpu(lambda: conn.execute(
+                    # the read as it was before the kept means, word for word
                     "SELECT (t / 600) * 600 AS b, avg(smoothed) FROM derived WHERE station = 'bench' AND t BETWEEN ? "
                     "AND ? AND smoothed IS NOT NULL GROUP BY b ORDER BY b", (start, end)).fetchall())
                 print(f"reading the history, {label}: {kept:.3f} s CPU from the kept means, {grouped:.3f} s grouping "

@@ -14,6 +14,7 @@ Named units for tolerances are in ``tests/units.py``.
 from __future__ import annotations
 
 import email
+import io
 import logging
 import os
 import shutil
@@ -30,7 +31,10 @@ from monitor.cli import main as cli
 from monitor.demo_decades import STATION, write_inputs
 from monitor.service.config import validate_config
 from monitor.service.daemon import Daemon
+from monitor.service.logs import RepeatFilter, log_formatter
 from monitor.store.database import Store
+from tests.old_store import load_old_store
+from tests.units import minute
 
 
 class SmtpCollector:
@@ -108,6 +112,36 @@ def daemon(tmp_path):
     store = Store.open(cfg.store_path)
     yield Daemon(cfg, store)
     store.close()
+
+
+class Clock:
+    """A clock the test moves: ``clock.t`` [s]."""
+
+    def __init__(self, t: float = 1_790_000_000.0):
+        self.t = t
+
+    def __call__(self) -> float:
+        return self.t
+
+
+@pytest.fixture
+def logged():
+    """A logger of its own writing to a text buffer through a RepeatFilter on a test clock."""
+    clock, out = Clock(), io.StringIO()
+    handler = logging.StreamHandler(out)
+    handler.setFormatter(log_formatter())
+    handler.addFilter(RepeatFilter(every_s=10 * minute, clock=clock, wall=clock))
+    logger = logging.getLogger("qw.test.repeats")
+    logger.propagate, logger.level = False, logging.DEBUG
+    logger.addHandler(handler)
+    yield logger, clock, out
+    logger.removeHandler(handler)
+
+
+@pytest.fixture
+def old_store(tmp_path) -> Path:
+    """A store made before issue 13 (schema version 2), not yet opened (tests/old_store.py)."""
+    return load_old_store(tmp_path / "old.db")
 
 
 @pytest.fixture

@@ -8,35 +8,16 @@ from __future__ import annotations
 
 import io
 import logging
+import threading
 from dataclasses import replace
 
 import pytest
 
+from monitor.service.config import validate_config
 from monitor.service.daemon import FeedRuntime
-from monitor.service.logs import RepeatFilter, log_formatter, setup_logging
-from tests.units import day, minute
-
-
-class Clock:
-    def __init__(self, t: float = 1_790_000_000.0):
-        self.t = t
-
-    def __call__(self) -> float:
-        return self.t
-
-
-@pytest.fixture
-def logged():
-    """A logger of its own writing to a text buffer through a RepeatFilter on a test clock."""
-    clock, out = Clock(), io.StringIO()
-    handler = logging.StreamHandler(out)
-    handler.setFormatter(log_formatter())
-    handler.addFilter(RepeatFilter(every_s=10 * minute, clock=clock))
-    logger = logging.getLogger("qw.test.repeats")
-    logger.propagate, logger.level = False, logging.DEBUG
-    logger.addHandler(handler)
-    yield logger, clock, out
-    logger.removeHandler(handler)
+from monitor.service import logs
+from monitor.service.logs import RepeatFilter, setup_logging
+from tests.units import day, hour, minute
 
 
 def fail(logger: logging.Logger, text: str = "device gone") -> None:
@@ -109,7 +90,7 @@ def test_lines_below_warning_always_pass(logged):
 
 
 def test_zero_minutes_shows_every_one():
-    out, clock = io.StringIO(), Clock()
+    out, clock = io.StringIO(), (lambda: 1_790_000_000.0)
     handler = logging.StreamHandler(out)
     handler.addFilter(RepeatFilter(every_s=0, clock=clock))
     logger = logging.getLogger("qw.test.repeats.every")
@@ -123,9 +104,10 @@ def test_zero_minutes_shows_every_one():
     assert out.getvalue().count("Traceback") == 5
 
 
-def test_one_filter_on_two_handlers_shows_the_same_on_both():
-    clock, a, b = Clock(), io.StringIO(), io.StringIO()
-    repeats = RepeatFilter(every_s=10 * minute, clock=clock)
+def test_one_filter_on_two_handlers_shows_the_same_on_both(logged):
+    _, clock, _ = logged
+    a, b = io.StringIO(), io.StringIO()
+    repeats = RepeatFilter(every_s=10 * minute, clock=clock, wall=clock)
     logger = logging.getLogger("qw.test.repeats.two")
     logger.propagate = False
     handlers = [logging.StreamHandler(a), logging.StreamHandler(b)]
@@ -183,8 +165,6 @@ def test_setup_logging_puts_one_filter_on_every_handler_once(daemon, root_loggin
 
 
 def test_repeat_minutes_is_read_from_the_configuration(tmp_path):
-    from monitor.service.config import validate_config
-
     base = {"store": {"path": "q.db"}, "stations": [{"id": "p", "latitude": 50.0, "longitude": -4.0,
                                                      "constants": "history", "sensors": {"primary": {}}}]}
     cfg, errors = validate_config({**base, "logging": {"repeat_minutes": 30}}, tmp_path)
@@ -197,4 +177,91 @@ def test_a_message_that_cannot_be_made_is_passed_to_the_handler():
     # one argument short: the filter must not raise into the code that logged it; the
     # handler reports the broken line as logging does
     record = logging.LogRecord("qw.test", logging.ERROR, __file__, 1, "station %s: %d samples", ("north",), None)
-    assert RepeatFilter(every_s=10 * minute, clock=Clock()).filter(record) is True
+    assert RepeatFilter(every_s=10 * minute, clock=lambda: 0.0).filter(record) is True
+
+
+def test_a_failure_that_stops_has_its_count_said_once_quiet(logged):
+    logger, clock, out = logged
+    repeats = logger.handlers[0].filters[0]
+    for _ in range(10):
+        fail(logger)
+        clock.t += minute           # nine repeats hidden, the last at +9 min
+    assert repeats.quiet() == []    # one minute quiet only
+    clock.t += 9 * minute
+    said = repeats.quiet()
+    assert said == [("qw.test.repeats", logging.ERROR, "feed north: poll failed; will retry [the same 9 more "
+                     "time(s) from 2026-09-21T14:14:20Z to 2026-09-21T14:22:20Z, not shown; none since]")]
+    assert repeats.quiet() == []    # said once
+
+
+def test_stopping_says_every_count_not_said(logged):
+    logger, clock, out = logged
+    repeats = logger.handlers[0].filters[0]
+    fail(logger)
+    clock.t += 1
+    fail(logger)
+    assert [n for n, _, _ in repeats.quiet(everything=True)] == ["qw.test.repeats"]
+
+
+def test_a_forgotten_line_has_its_count_said(logged):
+    logger, clock, out = logged
+    repeats = logger.handlers[0].filters[0]
+    fail(logger)
+    fail(logger)                    # hidden
+    for i in range(RepeatFilter.MAX_LINES):
+        logger.warning("line %d", i)  # pushes the failure out
+    said = repeats.quiet()
+    assert len(said) == 1 and "the same 1 more time(s)" in said[0][2]
+
+
+def test_the_wall_clock_stepping_back_hides_nothing_longer(logged):
+    logger, clock, out = logged
+    walls = iter([1_790_000_000.0, 1_790_000_000.0 - hour])
+    repeats = RepeatFilter(every_s=10 * minute, clock=clock, wall=lambda: next(walls))
+    handler = logging.StreamHandler(io.StringIO())
+    handler.addFilter(repeats)
+    other = logging.getLogger("qw.test.repeats.wall")
+    other.propagate = False
+    other.addHandler(handler)
+    try:
+        fail(other)
+        clock.t += 10 * minute      # ten minutes later by the clock that never steps back,
+        fail(other)                 # an hour earlier by the wall clock
+    finally:
+        other.removeHandler(handler)
+    assert handler.stream.getvalue().count("poll failed") == 2
+
+
+def test_a_message_that_logs_while_it_is_made_does_not_wait_on_itself(logged):
+    logger, clock, out = logged
+
+    class Noisy:
+        def __str__(self):
+            logger.warning("made while another line was made")
+            return "noisy"
+
+    done = threading.Event()
+
+    def log_it():
+        logger.error("value %s", Noisy())
+        done.set()
+
+    worker = threading.Thread(target=log_it, daemon=True)
+    worker.start()
+    assert done.wait(timeout=60), "the filter waited on its own lock"
+    assert "value noisy" in out.getvalue()
+
+
+def test_the_daemon_says_the_counts_when_it_is_told_to(daemon, tmp_path, root_logging):
+    log_file = tmp_path / "quaywatch.log"
+    cfg = replace(daemon.cfg, logging=replace(daemon.cfg.logging, file=log_file))
+    root_logging.handlers[:] = []
+    setup_logging(cfg)
+    named = logging.getLogger("monitor.service.daemon")
+    for _ in range(3):
+        named.error("feed north-serial: poll failed; will retry")
+    logs.report_quiet_repeats(everything=True)
+    for h in root_logging.handlers:
+        h.flush()
+    text = log_file.read_text(encoding="utf-8")
+    assert text.count("poll failed") == 2 and "the same 2 more time(s)" in text and "none since" in text

@@ -18,7 +18,6 @@ from hypothesis import strategies as st
 
 from monitor.store.database import Store
 from monitor.surge import forecast as SF
-from tests.test_store_upgrade import _load
 from tests.units import day, hour, minute, mm
 
 GRID = 10 * minute   # the forecaster's grid, written out (not read from the code under test)
@@ -96,9 +95,8 @@ def test_a_rewrite_without_values_empties_its_bins(store):
     assert got.drop(hole.index).eq(0.5).all()
 
 
-def test_an_upgraded_store_has_the_means_of_its_rows(tmp_path):
-    path = _load(tmp_path / "old.db")
-    with Store.open(path) as store:
+def test_an_upgraded_store_has_the_means_of_its_rows(old_store):
+    with Store.open(old_store) as store:
         span = store.conn.execute("SELECT min(t), max(t), count(smoothed) FROM derived WHERE station = 'testport'"
                                   ).fetchone()
         assert span[2] > 100

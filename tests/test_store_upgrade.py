@@ -12,7 +12,6 @@ from __future__ import annotations
 import re
 import sqlite3
 from collections import Counter
-from pathlib import Path
 
 import pytest
 
@@ -22,32 +21,18 @@ from monitor.quality import checks as qc
 from monitor.store.database import Store
 from monitor.store.migrations import SCHEMA_VERSION
 
-DUMP = Path(__file__).resolve().parent / "data" / "store_before_issue13.sql"
+from tests.old_store import DUMP, load_old_store
+
 OWNED = ("qc_tests", "qc_overrides", "staff_readings", "hw_forecast_log", "alert_state", "alert_episodes",
-         "outbox", "report_runs", "extremes_cache")
+         "outbox", "report_runs", "extremes_cache", "residual_bins", "pressure_bins")
 
 
 def _rows_in_dump(text: str) -> Counter:
     return Counter(re.findall(r'^INSERT INTO "?(\w+)"? VALUES', text, flags=re.M))
 
 
-def _load(path: Path, drop: tuple[str, ...] = ()) -> Path:
-    conn = sqlite3.connect(path)
-    conn.executescript(DUMP.read_text(encoding="utf-8"))
-    for table in drop:
-        conn.execute(f"DROP TABLE IF EXISTS {table}")
-    conn.commit()
-    conn.close()
-    return path
-
-
 def _columns(conn: sqlite3.Connection, table: str) -> list[str]:
     return [r[1] for r in conn.execute(f"PRAGMA table_info({table})")]
-
-
-@pytest.fixture
-def old_store(tmp_path) -> Path:
-    return _load(tmp_path / "old.db")
 
 
 def test_the_dump_is_a_version_2_store():
@@ -80,7 +65,7 @@ def test_an_upgraded_store_has_the_tables_and_columns_of_a_new_one(old_store, tm
 
 
 def test_a_version_2_store_without_the_owned_tables_gets_them(tmp_path):
-    path = _load(tmp_path / "bare.db", drop=OWNED)
+    path = load_old_store(tmp_path / "bare.db", drop=OWNED)
     with Store.open(path) as store:
         names = set(store.db.table_names())
         assert set(OWNED) <= names

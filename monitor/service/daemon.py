@@ -64,7 +64,7 @@ from monitor.service.config import Config, SensorConfig, StationConfig, unsendab
 from monitor.service.constants import load_model, model_from_text, model_to_text
 from monitor.service.diag_memory import DiagnosticsMemory, usable_series
 from monitor.service.live_pages import LivePages
-from monitor.service.logs import setup_logging
+from monitor.service.logs import report_quiet_repeats, setup_logging
 from monitor.service.reporting import write_due_reports
 from monitor.store.database import BatchResult, EMPTY_BATCH, Store, check_folder, check_store_path
 from monitor.store.migrations import DERIVED_COLUMNS
@@ -807,6 +807,7 @@ class Daemon:
             except Exception:
                 log.exception("station %s: processing failed; will retry", rt.cfg.id)
         self.write_live(changed)
+        report_quiet_repeats()  # the count of a repeated failure that has stopped
         return len(changed)
 
     def write_live(self, changed: set[str] | None = None) -> None:
@@ -1699,3 +1700,4 @@ def run_daemon(cfg: Config, until_exhausted: bool = False, verbose: int = 0) -> 
                 log.exception("feed %s: close failed", fr.name)
         if store is not None:
             store.close()
+        report_quiet_repeats(everything=True)  # the counts of repeated lines not said yet

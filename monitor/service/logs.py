@@ -22,7 +22,7 @@ from monitor.errors import ConfigError
 from monitor.service.config import Config
 from predictor.timeutil import iso_utc
 
-__all__ = ["RepeatFilter", "log_formatter", "setup_logging"]
+__all__ = ["RepeatFilter", "log_formatter", "report_quiet_repeats", "setup_logging"]
 
 #: A repeated failure's traceback is written again after this long [s] (a rotated log may
 #: have lost the first one).
@@ -70,7 +70,8 @@ def setup_logging(cfg: Config, verbose: int = 0) -> None:
         fh.setFormatter(fmt)
         root.addHandler(fh)
     # one filter for every handler, so a record is judged once and shown alike on each
-    repeats = RepeatFilter(every_s=cfg.logging.repeat_minutes * 60.0)
+    global _ACTIVE
+    repeats = _ACTIVE = RepeatFilter(every_s=cfg.logging.repeat_minutes * 60.0)
     for h in root.handlers:
         for f in [f for f in h.filters if isinstance(f, RepeatFilter)]:
             h.removeFilter(f)
@@ -87,13 +88,19 @@ class _SkippedRunFilter(logging.Filter):
 
 @dataclass
 class _Seen:
-    """One repeated line: when it was last shown, with its traceback last, and the repeats
-    not shown since (how many, the first and last time) [Unix s]."""
+    """One repeated line: what it says, when it was last shown and with its traceback
+    (``clock`` times [s]), and the repeats not shown since: how many, the first and last
+    (wall times [Unix s]), the last also on ``clock``."""
+    name: str
+    level: int
+    text: str
     shown: float
     traced: float
+    traced_at: float
     hidden: int = 0
     first_hidden: float = math.nan
     last: float = math.nan
+    last_tick: float = math.nan
 
 
 class RepeatFilter(logging.Filter):
@@ -102,7 +109,9 @@ class RepeatFilter(logging.Filter):
     The same line is the same logger, level, message and exception (its type and text). The
     first is shown whole; the next one after ``every_s`` is shown with the count of those
     not shown and their first and last times, and without its traceback unless the last one
-    shown is over ``trace_every_s`` old. Lines below WARNING always pass.
+    shown is over ``trace_every_s`` old. Lines below WARNING always pass. A line that stops
+    repeating has its count said by :meth:`quiet` (:func:`report_quiet_repeats`, called by
+    the daemon after each processing round and when it stops).
 
     Parameters
     ----------
@@ -111,24 +120,30 @@ class RepeatFilter(logging.Filter):
     trace_every_s : float
         Least time between two showings of its traceback [s].
     clock : callable
-        Time now [Unix s] (tests give their own).
+        A clock that never steps back, for the intervals [s] (``time.monotonic``).
+    wall : callable or None
+        The times written in the lines [Unix s]; None: each record's own time.
 
     Notes
     -----
-    One instance serves every handler: the first handler's call decides for a record (and
-    rewrites its message), the others read that decision, so the file and the terminal show
-    the same lines. Calls from several threads take turns (a lock). At most ``MAX_LINES`` lines are remembered; the one seen longest ago is
-    forgotten first.
+    One instance serves every handler that :func:`setup_logging` found or made: the first
+    handler's call decides for a record (and rewrites its message), the others read that
+    decision, so the file and the terminal show the same lines. Calls from several threads
+    take turns (a reentrant lock: a message whose making logs again does not wait on
+    itself). At most ``MAX_LINES`` lines are remembered; the one seen longest ago is
+    forgotten first, its count of lines not shown said by the next :meth:`quiet`.
     """
 
     MAX_LINES = 1000
 
     def __init__(self, every_s: float = 600.0, trace_every_s: float = TRACE_AGAIN_S,
-                 clock: Callable[[], float] = time.time):
+                 clock: Callable[[], float] = time.monotonic, wall: Callable[[], float] | None = None):
         super().__init__()
-        self.every_s, self.trace_every_s, self.clock = float(every_s), float(trace_every_s), clock
+        self.every_s, self.trace_every_s = float(every_s), float(trace_every_s)
+        self.clock, self.wall = clock, wall
         self._seen: dict[tuple, _Seen] = {}
-        self._lock = threading.Lock()  # the daemon logs from its jobs' threads, the outbox's and the fit's
+        self._spilled: list[_Seen] = []  # forgotten with lines not shown, for quiet()
+        self._lock = threading.RLock()  # the daemon logs from its jobs' threads, the outbox's and the fit's
 
     def filter(self, record: logging.LogRecord) -> bool:
         with self._lock:
@@ -141,39 +156,73 @@ class RepeatFilter(logging.Filter):
                 record._qw_shown = decided
         return decided
 
+    def quiet(self, everything: bool = False) -> list[tuple[str, int, str]]:
+        """The lines with repeats not shown that have not come again for ``every_s`` (with
+        ``everything``, all of them: the daemon is stopping), as (logger name, level, text
+        with the count and times); their counts start again."""
+        with self._lock:
+            now = self.clock()
+            done = [s for s in self._seen.values()
+                    if s.hidden and (everything or now - s.last_tick >= self.every_s)] + self._spilled
+            self._spilled = []
+            out = []
+            for s in done:
+                out.append((s.name, s.level, f"{s.text} [{_hidden_note(s)}; none since]"))
+                s.hidden, s.shown = 0, now
+            return out
+
     def _decide(self, record: logging.LogRecord) -> bool:
         if record.levelno < logging.WARNING or self.every_s <= 0:
             return True
-        now = self.clock()
         key = _line_key(record)
+        now, at = self.clock(), record.created if self.wall is None else self.wall()
         seen = self._seen.pop(key, None)  # put back last: the dict stays in order of last sight
         if seen is None:
-            self._remember(key, _Seen(shown=now, traced=now if record.exc_info else -math.inf))
+            self._remember(key, _Seen(record.name, record.levelno, key[2], shown=now,
+                                      traced=now if record.exc_info else -math.inf, traced_at=at))
             return True
         self._seen[key] = seen
         if now - seen.shown < self.every_s:
             if not seen.hidden:
-                seen.first_hidden = now
-            seen.hidden, seen.last = seen.hidden + 1, now
+                seen.first_hidden = at
+            seen.hidden, seen.last, seen.last_tick = seen.hidden + 1, at, now
             return False
-        notes = []
-        if seen.hidden:
-            notes.append(f"the same {seen.hidden} more time(s) from {iso_utc(seen.first_hidden)} to "
-                         f"{iso_utc(seen.last)}, not shown")
+        notes = [_hidden_note(seen)] if seen.hidden else []
         if record.exc_info and now - seen.traced < self.trace_every_s:
-            notes.append(f"traceback as shown at {iso_utc(seen.traced)}")
+            notes.append(f"traceback as shown at {iso_utc(seen.traced_at)}")
             record.exc_info, record.exc_text = None, None
         elif record.exc_info:
-            seen.traced = now
+            seen.traced, seen.traced_at = now, at
         if notes:
-            record.msg, record.args = f"{record.getMessage()} [{'; '.join(notes)}]", None
+            record.msg, record.args = f"{key[2]} [{'; '.join(notes)}]", None
         seen.shown, seen.hidden = now, 0
         return True
 
     def _remember(self, key: tuple, seen: _Seen) -> None:
         while len(self._seen) >= self.MAX_LINES:
-            del self._seen[next(iter(self._seen))]
+            old = self._seen.pop(next(iter(self._seen)))
+            if old.hidden:
+                self._spilled.append(old)
         self._seen[key] = seen
+
+
+#: The filter :func:`setup_logging` put on the handlers (None before it ran).
+_ACTIVE: RepeatFilter | None = None
+
+
+def report_quiet_repeats(everything: bool = False) -> None:
+    """Log the count of each repeated line that stopped repeating (:meth:`RepeatFilter.quiet`),
+    at its own level and on its own logger."""
+    repeats = _ACTIVE
+    if repeats is None:
+        return
+    for name, level, text in repeats.quiet(everything):
+        logging.getLogger(name).log(level, "%s", text, extra={"_qw_shown": True})
+
+
+def _hidden_note(seen: _Seen) -> str:
+    return (f"the same {seen.hidden} more time(s) from {iso_utc(seen.first_hidden)} to {iso_utc(seen.last)}, "
+            "not shown")
 
 
 def _line_key(record: logging.LogRecord) -> tuple:

@@ -905,9 +905,21 @@ def rebin_residual(conn, station: str, t_lo: int | None = None, t_hi: int | None
     """Make ``residual_bins`` again for every bin holding a time in ``[t_lo, t_hi]`` [Unix s]
     (all of the station's without bounds) from the ``derived`` rows as stored now: the
     caller's transaction writes them with the rows (:meth:`Store.write_derived_rows
-    <monitor.store.database.Store.write_derived_rows>`, the one writer of ``derived``).
-    ``emptied`` False: the rows just written all have a smoothed value, so no bin of theirs
-    is left without one (and none is deleted)."""
+    <monitor.store.database.Store.write_derived_rows>`, the one writer of ``derived`` in this
+    program).
+
+    Parameters
+    ----------
+    conn : sqlite3.Connection
+        The store, inside the transaction that wrote the rows.
+    station : str
+        The station's id.
+    t_lo, t_hi : int or None
+        The first and last time written [Unix s]; None: every bin of the station.
+    emptied : bool
+        False when the rows just written all have a smoothed value, so no bin of theirs is
+        left without one (none is deleted, the bins are upserted).
+    """
     _rebin(conn, "residual_bins", station, t_lo, t_hi, emptied)
 
 
@@ -916,7 +928,17 @@ def rebin_pressure(conn, station: str, t_lo: int | None = None, t_hi: int | None
     (all of the station's without bounds) from the barometer's rows as stored now, in the
     caller's transaction: called by every writer of a barometer's values or flags
     (:meth:`Store.write_batch <monitor.store.database.Store.write_batch>`,
-    :func:`monitor.quality.checks.write_rows`, :func:`monitor.quality.checks.set_override`)."""
+    :func:`monitor.quality.checks.write_rows`, :func:`monitor.quality.checks.set_override`).
+
+    Parameters
+    ----------
+    conn : sqlite3.Connection
+        The store, inside the transaction that wrote the readings or their flags.
+    station : str
+        The station's id.
+    t_lo, t_hi : int or None
+        The first and last time written [Unix s]; None: every bin of the station.
+    """
     _rebin(conn, "pressure_bins", station, t_lo, t_hi, True)
 
 
