@@ -31,6 +31,7 @@ from monitor.cli import main as cli
 from monitor.demo_decades import STATION, write_inputs
 from monitor.service.config import validate_config
 from monitor.service.daemon import Daemon
+from monitor.service import logs as service_logs
 from monitor.service.logs import RepeatFilter, log_formatter
 from monitor.store.database import Store
 from tests.old_store import load_old_store
@@ -145,10 +146,13 @@ def old_store(tmp_path) -> Path:
 
 
 @pytest.fixture
-def root_logging():
-    """The root logger's level, handlers and each handler's filters, as they were, after
-    the test (``setup_logging`` changes all three; a filter left on pytest's own handlers
-    would hide lines from the tests after it). Yields the root logger."""
+def root_logging(monkeypatch):
+    """The root logger's level, handlers and each handler's filters, and the repeat filter
+    the daemon reports from, as they were, after the test (``setup_logging`` changes them
+    all; a filter left on pytest's own handlers would hide lines from the tests after it,
+    and one left for ``report_quiet_repeats`` would log its counts into them). Yields the
+    root logger."""
+    monkeypatch.setattr(service_logs, "_ACTIVE", service_logs._ACTIVE)
     root = logging.getLogger()
     aps = logging.getLogger("apscheduler")
     kept = (root.level, aps.level, [(h, list(h.filters)) for h in root.handlers])

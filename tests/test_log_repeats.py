@@ -265,3 +265,8 @@ def test_the_daemon_says_the_counts_when_it_is_told_to(daemon, tmp_path, root_lo
         h.flush()
     text = log_file.read_text(encoding="utf-8")
     assert text.count("poll failed") == 2 and "the same 2 more time(s)" in text and "none since" in text
+
+
+def test_a_test_that_set_up_the_log_leaves_no_filter_to_report_from():
+    # the tests above ran setup_logging through the root_logging fixture
+    assert logs._ACTIVE is None
