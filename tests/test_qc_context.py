@@ -21,8 +21,10 @@ from hypothesis import strategies as st
 from monitor.quality import checks as qc
 from monitor.quality import context as qc_context
 from monitor.quality import diagnostics
-from monitor.quality.checks import QcSettings, run_station_qc, set_override
+from monitor.quality import records as qc_records
+from monitor.quality.checks import QcSettings
 from monitor.quality.context import QcContext, QcRows
+from monitor.quality.records import run_station_qc, set_override
 from monitor.service.daemon import PredictionMemo
 from monitor.store.database import Store
 from reference_qc import whole_record_tests
@@ -67,7 +69,7 @@ def _record(seed: int = 11):
 def _reference(store: Store, model, s: QcSettings, now: float) -> dict[str, pd.DataFrame]:
     """Every test over the whole record stored so far, both sensors combined as the station
     pass combines them, with pandas' rolling windows; the technician's overrides applied."""
-    obs = {sn: qc.read_observations(store, STATION, sn)["value"] for sn in ("primary", "backup")}
+    obs = {sn: qc_records.read_observations(store, STATION, sn)["value"] for sn in ("primary", "backup")}
     out = whole_record_tests(obs, model, s, now, position=(50.2, -4.1))
     for sn, tests in out.items():
         ov = store.conn.execute("SELECT t, flag FROM qc_overrides WHERE station = ? AND sensor = ?",

@@ -278,7 +278,7 @@ def test_clean_record_with_coloured_noise_and_surge_flags_under_a_tenth_of_a_per
 def test_diagnostics_leave_out_a_spell_the_flat_line_test_doubts():
     # A stuck float reads nothing of the sea even while only suspect; other suspects stay usable
     # for diagnostics, and fail (4) never is (design notes, "Quality control").
-    from monitor.quality.checks import diagnostic_mask
+    from monitor.quality.records import diagnostic_mask
 
     flags = [1, 3, 3, 4, 2]
     flat = [1, 3, 1, 4, 2]
