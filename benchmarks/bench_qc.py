@@ -56,6 +56,7 @@ def main() -> None:
     from benchmarks.targets import Targets
     from monitor.quality import checks as qc
     from monitor.quality import records as qc_records
+    from monitor.quality import tail as qc_tail
     from monitor.store.database import Store
 
     days = int(os.environ.get("QW_BENCH_DAYS", "365"))
@@ -111,7 +112,7 @@ def main() -> None:
     cpred = model.predict(ctx.index)
     best = lambda fn: min(_timed(fn) for _ in range(5))  # noqa: E731
     t_ctx = best(lambda: qc.run_tests(ctx, None, cpred, now=float(t[-1])))
-    t_tail = best(lambda: qc.run_tests_tail(ctx, None, cpred, now=float(t[-1]), start=len(ctx) - 60))
+    t_tail = best(lambda: qc_tail.run_tests_tail(ctx, None, cpred, now=float(t[-1]), start=len(ctx) - 60))
     print(f"a station pass of one sensor (26 h of context, the last hour judged): every row {t_ctx * 1e3:.1f} ms, "
           f"the last hour only {t_tail * 1e3:.1f} ms")
     targets = Targets()

@@ -1,6 +1,6 @@
 """Quality control of the newest samples equals a run over the whole record.
 
-``monitor.quality.checks.run_tests_tail(level, ..., start=k)`` evaluates only rows ``k:`` with the
+``monitor.quality.tail.run_tests_tail(level, ..., start=k)`` evaluates only rows ``k:`` with the
 rows before as context; the reference is ``monitor.quality.checks.run_tests`` over the whole record
 (pandas' rolling windows), taken from row ``k``. The record is invented: a one-minute tide
 with red noise and, in turn, spikes, a flat line, gaps, a surge front, a short burst, a
@@ -14,7 +14,7 @@ import pytest
 
 from monitor.quality import checks as qc
 from monitor.quality.checks import QcSettings, run_tests
-from monitor.quality.checks import run_tests_tail
+from monitor.quality.tail import run_tests_tail
 from reference_qc import whole_record_tests
 
 minute = 60

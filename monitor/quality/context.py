@@ -4,7 +4,7 @@
 of record before them. Read from the store at every pass, that context cost most of a
 station's steady-state pass. :class:`QcContext` keeps it (per level sensor: times, values,
 stored flags, the predicted tide, the flags last written and the residual outlier test's
-departures, :class:`monitor.quality.checks.ResidMemo`) and reads only the rows newer than
+departures, :class:`monitor.quality.tail.ResidMemo`) and reads only the rows newer than
 the last one held. The flags are those of the pass without a context, equal to a run over
 the whole record (``tests/test_qc_context.py``).
 
@@ -33,6 +33,7 @@ import pandas as pd
 from alerts.transactions import transaction
 from monitor.quality import checks as _qc
 from monitor.quality import records as _records
+from monitor.quality import tail as _tail
 from monitor.quality.checks import _COL, FAIL, MISSING, NOT_EVALUATED, PACK, PACKED_SQL, TESTS, QcSettings
 
 _NOT_SHAPE = np.array([c not in ("spike", "resid") for c in TESTS])
@@ -135,12 +136,12 @@ class _Sensor:
         self.flag = flag    # observations.flag as stored (NULL read as 2)
         self.p = p          # predicted tide [m] or None
         # the qc_tests rows as stored (packed; -1 unknown) of rows packed_at, packed_at + 1, ...
-        self._packed = _Column(_qc._filled(len(t), -1, np.int64))
+        self._packed = _Column(_tail._filled(len(t), -1, np.int64))
         self.packed = self._packed.view()
         self.packed_at = 0
         self.ov_t = np.empty(0, dtype=np.int64)  # the technician's overrides from the start on
         self.ov_f = np.empty(0, dtype=np.int8)
-        self.memo = _qc.ResidMemo()
+        self.memo = _tail.ResidMemo()
 
     def _views(self, views: list) -> None:
         self.t, self.v, self.flag = views[0], views[1], views[2]
@@ -178,7 +179,7 @@ class _Sensor:
 
     def unknown_before(self, count: int) -> None:
         """Hold ``count`` more rows before those of ``packed``, not known as stored (-1)."""
-        self._packed = _Column(np.concatenate([_qc._filled(count, -1, np.int64), self.packed]))
+        self._packed = _Column(np.concatenate([_tail._filled(count, -1, np.int64), self.packed]))
         self.packed = self._packed.view()
         self.packed_at -= count
 
@@ -224,7 +225,7 @@ class QcContext:
             return self._without(store, station_cfg, settings, start_t, end_t, model, now)
         try:
             return self._run(store, station_cfg, settings or QcSettings(), start_t, end_t, model, now)
-        except _qc._TooWide:
+        except _tail._TooWide:
             # windows too wide to hold as matrices (very fine sampling): the pass without a
             # context, which takes the whole-record tests for such tails, for this pass and
             # the next WIDE_PASSES (then the context is tried again: the sampling may change)
@@ -354,7 +355,7 @@ class QcContext:
         single = {}
         for sn, h in self.sensors.items():
             k = int(h.t.searchsorted(judge_from, side="left"))
-            table = _qc.tail_table(h.t * 1_000_000_000, h.v, h.p, s, now, position, k, h.memo)
+            table = _tail.tail_table(h.t * 1_000_000_000, h.v, h.p, s, now, position, k, h.memo)
             single[sn] = (k, table)
         results: dict[str, QcRows] = {}
         writes = []
@@ -370,7 +371,7 @@ class QcContext:
                 table = table.copy()
                 dm = _qc.difference_on_arrays(h.t[k:].astype(float), h.v[k:], to[other_ok], vo[other_ok],
                                               s.gap_limit)
-                multi = _qc._filled(len(dm), NOT_EVALUATED, np.int8)
+                multi = _tail._filled(len(dm), NOT_EVALUATED, np.int8)
                 fin = np.isfinite(dm)
                 multi[fin] = _qc.PASS
                 multi[fin & (np.abs(dm) > s.multi_suspect)] = _qc.SUSPECT
@@ -380,7 +381,7 @@ class QcContext:
                 if (table[:, _COL["spike"]] == FAIL).any():
                     shape_only = ~(table_o[:, _NOT_SHAPE] == FAIL).any(axis=1) & np.isfinite(vo)
                     resid = h.v - h.p if h.p is not None else h.v
-                    table = _qc.confirm_on_arrays(table, h.t.astype(float), h.v, resid, to[shape_only],
+                    table = _tail.confirm_on_arrays(table, h.t.astype(float), h.v, resid, to[shape_only],
                                                   vo[shape_only], s, k)
             flag = _qc._aggregate(table)
             tt = h.t[k:]

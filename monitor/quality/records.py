@@ -3,7 +3,7 @@
 :func:`ensure_qc_schema` makes the tables (``qc_tests``, ``qc_overrides``,
 ``staff_readings``). :func:`run_station_qc` runs the tests of
 :mod:`monitor.quality.checks` over a station's level sensors for a window of time (only
-the rows it writes, with :func:`monitor.quality.checks.run_tests_tail`) and writes the
+the rows it writes, with :func:`monitor.quality.tail.run_tests_tail`) and writes the
 per-test flags and the aggregate flag after the technician's overrides
 (:func:`write_rows`). :func:`set_override` records a technician's flag and
 :func:`add_staff_reading` a tide-staff reading. A technician's flag and every pass without
@@ -26,7 +26,7 @@ from alerts.transactions import transaction
 from monitor.errors import QcError
 from monitor.quality.checks import (FAIL, MISSING, NOT_EVALUATED, OVERRIDE_FLAGS, PACK, PACKED_SQL, SUSPECT, TESTS,
                                     QcSettings, aggregate_flags, apply_overrides, multi_sensor_test, usable_mask)
-from monitor.quality.checks import confirm_tail, run_tests_tail
+from monitor.quality.tail import confirm_tail, run_tests_tail
 from monitor.surge.forecast import rebin_pressure
 from predictor.timeutil import index_seconds
 
