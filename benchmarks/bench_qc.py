@@ -55,6 +55,8 @@ def _data(days: int):
 def main() -> None:
     from benchmarks.targets import Targets
     from monitor.quality import checks as qc
+    from monitor.quality import records as qc_records
+    from monitor.quality import tail as qc_tail
     from monitor.store.database import Store
 
     days = int(os.environ.get("QW_BENCH_DAYS", "365"))
@@ -64,11 +66,11 @@ def main() -> None:
         with Store.open(Path(tmp) / "bench.sqlite") as store:
             store.write_batch("bench", "primary", t, primary)
             store.write_batch("bench", "backup", t, backup)
-            qc.ensure_qc_schema(store.db)
+            qc_records.ensure_qc_schema(store.db)
 
-            qc.read_observations(store, "bench", "primary", float(t[0]), float(t[0] + 86400))  # warm-up
+            qc_records.read_observations(store, "bench", "primary", float(t[0]), float(t[0] + 86400))  # warm-up
             t0 = time.perf_counter()
-            obs = {s: qc.read_observations(store, "bench", s) for s in ("primary", "backup")}
+            obs = {s: qc_records.read_observations(store, "bench", s) for s in ("primary", "backup")}
             t_read = time.perf_counter() - t0
 
             model = _Tide()
@@ -81,19 +83,19 @@ def main() -> None:
 
             c0 = store.db.conn.total_changes
             t0 = time.perf_counter()
-            qc.run_station_qc(store, "bench", None, float(t[0]), float(t[-1]), model, now=float(t[-1]))
+            qc_records.run_station_qc(store, "bench", None, float(t[0]), float(t[-1]), model, now=float(t[-1]))
             t_pass = time.perf_counter() - t0
             written = store.db.conn.total_changes - c0
 
             # the same pass again: nothing changed, so (almost) nothing is written
             t0 = time.perf_counter()
-            qc.run_station_qc(store, "bench", None, float(t[0]), float(t[-1]), model, now=float(t[-1]))
+            qc_records.run_station_qc(store, "bench", None, float(t[0]), float(t[-1]), model, now=float(t[-1]))
             t_again = time.perf_counter() - t0
             rewritten = store.db.conn.total_changes - c0 - written
 
             # the daemon's incremental pass: the last hour of the record
             t0 = time.perf_counter()
-            qc.run_station_qc(store, "bench", None, float(t[-60]), float(t[-1]), model, now=float(t[-1]))
+            qc_records.run_station_qc(store, "bench", None, float(t[-60]), float(t[-1]), model, now=float(t[-1]))
             t_hour = time.perf_counter() - t0
 
     n = 2 * len(idx)
@@ -110,7 +112,7 @@ def main() -> None:
     cpred = model.predict(ctx.index)
     best = lambda fn: min(_timed(fn) for _ in range(5))  # noqa: E731
     t_ctx = best(lambda: qc.run_tests(ctx, None, cpred, now=float(t[-1])))
-    t_tail = best(lambda: qc.run_tests_tail(ctx, None, cpred, now=float(t[-1]), start=len(ctx) - 60))
+    t_tail = best(lambda: qc_tail.run_tests_tail(ctx, None, cpred, now=float(t[-1]), start=len(ctx) - 60))
     print(f"a station pass of one sensor (26 h of context, the last hour judged): every row {t_ctx * 1e3:.1f} ms, "
           f"the last hour only {t_tail * 1e3:.1f} ms")
     targets = Targets()

@@ -6,7 +6,7 @@ distribution), writes it as a telemetry file, a configuration and a constants fi
 ``demo-output/records/``, then runs the command line as a user would:
 
 1. ``quaywatch ingest`` (decades of hourly lines in one go, progress on standard error);
-2. quality control over the whole record (:func:`monitor.quality.checks.run_station_qc`, a year at a time);
+2. quality control over the whole record (:func:`monitor.quality.records.run_station_qc`, a year at a time);
 3. ``quaywatch extremes --json`` and the text form, saved beside the truth the generator put in
    (``truth.json``: the true rise and the true return levels), with a comparison: does each
    95 % band cover the true level, and the trend's interval the true rise.
@@ -35,7 +35,7 @@ from pathlib import Path
 import numpy as np
 
 from monitor.cli import main as cli
-from monitor.quality import checks as qc
+from monitor.quality import records as qc_records
 from monitor.service.config import load_config
 from monitor.service.constants import load_model
 from monitor.store.database import Store
@@ -124,7 +124,7 @@ def run_qc(config: Path, progress=None) -> None:
         year = 365 * 86400
         starts = list(range(t0, t1 + 1, year))
         for k, a in enumerate(starts):
-            qc.run_station_qc(store, st, st.qc, a, min(a + year - 1, t1), model, now=t1 + 3600)
+            qc_records.run_station_qc(store, st, st.qc, a, min(a + year - 1, t1), model, now=t1 + 3600)
             if progress:
                 progress(k + 1, len(starts))
 

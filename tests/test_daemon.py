@@ -306,15 +306,15 @@ def test_a_window_whose_quality_control_fails_is_retried_not_passed_on(daemon, m
     # Samples nobody has checked must never reach the rules (design notes: samples flagged fail
     # never trigger an alert), so a QC failure fails the whole window and the next pass retries it.
     _ingest(daemon, "primary", range(0, 120))
-    real = daemon.qc.run_station_qc
+    real = daemon.qc_records.run_station_qc
 
     def broken(*args, **kwargs):
         raise RuntimeError("disk hiccup")
 
-    monkeypatch.setattr(daemon.qc, "run_station_qc", broken)
+    monkeypatch.setattr(daemon.qc_records, "run_station_qc", broken)
     daemon.process()  # the scheduler's job: logs the failure and goes on
     assert daemon.store.derived("testport", T0, T0 + 120 * 60).empty
-    monkeypatch.setattr(daemon.qc, "run_station_qc", real)
+    monkeypatch.setattr(daemon.qc_records, "run_station_qc", real)
     daemon.process()
     assert len(daemon.store.derived("testport", T0, T0 + 119 * 60)) == 120
     assert not (daemon.store.observations("testport", "primary")["flag"] == 2).any()

@@ -17,7 +17,7 @@ import numpy as np
 import pandas as pd
 
 from monitor.quality import diagnostics as dg
-from monitor.quality.checks import run_station_qc, set_override
+from monitor.quality.records import run_station_qc, set_override
 from monitor.service.daemon import Daemon
 from monitor.store.database import Store
 from test_qc_synthetic import START, SynthModel, record

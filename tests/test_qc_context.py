@@ -21,8 +21,11 @@ from hypothesis import strategies as st
 from monitor.quality import checks as qc
 from monitor.quality import context as qc_context
 from monitor.quality import diagnostics
-from monitor.quality.checks import QcSettings, run_station_qc, set_override
+from monitor.quality import records as qc_records
+from monitor.quality import tail as qc_tail
+from monitor.quality.checks import QcSettings
 from monitor.quality.context import QcContext, QcRows
+from monitor.quality.records import run_station_qc, set_override
 from monitor.service.daemon import PredictionMemo
 from monitor.store.database import Store
 from reference_qc import whole_record_tests
@@ -67,7 +70,7 @@ def _record(seed: int = 11):
 def _reference(store: Store, model, s: QcSettings, now: float) -> dict[str, pd.DataFrame]:
     """Every test over the whole record stored so far, both sensors combined as the station
     pass combines them, with pandas' rolling windows; the technician's overrides applied."""
-    obs = {sn: qc.read_observations(store, STATION, sn)["value"] for sn in ("primary", "backup")}
+    obs = {sn: qc_records.read_observations(store, STATION, sn)["value"] for sn in ("primary", "backup")}
     out = whole_record_tests(obs, model, s, now, position=(50.2, -4.1))
     for sn, tests in out.items():
         ov = store.conn.execute("SELECT t, flag FROM qc_overrides WHERE station = ? AND sensor = ?",
@@ -280,7 +283,7 @@ def test_the_sliding_median_equals_numpy_over_each_window(seed, suffixes):
     b = np.maximum.accumulate(b)
     if suffixes:
         a, b = np.sort(rng.integers(300, 395, 80)), np.full(80, 400)
-    got = qc._sliding_median(values, a, b, 10)
+    got = qc_tail._sliding_median(values, a, b, 10)
     for i in range(len(a)):
         w = values[a[i]:b[i]]
         w = w[np.isfinite(w)]
@@ -317,7 +320,7 @@ def test_the_noise_bound_gives_the_flags_of_the_exact_median(seed, spread, step,
     mult = rng.choice([6.0, 12.0], n)
     size[e0:] = np.fmax(mult[e0:] * exact[e0:] * rng.uniform(0.8, 1.25, n - e0),
                         rng.choice([0.05, 0.20, 0.0], n - e0) * rng.uniform(0.9, 1.1, n - e0))
-    got = qc._noise_where_needed(absd, size, tn, e0, half, limits, k, True)
+    got = qc_tail._noise_where_needed(absd, size, tn, e0, half, limits, k, True)
 
     def verdicts(sigma):
         ev = np.isfinite(sigma)
@@ -335,7 +338,7 @@ def test_windows_too_wide_for_matrices_take_the_pass_without_the_context(tmp_pat
     the passes after it go straight there (no read of the context to find it too wide
     again) until the context is tried again, WIDE_PASSES later."""
     t, primary, backup, keep = _record(13)
-    monkeypatch.setattr(qc, "_TAIL_CELLS_MAX", 1000)
+    monkeypatch.setattr(qc_tail, "_TAIL_CELLS_MAX", 1000)
     monkeypatch.setattr(qc_context, "WIDE_PASSES", 3)
     model, s = _Tide(), QcSettings()
     live, plain = _Station(tmp_path / "live.db", QcContext()), _Station(tmp_path / "plain.db", None)
@@ -379,11 +382,11 @@ def test_spike_flags_kept_between_calls_equal_those_of_the_whole_record(seed, re
         r[a:a + rng.integers(1, 8)] = np.nan                      # missing runs
     t[rng.integers(0, n, 15)] += 400                              # a few late stamps (gaps)
     t = np.sort(t)
-    s, memo = QcSettings(), qc.ResidMemo()
+    s, memo = QcSettings(), qc_tail.ResidMemo()
     lo, hi = 0, 200
     while hi < n:
-        got = qc._spike_all(r[lo:hi], t[lo:hi], s, memo, reach)
-        want = qc.spike_flags(r[lo:hi], t[lo:hi], s.spike_suspect, s.spike_fail, s.gap_limit, s.jump_ratio)
+        got = qc_tail._spike_all(r[lo:hi], t[lo:hi], s, memo, reach)
+        want = qc_tail.spike_flags(r[lo:hi], t[lo:hi], s.spike_suspect, s.spike_fail, s.gap_limit, s.jump_ratio)
         assert np.array_equal(got[reach:], want[reach:]), (lo, hi, np.flatnonzero(got != want))
         step, cut = int(rng.integers(1, 4)), int(rng.integers(0, 3))
         hi += step
@@ -535,14 +538,14 @@ def test_the_table_kept_between_calls_equals_a_call_without_the_memo(step_s, see
     v[rng.integers(0, n, n // 20)] += rng.choice([-1, 1], n // 20) * rng.uniform(0.1, 0.5, n // 20)
     for a in rng.integers(0, n - 5, n // 60):
         v[a:a + rng.integers(1, 4)] = np.nan
-    s, memo = QcSettings(), qc.ResidMemo()
+    s, memo = QcSettings(), qc_tail.ResidMemo()
     span = s.context_seconds() + s.resid_window + 2 * s.gap_limit
     lo, hi = 0, int(span // step_s)
     while hi < n:
         k = int(np.searchsorted(t[lo:hi], t[hi - 1] - s.resid_window - 2 * s.gap_limit))
         tn = (t[lo:hi] * 1e9).astype(np.int64)
-        got = qc.tail_table(tn, v[lo:hi], p[lo:hi], s, t[hi - 1] + 30, None, k, memo)
-        want = qc.tail_table(tn, v[lo:hi], p[lo:hi], s, t[hi - 1] + 30, None, k)
+        got = qc_tail.tail_table(tn, v[lo:hi], p[lo:hi], s, t[hi - 1] + 30, None, k, memo)
+        want = qc_tail.tail_table(tn, v[lo:hi], p[lo:hi], s, t[hi - 1] + 30, None, k)
         assert np.array_equal(got, want), (lo, hi, np.argwhere(got != want)[:5])
         hi += 1
         cut = int(np.searchsorted(t, t[hi - 1] - span)) - lo
@@ -567,7 +570,7 @@ def test_the_rows_before_the_reach_decide_no_flag_of_the_rows_judged(step_s, mon
     v[rng.integers(0, n, n // 10)] += 0.4
     tn = (t * 1e9).astype(np.int64)
     k = int(np.searchsorted(t, t[-1] - s.resid_window - 2 * s.gap_limit))
-    spike_all = qc._spike_all
+    spike_all = qc_tail._spike_all
     changed = {}
 
     def table(where: str | None):
@@ -578,10 +581,10 @@ def test_the_rows_before_the_reach_decide_no_flag_of_the_rows_judged(step_s, mon
                 sp[rows] = rng.choice([qc.PASS, qc.FAIL], len(rows))
                 changed[where] = len(rows)
             return sp
-        monkeypatch.setattr(qc, "_spike_all", randomised)
-        memo = qc.ResidMemo()
+        monkeypatch.setattr(qc_tail, "_spike_all", randomised)
+        memo = qc_tail.ResidMemo()
         memo.lost = True  # as after the record lost rows at its front: the reach is asked for
-        return qc.tail_table(tn, v, p, s, t[-1] + 30, None, k, memo)
+        return qc_tail.tail_table(tn, v, p, s, t[-1] + 30, None, k, memo)
 
     plain = table(None)
     for _ in range(5):
@@ -596,7 +599,7 @@ def test_the_step_kept_between_calls_follows_a_change_of_sampling():
     goes from one-minute to two-minute sampling (and back) as a call without the memo does:
     at two minutes a tidal day holds 745 samples, covered only if the step is taken as
     two minutes (745 x 60 s is under 80 % of the day)."""
-    s, memo = QcSettings(), qc.ResidMemo()
+    s, memo = QcSettings(), qc_tail.ResidMemo()
     t = list(T0 + minute * np.arange(int(s.context_seconds() // minute)))
     seen = set()
     for step in [minute] * 30 + [2 * minute] * 1900 + [minute] * 400:
@@ -611,8 +614,8 @@ def test_the_step_kept_between_calls_follows_a_change_of_sampling():
         v = p + 0.01 * np.sin(tt / 977.0)
         k = len(tt) - 3
         tn = (tt * 1e9).astype(np.int64)
-        got = qc.tail_table(tn, v, p, s, tt[-1] + 30, None, k, memo)
-        want = qc.tail_table(tn, v, p, s, tt[-1] + 30, None, k)
+        got = qc_tail.tail_table(tn, v, p, s, tt[-1] + 30, None, k, memo)
+        want = qc_tail.tail_table(tn, v, p, s, tt[-1] + 30, None, k)
         assert np.array_equal(got, want), (len(t), np.argwhere(got != want)[:5])
         seen.update(got[:, qc._COL["atten"]].tolist())
     assert {qc.PASS, qc.NOT_EVALUATED} <= seen  # both sides of the coverage were met

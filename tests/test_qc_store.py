@@ -6,6 +6,7 @@ import pandas as pd
 import pytest
 
 from monitor.quality import checks as qc
+from monitor.quality import records as qc_records
 from monitor.errors import QcError
 from monitor.store.database import Store
 from test_qc_synthetic import SynthModel, record
@@ -37,7 +38,7 @@ def _flags(store, sensor="primary"):
 def test_run_station_qc_writes_test_rows_and_aggregate_flags(filled):
     store, level = filled
     t0, t1 = level.index[0].timestamp(), level.index[-1].timestamp()
-    qc.run_station_qc(store, "harbour", None, t0, t1, SynthModel(), now=t1)
+    qc_records.run_station_qc(store, "harbour", None, t0, t1, SynthModel(), now=t1)
     spike_t = int(level.index[2000].timestamp())
     flags = _flags(store)
     assert flags[spike_t] == qc.FAIL
@@ -48,8 +49,8 @@ def test_run_station_qc_writes_test_rows_and_aggregate_flags(filled):
 
 
 def test_schema_is_idempotent(store):
-    qc.ensure_qc_schema(store.db)
-    qc.ensure_qc_schema(store)
+    qc_records.ensure_qc_schema(store.db)
+    qc_records.ensure_qc_schema(store)
     assert {"qc_tests", "qc_overrides", "staff_readings"} <= set(store.db.table_names())
 
 
@@ -57,10 +58,10 @@ def test_override_is_recorded_and_wins_when_qc_is_rerun(filled):
     store, level = filled
     t0, t1 = level.index[0].timestamp(), level.index[-1].timestamp()
     spike_t = level.index[2000].timestamp()
-    qc.run_station_qc(store, "harbour", None, t0, t1, SynthModel(), now=t1)
-    n = qc.set_override(store, "harbour", "primary", spike_t, None, qc.PASS, "tech A", "real seiche, checked", at=t1)
+    qc_records.run_station_qc(store, "harbour", None, t0, t1, SynthModel(), now=t1)
+    n = qc_records.set_override(store, "harbour", "primary", spike_t, None, qc.PASS, "tech A", "real seiche, checked", at=t1)
     assert n == 1
-    qc.run_station_qc(store, "harbour", None, t0, t1, SynthModel(), now=t1)
+    qc_records.run_station_qc(store, "harbour", None, t0, t1, SynthModel(), now=t1)
     assert _flags(store)[int(spike_t)] == qc.PASS
     who = store.conn.execute("SELECT who, why, flag FROM qc_overrides").fetchall()
     assert who == [("tech A", "real seiche, checked", qc.PASS)]
@@ -69,19 +70,19 @@ def test_override_is_recorded_and_wins_when_qc_is_rerun(filled):
 def test_override_range_covers_every_sample_in_it(filled):
     store, level = filled
     a, b = level.index[100].timestamp(), level.index[109].timestamp()
-    assert qc.set_override(store, "harbour", "backup", a, b, qc.FAIL, "tech B", "float fouled") == 10
+    assert qc_records.set_override(store, "harbour", "backup", a, b, qc.FAIL, "tech B", "float fouled") == 10
 
 
 def test_override_at_a_time_without_sample_names_the_nearest(filled):
     store, level = filled
     with pytest.raises(QcError, match="nearest: 2024-03-01T00:05:00Z"):
-        qc.set_override(store, "harbour", "primary", level.index[5].timestamp() + 20, None, qc.FAIL, "x", "y")
+        qc_records.set_override(store, "harbour", "primary", level.index[5].timestamp() + 20, None, qc.FAIL, "x", "y")
 
 
 def test_failed_samples_are_kept_in_the_store(filled):
     store, level = filled
     t0, t1 = level.index[0].timestamp(), level.index[-1].timestamp()
-    qc.run_station_qc(store, "harbour", None, t0, t1, SynthModel(), now=t1)
+    qc_records.run_station_qc(store, "harbour", None, t0, t1, SynthModel(), now=t1)
     assert store.observation_count("harbour", "primary") == len(level)
 
 
@@ -89,18 +90,18 @@ def test_incremental_pass_reevaluates_the_last_samples(filled):
     # The newest sample cannot be spike-tested (no next sample); the next pass fixes that.
     store, level = filled
     cut = level.index[1000].timestamp()
-    qc.run_station_qc(store, "harbour", None, level.index[0].timestamp(), cut, SynthModel(), now=cut)
+    qc_records.run_station_qc(store, "harbour", None, level.index[0].timestamp(), cut, SynthModel(), now=cut)
     before = store.conn.execute("SELECT spike FROM qc_tests WHERE sensor='primary' AND t = ?",
                                 (int(cut),)).fetchone()
-    qc.run_station_qc(store, "harbour", None, cut + minute, level.index[-1].timestamp(), SynthModel())
+    qc_records.run_station_qc(store, "harbour", None, cut + minute, level.index[-1].timestamp(), SynthModel())
     after = store.conn.execute("SELECT spike FROM qc_tests WHERE sensor='primary' AND t = ?",
                                (int(cut),)).fetchone()
     assert before == (qc.NOT_EVALUATED,) and after == (qc.PASS,)
 
 
 def test_staff_readings_round_trip(store):
-    qc.add_staff_reading(store, "harbour", 1_900_000_000, 2.345, "tech A", "calm")
-    df = qc.read_staff_readings(store, "harbour")
+    qc_records.add_staff_reading(store, "harbour", 1_900_000_000, 2.345, "tech A", "calm")
+    df = qc_records.read_staff_readings(store, "harbour")
     assert df["reading"].tolist() == [2.345] and df["who"].tolist() == ["tech A"]
     assert df.index[0] == pd.Timestamp(1_900_000_000, unit="s", tz="UTC")
 
@@ -108,20 +109,20 @@ def test_staff_readings_round_trip(store):
 def test_rerun_over_an_unchanged_record_writes_nothing(filled):
     store, level = filled
     t0, t1 = level.index[0].timestamp(), level.index[-1].timestamp()
-    qc.run_station_qc(store, "harbour", None, t0, t1, SynthModel(), now=t1)
+    qc_records.run_station_qc(store, "harbour", None, t0, t1, SynthModel(), now=t1)
     before = store.conn.total_changes
-    qc.run_station_qc(store, "harbour", None, t0, t1, SynthModel(), now=t1)
+    qc_records.run_station_qc(store, "harbour", None, t0, t1, SynthModel(), now=t1)
     assert store.conn.total_changes == before
 
 
 def test_rerun_after_an_override_writes_only_the_overridden_sample(filled):
     store, level = filled
     t0, t1 = level.index[0].timestamp(), level.index[-1].timestamp()
-    qc.run_station_qc(store, "harbour", None, t0, t1, SynthModel(), now=t1)
-    qc.set_override(store, "harbour", "primary", level.index[2000].timestamp(), None, qc.PASS, "tech A", "checked",
+    qc_records.run_station_qc(store, "harbour", None, t0, t1, SynthModel(), now=t1)
+    qc_records.set_override(store, "harbour", "primary", level.index[2000].timestamp(), None, qc.PASS, "tech A", "checked",
                     at=t1)
     before = store.conn.total_changes
-    qc.run_station_qc(store, "harbour", None, t0, t1, SynthModel(), now=t1)
+    qc_records.run_station_qc(store, "harbour", None, t0, t1, SynthModel(), now=t1)
     # set_override already wrote the flag, so at most that one observation row changes
     assert store.conn.total_changes - before <= 1
 
@@ -129,10 +130,10 @@ def test_rerun_after_an_override_writes_only_the_overridden_sample(filled):
 def test_changed_test_results_are_rewritten(filled):
     store, level = filled
     t0, t1 = level.index[0].timestamp(), level.index[-1].timestamp()
-    qc.run_station_qc(store, "harbour", None, t0, t1, SynthModel(), now=t1)
+    qc_records.run_station_qc(store, "harbour", None, t0, t1, SynthModel(), now=t1)
     spike_t = int(level.index[2000].timestamp())
     store.conn.execute("UPDATE qc_tests SET spike = 1, gross = NULL WHERE sensor = 'primary' AND t = ?", (spike_t,))
-    qc.run_station_qc(store, "harbour", None, t0, t1, SynthModel(), now=t1)
+    qc_records.run_station_qc(store, "harbour", None, t0, t1, SynthModel(), now=t1)
     row = store.conn.execute("SELECT spike, gross FROM qc_tests WHERE sensor = 'primary' AND t = ?",
                              (spike_t,)).fetchone()
     assert row == (qc.FAIL, qc.PASS)
@@ -163,7 +164,7 @@ def test_a_store_made_before_the_location_and_attenuation_tests_gets_their_colum
         level, _ = record(days=2, seed=7)
         _put(s, level)
         t0, t1 = level.index[0].timestamp(), level.index[-1].timestamp()
-        qc.run_station_qc(s, "harbour", None, t0, t1, SynthModel(), now=t1)
+        qc_records.run_station_qc(s, "harbour", None, t0, t1, SynthModel(), now=t1)
         assert set(qc.TESTS) <= set(s.db["qc_tests"].columns_dict)
         n = s.conn.execute("SELECT count(*) FROM qc_tests WHERE atten IS NOT NULL").fetchone()[0]
         assert n == len(level)

@@ -1,6 +1,6 @@
 """Quality control of the newest samples equals a run over the whole record.
 
-``monitor.quality.checks.run_tests_tail(level, ..., start=k)`` evaluates only rows ``k:`` with the
+``monitor.quality.tail.run_tests_tail(level, ..., start=k)`` evaluates only rows ``k:`` with the
 rows before as context; the reference is ``monitor.quality.checks.run_tests`` over the whole record
 (pandas' rolling windows), taken from row ``k``. The record is invented: a one-minute tide
 with red noise and, in turn, spikes, a flat line, gaps, a surge front, a short burst, a
@@ -14,7 +14,7 @@ import pytest
 
 from monitor.quality import checks as qc
 from monitor.quality.checks import QcSettings, run_tests
-from monitor.quality.checks import run_tests_tail
+from monitor.quality.tail import run_tests_tail
 from reference_qc import whole_record_tests
 
 minute = 60
@@ -130,7 +130,7 @@ def test_each_pass_through_the_store_writes_the_flags_of_a_whole_record_run(tmp_
     """Passes as the daemon makes them -- a day's backfill, then samples one at a time and a
     few at once, with the process restarted (a new store connection) midway -- write for
     every row they touch the flags a run over the whole record stored so far gives."""
-    from monitor.quality import checks as qc
+    from monitor.quality import records as qc_records
     from monitor.store.database import Store
 
     t, level, pred, rng = _record(8, hours=34)
@@ -155,8 +155,8 @@ def test_each_pass_through_the_store_writes_the_flags_of_a_whole_record_run(tmp_
                 store.write_batch("harbour", "primary", t_p[sel].astype(np.int64), v_p[sel])
             store.write_batch("harbour", "backup", t[prev:end].astype(np.int64), backup[prev:end])
             now = float(hi) + 30
-            written = qc.run_station_qc(store, "harbour", s, float(lo), float(hi), model, now=now)
-            whole = {sn: qc.read_observations(store, "harbour", sn)["value"] for sn in ("primary", "backup")}
+            written = qc_records.run_station_qc(store, "harbour", s, float(lo), float(hi), model, now=now)
+            whole = {sn: qc_records.read_observations(store, "harbour", sn)["value"] for sn in ("primary", "backup")}
             ref = _reference(whole["primary"], whole["backup"], model, s, now)
             for sn, part in written.items():
                 want = ref[sn].loc[part.index]

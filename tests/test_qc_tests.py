@@ -12,6 +12,7 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 
 from monitor.quality import checks as qc
+from monitor.quality import tail as qc_tail
 from test_qc_synthetic import record
 from units import mm, minute, hour
 
@@ -215,7 +216,7 @@ def test_the_median_step_equals_numpy_median_of_the_steps(steps, start):
     """The attenuation test's sampling step against ``np.median(np.diff(t))`` (numpy as the
     reference), for steady feeds (one step throughout) and irregular ones."""
     t = start + np.concatenate([[0.0], np.cumsum(steps)])
-    assert qc._median_step(t) == float(np.median(np.diff(t)))
+    assert qc_tail._median_step(t) == float(np.median(np.diff(t)))
 
 
 @settings(max_examples=600, deadline=None)
@@ -229,8 +230,8 @@ def test_the_finite_rows_found_near_an_end_equal_those_of_the_whole_scan(head, r
     end = data.draw(st.integers(0, len(values)))
     fin = np.flatnonzero(np.isfinite(values))
     before = fin[fin < end]
-    assert qc._finite_back(values, end, count) == (int(before[-count]) if len(before) >= count else -1)
-    assert qc._finite_ahead(values, count) == (int(fin[count - 1]) if len(fin) >= count else -1)
+    assert qc_tail._finite_back(values, end, count) == (int(before[-count]) if len(before) >= count else -1)
+    assert qc_tail._finite_ahead(values, count) == (int(fin[count - 1]) if len(fin) >= count else -1)
 
 
 def test_override_wins_over_automatic_flag(calm):
@@ -278,7 +279,7 @@ def test_clean_record_with_coloured_noise_and_surge_flags_under_a_tenth_of_a_per
 def test_diagnostics_leave_out_a_spell_the_flat_line_test_doubts():
     # A stuck float reads nothing of the sea even while only suspect; other suspects stay usable
     # for diagnostics, and fail (4) never is (design notes, "Quality control").
-    from monitor.quality.checks import diagnostic_mask
+    from monitor.quality.records import diagnostic_mask
 
     flags = [1, 3, 3, 4, 2]
     flat = [1, 3, 1, 4, 2]
@@ -289,7 +290,7 @@ def test_diagnostics_leave_out_a_spell_the_flat_line_test_doubts():
 def _short_records(draw):
     """A few rows of a residual [m] with spikes, steps, ties, zeros and missing values, at
     times [s] with repeats, gaps and one-minute steps."""
-    n = draw(st.integers(0, qc._SMALL))
+    n = draw(st.integers(0, qc_tail._SMALL))
     pick = st.sampled_from([0.0, -0.0, 0.01, -0.01, 0.05, 0.09, -0.09, 0.25, -0.25, 0.5, 1.0, np.nan])
     r = np.array(draw(st.lists(st.one_of(pick, st.floats(-2, 2)), min_size=n, max_size=n)), dtype=float)
     steps = draw(st.lists(st.sampled_from([60.0, 60.0, 60.0, 0.0, 240.0, 300.0, 301.0, 900.0]), min_size=n, max_size=n))
@@ -306,8 +307,8 @@ def test_the_spike_test_of_a_few_rows_on_floats_equals_the_array_and_pandas_form
     r, t = rec
     s = qc.QcSettings()
     args = (s.spike_suspect, s.spike_fail, s.gap_limit, s.jump_ratio)
-    small = qc._spike_flags_small(r, t, *args)
-    arrays = qc._spike_flags_arrays(r, t, *args)
+    small = qc_tail._spike_flags_small(r, t, *args)
+    arrays = qc_tail._spike_flags_arrays(r, t, *args)
     assert small.tolist() == arrays.tolist()
     if len(t) and np.all(np.diff(t) > 0):  # (a Series wants distinct times)
         series = pd.Series(r, index=pd.to_datetime(t, unit="s", utc=True))
@@ -335,8 +336,8 @@ def test_the_flat_line_at_one_row_on_scalars_equals_the_array_form_and_pandas(re
     tn = (t * 1e9).astype(np.int64)
     row = data.draw(st.integers(0, len(v) - 1))
     other = (row + 1) % len(v)
-    one = qc._flat_rows(v, t, tn, np.array([row]), s)[0]
-    assert one == qc._flat_rows(v, t, tn, np.array(sorted({row, other})), s)[sorted({row, other}).index(row)]
+    one = qc_tail._flat_rows(v, t, tn, np.array([row]), s)[0]
+    assert one == qc_tail._flat_rows(v, t, tn, np.array(sorted({row, other})), s)[sorted({row, other}).index(row)]
     series = pd.Series(v, index=pd.to_datetime(t, unit="s", utc=True))
     ref = qc.flat_line_test(series, s.flat_tolerance, s.flat_suspect_after, s.flat_fail_after, s.gap_limit)
     assert one == ref.iloc[row]
@@ -358,8 +359,8 @@ def test_the_flat_line_at_one_row_at_the_edges_of_its_window(case):
     series = pd.Series(v, index=pd.to_datetime(t, unit="s", utc=True))
     want = qc.flat_line_test(series, s.flat_tolerance, s.flat_suspect_after, s.flat_fail_after, s.gap_limit).iloc[row]
     assert want == (qc.SUSPECT if case.startswith("a sample") else qc.PASS)
-    assert qc._flat_rows(v, t, tn, np.array([row]), s)[0] == want
-    assert qc._flat_rows(v, t, tn, np.array([row - 1, row]), s)[1] == want
+    assert qc_tail._flat_rows(v, t, tn, np.array([row]), s)[0] == want
+    assert qc_tail._flat_rows(v, t, tn, np.array([row - 1, row]), s)[1] == want
 
 
 @settings(max_examples=300, deadline=None)
@@ -367,7 +368,7 @@ def test_the_flat_line_at_one_row_at_the_edges_of_its_window(case):
 def test_the_sample_std_is_numpys_to_the_bit(values, scale):
     """The rate of change's sd at a steady pass's new row (``_sample_std``) is ``np.std(ddof=1)``."""
     w = np.array(values) * scale
-    assert qc._sample_std(w) == float(np.std(w, ddof=1))
+    assert qc_tail._sample_std(w) == float(np.std(w, ddof=1))
 
 
 @pytest.mark.parametrize("shape, value, dtype", [(5, np.nan, float), (3, qc.NOT_EVALUATED, np.int8),
@@ -375,6 +376,6 @@ def test_the_sample_std_is_numpys_to_the_bit(values, scale):
                                                  ((4, 3), np.nan, float), (7, -1, np.int8)])
 def test_the_filled_helper_is_numpys_full(shape, value, dtype):
     """``_filled`` stands in for ``np.full`` on the steady pass: the same dtype, shape and values."""
-    got, want = qc._filled(shape, value, dtype), np.full(shape, value, dtype=dtype)
+    got, want = qc_tail._filled(shape, value, dtype), np.full(shape, value, dtype=dtype)
     assert got.dtype == want.dtype and got.shape == want.shape
     assert np.array_equal(got, want, equal_nan=True)

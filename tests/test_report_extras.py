@@ -9,7 +9,7 @@ import pandas as pd
 import pytest
 
 from alerts.reports.model import day_bounds
-from monitor.quality.checks import add_staff_reading
+from monitor.quality.records import add_staff_reading
 from monitor.service.reporting import barometric_share, gather_day
 from monitor.store.database import Store
 from predictor import TideModel

@@ -123,6 +123,7 @@ def pressure_reference(conn: sqlite3.Connection, station: str, start: int, end: 
        t0=st.sampled_from([-2 * day + 13, 1_700_000_000 + 7]))
 def test_the_pressure_equals_its_usable_readings_grouped(tmp_path_factory, batches, flagged, bounds, seed, t0):
     from monitor.quality import checks as qc
+    from monitor.quality import records as qc_records
 
     rng = np.random.default_rng(seed)
     path = tmp_path_factory.mktemp("pbins") / "store.sqlite"
@@ -138,9 +139,9 @@ def test_the_pressure_equals_its_usable_readings_grouped(tmp_path_factory, batch
         for at, length, flag in flagged:
             some = stored[(stored >= t0 + at) & (stored <= t0 + at + length)]
             if len(some):  # quality control's flags, and a technician's over part of them
-                qc.write_rows(store, "port", "barometer", some, np.ones((len(some), len(qc.TESTS))), some,
+                qc_records.write_rows(store, "port", "barometer", some, np.ones((len(some), len(qc.TESTS))), some,
                               np.full(len(some), flag))
-                qc.set_override(store, "port", "barometer", float(some[0]), float(some[len(some) // 2]),
+                qc_records.set_override(store, "port", "barometer", float(some[0]), float(some[len(some) // 2]),
                                 4 if flag != 4 else 1, "tech", "test")
         start, end = t0 + bounds[0], t0 + bounds[0] + bounds[1]
         resid, _, pressure = SF.read_history(store.conn, "port", start, end, barometer=True)
@@ -153,6 +154,7 @@ def test_the_pressure_equals_its_usable_readings_grouped(tmp_path_factory, batch
 
 def test_each_writer_of_the_barometer_keeps_its_means(store):
     from monitor.quality import checks as qc
+    from monitor.quality import records as qc_records
 
     t0 = 1_700_000_000 + 7
     t = t0 + np.arange(0, 6 * hour, minute)
@@ -167,12 +169,12 @@ def test_each_writer_of_the_barometer_keeps_its_means(store):
     store.write_batch("port", "barometer", t[1::2], 1020.0 + np.arange(len(t[1::2])))  # late rows between
     check()
     hour2 = t[(t >= t0 + hour) & (t < t0 + 2 * hour)]
-    qc.write_rows(store, "port", "barometer", hour2, np.ones((len(hour2), len(qc.TESTS))), hour2,
+    qc_records.write_rows(store, "port", "barometer", hour2, np.ones((len(hour2), len(qc.TESTS))), hour2,
                   np.full(len(hour2), 4))   # quality control fails an hour
     check()
-    qc.set_override(store, "port", "barometer", float(t0 + 4 * hour), float(t0 + 5 * hour), 4, "tech", "leak")
+    qc_records.set_override(store, "port", "barometer", float(t0 + 4 * hour), float(t0 + 5 * hour), 4, "tech", "leak")
     check()
-    qc.set_override(store, "port", "barometer", float(hour2[0]), float(hour2[20]), 1, "tech", "fine after all")
+    qc_records.set_override(store, "port", "barometer", float(hour2[0]), float(hour2[20]), 1, "tech", "fine after all")
     check()
 
 

@@ -18,7 +18,7 @@ from hypothesis import Phase, given, settings
 from hypothesis import strategies as st
 
 from alerts import engine
-from monitor.quality.checks import set_override
+from monitor.quality.records import set_override
 from monitor.service.config import validate_config
 from monitor.service.daemon import REWRITE_BACK, TREND_BACK, Daemon
 from monitor.store.database import Store

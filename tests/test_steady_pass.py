@@ -18,7 +18,7 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 
 from monitor.service.config import validate_config
-from monitor.quality.checks import set_override
+from monitor.quality.records import set_override
 from monitor.quality.context import QcContext
 from monitor.service.daemon import REWRITE_BACK, Daemon, TideTurns
 from monitor.store.database import Store

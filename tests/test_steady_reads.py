@@ -12,7 +12,7 @@ from __future__ import annotations
 
 import numpy as np
 
-from monitor.quality.checks import set_override
+from monitor.quality.records import set_override
 from monitor.service.daemon import Daemon
 from monitor.store.database import Store
 from units import hour, minute

@@ -17,7 +17,7 @@ import pytest
 
 from alerts.engine import list_episodes
 from alerts.mail.outbox import list_outbox
-from monitor.quality import checks as qc
+from monitor.quality import records as qc_records
 from monitor.store.database import Store
 from monitor.store.migrations import SCHEMA_VERSION
 
@@ -77,8 +77,8 @@ def test_the_upgraded_store_reads_as_before(old_store):
         episodes = list_episodes(store.db, "testport")
         assert len(episodes) == 2 and sum(e["closed_at"] is None for e in episodes) == 1
         assert {r["status"] for r in list_outbox(store.db)} == {"sent"}
-        assert len(qc.read_overrides(store, "testport", "primary")) == 3
-        staff = qc.read_staff_readings(store, "testport")
+        assert len(qc_records.read_overrides(store, "testport", "primary")) == 3
+        staff = qc_records.read_staff_readings(store, "testport")
         assert staff["reading"].tolist() == [pytest.approx(2.95)]
 
 

@@ -24,6 +24,7 @@ from monitor.cli.timeparse import local_text as _local
 from monitor.cli.timeparse import parse_range, parse_time
 from monitor.quality import checks as qc
 from monitor.quality import diagnostics as dg
+from monitor.quality import records as qc_records
 from monitor.service.config import load_config
 from monitor.service.constants import load_model
 from monitor.store.database import Store
@@ -167,8 +168,8 @@ def summarise(st, settings: qc.QcSettings, results: dict[str, pd.DataFrame], obs
         o = obs[sn]
         o = o[(o.index >= start) & (o.index <= end)]
         t = tests.reindex(o.index)
-        usable[sn] = o["value"][qc.diagnostic_mask(t["flag"].fillna(qc.PASS).to_numpy(),
-                                                   t["flat"].fillna(qc.NOT_EVALUATED).to_numpy())]
+        usable[sn] = o["value"][qc_records.diagnostic_mask(t["flag"].fillna(qc.PASS).to_numpy(),
+                                                           t["flat"].fillna(qc.NOT_EVALUATED).to_numpy())]
         out.append("")
 
     out.append("Diagnostics (value +- standard error):")
@@ -235,9 +236,9 @@ def cmd_qc(args: argparse.Namespace) -> int:
         start, end = parse_range(args.start, args.end, st.tz, allow_equal=False)
         settings = st.qc or qc.QcSettings()
         model, source = _model(store, st)
-        results = qc.run_station_qc(store, st, settings, start.timestamp(), end.timestamp(), model)
-        obs = {sn: qc.read_observations(store, st.id, sn, start.timestamp(), end.timestamp()) for sn in results}
-        staff = qc.read_staff_readings(store, st.id, start.timestamp(), end.timestamp())
+        results = qc_records.run_station_qc(store, st, settings, start.timestamp(), end.timestamp(), model)
+        obs = {sn: qc_records.read_observations(store, st.id, sn, start.timestamp(), end.timestamp()) for sn in results}
+        staff = qc_records.read_staff_readings(store, st.id, start.timestamp(), end.timestamp())
         conflicts = {sn: store.conflict_count(st.id, sn, int(start.timestamp()), int(end.timestamp()))
                      for sn in results}
         print(summarise(st, settings, results, obs, model, source, staff, start, end, args.episodes,
@@ -252,7 +253,7 @@ def cmd_staff_add(args: argparse.Namespace) -> int:
     with store:
         st = cfg.station(args.station)
         at = parse_time(args.at, "--at", st.tz)
-        qc.add_staff_reading(store, st.id, at.timestamp(), args.reading, args.who, args.note)
+        qc_records.add_staff_reading(store, st.id, at.timestamp(), args.reading, args.who, args.note)
         print(f"staff reading {args.reading:.3f} m at {_local(at, st.tz)} recorded for {st.id} by {args.who}")
     return 0
 
@@ -261,13 +262,13 @@ def cmd_staff_list(args: argparse.Namespace) -> int:
     cfg, store = _open(args.config)
     with store:
         st = cfg.station(args.station)
-        staff = qc.read_staff_readings(store, st.id)
+        staff = qc_records.read_staff_readings(store, st.id)
         if staff.empty:
             print(f"no staff readings for {st.id}; add one with: quaywatch staff add {args.config} "
                   f"--station {st.id} --at TIME --reading M --who NAME")
             return 0
-        gauge = qc.read_observations(store, st.id, "primary", staff.index[0].timestamp() - 3600,
-                                     staff.index[-1].timestamp() + 3600)
+        gauge = qc_records.read_observations(store, st.id, "primary", staff.index[0].timestamp() - 3600,
+                                             staff.index[-1].timestamp() + 3600)
         g = gauge["value"][qc.usable_mask(gauge["flag"].to_numpy())]
         rows = []
         for t, r in staff.iterrows():
@@ -296,8 +297,8 @@ def cmd_flag(args: argparse.Namespace) -> int:
             at, end = parse_range(args.at, args.end, st.tz, start_option="--at")
         else:
             at, end = parse_time(args.at, "--at", st.tz), None
-        n = qc.set_override(store, st.id, sensor, at.timestamp(), None if end is None else end.timestamp(),
-                            args.flag, args.who, args.why)
+        n = qc_records.set_override(store, st.id, sensor, at.timestamp(), None if end is None else end.timestamp(),
+                                    args.flag, args.who, args.why)
         # answered in the zone the time was typed in (the station's for a time without one)
         asked = asked_zone(args.at, st.tz)
         span = _local(at, asked) + ("" if end is None else f" to {_local(end, asked_zone(args.end, st.tz))}")

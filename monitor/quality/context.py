@@ -1,10 +1,10 @@
 """A station's quality-control context kept in memory between processing passes.
 
-:func:`monitor.quality.checks.run_station_qc` judges a window's samples against the 25 h
+:func:`monitor.quality.records.run_station_qc` judges a window's samples against the 25 h
 of record before them. Read from the store at every pass, that context cost most of a
 station's steady-state pass. :class:`QcContext` keeps it (per level sensor: times, values,
 stored flags, the predicted tide, the flags last written and the residual outlier test's
-departures, :class:`monitor.quality.checks.ResidMemo`) and reads only the rows newer than
+departures, :class:`monitor.quality.tail.ResidMemo`) and reads only the rows newer than
 the last one held. The flags are those of the pass without a context, equal to a run over
 the whole record (``tests/test_qc_context.py``).
 
@@ -15,7 +15,7 @@ pass is retried), a new row more than ``gap_limit`` after the last one held, mor
 rows than a steady pass brings, other settings, another model, position, sensors or
 store connection, or a change of the technician's overrides or of the stored flags by
 another writer (the store's ``qc.edits`` meta value, raised by
-:func:`monitor.quality.checks.set_override` and by every pass without a context, and the
+:func:`monitor.quality.records.set_override` and by every pass without a context, and the
 overrides table's largest row id). An error inside a pass forgets the context. Windows
 too wide to hold as matrices (very fine sampling) send the pass, and the next
 :data:`WIDE_PASSES`, to the pass without a context.
@@ -32,6 +32,8 @@ import pandas as pd
 
 from alerts.transactions import transaction
 from monitor.quality import checks as _qc
+from monitor.quality import records as _records
+from monitor.quality import tail as _tail
 from monitor.quality.checks import _COL, FAIL, MISSING, NOT_EVALUATED, PACK, PACKED_SQL, TESTS, QcSettings
 
 _NOT_SHAPE = np.array([c not in ("spike", "resid") for c in TESTS])
@@ -75,7 +77,7 @@ class QcRows:
         return float(self.t[below[-1] + 1 if below.size else 0])
 
     def frame(self) -> pd.DataFrame:
-        """The rows as :func:`monitor.quality.checks.run_station_qc` returns them without a
+        """The rows as :func:`monitor.quality.records.run_station_qc` returns them without a
         context: one column per test and ``flag``, indexed by UTC time."""
         idx = pd.DatetimeIndex(pd.to_datetime(self.t, unit="s", utc=True), name="time")
         out = pd.DataFrame(self.tests, index=idx, columns=list(TESTS))
@@ -134,12 +136,12 @@ class _Sensor:
         self.flag = flag    # observations.flag as stored (NULL read as 2)
         self.p = p          # predicted tide [m] or None
         # the qc_tests rows as stored (packed; -1 unknown) of rows packed_at, packed_at + 1, ...
-        self._packed = _Column(_qc._filled(len(t), -1, np.int64))
+        self._packed = _Column(_tail._filled(len(t), -1, np.int64))
         self.packed = self._packed.view()
         self.packed_at = 0
         self.ov_t = np.empty(0, dtype=np.int64)  # the technician's overrides from the start on
         self.ov_f = np.empty(0, dtype=np.int8)
-        self.memo = _qc.ResidMemo()
+        self.memo = _tail.ResidMemo()
 
     def _views(self, views: list) -> None:
         self.t, self.v, self.flag = views[0], views[1], views[2]
@@ -177,7 +179,7 @@ class _Sensor:
 
     def unknown_before(self, count: int) -> None:
         """Hold ``count`` more rows before those of ``packed``, not known as stored (-1)."""
-        self._packed = _Column(np.concatenate([_qc._filled(count, -1, np.int64), self.packed]))
+        self._packed = _Column(np.concatenate([_tail._filled(count, -1, np.int64), self.packed]))
         self.packed = self._packed.view()
         self.packed_at -= count
 
@@ -185,7 +187,7 @@ class _Sensor:
 class QcContext:
     """A station's quality-control context between passes (see the module's notes).
 
-    Hand the same instance to :func:`monitor.quality.checks.run_station_qc` at every pass
+    Hand the same instance to :func:`monitor.quality.records.run_station_qc` at every pass
     of one station (``context=``); it is valid for one store connection, station,
     settings and model, and rebuilds itself when any of them changes.
     """
@@ -212,7 +214,7 @@ class QcContext:
     # ------------------------------------------------------------------ the pass
     def run(self, store: Any, station_cfg: Any, settings: QcSettings | None, start_t: float, end_t: float,
             model: Any = None, now: float | None = None) -> dict[str, QcRows]:
-        """:func:`monitor.quality.checks.run_station_qc` from the context (same parameters).
+        """:func:`monitor.quality.records.run_station_qc` from the context (same parameters).
 
         ``start_t`` must not be later than the earliest row stored since the previous pass
         (the daemon's processing mark sees to it). Returns sensor -> :class:`QcRows`.
@@ -223,7 +225,7 @@ class QcContext:
             return self._without(store, station_cfg, settings, start_t, end_t, model, now)
         try:
             return self._run(store, station_cfg, settings or QcSettings(), start_t, end_t, model, now)
-        except _qc._TooWide:
+        except _tail._TooWide:
             # windows too wide to hold as matrices (very fine sampling): the pass without a
             # context, which takes the whole-record tests for such tails, for this pass and
             # the next WIDE_PASSES (then the context is tried again: the sampling may change)
@@ -238,26 +240,26 @@ class QcContext:
     def _without(store: Any, station_cfg: Any, settings: QcSettings | None, start_t: float, end_t: float,
                  model: Any, now: float) -> dict[str, QcRows]:
         """The pass without a context, its rows as :class:`QcRows`."""
-        done = _qc.run_station_qc(store, station_cfg, settings, start_t, end_t, model, now)
+        done = _records.run_station_qc(store, station_cfg, settings, start_t, end_t, model, now)
         return {sn: QcRows(np.round(_qc.index_seconds(df.index)).astype(np.int64),
                            df[list(TESTS)].to_numpy(dtype=np.int8), df["flag"].to_numpy(dtype=np.int8))
                 for sn, df in done.items()}
 
     def _run(self, store: Any, station_cfg: Any, s: QcSettings, start_t: float, end_t: float, model: Any,
              now: float) -> dict[str, QcRows]:
-        db = _qc._db(store)
-        station, sensors = _qc._station_parts(station_cfg)
-        position = _qc._position(station_cfg)
-        write_from, judge_from, read_from = _qc.pass_bounds(start_t, s)
+        db = _records._db(store)
+        station, sensors = _records._station_parts(station_cfg)
+        position = _records._position(station_cfg)
+        write_from, judge_from, read_from = _records.pass_bounds(start_t, s)
         read_from = int(math.floor(read_from))
         hi = int(math.ceil(end_t))
         # the connection itself, not its id(): a store reopened may get a freed id back
         key = (db.conn, station, tuple(sensors), position)
         if key != self.key:
-            _qc.ensure_qc_schema(db)
+            _records.ensure_qc_schema(db)
             self.has_meta = db.conn.execute(
                 "SELECT 1 FROM sqlite_master WHERE type = 'table' AND name = 'meta'").fetchone() is not None
-        edits = _qc.edits_mark(db.conn, self.has_meta)
+        edits = _records.edits_mark(db.conn, self.has_meta)
         # Without the store's ``meta`` table another writer's flags leave no mark (note_edit
         # has nowhere to count them): every pass then rebuilds from the store.
         steady = (self.has_meta and self.end_t is not None and start_t == self.end_t + 1 and key == self.key
@@ -349,11 +351,11 @@ class QcContext:
     def _judge(self, db: Any, station: str, s: QcSettings, now: float, position: Any, judge_from: float,
                write_from: float, end_t: float) -> dict[str, QcRows]:
         """The tests at the rows from ``judge_from`` on, the two sensors combined as
-        :func:`monitor.quality.checks.run_station_qc` combines them; writes what changed."""
+        :func:`monitor.quality.records.run_station_qc` combines them; writes what changed."""
         single = {}
         for sn, h in self.sensors.items():
             k = int(h.t.searchsorted(judge_from, side="left"))
-            table = _qc.tail_table(h.t * 1_000_000_000, h.v, h.p, s, now, position, k, h.memo)
+            table = _tail.tail_table(h.t * 1_000_000_000, h.v, h.p, s, now, position, k, h.memo)
             single[sn] = (k, table)
         results: dict[str, QcRows] = {}
         writes = []
@@ -369,7 +371,7 @@ class QcContext:
                 table = table.copy()
                 dm = _qc.difference_on_arrays(h.t[k:].astype(float), h.v[k:], to[other_ok], vo[other_ok],
                                               s.gap_limit)
-                multi = _qc._filled(len(dm), NOT_EVALUATED, np.int8)
+                multi = _tail._filled(len(dm), NOT_EVALUATED, np.int8)
                 fin = np.isfinite(dm)
                 multi[fin] = _qc.PASS
                 multi[fin & (np.abs(dm) > s.multi_suspect)] = _qc.SUSPECT
@@ -379,7 +381,7 @@ class QcContext:
                 if (table[:, _COL["spike"]] == FAIL).any():
                     shape_only = ~(table_o[:, _NOT_SHAPE] == FAIL).any(axis=1) & np.isfinite(vo)
                     resid = h.v - h.p if h.p is not None else h.v
-                    table = _qc.confirm_on_arrays(table, h.t.astype(float), h.v, resid, to[shape_only],
+                    table = _tail.confirm_on_arrays(table, h.t.astype(float), h.v, resid, to[shape_only],
                                                   vo[shape_only], s, k)
             flag = _qc._aggregate(table)
             tt = h.t[k:]
@@ -402,7 +404,7 @@ class QcContext:
             for sn, h, rows, part, flag in writes:
                 self._write(db, station, sn, h, rows, part, flag, begin)
                 # a steady next pass (from end_t + 1) judges from here on
-                h.keep_from(int(h.t.searchsorted(_qc.pass_bounds(end_t + 1, s)[1] - 1)))
+                h.keep_from(int(h.t.searchsorted(_records.pass_bounds(end_t + 1, s)[1] - 1)))
         return results
 
     @staticmethod
@@ -420,7 +422,7 @@ class QcContext:
             return
         t = h.t[rows]
         begin()
-        _qc.write_rows(db, station, sensor, t[todo], part[todo], t[changed], flag[changed])
+        _records.write_rows(db, station, sensor, t[todo], part[todo], t[changed], flag[changed])
         i = rows - h.packed_at
         if i[0] < 0:  # rows before those kept (not on a steady pass): hold them again
             h.unknown_before(-int(i[0]))

@@ -58,6 +58,7 @@ from monitor.errors import MonitorError
 from monitor.feeds.parse import parse_lines
 from monitor.quality import checks as qc
 from monitor.quality import diagnostics
+from monitor.quality import records as qc_records
 from monitor.quality.context import QcContext
 from monitor.quality.checks import QcSettings
 from monitor.service.config import Config, SensorConfig, StationConfig, unsendable
@@ -698,6 +699,7 @@ class Daemon:
         self.feeds_done_at: float | None = None
         self.until_exhausted = False
         self.qc = qc
+        self.qc_records = qc_records
         # The alert engine and the diagnostics run only for stations with rules.
         self.diag = self.engine = self.rules_mod = None
         if any(st.rules for st in cfg.stations):
@@ -973,8 +975,8 @@ class Daemon:
         # 1. quality control (writes per-test flags and observations.flag). If it fails, the
         # window fails and is retried on the next pass: samples nobody has checked must never
         # reach the alert rules (a spike would pass as "not evaluated").
-        qc_results = self.qc.run_station_qc(store, st, st.qc, start_t, end_t, predicted, now=now,
-                                            context=rt.qc_context) or {}
+        qc_results = self.qc_records.run_station_qc(store, st, st.qc, start_t, end_t, predicted, now=now,
+                                                    context=rt.qc_context) or {}
 
         # 2.-4. residual into ``derived``, skew surges, forecasts: in memory in the steady
         # state, the full way otherwise

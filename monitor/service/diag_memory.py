@@ -43,7 +43,8 @@ import numpy as np
 import pandas as pd
 
 from monitor.quality import diagnostics
-from monitor.quality.checks import NOT_EVALUATED, USABLE_FLAGS, edits_mark
+from monitor.quality.checks import NOT_EVALUATED, USABLE_FLAGS
+from monitor.quality.records import edits_mark
 
 
 class HeldRows:
@@ -90,7 +91,7 @@ def _usable(rows: tuple[np.ndarray, np.ndarray, np.ndarray]) -> tuple[np.ndarray
 
 def _edits(conn: Any) -> tuple | None:
     """What says that flags were changed by another writer (as the QC context reads it,
-    :func:`monitor.quality.checks.edits_mark`), or None when the store cannot say."""
+    :func:`monitor.quality.records.edits_mark`), or None when the store cannot say."""
     try:
         return edits_mark(conn)
     except sqlite3.Error:

@@ -24,7 +24,7 @@ from alerts.reports import render as report_render
 from monitor.errors import ConfigError, MonitorError
 from monitor.quality import checks as qc
 from monitor.quality import diagnostics
-from monitor.quality.checks import read_level_series
+from monitor.quality.records import read_level_series
 from monitor.service.config import ResidualSettings, datum_words
 from monitor.service import extremes as EX
 from monitor.service.constants import load_model

@@ -17,7 +17,7 @@ import sqlite_utils
 
 from alerts.engine import ensure_alert_schema
 from alerts.mail.outbox import ensure_outbox_schema
-from monitor.quality.checks import ensure_qc_schema
+from monitor.quality.records import ensure_qc_schema
 from monitor.surge.forecast import ensure_forecast_schema, ensure_history_bins, rebin_all
 
 __all__ = ["SCHEMA_VERSION", "MIGRATIONS", "DERIVED_COLUMNS", "HISTORY_BINS_KEY", "HISTORY_BINS_VERSION"]

@@ -928,7 +928,7 @@ def rebin_pressure(conn, station: str, t_lo: int | None = None, t_hi: int | None
     (all of the station's without bounds) from the barometer's rows as stored now, in the
     caller's transaction: called by every writer of a barometer's values or flags
     (:meth:`Store.write_batch <monitor.store.database.Store.write_batch>`,
-    :func:`monitor.quality.checks.write_rows`, :func:`monitor.quality.checks.set_override`).
+    :func:`monitor.quality.records.write_rows`, :func:`monitor.quality.records.set_override`).
 
     Parameters
     ----------
