@@ -308,7 +308,7 @@ def test_the_spike_test_of_a_few_rows_on_floats_equals_the_array_and_pandas_form
     s = qc.QcSettings()
     args = (s.spike_suspect, s.spike_fail, s.gap_limit, s.jump_ratio)
     small = qc_tail._spike_flags_small(r, t, *args)
-    arrays = qc_tail._spike_flags_arrays(r, t, *args)
+    arrays = qc.spike_flags_on_arrays(r, t, *args)
     assert small.tolist() == arrays.tolist()
     if len(t) and np.all(np.diff(t) > 0):  # (a Series wants distinct times)
         series = pd.Series(r, index=pd.to_datetime(t, unit="s", utc=True))

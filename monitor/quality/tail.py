@@ -32,8 +32,8 @@ import numpy as np
 import pandas as pd
 
 from monitor.quality.checks import (_COL, FAIL, MISSING, NOT_EVALUATED, PASS, SUSPECT, TESTS, QcSettings, _aggregate,
-                                    _bursts, _neighbour_ok, aggregate_flags, difference_at, difference_on_arrays,
-                                    run_tests)
+                                    _bursts, aggregate_flags, difference_at, difference_on_arrays,
+                                    jump_flags, run_tests, spike_flags_on_arrays)
 from predictor.timeutil import index_seconds, utc_index
 
 TAIL_ROWS_MAX = 5000       # rows evaluated one by one at most; more take run_tests over the record
@@ -158,32 +158,7 @@ def spike_flags(r: np.ndarray, t: np.ndarray, suspect: float, fail: float, gap_l
     """:func:`monitor.quality.checks.spike_test` on plain arrays (residual [m], Unix seconds) [flags]."""
     if len(r) <= _SMALL:
         return _spike_flags_small(r, t, suspect, fail, gap_limit, jump_ratio)
-    return _spike_flags_arrays(r, t, suspect, fail, gap_limit, jump_ratio)
-
-
-def _spike_flags_arrays(r: np.ndarray, t: np.ndarray, suspect: float, fail: float, gap_limit: float,
-                        jump_ratio: float) -> np.ndarray:
-    """:func:`spike_flags` with whole-array numpy operations."""
-    n = len(r)
-    prev_ok, next_ok = _neighbour_ok(t, gap_limit)
-    flags = np.full(n, NOT_EVALUATED, dtype=np.int8)
-    if n >= 3:
-        curv = np.full(n, np.nan)
-        curv[1:-1] = r[1:-1] - 0.5 * (r[:-2] + r[2:])
-        stat = np.abs(curv)
-        ok = prev_ok & next_ok & np.isfinite(stat)
-        before = np.concatenate([[np.nan], curv[:-1]])
-        after = np.concatenate([curv[1:], [np.nan]])
-        with np.errstate(invalid="ignore"):
-            alone = ~(np.sign(before) == np.sign(curv)) & ~(np.sign(after) == np.sign(curv))
-        # (a NaN neighbour counts as 0: fmax, as nan_to_num did, without its cost)
-        peak = ~(np.fmax(np.concatenate([[0.0], stat[:-1]]), 0.0) > stat) & \
-            ~(np.fmax(np.concatenate([stat[1:], [0.0]]), 0.0) > stat)
-        flags[ok] = PASS
-        flags[ok & (stat > suspect)] = SUSPECT
-        flags[ok & (stat > fail) & alone & peak] = FAIL
-    flags[jump_flags(r, t, fail, jump_ratio, gap_limit)] = FAIL
-    return flags
+    return spike_flags_on_arrays(r, t, suspect, fail, gap_limit, jump_ratio)
 
 
 #: Rows up to which the spike test runs on Python floats (a steady pass re-judges a handful
@@ -229,26 +204,6 @@ def _spike_flags_small(r: np.ndarray, t: np.ndarray, suspect: float, fail: float
                     and abs(step) > jump_ratio * max(abs(before), abs(after)):
                 flags[good[j + 1]] = FAIL
     return np.array(flags, dtype=np.int8)
-
-
-def jump_flags(r: np.ndarray, t: np.ndarray, size: float, ratio: float, gap_limit: float) -> np.ndarray:
-    """:func:`monitor.quality.checks.jumps` on plain arrays [bool]."""
-    n = len(r)
-    out = np.zeros(n, dtype=bool)
-    good = np.isfinite(r).nonzero()[0]
-    if good.size < 4:
-        return out
-    rv, tv = r[good], t[good]
-    d = np.diff(rv)
-    close = np.diff(tv) <= gap_limit
-    d = np.where(close, d, np.nan)
-    before = np.concatenate([[np.nan], d[:-1]])
-    after = np.concatenate([d[1:], [np.nan]])
-    with np.errstate(invalid="ignore"):
-        big = (np.abs(d) > size) & (np.abs(d) > ratio * np.fmax(np.abs(before), np.abs(after)))
-        big &= np.isfinite(before) & np.isfinite(after)
-    out[good[1:][big]] = True
-    return out
 
 
 def run_tests_tail(level: pd.Series, settings: QcSettings | None = None, predicted: Any = None,
