@@ -60,20 +60,27 @@ def ensure_qc_schema(db: Any) -> None:
                                 pk=("station", "t"), if_not_exists=True)
 
 
-def read_observations(store: Any, station: str, sensor: str, start_t: float | None = None,
-                      end_t: float | None = None) -> pd.DataFrame:
-    """Observations of one sensor as a DataFrame indexed by UTC time with columns
-    ``value`` [m], ``flag``, ``time_source``."""
-    conn = _db(store).conn
-    sql = "SELECT t, value, flag, time_source FROM observations WHERE station = ? AND sensor = ?"
-    args: list[Any] = [station, sensor]
+def _rows_between(conn: Any, select: str, start_t: float | None, end_t: float | None, **keys: str) -> list[tuple]:
+    """The rows of ``select`` (a ``SELECT ... FROM`` of a table with a time column ``t``)
+    whose columns equal ``keys`` (``station=``, ``sensor=``), with ``t`` from ``start_t`` to
+    ``end_t`` [Unix s] widened to whole seconds (either bound None: open), in time order."""
+    sql = f"{select} WHERE " + " AND ".join(f"{k} = ?" for k in keys)
+    args: list[Any] = list(keys.values())
     if start_t is not None:
         sql += " AND t >= ?"
         args.append(int(math.floor(start_t)))
     if end_t is not None:
         sql += " AND t <= ?"
         args.append(int(math.ceil(end_t)))
-    rows = conn.execute(sql + " ORDER BY t", args).fetchall()
+    return conn.execute(sql + " ORDER BY t", args).fetchall()
+
+
+def read_observations(store: Any, station: str, sensor: str, start_t: float | None = None,
+                      end_t: float | None = None) -> pd.DataFrame:
+    """Observations of one sensor as a DataFrame indexed by UTC time with columns
+    ``value`` [m], ``flag``, ``time_source``."""
+    rows = _rows_between(_db(store).conn, "SELECT t, value, flag, time_source FROM observations", start_t, end_t,
+                         station=station, sensor=sensor)
     if rows:
         t, v, f, src = zip(*rows)
     else:
@@ -120,15 +127,7 @@ def read_overrides(store: Any, station: str, sensor: str, start_t: float | None 
     """Manual flags of one sensor, indexed by UTC time."""
     db = _db(store)
     ensure_qc_schema(db)
-    sql = "SELECT t, flag FROM qc_overrides WHERE station = ? AND sensor = ?"
-    args: list[Any] = [station, sensor]
-    if start_t is not None:
-        sql += " AND t >= ?"
-        args.append(int(math.floor(start_t)))
-    if end_t is not None:
-        sql += " AND t <= ?"
-        args.append(int(math.ceil(end_t)))
-    rows = db.conn.execute(sql + " ORDER BY t", args).fetchall()
+    rows = _rows_between(db.conn, "SELECT t, flag FROM qc_overrides", start_t, end_t, station=station, sensor=sensor)
     t = np.asarray([r[0] for r in rows], dtype=np.int64)
     return pd.Series(np.asarray([r[1] for r in rows], dtype=np.int8),
                      index=pd.to_datetime(t, unit="s", utc=True), name="override")
@@ -402,15 +401,7 @@ def read_staff_readings(store: Any, station: str, start_t: float | None = None,
     ``who``, ``note``."""
     db = _db(store)
     ensure_qc_schema(db)
-    sql = "SELECT t, reading, who, note FROM staff_readings WHERE station = ?"
-    args: list[Any] = [station]
-    if start_t is not None:
-        sql += " AND t >= ?"
-        args.append(int(math.floor(start_t)))
-    if end_t is not None:
-        sql += " AND t <= ?"
-        args.append(int(math.ceil(end_t)))
-    rows = db.conn.execute(sql + " ORDER BY t", args).fetchall()
+    rows = _rows_between(db.conn, "SELECT t, reading, who, note FROM staff_readings", start_t, end_t, station=station)
     t = np.asarray([r[0] for r in rows], dtype=np.int64)
     return pd.DataFrame({"reading": [r[1] for r in rows], "who": [r[2] for r in rows],
                          "note": [r[3] for r in rows]},
