@@ -145,6 +145,15 @@ def old_store(tmp_path) -> Path:
     return load_old_store(tmp_path / "old.db")
 
 
+@pytest.fixture(autouse=True)
+def _repeat_filter_given_back():
+    """No test leaves the daemon's repeat filter set for the tests after it (a daemon
+    there would log old counts into their logs): use ``root_logging`` to set up logging."""
+    before = service_logs._ACTIVE
+    yield
+    assert service_logs._ACTIVE is before, "a test left monitor.service.logs._ACTIVE set"
+
+
 @pytest.fixture
 def root_logging(monkeypatch):
     """The root logger's level, handlers and each handler's filters, and the repeat filter

@@ -248,6 +248,7 @@ def test_a_message_that_logs_while_it_is_made_does_not_wait_on_itself(logged):
 
     worker = threading.Thread(target=log_it, daemon=True)
     worker.start()
+    # a generous ceiling on the event, not a timing: a filter that waits on itself never sets it
     assert done.wait(timeout=60), "the filter waited on its own lock"
     assert "value noisy" in out.getvalue()
 
@@ -267,6 +268,29 @@ def test_the_daemon_says_the_counts_when_it_is_told_to(daemon, tmp_path, root_lo
     assert text.count("poll failed") == 2 and "the same 2 more time(s)" in text and "none since" in text
 
 
-def test_a_test_that_set_up_the_log_leaves_no_filter_to_report_from():
-    # the tests above ran setup_logging through the root_logging fixture
-    assert logs._ACTIVE is None
+def test_a_failure_back_after_its_count_was_said_is_shown_at_once(logged):
+    logger, clock, out = logged
+    repeats = logger.handlers[0].filters[0]
+    fail(logger)
+    clock.t += 1
+    fail(logger)                    # hidden
+    clock.t += 10 * minute
+    assert len(repeats.quiet()) == 1   # "... none since"
+    clock.t += 30
+    fail(logger)                    # back: a new spell, not hidden behind the count just said
+    assert out.getvalue().count("poll failed") == 2
+
+
+def test_the_daemons_processing_round_says_the_counts_of_stopped_failures(daemon, root_logging, caplog, logged):
+    _, clock, _ = logged
+    repeats = RepeatFilter(every_s=10 * minute, clock=clock, wall=clock)
+    logs._ACTIVE = repeats          # as setup_logging leaves it (given back by root_logging)
+    caplog.handler.addFilter(repeats)
+    named = logging.getLogger("monitor.service.daemon")
+    with caplog.at_level(logging.WARNING):
+        for _ in range(4):
+            named.error("feed north-serial: poll failed; will retry")
+        clock.t += 11 * minute
+        daemon.process()
+    lines = [r.getMessage() for r in caplog.records if "poll failed" in r.getMessage()]
+    assert len(lines) == 2 and "the same 3 more time(s)" in lines[1] and "none since" in lines[1]

@@ -16,6 +16,9 @@ import pytest
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
+from monitor.quality import checks as qc
+from monitor.quality import records as qc_records
+from monitor.store import database
 from monitor.store.database import Store
 from monitor.surge import forecast as SF
 from tests.units import day, hour, minute, mm
@@ -122,9 +125,6 @@ def pressure_reference(conn: sqlite3.Connection, station: str, start: int, end: 
        bounds=st.tuples(st.integers(-3 * hour, 2 * day), st.integers(0, 2 * day)), seed=st.integers(0, 99),
        t0=st.sampled_from([-2 * day + 13, 1_700_000_000 + 7]))
 def test_the_pressure_equals_its_usable_readings_grouped(tmp_path_factory, batches, flagged, bounds, seed, t0):
-    from monitor.quality import checks as qc
-    from monitor.quality import records as qc_records
-
     rng = np.random.default_rng(seed)
     path = tmp_path_factory.mktemp("pbins") / "store.sqlite"
     with Store.open(path) as store:
@@ -153,9 +153,6 @@ def test_the_pressure_equals_its_usable_readings_grouped(tmp_path_factory, batch
 
 
 def test_each_writer_of_the_barometer_keeps_its_means(store):
-    from monitor.quality import checks as qc
-    from monitor.quality import records as qc_records
-
     t0 = 1_700_000_000 + 7
     t = t0 + np.arange(0, 6 * hour, minute)
     store.write_derived_rows("port", t, {"smoothed": np.zeros(len(t))})
@@ -183,22 +180,58 @@ def test_a_daemons_first_open_after_an_upgrade_by_another_program_makes_the_mean
     t = 1_700_000_000 + np.arange(0, 6 * hour, minute)
     with Store.open(path) as store:  # upgraded (made) by a verb without the lock ...
         store.write_derived_rows("port", t, {"smoothed": np.full(len(t), 0.2)})
+        store.write_batch("port", "barometer", t, np.full(len(t), 1010.0))
         # ... while a daemon of the version before writes rows without their means
         store.conn.execute("UPDATE derived SET smoothed = 0.7 WHERE t >= ?", (int(t[120]),))
+        store.conn.execute("UPDATE observations SET value = 990.0 WHERE t >= ?", (int(t[120]),))
+        store.conn.execute("UPDATE observations SET flag = 4 WHERE t BETWEEN ? AND ?", (int(t[30]), int(t[60])))
     with Store.open(path, lock=True) as store:
-        got, _, _ = SF.read_history(store.conn, "port", int(t[0]), int(t[-1]))
+        got, _, pressure = SF.read_history(store.conn, "port", int(t[0]), int(t[-1]), barometer=True)
         assert_same(got, reference(store.conn, "port", int(t[0]), int(t[-1])))
         assert got.iloc[-3] == pytest.approx(0.7)
+        assert_same(pressure, pressure_reference(store.conn, "port", int(t[0]), int(t[-1]), got.index))
+        assert pressure.iloc[-3] == pytest.approx(990.0)
         store.conn.execute("UPDATE derived SET smoothed = 0.9")  # behind the means' back again
     with Store.open(path, lock=True) as store:  # made again once only, not at every open
         got, _, _ = SF.read_history(store.conn, "port", int(t[0]), int(t[-1]))
         assert got.iloc[-3] == pytest.approx(0.7)   # a whole bin: the mean kept
 
 
-def test_a_store_made_by_the_daemon_is_not_made_again(tmp_path):
+def test_a_store_made_by_the_daemon_is_not_made_again(tmp_path, monkeypatch):
+    made = []
+    monkeypatch.setattr(database, "rebin_all", lambda conn: made.append(conn))
     path = tmp_path / "store.sqlite"
-    with Store.open(path, lock=True) as store:
+    with Store.open(path, lock=True) as store:   # made by the daemon: the migration made them
         assert store.get_meta("history_bins.whole") == "1"
+    with Store.open(path, lock=True):
+        pass
+    with Store.open(path):
+        pass
+    assert made == []
+
+
+def test_the_history_is_read_in_one_snapshot(store, tmp_path, monkeypatch):
+    t = 1_700_000_000 + np.arange(0, 6 * hour, minute)
+    store.write_derived_rows("port", t, {"smoothed": np.full(len(t), 0.2)})
+    store.write_batch("port", "barometer", t, np.full(len(t), 1010.0))
+    other = sqlite3.connect(store.real_path, isolation_level=None)
+    real = SF._kept_means
+    calls = []
+
+    def meanwhile(conn, table, *args):
+        rows = real(conn, table, *args)
+        if not calls:  # another writer commits between the residual's read and the pressure's
+            other.execute("UPDATE pressure_bins SET mean = mean + 100")
+        calls.append(table)
+        return rows
+
+    monkeypatch.setattr(SF, "_kept_means", meanwhile)
+    try:
+        _, _, pressure = SF.read_history(store.conn, "port", int(t[0]), int(t[-1]), barometer=True)
+    finally:
+        other.close()
+    assert calls == ["residual_bins", "pressure_bins"]
+    assert pressure.dropna().eq(1010.0).all()
 
 
 @pytest.mark.parametrize("t0", [1_700_000_400, -10 * GRID])

@@ -5,8 +5,9 @@ Each test is a pure, vectorised function of a pandas Series indexed by a UTC
 ``DatetimeIndex`` (a naive index is taken as UTC) and returns an ``int8`` Series of
 flags on the same index. :func:`run_tests` runs them all for one sensor and adds the
 aggregate (the worst evaluated flag). :mod:`monitor.quality.tail` gives the same flags at
-the newest rows only; the glue to the store (:func:`ensure_qc_schema`,
-:func:`run_station_qc`, overrides, staff readings) is :mod:`monitor.quality.records`.
+the newest rows only; the glue to the store (:func:`~monitor.quality.records.ensure_qc_schema`,
+:func:`~monitor.quality.records.run_station_qc`, overrides, staff readings) is
+:mod:`monitor.quality.records`.
 
 Tests are cited by the numbers of the QARTOD water-level manual v2.1: 1 timing/gap,
 2 syntax, 3 location, 4 gross range, 5 climatology (here: the expected range about the

@@ -178,7 +178,7 @@ def run_station_qc(store: Any, station_cfg: Any, settings: QcSettings | None, st
     the results.
 
     Reads the observations from ``start_t - settings.context_seconds()`` (so rolling
-    statistics have their history), runs :func:`run_tests` per sensor (each sensor's
+    statistics have their history), runs :func:`~monitor.quality.checks.run_tests` per sensor (each sensor's
     usable samples serve as the other's comparison), applies the technician's
     overrides, and writes ``qc_tests`` and ``observations.flag`` for samples from
     ``start_t - settings.resid_window`` (samples whose centred windows were incomplete

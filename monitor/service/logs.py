@@ -157,9 +157,19 @@ class RepeatFilter(logging.Filter):
         return decided
 
     def quiet(self, everything: bool = False) -> list[tuple[str, int, str]]:
-        """The lines with repeats not shown that have not come again for ``every_s`` (with
-        ``everything``, all of them: the daemon is stopping), as (logger name, level, text
-        with the count and times); their counts start again."""
+        """The lines with repeats not shown that have not come again for ``every_s``.
+
+        Parameters
+        ----------
+        everything : bool
+            All lines with repeats not shown, however recent (the daemon is stopping).
+
+        Returns
+        -------
+        list of (str, int, str)
+            Logger name, level and text (the line with the count and times) of each. Their
+            counts start again, and each line's next one is shown at once.
+        """
         with self._lock:
             now = self.clock()
             done = [s for s in self._seen.values()
@@ -168,7 +178,8 @@ class RepeatFilter(logging.Filter):
             out = []
             for s in done:
                 out.append((s.name, s.level, f"{s.text} [{_hidden_note(s)}; none since]"))
-                s.hidden, s.shown = 0, now
+                # said: its next one starts a new spell, shown at once (its traceback as due)
+                s.hidden, s.shown = 0, -math.inf
             return out
 
     def _decide(self, record: logging.LogRecord) -> bool:
@@ -211,8 +222,14 @@ _ACTIVE: RepeatFilter | None = None
 
 
 def report_quiet_repeats(everything: bool = False) -> None:
-    """Log the count of each repeated line that stopped repeating (:meth:`RepeatFilter.quiet`),
-    at its own level and on its own logger."""
+    """Log the count of each repeated line that stopped repeating, at its own level and on
+    its own logger (nothing before :func:`setup_logging`).
+
+    Parameters
+    ----------
+    everything : bool
+        As :meth:`RepeatFilter.quiet`: every count not said yet (the daemon is stopping).
+    """
     repeats = _ACTIVE
     if repeats is None:
         return

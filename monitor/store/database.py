@@ -182,6 +182,9 @@ class Store:
                 f"store {self.path} has schema version {version}, newer than this quaywatch understands "
                 f"(version {SCHEMA_VERSION}); upgrade quaywatch, or point store.path at another file")
         for v in range(version + 1, SCHEMA_VERSION + 1):
+            if v == HISTORY_BINS_VERSION and version > 0:
+                log.info("store %s: making the ten-minute means of the stored history (once; about a second "
+                         "per station and three years)", self.path)
             with self.transaction():
                 MIGRATIONS[v](self.db)
                 self.set_meta("schema_version", str(v))
@@ -190,6 +193,8 @@ class Store:
             # may have gone on writing rows without their means: made again, once.
             with self.transaction():
                 if version >= HISTORY_BINS_VERSION:
+                    log.info("store %s: making the ten-minute means of the stored history again (once: "
+                             "another program upgraded the store)", self.path)
                     rebin_all(self.conn)
                 self.set_meta(HISTORY_BINS_KEY, "1")
 

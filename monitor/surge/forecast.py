@@ -893,7 +893,13 @@ def rebin_all(conn) -> None:
     """Make ``residual_bins`` and ``pressure_bins`` again for every station from the rows
     stored (:data:`monitor.store.migrations.MIGRATIONS` 6, and the first open by a daemon
     after a store was upgraded by another program: see :meth:`Store._migrate
-    <monitor.store.database.Store._migrate>`)."""
+    <monitor.store.database.Store._migrate>`).
+
+    Parameters
+    ----------
+    conn : sqlite3.Connection
+        The store, inside the caller's write transaction.
+    """
     for (station,) in conn.execute("SELECT DISTINCT station FROM derived").fetchall():
         rebin_residual(conn, station)
     for (station,) in conn.execute("SELECT DISTINCT station FROM observations WHERE sensor = 'barometer'").fetchall():
@@ -928,7 +934,8 @@ def rebin_pressure(conn, station: str, t_lo: int | None = None, t_hi: int | None
     (all of the station's without bounds) from the barometer's rows as stored now, in the
     caller's transaction: called by every writer of a barometer's values or flags
     (:meth:`Store.write_batch <monitor.store.database.Store.write_batch>`,
-    :func:`monitor.quality.records.write_rows`, :func:`monitor.quality.records.set_override`).
+    :func:`monitor.quality.records.set_override`, and :func:`monitor.quality.records.write_rows`
+    should quality control ever judge a barometer: today it judges the level sensors only).
 
     Parameters
     ----------
@@ -991,11 +998,12 @@ def read_history(conn, station: str, start: int, end: int, barometer: bool = Fal
         conn.execute("BEGIN")
     try:
         resid = _series(_kept_means(conn, "residual_bins", station, int(start), int(end)))
-        skew = pd.read_sql_query("SELECT hw_t, skew_surge FROM skew_surges WHERE station = ? AND hw_t BETWEEN ? "
-                                 "AND ? ORDER BY hw_t", conn, params=(station, int(start), int(end)))
+        skew = pd.DataFrame(conn.execute("SELECT hw_t, skew_surge FROM skew_surges WHERE station = ? AND hw_t "
+                                         "BETWEEN ? AND ? ORDER BY hw_t", (station, int(start), int(end))).fetchall(),
+                            columns=["hw_t", "skew_surge"])
         p = _series(_kept_means(conn, "pressure_bins", station, int(start), int(end))) if barometer else None
     finally:
-        if own:
+        if own and conn.in_transaction:
             conn.execute("COMMIT")
     if resid.empty:
         return resid, skew, None
