@@ -48,7 +48,7 @@ def test_after_the_interval_it_is_shown_with_the_count_and_without_the_traceback
     assert len(lines) == 2
     # the clock starts at 1,790,000,000 s: 2026-09-21T14:13:20Z (GNU date -u -d @1790000000)
     assert "the same 99 more time(s) from 2026-09-21T14:13:25Z to 2026-09-21T14:21:35Z, not shown" in lines[1]
-    assert "traceback as shown at 2026-09-21T14:13:20Z" in lines[1]
+    assert "OSError: device gone; traceback as shown at 2026-09-21T14:13:20Z" in lines[1]  # the error in one line
     assert out.getvalue().count("Traceback") == 1
 
 

@@ -200,7 +200,7 @@ class RepeatFilter(logging.Filter):
             return False
         notes = [_hidden_note(seen)] if seen.hidden else []
         if record.exc_info and now - seen.traced < self.trace_every_s:
-            notes.append(f"traceback as shown at {iso_utc(seen.traced_at)}")
+            notes.append(f"{key[3]}: {key[4]}; traceback as shown at {iso_utc(seen.traced_at)}")
             record.exc_info, record.exc_text = None, None
         elif record.exc_info:
             seen.traced, seen.traced_at = now, at
