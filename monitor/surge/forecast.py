@@ -951,17 +951,16 @@ def rebin_pressure(conn, station: str, t_lo: int | None = None, t_hi: int | None
 
 def _rebin(conn, table: str, station: str, t_lo: int | None, t_hi: int | None, emptied: bool) -> None:
     source, column, usable = _KEPT[table]
-    means = f"SELECT station, {_BIN_SQL} AS b, avg({column}) FROM {source} WHERE station = ? AND {usable}"
-    if t_lo is None or t_hi is None:
-        conn.execute(f"DELETE FROM {table} WHERE station = ?", (station,))
-        conn.execute(f"INSERT INTO {table} (station, b, mean) {means} GROUP BY b", (station,))
-        return
-    g = GRID_S
-    lo, hi = int(t_lo) // g * g, int(t_hi) // g * g + g - 1
+    span_b = span_t = ""
+    args: tuple = (station,)
+    if t_lo is not None and t_hi is not None:  # the bins holding a time in [t_lo, t_hi], whole
+        g = GRID_S
+        span_b, span_t = " AND b BETWEEN ? AND ?", " AND t BETWEEN ? AND ?"
+        args = (station, int(t_lo) // g * g, int(t_hi) // g * g + g - 1)
     if emptied:
-        conn.execute(f"DELETE FROM {table} WHERE station = ? AND b BETWEEN ? AND ?", (station, lo, hi))
-    conn.execute(f"INSERT OR REPLACE INTO {table} (station, b, mean) {means} AND t BETWEEN ? AND ? GROUP BY b",
-                 (station, lo, hi))
+        conn.execute(f"DELETE FROM {table} WHERE station = ?{span_b}", args)
+    conn.execute(f"INSERT OR REPLACE INTO {table} (station, b, mean) SELECT station, {_BIN_SQL} AS b, avg({column}) "
+                 f"FROM {source} WHERE station = ? AND {usable}{span_t} GROUP BY b", args)
 
 
 def read_history(conn, station: str, start: int, end: int, barometer: bool = False) -> tuple:
